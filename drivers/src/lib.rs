@@ -1,0 +1,12 @@
+//! Instrument drivers for Halfwave.
+//!
+//! Everything that talks to a bench instrument lives here, and nothing here knows about HTTP,
+//! databases or the sweep engine:
+//! - SCPI over raw TCP (LXI port 5025) with VISA-style resource strings;
+//! - IEEE 488.2 common commands and SCPI response parsing (numbers, special values, arrays, blocks);
+//! - the instrument traits the engine drives (an RF source and an optical spectrum analyzer);
+//! - generic SCPI drivers with per-model command profiles (TOML);
+//! - the simulated bench: the physics of laser, modulator, drive chain and analyzer, in-process and
+//!   served over TCP as SCPI instruments.
+
+pub use halfwave_units as units;

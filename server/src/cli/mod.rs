@@ -1,0 +1,35 @@
+//! The `halfwave` command line: one file per subcommand.
+//!
+//! Every subcommand returns `Result<(), CliError>`; `main` prints the error for the person at the
+//! terminal and exits non-zero. Commands that print results print JSON on stdout.
+
+use clap::{Parser, Subcommand};
+
+/// An error that ends a command: the message says what is wrong and what to do.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct CliError(pub String);
+
+impl CliError {
+    pub fn new(message: impl Into<String>) -> Self {
+        CliError(message.into())
+    }
+}
+
+/// Halfwave calibrates electro-optic phase modulators: it drives an RF source and reads an optical
+/// spectrum analyzer, fits the modulation index from the Bessel sidebands and records V_pi versus
+/// frequency per serial number.
+#[derive(Debug, Parser)]
+#[command(name = "halfwave", version, about, long_about = None)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {}
+
+/// Runs the parsed command.
+pub fn run(cli: Cli) -> Result<(), CliError> {
+    match cli.command {}
+}

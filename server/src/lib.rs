@@ -1,0 +1,12 @@
+//! Halfwave: a daemon that calibrates electro-optic phase modulators unattended.
+//!
+//! The crate is split so that data flows one way, from instrument bytes to HTTP views:
+//! - [`analysis`]: pure functions, trace -> comb lines -> modulation index -> V_pi; no I/O.
+//! - [`cli`]: the `halfwave` command line (each subcommand one file).
+//! - [`telemetry`]: tracing set-up, done once at start.
+
+pub mod analysis;
+pub mod cli;
+pub mod telemetry;
+
+pub use halfwave_units as units;
