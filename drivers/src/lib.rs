@@ -10,3 +10,10 @@
 //!   served over TCP as SCPI instruments.
 
 pub use halfwave_units as units;
+
+pub mod instrument;
+
+pub use instrument::{
+    AnalyzerCapabilities, AnalyzerSettings, Identity, InstrumentError, RfSource, SourceLimits,
+    SpectrumAnalyzer,
+};

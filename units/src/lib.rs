@@ -5,6 +5,12 @@
 //! minus a level is a ratio in dB; hertz add to hertz). Every type is a transparent `f64` in serde,
 //! so JSON and CSV carry plain numbers and the unit lives in the field name (`frequency_hz`,
 //! `level_dbm`, `v_pi_volts`).
+//!
+//! The [`Trace`] (an analyzer sweep) lives here too: it is the one measured value that crosses
+//! from the drivers to the analysis.
+
+pub mod trace;
+pub use trace::{Trace, TraceError};
 
 use serde::{Deserialize, Serialize};
 use std::fmt;

@@ -1,0 +1,221 @@
+//! The instrument traits the sweep engine drives, and the error every driver returns.
+//!
+//! Two roles make a bench: an [`RfSource`] that drives the modulator and a [`SpectrumAnalyzer`]
+//! that looks at the light. The engine knows instruments only through these traits, so a generic
+//! SCPI driver over TCP and the in-process simulated bench are interchangeable. The traits are
+//! object-safe (`Box<dyn RfSource>`) because the bench is chosen from configuration at run time.
+//!
+//! Every setter returns the value the instrument reports back after the change; implementations
+//! verify the read-back against the request within the tolerance they document and return
+//! [`InstrumentError::ReadBack`] otherwise.
+
+use async_trait::async_trait;
+use halfwave_units::{Dbm, Hz, Seconds, Trace};
+use serde::{Deserialize, Serialize};
+use std::time::Duration;
+
+/// An instrument's identity as reported by IEEE 488.2 `*IDN?`
+/// (manufacturer, model, serial number, firmware level).
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Identity {
+    pub manufacturer: String,
+    pub model: String,
+    pub serial: String,
+    pub firmware: String,
+}
+
+/// What went wrong talking to an instrument. Messages name the instrument and say what to do.
+#[derive(Debug, thiserror::Error)]
+pub enum InstrumentError {
+    /// The resource string could not be understood.
+    #[error("bad instrument resource string {resource:?}: {reason}")]
+    BadResource { resource: String, reason: String },
+
+    /// The connection could not be made or was lost.
+    #[error("connection to {resource} failed during {operation}: {source}; check the cable, the address and that the instrument is on")]
+    Connection {
+        resource: String,
+        operation: String,
+        #[source]
+        source: std::io::Error,
+    },
+
+    /// The instrument did not answer in time.
+    #[error("{resource} did not answer {operation} within {after:?}; the instrument may be busy, hung or configured with another terminator")]
+    Timeout {
+        resource: String,
+        operation: String,
+        after: Duration,
+    },
+
+    /// The instrument reported an error in its SCPI error queue.
+    #[error("{resource} reported SCPI error {code},\"{message}\" after {operation}")]
+    Scpi {
+        resource: String,
+        operation: String,
+        code: i32,
+        message: String,
+    },
+
+    /// A reply could not be parsed.
+    #[error("could not parse the reply of {resource} to {operation}: {detail}")]
+    Parse {
+        resource: String,
+        operation: String,
+        detail: String,
+    },
+
+    /// A setting read back differently from what was requested.
+    #[error("{resource}: {setting} was set to {requested} but reads back {actual}; check the instrument's range and resolution")]
+    ReadBack {
+        resource: String,
+        setting: String,
+        requested: String,
+        actual: String,
+    },
+
+    /// A request outside the instrument's (or the configuration's) limits; nothing was sent.
+    #[error(
+        "{resource}: {what} {value} is outside the allowed range {min} to {max}; nothing was sent"
+    )]
+    OutOfRange {
+        resource: String,
+        what: String,
+        value: String,
+        min: String,
+        max: String,
+    },
+
+    /// The instrument or its profile cannot do this.
+    #[error("{resource} does not support {what}")]
+    Unsupported { resource: String, what: String },
+}
+
+impl InstrumentError {
+    /// True for errors after which the connection should be re-established before the next
+    /// command (lost link, silence, a reply that left the stream out of step).
+    pub fn needs_reconnect(&self) -> bool {
+        matches!(
+            self,
+            InstrumentError::Connection { .. }
+                | InstrumentError::Timeout { .. }
+                | InstrumentError::Parse { .. }
+        )
+    }
+}
+
+/// The ranges an RF source accepts.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct SourceLimits {
+    pub min_frequency: Hz,
+    pub max_frequency: Hz,
+    pub min_level: Dbm,
+    pub max_level: Dbm,
+}
+
+/// An RF signal generator driving the modulator.
+#[async_trait]
+pub trait RfSource: Send {
+    /// A short name for logs and errors (the resource string or the simulator's name).
+    fn resource(&self) -> &str;
+
+    /// The instrument's identity (`*IDN?`).
+    async fn identify(&mut self) -> Result<Identity, InstrumentError>;
+
+    /// The frequency and level ranges this source accepts.
+    fn limits(&self) -> SourceLimits;
+
+    /// Sets the CW frequency; returns the read-back.
+    async fn set_frequency(&mut self, frequency: Hz) -> Result<Hz, InstrumentError>;
+
+    /// Sets the output level; returns the read-back.
+    async fn set_level(&mut self, level: Dbm) -> Result<Dbm, InstrumentError>;
+
+    /// Switches the RF output on or off; returns the read-back state.
+    async fn set_output(&mut self, on: bool) -> Result<bool, InstrumentError>;
+
+    /// Whether the RF output is on.
+    async fn output_enabled(&mut self) -> Result<bool, InstrumentError>;
+
+    /// Switches the RF output off by every means available (reconnecting if needed) and confirms
+    /// it. This is the call every stop path makes; it must not give up after one failed attempt.
+    async fn safe_off(&mut self) -> Result<(), InstrumentError>;
+}
+
+/// The settings of one analyzer sweep.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct AnalyzerSettings {
+    /// Centre of the sweep (optical frequency).
+    pub center: Hz,
+    /// Width of the sweep.
+    pub span: Hz,
+    /// Resolution bandwidth.
+    pub resolution_bandwidth: Hz,
+    /// Number of points per trace.
+    pub points: usize,
+}
+
+/// What an analyzer can do.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct AnalyzerCapabilities {
+    pub min_frequency: Hz,
+    pub max_frequency: Hz,
+    pub min_span: Hz,
+    pub max_span: Hz,
+    /// The resolution bandwidths it offers, ascending.
+    pub resolution_bandwidths: Vec<Hz>,
+    pub max_points: usize,
+    /// A typical time for one sweep at full points, for planning.
+    pub typical_sweep_time: Seconds,
+}
+
+/// An optical spectrum analyzer (high-resolution, MHz-class).
+#[async_trait]
+pub trait SpectrumAnalyzer: Send {
+    /// A short name for logs and errors.
+    fn resource(&self) -> &str;
+
+    /// The instrument's identity (`*IDN?`).
+    async fn identify(&mut self) -> Result<Identity, InstrumentError>;
+
+    /// What the instrument can do.
+    fn capabilities(&self) -> AnalyzerCapabilities;
+
+    /// Sets the centre frequency; returns the read-back.
+    async fn set_center(&mut self, center: Hz) -> Result<Hz, InstrumentError>;
+
+    /// Sets the span; returns the read-back.
+    async fn set_span(&mut self, span: Hz) -> Result<Hz, InstrumentError>;
+
+    /// Sets the resolution bandwidth; returns the read-back (instruments round to what they offer).
+    async fn set_resolution_bandwidth(&mut self, rbw: Hz) -> Result<Hz, InstrumentError>;
+
+    /// Sets the number of trace points; returns the read-back.
+    async fn set_points(&mut self, points: usize) -> Result<usize, InstrumentError>;
+
+    /// Applies all settings in order and returns what the instrument reports back.
+    async fn configure(
+        &mut self,
+        settings: &AnalyzerSettings,
+    ) -> Result<AnalyzerSettings, InstrumentError> {
+        let points = self.set_points(settings.points).await?;
+        let resolution_bandwidth = self
+            .set_resolution_bandwidth(settings.resolution_bandwidth)
+            .await?;
+        let span = self.set_span(settings.span).await?;
+        let center = self.set_center(settings.center).await?;
+        Ok(AnalyzerSettings {
+            center,
+            span,
+            resolution_bandwidth,
+            points,
+        })
+    }
+
+    /// Takes one sweep and waits until it has completed.
+    async fn sweep(&mut self) -> Result<(), InstrumentError>;
+
+    /// Fetches the last trace: frequency axis in hertz and power in dBm, with the resolution
+    /// bandwidth the instrument used.
+    async fn fetch_trace(&mut self) -> Result<Trace, InstrumentError>;
+}
