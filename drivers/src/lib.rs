@@ -11,9 +11,15 @@
 
 pub use halfwave_units as units;
 
+pub mod ieee488;
 pub mod instrument;
+pub mod resource;
+pub mod scpi;
+pub mod transport;
 
 pub use instrument::{
     AnalyzerCapabilities, AnalyzerSettings, Identity, InstrumentError, RfSource, SourceLimits,
     SpectrumAnalyzer,
 };
+pub use resource::Resource;
+pub use transport::{ScpiTransport, TransportConfig};
