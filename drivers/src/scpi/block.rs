@@ -184,7 +184,7 @@ pub fn decode_real32_into(
     order: ByteOrder,
     out: &mut Vec<f64>,
 ) -> Result<(), ParseError> {
-    if payload.len() % 4 != 0 {
+    if !payload.len().is_multiple_of(4) {
         return Err(ParseError::new(format!(
             "a REAL,32 block must hold a multiple of 4 bytes, this one holds {}",
             payload.len()
@@ -209,7 +209,7 @@ pub fn decode_real64_into(
     order: ByteOrder,
     out: &mut Vec<f64>,
 ) -> Result<(), ParseError> {
-    if payload.len() % 8 != 0 {
+    if !payload.len().is_multiple_of(8) {
         return Err(ParseError::new(format!(
             "a REAL,64 block must hold a multiple of 8 bytes, this one holds {}",
             payload.len()

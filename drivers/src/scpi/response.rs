@@ -139,8 +139,8 @@ pub fn parse_bool(text: &str) -> Result<bool, ParseError> {
         return Ok(false);
     }
     match parse_number(text) {
-        Ok(v) if v == 1.0 => Ok(true),
-        Ok(v) if v == 0.0 => Ok(false),
+        Ok(1.0) => Ok(true),
+        Ok(0.0) => Ok(false),
         _ => Err(ParseError::new(format!(
             "{} is not a boolean (expected 0, 1, ON or OFF)",
             excerpt(text.as_bytes())
