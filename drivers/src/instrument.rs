@@ -31,6 +31,10 @@ pub enum InstrumentError {
     #[error("bad instrument resource string {resource:?}: {reason}")]
     BadResource { resource: String, reason: String },
 
+    /// A driver's configuration (its command profile) cannot be used; nothing was sent.
+    #[error("{resource}: {reason}")]
+    BadProfile { resource: String, reason: String },
+
     /// The connection could not be made or was lost.
     #[error("connection to {resource} failed during {operation}: {source}; check the cable, the address and that the instrument is on")]
     Connection {

@@ -11,15 +11,19 @@
 
 pub use halfwave_units as units;
 
+pub mod generic;
 pub mod ieee488;
 pub mod instrument;
+pub mod profile;
 pub mod resource;
 pub mod scpi;
 pub mod transport;
 
+pub use generic::{ScpiRfSource, ScpiSpectrumAnalyzer};
 pub use instrument::{
     AnalyzerCapabilities, AnalyzerSettings, Identity, InstrumentError, RfSource, SourceLimits,
     SpectrumAnalyzer,
 };
+pub use profile::{AnalyzerProfile, SourceProfile};
 pub use resource::Resource;
 pub use transport::{ScpiTransport, TransportConfig};

@@ -67,6 +67,8 @@ pub struct ScpiTransport {
     write_buf: Vec<u8>,
     /// End of the last reply handed out in `read_buf`; bytes beyond it were not asked for.
     last_reply_end: usize,
+    /// The part of `read_buf` handed out as the last reply.
+    last_reply: std::ops::Range<usize>,
     connections: u64,
 }
 
@@ -114,6 +116,7 @@ impl ScpiTransport {
             read_buf: Vec::with_capacity(4096),
             write_buf: Vec::with_capacity(256),
             last_reply_end: 0,
+            last_reply: 0..0,
             connections: 0,
         })
     }
@@ -151,6 +154,7 @@ impl ScpiTransport {
         }
         self.read_buf.clear();
         self.last_reply_end = 0;
+        self.last_reply = 0..0;
     }
 
     /// Drops any open socket and connects again, trying `reconnect_attempts` times with a backoff
@@ -260,6 +264,14 @@ impl ScpiTransport {
         Ok(self.read_buf.get(range).unwrap_or_default())
     }
 
+    /// The last reply returned by a query, in the form [`query_raw`](Self::query_raw) gives it
+    /// (empty after a failure or a write).
+    pub fn last_reply(&self) -> &[u8] {
+        self.read_buf
+            .get(self.last_reply.clone())
+            .unwrap_or_default()
+    }
+
     /// Writes `command` and, for a query, reads one reply. Returns the reply's range in the read
     /// buffer. On failure the socket is dropped so the next operation starts clean.
     async fn run(
@@ -283,6 +295,7 @@ impl ScpiTransport {
         }
         self.read_buf.clear();
         self.last_reply_end = 0;
+        self.last_reply = 0..0;
         let Some(stream) = self.stream.as_mut() else {
             return Err(self.io_error(command, io::Error::from(io::ErrorKind::NotConnected)));
         };
@@ -307,6 +320,7 @@ impl ScpiTransport {
                 );
                 // The reply is handed out by range; the buffer is cleared at the next operation.
                 self.last_reply_end = end;
+                self.last_reply = range.clone();
                 Ok(range)
             }
             Ok(Err(failure)) => {

@@ -50,6 +50,7 @@ pub struct State {
     pub faults: Faults,
     pub commands: Vec<String>,
     pub connections: usize,
+    pub reply_terminator: String,
 }
 
 impl Default for State {
@@ -71,6 +72,7 @@ impl Default for State {
             faults: Faults::default(),
             commands: Vec::new(),
             connections: 0,
+            reply_terminator: "\n".into(),
         }
     }
 }
@@ -121,16 +123,36 @@ impl FakeInstrument {
     }
 }
 
-/// True when `header` matches `pattern` (e.g. "FREQuency:CENTer"): each node in its long form or
-/// its short form (the upper-case letters), case-insensitive (SCPI-1999 Vol 1 §6.2.1; from memory).
+/// True when `header` matches `pattern` (e.g. "[SENSe:]FREQuency:CENTer"): each node in its long
+/// form or its short form (the upper-case letters), case-insensitive, and nodes in brackets may be
+/// left out (SCPI-1999 Vol 1 §6.2, from memory).
 pub fn header_matches(header: &str, pattern: &str) -> bool {
     let nodes: Vec<&str> = header.trim_start_matches(':').split(':').collect();
-    let wanted: Vec<&str> = pattern.split(':').collect();
-    nodes.len() == wanted.len()
-        && nodes.iter().zip(&wanted).all(|(node, want)| {
-            let short: String = want.chars().filter(|c| !c.is_ascii_lowercase()).collect();
-            node.eq_ignore_ascii_case(want) || node.eq_ignore_ascii_case(&short)
-        })
+    let normalized = pattern.replace("[:", ":[").replace(":]", "]:");
+    let wanted: Vec<(String, bool)> = normalized
+        .split(':')
+        .map(
+            |p| match p.strip_prefix('[').and_then(|p| p.strip_suffix(']')) {
+                Some(inner) => (inner.to_string(), true),
+                None => (p.to_string(), false),
+            },
+        )
+        .collect();
+    fn node_matches(node: &str, want: &str) -> bool {
+        let short: String = want.chars().filter(|c| !c.is_ascii_lowercase()).collect();
+        node.eq_ignore_ascii_case(want) || node.eq_ignore_ascii_case(&short)
+    }
+    fn walk(nodes: &[&str], wanted: &[(String, bool)]) -> bool {
+        match (nodes.split_first(), wanted.split_first()) {
+            (_, None) => nodes.is_empty(),
+            (first, Some(((want, optional), rest))) => {
+                (*optional && walk(nodes, rest))
+                    || first
+                        .is_some_and(|(node, more)| node_matches(node, want) && walk(more, rest))
+            }
+        }
+    }
+    walk(&nodes, &wanted)
 }
 
 enum Reply {
@@ -185,7 +207,7 @@ fn handle(state: &mut State, line: &str) -> Reply {
             None => "0,\"No error\"".into(),
         });
     }
-    if m("FREQuency") {
+    if m("[SOURce:]FREQuency[:CW]") {
         if is_query {
             return num(state.frequency_hz);
         }
@@ -196,7 +218,7 @@ fn handle(state: &mut State, line: &str) -> Reply {
         }
         return Reply::Nothing;
     }
-    if m("POWer") {
+    if m("[SOURce:]POWer[:LEVel][:IMMediate][:AMPLitude]") {
         if is_query {
             // Levels are set in 0.01 dB steps.
             return num(state.level_dbm);
@@ -210,7 +232,7 @@ fn handle(state: &mut State, line: &str) -> Reply {
         }
         return Reply::Nothing;
     }
-    if m("OUTPut") {
+    if m("OUTPut[:STATe]") {
         if is_query {
             return Reply::Text(if state.output_on { "1" } else { "0" }.into());
         }
@@ -221,7 +243,7 @@ fn handle(state: &mut State, line: &str) -> Reply {
         }
         return Reply::Nothing;
     }
-    if m("FREQuency:CENTer") {
+    if m("[SENSe:]FREQuency:CENTer") {
         if is_query {
             return num(state.center_hz);
         }
@@ -231,7 +253,7 @@ fn handle(state: &mut State, line: &str) -> Reply {
         }
         return Reply::Nothing;
     }
-    if m("FREQuency:SPAN") {
+    if m("[SENSe:]FREQuency:SPAN") {
         if is_query {
             return num(state.span_hz);
         }
@@ -241,13 +263,13 @@ fn handle(state: &mut State, line: &str) -> Reply {
         }
         return Reply::Nothing;
     }
-    if m("FREQuency:STARt") && is_query {
+    if m("[SENSe:]FREQuency:STARt") && is_query {
         return num(state.center_hz - state.span_hz / 2.0);
     }
-    if m("FREQuency:STOP") && is_query {
+    if m("[SENSe:]FREQuency:STOP") && is_query {
         return num(state.center_hz + state.span_hz / 2.0);
     }
-    if m("BANDwidth") {
+    if m("[SENSe:]BANDwidth[:RESolution]") {
         if is_query {
             return num(state.rbw_hz);
         }
@@ -263,7 +285,7 @@ fn handle(state: &mut State, line: &str) -> Reply {
         }
         return Reply::Nothing;
     }
-    if m("SWEep:POINts") {
+    if m("[SENSe:]SWEep:POINts") {
         if is_query {
             return Reply::Text(state.points.to_string());
         }
@@ -277,7 +299,7 @@ fn handle(state: &mut State, line: &str) -> Reply {
         state.continuous = matches!(argument.to_ascii_uppercase().as_str(), "ON" | "1");
         return Reply::Nothing;
     }
-    if m("INITiate") {
+    if m("INITiate[:IMMediate]") {
         state.sweeps += 1;
         return Reply::Nothing;
     }
@@ -299,7 +321,7 @@ fn handle(state: &mut State, line: &str) -> Reply {
         }
         return Reply::Nothing;
     }
-    if m("TRACe:DATA") && is_query {
+    if m("TRACe[:DATA]") && is_query {
         let values = fake_trace_dbm(state.points);
         return match state.format.as_str() {
             "ASC" => Reply::Text(
@@ -322,7 +344,7 @@ fn handle(state: &mut State, line: &str) -> Reply {
                 let len = payload.len().to_string();
                 let mut out = format!("#{}{}", len.len(), len).into_bytes();
                 out.extend(payload);
-                out.push(b'\n');
+                out.extend(state.reply_terminator.as_bytes());
                 Reply::Bytes(out)
             }
         };
@@ -351,12 +373,14 @@ async fn serve(socket: tokio::net::TcpStream, state: Arc<Mutex<State>>) {
             }
             let reply = handle(&mut s, &line);
             let faults = s.faults.clone();
-            s.faults.garble_next_reply = false;
+            if !matches!(reply, Reply::Nothing) {
+                s.faults.garble_next_reply = false;
+            }
             (reply, faults)
         };
         let bytes = match reply {
             Reply::Nothing => continue,
-            Reply::Text(text) => format!("{text}\n").into_bytes(),
+            Reply::Text(text) => format!("{text}{}", faults_terminator(&state)).into_bytes(),
             Reply::Bytes(bytes) => bytes,
         };
         if faults.silent {
@@ -402,4 +426,25 @@ pub async fn scripted_server(replies: Vec<Vec<u8>>) -> SocketAddr {
         }
     });
     addr
+}
+
+fn faults_terminator(state: &Arc<Mutex<State>>) -> String {
+    state.lock().unwrap().reply_terminator.clone()
+}
+
+#[test]
+fn header_matching_follows_the_long_short_rule() {
+    // SCPI-1999 Vol 1 §6.2.1 (from memory): long form or short form, any case, optional nodes.
+    assert!(header_matches("FREQ", "[SOURce:]FREQuency[:CW]"));
+    assert!(header_matches("sour:freq:cw", "[SOURce:]FREQuency[:CW]"));
+    assert!(header_matches(
+        "SOURCE:FREQUENCY",
+        "[SOURce:]FREQuency[:CW]"
+    ));
+    assert!(!header_matches("FREQ:CENT", "[SOURce:]FREQuency[:CW]"));
+    assert!(!header_matches("FRE", "[SOURce:]FREQuency[:CW]"));
+    assert!(header_matches(
+        "SENS:BAND:RES",
+        "[SENSe:]BANDwidth[:RESolution]"
+    ));
 }

@@ -1,0 +1,233 @@
+//! The generic SCPI RF source: [`RfSource`] for any signal generator, adapted by a
+//! [`SourceProfile`].
+//!
+//! Requests outside the profile's limits are refused before anything is sent. Every setter is a
+//! session step (send, drain the error queue, read back) and the read-back must agree within the
+//! profile's tolerance, otherwise [`InstrumentError::ReadBack`]. [`ScpiRfSource::safe_off`] tries
+//! harder than any other call: it reconnects and repeats until the instrument confirms the output
+//! is off, because it is what every stop path relies on.
+
+use super::format_decimal;
+use super::session::ScpiSession;
+use crate::profile::{fill_template, SourceProfile};
+use crate::resource::Resource;
+use crate::scpi::response::{parse_bool, parse_number};
+use crate::transport::ScpiTransport;
+use crate::{Identity, InstrumentError, RfSource, SourceLimits};
+use async_trait::async_trait;
+use halfwave_units::{Dbm, Hz};
+
+/// How many times `safe_off` tries (each try reconnects if needed) before it reports failure.
+const SAFE_OFF_ATTEMPTS: u32 = 4;
+
+/// An RF source reached over SCPI.
+#[derive(Debug)]
+pub struct ScpiRfSource {
+    session: ScpiSession,
+    profile: SourceProfile,
+}
+
+impl ScpiRfSource {
+    /// Connects to `resource` (a VISA-style socket resource string), clears the status and runs
+    /// the profile's `on_connect` commands.
+    pub async fn connect(
+        resource: &str,
+        profile: SourceProfile,
+    ) -> Result<ScpiRfSource, InstrumentError> {
+        let resource = Resource::parse(resource)?;
+        profile
+            .validate("(given to the RF source driver)")
+            .map_err(|e| InstrumentError::BadProfile {
+                resource: resource.to_string(),
+                reason: e.to_string(),
+            })?;
+        let transport =
+            ScpiTransport::connect(resource, profile.connection.transport_config()).await?;
+        let session = ScpiSession::new(
+            transport,
+            profile.common.clone(),
+            profile.connection.retries,
+        );
+        let mut source = ScpiRfSource { session, profile };
+        source.session.clear_status().await?;
+        for command in source.profile.on_connect.clone() {
+            source.session.write(&command).await?;
+        }
+        Ok(source)
+    }
+
+    /// The profile in use.
+    pub fn profile(&self) -> &SourceProfile {
+        &self.profile
+    }
+
+    /// The SCPI session, for commands outside the trait.
+    pub fn session_mut(&mut self) -> &mut ScpiSession {
+        &mut self.session
+    }
+
+    /// `*RST` (many sources switch the output off on reset; the caller should not rely on it).
+    pub async fn reset(&mut self) -> Result<(), InstrumentError> {
+        self.session.reset().await
+    }
+
+    fn check_range(
+        &self,
+        what: &str,
+        value: f64,
+        min: f64,
+        max: f64,
+        unit: &str,
+    ) -> Result<(), InstrumentError> {
+        if value.is_finite() && value >= min && value <= max {
+            return Ok(());
+        }
+        Err(InstrumentError::OutOfRange {
+            resource: self.session.name().to_string(),
+            what: what.to_string(),
+            value: format!("{value} {unit}"),
+            min: format!("{min} {unit}"),
+            max: format!("{max} {unit}"),
+        })
+    }
+
+    fn read_back_error(&self, setting: &str, requested: String, actual: String) -> InstrumentError {
+        InstrumentError::ReadBack {
+            resource: self.session.name().to_string(),
+            setting: setting.to_string(),
+            requested,
+            actual,
+        }
+    }
+
+    /// Sets a number and returns its read-back.
+    async fn set_number(
+        &mut self,
+        set: &str,
+        query: &str,
+        value: f64,
+    ) -> Result<f64, InstrumentError> {
+        let command = fill_template(set, &format_decimal(value));
+        let reply = self.session.set_and_read_back(&command, query).await?;
+        parse_number(&reply).map_err(|e| self.session.parse_error(query, e))
+    }
+
+    async fn query_output(&mut self) -> Result<bool, InstrumentError> {
+        let query = self.profile.commands.query_output.clone();
+        let reply = self.session.query(&query).await?;
+        parse_bool(&reply).map_err(|e| self.session.parse_error(&query, e))
+    }
+
+    async fn try_off(&mut self) -> Result<(), InstrumentError> {
+        let c = &self.profile.commands;
+        let command = fill_template(&c.set_output, &c.output_off_word);
+        let query = c.query_output.clone();
+        // The error queue is not consulted here: only the read-back proves the output is off.
+        let transport = self.session.transport_mut();
+        transport.write(&command).await?;
+        let reply = transport.query(&query).await?;
+        match parse_bool(&reply) {
+            Ok(false) => Ok(()),
+            Ok(true) => Err(self.read_back_error("output", "off".into(), "on".into())),
+            Err(e) => Err(self.session.parse_error(&query, e)),
+        }
+    }
+}
+
+#[async_trait]
+impl RfSource for ScpiRfSource {
+    fn resource(&self) -> &str {
+        self.session.name()
+    }
+
+    async fn identify(&mut self) -> Result<Identity, InstrumentError> {
+        self.session.identify().await
+    }
+
+    fn limits(&self) -> SourceLimits {
+        self.profile.source_limits()
+    }
+
+    async fn set_frequency(&mut self, frequency: Hz) -> Result<Hz, InstrumentError> {
+        let l = &self.profile.limits;
+        self.check_range(
+            "frequency",
+            frequency.0,
+            l.min_frequency_hz,
+            l.max_frequency_hz,
+            "Hz",
+        )?;
+        let (set, query) = (
+            self.profile.commands.set_frequency.clone(),
+            self.profile.commands.query_frequency.clone(),
+        );
+        let actual = self.set_number(&set, &query, frequency.0).await?;
+        if (actual - frequency.0).abs() > self.profile.read_back.frequency_hz || !actual.is_finite()
+        {
+            return Err(self.read_back_error(
+                "frequency",
+                Hz(frequency.0).to_string(),
+                Hz(actual).to_string(),
+            ));
+        }
+        Ok(Hz(actual))
+    }
+
+    async fn set_level(&mut self, level: Dbm) -> Result<Dbm, InstrumentError> {
+        let l = &self.profile.limits;
+        self.check_range("level", level.0, l.min_level_dbm, l.max_level_dbm, "dBm")?;
+        let (set, query) = (
+            self.profile.commands.set_level.clone(),
+            self.profile.commands.query_level.clone(),
+        );
+        let actual = self.set_number(&set, &query, level.0).await?;
+        if (actual - level.0).abs() > self.profile.read_back.level_db || !actual.is_finite() {
+            return Err(self.read_back_error("level", level.to_string(), Dbm(actual).to_string()));
+        }
+        Ok(Dbm(actual))
+    }
+
+    async fn set_output(&mut self, on: bool) -> Result<bool, InstrumentError> {
+        let c = &self.profile.commands;
+        let word = if on {
+            &c.output_on_word
+        } else {
+            &c.output_off_word
+        };
+        let command = fill_template(&c.set_output, word);
+        let query = c.query_output.clone();
+        let reply = self.session.set_and_read_back(&command, &query).await?;
+        let actual = parse_bool(&reply).map_err(|e| self.session.parse_error(&query, e))?;
+        if actual != on {
+            let state = |b: bool| if b { "on" } else { "off" }.to_string();
+            return Err(self.read_back_error("output", state(on), state(actual)));
+        }
+        Ok(actual)
+    }
+
+    async fn output_enabled(&mut self) -> Result<bool, InstrumentError> {
+        self.query_output().await
+    }
+
+    async fn safe_off(&mut self) -> Result<(), InstrumentError> {
+        let mut last_error = None;
+        for attempt in 1..=SAFE_OFF_ATTEMPTS {
+            match self.try_off().await {
+                Ok(()) => {
+                    tracing::debug!(resource = %self.session.name(), attempt, "RF output confirmed off");
+                    return Ok(());
+                }
+                Err(e) => {
+                    tracing::warn!(resource = %self.session.name(), attempt, error = %e, "could not confirm the RF output is off; trying again");
+                    // Start the next attempt on a fresh connection whatever went wrong.
+                    self.session.transport_mut().disconnect();
+                    last_error = Some(e);
+                }
+            }
+        }
+        Err(last_error.unwrap_or_else(|| InstrumentError::Unsupported {
+            resource: self.session.name().to_string(),
+            what: "switching the output off".into(),
+        }))
+    }
+}
