@@ -39,6 +39,14 @@ pub enum AnalysisError {
         how: &'static str,
     },
 
+    /// The line shape shows that neighbouring lines merge (no resolution bandwidth was given).
+    #[error(
+        "the strongest line does not fall by 3 dB within half a line spacing ({modulation} / 2): the spacing is \
+         below the resolution and the lines are not resolved; use a finer resolution bandwidth or a higher \
+         modulation frequency"
+    )]
+    LinesNotResolved { modulation: Hz },
+
     /// The resolution bandwidth given is not a positive, finite number.
     #[error("the resolution bandwidth {0} is not a positive finite number; give it in hertz or leave it out to estimate it")]
     BadResolutionBandwidth(Hz),

@@ -6,13 +6,25 @@
 //!
 //! - [`chain`]: generator level <-> level at the modulator <-> peak voltage.
 //! - [`bessel`]: J_n tabulated once for fast fitting, with its reference checks.
+//! - [`comb`]: finding the comb on a trace and measuring its lines and floor.
+//! - [`index`]: the modulation index by least squares, sideband ratio and carrier depletion.
+//! - [`trace_analysis`]: one trace in, every estimate and the line table out.
+//! - [`synthetic`]: traces computed from Bessel physics, for tests, benchmarks and demos.
 //! - [`error`]: the one error type, with messages for the operator.
 
 pub mod bessel;
 pub mod chain;
+pub mod comb;
 pub mod error;
+pub mod index;
+pub mod synthetic;
+pub mod trace_analysis;
 
 pub use chain::{
     level_for_peak_voltage, pad_dissipated_fraction, peak_voltage, ChainPoint, DriveChain,
 };
 pub use error::AnalysisError;
+pub use index::{IndexEstimate, IndexMethod};
+pub use trace_analysis::{
+    analyze_trace, AnalysisOptions, LineMeasurement, OrderAsymmetry, TraceAnalysis,
+};

@@ -1,0 +1,611 @@
+//! Locating the comb on a trace and measuring its lines.
+//!
+//! The carrier is not always the strongest line (past beta of about 1.43 the first sidebands beat
+//! it, at 2.405 it vanishes) and the laser drifts, so the comb is found by its spacing, not by its
+//! biggest line: the strongest point of the trace belongs to *some* line, which fixes the comb's
+//! phase modulo the spacing; the phase is refined from the power centroids of all lines; and which
+//! line is order 0 is decided by the symmetry P_n = P_-n (or by an RF-off reference trace).
+//!
+//! Each line's power is the integral of the trace above the noise floor over +-1 resolution
+//! bandwidth, divided by the equivalent bandwidth of the line shape measured on the strongest line.
+//! Integrating averages the point-to-point noise over dozens of points (the peak value alone would
+//! carry the full noise of one point), and dividing by the measured shape makes the result a line
+//! power in dBm whatever the analyzer's filter shape. Only points inside line windows are
+//! converted from dB to linear power, which keeps a 10,001-point trace to a few thousand `exp`
+//! calls.
+
+use super::{AnalysisError, AnalysisOptions};
+use halfwave_units::{Hz, Trace};
+use std::ops::Range;
+
+/// ln(10) / 10: a level in dB times this is the natural log of the power ratio.
+const DB_TO_LN: f64 = std::f64::consts::LN_10 / 10.0;
+
+/// A level in dBm as milliwatts.
+#[inline]
+pub(crate) fn milliwatts(dbm: f64) -> f64 {
+    (dbm * DB_TO_LN).exp()
+}
+
+/// Largest number of floor samples kept for the median (more adds time, not accuracy).
+const FLOOR_SAMPLES: usize = 2048;
+
+/// Lines must be at least this many resolution bandwidths apart to be resolved (common practice).
+pub const MIN_SPACING_IN_RBW: f64 = 3.0;
+
+/// One measured line before and after the order is known.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct MeasuredLine {
+    /// Order n relative to the carrier.
+    pub order: i32,
+    /// Centre of the line on the trace axis.
+    pub frequency_hz: f64,
+    /// Line power above the noise floor, milliwatts (may be slightly negative for a line lost in
+    /// the floor).
+    pub power_mw: f64,
+    /// Standard uncertainty of `power_mw` from the trace noise.
+    pub uncertainty_mw: f64,
+    /// Whether the line rises above the floor by the detection threshold.
+    pub above_floor: bool,
+}
+
+/// The comb as found on one trace.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MeasuredComb {
+    pub carrier_frequency_hz: f64,
+    pub resolution_bandwidth_hz: f64,
+    pub resolution_estimated: bool,
+    /// Noise floor level (median of the points between lines), milliwatts.
+    pub floor_mw: f64,
+    /// Standard uncertainty of `floor_mw` (standard error of a median: 1.2533 sigma / sqrt(n)).
+    pub floor_uncertainty_mw: f64,
+    /// Point-to-point noise of the trace in dB (robust standard deviation of the floor).
+    pub noise_sigma_db: f64,
+    /// Equivalent bandwidth of the line shape (integral over peak), used to turn integrals into
+    /// line powers.
+    pub equivalent_bandwidth_hz: f64,
+    /// Half-width of the integration window around each line.
+    pub window_half_width_hz: f64,
+    /// Lines sorted by order.
+    pub lines: Vec<MeasuredLine>,
+}
+
+/// The carrier of an RF-off reference trace.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ReferenceCarrier {
+    pub frequency_hz: f64,
+    /// Integrated power above the floor (milliwatt-hertz; divide by the equivalent bandwidth).
+    pub integral: f64,
+    pub integral_uncertainty: f64,
+}
+
+/// Checks the modulation frequency against the span and the point spacing.
+pub fn check_span(trace: &Trace, modulation: Hz) -> Result<(), AnalysisError> {
+    if !(modulation.0.is_finite() && modulation.0 > 0.0) {
+        return Err(AnalysisError::BadModulationFrequency(modulation));
+    }
+    let (start, stop) = trace.span();
+    let span = stop.0 - start.0;
+    if span < 2.0 * modulation.0 {
+        return Err(AnalysisError::SpanTooNarrow {
+            span: Hz(span),
+            modulation,
+            needed: Hz(2.0 * modulation.0),
+        });
+    }
+    let step = span / (trace.len() - 1) as f64;
+    if modulation.0 < 6.0 * step {
+        return Err(AnalysisError::TooCoarse(format!(
+            "the points are {} apart but the lines only {} (at least 6 points per spacing are needed)",
+            Hz(step),
+            modulation
+        )));
+    }
+    Ok(())
+}
+
+/// Finds the comb and measures every order that fits in the span.
+pub fn measure_comb(
+    trace: &Trace,
+    modulation: Hz,
+    reference_carrier_hz: Option<f64>,
+    options: &AnalysisOptions,
+) -> Result<MeasuredComb, AnalysisError> {
+    check_span(trace, modulation)?;
+    let freq = trace.frequency_hz();
+    let power = trace.power_dbm();
+    let fm = modulation.0;
+    let peak = argmax(power);
+    let (rough_floor, rough_sigma) = rough_floor(power);
+    if power[peak] < rough_floor + options.detection_threshold_db + 5.0 * rough_sigma {
+        return Err(AnalysisError::NoComb {
+            floor_dbm: rough_floor,
+        });
+    }
+
+    let (rbw, estimated) = match options
+        .resolution_bandwidth
+        .or(trace.resolution_bandwidth())
+    {
+        Some(given) if given.0.is_finite() && given.0 > 0.0 => (given.0, false),
+        Some(bad) => return Err(AnalysisError::BadResolutionBandwidth(bad)),
+        None => match estimate_resolution(freq, power, peak, fm) {
+            Some(width) => (width, true),
+            None => return Err(AnalysisError::LinesNotResolved { modulation }),
+        },
+    };
+    if fm < MIN_SPACING_IN_RBW * rbw {
+        return Err(AnalysisError::SpacingBelowResolution {
+            modulation,
+            resolution: Hz(rbw),
+            how: if estimated {
+                "estimated from the line shape"
+            } else {
+                "as given"
+            },
+        });
+    }
+    let step = (freq[freq.len() - 1] - freq[0]) / (freq.len() - 1) as f64;
+    if estimated && rbw < 1.5 * step {
+        return Err(AnalysisError::NoComb {
+            floor_dbm: rough_floor,
+        });
+    }
+    if rbw < 1.5 * step {
+        return Err(AnalysisError::TooCoarse(format!(
+            "the points are {} apart, wider than the resolution bandwidth {} allows for measuring line shapes",
+            Hz(step),
+            Hz(rbw)
+        )));
+    }
+
+    // The strongest point lies on some line: that fixes the comb phase; refine it from centroids.
+    let exclusion = (1.5 * rbw).min(0.4 * fm);
+    let (floor_db, noise_sigma_db, floor_samples) = floor_level(freq, power, |f| {
+        let x = (f - freq[peak]) / fm;
+        (x - x.round()).abs() * fm > exclusion
+    });
+    let floor_mw = milliwatts(floor_db);
+    let mut phase = freq[peak];
+    for _ in 0..2 {
+        phase += centroid_offset(freq, power, phase, fm, 0.5 * rbw, floor_mw);
+    }
+
+    // Measure every line whose window fits in the span.
+    let half = rbw.min(fm / 2.5);
+    let sigma_eps = noise_sigma_db * DB_TO_LN;
+    let (first, last) = (freq[0], freq[freq.len() - 1]);
+    let k_min = ((first + half - phase) / fm).ceil() as i64;
+    let k_max = ((last - half - phase) / fm).floor() as i64;
+    let mut raw: Vec<(i64, f64, LineIntegral)> =
+        Vec::with_capacity((k_max - k_min + 1).max(0) as usize);
+    for k in k_min..=k_max {
+        let centre = phase + k as f64 * fm;
+        let integral = integrate(freq, power, window(freq, centre, half), floor_mw, sigma_eps);
+        raw.push((k, centre, integral));
+    }
+    let strongest = raw
+        .iter()
+        .max_by(|a, b| a.2.integral.total_cmp(&b.2.integral))
+        .ok_or(AnalysisError::TooFewLines {
+            found: 0,
+            needed: 3,
+        })?;
+    let peak_excess = parabolic_peak(freq, power, strongest.1, 0.3 * rbw)
+        .map_or(strongest.2.peak_mw, milliwatts)
+        - floor_mw;
+    let threshold_mw = floor_mw * (10f64.powf(options.detection_threshold_db / 10.0) - 1.0);
+    // The strongest line must stand clear of the floor in its peak and well beyond the noise in
+    // its integral, or what was found is a noise spike.
+    if !(peak_excess > threshold_mw && strongest.2.integral > 5.0 * strongest.2.uncertainty) {
+        return Err(AnalysisError::NoComb {
+            floor_dbm: floor_db,
+        });
+    }
+    let equivalent_bandwidth = strongest.2.integral / peak_excess;
+    let measured: Vec<(i64, MeasuredLine)> = raw
+        .iter()
+        .map(|(k, centre, integral)| {
+            let power_mw = integral.integral / equivalent_bandwidth;
+            (
+                *k,
+                MeasuredLine {
+                    order: 0,
+                    frequency_hz: *centre,
+                    power_mw,
+                    uncertainty_mw: integral.uncertainty / equivalent_bandwidth,
+                    above_floor: power_mw > threshold_mw,
+                },
+            )
+        })
+        .collect();
+    if !measured.iter().any(|(_, l)| l.above_floor) {
+        return Err(AnalysisError::NoComb {
+            floor_dbm: floor_db,
+        });
+    }
+
+    let carrier_k = match reference_carrier_hz {
+        Some(reference) => {
+            let k = ((reference - phase) / fm).round() as i64;
+            if !(k_min..=k_max).contains(&k) {
+                return Err(AnalysisError::BadReference(format!(
+                    "its carrier at {} lies outside the lines measured on the modulated trace; \
+                     take both traces with the same span",
+                    Hz(reference)
+                )));
+            }
+            k
+        }
+        None => carrier_by_symmetry(&measured, floor_mw),
+    };
+    let max_order = i64::from(options.max_order);
+    let lines = measured
+        .into_iter()
+        .filter(|(k, _)| (k - carrier_k).abs() <= max_order)
+        .map(|(k, line)| MeasuredLine {
+            order: (k - carrier_k) as i32,
+            ..line
+        })
+        .collect();
+    Ok(MeasuredComb {
+        carrier_frequency_hz: phase + carrier_k as f64 * fm,
+        resolution_bandwidth_hz: rbw,
+        resolution_estimated: estimated,
+        floor_mw,
+        floor_uncertainty_mw: 1.2533 * noise_sigma_db * DB_TO_LN * floor_mw
+            / (floor_samples.max(1) as f64).sqrt(),
+        noise_sigma_db,
+        equivalent_bandwidth_hz: equivalent_bandwidth,
+        window_half_width_hz: half,
+        lines,
+    })
+}
+
+/// Measures the single carrier of an RF-off trace with the same window as the modulated trace.
+pub fn measure_reference(
+    trace: &Trace,
+    resolution_bandwidth_hz: f64,
+    window_half_width_hz: f64,
+    detection_threshold_db: f64,
+) -> Result<ReferenceCarrier, AnalysisError> {
+    let freq = trace.frequency_hz();
+    let power = trace.power_dbm();
+    let peak = argmax(power);
+    let exclusion = 3.0 * resolution_bandwidth_hz;
+    let (floor_db, sigma_db, _) = floor_level(freq, power, |f| (f - freq[peak]).abs() > exclusion);
+    let floor_mw = milliwatts(floor_db);
+    let mut centre = freq[peak];
+    for _ in 0..2 {
+        let range = window(freq, centre, 0.5 * resolution_bandwidth_hz);
+        if let Some(c) = centroid(freq, power, range, floor_mw) {
+            centre = c;
+        }
+    }
+    let line = integrate(
+        freq,
+        power,
+        window(freq, centre, window_half_width_hz),
+        floor_mw,
+        sigma_db * DB_TO_LN,
+    );
+    let threshold = milliwatts(floor_db + detection_threshold_db);
+    if line.peak_mw <= threshold || line.integral <= 0.0 {
+        return Err(AnalysisError::BadReference(format!(
+            "no carrier rises above its noise floor ({floor_db:.1} dBm); take the RF-off trace with the laser on"
+        )));
+    }
+    Ok(ReferenceCarrier {
+        frequency_hz: centre,
+        integral: line.integral,
+        integral_uncertainty: line.uncertainty,
+    })
+}
+
+/// Top of a line in dBm from a least-squares parabola through the levels within `half` of
+/// `centre` (a Gaussian filter shape is exactly a parabola in dB), so that the peak averages the
+/// noise of many points instead of taking the highest one; `None` when the points do not form a
+/// peak.
+fn parabolic_peak(freq: &[f64], power: &[f64], centre: f64, half: f64) -> Option<f64> {
+    let range = window(freq, centre, half);
+    if range.len() < 5 {
+        return None;
+    }
+    // Normal equations of y = a + b x + c x^2 with x scaled to [-1, 1].
+    let mut sums = [0.0f64; 7]; // sum x^0..x^4, then y, x y, x^2 y share slots below
+    let (mut sy, mut sxy, mut sxxy) = (0.0, 0.0, 0.0);
+    for i in range {
+        let x = (freq[i] - centre) / half;
+        let y = power[i];
+        let mut xp = 1.0;
+        for slot in sums.iter_mut().take(5) {
+            *slot += xp;
+            xp *= x;
+        }
+        sy += y;
+        sxy += x * y;
+        sxxy += x * x * y;
+    }
+    let [n, s1, s2, s3, s4, _, _] = sums;
+    let m = [[n, s1, s2], [s1, s2, s3], [s2, s3, s4]];
+    let det3 = |m: [[f64; 3]; 3]| {
+        m[0][0] * (m[1][1] * m[2][2] - m[1][2] * m[2][1])
+            - m[0][1] * (m[1][0] * m[2][2] - m[1][2] * m[2][0])
+            + m[0][2] * (m[1][0] * m[2][1] - m[1][1] * m[2][0])
+    };
+    let det = det3(m);
+    if det.abs() < 1e-12 {
+        return None;
+    }
+    let rhs = [sy, sxy, sxxy];
+    let solve = |col: usize| {
+        let mut mc = m;
+        for (row, value) in rhs.iter().enumerate() {
+            mc[row][col] = *value;
+        }
+        det3(mc) / det
+    };
+    let (a, b, c) = (solve(0), solve(1), solve(2));
+    if c >= 0.0 {
+        return None;
+    }
+    let top = -b / (2.0 * c);
+    (top.abs() <= 1.0).then(|| a - b * b / (4.0 * c))
+}
+
+fn argmax(values: &[f64]) -> usize {
+    let mut best = 0;
+    for (i, v) in values.iter().enumerate() {
+        if *v > values[best] {
+            best = i;
+        }
+    }
+    best
+}
+
+/// Points of `freq` within `half` of `centre`.
+fn window(freq: &[f64], centre: f64, half: f64) -> Range<usize> {
+    let start = freq.partition_point(|f| *f < centre - half);
+    let end = freq.partition_point(|f| *f <= centre + half);
+    start..end.max(start)
+}
+
+/// Width on the axis that point `i` stands for (half the distance between its neighbours).
+#[inline]
+fn point_width(freq: &[f64], i: usize) -> f64 {
+    let lo = freq[i.saturating_sub(1)];
+    let hi = freq[(i + 1).min(freq.len() - 1)];
+    let span = hi - lo;
+    if i == 0 || i + 1 == freq.len() {
+        span
+    } else {
+        0.5 * span
+    }
+}
+
+/// The noise floor: median level (dB) of a sample of the points that `keep` accepts, and the
+/// robust standard deviation (1.4826 times the median absolute deviation, a common-practice
+/// estimator for normal noise) of those levels.
+fn floor_level(freq: &[f64], power: &[f64], keep: impl Fn(f64) -> bool) -> (f64, f64, usize) {
+    let stride = (freq.len() / FLOOR_SAMPLES).max(1);
+    let mut sample: Vec<f64> = freq
+        .iter()
+        .zip(power)
+        .step_by(stride)
+        .filter(|(f, _)| keep(**f))
+        .map(|(_, p)| *p)
+        .collect();
+    if sample.len() < 8 {
+        sample = power.iter().step_by(stride).copied().collect();
+    }
+    let median = median_in_place(&mut sample);
+    for v in sample.iter_mut() {
+        *v = (*v - median).abs();
+    }
+    let spread = 1.4826 * median_in_place(&mut sample);
+    (median, spread.max(1e-3), sample.len())
+}
+
+/// Median level of the whole trace and its point-to-point noise (the median absolute
+/// difference of neighbours over 0.6745 sqrt 2, one standard deviation for normal noise, blind to
+/// smooth features): a first look that needs no line positions, enough to tell a trace with lines
+/// from one with only noise.
+fn rough_floor(power: &[f64]) -> (f64, f64) {
+    let stride = (power.len() / FLOOR_SAMPLES).max(1);
+    let mut sample: Vec<f64> = power.iter().step_by(stride).copied().collect();
+    let median = median_in_place(&mut sample);
+    let mut steps: Vec<f64> = power
+        .windows(2)
+        .step_by(stride)
+        .map(|w| (w[1] - w[0]).abs())
+        .collect();
+    let spread = median_in_place(&mut steps) / (0.6745 * std::f64::consts::SQRT_2);
+    (median, spread)
+}
+
+fn median_in_place(values: &mut [f64]) -> f64 {
+    if values.is_empty() {
+        return 0.0;
+    }
+    let mid = values.len() / 2;
+    let (_, m, _) = values.select_nth_unstable_by(mid, f64::total_cmp);
+    *m
+}
+
+/// Power-weighted centroid of the points in `range` above the floor.
+fn centroid(freq: &[f64], power: &[f64], range: Range<usize>, floor_mw: f64) -> Option<f64> {
+    let (mut num, mut den) = (0.0, 0.0);
+    for i in range {
+        let excess = milliwatts(power[i]) - floor_mw;
+        if excess > 0.0 {
+            let w = excess * point_width(freq, i);
+            num += w * freq[i];
+            den += w;
+        }
+    }
+    (den > 0.0).then(|| num / den)
+}
+
+/// Shift of the comb phase that brings it onto the power centroids of all lines, each weighted
+/// by the square of its power so that the strong lines decide.
+fn centroid_offset(
+    freq: &[f64],
+    power: &[f64],
+    phase: f64,
+    fm: f64,
+    half: f64,
+    floor_mw: f64,
+) -> f64 {
+    let (first, last) = (freq[0], freq[freq.len() - 1]);
+    let k_min = ((first - phase) / fm).ceil() as i64;
+    let k_max = ((last - phase) / fm).floor() as i64;
+    let (mut num, mut den) = (0.0, 0.0);
+    for k in k_min..=k_max {
+        let centre = phase + k as f64 * fm;
+        let (mut moment, mut mass) = (0.0, 0.0);
+        for i in window(freq, centre, half) {
+            let excess = milliwatts(power[i]) - floor_mw;
+            if excess > 0.0 {
+                let w = excess * point_width(freq, i);
+                moment += w * (freq[i] - centre);
+                mass += w;
+            }
+        }
+        if mass > 0.0 {
+            num += mass * moment;
+            den += mass * mass;
+        }
+    }
+    if den > 0.0 {
+        (num / den).clamp(-half, half)
+    } else {
+        0.0
+    }
+}
+
+/// The integral of one line above the floor.
+#[derive(Debug, Clone, Copy)]
+struct LineIntegral {
+    integral: f64,
+    uncertainty: f64,
+    /// Highest three-point average in the window (milliwatts, floor included).
+    peak_mw: f64,
+}
+
+fn integrate(
+    freq: &[f64],
+    power: &[f64],
+    range: Range<usize>,
+    floor_mw: f64,
+    sigma_eps: f64,
+) -> LineIntegral {
+    let (mut integral, mut variance) = (0.0, 0.0);
+    let (mut previous, mut current, mut peak) = (f64::NAN, f64::NAN, 0.0f64);
+    for i in range {
+        let mw = milliwatts(power[i]);
+        let w = point_width(freq, i);
+        integral += (mw - floor_mw) * w;
+        variance += (mw * sigma_eps * w).powi(2);
+        if previous.is_finite() {
+            peak = peak.max((previous + current + mw) / 3.0);
+        }
+        previous = current;
+        current = mw;
+    }
+    LineIntegral {
+        integral,
+        uncertainty: variance.sqrt(),
+        peak_mw: peak,
+    }
+}
+
+/// Full width at half maximum of the line at `peak`, in hertz, from three-point averages of the
+/// levels; `None` when the line does not fall by 3 dB within half a spacing on either side.
+fn estimate_resolution(freq: &[f64], power: &[f64], peak: usize, fm: f64) -> Option<f64> {
+    let smooth = |i: usize| -> f64 {
+        let lo = i.saturating_sub(1);
+        let hi = (i + 1).min(power.len() - 1);
+        let slice = &power[lo..=hi];
+        slice.iter().sum::<f64>() / slice.len() as f64
+    };
+    let top = smooth(peak);
+    let half = top - 10.0 * 2f64.log10();
+    let reach = 0.5 * fm;
+    let crossing = |step: isize| -> Option<f64> {
+        let mut i = peak;
+        let mut before = top;
+        loop {
+            let next = i.checked_add_signed(step).filter(|n| *n < power.len())?;
+            if (freq[next] - freq[peak]).abs() > reach {
+                return None;
+            }
+            let level = smooth(next);
+            if level < half {
+                let t = (before - half) / (before - level);
+                return Some((freq[i] + t * (freq[next] - freq[i]) - freq[peak]).abs());
+            }
+            before = level;
+            i = next;
+        }
+    };
+    match (crossing(-1), crossing(1)) {
+        (Some(a), Some(b)) => Some(a + b),
+        (Some(a), None) | (None, Some(a)) => Some(2.0 * a),
+        (None, None) => None,
+    }
+}
+
+/// The order-0 line: among the lines near the power centroid of the comb, the one about which
+/// the levels are most symmetric (P_n = P_-n).
+fn carrier_by_symmetry(measured: &[(i64, MeasuredLine)], floor_mw: f64) -> i64 {
+    let (mut moment, mut mass) = (0.0, 0.0);
+    for (k, line) in measured {
+        let p = line.power_mw.max(0.0);
+        moment += *k as f64 * p;
+        mass += p;
+    }
+    let Some(first_k) = measured.first().map(|(k, _)| *k) else {
+        return 0;
+    };
+    let centre = if mass > 0.0 {
+        (moment / mass).round() as i64
+    } else {
+        first_k
+    };
+    let level = |k: i64| -> Option<(f64, bool)> {
+        let index = usize::try_from(k - first_k).ok()?;
+        measured.get(index).map(|(_, l)| {
+            (
+                10.0 * (l.power_mw.max(0.0) + floor_mw).log10(),
+                l.above_floor,
+            )
+        })
+    };
+    let mut best = (f64::INFINITY, centre);
+    for candidate in centre - 2..=centre + 2 {
+        if level(candidate).is_none() {
+            continue;
+        }
+        let (mut sum, mut count) = (0.0, 0usize);
+        for n in 1.. {
+            match (level(candidate + n), level(candidate - n)) {
+                (Some((a, above_a)), Some((b, above_b))) => {
+                    if above_a || above_b {
+                        sum += (a - b).powi(2);
+                        count += 1;
+                    }
+                }
+                _ => break,
+            }
+        }
+        let score = if count > 0 {
+            sum / count as f64
+        } else {
+            f64::INFINITY
+        };
+        if score < best.0 {
+            best = (score, candidate);
+        }
+    }
+    best.1
+}

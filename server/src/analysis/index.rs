@@ -1,0 +1,428 @@
+//! The modulation index from measured line powers, three ways.
+//!
+//! - Least squares over all resolved orders (the primary): P_n = A J_n(beta)^2 + F with unknown
+//!   scale A and floor F, weighted by each line's noise. A and F enter linearly, so for each trial
+//!   beta they are solved in closed form (a 2x2 system) and only beta is searched: a scan over a
+//!   grid fine enough to see every local minimum (step 0.02 up to 14), then a golden-section
+//!   refinement of the best few. Scanning the whole range is what keeps the answer unambiguous
+//!   past the carrier null, where ratios of two lines have several solutions.
+//! - First sideband over carrier: P_1 / P_0 = (J_1 / J_0)^2, monotonic below the carrier null.
+//! - Carrier depletion against an RF-off reference: P_0 / P_ref = J_0(beta)^2, solved on the
+//!   monotonic branch that holds the least-squares value.
+//!
+//! Uncertainties: for the fit, from the curvature of the profiled residual scaled by the residual
+//! variance (sigma^2 = 2 s^2 / S''); for the ratio methods, the line-power uncertainties
+//! propagated through the slope of the Bessel ratio.
+
+use super::bessel::{BesselTable, J0_FIRST_ZERO, MAX_ORDER, TABLE_STEP};
+use super::comb::MeasuredLine;
+use serde::Serialize;
+
+/// Largest modulation index the fit considers.
+pub const FIT_BETA_MAX: f64 = 14.0;
+/// Grid step of the global scan, in table rows (2 rows = 0.02).
+const SCAN_ROWS: usize = 2;
+/// Local minima of the scan that are refined.
+const REFINED_MINIMA: usize = 5;
+/// Orders below the floor kept beyond the outermost detected line on each side: they tell the
+/// fit that the comb ends there.
+const ORDERS_PAST_LAST_LINE: i32 = 2;
+
+/// How an estimate was made.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum IndexMethod {
+    LeastSquares,
+    SidebandRatio,
+    CarrierDepletion,
+}
+
+/// One estimate of the modulation index.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct IndexEstimate {
+    pub method: IndexMethod,
+    /// beta.
+    pub value: f64,
+    /// Standard uncertainty of beta.
+    pub uncertainty: f64,
+    /// Root-mean-square difference, in dB, between the measured lines and the comb this beta
+    /// predicts (scale and floor fitted) over the orders the least-squares fit uses.
+    #[serde(rename = "residual_db")]
+    pub residual: f64,
+    /// Orders whose powers entered this estimate.
+    pub orders_used: Vec<i32>,
+}
+
+/// Weighted sums of the lines, grouped by |n| (lines +n and -n share J_n^2).
+#[derive(Debug, Clone, Default)]
+struct Sums {
+    /// Per |n| = 0..: sum of weights.
+    weight: Vec<f64>,
+    /// Per |n|: sum of weight * M.
+    weighted_level: Vec<f64>,
+    /// Sum of weight * M^2 over all lines and the floor observation.
+    weighted_square: f64,
+    /// Weight and weight * level of the floor observation.
+    floor_weight: f64,
+    floor_weighted_level: f64,
+}
+
+impl Sums {
+    fn add(&mut self, magnitude: usize, level: f64, weight: f64) {
+        if self.weight.len() <= magnitude {
+            self.weight.resize(magnitude + 1, 0.0);
+            self.weighted_level.resize(magnitude + 1, 0.0);
+        }
+        self.weight[magnitude] += weight;
+        self.weighted_level[magnitude] += weight * level;
+        self.weighted_square += weight * level * level;
+    }
+
+    /// An observation of the floor alone (its model has no line term).
+    fn add_floor(&mut self, level: f64, weight: f64) {
+        self.floor_weight += weight;
+        self.floor_weighted_level += weight * level;
+        self.weighted_square += weight * level * level;
+    }
+
+    /// Weighted residual sum minimised over scale A >= 0 and floor F >= 0, for line shapes
+    /// `j(m)` = J_m(beta); returns (S, A, F).
+    fn profile(&self, j: impl Fn(usize) -> f64) -> (f64, f64, f64) {
+        let (mut s1, mut sg, mut sgg, mut sm, mut sgm) =
+            (self.floor_weight, 0.0, 0.0, self.floor_weighted_level, 0.0);
+        for (m, (w, wm)) in self.weight.iter().zip(&self.weighted_level).enumerate() {
+            let v = j(m);
+            let g = v * v;
+            s1 += w;
+            sg += w * g;
+            sgg += w * g * g;
+            sm += wm;
+            sgm += wm * g;
+        }
+        let smm = self.weighted_square;
+        let det = sgg * s1 - sg * sg;
+        if det > 1e-12 * sgg * s1 {
+            let a = (sgm * s1 - sg * sm) / det;
+            let f = (sgg * sm - sg * sgm) / det;
+            if a >= 0.0 && f >= 0.0 {
+                return (smm - a * sgm - f * sm, a, f);
+            }
+        }
+        // A constraint is active: floor zero, or scale zero (the fit explains nothing).
+        let with_scale = if sgg > 0.0 {
+            let a = (sgm / sgg).max(0.0);
+            (smm - a * sgm, a, 0.0)
+        } else {
+            (f64::INFINITY, 0.0, 0.0)
+        };
+        let f = if s1 > 0.0 { (sm / s1).max(0.0) } else { 0.0 };
+        let floor_only = (smm - f * sm, 0.0, f);
+        if with_scale.0 <= floor_only.0 {
+            with_scale
+        } else {
+            floor_only
+        }
+    }
+}
+
+/// The lines prepared for fitting: total level M_n = line power + floor, and weight 1 / sigma_n^2.
+///
+/// A line lost in the floor at a Bessel zero pins beta to within a thousandth (the model must
+/// put almost nothing there), so the full residual has valleys far narrower than any affordable
+/// scan grid. The scan therefore runs on the detected lines only, whose residual varies smoothly,
+/// and every candidate it finds is refined on all lines.
+#[derive(Debug, Clone)]
+pub struct FitData {
+    /// (order, M_n in milliwatts, weight).
+    points: Vec<(i32, f64, f64)>,
+    /// Lines plus the floor observation.
+    observations: usize,
+    all: Sums,
+    detected: Sums,
+}
+
+impl FitData {
+    /// Selects the orders out to two past the outermost line above the floor and weights them.
+    ///
+    /// The floor measured between the lines enters as one more observation (a line with
+    /// J^2 = 0) with standard uncertainty `floor_sigma_mw`: the floor stays a fitted unknown, but
+    /// lines lost at a Bessel zero can no longer trade it against beta.
+    pub fn new(lines: &[MeasuredLine], floor_mw: f64, floor_sigma_mw: f64) -> FitData {
+        let reach = lines
+            .iter()
+            .filter(|l| l.above_floor)
+            .map(|l| l.order.abs())
+            .max()
+            .unwrap_or(0)
+            + ORDERS_PAST_LAST_LINE;
+        let reach = reach.min(MAX_ORDER as i32);
+        let mut points = Vec::with_capacity(2 * reach as usize + 1);
+        let mut all = Sums::default();
+        let mut detected = Sums::default();
+        for line in lines.iter().filter(|l| l.order.abs() <= reach) {
+            let level = (line.power_mw + floor_mw).max(0.01 * floor_mw);
+            let sigma = line.uncertainty_mw.max(1e-6 * level);
+            let weight = 1.0 / (sigma * sigma);
+            let m = line.order.unsigned_abs() as usize;
+            all.add(m, level, weight);
+            if line.above_floor {
+                detected.add(m, level, weight);
+            }
+            points.push((line.order, level, weight));
+        }
+        let mut observations = points.len();
+        if floor_sigma_mw > 0.0 && floor_mw > 0.0 {
+            observations += 1;
+            let weight = 1.0 / (floor_sigma_mw * floor_sigma_mw);
+            all.add_floor(floor_mw, weight);
+            detected.add_floor(floor_mw, weight);
+        }
+        FitData {
+            points,
+            observations,
+            all,
+            detected,
+        }
+    }
+
+    /// Orders in the fit.
+    pub fn orders(&self) -> Vec<i32> {
+        self.points.iter().map(|p| p.0).collect()
+    }
+
+    /// Number of lines in the fit.
+    pub fn len(&self) -> usize {
+        self.points.len()
+    }
+
+    /// True when no line is in the fit.
+    pub fn is_empty(&self) -> bool {
+        self.points.is_empty()
+    }
+
+    fn profile_at(&self, table: &BesselTable, beta: f64) -> (f64, f64, f64) {
+        self.all
+            .profile(|m| table.value_and_slope(m as i32, beta).0)
+    }
+
+    /// Root-mean-square dB difference between the lines and the comb of `beta` (A, F fitted).
+    pub fn residual_db(&self, beta: f64) -> f64 {
+        let table = BesselTable::get();
+        let (_, a, f) = self.profile_at(table, beta);
+        let mut sum = 0.0;
+        for (order, level, _) in &self.points {
+            let model = (a * table.power(*order, beta) + f).max(1e-300);
+            sum += (10.0 * (level / model).log10()).powi(2);
+        }
+        (sum / self.points.len().max(1) as f64).sqrt()
+    }
+}
+
+/// The least-squares estimate; `None` with fewer than four lines (three parameters).
+pub fn least_squares(data: &FitData) -> Option<IndexEstimate> {
+    if data.len() < 4 {
+        return None;
+    }
+    let table = BesselTable::get();
+    let last_row = ((FIT_BETA_MAX / TABLE_STEP) as usize).min(table.rows().saturating_sub(1));
+    let mut scan: Vec<(usize, f64)> = Vec::with_capacity(last_row / SCAN_ROWS + 1);
+    let mut row = SCAN_ROWS / 2;
+    while row <= last_row {
+        let values = table.row(row);
+        let (s, _, _) = data
+            .detected
+            .profile(|m| values.get(m).copied().unwrap_or(0.0));
+        scan.push((row, s));
+        row += SCAN_ROWS;
+    }
+    // Local minima of the scan (ends included), best first.
+    let mut minima: Vec<(usize, f64)> = (0..scan.len())
+        .filter(|&i| {
+            let s = scan[i].1;
+            let left = i.checked_sub(1).is_none_or(|l| scan[l].1 >= s);
+            let right = scan.get(i + 1).is_none_or(|r| r.1 > s);
+            left && right
+        })
+        .map(|i| scan[i])
+        .collect();
+    minima.sort_by(|a, b| a.1.total_cmp(&b.1));
+    let step = SCAN_ROWS as f64 * TABLE_STEP;
+    let (beta, s_min) = minima
+        .iter()
+        .take(REFINED_MINIMA)
+        .map(|(row, _)| {
+            let centre = *row as f64 * TABLE_STEP;
+            golden_section(
+                |b| data.profile_at(table, b).0,
+                (centre - 1.5 * step).max(1e-4),
+                centre + 1.5 * step,
+            )
+        })
+        .min_by(|a, b| a.1.total_cmp(&b.1))?;
+    let h = 1e-4 * beta.max(1.0);
+    let curvature = (data.profile_at(table, beta + h).0 - 2.0 * s_min
+        + data.profile_at(table, (beta - h).max(0.0)).0)
+        / (h * h);
+    let dof = data.observations.saturating_sub(3).max(1) as f64;
+    let variance = s_min.max(0.0) / dof;
+    let uncertainty = if curvature > 0.0 {
+        (2.0 * variance / curvature).sqrt()
+    } else {
+        f64::INFINITY
+    };
+    uncertainty.is_finite().then(|| IndexEstimate {
+        method: IndexMethod::LeastSquares,
+        value: beta,
+        uncertainty,
+        residual: data.residual_db(beta),
+        orders_used: data.orders(),
+    })
+}
+
+/// Golden-section search for the minimum of `f` on [lo, hi]; returns (x, f(x)).
+fn golden_section(f: impl Fn(f64) -> f64, mut lo: f64, mut hi: f64) -> (f64, f64) {
+    let ratio = (5f64.sqrt() - 1.0) / 2.0;
+    let mut x1 = hi - ratio * (hi - lo);
+    let mut x2 = lo + ratio * (hi - lo);
+    let (mut f1, mut f2) = (f(x1), f(x2));
+    while hi - lo > 1e-7 {
+        if f1 <= f2 {
+            hi = x2;
+            x2 = x1;
+            f2 = f1;
+            x1 = hi - ratio * (hi - lo);
+            f1 = f(x1);
+        } else {
+            lo = x1;
+            x1 = x2;
+            f1 = f2;
+            x2 = lo + ratio * (hi - lo);
+            f2 = f(x2);
+        }
+    }
+    if f1 <= f2 {
+        (x1, f1)
+    } else {
+        (x2, f2)
+    }
+}
+
+/// Solves `g(beta) = target` on [lo, hi] where g is monotonic, by bisection.
+fn solve_monotonic(g: impl Fn(f64) -> f64, target: f64, mut lo: f64, mut hi: f64) -> Option<f64> {
+    let (g_lo, g_hi) = (g(lo), g(hi));
+    let brackets = (g_lo - target) * (g_hi - target) <= 0.0;
+    if !brackets {
+        return None;
+    }
+    let rising = g_hi > g_lo;
+    for _ in 0..80 {
+        let mid = 0.5 * (lo + hi);
+        if (g(mid) < target) == rising {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+    }
+    Some(0.5 * (lo + hi))
+}
+
+fn line(lines: &[MeasuredLine], order: i32) -> Option<&MeasuredLine> {
+    lines.iter().find(|l| l.order == order)
+}
+
+/// beta from the first sidebands over the carrier; applies below the carrier null when the
+/// carrier and at least one first sideband are above the floor.
+pub fn sideband_ratio(
+    lines: &[MeasuredLine],
+    data: &FitData,
+    primary: f64,
+) -> Option<IndexEstimate> {
+    if primary >= J0_FIRST_ZERO {
+        return None;
+    }
+    let carrier = line(lines, 0).filter(|l| l.above_floor)?;
+    let sidebands: Vec<&MeasuredLine> = [-1, 1]
+        .iter()
+        .filter_map(|n| line(lines, *n))
+        .filter(|l| l.above_floor)
+        .collect();
+    if sidebands.is_empty() {
+        return None;
+    }
+    let count = sidebands.len() as f64;
+    let mean = sidebands.iter().map(|l| l.power_mw).sum::<f64>() / count;
+    let mean_sigma = sidebands
+        .iter()
+        .map(|l| l.uncertainty_mw.powi(2))
+        .sum::<f64>()
+        .sqrt()
+        / count;
+    let ratio = mean / carrier.power_mw;
+    let ratio_sigma = ratio
+        * ((mean_sigma / mean).powi(2) + (carrier.uncertainty_mw / carrier.power_mw).powi(2))
+            .sqrt();
+    let table = BesselTable::get();
+    let bessel_ratio = |b: f64| table.power(1, b) / table.power(0, b).max(1e-300);
+    let beta = solve_monotonic(bessel_ratio, ratio, 1e-6, J0_FIRST_ZERO - 1e-6)?;
+    let h = 1e-4 * beta.max(1e-2);
+    let slope = (bessel_ratio(beta + h) - bessel_ratio((beta - h).max(0.0))) / (2.0 * h);
+    let mut orders_used: Vec<i32> = sidebands.iter().map(|l| l.order).collect();
+    orders_used.push(0);
+    orders_used.sort_unstable();
+    let uncertainty = ratio_sigma / slope.abs();
+    uncertainty.is_finite().then(|| IndexEstimate {
+        method: IndexMethod::SidebandRatio,
+        value: beta,
+        uncertainty,
+        residual: data.residual_db(beta),
+        orders_used,
+    })
+}
+
+/// beta from the carrier's depletion against the unmodulated carrier power (same units as the
+/// line powers), on the monotonic branch of J_0^2 that holds `primary`.
+pub fn carrier_depletion(
+    lines: &[MeasuredLine],
+    data: &FitData,
+    unmodulated_mw: f64,
+    unmodulated_sigma_mw: f64,
+    primary: f64,
+) -> Option<IndexEstimate> {
+    let carrier = line(lines, 0)?;
+    if unmodulated_mw.is_nan() || unmodulated_mw <= 0.0 {
+        return None;
+    }
+    let ratio = carrier.power_mw.max(0.0) / unmodulated_mw;
+    let ratio_sigma = (carrier.uncertainty_mw.powi(2) + (ratio * unmodulated_sigma_mw).powi(2))
+        .sqrt()
+        / unmodulated_mw;
+    let table = BesselTable::get();
+    // The branch: walk out from the primary value until the slope of J_0^2 changes sign.
+    let slope_sign = |b: f64| {
+        let (v, s) = table.value_and_slope(0, b);
+        (v * s).signum()
+    };
+    let sign = slope_sign(primary);
+    let step = 0.5 * TABLE_STEP;
+    let mut lo = primary;
+    while lo > step && slope_sign(lo - step) == sign {
+        lo -= step;
+    }
+    let mut hi = primary;
+    while hi < FIT_BETA_MAX && slope_sign(hi + step) == sign {
+        hi += step;
+    }
+    let lo = if lo <= step { 0.0 } else { lo };
+    let carrier_share = |b: f64| table.power(0, b);
+    let beta = solve_monotonic(carrier_share, ratio.min(1.0), lo, hi)?;
+    let h = 1e-4 * beta.max(1e-2);
+    let slope = (carrier_share(beta + h) - carrier_share((beta - h).max(0.0))) / (2.0 * h);
+    let uncertainty = ratio_sigma / slope.abs();
+    uncertainty.is_finite().then(|| IndexEstimate {
+        method: IndexMethod::CarrierDepletion,
+        value: beta,
+        uncertainty,
+        residual: data.residual_db(beta),
+        orders_used: vec![0],
+    })
+}

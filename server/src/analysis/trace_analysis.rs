@@ -1,0 +1,449 @@
+//! One trace in, one modulation index out: the comb, its lines, every estimate and the asymmetry.
+//!
+//! This is the function the engine calls for every spectrum and the offline command calls for a
+//! user's file. It ties the steps together and decides nothing of its own beyond which estimates
+//! apply: the comb and its lines ([`super::comb`]), the estimates ([`super::index`]), the
+//! reference carrier when an RF-off trace is given.
+
+use super::comb::{self, MeasuredComb};
+use super::index::{self, FitData, IndexEstimate};
+use super::AnalysisError;
+use halfwave_units::{Dbm, Hz, Trace};
+use serde::Serialize;
+
+/// Settings of the trace analysis.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct AnalysisOptions {
+    /// Resolution bandwidth to assume; when `None`, the trace's own, else estimated from the
+    /// measured line shape.
+    pub resolution_bandwidth: Option<Hz>,
+    /// Highest order measured on each side.
+    pub max_order: u32,
+    /// A line is "above the floor" when its power exceeds the floor by this much (dB).
+    pub detection_threshold_db: f64,
+}
+
+impl Default for AnalysisOptions {
+    fn default() -> Self {
+        AnalysisOptions {
+            resolution_bandwidth: None,
+            max_order: 20,
+            // Common practice: a line 3 dB over the floor is as strong as the noise itself.
+            detection_threshold_db: 3.0,
+        }
+    }
+}
+
+/// One row of the line table.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LineMeasurement {
+    pub order: i32,
+    pub frequency_hz: Hz,
+    /// Line power, integrated over the line shape (floor removed); `None` when nothing is left
+    /// above the floor.
+    pub power_dbm: Option<Dbm>,
+    /// Standard uncertainty of the line power, dB (`None` with the power).
+    pub power_uncertainty_db: Option<f64>,
+    pub above_floor: bool,
+}
+
+/// Level difference between order +n and order -n.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct OrderAsymmetry {
+    pub order: u32,
+    /// 10 log10(P_+n / P_-n); `None` when either line is below the floor.
+    pub asymmetry_db: Option<f64>,
+}
+
+/// Everything measured on one trace.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct TraceAnalysis {
+    pub modulation_frequency_hz: Hz,
+    pub carrier_frequency_hz: Hz,
+    pub resolution_bandwidth_hz: Hz,
+    /// True when the resolution bandwidth was estimated from the line shape.
+    pub resolution_bandwidth_estimated: bool,
+    pub noise_floor_dbm: Dbm,
+    /// Point-to-point noise of the trace, dB (robust standard deviation on the floor).
+    pub noise_sigma_db: f64,
+    /// Power of the unmodulated carrier, from the RF-off reference trace when one was given.
+    pub unmodulated_power_dbm: Option<Dbm>,
+    /// The primary estimate (least squares over all resolved orders).
+    pub modulation_index: IndexEstimate,
+    /// Every estimate that applied, the primary first, for cross-checks.
+    pub estimates: Vec<IndexEstimate>,
+    pub lines: Vec<LineMeasurement>,
+    pub asymmetry: Vec<OrderAsymmetry>,
+}
+
+/// Analyses one trace of a comb with line spacing `modulation_frequency`, optionally with an
+/// RF-off `reference` trace (carrier position and unmodulated power).
+pub fn analyze_trace(
+    trace: &Trace,
+    modulation_frequency: Hz,
+    reference: Option<&Trace>,
+    options: &AnalysisOptions,
+) -> Result<TraceAnalysis, AnalysisError> {
+    let mut options = *options;
+    let mut estimated_in_first_pass = None;
+    let reference_carrier = match reference {
+        Some(reference) => {
+            let rbw = options
+                .resolution_bandwidth
+                .or(trace.resolution_bandwidth())
+                .or(reference.resolution_bandwidth());
+            // A first pass fixes the resolution and window; the reference is then read with them.
+            let first = comb::measure_comb(
+                trace,
+                modulation_frequency,
+                None,
+                &AnalysisOptions {
+                    resolution_bandwidth: rbw,
+                    ..options
+                },
+            )?;
+            options.resolution_bandwidth = Some(Hz(first.resolution_bandwidth_hz));
+            estimated_in_first_pass = Some(first.resolution_estimated);
+            Some(comb::measure_reference(
+                reference,
+                first.resolution_bandwidth_hz,
+                first.window_half_width_hz,
+                options.detection_threshold_db,
+            )?)
+        }
+        None => None,
+    };
+    let mut measured = comb::measure_comb(
+        trace,
+        modulation_frequency,
+        reference_carrier.map(|r| r.frequency_hz),
+        &options,
+    )?;
+    if let Some(estimated) = estimated_in_first_pass {
+        measured.resolution_estimated = estimated;
+    }
+
+    let data = FitData::new(
+        &measured.lines,
+        measured.floor_mw,
+        measured.floor_uncertainty_mw,
+    );
+    let primary = index::least_squares(&data).ok_or(AnalysisError::TooFewLines {
+        found: measured.lines.iter().filter(|l| l.above_floor).count(),
+        needed: 4,
+    })?;
+    let mut estimates = vec![primary.clone()];
+    estimates.extend(index::sideband_ratio(&measured.lines, &data, primary.value));
+    let unmodulated = reference_carrier.map(|r| {
+        (
+            r.integral / measured.equivalent_bandwidth_hz,
+            r.integral_uncertainty / measured.equivalent_bandwidth_hz,
+        )
+    });
+    if let Some((power, sigma)) = unmodulated {
+        estimates.extend(index::carrier_depletion(
+            &measured.lines,
+            &data,
+            power,
+            sigma,
+            primary.value,
+        ));
+    }
+    Ok(TraceAnalysis {
+        modulation_frequency_hz: modulation_frequency,
+        carrier_frequency_hz: Hz(measured.carrier_frequency_hz),
+        resolution_bandwidth_hz: Hz(measured.resolution_bandwidth_hz),
+        resolution_bandwidth_estimated: measured.resolution_estimated,
+        noise_floor_dbm: Dbm(10.0 * measured.floor_mw.log10()),
+        noise_sigma_db: measured.noise_sigma_db,
+        unmodulated_power_dbm: unmodulated.and_then(|(p, _)| Dbm::from_milliwatts(p)),
+        modulation_index: primary,
+        estimates,
+        lines: line_table(&measured),
+        asymmetry: asymmetry(&measured),
+    })
+}
+
+fn line_table(measured: &MeasuredComb) -> Vec<LineMeasurement> {
+    measured
+        .lines
+        .iter()
+        .map(|l| {
+            let power = Dbm::from_milliwatts(l.power_mw);
+            LineMeasurement {
+                order: l.order,
+                frequency_hz: Hz(l.frequency_hz),
+                power_dbm: power,
+                power_uncertainty_db: power
+                    .map(|_| 10.0 * (1.0 + l.uncertainty_mw / l.power_mw).log10()),
+                above_floor: l.above_floor,
+            }
+        })
+        .collect()
+}
+
+fn asymmetry(measured: &MeasuredComb) -> Vec<OrderAsymmetry> {
+    let find = |order: i32| measured.lines.iter().find(|l| l.order == order);
+    (1..)
+        .map_while(|n: u32| {
+            let plus = find(n as i32)?;
+            let minus = find(-(n as i32))?;
+            Some(OrderAsymmetry {
+                order: n,
+                asymmetry_db: (plus.above_floor && minus.above_floor)
+                    .then(|| 10.0 * (plus.power_mw / minus.power_mw).log10()),
+            })
+        })
+        .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::analysis::bessel::{J0_FIRST_ZERO, J1_FIRST_ZERO};
+    use crate::analysis::synthetic::SyntheticComb;
+    use crate::analysis::IndexMethod;
+    use rand::{rngs::StdRng, SeedableRng};
+    use rand_distr::{Distribution, Normal};
+
+    const CENTRE: Hz = Hz(193.1e12);
+    const SPACING: Hz = Hz(1.0e9);
+    /// Point-to-point noise of the synthetic traces, dB ("a few tenths of a dB").
+    const NOISE_DB: f64 = 0.3;
+
+    fn comb(beta: f64, drift_spacings: f64) -> SyntheticComb {
+        SyntheticComb::centred(
+            CENTRE,
+            SPACING * drift_spacings,
+            SPACING,
+            beta,
+            (beta + 5.0 + drift_spacings.abs()).ceil(),
+        )
+    }
+
+    fn draw(comb: &SyntheticComb, seed: u64) -> Trace {
+        let mut rng = StdRng::seed_from_u64(seed);
+        let normal = Normal::new(0.0, NOISE_DB).unwrap();
+        comb.trace(&mut || normal.sample(&mut rng)).unwrap()
+    }
+
+    fn relative_error(estimate: f64, truth: f64) -> f64 {
+        (estimate - truth).abs() / truth
+    }
+
+    #[test]
+    fn recovers_the_modulation_index_within_one_percent() {
+        // Synthetic traces from the Jacobi-Anger line powers (DLMF 10.12, computed with the
+        // puruspe library routine), 0.3 dB noise, RBW a tenth of the spacing, carrier drifted by
+        // up to half a spacing. Landmarks: J_0 = J_1 near 1.4347, J_1 largest at 1.8412, the
+        // carrier null at 2.4048, first zero of J_1 at 3.8317 (DLMF 10.21, from memory).
+        let cases = [
+            (0.1, 0.5),
+            (0.3, -0.37),
+            (0.7, 0.21),
+            (1.0, -0.5),
+            (1.4347, 0.44),
+            (1.8412, -0.13),
+            (2.3, 0.5),
+            (J0_FIRST_ZERO, -0.29),
+            (2.5, 0.33),
+            (2.7, -0.45),
+            (J1_FIRST_ZERO, 0.08),
+            (5.0, -0.41),
+            (6.5, 0.27),
+            (8.0, 0.5),
+        ];
+        for (seed, (beta, drift)) in cases.into_iter().enumerate() {
+            let synthetic = comb(beta, drift);
+            let trace = draw(&synthetic, 100 + seed as u64);
+            let result = analyze_trace(&trace, SPACING, None, &AnalysisOptions::default()).unwrap();
+            let fit = &result.modulation_index;
+            assert_eq!(fit.method, IndexMethod::LeastSquares);
+            assert!(
+                relative_error(fit.value, beta) < 0.01,
+                "beta {beta}: fitted {} +- {}",
+                fit.value,
+                fit.uncertainty
+            );
+            // The stated uncertainty is honest: the error is within four standard uncertainties.
+            assert!(
+                (fit.value - beta).abs() < 4.0 * fit.uncertainty + 1e-4,
+                "beta {beta}: error {} vs uncertainty {}",
+                fit.value - beta,
+                fit.uncertainty
+            );
+            let carrier_error = result.carrier_frequency_hz.0 - synthetic.carrier.0;
+            assert!(
+                carrier_error.abs() < 0.02 * SPACING.0,
+                "beta {beta}: carrier off by {carrier_error} Hz"
+            );
+        }
+    }
+
+    #[test]
+    fn finds_a_comb_drifted_by_several_spacings() {
+        // Past the carrier null (beta 2.5) the carrier is the weakest of the inner lines; the
+        // comb is found by its spacing and symmetry wherever it sits in the span.
+        for (seed, drift) in [3.4, -2.6, 6.5].into_iter().enumerate() {
+            let mut synthetic = comb(2.5, 0.0);
+            synthetic.carrier = Hz(CENTRE.0 + drift * SPACING.0);
+            synthetic.start = Hz(CENTRE.0 - 16.0 * SPACING.0);
+            synthetic.stop = Hz(CENTRE.0 + 16.0 * SPACING.0);
+            let trace = draw(&synthetic, 200 + seed as u64);
+            let result = analyze_trace(&trace, SPACING, None, &AnalysisOptions::default()).unwrap();
+            assert!((result.carrier_frequency_hz.0 - synthetic.carrier.0).abs() < 0.02 * SPACING.0);
+            assert!(relative_error(result.modulation_index.value, 2.5) < 0.01);
+        }
+    }
+
+    #[test]
+    fn the_methods_agree_and_the_reference_gives_the_unmodulated_power() {
+        // Below the null the sideband ratio (Shi, Yan, Willner, J. Lightwave Technol. 21(10),
+        // 2003), carrier depletion against the RF-off trace and the least-squares fit must agree.
+        for (seed, beta) in [0.4, 1.0, 1.9].into_iter().enumerate() {
+            let modulated = comb(beta, 0.3);
+            let trace = draw(&modulated, 300 + seed as u64);
+            let mut off = modulated.clone();
+            off.modulation_index = 0.0;
+            let reference = draw(&off, 400 + seed as u64);
+            let result = analyze_trace(
+                &trace,
+                SPACING,
+                Some(&reference),
+                &AnalysisOptions::default(),
+            )
+            .unwrap();
+            let methods: Vec<IndexMethod> = result.estimates.iter().map(|e| e.method).collect();
+            assert_eq!(
+                methods,
+                [
+                    IndexMethod::LeastSquares,
+                    IndexMethod::SidebandRatio,
+                    IndexMethod::CarrierDepletion
+                ]
+            );
+            for estimate in &result.estimates {
+                // Depletion is weak at small beta (J_0^2 is flat at 0): it is held to 1 % or three
+                // of its own stated uncertainties; the ratio and the fit to 2 %.
+                let tolerance = match estimate.method {
+                    IndexMethod::CarrierDepletion => (3.0 * estimate.uncertainty).max(0.01 * beta),
+                    _ => 0.02 * beta,
+                };
+                assert!(
+                    (estimate.value - beta).abs() < tolerance,
+                    "beta {beta}: {:?} gave {} +- {}",
+                    estimate.method,
+                    estimate.value,
+                    estimate.uncertainty
+                );
+            }
+            let unmodulated = result.unmodulated_power_dbm.unwrap();
+            assert!(
+                (unmodulated.0 - modulated.total_power.0).abs() < 0.2,
+                "{unmodulated}"
+            );
+        }
+    }
+
+    #[test]
+    fn lines_at_bessel_zeros_are_marked_below_the_floor() {
+        // At the carrier null J_0 = 0 and at 3.8317 J_1 = 0 (DLMF 10.21): those lines vanish
+        // into the floor, are marked so, and the fit still recovers beta from the other orders.
+        for (beta, vanished) in [(J0_FIRST_ZERO, vec![0]), (J1_FIRST_ZERO, vec![-1, 1])] {
+            let trace = draw(&comb(beta, 0.2), 500);
+            let result = analyze_trace(&trace, SPACING, None, &AnalysisOptions::default()).unwrap();
+            for line in &result.lines {
+                let expected_above = !vanished.contains(&line.order)
+                    && comb(beta, 0.2).line_power(line.order).0 > -60.0;
+                if vanished.contains(&line.order) || expected_above {
+                    assert_eq!(
+                        line.above_floor, expected_above,
+                        "beta {beta} order {}",
+                        line.order
+                    );
+                }
+            }
+            assert!(relative_error(result.modulation_index.value, beta) < 0.01);
+        }
+    }
+
+    #[test]
+    fn reports_the_asymmetry_between_plus_and_minus_orders() {
+        // A tilt of 0.5 dB per order makes P_+n / P_-n = 10^(2 n 0.5 / 10): 1 dB at n = 1.
+        let mut synthetic = comb(1.5, 0.1);
+        synthetic.tilt_db_per_order = 0.5;
+        let result = analyze_trace(
+            &draw(&synthetic, 600),
+            SPACING,
+            None,
+            &AnalysisOptions::default(),
+        )
+        .unwrap();
+        let first = result.asymmetry.iter().find(|a| a.order == 1).unwrap();
+        assert!(
+            (first.asymmetry_db.unwrap() - 1.0).abs() < 0.15,
+            "{first:?}"
+        );
+        let second = result.asymmetry.iter().find(|a| a.order == 2).unwrap();
+        assert!(
+            (second.asymmetry_db.unwrap() - 2.0).abs() < 0.15,
+            "{second:?}"
+        );
+    }
+
+    #[test]
+    fn estimates_the_resolution_bandwidth_from_the_line_shape() {
+        let synthetic = comb(1.2, -0.2);
+        let trace = draw(&synthetic, 700);
+        let estimated = analyze_trace(&trace, SPACING, None, &AnalysisOptions::default()).unwrap();
+        assert!(estimated.resolution_bandwidth_estimated);
+        let truth = synthetic.resolution_bandwidth.0;
+        assert!((estimated.resolution_bandwidth_hz.0 - truth).abs() < 0.1 * truth);
+        let given = AnalysisOptions {
+            resolution_bandwidth: Some(Hz(truth)),
+            ..AnalysisOptions::default()
+        };
+        let result = analyze_trace(&trace, SPACING, None, &given).unwrap();
+        assert!(!result.resolution_bandwidth_estimated);
+        assert_eq!(result.resolution_bandwidth_hz, Hz(truth));
+        assert!(relative_error(result.modulation_index.value, 1.2) < 0.01);
+    }
+
+    #[test]
+    fn refuses_traces_that_cannot_show_the_comb() {
+        let trace = draw(&comb(1.0, 0.0), 800);
+        let options = AnalysisOptions::default();
+        let too_wide = Hz(20e9);
+        assert!(matches!(
+            analyze_trace(&trace, too_wide, None, &options),
+            Err(AnalysisError::SpanTooNarrow { .. })
+        ));
+        assert!(matches!(
+            analyze_trace(&trace, Hz(-1.0), None, &options),
+            Err(AnalysisError::BadModulationFrequency(_))
+        ));
+        let coarse_resolution = AnalysisOptions {
+            resolution_bandwidth: Some(Hz(0.5e9)),
+            ..options
+        };
+        assert!(matches!(
+            analyze_trace(&trace, SPACING, None, &coarse_resolution),
+            Err(AnalysisError::SpacingBelowResolution { .. })
+        ));
+        // Merged lines: the analyzer resolution is as wide as the spacing.
+        let mut merged = comb(1.0, 0.0);
+        merged.resolution_bandwidth = SPACING;
+        assert!(matches!(
+            analyze_trace(&draw(&merged, 801), SPACING, None, &options),
+            Err(AnalysisError::LinesNotResolved { .. }
+                | AnalysisError::SpacingBelowResolution { .. })
+        ));
+        // Only noise: no comb.
+        let mut dark = comb(1.0, 0.0);
+        dark.total_power = Dbm(-120.0);
+        assert!(matches!(
+            analyze_trace(&draw(&dark, 802), SPACING, None, &options),
+            Err(AnalysisError::NoComb { .. })
+        ));
+    }
+}
