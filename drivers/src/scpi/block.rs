@@ -178,7 +178,15 @@ pub fn split_block(reply: &[u8]) -> Result<(&[u8], &[u8]), ParseError> {
     }
 }
 
+/// Magnitude from which a decoded value may be one of the SCPI special values (9.9E37, 9.91E37);
+/// only traces holding such a value take the second, mapping pass.
+const SPECIAL_THRESHOLD: f64 = 9.8e37;
+
 /// Decodes 32-bit floats into `out` (appended), mapping the SCPI special values.
+///
+/// The hot loop converts without branches and only notes whether any value is large enough to be
+/// a special value; the mapping runs as a second pass when one is. This keeps the loop
+/// vectorisable (see `drivers/benches/scpi.rs`).
 pub fn decode_real32_into(
     payload: &[u8],
     order: ByteOrder,
@@ -190,15 +198,30 @@ pub fn decode_real32_into(
             payload.len()
         )));
     }
-    out.reserve(payload.len() / 4);
-    let chunks = payload.chunks_exact(4);
+    let start = out.len();
+    out.resize(start + payload.len() / 4, 0.0);
+    let decoded = out.get_mut(start..).unwrap_or_default();
+    let word = |c: &[u8]| <[u8; 4]>::try_from(c).unwrap_or_default();
+    let mut any_large = false;
+    let pairs = decoded.iter_mut().zip(payload.chunks_exact(4));
     match order {
         ByteOrder::Normal => {
-            out.extend(chunks.map(|c| special32(f32::from_be_bytes([c[0], c[1], c[2], c[3]]))))
+            for (value, bytes) in pairs {
+                let v = f64::from(f32::from_be_bytes(word(bytes)));
+                any_large |= v.abs() >= SPECIAL_THRESHOLD;
+                *value = v;
+            }
         }
         ByteOrder::Swapped => {
-            out.extend(chunks.map(|c| special32(f32::from_le_bytes([c[0], c[1], c[2], c[3]]))))
+            for (value, bytes) in pairs {
+                let v = f64::from(f32::from_le_bytes(word(bytes)));
+                any_large |= v.abs() >= SPECIAL_THRESHOLD;
+                *value = v;
+            }
         }
+    }
+    if any_large {
+        decoded.iter_mut().for_each(|v| *v = special32(*v));
     }
     Ok(())
 }
@@ -215,33 +238,51 @@ pub fn decode_real64_into(
             payload.len()
         )));
     }
-    out.reserve(payload.len() / 8);
-    let chunks = payload.chunks_exact(8);
-    let word = |c: &[u8]| [c[0], c[1], c[2], c[3], c[4], c[5], c[6], c[7]];
+    let start = out.len();
+    out.resize(start + payload.len() / 8, 0.0);
+    let decoded = out.get_mut(start..).unwrap_or_default();
+    let word = |c: &[u8]| <[u8; 8]>::try_from(c).unwrap_or_default();
+    let mut any_large = false;
+    let pairs = decoded.iter_mut().zip(payload.chunks_exact(8));
     match order {
-        ByteOrder::Normal => out.extend(
-            chunks.map(|c| super::response::map_special_value(f64::from_be_bytes(word(c)))),
-        ),
-        ByteOrder::Swapped => out.extend(
-            chunks.map(|c| super::response::map_special_value(f64::from_le_bytes(word(c)))),
-        ),
+        ByteOrder::Normal => {
+            for (value, bytes) in pairs {
+                let v = f64::from_be_bytes(word(bytes));
+                any_large |= v.abs() >= SPECIAL_THRESHOLD;
+                *value = v;
+            }
+        }
+        ByteOrder::Swapped => {
+            for (value, bytes) in pairs {
+                let v = f64::from_le_bytes(word(bytes));
+                any_large |= v.abs() >= SPECIAL_THRESHOLD;
+                *value = v;
+            }
+        }
+    }
+    if any_large {
+        decoded
+            .iter_mut()
+            .for_each(|v| *v = super::response::map_special_value(*v));
     }
     Ok(())
 }
 
-/// Maps the SCPI special values as a 32-bit float carries them (nearest f32 to 9.9E37 etc.).
+/// Maps the SCPI special values as a 32-bit float carries them (the nearest f32 to 9.9E37 and
+/// 9.91E37, widened to f64).
 #[inline]
-fn special32(value: f32) -> f64 {
+fn special32(value: f64) -> f64 {
     const INF32: f32 = 9.9e37;
     const NAN32: f32 = 9.91e37;
-    if value == INF32 {
+    let (inf, nan) = (f64::from(INF32), f64::from(NAN32));
+    if value == inf {
         f64::INFINITY
-    } else if value == -INF32 {
+    } else if value == -inf {
         f64::NEG_INFINITY
-    } else if value == NAN32 || value == -NAN32 {
+    } else if value == nan || value == -nan {
         f64::NAN
     } else {
-        f64::from(value)
+        value
     }
 }
 

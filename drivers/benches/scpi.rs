@@ -1,0 +1,141 @@
+//! SCPI client speed: a query round trip over loopback TCP, and decoding a 1 MB binary trace.
+//!
+//! Targets (issue 3): round trip under 100 microseconds median; parsing a 1 MB definite-length
+//! REAL,32 block at 1 GB/s or more. The round trip runs against a minimal line-echo SCPI server
+//! on 127.0.0.1 (a blocking thread that answers every line with a fixed `*IDN?` reply), so it
+//! measures the driver's transport plus the loopback stack, not an instrument model.
+//!
+//! Run: `cargo bench -p halfwave-drivers --bench scpi`
+
+use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
+use halfwave_drivers::scpi::block::{decode_binary_reply_into, encode_values, reply_end};
+use halfwave_drivers::scpi::response::parse_number_list_into;
+use halfwave_drivers::scpi::{ByteOrder, DataFormat};
+use halfwave_drivers::{Resource, ScpiTransport, TransportConfig};
+use std::hint::black_box;
+use std::io::{BufRead, BufReader, Write};
+use std::net::TcpListener;
+use std::time::Instant;
+
+/// Starts a blocking echo-style SCPI server and returns its port.
+fn start_line_server() -> u16 {
+    let listener = TcpListener::bind("127.0.0.1:0").expect("bind loopback");
+    let port = listener.local_addr().expect("local address").port();
+    std::thread::spawn(move || {
+        for stream in listener.incoming() {
+            let Ok(stream) = stream else { continue };
+            std::thread::spawn(move || {
+                let _ = stream.set_nodelay(true);
+                let mut writer = stream.try_clone().expect("clone socket");
+                let mut reader = BufReader::new(stream);
+                let mut line = String::new();
+                loop {
+                    line.clear();
+                    match reader.read_line(&mut line) {
+                        Ok(0) | Err(_) => return,
+                        Ok(_) => {}
+                    }
+                    if line.trim_end().ends_with('?')
+                        && writer
+                            .write_all(b"Halfwave Bench Fixtures,ECHO-1,BF0001,1.0\n")
+                            .is_err()
+                    {
+                        return;
+                    }
+                }
+            });
+        }
+    });
+    port
+}
+
+fn query_round_trip(c: &mut Criterion) {
+    let port = start_line_server();
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .expect("tokio runtime");
+    let resource = Resource::parse(&format!("TCPIP::127.0.0.1::{port}::SOCKET")).unwrap();
+    let mut transport = runtime
+        .block_on(ScpiTransport::connect(resource, TransportConfig::default()))
+        .expect("connect to the echo server");
+    let mut group = c.benchmark_group("scpi_round_trip");
+    group.bench_function("query_idn_loopback_echo_server", |b| {
+        b.iter_custom(|iterations| {
+            runtime.block_on(async {
+                let started = Instant::now();
+                for _ in 0..iterations {
+                    let reply = transport.query("*IDN?").await.expect("query");
+                    black_box(reply);
+                }
+                started.elapsed()
+            })
+        })
+    });
+    group.finish();
+}
+
+fn block_decoding(c: &mut Criterion) {
+    const BLOCK_BYTES: usize = 1 << 20;
+    let values: Vec<f64> = (0..BLOCK_BYTES / 4)
+        .map(|i| -90.0 + (i % 4096) as f64 * 0.01)
+        .collect();
+    let mut group = c.benchmark_group("scpi_block_1MiB");
+    for (format, order, label) in [
+        (DataFormat::Real32, ByteOrder::Normal, "real32_normal"),
+        (DataFormat::Real32, ByteOrder::Swapped, "real32_swapped"),
+    ] {
+        let mut block = encode_values(&values, format, order);
+        block.push(b'\n');
+        group.throughput(Throughput::Bytes(block.len() as u64));
+        let mut out = Vec::with_capacity(values.len());
+        group.bench_with_input(BenchmarkId::new("decode", label), &block, |b, block| {
+            b.iter(|| {
+                decode_binary_reply_into(black_box(block), format, order, &mut out).unwrap();
+                black_box(out.len())
+            })
+        });
+    }
+    let values64: Vec<f64> = values.iter().take(BLOCK_BYTES / 8).copied().collect();
+    let mut block = encode_values(&values64, DataFormat::Real64, ByteOrder::Normal);
+    block.push(b'\n');
+    group.throughput(Throughput::Bytes(block.len() as u64));
+    let mut out = Vec::with_capacity(values64.len());
+    group.bench_function(BenchmarkId::new("decode", "real64_normal"), |b| {
+        b.iter(|| {
+            decode_binary_reply_into(
+                black_box(&block),
+                DataFormat::Real64,
+                ByteOrder::Normal,
+                &mut out,
+            )
+            .unwrap();
+            black_box(out.len())
+        })
+    });
+    group.bench_function(BenchmarkId::new("frame", "reply_end"), |b| {
+        b.iter(|| reply_end(black_box(&block), b"\n", 0).unwrap())
+    });
+    group.finish();
+
+    // For comparison: the same trace size as ASCII (10,001 points, a typical analyzer trace).
+    let ascii: String = values
+        .iter()
+        .take(10_001)
+        .map(|v| format!("{v:.4E}"))
+        .collect::<Vec<_>>()
+        .join(",");
+    let mut group = c.benchmark_group("scpi_ascii_10001_points");
+    group.throughput(Throughput::Bytes(ascii.len() as u64));
+    let mut out = Vec::with_capacity(10_001);
+    group.bench_function("parse_number_list", |b| {
+        b.iter(|| {
+            parse_number_list_into(black_box(&ascii), &mut out).unwrap();
+            black_box(out.len())
+        })
+    });
+    group.finish();
+}
+
+criterion_group!(benches, query_round_trip, block_decoding);
+criterion_main!(benches);
