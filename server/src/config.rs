@@ -1,0 +1,382 @@
+//! The daemon's configuration: one TOML file, with environment overrides.
+//!
+//! The file names the benches (a source and an analyzer each, as SCPI resources with an optional
+//! command profile, or simulated), the safety limits, the data directory, the bind address and
+//! the database URL. Environment variables `HALFWAVE_BIND`, `HALFWAVE_DATA_DIR`,
+//! `HALFWAVE_DATABASE_URL` and `HALFWAVE_MAX_LEVEL_AT_MODULATOR_DBM` override the file (a
+//! container or systemd unit sets them without editing the file). An invalid file is refused at
+//! start-up with the line and the reason; nothing starts half-configured.
+
+use serde::{Deserialize, Serialize};
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+
+/// The hard ceiling at the modulator input when the file sets none (dBm). Lower it in the file to
+/// suit your devices; no API call can raise it.
+pub const DEFAULT_MAX_LEVEL_AT_MODULATOR_DBM: f64 = 24.0;
+
+/// Why the configuration was refused.
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    #[error("cannot read configuration file {path}: {source}")]
+    Read {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("configuration file {path}, line {line}: {message}")]
+    Syntax {
+        path: PathBuf,
+        line: usize,
+        message: String,
+    },
+    #[error("configuration {origin}: {field}: {message}")]
+    Invalid {
+        origin: String,
+        field: String,
+        message: String,
+    },
+}
+
+/// Safety limits set by the lab; plans are refused if they would exceed them.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Limits {
+    /// The hard ceiling of the RF level at any modulator input, after the drive chain.
+    #[serde(default = "default_max_level")]
+    pub max_level_at_modulator_dbm: f64,
+}
+
+impl Default for Limits {
+    fn default() -> Self {
+        Limits {
+            max_level_at_modulator_dbm: DEFAULT_MAX_LEVEL_AT_MODULATOR_DBM,
+        }
+    }
+}
+
+fn default_max_level() -> f64 {
+    DEFAULT_MAX_LEVEL_AT_MODULATOR_DBM
+}
+
+/// How to reach one instrument.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
+pub enum InstrumentConfig {
+    /// A SCPI instrument over TCP.
+    Scpi {
+        /// VISA-style resource string, e.g. `TCPIP::192.0.2.10::5025::SOCKET`.
+        resource: String,
+        /// A command profile (TOML) for instruments that deviate from standard SCPI; relative
+        /// paths are relative to the configuration file.
+        #[serde(default)]
+        profile: Option<PathBuf>,
+        /// Timeout of one operation, seconds.
+        #[serde(default = "default_timeout_s")]
+        timeout_s: f64,
+    },
+    /// The in-process simulated instrument of the bench's scenario.
+    Simulated,
+}
+
+fn default_timeout_s() -> f64 {
+    5.0
+}
+
+/// The simulated bench behind a bench whose instruments are `simulated`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SimulationConfig {
+    /// Scenario file; the built-in default when absent.
+    #[serde(default)]
+    pub scenario: Option<PathBuf>,
+    #[serde(default)]
+    pub seed: u64,
+    /// Scale of simulated instrument times (1 = realistic, 0 = instant).
+    #[serde(default = "default_time_factor")]
+    pub time_factor: f64,
+}
+
+fn default_time_factor() -> f64 {
+    1.0
+}
+
+/// One bench: the instruments that measure one modulator at a time.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BenchConfig {
+    pub name: String,
+    pub source: InstrumentConfig,
+    pub analyzer: InstrumentConfig,
+    #[serde(default)]
+    pub simulation: Option<SimulationConfig>,
+}
+
+/// The whole configuration.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Config {
+    /// Where the daemon listens; loopback unless you mean to expose it.
+    #[serde(default = "default_bind")]
+    pub bind: SocketAddr,
+    /// Where the database, exported plots and backups live.
+    #[serde(default = "default_data_dir")]
+    pub data_dir: PathBuf,
+    /// `sqlite://PATH`; default `<data_dir>/halfwave.db`.
+    #[serde(default)]
+    pub database_url: Option<String>,
+    #[serde(default)]
+    pub limits: Limits,
+    #[serde(default, rename = "bench")]
+    pub benches: Vec<BenchConfig>,
+    /// The directory relative paths are resolved against (the file's directory).
+    #[serde(skip)]
+    pub base_dir: PathBuf,
+}
+
+fn default_bind() -> SocketAddr {
+    SocketAddr::from(([127, 0, 0, 1], 8440))
+}
+
+fn default_data_dir() -> PathBuf {
+    PathBuf::from("halfwave-data")
+}
+
+impl Config {
+    /// Reads and checks a configuration file, then applies environment overrides.
+    pub fn load(path: &Path) -> Result<Config, ConfigError> {
+        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        let base = path
+            .parent()
+            .map(Path::to_path_buf)
+            .unwrap_or_else(|| PathBuf::from("."));
+        Self::from_toml(&text, path, base)?.with_env_overrides(std::env::vars())
+    }
+
+    /// Parses configuration text; `path` is only used in messages.
+    pub fn from_toml(text: &str, path: &Path, base_dir: PathBuf) -> Result<Config, ConfigError> {
+        let mut config: Config = toml::from_str(text).map_err(|e| {
+            let line = e
+                .span()
+                .map(|s| text[..s.start.min(text.len())].lines().count().max(1))
+                .unwrap_or(0);
+            ConfigError::Syntax {
+                path: path.to_path_buf(),
+                line,
+                message: e.message().to_string(),
+            }
+        })?;
+        config.base_dir = base_dir;
+        config.check(&path.display().to_string())?;
+        Ok(config)
+    }
+
+    /// A configuration with one simulated bench and defaults everywhere (for `demo` and tests).
+    pub fn simulated(data_dir: PathBuf, time_factor: f64, seed: u64) -> Config {
+        Config {
+            bind: default_bind(),
+            data_dir,
+            database_url: None,
+            limits: Limits::default(),
+            benches: vec![BenchConfig {
+                name: "sim-bench".into(),
+                source: InstrumentConfig::Simulated,
+                analyzer: InstrumentConfig::Simulated,
+                simulation: Some(SimulationConfig {
+                    scenario: None,
+                    seed,
+                    time_factor,
+                }),
+            }],
+            base_dir: PathBuf::from("."),
+        }
+    }
+
+    /// Applies `HALFWAVE_*` overrides from the given environment.
+    pub fn with_env_overrides(
+        mut self,
+        env: impl IntoIterator<Item = (String, String)>,
+    ) -> Result<Config, ConfigError> {
+        for (key, value) in env {
+            let invalid = |message: String| ConfigError::Invalid {
+                origin: "environment".into(),
+                field: key.clone(),
+                message,
+            };
+            match key.as_str() {
+                "HALFWAVE_BIND" => {
+                    self.bind = value.parse().map_err(|_| {
+                        invalid(format!(
+                            "{value:?} is not an address:port such as 127.0.0.1:8440"
+                        ))
+                    })?
+                }
+                "HALFWAVE_DATA_DIR" => self.data_dir = PathBuf::from(value),
+                "HALFWAVE_DATABASE_URL" => self.database_url = Some(value),
+                "HALFWAVE_MAX_LEVEL_AT_MODULATOR_DBM" => {
+                    self.limits.max_level_at_modulator_dbm = value
+                        .parse()
+                        .map_err(|_| invalid(format!("{value:?} is not a number of dBm")))?
+                }
+                _ => {}
+            }
+        }
+        self.check("after environment overrides")?;
+        Ok(self)
+    }
+
+    fn check(&self, origin: &str) -> Result<(), ConfigError> {
+        let invalid = |field: &str, message: String| ConfigError::Invalid {
+            origin: origin.to_string(),
+            field: field.to_string(),
+            message,
+        };
+        let max = self.limits.max_level_at_modulator_dbm;
+        if !max.is_finite() || !(-30.0..=40.0).contains(&max) {
+            return Err(invalid(
+                "limits.max_level_at_modulator_dbm",
+                format!("must be a level in dBm from -30 to 40, got {max}"),
+            ));
+        }
+        let mut names = std::collections::HashSet::new();
+        for (i, bench) in self.benches.iter().enumerate() {
+            let field = format!("bench[{i}]");
+            if bench.name.trim().is_empty() {
+                return Err(invalid(&format!("{field}.name"), "give the bench a name".into()));
+            }
+            if !names.insert(bench.name.as_str()) {
+                return Err(invalid(
+                    &format!("{field}.name"),
+                    format!("the bench name {:?} is used twice", bench.name),
+                ));
+            }
+            let simulated = matches!(bench.source, InstrumentConfig::Simulated)
+                || matches!(bench.analyzer, InstrumentConfig::Simulated);
+            if simulated && bench.simulation.is_none() {
+                return Err(invalid(
+                    &format!("{field}.simulation"),
+                    "a bench with simulated instruments needs a [bench.simulation] table (it may be empty)".into(),
+                ));
+            }
+            for (role, inst) in [("source", &bench.source), ("analyzer", &bench.analyzer)] {
+                if let InstrumentConfig::Scpi {
+                    resource,
+                    timeout_s,
+                    ..
+                } = inst
+                {
+                    if resource.trim().is_empty() {
+                        return Err(invalid(
+                            &format!("{field}.{role}.resource"),
+                            "give a resource string such as TCPIP::192.0.2.10::5025::SOCKET".into(),
+                        ));
+                    }
+                    if !timeout_s.is_finite() || *timeout_s <= 0.0 || *timeout_s > 600.0 {
+                        return Err(invalid(
+                            &format!("{field}.{role}.timeout_s"),
+                            format!("must be from 0 to 600 seconds, got {timeout_s}"),
+                        ));
+                    }
+                }
+            }
+            if let Some(sim) = &bench.simulation {
+                if !sim.time_factor.is_finite() || sim.time_factor < 0.0 {
+                    return Err(invalid(
+                        &format!("{field}.simulation.time_factor"),
+                        format!("must be 0 or more, got {}", sim.time_factor),
+                    ));
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// The database URL to open.
+    pub fn database_url(&self) -> String {
+        self.database_url.clone().unwrap_or_else(|| {
+            format!("sqlite://{}", self.data_dir.join("halfwave.db").display())
+        })
+    }
+
+    /// Resolves a path from the file against the file's directory.
+    pub fn resolve(&self, path: &Path) -> PathBuf {
+        if path.is_absolute() {
+            path.to_path_buf()
+        } else {
+            self.base_dir.join(path)
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn parse(text: &str) -> Result<Config, ConfigError> {
+        Config::from_toml(text, Path::new("test.toml"), PathBuf::from("."))
+    }
+
+    #[test]
+    fn defaults_bind_to_loopback() {
+        let c = parse("").unwrap();
+        assert!(c.bind.ip().is_loopback());
+        assert_eq!(
+            c.limits.max_level_at_modulator_dbm,
+            DEFAULT_MAX_LEVEL_AT_MODULATOR_DBM
+        );
+    }
+
+    #[test]
+    fn bad_value_names_the_line() {
+        let err = parse("bind = \"127.0.0.1:8440\"\n\n[limits]\nmax_level_at_modulator_dbm = \"hot\"\n")
+            .unwrap_err();
+        match err {
+            ConfigError::Syntax { line, .. } => assert_eq!(line, 4),
+            other => panic!("expected a syntax error, got {other}"),
+        }
+    }
+
+    #[test]
+    fn unknown_key_is_refused() {
+        let err = parse("bnd = \"127.0.0.1:1\"\n").unwrap_err();
+        assert!(err.to_string().contains("line 1"), "{err}");
+        assert!(err.to_string().contains("bnd"), "{err}");
+    }
+
+    #[test]
+    fn limit_out_of_range_is_refused() {
+        let err = parse("[limits]\nmax_level_at_modulator_dbm = 90\n").unwrap_err();
+        assert!(
+            err.to_string().contains("max_level_at_modulator_dbm"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn simulated_bench_needs_simulation_table() {
+        let err = parse(
+            "[[bench]]\nname = \"a\"\nsource = { kind = \"simulated\" }\nanalyzer = { kind = \"simulated\" }\n",
+        )
+        .unwrap_err();
+        assert!(err.to_string().contains("simulation"), "{err}");
+    }
+
+    #[test]
+    fn environment_overrides_apply_and_are_checked() {
+        let c = parse("").unwrap();
+        let c = c
+            .with_env_overrides([("HALFWAVE_BIND".to_string(), "0.0.0.0:9000".to_string())])
+            .unwrap();
+        assert_eq!(c.bind.port(), 9000);
+        let err = c
+            .with_env_overrides([(
+                "HALFWAVE_MAX_LEVEL_AT_MODULATOR_DBM".to_string(),
+                "loud".to_string(),
+            )])
+            .unwrap_err();
+        assert!(err.to_string().contains("HALFWAVE_MAX_LEVEL"), "{err}");
+    }
+}

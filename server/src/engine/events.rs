@@ -1,0 +1,68 @@
+//! Progress events: what a run tells its watchers as it goes.
+//!
+//! The engine publishes on a `tokio::sync::broadcast` channel; the HTTP API turns the events into
+//! server-sent events and the CLI into progress bars. A slow watcher that falls behind loses old
+//! events (broadcast semantics), never slows the run. Field names carry units.
+
+use serde::Serialize;
+
+/// One thing that happened in a run.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(tag = "event", rename_all = "snake_case")]
+pub enum ProgressEvent {
+    /// A run was accepted and waits for its bench.
+    Queued { run_id: i64, bench: String },
+    /// A run started (or resumed) on its bench.
+    Started {
+        run_id: i64,
+        bench: String,
+        total_points: usize,
+        already_measured: usize,
+    },
+    /// One point was measured, analysed and committed.
+    Point {
+        run_id: i64,
+        completed_points: usize,
+        total_points: usize,
+        frequency_hz: f64,
+        generator_level_dbm: f64,
+        v_peak_volts: f64,
+        modulation_index: f64,
+        modulation_index_uncertainty: f64,
+    },
+    /// A point could not be analysed; it is stored without a modulation index.
+    PointFailed {
+        run_id: i64,
+        frequency_hz: f64,
+        generator_level_dbm: f64,
+        reason: String,
+    },
+    /// All levels of one frequency are done and V_pi was fitted.
+    Frequency {
+        run_id: i64,
+        frequency_hz: f64,
+        v_pi_volts: Option<f64>,
+        v_pi_uncertainty_volts: Option<f64>,
+        note: Option<String>,
+    },
+    /// The run ended: completed, failed, cancelled or interrupted.
+    Finished {
+        run_id: i64,
+        state: String,
+        cause: Option<String>,
+    },
+}
+
+impl ProgressEvent {
+    /// The run this event belongs to.
+    pub fn run_id(&self) -> i64 {
+        match self {
+            ProgressEvent::Queued { run_id, .. }
+            | ProgressEvent::Started { run_id, .. }
+            | ProgressEvent::Point { run_id, .. }
+            | ProgressEvent::PointFailed { run_id, .. }
+            | ProgressEvent::Frequency { run_id, .. }
+            | ProgressEvent::Finished { run_id, .. } => *run_id,
+        }
+    }
+}

@@ -1,0 +1,842 @@
+//! Calibration plans: what the user asks for, and the proven plan the engine runs.
+//!
+//! Parse, don't validate: a [`PlanRequest`] is plain serde input with units in the field names;
+//! [`PlanRequest::validate`] turns it into a [`Plan`] whose every frequency and level is already
+//! known to be inside the source's ranges, the analyzer's capabilities, the device's RF input limit
+//! and the daemon's hard limit (after the drive chain's gain). Every invalid field is reported at
+//! once, each with its path (`frequencies.stop_hz`) and a sentence that says what to change, so a
+//! remote user fixes a plan in one round trip. Nothing here talks to an instrument.
+
+use crate::analysis::chain::DriveChain;
+use halfwave_drivers::{AnalyzerCapabilities, SourceLimits};
+use halfwave_units::{Db, Dbm, Hz, Nanometers, Seconds};
+use serde::{Deserialize, Serialize};
+
+/// Most frequency points one plan may hold.
+pub const MAX_FREQUENCIES: usize = 1000;
+/// Most drive levels per frequency one plan may hold.
+pub const MAX_LEVELS: usize = 200;
+/// Longest settle time accepted between setting a level and sweeping.
+pub const MAX_SETTLE_S: f64 = 600.0;
+/// Most analyzer sweeps averaged per point.
+pub const MAX_AVERAGES: u32 = 64;
+/// Sideband orders the automatic span covers on each side of the carrier unless told otherwise.
+pub const DEFAULT_EXPECTED_ORDERS: u32 = 6;
+/// Points per trace unless told otherwise (the analyzer's maximum caps it).
+pub const DEFAULT_TRACE_POINTS: usize = 10_001;
+/// The automatic resolution bandwidth is at most this fraction of the modulation frequency
+/// (lines are resolved when the spacing is several times the RBW; a tenth keeps the line shapes
+/// apart with margin; common practice says at least about three).
+pub const AUTO_RBW_FRACTION: f64 = 0.1;
+/// The smallest spacing-to-RBW ratio accepted at all (about three, common practice).
+pub const MIN_SPACING_TO_RBW: f64 = 3.0;
+
+/// The modulator being calibrated.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct DeviceSpec {
+    /// Serial number; the key of its calibration history.
+    pub serial: String,
+    /// Free text: the type of device.
+    #[serde(default)]
+    pub model: String,
+    /// The largest RF level the device may see at its input (datasheet value).
+    pub rf_input_limit_dbm: f64,
+    /// Optical wavelength of the laser used (for the record).
+    #[serde(default = "default_wavelength_nm")]
+    pub wavelength_nm: f64,
+}
+
+fn default_wavelength_nm() -> f64 {
+    1550.0
+}
+
+/// Drive frequencies of a plan.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
+pub enum FrequencySpec {
+    /// Explicit frequencies.
+    List { values_hz: Vec<f64> },
+    /// `count` frequencies evenly spaced from start to stop inclusive.
+    Linear {
+        start_hz: f64,
+        stop_hz: f64,
+        count: usize,
+    },
+    /// `count` frequencies evenly spaced in log(frequency) from start to stop inclusive.
+    Logarithmic {
+        start_hz: f64,
+        stop_hz: f64,
+        count: usize,
+    },
+}
+
+/// Generator levels applied at every frequency (the engine always ramps from low to high).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
+pub enum LevelSpec {
+    /// Explicit generator levels.
+    List { values_dbm: Vec<f64> },
+    /// From start to stop (inclusive when it lands on a step) in steps of step_db.
+    Ramp {
+        start_dbm: f64,
+        stop_dbm: f64,
+        step_db: f64,
+    },
+}
+
+/// Analyzer settings; anything left out is chosen from the modulation frequency.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct AnalyzerSpec {
+    /// Fixed span; default: (2 * expected_orders + 2) times the modulation frequency.
+    pub span_hz: Option<f64>,
+    /// Fixed resolution bandwidth; default: the widest one offered that is at most a tenth of
+    /// the modulation frequency.
+    pub resolution_bandwidth_hz: Option<f64>,
+    /// Points per trace; default 10,001 (capped by the analyzer).
+    pub points: Option<usize>,
+    /// Sideband orders to keep in view on each side; default 6.
+    pub expected_orders: Option<u32>,
+}
+
+/// The drive chain calibration a plan uses.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
+pub enum ChainSpec {
+    /// A frequency-independent loss between generator and modulator.
+    FlatLoss { loss_db: f64 },
+    /// A stored, versioned calibration (the engine resolves it before validation).
+    Stored { name: String, version: Option<i64> },
+}
+
+/// A calibration plan as submitted: plain numbers with units in their names.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PlanRequest {
+    pub device: DeviceSpec,
+    /// Which configured bench runs it.
+    pub bench: String,
+    pub chain: ChainSpec,
+    pub frequencies: FrequencySpec,
+    pub levels: LevelSpec,
+    /// Wait after each level change before sweeping.
+    #[serde(default = "default_settle_s")]
+    pub settle_s: f64,
+    /// Sweeps averaged per point (in linear power).
+    #[serde(default = "default_averages")]
+    pub averages: u32,
+    #[serde(default)]
+    pub analyzer: AnalyzerSpec,
+    /// Take an RF-off reference trace at each frequency (carrier position, unmodulated power).
+    #[serde(default = "default_true")]
+    pub reference_trace: bool,
+    /// Re-centre the analyzer on the drifting laser at every point.
+    #[serde(default = "default_true")]
+    pub carrier_tracking: bool,
+    /// Free-text note kept with the run.
+    #[serde(default)]
+    pub note: String,
+}
+
+fn default_settle_s() -> f64 {
+    0.2
+}
+fn default_averages() -> u32 {
+    1
+}
+fn default_true() -> bool {
+    true
+}
+
+/// One invalid field: where, and what to change.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct FieldError {
+    /// Path of the field in the plan JSON, e.g. `levels.stop_dbm`.
+    pub field: String,
+    pub message: String,
+}
+
+/// Every reason a plan was refused.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize, thiserror::Error)]
+#[error("the plan is invalid: {}", summary(.errors))]
+pub struct PlanErrors {
+    pub errors: Vec<FieldError>,
+}
+
+fn summary(errors: &[FieldError]) -> String {
+    errors
+        .iter()
+        .map(|e| format!("{}: {}", e.field, e.message))
+        .collect::<Vec<_>>()
+        .join("; ")
+}
+
+/// What a plan is checked against: the daemon's configuration and the bench's instruments.
+#[derive(Debug, Clone)]
+pub struct PlanContext<'a> {
+    /// The daemon's hard ceiling at the modulator input; no plan can raise it.
+    pub hard_limit_at_modulator: Dbm,
+    pub source: SourceLimits,
+    pub analyzer: &'a AnalyzerCapabilities,
+    /// The drive chain resolved from the plan's [`ChainSpec`].
+    pub chain: &'a DriveChain,
+}
+
+/// Analyzer settings for one frequency, chosen or given.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct AnalyzerChoice {
+    pub span: Hz,
+    pub resolution_bandwidth: Hz,
+    pub points: usize,
+}
+
+/// One drive frequency of a proven plan, with its levels ascending.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FrequencyStep {
+    pub frequency: Hz,
+    /// Generator levels, strictly ascending.
+    pub generator_levels: Vec<Dbm>,
+    pub analyzer: AnalyzerChoice,
+}
+
+/// A proven plan: every value inside every limit. Only [`PlanRequest::validate`] makes one.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Plan {
+    pub request: PlanRequest,
+    pub steps: Vec<FrequencyStep>,
+    pub settle: Seconds,
+    pub averages: u32,
+    pub wavelength: Nanometers,
+    /// The highest level the plan puts on the modulator (after the chain), for the record.
+    pub max_level_at_modulator: Dbm,
+}
+
+impl Plan {
+    /// Number of measured points (frequencies x levels).
+    pub fn point_count(&self) -> usize {
+        self.steps.iter().map(|s| s.generator_levels.len()).sum()
+    }
+}
+
+struct Collector(Vec<FieldError>);
+
+impl Collector {
+    fn push(&mut self, field: impl Into<String>, message: impl Into<String>) {
+        self.0.push(FieldError {
+            field: field.into(),
+            message: message.into(),
+        });
+    }
+}
+
+impl PlanRequest {
+    /// Checks every field and builds the proven plan, or returns every problem found.
+    pub fn validate(&self, ctx: &PlanContext<'_>) -> Result<Plan, PlanErrors> {
+        let mut errs = Collector(Vec::new());
+
+        self.check_device(&mut errs);
+        if self.bench.trim().is_empty() {
+            errs.push("bench", "name the bench that should run this plan");
+        }
+        if !self.settle_s.is_finite() || self.settle_s < 0.0 || self.settle_s > MAX_SETTLE_S {
+            errs.push(
+                "settle_s",
+                format!(
+                    "must be a number of seconds from 0 to {MAX_SETTLE_S}, got {}",
+                    self.settle_s
+                ),
+            );
+        }
+        if self.averages == 0 || self.averages > MAX_AVERAGES {
+            errs.push(
+                "averages",
+                format!("must be from 1 to {MAX_AVERAGES}, got {}", self.averages),
+            );
+        }
+
+        let frequencies = expand_frequencies(&self.frequencies, &ctx.source, &mut errs);
+        let levels = expand_levels(&self.levels, &ctx.source, &mut errs);
+
+        // The safety interlock: the level reaching the modulator, after the chain's gain at each
+        // frequency, must stay under both the device's limit and the daemon's hard limit.
+        let device_limit = Dbm(self.device.rf_input_limit_dbm);
+        let ceiling = if device_limit.0 < ctx.hard_limit_at_modulator.0 {
+            device_limit
+        } else {
+            ctx.hard_limit_at_modulator
+        };
+        let mut max_at_modulator = Dbm(f64::NEG_INFINITY);
+        if let (Some(freqs), Some(levels)) = (&frequencies, &levels) {
+            let mut worst: Option<(Hz, Dbm, Dbm)> = None;
+            for &f in freqs {
+                for &l in levels {
+                    let at_mod = ctx.chain.level_at_modulator(f, l);
+                    if at_mod.0 > max_at_modulator.0 {
+                        max_at_modulator = at_mod;
+                    }
+                    if at_mod.0 > ceiling.0 && worst.is_none_or(|(_, _, w)| at_mod.0 > w.0) {
+                        worst = Some((f, l, at_mod));
+                    }
+                }
+            }
+            if let Some((f, l, at_mod)) = worst {
+                let which = if ceiling == device_limit && device_limit.0 < ctx.hard_limit_at_modulator.0 {
+                    format!("the device's RF input limit of {:.2}", device_limit)
+                } else {
+                    format!("the daemon's hard limit of {:.2}", ctx.hard_limit_at_modulator)
+                };
+                errs.push(
+                    "levels",
+                    format!(
+                        "at {:.6} GHz a generator level of {:.2} reaches the modulator at {:.2} (chain gain {:.2}), above {which}; lower the levels",
+                        f.ghz(),
+                        l,
+                        at_mod,
+                        Db(at_mod.0 - l.0)
+                    ),
+                );
+            }
+        }
+
+        let mut steps = Vec::new();
+        if let Some(freqs) = &frequencies {
+            for (i, &f) in freqs.iter().enumerate() {
+                match choose_analyzer(&self.analyzer, f, ctx.analyzer) {
+                    Ok(choice) => steps.push(FrequencyStep {
+                        frequency: f,
+                        generator_levels: levels.clone().unwrap_or_default(),
+                        analyzer: choice,
+                    }),
+                    Err((field, message)) => {
+                        errs.push(field, format!("at frequency {i} ({:.6} GHz): {message}", f.ghz()));
+                        break;
+                    }
+                }
+            }
+        }
+
+        if !errs.0.is_empty() {
+            return Err(PlanErrors { errors: errs.0 });
+        }
+        Ok(Plan {
+            request: self.clone(),
+            steps,
+            settle: Seconds(self.settle_s),
+            averages: self.averages,
+            wavelength: Nanometers(self.device.wavelength_nm),
+            max_level_at_modulator: max_at_modulator,
+        })
+    }
+
+    fn check_device(&self, errs: &mut Collector) {
+        let d = &self.device;
+        let serial = d.serial.trim();
+        if serial.is_empty() || serial.len() > 64 {
+            errs.push("device.serial", "give the modulator's serial number (1 to 64 characters)");
+        } else if !serial
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || "-_./:#".contains(c))
+        {
+            errs.push(
+                "device.serial",
+                "use letters, digits and - _ . / : # only in a serial number",
+            );
+        }
+        if !d.rf_input_limit_dbm.is_finite() || !(-30.0..=40.0).contains(&d.rf_input_limit_dbm) {
+            errs.push(
+                "device.rf_input_limit_dbm",
+                format!(
+                    "must be the datasheet's maximum RF input in dBm (-30 to 40), got {}",
+                    d.rf_input_limit_dbm
+                ),
+            );
+        }
+        if !d.wavelength_nm.is_finite() || !(200.0..=5000.0).contains(&d.wavelength_nm) {
+            errs.push(
+                "device.wavelength_nm",
+                format!(
+                    "must be an optical wavelength in nm (200 to 5000), got {}",
+                    d.wavelength_nm
+                ),
+            );
+        }
+    }
+}
+
+fn expand_frequencies(
+    spec: &FrequencySpec,
+    limits: &SourceLimits,
+    errs: &mut Collector,
+) -> Option<Vec<Hz>> {
+    let in_range = |f: f64| f >= limits.min_frequency.0 && f <= limits.max_frequency.0;
+    let range_text = format!(
+        "the source's range {:.6} to {:.6} GHz",
+        limits.min_frequency.ghz(),
+        limits.max_frequency.ghz()
+    );
+    let values: Vec<f64> = match spec {
+        FrequencySpec::List { values_hz } => {
+            if values_hz.is_empty() {
+                errs.push("frequencies.values_hz", "give at least one frequency");
+                return None;
+            }
+            let mut bad = false;
+            for (i, f) in values_hz.iter().enumerate() {
+                if !f.is_finite() || !in_range(*f) {
+                    errs.push(
+                        format!("frequencies.values_hz[{i}]"),
+                        format!("{f} Hz is outside {range_text}"),
+                    );
+                    bad = true;
+                }
+            }
+            if bad {
+                return None;
+            }
+            let mut v = values_hz.clone();
+            v.sort_by(f64::total_cmp);
+            v.dedup();
+            v
+        }
+        FrequencySpec::Linear {
+            start_hz,
+            stop_hz,
+            count,
+        }
+        | FrequencySpec::Logarithmic {
+            start_hz,
+            stop_hz,
+            count,
+        } => {
+            let mut bad = false;
+            for (name, f) in [("start_hz", start_hz), ("stop_hz", stop_hz)] {
+                if !f.is_finite() || !in_range(*f) {
+                    errs.push(
+                        format!("frequencies.{name}"),
+                        format!("{f} Hz is outside {range_text}"),
+                    );
+                    bad = true;
+                }
+            }
+            if *count == 0 || *count > MAX_FREQUENCIES {
+                errs.push(
+                    "frequencies.count",
+                    format!("must be from 1 to {MAX_FREQUENCIES}, got {count}"),
+                );
+                bad = true;
+            }
+            if !bad && stop_hz < start_hz {
+                errs.push("frequencies.stop_hz", "must not be below start_hz");
+                bad = true;
+            }
+            if !bad && *count > 1 && stop_hz == start_hz {
+                errs.push(
+                    "frequencies.count",
+                    "start_hz equals stop_hz, so count must be 1",
+                );
+                bad = true;
+            }
+            if bad {
+                return None;
+            }
+            let n = *count;
+            let log = matches!(spec, FrequencySpec::Logarithmic { .. });
+            (0..n)
+                .map(|i| {
+                    let t = if n == 1 { 0.0 } else { i as f64 / (n - 1) as f64 };
+                    if log {
+                        (start_hz.ln() + t * (stop_hz.ln() - start_hz.ln())).exp()
+                    } else {
+                        start_hz + t * (stop_hz - start_hz)
+                    }
+                })
+                // Rounding in exp/ln must not push an end point outside the range it came from.
+                .map(|f| f.clamp(*start_hz, *stop_hz))
+                .collect()
+        }
+    };
+    if values.len() > MAX_FREQUENCIES {
+        errs.push(
+            "frequencies",
+            format!("at most {MAX_FREQUENCIES} frequencies per plan, got {}", values.len()),
+        );
+        return None;
+    }
+    Some(values.into_iter().map(Hz).collect())
+}
+
+fn expand_levels(spec: &LevelSpec, limits: &SourceLimits, errs: &mut Collector) -> Option<Vec<Dbm>> {
+    let in_range = |l: f64| l >= limits.min_level.0 && l <= limits.max_level.0;
+    let range_text = format!(
+        "the source's range {:.2} to {:.2}",
+        limits.min_level, limits.max_level
+    );
+    let values: Vec<f64> = match spec {
+        LevelSpec::List { values_dbm } => {
+            if values_dbm.is_empty() {
+                errs.push("levels.values_dbm", "give at least one level");
+                return None;
+            }
+            let mut bad = false;
+            for (i, l) in values_dbm.iter().enumerate() {
+                if !l.is_finite() || !in_range(*l) {
+                    errs.push(
+                        format!("levels.values_dbm[{i}]"),
+                        format!("{l} dBm is outside {range_text}"),
+                    );
+                    bad = true;
+                }
+            }
+            if bad {
+                return None;
+            }
+            // Levels always ramp from low to high, whatever order they were given in.
+            let mut v = values_dbm.clone();
+            v.sort_by(f64::total_cmp);
+            v.dedup();
+            v
+        }
+        LevelSpec::Ramp {
+            start_dbm,
+            stop_dbm,
+            step_db,
+        } => {
+            let mut bad = false;
+            for (name, l) in [("start_dbm", start_dbm), ("stop_dbm", stop_dbm)] {
+                if !l.is_finite() || !in_range(*l) {
+                    errs.push(
+                        format!("levels.{name}"),
+                        format!("{l} dBm is outside {range_text}"),
+                    );
+                    bad = true;
+                }
+            }
+            if !step_db.is_finite() || *step_db <= 0.0 {
+                errs.push(
+                    "levels.step_db",
+                    format!("must be a positive step in dB, got {step_db}"),
+                );
+                bad = true;
+            }
+            if !bad && stop_dbm < start_dbm {
+                errs.push(
+                    "levels.stop_dbm",
+                    "must not be below start_dbm (levels ramp from low to high)",
+                );
+                bad = true;
+            }
+            if bad {
+                return None;
+            }
+            let count = ((stop_dbm - start_dbm) / step_db + 1e-9).floor() as usize + 1;
+            if count > MAX_LEVELS {
+                errs.push(
+                    "levels.step_db",
+                    format!("gives {count} levels; at most {MAX_LEVELS} per frequency"),
+                );
+                return None;
+            }
+            (0..count).map(|i| start_dbm + i as f64 * step_db).collect()
+        }
+    };
+    if values.len() > MAX_LEVELS {
+        errs.push(
+            "levels",
+            format!("at most {MAX_LEVELS} levels per frequency, got {}", values.len()),
+        );
+        return None;
+    }
+    Some(values.into_iter().map(Dbm).collect())
+}
+
+/// Picks span, resolution bandwidth and points for one modulation frequency.
+fn choose_analyzer(
+    spec: &AnalyzerSpec,
+    modulation: Hz,
+    caps: &AnalyzerCapabilities,
+) -> Result<AnalyzerChoice, (&'static str, String)> {
+    let orders = spec.expected_orders.unwrap_or(DEFAULT_EXPECTED_ORDERS);
+    if orders == 0 || orders > 40 {
+        return Err((
+            "analyzer.expected_orders",
+            format!("must be from 1 to 40, got {orders}"),
+        ));
+    }
+    let points = spec.points.unwrap_or(DEFAULT_TRACE_POINTS.min(caps.max_points));
+    if points < 101 || points > caps.max_points {
+        return Err((
+            "analyzer.points",
+            format!("must be from 101 to {} (the analyzer's maximum), got {points}", caps.max_points),
+        ));
+    }
+    let rbw = match spec.resolution_bandwidth_hz {
+        Some(r) => {
+            if !r.is_finite() || r <= 0.0 {
+                return Err((
+                    "analyzer.resolution_bandwidth_hz",
+                    format!("must be a positive bandwidth in Hz, got {r}"),
+                ));
+            }
+            Hz(r)
+        }
+        None => {
+            let target = modulation.0 * AUTO_RBW_FRACTION;
+            let widest_fit = caps
+                .resolution_bandwidths
+                .iter()
+                .copied()
+                .filter(|r| r.0 <= target)
+                .fold(None::<Hz>, |best, r| match best {
+                    Some(b) if b.0 >= r.0 => Some(b),
+                    _ => Some(r),
+                });
+            match widest_fit.or_else(|| caps.resolution_bandwidths.first().copied()) {
+                Some(r) => r,
+                None => {
+                    return Err((
+                        "analyzer.resolution_bandwidth_hz",
+                        "the analyzer lists no resolution bandwidths; give one".to_string(),
+                    ))
+                }
+            }
+        }
+    };
+    if modulation.0 < MIN_SPACING_TO_RBW * rbw.0 {
+        return Err((
+            "analyzer.resolution_bandwidth_hz",
+            format!(
+                "the line spacing {:.3} MHz is below {MIN_SPACING_TO_RBW} times the resolution bandwidth {:.3} MHz, so the sidebands cannot be resolved; raise the frequency or use a finer resolution",
+                modulation.0 / 1e6,
+                rbw.0 / 1e6
+            ),
+        ));
+    }
+    let span = match spec.span_hz {
+        Some(s) => {
+            if !s.is_finite() || s <= 0.0 {
+                return Err(("analyzer.span_hz", format!("must be a positive span in Hz, got {s}")));
+            }
+            Hz(s)
+        }
+        None => Hz((2.0 * orders as f64 + 2.0) * modulation.0),
+    };
+    if span.0 < caps.min_span.0 || span.0 > caps.max_span.0 {
+        return Err((
+            "analyzer.span_hz",
+            format!(
+                "a span of {:.3} GHz is outside the analyzer's {:.3} to {:.3} GHz; {}",
+                span.ghz(),
+                caps.min_span.ghz(),
+                caps.max_span.ghz(),
+                if spec.span_hz.is_none() {
+                    "lower analyzer.expected_orders or give span_hz"
+                } else {
+                    "change span_hz"
+                }
+            ),
+        ));
+    }
+    if span.0 < 2.0 * modulation.0 {
+        return Err((
+            "analyzer.span_hz",
+            "the span must show at least the carrier and both first sidebands (twice the modulation frequency)".to_string(),
+        ));
+    }
+    // Each line needs a few points across its resolution width to be measured.
+    let point_spacing = span.0 / (points - 1) as f64;
+    if point_spacing > rbw.0 / 2.0 {
+        return Err((
+            "analyzer.points",
+            format!(
+                "{points} points over {:.3} GHz are {:.3} MHz apart, coarser than half the resolution bandwidth {:.3} MHz; use more points or a smaller span",
+                span.ghz(),
+                point_spacing / 1e6,
+                rbw.0 / 1e6
+            ),
+        ));
+    }
+    Ok(AnalyzerChoice {
+        span,
+        resolution_bandwidth: rbw,
+        points,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn caps() -> AnalyzerCapabilities {
+        AnalyzerCapabilities {
+            min_frequency: Hz(180e12),
+            max_frequency: Hz(200e12),
+            min_span: Hz(1e6),
+            max_span: Hz(5e12),
+            resolution_bandwidths: vec![Hz(1e6), Hz(5e6), Hz(10e6), Hz(20e6), Hz(50e6), Hz(100e6), Hz(200e6), Hz(500e6)],
+            max_points: 20_001,
+            typical_sweep_time: Seconds(0.5),
+        }
+    }
+
+    fn source() -> SourceLimits {
+        SourceLimits {
+            min_frequency: Hz(100e6),
+            max_frequency: Hz(40e9),
+            min_level: Dbm(-30.0),
+            max_level: Dbm(25.0),
+        }
+    }
+
+    fn request(levels: LevelSpec) -> PlanRequest {
+        PlanRequest {
+            device: DeviceSpec {
+                serial: "TEST-PM-1".into(),
+                model: "test modulator".into(),
+                rf_input_limit_dbm: 24.0,
+                wavelength_nm: 1550.0,
+            },
+            bench: "bench-1".into(),
+            chain: ChainSpec::FlatLoss { loss_db: 3.0 },
+            frequencies: FrequencySpec::Logarithmic {
+                start_hz: 1e9,
+                stop_hz: 20e9,
+                count: 4,
+            },
+            levels,
+            settle_s: 0.1,
+            averages: 1,
+            analyzer: AnalyzerSpec::default(),
+            reference_trace: true,
+            carrier_tracking: true,
+            note: String::new(),
+        }
+    }
+
+    fn validate(req: &PlanRequest, hard: f64) -> Result<Plan, PlanErrors> {
+        let chain = DriveChain::flat_loss(Db(3.0));
+        let caps = caps();
+        req.validate(&PlanContext {
+            hard_limit_at_modulator: Dbm(hard),
+            source: source(),
+            analyzer: &caps,
+            chain: &chain,
+        })
+    }
+
+    #[test]
+    fn level_over_device_limit_is_refused() {
+        // 25 dBm from the generator minus a 3 dB chain loss is 22 dBm at the modulator, above a
+        // device limit of 20 dBm (the daemon's hard limit of 30 dBm is not the binding one).
+        let mut req = request(LevelSpec::Ramp {
+            start_dbm: 0.0,
+            stop_dbm: 25.0,
+            step_db: 5.0,
+        });
+        req.device.rf_input_limit_dbm = 20.0;
+        let err = validate(&req, 30.0).unwrap_err();
+        assert_eq!(err.errors.len(), 1, "{err}");
+        assert_eq!(err.errors[0].field, "levels");
+        assert!(err.errors[0].message.contains("device's RF input limit"), "{err}");
+        assert!(err.errors[0].message.contains("22.00 dBm"), "{err}");
+    }
+
+    #[test]
+    fn hard_limit_wins_over_a_higher_device_limit() {
+        let req = request(LevelSpec::List {
+            values_dbm: vec![10.0, 20.0],
+        });
+        // 20 dBm - 3 dB = 17 dBm at the modulator, above a hard limit of 15 dBm.
+        let err = validate(&req, 15.0).unwrap_err();
+        assert!(err.errors[0].message.contains("hard limit"), "{err}");
+        assert!(validate(&req, 17.5).is_ok());
+    }
+
+    #[test]
+    fn every_invalid_field_is_reported_at_once() {
+        let mut req = request(LevelSpec::Ramp {
+            start_dbm: 0.0,
+            stop_dbm: 10.0,
+            step_db: 0.0,
+        });
+        req.frequencies = FrequencySpec::Linear {
+            start_hz: 1e9,
+            stop_hz: 1e15,
+            count: 5,
+        };
+        req.settle_s = -1.0;
+        req.device.serial = String::new();
+        let err = validate(&req, 24.0).unwrap_err();
+        let fields: Vec<&str> = err.errors.iter().map(|e| e.field.as_str()).collect();
+        for f in ["device.serial", "settle_s", "frequencies.stop_hz", "levels.step_db"] {
+            assert!(fields.contains(&f), "{f} missing from {fields:?}");
+        }
+    }
+
+    #[test]
+    fn levels_always_ramp_upwards() {
+        let req = request(LevelSpec::List {
+            values_dbm: vec![10.0, -5.0, 3.0, 10.0],
+        });
+        let plan = validate(&req, 24.0).unwrap();
+        assert_eq!(
+            plan.steps[0].generator_levels,
+            vec![Dbm(-5.0), Dbm(3.0), Dbm(10.0)]
+        );
+        assert_eq!(plan.point_count(), 4 * 3);
+    }
+
+    #[test]
+    fn logarithmic_frequencies_are_geometric() {
+        let mut req = request(LevelSpec::List {
+            values_dbm: vec![0.0],
+        });
+        req.frequencies = FrequencySpec::Logarithmic {
+            start_hz: 0.2e9,
+            stop_hz: 20e9,
+            count: 3,
+        };
+        let plan = validate(&req, 24.0).unwrap();
+        let f: Vec<f64> = plan.steps.iter().map(|s| s.frequency.0).collect();
+        // Geometric mean of 0.2 and 20 GHz is 2 GHz.
+        assert!((f[1] - 2e9).abs() < 1.0, "{f:?}");
+        assert_eq!(f[0], 0.2e9);
+        assert_eq!(f[2], 20e9);
+    }
+
+    #[test]
+    fn automatic_analyzer_settings_resolve_the_lines() {
+        let req = request(LevelSpec::List {
+            values_dbm: vec![0.0],
+        });
+        let plan = validate(&req, 24.0).unwrap();
+        for step in &plan.steps {
+            let a = step.analyzer;
+            assert!(a.resolution_bandwidth.0 <= step.frequency.0 * AUTO_RBW_FRACTION);
+            assert_eq!(a.span.0, (2.0 * DEFAULT_EXPECTED_ORDERS as f64 + 2.0) * step.frequency.0);
+        }
+        // 1 GHz spacing: widest RBW at most 100 MHz is 100 MHz.
+        assert_eq!(plan.steps[0].analyzer.resolution_bandwidth, Hz(100e6));
+    }
+
+    #[test]
+    fn spacing_below_three_resolution_widths_is_refused() {
+        let mut req = request(LevelSpec::List {
+            values_dbm: vec![0.0],
+        });
+        req.analyzer.resolution_bandwidth_hz = Some(500e6);
+        let err = validate(&req, 24.0).unwrap_err();
+        assert_eq!(err.errors[0].field, "analyzer.resolution_bandwidth_hz");
+        assert!(err.errors[0].message.contains("cannot be resolved"), "{err}");
+    }
+
+    #[test]
+    fn unknown_fields_are_refused() {
+        let json = r#"{"device":{"serial":"A","rf_input_limit_dbm":20,"colour":"red"},
+            "bench":"b","chain":{"kind":"flat_loss","loss_db":1},
+            "frequencies":{"kind":"list","values_hz":[1e9]},
+            "levels":{"kind":"list","values_dbm":[0]}}"#;
+        let err = serde_json::from_str::<PlanRequest>(json).unwrap_err();
+        assert!(err.to_string().contains("colour"), "{err}");
+    }
+}

@@ -1,0 +1,85 @@
+//! The RF-off interlock: every way a run can stop leaves the source's output off.
+//!
+//! The normal paths (end of a frequency, end of a run, cancel, error) call
+//! [`RfOffGuard::release`], which switches the output off and confirms it, and returns the error
+//! if that failed so the run records it. A path that never reaches that call (a panic unwinding
+//! the run task, a task dropped at shutdown) still drops the guard, and the guard's `Drop`
+//! spawns the same safe-off on the runtime. The daemon also switches every configured source off
+//! at start-up and after a shutdown signal (see `engine::Engine`), so a SIGKILL, which no code can
+//! catch, is covered by the next start.
+
+use halfwave_drivers::{InstrumentError, RfSource};
+use std::sync::Arc;
+use tokio::sync::Mutex;
+
+/// A source shared between the run that drives it and the interlocks that may switch it off.
+pub type SharedSource = Arc<Mutex<Box<dyn RfSource>>>;
+
+/// How many times a safe-off is tried before the failure is reported.
+const SAFE_OFF_ATTEMPTS: usize = 3;
+
+/// Switches a source's output off, retrying (the driver reconnects between attempts), and
+/// returns the last error if every attempt failed.
+pub async fn switch_off(source: &SharedSource) -> Result<(), InstrumentError> {
+    let mut last = None;
+    for attempt in 1..=SAFE_OFF_ATTEMPTS {
+        let mut src = source.lock().await;
+        match src.safe_off().await {
+            Ok(()) => {
+                tracing::debug!(resource = src.resource(), "RF output confirmed off");
+                return Ok(());
+            }
+            Err(e) => {
+                tracing::warn!(resource = src.resource(), attempt, error = %e, "RF safe-off failed; retrying");
+                last = Some(e);
+            }
+        }
+        drop(src);
+        tokio::time::sleep(std::time::Duration::from_millis(100 * attempt as u64)).await;
+    }
+    Err(last.expect("at least one attempt was made"))
+}
+
+/// Armed while a run may have RF on; switches the output off when released or dropped.
+pub struct RfOffGuard {
+    source: SharedSource,
+    armed: bool,
+}
+
+impl RfOffGuard {
+    /// Arms the interlock for this source.
+    pub fn arm(source: SharedSource) -> RfOffGuard {
+        RfOffGuard {
+            source,
+            armed: true,
+        }
+    }
+
+    /// Switches the output off now and disarms; the error, if any, is the run's to record.
+    pub async fn release(mut self) -> Result<(), InstrumentError> {
+        self.armed = false;
+        switch_off(&self.source).await
+    }
+}
+
+impl Drop for RfOffGuard {
+    fn drop(&mut self) {
+        if !self.armed {
+            return;
+        }
+        let source = self.source.clone();
+        match tokio::runtime::Handle::try_current() {
+            Ok(handle) => {
+                tracing::warn!("run ended without a clean stop; switching RF off from the interlock");
+                handle.spawn(async move {
+                    if let Err(e) = switch_off(&source).await {
+                        tracing::error!(error = %e, "the interlock could not switch the RF output off; switch it off by hand");
+                    }
+                });
+            }
+            Err(_) => tracing::error!(
+                "the interlock has no runtime to switch the RF output off; switch it off by hand"
+            ),
+        }
+    }
+}
