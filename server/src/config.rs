@@ -245,7 +245,10 @@ impl Config {
         for (i, bench) in self.benches.iter().enumerate() {
             let field = format!("bench[{i}]");
             if bench.name.trim().is_empty() {
-                return Err(invalid(&format!("{field}.name"), "give the bench a name".into()));
+                return Err(invalid(
+                    &format!("{field}.name"),
+                    "give the bench a name".into(),
+                ));
             }
             if !names.insert(bench.name.as_str()) {
                 return Err(invalid(
@@ -296,9 +299,9 @@ impl Config {
 
     /// The database URL to open.
     pub fn database_url(&self) -> String {
-        self.database_url.clone().unwrap_or_else(|| {
-            format!("sqlite://{}", self.data_dir.join("halfwave.db").display())
-        })
+        self.database_url
+            .clone()
+            .unwrap_or_else(|| format!("sqlite://{}", self.data_dir.join("halfwave.db").display()))
     }
 
     /// Resolves a path from the file against the file's directory.
@@ -331,8 +334,9 @@ mod tests {
 
     #[test]
     fn bad_value_names_the_line() {
-        let err = parse("bind = \"127.0.0.1:8440\"\n\n[limits]\nmax_level_at_modulator_dbm = \"hot\"\n")
-            .unwrap_err();
+        let err =
+            parse("bind = \"127.0.0.1:8440\"\n\n[limits]\nmax_level_at_modulator_dbm = \"hot\"\n")
+                .unwrap_err();
         match err {
             ConfigError::Syntax { line, .. } => assert_eq!(line, 4),
             other => panic!("expected a syntax error, got {other}"),

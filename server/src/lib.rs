@@ -3,10 +3,16 @@
 //! The crate is split so that data flows one way, from instrument bytes to HTTP views:
 //! - [`analysis`]: pure functions, trace -> comb lines -> modulation index -> V_pi; no I/O.
 //! - [`cli`]: the `halfwave` command line (each subcommand one file).
+//! - [`config`]: the daemon's TOML configuration with environment overrides.
+//! - [`engine`]: plans, the per-bench queue, the sweep executor and the RF-off interlocks.
+//! - [`shutdown`]: waiting for SIGINT/SIGTERM.
 //! - [`telemetry`]: tracing set-up, done once at start.
 
 pub mod analysis;
 pub mod cli;
+pub mod config;
+pub mod engine;
+pub mod shutdown;
 pub mod telemetry;
 
 pub use halfwave_units as units;

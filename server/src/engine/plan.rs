@@ -281,11 +281,15 @@ impl PlanRequest {
                 }
             }
             if let Some((f, l, at_mod)) = worst {
-                let which = if ceiling == device_limit && device_limit.0 < ctx.hard_limit_at_modulator.0 {
-                    format!("the device's RF input limit of {:.2}", device_limit)
-                } else {
-                    format!("the daemon's hard limit of {:.2}", ctx.hard_limit_at_modulator)
-                };
+                let which =
+                    if ceiling == device_limit && device_limit.0 < ctx.hard_limit_at_modulator.0 {
+                        format!("the device's RF input limit of {:.2}", device_limit)
+                    } else {
+                        format!(
+                            "the daemon's hard limit of {:.2}",
+                            ctx.hard_limit_at_modulator
+                        )
+                    };
                 errs.push(
                     "levels",
                     format!(
@@ -309,7 +313,10 @@ impl PlanRequest {
                         analyzer: choice,
                     }),
                     Err((field, message)) => {
-                        errs.push(field, format!("at frequency {i} ({:.6} GHz): {message}", f.ghz()));
+                        errs.push(
+                            field,
+                            format!("at frequency {i} ({:.6} GHz): {message}", f.ghz()),
+                        );
                         break;
                     }
                 }
@@ -333,7 +340,10 @@ impl PlanRequest {
         let d = &self.device;
         let serial = d.serial.trim();
         if serial.is_empty() || serial.len() > 64 {
-            errs.push("device.serial", "give the modulator's serial number (1 to 64 characters)");
+            errs.push(
+                "device.serial",
+                "give the modulator's serial number (1 to 64 characters)",
+            );
         } else if !serial
             .chars()
             .all(|c| c.is_ascii_alphanumeric() || "-_./:#".contains(c))
@@ -444,29 +454,43 @@ fn expand_frequencies(
             let log = matches!(spec, FrequencySpec::Logarithmic { .. });
             (0..n)
                 .map(|i| {
-                    let t = if n == 1 { 0.0 } else { i as f64 / (n - 1) as f64 };
-                    if log {
+                    let t = if n == 1 {
+                        0.0
+                    } else {
+                        i as f64 / (n - 1) as f64
+                    };
+                    // The end points are the user's numbers exactly, not ln/exp round trips.
+                    if i == 0 {
+                        *start_hz
+                    } else if i + 1 == n {
+                        *stop_hz
+                    } else if log {
                         (start_hz.ln() + t * (stop_hz.ln() - start_hz.ln())).exp()
                     } else {
                         start_hz + t * (stop_hz - start_hz)
                     }
                 })
-                // Rounding in exp/ln must not push an end point outside the range it came from.
-                .map(|f| f.clamp(*start_hz, *stop_hz))
                 .collect()
         }
     };
     if values.len() > MAX_FREQUENCIES {
         errs.push(
             "frequencies",
-            format!("at most {MAX_FREQUENCIES} frequencies per plan, got {}", values.len()),
+            format!(
+                "at most {MAX_FREQUENCIES} frequencies per plan, got {}",
+                values.len()
+            ),
         );
         return None;
     }
     Some(values.into_iter().map(Hz).collect())
 }
 
-fn expand_levels(spec: &LevelSpec, limits: &SourceLimits, errs: &mut Collector) -> Option<Vec<Dbm>> {
+fn expand_levels(
+    spec: &LevelSpec,
+    limits: &SourceLimits,
+    errs: &mut Collector,
+) -> Option<Vec<Dbm>> {
     let in_range = |l: f64| l >= limits.min_level.0 && l <= limits.max_level.0;
     let range_text = format!(
         "the source's range {:.2} to {:.2}",
@@ -543,7 +567,10 @@ fn expand_levels(spec: &LevelSpec, limits: &SourceLimits, errs: &mut Collector) 
     if values.len() > MAX_LEVELS {
         errs.push(
             "levels",
-            format!("at most {MAX_LEVELS} levels per frequency, got {}", values.len()),
+            format!(
+                "at most {MAX_LEVELS} levels per frequency, got {}",
+                values.len()
+            ),
         );
         return None;
     }
@@ -563,11 +590,16 @@ fn choose_analyzer(
             format!("must be from 1 to 40, got {orders}"),
         ));
     }
-    let points = spec.points.unwrap_or(DEFAULT_TRACE_POINTS.min(caps.max_points));
+    let points = spec
+        .points
+        .unwrap_or(DEFAULT_TRACE_POINTS.min(caps.max_points));
     if points < 101 || points > caps.max_points {
         return Err((
             "analyzer.points",
-            format!("must be from 101 to {} (the analyzer's maximum), got {points}", caps.max_points),
+            format!(
+                "must be from 101 to {} (the analyzer's maximum), got {points}",
+                caps.max_points
+            ),
         ));
     }
     let rbw = match spec.resolution_bandwidth_hz {
@@ -615,7 +647,10 @@ fn choose_analyzer(
     let span = match spec.span_hz {
         Some(s) => {
             if !s.is_finite() || s <= 0.0 {
-                return Err(("analyzer.span_hz", format!("must be a positive span in Hz, got {s}")));
+                return Err((
+                    "analyzer.span_hz",
+                    format!("must be a positive span in Hz, got {s}"),
+                ));
             }
             Hz(s)
         }
@@ -673,7 +708,16 @@ mod tests {
             max_frequency: Hz(200e12),
             min_span: Hz(1e6),
             max_span: Hz(5e12),
-            resolution_bandwidths: vec![Hz(1e6), Hz(5e6), Hz(10e6), Hz(20e6), Hz(50e6), Hz(100e6), Hz(200e6), Hz(500e6)],
+            resolution_bandwidths: vec![
+                Hz(1e6),
+                Hz(5e6),
+                Hz(10e6),
+                Hz(20e6),
+                Hz(50e6),
+                Hz(100e6),
+                Hz(200e6),
+                Hz(500e6),
+            ],
             max_points: 20_001,
             typical_sweep_time: Seconds(0.5),
         }
@@ -737,7 +781,10 @@ mod tests {
         let err = validate(&req, 30.0).unwrap_err();
         assert_eq!(err.errors.len(), 1, "{err}");
         assert_eq!(err.errors[0].field, "levels");
-        assert!(err.errors[0].message.contains("device's RF input limit"), "{err}");
+        assert!(
+            err.errors[0].message.contains("device's RF input limit"),
+            "{err}"
+        );
         assert!(err.errors[0].message.contains("22.00 dBm"), "{err}");
     }
 
@@ -768,7 +815,12 @@ mod tests {
         req.device.serial = String::new();
         let err = validate(&req, 24.0).unwrap_err();
         let fields: Vec<&str> = err.errors.iter().map(|e| e.field.as_str()).collect();
-        for f in ["device.serial", "settle_s", "frequencies.stop_hz", "levels.step_db"] {
+        for f in [
+            "device.serial",
+            "settle_s",
+            "frequencies.stop_hz",
+            "levels.step_db",
+        ] {
             assert!(fields.contains(&f), "{f} missing from {fields:?}");
         }
     }
@@ -813,7 +865,10 @@ mod tests {
         for step in &plan.steps {
             let a = step.analyzer;
             assert!(a.resolution_bandwidth.0 <= step.frequency.0 * AUTO_RBW_FRACTION);
-            assert_eq!(a.span.0, (2.0 * DEFAULT_EXPECTED_ORDERS as f64 + 2.0) * step.frequency.0);
+            assert_eq!(
+                a.span.0,
+                (2.0 * DEFAULT_EXPECTED_ORDERS as f64 + 2.0) * step.frequency.0
+            );
         }
         // 1 GHz spacing: widest RBW at most 100 MHz is 100 MHz.
         assert_eq!(plan.steps[0].analyzer.resolution_bandwidth, Hz(100e6));
@@ -827,7 +882,10 @@ mod tests {
         req.analyzer.resolution_bandwidth_hz = Some(500e6);
         let err = validate(&req, 24.0).unwrap_err();
         assert_eq!(err.errors[0].field, "analyzer.resolution_bandwidth_hz");
-        assert!(err.errors[0].message.contains("cannot be resolved"), "{err}");
+        assert!(
+            err.errors[0].message.contains("cannot be resolved"),
+            "{err}"
+        );
     }
 
     #[test]

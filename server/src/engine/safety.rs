@@ -70,7 +70,9 @@ impl Drop for RfOffGuard {
         let source = self.source.clone();
         match tokio::runtime::Handle::try_current() {
             Ok(handle) => {
-                tracing::warn!("run ended without a clean stop; switching RF off from the interlock");
+                tracing::warn!(
+                    "run ended without a clean stop; switching RF off from the interlock"
+                );
                 handle.spawn(async move {
                     if let Err(e) = switch_off(&source).await {
                         tracing::error!(error = %e, "the interlock could not switch the RF output off; switch it off by hand");
