@@ -339,3 +339,16 @@ async fn a_bad_resource_string_is_refused_with_the_form_to_write() {
         "{err}"
     );
 }
+
+#[tokio::test]
+async fn an_unusable_profile_is_refused_before_connecting() {
+    let fake = FakeInstrument::start().await;
+    let mut profile = quick_source_profile();
+    profile.commands.set_frequency = "FREQuency".into();
+    let err = ScpiRfSource::connect(&fake.resource(), profile)
+        .await
+        .unwrap_err();
+    assert!(matches!(err, InstrumentError::BadProfile { .. }), "{err:?}");
+    assert!(err.to_string().contains("commands.set_frequency"), "{err}");
+    assert_eq!(fake.state().connections, 0);
+}

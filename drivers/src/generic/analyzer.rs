@@ -8,14 +8,11 @@
 //! reply turns out to be, and its frequency axis is rebuilt from `STARt?`, `STOP?` and `POINts?`
 //! (linear), as the agreed command set defines it.
 
-use super::format_decimal;
 use super::session::ScpiSession;
 use crate::profile::{fill_template, AnalyzerProfile, PowerUnit};
-use crate::resource::Resource;
 use crate::scpi::block::decode_binary_reply_into;
-use crate::scpi::response::{parse_integer, parse_number, parse_number_list_into};
+use crate::scpi::response::{parse_integer, parse_number_list_into};
 use crate::scpi::{ByteOrder, DataFormat, ParseError};
-use crate::transport::ScpiTransport;
 use crate::{AnalyzerCapabilities, Identity, InstrumentError, SpectrumAnalyzer};
 use async_trait::async_trait;
 use halfwave_units::{Hz, Trace};
@@ -35,35 +32,19 @@ impl ScpiSpectrumAnalyzer {
         resource: &str,
         profile: AnalyzerProfile,
     ) -> Result<ScpiSpectrumAnalyzer, InstrumentError> {
-        let resource = Resource::parse(resource)?;
-        profile
-            .validate("(given to the analyzer driver)")
-            .map_err(|e| InstrumentError::BadProfile {
-                resource: resource.to_string(),
-                reason: e.to_string(),
-            })?;
-        let transport =
-            ScpiTransport::connect(resource, profile.connection.transport_config()).await?;
-        let session = ScpiSession::new(
-            transport,
-            profile.common.clone(),
-            profile.connection.retries,
-        );
-        let mut analyzer = ScpiSpectrumAnalyzer { session, profile };
-        analyzer.session.clear_status().await?;
-        let c = &analyzer.profile.commands;
+        let c = &profile.commands;
         let mut setup = Vec::new();
         if !c.single_sweep_mode.is_empty() {
             setup.push(c.single_sweep_mode.clone());
         }
-        let format = match analyzer.profile.data.format {
+        let format = match profile.data.format {
             DataFormat::Ascii => &c.format_ascii,
             DataFormat::Real32 => &c.format_real32,
             DataFormat::Real64 => &c.format_real64,
         };
         setup.push(format.clone());
-        if analyzer.profile.data.format != DataFormat::Ascii {
-            let order = match analyzer.profile.data.byte_order {
+        if profile.data.format != DataFormat::Ascii {
+            let order = match profile.data.byte_order {
                 ByteOrder::Normal => &c.byte_order_normal,
                 ByteOrder::Swapped => &c.byte_order_swapped,
             };
@@ -71,10 +52,16 @@ impl ScpiSpectrumAnalyzer {
                 setup.push(order.clone());
             }
         }
-        setup.extend(analyzer.profile.on_connect.iter().cloned());
-        for command in setup {
-            analyzer.session.write(&command).await?;
-        }
+        setup.extend(profile.on_connect.iter().cloned());
+        let session = ScpiSession::open(
+            resource,
+            profile.validate("(given to the analyzer driver)"),
+            &profile.connection,
+            &profile.common,
+            &setup,
+        )
+        .await?;
+        let analyzer = ScpiSpectrumAnalyzer { session, profile };
         Ok(analyzer)
     }
 
@@ -93,41 +80,6 @@ impl ScpiSpectrumAnalyzer {
         self.session.reset().await
     }
 
-    fn out_of_range(&self, what: &str, value: String, min: String, max: String) -> InstrumentError {
-        InstrumentError::OutOfRange {
-            resource: self.session.name().to_string(),
-            what: what.to_string(),
-            value,
-            min,
-            max,
-        }
-    }
-
-    fn read_back_error(&self, setting: &str, requested: String, actual: String) -> InstrumentError {
-        InstrumentError::ReadBack {
-            resource: self.session.name().to_string(),
-            setting: setting.to_string(),
-            requested,
-            actual,
-        }
-    }
-
-    async fn set_number(
-        &mut self,
-        set: &str,
-        query: &str,
-        value: f64,
-    ) -> Result<f64, InstrumentError> {
-        let command = fill_template(set, &format_decimal(value));
-        let reply = self.session.set_and_read_back(&command, query).await?;
-        parse_number(&reply).map_err(|e| self.session.parse_error(query, e))
-    }
-
-    async fn query_number(&mut self, query: &str) -> Result<f64, InstrumentError> {
-        let reply = self.session.query(query).await?;
-        parse_number(&reply).map_err(|e| self.session.parse_error(query, e))
-    }
-
     /// Sets a frequency-like setting after a range check, verifying the read-back within
     /// `tolerance_hz`.
     async fn set_frequency_setting(
@@ -139,16 +91,20 @@ impl ScpiSpectrumAnalyzer {
         tolerance_hz: f64,
     ) -> Result<Hz, InstrumentError> {
         if !(value.0.is_finite() && value.0 >= min && value.0 <= max) {
-            return Err(self.out_of_range(
+            return Err(self.session.out_of_range(
                 what,
                 value.to_string(),
                 Hz(min).to_string(),
                 Hz(max).to_string(),
             ));
         }
-        let actual = self.set_number(&set, &query, value.0).await?;
+        let actual = self.session.set_number(&set, &query, value.0).await?;
         if !actual.is_finite() || (actual - value.0).abs() > tolerance_hz {
-            return Err(self.read_back_error(what, value.to_string(), Hz(actual).to_string()));
+            return Err(self.session.read_back_error(
+                what,
+                value.to_string(),
+                Hz(actual).to_string(),
+            ));
         }
         Ok(Hz(actual))
     }
@@ -234,7 +190,7 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
     async fn set_points(&mut self, points: usize) -> Result<usize, InstrumentError> {
         let max = self.profile.capabilities.max_points;
         if points < Trace::MIN_POINTS || points > max {
-            return Err(self.out_of_range(
+            return Err(self.session.out_of_range(
                 "point count",
                 points.to_string(),
                 Trace::MIN_POINTS.to_string(),
@@ -248,7 +204,7 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
         let actual = parse_integer(&reply).map_err(|e| self.session.parse_error(&query, e))?;
         let tolerance = self.profile.read_back.points as i64;
         if actual < Trace::MIN_POINTS as i64 || (actual - points as i64).abs() > tolerance {
-            return Err(self.read_back_error(
+            return Err(self.session.read_back_error(
                 "point count",
                 points.to_string(),
                 actual.to_string(),
@@ -280,12 +236,15 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
 
     async fn fetch_trace(&mut self) -> Result<Trace, InstrumentError> {
         let c = self.profile.commands.clone();
-        let start = self.query_number(&c.query_start).await?;
-        let stop = self.query_number(&c.query_stop).await?;
+        let start = self.session.query_number(&c.query_start).await?;
+        let stop = self.session.query_number(&c.query_stop).await?;
         let points_reply = self.session.query(&c.query_points).await?;
         let points = parse_integer(&points_reply)
             .map_err(|e| self.session.parse_error(&c.query_points, e))?;
-        let rbw = self.query_number(&c.query_resolution_bandwidth).await?;
+        let rbw = self
+            .session
+            .query_number(&c.query_resolution_bandwidth)
+            .await?;
         let name = self.session.name().to_string();
         let axis_error = |detail: String| InstrumentError::Parse {
             resource: name.clone(),

@@ -8,9 +8,11 @@
 //! profile's `retries`. Steps are idempotent (set-then-read, or a query), so repeating one is safe.
 //! SCPI errors are never retried: they are the instrument's answer.
 
+use super::format_decimal;
 use crate::ieee488;
-use crate::profile::CommonCommands;
-use crate::scpi::response::parse_error_entry;
+use crate::profile::{fill_template, CommonCommands, ConnectionProfile, ProfileError};
+use crate::resource::Resource;
+use crate::scpi::response::{parse_bool, parse_error_entry, parse_number};
 use crate::scpi::ParseError;
 use crate::transport::ScpiTransport;
 use crate::{Identity, InstrumentError};
@@ -44,6 +46,30 @@ impl ScpiSession {
         }
     }
 
+    /// Opens a session for a driver: parses `resource`, refuses a profile that failed its
+    /// validation (`profile_check`), connects, clears the status and sends `setup` (each command
+    /// checked against the error queue).
+    pub async fn open(
+        resource: &str,
+        profile_check: Result<(), ProfileError>,
+        connection: &ConnectionProfile,
+        common: &CommonCommands,
+        setup: &[String],
+    ) -> Result<ScpiSession, InstrumentError> {
+        let resource = Resource::parse(resource)?;
+        profile_check.map_err(|e| InstrumentError::BadProfile {
+            resource: resource.to_string(),
+            reason: e.to_string(),
+        })?;
+        let transport = ScpiTransport::connect(resource, connection.transport_config()).await?;
+        let mut session = ScpiSession::new(transport, common.clone(), connection.retries);
+        session.clear_status().await?;
+        for command in setup {
+            session.write(command).await?;
+        }
+        Ok(session)
+    }
+
     /// The instrument's resource string, for errors and logs.
     pub fn name(&self) -> &str {
         self.transport.name()
@@ -66,6 +92,63 @@ impl ScpiSession {
             operation: operation.to_string(),
             detail: error.0,
         }
+    }
+
+    /// A request outside the allowed range (nothing was sent).
+    pub fn out_of_range(
+        &self,
+        what: &str,
+        value: String,
+        min: String,
+        max: String,
+    ) -> InstrumentError {
+        InstrumentError::OutOfRange {
+            resource: self.name().to_string(),
+            what: what.to_string(),
+            value,
+            min,
+            max,
+        }
+    }
+
+    /// A setting that read back outside its tolerance.
+    pub fn read_back_error(
+        &self,
+        setting: &str,
+        requested: String,
+        actual: String,
+    ) -> InstrumentError {
+        InstrumentError::ReadBack {
+            resource: self.name().to_string(),
+            setting: setting.to_string(),
+            requested,
+            actual,
+        }
+    }
+
+    /// Fills `set_template` with `value`, runs it as a configuration step and parses the
+    /// read-back of `query` as a number.
+    pub async fn set_number(
+        &mut self,
+        set_template: &str,
+        query: &str,
+        value: f64,
+    ) -> Result<f64, InstrumentError> {
+        let command = fill_template(set_template, &format_decimal(value));
+        let reply = self.set_and_read_back(&command, query).await?;
+        parse_number(&reply).map_err(|e| self.parse_error(query, e))
+    }
+
+    /// Sends a query and parses the reply as a number.
+    pub async fn query_number(&mut self, query: &str) -> Result<f64, InstrumentError> {
+        let reply = self.query(query).await?;
+        parse_number(&reply).map_err(|e| self.parse_error(query, e))
+    }
+
+    /// Sends a query and parses the reply as a boolean (`0`/`1`/`ON`/`OFF`).
+    pub async fn query_bool(&mut self, query: &str) -> Result<bool, InstrumentError> {
+        let reply = self.query(query).await?;
+        parse_bool(&reply).map_err(|e| self.parse_error(query, e))
     }
 
     /// Reads the error queue until it reports no error. Any entries found become one

@@ -7,12 +7,9 @@
 //! harder than any other call: it reconnects and repeats until the instrument confirms the output
 //! is off, because it is what every stop path relies on.
 
-use super::format_decimal;
 use super::session::ScpiSession;
 use crate::profile::{fill_template, SourceProfile};
-use crate::resource::Resource;
-use crate::scpi::response::{parse_bool, parse_number};
-use crate::transport::ScpiTransport;
+use crate::scpi::response::parse_bool;
 use crate::{Identity, InstrumentError, RfSource, SourceLimits};
 use async_trait::async_trait;
 use halfwave_units::{Dbm, Hz};
@@ -34,25 +31,15 @@ impl ScpiRfSource {
         resource: &str,
         profile: SourceProfile,
     ) -> Result<ScpiRfSource, InstrumentError> {
-        let resource = Resource::parse(resource)?;
-        profile
-            .validate("(given to the RF source driver)")
-            .map_err(|e| InstrumentError::BadProfile {
-                resource: resource.to_string(),
-                reason: e.to_string(),
-            })?;
-        let transport =
-            ScpiTransport::connect(resource, profile.connection.transport_config()).await?;
-        let session = ScpiSession::new(
-            transport,
-            profile.common.clone(),
-            profile.connection.retries,
-        );
-        let mut source = ScpiRfSource { session, profile };
-        source.session.clear_status().await?;
-        for command in source.profile.on_connect.clone() {
-            source.session.write(&command).await?;
-        }
+        let session = ScpiSession::open(
+            resource,
+            profile.validate("(given to the RF source driver)"),
+            &profile.connection,
+            &profile.common,
+            &profile.on_connect,
+        )
+        .await?;
+        let source = ScpiRfSource { session, profile };
         Ok(source)
     }
 
@@ -75,47 +62,18 @@ impl ScpiRfSource {
         &self,
         what: &str,
         value: f64,
-        min: f64,
-        max: f64,
+        (min, max): (f64, f64),
         unit: &str,
     ) -> Result<(), InstrumentError> {
         if value.is_finite() && value >= min && value <= max {
             return Ok(());
         }
-        Err(InstrumentError::OutOfRange {
-            resource: self.session.name().to_string(),
-            what: what.to_string(),
-            value: format!("{value} {unit}"),
-            min: format!("{min} {unit}"),
-            max: format!("{max} {unit}"),
-        })
-    }
-
-    fn read_back_error(&self, setting: &str, requested: String, actual: String) -> InstrumentError {
-        InstrumentError::ReadBack {
-            resource: self.session.name().to_string(),
-            setting: setting.to_string(),
-            requested,
-            actual,
-        }
-    }
-
-    /// Sets a number and returns its read-back.
-    async fn set_number(
-        &mut self,
-        set: &str,
-        query: &str,
-        value: f64,
-    ) -> Result<f64, InstrumentError> {
-        let command = fill_template(set, &format_decimal(value));
-        let reply = self.session.set_and_read_back(&command, query).await?;
-        parse_number(&reply).map_err(|e| self.session.parse_error(query, e))
-    }
-
-    async fn query_output(&mut self) -> Result<bool, InstrumentError> {
-        let query = self.profile.commands.query_output.clone();
-        let reply = self.session.query(&query).await?;
-        parse_bool(&reply).map_err(|e| self.session.parse_error(&query, e))
+        Err(self.session.out_of_range(
+            what,
+            format!("{value} {unit}"),
+            format!("{min} {unit}"),
+            format!("{max} {unit}"),
+        ))
     }
 
     async fn try_off(&mut self) -> Result<(), InstrumentError> {
@@ -128,7 +86,9 @@ impl ScpiRfSource {
         let reply = transport.query(&query).await?;
         match parse_bool(&reply) {
             Ok(false) => Ok(()),
-            Ok(true) => Err(self.read_back_error("output", "off".into(), "on".into())),
+            Ok(true) => Err(self
+                .session
+                .read_back_error("output", "off".into(), "on".into())),
             Err(e) => Err(self.session.parse_error(&query, e)),
         }
     }
@@ -153,18 +113,17 @@ impl RfSource for ScpiRfSource {
         self.check_range(
             "frequency",
             frequency.0,
-            l.min_frequency_hz,
-            l.max_frequency_hz,
+            (l.min_frequency_hz, l.max_frequency_hz),
             "Hz",
         )?;
         let (set, query) = (
             self.profile.commands.set_frequency.clone(),
             self.profile.commands.query_frequency.clone(),
         );
-        let actual = self.set_number(&set, &query, frequency.0).await?;
+        let actual = self.session.set_number(&set, &query, frequency.0).await?;
         if (actual - frequency.0).abs() > self.profile.read_back.frequency_hz || !actual.is_finite()
         {
-            return Err(self.read_back_error(
+            return Err(self.session.read_back_error(
                 "frequency",
                 Hz(frequency.0).to_string(),
                 Hz(actual).to_string(),
@@ -175,14 +134,18 @@ impl RfSource for ScpiRfSource {
 
     async fn set_level(&mut self, level: Dbm) -> Result<Dbm, InstrumentError> {
         let l = &self.profile.limits;
-        self.check_range("level", level.0, l.min_level_dbm, l.max_level_dbm, "dBm")?;
+        self.check_range("level", level.0, (l.min_level_dbm, l.max_level_dbm), "dBm")?;
         let (set, query) = (
             self.profile.commands.set_level.clone(),
             self.profile.commands.query_level.clone(),
         );
-        let actual = self.set_number(&set, &query, level.0).await?;
+        let actual = self.session.set_number(&set, &query, level.0).await?;
         if (actual - level.0).abs() > self.profile.read_back.level_db || !actual.is_finite() {
-            return Err(self.read_back_error("level", level.to_string(), Dbm(actual).to_string()));
+            return Err(self.session.read_back_error(
+                "level",
+                level.to_string(),
+                Dbm(actual).to_string(),
+            ));
         }
         Ok(Dbm(actual))
     }
@@ -200,13 +163,16 @@ impl RfSource for ScpiRfSource {
         let actual = parse_bool(&reply).map_err(|e| self.session.parse_error(&query, e))?;
         if actual != on {
             let state = |b: bool| if b { "on" } else { "off" }.to_string();
-            return Err(self.read_back_error("output", state(on), state(actual)));
+            return Err(self
+                .session
+                .read_back_error("output", state(on), state(actual)));
         }
         Ok(actual)
     }
 
     async fn output_enabled(&mut self) -> Result<bool, InstrumentError> {
-        self.query_output().await
+        let query = self.profile.commands.query_output.clone();
+        self.session.query_bool(&query).await
     }
 
     async fn safe_off(&mut self) -> Result<(), InstrumentError> {
