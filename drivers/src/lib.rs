@@ -17,6 +17,7 @@ pub mod instrument;
 pub mod profile;
 pub mod resource;
 pub mod scpi;
+pub mod sim;
 pub mod transport;
 
 pub use generic::{ScpiRfSource, ScpiSpectrumAnalyzer};

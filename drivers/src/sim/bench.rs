@@ -1,0 +1,164 @@
+//! [`SimBench`]: the handle to one simulated bench, cheap to clone and shared by every way in.
+//!
+//! Tests hold a `SimBench` to read the truth (the scenario's V_pi, the overdrive flag, the
+//! laser's real frequency, what each instrument was told) while the code under test talks to the
+//! instruments in-process or over TCP.
+
+use super::in_process::{SimAnalyzer, SimRfSource};
+use super::scenario::Scenario;
+use super::state::{BenchState, OverdriveEvent};
+use crate::scpi::command::ScpiError;
+use halfwave_units::{Dbm, Hz, Volts};
+use rand::SeedableRng;
+use std::sync::{Arc, Mutex, MutexGuard};
+
+/// Which instrument of the bench.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Role {
+    RfSource,
+    Analyzer,
+}
+
+impl Role {
+    /// A short name for logs and resource strings.
+    pub fn name(self) -> &'static str {
+        match self {
+            Role::RfSource => "rf-source",
+            Role::Analyzer => "analyzer",
+        }
+    }
+}
+
+/// One simulated bench (see the module docs of [`crate::sim`]).
+#[derive(Debug, Clone)]
+pub struct SimBench {
+    scenario: Arc<Scenario>,
+    state: Arc<Mutex<BenchState>>,
+}
+
+impl SimBench {
+    /// A bench from a checked scenario and a seed, with real-time durations (time factor 1).
+    pub fn new(scenario: Scenario, seed: u64) -> SimBench {
+        let scenario = Arc::new(scenario);
+        let state = BenchState::new(
+            scenario.clone(),
+            rand::rngs::StdRng::seed_from_u64(seed),
+            1.0,
+        );
+        SimBench {
+            scenario,
+            state: Arc::new(Mutex::new(state)),
+        }
+    }
+
+    /// The same bench with durations scaled by `factor` (0 = instant; negative or NaN count as 0).
+    pub fn with_time_factor(self, factor: f64) -> SimBench {
+        self.set_time_factor(factor);
+        self
+    }
+
+    /// Scales the simulated durations (0 = instant).
+    pub fn set_time_factor(&self, factor: f64) {
+        let factor = if factor.is_finite() && factor > 0.0 {
+            factor
+        } else {
+            0.0
+        };
+        self.lock().time_factor = factor;
+    }
+
+    /// The current time factor.
+    pub fn time_factor(&self) -> f64 {
+        self.lock().time_factor
+    }
+
+    /// Locks the state. A panic elsewhere while holding the lock leaves the data usable (plain
+    /// numbers), so a poisoned lock is taken over rather than propagated.
+    pub(crate) fn lock(&self) -> MutexGuard<'_, BenchState> {
+        self.state.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
+    /// The scenario this bench runs.
+    pub fn scenario(&self) -> &Scenario {
+        &self.scenario
+    }
+
+    /// An in-process handle to the RF source (implements [`crate::RfSource`]).
+    pub fn rf_source(&self) -> SimRfSource {
+        SimRfSource::new(self.clone())
+    }
+
+    /// An in-process handle to the analyzer (implements [`crate::SpectrumAnalyzer`]).
+    pub fn analyzer(&self) -> SimAnalyzer {
+        SimAnalyzer::new(self.clone())
+    }
+
+    /// Truth: V_pi of the modulator at `f` (same as `scenario().v_pi_at(f)`).
+    pub fn v_pi_at(&self, f: Hz) -> Volts {
+        self.scenario.v_pi_at(f)
+    }
+
+    /// Truth: true once the modulator's RF input limit has been exceeded (never cleared).
+    pub fn overdriven(&self) -> bool {
+        !self.lock().overdrive_events.is_empty()
+    }
+
+    /// Truth: every time the modulator's RF input limit was exceeded.
+    pub fn overdrive_events(&self) -> Vec<OverdriveEvent> {
+        self.lock().overdrive_events.clone()
+    }
+
+    /// Truth: whether the RF output is on now.
+    pub fn rf_output_on(&self) -> bool {
+        self.lock().source.output_on
+    }
+
+    /// Truth: the source's frequency and set level now.
+    pub fn rf_setting(&self) -> (Hz, Dbm) {
+        let state = self.lock();
+        (state.source.frequency, state.source.level)
+    }
+
+    /// Truth: the level at the modulator's input now (as if the output were on).
+    pub fn level_at_modulator(&self) -> Dbm {
+        self.lock().level_at_modulator()
+    }
+
+    /// Truth: the modulation index now (0 with the output off).
+    pub fn modulation_index(&self) -> f64 {
+        self.lock().modulation_index()
+    }
+
+    /// Truth: the laser's optical frequency now, drift included.
+    pub fn laser_frequency(&self) -> Hz {
+        self.lock().laser_frequency()
+    }
+
+    /// Every command an instrument received, in order, as SCPI text. In-process calls are logged
+    /// as the equivalent SCPI command; the TCP server logs each message unit as received.
+    pub fn command_log(&self, role: Role) -> Vec<String> {
+        let state = self.lock();
+        match role {
+            Role::RfSource => state.source.status.log.clone(),
+            Role::Analyzer => state.analyzer.status.log.clone(),
+        }
+    }
+
+    /// Empties an instrument's command log.
+    pub fn clear_command_log(&self, role: Role) {
+        let mut state = self.lock();
+        match role {
+            Role::RfSource => state.source.status.log.clear(),
+            Role::Analyzer => state.analyzer.status.log.clear(),
+        }
+    }
+
+    /// Puts an error into an instrument's error queue, as if the instrument had raised it.
+    pub fn push_error(&self, role: Role, error: ScpiError) {
+        let mut state = self.lock();
+        match role {
+            Role::RfSource => state.source.status.push_error(error),
+            Role::Analyzer => state.analyzer.status.push_error(error),
+        }
+    }
+}

@@ -1,0 +1,28 @@
+//! The simulated bench: a laser, a phase modulator, a drive chain, an RF source and an optical
+//! spectrum analyzer, described by a TOML [`Scenario`] and driven by a seed.
+//!
+//! It exists so that everything above the drivers (analysis, engine, API, end-to-end tests) can
+//! run without a lab, and so that the SCPI client drivers are tested against a server that follows
+//! the standard. One [`SimBench`] holds the state behind a mutex; it hands out
+//! - in-process instruments ([`SimRfSource`], [`SimAnalyzer`]) implementing the instrument traits,
+//! - the truth for tests: V_pi at any frequency, the overdrive flag, the laser's real position,
+//!   and a command log per instrument.
+//!
+//! The same seed and the same sequence of commands give the same traces. Durations (sweep time,
+//! settling time) are real `tokio` sleeps scaled by a time factor; 0 makes them instant for tests.
+//!
+//! Modules: [`scenario`] (what the bench is made of, the truth such as `v_pi_at`), [`physics`]
+//! (Bessel comb and analyzer rendering), [`state`] (settings and operations shared by every way
+//! in), [`bench`] (the shared handle), [`in_process`] (the trait implementations).
+
+pub mod bench;
+pub mod in_process;
+pub mod noise;
+pub mod physics;
+pub mod scenario;
+pub mod state;
+
+pub use bench::{Role, SimBench};
+pub use in_process::{SimAnalyzer, SimRfSource};
+pub use scenario::{Scenario, ScenarioError};
+pub use state::OverdriveEvent;
