@@ -124,12 +124,7 @@ impl ScpiSpectrumAnalyzer {
                 .map_err(|_| ParseError("the ASCII trace holds bytes that are not text".into()))?;
             parse_number_list_into(text, out)?;
         }
-        match data.power_unit {
-            PowerUnit::Dbm => {}
-            PowerUnit::Milliwatt => out.iter_mut().for_each(|v| *v = 10.0 * v.log10()),
-            PowerUnit::Watt => out.iter_mut().for_each(|v| *v = 10.0 * v.log10() + 30.0),
-        }
-        Ok(())
+        convert_to_dbm(out, data.power_unit)
     }
 }
 
@@ -281,5 +276,47 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
             operation: c.query_trace.clone(),
             detail: format!("the trace is not usable: {e}"),
         })
+    }
+}
+
+/// Converts trace values in `unit` to dBm in place: L = 10 log10(P / 1 mW). A power of zero or
+/// less has no level in dBm and is an error naming the point.
+pub fn convert_to_dbm(values: &mut [f64], unit: PowerUnit) -> Result<(), ParseError> {
+    let offset_db = match unit {
+        PowerUnit::Dbm => return Ok(()),
+        PowerUnit::Milliwatt => 0.0,
+        PowerUnit::Watt => 30.0,
+    };
+    for (index, value) in values.iter_mut().enumerate() {
+        if !(value.is_finite() && *value > 0.0) {
+            return Err(ParseError(format!(
+                "trace point {index} is {value} {unit:?}, which has no level in dBm (powers must be above zero)"
+            )));
+        }
+        *value = 10.0 * value.log10() + offset_db;
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn linear_powers_become_dbm() {
+        // Definition of the dBm: 1 mW = 0 dBm, 1 W = 30 dBm, 10 uW = -20 dBm (common practice).
+        let mut mw = vec![1.0, 0.01, 100.0];
+        convert_to_dbm(&mut mw, PowerUnit::Milliwatt).unwrap();
+        assert_eq!(mw, vec![0.0, -20.0, 20.0]);
+        let mut w = vec![1.0, 1e-3];
+        convert_to_dbm(&mut w, PowerUnit::Watt).unwrap();
+        assert_eq!(w, vec![30.0, 0.0]);
+        let mut dbm = vec![-3.0];
+        convert_to_dbm(&mut dbm, PowerUnit::Dbm).unwrap();
+        assert_eq!(dbm, vec![-3.0]);
+        for bad in [0.0, -1.0, f64::NAN, f64::INFINITY] {
+            let err = convert_to_dbm(&mut [1.0, bad], PowerUnit::Milliwatt).unwrap_err();
+            assert!(err.0.contains("point 1"), "{err}");
+        }
     }
 }
