@@ -125,6 +125,8 @@ pub struct CommonCommands {
     pub reset: String,
     pub clear_status: String,
     pub operation_complete: String,
+    /// Reads the standard event status register.
+    pub event_status: String,
     /// The error-queue query; an empty string means the instrument has none (errors then go
     /// unnoticed until a read-back disagrees).
     pub error_query: String,
@@ -140,6 +142,7 @@ impl Default for CommonCommands {
             reset: crate::ieee488::RESET.into(),
             clear_status: crate::ieee488::CLEAR_STATUS.into(),
             operation_complete: crate::ieee488::OPERATION_COMPLETE.into(),
+            event_status: crate::ieee488::EVENT_STATUS.into(),
             error_query: crate::ieee488::SYSTEM_ERROR.into(),
             max_error_entries: 32,
         }

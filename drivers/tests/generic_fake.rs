@@ -352,3 +352,21 @@ async fn an_unusable_profile_is_refused_before_connecting() {
     assert!(err.to_string().contains("commands.set_frequency"), "{err}");
     assert_eq!(fake.state().connections, 0);
 }
+
+#[tokio::test]
+async fn common_commands_reset_and_event_status() {
+    let fake = FakeInstrument::start().await;
+    let mut source = ScpiRfSource::connect(&fake.resource(), quick_source_profile())
+        .await
+        .unwrap();
+    source.set_frequency(Hz(7e9)).await.unwrap();
+    // IEEE 488.2 §10.32 *RST returns the device to its reset state (from memory); the fake's
+    // reset frequency is 1 GHz.
+    source.reset().await.unwrap();
+    assert_eq!(fake.state().frequency_hz, 1e9);
+    let esr = source.session_mut().event_status().await.unwrap();
+    assert!(!esr.has_error());
+    let commands = fake.state().commands.clone();
+    let reset = commands.iter().position(|c| c == "*RST").unwrap();
+    assert_eq!(&commands[reset + 1..reset + 3], ["*OPC?", "SYSTem:ERRor?"]);
+}

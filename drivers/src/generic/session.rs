@@ -275,6 +275,13 @@ impl ScpiSession {
         self.check_errors(&command).await
     }
 
+    /// `*ESR?`: reads (and thereby clears) the standard event status register.
+    pub async fn event_status(&mut self) -> Result<ieee488::EventStatus, InstrumentError> {
+        let command = self.common.event_status.clone();
+        let reply = self.query(&command).await?;
+        ieee488::EventStatus::parse(&reply).map_err(|e| self.parse_error(&command, e))
+    }
+
     /// `*RST`, waits for completion and checks the error queue.
     pub async fn reset(&mut self) -> Result<(), InstrumentError> {
         let reset = self.common.reset.clone();
