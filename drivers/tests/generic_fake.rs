@@ -370,3 +370,29 @@ async fn common_commands_reset_and_event_status() {
     let reset = commands.iter().position(|c| c == "*RST").unwrap();
     assert_eq!(&commands[reset + 1..reset + 3], ["*OPC?", "SYSTem:ERRor?"]);
 }
+
+#[tokio::test]
+async fn drivers_connect_from_configuration_as_trait_objects() {
+    let fake = FakeInstrument::start().await;
+    let mut source = halfwave_drivers::generic::connect_source(&fake.resource(), None)
+        .await
+        .unwrap();
+    assert_eq!(source.identify().await.unwrap().model, "FAKE-1");
+    let analyzer_profile = example_profile("example-optical-analyzer-real64-swapped.toml");
+    let mut analyzer =
+        halfwave_drivers::generic::connect_analyzer(&fake.resource(), Some(&analyzer_profile))
+            .await
+            .unwrap();
+    assert_eq!(analyzer.capabilities().max_points, 50001);
+    assert_eq!(analyzer.set_points(11).await.unwrap(), 11);
+    let missing = Path::new("/nonexistent/profile.toml");
+    let err = halfwave_drivers::generic::connect_source(&fake.resource(), Some(missing))
+        .await
+        .err()
+        .unwrap();
+    assert!(matches!(err, InstrumentError::BadProfile { .. }), "{err:?}");
+    assert!(
+        err.to_string().contains("/nonexistent/profile.toml"),
+        "{err}"
+    );
+}

@@ -16,6 +16,44 @@ pub use analyzer::ScpiSpectrumAnalyzer;
 pub use session::ScpiSession;
 pub use source::ScpiRfSource;
 
+/// Connects a generic RF source from configuration: the resource string and an optional profile
+/// file (the standard SCPI tree when `None`).
+pub async fn connect_source(
+    resource: &str,
+    profile: Option<&std::path::Path>,
+) -> Result<Box<dyn crate::RfSource>, crate::InstrumentError> {
+    let profile = match profile {
+        Some(path) => crate::profile::SourceProfile::from_file(path).map_err(|e| {
+            crate::InstrumentError::BadProfile {
+                resource: resource.to_string(),
+                reason: e.to_string(),
+            }
+        })?,
+        None => crate::profile::SourceProfile::standard(),
+    };
+    Ok(Box::new(ScpiRfSource::connect(resource, profile).await?))
+}
+
+/// Connects a generic spectrum analyzer from configuration: the resource string and an optional
+/// profile file (the standard SCPI tree when `None`).
+pub async fn connect_analyzer(
+    resource: &str,
+    profile: Option<&std::path::Path>,
+) -> Result<Box<dyn crate::SpectrumAnalyzer>, crate::InstrumentError> {
+    let profile = match profile {
+        Some(path) => crate::profile::AnalyzerProfile::from_file(path).map_err(|e| {
+            crate::InstrumentError::BadProfile {
+                resource: resource.to_string(),
+                reason: e.to_string(),
+            }
+        })?,
+        None => crate::profile::AnalyzerProfile::standard(),
+    };
+    Ok(Box::new(
+        ScpiSpectrumAnalyzer::connect(resource, profile).await?,
+    ))
+}
+
 /// Formats a number for a command in plain decimal (NR1 or NR2, never an exponent), with the
 /// shortest digits that read back as the same `f64`.
 pub fn format_decimal(value: f64) -> String {
