@@ -5,6 +5,8 @@
 
 use clap::{Parser, Subcommand};
 
+pub mod sim;
+
 /// An error that ends a command: the message says what is wrong and what to do.
 #[derive(Debug, thiserror::Error)]
 #[error("{0}")]
@@ -27,9 +29,14 @@ pub struct Cli {
 }
 
 #[derive(Debug, Subcommand)]
-pub enum Command {}
+pub enum Command {
+    /// Serve the simulated bench (RF source and analyzer) as SCPI instruments over TCP.
+    Sim(sim::SimArgs),
+}
 
 /// Runs the parsed command.
 pub fn run(cli: Cli) -> Result<(), CliError> {
-    match cli.command {}
+    match cli.command {
+        Command::Sim(args) => sim::run(args),
+    }
 }

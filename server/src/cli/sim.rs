@@ -1,0 +1,93 @@
+//! `halfwave sim`: the simulated bench served as two SCPI instruments over TCP, for trying the
+//! daemon, the drivers or a client script without a lab.
+//!
+//! It reads a scenario (the built-in one unless `--scenario` names a TOML file), binds the two
+//! ports on 127.0.0.1, prints one line per instrument with its VISA-style resource string once
+//! both accept connections, and runs until Ctrl-C. Printing only after binding means a script or
+//! test can start it with port 0 and read the ports it got from stdout.
+
+use super::CliError;
+use halfwave_drivers::sim::{Role, Scenario, SimBench, SimServer, SimServerConfig};
+use std::io::Write;
+use std::path::PathBuf;
+
+/// Serve a simulated RF source and optical spectrum analyzer as SCPI instruments over TCP.
+#[derive(Debug, clap::Args)]
+pub struct SimArgs {
+    /// Scenario file (TOML) describing laser, modulator, drive chain, source and analyzer;
+    /// the built-in demo scenario when left out.
+    #[arg(long, value_name = "FILE")]
+    pub scenario: Option<PathBuf>,
+    /// TCP port of the simulated RF source on 127.0.0.1 (0 picks a free one).
+    #[arg(long, default_value_t = 5025)]
+    pub source_port: u16,
+    /// TCP port of the simulated analyzer on 127.0.0.1 (0 picks a free one).
+    #[arg(long, default_value_t = 5026)]
+    pub analyzer_port: u16,
+    /// Seed of the noise and laser drift: the same seed and commands give the same traces.
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
+    /// Multiplies sweep and settling times (0 makes them instant, 1 is real time).
+    #[arg(long, default_value_t = 1.0)]
+    pub time_factor: f64,
+}
+
+/// Runs `halfwave sim` until Ctrl-C.
+pub fn run(args: SimArgs) -> Result<(), CliError> {
+    let scenario = match &args.scenario {
+        Some(path) => Scenario::from_file(path),
+        None => Scenario::builtin(),
+    }
+    .map_err(|e| {
+        CliError::new(format!(
+            "{e}; fix the scenario file or leave out --scenario to use the built-in one"
+        ))
+    })?;
+    if !(args.time_factor.is_finite() && args.time_factor >= 0.0) {
+        return Err(CliError::new(format!(
+            "--time-factor {} is not allowed; give 0 (instant), 1 (real time) or another number of 0 or more",
+            args.time_factor
+        )));
+    }
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .map_err(|e| CliError::new(format!("cannot start the async runtime: {e}")))?;
+    runtime.block_on(serve(scenario, args))
+}
+
+async fn serve(scenario: Scenario, args: SimArgs) -> Result<(), CliError> {
+    let bench = SimBench::new(scenario, args.seed).with_time_factor(args.time_factor);
+    let config = SimServerConfig {
+        source_port: args.source_port,
+        analyzer_port: args.analyzer_port,
+    };
+    let server = SimServer::start(bench, config)
+        .await
+        .map_err(|e| CliError::new(e.to_string()))?;
+    {
+        let mut out = std::io::stdout().lock();
+        let printed = writeln!(out, "rf-source {}", server.resource(Role::RfSource))
+            .and_then(|_| writeln!(out, "analyzer {}", server.resource(Role::Analyzer)))
+            .and_then(|_| out.flush());
+        printed.map_err(|e| CliError::new(format!("cannot write to stdout: {e}")))?;
+    }
+    eprintln!(
+        "simulated bench \"{}\" ready (seed {}); press Ctrl-C to stop",
+        server.bench().scenario().name,
+        args.seed
+    );
+    tokio::signal::ctrl_c()
+        .await
+        .map_err(|e| CliError::new(format!("cannot wait for Ctrl-C: {e}")))?;
+    let bench = server.bench().clone();
+    server.shutdown().await;
+    if bench.overdriven() {
+        eprintln!(
+            "warning: the simulated modulator was overdriven {} time(s) during this session",
+            bench.overdrive_events().len()
+        );
+    }
+    Ok(())
+}
