@@ -12,6 +12,9 @@ use halfwave_units::{Dbm, Hz, Volts};
 use rand::SeedableRng;
 use std::sync::{Arc, Mutex, MutexGuard};
 
+/// The largest time factor (a sweep of an hour would then take 1000 hours, still representable).
+pub const MAX_TIME_FACTOR: f64 = 1000.0;
+
 /// Which instrument of the bench.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
 pub enum Role {
@@ -57,10 +60,11 @@ impl SimBench {
         self
     }
 
-    /// Scales the simulated durations (0 = instant).
+    /// Scales the simulated durations (0 = instant). Values above [`MAX_TIME_FACTOR`] are capped;
+    /// negative or NaN values count as 0.
     pub fn set_time_factor(&self, factor: f64) {
         let factor = if factor.is_finite() && factor > 0.0 {
-            factor
+            factor.min(MAX_TIME_FACTOR)
         } else {
             0.0
         };

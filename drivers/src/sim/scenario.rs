@@ -255,6 +255,17 @@ fn check_non_negative(field: &'static str, value: f64) -> Result<(), ScenarioErr
     }
 }
 
+/// The longest simulated duration accepted (one hour), so that scaled waits stay representable.
+pub const MAX_DURATION_S: f64 = 3600.0;
+
+fn check_duration(field: &'static str, value: f64) -> Result<(), ScenarioError> {
+    if value.is_finite() && (0.0..=MAX_DURATION_S).contains(&value) {
+        Ok(())
+    } else {
+        Err(invalid(field, value, "must be between 0 and 3600 seconds"))
+    }
+}
+
 impl Scenario {
     /// Reads and checks a scenario from TOML text.
     pub fn from_toml_str(text: &str) -> Result<Scenario, ScenarioError> {
@@ -331,7 +342,7 @@ impl Scenario {
             s.frequency_resolution_hz,
         )?;
         check_positive("rf_source.level_resolution_db", s.level_resolution_db)?;
-        check_non_negative("rf_source.settling_time_s", s.settling_time_s)?;
+        check_duration("rf_source.settling_time_s", s.settling_time_s)?;
         check_finite("rf_source.level_error_db", s.level_error_db)?;
         check_finite("rf_source.level_error_db_per_ghz", s.level_error_db_per_ghz)?;
 
@@ -373,9 +384,15 @@ impl Scenario {
                 "need 3 <= min_points <= max_points <= 1000001",
             ));
         }
-        check_finite("analyzer.noise_floor_dbm", a.noise_floor_dbm)?;
+        if !(-200.0..=30.0).contains(&a.noise_floor_dbm) {
+            return Err(invalid(
+                "analyzer.noise_floor_dbm",
+                a.noise_floor_dbm,
+                "must lie between -200 and +30 dBm",
+            ));
+        }
         check_non_negative("analyzer.display_noise_db", a.display_noise_db)?;
-        check_non_negative("analyzer.sweep_time_s", a.sweep_time_s)?;
+        check_duration("analyzer.sweep_time_s", a.sweep_time_s)?;
         check_finite("analyzer.frequency_offset_hz", a.frequency_offset_hz)?;
         if !(a.min_span_hz..=a.max_span_hz).contains(&a.default_span_hz) {
             return Err(invalid(

@@ -7,6 +7,7 @@
 //! test can start it with port 0 and read the ports it got from stdout.
 
 use super::CliError;
+use halfwave_drivers::sim::bench::MAX_TIME_FACTOR;
 use halfwave_drivers::sim::{Role, Scenario, SimBench, SimServer, SimServerConfig};
 use std::io::Write;
 use std::path::PathBuf;
@@ -43,9 +44,9 @@ pub fn run(args: SimArgs) -> Result<(), CliError> {
             "{e}; fix the scenario file or leave out --scenario to use the built-in one"
         ))
     })?;
-    if !(args.time_factor.is_finite() && args.time_factor >= 0.0) {
+    if !(args.time_factor.is_finite() && (0.0..=MAX_TIME_FACTOR).contains(&args.time_factor)) {
         return Err(CliError::new(format!(
-            "--time-factor {} is not allowed; give 0 (instant), 1 (real time) or another number of 0 or more",
+            "--time-factor {} is not allowed; give 0 (instant), 1 (real time) or another number from 0 to {MAX_TIME_FACTOR}",
             args.time_factor
         )));
     }

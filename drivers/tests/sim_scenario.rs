@@ -1,0 +1,118 @@
+//! Scenario files: the built-in one parses and holds only invented names; bad files are refused
+//! with a message naming the key; the tabulated V_pi model and the drive-chain table interpolate.
+
+use halfwave_drivers::sim::scenario::{ScenarioError, DEFAULT_SCENARIO_TOML};
+use halfwave_drivers::sim::Scenario;
+use halfwave_units::{Dbm, Hz};
+
+fn with_replaced(from: &str, to: &str) -> Result<Scenario, ScenarioError> {
+    assert!(
+        DEFAULT_SCENARIO_TOML.contains(from),
+        "{from} not in the default"
+    );
+    Scenario::from_toml_str(&DEFAULT_SCENARIO_TOML.replacen(from, to, 1))
+}
+
+fn message_of(result: Result<Scenario, ScenarioError>) -> String {
+    match result {
+        Ok(_) => panic!("the scenario was accepted"),
+        Err(e) => e.to_string(),
+    }
+}
+
+#[test]
+fn the_builtin_scenario_parses_and_is_plausible() {
+    let s = Scenario::builtin().unwrap();
+    assert!(s.name.contains("invented"));
+    // 1550.12 nm is 193.4 THz (f = c / lambda; c exact by SI definition).
+    assert!((s.laser_frequency().value() - 193.398_6e12).abs() < 0.05e12);
+    // The modulator is not overdriven by the source's own maximum in the built-in bench.
+    let worst = s.level_at_modulator(
+        Dbm(s.rf_source.max_level_dbm),
+        Hz(s.rf_source.min_frequency_hz),
+    );
+    assert!(worst.value() < s.modulator.max_rf_input_dbm);
+}
+
+#[test]
+fn bad_values_are_refused_naming_the_key() {
+    let m = message_of(with_replaced(
+        "wavelength_nm = 1550.12",
+        "wavelength_nm = -1550.12",
+    ));
+    assert!(m.contains("laser.wavelength_nm"), "{m}");
+    let m = message_of(with_replaced("sweep_time_s = 0.4", "sweep_time_s = 1e30"));
+    assert!(m.contains("analyzer.sweep_time_s"), "{m}");
+    let m = message_of(with_replaced("min_points = 101", "min_points = 1"));
+    assert!(m.contains("min_points"), "{m}");
+    let m = message_of(with_replaced(
+        "resolution_bandwidths_hz = [1e6, 2e6",
+        "resolution_bandwidths_hz = [2e6, 1e6",
+    ));
+    assert!(m.contains("resolution_bandwidths_hz"), "{m}");
+    let m = message_of(with_replaced(
+        "[[1e8, 0.6], [1e9, 1.1]",
+        "[[1e9, 0.6], [1e8, 1.1]",
+    ));
+    assert!(m.contains("drive_chain.loss_db"), "{m}");
+    // The laser must sit inside the analyzer's range.
+    let m = message_of(with_replaced(
+        "wavelength_nm = 1550.12",
+        "wavelength_nm = 1310.0",
+    ));
+    assert!(m.contains("analyzer's frequency range"), "{m}");
+}
+
+#[test]
+fn unknown_keys_and_wrong_types_are_refused() {
+    let m = message_of(with_replaced(
+        "linewidth_hz = 50e3",
+        "linewidth_hz = 50e3\ncolour = 3",
+    ));
+    assert!(m.contains("colour"), "{m}");
+    let m = message_of(with_replaced("power_dbm = 10.0", "power_dbm = \"ten\""));
+    assert!(m.contains("power_dbm") || m.contains("string"), "{m}");
+    let m = message_of(with_replaced(
+        "filter_shape = \"gaussian\"",
+        "filter_shape = \"boxcar\"",
+    ));
+    assert!(m.contains("boxcar"), "{m}");
+}
+
+#[test]
+fn tabulated_v_pi_and_chain_loss_interpolate_linearly() {
+    let table = r#"[modulator.v_pi]
+model = "table"
+points = [[1e9, 3.0], [11e9, 5.0]]
+"#;
+    let start = DEFAULT_SCENARIO_TOML.find("[modulator.v_pi]").unwrap();
+    let end = DEFAULT_SCENARIO_TOML.find("[drive_chain]").unwrap();
+    let text = format!(
+        "{}{}\n{}",
+        &DEFAULT_SCENARIO_TOML[..start],
+        table,
+        &DEFAULT_SCENARIO_TOML[end..]
+    );
+    let s = Scenario::from_toml_str(&text).unwrap();
+    assert!((s.v_pi_at(Hz::from_ghz(6.0)).value() - 4.0).abs() < 1e-12);
+    assert_eq!(
+        s.v_pi_at(Hz::from_ghz(0.1)).value(),
+        3.0,
+        "held below the table"
+    );
+    assert_eq!(
+        s.v_pi_at(Hz::from_ghz(30.0)).value(),
+        5.0,
+        "held above the table"
+    );
+    // Chain loss between the rows 10 GHz (3.1 dB) and 20 GHz (4.4 dB) of the default.
+    assert!((s.chain_loss_at(Hz::from_ghz(15.0)).value() - 3.75).abs() < 1e-12);
+}
+
+#[test]
+fn formula_v_pi_matches_its_definition() {
+    // V_pi(f) = V0 (1 + a sqrt(f/GHz) + b f/GHz) with the default's V0 = 3.2, a = 0.08,
+    // b = 0.015: at 4 GHz, 3.2 * (1 + 0.16 + 0.06) = 3.904 V.
+    let s = Scenario::builtin().unwrap();
+    assert!((s.v_pi_at(Hz::from_ghz(4.0)).value() - 3.904).abs() < 1e-12);
+}
