@@ -9,6 +9,8 @@
 //! - [`comb`]: finding the comb on a trace and measuring its lines and floor.
 //! - [`index`]: the modulation index by least squares, sideband ratio and carrier depletion.
 //! - [`trace_analysis`]: one trace in, every estimate and the line table out.
+//! - [`vpi`]: V_pi from a drive-level sweep, with the points that break the line flagged.
+//! - [`response`]: V_pi versus frequency as a response in dB, with its 3 dB and 6 dB points.
 //! - [`synthetic`]: traces computed from Bessel physics, for tests, benchmarks and demos.
 //! - [`error`]: the one error type, with messages for the operator.
 
@@ -17,14 +19,18 @@ pub mod chain;
 pub mod comb;
 pub mod error;
 pub mod index;
+pub mod response;
 pub mod synthetic;
 pub mod trace_analysis;
+pub mod vpi;
 
 pub use chain::{
     level_for_peak_voltage, pad_dissipated_fraction, peak_voltage, ChainPoint, DriveChain,
 };
 pub use error::AnalysisError;
 pub use index::{IndexEstimate, IndexMethod};
+pub use response::{response_curve, ResponseCurve, ResponsePoint, VpiAtFrequency};
 pub use trace_analysis::{
     analyze_trace, AnalysisOptions, LineMeasurement, OrderAsymmetry, TraceAnalysis,
 };
+pub use vpi::{fit_v_pi, CarrierNull, DrivePoint, ExcludedPoint, VpiFit};

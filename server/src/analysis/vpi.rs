@@ -1,0 +1,330 @@
+//! V_pi at one frequency from a drive-level sweep.
+//!
+//! beta = (pi / V_pi) V_pk: the modulation index grows in proportion to the peak drive voltage,
+//! so V_pi comes from a straight-line fit through the origin, weighted by each beta's
+//! uncertainty. Real sweeps break the line: an amplifier compresses or heats at the top levels, a
+//! line lost in the floor or a wrong chain entry throws one point off. Such points are found
+//! against a robust first slope (the median of beta / V_pk), flagged with the reason, and left
+//! out of the fit; what remains gives V_pi with its standard uncertainty, inflated by the Birge
+//! ratio sqrt(chi^2 / (n - 1)) when the points scatter more than their stated uncertainties
+//! (common practice). When the sweep brackets the carrier null (beta = 2.4048, DLMF 10.21), the
+//! drive voltage at the null gives a second, independent V_pi.
+
+use super::bessel::J0_FIRST_ZERO;
+use super::AnalysisError;
+use halfwave_units::Volts;
+use serde::Serialize;
+use std::f64::consts::PI;
+
+/// A point is off the line when it misses by more than this many standard uncertainties...
+const OUTLIER_SIGMAS: f64 = 4.0;
+/// ...and by more than this fraction of the line's value (a model tolerance, so that very precise
+/// points are not thrown out for tiny curvature of the chain calibration).
+const OUTLIER_FRACTION: f64 = 0.02;
+
+/// One measured point of a drive sweep.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct DrivePoint {
+    /// Peak drive voltage at the modulator.
+    #[serde(rename = "v_peak_volts")]
+    pub v_peak: Volts,
+    /// Measured modulation index.
+    pub modulation_index: f64,
+    /// Its standard uncertainty.
+    #[serde(rename = "modulation_index_uncertainty")]
+    pub uncertainty: f64,
+}
+
+/// A point left out of the fit, and why.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ExcludedPoint {
+    /// Position in the input.
+    pub index: usize,
+    pub reason: String,
+}
+
+/// V_pi from the drive voltage at which the carrier vanishes.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct CarrierNull {
+    /// Peak drive voltage where beta crosses 2.4048 (interpolated between the bracketing points).
+    pub v_peak_volts: Volts,
+    /// pi V_null / 2.4048.
+    pub v_pi_volts: Volts,
+}
+
+/// The result of the sweep fit.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct VpiFit {
+    #[serde(rename = "v_pi_volts")]
+    pub v_pi: Volts,
+    #[serde(rename = "v_pi_uncertainty_volts")]
+    pub v_pi_uncertainty: Volts,
+    /// pi / V_pi, the modulation index per volt of peak drive.
+    pub index_per_volt: f64,
+    /// chi^2 / (n - 1) of the used points.
+    pub reduced_chi_squared: f64,
+    /// Indices of the points in the fit.
+    pub used: Vec<usize>,
+    pub excluded: Vec<ExcludedPoint>,
+    pub carrier_null: Option<CarrierNull>,
+}
+
+/// Fits beta = (pi / V_pi) V_pk through the origin over a drive sweep.
+pub fn fit_v_pi(points: &[DrivePoint]) -> Result<VpiFit, AnalysisError> {
+    let mut excluded = Vec::new();
+    let mut usable = Vec::with_capacity(points.len());
+    for (index, p) in points.iter().enumerate() {
+        let valid = p.v_peak.0.is_finite()
+            && p.v_peak.0 > 0.0
+            && p.modulation_index.is_finite()
+            && p.modulation_index >= 0.0
+            && p.uncertainty.is_finite()
+            && p.uncertainty > 0.0;
+        if valid {
+            usable.push(index);
+        } else {
+            excluded.push(ExcludedPoint {
+                index,
+                reason: format!(
+                    "not a usable measurement (V_pk {}, beta {}, uncertainty {}): each needs a positive \
+                     drive voltage, a non-negative index and a positive uncertainty",
+                    p.v_peak, p.modulation_index, p.uncertainty
+                ),
+            });
+        }
+    }
+    if usable.len() < 2 {
+        return Err(AnalysisError::BadSweep(format!(
+            "{} usable point(s) of {}; at least two drive levels with a measured modulation index are needed",
+            usable.len(),
+            points.len()
+        )));
+    }
+
+    // Robust first slope, then fit and re-classify until the set is stable.
+    let mut ratios: Vec<f64> = usable
+        .iter()
+        .map(|&i| points[i].modulation_index / points[i].v_peak.0)
+        .collect();
+    ratios.sort_by(f64::total_cmp);
+    let mut slope = ratios[ratios.len() / 2];
+    let mut voltages: Vec<f64> = usable.iter().map(|&i| points[i].v_peak.0).collect();
+    voltages.sort_by(f64::total_cmp);
+    let median_voltage = voltages[voltages.len() / 2];
+    let mut used: Vec<usize> = usable.clone();
+    for _ in 0..10 {
+        let next: Vec<usize> = usable
+            .iter()
+            .copied()
+            .filter(|&i| off_the_line(&points[i], slope).is_none())
+            .collect();
+        if next.len() < 2 {
+            break;
+        }
+        let (fitted, _) = weighted_slope(points, &next);
+        let stable = next == used && (fitted - slope).abs() <= 1e-12 * slope.abs();
+        used = next;
+        slope = fitted;
+        if stable {
+            break;
+        }
+    }
+    if used.len() < 2 {
+        return Err(AnalysisError::BadSweep(
+            "fewer than two points lie on a common line through the origin; check the drive chain and the traces"
+                .into(),
+        ));
+    }
+    let (slope, slope_sigma) = weighted_slope(points, &used);
+    if slope <= 0.0 {
+        return Err(AnalysisError::BadSweep(
+            "the modulation index does not grow with drive voltage; check that RF reaches the modulator".into(),
+        ));
+    }
+    for &i in usable.iter().filter(|i| !used.contains(i)) {
+        let p = &points[i];
+        let miss = (p.modulation_index - slope * p.v_peak.0) / (slope * p.v_peak.0);
+        let percent = 100.0 * miss.abs();
+        let reason = if miss < 0.0 && p.v_peak.0 >= median_voltage {
+            format!(
+                "beta {:.4} is {percent:.1} % below the line at a high drive level ({}): amplifier compression or heating",
+                p.modulation_index, p.v_peak
+            )
+        } else if miss < 0.0 {
+            format!(
+                "beta {:.4} is {percent:.1} % below the line: a line lost in the floor or a wrong chain entry",
+                p.modulation_index
+            )
+        } else {
+            format!(
+                "beta {:.4} is {percent:.1} % above the line: a misidentified comb order or a wrong chain entry",
+                p.modulation_index
+            )
+        };
+        excluded.push(ExcludedPoint { index: i, reason });
+    }
+    excluded.sort_by_key(|e| e.index);
+    let chi2: f64 = used
+        .iter()
+        .map(|&i| {
+            let p = &points[i];
+            ((p.modulation_index - slope * p.v_peak.0) / p.uncertainty).powi(2)
+        })
+        .sum();
+    let reduced = chi2 / (used.len() - 1) as f64;
+    let slope_sigma = slope_sigma * reduced.max(1.0).sqrt();
+    Ok(VpiFit {
+        v_pi: Volts(PI / slope),
+        v_pi_uncertainty: Volts(PI * slope_sigma / (slope * slope)),
+        index_per_volt: slope,
+        reduced_chi_squared: reduced,
+        carrier_null: carrier_null(points, &used),
+        used,
+        excluded,
+    })
+}
+
+/// The relative miss of a point from the line, when it is off by both criteria.
+fn off_the_line(p: &DrivePoint, slope: f64) -> Option<f64> {
+    let expected = slope * p.v_peak.0;
+    let miss = p.modulation_index - expected;
+    (miss.abs() > OUTLIER_SIGMAS * p.uncertainty && miss.abs() > OUTLIER_FRACTION * expected)
+        .then_some(miss / expected)
+}
+
+/// Weighted least-squares slope through the origin and its standard uncertainty
+/// (k = sum w V beta / sum w V^2, sigma_k = 1 / sqrt(sum w V^2), w = 1 / sigma_beta^2).
+fn weighted_slope(points: &[DrivePoint], used: &[usize]) -> (f64, f64) {
+    let (mut svb, mut svv) = (0.0, 0.0);
+    for &i in used {
+        let p = &points[i];
+        let w = 1.0 / (p.uncertainty * p.uncertainty);
+        svb += w * p.v_peak.0 * p.modulation_index;
+        svv += w * p.v_peak.0 * p.v_peak.0;
+    }
+    (svb / svv, 1.0 / svv.sqrt())
+}
+
+fn carrier_null(points: &[DrivePoint], used: &[usize]) -> Option<CarrierNull> {
+    let mut sorted: Vec<&DrivePoint> = used.iter().map(|&i| &points[i]).collect();
+    sorted.sort_by(|a, b| a.v_peak.0.total_cmp(&b.v_peak.0));
+    sorted.windows(2).find_map(|pair| {
+        let (a, b) = (pair[0], pair[1]);
+        let brackets = a.modulation_index < J0_FIRST_ZERO && b.modulation_index >= J0_FIRST_ZERO;
+        brackets.then(|| {
+            let t =
+                (J0_FIRST_ZERO - a.modulation_index) / (b.modulation_index - a.modulation_index);
+            let v_null = a.v_peak.0 + t * (b.v_peak.0 - a.v_peak.0);
+            CarrierNull {
+                v_peak_volts: Volts(v_null),
+                v_pi_volts: Volts(PI * v_null / J0_FIRST_ZERO),
+            }
+        })
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::analysis::chain::{peak_voltage, DriveChain};
+    use crate::analysis::synthetic::SyntheticComb;
+    use crate::analysis::{analyze_trace, AnalysisOptions};
+    use halfwave_units::{Db, Dbm, Hz};
+    use rand::{rngs::StdRng, Rng, SeedableRng};
+    use rand_distr::{Distribution, Normal};
+
+    /// Invented modulator for the tests.
+    const V_PI: f64 = 4.2;
+
+    fn ideal(v: f64, uncertainty: f64) -> DrivePoint {
+        DrivePoint {
+            v_peak: Volts(v),
+            modulation_index: PI * v / V_PI,
+            uncertainty,
+        }
+    }
+
+    #[test]
+    fn v_pi_from_a_nine_level_sweep_of_synthetic_traces() {
+        // Nine generator levels 3 dB apart through a 2 dB chain; each trace drawn from the
+        // Jacobi-Anger line powers with 0.3 dB noise and a drifting carrier, analysed, and the
+        // fitted betas turned into V_pi (beta = pi V_pk / V_pi, domain primer). The sweep crosses
+        // the carrier null, so the null gives V_pi a second way.
+        let chain = DriveChain::flat_loss(Db(2.0));
+        let spacing = Hz(2.0e9);
+        let mut rng = StdRng::seed_from_u64(9);
+        let noise = Normal::new(0.0, 0.3).unwrap();
+        let points: Vec<DrivePoint> = (0..9)
+            .map(|k| {
+                let generator = Dbm(2.0 + 3.0 * k as f64);
+                let v = peak_voltage(chain.level_at_modulator(spacing, generator));
+                let beta = PI * v.0 / V_PI;
+                let drift = spacing * rng.random_range(-0.5..0.5);
+                let synthetic =
+                    SyntheticComb::centred(Hz(193.4e12), drift, spacing, beta, (beta + 5.5).ceil());
+                let trace = synthetic.trace(&mut || noise.sample(&mut rng)).unwrap();
+                let result =
+                    analyze_trace(&trace, spacing, None, &AnalysisOptions::default()).unwrap();
+                DrivePoint {
+                    v_peak: v,
+                    modulation_index: result.modulation_index.value,
+                    uncertainty: result.modulation_index.uncertainty,
+                }
+            })
+            .collect();
+        let fit = fit_v_pi(&points).unwrap();
+        assert!((fit.v_pi.0 - V_PI).abs() < 0.01 * V_PI, "{fit:?}");
+        assert!(fit.v_pi_uncertainty.0 > 0.0 && fit.v_pi_uncertainty.0 < 0.01 * V_PI);
+        assert!(fit.excluded.is_empty(), "{:?}", fit.excluded);
+        let null = fit.carrier_null.unwrap();
+        assert!((null.v_pi_volts.0 - V_PI).abs() < 0.02 * V_PI, "{null:?}");
+    }
+
+    #[test]
+    fn flags_compression_and_a_stray_point() {
+        let mut points: Vec<DrivePoint> = (1..=9).map(|k| ideal(0.4 * k as f64, 0.005)).collect();
+        points[7].modulation_index *= 0.92; // top levels compressed
+        points[8].modulation_index *= 0.85;
+        points[3].modulation_index *= 1.2; // a misidentified order
+        let fit = fit_v_pi(&points).unwrap();
+        assert!((fit.v_pi.0 - V_PI).abs() < 1e-9, "{fit:?}");
+        assert_eq!(fit.used, vec![0, 1, 2, 4, 5, 6]);
+        let reasons: Vec<(usize, &str)> = fit
+            .excluded
+            .iter()
+            .map(|e| (e.index, e.reason.as_str()))
+            .collect();
+        assert_eq!(reasons.len(), 3);
+        assert!(reasons[0].1.contains("above the line"), "{reasons:?}");
+        assert!(reasons[1].1.contains("compression"), "{reasons:?}");
+        assert!(reasons[2].1.contains("compression"), "{reasons:?}");
+    }
+
+    #[test]
+    fn uncertainty_follows_the_weighted_fit() {
+        // Two exact points: k = sum w V b / sum w V^2, sigma_k = 1 / sqrt(sum w V^2) (weighted
+        // least squares through the origin); V_pi = pi / k, sigma = pi sigma_k / k^2.
+        let points = [ideal(1.0, 0.01), ideal(2.0, 0.02)];
+        let fit = fit_v_pi(&points).unwrap();
+        let svv: f64 = 1.0 / 0.01f64.powi(2) + 4.0 / 0.02f64.powi(2);
+        let k = PI / V_PI;
+        let expected = PI * (1.0 / svv.sqrt()) / (k * k);
+        assert!((fit.v_pi_uncertainty.0 - expected).abs() < 1e-12 * expected.max(1.0));
+        assert!(fit.carrier_null.is_none());
+    }
+
+    #[test]
+    fn refuses_sweeps_without_two_good_points() {
+        assert!(fit_v_pi(&[]).is_err());
+        assert!(fit_v_pi(&[ideal(1.0, 0.01)]).is_err());
+        let with_bad = [ideal(1.0, 0.01), ideal(f64::NAN, 0.01), ideal(2.0, 0.0)];
+        assert!(matches!(
+            fit_v_pi(&with_bad),
+            Err(AnalysisError::BadSweep(_))
+        ));
+        let one_bad = [ideal(1.0, 0.01), ideal(2.0, 0.01), ideal(-1.0, 0.01)];
+        let fit = fit_v_pi(&one_bad).unwrap();
+        assert_eq!(fit.excluded.len(), 1);
+        assert!(fit.excluded[0].reason.contains("not a usable measurement"));
+    }
+}
