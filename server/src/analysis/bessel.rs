@@ -127,6 +127,39 @@ impl BesselTable {
         }
     }
 
+    /// J_0(beta) .. J_{k-1}(beta) into `out` (k = `out.len()`, at most MAX_ORDER + 1), sharing
+    /// the interpolation weights between orders: the inner loop of the fit.
+    pub fn values_into(&self, beta: f64, out: &mut [f64]) {
+        let position = beta / TABLE_STEP;
+        let i = position.floor();
+        if out.len() > STRIDE || !(i >= 0.0 && (i as usize) + 1 < self.rows) {
+            for (n, slot) in out.iter_mut().enumerate() {
+                *slot = bessel_j(n as i32, beta);
+            }
+            return;
+        }
+        let i = i as usize;
+        let t = position - i as f64;
+        let t2 = t * t;
+        let t3 = t2 * t;
+        let w_y0 = 2.0 * t3 - 3.0 * t2 + 1.0;
+        let w_d0 = (t3 - 2.0 * t2 + t) * TABLE_STEP;
+        let w_y1 = -2.0 * t3 + 3.0 * t2;
+        let w_d1 = (t3 - t2) * TABLE_STEP;
+        let k = out.len();
+        let (y0, y1) = (
+            &self.values[i * STRIDE..][..k],
+            &self.values[(i + 1) * STRIDE..][..k],
+        );
+        let (d0, d1) = (
+            &self.slopes[i * STRIDE..][..k],
+            &self.slopes[(i + 1) * STRIDE..][..k],
+        );
+        for n in 0..k {
+            out[n] = w_y0 * y0[n] + w_d0 * d0[n] + w_y1 * y1[n] + w_d1 * d1[n];
+        }
+    }
+
     /// J_n(beta)^2, the relative power of line n.
     #[inline]
     pub fn power(&self, n: i32, beta: f64) -> f64 {
@@ -257,6 +290,18 @@ mod tests {
                     (table.power(n, beta) - power).abs() < 1e-9,
                     "table beta {beta} n {n}"
                 );
+            }
+        }
+    }
+
+    #[test]
+    fn batch_values_match_single_values() {
+        let table = BesselTable::get();
+        let mut out = [0.0; 12];
+        for beta in [0.0, 0.013, 2.404_825_557_695_773, 7.77, 15.999, 16.5] {
+            table.values_into(beta, &mut out);
+            for (n, v) in out.iter().enumerate() {
+                assert!((v - bessel_j(n as i32, beta)).abs() < 1e-9, "J_{n}({beta})");
             }
         }
     }

@@ -3,6 +3,8 @@
 //! Every subcommand returns `Result<(), CliError>`; `main` prints the error for the person at the
 //! terminal and exits non-zero. Commands that print results print JSON on stdout.
 
+pub mod analyze;
+
 use clap::{Parser, Subcommand};
 
 pub mod sim;
@@ -32,11 +34,14 @@ pub struct Cli {
 pub enum Command {
     /// Serve the simulated bench (RF source and analyzer) as SCPI instruments over TCP.
     Sim(sim::SimArgs),
+    /// Analyse trace files you already have: modulation index from a trace CSV, V_pi from a sweep JSON.
+    Analyze(analyze::AnalyzeArgs),
 }
 
 /// Runs the parsed command.
 pub fn run(cli: Cli) -> Result<(), CliError> {
     match cli.command {
         Command::Sim(args) => sim::run(args),
+        Command::Analyze(args) => analyze::run(args),
     }
 }

@@ -1,0 +1,320 @@
+//! End-to-end tests of `halfwave analyze`: synthetic traces from Bessel physics are written as
+//! CSV files into a fresh directory, the real binary is run on them, and the JSON it prints is
+//! checked against the modulation index and V_pi the traces were made with. Bad files must give
+//! a non-zero exit and an error that names the file and the line.
+
+use halfwave::analysis::synthetic::SyntheticComb;
+use halfwave::units::{Hz, Trace};
+use rand::{rngs::StdRng, SeedableRng};
+use rand_distr::{Distribution, Normal};
+use serde_json::Value;
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+const SPACING_HZ: f64 = 2.0e9;
+
+/// A fresh, empty directory for one test.
+fn scratch(test: &str) -> PathBuf {
+    let dir = std::env::temp_dir().join(format!("halfwave-analyze-{}-{test}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    dir
+}
+
+fn synthetic(beta: f64, drift_spacings: f64) -> SyntheticComb {
+    SyntheticComb::centred(
+        Hz(193.4e12),
+        Hz(drift_spacings * SPACING_HZ),
+        Hz(SPACING_HZ),
+        beta,
+        (beta + 5.5).ceil(),
+    )
+}
+
+fn draw(comb: &SyntheticComb, seed: u64) -> Trace {
+    let mut rng = StdRng::seed_from_u64(seed);
+    let noise = Normal::new(0.0, 0.3).unwrap();
+    comb.trace(&mut || noise.sample(&mut rng)).unwrap()
+}
+
+fn write_csv(path: &Path, trace: &Trace) {
+    let mut text = String::from("frequency_hz,power_dbm\n");
+    for (f, p) in trace.frequency_hz().iter().zip(trace.power_dbm()) {
+        writeln!(text, "{f:.1},{p:.4}").unwrap();
+    }
+    std::fs::write(path, text).unwrap();
+}
+
+fn halfwave(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_halfwave"))
+        .args(args)
+        .output()
+        .expect("the halfwave binary runs")
+}
+
+fn json(output: &Output) -> Value {
+    assert!(
+        output.status.success(),
+        "exit {:?}, stderr: {}",
+        output.status,
+        String::from_utf8_lossy(&output.stderr)
+    );
+    serde_json::from_slice(&output.stdout).expect("stdout is JSON")
+}
+
+fn number(value: &Value, pointer: &str) -> f64 {
+    value
+        .pointer(pointer)
+        .and_then(Value::as_f64)
+        .unwrap_or_else(|| panic!("{pointer} missing in {value}"))
+}
+
+#[test]
+fn a_trace_file_gives_the_modulation_index_lines_and_asymmetry() {
+    // Line powers P_n = P J_n(beta)^2 (Jacobi-Anger, DLMF 10.12), the carrier drifted 0.4 spacing.
+    let dir = scratch("trace");
+    for (seed, beta) in [0.6, 2.5, 5.2].into_iter().enumerate() {
+        let path = dir.join(format!("beta-{beta}.csv"));
+        write_csv(&path, &draw(&synthetic(beta, 0.4), seed as u64));
+        let spacing = format!("{SPACING_HZ}");
+        let out = json(&halfwave(&[
+            "analyze",
+            "--modulation-frequency",
+            &spacing,
+            path.to_str().unwrap(),
+        ]));
+        let value = number(&out, "/modulation_index/value");
+        let uncertainty = number(&out, "/modulation_index/uncertainty");
+        assert!((value - beta).abs() < 0.01 * beta, "beta {beta}: {value}");
+        assert!(uncertainty > 0.0 && uncertainty < 0.01 * beta);
+        assert_eq!(out["modulation_index"]["method"], "least_squares");
+        let lines = out["lines"].as_array().unwrap();
+        let carrier = lines.iter().find(|l| l["order"] == 0).unwrap();
+        let expected_carrier = 193.4e12 + 0.4 * SPACING_HZ;
+        assert!(
+            (carrier["frequency_hz"].as_f64().unwrap() - expected_carrier).abs()
+                < 0.02 * SPACING_HZ
+        );
+        let first = out["asymmetry"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|a| a["order"] == 1)
+            .unwrap();
+        // A symmetric comb: +1 and -1 within a few tenths of a dB.
+        assert!(
+            first["asymmetry_db"].as_f64().unwrap().abs() < 0.2,
+            "{first}"
+        );
+        assert_eq!(out["resolution_bandwidth_estimated"], true);
+    }
+}
+
+#[test]
+fn a_reference_and_a_given_resolution_are_used() {
+    let dir = scratch("reference");
+    let on = synthetic(1.1, -0.3);
+    let mut off = on.clone();
+    off.modulation_index = 0.0;
+    let (on_path, off_path) = (dir.join("on.csv"), dir.join("off.csv"));
+    write_csv(&on_path, &draw(&on, 11));
+    write_csv(&off_path, &draw(&off, 12));
+    let rbw = format!("{}", on.resolution_bandwidth.0);
+    let spacing = format!("{SPACING_HZ}");
+    let out = json(&halfwave(&[
+        "analyze",
+        "--modulation-frequency",
+        &spacing,
+        "--resolution-bandwidth",
+        &rbw,
+        "--reference",
+        off_path.to_str().unwrap(),
+        on_path.to_str().unwrap(),
+    ]));
+    assert_eq!(
+        number(&out, "/resolution_bandwidth_hz"),
+        on.resolution_bandwidth.0
+    );
+    assert_eq!(out["resolution_bandwidth_estimated"], false);
+    assert!((number(&out, "/unmodulated_power_dbm") - on.total_power.0).abs() < 0.25);
+    let methods: Vec<&str> = out["estimates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["method"].as_str().unwrap())
+        .collect();
+    assert_eq!(
+        methods,
+        ["least_squares", "sideband_ratio", "carrier_depletion"]
+    );
+    for estimate in out["estimates"].as_array().unwrap() {
+        let value = estimate["value"].as_f64().unwrap();
+        assert!((value - 1.1).abs() < 0.02 * 1.1, "{estimate}");
+    }
+}
+
+#[test]
+fn a_sweep_file_gives_v_pi() {
+    // Invented modulator: V_pi 3.7 V. Nine generator levels through a 3 dB chain; the beta of
+    // each trace is pi V_pk / V_pi with V_pk = sqrt(2 * 50 ohm * P) (domain primer).
+    let v_pi = 3.7;
+    let loss_db = 3.0;
+    let dir = scratch("sweep");
+    std::fs::create_dir_all(dir.join("traces")).unwrap();
+    let mut points = Vec::new();
+    for k in 0..9 {
+        let generator = 2.0 + 3.0 * k as f64;
+        let watts = 10f64.powf((generator - loss_db - 30.0) / 10.0);
+        let beta = std::f64::consts::PI * (2.0 * 50.0 * watts).sqrt() / v_pi;
+        let relative = format!("traces/level-{k}.csv");
+        write_csv(
+            &dir.join(&relative),
+            &draw(&synthetic(beta, 0.45 - 0.1 * k as f64), 40 + k),
+        );
+        points.push(serde_json::json!({"generator_level_dbm": generator, "trace": relative}));
+    }
+    let sweep = serde_json::json!({
+        "modulation_frequency_hz": SPACING_HZ,
+        "chain_loss_db": loss_db,
+        "points": points,
+    });
+    let sweep_path = dir.join("sweep.json");
+    std::fs::write(&sweep_path, serde_json::to_string_pretty(&sweep).unwrap()).unwrap();
+    let out = json(&halfwave(&["analyze", sweep_path.to_str().unwrap()]));
+    let fitted = number(&out, "/v_pi_volts");
+    assert!((fitted - v_pi).abs() < 0.01 * v_pi, "V_pi {fitted}");
+    let uncertainty = number(&out, "/v_pi_uncertainty_volts");
+    assert!(uncertainty > 0.0 && uncertainty < 0.01 * v_pi);
+    assert_eq!(out["points"].as_array().unwrap().len(), 9);
+    assert_eq!(
+        out["excluded"].as_array().unwrap().len(),
+        0,
+        "{}",
+        out["excluded"]
+    );
+
+    // The same sweep with a gain table and absolute paths gives the same V_pi.
+    let table_sweep = serde_json::json!({
+        "modulation_frequency_hz": SPACING_HZ,
+        "chain": [
+            {"frequency_hz": 1.0e9, "gain_db": -loss_db},
+            {"frequency_hz": 40.0e9, "gain_db": -loss_db}
+        ],
+        "points": sweep["points"].as_array().unwrap().iter().map(|p| {
+            let absolute = dir.join(p["trace"].as_str().unwrap());
+            serde_json::json!({"generator_level_dbm": p["generator_level_dbm"], "trace": absolute})
+        }).collect::<Vec<_>>(),
+    });
+    let table_path = dir.join("table.json");
+    std::fs::write(&table_path, table_sweep.to_string()).unwrap();
+    let again = json(&halfwave(&["analyze", table_path.to_str().unwrap()]));
+    assert!((number(&again, "/v_pi_volts") - fitted).abs() < 1e-9);
+}
+
+/// Runs `analyze` on a file and checks the failure names the file and a line.
+fn assert_refused(path: &Path, extra: &[&str], line: &str) {
+    let mut args = vec!["analyze"];
+    args.extend_from_slice(extra);
+    args.push(path.to_str().unwrap());
+    let output = halfwave(&args);
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(!output.status.success(), "{path:?} was accepted");
+    assert!(
+        output.stdout.is_empty(),
+        "nothing on stdout for a refused file"
+    );
+    assert!(
+        stderr.contains(path.to_str().unwrap()),
+        "file not named: {stderr}"
+    );
+    assert!(stderr.contains(line), "`{line}` not in: {stderr}");
+}
+
+#[test]
+fn bad_input_is_refused_with_the_file_and_line() {
+    let dir = scratch("bad");
+    let spacing = format!("{SPACING_HZ}");
+    let with_spacing = ["--modulation-frequency", spacing.as_str()];
+
+    let empty = dir.join("empty.csv");
+    std::fs::write(&empty, "").unwrap();
+    assert_refused(&empty, &with_spacing, ":1: the file is empty");
+
+    let headless = dir.join("headless.csv");
+    std::fs::write(
+        &headless,
+        "193400000000000.0,-60.0\n193400001000000.0,-61.0\n",
+    )
+    .unwrap();
+    assert_refused(&headless, &with_spacing, ":1: expected the header");
+
+    let non_numeric = dir.join("non-numeric.csv");
+    std::fs::write(
+        &non_numeric,
+        "frequency_hz,power_dbm\n1.0,-60\n2.0,-61\n3.0,minus sixty\n4.0,-60\n",
+    )
+    .unwrap();
+    assert_refused(
+        &non_numeric,
+        &with_spacing,
+        ":4: `minus sixty` in column power_dbm",
+    );
+
+    let good = dir.join("good.csv");
+    write_csv(&good, &draw(&synthetic(1.0, 0.0), 7));
+    // A spacing wider than half the span: the comb cannot be shown.
+    assert_refused(
+        &good,
+        &["--modulation-frequency", "30e9"],
+        "data lines 2-10002",
+    );
+    let too_wide = halfwave(&[
+        "analyze",
+        "--modulation-frequency",
+        "30e9",
+        good.to_str().unwrap(),
+    ]);
+    assert!(String::from_utf8_lossy(&too_wide.stderr).contains("cannot show lines"));
+    // A resolution bandwidth of half the spacing: lines not resolved.
+    assert_refused(
+        &good,
+        &[
+            "--modulation-frequency",
+            &spacing,
+            "--resolution-bandwidth",
+            "1e9",
+        ],
+        "data lines 2-10002",
+    );
+    let merged = halfwave(&[
+        "analyze",
+        "--modulation-frequency",
+        &spacing,
+        "--resolution-bandwidth",
+        "1e9",
+        good.to_str().unwrap(),
+    ]);
+    assert!(String::from_utf8_lossy(&merged.stderr).contains("below three resolution bandwidths"));
+
+    let broken_sweep = dir.join("broken.json");
+    std::fs::write(
+        &broken_sweep,
+        "{\n  \"modulation_frequency_hz\": 2e9,\n  \"points\": [,]\n}\n",
+    )
+    .unwrap();
+    assert_refused(&broken_sweep, &[], ":3:");
+
+    let bad_trace_in_sweep = dir.join("sweep-with-bad-trace.json");
+    std::fs::write(
+        &bad_trace_in_sweep,
+        r#"{"modulation_frequency_hz": 2e9, "chain_loss_db": 1.0,
+            "points": [{"generator_level_dbm": 0, "trace": "non-numeric.csv"},
+                       {"generator_level_dbm": 3, "trace": "good.csv"}]}"#,
+    )
+    .unwrap();
+    let output = halfwave(&["analyze", bad_trace_in_sweep.to_str().unwrap()]);
+    assert!(!output.status.success());
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(stderr.contains("non-numeric.csv:4:"), "{stderr}");
+}
