@@ -2,7 +2,10 @@
 //! from Abramowitz & Stegun and NIST DLMF, the 50-ohm level conversion from the domain primer, and
 //! line powers in rendered traces against `puruspe`'s J_n.
 
-use halfwave_drivers::sim::physics::{bessel_j, comb_lines, peak_voltage};
+use halfwave_drivers::sim::physics::{
+    bessel_j, comb_lines, peak_voltage, render_linear, OpticalLine, Rendering,
+};
+use halfwave_drivers::sim::scenario::FilterShape;
 use halfwave_drivers::sim::{Role, Scenario, SimBench};
 use halfwave_drivers::{RfSource, SpectrumAnalyzer};
 use halfwave_units::{Dbm, Hz, Trace};
@@ -290,4 +293,57 @@ async fn setters_read_back_what_the_instrument_holds() {
         bench.command_log(Role::RfSource),
         vec!["POW 3.456".to_string(), "*IDN?".to_string()]
     );
+}
+
+fn single_line(filter: FilterShape, linewidth_hz: f64) -> (Vec<f64>, f64) {
+    let rendering = Rendering {
+        start_hz: 193.4e12 - 5e9,
+        stop_hz: 193.4e12 + 5e9,
+        points: 100_001,
+        resolution_bandwidth_hz: 5e6,
+        filter,
+        laser_linewidth_hz: linewidth_hz,
+        noise_floor_dbm: -150.0,
+        display_noise_db: 0.0,
+    };
+    let line = OpticalLine {
+        frequency_hz: 193.4e12,
+        power_mw: 1.0,
+    };
+    let step = 10e9 / 100_000.0;
+    (render_linear(&[line], &rendering), step)
+}
+
+#[test]
+fn the_resolution_filter_keeps_the_line_power() {
+    // A line of power P seen through a filter of unit peak shows P at the peak when it is narrow,
+    // and the area under the displayed trace divided by the filter's equivalent noise bandwidth
+    // is P whatever the laser linewidth (common practice). Equivalent noise bandwidths of
+    // unit-peak shapes of FWHM B: Gaussian B sqrt(pi / (4 ln 2)), Lorentzian pi B / 2.
+    let rbw = 5e6;
+    let gaussian_enbw = rbw * (std::f64::consts::PI / (4.0 * std::f64::consts::LN_2)).sqrt();
+    let lorentzian_enbw = std::f64::consts::PI * rbw / 2.0;
+    for (filter, enbw) in [
+        (FilterShape::Gaussian, gaussian_enbw),
+        (FilterShape::Lorentzian, lorentzian_enbw),
+    ] {
+        for linewidth in [0.0, 200e3, 2e6] {
+            let (powers, step) = single_line(filter, linewidth);
+            let area: f64 = powers.iter().sum::<f64>() * step;
+            let power = area / enbw;
+            assert!(
+                (power - 1.0).abs() < 0.01,
+                "{filter:?}, linewidth {linewidth}: integrated power {power}"
+            );
+            if linewidth == 0.0 {
+                let peak = powers.iter().cloned().fold(0.0, f64::max);
+                assert!((peak - 1.0).abs() < 1e-9, "{filter:?}: peak {peak}");
+            }
+        }
+    }
+    // Lorentzian (x) Lorentzian is a Lorentzian with the widths added (common practice): a
+    // linewidth equal to the RBW halves the peak.
+    let (powers, _) = single_line(FilterShape::Lorentzian, 5e6);
+    let peak = powers.iter().cloned().fold(0.0, f64::max);
+    assert!((peak - 0.5).abs() < 1e-9, "peak {peak}");
 }

@@ -4,8 +4,9 @@
 //! A [`FaultHandle`] belongs to one served instrument (get it from
 //! [`super::server::SimServer::faults`]); tests switch faults on and off while clients are
 //! connected. Faults apply to every connection of that instrument:
-//! - [`FaultHandle::drop_after_commands`]: serve N more commands normally, then close the
-//!   connection when the next line arrives (one-shot, so a reconnect works);
+//! - [`FaultHandle::drop_after_commands`]: serve N more commands (message units) normally, then
+//!   close the connection when a line arrives that would go past N, without executing any of it
+//!   (one-shot, so a reconnect works);
 //! - [`FaultHandle::delay_replies`]: wait before every reply;
 //! - [`FaultHandle::garble_replies`]: replace the next N replies with bytes that parse as nothing;
 //! - [`FaultHandle::push_error`]: put an error in the instrument's error queue;
@@ -65,8 +66,8 @@ impl FaultHandle {
         self.role
     }
 
-    /// Serves `commands` more commands (message units), then closes the connection when the next
-    /// line arrives, without executing it. Fires once.
+    /// Serves `commands` more commands (message units), then closes the connection when a line
+    /// arrives that would go past them, without executing any of that line. Fires once.
     pub fn drop_after_commands(&self, commands: u64) {
         self.lock().commands_before_drop = Some(commands);
     }

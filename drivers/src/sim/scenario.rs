@@ -461,6 +461,13 @@ impl Scenario {
         level + self.level_error_at(f) - self.chain_loss_at(f)
     }
 
+    /// The true modulation index for a generator set to `level` at `f` with the output on:
+    /// beta = pi V_pk / V_pi(f), V_pk from the level at the modulator into 50 ohm.
+    pub fn modulation_index_at(&self, level: Dbm, f: Hz) -> f64 {
+        let v_peak = super::physics::peak_voltage(self.level_at_modulator(level, f));
+        super::physics::modulation_index(v_peak, self.v_pi_at(f))
+    }
+
     /// The optical power reaching the analyzer (laser power minus insertion loss).
     pub fn optical_power_out(&self) -> Dbm {
         Dbm(self.laser.power_dbm) - Db(self.modulator.insertion_loss_db)

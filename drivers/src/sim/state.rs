@@ -369,8 +369,8 @@ impl BenchState {
         if !self.source.output_on {
             return 0.0;
         }
-        let v_peak = physics::peak_voltage(self.level_at_modulator());
-        physics::modulation_index(v_peak, self.scenario.v_pi_at(self.source.frequency))
+        self.scenario
+            .modulation_index_at(self.source.level, self.source.frequency)
     }
 
     /// The lines reaching the analyzer now, at their true optical frequencies.
