@@ -1,9 +1,12 @@
 //! SCPI client speed: a query round trip over loopback TCP, and decoding a 1 MB binary trace.
 //!
 //! Targets (issue 3): round trip under 100 microseconds median; parsing a 1 MB definite-length
-//! REAL,32 block at 1 GB/s or more. The round trip runs against a minimal line-echo SCPI server
-//! on 127.0.0.1 (a blocking thread that answers every line with a fixed `*IDN?` reply), so it
-//! measures the driver's transport plus the loopback stack, not an instrument model.
+//! REAL,32 block at 1 GB/s or more. The round trip is measured twice on 127.0.0.1: against the
+//! simulated bench's SCPI server (its own runtime thread, the real command parser and error
+//! queue), and against a minimal line-echo server (a blocking thread that answers every line with
+//! a fixed `*IDN?` reply), which isolates the driver's transport plus the loopback stack. The
+//! simulator also serves a whole configuration step (set, error-queue check, read-back) and a
+//! 10,001-point REAL,32 trace fetch.
 //!
 //! Run: `cargo bench -p halfwave-drivers --bench scpi`
 
@@ -11,7 +14,13 @@ use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Through
 use halfwave_drivers::scpi::block::{decode_binary_reply_into, encode_values, reply_end};
 use halfwave_drivers::scpi::response::parse_number_list_into;
 use halfwave_drivers::scpi::{ByteOrder, DataFormat};
-use halfwave_drivers::{Resource, ScpiTransport, TransportConfig};
+use halfwave_drivers::sim::server::{SimServer, SimServerConfig};
+use halfwave_drivers::sim::{Role, Scenario, SimBench};
+use halfwave_drivers::units::Hz;
+use halfwave_drivers::{
+    AnalyzerProfile, Resource, RfSource, ScpiRfSource, ScpiSpectrumAnalyzer, ScpiTransport,
+    SourceProfile, SpectrumAnalyzer, TransportConfig,
+};
 use std::hint::black_box;
 use std::io::{BufRead, BufReader, Write};
 use std::net::TcpListener;
@@ -73,6 +82,91 @@ fn query_round_trip(c: &mut Criterion) {
         })
     });
     group.finish();
+}
+
+fn simulator_exchanges(c: &mut Criterion) {
+    // The simulator runs on its own runtime thread, like an instrument across the wire.
+    let server_runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(1)
+        .enable_all()
+        .build()
+        .expect("server runtime");
+    let server = server_runtime.block_on(async {
+        let scenario = Scenario::builtin().expect("built-in scenario");
+        let bench = SimBench::new(scenario, 11).with_time_factor(0.0);
+        SimServer::start(bench, SimServerConfig::any_free_ports())
+            .await
+            .expect("start the simulated bench")
+    });
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .expect("client runtime");
+    let source_resource = server.resource(Role::RfSource);
+    let analyzer_resource = server.resource(Role::Analyzer);
+    let mut transport = runtime
+        .block_on(ScpiTransport::connect(
+            Resource::parse(&source_resource).unwrap(),
+            TransportConfig::default(),
+        ))
+        .expect("connect to the simulated source");
+    let mut source = runtime
+        .block_on(ScpiRfSource::connect(
+            &source_resource,
+            SourceProfile::standard(),
+        ))
+        .expect("connect the source driver");
+    let mut analyzer = runtime
+        .block_on(ScpiSpectrumAnalyzer::connect(
+            &analyzer_resource,
+            AnalyzerProfile::standard(),
+        ))
+        .expect("connect the analyzer driver");
+    runtime.block_on(async {
+        analyzer.set_points(10_001).await.expect("points");
+        analyzer.sweep().await.expect("sweep");
+    });
+
+    let mut group = c.benchmark_group("scpi_round_trip");
+    group.bench_function("query_idn_loopback_simulator", |b| {
+        b.iter_custom(|iterations| {
+            runtime.block_on(async {
+                let started = Instant::now();
+                for _ in 0..iterations {
+                    black_box(transport.query("*IDN?").await.expect("query"));
+                }
+                started.elapsed()
+            })
+        })
+    });
+    group.bench_function(
+        "set_frequency_with_error_check_and_read_back_simulator",
+        |b| {
+            b.iter_custom(|iterations| {
+                runtime.block_on(async {
+                    let started = Instant::now();
+                    for i in 0..iterations {
+                        let f = Hz(1e9 + (i % 1000) as f64 * 1e3);
+                        black_box(source.set_frequency(f).await.expect("set frequency"));
+                    }
+                    started.elapsed()
+                })
+            })
+        },
+    );
+    group.bench_function("fetch_trace_10001_points_real32_simulator", |b| {
+        b.iter_custom(|iterations| {
+            runtime.block_on(async {
+                let started = Instant::now();
+                for _ in 0..iterations {
+                    black_box(analyzer.fetch_trace().await.expect("fetch trace"));
+                }
+                started.elapsed()
+            })
+        })
+    });
+    group.finish();
+    drop(server);
 }
 
 fn block_decoding(c: &mut Criterion) {
@@ -137,5 +231,10 @@ fn block_decoding(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, query_round_trip, block_decoding);
+criterion_group!(
+    benches,
+    query_round_trip,
+    simulator_exchanges,
+    block_decoding
+);
 criterion_main!(benches);
