@@ -116,3 +116,56 @@ fn formula_v_pi_matches_its_definition() {
     let s = Scenario::builtin().unwrap();
     assert!((s.v_pi_at(Hz::from_ghz(4.0)).value() - 3.904).abs() < 1e-12);
 }
+
+#[tokio::test]
+async fn the_amplified_example_can_overdrive_and_shows_asymmetric_sidebands() {
+    use halfwave_drivers::sim::SimBench;
+    use halfwave_drivers::{RfSource, SpectrumAnalyzer};
+    let mut s = Scenario::amplified_example().unwrap();
+    s.analyzer.display_noise_db = 0.0;
+    // The generator's maximum plus the amplifier exceeds the modulator's limit at 1 GHz, so
+    // this bench is the one to test interlocks with.
+    let f = Hz::from_ghz(1.0);
+    assert!(
+        s.level_at_modulator(Dbm(s.rf_source.max_level_dbm), f)
+            .value()
+            > s.modulator.max_rf_input_dbm
+    );
+    let bench = SimBench::new(s, 4).with_time_factor(0.0);
+    let mut source = bench.rf_source();
+    let mut analyzer = bench.analyzer();
+    source.set_frequency(f).await.unwrap();
+    source.set_level(Dbm(-22.0)).await.unwrap();
+    source.set_output(true).await.unwrap();
+    assert!(!bench.overdriven());
+    let beta = bench.modulation_index();
+    assert!(beta > 0.3 && beta < 2.0, "beta {beta}");
+    analyzer.set_points(20_001).await.unwrap();
+    analyzer.set_span(Hz::from_ghz(10.0)).await.unwrap();
+    analyzer.set_center(bench.laser_frequency()).await.unwrap();
+    analyzer.sweep().await.unwrap();
+    let trace = analyzer.fetch_trace().await.unwrap();
+    // Residual AM in quadrature: the +1 line is stronger than the -1 line. Compare the maxima
+    // within 100 MHz of where each line sits (axis offset and drift are well inside that).
+    let carrier = bench.laser_frequency().value() + bench.scenario().analyzer.frequency_offset_hz;
+    let peak_near = |centre: f64| -> f64 {
+        trace
+            .frequency_hz()
+            .iter()
+            .zip(trace.power_dbm())
+            .filter(|(x, _)| (**x - centre).abs() < 100e6)
+            .map(|(_, p)| *p)
+            .fold(f64::MIN, f64::max)
+    };
+    let upper = peak_near(carrier + f.value());
+    let lower = peak_near(carrier - f.value());
+    assert!(
+        upper - lower > 0.5,
+        "+1 at {upper:.2} dBm, -1 at {lower:.2} dBm"
+    );
+    source.set_level(Dbm(10.0)).await.unwrap();
+    assert!(
+        bench.overdriven(),
+        "+10 dBm through the amplifier exceeds the limit"
+    );
+}

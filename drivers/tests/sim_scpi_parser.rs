@@ -121,6 +121,12 @@ fn optional_nodes_may_be_left_out_or_given() {
     assert_eq!(id_of("OUTP:STAT ON"), Id::Output);
     assert_eq!(id_of("TRAC? TRACE1"), Id::Trace);
     assert_eq!(id_of("TRACE:DATA? TRACE1"), Id::Trace);
+    // Numeric suffix 1 on a keyword is the same as no suffix (SCPI 1999 vol. 1, 6.2.5.2, from
+    // memory); the simulated instruments have no second instance.
+    assert_eq!(id_of("SENS1:FREQ:CENT 1"), Id::Center);
+    assert_eq!(id_of("SOURce1:FREQuency 1"), Id::SourceFrequency);
+    assert_eq!(code_of("SENS2:FREQ:CENT 1"), codes::UNDEFINED_HEADER);
+    assert_eq!(code_of("SENS11:FREQ:CENT 1"), codes::UNDEFINED_HEADER);
     // A mandatory node cannot be left out.
     assert_eq!(code_of("SENS:CENT 1"), codes::UNDEFINED_HEADER);
 }

@@ -379,3 +379,39 @@ async fn generic_scpi_drivers_run_against_the_simulator() {
     assert!(!server.bench().rf_output_on());
     assert!(!server.bench().overdriven());
 }
+
+#[tokio::test]
+async fn garbage_input_never_stops_the_server() {
+    let server = start(quiet_scenario(), 0.0).await;
+    let mut c = Client::connect(&server, Role::Analyzer).await;
+    let nasty: Vec<Vec<u8>> = vec![
+        b"\xff\xfe\x00garbage".to_vec(),
+        b";;;;".to_vec(),
+        b"*".to_vec(),
+        b":".to_vec(),
+        b"FREQ:CENT 1e99999".to_vec(),
+        b"SWE:POIN 1e300".to_vec(),
+        b"TRAC? \"unterminated".to_vec(),
+        b"FORM REAL,32,64,128".to_vec(),
+        b"[SENSe:]FREQ:SPAN 1".to_vec(),
+        vec![b'A'; 200_000],
+        b"\r".to_vec(),
+    ];
+    for line in &nasty {
+        c.writer.write_all(line).await.unwrap();
+        c.writer.write_all(b"\n").await.unwrap();
+    }
+    assert!(c.query("*IDN?").await.contains("SIM-OSA-1"));
+    let mut codes = Vec::new();
+    loop {
+        let e = c.query("SYST:ERR?").await;
+        if e.starts_with("0,") {
+            break;
+        }
+        codes.push(e.split(',').next().unwrap().parse::<i32>().unwrap());
+    }
+    assert!(!codes.is_empty());
+    assert!(codes.iter().all(|c| (-399..=-100).contains(c)), "{codes:?}");
+    // The settings survived.
+    assert_eq!(c.query("SWE:POIN?").await, "10001");
+}

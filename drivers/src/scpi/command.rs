@@ -198,6 +198,21 @@ impl Keyword {
     fn matches(&self, token_upper: &str) -> bool {
         token_upper == self.short || token_upper == self.long
     }
+
+    /// Header matching also accepts the numeric suffix 1 (`SENSe1`, `SOURce1`): a keyword that
+    /// takes a numeric suffix means instance 1 when the suffix is left out (SCPI 1999 vol. 1,
+    /// 6.2.5.2, from memory). The simulated instruments have one instance of everything, so any
+    /// other suffix stays an undefined header.
+    fn matches_header_node(&self, token_upper: &str) -> bool {
+        if self.matches(token_upper) {
+            return true;
+        }
+        let ends_in_digit = |s: &str| s.ends_with(|c: char| c.is_ascii_digit());
+        match token_upper.strip_suffix('1') {
+            Some(base) if !ends_in_digit(base) && !ends_in_digit(&self.long) => self.matches(base),
+            _ => false,
+        }
+    }
 }
 
 /// One level of a header pattern: alternative keywords, possibly optional.
@@ -270,7 +285,10 @@ impl HeaderPattern {
             return header.is_empty();
         };
         if let Some((token, header_rest)) = header.split_first() {
-            if node.alternatives.iter().any(|k| k.matches(token))
+            if node
+                .alternatives
+                .iter()
+                .any(|k| k.matches_header_node(token))
                 && Self::match_from(pattern_rest, header_rest)
             {
                 return true;

@@ -15,6 +15,10 @@ use std::path::Path;
 /// The built-in scenario's TOML text.
 pub const DEFAULT_SCENARIO_TOML: &str = include_str!("../../scenarios/default.toml");
 
+/// A second example scenario: driver amplifier (the source can overdrive the modulator), tabulated
+/// V_pi with a resonance, residual AM, Lorentzian filter. Handy for interlock and asymmetry tests.
+pub const AMPLIFIED_SCENARIO_TOML: &str = include_str!("../../scenarios/amplified.toml");
+
 /// Why a scenario was refused.
 #[derive(Debug, thiserror::Error)]
 pub enum ScenarioError {
@@ -287,6 +291,11 @@ impl Scenario {
     /// The built-in scenario (`drivers/scenarios/default.toml`).
     pub fn builtin() -> Result<Scenario, ScenarioError> {
         Scenario::from_toml_str(DEFAULT_SCENARIO_TOML)
+    }
+
+    /// The amplified example scenario (`drivers/scenarios/amplified.toml`).
+    pub fn amplified_example() -> Result<Scenario, ScenarioError> {
+        Scenario::from_toml_str(AMPLIFIED_SCENARIO_TOML)
     }
 
     /// Checks every number the physics relies on.
