@@ -2,6 +2,7 @@
 //!
 //! The crate is split so that data flows one way, from instrument bytes to HTTP views:
 //! - [`analysis`]: pure functions, trace -> comb lines -> modulation index -> V_pi; no I/O.
+//! - [`store`]: the database (sqlx + SQLite): devices, calibrations, runs, points, traces, results.
 //! - [`cli`]: the `halfwave` command line (each subcommand one file).
 //! - [`config`]: the daemon's TOML configuration with environment overrides.
 //! - [`engine`]: plans, the per-bench queue, the sweep executor and the RF-off interlocks.
@@ -13,6 +14,7 @@ pub mod cli;
 pub mod config;
 pub mod engine;
 pub mod shutdown;
+pub mod store;
 pub mod telemetry;
 
 pub use halfwave_units as units;

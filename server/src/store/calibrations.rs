@@ -1,0 +1,196 @@
+//! Drive-chain calibrations: versioned, never edited in place.
+//!
+//! A run records the id of the exact calibration version it used, so a later re-calibration of the
+//! cables and amplifier cannot silently change an old result. Uploading under an existing name adds
+//! the next version in one statement (`INSERT ... SELECT MAX(version) + 1`), so two uploads racing
+//! cannot get the same number: the UNIQUE (name, version) key refuses the loser.
+
+use super::audit::audit_in;
+use super::{
+    now_unix_ms, ChainCalibration, ChainCalibrationHeader, ChainCalibrationPoint, Store, StoreError,
+};
+
+impl Store {
+    /// Stores a new version of the calibration called `name` (version 1 if the name is new) and
+    /// returns it with its points sorted by frequency. Frequencies must be finite, positive and
+    /// distinct; gains finite; at least one point.
+    pub async fn create_chain_calibration(
+        &self,
+        name: &str,
+        created_by: &str,
+        points: &[ChainCalibrationPoint],
+    ) -> Result<ChainCalibration, StoreError> {
+        let name = name.trim();
+        if name.is_empty() {
+            return Err(StoreError::InvalidInput {
+                what: "chain calibration name",
+                reason: "it is empty; name the bench and chain, e.g. \"bench-2 amplifier A\""
+                    .to_string(),
+            });
+        }
+        let points = checked_points(points)?;
+        let now = now_unix_ms();
+
+        let mut tx = self
+            .pool
+            .begin()
+            .await
+            .map_err(StoreError::database("starting a calibration upload"))?;
+        let header = sqlx::query_as::<_, ChainCalibrationHeader>(
+            "INSERT INTO chain_calibrations (name, version, created_at_unix_ms, created_by) \
+             SELECT $1, COALESCE(MAX(version), 0) + 1, $2, $3 FROM chain_calibrations WHERE name = $1 \
+             RETURNING id, name, version, created_at_unix_ms, created_by",
+        )
+        .bind(name)
+        .bind(now)
+        .bind(created_by)
+        .fetch_one(&mut *tx)
+        .await
+        .map_err(StoreError::database("storing a calibration version"))?;
+        for point in &points {
+            sqlx::query(
+                "INSERT INTO chain_calibration_points (chain_calibration_id, frequency_hz, gain_db) \
+                 VALUES ($1, $2, $3)",
+            )
+            .bind(header.id)
+            .bind(point.frequency_hz)
+            .bind(point.gain_db)
+            .execute(&mut *tx)
+            .await
+            .map_err(StoreError::database("storing a calibration point"))?;
+        }
+        let detail = serde_json::json!({
+            "id": header.id,
+            "version": header.version,
+            "points": points.len(),
+        });
+        audit_in(
+            &mut tx,
+            now,
+            created_by,
+            "chain_calibration.create",
+            &format!("chain_calibration:{name}"),
+            &detail.to_string(),
+        )
+        .await?;
+        tx.commit()
+            .await
+            .map_err(StoreError::database("committing a calibration upload"))?;
+
+        Ok(ChainCalibration {
+            id: header.id,
+            name: header.name,
+            version: header.version,
+            created_at_unix_ms: header.created_at_unix_ms,
+            created_by: header.created_by,
+            points,
+        })
+    }
+
+    /// The calibration version with this id.
+    pub async fn chain_calibration(&self, id: i64) -> Result<ChainCalibration, StoreError> {
+        let header = sqlx::query_as::<_, ChainCalibrationHeader>(
+            "SELECT id, name, version, created_at_unix_ms, created_by FROM chain_calibrations WHERE id = $1",
+        )
+        .bind(id)
+        .fetch_optional(&self.pool)
+        .await
+        .map_err(StoreError::database("reading a chain calibration"))?
+        .ok_or_else(|| StoreError::NotFound {
+            what: "chain calibration with id",
+            key: id.to_string(),
+        })?;
+        self.with_points(header).await
+    }
+
+    /// The newest version of the calibration called `name`.
+    pub async fn latest_chain_calibration(
+        &self,
+        name: &str,
+    ) -> Result<ChainCalibration, StoreError> {
+        let header = sqlx::query_as::<_, ChainCalibrationHeader>(
+            "SELECT id, name, version, created_at_unix_ms, created_by FROM chain_calibrations \
+             WHERE name = $1 ORDER BY version DESC LIMIT 1",
+        )
+        .bind(name.trim())
+        .fetch_optional(&self.pool)
+        .await
+        .map_err(StoreError::database("reading a chain calibration"))?
+        .ok_or_else(|| StoreError::NotFound {
+            what: "chain calibration named",
+            key: format!("{name:?}"),
+        })?;
+        self.with_points(header).await
+    }
+
+    /// Every calibration version (without points): by name, then version.
+    pub async fn chain_calibrations(&self) -> Result<Vec<ChainCalibrationHeader>, StoreError> {
+        sqlx::query_as::<_, ChainCalibrationHeader>(
+            "SELECT id, name, version, created_at_unix_ms, created_by FROM chain_calibrations \
+             ORDER BY name, version",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .map_err(StoreError::database("listing chain calibrations"))
+    }
+
+    async fn with_points(
+        &self,
+        header: ChainCalibrationHeader,
+    ) -> Result<ChainCalibration, StoreError> {
+        let points = sqlx::query_as::<_, ChainCalibrationPoint>(
+            "SELECT frequency_hz, gain_db FROM chain_calibration_points \
+             WHERE chain_calibration_id = $1 ORDER BY frequency_hz",
+        )
+        .bind(header.id)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(StoreError::database("reading calibration points"))?;
+        Ok(ChainCalibration {
+            id: header.id,
+            name: header.name,
+            version: header.version,
+            created_at_unix_ms: header.created_at_unix_ms,
+            created_by: header.created_by,
+            points,
+        })
+    }
+}
+
+/// Sorts the points by frequency and refuses empty tables, non-finite values, frequencies that are
+/// not positive, and a frequency given twice.
+fn checked_points(
+    points: &[ChainCalibrationPoint],
+) -> Result<Vec<ChainCalibrationPoint>, StoreError> {
+    if points.is_empty() {
+        return Err(StoreError::InvalidInput {
+            what: "chain calibration",
+            reason: "it has no points; give the chain's gain at one frequency at least".to_string(),
+        });
+    }
+    for point in points {
+        StoreError::require_finite("calibration frequency", point.frequency_hz)?;
+        StoreError::require_finite("calibration gain", point.gain_db)?;
+        if point.frequency_hz <= 0.0 {
+            return Err(StoreError::InvalidInput {
+                what: "calibration frequency",
+                reason: format!("{} Hz is not positive", point.frequency_hz),
+            });
+        }
+    }
+    let mut sorted = points.to_vec();
+    sorted.sort_by(|a, b| a.frequency_hz.total_cmp(&b.frequency_hz));
+    if let Some(pair) = sorted
+        .windows(2)
+        .find(|pair| pair[0].frequency_hz == pair[1].frequency_hz)
+    {
+        return Err(StoreError::InvalidInput {
+            what: "chain calibration",
+            reason: format!(
+                "{} Hz is given more than once; give one gain per frequency",
+                pair[0].frequency_hz
+            ),
+        });
+    }
+    Ok(sorted)
+}

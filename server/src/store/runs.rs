@@ -1,0 +1,321 @@
+//! Runs: queueing, the state machine, listing, and what recovery after a crash needs.
+//!
+//! States move only along allowed edges (queued -> running -> completed/failed/cancelled,
+//! running -> interrupted -> running again on resume); a transition is one conditional UPDATE, so
+//! two callers racing cannot both move the same run. At start-up the daemon calls
+//! [`Store::mark_running_as_interrupted`]: whatever was running when it died becomes interrupted,
+//! its committed points untouched, and [`Store::stored_point_indices`] tells the resume which grid
+//! positions to skip.
+
+use super::audit::audit_in;
+use super::{
+    now_unix_ms, NewRun, RunDetail, RunFilter, RunPage, RunRecord, RunState, Store, StoreError,
+};
+use sqlx::{QueryBuilder, Sqlite};
+use std::collections::HashSet;
+
+/// The actor named in audit entries for changes the daemon makes by itself.
+pub const DAEMON_ACTOR: &str = "halfwave";
+
+/// The cause recorded on runs found running at start-up.
+pub const INTERRUPTED_CAUSE: &str =
+    "the daemon stopped while this run was running; its committed points are kept, resume it to finish";
+
+/// Columns of a [`RunRecord`], from `runs r JOIN devices d`.
+const RUN_SELECT: &str = "SELECT r.id, r.plan_json, r.device_id, d.serial AS device_serial, \
+     r.bench_name, r.chain_calibration_id, r.state, r.submitted_by, r.created_at_unix_ms, \
+     r.started_at_unix_ms, r.finished_at_unix_ms, r.cause \
+     FROM runs r JOIN devices d ON d.id = r.device_id";
+
+/// The states a run may be in to move to `to`.
+fn allowed_sources(to: RunState) -> &'static [RunState] {
+    match to {
+        RunState::Queued => &[],
+        RunState::Running => &[RunState::Queued, RunState::Interrupted],
+        RunState::Completed => &[RunState::Running],
+        RunState::Failed => &[RunState::Queued, RunState::Running, RunState::Interrupted],
+        RunState::Cancelled => &[RunState::Queued, RunState::Running, RunState::Interrupted],
+        RunState::Interrupted => &[RunState::Running],
+    }
+}
+
+impl Store {
+    /// Queues a run. The device and the calibration version must exist.
+    pub async fn create_run(&self, run: &NewRun) -> Result<RunRecord, StoreError> {
+        let now = now_unix_ms();
+        let mut tx = self
+            .pool
+            .begin()
+            .await
+            .map_err(StoreError::database("starting to queue a run"))?;
+        let device_exists: Option<i64> = sqlx::query_scalar("SELECT id FROM devices WHERE id = $1")
+            .bind(run.device_id)
+            .fetch_optional(&mut *tx)
+            .await
+            .map_err(StoreError::database("checking the run's device"))?;
+        if device_exists.is_none() {
+            return Err(StoreError::NotFound {
+                what: "device with id",
+                key: run.device_id.to_string(),
+            });
+        }
+        let calibration_exists: Option<i64> =
+            sqlx::query_scalar("SELECT id FROM chain_calibrations WHERE id = $1")
+                .bind(run.chain_calibration_id)
+                .fetch_optional(&mut *tx)
+                .await
+                .map_err(StoreError::database("checking the run's chain calibration"))?;
+        if calibration_exists.is_none() {
+            return Err(StoreError::NotFound {
+                what: "chain calibration with id",
+                key: run.chain_calibration_id.to_string(),
+            });
+        }
+        let id: i64 = sqlx::query_scalar(
+            "INSERT INTO runs (plan_json, device_id, bench_name, chain_calibration_id, state, submitted_by, created_at_unix_ms) \
+             VALUES ($1, $2, $3, $4, $5, $6, $7) RETURNING id",
+        )
+        .bind(super::json_text(&run.plan))
+        .bind(run.device_id)
+        .bind(&run.bench_name)
+        .bind(run.chain_calibration_id)
+        .bind(RunState::Queued.as_str())
+        .bind(&run.submitted_by)
+        .bind(now)
+        .fetch_one(&mut *tx)
+        .await
+        .map_err(StoreError::database("queueing a run"))?;
+        audit_in(
+            &mut tx,
+            now,
+            &run.submitted_by,
+            "run.submit",
+            &format!("run:{id}"),
+            &serde_json::json!({ "device_id": run.device_id, "bench_name": run.bench_name })
+                .to_string(),
+        )
+        .await?;
+        tx.commit()
+            .await
+            .map_err(StoreError::database("committing a queued run"))?;
+        self.run(id).await
+    }
+
+    /// The run with this id.
+    pub async fn run(&self, id: i64) -> Result<RunRecord, StoreError> {
+        let mut query = QueryBuilder::<Sqlite>::new(RUN_SELECT);
+        query.push(" WHERE r.id = ");
+        query.push_bind(id);
+        query
+            .build_query_as::<RunRecord>()
+            .fetch_optional(&self.pool)
+            .await
+            .map_err(StoreError::database("reading a run"))?
+            .ok_or_else(|| StoreError::NotFound {
+                what: "run with id",
+                key: id.to_string(),
+            })
+    }
+
+    /// Moves a run to `to` if its current state allows it, stamping the start time (first move to
+    /// running) or the finish time (completed, failed, cancelled) and recording `cause` (pass
+    /// `None` to clear it, e.g. on resume). Returns the updated run.
+    pub async fn transition_run(
+        &self,
+        id: i64,
+        to: RunState,
+        cause: Option<&str>,
+    ) -> Result<RunRecord, StoreError> {
+        let now = now_unix_ms();
+        let sources = allowed_sources(to);
+        let mut tx = self
+            .pool
+            .begin()
+            .await
+            .map_err(StoreError::database("starting a run state change"))?;
+        let mut update = QueryBuilder::<Sqlite>::new("UPDATE runs SET state = ");
+        update.push_bind(to.as_str());
+        update.push(", cause = ");
+        update.push_bind(cause);
+        if to == RunState::Running {
+            update.push(", started_at_unix_ms = COALESCE(started_at_unix_ms, ");
+            update.push_bind(now);
+            update.push(")");
+        }
+        if to.is_final() {
+            update.push(", finished_at_unix_ms = ");
+            update.push_bind(now);
+        }
+        update.push(" WHERE id = ");
+        update.push_bind(id);
+        update.push(" AND state IN (");
+        let mut list = update.separated(", ");
+        for source in sources {
+            list.push_bind(source.as_str());
+        }
+        if sources.is_empty() {
+            list.push("NULL");
+        }
+        update.push(")");
+        let changed = update
+            .build()
+            .execute(&mut *tx)
+            .await
+            .map_err(StoreError::database("changing a run's state"))?
+            .rows_affected();
+        if changed == 0 {
+            drop(tx);
+            let current = self.run(id).await?;
+            return Err(StoreError::InvalidTransition {
+                run_id: id,
+                from: current.state,
+                to,
+            });
+        }
+        let detail = serde_json::json!({ "state": to.as_str(), "cause": cause });
+        audit_in(
+            &mut tx,
+            now,
+            DAEMON_ACTOR,
+            "run.state",
+            &format!("run:{id}"),
+            &detail.to_string(),
+        )
+        .await?;
+        tx.commit()
+            .await
+            .map_err(StoreError::database("committing a run state change"))?;
+        self.run(id).await
+    }
+
+    /// Start-up recovery: every run left `running` becomes `interrupted` (points untouched), with
+    /// an audit entry each. Returns their ids, oldest first.
+    pub async fn mark_running_as_interrupted(&self) -> Result<Vec<i64>, StoreError> {
+        let now = now_unix_ms();
+        let mut tx = self
+            .pool
+            .begin()
+            .await
+            .map_err(StoreError::database("starting start-up recovery"))?;
+        let mut ids: Vec<i64> = sqlx::query_scalar(
+            "UPDATE runs SET state = $1, cause = $2 WHERE state = $3 RETURNING id",
+        )
+        .bind(RunState::Interrupted.as_str())
+        .bind(INTERRUPTED_CAUSE)
+        .bind(RunState::Running.as_str())
+        .fetch_all(&mut *tx)
+        .await
+        .map_err(StoreError::database("marking running runs as interrupted"))?;
+        ids.sort_unstable();
+        for id in &ids {
+            audit_in(
+                &mut tx,
+                now,
+                DAEMON_ACTOR,
+                "run.interrupted",
+                &format!("run:{id}"),
+                INTERRUPTED_CAUSE,
+            )
+            .await?;
+        }
+        tx.commit()
+            .await
+            .map_err(StoreError::database("committing start-up recovery"))?;
+        Ok(ids)
+    }
+
+    /// The (frequency index, level index) positions of a run that already have a stored point; a
+    /// resumed run measures only the others.
+    pub async fn stored_point_indices(
+        &self,
+        run_id: i64,
+    ) -> Result<HashSet<(u32, u32)>, StoreError> {
+        let rows: Vec<(i64, i64)> =
+            sqlx::query_as("SELECT frequency_index, level_index FROM points WHERE run_id = $1")
+                .bind(run_id)
+                .fetch_all(&self.pool)
+                .await
+                .map_err(StoreError::database("reading a run's stored points"))?;
+        rows.into_iter()
+            .map(|(f, l)| {
+                Ok((
+                    super::index_from_db("point frequency index", f)?,
+                    super::index_from_db("point level index", l)?,
+                ))
+            })
+            .collect()
+    }
+
+    /// Runs matching `filter`, newest first, one page at a time, with the total number matching.
+    pub async fn list_runs(&self, filter: &RunFilter) -> Result<RunPage, StoreError> {
+        if filter.limit == 0 || filter.limit > RunFilter::MAX_LIMIT {
+            return Err(StoreError::InvalidInput {
+                what: "page size",
+                reason: format!(
+                    "{} is outside 1 to {}; ask for a smaller page",
+                    filter.limit,
+                    RunFilter::MAX_LIMIT
+                ),
+            });
+        }
+        let mut count = QueryBuilder::<Sqlite>::new(
+            "SELECT COUNT(*) FROM runs r JOIN devices d ON d.id = r.device_id",
+        );
+        push_run_conditions(&mut count, filter);
+        let total: i64 = count
+            .build_query_scalar()
+            .fetch_one(&self.pool)
+            .await
+            .map_err(StoreError::database("counting runs"))?;
+
+        let mut select = QueryBuilder::<Sqlite>::new(RUN_SELECT);
+        push_run_conditions(&mut select, filter);
+        select.push(" ORDER BY r.created_at_unix_ms DESC, r.id DESC LIMIT ");
+        select.push_bind(i64::from(filter.limit));
+        select.push(" OFFSET ");
+        select.push_bind(i64::from(filter.offset));
+        let runs = select
+            .build_query_as::<RunRecord>()
+            .fetch_all(&self.pool)
+            .await
+            .map_err(StoreError::database("listing runs"))?;
+        Ok(RunPage { runs, total })
+    }
+
+    /// A run with all its points and per-frequency results.
+    pub async fn run_detail(&self, id: i64) -> Result<RunDetail, StoreError> {
+        let run = self.run(id).await?;
+        let points = self.points_of_run(id).await?;
+        let results = self.frequency_results(id).await?;
+        Ok(RunDetail {
+            run,
+            points,
+            results,
+        })
+    }
+}
+
+/// Appends the WHERE clause of a run filter.
+fn push_run_conditions(query: &mut QueryBuilder<Sqlite>, filter: &RunFilter) {
+    query.push(" WHERE 1 = 1");
+    if let Some(device_id) = filter.device_id {
+        query.push(" AND r.device_id = ");
+        query.push_bind(device_id);
+    }
+    if let Some(serial) = &filter.device_serial {
+        query.push(" AND d.serial = ");
+        query.push_bind(serial.clone());
+    }
+    if let Some(state) = filter.state {
+        query.push(" AND r.state = ");
+        query.push_bind(state.as_str());
+    }
+    if let Some(from) = filter.created_from_unix_ms {
+        query.push(" AND r.created_at_unix_ms >= ");
+        query.push_bind(from);
+    }
+    if let Some(before) = filter.created_before_unix_ms {
+        query.push(" AND r.created_at_unix_ms < ");
+        query.push_bind(before);
+    }
+}

@@ -1,0 +1,227 @@
+//! The store on a real file: schema, pragmas, what survives a crash, start-up recovery and the
+//! guarantees a resumed run relies on.
+
+mod store_support;
+
+use halfwave::store::{RunState, Store, StoreError};
+use store_support::{point, running_run, small_trace, TempDir};
+
+#[tokio::test]
+async fn migrations_apply_to_a_fresh_file_and_pragmas_are_set() {
+    let dir = TempDir::new("fresh");
+    let path = dir.file("halfwave.db");
+    assert!(!std::path::Path::new(&path).exists());
+    let store = Store::open(&path).await.unwrap();
+    assert!(std::path::Path::new(&path).exists());
+
+    let tables: Vec<String> =
+        sqlx::query_scalar("SELECT name FROM sqlite_master WHERE type = 'table' ORDER BY name")
+            .fetch_all(store.pool())
+            .await
+            .unwrap();
+    for expected in [
+        "audit_log",
+        "chain_calibration_points",
+        "chain_calibrations",
+        "devices",
+        "frequency_results",
+        "instruments",
+        "point_traces",
+        "points",
+        "reference_traces",
+        "runs",
+    ] {
+        assert!(
+            tables.iter().any(|t| t == expected),
+            "{expected} missing from {tables:?}"
+        );
+    }
+
+    let journal_mode: String = sqlx::query_scalar("PRAGMA journal_mode")
+        .fetch_one(store.pool())
+        .await
+        .unwrap();
+    assert_eq!(journal_mode.to_lowercase(), "wal");
+    let foreign_keys: i64 = sqlx::query_scalar("PRAGMA foreign_keys")
+        .fetch_one(store.pool())
+        .await
+        .unwrap();
+    assert_eq!(foreign_keys, 1);
+    let busy_timeout_ms: i64 = sqlx::query_scalar("PRAGMA busy_timeout")
+        .fetch_one(store.pool())
+        .await
+        .unwrap();
+    assert_eq!(busy_timeout_ms, 5_000);
+
+    // Opening again applies nothing twice.
+    store.close().await;
+    let again = Store::open(&format!("sqlite://{path}")).await.unwrap();
+    let applied: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM _sqlx_migrations")
+        .fetch_one(again.pool())
+        .await
+        .unwrap();
+    assert_eq!(applied, 1);
+}
+
+#[tokio::test]
+async fn foreign_keys_are_enforced() {
+    let store = Store::open_in_memory().await.unwrap();
+    let trace = small_trace();
+    let err = store
+        .commit_point(&point(999, 0, 0, &trace))
+        .await
+        .unwrap_err();
+    assert!(matches!(err, StoreError::NotFound { .. }), "{err}");
+    let raw = sqlx::query("INSERT INTO points (run_id, frequency_index, level_index, frequency_hz, generator_level_dbm, level_at_modulator_dbm, v_peak_volts, line_table_json, analysis_json, measured_at_unix_ms) VALUES (42, 0, 0, 1, 0, 0, 1, '[]', '{}', 0)")
+        .execute(store.pool())
+        .await;
+    assert!(raw.is_err(), "a point of a missing run must be refused");
+}
+
+#[tokio::test]
+async fn committed_point_survives_dropping_the_pool_and_reopening() {
+    let dir = TempDir::new("crash");
+    let path = dir.file("halfwave.db");
+    let trace = small_trace();
+    let (run_id, point_id) = {
+        let store = Store::open(&path).await.unwrap();
+        let run = running_run(&store, "DEMO-0001").await;
+        let point_id = store
+            .commit_point(&point(run.id, 0, 0, &trace))
+            .await
+            .unwrap();
+        // No close(): the pool is dropped as a killed daemon would leave it.
+        (run.id, point_id)
+    };
+
+    let store = Store::open(&path).await.unwrap();
+    let points = store.points_of_run(run_id).await.unwrap();
+    assert_eq!(points.len(), 1);
+    assert_eq!(points[0].id, point_id);
+    assert_eq!(points[0].v_peak_volts, 3.162);
+    let stored_trace = store.point_trace(point_id).await.unwrap();
+    assert_eq!(stored_trace.len(), trace.len());
+    assert_eq!(stored_trace.power_dbm()[200], -3.0);
+}
+
+#[tokio::test]
+async fn start_up_recovery_interrupts_running_runs_and_keeps_their_points() {
+    let dir = TempDir::new("recovery");
+    let path = dir.file("halfwave.db");
+    let trace = small_trace();
+    let (running_id, queued_id) = {
+        let store = Store::open(&path).await.unwrap();
+        let running = running_run(&store, "DEMO-0002").await;
+        for (f, l) in [(0, 0), (0, 1), (1, 0)] {
+            store
+                .commit_point(&point(running.id, f, l, &trace))
+                .await
+                .unwrap();
+        }
+        let queued = store_support::queued_run(&store, "DEMO-0003").await;
+        (running.id, queued.id)
+    };
+
+    let store = Store::open(&path).await.unwrap();
+    let interrupted = store.mark_running_as_interrupted().await.unwrap();
+    assert_eq!(interrupted, vec![running_id]);
+    let run = store.run(running_id).await.unwrap();
+    assert_eq!(run.state, RunState::Interrupted);
+    assert!(run.cause.as_deref().unwrap_or("").contains("resume"));
+    assert_eq!(store.run(queued_id).await.unwrap().state, RunState::Queued);
+    assert_eq!(store.points_of_run(running_id).await.unwrap().len(), 3);
+    let done = store.stored_point_indices(running_id).await.unwrap();
+    assert_eq!(done.len(), 3);
+    assert!(done.contains(&(0, 0)) && done.contains(&(0, 1)) && done.contains(&(1, 0)));
+    assert!(!done.contains(&(1, 1)));
+    // A second start-up finds nothing left running.
+    assert!(store
+        .mark_running_as_interrupted()
+        .await
+        .unwrap()
+        .is_empty());
+
+    let log = store.audit_log(10, None).await.unwrap();
+    assert!(log
+        .iter()
+        .any(|e| e.action == "run.interrupted" && e.subject == format!("run:{running_id}")));
+
+    // The resume: interrupted -> running keeps the start time and clears the cause.
+    let resumed = store
+        .transition_run(running_id, RunState::Running, None)
+        .await
+        .unwrap();
+    assert_eq!(resumed.started_at_unix_ms, run.started_at_unix_ms);
+    assert_eq!(resumed.cause, None);
+}
+
+#[tokio::test]
+async fn a_point_cannot_be_stored_twice() {
+    let store = Store::open_in_memory().await.unwrap();
+    let trace = small_trace();
+    let run = running_run(&store, "DEMO-0004").await;
+    store
+        .commit_point(&point(run.id, 2, 3, &trace))
+        .await
+        .unwrap();
+    let err = store
+        .commit_point(&point(run.id, 2, 3, &trace))
+        .await
+        .unwrap_err();
+    assert!(
+        matches!(
+            err,
+            StoreError::DuplicatePoint {
+                frequency_index: 2,
+                level_index: 3,
+                ..
+            }
+        ),
+        "{err}"
+    );
+    // The failed commit left neither a second point nor an orphan trace.
+    assert_eq!(store.points_of_run(run.id).await.unwrap().len(), 1);
+    let traces: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM point_traces")
+        .fetch_one(store.pool())
+        .await
+        .unwrap();
+    assert_eq!(traces, 1);
+}
+
+#[tokio::test]
+async fn run_states_follow_the_allowed_edges() {
+    let store = Store::open_in_memory().await.unwrap();
+    let run = store_support::queued_run(&store, "DEMO-0005").await;
+    let err = store
+        .transition_run(run.id, RunState::Completed, None)
+        .await
+        .unwrap_err();
+    assert!(matches!(
+        err,
+        StoreError::InvalidTransition {
+            from: RunState::Queued,
+            to: RunState::Completed,
+            ..
+        }
+    ));
+    let running = store
+        .transition_run(run.id, RunState::Running, None)
+        .await
+        .unwrap();
+    assert!(running.started_at_unix_ms.is_some());
+    assert!(running.finished_at_unix_ms.is_none());
+    let failed = store
+        .transition_run(run.id, RunState::Failed, Some("analyzer stopped answering"))
+        .await
+        .unwrap();
+    assert!(failed.finished_at_unix_ms.is_some());
+    assert_eq!(failed.cause.as_deref(), Some("analyzer stopped answering"));
+    assert!(store
+        .transition_run(run.id, RunState::Running, None)
+        .await
+        .is_err());
+    assert!(matches!(
+        store.transition_run(12345, RunState::Running, None).await,
+        Err(StoreError::NotFound { .. })
+    ));
+}
