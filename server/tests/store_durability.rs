@@ -225,3 +225,53 @@ async fn run_states_follow_the_allowed_edges() {
         Err(StoreError::NotFound { .. })
     ));
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn engine_writes_and_api_writes_interleave_without_lock_errors() {
+    // The engine commits points while the API queues runs, moves their states and lists them, all
+    // on one file database through the pool: none of it may fail with "database is locked".
+    let dir = TempDir::new("concurrent");
+    let store = Store::open(&dir.file("halfwave.db")).await.unwrap();
+    let run = running_run(&store, "DEMO-0600").await;
+    let trace = small_trace();
+
+    let engine = {
+        let store = store.clone();
+        let trace = trace.clone();
+        tokio::spawn(async move {
+            for level in 0..150u32 {
+                store
+                    .commit_point(&point(run.id, level % 3, level, &trace))
+                    .await
+                    .unwrap();
+            }
+        })
+    };
+    let api = {
+        let store = store.clone();
+        tokio::spawn(async move {
+            for _ in 0..30 {
+                let queued = store_support::queued_run(&store, "DEMO-0601").await;
+                store
+                    .transition_run(queued.id, RunState::Cancelled, Some("operator cancelled"))
+                    .await
+                    .unwrap();
+                store
+                    .list_runs(&halfwave::store::RunFilter::default())
+                    .await
+                    .unwrap();
+            }
+        })
+    };
+    engine.await.unwrap();
+    api.await.unwrap();
+    assert_eq!(store.points_of_run(run.id).await.unwrap().len(), 150);
+    let cancelled = store
+        .list_runs(&halfwave::store::RunFilter {
+            state: Some(RunState::Cancelled),
+            ..Default::default()
+        })
+        .await
+        .unwrap();
+    assert_eq!(cancelled.total, 30);
+}

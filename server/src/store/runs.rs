@@ -42,15 +42,13 @@ fn allowed_sources(to: RunState) -> &'static [RunState] {
 impl Store {
     /// Queues a run. The device and the calibration version must exist.
     pub async fn create_run(&self, run: &NewRun) -> Result<RunRecord, StoreError> {
-        let now = now_unix_ms();
-        let mut tx = self
-            .pool
-            .begin()
-            .await
-            .map_err(StoreError::database("starting to queue a run"))?;
+        // The existence checks run before the transaction (devices and calibration versions are
+        // never deleted), so the transaction opens with a write: in WAL mode a transaction that
+        // reads first and then writes fails at once with "database is locked" when another
+        // connection committed in between, whatever the busy timeout.
         let device_exists: Option<i64> = sqlx::query_scalar("SELECT id FROM devices WHERE id = $1")
             .bind(run.device_id)
-            .fetch_optional(&mut *tx)
+            .fetch_optional(&self.pool)
             .await
             .map_err(StoreError::database("checking the run's device"))?;
         if device_exists.is_none() {
@@ -62,7 +60,7 @@ impl Store {
         let calibration_exists: Option<i64> =
             sqlx::query_scalar("SELECT id FROM chain_calibrations WHERE id = $1")
                 .bind(run.chain_calibration_id)
-                .fetch_optional(&mut *tx)
+                .fetch_optional(&self.pool)
                 .await
                 .map_err(StoreError::database("checking the run's chain calibration"))?;
         if calibration_exists.is_none() {
@@ -71,6 +69,12 @@ impl Store {
                 key: run.chain_calibration_id.to_string(),
             });
         }
+        let now = now_unix_ms();
+        let mut tx = self
+            .pool
+            .begin()
+            .await
+            .map_err(StoreError::database("starting to queue a run"))?;
         let id: i64 = sqlx::query_scalar(
             "INSERT INTO runs (plan_json, device_id, bench_name, chain_calibration_id, state, submitted_by, created_at_unix_ms) \
              VALUES ($1, $2, $3, $4, $5, $6, $7) RETURNING id",
