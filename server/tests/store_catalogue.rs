@@ -91,6 +91,17 @@ async fn chain_calibrations_are_versioned_and_never_edited() {
     assert_eq!(v2.version, 2);
     assert_ne!(v2.id, v1.id);
 
+    let by_version = store
+        .chain_calibration_version("bench-south chain", 1)
+        .await
+        .unwrap();
+    assert_eq!(by_version.id, v1.id);
+    assert!(matches!(
+        store
+            .chain_calibration_version("bench-south chain", 3)
+            .await,
+        Err(StoreError::NotFound { .. })
+    ));
     let v1_again = store.chain_calibration(v1.id).await.unwrap();
     assert_eq!(v1_again, v1, "version 1 must be unchanged");
     let latest = store
@@ -120,6 +131,7 @@ async fn chain_calibrations_are_versioned_and_never_edited() {
     for bad in [
         vec![],
         vec![ChainCalibrationPoint::new(Hz(f64::NAN), Db(1.0))],
+        vec![ChainCalibrationPoint::new(Hz(-1.0), Db(1.0))],
         vec![
             ChainCalibrationPoint::new(Hz(1e9), Db(1.0)),
             ChainCalibrationPoint::new(Hz(1e9), Db(2.0)),
@@ -130,13 +142,23 @@ async fn chain_calibrations_are_versioned_and_never_edited() {
             Err(StoreError::InvalidInput { .. })
         ));
     }
+    // A flat gain is one point at 0 Hz.
+    let flat = store
+        .create_chain_calibration(
+            "flat-loss-6.00dB",
+            "halfwave",
+            &[ChainCalibrationPoint::new(Hz(0.0), Db(-6.0))],
+        )
+        .await
+        .unwrap();
+    assert_eq!(flat.points.len(), 1);
     let uploads = store.audit_log(100, None).await.unwrap();
     assert_eq!(
         uploads
             .iter()
             .filter(|e| e.action == "chain_calibration.create")
             .count(),
-        3
+        4
     );
 }
 

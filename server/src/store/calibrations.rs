@@ -12,8 +12,9 @@ use super::{
 
 impl Store {
     /// Stores a new version of the calibration called `name` (version 1 if the name is new) and
-    /// returns it with its points sorted by frequency. Frequencies must be finite, positive and
-    /// distinct; gains finite; at least one point.
+    /// returns it with its points sorted by frequency. Frequencies must be finite, not negative
+    /// and distinct (a single point at 0 Hz is how a flat, frequency-independent gain is stored);
+    /// gains finite; at least one point.
     pub async fn create_chain_calibration(
         &self,
         name: &str,
@@ -123,6 +124,28 @@ impl Store {
         self.with_points(header).await
     }
 
+    /// Version `version` of the calibration called `name`.
+    pub async fn chain_calibration_version(
+        &self,
+        name: &str,
+        version: i64,
+    ) -> Result<ChainCalibration, StoreError> {
+        let header = sqlx::query_as::<_, ChainCalibrationHeader>(
+            "SELECT id, name, version, created_at_unix_ms, created_by FROM chain_calibrations \
+             WHERE name = $1 AND version = $2",
+        )
+        .bind(name.trim())
+        .bind(version)
+        .fetch_optional(&self.pool)
+        .await
+        .map_err(StoreError::database("reading a chain calibration"))?
+        .ok_or_else(|| StoreError::NotFound {
+            what: "chain calibration",
+            key: format!("{name:?} version {version}"),
+        })?;
+        self.with_points(header).await
+    }
+
     /// Every calibration version (without points): by name, then version.
     pub async fn chain_calibrations(&self) -> Result<Vec<ChainCalibrationHeader>, StoreError> {
         sqlx::query_as::<_, ChainCalibrationHeader>(
@@ -171,10 +194,10 @@ fn checked_points(
     for point in points {
         StoreError::require_finite("calibration frequency", point.frequency_hz)?;
         StoreError::require_finite("calibration gain", point.gain_db)?;
-        if point.frequency_hz <= 0.0 {
+        if point.frequency_hz < 0.0 {
             return Err(StoreError::InvalidInput {
                 what: "calibration frequency",
-                reason: format!("{} Hz is not positive", point.frequency_hz),
+                reason: format!("{} Hz is negative", point.frequency_hz),
             });
         }
     }
