@@ -10,6 +10,7 @@
 //! - [`telemetry`]: tracing set-up, done once at start.
 
 pub mod analysis;
+pub mod api;
 pub mod cli;
 pub mod config;
 pub mod engine;

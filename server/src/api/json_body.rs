@@ -1,0 +1,134 @@
+//! A JSON body extractor whose errors name the field.
+//!
+//! axum's own `Json` rejects a bad body with a plain-text message. Here the body is parsed with
+//! `serde_path_to_error`, so an unknown field, a wrong type or a missing member comes back as a
+//! 422 problem whose `errors` entry names the dotted path of the offending field
+//! (`levels.stop_dbm`); a body that is not JSON at all is named as the field `body`. A body over the
+//! size limit is a 413, a wrong content type a 415.
+
+use super::problem::{FieldProblem, Problem};
+use axum::body::Bytes;
+use axum::extract::{FromRequest, Request};
+use axum::http::header::CONTENT_TYPE;
+use axum::http::StatusCode;
+use serde::de::DeserializeOwned;
+
+/// A request body parsed from JSON, with field-naming errors.
+#[derive(Debug, Clone)]
+pub struct JsonBody<T>(pub T);
+
+/// Parses JSON bytes into `T`, naming the offending field on failure.
+pub fn parse_json<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, Problem> {
+    let mut deserializer = serde_json::Deserializer::from_slice(bytes);
+    let parsed: Result<T, _> = serde_path_to_error::deserialize(&mut deserializer);
+    let value = match parsed {
+        Ok(value) => value,
+        Err(e) => {
+            let path = e.path().to_string();
+            let inner = e.into_inner();
+            let syntax = matches!(
+                inner.classify(),
+                serde_json::error::Category::Syntax | serde_json::error::Category::Eof
+            );
+            let field = if syntax || path == "." {
+                "body".to_string()
+            } else {
+                path
+            };
+            let message = if syntax {
+                format!("the body is not valid JSON: {inner}")
+            } else {
+                strip_position(&inner.to_string())
+            };
+            return Err(Problem::invalid(
+                format!("{field}: {message}"),
+                vec![FieldProblem::new(field, message)],
+            ));
+        }
+    };
+    deserializer.end().map_err(|e| {
+        Problem::invalid_field(
+            "body",
+            format!("unexpected content after the JSON value: {e}"),
+        )
+    })?;
+    Ok(value)
+}
+
+/// serde_json appends " at line L column C"; the field path says more, so drop it for fields.
+fn strip_position(message: &str) -> String {
+    match message.rfind(" at line ") {
+        Some(at) => message[..at].to_string(),
+        None => message.to_string(),
+    }
+}
+
+impl<S, T> FromRequest<S> for JsonBody<T>
+where
+    S: Send + Sync,
+    T: DeserializeOwned,
+{
+    type Rejection = Problem;
+
+    async fn from_request(request: Request, state: &S) -> Result<Self, Self::Rejection> {
+        let is_json = request
+            .headers()
+            .get(CONTENT_TYPE)
+            .and_then(|v| v.to_str().ok())
+            .map(|v| {
+                let essence = v.split(';').next().unwrap_or_default().trim();
+                essence.eq_ignore_ascii_case("application/json")
+                    || essence.to_ascii_lowercase().ends_with("+json")
+            })
+            .unwrap_or(false);
+        if !is_json {
+            return Err(Problem::for_bare_status(StatusCode::UNSUPPORTED_MEDIA_TYPE));
+        }
+        let bytes = Bytes::from_request(request, state)
+            .await
+            .map_err(|rejection| Problem::for_bare_status(rejection.status()))?;
+        parse_json(&bytes).map(JsonBody)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serde::Deserialize;
+
+    #[derive(Debug, Deserialize)]
+    #[serde(deny_unknown_fields)]
+    #[allow(dead_code)]
+    struct Inner {
+        stop_dbm: f64,
+    }
+
+    #[derive(Debug, Deserialize)]
+    #[serde(deny_unknown_fields)]
+    #[allow(dead_code)]
+    struct Outer {
+        levels: Inner,
+    }
+
+    #[test]
+    fn wrong_type_names_the_nested_field() {
+        let problem = parse_json::<Outer>(br#"{"levels":{"stop_dbm":"hot"}}"#).unwrap_err();
+        assert_eq!(problem.status, 422);
+        assert_eq!(problem.errors[0].field, "levels.stop_dbm");
+    }
+
+    #[test]
+    fn unknown_field_is_named() {
+        let problem =
+            parse_json::<Outer>(br#"{"levels":{"stop_dbm":1.0,"power_w":3}}"#).unwrap_err();
+        assert_eq!(problem.errors[0].field, "levels.power_w");
+        assert!(problem.errors[0].message.contains("unknown field"));
+    }
+
+    #[test]
+    fn malformed_json_is_the_body_field() {
+        let problem = parse_json::<Outer>(br#"{"levels": "#).unwrap_err();
+        assert_eq!(problem.status, 422);
+        assert_eq!(problem.errors[0].field, "body");
+    }
+}

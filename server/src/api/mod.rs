@@ -1,0 +1,112 @@
+//! The HTTP API and the dashboard: routes under `/api/v1`, auth, errors, plots, static pages.
+//!
+//! [`router`] builds the whole application from an [`AppState`]; [`serve`] binds it and runs it
+//! until shutdown. Every route is declared once in [`routes`], together with its OpenAPI
+//! description (utoipa), so the document at `/api/v1/openapi.json` is generated from the same code
+//! that serves; a test checks that the two agree. Layers, from the outside in: problem details
+//! for bare errors, tracing, request metrics, timeout (not on the event stream), body size limit.
+
+pub mod audit;
+pub mod auth;
+pub mod json_body;
+pub mod metrics;
+pub mod openapi;
+pub mod plots;
+pub mod problem;
+pub mod routes;
+pub mod tokens;
+
+use axum::extract::DefaultBodyLimit;
+use axum::http::StatusCode;
+use axum::Router;
+use metrics::HttpMetrics;
+use sqlx::SqlitePool;
+use std::sync::Arc;
+use std::time::Duration;
+use tower_http::limit::RequestBodyLimitLayer;
+use tower_http::timeout::TimeoutLayer;
+use tower_http::trace::TraceLayer;
+
+/// The largest request body accepted (plans and chain calibrations are far smaller).
+pub const MAX_BODY_BYTES: usize = 1024 * 1024;
+
+/// The longest a request may take to produce its response (the event stream is exempt).
+pub const REQUEST_TIMEOUT: Duration = Duration::from_secs(30);
+
+/// Settings of the HTTP layer that do not come from the engine.
+#[derive(Debug, Clone, Default)]
+pub struct ApiSettings {
+    /// Origins allowed to call the API from a browser page served elsewhere. Empty (the default)
+    /// sends no CORS headers at all, so only the daemon's own dashboard can call it.
+    pub cors_allowed_origins: Vec<String>,
+}
+
+struct StateInner {
+    pool: SqlitePool,
+    http_metrics: HttpMetrics,
+    settings: ApiSettings,
+    started: std::time::Instant,
+}
+
+/// What every handler can reach. Cheap to clone.
+#[derive(Clone)]
+pub struct AppState {
+    inner: Arc<StateInner>,
+}
+
+impl AppState {
+    pub fn new(pool: SqlitePool, settings: ApiSettings) -> AppState {
+        AppState {
+            inner: Arc::new(StateInner {
+                pool,
+                http_metrics: HttpMetrics::default(),
+                settings,
+                started: std::time::Instant::now(),
+            }),
+        }
+    }
+
+    pub fn pool(&self) -> &SqlitePool {
+        &self.inner.pool
+    }
+
+    pub fn http_metrics(&self) -> &HttpMetrics {
+        &self.inner.http_metrics
+    }
+
+    pub fn settings(&self) -> &ApiSettings {
+        &self.inner.settings
+    }
+
+    /// Seconds since the state was built (the daemon's uptime).
+    pub fn uptime_s(&self) -> f64 {
+        self.inner.started.elapsed().as_secs_f64()
+    }
+}
+
+/// Builds the whole application: `/api/v1/...` and the dashboard.
+pub fn router(state: AppState) -> Router {
+    let timed = routes::timed_routes()
+        .layer(TimeoutLayer::with_status_code(
+            StatusCode::REQUEST_TIMEOUT,
+            REQUEST_TIMEOUT,
+        ))
+        .layer(DefaultBodyLimit::max(MAX_BODY_BYTES))
+        .layer(RequestBodyLimitLayer::new(MAX_BODY_BYTES));
+    let app = Router::new()
+        .merge(timed)
+        .merge(routes::streaming_routes())
+        .merge(routes::dashboard::dashboard_routes())
+        .layer(axum::middleware::from_fn_with_state(
+            state.clone(),
+            metrics::record_requests,
+        ))
+        .fallback(routes::unknown_route)
+        .layer(TraceLayer::new_for_http())
+        .layer(axum::middleware::from_fn(problem::problems_for_bare_errors));
+    let app = match routes::cors_layer(state.settings()) {
+        Some(cors) => app.layer(cors),
+        None => app,
+    };
+    app.with_state(state)
+}

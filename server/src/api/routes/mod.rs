@@ -1,0 +1,104 @@
+//! The route table: one entry per (method, path), one file per resource.
+//!
+//! Routes are registered from [`route_table`], and the same table is what the OpenAPI test
+//! compares with the generated document, so a route cannot be served without being documented
+//! (or documented without being served). Paths use the `{name}` template syntax, which is both
+//! axum's and OpenAPI's.
+
+pub mod dashboard;
+pub mod system;
+pub mod tokens;
+
+use super::problem::Problem;
+use super::{ApiSettings, AppState};
+use axum::http::{HeaderValue, Method};
+use axum::routing::MethodRouter;
+use axum::Router;
+use tower_http::cors::{AllowOrigin, CorsLayer};
+
+/// Prefix of every API route.
+pub const API_PREFIX: &str = "/api/v1";
+
+/// One served route.
+pub struct RouteEntry {
+    pub method: Method,
+    /// Path under [`API_PREFIX`].
+    pub path: &'static str,
+    /// True for long-lived responses (server-sent events), which are exempt from the timeout.
+    pub streaming: bool,
+    handler: MethodRouter<AppState>,
+}
+
+fn entry(method: Method, path: &'static str, handler: MethodRouter<AppState>) -> RouteEntry {
+    RouteEntry {
+        method,
+        path,
+        streaming: false,
+        handler,
+    }
+}
+
+/// Every API route. Add a route here and its `#[utoipa::path]` to `openapi.rs`.
+pub fn route_table() -> Vec<RouteEntry> {
+    use axum::routing::{delete, get, post};
+    vec![
+        entry(Method::GET, "/health", get(system::health)),
+        entry(Method::GET, "/metrics", get(system::metrics)),
+        entry(Method::GET, "/openapi.json", get(system::openapi_document)),
+        entry(Method::GET, "/tokens", get(tokens::list_tokens)),
+        entry(Method::POST, "/tokens", post(tokens::create_token)),
+        entry(
+            Method::DELETE,
+            "/tokens/{name}",
+            delete(tokens::revoke_token),
+        ),
+    ]
+}
+
+fn build(streaming: bool) -> Router<AppState> {
+    let mut router = Router::new();
+    for route in route_table()
+        .into_iter()
+        .filter(|r| r.streaming == streaming)
+    {
+        let path = format!("{API_PREFIX}{}", route.path);
+        router = router.route(&path, route.handler);
+    }
+    router
+}
+
+/// The routes that produce their response promptly (timeout applies).
+pub fn timed_routes() -> Router<AppState> {
+    build(false)
+}
+
+/// The long-lived routes (server-sent events).
+pub fn streaming_routes() -> Router<AppState> {
+    build(true)
+}
+
+/// 404 for paths that match no route.
+pub async fn unknown_route() -> Problem {
+    Problem::for_bare_status(axum::http::StatusCode::NOT_FOUND)
+}
+
+/// The CORS layer when origins are configured; none (no CORS headers) by default.
+pub fn cors_layer(settings: &ApiSettings) -> Option<CorsLayer> {
+    if settings.cors_allowed_origins.is_empty() {
+        return None;
+    }
+    let origins: Vec<HeaderValue> = settings
+        .cors_allowed_origins
+        .iter()
+        .filter_map(|o| HeaderValue::from_str(o).ok())
+        .collect();
+    Some(
+        CorsLayer::new()
+            .allow_origin(AllowOrigin::list(origins))
+            .allow_methods([Method::GET, Method::POST, Method::DELETE])
+            .allow_headers([
+                axum::http::header::AUTHORIZATION,
+                axum::http::header::CONTENT_TYPE,
+            ]),
+    )
+}

@@ -1,0 +1,66 @@
+//! Health, Prometheus metrics and the OpenAPI document.
+//!
+//! Health is the one call that needs no token (load balancers and systemd probes have none); it
+//! answers only whether the daemon and its database respond. Metrics and the OpenAPI document are
+//! readable by any token.
+
+use crate::api::auth::Viewer;
+use crate::api::openapi::ApiDoc;
+use crate::api::problem::Problem;
+use crate::api::AppState;
+use axum::extract::State;
+use axum::http::header::CONTENT_TYPE;
+use axum::response::{IntoResponse, Response};
+use axum::Json;
+use serde::{Deserialize, Serialize};
+use utoipa::{OpenApi, ToSchema};
+
+/// The daemon's health.
+#[derive(Debug, Serialize, Deserialize, ToSchema)]
+pub struct Health {
+    /// `ok` when the database answers.
+    pub status: String,
+    pub version: String,
+    pub uptime_s: f64,
+}
+
+/// Whether the daemon and its database respond. No token needed.
+#[utoipa::path(get, path = "/api/v1/health", tag = "system",
+    responses((status = 200, description = "The daemon and its database respond", body = Health),
+              (status = 500, description = "The database does not answer", body = Problem)))]
+pub async fn health(State(state): State<AppState>) -> Result<Json<Health>, Problem> {
+    sqlx::query("SELECT 1")
+        .execute(state.pool())
+        .await
+        .map_err(|e| Problem::internal(format!("the database does not answer: {e}")))?;
+    Ok(Json(Health {
+        status: "ok".to_string(),
+        version: env!("CARGO_PKG_VERSION").to_string(),
+        uptime_s: state.uptime_s(),
+    }))
+}
+
+/// Request counters, latency histograms and run gauges in the Prometheus text format.
+#[utoipa::path(get, path = "/api/v1/metrics", tag = "system", security(("bearer" = [])),
+    responses((status = 200, description = "Prometheus text exposition format 0.0.4", body = String, content_type = "text/plain"),
+              (status = 401, description = "No valid token", body = Problem)))]
+pub async fn metrics(_caller: Viewer, State(state): State<AppState>) -> Response {
+    let mut out = String::with_capacity(4096);
+    out.push_str("# HELP halfwave_uptime_seconds Seconds since the daemon started.\n");
+    out.push_str("# TYPE halfwave_uptime_seconds gauge\n");
+    out.push_str(&format!("halfwave_uptime_seconds {}\n", state.uptime_s()));
+    state.http_metrics().render(&mut out);
+    (
+        [(CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],
+        out,
+    )
+        .into_response()
+}
+
+/// The OpenAPI 3.1 document of this API, generated from the code.
+#[utoipa::path(get, path = "/api/v1/openapi.json", tag = "system", security(("bearer" = [])),
+    responses((status = 200, description = "OpenAPI 3.1 document", body = Object),
+              (status = 401, description = "No valid token", body = Problem)))]
+pub async fn openapi_document(_caller: Viewer) -> Response {
+    Json(ApiDoc::openapi()).into_response()
+}

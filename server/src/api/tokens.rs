@@ -1,0 +1,292 @@
+//! API tokens: random bearer secrets, shown once, stored as SHA-256 digests, each with a role.
+//!
+//! A token is `hwt_` followed by 64 hex digits (32 bytes from the operating system's random
+//! source). The database keeps only the SHA-256 digest, so reading the database does not give
+//! access; a presented token is hashed and looked up by digest. Revoking keeps the row (audit
+//! trail) and frees the name. The same functions serve the `halfwave token` command, which acts on
+//! the database directly, and the admin routes of the API.
+
+use rand::rngs::OsRng;
+use rand::TryRngCore;
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+use sqlx::SqlitePool;
+use utoipa::ToSchema;
+
+/// What a token may do. Each role includes the rights of the roles before it.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize, ToSchema,
+)]
+#[serde(rename_all = "snake_case")]
+pub enum Role {
+    /// Read everything: runs, points, traces, devices, calibrations, plots, events, metrics.
+    Viewer,
+    /// Also submit, cancel and resume runs.
+    Operator,
+    /// Also manage tokens and upload chain calibrations.
+    Admin,
+}
+
+impl Role {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Role::Viewer => "viewer",
+            Role::Operator => "operator",
+            Role::Admin => "admin",
+        }
+    }
+
+    /// True when a token of this role may make a call that needs `required`.
+    pub fn allows(self, required: Role) -> bool {
+        self >= required
+    }
+}
+
+impl std::fmt::Display for Role {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+impl std::str::FromStr for Role {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Role, String> {
+        match s {
+            "viewer" => Ok(Role::Viewer),
+            "operator" => Ok(Role::Operator),
+            "admin" => Ok(Role::Admin),
+            other => Err(format!(
+                "unknown role {other:?}; use viewer, operator or admin"
+            )),
+        }
+    }
+}
+
+/// The prefix of every token, so a leaked one is recognisable in logs and secret scanners.
+pub const TOKEN_PREFIX: &str = "hwt_";
+
+/// A token as listed: everything but the secret.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, ToSchema)]
+pub struct TokenInfo {
+    pub name: String,
+    pub role: Role,
+    pub created_at_unix_ms: i64,
+    pub created_by: String,
+    /// When it was revoked; absent while the token is active.
+    pub revoked_at_unix_ms: Option<i64>,
+}
+
+/// A token just created: the secret is in here once and nowhere else.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, ToSchema)]
+pub struct CreatedToken {
+    pub name: String,
+    pub role: Role,
+    /// The bearer token. It is not stored and cannot be shown again.
+    pub token: String,
+}
+
+/// The identity behind a presented token.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct TokenHolder {
+    pub name: String,
+    pub role: Role,
+}
+
+/// Why a token operation failed.
+#[derive(Debug, thiserror::Error)]
+pub enum TokenError {
+    #[error("token name {0:?} is not valid: use 1 to 64 characters of letters, digits, '-', '_', '.' or '@'")]
+    BadName(String),
+    #[error("an active token named {0:?} already exists; revoke it first or choose another name")]
+    NameTaken(String),
+    #[error("no active token named {0:?}; `halfwave token list` shows the names")]
+    NoSuchToken(String),
+    #[error("the operating system's random source failed: {0}")]
+    Random(String),
+    #[error("database error while {operation}: {source}")]
+    Database {
+        operation: &'static str,
+        #[source]
+        source: sqlx::Error,
+    },
+}
+
+fn db(operation: &'static str) -> impl FnOnce(sqlx::Error) -> TokenError {
+    move |source| TokenError::Database { operation, source }
+}
+
+/// Lower-case hex SHA-256 of a token, as stored.
+pub fn digest_hex(token: &str) -> String {
+    let digest = Sha256::digest(token.as_bytes());
+    hex(&digest)
+}
+
+fn hex(bytes: &[u8]) -> String {
+    const DIGITS: &[u8; 16] = b"0123456789abcdef";
+    let mut out = String::with_capacity(bytes.len() * 2);
+    for b in bytes {
+        out.push(char::from(DIGITS[usize::from(b >> 4)]));
+        out.push(char::from(DIGITS[usize::from(b & 0x0f)]));
+    }
+    out
+}
+
+/// A fresh random token.
+pub fn generate_token() -> Result<String, TokenError> {
+    let mut bytes = [0u8; 32];
+    OsRng
+        .try_fill_bytes(&mut bytes)
+        .map_err(|e| TokenError::Random(e.to_string()))?;
+    Ok(format!("{TOKEN_PREFIX}{}", hex(&bytes)))
+}
+
+fn valid_name(name: &str) -> bool {
+    !name.is_empty()
+        && name.len() <= 64
+        && name
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.' | '@'))
+}
+
+fn now_unix_ms() -> i64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| i64::try_from(d.as_millis()).unwrap_or(i64::MAX))
+        .unwrap_or(0)
+}
+
+/// Creates a token and returns it (the only time the secret exists outside the caller's hands).
+pub async fn create(
+    pool: &SqlitePool,
+    name: &str,
+    role: Role,
+    created_by: &str,
+) -> Result<CreatedToken, TokenError> {
+    if !valid_name(name) {
+        return Err(TokenError::BadName(name.to_string()));
+    }
+    let token = generate_token()?;
+    let result = sqlx::query(
+        "INSERT INTO api_tokens (name, role, token_sha256, created_at_unix_ms, created_by) \
+         VALUES (?, ?, ?, ?, ?)",
+    )
+    .bind(name)
+    .bind(role.as_str())
+    .bind(digest_hex(&token))
+    .bind(now_unix_ms())
+    .bind(created_by)
+    .execute(pool)
+    .await;
+    match result {
+        Ok(_) => Ok(CreatedToken {
+            name: name.to_string(),
+            role,
+            token,
+        }),
+        Err(sqlx::Error::Database(e)) if e.is_unique_violation() => {
+            Err(TokenError::NameTaken(name.to_string()))
+        }
+        Err(e) => Err(db("creating a token")(e)),
+    }
+}
+
+/// Revokes the active token of this name.
+pub async fn revoke(pool: &SqlitePool, name: &str) -> Result<(), TokenError> {
+    let done = sqlx::query(
+        "UPDATE api_tokens SET revoked_at_unix_ms = ? WHERE name = ? AND revoked_at_unix_ms IS NULL",
+    )
+    .bind(now_unix_ms())
+    .bind(name)
+    .execute(pool)
+    .await
+    .map_err(db("revoking a token"))?;
+    if done.rows_affected() == 0 {
+        return Err(TokenError::NoSuchToken(name.to_string()));
+    }
+    Ok(())
+}
+
+/// Every token, active and revoked, oldest first.
+pub async fn list(pool: &SqlitePool) -> Result<Vec<TokenInfo>, TokenError> {
+    let rows: Vec<(String, String, i64, String, Option<i64>)> = sqlx::query_as(
+        "SELECT name, role, created_at_unix_ms, created_by, revoked_at_unix_ms \
+         FROM api_tokens ORDER BY id",
+    )
+    .fetch_all(pool)
+    .await
+    .map_err(db("listing tokens"))?;
+    Ok(rows
+        .into_iter()
+        .filter_map(|(name, role, created, by, revoked)| {
+            Some(TokenInfo {
+                name,
+                role: role.parse().ok()?,
+                created_at_unix_ms: created,
+                created_by: by,
+                revoked_at_unix_ms: revoked,
+            })
+        })
+        .collect())
+}
+
+/// Who holds this token, if it is known and not revoked.
+pub async fn authenticate(
+    pool: &SqlitePool,
+    token: &str,
+) -> Result<Option<TokenHolder>, TokenError> {
+    let row: Option<(String, String)> = sqlx::query_as(
+        "SELECT name, role FROM api_tokens WHERE token_sha256 = ? AND revoked_at_unix_ms IS NULL",
+    )
+    .bind(digest_hex(token))
+    .fetch_optional(pool)
+    .await
+    .map_err(db("checking a token"))?;
+    Ok(row.and_then(|(name, role)| {
+        Some(TokenHolder {
+            name,
+            role: role.parse().ok()?,
+        })
+    }))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn digest_matches_the_fips_180_example() {
+        // FIPS 180-2, Appendix B.1: SHA-256("abc").
+        assert_eq!(
+            digest_hex("abc"),
+            "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+        );
+    }
+
+    #[test]
+    fn tokens_are_prefixed_random_and_distinct() {
+        let a = generate_token().unwrap();
+        let b = generate_token().unwrap();
+        assert!(a.starts_with(TOKEN_PREFIX));
+        assert_eq!(a.len(), TOKEN_PREFIX.len() + 64);
+        assert_ne!(a, b);
+    }
+
+    #[test]
+    fn roles_are_ordered_by_rights() {
+        assert!(Role::Admin.allows(Role::Operator));
+        assert!(Role::Operator.allows(Role::Viewer));
+        assert!(!Role::Viewer.allows(Role::Operator));
+        assert!(!Role::Operator.allows(Role::Admin));
+        assert_eq!("operator".parse::<Role>(), Ok(Role::Operator));
+        assert!("root".parse::<Role>().is_err());
+    }
+
+    #[test]
+    fn names_are_checked() {
+        assert!(valid_name("lab-b"));
+        assert!(valid_name("ci.bot@site"));
+        assert!(!valid_name(""));
+        assert!(!valid_name("has space"));
+        assert!(!valid_name(&"x".repeat(65)));
+    }
+}
