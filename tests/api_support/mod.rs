@@ -4,10 +4,11 @@
 #![allow(dead_code)]
 
 pub mod cdp;
+pub mod seed;
 
 use halfwave::api::tokens::{self, Role};
 use halfwave::api::{router, ApiSettings, AppState};
-use sqlx::sqlite::{SqliteConnectOptions, SqlitePoolOptions};
+use halfwave::store::Store;
 use std::net::SocketAddr;
 
 /// A running application.
@@ -15,11 +16,16 @@ pub struct TestApp {
     pub address: SocketAddr,
     pub base: String,
     pub pool: sqlx::SqlitePool,
+    pub state: AppState,
     pub client: reqwest::Client,
     _dir: tempfile::TempDir,
 }
 
 impl TestApp {
+    pub fn store(&self) -> &Store {
+        self.state.store()
+    }
+
     pub fn url(&self, path: &str) -> String {
         format!("{}{path}", self.base)
     }
@@ -69,33 +75,34 @@ impl TestApp {
     }
 }
 
-/// Starts the application with a fresh SQLite database in a temporary directory.
+/// Starts the application (store only, no engine) with a fresh SQLite database in a temporary
+/// directory.
 pub async fn spawn_app() -> TestApp {
     let dir = tempfile::tempdir().expect("temporary directory");
-    let options = SqliteConnectOptions::new()
-        .filename(dir.path().join("halfwave.sqlite"))
-        .create_if_missing(true);
-    let pool = SqlitePoolOptions::new()
-        .max_connections(4)
-        .connect_with(options)
+    let path = dir.path().join("halfwave.sqlite");
+    let store = Store::open(path.to_str().expect("UTF-8 temporary path"))
         .await
         .expect("database opens");
-    sqlx::migrate!("../migrations")
-        .run(&pool)
-        .await
-        .expect("migrations apply");
-    let state = AppState::new(pool.clone(), ApiSettings::default());
+    let state = AppState::new(store, ApiSettings::default());
+    serve_state(state, dir).await
+}
+
+/// Serves `state` on a random loopback port.
+pub async fn serve_state(state: AppState, dir: tempfile::TempDir) -> TestApp {
+    let pool = state.pool().clone();
+    let served = state.clone();
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
         .await
         .expect("bind a loopback port");
     let address = listener.local_addr().expect("local address");
     tokio::spawn(async move {
-        let _ = axum::serve(listener, router(state)).await;
+        let _ = axum::serve(listener, router(served)).await;
     });
     TestApp {
         address,
         base: format!("http://{address}"),
         pool,
+        state,
         client: reqwest::Client::new(),
         _dir: dir,
     }

@@ -14,8 +14,10 @@ pub mod openapi;
 pub mod plots;
 pub mod problem;
 pub mod routes;
+pub mod store_problems;
 pub mod tokens;
 
+use crate::store::Store;
 use axum::extract::DefaultBodyLimit;
 use axum::http::StatusCode;
 use axum::Router;
@@ -42,10 +44,12 @@ pub struct ApiSettings {
 }
 
 struct StateInner {
-    pool: SqlitePool,
+    store: Store,
     http_metrics: HttpMetrics,
     settings: ApiSettings,
     started: std::time::Instant,
+    /// Becomes true when the daemon shuts down; long-lived responses (event streams) end then.
+    shutdown: tokio::sync::watch::Sender<bool>,
 }
 
 /// What every handler can reach. Cheap to clone.
@@ -55,19 +59,35 @@ pub struct AppState {
 }
 
 impl AppState {
-    pub fn new(pool: SqlitePool, settings: ApiSettings) -> AppState {
+    /// A read-only state: every read route works; the run-changing routes come with the engine.
+    pub fn new(store: Store, settings: ApiSettings) -> AppState {
         AppState {
             inner: Arc::new(StateInner {
-                pool,
+                store,
                 http_metrics: HttpMetrics::default(),
                 settings,
                 started: std::time::Instant::now(),
+                shutdown: tokio::sync::watch::channel(false).0,
             }),
         }
     }
 
+    pub fn store(&self) -> &Store {
+        &self.inner.store
+    }
+
     pub fn pool(&self) -> &SqlitePool {
-        &self.inner.pool
+        self.inner.store.pool()
+    }
+
+    /// A receiver that turns true when [`AppState::begin_shutdown`] is called.
+    pub fn shutdown_signal(&self) -> tokio::sync::watch::Receiver<bool> {
+        self.inner.shutdown.subscribe()
+    }
+
+    /// Tells long-lived responses to end (called when the daemon stops).
+    pub fn begin_shutdown(&self) {
+        self.inner.shutdown.send_replace(true);
     }
 
     pub fn http_metrics(&self) -> &HttpMetrics {

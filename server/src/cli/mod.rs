@@ -8,6 +8,7 @@ pub mod analyze;
 use clap::{Parser, Subcommand};
 
 pub mod sim;
+pub mod token;
 
 /// An error that ends a command: the message says what is wrong and what to do.
 #[derive(Debug, thiserror::Error)]
@@ -36,6 +37,8 @@ pub enum Command {
     Sim(sim::SimArgs),
     /// Analyse trace files you already have: modulation index from a trace CSV, V_pi from a sweep JSON.
     Analyze(analyze::AnalyzeArgs),
+    /// Manage API tokens in the database: create (printed once), revoke, list.
+    Token(token::TokenCommand),
 }
 
 /// Runs the parsed command.
@@ -43,5 +46,6 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
     match cli.command {
         Command::Sim(args) => sim::run(args),
         Command::Analyze(args) => analyze::run(args),
+        Command::Token(command) => token::run(command),
     }
 }

@@ -5,7 +5,10 @@
 //! (or documented without being served). Paths use the `{name}` template syntax, which is both
 //! axum's and OpenAPI's.
 
+pub mod chains;
 pub mod dashboard;
+pub mod devices;
+pub mod runs;
 pub mod system;
 pub mod tokens;
 
@@ -51,6 +54,58 @@ pub fn route_table() -> Vec<RouteEntry> {
             Method::DELETE,
             "/tokens/{name}",
             delete(tokens::revoke_token),
+        ),
+        entry(Method::GET, "/runs", get(runs::list_runs)),
+        entry(Method::GET, "/runs/{run_id}", get(runs::get_run)),
+        entry(Method::GET, "/runs/{run_id}/points", get(runs::list_points)),
+        entry(
+            Method::GET,
+            "/runs/{run_id}/points/{point_id}/trace",
+            get(runs::point_trace),
+        ),
+        entry(
+            Method::GET,
+            "/runs/{run_id}/points/{point_id}/spectrum.svg",
+            get(runs::point_spectrum_svg),
+        ),
+        entry(
+            Method::GET,
+            "/runs/{run_id}/spectrum.svg",
+            get(runs::latest_spectrum_svg),
+        ),
+        entry(
+            Method::GET,
+            "/runs/{run_id}/plots/modulation-index.svg",
+            get(runs::modulation_index_svg),
+        ),
+        entry(Method::GET, "/devices", get(devices::list_devices)),
+        entry(Method::GET, "/devices/{serial}", get(devices::get_device)),
+        entry(
+            Method::GET,
+            "/devices/{serial}/calibrations",
+            get(devices::calibration_history),
+        ),
+        entry(Method::GET, "/devices/{serial}/v-pi", get(devices::vpi_at)),
+        entry(
+            Method::GET,
+            "/devices/{serial}/plots/v-pi.svg",
+            get(devices::vpi_plot),
+        ),
+        entry(
+            Method::GET,
+            "/devices/{serial}/plots/response.svg",
+            get(devices::response_plot),
+        ),
+        entry(
+            Method::POST,
+            "/chain-calibrations",
+            post(chains::upload_chain),
+        ),
+        entry(Method::GET, "/chain-calibrations", get(chains::list_chains)),
+        entry(
+            Method::GET,
+            "/chain-calibrations/{name}",
+            get(chains::get_chain),
         ),
     ]
 }

@@ -1,0 +1,622 @@
+//! Reading runs: the list (filtered, paginated), one run, its points and each point's trace, and
+//! the plots of a run (latest spectrum, one point's spectrum, modulation index versus drive at
+//! one frequency). Submitting, cancelling and resuming are in [`super::run_control`].
+
+use crate::api::auth::Viewer;
+use crate::api::plots::{self, MarkedLine, ModulationPlot, ModulationPoint, SpectrumPlot};
+use crate::api::problem::{FieldProblem, Problem};
+use crate::api::AppState;
+use crate::store::{PointRecord, RunFilter, RunRecord, RunState};
+use axum::extract::{Path, Query, State};
+use axum::http::header::CONTENT_TYPE;
+use axum::response::{IntoResponse, Response};
+use axum::Json;
+use serde::{Deserialize, Serialize};
+use utoipa::{IntoParams, ToSchema};
+
+/// The largest page of runs or points.
+pub const MAX_PAGE_SIZE: u32 = 1000;
+
+/// A run as listed.
+#[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
+pub struct RunSummary {
+    pub id: i64,
+    pub device_serial: String,
+    pub bench: String,
+    /// queued, running, completed, failed, cancelled or interrupted.
+    pub state: String,
+    pub submitted_by: String,
+    pub created_at_unix_ms: i64,
+    pub started_at_unix_ms: Option<i64>,
+    pub finished_at_unix_ms: Option<i64>,
+    /// Why the run ended as it did, when it did not complete.
+    pub cause: Option<String>,
+}
+
+impl From<&RunRecord> for RunSummary {
+    fn from(run: &RunRecord) -> RunSummary {
+        RunSummary {
+            id: run.id,
+            device_serial: run.device_serial.clone(),
+            bench: run.bench_name.clone(),
+            state: run.state.as_str().to_string(),
+            submitted_by: run.submitted_by.clone(),
+            created_at_unix_ms: run.created_at_unix_ms,
+            started_at_unix_ms: run.started_at_unix_ms,
+            finished_at_unix_ms: run.finished_at_unix_ms,
+            cause: run.cause.clone(),
+        }
+    }
+}
+
+/// One page of runs.
+#[derive(Debug, Serialize, Deserialize, ToSchema)]
+pub struct RunList {
+    pub runs: Vec<RunSummary>,
+    pub page: u32,
+    pub per_page: u32,
+    /// Runs matching the filter, on all pages.
+    pub total: i64,
+}
+
+/// V_pi at one frequency of a run.
+#[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
+pub struct FrequencyResultView {
+    pub frequency_index: u32,
+    pub frequency_hz: f64,
+    pub v_pi_volts: f64,
+    pub v_pi_uncertainty_volts: f64,
+    /// Points the fit left out, with reasons (as the engine recorded them).
+    #[schema(value_type = Object)]
+    pub excluded_points: serde_json::Value,
+}
+
+/// One run with its plan and its per-frequency results.
+#[derive(Debug, Serialize, Deserialize, ToSchema)]
+pub struct RunView {
+    #[serde(flatten)]
+    pub summary: RunSummary,
+    /// The plan as submitted (after defaults).
+    #[schema(value_type = Object)]
+    pub plan: serde_json::Value,
+    pub measured_points: usize,
+    pub results: Vec<FrequencyResultView>,
+}
+
+/// One measured point.
+#[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
+pub struct PointView {
+    pub id: i64,
+    pub frequency_index: u32,
+    pub level_index: u32,
+    pub frequency_hz: f64,
+    pub generator_level_dbm: f64,
+    pub level_at_modulator_dbm: f64,
+    pub v_peak_volts: f64,
+    pub modulation_index: Option<f64>,
+    pub modulation_index_uncertainty: Option<f64>,
+    pub asymmetry_db: Option<f64>,
+    /// The comb lines found (order, frequency, power ...), as the analysis reported them.
+    #[schema(value_type = Object)]
+    pub lines: serde_json::Value,
+    /// Method, residuals and warnings of the analysis.
+    #[schema(value_type = Object)]
+    pub analysis: serde_json::Value,
+    pub measured_at_unix_ms: i64,
+}
+
+impl From<&PointRecord> for PointView {
+    fn from(p: &PointRecord) -> PointView {
+        PointView {
+            id: p.id,
+            frequency_index: p.frequency_index,
+            level_index: p.level_index,
+            frequency_hz: p.frequency_hz,
+            generator_level_dbm: p.generator_level_dbm,
+            level_at_modulator_dbm: p.level_at_modulator_dbm,
+            v_peak_volts: p.v_peak_volts,
+            modulation_index: p.modulation_index,
+            modulation_index_uncertainty: p.modulation_index_uncertainty,
+            asymmetry_db: p.asymmetry_db,
+            lines: serde_json::from_str(&p.line_table_json).unwrap_or(serde_json::Value::Null),
+            analysis: serde_json::from_str(&p.analysis_json).unwrap_or(serde_json::Value::Null),
+            measured_at_unix_ms: p.measured_at_unix_ms,
+        }
+    }
+}
+
+/// One page of a run's points.
+#[derive(Debug, Serialize, Deserialize, ToSchema)]
+pub struct PointList {
+    pub points: Vec<PointView>,
+    pub page: u32,
+    pub per_page: u32,
+    pub total: usize,
+}
+
+/// Filters of the run list.
+#[derive(Debug, Deserialize, IntoParams)]
+#[into_params(parameter_in = Query)]
+pub struct RunListQuery {
+    /// Device serial number.
+    pub device: Option<String>,
+    /// queued, running, completed, failed, cancelled or interrupted.
+    pub state: Option<String>,
+    /// Created at or after: a date `YYYY-MM-DD` (UTC midnight) or milliseconds since the epoch.
+    pub since: Option<String>,
+    /// Created before: a date `YYYY-MM-DD` (UTC midnight) or milliseconds since the epoch.
+    pub until: Option<String>,
+    /// Page number, from 1.
+    pub page: Option<u32>,
+    /// Runs per page, 1 to 1000 (default 50).
+    pub per_page: Option<u32>,
+}
+
+/// Paging of a run's points.
+#[derive(Debug, Deserialize, IntoParams)]
+#[into_params(parameter_in = Query)]
+pub struct PageQuery {
+    /// Page number, from 1.
+    pub page: Option<u32>,
+    /// Items per page, 1 to 1000 (default 200).
+    pub per_page: Option<u32>,
+}
+
+/// Format of a trace download.
+#[derive(Debug, Deserialize, IntoParams)]
+#[into_params(parameter_in = Query)]
+pub struct TraceQuery {
+    /// `json` (default) or `csv`.
+    pub format: Option<String>,
+}
+
+/// The frequency of a modulation-index plot.
+#[derive(Debug, Deserialize, IntoParams)]
+#[into_params(parameter_in = Query)]
+pub struct FrequencyIndexQuery {
+    /// Index of the frequency in the run's plan, from 0 (default 0).
+    pub frequency_index: Option<u32>,
+}
+
+/// A trace as JSON.
+#[derive(Debug, Serialize, Deserialize, ToSchema)]
+pub struct TraceView {
+    pub point_id: i64,
+    pub resolution_bandwidth_hz: Option<f64>,
+    pub frequency_hz: Vec<f64>,
+    pub power_dbm: Vec<f64>,
+}
+
+fn paging(page: Option<u32>, per_page: Option<u32>, default: u32) -> Result<(u32, u32), Problem> {
+    let mut errors = Vec::new();
+    let page = page.unwrap_or(1);
+    let per_page = per_page.unwrap_or(default);
+    if page == 0 {
+        errors.push(FieldProblem::new("page", "pages are numbered from 1"));
+    }
+    if per_page == 0 || per_page > MAX_PAGE_SIZE {
+        errors.push(FieldProblem::new(
+            "per_page",
+            format!("{per_page} is outside 1 to {MAX_PAGE_SIZE}"),
+        ));
+    }
+    if errors.is_empty() {
+        Ok((page, per_page))
+    } else {
+        Err(Problem::invalid("invalid paging parameters", errors))
+    }
+}
+
+/// Days since 1970-01-01 of a proleptic Gregorian date (H. Hinnant's days_from_civil algorithm).
+fn days_from_civil(year: i64, month: i64, day: i64) -> i64 {
+    let y = if month <= 2 { year - 1 } else { year };
+    let era = if y >= 0 { y } else { y - 399 } / 400;
+    let yoe = y - era * 400;
+    let mp = (month + 9) % 12;
+    let doy = (153 * mp + 2) / 5 + day - 1;
+    let doe = yoe * 365 + yoe / 4 - yoe / 100 + doy;
+    era * 146_097 + doe - 719_468
+}
+
+/// Parses `YYYY-MM-DD` (UTC midnight) or integer milliseconds since the epoch.
+pub fn parse_time_bound(field: &str, text: &str) -> Result<i64, FieldProblem> {
+    let text = text.trim();
+    if let Ok(ms) = text.parse::<i64>() {
+        return Ok(ms);
+    }
+    let bad = || {
+        FieldProblem::new(
+            field,
+            format!("{text:?} is neither a date YYYY-MM-DD nor milliseconds since 1970-01-01 UTC"),
+        )
+    };
+    let mut parts = text.split('-');
+    let (Some(y), Some(m), Some(d), None) =
+        (parts.next(), parts.next(), parts.next(), parts.next())
+    else {
+        return Err(bad());
+    };
+    if y.len() != 4 || m.len() != 2 || d.len() != 2 {
+        return Err(bad());
+    }
+    let (Ok(y), Ok(m), Ok(d)) = (y.parse::<i64>(), m.parse::<i64>(), d.parse::<i64>()) else {
+        return Err(bad());
+    };
+    let leap = (y % 4 == 0 && y % 100 != 0) || y % 400 == 0;
+    let month_days = [
+        31,
+        if leap { 29 } else { 28 },
+        31,
+        30,
+        31,
+        30,
+        31,
+        31,
+        30,
+        31,
+        30,
+        31,
+    ];
+    let valid_month = (1..=12).contains(&m);
+    if !valid_month || d < 1 || d > month_days[usize::try_from(m - 1).unwrap_or(0)] {
+        return Err(bad());
+    }
+    Ok(days_from_civil(y, m, d) * 86_400_000)
+}
+
+/// Lists runs, newest first, filtered by device, state and creation date.
+#[utoipa::path(get, path = "/api/v1/runs", tag = "runs", security(("bearer" = [])),
+    params(RunListQuery),
+    responses((status = 200, body = RunList), (status = 401, body = Problem),
+              (status = 422, description = "A filter is invalid", body = Problem)))]
+pub async fn list_runs(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    Query(query): Query<RunListQuery>,
+) -> Result<Json<RunList>, Problem> {
+    let mut errors = Vec::new();
+    let run_state = match query.state.as_deref() {
+        None | Some("") => None,
+        Some(word) => match RunState::parse(word) {
+            Some(s) => Some(s),
+            None => {
+                errors.push(FieldProblem::new(
+                    "state",
+                    format!("unknown state {word:?}; use queued, running, completed, failed, cancelled or interrupted"),
+                ));
+                None
+            }
+        },
+    };
+    let mut bound = |field: &str, value: &Option<String>| match value.as_deref() {
+        None | Some("") => None,
+        Some(text) => parse_time_bound(field, text)
+            .map_err(|e| errors.push(e))
+            .ok(),
+    };
+    let since = bound("since", &query.since);
+    let until = bound("until", &query.until);
+    let paged = paging(query.page, query.per_page, 50);
+    let (page, per_page) = match paged {
+        Ok(p) => p,
+        Err(problem) => {
+            errors.extend(problem.errors);
+            (1, 1)
+        }
+    };
+    if !errors.is_empty() {
+        return Err(Problem::invalid("invalid run filter", errors));
+    }
+    let filter = RunFilter {
+        device_serial: query.device.filter(|d| !d.is_empty()),
+        state: run_state,
+        created_from_unix_ms: since,
+        created_before_unix_ms: until,
+        limit: per_page,
+        offset: (page - 1).saturating_mul(per_page),
+        ..RunFilter::default()
+    };
+    let listed = state.store().list_runs(&filter).await?;
+    Ok(Json(RunList {
+        runs: listed.runs.iter().map(RunSummary::from).collect(),
+        page,
+        per_page,
+        total: listed.total,
+    }))
+}
+
+/// One run: its plan, state and V_pi per frequency.
+#[utoipa::path(get, path = "/api/v1/runs/{run_id}", tag = "runs", security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run id")),
+    responses((status = 200, body = RunView), (status = 401, body = Problem), (status = 404, body = Problem)))]
+pub async fn get_run(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    Path(run_id): Path<i64>,
+) -> Result<Json<RunView>, Problem> {
+    let store = state.store();
+    let run = store.run(run_id).await?;
+    let measured_points = store.stored_point_indices(run_id).await?.len();
+    let results = store.frequency_results(run_id).await?;
+    Ok(Json(RunView {
+        summary: RunSummary::from(&run),
+        plan: run.plan().unwrap_or(serde_json::Value::Null),
+        measured_points,
+        results: results
+            .iter()
+            .map(|r| FrequencyResultView {
+                frequency_index: r.frequency_index,
+                frequency_hz: r.frequency_hz,
+                v_pi_volts: r.v_pi_volts,
+                v_pi_uncertainty_volts: r.v_pi_uncertainty_volts,
+                excluded_points: serde_json::from_str(&r.excluded_points_json)
+                    .unwrap_or(serde_json::Value::Null),
+            })
+            .collect(),
+    }))
+}
+
+/// The measured points of a run, by frequency then level, one page at a time.
+#[utoipa::path(get, path = "/api/v1/runs/{run_id}/points", tag = "runs", security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run id"), PageQuery),
+    responses((status = 200, body = PointList), (status = 401, body = Problem),
+              (status = 404, body = Problem), (status = 422, body = Problem)))]
+pub async fn list_points(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    Path(run_id): Path<i64>,
+    Query(query): Query<PageQuery>,
+) -> Result<Json<PointList>, Problem> {
+    let (page, per_page) = paging(query.page, query.per_page, 200)?;
+    let store = state.store();
+    store.run(run_id).await?;
+    let points = store.points_of_run(run_id).await?;
+    let start = usize::try_from((page - 1).saturating_mul(per_page)).unwrap_or(usize::MAX);
+    let views = points
+        .iter()
+        .skip(start)
+        .take(usize::try_from(per_page).unwrap_or(0))
+        .map(PointView::from)
+        .collect();
+    Ok(Json(PointList {
+        points: views,
+        page,
+        per_page,
+        total: points.len(),
+    }))
+}
+
+async fn point_of_run(
+    state: &AppState,
+    run_id: i64,
+    point_id: i64,
+) -> Result<PointRecord, Problem> {
+    let points = state.store().points_of_run(run_id).await?;
+    points
+        .into_iter()
+        .find(|p| p.id == point_id)
+        .ok_or_else(|| Problem::not_found(format!("run {run_id} has no point {point_id}")))
+}
+
+/// The analyzer trace of one point, as JSON or CSV (`frequency_hz,power_dbm`).
+#[utoipa::path(get, path = "/api/v1/runs/{run_id}/points/{point_id}/trace", tag = "runs", security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run id"), ("point_id" = i64, Path, description = "Point id"), TraceQuery),
+    responses((status = 200, body = TraceView, description = "JSON, or text/csv with format=csv"),
+              (status = 401, body = Problem), (status = 404, body = Problem), (status = 422, body = Problem)))]
+pub async fn point_trace(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    Path((run_id, point_id)): Path<(i64, i64)>,
+    Query(query): Query<TraceQuery>,
+) -> Result<Response, Problem> {
+    let csv = match query.format.as_deref() {
+        None | Some("json") => false,
+        Some("csv") => true,
+        Some(other) => {
+            return Err(Problem::invalid_field(
+                "format",
+                format!("unknown format {other:?}; use json or csv"),
+            ))
+        }
+    };
+    point_of_run(&state, run_id, point_id).await?;
+    let trace = state.store().point_trace(point_id).await?;
+    if csv {
+        let mut out = String::with_capacity(trace.len() * 32 + 32);
+        out.push_str("frequency_hz,power_dbm\n");
+        for (f, p) in trace.frequency_hz().iter().zip(trace.power_dbm()) {
+            out.push_str(&format!("{f},{p}\n"));
+        }
+        return Ok(([(CONTENT_TYPE, "text/csv; charset=utf-8")], out).into_response());
+    }
+    Ok(Json(TraceView {
+        point_id,
+        resolution_bandwidth_hz: trace.resolution_bandwidth().map(|r| r.value()),
+        frequency_hz: trace.frequency_hz().to_vec(),
+        power_dbm: trace.power_dbm().to_vec(),
+    })
+    .into_response())
+}
+
+fn svg(result: Result<String, plots::PlotError>) -> Result<Response, Problem> {
+    match result {
+        Ok(svg) => Ok(([(CONTENT_TYPE, "image/svg+xml")], svg).into_response()),
+        Err(plots::PlotError::Empty(what)) => {
+            Err(Problem::not_found(format!("nothing to plot yet: {what}")))
+        }
+        Err(e) => Err(Problem::internal(e.to_string())),
+    }
+}
+
+/// Reads the fitted lines out of a point's line table, whatever extra members it carries.
+fn marked_lines(point: &PointRecord) -> Vec<MarkedLine> {
+    let Ok(value) = serde_json::from_str::<serde_json::Value>(&point.line_table_json) else {
+        return Vec::new();
+    };
+    let rows = match &value {
+        serde_json::Value::Array(rows) => rows.clone(),
+        serde_json::Value::Object(map) => map
+            .get("lines")
+            .and_then(|l| l.as_array())
+            .cloned()
+            .unwrap_or_default(),
+        _ => Vec::new(),
+    };
+    rows.iter()
+        .filter_map(|row| {
+            let order = row.get("order")?.as_i64()?;
+            let frequency_hz = row.get("frequency_hz")?.as_f64()?;
+            let power_dbm = row
+                .get("power_dbm")
+                .or_else(|| row.get("peak_power_dbm"))?
+                .as_f64()?;
+            Some(MarkedLine {
+                order: i32::try_from(order).ok()?,
+                frequency_hz,
+                power_dbm,
+            })
+        })
+        .collect()
+}
+
+async fn spectrum_of(state: &AppState, point: &PointRecord) -> Result<Response, Problem> {
+    let trace = state.store().point_trace(point.id).await?;
+    let title = format!(
+        "run {}, {:.3} GHz, {:.1} dBm, point {}",
+        point.run_id,
+        point.frequency_hz / 1e9,
+        point.generator_level_dbm,
+        point.id
+    );
+    let (frequency_hz, power_dbm, _) = trace.into_parts();
+    let plot = SpectrumPlot {
+        title,
+        frequency_hz,
+        power_dbm,
+        lines: marked_lines(point),
+    };
+    svg(plots::spectrum_svg(&plot))
+}
+
+/// The spectrum of one point with the fitted lines marked (SVG).
+#[utoipa::path(get, path = "/api/v1/runs/{run_id}/points/{point_id}/spectrum.svg", tag = "plots", security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run id"), ("point_id" = i64, Path, description = "Point id")),
+    responses((status = 200, content_type = "image/svg+xml", body = String),
+              (status = 401, body = Problem), (status = 404, body = Problem)))]
+pub async fn point_spectrum_svg(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    Path((run_id, point_id)): Path<(i64, i64)>,
+) -> Result<Response, Problem> {
+    let point = point_of_run(&state, run_id, point_id).await?;
+    spectrum_of(&state, &point).await
+}
+
+/// The spectrum of the run's most recently measured point (SVG): what the dashboard shows live.
+#[utoipa::path(get, path = "/api/v1/runs/{run_id}/spectrum.svg", tag = "plots", security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run id")),
+    responses((status = 200, content_type = "image/svg+xml", body = String),
+              (status = 401, body = Problem), (status = 404, description = "No such run, or nothing measured yet", body = Problem)))]
+pub async fn latest_spectrum_svg(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    Path(run_id): Path<i64>,
+) -> Result<Response, Problem> {
+    state.store().run(run_id).await?;
+    let points = state.store().points_of_run(run_id).await?;
+    let latest = points
+        .iter()
+        .max_by_key(|p| (p.measured_at_unix_ms, p.id))
+        .ok_or_else(|| Problem::not_found(format!("run {run_id} has no measured point yet")))?;
+    spectrum_of(&state, latest).await
+}
+
+/// Modulation index versus peak drive voltage at one frequency of a run, with the V_pi fit (SVG).
+#[utoipa::path(get, path = "/api/v1/runs/{run_id}/plots/modulation-index.svg", tag = "plots", security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run id"), FrequencyIndexQuery),
+    responses((status = 200, content_type = "image/svg+xml", body = String),
+              (status = 401, body = Problem), (status = 404, body = Problem)))]
+pub async fn modulation_index_svg(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    Path(run_id): Path<i64>,
+    Query(query): Query<FrequencyIndexQuery>,
+) -> Result<Response, Problem> {
+    let frequency_index = query.frequency_index.unwrap_or(0);
+    let store = state.store();
+    store.run(run_id).await?;
+    let points: Vec<PointRecord> = store
+        .points_of_run(run_id)
+        .await?
+        .into_iter()
+        .filter(|p| p.frequency_index == frequency_index)
+        .collect();
+    let Some(first) = points.first() else {
+        return Err(Problem::not_found(format!(
+            "run {run_id} has no point at frequency index {frequency_index}"
+        )));
+    };
+    let result = store
+        .frequency_results(run_id)
+        .await?
+        .into_iter()
+        .find(|r| r.frequency_index == frequency_index);
+    let excluded_levels: Vec<u32> = result
+        .as_ref()
+        .and_then(|r| serde_json::from_str::<serde_json::Value>(&r.excluded_points_json).ok())
+        .and_then(|v| v.as_array().cloned())
+        .unwrap_or_default()
+        .iter()
+        .filter_map(|e| e.get("level_index").and_then(|l| l.as_u64()))
+        .filter_map(|l| u32::try_from(l).ok())
+        .collect();
+    let plot = ModulationPlot {
+        title: format!("run {run_id} at {:.3} GHz", first.frequency_hz / 1e9),
+        points: points
+            .iter()
+            .filter_map(|p| {
+                Some(ModulationPoint {
+                    v_peak_volts: p.v_peak_volts,
+                    modulation_index: p.modulation_index?,
+                    modulation_index_uncertainty: p.modulation_index_uncertainty.unwrap_or(0.0),
+                    excluded: excluded_levels.contains(&p.level_index),
+                })
+            })
+            .collect(),
+        v_pi_volts: result.map(|r| r.v_pi_volts),
+    };
+    svg(plots::modulation_index_svg(&plot))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn dates_convert_to_epoch_milliseconds() {
+        // Worked by hand: 1970..1999 are 30 years with 7 leap days, so 2000-01-01 is day
+        // 30 * 365 + 7 = 10957; January (31) and February 2000 (29, a leap year) add 60.
+        assert_eq!(parse_time_bound("since", "1970-01-01").unwrap(), 0);
+        assert_eq!(
+            parse_time_bound("since", "2000-03-01").unwrap(),
+            11_017 * 86_400_000
+        );
+        assert_eq!(
+            parse_time_bound("since", "1700000000000").unwrap(),
+            1_700_000_000_000
+        );
+        assert_eq!(
+            parse_time_bound("until", "2023-02-29").unwrap_err().field,
+            "until"
+        );
+        assert!(parse_time_bound("until", "yesterday").is_err());
+    }
+
+    #[test]
+    fn paging_names_each_bad_parameter() {
+        let problem = paging(Some(0), Some(5000), 50).unwrap_err();
+        let fields: Vec<&str> = problem.errors.iter().map(|e| e.field.as_str()).collect();
+        assert_eq!(fields, ["page", "per_page"]);
+        assert_eq!(paging(None, None, 50).unwrap(), (1, 50));
+    }
+}

@@ -1,0 +1,129 @@
+//! `halfwave token create|revoke|list`: manage API tokens directly in the database.
+//!
+//! This is how the first admin token comes to exist, and it works while the daemon is down. The
+//! database is the one named by `--database URL` (a `sqlite:` URL or a file path) or by the
+//! configuration file given with `--config FILE`. A created token is printed once, on stdout, and
+//! only its SHA-256 digest is stored.
+
+use super::CliError;
+use crate::api::tokens::{self, Role};
+use crate::config::Config;
+use crate::store::Store;
+use clap::{Args, Subcommand};
+use std::path::PathBuf;
+
+/// Where the database is.
+#[derive(Debug, Args)]
+pub struct DatabaseChoice {
+    /// The daemon's configuration file (its database is used).
+    #[arg(long, value_name = "FILE", conflicts_with = "database")]
+    pub config: Option<PathBuf>,
+    /// The database: a `sqlite:` URL or a file path.
+    #[arg(long, value_name = "URL")]
+    pub database: Option<String>,
+}
+
+/// Manage API tokens (roles: viewer reads, operator also runs sweeps, admin also manages tokens
+/// and chain calibrations).
+#[derive(Debug, Args)]
+pub struct TokenCommand {
+    #[command(subcommand)]
+    pub action: TokenAction,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum TokenAction {
+    /// Create a token and print it once.
+    Create {
+        /// viewer, operator or admin.
+        #[arg(long)]
+        role: String,
+        /// Who holds it (appears in the audit log), e.g. "lab-b".
+        #[arg(long)]
+        name: String,
+        #[command(flatten)]
+        database: DatabaseChoice,
+    },
+    /// Revoke the active token of this name.
+    Revoke {
+        #[arg(long)]
+        name: String,
+        #[command(flatten)]
+        database: DatabaseChoice,
+    },
+    /// List tokens (never their secrets) as JSON.
+    List {
+        #[command(flatten)]
+        database: DatabaseChoice,
+    },
+}
+
+fn database_url(choice: &DatabaseChoice) -> Result<String, CliError> {
+    match (&choice.database, &choice.config) {
+        (Some(url), _) => Ok(url.clone()),
+        (None, Some(path)) => Config::load(path)
+            .map(|c| c.database_url())
+            .map_err(|e| CliError::new(e.to_string())),
+        (None, None) => Err(CliError::new(
+            "say which database: --config FILE (the daemon's configuration) or --database URL",
+        )),
+    }
+}
+
+async fn open(choice: &DatabaseChoice) -> Result<Store, CliError> {
+    let url = database_url(choice)?;
+    Store::open(&url)
+        .await
+        .map_err(|e| CliError::new(e.to_string()))
+}
+
+/// Runs `halfwave token ...`.
+pub fn run(command: TokenCommand) -> Result<(), CliError> {
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .map_err(|e| CliError::new(format!("could not start the async runtime: {e}")))?;
+    runtime.block_on(async move {
+        match command.action {
+            TokenAction::Create {
+                role,
+                name,
+                database,
+            } => {
+                let role: Role = role.parse().map_err(CliError::new)?;
+                let store = open(&database).await?;
+                let created = tokens::create(store.pool(), &name, role, "cli")
+                    .await
+                    .map_err(|e| CliError::new(e.to_string()))?;
+                let _ = store
+                    .append_audit("cli", "token.create", &name, &format!("role {role}"))
+                    .await;
+                eprintln!(
+                    "token {:?} ({}) created; it is shown once, store it now:",
+                    created.name, created.role
+                );
+                println!("{}", created.token);
+                Ok(())
+            }
+            TokenAction::Revoke { name, database } => {
+                let store = open(&database).await?;
+                tokens::revoke(store.pool(), &name)
+                    .await
+                    .map_err(|e| CliError::new(e.to_string()))?;
+                let _ = store.append_audit("cli", "token.revoke", &name, "").await;
+                eprintln!("token {name:?} revoked");
+                Ok(())
+            }
+            TokenAction::List { database } => {
+                let store = open(&database).await?;
+                let list = tokens::list(store.pool())
+                    .await
+                    .map_err(|e| CliError::new(e.to_string()))?;
+                let json = serde_json::to_string_pretty(&list)
+                    .map_err(|e| CliError::new(format!("could not encode the list: {e}")))?;
+                println!("{json}");
+                Ok(())
+            }
+        }
+    })
+}

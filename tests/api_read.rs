@@ -1,0 +1,434 @@
+//! The read routes over real HTTP, against data written through the store: runs (filtered,
+//! paginated), a run, its points, a point's trace as JSON and CSV, a device's calibration
+//! history, V_pi at any frequency (interpolated, with uncertainty), chain calibrations, plots.
+
+mod api_support;
+
+use api_support::seed::{seed_completed_run, seed_device};
+use api_support::{problem, spawn_app};
+use halfwave::api::tokens::Role;
+
+/// An invented V_pi curve rising with frequency (plumbing data; see the seed module).
+fn v_pi_at(f: f64) -> f64 {
+    3.0 + 0.25 * (f / 1e9).sqrt()
+}
+
+#[tokio::test]
+async fn runs_points_traces_history_and_v_pi() {
+    let app = spawn_app().await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let store = app.store();
+    let (device_id, chain_id) = seed_device(store, "PM-0042").await;
+    let older = seed_completed_run(
+        store,
+        device_id,
+        chain_id,
+        &[2e9, 8e9],
+        &[0.0, 6.0],
+        |f| 1.05 * v_pi_at(f),
+        201,
+    )
+    .await;
+    let newer = seed_completed_run(
+        store,
+        device_id,
+        chain_id,
+        &[2e9, 6e9, 10e9],
+        &[0.0, 4.0, 8.0],
+        v_pi_at,
+        201,
+    )
+    .await;
+
+    // List, newest first, with paging and filters.
+    let list: serde_json::Value = app
+        .get("/api/v1/runs?per_page=1", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(list["total"], 2);
+    assert_eq!(list["runs"].as_array().unwrap().len(), 1);
+    assert_eq!(list["runs"][0]["id"], newer.run_id);
+    let page2: serde_json::Value = app
+        .get("/api/v1/runs?per_page=1&page=2", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(page2["runs"][0]["id"], older.run_id);
+    let filtered: serde_json::Value = app
+        .get(
+            "/api/v1/runs?device=PM-0042&state=completed&since=2000-01-01",
+            Some(&viewer),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(filtered["total"], 2);
+    let none: serde_json::Value = app
+        .get("/api/v1/runs?state=failed", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(none["total"], 0);
+    let future: serde_json::Value = app
+        .get("/api/v1/runs?since=2999-01-01", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(future["total"], 0);
+
+    // Bad filters: every one named at once.
+    let bad = app
+        .get(
+            "/api/v1/runs?state=exploded&since=last-week&per_page=0",
+            Some(&viewer),
+        )
+        .await;
+    assert_eq!(bad.status(), 422);
+    let body = problem(bad).await;
+    let fields: Vec<&str> = body["errors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["field"].as_str().unwrap())
+        .collect();
+    assert_eq!(fields, ["state", "since", "per_page"]);
+
+    // One run with its results.
+    let run: serde_json::Value = app
+        .get(&format!("/api/v1/runs/{}", newer.run_id), Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(run["state"], "completed");
+    assert_eq!(run["measured_points"], 9);
+    assert_eq!(run["results"].as_array().unwrap().len(), 3);
+    // serde_json parses floats to within one unit in the last place (its documented default).
+    assert!((run["results"][1]["v_pi_volts"].as_f64().unwrap() - newer.results[1].1).abs() < 1e-12);
+    assert_eq!(
+        app.get("/api/v1/runs/999999", Some(&viewer)).await.status(),
+        404
+    );
+
+    // Points, paginated.
+    let points: serde_json::Value = app
+        .get(
+            &format!("/api/v1/runs/{}/points?per_page=4&page=3", newer.run_id),
+            Some(&viewer),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(points["total"], 9);
+    assert_eq!(points["points"].as_array().unwrap().len(), 1);
+    assert_eq!(points["points"][0]["id"], newer.point_ids[8]);
+    assert_eq!(points["points"][0]["lines"].as_array().unwrap().len(), 7);
+
+    // A point's trace as JSON and as CSV carry the same numbers.
+    let point_id = newer.point_ids[4];
+    let trace: serde_json::Value = app
+        .get(
+            &format!("/api/v1/runs/{}/points/{point_id}/trace", newer.run_id),
+            Some(&viewer),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    let frequencies = trace["frequency_hz"].as_array().unwrap();
+    assert_eq!(frequencies.len(), 201);
+    let csv_response = app
+        .get(
+            &format!(
+                "/api/v1/runs/{}/points/{point_id}/trace?format=csv",
+                newer.run_id
+            ),
+            Some(&viewer),
+        )
+        .await;
+    assert!(csv_response.headers()["content-type"]
+        .to_str()
+        .unwrap()
+        .starts_with("text/csv"));
+    let csv = csv_response.text().await.unwrap();
+    let mut rows = csv.lines();
+    assert_eq!(rows.next(), Some("frequency_hz,power_dbm"));
+    let first: Vec<f64> = rows
+        .next()
+        .unwrap()
+        .split(',')
+        .map(|c| c.parse().unwrap())
+        .collect();
+    assert!((first[0] - frequencies[0].as_f64().unwrap()).abs() <= 1e-6);
+    assert!((first[1] - trace["power_dbm"][0].as_f64().unwrap()).abs() <= 1e-9);
+    assert_eq!(csv.lines().count(), 202);
+    // A point of another run is not found under this run.
+    let foreign = older.point_ids[0];
+    assert_eq!(
+        app.get(
+            &format!("/api/v1/runs/{}/points/{foreign}/trace", newer.run_id),
+            Some(&viewer)
+        )
+        .await
+        .status(),
+        404
+    );
+
+    // History: newest calibration first.
+    let history: serde_json::Value = app
+        .get("/api/v1/devices/PM-0042/calibrations", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(history.as_array().unwrap().len(), 2);
+    assert_eq!(history[0]["run_id"], newer.run_id);
+    assert_eq!(history[1]["points"].as_array().unwrap().len(), 2);
+
+    // V_pi at a measured frequency is the stored value; between two it is interpolated linearly
+    // (worked by hand: 4 GHz is halfway between 2 and 6 GHz, so the mean of the two).
+    let at_6: serde_json::Value = app
+        .get(
+            "/api/v1/devices/PM-0042/v-pi?frequency_hz=6e9",
+            Some(&viewer),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert!((at_6["v_pi_volts"].as_f64().unwrap() - newer.results[1].1).abs() < 1e-12);
+    assert_eq!(at_6["interpolated"], false);
+    let at_4: serde_json::Value = app
+        .get(
+            "/api/v1/devices/PM-0042/v-pi?frequency_hz=4e9",
+            Some(&viewer),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    let expected = 0.5 * (newer.results[0].1 + newer.results[1].1);
+    assert!((at_4["v_pi_volts"].as_f64().unwrap() - expected).abs() < 1e-12);
+    assert!(at_4["v_pi_uncertainty_volts"].as_f64().unwrap() > 0.0);
+    assert_eq!(at_4["run_id"], newer.run_id);
+    assert_eq!(at_4["interpolated"], true);
+
+    // Outside the calibrated range, absurd or missing: 422 naming frequency_hz.
+    for query in [
+        "frequency_hz=40e9",
+        "frequency_hz=-5",
+        "frequency_hz=1e15",
+        "",
+    ] {
+        let response = app
+            .get(
+                &format!("/api/v1/devices/PM-0042/v-pi?{query}"),
+                Some(&viewer),
+            )
+            .await;
+        assert_eq!(response.status(), 422, "{query}");
+        assert_eq!(
+            problem(response).await["errors"][0]["field"],
+            "frequency_hz"
+        );
+    }
+    assert_eq!(
+        app.get(
+            "/api/v1/devices/NO-SUCH/v-pi?frequency_hz=1e9",
+            Some(&viewer)
+        )
+        .await
+        .status(),
+        404
+    );
+
+    // Devices.
+    let devices: serde_json::Value = app
+        .get("/api/v1/devices", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(devices[0]["serial"], "PM-0042");
+    assert_eq!(
+        app.get("/api/v1/devices/PM-0042", Some(&viewer))
+            .await
+            .status(),
+        200
+    );
+}
+
+#[tokio::test]
+async fn plots_are_svg_with_one_marker_per_value() {
+    let app = spawn_app().await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let store = app.store();
+    let (device_id, chain_id) = seed_device(store, "PM-0007").await;
+    seed_completed_run(
+        store,
+        device_id,
+        chain_id,
+        &[1e9, 5e9],
+        &[0.0, 6.0],
+        |f| 1.1 * v_pi_at(f),
+        101,
+    )
+    .await;
+    let run = seed_completed_run(
+        store,
+        device_id,
+        chain_id,
+        &[1e9, 5e9, 9e9, 13e9],
+        &[0.0, 3.0, 6.0],
+        v_pi_at,
+        101,
+    )
+    .await;
+
+    let count_circles = |svg: &str| {
+        let document = roxmltree::Document::parse(svg).expect("well-formed SVG");
+        document
+            .descendants()
+            .filter(|n| n.has_tag_name("circle"))
+            .count()
+    };
+    let fetch = |path: String| {
+        let app = &app;
+        let viewer = viewer.clone();
+        async move {
+            let response = app.get(&path, Some(&viewer)).await;
+            assert_eq!(response.status(), 200, "{path}");
+            assert_eq!(response.headers()["content-type"], "image/svg+xml");
+            response.text().await.unwrap()
+        }
+    };
+    assert_eq!(
+        count_circles(&fetch("/api/v1/devices/PM-0007/plots/v-pi.svg".into()).await),
+        4
+    );
+    assert_eq!(
+        count_circles(&fetch("/api/v1/devices/PM-0007/plots/response.svg".into()).await),
+        4
+    );
+    assert_eq!(
+        count_circles(&fetch(format!("/api/v1/runs/{}/spectrum.svg", run.run_id)).await),
+        7
+    );
+    assert_eq!(
+        count_circles(
+            &fetch(format!(
+                "/api/v1/runs/{}/points/{}/spectrum.svg",
+                run.run_id, run.point_ids[0]
+            ))
+            .await
+        ),
+        7
+    );
+    assert_eq!(
+        count_circles(
+            &fetch(format!(
+                "/api/v1/runs/{}/plots/modulation-index.svg?frequency_index=2",
+                run.run_id
+            ))
+            .await
+        ),
+        3
+    );
+    assert_eq!(
+        app.get("/api/v1/devices/NOBODY/plots/v-pi.svg", Some(&viewer))
+            .await
+            .status(),
+        404
+    );
+}
+
+#[tokio::test]
+async fn chain_calibrations_upload_as_json_or_csv_for_admins() {
+    let app = spawn_app().await;
+    let admin = app.token("admin-1", Role::Admin).await;
+    let operator = app.token("operator-1", Role::Operator).await;
+    let json = serde_json::json!({"name": "bench-a amp", "points": [{"frequency_hz": 1e9, "gain_db": 20.5}, {"frequency_hz": 20e9, "gain_db": 18.0}]});
+
+    let refused = app
+        .post_json("/api/v1/chain-calibrations", Some(&operator), &json)
+        .await;
+    assert_eq!(refused.status(), 403);
+
+    let created = app
+        .post_json("/api/v1/chain-calibrations", Some(&admin), &json)
+        .await;
+    assert_eq!(created.status(), 201);
+    let created: serde_json::Value = created.json().await.unwrap();
+    assert_eq!(created["version"], 1);
+
+    let csv = "frequency_hz,gain_db\n1e9,20.0\n10e9,19.0\n20e9,17.5\n".to_string();
+    let second = app
+        .post_raw(
+            "/api/v1/chain-calibrations?name=bench-a%20amp",
+            Some(&admin),
+            "text/csv",
+            csv,
+        )
+        .await;
+    assert_eq!(second.status(), 201);
+    let second: serde_json::Value = second.json().await.unwrap();
+    assert_eq!(second["version"], 2);
+    assert_eq!(second["points"].as_array().unwrap().len(), 3);
+
+    let latest: serde_json::Value = app
+        .get("/api/v1/chain-calibrations/bench-a%20amp", Some(&operator))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(latest["version"], 2);
+    let list: serde_json::Value = app
+        .get("/api/v1/chain-calibrations", Some(&operator))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(list.as_array().unwrap().len(), 2);
+
+    let bad_csv = "frequency_hz,gain_db\n1e9,20\nnot,a-number\n-5,3\n".to_string();
+    let response = app
+        .post_raw(
+            "/api/v1/chain-calibrations?name=x",
+            Some(&admin),
+            "text/csv",
+            bad_csv,
+        )
+        .await;
+    assert_eq!(response.status(), 422);
+    assert_eq!(
+        problem(response).await["errors"][0]["field"],
+        "body.line[3]"
+    );
+    let bad_json =
+        serde_json::json!({"name": "x", "points": [{"frequency_hz": -1.0, "gain_db": 900.0}]});
+    let body = problem(
+        app.post_json("/api/v1/chain-calibrations", Some(&admin), &bad_json)
+            .await,
+    )
+    .await;
+    let fields: Vec<&str> = body["errors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["field"].as_str().unwrap())
+        .collect();
+    assert_eq!(fields, ["points[0].frequency_hz", "points[0].gain_db"]);
+
+    // The upload is in the audit log under the token's name.
+    let audit = app.store().audit_log(50, None).await.unwrap();
+    assert!(audit
+        .iter()
+        .any(|e| e.actor == "admin-1" && e.action == "chain_calibration.upload"));
+}
