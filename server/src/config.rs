@@ -69,18 +69,12 @@ pub enum InstrumentConfig {
         resource: String,
         /// A command profile (TOML) for instruments that deviate from standard SCPI; relative
         /// paths are relative to the configuration file.
+        /// Terminators, timeouts and reconnection also live in the profile.
         #[serde(default)]
         profile: Option<PathBuf>,
-        /// Timeout of one operation, seconds.
-        #[serde(default = "default_timeout_s")]
-        timeout_s: f64,
     },
     /// The in-process simulated instrument of the bench's scenario.
     Simulated,
-}
-
-fn default_timeout_s() -> f64 {
-    5.0
 }
 
 /// The simulated bench behind a bench whose instruments are `simulated`.
@@ -265,23 +259,9 @@ impl Config {
                 ));
             }
             for (role, inst) in [("source", &bench.source), ("analyzer", &bench.analyzer)] {
-                if let InstrumentConfig::Scpi {
-                    resource,
-                    timeout_s,
-                    ..
-                } = inst
-                {
-                    if resource.trim().is_empty() {
-                        return Err(invalid(
-                            &format!("{field}.{role}.resource"),
-                            "give a resource string such as TCPIP::192.0.2.10::5025::SOCKET".into(),
-                        ));
-                    }
-                    if !timeout_s.is_finite() || *timeout_s <= 0.0 || *timeout_s > 600.0 {
-                        return Err(invalid(
-                            &format!("{field}.{role}.timeout_s"),
-                            format!("must be from 0 to 600 seconds, got {timeout_s}"),
-                        ));
+                if let InstrumentConfig::Scpi { resource, .. } = inst {
+                    if let Err(e) = halfwave_drivers::resource::Resource::parse(resource) {
+                        return Err(invalid(&format!("{field}.{role}.resource"), e.to_string()));
                     }
                 }
             }

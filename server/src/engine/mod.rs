@@ -1,6 +1,685 @@
 //! The sweep engine: plans in, one queue per bench, runs out, RF off on every stop path.
+//!
+//! [`Engine`] is the one handle the API and the CLI hold. It owns the benches (each a source and
+//! an analyzer behind a mutex, driven by one worker task that takes queued runs one at a time:
+//! instruments are exclusive), validates plans against the configured limits before anything is
+//! sent to an instrument, records every state change in the store, and publishes progress on a
+//! broadcast channel.
+//!
+//! Start-up switches every configured source off and marks runs that were left running as
+//! interrupted (their committed points stay); runs that were queued are queued again. Shutdown
+//! cancels the active runs (they become interrupted, so they can be resumed), waits for their RF
+//! to go off and switches every source off once more.
 
 pub mod acquire;
+pub mod bench;
 pub mod events;
 pub mod plan;
+pub mod runner;
 pub mod safety;
+
+use crate::analysis::chain::{ChainPoint, DriveChain};
+use crate::config::{Config, Limits};
+use crate::store::{
+    ChainCalibration, ChainCalibrationPoint, NewDevice, NewRun, RunFilter, RunRecord, RunState,
+    Store, StoreError,
+};
+use bench::BenchInstruments;
+use events::ProgressEvent;
+use halfwave_drivers::{Identity, InstrumentError};
+use halfwave_units::{Db, Dbm, Hz, Nanometers};
+use plan::{ChainSpec, FieldError, Plan, PlanContext, PlanErrors, PlanRequest};
+use runner::{RunContext, RunOutcome, SharedAnalyzer};
+use safety::SharedSource;
+use serde::Serialize;
+use std::collections::{HashMap, HashSet, VecDeque};
+use std::sync::Arc;
+use tokio::sync::{broadcast, mpsc, Mutex};
+use tokio_util::sync::CancellationToken;
+
+/// How many progress events a slow watcher may lag behind before it loses old ones.
+const EVENT_BUFFER: usize = 1024;
+
+/// Why a plan was not accepted.
+#[derive(Debug, thiserror::Error)]
+pub enum SubmitError {
+    #[error(transparent)]
+    Invalid(#[from] PlanErrors),
+    #[error(transparent)]
+    Store(#[from] StoreError),
+}
+
+/// Why a run could not be cancelled or resumed, or the engine could not start.
+#[derive(Debug, thiserror::Error)]
+pub enum EngineError {
+    #[error("run {0} does not exist")]
+    RunNotFound(i64),
+    #[error("run {run_id} is {state}; only queued or running runs can be cancelled")]
+    NotCancellable { run_id: i64, state: String },
+    #[error("run {run_id} is {state}; only interrupted, failed or cancelled runs can be resumed")]
+    NotResumable { run_id: i64, state: String },
+    #[error("run {run_id} cannot be resumed: {reason}")]
+    ResumeRefused { run_id: i64, reason: String },
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    #[error("bench {bench}: {source}")]
+    Instrument {
+        bench: String,
+        #[source]
+        source: InstrumentError,
+    },
+    #[error("{0}")]
+    Setup(String),
+}
+
+/// A bench as the API shows it.
+#[derive(Debug, Clone, Serialize)]
+pub struct BenchStatus {
+    pub name: String,
+    pub source_resource: String,
+    pub analyzer_resource: String,
+    pub source_identity: Option<Identity>,
+    pub analyzer_identity: Option<Identity>,
+    pub active_run_id: Option<i64>,
+    pub queued_run_ids: Vec<i64>,
+}
+
+struct Job {
+    run_id: i64,
+    plan: Arc<Plan>,
+    chain: Arc<DriveChain>,
+    done: HashSet<(usize, usize)>,
+}
+
+#[derive(Default)]
+struct BenchQueue {
+    active: Option<i64>,
+    queued: VecDeque<i64>,
+}
+
+struct BenchSlot {
+    name: String,
+    source: SharedSource,
+    analyzer: SharedAnalyzer,
+    source_resource: String,
+    analyzer_resource: String,
+    identities: std::sync::Mutex<(Option<Identity>, Option<Identity>)>,
+    queue: std::sync::Mutex<BenchQueue>,
+    jobs: mpsc::UnboundedSender<Job>,
+}
+
+struct Inner {
+    store: Store,
+    limits: Limits,
+    events: broadcast::Sender<ProgressEvent>,
+    benches: HashMap<String, Arc<BenchSlot>>,
+    /// Cancel tokens of queued and running runs.
+    cancels: std::sync::Mutex<HashMap<i64, CancellationToken>>,
+    shutdown: CancellationToken,
+    workers: Mutex<Vec<tokio::task::JoinHandle<()>>>,
+}
+
+/// The engine handle; cheap to clone.
+#[derive(Clone)]
+pub struct Engine {
+    inner: Arc<Inner>,
+}
+
+impl Engine {
+    /// Builds the configured benches and starts the engine (see the module documentation).
+    pub async fn start(config: &Config, store: Store) -> Result<Engine, EngineError> {
+        let mut benches = Vec::new();
+        for bench in &config.benches {
+            let instruments = bench::build(config, bench).await?;
+            benches.push((bench.name.clone(), instruments));
+        }
+        Self::start_with(config.limits.clone(), store, benches).await
+    }
+
+    /// Starts the engine on benches built by the caller (tests use this to keep a handle on
+    /// the simulated bench).
+    pub async fn start_with(
+        limits: Limits,
+        store: Store,
+        benches: Vec<(String, BenchInstruments)>,
+    ) -> Result<Engine, EngineError> {
+        let (events, _) = broadcast::channel(EVENT_BUFFER);
+        let mut slots = HashMap::new();
+        let mut receivers = Vec::new();
+        for (name, instruments) in benches {
+            let (tx, rx) = mpsc::unbounded_channel();
+            let source_resource = instruments.source.resource().to_string();
+            let analyzer_resource = instruments.analyzer.resource().to_string();
+            let slot = Arc::new(BenchSlot {
+                name: name.clone(),
+                source: Arc::new(Mutex::new(instruments.source)),
+                analyzer: Arc::new(Mutex::new(instruments.analyzer)),
+                source_resource,
+                analyzer_resource,
+                identities: std::sync::Mutex::new((None, None)),
+                queue: std::sync::Mutex::new(BenchQueue::default()),
+                jobs: tx,
+            });
+            // Start-up interlock: whatever the previous process left on, switch it off now.
+            if let Err(e) = safety::switch_off(&slot.source).await {
+                tracing::error!(bench = %name, error = %e, "could not switch the RF output off at start-up; check the source");
+            }
+            slot.refresh_identities(&store).await;
+            receivers.push((slot.clone(), rx));
+            slots.insert(name, slot);
+        }
+        let interrupted = store.mark_running_as_interrupted().await?;
+        if !interrupted.is_empty() {
+            tracing::warn!(
+                runs = ?interrupted,
+                "runs left running by the previous process are now interrupted; resume them to finish"
+            );
+        }
+        let engine = Engine {
+            inner: Arc::new(Inner {
+                store,
+                limits,
+                events,
+                benches: slots,
+                cancels: std::sync::Mutex::new(HashMap::new()),
+                shutdown: CancellationToken::new(),
+                workers: Mutex::new(Vec::new()),
+            }),
+        };
+        for (slot, rx) in receivers {
+            let handle = tokio::spawn(engine.clone().worker(slot, rx));
+            engine.inner.workers.lock().await.push(handle);
+        }
+        // Runs accepted before a restart keep their place.
+        let queued = engine
+            .inner
+            .store
+            .list_runs(&RunFilter {
+                state: Some(RunState::Queued),
+                limit: RunFilter::MAX_LIMIT,
+                ..RunFilter::default()
+            })
+            .await?;
+        let mut queued: Vec<i64> = queued.runs.iter().map(|r| r.id).collect();
+        queued.sort_unstable();
+        for run_id in queued {
+            if let Err(e) = engine.enqueue_existing(run_id).await {
+                tracing::error!(run_id, error = %e, "a queued run could not be queued again");
+                engine
+                    .inner
+                    .store
+                    .transition_run(run_id, RunState::Failed, Some(&e.to_string()))
+                    .await?;
+            }
+        }
+        Ok(engine)
+    }
+
+    /// The store behind the engine.
+    pub fn store(&self) -> &Store {
+        &self.inner.store
+    }
+
+    /// The configured safety limits.
+    pub fn limits(&self) -> &Limits {
+        &self.inner.limits
+    }
+
+    /// A receiver of progress events from now on.
+    pub fn subscribe(&self) -> broadcast::Receiver<ProgressEvent> {
+        self.inner.events.subscribe()
+    }
+
+    /// Every bench with its instruments and queue.
+    pub fn benches(&self) -> Vec<BenchStatus> {
+        let mut list: Vec<BenchStatus> = self
+            .inner
+            .benches
+            .values()
+            .map(|slot| slot.status())
+            .collect();
+        list.sort_by(|a, b| a.name.cmp(&b.name));
+        list
+    }
+
+    /// Checks a plan against the limits and the bench without queuing it.
+    pub async fn check_plan(
+        &self,
+        request: &PlanRequest,
+    ) -> Result<(Plan, DriveChain, i64), SubmitError> {
+        let Some(slot) = self.inner.benches.get(&request.bench) else {
+            let mut known: Vec<&str> = self.inner.benches.keys().map(String::as_str).collect();
+            known.sort();
+            return Err(SubmitError::Invalid(PlanErrors {
+                errors: vec![FieldError {
+                    field: "bench".into(),
+                    message: format!(
+                        "no bench named {:?}; configured benches: {}",
+                        request.bench,
+                        known.join(", ")
+                    ),
+                }],
+            }));
+        };
+        let (chain, chain_id) = self.resolve_chain(&request.chain).await?;
+        let source_limits = slot.source.lock().await.limits();
+        let caps = slot.analyzer.lock().await.capabilities();
+        let ctx = PlanContext {
+            hard_limit_at_modulator: Dbm(self.inner.limits.max_level_at_modulator_dbm),
+            source: source_limits,
+            analyzer: &caps,
+            chain: &chain,
+        };
+        let plan = request.validate(&ctx)?;
+        Ok((plan, chain, chain_id))
+    }
+
+    /// Validates and queues a plan; returns the new run's id. Nothing is sent to an instrument
+    /// unless the plan is proven within every limit.
+    pub async fn submit(&self, request: PlanRequest, submitted_by: &str) -> Result<i64, SubmitError> {
+        let (plan, chain, chain_id) = self.check_plan(&request).await?;
+        let store = &self.inner.store;
+        let device_id = store
+            .upsert_device(&NewDevice {
+                serial: request.device.serial.trim().to_string(),
+                model: request.device.model.clone(),
+                rf_input_limit: Dbm(request.device.rf_input_limit_dbm),
+                wavelength: Nanometers(request.device.wavelength_nm),
+            })
+            .await?
+            .id;
+        let plan_json = serde_json::to_value(&request).map_err(|e| {
+            SubmitError::Invalid(PlanErrors {
+                errors: vec![FieldError {
+                    field: "plan".into(),
+                    message: format!("the plan could not be serialised: {e}"),
+                }],
+            })
+        })?;
+        let run_id = store
+            .create_run(&NewRun {
+                plan: plan_json,
+                device_id,
+                bench_name: request.bench.clone(),
+                chain_calibration_id: chain_id,
+                submitted_by: submitted_by.to_string(),
+            })
+            .await?
+            .id;
+        store
+            .append_audit(
+                submitted_by,
+                "submit",
+                &format!("run {run_id}"),
+                &format!(
+                    "device {} on bench {}, {} points, up to {:.2} at the modulator",
+                    request.device.serial,
+                    request.bench,
+                    plan.point_count(),
+                    plan.max_level_at_modulator
+                ),
+            )
+            .await?;
+        self.enqueue(run_id, Arc::new(plan), Arc::new(chain), HashSet::new());
+        Ok(run_id)
+    }
+
+    /// Cancels a queued or running run. A running run stops at once with RF off.
+    pub async fn cancel(&self, run_id: i64, by: &str) -> Result<(), EngineError> {
+        let run = self.run_record(run_id).await?;
+        let state = run.state;
+        if !matches!(state, RunState::Queued | RunState::Running) {
+            return Err(EngineError::NotCancellable {
+                run_id,
+                state: state.as_str().into(),
+            });
+        }
+        self.inner
+            .store
+            .append_audit(by, "cancel", &format!("run:{run_id}"), "")
+            .await?;
+        let token = self.inner.cancels.lock().map(|m| m.get(&run_id).cloned()).ok().flatten();
+        match token {
+            Some(t) => t.cancel(),
+            None => {
+                // Not in any queue of this process (should not happen): record it directly.
+                self.inner
+                    .store
+                    .transition_run(run_id, RunState::Cancelled, Some(&format!("cancelled by {by}")))
+                    .await?;
+            }
+        }
+        Ok(())
+    }
+
+    /// Queues an interrupted, failed or cancelled run again; it continues from its first missing
+    /// point with the same plan and chain calibration.
+    pub async fn resume(&self, run_id: i64, by: &str) -> Result<(), EngineError> {
+        let run = self.run_record(run_id).await?;
+        if !matches!(
+            run.state,
+            RunState::Interrupted | RunState::Failed | RunState::Cancelled
+        ) {
+            return Err(EngineError::NotResumable {
+                run_id,
+                state: run.state.as_str().into(),
+            });
+        }
+        self.inner
+            .store
+            .transition_run(run_id, RunState::Queued, Some(&format!("resumed by {by}")))
+            .await?;
+        self.inner
+            .store
+            .append_audit(by, "resume", &format!("run:{run_id}"), "")
+            .await?;
+        self.enqueue_existing(run_id).await
+    }
+
+    /// Cancels everything, waits for the RF to go off, and switches every source off again.
+    pub async fn shutdown(&self) {
+        self.inner.shutdown.cancel();
+        let tokens: Vec<CancellationToken> = self
+            .inner
+            .cancels
+            .lock()
+            .map(|m| m.values().cloned().collect())
+            .unwrap_or_default();
+        for t in tokens {
+            t.cancel();
+        }
+        let workers: Vec<_> = self.inner.workers.lock().await.drain(..).collect();
+        for w in workers {
+            if tokio::time::timeout(std::time::Duration::from_secs(10), w)
+                .await
+                .is_err()
+            {
+                tracing::error!("a bench worker did not stop within 10 s");
+            }
+        }
+        for slot in self.inner.benches.values() {
+            if let Err(e) = safety::switch_off(&slot.source).await {
+                tracing::error!(bench = %slot.name, error = %e, "could not confirm RF off at shutdown; switch it off by hand");
+            }
+        }
+    }
+
+    async fn resolve_chain(&self, spec: &ChainSpec) -> Result<(DriveChain, i64), SubmitError> {
+        let invalid = |message: String| {
+            SubmitError::Invalid(PlanErrors {
+                errors: vec![FieldError {
+                    field: "chain".into(),
+                    message,
+                }],
+            })
+        };
+        let calibration = match spec {
+            ChainSpec::FlatLoss { loss_db } => {
+                if !loss_db.is_finite() || !(-60.0..=100.0).contains(loss_db) {
+                    return Err(invalid(format!(
+                        "loss_db must be a loss in dB from -60 to 100, got {loss_db}"
+                    )));
+                }
+                self.flat_loss_calibration(*loss_db).await?
+            }
+            ChainSpec::Stored { name, version } => {
+                let headers = self.inner.store.chain_calibrations().await?;
+                let found = headers
+                    .iter()
+                    .filter(|h| &h.name == name && version.is_none_or(|v| h.version == v))
+                    .max_by_key(|h| h.version);
+                match found {
+                    Some(h) => self.inner.store.chain_calibration(h.id).await?,
+                    None => {
+                        return Err(invalid(match version {
+                            Some(v) => format!("no chain calibration {name:?} version {v}; list them with GET /api/v1/chain-calibrations"),
+                            None => format!("no chain calibration named {name:?}; upload one first"),
+                        }))
+                    }
+                }
+            }
+        };
+        let points = calibration
+            .points
+            .iter()
+            .map(|p| ChainPoint {
+                frequency: p.frequency(),
+                gain: Db(p.gain().0),
+            })
+            .collect();
+        let chain = DriveChain::new(points).map_err(|e| invalid(e.to_string()))?;
+        Ok((chain, calibration.id))
+    }
+
+    async fn run_record(&self, run_id: i64) -> Result<RunRecord, EngineError> {
+        match self.inner.store.run(run_id).await {
+            Ok(r) => Ok(r),
+            Err(StoreError::NotFound { .. }) => Err(EngineError::RunNotFound(run_id)),
+            Err(e) => Err(e.into()),
+        }
+    }
+
+    /// The stored calibration that stands for a flat loss: one per distinct loss, reused.
+    async fn flat_loss_calibration(&self, loss_db: f64) -> Result<ChainCalibration, StoreError> {
+        let name = format!("flat-loss-{loss_db:.2}dB");
+        match self.inner.store.latest_chain_calibration(&name).await {
+            Ok(c) => Ok(c),
+            Err(StoreError::NotFound { .. }) => {
+                self.inner
+                    .store
+                    .create_chain_calibration(
+                        &name,
+                        "halfwave",
+                        &[ChainCalibrationPoint::new(Hz(0.0), Db(-loss_db))],
+                    )
+                    .await
+            }
+            Err(e) => Err(e),
+        }
+    }
+
+    async fn enqueue_existing(&self, run_id: i64) -> Result<(), EngineError> {
+        let store = &self.inner.store;
+        let run = self.run_record(run_id).await?;
+        let refuse = |reason: String| EngineError::ResumeRefused { run_id, reason };
+        let request: PlanRequest = serde_json::from_value(run.plan()?)
+            .map_err(|e| refuse(format!("its stored plan no longer parses: {e}")))?;
+        let slot = self
+            .inner
+            .benches
+            .get(&request.bench)
+            .ok_or_else(|| refuse(format!("bench {:?} is not configured", request.bench)))?;
+        let calibration = store
+            .chain_calibration(run.chain_calibration_id)
+            .await
+            .map_err(|e| refuse(format!("its chain calibration cannot be read: {e}")))?;
+        let chain = DriveChain::new(
+            calibration
+                .points
+                .iter()
+                .map(|p| ChainPoint {
+                    frequency: p.frequency(),
+                    gain: p.gain(),
+                })
+                .collect(),
+        )
+        .map_err(|e| refuse(e.to_string()))?;
+        let source_limits = slot.source.lock().await.limits();
+        let caps = slot.analyzer.lock().await.capabilities();
+        let plan = request
+            .validate(&PlanContext {
+                hard_limit_at_modulator: Dbm(self.inner.limits.max_level_at_modulator_dbm),
+                source: source_limits,
+                analyzer: &caps,
+                chain: &chain,
+            })
+            .map_err(|e| refuse(format!("its plan is no longer within limits: {e}")))?;
+        let done: HashSet<(usize, usize)> = store
+            .stored_point_indices(run_id)
+            .await?
+            .into_iter()
+            .map(|(f, l)| (f as usize, l as usize))
+            .collect();
+        self.enqueue(run_id, Arc::new(plan), Arc::new(chain), done);
+        Ok(())
+    }
+
+    fn enqueue(&self, run_id: i64, plan: Arc<Plan>, chain: Arc<DriveChain>, done: HashSet<(usize, usize)>) {
+        let bench = plan.request.bench.clone();
+        let Some(slot) = self.inner.benches.get(&bench) else {
+            return;
+        };
+        if let Ok(mut m) = self.inner.cancels.lock() {
+            m.insert(run_id, CancellationToken::new());
+        }
+        if let Ok(mut q) = slot.queue.lock() {
+            q.queued.push_back(run_id);
+        }
+        let _ = self.inner.events.send(ProgressEvent::Queued {
+            run_id,
+            bench: bench.clone(),
+        });
+        let _ = slot.jobs.send(Job {
+            run_id,
+            plan,
+            chain,
+            done,
+        });
+    }
+
+    async fn worker(self, slot: Arc<BenchSlot>, mut jobs: mpsc::UnboundedReceiver<Job>) {
+        loop {
+            let job = tokio::select! {
+                _ = self.inner.shutdown.cancelled() => break,
+                job = jobs.recv() => match job { Some(j) => j, None => break },
+            };
+            let token = self
+                .inner
+                .cancels
+                .lock()
+                .ok()
+                .and_then(|m| m.get(&job.run_id).cloned())
+                .unwrap_or_default();
+            if let Ok(mut q) = slot.queue.lock() {
+                q.queued.retain(|id| *id != job.run_id);
+                q.active = Some(job.run_id);
+            }
+            self.run_job(&slot, job, token).await;
+            if let Ok(mut q) = slot.queue.lock() {
+                q.active = None;
+            }
+        }
+    }
+
+    async fn run_job(&self, slot: &Arc<BenchSlot>, job: Job, token: CancellationToken) {
+        let store = &self.inner.store;
+        let run_id = job.run_id;
+        let finish = |state: RunState, cause: Option<String>| async move {
+            if let Err(e) = store.transition_run(run_id, state, cause.as_deref()).await {
+                tracing::error!(run_id, error = %e, "could not record the end of the run");
+            }
+            if let Ok(mut m) = self.inner.cancels.lock() {
+                m.remove(&run_id);
+            }
+            let _ = self.inner.events.send(ProgressEvent::Finished {
+                run_id,
+                state: state.as_str().into(),
+                cause,
+            });
+        };
+        if token.is_cancelled() {
+            finish(RunState::Cancelled, Some("cancelled before it started".into())).await;
+            return;
+        }
+        if let Err(e) = store.transition_run(run_id, RunState::Running, None).await {
+            tracing::error!(run_id, error = %e, "could not mark the run as running");
+            finish(RunState::Failed, Some(format!("the store refused to start the run: {e}"))).await;
+            return;
+        }
+        let _ = self.inner.events.send(ProgressEvent::Started {
+            run_id,
+            bench: slot.name.clone(),
+            total_points: job.plan.point_count(),
+            already_measured: job.done.len(),
+        });
+        let ctx = RunContext {
+            run_id,
+            plan: job.plan,
+            chain: job.chain,
+            source: slot.source.clone(),
+            analyzer: slot.analyzer.clone(),
+            store: store.clone(),
+            events: self.inner.events.clone(),
+            cancel: token,
+            done: job.done,
+        };
+        // The run goes in its own task so that a panic in it is caught here (and its RF guard
+        // acts on the unwind) instead of taking the worker down.
+        let outcome = match tokio::spawn(runner::run(ctx)).await {
+            Ok(outcome) => outcome,
+            Err(join) => {
+                // Give the guard's spawned safe-off the lock, then make sure ourselves.
+                let _ = safety::switch_off(&slot.source).await;
+                RunOutcome::Failed(format!("the run task failed: {join}"))
+            }
+        };
+        let (state, cause) = match outcome {
+            RunOutcome::Completed => (RunState::Completed, None),
+            RunOutcome::Cancelled if self.inner.shutdown.is_cancelled() => (
+                RunState::Interrupted,
+                Some("the daemon shut down; resume the run to finish it".into()),
+            ),
+            RunOutcome::Cancelled => (RunState::Cancelled, Some("cancelled".into())),
+            RunOutcome::Failed(cause) => (RunState::Failed, Some(cause)),
+        };
+        tracing::info!(run_id, state = state.as_str(), cause = cause.as_deref().unwrap_or(""), "run ended");
+        finish(state, cause).await;
+    }
+}
+
+impl BenchSlot {
+    fn status(&self) -> BenchStatus {
+        let (source_identity, analyzer_identity) = self
+            .identities
+            .lock()
+            .map(|g| g.clone())
+            .unwrap_or((None, None));
+        let (active, queued) = self
+            .queue
+            .lock()
+            .map(|q| (q.active, q.queued.iter().copied().collect()))
+            .unwrap_or((None, Vec::new()));
+        BenchStatus {
+            name: self.name.clone(),
+            source_resource: self.source_resource.clone(),
+            analyzer_resource: self.analyzer_resource.clone(),
+            source_identity,
+            analyzer_identity,
+            active_run_id: active,
+            queued_run_ids: queued,
+        }
+    }
+
+    /// Asks both instruments who they are and records them; failures are logged, not fatal
+    /// (the daemon must start to switch RF off even with an analyzer missing).
+    async fn refresh_identities(&self, store: &Store) {
+        let source = self.source.lock().await.identify().await;
+        let analyzer = self.analyzer.lock().await.identify().await;
+        for (role, result, resource) in [
+            ("source", &source, &self.source_resource),
+            ("analyzer", &analyzer, &self.analyzer_resource),
+        ] {
+            match result {
+                Ok(id) => {
+                    if let Err(e) = store.record_instrument_seen(id, resource).await {
+                        tracing::warn!(bench = %self.name, role, error = %e, "could not record the instrument identity");
+                    }
+                }
+                Err(e) => tracing::warn!(bench = %self.name, role, error = %e, "instrument did not identify"),
+            }
+        }
+        if let Ok(mut ids) = self.identities.lock() {
+            *ids = (source.ok(), analyzer.ok());
+        }
+    }
+}

@@ -1,0 +1,468 @@
+//! The sweep executor: one run of a proven plan on one bench.
+//!
+//! For each frequency, in plan order: switch RF off, find the laser, take the RF-off reference,
+//! then ramp the levels from low to high, one point each (set level, output on, settle, sweep,
+//! fetch). Each measured trace is handed to a pipeline task that analyses it and commits it to the
+//! store while the instruments already measure the next point, so the analysis and the database
+//! cost no instrument time. When a frequency's levels are done the RF goes off and V_pi is fitted
+//! for that frequency; when all are done the run is complete.
+//!
+//! Every stop path switches RF off first and reports afterwards: the [`RfOffGuard`] is released
+//! on the normal end, on cancel and on error, and acts from its `Drop` on a panic. An analysis
+//! failure of one point is recorded with the point and does not stop the run; an instrument or
+//! store error stops it with the cause recorded.
+
+use super::acquire;
+use super::events::ProgressEvent;
+use super::plan::{FrequencyStep, Plan};
+use super::safety::{RfOffGuard, SharedSource};
+use crate::analysis::{self, chain::peak_voltage, chain::DriveChain, AnalysisOptions, DrivePoint};
+use crate::store::{NewFrequencyResult, NewPoint, Store};
+use halfwave_drivers::{AnalyzerSettings, InstrumentError, SpectrumAnalyzer};
+use halfwave_units::{Db, Dbm, Hz, Trace};
+use std::collections::HashSet;
+use std::sync::Arc;
+use std::time::Instant;
+use tokio::sync::{broadcast, mpsc, Mutex};
+use tokio_util::sync::CancellationToken;
+use tracing::Instrument;
+
+/// A shared analyzer handle.
+pub type SharedAnalyzer = Arc<Mutex<Box<dyn SpectrumAnalyzer>>>;
+
+/// How a run ended.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum RunOutcome {
+    Completed,
+    Cancelled,
+    Failed(String),
+}
+
+/// Everything one run needs.
+pub struct RunContext {
+    pub run_id: i64,
+    pub plan: Arc<Plan>,
+    pub chain: Arc<DriveChain>,
+    pub source: SharedSource,
+    pub analyzer: SharedAnalyzer,
+    pub store: Store,
+    pub events: broadcast::Sender<ProgressEvent>,
+    pub cancel: CancellationToken,
+    /// (frequency index, level index) pairs already committed (on resume).
+    pub done: HashSet<(usize, usize)>,
+}
+
+/// A measured trace on its way to analysis and storage.
+struct Measured {
+    frequency_index: usize,
+    level_index: usize,
+    frequency: Hz,
+    generator_level: Dbm,
+    trace: Trace,
+    reference: Option<Arc<Trace>>,
+    acquired_in: std::time::Duration,
+}
+
+/// What the acquisition side hands to the pipeline, in order.
+enum Msg {
+    /// A measured point to analyse and commit.
+    Point(Box<Measured>),
+    /// Every level of this frequency has been measured: fit V_pi from the stored points.
+    FrequencyDone { frequency_index: usize, frequency: Hz },
+}
+
+/// Runs the plan to its end, cancel or first error. RF is off when this returns, or the returned
+/// outcome says it could not be confirmed off.
+pub async fn run(ctx: RunContext) -> RunOutcome {
+    let span = tracing::info_span!("run", run_id = ctx.run_id);
+    run_inner(ctx).instrument(span).await
+}
+
+async fn run_inner(ctx: RunContext) -> RunOutcome {
+    let guard = RfOffGuard::arm(ctx.source.clone());
+    let result = tokio::select! {
+        biased;
+        _ = ctx.cancel.cancelled() => Err(Stop::Cancelled),
+        r = sweep_all(&ctx) => r,
+    };
+    // RF off first, report afterwards.
+    let off = guard.release().await;
+    let outcome = match (result, off) {
+        (Ok(()), Ok(())) => RunOutcome::Completed,
+        (Err(Stop::Cancelled), Ok(())) => RunOutcome::Cancelled,
+        (Err(Stop::Failed(cause)), Ok(())) => RunOutcome::Failed(cause),
+        (r, Err(e)) => {
+            let before = match r {
+                Ok(()) => String::new(),
+                Err(Stop::Cancelled) => "after cancel: ".into(),
+                Err(Stop::Failed(c)) => format!("{c}; then "),
+            };
+            RunOutcome::Failed(format!(
+                "{before}the RF output could not be confirmed off ({e}); switch it off by hand"
+            ))
+        }
+    };
+    outcome
+}
+
+enum Stop {
+    Cancelled,
+    Failed(String),
+}
+
+impl From<InstrumentError> for Stop {
+    fn from(e: InstrumentError) -> Stop {
+        Stop::Failed(format!("instrument error: {e}"))
+    }
+}
+
+async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
+    let plan = &ctx.plan;
+    let total = plan.point_count();
+    let completed = ctx.done.len();
+    let (tx, rx) = mpsc::channel::<Msg>(2);
+    let pipeline = tokio::spawn(pipeline(
+        rx,
+        ctx.run_id,
+        ctx.store.clone(),
+        ctx.chain.clone(),
+        ctx.events.clone(),
+        total,
+        completed,
+    ));
+    let caps = ctx.analyzer.lock().await.capabilities();
+    let mut carrier = plan.wavelength.to_frequency();
+
+    let mut result = Ok(());
+    'frequencies: for (fi, step) in plan.steps.iter().enumerate() {
+        let remaining: Vec<usize> = (0..step.generator_levels.len())
+            .filter(|li| !ctx.done.contains(&(fi, *li)))
+            .collect();
+        if remaining.is_empty() {
+            continue;
+        }
+        let span = tracing::info_span!("frequency", frequency_hz = step.frequency.0);
+        let r = measure_frequency(ctx, fi, step, &remaining, &caps, &mut carrier, &tx)
+            .instrument(span)
+            .await;
+        // RF off at the end of every frequency, whatever happened.
+        let off = super::safety::switch_off(&ctx.source).await;
+        if let Err(stop) = r {
+            result = Err(stop);
+            break 'frequencies;
+        }
+        if let Err(e) = off {
+            result = Err(Stop::Failed(format!(
+                "the RF output could not be confirmed off after {:.6} GHz: {e}",
+                step.frequency.ghz()
+            )));
+            break 'frequencies;
+        }
+        if tx
+            .send(Msg::FrequencyDone {
+                frequency_index: fi,
+                frequency: step.frequency,
+            })
+            .await
+            .is_err()
+        {
+            result = Err(Stop::Failed("the analysis task stopped early".into()));
+            break 'frequencies;
+        }
+    }
+    drop(tx);
+    // Let the pipeline finish what it has; its result decides the per-frequency fits.
+    match pipeline.await {
+        Ok(Ok(())) => {}
+        Ok(Err(cause)) => {
+            if result.is_ok() {
+                result = Err(Stop::Failed(cause));
+            }
+        }
+        Err(join) => {
+            if result.is_ok() {
+                result = Err(Stop::Failed(format!("the analysis task failed: {join}")));
+            }
+        }
+    }
+    result
+}
+
+async fn measure_frequency(
+    ctx: &RunContext,
+    fi: usize,
+    step: &FrequencyStep,
+    remaining: &[usize],
+    caps: &halfwave_drivers::AnalyzerCapabilities,
+    carrier: &mut Hz,
+    tx: &mpsc::Sender<Msg>,
+) -> Result<(), Stop> {
+    let plan = &ctx.plan;
+    super::safety::switch_off(&ctx.source).await?;
+    {
+        let mut src = ctx.source.lock().await;
+        src.set_frequency(step.frequency).await?;
+    }
+    let mut analyzer = ctx.analyzer.lock().await;
+    // Find the laser with RF off, wherever it drifted.
+    *carrier = acquire::locate_laser(analyzer.as_mut(), caps, *carrier, step.analyzer.span).await?;
+    let mut settings = AnalyzerSettings {
+        center: *carrier,
+        span: step.analyzer.span,
+        resolution_bandwidth: step.analyzer.resolution_bandwidth,
+        points: step.analyzer.points,
+    };
+    analyzer.configure(&settings).await?;
+    let reference = if plan.request.reference_trace {
+        let r = acquire::measure(analyzer.as_mut(), plan.averages).await?;
+        if plan.request.carrier_tracking {
+            *carrier = acquire::peak_frequency(&r);
+        }
+        ctx.store
+            .store_reference_trace(ctx.run_id, fi as u32, step.frequency, &r)
+            .await
+            .map_err(|e| Stop::Failed(format!("could not store the reference trace: {e}")))?;
+        Some(Arc::new(r))
+    } else {
+        None
+    };
+    drop(analyzer);
+
+    let mut output_on = false;
+    for &li in remaining {
+        if ctx.cancel.is_cancelled() {
+            return Err(Stop::Cancelled);
+        }
+        let level = step.generator_levels[li];
+        let started = Instant::now();
+        {
+            let mut src = ctx.source.lock().await;
+            src.set_level(level).await?;
+            if !output_on {
+                src.set_output(true).await?;
+                output_on = true;
+            }
+        }
+        tokio::time::sleep(plan.settle.to_duration()).await;
+        let mut analyzer = ctx.analyzer.lock().await;
+        if plan.request.carrier_tracking && (settings.center.0 - carrier.0).abs() > 1e-3 * settings.span.0 {
+            settings.center = analyzer.set_center(*carrier).await?;
+        }
+        let trace = acquire::measure(analyzer.as_mut(), plan.averages).await?;
+        drop(analyzer);
+        if plan.request.carrier_tracking {
+            // The strongest line may be a sideband, so track by the comb's centre of symmetry:
+            // the power-weighted mean frequency of a symmetric comb is the carrier.
+            if let Some(c) = comb_centroid(&trace) {
+                *carrier = c;
+            }
+        }
+        let measured = Measured {
+            frequency_index: fi,
+            level_index: li,
+            frequency: step.frequency,
+            generator_level: level,
+            trace,
+            reference: reference.clone(),
+            acquired_in: started.elapsed(),
+        };
+        if tx.send(Msg::Point(Box::new(measured))).await.is_err() {
+            return Err(Stop::Failed("the analysis task stopped early".into()));
+        }
+    }
+    Ok(())
+}
+
+/// The +1/-1 asymmetry in dB, when both first-order lines were measured.
+fn first_order_asymmetry(a: &analysis::TraceAnalysis) -> Option<Db> {
+    a.asymmetry
+        .iter()
+        .find(|o| o.order == 1)
+        .and_then(|o| o.asymmetry_db)
+        .map(Db)
+}
+
+/// The power-weighted mean frequency of the points within 20 dB of the strongest one; for a
+/// symmetric comb this is the carrier even when the carrier itself is nulled.
+fn comb_centroid(trace: &Trace) -> Option<Hz> {
+    let p = trace.power_dbm();
+    let f = trace.frequency_hz();
+    let max = p.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let (mut sw, mut swf) = (0.0, 0.0);
+    for (pi, fi) in p.iter().zip(f) {
+        if *pi > max - 20.0 {
+            let w = 10f64.powf((pi - max) / 10.0);
+            sw += w;
+            swf += w * fi;
+        }
+    }
+    (sw > 0.0).then(|| Hz(swf / sw))
+}
+
+async fn pipeline(
+    mut rx: mpsc::Receiver<Msg>,
+    run_id: i64,
+    store: Store,
+    chain: Arc<DriveChain>,
+    events: broadcast::Sender<ProgressEvent>,
+    total: usize,
+    mut completed: usize,
+) -> Result<(), String> {
+    let options = AnalysisOptions::default();
+    while let Some(msg) = rx.recv().await {
+        match msg {
+            Msg::Point(m) => {
+                commit_point(&m, run_id, &store, &chain, &options, &events, total, &mut completed)
+                    .await?
+            }
+            Msg::FrequencyDone {
+                frequency_index,
+                frequency,
+            } => fit_frequency(run_id, frequency_index, frequency, &store, &events).await?,
+        }
+    }
+    Ok(())
+}
+
+#[allow(clippy::too_many_arguments)]
+async fn commit_point(
+    m: &Measured,
+    run_id: i64,
+    store: &Store,
+    chain: &DriveChain,
+    options: &AnalysisOptions,
+    events: &broadcast::Sender<ProgressEvent>,
+    total: usize,
+    completed: &mut usize,
+) -> Result<(), String> {
+    let at_modulator = chain.level_at_modulator(m.frequency, m.generator_level);
+    let v_peak = peak_voltage(at_modulator);
+    let analysis = analysis::analyze_trace(&m.trace, m.frequency, m.reference.as_deref(), options);
+    if let Err(e) = &analysis {
+        tracing::warn!(
+            frequency_hz = m.frequency.0,
+            level_dbm = m.generator_level.0,
+            error = %e,
+            "point could not be analysed; stored without a modulation index"
+        );
+    }
+    let (line_table, details) = match &analysis {
+        Ok(a) => (
+            serde_json::to_value(&a.lines).unwrap_or_default(),
+            serde_json::to_value(a).unwrap_or_default(),
+        ),
+        Err(e) => (
+            serde_json::Value::Array(Vec::new()),
+            serde_json::json!({ "error": e.to_string() }),
+        ),
+    };
+    let ok = analysis.as_ref().ok();
+    let point = NewPoint {
+        run_id,
+        frequency_index: m.frequency_index as u32,
+        level_index: m.level_index as u32,
+        frequency: m.frequency,
+        generator_level: m.generator_level,
+        level_at_modulator: at_modulator,
+        v_peak,
+        modulation_index: ok.map(|a| a.modulation_index.value),
+        modulation_index_uncertainty: ok.map(|a| a.modulation_index.uncertainty),
+        asymmetry: ok.and_then(first_order_asymmetry),
+        line_table,
+        analysis: details,
+        trace: &m.trace,
+    };
+    store.commit_point(&point).await.map_err(|e| {
+        format!(
+            "could not commit the point at {:.6} GHz, {:.2}: {e}",
+            m.frequency.ghz(),
+            m.generator_level
+        )
+    })?;
+    *completed += 1;
+    tracing::debug!(
+        acquired_ms = m.acquired_in.as_secs_f64() * 1e3,
+        "point committed"
+    );
+    let _ = events.send(match &analysis {
+        Ok(a) => ProgressEvent::Point {
+            run_id,
+            completed_points: *completed,
+            total_points: total,
+            frequency_hz: m.frequency.0,
+            generator_level_dbm: m.generator_level.0,
+            v_peak_volts: v_peak.0,
+            modulation_index: a.modulation_index.value,
+            modulation_index_uncertainty: a.modulation_index.uncertainty,
+        },
+        Err(e) => ProgressEvent::PointFailed {
+            run_id,
+            frequency_hz: m.frequency.0,
+            generator_level_dbm: m.generator_level.0,
+            reason: e.to_string(),
+        },
+    });
+    Ok(())
+}
+
+/// Fits V_pi for one frequency of the run from its stored points and stores the result. A fit
+/// that cannot be made (no usable point) is reported, not fatal: the points stay for a look.
+async fn fit_frequency(
+    run_id: i64,
+    frequency_index: usize,
+    frequency: Hz,
+    store: &Store,
+    events: &broadcast::Sender<ProgressEvent>,
+) -> Result<(), String> {
+    let stored = store
+        .points_of_run(run_id)
+        .await
+        .map_err(|e| format!("could not read back the points at {:.6} GHz: {e}", frequency.ghz()))?;
+    let drive: Vec<DrivePoint> = stored
+        .iter()
+        .filter(|p| p.frequency_index as usize == frequency_index)
+        .filter_map(|p| {
+            Some(DrivePoint {
+                v_peak: p.v_peak(),
+                modulation_index: p.modulation_index?,
+                uncertainty: p.modulation_index_uncertainty?,
+            })
+        })
+        .collect();
+    let event = match analysis::fit_v_pi(&drive) {
+        Ok(fit) => {
+            store
+                .save_frequency_result(&NewFrequencyResult {
+                    run_id,
+                    frequency_index: frequency_index as u32,
+                    frequency,
+                    v_pi: fit.v_pi,
+                    v_pi_uncertainty: fit.v_pi_uncertainty,
+                    excluded_points: serde_json::to_value(&fit.excluded).unwrap_or_default(),
+                    fit: serde_json::to_value(&fit).unwrap_or_default(),
+                })
+                .await
+                .map_err(|e| format!("could not store V_pi at {:.6} GHz: {e}", frequency.ghz()))?;
+            tracing::info!(frequency_hz = frequency.0, v_pi_volts = fit.v_pi.0, "V_pi fitted");
+            ProgressEvent::Frequency {
+                run_id,
+                frequency_hz: frequency.0,
+                v_pi_volts: Some(fit.v_pi.0),
+                v_pi_uncertainty_volts: Some(fit.v_pi_uncertainty.0),
+                note: None,
+            }
+        }
+        Err(e) => {
+            tracing::warn!(frequency_hz = frequency.0, error = %e, "V_pi could not be fitted");
+            ProgressEvent::Frequency {
+                run_id,
+                frequency_hz: frequency.0,
+                v_pi_volts: None,
+                v_pi_uncertainty_volts: None,
+                note: Some(format!("V_pi could not be fitted: {e}")),
+            }
+        }
+    };
+    let _ = events.send(event);
+    Ok(())
+}
