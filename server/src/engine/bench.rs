@@ -5,8 +5,7 @@
 //! bench) is decided here and nowhere else, so the engine never knows.
 
 use crate::config::{BenchConfig, Config, InstrumentConfig};
-use halfwave_drivers::generic::{ScpiRfSource, ScpiSpectrumAnalyzer};
-use halfwave_drivers::profile::{AnalyzerProfile, SourceProfile};
+use halfwave_drivers::generic::{connect_analyzer, connect_source};
 use halfwave_drivers::sim::{Scenario, SimBench};
 use halfwave_drivers::{RfSource, SpectrumAnalyzer};
 
@@ -52,19 +51,13 @@ pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstrume
             None => return Err(setup("the source is simulated but there is no [bench.simulation]".into())),
         },
         InstrumentConfig::Scpi { resource, profile } => {
-            let profile = match profile {
-                Some(path) => SourceProfile::from_file(&config.resolve(path))
-                    .map_err(|e| setup(format!("source profile: {e}")))?,
-                None => SourceProfile::standard(),
-            };
-            Box::new(
-                ScpiRfSource::connect(resource, profile)
-                    .await
-                    .map_err(|source| EngineError::Instrument {
-                        bench: bench.name.clone(),
-                        source,
-                    })?,
-            )
+            let profile = profile.as_ref().map(|p| config.resolve(p));
+            connect_source(resource, profile.as_deref())
+                .await
+                .map_err(|source| EngineError::Instrument {
+                    bench: bench.name.clone(),
+                    source,
+                })?
         }
     };
     let analyzer: Box<dyn SpectrumAnalyzer> = match &bench.analyzer {
@@ -73,19 +66,13 @@ pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstrume
             None => return Err(setup("the analyzer is simulated but there is no [bench.simulation]".into())),
         },
         InstrumentConfig::Scpi { resource, profile } => {
-            let profile = match profile {
-                Some(path) => AnalyzerProfile::from_file(&config.resolve(path))
-                    .map_err(|e| setup(format!("analyzer profile: {e}")))?,
-                None => AnalyzerProfile::standard(),
-            };
-            Box::new(
-                ScpiSpectrumAnalyzer::connect(resource, profile)
-                    .await
-                    .map_err(|source| EngineError::Instrument {
-                        bench: bench.name.clone(),
-                        source,
-                    })?,
-            )
+            let profile = profile.as_ref().map(|p| config.resolve(p));
+            connect_analyzer(resource, profile.as_deref())
+                .await
+                .map_err(|source| EngineError::Instrument {
+                    bench: bench.name.clone(),
+                    source,
+                })?
         }
     };
     Ok(BenchInstruments {

@@ -418,15 +418,18 @@ async fn fit_frequency(
         .points_of_run(run_id)
         .await
         .map_err(|e| format!("could not read back the points at {:.6} GHz: {e}", frequency.ghz()))?;
+    let mut levels = Vec::new();
     let drive: Vec<DrivePoint> = stored
         .iter()
         .filter(|p| p.frequency_index as usize == frequency_index)
         .filter_map(|p| {
-            Some(DrivePoint {
+            let point = DrivePoint {
                 v_peak: p.v_peak(),
                 modulation_index: p.modulation_index?,
                 uncertainty: p.modulation_index_uncertainty?,
-            })
+            };
+            levels.push((p.level_index, p.generator_level_dbm));
+            Some(point)
         })
         .collect();
     let event = match analysis::fit_v_pi(&drive) {
@@ -438,7 +441,20 @@ async fn fit_frequency(
                     frequency,
                     v_pi: fit.v_pi,
                     v_pi_uncertainty: fit.v_pi_uncertainty,
-                    excluded_points: serde_json::to_value(&fit.excluded).unwrap_or_default(),
+                    excluded_points: serde_json::Value::Array(
+                        fit.excluded
+                            .iter()
+                            .map(|e| {
+                                let (level_index, level) =
+                                    levels.get(e.index).copied().unwrap_or((0, f64::NAN));
+                                serde_json::json!({
+                                    "level_index": level_index,
+                                    "generator_level_dbm": level,
+                                    "reason": e.reason,
+                                })
+                            })
+                            .collect(),
+                    ),
                     fit: serde_json::to_value(&fit).unwrap_or_default(),
                 })
                 .await
