@@ -114,7 +114,10 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
     // The laser really drifted while the run measured (the scenario's random walk).
     assert_ne!(sim.laser_frequency(), laser_before);
     assert!(!sim.rf_output_on(), "RF must be off after the run");
-    assert!(!sim.overdriven(), "the run must never exceed the modulator's RF limit");
+    assert!(
+        !sim.overdriven(),
+        "the run must never exceed the modulator's RF limit"
+    );
 
     let run = store.run(run_id).await.unwrap();
     assert_eq!(run.state, RunState::Completed);
@@ -197,7 +200,10 @@ async fn cancel_leaves_the_output_off_within_a_second() {
     let asked = tokio::time::Instant::now();
     engine.cancel(run_id, "test").await.unwrap();
     while sim.rf_output_on() {
-        assert!(asked.elapsed() < Duration::from_secs(1), "RF still on 1 s after cancel");
+        assert!(
+            asked.elapsed() < Duration::from_secs(1),
+            "RF still on 1 s after cancel"
+        );
         tokio::time::sleep(Duration::from_millis(10)).await;
     }
     assert_eq!(wait_for_end(&mut events, run_id).await, "cancelled");

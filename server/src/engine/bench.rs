@@ -48,7 +48,11 @@ pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstrume
     let source: Box<dyn RfSource> = match &bench.source {
         InstrumentConfig::Simulated => match &simulation {
             Some(sim) => Box::new(sim.rf_source()),
-            None => return Err(setup("the source is simulated but there is no [bench.simulation]".into())),
+            None => {
+                return Err(setup(
+                    "the source is simulated but there is no [bench.simulation]".into(),
+                ))
+            }
         },
         InstrumentConfig::Scpi { resource, profile } => {
             let profile = profile.as_ref().map(|p| config.resolve(p));
@@ -63,7 +67,11 @@ pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstrume
     let analyzer: Box<dyn SpectrumAnalyzer> = match &bench.analyzer {
         InstrumentConfig::Simulated => match &simulation {
             Some(sim) => Box::new(sim.analyzer()),
-            None => return Err(setup("the analyzer is simulated but there is no [bench.simulation]".into())),
+            None => {
+                return Err(setup(
+                    "the analyzer is simulated but there is no [bench.simulation]".into(),
+                ))
+            }
         },
         InstrumentConfig::Scpi { resource, profile } => {
             let profile = profile.as_ref().map(|p| config.resolve(p));

@@ -276,7 +276,11 @@ impl Engine {
 
     /// Validates and queues a plan; returns the new run's id. Nothing is sent to an instrument
     /// unless the plan is proven within every limit.
-    pub async fn submit(&self, request: PlanRequest, submitted_by: &str) -> Result<i64, SubmitError> {
+    pub async fn submit(
+        &self,
+        request: PlanRequest,
+        submitted_by: &str,
+    ) -> Result<i64, SubmitError> {
         let (plan, chain, chain_id) = self.check_plan(&request).await?;
         let store = &self.inner.store;
         let device_id = store
@@ -338,14 +342,24 @@ impl Engine {
             .store
             .append_audit(by, "cancel", &format!("run:{run_id}"), "")
             .await?;
-        let token = self.inner.cancels.lock().map(|m| m.get(&run_id).cloned()).ok().flatten();
+        let token = self
+            .inner
+            .cancels
+            .lock()
+            .map(|m| m.get(&run_id).cloned())
+            .ok()
+            .flatten();
         match token {
             Some(t) => t.cancel(),
             None => {
                 // Not in any queue of this process (should not happen): record it directly.
                 self.inner
                     .store
-                    .transition_run(run_id, RunState::Cancelled, Some(&format!("cancelled by {by}")))
+                    .transition_run(
+                        run_id,
+                        RunState::Cancelled,
+                        Some(&format!("cancelled by {by}")),
+                    )
                     .await?;
             }
         }
@@ -524,7 +538,13 @@ impl Engine {
         Ok(())
     }
 
-    fn enqueue(&self, run_id: i64, plan: Arc<Plan>, chain: Arc<DriveChain>, done: HashSet<(usize, usize)>) {
+    fn enqueue(
+        &self,
+        run_id: i64,
+        plan: Arc<Plan>,
+        chain: Arc<DriveChain>,
+        done: HashSet<(usize, usize)>,
+    ) {
         let bench = plan.request.bench.clone();
         let Some(slot) = self.inner.benches.get(&bench) else {
             return;
@@ -588,12 +608,20 @@ impl Engine {
             });
         };
         if token.is_cancelled() {
-            finish(RunState::Cancelled, Some("cancelled before it started".into())).await;
+            finish(
+                RunState::Cancelled,
+                Some("cancelled before it started".into()),
+            )
+            .await;
             return;
         }
         if let Err(e) = store.transition_run(run_id, RunState::Running, None).await {
             tracing::error!(run_id, error = %e, "could not mark the run as running");
-            finish(RunState::Failed, Some(format!("the store refused to start the run: {e}"))).await;
+            finish(
+                RunState::Failed,
+                Some(format!("the store refused to start the run: {e}")),
+            )
+            .await;
             return;
         }
         let _ = self.inner.events.send(ProgressEvent::Started {
@@ -632,7 +660,12 @@ impl Engine {
             RunOutcome::Cancelled => (RunState::Cancelled, Some("cancelled".into())),
             RunOutcome::Failed(cause) => (RunState::Failed, Some(cause)),
         };
-        tracing::info!(run_id, state = state.as_str(), cause = cause.as_deref().unwrap_or(""), "run ended");
+        tracing::info!(
+            run_id,
+            state = state.as_str(),
+            cause = cause.as_deref().unwrap_or(""),
+            "run ended"
+        );
         finish(state, cause).await;
     }
 }
@@ -675,7 +708,9 @@ impl BenchSlot {
                         tracing::warn!(bench = %self.name, role, error = %e, "could not record the instrument identity");
                     }
                 }
-                Err(e) => tracing::warn!(bench = %self.name, role, error = %e, "instrument did not identify"),
+                Err(e) => {
+                    tracing::warn!(bench = %self.name, role, error = %e, "instrument did not identify")
+                }
             }
         }
         if let Ok(mut ids) = self.identities.lock() {

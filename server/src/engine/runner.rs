@@ -68,7 +68,10 @@ enum Msg {
     /// A measured point to analyse and commit.
     Point(Box<Measured>),
     /// Every level of this frequency has been measured: fit V_pi from the stored points.
-    FrequencyDone { frequency_index: usize, frequency: Hz },
+    FrequencyDone {
+        frequency_index: usize,
+        frequency: Hz,
+    },
 }
 
 /// Runs the plan to its end, cancel or first error. RF is off when this returns, or the returned
@@ -245,7 +248,9 @@ async fn measure_frequency(
         }
         tokio::time::sleep(plan.settle.to_duration()).await;
         let mut analyzer = ctx.analyzer.lock().await;
-        if plan.request.carrier_tracking && (settings.center.0 - carrier.0).abs() > 1e-3 * settings.span.0 {
+        if plan.request.carrier_tracking
+            && (settings.center.0 - carrier.0).abs() > 1e-3 * settings.span.0
+        {
             settings.center = analyzer.set_center(*carrier).await?;
         }
         let trace = acquire::measure(analyzer.as_mut(), plan.averages).await?;
@@ -312,8 +317,17 @@ async fn pipeline(
     while let Some(msg) = rx.recv().await {
         match msg {
             Msg::Point(m) => {
-                commit_point(&m, run_id, &store, &chain, &options, &events, total, &mut completed)
-                    .await?
+                commit_point(
+                    &m,
+                    run_id,
+                    &store,
+                    &chain,
+                    &options,
+                    &events,
+                    total,
+                    &mut completed,
+                )
+                .await?
             }
             Msg::FrequencyDone {
                 frequency_index,
@@ -414,10 +428,12 @@ async fn fit_frequency(
     store: &Store,
     events: &broadcast::Sender<ProgressEvent>,
 ) -> Result<(), String> {
-    let stored = store
-        .points_of_run(run_id)
-        .await
-        .map_err(|e| format!("could not read back the points at {:.6} GHz: {e}", frequency.ghz()))?;
+    let stored = store.points_of_run(run_id).await.map_err(|e| {
+        format!(
+            "could not read back the points at {:.6} GHz: {e}",
+            frequency.ghz()
+        )
+    })?;
     let mut levels = Vec::new();
     let drive: Vec<DrivePoint> = stored
         .iter()
@@ -459,7 +475,11 @@ async fn fit_frequency(
                 })
                 .await
                 .map_err(|e| format!("could not store V_pi at {:.6} GHz: {e}", frequency.ghz()))?;
-            tracing::info!(frequency_hz = frequency.0, v_pi_volts = fit.v_pi.0, "V_pi fitted");
+            tracing::info!(
+                frequency_hz = frequency.0,
+                v_pi_volts = fit.v_pi.0,
+                "V_pi fitted"
+            );
             ProgressEvent::Frequency {
                 run_id,
                 frequency_hz: frequency.0,
