@@ -122,3 +122,96 @@ pub async fn problem(response: reqwest::Response) -> serde_json::Value {
     );
     response.json().await.expect("problem JSON")
 }
+
+/// A running application with an engine on one simulated bench named `sim-bench`.
+pub struct EngineApp {
+    pub app: TestApp,
+    pub sim: halfwave_drivers::sim::SimBench,
+}
+
+/// Starts the whole daemon application: a fresh store in a temporary directory, the engine on a
+/// simulated bench whose instrument times are scaled by `time_factor` (0 = instant), the router.
+pub async fn spawn_app_with_engine(time_factor: f64) -> EngineApp {
+    use halfwave::config::Limits;
+    use halfwave::engine::bench::BenchInstruments;
+    use halfwave::engine::Engine;
+    use halfwave_drivers::sim::{Scenario, SimBench};
+
+    let dir = tempfile::tempdir().expect("temporary directory");
+    let path = dir.path().join("halfwave.sqlite");
+    let store = Store::open(path.to_str().expect("UTF-8 temporary path"))
+        .await
+        .expect("database opens");
+    let scenario = Scenario::builtin().expect("built-in scenario");
+    let sim = SimBench::new(scenario, 11).with_time_factor(time_factor);
+    let engine = Engine::start_with(
+        Limits::default(),
+        store,
+        vec![(
+            "sim-bench".to_string(),
+            BenchInstruments::simulated(sim.clone()),
+        )],
+    )
+    .await
+    .expect("engine starts");
+    let state = AppState::with_engine(engine, ApiSettings::default());
+    EngineApp {
+        app: serve_state(state, dir).await,
+        sim,
+    }
+}
+
+/// The drive chain of the built-in simulated bench as a lab would measure it end to end (cable
+/// loss plus the generator's level error), as a chain-calibration upload.
+pub fn true_chain_upload(
+    sim: &halfwave_drivers::sim::SimBench,
+    name: &str,
+    frequencies_hz: &[f64],
+) -> serde_json::Value {
+    let scenario = sim.scenario();
+    let points: Vec<serde_json::Value> = frequencies_hz
+        .iter()
+        .map(|&f| {
+            let f = halfwave::units::Hz(f);
+            serde_json::json!({
+                "frequency_hz": f.0,
+                "gain_db": scenario.level_error_at(f).0 - scenario.chain_loss_at(f).0,
+            })
+        })
+        .collect();
+    serde_json::json!({"name": name, "points": points})
+}
+
+/// Reads server-sent events from `response` until `stop` returns true for one of them or the
+/// time runs out; returns every event's JSON.
+pub async fn read_events(
+    mut response: reqwest::Response,
+    timeout: std::time::Duration,
+    stop: impl Fn(&serde_json::Value) -> bool,
+) -> Vec<serde_json::Value> {
+    let deadline = tokio::time::Instant::now() + timeout;
+    let mut buffer = String::new();
+    let mut events = Vec::new();
+    loop {
+        let chunk = tokio::time::timeout_at(deadline, response.chunk())
+            .await
+            .expect("events arrive in time")
+            .expect("the event stream stays readable")
+            .expect("the event stream stays open");
+        buffer.push_str(&String::from_utf8_lossy(&chunk));
+        while let Some(end) = buffer.find("\n\n") {
+            let message: String = buffer.drain(..end + 2).collect();
+            for line in message.lines() {
+                if let Some(data) = line.strip_prefix("data:") {
+                    let event: serde_json::Value =
+                        serde_json::from_str(data.trim()).expect("event JSON");
+                    let done = stop(&event);
+                    events.push(event);
+                    if done {
+                        return events;
+                    }
+                }
+            }
+        }
+    }
+}

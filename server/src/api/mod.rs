@@ -8,6 +8,7 @@
 
 pub mod audit;
 pub mod auth;
+pub mod engine_problems;
 pub mod json_body;
 pub mod metrics;
 pub mod openapi;
@@ -17,6 +18,7 @@ pub mod routes;
 pub mod store_problems;
 pub mod tokens;
 
+use crate::engine::Engine;
 use crate::store::Store;
 use axum::extract::DefaultBodyLimit;
 use axum::http::StatusCode;
@@ -45,6 +47,8 @@ pub struct ApiSettings {
 
 struct StateInner {
     store: Store,
+    /// The engine; absent in a read-only server (the run-changing routes then answer 503).
+    engine: Option<Engine>,
     http_metrics: HttpMetrics,
     settings: ApiSettings,
     started: std::time::Instant,
@@ -59,11 +63,21 @@ pub struct AppState {
 }
 
 impl AppState {
-    /// A read-only state: every read route works; the run-changing routes come with the engine.
+    /// A read-only state: every read route works; submitting and controlling runs answers 503.
     pub fn new(store: Store, settings: ApiSettings) -> AppState {
+        AppState::build(store, None, settings)
+    }
+
+    /// The full state of the daemon: the engine and its store.
+    pub fn with_engine(engine: Engine, settings: ApiSettings) -> AppState {
+        AppState::build(engine.store().clone(), Some(engine), settings)
+    }
+
+    fn build(store: Store, engine: Option<Engine>, settings: ApiSettings) -> AppState {
         AppState {
             inner: Arc::new(StateInner {
                 store,
+                engine,
                 http_metrics: HttpMetrics::default(),
                 settings,
                 started: std::time::Instant::now(),
@@ -74,6 +88,18 @@ impl AppState {
 
     pub fn store(&self) -> &Store {
         &self.inner.store
+    }
+
+    /// The engine, or 503 when this server was started without one.
+    pub fn engine(&self) -> Result<&Engine, problem::Problem> {
+        self.inner.engine.as_ref().ok_or_else(|| {
+            problem::Problem::new(
+                StatusCode::SERVICE_UNAVAILABLE,
+                "no-engine",
+                "No engine in this server",
+                "this server only reads the database; submit and control runs on the daemon started with `halfwave serve`",
+            )
+        })
     }
 
     pub fn pool(&self) -> &SqlitePool {
@@ -129,4 +155,73 @@ pub fn router(state: AppState) -> Router {
         None => app,
     };
     app.with_state(state)
+}
+
+/// Why the HTTP server stopped with an error.
+#[derive(Debug, thiserror::Error)]
+pub enum ServeError {
+    #[error("cannot listen on {address}: {source}; is another daemon running there, or is the address wrong? (`bind` in the configuration, or HALFWAVE_BIND)")]
+    Bind {
+        address: std::net::SocketAddr,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("the HTTP server failed: {0}")]
+    Io(#[source] std::io::Error),
+}
+
+impl ApiSettings {
+    /// Settings from the environment: `HALFWAVE_CORS_ORIGINS`, a comma-separated list of origins
+    /// allowed to call the API from pages served elsewhere (unset: CORS off).
+    pub fn from_env() -> ApiSettings {
+        let cors_allowed_origins = std::env::var("HALFWAVE_CORS_ORIGINS")
+            .map(|v| {
+                v.split(',')
+                    .map(|o| o.trim().to_string())
+                    .filter(|o| !o.is_empty())
+                    .collect()
+            })
+            .unwrap_or_default();
+        ApiSettings {
+            cors_allowed_origins,
+        }
+    }
+}
+
+/// Serves the API and the dashboard on `config.bind` (loopback unless configured otherwise)
+/// until `shutdown` completes; event streams end then so the server can stop.
+pub async fn serve(
+    config: &crate::config::Config,
+    engine: Engine,
+    shutdown: impl std::future::Future<Output = ()> + Send + 'static,
+) -> Result<(), ServeError> {
+    let listener = tokio::net::TcpListener::bind(config.bind)
+        .await
+        .map_err(|source| ServeError::Bind {
+            address: config.bind,
+            source,
+        })?;
+    tracing::info!(address = %config.bind, "HTTP API and dashboard listening");
+    serve_on(
+        listener,
+        AppState::with_engine(engine, ApiSettings::from_env()),
+        shutdown,
+    )
+    .await
+}
+
+/// Serves `state` on an already bound listener until `shutdown` completes.
+pub async fn serve_on(
+    listener: tokio::net::TcpListener,
+    state: AppState,
+    shutdown: impl std::future::Future<Output = ()> + Send + 'static,
+) -> Result<(), ServeError> {
+    let on_shutdown = state.clone();
+    axum::serve(listener, router(state))
+        .with_graceful_shutdown(async move {
+            shutdown.await;
+            on_shutdown.begin_shutdown();
+        })
+        .await
+        .map_err(ServeError::Io)
 }

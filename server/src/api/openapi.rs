@@ -2,7 +2,9 @@
 //! and the types' `ToSchema` derives. Served at `/api/v1/openapi.json`.
 
 use super::problem::{FieldProblem, Problem};
-use super::routes::{chains, devices, runs, system, tokens as token_routes};
+use super::routes::{
+    benches, chains, devices, events, run_control, runs, system, tokens as token_routes,
+};
 use super::tokens::{CreatedToken, Role, TokenInfo};
 use utoipa::openapi::security::{HttpAuthScheme, HttpBuilder, SecurityScheme};
 use utoipa::{Modify, OpenApi};
@@ -14,6 +16,8 @@ use utoipa::{Modify, OpenApi};
     paths(
         system::health, system::metrics, system::openapi_document,
         token_routes::list_tokens, token_routes::create_token, token_routes::revoke_token,
+        run_control::submit_run, run_control::cancel_run, run_control::resume_run,
+        benches::list_benches, events::events,
         runs::list_runs, runs::get_run, runs::list_points, runs::point_trace,
         runs::point_spectrum_svg, runs::latest_spectrum_svg, runs::modulation_index_svg,
         devices::list_devices, devices::get_device, devices::calibration_history, devices::vpi_at,
@@ -22,6 +26,7 @@ use utoipa::{Modify, OpenApi};
     ),
     components(schemas(
         Problem, FieldProblem, Role, TokenInfo, CreatedToken, token_routes::NewToken, system::Health,
+        run_control::SubmittedRun,
         runs::RunSummary, runs::RunList, runs::RunView, runs::FrequencyResultView, runs::PointView,
         runs::PointList, runs::TraceView,
         devices::DeviceView, devices::Calibration, devices::CalibrationPoint, devices::VpiAnswer,

@@ -5,9 +5,12 @@
 //! (or documented without being served). Paths use the `{name}` template syntax, which is both
 //! axum's and OpenAPI's.
 
+pub mod benches;
 pub mod chains;
 pub mod dashboard;
 pub mod devices;
+pub mod events;
+pub mod run_control;
 pub mod runs;
 pub mod system;
 pub mod tokens;
@@ -55,6 +58,24 @@ pub fn route_table() -> Vec<RouteEntry> {
             "/tokens/{name}",
             delete(tokens::revoke_token),
         ),
+        entry(Method::POST, "/runs", post(run_control::submit_run)),
+        entry(
+            Method::POST,
+            "/runs/{run_id}/cancel",
+            post(run_control::cancel_run),
+        ),
+        entry(
+            Method::POST,
+            "/runs/{run_id}/resume",
+            post(run_control::resume_run),
+        ),
+        entry(Method::GET, "/benches", get(benches::list_benches)),
+        RouteEntry {
+            method: Method::GET,
+            path: "/events",
+            streaming: true,
+            handler: get(events::events),
+        },
         entry(Method::GET, "/runs", get(runs::list_runs)),
         entry(Method::GET, "/runs/{run_id}", get(runs::get_run)),
         entry(Method::GET, "/runs/{run_id}/points", get(runs::list_points)),

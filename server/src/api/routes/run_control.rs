@@ -1,0 +1,104 @@
+//! Changing runs: submit a plan, cancel, resume. Operators only; every call is written to the
+//! audit log with the token's name.
+//!
+//! Submission parses the plan with field-naming errors and hands it to the engine, which checks
+//! every field against the bench and the safety limits and reports all invalid ones at once; a
+//! refused plan never reaches an instrument.
+
+use crate::api::audit;
+use crate::api::auth::Operator;
+use crate::api::json_body::JsonBody;
+use crate::api::problem::Problem;
+use crate::api::AppState;
+use crate::engine::plan::PlanRequest;
+use axum::extract::{Path, State};
+use axum::http::header::LOCATION;
+use axum::http::{HeaderName, StatusCode};
+use axum::Json;
+use serde::{Deserialize, Serialize};
+use utoipa::ToSchema;
+
+/// The answer to a submission.
+#[derive(Debug, Serialize, Deserialize, ToSchema)]
+pub struct SubmittedRun {
+    pub run_id: i64,
+    /// Where to read the run.
+    pub location: String,
+}
+
+/// Queues a calibration run. Every invalid field is reported at once (422); nothing reaches an
+/// instrument unless the whole plan is valid.
+#[utoipa::path(post, path = "/api/v1/runs", tag = "runs", security(("bearer" = [])),
+    request_body(content = Object, description = "A sweep plan: device {serial, model, rf_input_limit_dbm, wavelength_nm}, bench, chain {kind: flat_loss {loss_db} | stored {name, version}}, frequencies {kind: list {values_hz} | linear | logarithmic {start_hz, stop_hz, count}}, levels {kind: list {values_dbm} | ramp {start_dbm, stop_dbm, step_db}}, settle_s, averages, analyzer {span_hz, resolution_bandwidth_hz, points, expected_orders}, reference_trace, carrier_tracking, note"),
+    responses((status = 201, body = SubmittedRun), (status = 401, body = Problem),
+              (status = 403, body = Problem), (status = 413, body = Problem),
+              (status = 422, description = "Invalid fields, each named in `errors`", body = Problem),
+              (status = 503, description = "Read-only server without an engine", body = Problem)))]
+pub async fn submit_run(
+    Operator(caller): Operator,
+    State(state): State<AppState>,
+    JsonBody(plan): JsonBody<PlanRequest>,
+) -> Result<(StatusCode, [(HeaderName, String); 1], Json<SubmittedRun>), Problem> {
+    let bench = plan.bench.clone();
+    let run_id = state.engine()?.submit(plan, &caller.name).await?;
+    audit::record(
+        &state,
+        &caller.name,
+        "run.submit",
+        &format!("run {run_id}"),
+        &format!("bench {bench}"),
+    )
+    .await;
+    let location = format!("/api/v1/runs/{run_id}");
+    Ok((
+        StatusCode::CREATED,
+        [(LOCATION, location.clone())],
+        Json(SubmittedRun { run_id, location }),
+    ))
+}
+
+/// Cancels a queued or running run (the RF output is switched off).
+#[utoipa::path(post, path = "/api/v1/runs/{run_id}/cancel", tag = "runs", security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run id")),
+    responses((status = 202, description = "Cancellation under way"), (status = 401, body = Problem),
+              (status = 403, body = Problem), (status = 404, body = Problem),
+              (status = 409, description = "The run has already ended", body = Problem)))]
+pub async fn cancel_run(
+    Operator(caller): Operator,
+    State(state): State<AppState>,
+    Path(run_id): Path<i64>,
+) -> Result<StatusCode, Problem> {
+    state.engine()?.cancel(run_id, &caller.name).await?;
+    audit::record(
+        &state,
+        &caller.name,
+        "run.cancel",
+        &format!("run {run_id}"),
+        "",
+    )
+    .await;
+    Ok(StatusCode::ACCEPTED)
+}
+
+/// Resumes an interrupted, failed or cancelled run where it stopped (measured points are kept).
+#[utoipa::path(post, path = "/api/v1/runs/{run_id}/resume", tag = "runs", security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run id")),
+    responses((status = 202, description = "Queued again"), (status = 401, body = Problem),
+              (status = 403, body = Problem), (status = 404, body = Problem),
+              (status = 409, description = "The run cannot be resumed in its state", body = Problem)))]
+pub async fn resume_run(
+    Operator(caller): Operator,
+    State(state): State<AppState>,
+    Path(run_id): Path<i64>,
+) -> Result<StatusCode, Problem> {
+    state.engine()?.resume(run_id, &caller.name).await?;
+    audit::record(
+        &state,
+        &caller.name,
+        "run.resume",
+        &format!("run {run_id}"),
+        "",
+    )
+    .await;
+    Ok(StatusCode::ACCEPTED)
+}

@@ -1,0 +1,349 @@
+//! The whole flow over HTTP against the engine on the simulated bench (time factor 0): submit ->
+//! progress events -> completed -> history -> V_pi query; roles allowed and refused; invalid plans
+//! refused with every field named and nothing sent to the instruments.
+//!
+//! The reference is the simulated bench's scenario: its modulator has a known V_pi at every
+//! frequency, and the V_pi the API reports (recovered from spectra by the Bessel-sideband
+//! analysis, Jacobi-Anger expansion per NIST DLMF 10.12) must agree with it.
+
+mod api_support;
+
+use api_support::{problem, read_events, spawn_app_with_engine, true_chain_upload};
+use halfwave::api::tokens::Role;
+use halfwave_drivers::sim::Role as Instrument;
+use std::time::Duration;
+
+const FREQUENCIES_HZ: [f64; 3] = [1e9, 5e9, 10e9];
+
+fn plan(chain: &str) -> serde_json::Value {
+    serde_json::json!({
+        "device": {"serial": "EG-PM-0042", "model": "simulated phase modulator", "rf_input_limit_dbm": 27.0},
+        "bench": "sim-bench",
+        "chain": {"kind": "stored", "name": chain},
+        "frequencies": {"kind": "list", "values_hz": FREQUENCIES_HZ},
+        "levels": {"kind": "ramp", "start_dbm": 0.0, "stop_dbm": 20.0, "step_db": 4.0},
+        "settle_s": 0.0
+    })
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn submit_follow_complete_history_and_v_pi() {
+    let bench = spawn_app_with_engine(0.0).await;
+    let app = &bench.app;
+    let admin = app.token("admin-1", Role::Admin).await;
+    let operator = app.token("lab-b", Role::Operator).await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+
+    let chain = app
+        .post_json(
+            "/api/v1/chain-calibrations",
+            Some(&admin),
+            &true_chain_upload(&bench.sim, "sim chain", &FREQUENCIES_HZ),
+        )
+        .await;
+    assert_eq!(chain.status(), 201);
+
+    // Benches: the simulated one, idle.
+    let benches: serde_json::Value = app
+        .get("/api/v1/benches", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(benches[0]["name"], "sim-bench");
+
+    // Watch the events (EventSource style: token in the query) before submitting.
+    let stream = app
+        .client
+        .get(app.url(&format!("/api/v1/events?access_token={viewer}")))
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(stream.status(), 200);
+    assert!(stream.headers()["content-type"]
+        .to_str()
+        .unwrap()
+        .starts_with("text/event-stream"));
+
+    let submitted = app
+        .post_json("/api/v1/runs", Some(&operator), &plan("sim chain"))
+        .await;
+    assert_eq!(submitted.status(), 201);
+    let submitted: serde_json::Value = submitted.json().await.unwrap();
+    let run_id = submitted["run_id"].as_i64().unwrap();
+
+    let events = read_events(stream, Duration::from_secs(300), |e| {
+        e["event"] == "finished" && e["run_id"] == run_id
+    })
+    .await;
+    let points: Vec<&serde_json::Value> = events
+        .iter()
+        .filter(|e| e["event"] == "point" && e["run_id"] == run_id)
+        .collect();
+    let failed = events
+        .iter()
+        .filter(|e| e["event"] == "point_failed" && e["run_id"] == run_id)
+        .count();
+    let total = 3 * 6; // 3 frequencies x levels 0, 4, ..., 20 dBm
+                       // Every grid point is reported once, measured or (a line lost in the floor) failed.
+    assert_eq!(points.len() + failed, total);
+    assert!(
+        points.len() >= total - 3,
+        "at most one weak point per frequency may fail"
+    );
+    let completed: Vec<i64> = points
+        .iter()
+        .map(|p| p["completed_points"].as_i64().unwrap())
+        .collect();
+    assert!(
+        completed.windows(2).all(|w| w[1] > w[0]),
+        "progress only moves forward"
+    );
+    assert!(points.iter().all(|p| p["total_points"] == total));
+    let frequencies = events
+        .iter()
+        .filter(|e| e["event"] == "frequency" && e["run_id"] == run_id)
+        .count();
+    assert_eq!(frequencies, 3);
+    assert_eq!(events.last().unwrap()["state"], "completed");
+
+    // The run, its history and V_pi from the API.
+    let run: serde_json::Value = app
+        .get(&format!("/api/v1/runs/{run_id}"), Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(run["state"], "completed");
+    assert_eq!(run["submitted_by"], "lab-b");
+    assert_eq!(run["results"].as_array().unwrap().len(), 3);
+    let history: serde_json::Value = app
+        .get("/api/v1/devices/EG-PM-0042/calibrations", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(history[0]["run_id"], run_id);
+    for f in [5e9, 7.5e9] {
+        let answer: serde_json::Value = app
+            .get(
+                &format!("/api/v1/devices/EG-PM-0042/v-pi?frequency_hz={f}"),
+                Some(&viewer),
+            )
+            .await
+            .json()
+            .await
+            .unwrap();
+        let measured = answer["v_pi_volts"].as_f64().unwrap();
+        let truth = bench.sim.v_pi_at(halfwave::units::Hz(f)).0;
+        // Between measured frequencies the interpolation adds its own error on a curved V_pi;
+        // 3 % covers that and the measurement (the scenario's curve is gentle).
+        assert!(
+            (measured - truth).abs() / truth < 0.03,
+            "V_pi at {f} Hz: {measured} V vs {truth} V"
+        );
+        assert!(answer["v_pi_uncertainty_volts"].as_f64().unwrap() > 0.0);
+    }
+
+    // The submission is in the audit log under the token's name; the RF output is off.
+    let audit = app.store().audit_log(100, None).await.unwrap();
+    assert!(audit
+        .iter()
+        .any(|e| e.actor == "lab-b" && e.action == "run.submit"));
+    assert!(!bench.sim.rf_output_on());
+
+    // A finished run cannot be cancelled or resumed: 409; an unknown one: 404.
+    let cancel = app
+        .post_json(
+            &format!("/api/v1/runs/{run_id}/cancel"),
+            Some(&operator),
+            &serde_json::json!({}),
+        )
+        .await;
+    assert_eq!(cancel.status(), 409);
+    assert_eq!(problem(cancel).await["type"], "/problems/conflict");
+    let resume = app
+        .post_json(
+            &format!("/api/v1/runs/{run_id}/resume"),
+            Some(&operator),
+            &serde_json::json!({}),
+        )
+        .await;
+    assert_eq!(resume.status(), 409);
+    let missing = app
+        .post_json(
+            "/api/v1/runs/987654/cancel",
+            Some(&operator),
+            &serde_json::json!({}),
+        )
+        .await;
+    assert_eq!(missing.status(), 404);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn roles_are_enforced_on_every_kind_of_call() {
+    let bench = spawn_app_with_engine(0.0).await;
+    let app = &bench.app;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let operator = app.token("operator-1", Role::Operator).await;
+    let admin = app.token("admin-1", Role::Admin).await;
+    let chain = true_chain_upload(&bench.sim, "c", &FREQUENCIES_HZ);
+
+    // Viewers read but cannot submit, cancel, resume, upload or manage tokens.
+    assert_eq!(app.get("/api/v1/runs", Some(&viewer)).await.status(), 200);
+    assert_eq!(
+        app.get("/api/v1/benches", Some(&viewer)).await.status(),
+        200
+    );
+    assert_eq!(
+        app.post_json("/api/v1/runs", Some(&viewer), &plan("c"))
+            .await
+            .status(),
+        403
+    );
+    assert_eq!(
+        app.post_json(
+            "/api/v1/runs/1/cancel",
+            Some(&viewer),
+            &serde_json::json!({})
+        )
+        .await
+        .status(),
+        403
+    );
+    assert_eq!(
+        app.post_json(
+            "/api/v1/runs/1/resume",
+            Some(&viewer),
+            &serde_json::json!({})
+        )
+        .await
+        .status(),
+        403
+    );
+    assert_eq!(
+        app.post_json("/api/v1/chain-calibrations", Some(&viewer), &chain)
+            .await
+            .status(),
+        403
+    );
+    // Operators run sweeps but cannot upload calibrations or manage tokens.
+    assert_eq!(
+        app.post_json("/api/v1/chain-calibrations", Some(&operator), &chain)
+            .await
+            .status(),
+        403
+    );
+    assert_eq!(
+        app.get("/api/v1/tokens", Some(&operator)).await.status(),
+        403
+    );
+    // Admins can do all of it.
+    assert_eq!(
+        app.post_json("/api/v1/chain-calibrations", Some(&admin), &chain)
+            .await
+            .status(),
+        201
+    );
+    assert_eq!(
+        app.post_json("/api/v1/runs", Some(&admin), &plan("c"))
+            .await
+            .status(),
+        201
+    );
+    // No token, or a made-up one: 401 everywhere, the event stream included.
+    assert_eq!(
+        app.post_json("/api/v1/runs", None, &plan("c"))
+            .await
+            .status(),
+        401
+    );
+    assert_eq!(app.get("/api/v1/events", None).await.status(), 401);
+    assert_eq!(
+        app.get("/api/v1/events?access_token=hwt_forged", None)
+            .await
+            .status(),
+        401
+    );
+    // The query-parameter token is accepted on the event stream only.
+    assert_eq!(
+        app.get(&format!("/api/v1/runs?access_token={viewer}"), None)
+            .await
+            .status(),
+        401
+    );
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn invalid_plans_are_refused_with_fields_named_and_nothing_sent() {
+    let bench = spawn_app_with_engine(0.0).await;
+    let app = &bench.app;
+    let operator = app.token("operator-1", Role::Operator).await;
+    // Start-up switched the RF off (logged); from here on nothing may reach the instruments.
+    bench.sim.clear_command_log(Instrument::RfSource);
+    bench.sim.clear_command_log(Instrument::Analyzer);
+
+    let malformed = app
+        .post_raw(
+            "/api/v1/runs",
+            Some(&operator),
+            "application/json",
+            "{\"device\": {".into(),
+        )
+        .await;
+    assert_eq!(malformed.status(), 422);
+    assert_eq!(problem(malformed).await["errors"][0]["field"], "body");
+
+    let mut unknown = plan("c");
+    unknown["levels"]["max_power_w"] = serde_json::json!(2);
+    let body = problem(
+        app.post_json("/api/v1/runs", Some(&operator), &unknown)
+            .await,
+    )
+    .await;
+    assert_eq!(body["status"], 422);
+    assert!(
+        body["errors"][0]["field"]
+            .as_str()
+            .unwrap()
+            .starts_with("levels"),
+        "{body}"
+    );
+
+    // Levels past the safety limit and an absurd frequency, in one plan: both named at once.
+    let mut dangerous = plan("c");
+    dangerous["chain"] = serde_json::json!({"kind": "flat_loss", "loss_db": 1.0});
+    dangerous["levels"] = serde_json::json!({"kind": "list", "values_dbm": [0.0, 10.0, 40.0]});
+    dangerous["frequencies"] = serde_json::json!({"kind": "list", "values_hz": [1e9, 5e15]});
+    let response = app
+        .post_json("/api/v1/runs", Some(&operator), &dangerous)
+        .await;
+    assert_eq!(response.status(), 422);
+    let body = problem(response).await;
+    let fields: Vec<String> = body["errors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["field"].as_str().unwrap().to_string())
+        .collect();
+    assert!(fields.iter().any(|f| f.starts_with("levels")), "{fields:?}");
+    assert!(
+        fields.iter().any(|f| f.starts_with("frequencies")),
+        "{fields:?}"
+    );
+
+    assert!(
+        bench.sim.command_log(Instrument::RfSource).is_empty(),
+        "{:?}",
+        bench.sim.command_log(Instrument::RfSource)
+    );
+    assert!(bench.sim.command_log(Instrument::Analyzer).is_empty());
+    assert!(!bench.sim.overdriven());
+    let runs: serde_json::Value = app
+        .get("/api/v1/runs", Some(&operator))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(runs["total"], 0);
+}
