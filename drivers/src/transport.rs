@@ -272,6 +272,35 @@ impl ScpiTransport {
             .unwrap_or_default()
     }
 
+    /// Before a command: reads without waiting whatever the socket already holds. Bytes are
+    /// replies nobody asked for (discarded with a warning, so they cannot be taken for the next
+    /// answer); end of stream means the instrument closed an idle connection, which is dropped so
+    /// that the command goes out on a fresh one instead of failing.
+    fn drain_pending(&mut self) {
+        let Some(stream) = self.stream.as_ref() else {
+            return;
+        };
+        let mut scratch = [0u8; 1024];
+        loop {
+            match stream.try_read(&mut scratch) {
+                Ok(0) => {
+                    tracing::debug!(resource = %self.name, "the instrument closed the idle connection; reconnecting");
+                    self.disconnect();
+                    return;
+                }
+                Ok(n) => {
+                    tracing::warn!(resource = %self.name, unexpected = %excerpt(scratch.get(..n).unwrap_or_default()), "discarding bytes the instrument sent without being asked");
+                }
+                Err(e) if e.kind() == io::ErrorKind::WouldBlock => return,
+                Err(e) => {
+                    tracing::debug!(resource = %self.name, error = %e, "the idle connection failed; reconnecting");
+                    self.disconnect();
+                    return;
+                }
+            }
+        }
+    }
+
     /// Writes `command` and, for a query, reads one reply. Returns the reply's range in the read
     /// buffer. On failure the socket is dropped so the next operation starts clean.
     async fn run(
@@ -280,6 +309,7 @@ impl ScpiTransport {
         timeout: Duration,
         read_reply: bool,
     ) -> Result<std::ops::Range<usize>, InstrumentError> {
+        self.drain_pending();
         self.ensure_connected().await?;
         let started = Instant::now();
         self.write_buf.clear();

@@ -144,9 +144,16 @@ async fn nobody_listening_is_a_connection_error_after_the_retries() {
         l.local_addr().unwrap().port()
     };
     let resource = Resource::parse(&format!("TCPIP::127.0.0.1::{port}::SOCKET")).unwrap();
+    let started = Instant::now();
     let err = ScpiTransport::connect(resource, quick_config())
         .await
         .unwrap_err();
+    // Three attempts with a backoff of 10 ms, then 20 ms, between them.
+    assert!(
+        started.elapsed() >= Duration::from_millis(30),
+        "{:?}",
+        started.elapsed()
+    );
     match err {
         InstrumentError::Connection { operation, .. } => {
             assert!(operation.contains("3 attempts"), "{operation}")
@@ -166,4 +173,37 @@ async fn an_empty_read_terminator_is_refused() {
         ScpiTransport::unconnected(resource, config),
         Err(InstrumentError::BadResource { .. })
     ));
+}
+
+#[tokio::test]
+async fn an_idle_connection_closed_by_the_instrument_is_replaced_before_the_next_command() {
+    // An instrument that answers one query per connection and then hangs up.
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+    let port = listener.local_addr().unwrap().port();
+    tokio::spawn(async move {
+        use tokio::io::{AsyncBufReadExt, AsyncWriteExt, BufReader};
+        while let Ok((socket, _)) = listener.accept().await {
+            let (read, mut write) = socket.into_split();
+            let mut lines = BufReader::new(read).lines();
+            if let Ok(Some(_)) = lines.next_line().await {
+                let _ = write.write_all(b"1\n").await;
+            }
+        }
+    });
+    let mut t = connect(&format!("TCPIP::127.0.0.1::{port}::SOCKET")).await;
+    assert_eq!(t.query("*OPC?").await.unwrap(), "1");
+    // Let the close reach this side.
+    tokio::time::sleep(Duration::from_millis(50)).await;
+    assert_eq!(t.query("*OPC?").await.unwrap(), "1");
+    assert_eq!(t.connection_count(), 2);
+}
+
+#[tokio::test]
+async fn unrequested_bytes_are_not_taken_for_the_next_reply() {
+    // The instrument answers the first query twice; the second copy must not answer query two.
+    let addr = scripted_server(vec![b"1\n1\n".to_vec(), b"2\n".to_vec()]).await;
+    let mut t = connect(&format!("TCPIP::127.0.0.1::{}::SOCKET", addr.port())).await;
+    assert_eq!(t.query("Q1?").await.unwrap(), "1");
+    tokio::time::sleep(Duration::from_millis(20)).await;
+    assert_eq!(t.query("Q2?").await.unwrap(), "2");
 }

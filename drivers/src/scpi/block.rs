@@ -94,7 +94,9 @@ fn definite_header(bytes: &[u8]) -> Result<Option<DefiniteHeader>, ParseError> {
 ///
 /// A reply starting with `#` is read as a block: for a definite block the terminator is looked for
 /// only after the announced byte count, for an indefinite block (`#0`) the reply ends at the first
-/// LF (IEEE 488.2 ends it with NL^END). Any other reply ends at the first terminator. Searching
+/// LF. IEEE 488.2 ends an indefinite block with NL together with the END message; a raw socket has
+/// no END, so binary data that contains an LF byte cannot travel in an indefinite block over TCP
+/// (profiles should select definite blocks, which every REAL format uses). Any other reply ends at the first terminator. Searching
 /// starts at `search_from` (bytes already searched without success), so reading a reply in pieces
 /// stays linear. Returns `Ok(None)` when more bytes are needed, and an error for a malformed
 /// block header, after which the stream is out of step and the connection should be reset.
