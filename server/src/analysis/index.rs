@@ -227,6 +227,13 @@ impl FitData {
         self.all.profile(&values[..count])
     }
 
+    fn detected_profile_at(&self, table: &BesselTable, beta: f64) -> (f64, f64, f64) {
+        let mut values = [0.0; MAX_ORDER + 1];
+        let count = self.detected.weight.len().min(MAX_ORDER + 1);
+        table.values_into(beta, &mut values[..count]);
+        self.detected.profile(&values[..count])
+    }
+
     /// Root-mean-square dB difference between the lines and the comb of `beta` (A, F fitted).
     pub fn residual_db(&self, beta: f64) -> f64 {
         let table = BesselTable::get();
@@ -283,18 +290,64 @@ pub fn least_squares(data: &FitData) -> Option<IndexEstimate> {
             )
         })
         .min_by(|a, b| a.1.total_cmp(&b.1))?;
-    let (beta, s_min) = golden_section(residual, (coarse - 4e-4).max(1e-4), coarse + 4e-4, 1e-8);
+    let (first, first_s) = golden_section(residual, (coarse - 4e-4).max(1e-4), coarse + 4e-4, 1e-8);
+    // A weak line next to a zero of its J_n has the same power on both sides of the zero, which
+    // makes two narrow valleys a few thousandths apart; look at the mirror image of the minimum
+    // about every such zero and keep the deeper valley.
+    let mirrors = mirror_candidates(data, table, first);
+    let (beta, s_min) = mirrors
+        .iter()
+        .map(|m| golden_section(residual, (m - 4e-4).max(1e-4), m + 4e-4, 1e-8))
+        .fold(
+            (first, first_s),
+            |best, c| if c.1 < best.1 { c } else { best },
+        );
     let h = 1e-4 * beta.max(1.0);
     let curvature = (data.profile_at(table, beta + h).0 - 2.0 * s_min
         + data.profile_at(table, (beta - h).max(0.0)).0)
         / (h * h);
     let dof = data.observations.saturating_sub(3).max(1) as f64;
     let variance = s_min.max(0.0) / dof;
-    let uncertainty = if curvature > 0.0 {
+    let from_curvature = if curvature > 0.0 {
         (2.0 * variance / curvature).sqrt()
     } else {
         f64::INFINITY
     };
+    // Where a line sits at a Bessel zero its term in the residual is quartic, not quadratic, in
+    // beta and the curvature overstates the precision; the profile interval (where the residual
+    // has risen by one scaled unit, s^2) holds either way. The larger of the two is reported.
+    let start = if from_curvature.is_finite() {
+        from_curvature
+    } else {
+        1e-3
+    };
+    let upper = profile_half_width(residual, beta, s_min, variance, start, 1.0);
+    let lower = profile_half_width(residual, beta, s_min, variance, start, -1.0);
+    // The detected lines alone: at a Bessel zero of a used order this is the honest figure (the
+    // vanished line pins beta only through a quartic term), elsewhere it is close to the full one.
+    let detected_only = |b: f64| data.detected_profile_at(table, b).0;
+    let detected_curvature = (detected_only(beta + h) - 2.0 * detected_only(beta)
+        + detected_only((beta - h).max(0.0)))
+        / (h * h);
+    let from_detected = if detected_curvature > 0.0 {
+        (2.0 * variance / detected_curvature).sqrt()
+    } else {
+        0.0
+    };
+    // A second valley that the data hardly tell apart (within two standard units) widens the
+    // uncertainty to cover both.
+    let ambiguity = mirrors
+        .iter()
+        .chain(std::iter::once(&first))
+        .map(|m| golden_section(residual, (m - 4e-4).max(1e-4), m + 4e-4, 1e-8))
+        .filter(|(b, sv)| (b - beta).abs() > 1e-6 && sv - s_min < 4.0 * variance)
+        .map(|(b, _)| 0.5 * (b - beta).abs())
+        .fold(0.0, f64::max);
+    let uncertainty = from_curvature
+        .min(f64::MAX)
+        .max(0.5 * (upper + lower))
+        .max(from_detected)
+        .max(ambiguity);
     uncertainty.is_finite().then(|| IndexEstimate {
         method: IndexMethod::LeastSquares,
         value: beta,
@@ -302,6 +355,76 @@ pub fn least_squares(data: &FitData) -> Option<IndexEstimate> {
         residual: data.residual_db(beta),
         orders_used: data.orders(),
     })
+}
+
+/// Mirror images of `beta` about the zeros of the fitted orders' J_n that lie within 0.02 of it.
+fn mirror_candidates(data: &FitData, table: &BesselTable, beta: f64) -> Vec<f64> {
+    const REACH: f64 = 0.02;
+    let count = data.all.weight.len().min(MAX_ORDER + 1);
+    let (mut below, mut above) = ([0.0; MAX_ORDER + 1], [0.0; MAX_ORDER + 1]);
+    table.values_into((beta - REACH).max(0.0), &mut below[..count]);
+    table.values_into(beta + REACH, &mut above[..count]);
+    let mut mirrors = Vec::new();
+    for n in 0..count {
+        if below[n] * above[n] >= 0.0 {
+            continue;
+        }
+        let (mut lo, mut hi) = ((beta - REACH).max(0.0), beta + REACH);
+        let sign_lo = below[n].signum();
+        for _ in 0..40 {
+            let mid = 0.5 * (lo + hi);
+            if table.value_and_slope(n as i32, mid).0.signum() == sign_lo {
+                lo = mid;
+            } else {
+                hi = mid;
+            }
+        }
+        let zero = 0.5 * (lo + hi);
+        let mirror = 2.0 * zero - beta;
+        if (mirror - beta).abs() > 1e-6 && mirror > 0.0 {
+            mirrors.push(mirror);
+        }
+    }
+    mirrors
+}
+
+/// Distance from `beta` in `direction` (+1 or -1) at which `residual` exceeds `s_min + rise`:
+/// doubling from `start` to bracket it, then a dozen bisections (10 % is plenty for an
+/// uncertainty). Stops at beta = 0 and past the fit range.
+fn profile_half_width(
+    residual: impl Fn(f64) -> f64,
+    beta: f64,
+    s_min: f64,
+    rise: f64,
+    start: f64,
+    direction: f64,
+) -> f64 {
+    let rises = |d: f64| residual(beta + direction * d) - s_min >= rise;
+    let limit = if direction < 0.0 {
+        beta
+    } else {
+        FIT_BETA_MAX + 1.0 - beta
+    };
+    let (mut lo, mut hi) = (0.0, start.max(1e-9));
+    loop {
+        if hi >= limit {
+            return limit.max(lo);
+        }
+        if rises(hi) {
+            break;
+        }
+        lo = hi;
+        hi *= 2.0;
+    }
+    for _ in 0..12 {
+        let mid = 0.5 * (lo + hi);
+        if rises(mid) {
+            hi = mid;
+        } else {
+            lo = mid;
+        }
+    }
+    hi
 }
 
 /// Golden-section search for the minimum of `f` on [lo, hi] down to an interval of `tolerance`;

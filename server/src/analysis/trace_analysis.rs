@@ -249,6 +249,9 @@ mod tests {
             (2.5, 0.33),
             (2.7, -0.45),
             (J1_FIRST_ZERO, 0.08),
+            // Just off the zero of J_1: the first sidebands are weak and equally weak at
+            // 3.8334, the mirror image about the zero; the other orders must decide.
+            (3.83, -0.21),
             (5.0, -0.41),
             (6.5, 0.27),
             (8.0, 0.5),
