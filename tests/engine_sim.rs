@@ -210,3 +210,68 @@ async fn cancel_leaves_the_output_off_within_a_second() {
     assert!(!sim.rf_output_on());
     engine.shutdown().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("h.db");
+    let store = Store::open(db.to_str().unwrap()).await.unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let sim = SimBench::new(scenario.clone(), 11).with_time_factor(0.2);
+    let chain = upload_true_chain(&store, &scenario).await;
+    let engine = Engine::start_with(
+        Limits::default(),
+        store.clone(),
+        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
+    )
+    .await
+    .unwrap();
+    let mut events = engine.subscribe();
+    let run_id = engine.submit(plan(&chain), "test").await.unwrap();
+    // Let a dozen points be committed, then stop the daemon's engine as SIGTERM would.
+    let mut seen = 0;
+    while seen < 12 {
+        if let Ok(Ok(ProgressEvent::Point { .. })) =
+            tokio::time::timeout(Duration::from_secs(60), events.recv()).await
+        {
+            seen += 1;
+        }
+    }
+    engine.shutdown().await;
+    assert!(!sim.rf_output_on(), "RF must be off after shutdown");
+    let run = store.run(run_id).await.unwrap();
+    assert_eq!(run.state, RunState::Interrupted);
+    let before = store.points_of_run(run_id).await.unwrap().len();
+    assert!(
+        before >= 12 && before < FREQUENCIES_HZ.len() * 9,
+        "{before} points"
+    );
+
+    // A new engine on the same database and bench: the run is still interrupted; resume it.
+    sim.set_time_factor(0.0);
+    let engine = Engine::start_with(
+        Limits::default(),
+        Store::open(db.to_str().unwrap()).await.unwrap(),
+        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
+    )
+    .await
+    .unwrap();
+    let mut events = engine.subscribe();
+    engine.resume(run_id, "test").await.unwrap();
+    assert_eq!(wait_for_end(&mut events, run_id).await, "completed");
+    let points = store.points_of_run(run_id).await.unwrap();
+    assert_eq!(
+        points.len(),
+        FREQUENCIES_HZ.len() * 9,
+        "same count as an uninterrupted run"
+    );
+    let results = store.frequency_results(run_id).await.unwrap();
+    assert_eq!(results.len(), FREQUENCIES_HZ.len());
+    for r in &results {
+        let truth = scenario.v_pi_at(Hz(r.frequency_hz)).0;
+        assert!(((r.v_pi_volts - truth) / truth).abs() < 0.02);
+    }
+    // A completed run cannot be resumed again.
+    assert!(engine.resume(run_id, "test").await.is_err());
+    engine.shutdown().await;
+}

@@ -56,7 +56,7 @@ pub enum EngineError {
     RunNotFound(i64),
     #[error("run {run_id} is {state}; only queued or running runs can be cancelled")]
     NotCancellable { run_id: i64, state: String },
-    #[error("run {run_id} is {state}; only interrupted, failed or cancelled runs can be resumed")]
+    #[error("run {run_id} is {state}; only interrupted runs can be resumed")]
     NotResumable { run_id: i64, state: String },
     #[error("run {run_id} cannot be resumed: {reason}")]
     ResumeRefused { run_id: i64, reason: String },
@@ -332,7 +332,9 @@ impl Engine {
     pub async fn cancel(&self, run_id: i64, by: &str) -> Result<(), EngineError> {
         let run = self.run_record(run_id).await?;
         let state = run.state;
-        if !matches!(state, RunState::Queued | RunState::Running) {
+        if !matches!(state, RunState::Queued | RunState::Running)
+            && !self.is_queued_or_active(run_id)
+        {
             return Err(EngineError::NotCancellable {
                 run_id,
                 state: state.as_str().into(),
@@ -366,23 +368,23 @@ impl Engine {
         Ok(())
     }
 
-    /// Queues an interrupted, failed or cancelled run again; it continues from its first missing
-    /// point with the same plan and chain calibration.
+    /// Queues an interrupted run again; it continues from its first missing point with the same
+    /// plan and chain calibration.
     pub async fn resume(&self, run_id: i64, by: &str) -> Result<(), EngineError> {
         let run = self.run_record(run_id).await?;
-        if !matches!(
-            run.state,
-            RunState::Interrupted | RunState::Failed | RunState::Cancelled
-        ) {
+        if run.state != RunState::Interrupted {
             return Err(EngineError::NotResumable {
                 run_id,
                 state: run.state.as_str().into(),
             });
         }
-        self.inner
-            .store
-            .transition_run(run_id, RunState::Queued, Some(&format!("resumed by {by}")))
-            .await?;
+        if self.is_queued_or_active(run_id) {
+            return Err(EngineError::NotResumable {
+                run_id,
+                state: "already queued for resumption".into(),
+            });
+        }
+        // The run stays `interrupted` until its bench's worker moves it to `running`.
         self.inner
             .store
             .append_audit(by, "resume", &format!("run:{run_id}"), "")
@@ -463,6 +465,14 @@ impl Engine {
             .collect();
         let chain = DriveChain::new(points).map_err(|e| invalid(e.to_string()))?;
         Ok((chain, calibration.id))
+    }
+
+    fn is_queued_or_active(&self, run_id: i64) -> bool {
+        self.inner
+            .cancels
+            .lock()
+            .map(|m| m.contains_key(&run_id))
+            .unwrap_or(false)
     }
 
     async fn run_record(&self, run_id: i64) -> Result<RunRecord, EngineError> {
