@@ -254,6 +254,17 @@ async fn analyzer_session_with_ascii_and_both_byte_orders() {
     c.send("FORM REAL,16").await;
     assert!(c.query("SYST:ERR?").await.starts_with("-224,"));
     let _ = DataFormat::Real64;
+
+    // In continuous mode every trace query returns a fresh sweep (new noise, the laser drifts).
+    c.send("INIT:CONT ON;:FORM ASC").await;
+    assert_eq!(c.query("INIT:CONT?").await, "1");
+    let first = c.query("TRAC? TRACE1").await;
+    let second = c.query("TRAC? TRACE1").await;
+    assert_ne!(first, second);
+    // In single mode the same sweep is returned until the next INIT.
+    c.send("INIT:CONT OFF;:INIT").await;
+    let third = c.query("TRAC?").await;
+    assert_eq!(third, c.query("TRAC?").await);
 }
 
 #[tokio::test]

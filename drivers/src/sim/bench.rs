@@ -33,10 +33,19 @@ impl Role {
 }
 
 /// One simulated bench (see the module docs of [`crate::sim`]).
-#[derive(Debug, Clone)]
+#[derive(Clone)]
 pub struct SimBench {
     scenario: Arc<Scenario>,
     state: Arc<Mutex<BenchState>>,
+}
+
+/// Short on purpose: the state holds whole traces, which have no place in a log line.
+impl std::fmt::Debug for SimBench {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("SimBench")
+            .field("scenario", &self.scenario.name)
+            .finish_non_exhaustive()
+    }
 }
 
 impl SimBench {
