@@ -26,7 +26,6 @@ async fn migrations_apply_to_a_fresh_file_and_pragmas_are_set() {
         "devices",
         "frequency_results",
         "instruments",
-        "point_traces",
         "points",
         "reference_traces",
         "runs",
@@ -69,6 +68,8 @@ async fn migrations_apply_to_a_fresh_file_and_pragmas_are_set() {
         })
         .count();
     assert_eq!(applied, i64::try_from(migration_files).unwrap());
+    // Migration 0002 moved the point trace into the point row.
+    assert!(!tables.iter().any(|t| t == "point_traces"));
 }
 
 #[tokio::test]
@@ -187,12 +188,13 @@ async fn a_point_cannot_be_stored_twice() {
         ),
         "{err}"
     );
-    // The failed commit left neither a second point nor an orphan trace.
+    // The failed commit left no second point (and so no second trace).
     assert_eq!(store.points_of_run(run.id).await.unwrap().len(), 1);
-    let traces: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM point_traces")
-        .fetch_one(store.pool())
-        .await
-        .unwrap();
+    let traces: i64 =
+        sqlx::query_scalar("SELECT COUNT(*) FROM points WHERE trace_encoded IS NOT NULL")
+            .fetch_one(store.pool())
+            .await
+            .unwrap();
     assert_eq!(traces, 1);
 }
 

@@ -1,8 +1,8 @@
 //! Points, their traces, RF-off reference traces and per-frequency V_pi results.
 //!
-//! [`Store::commit_point`] is the engine's hot path: the trace is compressed before the
-//! transaction opens, then the point row and its trace row are written in one short transaction,
-//! so a killed daemon loses at most the point in flight and the write lock is held for
+//! [`Store::commit_point`] is the engine's hot path: the trace is compressed first, then the point
+//! and its trace are written by one INSERT (atomic by itself, one round trip to the database
+//! thread), so a killed daemon loses at most the point in flight and the write lock is held for
 //! microseconds. The UNIQUE (run, frequency index, level index) key makes a second commit of the
 //! same grid position fail with [`StoreError::DuplicatePoint`] instead of storing it twice.
 
@@ -46,16 +46,13 @@ impl Store {
         let analysis = super::json_text(&point.analysis);
         let now = now_unix_ms();
 
-        let mut tx = self
-            .pool
-            .begin()
-            .await
-            .map_err(StoreError::database("starting a point commit"))?;
+        // One statement, atomic by itself: the point and its trace arrive together or not at all.
         let point_id: i64 = sqlx::query_scalar(
             "INSERT INTO points (run_id, frequency_index, level_index, frequency_hz, generator_level_dbm, \
                  level_at_modulator_dbm, v_peak_volts, modulation_index, modulation_index_uncertainty, \
-                 asymmetry_db, line_table_json, analysis_json, measured_at_unix_ms) \
-             VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13) RETURNING id",
+                 asymmetry_db, line_table_json, analysis_json, measured_at_unix_ms, \
+                 trace_point_count, trace_encoded) \
+             VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15) RETURNING id",
         )
         .bind(point.run_id)
         .bind(i64::from(point.frequency_index))
@@ -70,7 +67,9 @@ impl Store {
         .bind(line_table)
         .bind(analysis)
         .bind(now)
-        .fetch_one(&mut *tx)
+        .bind(point_count)
+        .bind(encoded)
+        .fetch_one(&self.pool)
         .await
         .map_err(|source| {
             if is_unique_violation(&source) {
@@ -91,18 +90,6 @@ impl Store {
                 }
             }
         })?;
-        sqlx::query(
-            "INSERT INTO point_traces (point_id, point_count, encoded) VALUES ($1, $2, $3)",
-        )
-        .bind(point_id)
-        .bind(point_count)
-        .bind(encoded)
-        .execute(&mut *tx)
-        .await
-        .map_err(StoreError::database("storing a point's trace"))?;
-        tx.commit()
-            .await
-            .map_err(StoreError::database("committing a point"))?;
         Ok(point_id)
     }
 
@@ -122,16 +109,20 @@ impl Store {
 
     /// The trace of a point, decoded.
     pub async fn point_trace(&self, point_id: i64) -> Result<Trace, StoreError> {
-        let encoded: Vec<u8> =
-            sqlx::query_scalar("SELECT encoded FROM point_traces WHERE point_id = $1")
+        let encoded: Option<Vec<u8>> =
+            sqlx::query_scalar("SELECT trace_encoded FROM points WHERE id = $1")
                 .bind(point_id)
                 .fetch_optional(&self.pool)
                 .await
                 .map_err(StoreError::database("reading a point's trace"))?
                 .ok_or_else(|| StoreError::NotFound {
-                    what: "trace for point",
+                    what: "point with id",
                     key: point_id.to_string(),
                 })?;
+        let encoded = encoded.ok_or_else(|| StoreError::NotFound {
+            what: "trace for point",
+            key: point_id.to_string(),
+        })?;
         Ok(trace_codec::decode(&encoded)?)
     }
 

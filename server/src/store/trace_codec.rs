@@ -1,5 +1,5 @@
-//! Compact binary form of an analyzer [`Trace`], for the `point_traces` and `reference_traces`
-//! tables.
+//! Compact binary form of an analyzer [`Trace`], for `points.trace_encoded` and the
+//! `reference_traces` table.
 //!
 //! A run keeps every trace it took (tens of thousands of 10,001-point sweeps a night), so the form
 //! is built to be small and quick to write within the engine's per-point budget:
