@@ -285,3 +285,58 @@ async fn engine_writes_and_api_writes_interleave_without_lock_errors() {
         .unwrap();
     assert_eq!(cancelled.total, 30);
 }
+
+#[tokio::test]
+async fn migration_0002_moves_existing_point_traces_into_the_point_rows() {
+    // A database made by the first schema alone, holding one point with its trace in the old
+    // `point_traces` table, must open with the trace intact.
+    let dir = TempDir::new("migrate-0002");
+    let first_only = dir.0.join("first-migration-only");
+    std::fs::create_dir_all(&first_only).unwrap();
+    let migrations = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../migrations");
+    std::fs::copy(
+        migrations.join("0001_initial_schema.sql"),
+        first_only.join("0001_initial_schema.sql"),
+    )
+    .unwrap();
+    let path = dir.file("old.db");
+    let trace = small_trace();
+    {
+        let options = sqlx::sqlite::SqliteConnectOptions::new()
+            .filename(&path)
+            .create_if_missing(true)
+            .foreign_keys(true);
+        let pool = sqlx::sqlite::SqlitePoolOptions::new()
+            .max_connections(1)
+            .connect_with(options)
+            .await
+            .unwrap();
+        sqlx::migrate::Migrator::new(first_only.as_path())
+            .await
+            .unwrap()
+            .run(&pool)
+            .await
+            .unwrap();
+        for statement in [
+            "INSERT INTO devices (id, serial, model, rf_input_limit_dbm, wavelength_nm, created_at_unix_ms, updated_at_unix_ms) VALUES (1, 'DEMO-0700', 'demo', 27, 1550, 0, 0)",
+            "INSERT INTO chain_calibrations (id, name, version, created_at_unix_ms, created_by) VALUES (1, 'c', 1, 0, 't')",
+            "INSERT INTO runs (id, plan_json, device_id, bench_name, chain_calibration_id, state, submitted_by, created_at_unix_ms) VALUES (1, '{}', 1, 'b', 1, 'running', 't', 0)",
+            "INSERT INTO points (id, run_id, frequency_index, level_index, frequency_hz, generator_level_dbm, level_at_modulator_dbm, v_peak_volts, line_table_json, analysis_json, measured_at_unix_ms) VALUES (7, 1, 0, 0, 1e10, 0, 20, 3.162, '[]', '{}', 0)",
+        ] {
+            sqlx::query(statement).execute(&pool).await.unwrap();
+        }
+        sqlx::query("INSERT INTO point_traces (point_id, point_count, encoded) VALUES (7, $1, $2)")
+            .bind(trace.len() as i64)
+            .bind(halfwave::store::trace_codec::encode(&trace).unwrap())
+            .execute(&pool)
+            .await
+            .unwrap();
+        pool.close().await;
+    }
+
+    let store = Store::open(&path).await.unwrap();
+    let moved = store.point_trace(7).await.unwrap();
+    assert_eq!(moved.len(), trace.len());
+    assert_eq!(moved.power_dbm()[200], -3.0);
+    assert_eq!(moved.frequency_hz()[0], trace.frequency_hz()[0]);
+}
