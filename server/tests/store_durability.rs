@@ -68,7 +68,7 @@ async fn migrations_apply_to_a_fresh_file_and_pragmas_are_set() {
         })
         .count();
     assert_eq!(applied, i64::try_from(migration_files).unwrap());
-    // Migration 0002 moved the point trace into the point row.
+    // Migration 0003 moved the point trace into the point row.
     assert!(!tables.iter().any(|t| t == "point_traces"));
 }
 
@@ -287,10 +287,10 @@ async fn engine_writes_and_api_writes_interleave_without_lock_errors() {
 }
 
 #[tokio::test]
-async fn migration_0002_moves_existing_point_traces_into_the_point_rows() {
+async fn migration_0003_moves_existing_point_traces_into_the_point_rows() {
     // A database made by the first schema alone, holding one point with its trace in the old
     // `point_traces` table, must open with the trace intact.
-    let dir = TempDir::new("migrate-0002");
+    let dir = TempDir::new("migrate-0003");
     let first_only = dir.0.join("first-migration-only");
     std::fs::create_dir_all(&first_only).unwrap();
     let migrations = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../migrations");
