@@ -63,8 +63,8 @@ async function loadBenches() {
     cell(row, bench.name);
     cell(row, bench.active_run_id ?? "idle");
     cell(row, (bench.queued_run_ids || []).join(", ") || "none");
-    cell(row, describeInstrument(bench.source));
-    cell(row, describeInstrument(bench.analyzer));
+    cell(row, describeInstrument({ identity: bench.source_identity, resource: bench.source_resource }));
+    cell(row, describeInstrument({ identity: bench.analyzer_identity, resource: bench.analyzer_resource }));
     const option = new Option(bench.name, bench.name);
     select.add(option);
   }

@@ -7,6 +7,7 @@ pub mod analyze;
 
 use clap::{Parser, Subcommand};
 
+pub mod serve;
 pub mod sim;
 pub mod token;
 
@@ -35,6 +36,8 @@ pub struct Cli {
 pub enum Command {
     /// Serve the simulated bench (RF source and analyzer) as SCPI instruments over TCP.
     Sim(sim::SimArgs),
+    /// Run the daemon: the engine on the configured benches, the HTTP API and the dashboard.
+    Serve(serve::ServeArgs),
     /// Analyse trace files you already have: modulation index from a trace CSV, V_pi from a sweep JSON.
     Analyze(analyze::AnalyzeArgs),
     /// Manage API tokens in the database: create (printed once), revoke, list.
@@ -45,6 +48,7 @@ pub enum Command {
 pub fn run(cli: Cli) -> Result<(), CliError> {
     match cli.command {
         Command::Sim(args) => sim::run(args),
+        Command::Serve(args) => serve::run(args),
         Command::Analyze(args) => analyze::run(args),
         Command::Token(command) => token::run(command),
     }

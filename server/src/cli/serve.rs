@@ -1,0 +1,82 @@
+//! `halfwave serve`: the daemon. Configuration in, engine and HTTP API up, RF off on the way out.
+//!
+//! Start-up order matters for safety: the configuration is checked first (nothing starts
+//! half-configured), then the store is opened and migrated, then the engine switches every
+//! configured source off and marks runs left running as interrupted, and only then does the HTTP
+//! listener accept requests. On SIGINT or SIGTERM the listener stops taking requests, the engine
+//! cancels the active runs (they become interrupted, so they can be resumed) and switches every
+//! source off before the process exits.
+
+use super::CliError;
+use crate::config::Config;
+use crate::engine::Engine;
+use crate::store::Store;
+use clap::Args;
+use std::path::PathBuf;
+
+#[derive(Debug, Args)]
+pub struct ServeArgs {
+    /// The configuration file (see deploy/halfwave.toml for a commented example).
+    #[arg(long, short)]
+    pub config: PathBuf,
+}
+
+/// Runs the daemon until a shutdown signal.
+pub fn run(args: ServeArgs) -> Result<(), CliError> {
+    let config = Config::load(&args.config).map_err(|e| CliError::new(e.to_string()))?;
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .map_err(|e| CliError::new(format!("cannot start the async runtime: {e}")))?;
+    runtime.block_on(serve(config))
+}
+
+/// Opens the store, starts the engine and serves the API until SIGINT/SIGTERM.
+pub async fn serve(config: Config) -> Result<(), CliError> {
+    let (engine, listener) = start(&config).await?;
+    let address = listener
+        .local_addr()
+        .map_err(|e| CliError::new(format!("cannot read the bound address: {e}")))?;
+    tracing::info!(%address, "halfwave daemon listening");
+    println!("halfwave listening on http://{address}/");
+    let state =
+        crate::api::AppState::with_engine(engine.clone(), crate::api::ApiSettings::from_env());
+    let stopped = crate::api::serve_on(listener, state, async {
+        let name = crate::shutdown::signal().await;
+        tracing::info!(
+            signal = name,
+            "shutting down: stopping runs and switching RF off"
+        );
+    })
+    .await;
+    engine.shutdown().await;
+    stopped.map_err(|e| CliError::new(format!("the HTTP server failed: {e}")))?;
+    println!("halfwave stopped: runs interrupted where they were, RF outputs off");
+    Ok(())
+}
+
+/// Opens the store, starts the engine (RF off everywhere, recovery) and binds the listener.
+pub async fn start(config: &Config) -> Result<(Engine, tokio::net::TcpListener), CliError> {
+    std::fs::create_dir_all(&config.data_dir).map_err(|e| {
+        CliError::new(format!(
+            "cannot create the data directory {}: {e}",
+            config.data_dir.display()
+        ))
+    })?;
+    let store = Store::open(&config.database_url())
+        .await
+        .map_err(|e| CliError::new(e.to_string()))?;
+    let engine = Engine::start(config, store)
+        .await
+        .map_err(|e| CliError::new(e.to_string()))?;
+    let listener = tokio::net::TcpListener::bind(config.bind)
+        .await
+        .map_err(|e| {
+            CliError::new(format!(
+                "cannot listen on {}: {e}; is another daemon running, or is the port taken?",
+                config.bind
+            ))
+        })?;
+    Ok((engine, listener))
+}
