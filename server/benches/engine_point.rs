@@ -1,0 +1,101 @@
+//! Daemon overhead per point: a whole run through the engine on the simulated bench with every
+//! instrument time set to zero, so what is measured is the engine's own work per point
+//! (instrument calls through the traits, the simulator rendering each 10,001-point trace, the
+//! analysis, the commit of the point with its compressed trace to a file database, progress
+//! events). The simulator's rendering (about 0.1-0.2 ms per trace, see `sim_trace`) is included,
+//! so the figure over-states the daemon's own cost.
+//!
+//! Run: `cargo bench -p halfwave-server --bench engine_point`
+
+use criterion::{criterion_group, criterion_main, Criterion, Throughput};
+use halfwave::config::Limits;
+use halfwave::engine::bench::BenchInstruments;
+use halfwave::engine::events::ProgressEvent;
+use halfwave::engine::plan::{
+    AnalyzerSpec, ChainSpec, DeviceSpec, FrequencySpec, LevelSpec, PlanRequest,
+};
+use halfwave::engine::Engine;
+use halfwave::store::Store;
+use halfwave_drivers::sim::{Scenario, SimBench};
+
+const LEVELS: usize = 9;
+
+fn plan() -> PlanRequest {
+    PlanRequest {
+        device: DeviceSpec {
+            serial: "BENCH-PM-1".into(),
+            model: "benchmark".into(),
+            rf_input_limit_dbm: 27.0,
+            wavelength_nm: 1550.0,
+        },
+        bench: "sim".into(),
+        chain: ChainSpec::FlatLoss { loss_db: 1.5 },
+        frequencies: FrequencySpec::List {
+            values_hz: vec![2e9],
+        },
+        levels: LevelSpec::Ramp {
+            start_dbm: 3.0,
+            stop_dbm: 19.0,
+            step_db: 2.0,
+        },
+        settle_s: 0.0,
+        averages: 1,
+        analyzer: AnalyzerSpec {
+            points: Some(10_001),
+            ..AnalyzerSpec::default()
+        },
+        reference_trace: true,
+        carrier_tracking: true,
+        note: String::new(),
+    }
+}
+
+fn engine_point(c: &mut Criterion) {
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let (engine, _sim) = runtime.block_on(async {
+        let store = Store::open(dir.path().join("bench.db").to_str().unwrap())
+            .await
+            .unwrap();
+        let sim = SimBench::new(Scenario::builtin().unwrap(), 1).with_time_factor(0.0);
+        let engine = Engine::start_with(
+            Limits::default(),
+            store,
+            vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
+        )
+        .await
+        .unwrap();
+        (engine, sim)
+    });
+    let mut group = c.benchmark_group("engine");
+    group.sample_size(10);
+    group.throughput(Throughput::Elements(LEVELS as u64));
+    group.bench_function("run_of_9_points_10001_point_traces", |b| {
+        b.iter(|| {
+            runtime.block_on(async {
+                let mut events = engine.subscribe();
+                let run_id = engine.submit(plan(), "bench").await.unwrap();
+                loop {
+                    if let Ok(ProgressEvent::Finished {
+                        run_id: id, state, ..
+                    }) = events.recv().await
+                    {
+                        if id == run_id {
+                            assert_eq!(state, "completed");
+                            break;
+                        }
+                    }
+                }
+            })
+        })
+    });
+    group.finish();
+    runtime.block_on(engine.shutdown());
+}
+
+criterion_group!(benches, engine_point);
+criterion_main!(benches);
