@@ -455,15 +455,7 @@ impl Engine {
                 }
             }
         };
-        let points = calibration
-            .points
-            .iter()
-            .map(|p| ChainPoint {
-                frequency: p.frequency(),
-                gain: Db(p.gain().0),
-            })
-            .collect();
-        let chain = DriveChain::new(points).map_err(|e| invalid(e.to_string()))?;
+        let chain = drive_chain(&calibration).map_err(|e| invalid(e.to_string()))?;
         Ok((chain, calibration.id))
     }
 
@@ -517,17 +509,7 @@ impl Engine {
             .chain_calibration(run.chain_calibration_id)
             .await
             .map_err(|e| refuse(format!("its chain calibration cannot be read: {e}")))?;
-        let chain = DriveChain::new(
-            calibration
-                .points
-                .iter()
-                .map(|p| ChainPoint {
-                    frequency: p.frequency(),
-                    gain: p.gain(),
-                })
-                .collect(),
-        )
-        .map_err(|e| refuse(e.to_string()))?;
+        let chain = drive_chain(&calibration).map_err(|e| refuse(e.to_string()))?;
         let source_limits = slot.source.lock().await.limits();
         let caps = slot.analyzer.lock().await.capabilities();
         let plan = request
@@ -678,6 +660,22 @@ impl Engine {
         );
         finish(state, cause).await;
     }
+}
+
+/// The drive chain a stored calibration stands for.
+fn drive_chain(
+    calibration: &ChainCalibration,
+) -> Result<DriveChain, crate::analysis::AnalysisError> {
+    DriveChain::new(
+        calibration
+            .points
+            .iter()
+            .map(|p| ChainPoint {
+                frequency: p.frequency(),
+                gain: p.gain(),
+            })
+            .collect(),
+    )
 }
 
 impl BenchSlot {
