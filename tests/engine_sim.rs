@@ -70,6 +70,17 @@ async fn upload_true_chain(store: &Store, scenario: &Scenario) -> String {
     "sim-chain".into()
 }
 
+/// An engine on one simulated bench named "sim".
+async fn start_engine(limits: Limits, store: Store, sim: &SimBench) -> Engine {
+    Engine::start_with(
+        limits,
+        store,
+        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
+    )
+    .await
+    .unwrap()
+}
+
 async fn wait_for_end(
     events: &mut tokio::sync::broadcast::Receiver<ProgressEvent>,
     run_id: i64,
@@ -99,13 +110,7 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
     let scenario = Scenario::builtin().unwrap();
     let sim = SimBench::new(scenario.clone(), 7).with_time_factor(0.0);
     let chain = upload_true_chain(&store, &scenario).await;
-    let engine = Engine::start_with(
-        Limits::default(),
-        store.clone(),
-        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
-    )
-    .await
-    .unwrap();
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
     let mut events = engine.subscribe();
     let laser_before = sim.laser_frequency();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
@@ -150,15 +155,14 @@ async fn plan_over_the_limit_is_refused_before_any_command() {
     let scenario = Scenario::builtin().unwrap();
     let sim = SimBench::new(scenario.clone(), 3).with_time_factor(0.0);
     let chain = upload_true_chain(&store, &scenario).await;
-    let engine = Engine::start_with(
+    let engine = start_engine(
         Limits {
             max_level_at_modulator_dbm: 10.0,
         },
         store.clone(),
-        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
+        &sim,
     )
-    .await
-    .unwrap();
+    .await;
     // Start-up talks to the instruments (identify, RF off); only what follows must be silent.
     sim.clear_command_log(Role::RfSource);
     sim.clear_command_log(Role::Analyzer);
@@ -179,13 +183,7 @@ async fn cancel_leaves_the_output_off_within_a_second() {
     // Realistic instrument timings so that the run is mid-way when cancelled.
     let sim = SimBench::new(scenario.clone(), 5).with_time_factor(1.0);
     let chain = upload_true_chain(&store, &scenario).await;
-    let engine = Engine::start_with(
-        Limits::default(),
-        store.clone(),
-        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
-    )
-    .await
-    .unwrap();
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
     let mut events = engine.subscribe();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
     // Wait until RF is on and a point has been measured.
@@ -219,13 +217,7 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     let scenario = Scenario::builtin().unwrap();
     let sim = SimBench::new(scenario.clone(), 11).with_time_factor(0.2);
     let chain = upload_true_chain(&store, &scenario).await;
-    let engine = Engine::start_with(
-        Limits::default(),
-        store.clone(),
-        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
-    )
-    .await
-    .unwrap();
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
     let mut events = engine.subscribe();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
     // Let a dozen points be committed, then stop the daemon's engine as SIGTERM would.
@@ -249,13 +241,12 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
 
     // A new engine on the same database and bench: the run is still interrupted; resume it.
     sim.set_time_factor(0.0);
-    let engine = Engine::start_with(
+    let engine = start_engine(
         Limits::default(),
         Store::open(db.to_str().unwrap()).await.unwrap(),
-        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
+        &sim,
     )
-    .await
-    .unwrap();
+    .await;
     let mut events = engine.subscribe();
     engine.resume(run_id, "test").await.unwrap();
     assert_eq!(wait_for_end(&mut events, run_id).await, "completed");

@@ -63,8 +63,8 @@ pub async fn locate_laser(
     nominal: Hz,
     wanted_span: Hz,
 ) -> Result<Hz, InstrumentError> {
-    let span = Hz(wanted_span.0.max(LOCATE_SPAN_MAX.0.min(caps.max_span.0)));
-    let span = Hz(span.0.min(caps.max_span.0));
+    // At least the measurement span, normally LOCATE_SPAN_MAX, never more than the analyzer offers.
+    let span = Hz(wanted_span.0.max(LOCATE_SPAN_MAX.0).min(caps.max_span.0));
     let points = caps.max_points.min(20_001);
     // The widest resolution that still separates the laser from the floor: coarse is fine here.
     let rbw = caps

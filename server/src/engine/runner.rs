@@ -90,7 +90,7 @@ async fn run_inner(ctx: RunContext) -> RunOutcome {
     };
     // RF off first, report afterwards.
     let off = guard.release().await;
-    let outcome = match (result, off) {
+    match (result, off) {
         (Ok(()), Ok(())) => RunOutcome::Completed,
         (Err(Stop::Cancelled), Ok(())) => RunOutcome::Cancelled,
         (Err(Stop::Failed(cause)), Ok(())) => RunOutcome::Failed(cause),
@@ -104,8 +104,7 @@ async fn run_inner(ctx: RunContext) -> RunOutcome {
                 "{before}the RF output could not be confirmed off ({e}); switch it off by hand"
             ))
         }
-    };
-    outcome
+    }
 }
 
 enum Stop {
