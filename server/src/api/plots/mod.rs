@@ -15,7 +15,7 @@ mod style;
 mod vpi;
 
 pub use modulation::{modulation_index_svg, ModulationPlot, ModulationPoint};
-pub use response::{response_db, response_svg};
+pub use response::{response_of, response_svg};
 pub use spectrum::{spectrum_svg, MarkedLine, SpectrumPlot};
 pub use vpi::{vpi_svg, VpiCurve, VpiPoint};
 
@@ -25,6 +25,9 @@ pub enum PlotError {
     /// Nothing to draw (no finite values).
     #[error("nothing to plot: {0}")]
     Empty(String),
+    /// The data cannot make this plot (the message says why).
+    #[error("cannot plot these values: {0}")]
+    BadData(String),
     /// The drawing backend failed.
     #[error("drawing the plot failed: {0}")]
     Drawing(String),
