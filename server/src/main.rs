@@ -4,7 +4,12 @@ use clap::Parser;
 
 fn main() -> std::process::ExitCode {
     let cli = halfwave::cli::Cli::parse();
-    halfwave::telemetry::init("warn");
+    // The demo shows failed points on its progress bar; its log would only repeat them.
+    let level = match cli.command {
+        halfwave::cli::Command::Demo(_) => "error",
+        _ => "warn",
+    };
+    halfwave::telemetry::init(level);
     match halfwave::cli::run(cli) {
         Ok(()) => std::process::ExitCode::SUCCESS,
         Err(e) => {

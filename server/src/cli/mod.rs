@@ -1,12 +1,24 @@
 //! The `halfwave` command line: one file per subcommand.
 //!
 //! Every subcommand returns `Result<(), CliError>`; `main` prints the error for the person at the
-//! terminal and exits non-zero. Commands that print results print JSON on stdout.
+//! terminal and exits non-zero. Three kinds of command live here: the daemon and its local tools
+//! (`serve`, `demo`, `sim`, `analyze`, `token`, `check-bench`, `db`), which read the configuration
+//! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `export`), which
+//! speak only HTTP to a running daemon through [`client::ApiClient`], so they work from any
+//! machine that can reach it. Clients print tables for people and JSON with `--json`.
 
 pub mod analyze;
 
 use clap::{Parser, Subcommand};
 
+pub mod check_bench;
+pub mod client;
+pub mod db;
+pub mod demo;
+pub mod export;
+pub mod follow;
+pub mod report;
+pub mod runs;
 pub mod serve;
 pub mod sim;
 pub mod token;
@@ -34,6 +46,9 @@ pub struct Cli {
 
 #[derive(Debug, Subcommand)]
 pub enum Command {
+    /// Run the whole job on a simulated bench in about a minute: an in-process daemon, a
+    /// calibration submitted over HTTP, the V_pi table, the response frequencies and SVG plots.
+    Demo(demo::DemoArgs),
     /// Serve the simulated bench (RF source and analyzer) as SCPI instruments over TCP.
     Sim(sim::SimArgs),
     /// Run the daemon: the engine on the configured benches, the HTTP API and the dashboard.
@@ -42,6 +57,21 @@ pub enum Command {
     Analyze(analyze::AnalyzeArgs),
     /// Manage API tokens in the database: create (printed once), revoke, list.
     Token(token::TokenCommand),
+    /// Submit a plan (JSON file) to a running daemon and follow the run with a progress bar.
+    Submit(runs::SubmitArgs),
+    /// Follow a run on a running daemon with a progress bar until it ends.
+    Watch(runs::WatchArgs),
+    /// List runs on a running daemon (filters: device, state, dates).
+    Runs(runs::RunsArgs),
+    /// Show one run: state, V_pi per frequency, response frequencies.
+    Show(runs::ShowArgs),
+    /// Export a run's points and V_pi as CSV or JSON (units in the column names).
+    Export(export::ExportArgs),
+    /// Identify every configured instrument and verify its read-backs. RF stays off: this never
+    /// switches an RF output on.
+    CheckBench(check_bench::CheckBenchArgs),
+    /// Database maintenance: `db backup DEST` (consistent copy, safe while the daemon runs).
+    Db(db::DbCommand),
 }
 
 /// Runs the parsed command.
@@ -51,5 +81,13 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Serve(args) => serve::run(args),
         Command::Analyze(args) => analyze::run(args),
         Command::Token(command) => token::run(command),
+        Command::Demo(args) => demo::run(args),
+        Command::Submit(args) => runs::submit(args),
+        Command::Watch(args) => runs::watch(args),
+        Command::Runs(args) => runs::list(args),
+        Command::Show(args) => runs::show(args),
+        Command::Export(args) => export::run(args),
+        Command::CheckBench(args) => check_bench::run(args),
+        Command::Db(command) => db::run(command),
     }
 }

@@ -58,7 +58,8 @@ pub enum TokenAction {
     },
 }
 
-fn database_url(choice: &DatabaseChoice) -> Result<String, CliError> {
+/// The database URL the choice names (from the configuration file, or given directly).
+pub fn database_url(choice: &DatabaseChoice) -> Result<String, CliError> {
     match (&choice.database, &choice.config) {
         (Some(url), _) => Ok(url.clone()),
         (None, Some(path)) => Config::load(path)

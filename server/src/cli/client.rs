@@ -1,0 +1,269 @@
+//! The HTTP client of the CLI: one small wrapper over `reqwest` that talks to a running daemon.
+//!
+//! Every client subcommand (submit, watch, runs, show, export, and the demo talking to its own
+//! in-process daemon) goes through [`ApiClient`], so that failures read the same everywhere and
+//! say what to do: an unreachable daemon names the URL and asks whether `halfwave serve` runs, a
+//! refused token (401) says how to get a valid one, a refused plan (422) lists every field the
+//! daemon named. Response bodies are decoded into the API's own types (`api::routes::...`), so the
+//! CLI and the daemon cannot drift apart silently. Plain HTTP only: the daemon listens on
+//! loopback or the lab network; reach it from elsewhere through the reverse proxy or a tunnel.
+
+use super::CliError;
+use crate::api::problem::Problem;
+use clap::Args;
+use serde::de::DeserializeOwned;
+use std::time::Duration;
+
+/// Where the daemon listens unless told otherwise (the configuration's default `bind`).
+pub const DEFAULT_URL: &str = "http://127.0.0.1:8440";
+
+/// The environment variable that holds the token when `--token` is not given.
+pub const TOKEN_ENV: &str = "HALFWAVE_TOKEN";
+
+/// How long one request may take before the CLI gives up (the daemon's own limit is 30 s).
+const REQUEST_TIMEOUT: Duration = Duration::from_secs(60);
+
+/// How long connecting may take: the daemon is on loopback or the lab network.
+const CONNECT_TIMEOUT: Duration = Duration::from_secs(5);
+
+/// The options every command that talks to a daemon takes.
+#[derive(Debug, Clone, Args)]
+pub struct ClientArgs {
+    /// The daemon's base URL.
+    #[arg(long, value_name = "URL", default_value = DEFAULT_URL)]
+    pub url: String,
+    /// The API token (`hwt_...`, from `halfwave token create`); default: the HALFWAVE_TOKEN
+    /// environment variable, which keeps the secret out of the shell history.
+    #[arg(long, value_name = "TOKEN")]
+    pub token: Option<String>,
+    /// Print JSON on stdout for scripts instead of tables (progress bars still go to stderr).
+    #[arg(long)]
+    pub json: bool,
+}
+
+impl ClientArgs {
+    /// The client these options describe.
+    pub fn client(&self) -> Result<ApiClient, CliError> {
+        let token = self
+            .token
+            .clone()
+            .or_else(|| std::env::var(TOKEN_ENV).ok())
+            .filter(|t| !t.trim().is_empty());
+        ApiClient::new(&self.url, token)
+    }
+}
+
+/// A client of one daemon, with the token it sends.
+#[derive(Debug, Clone)]
+pub struct ApiClient {
+    base: String,
+    token: Option<String>,
+    http: reqwest::Client,
+    /// A client without the overall timeout, for the event stream.
+    streaming: reqwest::Client,
+}
+
+impl ApiClient {
+    /// A client of the daemon at `url` (`http://host:port`, without a path).
+    pub fn new(url: &str, token: Option<String>) -> Result<ApiClient, CliError> {
+        let parsed = reqwest::Url::parse(url).map_err(|e| {
+            CliError::new(format!(
+                "--url {url:?} is not a URL ({e}); give the daemon's address such as {DEFAULT_URL}"
+            ))
+        })?;
+        match parsed.scheme() {
+            "http" => {}
+            "https" => {
+                return Err(CliError::new(format!(
+                    "--url {url:?}: this client speaks plain HTTP only; use the daemon's own http:// address on the lab network, or an SSH tunnel to it"
+                )))
+            }
+            other => {
+                return Err(CliError::new(format!(
+                    "--url {url:?}: unknown scheme {other:?}; give an http:// address such as {DEFAULT_URL}"
+                )))
+            }
+        }
+        let build = |timeout: Option<Duration>| {
+            let builder = reqwest::Client::builder().connect_timeout(CONNECT_TIMEOUT);
+            let builder = match timeout {
+                Some(t) => builder.timeout(t),
+                None => builder,
+            };
+            builder
+                .build()
+                .map_err(|e| CliError::new(format!("cannot set up the HTTP client: {e}")))
+        };
+        Ok(ApiClient {
+            base: url.trim_end_matches('/').to_string(),
+            token,
+            http: build(Some(REQUEST_TIMEOUT))?,
+            streaming: build(None)?,
+        })
+    }
+
+    /// The daemon's base URL, without a trailing slash.
+    pub fn base_url(&self) -> &str {
+        &self.base
+    }
+
+    fn url(&self, path: &str) -> String {
+        format!("{}{path}", self.base)
+    }
+
+    fn authorize(&self, request: reqwest::RequestBuilder) -> reqwest::RequestBuilder {
+        match &self.token {
+            Some(token) => request.bearer_auth(token),
+            None => request,
+        }
+    }
+
+    /// GET `path` and decode the JSON answer.
+    pub async fn get_json<T: DeserializeOwned>(&self, path: &str) -> Result<T, CliError> {
+        let response = self.send(self.http.get(self.url(path)), path).await?;
+        decode(response, path).await
+    }
+
+    /// GET `path` and return the body as text (SVG plots, CSV traces).
+    pub async fn get_text(&self, path: &str) -> Result<String, CliError> {
+        let response = self.send(self.http.get(self.url(path)), path).await?;
+        response.text().await.map_err(|e| {
+            CliError::new(format!(
+                "the daemon's answer to {path} broke off: {e}; try again"
+            ))
+        })
+    }
+
+    /// POST a JSON body to `path` and decode the JSON answer.
+    pub async fn post_json<T: DeserializeOwned>(
+        &self,
+        path: &str,
+        body: &serde_json::Value,
+    ) -> Result<T, CliError> {
+        let request = self
+            .http
+            .post(self.url(path))
+            .header(reqwest::header::CONTENT_TYPE, "application/json")
+            .body(body.to_string());
+        let response = self.send(request, path).await?;
+        decode(response, path).await
+    }
+
+    /// Opens the server-sent event stream (optionally of one run); the caller reads its chunks.
+    pub async fn event_stream(&self, run_id: Option<i64>) -> Result<reqwest::Response, CliError> {
+        let path = match run_id {
+            Some(id) => format!("/api/v1/events?run_id={id}"),
+            None => "/api/v1/events".to_string(),
+        };
+        self.send(self.streaming.get(self.url(&path)), &path).await
+    }
+
+    /// Sends a request; a transport failure or an error status becomes a message for the person
+    /// at the terminal.
+    async fn send(
+        &self,
+        request: reqwest::RequestBuilder,
+        path: &str,
+    ) -> Result<reqwest::Response, CliError> {
+        let response = self
+            .authorize(request)
+            .send()
+            .await
+            .map_err(|e| self.transport_error(&e))?;
+        let status = response.status();
+        if status.is_success() {
+            return Ok(response);
+        }
+        let text = response.text().await.unwrap_or_default();
+        Err(self.status_error(status, &text, path))
+    }
+
+    fn transport_error(&self, error: &reqwest::Error) -> CliError {
+        if error.is_timeout() {
+            return CliError::new(format!(
+                "the daemon at {} did not answer in time ({}); it may be overloaded, or the address may lead elsewhere",
+                self.base,
+                describe(error)
+            ));
+        }
+        CliError::new(format!(
+            "cannot reach the daemon at {}: {} — is `halfwave serve` running, and is --url right?",
+            self.base,
+            describe(error)
+        ))
+    }
+
+    fn status_error(&self, status: reqwest::StatusCode, body: &str, path: &str) -> CliError {
+        let problem: Option<Problem> = serde_json::from_str(body).ok();
+        let detail = problem
+            .as_ref()
+            .map(|p| p.detail.clone())
+            .unwrap_or_else(|| body.chars().take(300).collect());
+        match status.as_u16() {
+            401 if self.token.is_none() => CliError::new(format!(
+                "the daemon at {} wants a token and none was given: pass --token or set {TOKEN_ENV} (create one with `halfwave token create --role operator --name NAME --config FILE`)",
+                self.base
+            )),
+            401 => CliError::new(format!(
+                "the daemon refused the token ({detail}); check --token or {TOKEN_ENV}, or create a new one with `halfwave token create`"
+            )),
+            403 => CliError::new(format!(
+                "the token's role is not allowed to do this ({detail}); ask an admin for an operator or admin token"
+            )),
+            422 => {
+                let fields: Vec<String> = problem
+                    .map(|p| {
+                        p.errors
+                            .iter()
+                            .map(|e| format!("  {}: {}", e.field, e.message))
+                            .collect()
+                    })
+                    .unwrap_or_default();
+                if fields.is_empty() {
+                    CliError::new(format!("the daemon refused the request to {path}: {detail}"))
+                } else {
+                    CliError::new(format!(
+                        "the daemon refused the request to {path}: {detail}\n{}",
+                        fields.join("\n")
+                    ))
+                }
+            }
+            _ => CliError::new(format!(
+                "the daemon answered {status} to {path}: {detail}"
+            )),
+        }
+    }
+}
+
+async fn decode<T: DeserializeOwned>(
+    response: reqwest::Response,
+    path: &str,
+) -> Result<T, CliError> {
+    let bytes = response.bytes().await.map_err(|e| {
+        CliError::new(format!(
+            "the daemon's answer to {path} broke off: {e}; try again"
+        ))
+    })?;
+    serde_json::from_slice(&bytes).map_err(|e| {
+        CliError::new(format!(
+            "the daemon's answer to {path} is not what this CLI expects ({e}); are the CLI and the daemon the same version?"
+        ))
+    })
+}
+
+/// The error and its causes on one line (reqwest hides the useful part in the source chain).
+fn describe(error: &reqwest::Error) -> String {
+    let mut text = error.to_string();
+    let mut source = std::error::Error::source(error);
+    while let Some(cause) = source {
+        text.push_str(": ");
+        text.push_str(&cause.to_string());
+        source = cause.source();
+    }
+    text
+}
+
+/// Terminal states of a run (it will not change any more unless resumed).
+pub fn is_terminal(state: &str) -> bool {
+    matches!(state, "completed" | "failed" | "cancelled" | "interrupted")
+}

@@ -1,0 +1,122 @@
+//! `halfwave export <run-id> --format csv|json`: a run's measured points and V_pi, for other tools.
+//!
+//! CSV is one row per measured point with the V_pi fitted at its frequency repeated on each row,
+//! so a spreadsheet or a plotting script needs no join; every column name carries its unit
+//! (`frequency_hz`, `generator_level_dbm`, `v_peak_volts`, `v_pi_volts`), as the API's JSON
+//! fields do. JSON is the run (plan, state, per-frequency results) with all its points, as the
+//! API serves them. Points are read page by page, so a run of any size exports.
+
+use super::client::ClientArgs;
+use super::runs::{runtime, to_json};
+use super::CliError;
+use crate::api::routes::runs::{FrequencyResultView, PointList, PointView, RunView};
+use clap::{Args, ValueEnum};
+use std::path::PathBuf;
+
+/// Points per request (the API's largest page).
+const PAGE: u32 = 1000;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum ExportFormat {
+    Csv,
+    Json,
+}
+
+#[derive(Debug, Args)]
+pub struct ExportArgs {
+    /// The run to export.
+    pub run_id: i64,
+    /// csv: one row per point, units in the column names; json: the run with all its points.
+    #[arg(long, value_enum, default_value_t = ExportFormat::Csv)]
+    pub format: ExportFormat,
+    /// Write to this file instead of stdout.
+    #[arg(long, short)]
+    pub output: Option<PathBuf>,
+    #[command(flatten)]
+    pub client: ClientArgs,
+}
+
+/// The CSV header; units in every name.
+pub const CSV_HEADER: &str = "run_id,frequency_index,level_index,frequency_hz,generator_level_dbm,level_at_modulator_dbm,v_peak_volts,modulation_index,modulation_index_uncertainty,asymmetry_db,v_pi_volts,v_pi_uncertainty_volts,measured_at_unix_ms";
+
+/// The run and its points as CSV.
+pub fn points_csv(run_id: i64, points: &[PointView], results: &[FrequencyResultView]) -> String {
+    let optional = |v: Option<f64>| v.map(|v| v.to_string()).unwrap_or_default();
+    let mut out = String::with_capacity(points.len() * 160 + CSV_HEADER.len() + 1);
+    out.push_str(CSV_HEADER);
+    out.push('\n');
+    for p in points {
+        let fit = results
+            .iter()
+            .find(|r| r.frequency_index == p.frequency_index);
+        out.push_str(&format!(
+            "{run_id},{},{},{},{},{},{},{},{},{},{},{},{}\n",
+            p.frequency_index,
+            p.level_index,
+            p.frequency_hz,
+            p.generator_level_dbm,
+            p.level_at_modulator_dbm,
+            p.v_peak_volts,
+            optional(p.modulation_index),
+            optional(p.modulation_index_uncertainty),
+            optional(p.asymmetry_db),
+            optional(fit.map(|r| r.v_pi_volts)),
+            optional(fit.map(|r| r.v_pi_uncertainty_volts)),
+            p.measured_at_unix_ms
+        ));
+    }
+    out
+}
+
+/// `halfwave export`.
+pub fn run(args: ExportArgs) -> Result<(), CliError> {
+    let client = args.client.client()?;
+    let run_id = args.run_id;
+    let (run, points) = runtime()?.block_on(async {
+        let run: RunView = client.get_json(&format!("/api/v1/runs/{run_id}")).await?;
+        let mut points: Vec<PointView> = Vec::new();
+        for page in 1.. {
+            let list: PointList = client
+                .get_json(&format!(
+                    "/api/v1/runs/{run_id}/points?page={page}&per_page={PAGE}"
+                ))
+                .await?;
+            let got = list.points.len();
+            points.extend(list.points);
+            if got == 0 || points.len() >= list.total {
+                break;
+            }
+        }
+        Ok::<_, CliError>((run, points))
+    })?;
+    let text = match args.format {
+        ExportFormat::Csv => points_csv(run_id, &points, &run.results),
+        ExportFormat::Json => {
+            let mut value = serde_json::to_value(&run)
+                .map_err(|e| CliError::new(format!("cannot encode the run: {e}")))?;
+            value["points"] = serde_json::to_value(&points)
+                .map_err(|e| CliError::new(format!("cannot encode the points: {e}")))?;
+            to_json(&value)? + "\n"
+        }
+    };
+    match &args.output {
+        None => {
+            print!("{text}");
+            Ok(())
+        }
+        Some(path) => {
+            std::fs::write(path, text).map_err(|e| {
+                CliError::new(format!(
+                    "cannot write {}: {e}; check that the directory exists and is writable",
+                    path.display()
+                ))
+            })?;
+            eprintln!(
+                "run {run_id}: {} points written to {}",
+                points.len(),
+                path.display()
+            );
+            Ok(())
+        }
+    }
+}

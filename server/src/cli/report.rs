@@ -1,0 +1,176 @@
+//! What the CLI prints about a run: the V_pi table, the 3 dB / 6 dB response frequencies, dates.
+//!
+//! Shared by `show`, `submit`, `watch` and `demo`, so a run reads the same whichever command
+//! printed it. The response frequencies come from [`crate::analysis::response_curve`] (the same
+//! function the daemon's response plot uses), never recomputed here. Human output is plain text
+//! tables; the JSON forms carry units in their field names.
+
+use crate::analysis::{response_curve, VpiAtFrequency};
+use crate::api::routes::runs::{FrequencyResultView, RunView};
+use halfwave_units::{Hz, Volts};
+use serde::Serialize;
+
+/// The electro-optic response summary of one run.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ResponseSummary {
+    pub reference_frequency_hz: f64,
+    /// Where the response first falls by 3 dB; `None` when it does not within the measured range.
+    pub f_3db_hz: Option<f64>,
+    /// Where the response first falls by 6 dB; `None` when it does not within the measured range.
+    pub f_6db_hz: Option<f64>,
+    pub highest_frequency_hz: f64,
+}
+
+/// The response summary of a run's results; `None` when no frequency has a V_pi.
+pub fn response_summary(results: &[FrequencyResultView]) -> Option<ResponseSummary> {
+    let points: Vec<VpiAtFrequency> = results
+        .iter()
+        .map(|r| VpiAtFrequency {
+            frequency: Hz(r.frequency_hz),
+            v_pi: Volts(r.v_pi_volts),
+            uncertainty: Volts(r.v_pi_uncertainty_volts),
+        })
+        .collect();
+    let curve = response_curve(&points).ok()?;
+    let highest = points
+        .iter()
+        .map(|p| p.frequency.0)
+        .fold(f64::NEG_INFINITY, f64::max);
+    Some(ResponseSummary {
+        reference_frequency_hz: curve.reference_frequency_hz.0,
+        f_3db_hz: curve.f_3db_hz.map(|f| f.0),
+        f_6db_hz: curve.f_6db_hz.map(|f| f.0),
+        highest_frequency_hz: highest,
+    })
+}
+
+/// The V_pi table of a run, one line per frequency, with a header.
+pub fn vpi_table(results: &[FrequencyResultView]) -> String {
+    let mut out = String::from("  frequency       V_pi   uncertainty (1 sigma)\n");
+    let mut sorted: Vec<&FrequencyResultView> = results.iter().collect();
+    sorted.sort_by(|a, b| a.frequency_hz.total_cmp(&b.frequency_hz));
+    for r in sorted {
+        out.push_str(&format!(
+            "{:>8.3} GHz  {:>7.4} V   {:>7.4} V\n",
+            r.frequency_hz / 1e9,
+            r.v_pi_volts,
+            r.v_pi_uncertainty_volts
+        ));
+    }
+    out
+}
+
+/// Two lines naming the 3 dB and 6 dB response frequencies (or that they were not reached).
+pub fn response_lines(summary: &ResponseSummary) -> String {
+    let line = |label: &str, value: Option<f64>| {
+        match value {
+        Some(f) => format!("{label} response frequency: {:.2} GHz\n", f / 1e9),
+        None => format!(
+            "{label} response frequency: not reached up to {:.2} GHz (the response stays within {label} of its value at {:.2} GHz)\n",
+            summary.highest_frequency_hz / 1e9,
+            summary.reference_frequency_hz / 1e9
+        ),
+    }
+    };
+    format!(
+        "{}{}",
+        line("3 dB", summary.f_3db_hz),
+        line("6 dB", summary.f_6db_hz)
+    )
+}
+
+/// A run described for the terminal: state, device, bench, times, V_pi table and response.
+pub fn run_text(run: &RunView) -> String {
+    let s = &run.summary;
+    let mut out = format!(
+        "run {}: {} — device {}, bench {}, submitted by {}\n",
+        s.id, s.state, s.device_serial, s.bench, s.submitted_by
+    );
+    out.push_str(&format!("created  {}\n", utc_time(s.created_at_unix_ms)));
+    if let Some(t) = s.started_at_unix_ms {
+        out.push_str(&format!("started  {}\n", utc_time(t)));
+    }
+    if let Some(t) = s.finished_at_unix_ms {
+        out.push_str(&format!("finished {}\n", utc_time(t)));
+    }
+    if let Some(cause) = &s.cause {
+        out.push_str(&format!("cause: {cause}\n"));
+    }
+    out.push_str(&format!("measured points: {}\n", run.measured_points));
+    if run.results.is_empty() {
+        out.push_str("no V_pi yet\n");
+        return out;
+    }
+    out.push_str(&vpi_table(&run.results));
+    if let Some(summary) = response_summary(&run.results) {
+        out.push_str(&response_lines(&summary));
+    }
+    out
+}
+
+/// Milliseconds since the Unix epoch as `YYYY-MM-DD HH:MM:SS UTC`.
+pub fn utc_time(unix_ms: i64) -> String {
+    let seconds = unix_ms.div_euclid(1000);
+    let days = seconds.div_euclid(86_400);
+    let of_day = seconds.rem_euclid(86_400);
+    let (year, month, day) = civil_from_days(days);
+    format!(
+        "{year:04}-{month:02}-{day:02} {:02}:{:02}:{:02} UTC",
+        of_day / 3600,
+        (of_day % 3600) / 60,
+        of_day % 60
+    )
+}
+
+/// The proleptic Gregorian date of a day count since 1970-01-01 (H. Hinnant's civil_from_days).
+fn civil_from_days(days: i64) -> (i64, i64, i64) {
+    let z = days + 719_468;
+    let era = if z >= 0 { z } else { z - 146_096 } / 146_097;
+    let doe = z - era * 146_097;
+    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
+    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+    let mp = (5 * doy + 2) / 153;
+    let day = doy - (153 * mp + 2) / 5 + 1;
+    let month = if mp < 10 { mp + 3 } else { mp - 9 };
+    let year = yoe + era * 400 + i64::from(month <= 2);
+    (year, month, day)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn unix_epoch_and_a_leap_day_format_as_dates() {
+        // Reference dates: the Unix epoch, and 2024-02-29 12:00:00 UTC = 1709208000 s (POSIX
+        // time as computed by `date -u -d @1709208000`).
+        assert_eq!(utc_time(0), "1970-01-01 00:00:00 UTC");
+        assert_eq!(utc_time(1_709_208_000_000), "2024-02-29 12:00:00 UTC");
+        assert_eq!(utc_time(-1000), "1969-12-31 23:59:59 UTC");
+    }
+
+    fn result(f: f64, v: f64) -> FrequencyResultView {
+        FrequencyResultView {
+            frequency_index: 0,
+            frequency_hz: f,
+            v_pi_volts: v,
+            v_pi_uncertainty_volts: 0.01,
+            excluded_points: serde_json::Value::Null,
+        }
+    }
+
+    #[test]
+    fn response_frequencies_come_from_the_response_curve() {
+        // V_pi doubles from 1 to 3 GHz: 20 log10(2) = 6.02 dB, so the -6 dB point lies just
+        // below 3 GHz and the -3 dB point where V_pi = sqrt(2) x 3 V (linear interpolation).
+        let results = [result(1e9, 3.0), result(2e9, 4.5), result(3e9, 6.0)];
+        let summary = response_summary(&results).expect("a curve");
+        let f3 = summary.f_3db_hz.expect("3 dB reached");
+        assert!(f3 > 1e9 && f3 < 2e9, "{f3}");
+        assert!(summary.f_6db_hz.is_some());
+        let text = response_lines(&summary);
+        assert!(text.contains("3 dB response frequency"), "{text}");
+        let flat = response_summary(&[result(1e9, 3.0), result(2e9, 3.1)]).expect("a curve");
+        assert!(response_lines(&flat).contains("not reached up to 2.00 GHz"));
+    }
+}

@@ -1,0 +1,450 @@
+//! The command line as a user meets it, through the real binary: every subcommand's help, the
+//! errors on bad input (missing file, bad JSON or TOML with the line named, unreachable daemon,
+//! wrong or missing token, refused plan), `check-bench` on a simulated bench (RF never switched
+//! on), `db backup` of a database, and a client `submit` that follows a run to completion on a
+//! live daemon, then `show`, `runs`, `watch` and `export`.
+//!
+//! The reference for the measured values is the simulated bench's scenario: its modulator has a
+//! stated V_pi(f), which the exported V_pi column must match within 2 % (the measurement recovers
+//! it from Bessel sidebands, Jacobi-Anger expansion per NIST DLMF 10.12).
+
+mod api_support;
+
+use api_support::{spawn_app, spawn_app_with_engine, true_chain_upload};
+use halfwave::api::tokens::Role;
+use std::path::Path;
+use std::process::Output;
+
+const BIN: &str = env!("CARGO_BIN_EXE_halfwave");
+
+fn halfwave(args: &[&str]) -> Output {
+    std::process::Command::new(BIN)
+        .args(args)
+        .env_remove("HALFWAVE_TOKEN")
+        .output()
+        .expect("the halfwave binary runs")
+}
+
+/// Runs the binary without blocking the test's async runtime (the daemon under test runs on it).
+async fn halfwave_async(args: &[&str]) -> Output {
+    tokio::process::Command::new(BIN)
+        .args(args)
+        .env_remove("HALFWAVE_TOKEN")
+        .output()
+        .await
+        .expect("the halfwave binary runs")
+}
+
+fn stderr(out: &Output) -> String {
+    String::from_utf8_lossy(&out.stderr).into_owned()
+}
+
+fn stdout(out: &Output) -> String {
+    String::from_utf8_lossy(&out.stdout).into_owned()
+}
+
+fn failed_with(out: &Output, needles: &[&str]) {
+    assert!(!out.status.success(), "expected a failure: {}", stdout(out));
+    let text = stderr(out);
+    for needle in needles {
+        assert!(text.contains(needle), "{needle:?} not in: {text}");
+    }
+    assert!(!text.contains("panicked"), "{text}");
+}
+
+/// A port nothing listens on (bound, then released).
+fn closed_port() -> u16 {
+    let listener = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+    listener.local_addr().unwrap().port()
+}
+
+const SIMULATED_CONFIG: &str = "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"sim-bench\"\nsource = { kind = \"simulated\" }\nanalyzer = { kind = \"simulated\" }\n\n[bench.simulation]\nseed = 3\ntime_factor = 0.0\n";
+
+#[test]
+fn every_subcommand_has_help() {
+    let subcommands: [(&[&str], &str); 15] = [
+        (&["demo"], "--data-dir"),
+        (&["serve"], "--config"),
+        (&["sim"], "--scenario"),
+        (&["analyze"], "--modulation-frequency"),
+        (&["token"], "create"),
+        (&["submit"], "--no-follow"),
+        (&["watch"], "<RUN_ID>"),
+        (&["runs"], "--state"),
+        (&["show"], "<RUN_ID>"),
+        (&["export"], "--format"),
+        (&["check-bench"], "RF stays off"),
+        (&["db"], "backup"),
+        (&["db", "backup"], "VACUUM INTO"),
+        (&["token", "create"], "--role"),
+        (&["runs"], "HALFWAVE_TOKEN"),
+    ];
+    for (words, expected) in subcommands {
+        let mut args = words.to_vec();
+        args.push("--help");
+        let out = halfwave(&args);
+        assert!(out.status.success(), "{words:?}: {}", stderr(&out));
+        let text = stdout(&out);
+        assert!(
+            text.contains(expected),
+            "{words:?} help lacks {expected:?}: {text}"
+        );
+    }
+    let top = stdout(&halfwave(&["--help"]));
+    for word in [
+        "demo",
+        "serve",
+        "submit",
+        "watch",
+        "runs",
+        "show",
+        "export",
+        "check-bench",
+        "db",
+    ] {
+        assert!(top.contains(word), "top-level help lacks {word}: {top}");
+    }
+}
+
+#[test]
+fn submit_names_a_missing_plan_file() {
+    let out = halfwave(&["submit", "/nonexistent/plan.json"]);
+    failed_with(
+        &out,
+        &["/nonexistent/plan.json", "cannot read the plan file"],
+    );
+}
+
+#[test]
+fn submit_names_the_line_of_bad_json() {
+    let dir = tempfile::tempdir().unwrap();
+    let plan = dir.path().join("plan.json");
+    std::fs::write(
+        &plan,
+        "{\n  \"bench\": \"sim-bench\",\n  \"device\": {,\n}\n",
+    )
+    .unwrap();
+    let out = halfwave(&["submit", plan.to_str().unwrap()]);
+    failed_with(&out, &["plan.json", "not valid JSON", "line 3"]);
+}
+
+#[test]
+fn check_bench_names_the_line_of_bad_toml_and_a_missing_file() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("halfwave.toml");
+    std::fs::write(
+        &config,
+        "bind = \"127.0.0.1:0\"\n\n[[bench]\nname = \"a\"\n",
+    )
+    .unwrap();
+    let out = halfwave(&["check-bench", "--config", config.to_str().unwrap()]);
+    failed_with(&out, &["halfwave.toml", "line 3"]);
+
+    let out = halfwave(&["check-bench", "--config", "/nonexistent/halfwave.toml"]);
+    failed_with(&out, &["/nonexistent/halfwave.toml"]);
+}
+
+#[test]
+fn check_bench_identifies_the_simulated_instruments_and_leaves_rf_off() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("halfwave.toml");
+    std::fs::write(&config, SIMULATED_CONFIG).unwrap();
+    let out = halfwave(&[
+        "check-bench",
+        "--config",
+        config.to_str().unwrap(),
+        "--json",
+    ]);
+    assert!(out.status.success(), "{}", stderr(&out));
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(report["rf_enabled_by_check"], false);
+    let bench = &report["benches"][0];
+    assert_eq!(bench["bench"], "sim-bench");
+    assert_eq!(bench["ok"], true, "{bench}");
+    let scenario = halfwave_drivers::sim::Scenario::builtin().unwrap();
+    let source = &bench["instruments"][0];
+    assert_eq!(source["role"], "source");
+    assert_eq!(source["identity"]["serial"], scenario.rf_source.serial);
+    assert_eq!(source["rf_output_on_before"], false);
+    assert_eq!(source["rf_output_on_after"], false);
+    assert!(source["read_backs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .all(|r| r["ok"] == true));
+    let analyzer = &bench["instruments"][1];
+    assert_eq!(analyzer["identity"]["serial"], scenario.analyzer.serial);
+    assert_eq!(analyzer["trace_points"], 1001);
+    assert_eq!(analyzer["read_backs"].as_array().unwrap().len(), 4);
+
+    let text = halfwave(&["check-bench", "--config", config.to_str().unwrap()]);
+    assert!(text.status.success(), "{}", stderr(&text));
+    assert!(stdout(&text).contains("never switches an RF output on"));
+
+    let out = halfwave(&[
+        "check-bench",
+        "--config",
+        config.to_str().unwrap(),
+        "--bench",
+        "no-such-bench",
+    ]);
+    failed_with(&out, &["no bench named \"no-such-bench\""]);
+}
+
+#[test]
+fn clients_name_an_unreachable_daemon() {
+    let url = format!("http://127.0.0.1:{}", closed_port());
+    for args in [
+        vec!["runs", "--url", &url, "--token", "hwt_x"],
+        vec!["show", "1", "--url", &url, "--token", "hwt_x"],
+        vec!["watch", "1", "--url", &url, "--token", "hwt_x"],
+        vec!["export", "1", "--url", &url, "--token", "hwt_x"],
+    ] {
+        let out = halfwave(&args);
+        failed_with(
+            &out,
+            &[
+                &format!("cannot reach the daemon at {url}"),
+                "halfwave serve",
+            ],
+        );
+    }
+    let out = halfwave(&["runs", "--url", "not a url"]);
+    failed_with(&out, &["--url \"not a url\" is not a URL"]);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn clients_name_a_wrong_or_missing_token() {
+    let app = spawn_app().await;
+    let wrong = halfwave_async(&["runs", "--url", &app.base, "--token", "hwt_wrong"]).await;
+    failed_with(&wrong, &["the daemon refused the token", "HALFWAVE_TOKEN"]);
+    let missing = halfwave_async(&["show", "1", "--url", &app.base]).await;
+    failed_with(&missing, &["none was given", "--token"]);
+
+    // The token from the environment is used when --token is absent.
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let out = tokio::process::Command::new(BIN)
+        .args(["runs", "--url", &app.base, "--json"])
+        .env("HALFWAVE_TOKEN", &viewer)
+        .output()
+        .await
+        .unwrap();
+    assert!(out.status.success(), "{}", stderr(&out));
+    let list: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(list["total"], 0);
+
+    // A viewer may not submit: the role is named.
+    let dir = tempfile::tempdir().unwrap();
+    let plan = dir.path().join("plan.json");
+    std::fs::write(&plan, plan_json().to_string()).unwrap();
+    let out = halfwave_async(&[
+        "submit",
+        plan.to_str().unwrap(),
+        "--url",
+        &app.base,
+        "--token",
+        &viewer,
+    ])
+    .await;
+    failed_with(&out, &["role is not allowed"]);
+}
+
+const FREQUENCIES_HZ: [f64; 2] = [2e9, 8e9];
+
+fn plan_json() -> serde_json::Value {
+    serde_json::json!({
+        "device": {"serial": "EG-PM-0042", "model": "simulated phase modulator", "rf_input_limit_dbm": 27.0},
+        "bench": "sim-bench",
+        "chain": {"kind": "stored", "name": "sim chain"},
+        "frequencies": {"kind": "list", "values_hz": FREQUENCIES_HZ},
+        "levels": {"kind": "ramp", "start_dbm": 0.0, "stop_dbm": 20.0, "step_db": 2.5},
+        "settle_s": 0.0
+    })
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
+    let bench = spawn_app_with_engine(0.0).await;
+    let app = &bench.app;
+    let admin = app.token("admin-1", Role::Admin).await;
+    let operator = app.token("lab-b", Role::Operator).await;
+    let chain = app
+        .post_json(
+            "/api/v1/chain-calibrations",
+            Some(&admin),
+            &true_chain_upload(&bench.sim, "sim chain", &FREQUENCIES_HZ),
+        )
+        .await;
+    assert_eq!(chain.status(), 201);
+
+    let dir = tempfile::tempdir().unwrap();
+    let plan = dir.path().join("plan.json");
+    std::fs::write(&plan, plan_json().to_string()).unwrap();
+    let plan = plan.to_str().unwrap();
+    let client = ["--url", app.base.as_str(), "--token", operator.as_str()];
+    let with = |words: &[&str]| -> Vec<String> {
+        words
+            .iter()
+            .chain(client.iter())
+            .map(|s| s.to_string())
+            .collect()
+    };
+    let run = |args: Vec<String>| async move {
+        let refs: Vec<&str> = args.iter().map(String::as_str).collect();
+        halfwave_async(&refs).await
+    };
+
+    let submitted = run(with(&["submit", plan, "--json"])).await;
+    assert!(submitted.status.success(), "{}", stderr(&submitted));
+    let finished: serde_json::Value = serde_json::from_slice(&submitted.stdout).unwrap();
+    assert_eq!(finished["state"], "completed", "{finished}");
+    assert_eq!(finished["results"].as_array().unwrap().len(), 2);
+    let run_id = finished["id"].as_i64().unwrap();
+    let id = run_id.to_string();
+    assert!(!bench.sim.rf_output_on(), "RF is off after the run");
+
+    // watch on a finished run returns at once; show and runs find it.
+    let watched = run(with(&["watch", &id])).await;
+    assert!(watched.status.success(), "{}", stderr(&watched));
+    assert!(stdout(&watched).contains("completed"));
+    let shown = run(with(&["show", &id])).await;
+    assert!(shown.status.success(), "{}", stderr(&shown));
+    assert!(stdout(&shown).contains("8.000 GHz"), "{}", stdout(&shown));
+    let listed = run(with(&[
+        "runs",
+        "--device",
+        "EG-PM-0042",
+        "--state",
+        "completed",
+        "--json",
+    ]))
+    .await;
+    assert!(listed.status.success(), "{}", stderr(&listed));
+    let listed: serde_json::Value = serde_json::from_slice(&listed.stdout).unwrap();
+    assert_eq!(listed["runs"][0]["id"], run_id);
+    let none = run(with(&["runs", "--state", "failed", "--json"])).await;
+    let none: serde_json::Value = serde_json::from_slice(&none.stdout).unwrap();
+    assert_eq!(none["total"], 0);
+    let bad_state = run(with(&["runs", "--state", "sleeping"])).await;
+    failed_with(&bad_state, &["state", "sleeping"]);
+
+    // CSV export: units in the column names, one row per point, V_pi against the scenario.
+    let csv_path = dir.path().join("run.csv");
+    let exported = run(with(&[
+        "export",
+        &id,
+        "--format",
+        "csv",
+        "--output",
+        csv_path.to_str().unwrap(),
+    ]))
+    .await;
+    assert!(exported.status.success(), "{}", stderr(&exported));
+    let csv = std::fs::read_to_string(&csv_path).unwrap();
+    let mut lines = csv.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    for column in [
+        "frequency_hz",
+        "generator_level_dbm",
+        "level_at_modulator_dbm",
+        "v_peak_volts",
+        "modulation_index",
+        "v_pi_volts",
+        "v_pi_uncertainty_volts",
+    ] {
+        assert!(header.contains(&column), "{column} missing from {header:?}");
+    }
+    let column = |name: &str| header.iter().position(|h| *h == name).unwrap();
+    let rows: Vec<Vec<&str>> = lines.map(|l| l.split(',').collect()).collect();
+    assert_eq!(
+        rows.len(),
+        2 * 9,
+        "2 frequencies x levels 0, 2.5, ..., 20 dBm"
+    );
+    for row in &rows {
+        let f: f64 = row[column("frequency_hz")].parse().unwrap();
+        let v_pi: f64 = row[column("v_pi_volts")].parse().unwrap();
+        let truth = bench.sim.v_pi_at(halfwave::units::Hz(f)).0;
+        assert!(
+            (v_pi - truth).abs() / truth < 0.02,
+            "V_pi at {f} Hz: {v_pi} V vs {truth} V"
+        );
+        let v_peak: f64 = row[column("v_peak_volts")].parse().unwrap();
+        assert!(v_peak > 0.0);
+    }
+
+    let json = run(with(&["export", &id, "--format", "json"])).await;
+    assert!(json.status.success(), "{}", stderr(&json));
+    let json: serde_json::Value = serde_json::from_slice(&json.stdout).unwrap();
+    assert_eq!(json["points"].as_array().unwrap().len(), 18);
+    assert!(json["points"][0]["v_peak_volts"].as_f64().is_some());
+
+    // A plan the daemon refuses: every invalid field named.
+    let bad_plan = dir.path().join("bad.json");
+    let mut bad = plan_json();
+    bad["levels"]["stop_dbm"] = serde_json::json!(40.0);
+    bad["frequencies"]["values_hz"] = serde_json::json!([-1.0]);
+    std::fs::write(&bad_plan, bad.to_string()).unwrap();
+    let refused = run(with(&["submit", bad_plan.to_str().unwrap()])).await;
+    failed_with(&refused, &["refused", "levels", "frequencies"]);
+
+    // --no-follow returns the run id at once.
+    let queued = run(with(&["submit", plan, "--no-follow", "--json"])).await;
+    assert!(queued.status.success(), "{}", stderr(&queued));
+    let queued: serde_json::Value = serde_json::from_slice(&queued.stdout).unwrap();
+    assert!(queued["run_id"].as_i64().unwrap() > run_id);
+}
+
+#[tokio::test]
+async fn db_backup_copies_a_database_and_refuses_to_overwrite() {
+    let dir = tempfile::tempdir().unwrap();
+    let database = dir.path().join("halfwave.db");
+    let database_text = database.to_str().unwrap();
+    let store = halfwave::store::Store::open(database_text).await.unwrap();
+    halfwave::api::tokens::create(store.pool(), "lab-b", Role::Operator, "test")
+        .await
+        .unwrap();
+
+    let dest = dir.path().join("backup.db");
+    let out = halfwave_async(&[
+        "db",
+        "backup",
+        dest.to_str().unwrap(),
+        "--database",
+        database_text,
+        "--json",
+    ])
+    .await;
+    assert!(out.status.success(), "{}", stderr(&out));
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert!(report["bytes"].as_u64().unwrap() > 0);
+    // The copy is a working database holding what the original held (the store still open).
+    let copy = halfwave::store::Store::open(dest.to_str().unwrap())
+        .await
+        .unwrap();
+    let tokens = halfwave::api::tokens::list(copy.pool()).await.unwrap();
+    assert_eq!(tokens.len(), 1);
+    assert_eq!(tokens[0].name, "lab-b");
+
+    let again = halfwave_async(&[
+        "db",
+        "backup",
+        dest.to_str().unwrap(),
+        "--database",
+        database_text,
+    ])
+    .await;
+    failed_with(&again, &["already exists"]);
+    let missing = halfwave_async(&[
+        "db",
+        "backup",
+        dir.path().join("other.db").to_str().unwrap(),
+        "--database",
+        "/nonexistent/halfwave.db",
+    ])
+    .await;
+    failed_with(&missing, &["no database at /nonexistent/halfwave.db"]);
+    assert!(!Path::new("/nonexistent/halfwave.db").exists());
+    let neither = halfwave_async(&["db", "backup", "x.db"]).await;
+    failed_with(&neither, &["--config", "--database"]);
+}
