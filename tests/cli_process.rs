@@ -388,6 +388,18 @@ async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
     let refused = run(with(&["submit", bad_plan.to_str().unwrap()])).await;
     failed_with(&refused, &["refused", "levels", "frequencies"]);
 
+    // A run that does not exist, and an export into a directory that does not exist.
+    let unknown = run(with(&["watch", "9999"])).await;
+    failed_with(&unknown, &["404", "9999"]);
+    let nowhere = run(with(&[
+        "export",
+        &id,
+        "--output",
+        "/nonexistent/dir/run.csv",
+    ]))
+    .await;
+    failed_with(&nowhere, &["cannot write /nonexistent/dir/run.csv"]);
+
     // --no-follow returns the run id at once.
     let queued = run(with(&["submit", plan, "--no-follow", "--json"])).await;
     assert!(queued.status.success(), "{}", stderr(&queued));
@@ -445,6 +457,17 @@ async fn db_backup_copies_a_database_and_refuses_to_overwrite() {
     .await;
     failed_with(&missing, &["no database at /nonexistent/halfwave.db"]);
     assert!(!Path::new("/nonexistent/halfwave.db").exists());
+    let bad_config = dir.path().join("bad.toml");
+    std::fs::write(&bad_config, "data_dir = [\n").unwrap();
+    let bad = halfwave_async(&[
+        "db",
+        "backup",
+        dir.path().join("third.db").to_str().unwrap(),
+        "--config",
+        bad_config.to_str().unwrap(),
+    ])
+    .await;
+    failed_with(&bad, &["bad.toml", "line"]);
     let neither = halfwave_async(&["db", "backup", "x.db"]).await;
     failed_with(&neither, &["--config", "--database"]);
 }

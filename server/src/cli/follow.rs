@@ -59,17 +59,28 @@ impl EventStream {
     }
 }
 
-/// A progress bar on stderr (drawn only on a terminal).
+/// A progress indicator on stderr (drawn only on a terminal): a spinner until the daemon says how
+/// many points the run has, then a bar (see [`set_total`]).
 pub fn run_bar(run_id: i64) -> ProgressBar {
-    let bar = ProgressBar::new(0);
-    let style = ProgressStyle::with_template(
-        "run {prefix} [{elapsed_precise}] {wide_bar} {pos}/{len} points, {eta} left  {msg}",
-    )
-    .unwrap_or_else(|_| ProgressStyle::default_bar());
+    let bar = ProgressBar::no_length();
+    let style = ProgressStyle::with_template("run {prefix} [{elapsed_precise}] {spinner} {msg}")
+        .unwrap_or_else(|_| ProgressStyle::default_spinner());
     bar.set_style(style);
     bar.set_prefix(run_id.to_string());
     bar.enable_steady_tick(Duration::from_millis(200));
     bar
+}
+
+/// Gives the bar its length, switching it from a spinner to a bar the first time.
+fn set_total(bar: &ProgressBar, total: u64) {
+    if bar.length().is_none() {
+        let style = ProgressStyle::with_template(
+            "run {prefix} [{elapsed_precise}] {wide_bar} {pos}/{len} points, {eta} left  {msg}",
+        )
+        .unwrap_or_else(|_| ProgressStyle::default_bar());
+        bar.set_style(style);
+    }
+    bar.set_length(total);
 }
 
 /// Follows run `run_id` until it ends and returns it as the daemon stores it. `events` is a
@@ -138,7 +149,7 @@ fn show_event(bar: &ProgressBar, event: &serde_json::Value) -> bool {
     match event["event"].as_str().unwrap_or_default() {
         "started" => {
             if let Some(total) = count("total_points") {
-                bar.set_length(total);
+                set_total(bar, total);
             }
             if let Some(done) = count("already_measured") {
                 bar.set_position(done);
@@ -148,7 +159,7 @@ fn show_event(bar: &ProgressBar, event: &serde_json::Value) -> bool {
         }
         "point" => {
             if let (Some(done), Some(total)) = (count("completed_points"), count("total_points")) {
-                bar.set_length(total);
+                set_total(bar, total);
                 bar.set_position(done);
             }
             if let (Some(f), Some(level), Some(beta)) = (
