@@ -194,7 +194,18 @@ fn check_bench_identifies_the_simulated_instruments_and_leaves_rf_off() {
 #[test]
 fn clients_name_an_unreachable_daemon() {
     let url = format!("http://127.0.0.1:{}", closed_port());
+    let dir = tempfile::tempdir().unwrap();
+    let plan = dir.path().join("plan.json");
+    std::fs::write(&plan, plan_json().to_string()).unwrap();
     for args in [
+        vec![
+            "submit",
+            plan.to_str().unwrap(),
+            "--url",
+            &url,
+            "--token",
+            "hwt_x",
+        ],
         vec!["runs", "--url", &url, "--token", "hwt_x"],
         vec!["show", "1", "--url", &url, "--token", "hwt_x"],
         vec!["watch", "1", "--url", &url, "--token", "hwt_x"],
