@@ -482,3 +482,59 @@ async fn db_backup_copies_a_database_and_refuses_to_overwrite() {
     let neither = halfwave_async(&["db", "backup", "x.db"]).await;
     failed_with(&neither, &["--config", "--database"]);
 }
+
+#[test]
+fn check_bench_speaks_scpi_over_tcp_and_leaves_the_output_off() {
+    use std::io::{BufRead, BufReader, Write};
+    let mut sim = std::process::Command::new(BIN)
+        .args([
+            "sim",
+            "--source-port",
+            "0",
+            "--analyzer-port",
+            "0",
+            "--time-factor",
+            "0",
+        ])
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(sim.stdout.take().unwrap()).lines();
+    let mut resource = |role: &str| {
+        let line = lines.next().unwrap().unwrap();
+        assert!(line.starts_with(role), "{line}");
+        line.split_whitespace().nth(1).unwrap().to_string()
+    };
+    let source = resource("rf-source");
+    let analyzer = resource("analyzer");
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("halfwave.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"tcp-bench\"\nsource = {{ kind = \"scpi\", resource = \"{source}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{analyzer}\" }}\n"
+        ),
+    )
+    .unwrap();
+    let out = halfwave(&[
+        "check-bench",
+        "--config",
+        config.to_str().unwrap(),
+        "--json",
+    ]);
+    // Ask the simulated source itself (SCPI OUTPut?, "0" = off) before stopping it.
+    let port: u16 = source.split("::").nth(2).unwrap().parse().unwrap();
+    let mut link = std::net::TcpStream::connect(("127.0.0.1", port)).unwrap();
+    link.write_all(b"OUTPut?\n").unwrap();
+    let mut answer = String::new();
+    BufReader::new(link).read_line(&mut answer).unwrap();
+    let _ = sim.kill();
+    let _ = sim.wait();
+    assert!(out.status.success(), "{}{}", stdout(&out), stderr(&out));
+    assert_eq!(answer.trim(), "0", "the RF output is off after the check");
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let bench = &report["benches"][0];
+    assert_eq!(bench["ok"], true, "{bench}");
+    assert_eq!(bench["instruments"][0]["rf_output_on_after"], false);
+    assert_eq!(bench["instruments"][1]["trace_points"], 1001);
+}

@@ -4,8 +4,8 @@
 //! would (the same [`crate::engine::bench::build`], profiles included), identify each (`*IDN?`),
 //! and verify read-backs: the source's frequency and level, the analyzer's centre, span,
 //! resolution bandwidth and points, then one analyzer sweep and a trace fetch. It never switches
-//! an RF output on: the source is only told a frequency and its lowest level while its output
-//! stays off, and if an output is found on (a run may be measuring) its settings are left alone
+//! an RF output on: the source is only told a frequency and a low level while its output stays
+//! off, and if an output is found on (a run may be measuring) its settings are left alone
 //! and the check says so. Simulated benches are checked the same way. Run it while the daemon is
 //! stopped or idle: it changes instrument settings, which a running sweep would not expect.
 
@@ -22,6 +22,17 @@ use std::path::PathBuf;
 /// that reaches microwaves; clamped to the source's own limits).
 const CHECK_FREQUENCY_HZ: f64 = 1e9;
 
+/// The level the source is set to for the read-back check, clamped to the source's limits: low
+/// enough to be harmless even if someone switched the output on by hand, and inside the range of
+/// any microwave signal generator (common practice: they reach from about -110 dBm or lower to
+/// +10 dBm or higher). Not the profile's lowest level, which may lie outside the instrument's.
+const CHECK_LEVEL_DBM: f64 = -20.0;
+
+/// The analyzer's centre for the check: 193.4 THz (1550 nm, the C band the bench works in),
+/// clamped to the analyzer's range. Not the middle of the profile's range, which may lie outside
+/// the instrument's.
+const CHECK_CENTER_HZ: f64 = 193.4e12;
+
 /// The span of the analyzer check (clamped to the analyzer's limits).
 const CHECK_SPAN_HZ: f64 = 10e9;
 
@@ -35,7 +46,7 @@ const READ_BACK_TOLERANCE: f64 = 1e-3;
 #[derive(Debug, clap::Args)]
 #[command(
     after_help = "RF stays off: check-bench never switches an RF output on. It identifies each \
-instrument (*IDN?) and sets the source's frequency and lowest level with the output off, and \
+instrument (*IDN?) and sets the source's frequency and a low level (-20 dBm) with the output off, and \
 the analyzer's centre, span, resolution bandwidth and points, then takes one sweep. Run it while \
 the daemon is stopped or idle."
 )]
@@ -230,8 +241,7 @@ async fn check_source(source: &mut dyn RfSource) -> InstrumentCheck {
     check
         .read_backs
         .push(compare("frequency_hz", frequency, set));
-    // The lowest level the source offers: harmless even if the output were switched on by hand.
-    let level = limits.min_level.0;
+    let level = CHECK_LEVEL_DBM.clamp(limits.min_level.0, limits.max_level.0);
     let set = source.set_level(Dbm(level)).await.map(|l| l.0);
     check.read_backs.push(compare("level_dbm", level, set));
     match source.output_enabled().await {
@@ -270,7 +280,7 @@ async fn check_analyzer(analyzer: &mut dyn SpectrumAnalyzer) -> InstrumentCheck 
         }
     }
     let caps = analyzer.capabilities();
-    let center = 0.5 * (caps.min_frequency.0 + caps.max_frequency.0);
+    let center = CHECK_CENTER_HZ.clamp(caps.min_frequency.0, caps.max_frequency.0);
     let span = CHECK_SPAN_HZ.clamp(caps.min_span.0, caps.max_span.0);
     // The widest offered resolution that still leaves a hundred of them in the span.
     let rbw = caps
