@@ -275,7 +275,8 @@ fn plan_json() -> serde_json::Value {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
-    let bench = spawn_app_with_engine(0.0).await;
+    // Instrument times scaled to 5 %: the run lasts about a second, so submit really follows it.
+    let bench = spawn_app_with_engine(0.05).await;
     let app = &bench.app;
     let admin = app.token("admin-1", Role::Admin).await;
     let operator = app.token("lab-b", Role::Operator).await;
@@ -537,4 +538,30 @@ fn check_bench_speaks_scpi_over_tcp_and_leaves_the_output_off() {
     assert_eq!(bench["ok"], true, "{bench}");
     assert_eq!(bench["instruments"][0]["rf_output_on_after"], false);
     assert_eq!(bench["instruments"][1]["trace_points"], 1001);
+}
+
+#[test]
+fn token_and_run_ids_refuse_bad_input() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("halfwave.toml");
+    std::fs::write(&config, "[limits]\nmax_level_at_modulator_dbm = \"hot\"\n").unwrap();
+    let out = halfwave(&[
+        "token",
+        "create",
+        "--role",
+        "operator",
+        "--name",
+        "me",
+        "--config",
+        config.to_str().unwrap(),
+    ]);
+    failed_with(&out, &["halfwave.toml", "line 2"]);
+    let out = halfwave(&["token", "list", "--config", "/nonexistent/halfwave.toml"]);
+    failed_with(&out, &["/nonexistent/halfwave.toml"]);
+    for words in [["show", "abc"], ["watch", "-"], ["export", "1.5"]] {
+        let out = halfwave(&words);
+        failed_with(&out, &["invalid value"]);
+    }
+    let out = halfwave(&["export", "1", "--format", "xlsx"]);
+    failed_with(&out, &["xlsx", "csv", "json"]);
 }
