@@ -93,6 +93,15 @@ pub enum InstrumentError {
     /// The instrument or its profile cannot do this.
     #[error("{resource} does not support {what}")]
     Unsupported { resource: String, what: String },
+
+    /// The link was lost while the RF output may have been on and was re-established; the
+    /// source's output was switched off because nothing is known about what it did meanwhile.
+    #[error("the link to {resource} was lost during {operation} and re-established; {detail}")]
+    LinkInterrupted {
+        resource: String,
+        operation: String,
+        detail: String,
+    },
 }
 
 impl InstrumentError {

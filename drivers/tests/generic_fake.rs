@@ -150,6 +150,8 @@ async fn a_dropped_connection_is_recovered_within_the_step() {
     let mut source = ScpiRfSource::connect(&fake.resource(), quick_source_profile())
         .await
         .unwrap();
+    // The output is unknown after connecting; the engine confirms it off first, so do the same.
+    source.safe_off().await.unwrap();
     fake.state().faults.drop_after_commands = Some(1);
     assert_eq!(source.set_frequency(Hz(3e9)).await.unwrap(), Hz(3e9));
     assert_eq!(fake.state().connections, 2);
@@ -169,6 +171,8 @@ async fn a_silent_instrument_times_out_cleanly() {
     let mut source = ScpiRfSource::connect(&fake.resource(), profile)
         .await
         .unwrap();
+    // The output is unknown after connecting; the engine confirms it off first, so do the same.
+    source.safe_off().await.unwrap();
     fake.state().faults.silent = true;
     let started = Instant::now();
     let err = source.set_frequency(Hz(2e9)).await.unwrap_err();
@@ -191,6 +195,8 @@ async fn a_garbled_reply_is_a_parse_error_then_the_link_recovers() {
     let mut source = ScpiRfSource::connect(&fake.resource(), profile)
         .await
         .unwrap();
+    // The output is unknown after connecting; the engine confirms it off first, so do the same.
+    source.safe_off().await.unwrap();
     fake.state().faults.garble_next_reply = true;
     let err = source.output_enabled().await.unwrap_err();
     assert!(matches!(err, InstrumentError::Parse { .. }), "{err:?}");

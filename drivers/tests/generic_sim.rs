@@ -98,8 +98,10 @@ async fn link_faults_of_the_simulator_are_survived() {
     let mut source = ScpiRfSource::connect(&server.resource(Role::RfSource), source_profile(1))
         .await
         .unwrap();
+    // As the engine does at start-up: the output is now known to be off.
+    source.safe_off().await.unwrap();
 
-    // Dropped connection: the step is repeated on a new connection.
+    // Dropped connection with the output off: the step is repeated on a new connection.
     faults.drop_after_commands(0);
     assert_eq!(source.set_frequency(Hz(3e9)).await.unwrap(), Hz(3e9));
 
@@ -112,6 +114,7 @@ async fn link_faults_of_the_simulator_are_survived() {
     let mut strict = ScpiRfSource::connect(&server.resource(Role::RfSource), source_profile(0))
         .await
         .unwrap();
+    strict.safe_off().await.unwrap();
     faults.stop_answering();
     let started = Instant::now();
     let err = strict.output_enabled().await.unwrap_err();
@@ -131,6 +134,43 @@ async fn link_faults_of_the_simulator_are_survived() {
     faults.drop_after_commands(0);
     source.safe_off().await.unwrap();
     assert!(!server.bench().rf_output_on());
+}
+
+/// The interlock on a lost link (common practice: an instrument keeps its output state when the
+/// remote link drops, so the client must assume the worst): a step that needed a new connection
+/// while the output was on fails, and the output is off afterwards.
+#[tokio::test]
+async fn a_link_lost_with_the_output_on_switches_it_off_and_fails_the_step() {
+    let server = start_bench(0.0).await;
+    let faults = server.faults(Role::RfSource);
+    let mut source = ScpiRfSource::connect(&server.resource(Role::RfSource), source_profile(2))
+        .await
+        .unwrap();
+    source.safe_off().await.unwrap();
+    source.set_level(Dbm(-10.0)).await.unwrap();
+    source.set_output(true).await.unwrap();
+    assert!(server.bench().rf_output_on());
+
+    faults.drop_after_commands(0);
+    let err = source.set_level(Dbm(-8.0)).await.unwrap_err();
+    assert!(
+        matches!(err, InstrumentError::LinkInterrupted { .. }),
+        "{err:?}"
+    );
+    let message = err.to_string();
+    assert!(message.contains("switched off"), "{message}");
+    assert!(!server.bench().rf_output_on(), "the interlock left RF on");
+    let log = server.bench().command_log(Role::RfSource);
+    assert!(
+        log.iter()
+            .rev()
+            .take(4)
+            .any(|c| c.starts_with("OUTP") && c.contains("OFF")),
+        "no output-off command after the reconnect: {log:?}"
+    );
+
+    // With the output known off, the next steps go on normally.
+    assert_eq!(source.set_level(Dbm(-8.0)).await.unwrap(), Dbm(-8.0));
 }
 
 async fn sweep_and_fetch(server: &SimServer, format: DataFormat, order: ByteOrder) -> Trace {

@@ -169,3 +169,32 @@ async fn the_amplified_example_can_overdrive_and_shows_asymmetric_sidebands() {
         "+10 dBm through the amplifier exceeds the limit"
     );
 }
+
+/// The busy-time account the wall-time benchmark compares against: every settling and sweep of
+/// the scenario, scaled by the time factor, added up per instrument.
+#[tokio::test]
+async fn busy_time_adds_up_the_scenario_settling_and_sweep_times() {
+    use halfwave_drivers::sim::{Role, SimBench};
+    use halfwave_drivers::{RfSource, SpectrumAnalyzer};
+    let scenario = Scenario::builtin().unwrap();
+    let settling = scenario.rf_source.settling_time_s;
+    let sweep = scenario.analyzer.sweep_time_s;
+    let bench = SimBench::new(scenario, 1).with_time_factor(0.01);
+    let mut source = bench.rf_source();
+    let mut analyzer = bench.analyzer();
+    source.set_frequency(Hz(2e9)).await.unwrap();
+    source.set_level(Dbm(0.0)).await.unwrap();
+    source.set_output(true).await.unwrap();
+    analyzer.sweep().await.unwrap();
+    analyzer.sweep().await.unwrap();
+    let expect_source = 3.0 * settling * 0.01;
+    let expect_analyzer = 2.0 * sweep * 0.01;
+    let got_source = bench.busy_time(Role::RfSource).as_secs_f64();
+    let got_analyzer = bench.busy_time(Role::Analyzer).as_secs_f64();
+    assert!((got_source - expect_source).abs() < 1e-6, "{got_source} s");
+    assert!(
+        (got_analyzer - expect_analyzer).abs() < 1e-6,
+        "{got_analyzer} s"
+    );
+    source.safe_off().await.unwrap();
+}

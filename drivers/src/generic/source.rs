@@ -6,6 +6,12 @@
 //! profile's tolerance, otherwise [`InstrumentError::ReadBack`]. [`ScpiRfSource::safe_off`] tries
 //! harder than any other call: it reconnects and repeats until the instrument confirms the output
 //! is off, because it is what every stop path relies on.
+//!
+//! A lost link is an interlock event. The session repeats a step on a new connection, which is
+//! harmless for the step itself, but while the link was down nobody knew what the output did. So
+//! after any step that needed a new connection the driver switches the output off and confirms it;
+//! if the output may have been on, the step then fails with [`InstrumentError::LinkInterrupted`],
+//! because the measurement in progress assumed RF on and can no longer be trusted.
 
 use super::session::ScpiSession;
 use crate::profile::{fill_template, SourceProfile};
@@ -22,6 +28,8 @@ const SAFE_OFF_ATTEMPTS: u32 = 4;
 pub struct ScpiRfSource {
     session: ScpiSession,
     profile: SourceProfile,
+    /// False only while the output is known to be off (confirmed by a read-back).
+    output_may_be_on: bool,
 }
 
 impl ScpiRfSource {
@@ -39,7 +47,12 @@ impl ScpiRfSource {
             &profile.on_connect,
         )
         .await?;
-        let source = ScpiRfSource { session, profile };
+        // Nothing is known about the output of an instrument just connected to.
+        let source = ScpiRfSource {
+            session,
+            profile,
+            output_may_be_on: true,
+        };
         Ok(source)
     }
 
@@ -76,6 +89,41 @@ impl ScpiRfSource {
         ))
     }
 
+    fn connections(&self) -> u64 {
+        self.session.transport().connection_count()
+    }
+
+    /// The interlock after a step (see the module documentation): when the step needed a new
+    /// connection (`connections_before` is the count before it), switch the output off and fail
+    /// the step if the output may have been on.
+    async fn after_step<T>(
+        &mut self,
+        operation: &str,
+        connections_before: u64,
+        result: Result<T, InstrumentError>,
+    ) -> Result<T, InstrumentError> {
+        if self.connections() == connections_before {
+            return result;
+        }
+        let was_on = self.output_may_be_on;
+        tracing::warn!(resource = %self.session.name(), operation, output_may_have_been_on = was_on, "the link was re-established; switching the RF output off");
+        let resource = self.session.name().to_string();
+        let interrupted = |detail: String| InstrumentError::LinkInterrupted {
+            resource,
+            operation: operation.to_string(),
+            detail,
+        };
+        match self.safe_off().await {
+            Err(e) => Err(interrupted(format!(
+                "the output could not be confirmed off afterwards ({e}); switch it off by hand"
+            ))),
+            Ok(()) if was_on => Err(interrupted(
+                "the output was switched off because its state while the link was down is unknown; the measurement in progress is void".into(),
+            )),
+            Ok(()) => result,
+        }
+    }
+
     async fn try_off(&mut self) -> Result<(), InstrumentError> {
         let c = &self.profile.commands;
         let command = fill_template(&c.set_output, &c.output_off_word);
@@ -101,7 +149,9 @@ impl RfSource for ScpiRfSource {
     }
 
     async fn identify(&mut self) -> Result<Identity, InstrumentError> {
-        self.session.identify().await
+        let before = self.connections();
+        let result = self.session.identify().await;
+        self.after_step("identify", before, result).await
     }
 
     fn limits(&self) -> SourceLimits {
@@ -120,7 +170,9 @@ impl RfSource for ScpiRfSource {
             self.profile.commands.set_frequency.clone(),
             self.profile.commands.query_frequency.clone(),
         );
-        let actual = self.session.set_number(&set, &query, frequency.0).await?;
+        let before = self.connections();
+        let result = self.session.set_number(&set, &query, frequency.0).await;
+        let actual = self.after_step("set frequency", before, result).await?;
         if (actual - frequency.0).abs() > self.profile.read_back.frequency_hz || !actual.is_finite()
         {
             return Err(self.session.read_back_error(
@@ -139,7 +191,9 @@ impl RfSource for ScpiRfSource {
             self.profile.commands.set_level.clone(),
             self.profile.commands.query_level.clone(),
         );
-        let actual = self.session.set_number(&set, &query, level.0).await?;
+        let before = self.connections();
+        let result = self.session.set_number(&set, &query, level.0).await;
+        let actual = self.after_step("set level", before, result).await?;
         if (actual - level.0).abs() > self.profile.read_back.level_db || !actual.is_finite() {
             return Err(self.session.read_back_error(
                 "level",
@@ -159,7 +213,12 @@ impl RfSource for ScpiRfSource {
         };
         let command = fill_template(&c.set_output, word);
         let query = c.query_output.clone();
-        let reply = self.session.set_and_read_back(&command, &query).await?;
+        if on {
+            self.output_may_be_on = true;
+        }
+        let before = self.connections();
+        let result = self.session.set_and_read_back(&command, &query).await;
+        let reply = self.after_step("set output", before, result).await?;
         let actual = parse_bool(&reply).map_err(|e| self.session.parse_error(&query, e))?;
         if actual != on {
             let state = |b: bool| if b { "on" } else { "off" }.to_string();
@@ -167,12 +226,16 @@ impl RfSource for ScpiRfSource {
                 .session
                 .read_back_error("output", state(on), state(actual)));
         }
+        self.output_may_be_on = actual;
         Ok(actual)
     }
 
     async fn output_enabled(&mut self) -> Result<bool, InstrumentError> {
         let query = self.profile.commands.query_output.clone();
-        self.session.query_bool(&query).await
+        let before = self.connections();
+        let result = self.session.query_bool(&query).await;
+        self.after_step("read the output state", before, result)
+            .await
     }
 
     async fn safe_off(&mut self) -> Result<(), InstrumentError> {
@@ -180,6 +243,7 @@ impl RfSource for ScpiRfSource {
         for attempt in 1..=SAFE_OFF_ATTEMPTS {
             match self.try_off().await {
                 Ok(()) => {
+                    self.output_may_be_on = false;
                     tracing::debug!(resource = %self.session.name(), attempt, "RF output confirmed off");
                     return Ok(());
                 }

@@ -157,6 +157,16 @@ impl SimBench {
         }
     }
 
+    /// How long an instrument has been busy settling or sweeping so far, added up over every
+    /// operation (scaled by the time factor).
+    pub fn busy_time(&self, role: Role) -> std::time::Duration {
+        let state = self.lock();
+        match role {
+            Role::RfSource => state.source.status.busy_total,
+            Role::Analyzer => state.analyzer.status.busy_total,
+        }
+    }
+
     /// Empties an instrument's command log.
     pub fn clear_command_log(&self, role: Role) {
         let mut state = self.lock();

@@ -42,6 +42,9 @@ pub struct InstrumentStatus {
     pub log: Vec<String>,
     /// When the operation in progress (settling, sweep) completes.
     pub busy_until: Option<Instant>,
+    /// Every settling and sweep time so far, added up (scaled by the time factor): what a run
+    /// cannot go faster than, the reference of the wall-time benchmark.
+    pub busy_total: std::time::Duration,
 }
 
 impl InstrumentStatus {
@@ -51,6 +54,7 @@ impl InstrumentStatus {
             event_status: 0,
             log: Vec::new(),
             busy_until: None,
+            busy_total: std::time::Duration::ZERO,
         }
     }
 
@@ -72,6 +76,7 @@ impl InstrumentStatus {
     fn busy_for(&mut self, seconds: f64, time_factor: f64) {
         let wait = halfwave_units::Seconds(seconds * time_factor).to_duration();
         let until = Instant::now() + wait;
+        self.busy_total += wait;
         self.busy_until = Some(self.busy_until.map_or(until, |b| b.max(until)));
     }
 }
