@@ -7,68 +7,16 @@
 //! the engine is what a lab measures end to end with a power meter: the scenario's cable loss
 //! plus the generator's level error at each frequency.
 
+mod engine_support;
+
+use engine_support::{assert_v_pi_within, plan, upload_true_chain, wait_for_end, POINTS};
 use halfwave::config::Limits;
 use halfwave::engine::bench::BenchInstruments;
 use halfwave::engine::events::ProgressEvent;
-use halfwave::engine::plan::{
-    AnalyzerSpec, ChainSpec, DeviceSpec, FrequencySpec, LevelSpec, PlanRequest,
-};
 use halfwave::engine::Engine;
-use halfwave::store::{ChainCalibrationPoint, RunState, Store};
+use halfwave::store::{RunState, Store};
 use halfwave_drivers::sim::{Role, Scenario, SimBench};
-use halfwave_units::{Db, Hz};
 use std::time::Duration;
-
-const FREQUENCIES_HZ: [f64; 6] = [0.2e9, 0.5e9, 1.5e9, 4e9, 10e9, 20e9];
-
-fn plan(chain_name: &str) -> PlanRequest {
-    PlanRequest {
-        device: DeviceSpec {
-            serial: "EG-PM-0042".into(),
-            model: "thin-film phase modulator (simulated)".into(),
-            rf_input_limit_dbm: 27.0,
-            wavelength_nm: 1550.0,
-        },
-        bench: "sim".into(),
-        chain: ChainSpec::Stored {
-            name: chain_name.into(),
-            version: None,
-        },
-        frequencies: FrequencySpec::List {
-            values_hz: FREQUENCIES_HZ.to_vec(),
-        },
-        levels: LevelSpec::Ramp {
-            start_dbm: 0.0,
-            stop_dbm: 20.0,
-            step_db: 2.5,
-        },
-        settle_s: 0.0,
-        averages: 1,
-        analyzer: AnalyzerSpec::default(),
-        reference_trace: true,
-        carrier_tracking: true,
-        note: String::new(),
-    }
-}
-
-/// The end-to-end chain calibration of the simulated bench at the plan's frequencies.
-async fn upload_true_chain(store: &Store, scenario: &Scenario) -> String {
-    let points: Vec<ChainCalibrationPoint> = FREQUENCIES_HZ
-        .iter()
-        .map(|&f| {
-            let f = Hz(f);
-            ChainCalibrationPoint::new(
-                f,
-                Db(scenario.level_error_at(f).0 - scenario.chain_loss_at(f).0),
-            )
-        })
-        .collect();
-    store
-        .create_chain_calibration("sim-chain", "test", &points)
-        .await
-        .expect("chain calibration stored");
-    "sim-chain".into()
-}
 
 /// An engine on one simulated bench named "sim".
 async fn start_engine(limits: Limits, store: Store, sim: &SimBench) -> Engine {
@@ -79,26 +27,6 @@ async fn start_engine(limits: Limits, store: Store, sim: &SimBench) -> Engine {
     )
     .await
     .unwrap()
-}
-
-async fn wait_for_end(
-    events: &mut tokio::sync::broadcast::Receiver<ProgressEvent>,
-    run_id: i64,
-) -> String {
-    let deadline = tokio::time::Instant::now() + Duration::from_secs(300);
-    loop {
-        let ev = tokio::time::timeout_at(deadline, events.recv())
-            .await
-            .expect("run finished in time");
-        if let Ok(ProgressEvent::Finished {
-            run_id: id, state, ..
-        }) = ev
-        {
-            if id == run_id {
-                return state;
-            }
-        }
-    }
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -114,7 +42,7 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
     let mut events = engine.subscribe();
     let laser_before = sim.laser_frequency();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
-    assert_eq!(wait_for_end(&mut events, run_id).await, "completed");
+    assert_eq!(wait_for_end(&mut events, run_id).await.0, "completed");
 
     // The laser really drifted while the run measured (the scenario's random walk).
     assert_ne!(sim.laser_frequency(), laser_before);
@@ -127,22 +55,9 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
     let run = store.run(run_id).await.unwrap();
     assert_eq!(run.state, RunState::Completed);
     let points = store.points_of_run(run_id).await.unwrap();
-    assert_eq!(points.len(), FREQUENCIES_HZ.len() * 9);
+    assert_eq!(points.len(), POINTS);
     let results = store.frequency_results(run_id).await.unwrap();
-    assert_eq!(results.len(), FREQUENCIES_HZ.len());
-    for r in &results {
-        let truth = scenario.v_pi_at(Hz(r.frequency_hz)).0;
-        let error = (r.v_pi_volts - truth) / truth;
-        assert!(
-            error.abs() < 0.02,
-            "at {} GHz: V_pi {} V (u {}), scenario {} V, error {:.3} %",
-            r.frequency_hz / 1e9,
-            r.v_pi_volts,
-            r.v_pi_uncertainty_volts,
-            truth,
-            error * 100.0
-        );
-    }
+    assert_v_pi_within(&results, &scenario, 0.02);
     engine.shutdown().await;
 }
 
@@ -204,7 +119,7 @@ async fn cancel_leaves_the_output_off_within_a_second() {
         );
         tokio::time::sleep(Duration::from_millis(10)).await;
     }
-    assert_eq!(wait_for_end(&mut events, run_id).await, "cancelled");
+    assert_eq!(wait_for_end(&mut events, run_id).await.0, "cancelled");
     assert!(!sim.rf_output_on());
     engine.shutdown().await;
 }
@@ -234,10 +149,7 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     let run = store.run(run_id).await.unwrap();
     assert_eq!(run.state, RunState::Interrupted);
     let before = store.points_of_run(run_id).await.unwrap().len();
-    assert!(
-        before >= 12 && before < FREQUENCIES_HZ.len() * 9,
-        "{before} points"
-    );
+    assert!(before >= 12 && before < POINTS, "{before} points");
 
     // A new engine on the same database and bench: the run is still interrupted; resume it.
     sim.set_time_factor(0.0);
@@ -249,19 +161,11 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     .await;
     let mut events = engine.subscribe();
     engine.resume(run_id, "test").await.unwrap();
-    assert_eq!(wait_for_end(&mut events, run_id).await, "completed");
+    assert_eq!(wait_for_end(&mut events, run_id).await.0, "completed");
     let points = store.points_of_run(run_id).await.unwrap();
-    assert_eq!(
-        points.len(),
-        FREQUENCIES_HZ.len() * 9,
-        "same count as an uninterrupted run"
-    );
+    assert_eq!(points.len(), POINTS, "same count as an uninterrupted run");
     let results = store.frequency_results(run_id).await.unwrap();
-    assert_eq!(results.len(), FREQUENCIES_HZ.len());
-    for r in &results {
-        let truth = scenario.v_pi_at(Hz(r.frequency_hz)).0;
-        assert!(((r.v_pi_volts - truth) / truth).abs() < 0.02);
-    }
+    assert_v_pi_within(&results, &scenario, 0.02);
     // A completed run cannot be resumed again.
     assert!(engine.resume(run_id, "test").await.is_err());
     engine.shutdown().await;
