@@ -284,6 +284,16 @@ impl Config {
             .unwrap_or_else(|| format!("sqlite://{}", self.data_dir.join("halfwave.db").display()))
     }
 
+    /// Creates the data directory (with its parents) if it is not there yet; the error names it.
+    pub fn create_data_dir(&self) -> Result<(), String> {
+        std::fs::create_dir_all(&self.data_dir).map_err(|e| {
+            format!(
+                "cannot create the data directory {}: {e}; check the path and its permissions",
+                self.data_dir.display()
+            )
+        })
+    }
+
     /// Resolves a path from the file against the file's directory.
     pub fn resolve(&self, path: &Path) -> PathBuf {
         if path.is_absolute() {

@@ -58,12 +58,7 @@ pub async fn serve(config: Config) -> Result<(), CliError> {
 
 /// Opens the store, starts the engine (RF off everywhere, recovery) and binds the listener.
 pub async fn start(config: &Config) -> Result<(Engine, tokio::net::TcpListener), CliError> {
-    std::fs::create_dir_all(&config.data_dir).map_err(|e| {
-        CliError::new(format!(
-            "cannot create the data directory {}: {e}",
-            config.data_dir.display()
-        ))
-    })?;
+    config.create_data_dir().map_err(CliError::new)?;
     let store = Store::open(&config.database_url())
         .await
         .map_err(|e| CliError::new(e.to_string()))?;

@@ -62,9 +62,12 @@ pub enum TokenAction {
 pub fn database_url(choice: &DatabaseChoice) -> Result<String, CliError> {
     match (&choice.database, &choice.config) {
         (Some(url), _) => Ok(url.clone()),
-        (None, Some(path)) => Config::load(path)
-            .map(|c| c.database_url())
-            .map_err(|e| CliError::new(e.to_string())),
+        (None, Some(path)) => {
+            // A token may be created before the daemon's first start: make its data directory.
+            let config = Config::load(path).map_err(|e| CliError::new(e.to_string()))?;
+            config.create_data_dir().map_err(CliError::new)?;
+            Ok(config.database_url())
+        }
         (None, None) => Err(CliError::new(
             "say which database: --config FILE (the daemon's configuration) or --database URL",
         )),
