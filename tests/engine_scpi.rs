@@ -113,7 +113,10 @@ async fn a_link_to_the_source_lost_mid_run_ends_with_rf_off_and_the_cause_record
     assert_eq!(run.state, RunState::Failed);
     let recorded = run.cause.clone().unwrap_or_default();
     assert!(
-        recorded.contains("link") && recorded.contains(&server.resource(Role::RfSource)),
+        // Lost in a repeatable step: "the link to ... was lost ... and re-established"; lost while
+        // waiting for the source to settle: "connection to ... failed during ...".
+        (recorded.contains("link") || recorded.contains("connection"))
+            && recorded.contains(&server.resource(Role::RfSource)),
         "the recorded cause names the lost link and the instrument: {recorded}"
     );
     eprintln!("recorded cause: {recorded}");

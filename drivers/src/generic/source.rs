@@ -7,6 +7,10 @@
 //! harder than any other call: it reconnects and repeats until the instrument confirms the output
 //! is off, because it is what every stop path relies on.
 //!
+//! A source takes time to settle after a change of frequency, level or output state. Every such
+//! setter ends with `*OPC?` (the profile's `common.operation_complete`), so the call returns when
+//! the instrument says the change is complete and a sweep that follows sees the settled drive.
+//!
 //! A lost link is an interlock event. The session repeats a step on a new connection, which is
 //! harmless for the step itself, but while the link was down nobody knew what the output did. So
 //! after any step that needed a new connection the driver switches the output off and confirms it;
@@ -87,6 +91,14 @@ impl ScpiRfSource {
             format!("{min} {unit}"),
             format!("{max} {unit}"),
         ))
+    }
+
+    /// Waits for the instrument to finish settling (`*OPC?`, within the transport's timeout).
+    async fn wait_settled(&mut self, operation: &str) -> Result<(), InstrumentError> {
+        let before = self.connections();
+        let timeout = self.session.transport().config().timeout;
+        let result = self.session.wait_complete(timeout).await;
+        self.after_step(operation, before, result).await
     }
 
     fn connections(&self) -> u64 {
@@ -181,6 +193,8 @@ impl RfSource for ScpiRfSource {
                 Hz(actual).to_string(),
             ));
         }
+        self.wait_settled("settle after the frequency change")
+            .await?;
         Ok(Hz(actual))
     }
 
@@ -201,6 +215,7 @@ impl RfSource for ScpiRfSource {
                 Dbm(actual).to_string(),
             ));
         }
+        self.wait_settled("settle after the level change").await?;
         Ok(Dbm(actual))
     }
 
@@ -227,6 +242,10 @@ impl RfSource for ScpiRfSource {
                 .read_back_error("output", state(on), state(actual)));
         }
         self.output_may_be_on = actual;
+        if on {
+            self.wait_settled("settle after switching the output on")
+                .await?;
+        }
         Ok(actual)
     }
 
