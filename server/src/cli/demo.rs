@@ -1,4 +1,4 @@
-//! `halfwave demo`: the whole job in one command, on the simulated bench, in about a minute.
+//! `halfwave demo`: the whole job in one command, on the simulated bench, in about ten seconds.
 //!
 //! It starts the real daemon in this process (the same [`super::serve::start`], engine and HTTP
 //! API as `halfwave serve`) on a free loopback port, with the built-in simulated bench (an

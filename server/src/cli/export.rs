@@ -120,3 +120,48 @@ pub fn run(args: ExportArgs) -> Result<(), CliError> {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn point(frequency_index: u32, index: Option<f64>) -> PointView {
+        PointView {
+            id: 1,
+            frequency_index,
+            level_index: 0,
+            frequency_hz: 2e9,
+            generator_level_dbm: 10.0,
+            level_at_modulator_dbm: 8.0,
+            v_peak_volts: 0.7943,
+            modulation_index: index,
+            modulation_index_uncertainty: index.map(|_| 0.01),
+            asymmetry_db: None,
+            lines: serde_json::Value::Null,
+            analysis: serde_json::Value::Null,
+            measured_at_unix_ms: 5,
+        }
+    }
+
+    #[test]
+    fn csv_rows_carry_their_frequency_v_pi_and_leave_missing_values_empty() {
+        let results = [FrequencyResultView {
+            frequency_index: 0,
+            frequency_hz: 2e9,
+            v_pi_volts: 3.7,
+            v_pi_uncertainty_volts: 0.02,
+            excluded_points: serde_json::Value::Null,
+        }];
+        let csv = points_csv(7, &[point(0, Some(0.67)), point(1, None)], &results);
+        let lines: Vec<&str> = csv.lines().collect();
+        assert_eq!(lines[0], CSV_HEADER);
+        let columns = CSV_HEADER.split(',').count();
+        assert!(lines.iter().all(|l| l.split(',').count() == columns));
+        assert_eq!(
+            lines[1],
+            "7,0,0,2000000000,10,8,0.7943,0.67,0.01,,3.7,0.02,5"
+        );
+        // A point whose spectrum was not analysed, at a frequency without a V_pi fit.
+        assert_eq!(lines[2], "7,1,0,2000000000,10,8,0.7943,,,,,,5");
+    }
+}

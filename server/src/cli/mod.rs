@@ -46,7 +46,7 @@ pub struct Cli {
 
 #[derive(Debug, Subcommand)]
 pub enum Command {
-    /// Run the whole job on a simulated bench in about a minute: an in-process daemon, a
+    /// Run the whole job on a simulated bench in seconds: an in-process daemon, a
     /// calibration submitted over HTTP, the V_pi table, the response frequencies and SVG plots.
     Demo(demo::DemoArgs),
     /// Serve the simulated bench (RF source and analyzer) as SCPI instruments over TCP.
