@@ -10,8 +10,9 @@
 //! reported.
 
 use super::runs::{runtime, to_json};
-use super::token::{database_url, DatabaseChoice};
+use super::token::DatabaseChoice;
 use super::CliError;
+use crate::config::Config;
 use clap::{Args, Subcommand};
 use sqlx::sqlite::SqliteConnectOptions;
 use sqlx::{ConnectOptions, Connection};
@@ -58,7 +59,7 @@ pub fn run(command: DbCommand) -> Result<(), CliError> {
             database,
             json,
         } => {
-            let url = database_url(&database)?;
+            let url = source_url(&database)?;
             let report = runtime()?.block_on(backup(&url, &dest))?;
             if json {
                 println!("{}", to_json(&report)?);
@@ -70,6 +71,20 @@ pub fn run(command: DbCommand) -> Result<(), CliError> {
             }
             Ok(())
         }
+    }
+}
+
+/// The database to copy. Unlike `token`, nothing is created: a backup of a database that does
+/// not exist is an error.
+fn source_url(choice: &DatabaseChoice) -> Result<String, CliError> {
+    match (&choice.database, &choice.config) {
+        (Some(url), _) => Ok(url.clone()),
+        (None, Some(path)) => Config::load(path)
+            .map(|c| c.database_url())
+            .map_err(|e| CliError::new(e.to_string())),
+        (None, None) => Err(CliError::new(
+            "say which database: --config FILE (the daemon's configuration) or --database URL",
+        )),
     }
 }
 
