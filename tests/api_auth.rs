@@ -7,7 +7,9 @@
 mod api_support;
 
 use api_support::{problem, spawn_app};
-use halfwave::api::tokens::Role;
+use halfwave::api::token_cache::TOKEN_CACHE_TTL;
+use halfwave::api::tokens::{self, Role};
+use std::time::Duration;
 
 #[tokio::test]
 async fn health_needs_no_token_but_everything_else_does() {
@@ -40,6 +42,7 @@ async fn unknown_and_revoked_tokens_get_401() {
 
     let admin = app.token("root", Role::Admin).await;
     let viewer = app.token("lab-b", Role::Viewer).await;
+    // Accepted, and now in the daemon's cache of verified tokens.
     assert_eq!(
         app.get("/api/v1/metrics", Some(&viewer)).await.status(),
         200
@@ -53,12 +56,30 @@ async fn unknown_and_revoked_tokens_get_401() {
         .await
         .unwrap();
     assert_eq!(revoke.status(), 204);
+    // Refused on the very next request: revoking through the API clears the cached verification.
     let after = app.get("/api/v1/metrics", Some(&viewer)).await;
     assert_eq!(after.status(), 401);
     assert!(problem(after).await["detail"]
         .as_str()
         .unwrap()
         .contains("revoked"));
+}
+
+#[tokio::test]
+async fn a_token_revoked_by_the_cli_is_refused_once_its_cached_verification_expires() {
+    let app = spawn_app().await;
+    let viewer = app.token("lab-c", Role::Viewer).await;
+    assert_eq!(
+        app.get("/api/v1/metrics", Some(&viewer)).await.status(),
+        200
+    );
+    // What `halfwave token revoke` does from another process: write the database directly.
+    tokens::revoke(&app.pool, "lab-c").await.unwrap();
+    tokio::time::sleep(TOKEN_CACHE_TTL + Duration::from_millis(100)).await;
+    assert_eq!(
+        app.get("/api/v1/metrics", Some(&viewer)).await.status(),
+        401
+    );
 }
 
 #[tokio::test]

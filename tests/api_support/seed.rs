@@ -1,11 +1,13 @@
 //! Stored data for the read tests and the load benchmark, written through the store's own API:
 //! a device, a drive-chain calibration and completed runs whose points carry synthetic comb
-//! traces (Bessel line powers from the analysis' synthetic generator).
+//! traces (Bessel line powers from the analysis' synthetic generator) and the analysis document
+//! the engine would store for them (`analyze_trace` on the same trace, or its error).
 //!
 //! The numbers are invented for plumbing only: what is checked against them is that the API
 //! returns what the store holds, not the physics.
 
 use halfwave::analysis::synthetic::SyntheticComb;
+use halfwave::analysis::{analyze_trace, AnalysisOptions};
 use halfwave::store::{
     ChainCalibrationPoint, NewDevice, NewFrequencyResult, NewPoint, NewRun, RunState, Store,
 };
@@ -80,6 +82,11 @@ pub async fn seed_completed_run(
             let mut comb = SyntheticComb::centred(Hz(193.4e12), Hz(0.0), Hz(f), beta, 4.5);
             comb.points = trace_points;
             let trace = comb.trace(&mut || 0.0).expect("synthetic trace");
+            // What the engine stores: the whole analysis, or the reason it failed.
+            let analysis = match analyze_trace(&trace, Hz(f), None, &AnalysisOptions::default()) {
+                Ok(result) => serde_json::to_value(&result).expect("analysis as JSON"),
+                Err(e) => serde_json::json!({ "error": e.to_string() }),
+            };
             let lines: Vec<serde_json::Value> = (-3..=3)
                 .map(|n| {
                     serde_json::json!({
@@ -103,7 +110,7 @@ pub async fn seed_completed_run(
                     modulation_index_uncertainty: Some(0.002),
                     asymmetry: Some(Db(0.0)),
                     line_table: serde_json::Value::Array(lines),
-                    analysis: serde_json::json!({"method": "seeded"}),
+                    analysis,
                     trace: &trace,
                 })
                 .await

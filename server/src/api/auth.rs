@@ -2,8 +2,8 @@
 //!
 //! A handler states the role it needs by the type of one argument: [`Viewer`], [`Operator`] or
 //! [`Admin`]. The extractor reads `Authorization: Bearer <token>`, looks the token's digest up
-//! (see [`super::tokens`]) and refuses with 401 when the token is missing, unknown or revoked, and
-//! with 403 when its role is too low. The events route alone also accepts the token as the
+//! (in [`super::token_cache`] first, then in the database, see [`super::tokens`]) and refuses
+//! with 401 when the token is missing, unknown or revoked, and with 403 when its role is too low. The events route alone also accepts the token as the
 //! `access_token` query parameter ([`ViewerFromHeaderOrQuery`]), because a browser's EventSource
 //! cannot set headers (RFC 6750 section 2.3 describes this form).
 
@@ -52,12 +52,25 @@ async fn authorize(
             "this call needs a bearer token: send `Authorization: Bearer <token>`; an admin creates one with `halfwave token create`",
         ));
     };
-    let holder = tokens::authenticate(state.pool(), &token)
-        .await
-        .map_err(|e| Problem::internal(e.to_string()))?
-        .ok_or_else(|| {
-            Problem::unauthorized("the token is unknown or revoked; ask an admin for a new one")
-        })?;
+    let digest = tokens::digest_hex(&token);
+    let holder = match state.token_cache().get(&digest) {
+        Some(holder) => holder,
+        None => {
+            let generation = state.token_cache().lookup_generation();
+            let holder = tokens::authenticate_digest(state.pool(), &digest)
+                .await
+                .map_err(|e| Problem::internal(e.to_string()))?
+                .ok_or_else(|| {
+                    Problem::unauthorized(
+                        "the token is unknown or revoked; ask an admin for a new one",
+                    )
+                })?;
+            state
+                .token_cache()
+                .insert(digest, holder.clone(), generation);
+            holder
+        }
+    };
     if !holder.role.allows(required) {
         return Err(Problem::forbidden(format!(
             "token {:?} has role {}, and this call needs {required} or higher",

@@ -3,7 +3,8 @@
 //! A middleware records each request under its route template (`/api/v1/runs/{run_id}`, never
 //! the raw path, so the label set stays small), method and status. Counting takes one short
 //! mutex section per request; with a handful of routes this costs far less than the request
-//! itself. Uptime is exported beside them; run and queue gauges are not exported yet.
+//! itself. Uptime, run and queue gauges are exported beside them (`routes/system.rs`,
+//! `run_gauges.rs`).
 
 use axum::extract::{MatchedPath, Request};
 use axum::middleware::Next;

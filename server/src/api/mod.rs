@@ -5,6 +5,8 @@
 //! description (utoipa), so the document at `/api/v1/openapi.json` is generated from the same code
 //! that serves; a test checks that the two agree. Layers, from the outside in: problem details
 //! for bare errors, tracing, request metrics, timeout (not on the event stream), body size limit.
+//! A request's bearer token is checked against a short-lived cache of verified tokens
+//! ([`token_cache`]) before the database.
 
 pub mod audit;
 pub mod auth;
@@ -15,7 +17,9 @@ pub mod openapi;
 pub mod plots;
 pub mod problem;
 pub mod routes;
+pub mod run_gauges;
 pub mod store_problems;
+pub mod token_cache;
 pub mod tokens;
 
 use crate::engine::Engine;
@@ -24,9 +28,11 @@ use axum::extract::DefaultBodyLimit;
 use axum::http::StatusCode;
 use axum::Router;
 use metrics::HttpMetrics;
+use run_gauges::RunGauges;
 use sqlx::SqlitePool;
 use std::sync::Arc;
 use std::time::Duration;
+use token_cache::TokenCache;
 use tower_http::limit::RequestBodyLimitLayer;
 use tower_http::timeout::TimeoutLayer;
 use tower_http::trace::TraceLayer;
@@ -50,6 +56,10 @@ struct StateInner {
     /// The engine; absent in a read-only server (the run-changing routes then answer 503).
     engine: Option<Engine>,
     http_metrics: HttpMetrics,
+    /// Progress of the engine's runs, followed from its events (absent without an engine).
+    run_gauges: Option<Arc<RunGauges>>,
+    /// Tokens the database confirmed recently.
+    token_cache: TokenCache,
     settings: ApiSettings,
     started: std::time::Instant,
     /// Becomes true when the daemon shuts down; long-lived responses (event streams) end then.
@@ -74,11 +84,14 @@ impl AppState {
     }
 
     fn build(store: Store, engine: Option<Engine>, settings: ApiSettings) -> AppState {
+        let run_gauges = engine.as_ref().map(RunGauges::follow);
         AppState {
             inner: Arc::new(StateInner {
                 store,
                 engine,
                 http_metrics: HttpMetrics::default(),
+                run_gauges,
+                token_cache: TokenCache::default(),
                 settings,
                 started: std::time::Instant::now(),
                 shutdown: tokio::sync::watch::channel(false).0,
@@ -118,6 +131,16 @@ impl AppState {
 
     pub fn http_metrics(&self) -> &HttpMetrics {
         &self.inner.http_metrics
+    }
+
+    /// The run and queue gauges; absent in a read-only server.
+    pub fn run_gauges(&self) -> Option<&RunGauges> {
+        self.inner.run_gauges.as_deref()
+    }
+
+    /// Recently verified tokens (see [`token_cache`]).
+    pub fn token_cache(&self) -> &TokenCache {
+        &self.inner.token_cache
     }
 
     pub fn settings(&self) -> &ApiSettings {

@@ -234,10 +234,18 @@ pub async fn authenticate(
     pool: &SqlitePool,
     token: &str,
 ) -> Result<Option<TokenHolder>, TokenError> {
+    authenticate_digest(pool, &digest_hex(token)).await
+}
+
+/// Who holds the token with this digest ([`digest_hex`]), if it is known and not revoked.
+pub async fn authenticate_digest(
+    pool: &SqlitePool,
+    digest: &str,
+) -> Result<Option<TokenHolder>, TokenError> {
     let row: Option<(String, String)> = sqlx::query_as(
         "SELECT name, role FROM api_tokens WHERE token_sha256 = ? AND revoked_at_unix_ms IS NULL",
     )
-    .bind(digest_hex(token))
+    .bind(digest)
     .fetch_optional(pool)
     .await
     .map_err(db("checking a token"))?;

@@ -2,11 +2,14 @@
 //!
 //! Health is the one call that needs no token (load balancers and systemd probes have none); it
 //! answers only whether the daemon and its database respond. Metrics and the OpenAPI document are
-//! readable by any token.
+//! readable by any token. Metrics: uptime, runs by state, each bench's queue, points committed,
+//! the active runs' progress ([`crate::api::run_gauges`]) and the HTTP counters and latency
+//! histograms ([`crate::api::metrics`]).
 
 use crate::api::auth::Viewer;
 use crate::api::openapi::ApiDoc;
 use crate::api::problem::Problem;
+use crate::api::run_gauges;
 use crate::api::AppState;
 use axum::extract::State;
 use axum::http::header::CONTENT_TYPE;
@@ -44,17 +47,26 @@ pub async fn health(State(state): State<AppState>) -> Result<Json<Health>, Probl
 #[utoipa::path(get, path = "/api/v1/metrics", tag = "system", security(("bearer" = [])),
     responses((status = 200, description = "Prometheus text exposition format 0.0.4", body = String, content_type = "text/plain"),
               (status = 401, description = "No valid token", body = Problem)))]
-pub async fn metrics(_caller: Viewer, State(state): State<AppState>) -> Response {
+pub async fn metrics(_caller: Viewer, State(state): State<AppState>) -> Result<Response, Problem> {
+    let runs_by_state: Vec<(String, i64)> =
+        sqlx::query_as("SELECT state, COUNT(*) FROM runs GROUP BY state")
+            .fetch_all(state.pool())
+            .await
+            .map_err(|e| Problem::internal(format!("the database does not answer: {e}")))?;
     let mut out = String::with_capacity(4096);
     out.push_str("# HELP halfwave_uptime_seconds Seconds since the daemon started.\n");
     out.push_str("# TYPE halfwave_uptime_seconds gauge\n");
     out.push_str(&format!("halfwave_uptime_seconds {}\n", state.uptime_s()));
+    run_gauges::render_runs_by_state(&runs_by_state, &mut out);
+    if let (Ok(engine), Some(gauges)) = (state.engine(), state.run_gauges()) {
+        run_gauges::render_engine(engine, gauges, &mut out);
+    }
     state.http_metrics().render(&mut out);
-    (
+    Ok((
         [(CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],
         out,
     )
-        .into_response()
+        .into_response())
 }
 
 /// The OpenAPI 3.1 document of this API, generated from the code.

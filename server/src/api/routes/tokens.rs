@@ -82,6 +82,8 @@ pub async fn revoke_token(
     Path(name): Path<String>,
 ) -> Result<StatusCode, Problem> {
     tokens::revoke(state.pool(), &name).await?;
+    // Refused from the next request on, not only when the cached verification expires.
+    state.token_cache().forget_name(&name);
     audit::record(&state, &caller.name, "token.revoke", &name, "").await;
     Ok(StatusCode::NO_CONTENT)
 }

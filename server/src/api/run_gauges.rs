@@ -1,0 +1,265 @@
+//! Run and queue gauges for the Prometheus metrics: runs by state, each bench's queue, the
+//! points committed since the daemon started and the progress of the runs being measured.
+//!
+//! Runs by state come from the database at each scrape (one grouped count over an indexed
+//! column), so they count runs of every process that wrote there. Queues come from the engine's
+//! own bookkeeping. Progress and the committed-point counter come from the engine's progress
+//! events: a small task follows the broadcast channel (as the event stream does) and keeps the
+//! latest count per run, so a scrape reads memory instead of counting 100,000 point rows. The
+//! task starts with the state, so points committed before it are not counted; a follower that
+//! falls behind the channel skips old events and catches up with the next point's counts.
+
+use super::metrics::escape_label;
+use crate::engine::events::ProgressEvent;
+use crate::engine::Engine;
+use crate::store::RunState;
+use std::collections::HashMap;
+use std::fmt::Write as _;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::{Arc, Mutex};
+use tokio::sync::broadcast::error::RecvError;
+
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+struct Progress {
+    completed: usize,
+    total: usize,
+}
+
+/// What the progress events have told so far.
+#[derive(Debug, Default)]
+pub struct RunGauges {
+    progress: Mutex<HashMap<i64, Progress>>,
+    points_committed: AtomicU64,
+}
+
+impl RunGauges {
+    /// Starts following `engine`'s progress events (needs a tokio runtime; without one the
+    /// progress gauges stay empty and a warning is logged).
+    pub fn follow(engine: &Engine) -> Arc<RunGauges> {
+        let gauges = Arc::new(RunGauges::default());
+        let mut events = engine.subscribe();
+        let follower = Arc::downgrade(&gauges);
+        match tokio::runtime::Handle::try_current() {
+            Ok(runtime) => {
+                runtime.spawn(async move {
+                    loop {
+                        let event = match events.recv().await {
+                            Ok(event) => event,
+                            Err(RecvError::Lagged(_)) => continue,
+                            Err(RecvError::Closed) => break,
+                        };
+                        // The state was dropped: nobody reads the gauges any more.
+                        let Some(gauges) = follower.upgrade() else {
+                            break;
+                        };
+                        gauges.apply(&event);
+                    }
+                });
+            }
+            Err(_) => tracing::warn!("no async runtime: run progress gauges are not collected"),
+        }
+        gauges
+    }
+
+    /// Updates the gauges with one event.
+    pub fn apply(&self, event: &ProgressEvent) {
+        let Ok(mut progress) = self.progress.lock() else {
+            return;
+        };
+        match event {
+            ProgressEvent::Started {
+                run_id,
+                total_points,
+                already_measured,
+                ..
+            } => {
+                progress.insert(
+                    *run_id,
+                    Progress {
+                        completed: *already_measured,
+                        total: *total_points,
+                    },
+                );
+            }
+            ProgressEvent::Point {
+                run_id,
+                completed_points,
+                total_points,
+                ..
+            } => {
+                self.points_committed.fetch_add(1, Ordering::Relaxed);
+                progress.insert(
+                    *run_id,
+                    Progress {
+                        completed: *completed_points,
+                        total: *total_points,
+                    },
+                );
+            }
+            ProgressEvent::PointFailed { run_id, .. } => {
+                // Stored without a modulation index: committed all the same.
+                self.points_committed.fetch_add(1, Ordering::Relaxed);
+                if let Some(p) = progress.get_mut(run_id) {
+                    p.completed = (p.completed + 1).min(p.total);
+                }
+            }
+            ProgressEvent::Finished { run_id, .. } => {
+                progress.remove(run_id);
+            }
+            ProgressEvent::Queued { .. } | ProgressEvent::Frequency { .. } => {}
+        }
+    }
+
+    fn progress_of(&self, run_id: i64) -> Option<Progress> {
+        self.progress.lock().ok()?.get(&run_id).copied()
+    }
+
+    /// Points committed since the gauges started following the engine.
+    pub fn points_committed(&self) -> u64 {
+        self.points_committed.load(Ordering::Relaxed)
+    }
+}
+
+/// Appends runs by state (`counts` from the database, every state present, 0 when none).
+pub fn render_runs_by_state(counts: &[(String, i64)], out: &mut String) {
+    out.push_str("# HELP halfwave_runs Runs in the database by state.\n");
+    out.push_str("# TYPE halfwave_runs gauge\n");
+    for state in RunState::ALL {
+        let n: i64 = counts
+            .iter()
+            .filter(|(s, _)| s == state.as_str())
+            .map(|(_, n)| *n)
+            .sum();
+        let _ = writeln!(out, "halfwave_runs{{state=\"{}\"}} {n}", state.as_str());
+    }
+}
+
+/// Appends each bench's queue, the committed-point counter and the active runs' progress.
+pub fn render_engine(engine: &Engine, gauges: &RunGauges, out: &mut String) {
+    let benches = engine.benches();
+    out.push_str("# HELP halfwave_bench_queued_runs Runs waiting for the bench.\n");
+    out.push_str("# TYPE halfwave_bench_queued_runs gauge\n");
+    for bench in &benches {
+        let _ = writeln!(
+            out,
+            "halfwave_bench_queued_runs{{bench=\"{}\"}} {}",
+            escape_label(&bench.name),
+            bench.queued_run_ids.len()
+        );
+    }
+    out.push_str("# HELP halfwave_bench_busy 1 while the bench measures a run, else 0.\n");
+    out.push_str("# TYPE halfwave_bench_busy gauge\n");
+    for bench in &benches {
+        let _ = writeln!(
+            out,
+            "halfwave_bench_busy{{bench=\"{}\"}} {}",
+            escape_label(&bench.name),
+            u8::from(bench.active_run_id.is_some())
+        );
+    }
+    out.push_str(
+        "# HELP halfwave_points_committed_total Points measured and committed since the daemon started.\n",
+    );
+    out.push_str("# TYPE halfwave_points_committed_total counter\n");
+    let _ = writeln!(
+        out,
+        "halfwave_points_committed_total {}",
+        gauges.points_committed()
+    );
+    let active: Vec<(String, i64, Progress)> = benches
+        .iter()
+        .filter_map(|b| {
+            let run_id = b.active_run_id?;
+            Some((b.name.clone(), run_id, gauges.progress_of(run_id)?))
+        })
+        .collect();
+    out.push_str(
+        "# HELP halfwave_run_points_completed Points of the active run measured so far.\n",
+    );
+    out.push_str("# TYPE halfwave_run_points_completed gauge\n");
+    for (bench, run_id, p) in &active {
+        let _ = writeln!(
+            out,
+            "halfwave_run_points_completed{{bench=\"{}\",run_id=\"{run_id}\"}} {}",
+            escape_label(bench),
+            p.completed
+        );
+    }
+    out.push_str("# HELP halfwave_run_points_total Points in the active run's plan.\n");
+    out.push_str("# TYPE halfwave_run_points_total gauge\n");
+    for (bench, run_id, p) in &active {
+        let _ = writeln!(
+            out,
+            "halfwave_run_points_total{{bench=\"{}\",run_id=\"{run_id}\"}} {}",
+            escape_label(bench),
+            p.total
+        );
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn point(run_id: i64, completed: usize, total: usize) -> ProgressEvent {
+        ProgressEvent::Point {
+            run_id,
+            completed_points: completed,
+            total_points: total,
+            frequency_hz: 1e9,
+            generator_level_dbm: 0.0,
+            v_peak_volts: 1.0,
+            modulation_index: 0.5,
+            modulation_index_uncertainty: 0.01,
+        }
+    }
+
+    #[test]
+    fn events_move_progress_and_the_counter() {
+        let gauges = RunGauges::default();
+        gauges.apply(&ProgressEvent::Started {
+            run_id: 4,
+            bench: "a".into(),
+            total_points: 10,
+            already_measured: 3,
+        });
+        assert_eq!(
+            gauges.progress_of(4),
+            Some(Progress {
+                completed: 3,
+                total: 10
+            })
+        );
+        gauges.apply(&point(4, 4, 10));
+        gauges.apply(&ProgressEvent::PointFailed {
+            run_id: 4,
+            frequency_hz: 1e9,
+            generator_level_dbm: 2.0,
+            reason: "no comb".into(),
+        });
+        assert_eq!(gauges.progress_of(4).map(|p| p.completed), Some(5));
+        assert_eq!(gauges.points_committed(), 2);
+        gauges.apply(&ProgressEvent::Finished {
+            run_id: 4,
+            state: "completed".into(),
+            cause: None,
+        });
+        assert_eq!(gauges.progress_of(4), None);
+        assert_eq!(gauges.points_committed(), 2);
+    }
+
+    #[test]
+    fn every_state_is_exported_even_at_zero() {
+        let mut out = String::new();
+        render_runs_by_state(&[("completed".into(), 7), ("running".into(), 1)], &mut out);
+        assert!(out.contains("halfwave_runs{state=\"completed\"} 7\n"));
+        assert!(out.contains("halfwave_runs{state=\"running\"} 1\n"));
+        assert!(out.contains("halfwave_runs{state=\"interrupted\"} 0\n"));
+        assert_eq!(
+            out.lines()
+                .filter(|l| l.starts_with("halfwave_runs{"))
+                .count(),
+            6
+        );
+    }
+}

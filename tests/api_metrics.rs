@@ -1,0 +1,200 @@
+//! Run and queue gauges in `/api/v1/metrics`, scraped while a run is measured on the simulated
+//! bench and after it ended, and compared with what the engine reported in its progress events.
+//! Parsed as the Prometheus text exposition format 0.0.4 (`name{labels} value` per line).
+
+mod api_support;
+
+use api_support::spawn_app_with_engine;
+use halfwave::api::tokens::Role;
+use halfwave::engine::events::ProgressEvent;
+use std::time::Duration;
+
+/// 3 frequencies x 6 levels (0, 4, ..., 20 dBm) = 18 points.
+fn plan(serial: &str) -> serde_json::Value {
+    serde_json::json!({
+        "device": {"serial": serial, "model": "simulated phase modulator", "rf_input_limit_dbm": 27.0},
+        "bench": "sim-bench",
+        "chain": {"kind": "flat_loss", "loss_db": 1.5},
+        "frequencies": {"kind": "list", "values_hz": [2e9, 4e9, 6e9]},
+        "levels": {"kind": "ramp", "start_dbm": 0.0, "stop_dbm": 20.0, "step_db": 4.0},
+        "settle_s": 0.0
+    })
+}
+
+/// The value of the sample `name{labels}` (labels exactly as rendered), if present.
+fn sample(text: &str, series: &str) -> Option<f64> {
+    text.lines().filter(|l| !l.starts_with('#')).find_map(|l| {
+        l.strip_prefix(series)?
+            .strip_prefix(' ')?
+            .trim()
+            .parse()
+            .ok()
+    })
+}
+
+async fn scrape(app: &api_support::TestApp, token: &str) -> String {
+    let response = app.get("/api/v1/metrics", Some(token)).await;
+    assert_eq!(response.status(), 200);
+    response.text().await.unwrap()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn run_and_queue_gauges_follow_a_run() {
+    // Instrument times scaled to 5 %: a point takes some 25 ms, so the run is still being
+    // measured when the first scrape arrives.
+    let bench = spawn_app_with_engine(0.05).await;
+    let app = &bench.app;
+    let operator = app.token("lab-b", Role::Operator).await;
+    let viewer = app.token("watcher", Role::Viewer).await;
+    let mut events = app.state.engine().expect("engine").subscribe();
+
+    let idle = scrape(app, &viewer).await;
+    assert_eq!(sample(&idle, "halfwave_runs{state=\"running\"}"), Some(0.0));
+    assert_eq!(
+        sample(&idle, "halfwave_bench_queued_runs{bench=\"sim-bench\"}"),
+        Some(0.0)
+    );
+    assert_eq!(
+        sample(&idle, "halfwave_bench_busy{bench=\"sim-bench\"}"),
+        Some(0.0)
+    );
+    assert_eq!(sample(&idle, "halfwave_points_committed_total"), Some(0.0));
+
+    let mut run_ids = Vec::new();
+    for serial in ["EG-PM-0101", "EG-PM-0102"] {
+        let submitted = app
+            .post_json("/api/v1/runs", Some(&operator), &plan(serial))
+            .await;
+        assert_eq!(submitted.status(), 201);
+        let body: serde_json::Value = submitted.json().await.unwrap();
+        run_ids.push(body["run_id"].as_i64().unwrap());
+    }
+    let (first, second) = (run_ids[0], run_ids[1]);
+
+    // During the first run: after its third committed point, scrape.
+    let seen = loop {
+        let event = tokio::time::timeout(Duration::from_secs(60), events.recv())
+            .await
+            .expect("progress in time")
+            .expect("event channel open");
+        if let ProgressEvent::Point {
+            run_id,
+            completed_points,
+            ..
+        } = event
+        {
+            if run_id == first && completed_points >= 3 {
+                break completed_points;
+            }
+        }
+    };
+    let during = scrape(app, &viewer).await;
+    let completed_series =
+        format!("halfwave_run_points_completed{{bench=\"sim-bench\",run_id=\"{first}\"}}");
+    let total_series =
+        format!("halfwave_run_points_total{{bench=\"sim-bench\",run_id=\"{first}\"}}");
+    assert_eq!(
+        sample(&during, "halfwave_runs{state=\"running\"}"),
+        Some(1.0),
+        "{during}"
+    );
+    assert_eq!(
+        sample(&during, "halfwave_runs{state=\"queued\"}"),
+        Some(1.0)
+    );
+    assert_eq!(
+        sample(&during, "halfwave_bench_queued_runs{bench=\"sim-bench\"}"),
+        Some(1.0)
+    );
+    assert_eq!(
+        sample(&during, "halfwave_bench_busy{bench=\"sim-bench\"}"),
+        Some(1.0)
+    );
+    assert_eq!(sample(&during, &total_series), Some(18.0), "{during}");
+    let completed = sample(&during, &completed_series).expect("progress of the active run");
+    assert!(
+        completed >= seen as f64 && completed <= 18.0,
+        "completed {completed}, the events had reached {seen}"
+    );
+    let committed = sample(&during, "halfwave_points_committed_total").unwrap();
+    assert!(
+        committed >= seen as f64 && committed <= 18.0,
+        "committed {committed}"
+    );
+
+    // Cancel the queued one; wait for both to end.
+    let cancel = app
+        .client
+        .post(app.url(&format!("/api/v1/runs/{second}/cancel")))
+        .bearer_auth(&operator)
+        .send()
+        .await
+        .unwrap();
+    assert!(cancel.status().is_success(), "{}", cancel.status());
+    let mut ended = Vec::new();
+    while ended.len() < 2 {
+        let event = tokio::time::timeout(Duration::from_secs(120), events.recv())
+            .await
+            .expect("both runs end in time")
+            .expect("event channel open");
+        if let ProgressEvent::Finished { run_id, state, .. } = event {
+            ended.push((run_id, state));
+        }
+    }
+    ended.sort();
+    assert_eq!(
+        ended,
+        vec![
+            (first, "completed".to_string()),
+            (second, "cancelled".to_string())
+        ]
+    );
+
+    // The metrics follow the events: give the gauges' follower a moment to read the last ones.
+    let mut after = String::new();
+    for _ in 0..50 {
+        after = scrape(app, &viewer).await;
+        if sample(&after, "halfwave_points_committed_total") == Some(18.0) {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+    assert_eq!(
+        sample(&after, "halfwave_points_committed_total"),
+        Some(18.0),
+        "{after}"
+    );
+    assert_eq!(
+        sample(&after, "halfwave_runs{state=\"completed\"}"),
+        Some(1.0)
+    );
+    assert_eq!(
+        sample(&after, "halfwave_runs{state=\"cancelled\"}"),
+        Some(1.0)
+    );
+    assert_eq!(
+        sample(&after, "halfwave_runs{state=\"running\"}"),
+        Some(0.0)
+    );
+    assert_eq!(sample(&after, "halfwave_runs{state=\"queued\"}"), Some(0.0));
+    assert_eq!(
+        sample(&after, "halfwave_bench_queued_runs{bench=\"sim-bench\"}"),
+        Some(0.0)
+    );
+    assert_eq!(
+        sample(&after, "halfwave_bench_busy{bench=\"sim-bench\"}"),
+        Some(0.0)
+    );
+    assert_eq!(
+        sample(&after, &completed_series),
+        None,
+        "no progress once nothing runs"
+    );
+    // The database agrees with the counter: 18 points stored for the completed run.
+    let stored: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM points WHERE run_id = $1")
+        .bind(first)
+        .fetch_one(&app.pool)
+        .await
+        .unwrap();
+    assert_eq!(stored, 18);
+}
