@@ -265,6 +265,104 @@ async fn runs_points_traces_history_and_v_pi() {
     );
 }
 
+/// The API keeps final runs and device histories in memory (`api/read_cache.rs`); what it serves
+/// must still follow the database as runs start, end and complete.
+#[tokio::test]
+async fn views_follow_runs_that_start_and_complete_after_being_read() {
+    let app = spawn_app().await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let store = app.store();
+    let (device_id, chain_id) = seed_device(store, "PM-0077").await;
+    let get = |path: String| {
+        let app = &app;
+        let viewer = viewer.clone();
+        async move {
+            let response = app.get(&path, Some(&viewer)).await;
+            let status = response.status();
+            (status, response.json::<serde_json::Value>().await.unwrap())
+        }
+    };
+
+    // No calibration yet: an empty history, and no V_pi to give.
+    let (status, history) = get("/api/v1/devices/PM-0077/calibrations".into()).await;
+    assert_eq!(status, 200);
+    assert_eq!(history, serde_json::json!([]));
+    let (status, _) = get("/api/v1/devices/PM-0077/v-pi?frequency_hz=4e9".into()).await;
+    assert_eq!(status, 404);
+
+    let first = seed_completed_run(
+        store,
+        device_id,
+        chain_id,
+        &[2e9, 6e9],
+        &[0.0, 6.0],
+        v_pi_at,
+        201,
+    )
+    .await;
+    let (_, history) = get("/api/v1/devices/PM-0077/calibrations".into()).await;
+    assert_eq!(history.as_array().unwrap().len(), 1);
+    let (_, at_4) = get("/api/v1/devices/PM-0077/v-pi?frequency_hz=4e9".into()).await;
+    assert_eq!(at_4["run_id"], first.run_id);
+
+    // A run read while running is read again once it ends; it completes without results, so the
+    // newest calibration with results (the store's rule) is still the first run.
+    let bare = store
+        .create_run(&halfwave::store::NewRun {
+            plan: serde_json::json!({"seeded": true}),
+            device_id,
+            bench_name: "bench-a".into(),
+            chain_calibration_id: chain_id,
+            submitted_by: "seed".into(),
+        })
+        .await
+        .unwrap();
+    store
+        .transition_run(bare.id, halfwave::store::RunState::Running, None)
+        .await
+        .unwrap();
+    let (_, running) = get(format!("/api/v1/runs/{}", bare.id)).await;
+    assert_eq!(running["state"], "running");
+    assert_eq!(running["measured_points"], 0);
+    store
+        .transition_run(bare.id, halfwave::store::RunState::Completed, None)
+        .await
+        .unwrap();
+    let (_, completed) = get(format!("/api/v1/runs/{}", bare.id)).await;
+    assert_eq!(completed["state"], "completed");
+    let (_, at_4) = get("/api/v1/devices/PM-0077/v-pi?frequency_hz=4e9".into()).await;
+    assert_eq!(at_4["run_id"], first.run_id);
+    let (_, same) = get(format!("/api/v1/runs/{}", first.run_id)).await;
+    assert_eq!(same["measured_points"], 4);
+
+    // A newer calibration with results replaces it in V_pi answers and heads the history.
+    let second = seed_completed_run(
+        store,
+        device_id,
+        chain_id,
+        &[2e9, 6e9],
+        &[0.0, 6.0],
+        |f| 1.1 * v_pi_at(f),
+        201,
+    )
+    .await;
+    let (_, history) = get("/api/v1/devices/PM-0077/calibrations".into()).await;
+    assert_eq!(history.as_array().unwrap().len(), 2);
+    assert_eq!(history[0]["run_id"], second.run_id);
+    let (_, at_6) = get("/api/v1/devices/PM-0077/v-pi?frequency_hz=6e9".into()).await;
+    assert_eq!(at_6["run_id"], second.run_id);
+    assert!((at_6["v_pi_volts"].as_f64().unwrap() - second.results[1].1).abs() < 1e-12);
+    // Paging reads only the page asked for, with the run's total.
+    let (_, page) = get(format!(
+        "/api/v1/runs/{}/points?per_page=3&page=2",
+        second.run_id
+    ))
+    .await;
+    assert_eq!(page["total"], 4);
+    assert_eq!(page["points"][0]["id"], second.point_ids[3]);
+    assert_eq!(page["points"].as_array().unwrap().len(), 1);
+}
+
 #[tokio::test]
 async fn plots_are_svg_with_one_marker_per_value() {
     let app = spawn_app().await;

@@ -6,7 +6,9 @@
 //! that serves; a test checks that the two agree. Layers, from the outside in: problem details
 //! for bare errors, tracing, request metrics, timeout (not on the event stream), body size limit.
 //! A request's bearer token is checked against a short-lived cache of verified tokens
-//! ([`token_cache`]) before the database.
+//! ([`token_cache`]) before the database, and the most read views that cannot change (final runs,
+//! device histories) are served from [`read_cache`]; both exist because the load benchmark
+//! (`server/benches/api_load.rs`) showed database round trips, not handlers, limiting the rate.
 
 pub mod audit;
 pub mod auth;
@@ -16,6 +18,7 @@ pub mod metrics;
 pub mod openapi;
 pub mod plots;
 pub mod problem;
+pub mod read_cache;
 pub mod routes;
 pub mod run_gauges;
 pub mod store_problems;
@@ -28,6 +31,7 @@ use axum::extract::DefaultBodyLimit;
 use axum::http::StatusCode;
 use axum::Router;
 use metrics::HttpMetrics;
+use read_cache::ReadCache;
 use run_gauges::RunGauges;
 use sqlx::SqlitePool;
 use std::sync::Arc;
@@ -60,6 +64,8 @@ struct StateInner {
     run_gauges: Option<Arc<RunGauges>>,
     /// Tokens the database confirmed recently.
     token_cache: TokenCache,
+    /// Read results that cannot change (final runs, device histories by fingerprint).
+    read_cache: ReadCache,
     settings: ApiSettings,
     started: std::time::Instant,
     /// Becomes true when the daemon shuts down; long-lived responses (event streams) end then.
@@ -92,6 +98,7 @@ impl AppState {
                 http_metrics: HttpMetrics::default(),
                 run_gauges,
                 token_cache: TokenCache::default(),
+                read_cache: ReadCache::default(),
                 settings,
                 started: std::time::Instant::now(),
                 shutdown: tokio::sync::watch::channel(false).0,
@@ -141,6 +148,11 @@ impl AppState {
     /// Recently verified tokens (see [`token_cache`]).
     pub fn token_cache(&self) -> &TokenCache {
         &self.inner.token_cache
+    }
+
+    /// Read results that cannot change (see [`read_cache`]).
+    pub fn read_cache(&self) -> &ReadCache {
+        &self.inner.read_cache
     }
 
     pub fn settings(&self) -> &ApiSettings {

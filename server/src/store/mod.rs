@@ -17,6 +17,7 @@
 //! recovery), [`points`](self::points) (points, traces, results), [`history`](self::history) (V_pi
 //! history, interpolation, comparison) and [`audit`](self::audit).
 
+pub mod api_reads;
 pub mod audit;
 pub mod calibrations;
 pub mod devices;
@@ -27,6 +28,7 @@ pub mod records;
 pub mod runs;
 pub mod trace_codec;
 
+pub use api_reads::CompletedRunsFingerprint;
 pub use error::StoreError;
 pub use records::*;
 pub use trace_codec::TraceCodecError;

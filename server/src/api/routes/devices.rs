@@ -1,17 +1,24 @@
 //! Devices (modulators by serial number): the list, one device, its calibration history, V_pi at
-//! any frequency from its newest calibration, and the history plots.
+//! any frequency from its newest calibration, and the history plots. History, V_pi and plots
+//! share one read of the device's completed calibrations, kept in the read cache until the device
+//! completes another run (see `api/read_cache.rs`).
 
 use crate::api::auth::Viewer;
 use crate::api::plots::{self, VpiCurve, VpiPoint};
 use crate::api::problem::Problem;
+use crate::api::read_cache::DeviceCalibrations;
+use crate::api::routes::runs::json_bytes;
 use crate::api::AppState;
-use crate::store::{DeviceRecord, VpiHistoryEntry};
+use crate::store::history::interpolate_vpi;
+use crate::store::{DeviceRecord, StoreError, VpiHistoryEntry};
+use axum::body::Bytes;
 use axum::extract::{Path, Query, State};
 use axum::http::header::CONTENT_TYPE;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
 use halfwave_units::Hz;
 use serde::{Deserialize, Serialize};
+use std::sync::Arc;
 use utoipa::{IntoParams, ToSchema};
 
 /// The highest RF frequency a V_pi query accepts (1 THz): far above any modulator's electrode
@@ -139,9 +146,38 @@ pub async fn calibration_history(
     _caller: Viewer,
     State(state): State<AppState>,
     Path(serial): Path<String>,
-) -> Result<Json<Vec<Calibration>>, Problem> {
-    let history = state.store().vpi_history(&serial).await?;
-    Ok(Json(group_history(&history)))
+) -> Result<Response, Problem> {
+    let device = device_calibrations(&state, &serial).await?;
+    Ok(json_bytes(device.history_json.clone()))
+}
+
+/// The device's completed calibrations: kept in the read cache while its completed runs stay the
+/// same (one fingerprint query per call), read again from the database when they changed.
+async fn device_calibrations(
+    state: &AppState,
+    serial: &str,
+) -> Result<Arc<DeviceCalibrations>, Problem> {
+    let store = state.store();
+    let fingerprint = store.completed_runs_fingerprint(serial).await?;
+    if let Some(kept) = state.read_cache().device(serial, fingerprint) {
+        return Ok(kept);
+    }
+    let history = group_history(&store.vpi_history(serial).await?);
+    let newest_results = match history.first() {
+        Some(newest) => store.frequency_results(newest.run_id).await?,
+        None => Vec::new(),
+    };
+    let history_json = Bytes::from(serde_json::to_vec(&history).map_err(|e| {
+        Problem::internal(format!("the history could not be written as JSON: {e}"))
+    })?);
+    let device = Arc::new(DeviceCalibrations {
+        fingerprint,
+        history,
+        history_json,
+        newest_results,
+    });
+    state.read_cache().keep_device(serial, device.clone());
+    Ok(device)
 }
 
 fn check_frequency(frequency_hz: Option<f64>) -> Result<f64, Problem> {
@@ -176,19 +212,33 @@ pub async fn vpi_at(
     Query(query): Query<VpiQuery>,
 ) -> Result<Json<VpiAnswer>, Problem> {
     let frequency_hz = check_frequency(query.frequency_hz)?;
-    let found = state
-        .store()
-        .latest_vpi_at(&serial, Hz(frequency_hz))
-        .await?;
+    let device = device_calibrations(&state, &serial).await?;
+    // The history holds only runs with results, newest first: the same run the store's
+    // `latest_vpi_at` picks.
+    let (Some(newest), false) = (device.history.first(), device.newest_results.is_empty()) else {
+        return Err(StoreError::NoCompletedRun { serial }.into());
+    };
+    let results = &device.newest_results;
+    let Some((v_pi, uncertainty, lower, upper)) = interpolate_vpi(results, Hz(frequency_hz)) else {
+        let frequencies = || results.iter().map(|r| r.frequency_hz);
+        return Err(StoreError::OutsideMeasuredRange {
+            serial,
+            run_id: newest.run_id,
+            frequency_hz,
+            min_hz: frequencies().fold(f64::INFINITY, f64::min),
+            max_hz: frequencies().fold(f64::NEG_INFINITY, f64::max),
+        }
+        .into());
+    };
     Ok(Json(VpiAnswer {
         serial,
-        run_id: found.run_id,
+        run_id: newest.run_id,
         frequency_hz,
-        v_pi_volts: found.v_pi_volts.value(),
-        v_pi_uncertainty_volts: found.v_pi_uncertainty_volts.value(),
-        lower_frequency_hz: found.lower_frequency_hz.value(),
-        upper_frequency_hz: found.upper_frequency_hz.value(),
-        interpolated: found.lower_frequency_hz != found.upper_frequency_hz,
+        v_pi_volts: v_pi.value(),
+        v_pi_uncertainty_volts: uncertainty.value(),
+        lower_frequency_hz: lower.value(),
+        upper_frequency_hz: upper.value(),
+        interpolated: lower != upper,
     }))
 }
 
@@ -217,14 +267,14 @@ fn svg(result: Result<String, plots::PlotError>) -> Result<Response, Problem> {
     }
 }
 
-async fn calibrations(state: &AppState, serial: &str) -> Result<Vec<Calibration>, Problem> {
-    let history = group_history(&state.store().vpi_history(serial).await?);
-    if history.is_empty() {
+async fn calibrations(state: &AppState, serial: &str) -> Result<Arc<DeviceCalibrations>, Problem> {
+    let device = device_calibrations(state, serial).await?;
+    if device.history.is_empty() {
         return Err(Problem::not_found(format!(
             "device {serial} has no completed calibration yet"
         )));
     }
-    Ok(history)
+    Ok(device)
 }
 
 /// V_pi versus frequency of the newest calibration with uncertainty bars, earlier ones overlaid.
@@ -237,7 +287,8 @@ pub async fn vpi_plot(
     State(state): State<AppState>,
     Path(serial): Path<String>,
 ) -> Result<Response, Problem> {
-    let history = calibrations(&state, &serial).await?;
+    let device = calibrations(&state, &serial).await?;
+    let history = &device.history;
     let newest = curve(&history[0]);
     let earlier: Vec<VpiCurve> = history.iter().skip(1).take(8).map(curve).collect();
     svg(plots::vpi_svg(&newest, &earlier))
@@ -253,8 +304,8 @@ pub async fn response_plot(
     State(state): State<AppState>,
     Path(serial): Path<String>,
 ) -> Result<Response, Problem> {
-    let history = calibrations(&state, &serial).await?;
-    svg(plots::response_svg(&curve(&history[0])))
+    let device = calibrations(&state, &serial).await?;
+    svg(plots::response_svg(&curve(&device.history[0])))
 }
 
 #[cfg(test)]

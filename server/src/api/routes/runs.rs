@@ -7,6 +7,7 @@ use crate::api::plots::{self, MarkedLine, ModulationPlot, ModulationPoint, Spect
 use crate::api::problem::{FieldProblem, Problem};
 use crate::api::AppState;
 use crate::store::{PointRecord, RunFilter, RunRecord, RunState};
+use axum::body::Bytes;
 use axum::extract::{Path, Query, State};
 use axum::http::header::CONTENT_TYPE;
 use axum::response::{IntoResponse, Response};
@@ -333,12 +334,16 @@ pub async fn get_run(
     _caller: Viewer,
     State(state): State<AppState>,
     Path(run_id): Path<i64>,
-) -> Result<Json<RunView>, Problem> {
+) -> Result<Response, Problem> {
+    if let Some(view_json) = state.read_cache().final_run(run_id) {
+        return Ok(json_bytes(view_json));
+    }
     let store = state.store();
+    // Read first: if the run is final now, nothing read after this can differ.
     let run = store.run(run_id).await?;
-    let measured_points = store.stored_point_indices(run_id).await?.len();
+    let measured_points = usize::try_from(store.point_count(run_id).await?).unwrap_or(0);
     let results = store.frequency_results(run_id).await?;
-    Ok(Json(RunView {
+    let view = RunView {
         summary: RunSummary::from(&run),
         plan: run.plan().unwrap_or(serde_json::Value::Null),
         measured_points,
@@ -353,7 +358,20 @@ pub async fn get_run(
                     .unwrap_or(serde_json::Value::Null),
             })
             .collect(),
-    }))
+    };
+    let view_json =
+        Bytes::from(serde_json::to_vec(&view).map_err(|e| {
+            Problem::internal(format!("the run could not be written as JSON: {e}"))
+        })?);
+    if run.state.is_final() {
+        state.read_cache().keep_final_run(run_id, view_json.clone());
+    }
+    Ok(json_bytes(view_json))
+}
+
+/// A response with JSON already serialised.
+pub fn json_bytes(body: Bytes) -> Response {
+    ([(CONTENT_TYPE, "application/json")], body).into_response()
 }
 
 /// The measured points of a run, by frequency then level, one page at a time.
@@ -369,20 +387,18 @@ pub async fn list_points(
 ) -> Result<Json<PointList>, Problem> {
     let (page, per_page) = paging(query.page, query.per_page, 200)?;
     let store = state.store();
-    store.run(run_id).await?;
-    let points = store.points_of_run(run_id).await?;
-    let start = usize::try_from((page - 1).saturating_mul(per_page)).unwrap_or(usize::MAX);
-    let views = points
-        .iter()
-        .skip(start)
-        .take(usize::try_from(per_page).unwrap_or(0))
-        .map(PointView::from)
-        .collect();
+    // A run kept as final exists; any other is looked up so that a wrong id gets 404.
+    if state.read_cache().final_run(run_id).is_none() {
+        store.run(run_id).await?;
+    }
+    let total = usize::try_from(store.point_count(run_id).await?).unwrap_or(0);
+    let offset = u64::from(page - 1) * u64::from(per_page);
+    let points = store.points_page(run_id, per_page, offset).await?;
     Ok(Json(PointList {
-        points: views,
+        points: points.iter().map(PointView::from).collect(),
         page,
         per_page,
-        total: points.len(),
+        total,
     }))
 }
 
