@@ -137,11 +137,15 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
     // Let a dozen points be committed, then stop the daemon's engine as SIGTERM would.
     let mut seen = 0;
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(120);
     while seen < 12 {
-        if let Ok(Ok(ProgressEvent::Point { .. })) =
-            tokio::time::timeout(Duration::from_secs(60), events.recv()).await
-        {
-            seen += 1;
+        match tokio::time::timeout_at(deadline, events.recv()).await {
+            Ok(Ok(ProgressEvent::Point { .. })) => seen += 1,
+            Ok(Ok(ProgressEvent::Finished { state, cause, .. })) => {
+                panic!("the run ended early: {state} ({cause:?})")
+            }
+            Ok(_) => {}
+            Err(_) => panic!("only {seen} points within 120 s"),
         }
     }
     engine.shutdown().await;
@@ -168,5 +172,55 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     assert_v_pi_within(&results, &scenario, 0.02);
     // A completed run cannot be resumed again.
     assert!(engine.resume(run_id, "test").await.is_err());
+    engine.shutdown().await;
+}
+
+/// Light lost mid-run (the fibre to the analyzer unplugged): the spectra show only the noise
+/// floor, the points cannot be analysed, and after three in a row the run stops with the RF
+/// already off when it is reported, the cause recorded and the points kept.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn analysis_failures_in_a_row_stop_the_run_with_rf_off_first() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let sim = SimBench::new(scenario.clone(), 13).with_time_factor(0.2);
+    let chain = upload_true_chain(&store, &scenario).await;
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
+    let mut events = engine.subscribe();
+    let run_id = engine.submit(plan(&chain), "test").await.unwrap();
+    // Unplug early in a frequency's ramp (levels 0 to 20 dBm in 2.5 dB steps), so that at least
+    // three more levels of that frequency remain.
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(120);
+    loop {
+        match tokio::time::timeout_at(deadline, events.recv()).await {
+            Ok(Ok(ProgressEvent::Point {
+                generator_level_dbm,
+                completed_points,
+                ..
+            })) if generator_level_dbm < 8.0 && completed_points >= 2 => break,
+            Ok(_) => continue,
+            Err(_) => panic!("no early point within 120 s"),
+        }
+    }
+    sim.set_fibre_connected(false);
+    let (state, cause) = wait_for_end(&mut events, run_id).await;
+    assert!(
+        !sim.rf_output_on(),
+        "RF must be off when the stop is reported"
+    );
+    assert_eq!(state, "failed");
+    let cause = cause.unwrap_or_default();
+    assert!(cause.contains("in a row could not be analysed"), "{cause}");
+    let run = store.run(run_id).await.unwrap();
+    assert_eq!(run.cause.as_deref(), Some(cause.as_str()));
+    let points = store.points_of_run(run_id).await.unwrap();
+    let unanalysed = points
+        .iter()
+        .filter(|p| p.modulation_index.is_none())
+        .count();
+    assert!(unanalysed >= 3, "the failed points are kept ({unanalysed})");
+    assert!(points.len() < POINTS);
     engine.shutdown().await;
 }

@@ -121,6 +121,12 @@ impl SimBench {
         self.lock().overdrive_events.clone()
     }
 
+    /// Connects or "unplugs" the fibre from the modulator to the analyzer. Unplugged, the analyzer
+    /// shows only its noise floor, as a real one does when the light is lost.
+    pub fn set_fibre_connected(&self, connected: bool) {
+        self.lock().fibre_connected = connected;
+    }
+
     /// Truth: whether the RF output is on now.
     pub fn rf_output_on(&self) -> bool {
         self.lock().source.output_on

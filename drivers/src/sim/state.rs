@@ -140,6 +140,9 @@ pub struct BenchState {
     pub source: SourceState,
     pub analyzer: AnalyzerState,
     pub overdrive_events: Vec<OverdriveEvent>,
+    /// False while the fibre from the modulator to the analyzer is "unplugged": no light arrives,
+    /// the analyzer sees its noise floor (a fault for testing what the engine does then).
+    pub fibre_connected: bool,
 }
 
 fn out_of_range(what: &str, value: f64, unit: &str, min: f64, max: f64) -> ScpiError {
@@ -177,6 +180,7 @@ impl BenchState {
             source,
             analyzer,
             overdrive_events: Vec::new(),
+            fibre_connected: true,
         };
         state.reset_source();
         state.reset_analyzer();
@@ -380,6 +384,9 @@ impl BenchState {
 
     /// The lines reaching the analyzer now, at their true optical frequencies.
     pub fn optical_lines(&self) -> Vec<OpticalLine> {
+        if !self.fibre_connected {
+            return Vec::new();
+        }
         let total_mw = self.scenario.optical_power_out().to_milliwatts();
         let carrier = self.laser_frequency().value();
         if !self.source.output_on {

@@ -438,25 +438,43 @@ fn point_width(freq: &[f64], i: usize) -> f64 {
 }
 
 /// The noise floor: median level (dB) of a sample of the points that `keep` accepts, and the
-/// robust standard deviation (1.4826 times the median absolute deviation, a common-practice
-/// estimator for normal noise) of those levels.
+/// point-to-point noise of those points: the median absolute difference of each sampled point and
+/// its neighbour, over 0.6745 sqrt 2 (one standard deviation for normal noise; common practice).
+///
+/// The noise is taken from neighbour differences, not from the spread of the levels, because the
+/// space between lines is not flat: the Lorentzian wings of a laser line (and the skirts of the
+/// analyzer's filter) make the background between strong, closely spaced lines rise and fall by
+/// tens of dB. That smooth background is not noise; counting it as noise inflated the uncertainty
+/// of every line until a clearly resolved comb was rejected. When too few neighbour pairs are
+/// found, the robust spread of the levels (1.4826 times the median absolute deviation) is used.
 fn floor_level(freq: &[f64], power: &[f64], keep: impl Fn(f64) -> bool) -> (f64, f64, usize) {
     let stride = (freq.len() / FLOOR_SAMPLES).max(1);
-    let mut sample: Vec<f64> = freq
-        .iter()
-        .zip(power)
-        .step_by(stride)
-        .filter(|(f, _)| keep(**f))
-        .map(|(_, p)| *p)
-        .collect();
+    let mut sample: Vec<f64> = Vec::with_capacity(FLOOR_SAMPLES + 1);
+    let mut steps: Vec<f64> = Vec::with_capacity(FLOOR_SAMPLES + 1);
+    for i in (0..freq.len().min(power.len())).step_by(stride) {
+        if !keep(freq[i]) {
+            continue;
+        }
+        sample.push(power[i]);
+        if let (Some(f), Some(p)) = (freq.get(i + 1), power.get(i + 1)) {
+            if keep(*f) {
+                steps.push((p - power[i]).abs());
+            }
+        }
+    }
     if sample.len() < 8 {
         sample = power.iter().step_by(stride).copied().collect();
+        steps.clear();
     }
     let median = median_in_place(&mut sample);
-    for v in sample.iter_mut() {
-        *v = (*v - median).abs();
-    }
-    let spread = 1.4826 * median_in_place(&mut sample);
+    let spread = if steps.len() >= 8 {
+        median_in_place(&mut steps) / (0.6745 * std::f64::consts::SQRT_2)
+    } else {
+        for v in sample.iter_mut() {
+            *v = (*v - median).abs();
+        }
+        1.4826 * median_in_place(&mut sample)
+    };
     (median, spread.max(1e-3), sample.len())
 }
 

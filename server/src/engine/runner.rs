@@ -9,8 +9,10 @@
 //!
 //! Every stop path switches RF off first and reports afterwards: the [`RfOffGuard`] is released
 //! on the normal end, on cancel and on error, and acts from its `Drop` on a panic. An analysis
-//! failure of one point is recorded with the point and does not stop the run; an instrument or
-//! store error stops it with the cause recorded.
+//! failure of one point is recorded with the point and does not stop the run (one unreadable
+//! spectrum is noise); [`MAX_CONSECUTIVE_ANALYSIS_FAILURES`] in a row mean the light, the fibre or
+//! the settings are gone, and stop it: the acquisition stops before its next point, the RF goes
+//! off, and then the cause is recorded. An instrument or store error stops the run the same way.
 
 use super::acquire;
 use super::events::ProgressEvent;
@@ -26,6 +28,9 @@ use std::time::Instant;
 use tokio::sync::{broadcast, mpsc, Mutex};
 use tokio_util::sync::CancellationToken;
 use tracing::Instrument;
+
+/// Points in a row that cannot be analysed before the run is stopped.
+pub const MAX_CONSECUTIVE_ANALYSIS_FAILURES: usize = 3;
 
 /// A shared analyzer handle.
 pub type SharedAnalyzer = Arc<Mutex<Box<dyn SpectrumAnalyzer>>>;
@@ -94,11 +99,15 @@ async fn run_inner(ctx: RunContext) -> RunOutcome {
         (Ok(()), Ok(())) => RunOutcome::Completed,
         (Err(Stop::Cancelled), Ok(())) => RunOutcome::Cancelled,
         (Err(Stop::Failed(cause)), Ok(())) => RunOutcome::Failed(cause),
+        (Err(Stop::PipelineEnded), Ok(())) => {
+            RunOutcome::Failed("the analysis task stopped early".into())
+        }
         (r, Err(e)) => {
             let before = match r {
                 Ok(()) => String::new(),
                 Err(Stop::Cancelled) => "after cancel: ".into(),
                 Err(Stop::Failed(c)) => format!("{c}; then "),
+                Err(Stop::PipelineEnded) => "after the analysis stopped: ".into(),
             };
             RunOutcome::Failed(format!(
                 "{before}the RF output could not be confirmed off ({e}); switch it off by hand"
@@ -110,6 +119,8 @@ async fn run_inner(ctx: RunContext) -> RunOutcome {
 enum Stop {
     Cancelled,
     Failed(String),
+    /// The analysis-and-storage task ended early; its own error is the cause.
+    PipelineEnded,
 }
 
 impl From<InstrumentError> for Stop {
@@ -168,24 +179,21 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
             .await
             .is_err()
         {
-            result = Err(Stop::Failed("the analysis task stopped early".into()));
+            result = Err(Stop::PipelineEnded);
             break 'frequencies;
         }
     }
     drop(tx);
-    // Let the pipeline finish what it has; its result decides the per-frequency fits.
+    // Let the pipeline finish what it has; its result decides the per-frequency fits. When it
+    // ended early, its error is the run's cause (the acquisition only saw it stop).
+    let pipeline_ended = matches!(result, Ok(()) | Err(Stop::PipelineEnded));
     match pipeline.await {
         Ok(Ok(())) => {}
-        Ok(Err(cause)) => {
-            if result.is_ok() {
-                result = Err(Stop::Failed(cause));
-            }
+        Ok(Err(cause)) if pipeline_ended => result = Err(Stop::Failed(cause)),
+        Err(join) if pipeline_ended => {
+            result = Err(Stop::Failed(format!("the analysis task failed: {join}")))
         }
-        Err(join) => {
-            if result.is_ok() {
-                result = Err(Stop::Failed(format!("the analysis task failed: {join}")));
-            }
-        }
+        Ok(Err(_)) | Err(_) => {}
     }
     result
 }
@@ -235,6 +243,10 @@ async fn measure_frequency(
         if ctx.cancel.is_cancelled() {
             return Err(Stop::Cancelled);
         }
+        if tx.is_closed() {
+            // The analysis stopped the run: no further stimulus.
+            return Err(Stop::PipelineEnded);
+        }
         let level = step.generator_levels[li];
         let started = Instant::now();
         {
@@ -271,7 +283,7 @@ async fn measure_frequency(
             acquired_in: started.elapsed(),
         };
         if tx.send(Msg::Point(Box::new(measured))).await.is_err() {
-            return Err(Stop::Failed("the analysis task stopped early".into()));
+            return Err(Stop::PipelineEnded);
         }
     }
     Ok(())
@@ -313,10 +325,11 @@ async fn pipeline(
     mut completed: usize,
 ) -> Result<(), String> {
     let options = AnalysisOptions::default();
+    let mut failures_in_a_row = 0;
     while let Some(msg) = rx.recv().await {
         match msg {
             Msg::Point(m) => {
-                commit_point(
+                let failure = commit_point(
                     &m,
                     run_id,
                     &store,
@@ -326,7 +339,20 @@ async fn pipeline(
                     total,
                     &mut completed,
                 )
-                .await?
+                .await?;
+                match failure {
+                    None => failures_in_a_row = 0,
+                    Some(reason) => {
+                        failures_in_a_row += 1;
+                        if failures_in_a_row >= MAX_CONSECUTIVE_ANALYSIS_FAILURES {
+                            return Err(format!(
+                                "{failures_in_a_row} points in a row could not be analysed, the last at {:.6} GHz, {:.2} ({reason}); check the laser, the fibre to the analyzer and the analyzer settings, then resubmit",
+                                m.frequency.ghz(),
+                                m.generator_level
+                            ));
+                        }
+                    }
+                }
             }
             Msg::FrequencyDone {
                 frequency_index,
@@ -337,6 +363,8 @@ async fn pipeline(
     Ok(())
 }
 
+/// Analyses and commits one point; returns why it could not be analysed, if it could not (the
+/// point is stored either way).
 #[allow(clippy::too_many_arguments)]
 async fn commit_point(
     m: &Measured,
@@ -347,7 +375,7 @@ async fn commit_point(
     events: &broadcast::Sender<ProgressEvent>,
     total: usize,
     completed: &mut usize,
-) -> Result<(), String> {
+) -> Result<Option<String>, String> {
     let at_modulator = chain.level_at_modulator(m.frequency, m.generator_level);
     let v_peak = peak_voltage(at_modulator);
     let analysis = analysis::analyze_trace(&m.trace, m.frequency, m.reference.as_deref(), options);
@@ -415,7 +443,7 @@ async fn commit_point(
             reason: e.to_string(),
         },
     });
-    Ok(())
+    Ok(analysis.err().map(|e| e.to_string()))
 }
 
 /// Fits V_pi for one frequency of the run from its stored points and stores the result. A fit
