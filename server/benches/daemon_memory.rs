@@ -63,11 +63,23 @@ fn main() {
     )
     .unwrap();
     let token = halfwave()
-        .args(["token", "create", "--role", "operator", "--name", "memory-bench", "--config"])
+        .args([
+            "token",
+            "create",
+            "--role",
+            "operator",
+            "--name",
+            "memory-bench",
+            "--config",
+        ])
         .arg(&config)
         .output()
         .unwrap();
-    assert!(token.status.success(), "{}", String::from_utf8_lossy(&token.stderr));
+    assert!(
+        token.status.success(),
+        "{}",
+        String::from_utf8_lossy(&token.stderr)
+    );
     let token = String::from_utf8(token.stdout).unwrap().trim().to_string();
 
     let mut child = halfwave()
@@ -117,7 +129,12 @@ fn main() {
             .send()
             .await
             .unwrap();
-        assert_eq!(reply.status(), 201, "{}", reply.text().await.unwrap_or_default());
+        assert_eq!(
+            reply.status(),
+            201,
+            "{}",
+            reply.text().await.unwrap_or_default()
+        );
         let body: serde_json::Value = reply.json().await.unwrap();
         body["run_id"].as_i64().unwrap()
     });
@@ -144,7 +161,10 @@ fn main() {
                 break (state, run["measured_points"].as_u64().unwrap_or(0));
             }
         }
-        assert!(started.elapsed() < Duration::from_secs(600), "the run took over 10 minutes");
+        assert!(
+            started.elapsed() < Duration::from_secs(600),
+            "the run took over 10 minutes"
+        );
         std::thread::sleep(Duration::from_millis(20));
     };
     let peak_kernel = status_mb(pid, "VmHWM:");
@@ -152,7 +172,10 @@ fn main() {
     let idle_after = status_mb(pid, "VmRSS:");
     drop(daemon);
 
-    println!("run {run_id}: {state}, {points} points with 10,001-point traces in {:.1} s", started.elapsed().as_secs_f64());
+    println!(
+        "run {run_id}: {state}, {points} points with 10,001-point traces in {:.1} s",
+        started.elapsed().as_secs_f64()
+    );
     println!("resident idle before the run: {idle_before:.1} MB (target < {IDLE_TARGET_MB} MB)");
     println!("resident during the run: peak sampled {peak_sampled:.1} MB, kernel high-water mark {peak_kernel:.1} MB (target < {RUN_TARGET_MB} MB)");
     println!("resident idle after the run: {idle_after:.1} MB");

@@ -7,47 +7,21 @@
 //!
 //! Run: `cargo bench -p halfwave-server --bench engine_point`
 
+mod support;
+
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 use halfwave::config::Limits;
 use halfwave::engine::bench::BenchInstruments;
 use halfwave::engine::events::ProgressEvent;
-use halfwave::engine::plan::{
-    AnalyzerSpec, ChainSpec, DeviceSpec, FrequencySpec, LevelSpec, PlanRequest,
-};
+use halfwave::engine::plan::PlanRequest;
 use halfwave::engine::Engine;
 use halfwave::store::Store;
 use halfwave_drivers::sim::{Scenario, SimBench};
 
-const LEVELS: usize = 9;
+use support::LEVELS;
 
 fn plan() -> PlanRequest {
-    PlanRequest {
-        device: DeviceSpec {
-            serial: "BENCH-PM-1".into(),
-            model: "benchmark".into(),
-            rf_input_limit_dbm: 27.0,
-            wavelength_nm: 1550.0,
-        },
-        bench: "sim".into(),
-        chain: ChainSpec::FlatLoss { loss_db: 1.5 },
-        frequencies: FrequencySpec::List {
-            values_hz: vec![2e9],
-        },
-        levels: LevelSpec::Ramp {
-            start_dbm: 3.0,
-            stop_dbm: 19.0,
-            step_db: 2.0,
-        },
-        settle_s: 0.0,
-        averages: 1,
-        analyzer: AnalyzerSpec {
-            points: Some(10_001),
-            ..AnalyzerSpec::default()
-        },
-        reference_trace: true,
-        carrier_tracking: true,
-        note: String::new(),
-    }
+    support::plan("BENCH-PM-1", &[2e9])
 }
 
 fn engine_point(c: &mut Criterion) {

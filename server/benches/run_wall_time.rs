@@ -16,12 +16,12 @@
 //! Run: `cargo bench -p halfwave-server --bench run_wall_time` (about two minutes). Exits with an
 //! error if a run's wall time is more than 5 % above its busy time.
 
+mod support;
+
 use halfwave::config::{Config, Limits};
 use halfwave::engine::bench::BenchInstruments;
 use halfwave::engine::events::ProgressEvent;
-use halfwave::engine::plan::{
-    AnalyzerSpec, ChainSpec, DeviceSpec, FrequencySpec, LevelSpec, PlanRequest,
-};
+use halfwave::engine::plan::PlanRequest;
 use halfwave::engine::Engine;
 use halfwave::store::Store;
 use halfwave_drivers::sim::server::{SimServer, SimServerConfig};
@@ -33,33 +33,7 @@ const TARGET_OVERHEAD: f64 = 0.05;
 const REPEATS: usize = 2;
 
 fn plan() -> PlanRequest {
-    PlanRequest {
-        device: DeviceSpec {
-            serial: "BENCH-PM-2".into(),
-            model: "benchmark".into(),
-            rf_input_limit_dbm: 27.0,
-            wavelength_nm: 1550.0,
-        },
-        bench: "sim".into(),
-        chain: ChainSpec::FlatLoss { loss_db: 1.5 },
-        frequencies: FrequencySpec::List {
-            values_hz: vec![1e9, 5e9, 15e9],
-        },
-        levels: LevelSpec::Ramp {
-            start_dbm: 3.0,
-            stop_dbm: 19.0,
-            step_db: 2.0,
-        },
-        settle_s: 0.0,
-        averages: 1,
-        analyzer: AnalyzerSpec {
-            points: Some(10_001),
-            ..AnalyzerSpec::default()
-        },
-        reference_trace: true,
-        carrier_tracking: true,
-        note: String::new(),
-    }
+    support::plan("BENCH-PM-2", &[1e9, 5e9, 15e9])
 }
 
 struct Measured {
