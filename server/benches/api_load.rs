@@ -85,7 +85,7 @@ async fn seed_store(path: &str) -> (usize, String, String) {
         // Two calibrations at a time: the synthetic traces and their analysis use both cores
         // while the other one commits.
         for _ in 0..RUNS_PER_DEVICE / 2 {
-            let (a, b) = tokio::join!(
+            let calibration = || {
                 seed::seed_completed_run(
                     &store,
                     device_id,
@@ -93,18 +93,10 @@ async fn seed_store(path: &str) -> (usize, String, String) {
                     &frequencies,
                     &levels,
                     v_pi_of(d),
-                    TRACE_POINTS
-                ),
-                seed::seed_completed_run(
-                    &store,
-                    device_id,
-                    chain_id,
-                    &frequencies,
-                    &levels,
-                    v_pi_of(d),
-                    TRACE_POINTS
-                ),
-            );
+                    TRACE_POINTS,
+                )
+            };
+            let (a, b) = tokio::join!(calibration(), calibration());
             points += a.point_ids.len() + b.point_ids.len();
         }
         eprintln!(

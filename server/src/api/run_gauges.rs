@@ -120,81 +120,100 @@ impl RunGauges {
     }
 }
 
+/// Appends one metric family: its HELP and TYPE lines, then one sample per (labels, value), the
+/// labels already written as `{name="value",...}` (or empty).
+fn family(
+    out: &mut String,
+    name: &str,
+    kind: &str,
+    help: &str,
+    samples: impl IntoIterator<Item = (String, String)>,
+) {
+    let _ = writeln!(out, "# HELP {name} {help}");
+    let _ = writeln!(out, "# TYPE {name} {kind}");
+    for (labels, value) in samples {
+        let _ = writeln!(out, "{name}{labels} {value}");
+    }
+}
+
 /// Appends runs by state (`counts` from the database, every state present, 0 when none).
 pub fn render_runs_by_state(counts: &[(String, i64)], out: &mut String) {
-    out.push_str("# HELP halfwave_runs Runs in the database by state.\n");
-    out.push_str("# TYPE halfwave_runs gauge\n");
-    for state in RunState::ALL {
+    let samples = RunState::ALL.into_iter().map(|state| {
         let n: i64 = counts
             .iter()
             .filter(|(s, _)| s == state.as_str())
             .map(|(_, n)| *n)
             .sum();
-        let _ = writeln!(out, "halfwave_runs{{state=\"{}\"}} {n}", state.as_str());
-    }
+        (format!("{{state=\"{}\"}}", state.as_str()), n.to_string())
+    });
+    family(
+        out,
+        "halfwave_runs",
+        "gauge",
+        "Runs in the database by state.",
+        samples,
+    );
 }
 
 /// Appends each bench's queue, the committed-point counter and the active runs' progress.
 pub fn render_engine(engine: &Engine, gauges: &RunGauges, out: &mut String) {
     let benches = engine.benches();
-    out.push_str("# HELP halfwave_bench_queued_runs Runs waiting for the bench.\n");
-    out.push_str("# TYPE halfwave_bench_queued_runs gauge\n");
-    for bench in &benches {
-        let _ = writeln!(
-            out,
-            "halfwave_bench_queued_runs{{bench=\"{}\"}} {}",
-            escape_label(&bench.name),
-            bench.queued_run_ids.len()
-        );
-    }
-    out.push_str("# HELP halfwave_bench_busy 1 while the bench measures a run, else 0.\n");
-    out.push_str("# TYPE halfwave_bench_busy gauge\n");
-    for bench in &benches {
-        let _ = writeln!(
-            out,
-            "halfwave_bench_busy{{bench=\"{}\"}} {}",
-            escape_label(&bench.name),
-            u8::from(bench.active_run_id.is_some())
-        );
-    }
-    out.push_str(
-        "# HELP halfwave_points_committed_total Points measured and committed since the daemon started.\n",
-    );
-    out.push_str("# TYPE halfwave_points_committed_total counter\n");
-    let _ = writeln!(
+    let bench_label = |name: &str| format!("{{bench=\"{}\"}}", escape_label(name));
+    family(
         out,
-        "halfwave_points_committed_total {}",
-        gauges.points_committed()
+        "halfwave_bench_queued_runs",
+        "gauge",
+        "Runs waiting for the bench.",
+        benches
+            .iter()
+            .map(|b| (bench_label(&b.name), b.queued_run_ids.len().to_string())),
     );
-    let active: Vec<(String, i64, Progress)> = benches
+    family(
+        out,
+        "halfwave_bench_busy",
+        "gauge",
+        "1 while the bench measures a run, else 0.",
+        benches.iter().map(|b| {
+            let busy = u8::from(b.active_run_id.is_some());
+            (bench_label(&b.name), busy.to_string())
+        }),
+    );
+    family(
+        out,
+        "halfwave_points_committed_total",
+        "counter",
+        "Points measured and committed since the daemon started.",
+        [(String::new(), gauges.points_committed().to_string())],
+    );
+    let active: Vec<(String, Progress)> = benches
         .iter()
         .filter_map(|b| {
             let run_id = b.active_run_id?;
-            Some((b.name.clone(), run_id, gauges.progress_of(run_id)?))
+            let labels = format!(
+                "{{bench=\"{}\",run_id=\"{run_id}\"}}",
+                escape_label(&b.name)
+            );
+            Some((labels, gauges.progress_of(run_id)?))
         })
         .collect();
-    out.push_str(
-        "# HELP halfwave_run_points_completed Points of the active run measured so far.\n",
+    family(
+        out,
+        "halfwave_run_points_completed",
+        "gauge",
+        "Points of the active run measured so far.",
+        active
+            .iter()
+            .map(|(labels, p)| (labels.clone(), p.completed.to_string())),
     );
-    out.push_str("# TYPE halfwave_run_points_completed gauge\n");
-    for (bench, run_id, p) in &active {
-        let _ = writeln!(
-            out,
-            "halfwave_run_points_completed{{bench=\"{}\",run_id=\"{run_id}\"}} {}",
-            escape_label(bench),
-            p.completed
-        );
-    }
-    out.push_str("# HELP halfwave_run_points_total Points in the active run's plan.\n");
-    out.push_str("# TYPE halfwave_run_points_total gauge\n");
-    for (bench, run_id, p) in &active {
-        let _ = writeln!(
-            out,
-            "halfwave_run_points_total{{bench=\"{}\",run_id=\"{run_id}\"}} {}",
-            escape_label(bench),
-            p.total
-        );
-    }
+    family(
+        out,
+        "halfwave_run_points_total",
+        "gauge",
+        "Points in the active run's plan.",
+        active
+            .iter()
+            .map(|(labels, p)| (labels.clone(), p.total.to_string())),
+    );
 }
 
 #[cfg(test)]
