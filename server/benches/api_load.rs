@@ -60,6 +60,27 @@ fn env_number(name: &str, default: u64) -> u64 {
     }
 }
 
+/// CPU time (user + system, all threads) a process has used so far, seconds, from
+/// `/proc/<pid>/stat` (fields 14 and 15, in clock ticks; proc(5)).
+fn cpu_seconds(pid: u32) -> Option<f64> {
+    let stat = std::fs::read_to_string(format!("/proc/{pid}/stat")).ok()?;
+    // The command name (field 2) is in parentheses and may contain spaces: count after it.
+    let rest = stat.get(stat.rfind(')')? + 2..)?;
+    let fields: Vec<&str> = rest.split_whitespace().collect();
+    let ticks: f64 = fields.get(11)?.parse::<f64>().ok()? + fields.get(12)?.parse::<f64>().ok()?;
+    // SAFETY: sysconf only reads a configuration value.
+    let per_second = unsafe { libc::sysconf(libc::_SC_CLK_TCK) } as f64;
+    (per_second > 0.0).then(|| ticks / per_second)
+}
+
+/// The first field of /proc/loadavg: runnable processes averaged over the last minute.
+fn load_average() -> String {
+    std::fs::read_to_string("/proc/loadavg")
+        .ok()
+        .and_then(|l| l.split_whitespace().next().map(str::to_string))
+        .unwrap_or_else(|| "?".to_string())
+}
+
 fn now_unix_ms() -> i64 {
     halfwave::store::now_unix_ms()
 }
@@ -476,13 +497,20 @@ fn main() {
         }
         run_id
     });
-    println!("live run {live_run} measuring (time factor {TIME_FACTOR})");
+    println!(
+        "live run {live_run} measuring (time factor {TIME_FACTOR}); daemon pid {} (for a profiler)",
+        daemon.child.id()
+    );
 
     let quiet_before = (now_unix_ms(), {
         std::thread::sleep(Duration::from_secs(quiet_s));
         now_unix_ms()
     });
 
+    let daemon_pid = daemon.child.id();
+    let load_before = load_average();
+    let daemon_cpu_before = cpu_seconds(daemon_pid);
+    let own_cpu_before = cpu_seconds(std::process::id());
     let stop = Arc::new(AtomicBool::new(false));
     let token: Arc<str> = Arc::from(viewer.as_str());
     let load_started_ms = now_unix_ms();
@@ -510,6 +538,13 @@ fn main() {
     });
     let elapsed = started.elapsed().as_secs_f64();
     let load_window = (load_started_ms, now_unix_ms());
+    let daemon_cpu = cpu_seconds(daemon_pid)
+        .zip(daemon_cpu_before)
+        .map(|(after, before)| after - before);
+    let own_cpu = cpu_seconds(std::process::id())
+        .zip(own_cpu_before)
+        .map(|(after, before)| after - before);
+    let load_after = load_average();
 
     let quiet_after = (now_unix_ms(), {
         std::thread::sleep(Duration::from_secs(quiet_s));
@@ -600,6 +635,18 @@ fn main() {
             percentile(latencies, 100.0)
         );
     }
+    let cores = std::thread::available_parallelism().map_or(0, |n| n.get());
+    let per_request_us = |cpu: Option<f64>| match cpu {
+        Some(seconds) if !all.is_empty() => format!("{:.0}", seconds * 1e6 / all.len() as f64),
+        _ => "?".to_string(),
+    };
+    println!(
+        "CPU during the load phase: daemon {:.1} s ({} us per request), generator {:.1} s ({} us per request), on {cores} cores x {elapsed:.1} s; load average {load_before} before, {load_after} after",
+        daemon_cpu.unwrap_or(f64::NAN),
+        per_request_us(daemon_cpu),
+        own_cpu.unwrap_or(f64::NAN),
+        per_request_us(own_cpu),
+    );
     for (kind, n) in errors.iter().take(10) {
         println!("error x{n}: {kind}");
     }
