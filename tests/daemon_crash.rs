@@ -214,8 +214,14 @@ async fn sigkill_mid_run_then_restart_and_resume_completes_every_point_once() {
         .await;
     daemon.kill().await.unwrap();
     daemon.wait().await.unwrap();
-    // Usually on (killed mid-point); the restart must switch it off either way.
-    eprintln!("RF on at the kill: {}", bench.server.bench().rf_output_on());
+    // Usually on already (killed mid-point); make sure it is, so that the restart is what
+    // switches it off.
+    {
+        use halfwave_drivers::RfSource;
+        let mut source = bench.server.bench().rf_source();
+        source.set_output(true).await.expect("simulated output on");
+        assert!(bench.server.bench().rf_output_on());
+    }
 
     let committed = stored_points(&bench.database(), run_id).await;
     assert!(

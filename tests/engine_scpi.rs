@@ -126,3 +126,65 @@ async fn a_link_to_the_source_lost_mid_run_ends_with_rf_off_and_the_cause_record
     engine.shutdown().await;
     server.shutdown().await;
 }
+
+/// Puts a simulated source's output on, as a crashed process may have left it.
+async fn leave_rf_on(server: &SimServer) {
+    use halfwave_drivers::RfSource;
+    let mut source = server.bench().rf_source();
+    source.set_output(true).await.expect("simulated output on");
+    assert!(server.bench().rf_output_on());
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn start_up_switches_every_reachable_source_off_even_when_an_instrument_is_unreachable() {
+    let dir = tempfile::tempdir().unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    // Bench "whole" answers on both ports; bench "half" has its source but no analyzer.
+    let whole = SimServer::start(
+        SimBench::new(scenario.clone(), 5),
+        SimServerConfig::any_free_ports(),
+    )
+    .await
+    .unwrap();
+    let half = SimServer::start(
+        SimBench::new(scenario, 6),
+        SimServerConfig::any_free_ports(),
+    )
+    .await
+    .unwrap();
+    leave_rf_on(&whole).await;
+    leave_rf_on(&half).await;
+    let closed = {
+        let listener = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+        listener.local_addr().unwrap()
+    };
+    let missing_analyzer = halfwave_drivers::sim::server::resource_string(closed);
+    let text = format!(
+        "data_dir = \"{}\"\n\n\
+         [[bench]]\nname = \"half\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{missing_analyzer}\" }}\n\n\
+         [[bench]]\nname = \"whole\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\" }}\n",
+        dir.path().join("data").display(),
+        half.resource(Role::RfSource),
+        whole.resource(Role::RfSource),
+        whole.resource(Role::Analyzer),
+    );
+    let config = Config::from_toml(&text, &dir.path().join("h.toml"), dir.path().to_path_buf())
+        .expect("configuration parses");
+    let store = Store::open_in_memory().await.unwrap();
+
+    let refused = match Engine::start(&config, store).await {
+        Ok(_) => panic!("a bench with an unreachable analyzer must stop the start"),
+        Err(e) => e.to_string(),
+    };
+    assert!(
+        refused.contains("half") && refused.contains(&closed.port().to_string()),
+        "the error names the bench and the unreachable resource: {refused}"
+    );
+    // Both sources, the one beside the missing analyzer and the one on the healthy bench
+    // (listed after the failing one), are off.
+    assert!(!half.bench().rf_output_on(), "source of bench half left on");
+    assert!(
+        !whole.bench().rf_output_on(),
+        "source of bench whole left on"
+    );
+}

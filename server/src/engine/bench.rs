@@ -30,29 +30,47 @@ impl BenchInstruments {
     }
 }
 
-/// Connects (or simulates) the instruments of one configured bench.
-pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstruments, EngineError> {
-    let setup = |message: String| EngineError::Setup(format!("bench {}: {message}", bench.name));
-    let simulation = match &bench.simulation {
-        Some(sim) => {
-            let scenario = match &sim.scenario {
-                Some(path) => Scenario::from_file(&config.resolve(path))
-                    .map_err(|e| setup(format!("simulation scenario: {e}")))?,
-                None => Scenario::builtin()
-                    .map_err(|e| setup(format!("built-in simulation scenario: {e}")))?,
-            };
-            Some(SimBench::new(scenario, sim.seed).with_time_factor(sim.time_factor))
-        }
-        None => None,
+/// Switches a source's output off once, logging (not returning) a failure: used at start-up, where
+/// the operator must be told to check the source by hand.
+pub async fn switch_off_at_start(bench: &str, source: &mut dyn RfSource) {
+    if let Err(e) = source.safe_off().await {
+        tracing::error!(bench, error = %e, "could not switch the RF output off; check the source by hand");
+    }
+}
+
+fn setup_error(bench: &BenchConfig, message: String) -> EngineError {
+    EngineError::Setup(format!("bench {}: {message}", bench.name))
+}
+
+/// The simulated bench behind a bench's simulated instruments, if it has one.
+pub fn simulation(config: &Config, bench: &BenchConfig) -> Result<Option<SimBench>, EngineError> {
+    let Some(sim) = &bench.simulation else {
+        return Ok(None);
     };
-    let source: Box<dyn RfSource> = match &bench.source {
-        InstrumentConfig::Simulated => match &simulation {
-            Some(sim) => Box::new(sim.rf_source()),
-            None => {
-                return Err(setup(
-                    "the source is simulated but there is no [bench.simulation]".into(),
-                ))
-            }
+    let scenario = match &sim.scenario {
+        Some(path) => Scenario::from_file(&config.resolve(path))
+            .map_err(|e| setup_error(bench, format!("simulation scenario: {e}")))?,
+        None => Scenario::builtin()
+            .map_err(|e| setup_error(bench, format!("built-in simulation scenario: {e}")))?,
+    };
+    Ok(Some(
+        SimBench::new(scenario, sim.seed).with_time_factor(sim.time_factor),
+    ))
+}
+
+/// Connects (or simulates) a bench's RF source.
+pub async fn connect_bench_source(
+    config: &Config,
+    bench: &BenchConfig,
+    simulation: Option<&SimBench>,
+) -> Result<Box<dyn RfSource>, EngineError> {
+    match &bench.source {
+        InstrumentConfig::Simulated => match simulation {
+            Some(sim) => Ok(Box::new(sim.rf_source())),
+            None => Err(setup_error(
+                bench,
+                "the source is simulated but there is no [bench.simulation]".into(),
+            )),
         },
         InstrumentConfig::Scpi { resource, profile } => {
             let profile = profile.as_ref().map(|p| config.resolve(p));
@@ -61,17 +79,24 @@ pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstrume
                 .map_err(|source| EngineError::Instrument {
                     bench: bench.name.clone(),
                     source,
-                })?
+                })
         }
-    };
-    let analyzer: Box<dyn SpectrumAnalyzer> = match &bench.analyzer {
-        InstrumentConfig::Simulated => match &simulation {
-            Some(sim) => Box::new(sim.analyzer()),
-            None => {
-                return Err(setup(
-                    "the analyzer is simulated but there is no [bench.simulation]".into(),
-                ))
-            }
+    }
+}
+
+/// Connects (or simulates) a bench's analyzer.
+pub async fn connect_bench_analyzer(
+    config: &Config,
+    bench: &BenchConfig,
+    simulation: Option<&SimBench>,
+) -> Result<Box<dyn SpectrumAnalyzer>, EngineError> {
+    match &bench.analyzer {
+        InstrumentConfig::Simulated => match simulation {
+            Some(sim) => Ok(Box::new(sim.analyzer())),
+            None => Err(setup_error(
+                bench,
+                "the analyzer is simulated but there is no [bench.simulation]".into(),
+            )),
         },
         InstrumentConfig::Scpi { resource, profile } => {
             let profile = profile.as_ref().map(|p| config.resolve(p));
@@ -80,9 +105,16 @@ pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstrume
                 .map_err(|source| EngineError::Instrument {
                     bench: bench.name.clone(),
                     source,
-                })?
+                })
         }
-    };
+    }
+}
+
+/// Connects (or simulates) the instruments of one configured bench; nothing is switched.
+pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstruments, EngineError> {
+    let simulation = simulation(config, bench)?;
+    let source = connect_bench_source(config, bench, simulation.as_ref()).await?;
+    let analyzer = connect_bench_analyzer(config, bench, simulation.as_ref()).await?;
     Ok(BenchInstruments {
         source,
         analyzer,

@@ -85,3 +85,67 @@ impl Drop for RfOffGuard {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use halfwave_drivers::sim::{Scenario, SimBench};
+    use std::time::Duration;
+
+    /// A simulated source with its output on, as a run in progress has it.
+    async fn source_left_on() -> (SimBench, SharedSource) {
+        let sim = SimBench::new(Scenario::builtin().expect("built-in scenario"), 1);
+        let mut source: Box<dyn RfSource> = Box::new(sim.rf_source());
+        source.set_output(true).await.expect("output on");
+        assert!(sim.rf_output_on());
+        (sim, Arc::new(Mutex::new(source)))
+    }
+
+    /// Waits up to one second for the simulated output to go off.
+    async fn goes_off_within_a_second(sim: &SimBench) -> bool {
+        for _ in 0..100 {
+            if !sim.rf_output_on() {
+                return true;
+            }
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
+        false
+    }
+
+    #[tokio::test]
+    async fn release_switches_off_and_reports_success() {
+        let (sim, source) = source_left_on().await;
+        RfOffGuard::arm(source).release().await.expect("safe-off");
+        assert!(!sim.rf_output_on());
+    }
+
+    #[tokio::test]
+    async fn a_panicking_run_task_leaves_the_output_off() {
+        let (sim, source) = source_left_on().await;
+        let run = tokio::spawn(async move {
+            let _guard = RfOffGuard::arm(source);
+            panic!("a bug in the middle of a point");
+        });
+        let joined = run.await;
+        assert!(joined.is_err_and(|e| e.is_panic()));
+        assert!(
+            goes_off_within_a_second(&sim).await,
+            "the guard's drop must switch the output off"
+        );
+    }
+
+    #[tokio::test]
+    async fn a_run_task_aborted_mid_point_leaves_the_output_off() {
+        let (sim, source) = source_left_on().await;
+        let (armed_tx, armed) = tokio::sync::oneshot::channel();
+        let run = tokio::spawn(async move {
+            let _guard = RfOffGuard::arm(source);
+            let _ = armed_tx.send(());
+            std::future::pending::<()>().await;
+        });
+        armed.await.expect("the run task armed its guard");
+        run.abort();
+        assert!(run.await.is_err_and(|e| e.is_cancelled()));
+        assert!(goes_off_within_a_second(&sim).await);
+    }
+}
