@@ -116,6 +116,44 @@ async fn runs_points_traces_history_and_v_pi() {
         404
     );
 
+    // Two runs compared per frequency. At 2 GHz both measured: the older run is 5 % high, so the
+    // newer differs from it by 100 * (1 / 1.05 - 1) = -4.762 % (worked by hand). 6 and 10 GHz are
+    // only in the newer run, 8 GHz only in the older.
+    let comparison: serde_json::Value = app
+        .get(
+            &format!("/api/v1/runs/{}/compare/{}", older.run_id, newer.run_id),
+            Some(&viewer),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    let rows = comparison["rows"].as_array().unwrap();
+    let frequencies: Vec<f64> = rows
+        .iter()
+        .map(|r| r["frequency_hz"].as_f64().unwrap())
+        .collect();
+    assert_eq!(frequencies, [2e9, 6e9, 8e9, 10e9]);
+    assert!((rows[0]["difference_percent"].as_f64().unwrap() + 4.762).abs() < 1e-3);
+    assert!(rows[1]["v_pi_a_volts"].is_null() && rows[1]["difference_percent"].is_null());
+    assert!(rows[2]["v_pi_b_volts"].is_null());
+    let missing = app
+        .get(
+            &format!("/api/v1/runs/{}/compare/999999", older.run_id),
+            Some(&viewer),
+        )
+        .await;
+    assert_eq!(missing.status(), 404);
+    assert_eq!(
+        app.get(
+            &format!("/api/v1/runs/{}/compare/{}", older.run_id, newer.run_id),
+            None
+        )
+        .await
+        .status(),
+        401
+    );
+
     // Points, paginated.
     let points: serde_json::Value = app
         .get(

@@ -6,6 +6,7 @@ use super::routes::{
     benches, chains, devices, events, run_control, runs, system, tokens as token_routes,
 };
 use super::tokens::{CreatedToken, Role, TokenInfo};
+use crate::store::{ComparisonRow, RunComparison};
 use utoipa::openapi::security::{HttpAuthScheme, HttpBuilder, SecurityScheme};
 use utoipa::{Modify, OpenApi};
 
@@ -19,7 +20,7 @@ use utoipa::{Modify, OpenApi};
         run_control::submit_run, run_control::cancel_run, run_control::resume_run,
         benches::list_benches, events::events,
         runs::list_runs, runs::get_run, runs::list_points, runs::point_trace,
-        runs::point_spectrum_svg, runs::latest_spectrum_svg, runs::modulation_index_svg,
+        runs::point_spectrum_svg, runs::latest_spectrum_svg, runs::modulation_index_svg, runs::compare_runs,
         devices::list_devices, devices::get_device, devices::calibration_history, devices::vpi_at,
         devices::vpi_plot, devices::response_plot,
         chains::upload_chain, chains::list_chains, chains::get_chain,
@@ -28,7 +29,7 @@ use utoipa::{Modify, OpenApi};
         Problem, FieldProblem, Role, TokenInfo, CreatedToken, token_routes::NewToken, system::Health,
         run_control::SubmittedRun,
         runs::RunSummary, runs::RunList, runs::RunView, runs::FrequencyResultView, runs::PointView,
-        runs::PointList, runs::TraceView,
+        runs::PointList, runs::TraceView, RunComparison, ComparisonRow,
         devices::DeviceView, devices::Calibration, devices::CalibrationPoint, devices::VpiAnswer,
         chains::ChainUpload, chains::ChainPointBody, chains::ChainView, chains::ChainHeaderView,
     )),

@@ -405,7 +405,7 @@ pub struct InterpolatedVpi {
 }
 
 /// One frequency of a comparison of two runs.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct ComparisonRow {
     pub frequency_hz: f64,
     pub v_pi_a_volts: Option<f64>,
@@ -416,7 +416,7 @@ pub struct ComparisonRow {
 
 /// Two runs side by side, per frequency (ascending; frequencies only one run has appear with the
 /// other side empty).
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct RunComparison {
     pub run_a: i64,
     pub run_b: i64,

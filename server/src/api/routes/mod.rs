@@ -99,6 +99,11 @@ pub fn route_table() -> Vec<RouteEntry> {
             "/runs/{run_id}/plots/modulation-index.svg",
             get(runs::modulation_index_svg),
         ),
+        entry(
+            Method::GET,
+            "/runs/{run_id}/compare/{other_run_id}",
+            get(runs::compare_runs),
+        ),
         entry(Method::GET, "/devices", get(devices::list_devices)),
         entry(Method::GET, "/devices/{serial}", get(devices::get_device)),
         entry(

@@ -6,7 +6,7 @@ use crate::api::auth::Viewer;
 use crate::api::plots::{self, MarkedLine, ModulationPlot, ModulationPoint, SpectrumPlot};
 use crate::api::problem::{FieldProblem, Problem};
 use crate::api::AppState;
-use crate::store::{PointRecord, RunFilter, RunRecord, RunState};
+use crate::store::{PointRecord, RunComparison, RunFilter, RunRecord, RunState};
 use axum::body::Bytes;
 use axum::extract::{Path, Query, State};
 use axum::http::header::CONTENT_TYPE;
@@ -602,6 +602,24 @@ pub async fn modulation_index_svg(
         v_pi_volts: result.map(|r| r.v_pi_volts),
     };
     svg(plots::modulation_index_svg(&plot))
+}
+
+/// Compares two runs: V_pi per frequency and the difference of the other run from this one in
+/// percent, e.g. a modulator's calibration against last year's.
+#[utoipa::path(get, path = "/api/v1/runs/{run_id}/compare/{other_run_id}", tag = "runs",
+    security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run A, the reference"),
+           ("other_run_id" = i64, Path, description = "Run B, compared with A")),
+    responses((status = 200, body = RunComparison), (status = 401, body = Problem),
+              (status = 404, body = Problem)))]
+pub async fn compare_runs(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    Path((run_id, other_run_id)): Path<(i64, i64)>,
+) -> Result<Json<RunComparison>, Problem> {
+    Ok(Json(
+        state.store().compare_runs(run_id, other_run_id).await?,
+    ))
 }
 
 #[cfg(test)]
