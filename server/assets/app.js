@@ -189,6 +189,11 @@ function connectEvents() {
           $("progress-text").textContent += ` · V_pi at ${(event.frequency_hz / 1e9).toFixed(3)} GHz = ${event.v_pi_volts.toFixed(3)} V`;
         }
         break;
+      case "response": {
+        const at = (hz) => (hz === null || hz === undefined ? "not reached" : `${(hz / 1e9).toFixed(2)} GHz`);
+        $("progress-text").textContent += ` · response: 3 dB ${at(event.f_3db_hz)}, 6 dB ${at(event.f_6db_hz)}`;
+        break;
+      }
       case "finished":
         $("live-summary").textContent = `Run ${event.run_id} ${event.state}` + (event.cause ? `: ${event.cause}` : "");
         state.liveRunId = null;

@@ -106,7 +106,9 @@ impl RunGauges {
             ProgressEvent::Finished { run_id, .. } => {
                 progress.remove(run_id);
             }
-            ProgressEvent::Queued { .. } | ProgressEvent::Frequency { .. } => {}
+            ProgressEvent::Queued { .. }
+            | ProgressEvent::Frequency { .. }
+            | ProgressEvent::Response { .. } => {}
         }
     }
 

@@ -45,12 +45,31 @@ pub enum ProgressEvent {
         v_pi_uncertainty_volts: Option<f64>,
         note: Option<String>,
     },
+    /// Every frequency of a run is done: its electro-optic response, 20 log10(V_pi(f_ref) /
+    /// V_pi(f)) against the lowest frequency with a V_pi, and where it falls by 3 and 6 dB
+    /// (`None`: not within the measured range). Sent before `Finished` on a completed run with at
+    /// least one V_pi.
+    Response {
+        run_id: i64,
+        reference_frequency_hz: f64,
+        points: Vec<ResponsePointEvent>,
+        f_3db_hz: Option<f64>,
+        f_6db_hz: Option<f64>,
+    },
     /// The run ended: completed, failed, cancelled or interrupted.
     Finished {
         run_id: i64,
         state: String,
         cause: Option<String>,
     },
+}
+
+/// One frequency of the response curve in a [`ProgressEvent::Response`].
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ResponsePointEvent {
+    pub frequency_hz: f64,
+    pub response_db: f64,
+    pub response_uncertainty_db: f64,
 }
 
 impl ProgressEvent {
@@ -62,6 +81,7 @@ impl ProgressEvent {
             | ProgressEvent::Point { run_id, .. }
             | ProgressEvent::PointFailed { run_id, .. }
             | ProgressEvent::Frequency { run_id, .. }
+            | ProgressEvent::Response { run_id, .. }
             | ProgressEvent::Finished { run_id, .. } => *run_id,
         }
     }

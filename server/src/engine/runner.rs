@@ -15,7 +15,7 @@
 //! off, and then the cause is recorded. An instrument or store error stops the run the same way.
 
 use super::acquire;
-use super::events::ProgressEvent;
+use super::events::{ProgressEvent, ResponsePointEvent};
 use super::plan::{FrequencyStep, Plan};
 use super::safety::{RfOffGuard, SharedSource};
 use crate::analysis::{self, chain::peak_voltage, chain::DriveChain, AnalysisOptions, DrivePoint};
@@ -96,7 +96,10 @@ async fn run_inner(ctx: RunContext) -> RunOutcome {
     // RF off first, report afterwards.
     let off = guard.release().await;
     match (result, off) {
-        (Ok(()), Ok(())) => RunOutcome::Completed,
+        (Ok(()), Ok(())) => {
+            publish_response(&ctx).await;
+            RunOutcome::Completed
+        }
         (Err(Stop::Cancelled), Ok(())) => RunOutcome::Cancelled,
         (Err(Stop::Failed(cause)), Ok(())) => RunOutcome::Failed(cause),
         (Err(Stop::PipelineEnded), Ok(())) => {
@@ -114,6 +117,55 @@ async fn run_inner(ctx: RunContext) -> RunOutcome {
             ))
         }
     }
+}
+
+/// The end of a completed run: the electro-optic response over every fitted frequency, logged
+/// and published. A run without a single V_pi has no response; that is logged, not an error (the
+/// per-frequency events already said why).
+async fn publish_response(ctx: &RunContext) {
+    let results = match ctx.store.frequency_results(ctx.run_id).await {
+        Ok(results) => results,
+        Err(e) => {
+            tracing::warn!(error = %e, "could not read the V_pi results back for the response curve");
+            return;
+        }
+    };
+    let points: Vec<analysis::response::VpiAtFrequency> = results
+        .iter()
+        .map(|r| analysis::response::VpiAtFrequency {
+            frequency: Hz(r.frequency_hz),
+            v_pi: halfwave_units::Volts(r.v_pi_volts),
+            uncertainty: halfwave_units::Volts(r.v_pi_uncertainty_volts),
+        })
+        .collect();
+    let curve = match analysis::response::response_curve(&points) {
+        Ok(curve) => curve,
+        Err(e) => {
+            tracing::warn!(error = %e, "no response curve for this run");
+            return;
+        }
+    };
+    tracing::info!(
+        reference_frequency_hz = curve.reference_frequency_hz.0,
+        f_3db_hz = curve.f_3db_hz.map(|f| f.0),
+        f_6db_hz = curve.f_6db_hz.map(|f| f.0),
+        "electro-optic response"
+    );
+    let _ = ctx.events.send(ProgressEvent::Response {
+        run_id: ctx.run_id,
+        reference_frequency_hz: curve.reference_frequency_hz.0,
+        points: curve
+            .points
+            .iter()
+            .map(|p| ResponsePointEvent {
+                frequency_hz: p.frequency_hz.0,
+                response_db: p.response_db,
+                response_uncertainty_db: p.response_uncertainty_db,
+            })
+            .collect(),
+        f_3db_hz: curve.f_3db_hz.map(|f| f.0),
+        f_6db_hz: curve.f_6db_hz.map(|f| f.0),
+    });
 }
 
 enum Stop {

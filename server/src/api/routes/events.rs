@@ -35,7 +35,7 @@ pub struct EventsQuery {
 /// Live progress of runs as server-sent events; each `data:` is one JSON progress event.
 #[utoipa::path(get, path = "/api/v1/events", tag = "runs", security(("bearer" = [])),
     params(EventsQuery),
-    responses((status = 200, description = "text/event-stream of progress events (queued, started, point, point_failed, frequency, finished, lagged)", content_type = "text/event-stream", body = String),
+    responses((status = 200, description = "text/event-stream of progress events (queued, started, point, point_failed, frequency, response, finished, lagged)", content_type = "text/event-stream", body = String),
               (status = 401, body = Problem)))]
 pub async fn events(
     _caller: ViewerFromHeaderOrQuery,
