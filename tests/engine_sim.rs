@@ -40,6 +40,7 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
     let chain = upload_true_chain(&store, &scenario).await;
     let engine = start_engine(Limits::default(), store.clone(), &sim).await;
     let mut events = engine.subscribe();
+    let mut response_events = engine.subscribe();
     let laser_before = sim.laser_frequency();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
     assert_eq!(wait_for_end(&mut events, run_id).await.0, "completed");
@@ -58,6 +59,45 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
     assert_eq!(points.len(), POINTS);
     let results = store.frequency_results(run_id).await.unwrap();
     assert_v_pi_within(&results, &scenario, 0.02);
+
+    // The response curve published at the end: 20 log10(V_pi(f_ref) / V_pi(f)) against the
+    // lowest frequency, which the scenario's true V_pi gives too. Two V_pi within 2 % each put
+    // the ratio within 20 log10(1.02 / 0.98) = 0.35 dB.
+    let response = loop {
+        match response_events.try_recv() {
+            Ok(ProgressEvent::Response {
+                run_id: id,
+                reference_frequency_hz,
+                points,
+                f_3db_hz,
+                ..
+            }) if id == run_id => break (reference_frequency_hz, points, f_3db_hz),
+            Ok(ProgressEvent::Finished { .. }) => panic!("no response event before the end"),
+            Ok(_) => continue,
+            Err(e) => panic!("no response event: {e}"),
+        }
+    };
+    let (reference, curve, f_3db) = response;
+    let lowest = engine_support::FREQUENCIES_HZ[0];
+    assert_eq!(reference, lowest);
+    assert_eq!(curve.len(), engine_support::FREQUENCIES_HZ.len());
+    let v_pi_true = |f: f64| scenario.v_pi_at(halfwave_units::Hz(f)).0;
+    for p in &curve {
+        let truth = 20.0 * (v_pi_true(lowest) / v_pi_true(p.frequency_hz)).log10();
+        assert!(
+            (p.response_db - truth).abs() < 0.35,
+            "response at {} GHz: {} dB, scenario {truth} dB",
+            p.frequency_hz / 1e9,
+            p.response_db
+        );
+    }
+    // Where the scenario's own response crosses -3 dB decides whether a 3 dB point is expected.
+    let truth_at_top = 20.0 * (v_pi_true(lowest) / v_pi_true(20e9)).log10();
+    if truth_at_top < -3.5 {
+        assert!(f_3db.is_some(), "the response falls past 3 dB by 20 GHz");
+    } else if truth_at_top > -2.5 {
+        assert!(f_3db.is_none(), "{f_3db:?}");
+    }
     engine.shutdown().await;
 }
 
@@ -124,21 +164,31 @@ async fn cancel_leaves_the_output_off_within_a_second() {
     engine.shutdown().await;
 }
 
-#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
+/// A run stopped by an engine shutdown (as SIGTERM does) after `points` committed points, and
+/// what is needed to start a new engine on the same database and bench.
+struct Interrupted {
+    _dir: tempfile::TempDir,
+    db: std::path::PathBuf,
+    store: Store,
+    scenario: Scenario,
+    sim: SimBench,
+    run_id: i64,
+    kept_points: usize,
+}
+
+async fn interrupt_after(points: usize, seed: u64) -> Interrupted {
     let dir = tempfile::tempdir().unwrap();
     let db = dir.path().join("h.db");
     let store = Store::open(db.to_str().unwrap()).await.unwrap();
     let scenario = Scenario::builtin().unwrap();
-    let sim = SimBench::new(scenario.clone(), 11).with_time_factor(0.2);
+    let sim = SimBench::new(scenario.clone(), seed).with_time_factor(0.2);
     let chain = upload_true_chain(&store, &scenario).await;
     let engine = start_engine(Limits::default(), store.clone(), &sim).await;
     let mut events = engine.subscribe();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
-    // Let a dozen points be committed, then stop the daemon's engine as SIGTERM would.
     let mut seen = 0;
     let deadline = tokio::time::Instant::now() + Duration::from_secs(120);
-    while seen < 12 {
+    while seen < points {
         match tokio::time::timeout_at(deadline, events.recv()).await {
             Ok(Ok(ProgressEvent::Point { .. })) => seen += 1,
             Ok(Ok(ProgressEvent::Finished { state, cause, .. })) => {
@@ -152,26 +202,73 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     assert!(!sim.rf_output_on(), "RF must be off after shutdown");
     let run = store.run(run_id).await.unwrap();
     assert_eq!(run.state, RunState::Interrupted);
-    let before = store.points_of_run(run_id).await.unwrap().len();
-    assert!((12..POINTS).contains(&before), "{before} points");
+    let kept_points = store.points_of_run(run_id).await.unwrap().len();
+    assert!(
+        (points..POINTS).contains(&kept_points),
+        "{kept_points} points"
+    );
+    Interrupted {
+        _dir: dir,
+        db,
+        store,
+        scenario,
+        sim,
+        run_id,
+        kept_points,
+    }
+}
+
+impl Interrupted {
+    /// A new engine on the same database and bench, as after a restart.
+    async fn restart(&self) -> Engine {
+        start_engine(
+            Limits::default(),
+            Store::open(self.db.to_str().unwrap()).await.unwrap(),
+            &self.sim,
+        )
+        .await
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
+    let stopped = interrupt_after(12, 11).await;
+    let (store, run_id) = (&stopped.store, stopped.run_id);
 
     // A new engine on the same database and bench: the run is still interrupted; resume it.
-    sim.set_time_factor(0.0);
-    let engine = start_engine(
-        Limits::default(),
-        Store::open(db.to_str().unwrap()).await.unwrap(),
-        &sim,
-    )
-    .await;
+    stopped.sim.set_time_factor(0.0);
+    let engine = stopped.restart().await;
     let mut events = engine.subscribe();
     engine.resume(run_id, "test").await.unwrap();
     assert_eq!(wait_for_end(&mut events, run_id).await.0, "completed");
     let points = store.points_of_run(run_id).await.unwrap();
     assert_eq!(points.len(), POINTS, "same count as an uninterrupted run");
     let results = store.frequency_results(run_id).await.unwrap();
-    assert_v_pi_within(&results, &scenario, 0.02);
+    assert_v_pi_within(&results, &stopped.scenario, 0.02);
     // A completed run cannot be resumed again.
     assert!(engine.resume(run_id, "test").await.is_err());
+    engine.shutdown().await;
+}
+
+/// An interrupted run the operator does not want finished can be abandoned: cancel moves it to
+/// cancelled with its points kept, and it can no longer be resumed.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_interrupted_run_can_be_cancelled_and_keeps_its_points() {
+    let stopped = interrupt_after(1, 12).await;
+    let (store, run_id) = (&stopped.store, stopped.run_id);
+    let engine = stopped.restart().await;
+    engine.cancel(run_id, "test").await.unwrap();
+    let run = store.run(run_id).await.unwrap();
+    assert_eq!(run.state, RunState::Cancelled);
+    assert!(run.cause.unwrap_or_default().contains("cancelled by test"));
+    assert_eq!(
+        store.points_of_run(run_id).await.unwrap().len(),
+        stopped.kept_points
+    );
+    assert!(engine.resume(run_id, "test").await.is_err());
+    // A cancelled run cannot be cancelled again.
+    assert!(engine.cancel(run_id, "test").await.is_err());
+    assert!(!stopped.sim.rf_output_on());
     engine.shutdown().await;
 }
 

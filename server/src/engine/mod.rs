@@ -54,7 +54,7 @@ pub enum SubmitError {
 pub enum EngineError {
     #[error("run {0} does not exist")]
     RunNotFound(i64),
-    #[error("run {run_id} is {state}; only queued or running runs can be cancelled")]
+    #[error("run {run_id} is {state}; only queued, running or interrupted runs can be cancelled")]
     NotCancellable { run_id: i64, state: String },
     #[error("run {run_id} is {state}; only interrupted runs can be resumed")]
     NotResumable { run_id: i64, state: String },
@@ -128,10 +128,46 @@ pub struct Engine {
 impl Engine {
     /// Builds the configured benches and starts the engine (see the module documentation).
     pub async fn start(config: &Config, store: Store) -> Result<Engine, EngineError> {
-        let mut benches = Vec::new();
+        // Start-up interlock, before anything can fail: every source that answers is switched
+        // off first, so that an unreachable analyzer (or another bench) that stops the start
+        // does not leave a source on that a previous process was driving.
+        let mut sources = Vec::new();
+        let mut failures = Vec::new();
         for bench in &config.benches {
-            let instruments = bench::build(config, bench).await?;
-            benches.push((bench.name.clone(), instruments));
+            let connected = match bench::simulation(config, bench) {
+                Ok(simulation) => bench::connect_bench_source(config, bench, simulation.as_ref())
+                    .await
+                    .map(|source| (simulation, source)),
+                Err(e) => Err(e),
+            };
+            match connected {
+                Ok((simulation, mut source)) => {
+                    bench::switch_off_at_start(&bench.name, source.as_mut()).await;
+                    sources.push((bench, simulation, source));
+                }
+                Err(e) => failures.push(e),
+            }
+        }
+        let mut benches = Vec::new();
+        for (bench, simulation, source) in sources {
+            match bench::connect_bench_analyzer(config, bench, simulation.as_ref()).await {
+                Ok(analyzer) => benches.push((
+                    bench.name.clone(),
+                    BenchInstruments {
+                        source,
+                        analyzer,
+                        simulation,
+                    },
+                )),
+                Err(e) => failures.push(e),
+            }
+        }
+        if !failures.is_empty() {
+            if failures.len() == 1 {
+                return Err(failures.remove(0));
+            }
+            let all: Vec<String> = failures.iter().map(ToString::to_string).collect();
+            return Err(EngineError::Setup(all.join("; ")));
         }
         Self::start_with(config.limits.clone(), store, benches).await
     }
@@ -332,8 +368,10 @@ impl Engine {
     pub async fn cancel(&self, run_id: i64, by: &str) -> Result<(), EngineError> {
         let run = self.run_record(run_id).await?;
         let state = run.state;
-        if !matches!(state, RunState::Queued | RunState::Running)
-            && !self.is_queued_or_active(run_id)
+        if !matches!(
+            state,
+            RunState::Queued | RunState::Running | RunState::Interrupted
+        ) && !self.is_queued_or_active(run_id)
         {
             return Err(EngineError::NotCancellable {
                 run_id,
@@ -354,7 +392,8 @@ impl Engine {
         match token {
             Some(t) => t.cancel(),
             None => {
-                // Not in any queue of this process (should not happen): record it directly.
+                // Not in any queue of this process: an interrupted run being abandoned (its
+                // points stay), or a run this process never queued. Record it directly.
                 self.inner
                     .store
                     .transition_run(
