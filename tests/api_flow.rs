@@ -332,6 +332,31 @@ async fn invalid_plans_are_refused_with_fields_named_and_nothing_sent() {
         "{fields:?}"
     );
 
+    // Levels the source can make, at frequencies it covers, but over this device's RF input
+    // limit after the chain: 20 dBm - 1 dB = 19 dBm at the modulator against a 10 dBm limit.
+    let mut over_device = plan("c");
+    over_device["device"]["rf_input_limit_dbm"] = serde_json::json!(10.0);
+    over_device["chain"] = serde_json::json!({"kind": "flat_loss", "loss_db": 1.0});
+    over_device["levels"] = serde_json::json!({"kind": "list", "values_dbm": [0.0, 10.0, 20.0]});
+    let response = app
+        .post_json("/api/v1/runs", Some(&operator), &over_device)
+        .await;
+    assert_eq!(response.status(), 422);
+    let body = problem(response).await;
+    let errors = body["errors"].as_array().unwrap();
+    assert_eq!(errors.len(), 1, "{body}");
+    assert!(
+        errors[0]["field"].as_str().unwrap().starts_with("levels"),
+        "{body}"
+    );
+    assert!(
+        errors[0]["message"]
+            .as_str()
+            .unwrap()
+            .contains("device's RF input limit"),
+        "{body}"
+    );
+
     assert!(
         bench.sim.command_log(Instrument::RfSource).is_empty(),
         "{:?}",

@@ -168,7 +168,7 @@ pub async fn create(
     let token = generate_token()?;
     let result = sqlx::query(
         "INSERT INTO api_tokens (name, role, token_sha256, created_at_unix_ms, created_by) \
-         VALUES (?, ?, ?, ?, ?)",
+         VALUES ($1, $2, $3, $4, $5)",
     )
     .bind(name)
     .bind(role.as_str())
@@ -193,7 +193,7 @@ pub async fn create(
 /// Revokes the active token of this name.
 pub async fn revoke(pool: &SqlitePool, name: &str) -> Result<(), TokenError> {
     let done = sqlx::query(
-        "UPDATE api_tokens SET revoked_at_unix_ms = ? WHERE name = ? AND revoked_at_unix_ms IS NULL",
+        "UPDATE api_tokens SET revoked_at_unix_ms = $1 WHERE name = $2 AND revoked_at_unix_ms IS NULL",
     )
     .bind(now_unix_ms())
     .bind(name)
@@ -243,7 +243,7 @@ pub async fn authenticate_digest(
     digest: &str,
 ) -> Result<Option<TokenHolder>, TokenError> {
     let row: Option<(String, String)> = sqlx::query_as(
-        "SELECT name, role FROM api_tokens WHERE token_sha256 = ? AND revoked_at_unix_ms IS NULL",
+        "SELECT name, role FROM api_tokens WHERE token_sha256 = $1 AND revoked_at_unix_ms IS NULL",
     )
     .bind(digest)
     .fetch_optional(pool)
