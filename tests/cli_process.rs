@@ -222,6 +222,12 @@ fn clients_name_an_unreachable_daemon() {
     }
     let out = halfwave(&["runs", "--url", "not a url"]);
     failed_with(&out, &["--url \"not a url\" is not a URL"]);
+    // https (through the TLS proxy of deploy/) is spoken: the failure is the connection itself.
+    let tls_url = format!("https://127.0.0.1:{}", closed_port());
+    let out = halfwave(&["runs", "--url", &tls_url, "--token", "hwt_x"]);
+    failed_with(&out, &[&format!("cannot reach the daemon at {tls_url}")]);
+    let out = halfwave(&["runs", "--url", "ftp://127.0.0.1:1", "--token", "hwt_x"]);
+    failed_with(&out, &["unknown scheme \"ftp\""]);
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -564,4 +570,163 @@ fn token_and_run_ids_refuse_bad_input() {
     }
     let out = halfwave(&["export", "1", "--format", "xlsx"]);
     failed_with(&out, &["xlsx", "csv", "json"]);
+}
+
+/// True when an SCPI command (not a query) sets the RF output on: `OUTPut[:STATe] ON|1` in any
+/// case, long or short form (IEEE 488.2 / SCPI-99 headers are case-insensitive).
+fn switches_output_on(command: &str) -> bool {
+    let upper = command.trim().to_ascii_uppercase();
+    let header = upper.split_whitespace().next().unwrap_or("");
+    let is_output = header.trim_start_matches(':').starts_with("OUTP");
+    let argument = upper.split_whitespace().nth(1).unwrap_or("");
+    is_output && !header.ends_with('?') && (argument == "ON" || argument == "1")
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn check_bench_never_sends_a_command_that_switches_rf_on() {
+    use halfwave_drivers::sim::server::{SimServer, SimServerConfig};
+    use halfwave_drivers::sim::{Role as SimRole, Scenario, SimBench};
+    assert!(switches_output_on(":OUTPut:STATe ON") && switches_output_on("outp 1"));
+    assert!(!switches_output_on("OUTP OFF") && !switches_output_on("OUTP?"));
+
+    let server = SimServer::start(
+        SimBench::new(Scenario::builtin().unwrap(), 4),
+        SimServerConfig::any_free_ports(),
+    )
+    .await
+    .unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("halfwave.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"tcp-bench\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\" }}\n",
+            server.resource(SimRole::RfSource),
+            server.resource(SimRole::Analyzer),
+        ),
+    )
+    .unwrap();
+    let out = halfwave_async(&["check-bench", "--config", config.to_str().unwrap()]).await;
+    assert!(out.status.success(), "{}{}", stdout(&out), stderr(&out));
+    let log = server.bench().command_log(SimRole::RfSource);
+    assert!(
+        log.iter().any(|c| c.to_ascii_uppercase().contains("FREQ")),
+        "the check set and read back the frequency: {log:?}"
+    );
+    let on: Vec<&String> = log.iter().filter(|c| switches_output_on(c)).collect();
+    assert!(on.is_empty(), "check-bench sent {on:?}");
+    assert!(!server.bench().rf_output_on());
+    server.shutdown().await;
+}
+
+#[test]
+fn files_that_do_not_exist_are_named() {
+    let out = halfwave(&[
+        "analyze",
+        "--modulation-frequency",
+        "1e9",
+        "/nonexistent/trace.csv",
+    ]);
+    failed_with(&out, &["/nonexistent/trace.csv"]);
+    let out = halfwave(&[
+        "sim",
+        "--source-port",
+        "0",
+        "--analyzer-port",
+        "0",
+        "--scenario",
+        "/nonexistent/scenario.toml",
+    ]);
+    failed_with(&out, &["/nonexistent/scenario.toml"]);
+    let out = halfwave(&["serve", "--config", "/nonexistent/halfwave.toml"]);
+    failed_with(&out, &["/nonexistent/halfwave.toml"]);
+}
+
+#[test]
+fn check_bench_names_an_unreachable_instrument() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("halfwave.toml");
+    let port = closed_port();
+    std::fs::write(
+        &config,
+        format!(
+            "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"far-bench\"\nsource = {{ kind = \"scpi\", resource = \"TCPIP::127.0.0.1::{port}::SOCKET\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"TCPIP::127.0.0.1::{port}::SOCKET\" }}\n"
+        ),
+    )
+    .unwrap();
+    let out = halfwave(&["check-bench", "--config", config.to_str().unwrap()]);
+    failed_with(&out, &["bench check failed for far-bench"]);
+    let report = stdout(&out);
+    assert!(report.contains(&port.to_string()), "{report}");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn every_client_command_names_a_wrong_token() {
+    let app = spawn_app().await;
+    let dir = tempfile::tempdir().unwrap();
+    let plan = dir.path().join("plan.json");
+    std::fs::write(&plan, plan_json().to_string()).unwrap();
+    let plan = plan.to_str().unwrap();
+    let common = ["--url", app.base.as_str(), "--token", "hwt_wrong"];
+    let commands: [&[&str]; 5] = [
+        &["submit", plan],
+        &["runs"],
+        &["show", "1"],
+        &["watch", "1"],
+        &["export", "1"],
+    ];
+    for words in commands {
+        let mut args = words.to_vec();
+        args.extend_from_slice(&common);
+        let out = halfwave_async(&args).await;
+        failed_with(&out, &["the daemon refused the token"]);
+    }
+    for words in [["token", "revoke"], ["token", "list"]] {
+        let out = halfwave_async(&[words[0], words[1], "--help"]).await;
+        assert!(out.status.success(), "{words:?}: {}", stderr(&out));
+        assert!(stdout(&out).contains("--config"), "{}", stdout(&out));
+    }
+}
+
+#[test]
+fn token_create_finds_the_configuration_from_the_environment() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("halfwave.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "data_dir = \"{}\"\n{SIMULATED_CONFIG}",
+            dir.path().join("data").display()
+        ),
+    )
+    .unwrap();
+    // The command as an operator types it on the bench PC, the file named by HALFWAVE_CONFIG.
+    let out = std::process::Command::new(BIN)
+        .args(["token", "create", "--role", "operator", "--name", "lab-b"])
+        .env("HALFWAVE_CONFIG", &config)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", stderr(&out));
+    assert!(stdout(&out).trim().starts_with("hwt_"), "{}", stdout(&out));
+    let listed = std::process::Command::new(BIN)
+        .args(["token", "list"])
+        .env("HALFWAVE_CONFIG", &config)
+        .output()
+        .unwrap();
+    assert!(stdout(&listed).contains("lab-b"), "{}", stdout(&listed));
+    assert!(dir.path().join("data").join("halfwave.db").exists());
+
+    // With no file anywhere, the error says how to name one (none is at /etc/halfwave on a
+    // test machine).
+    if !std::path::Path::new(halfwave::config::SYSTEM_CONFIG_PATH).exists() {
+        let out = std::process::Command::new(BIN)
+            .args(["token", "create", "--role", "operator", "--name", "lab-b"])
+            .env_remove("HALFWAVE_CONFIG")
+            .output()
+            .unwrap();
+        failed_with(
+            &out,
+            &["--config FILE", "HALFWAVE_CONFIG", "--database URL"],
+        );
+    }
 }

@@ -15,6 +15,32 @@ use std::path::{Path, PathBuf};
 /// suit your devices; no API call can raise it.
 pub const DEFAULT_MAX_LEVEL_AT_MODULATOR_DBM: f64 = 24.0;
 
+/// Where the configuration file is looked for when no `--config` is given: the environment
+/// variable [`CONFIG_ENV`] if set, else this path (where `deploy/` installs it).
+pub const SYSTEM_CONFIG_PATH: &str = "/etc/halfwave/halfwave.toml";
+
+/// The environment variable naming the configuration file when `--config` is absent.
+pub const CONFIG_ENV: &str = "HALFWAVE_CONFIG";
+
+/// The configuration file to use: the one given, else `$HALFWAVE_CONFIG`, else
+/// [`SYSTEM_CONFIG_PATH`] if it exists. The error says how to name one.
+pub fn config_path(given: Option<&Path>) -> Result<PathBuf, String> {
+    if let Some(path) = given {
+        return Ok(path.to_path_buf());
+    }
+    if let Some(path) = std::env::var_os(CONFIG_ENV).filter(|v| !v.is_empty()) {
+        return Ok(PathBuf::from(path));
+    }
+    let system = Path::new(SYSTEM_CONFIG_PATH);
+    if system.is_file() {
+        return Ok(system.to_path_buf());
+    }
+    Err(format!(
+        "no configuration file: give --config FILE, set {CONFIG_ENV}, or install one at \
+         {SYSTEM_CONFIG_PATH} (deploy/halfwave.toml is a commented example)"
+    ))
+}
+
 /// Why the configuration was refused.
 #[derive(Debug, thiserror::Error)]
 pub enum ConfigError {

@@ -51,9 +51,10 @@ the analyzer's centre, span, resolution bandwidth and points, then takes one swe
 the daemon is stopped or idle."
 )]
 pub struct CheckBenchArgs {
-    /// The daemon's configuration file (its [[bench]] entries are checked).
+    /// The daemon's configuration file (its [[bench]] entries are checked); default:
+    /// $HALFWAVE_CONFIG, else /etc/halfwave/halfwave.toml.
     #[arg(long, short)]
-    pub config: PathBuf,
+    pub config: Option<PathBuf>,
     /// Only this bench.
     #[arg(long)]
     pub bench: Option<String>,
@@ -106,7 +107,8 @@ pub struct CheckReport {
 
 /// Runs `halfwave check-bench`.
 pub fn run(args: CheckBenchArgs) -> Result<(), CliError> {
-    let config = Config::load(&args.config).map_err(|e| CliError::new(e.to_string()))?;
+    let path = crate::config::config_path(args.config.as_deref()).map_err(CliError::new)?;
+    let config = Config::load(&path).map_err(|e| CliError::new(e.to_string()))?;
     let benches: Vec<&BenchConfig> = config
         .benches
         .iter()
@@ -116,11 +118,11 @@ pub fn run(args: CheckBenchArgs) -> Result<(), CliError> {
         return Err(CliError::new(match &args.bench {
             Some(name) => format!(
                 "{} has no bench named {name:?}; the names are in its [[bench]] tables",
-                args.config.display()
+                path.display()
             ),
             None => format!(
                 "{} configures no bench; add a [[bench]] table (see deploy/halfwave.toml)",
-                args.config.display()
+                path.display()
             ),
         }));
     }

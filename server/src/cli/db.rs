@@ -77,15 +77,14 @@ pub fn run(command: DbCommand) -> Result<(), CliError> {
 /// The database to copy. Unlike `token`, nothing is created: a backup of a database that does
 /// not exist is an error.
 fn source_url(choice: &DatabaseChoice) -> Result<String, CliError> {
-    match (&choice.database, &choice.config) {
-        (Some(url), _) => Ok(url.clone()),
-        (None, Some(path)) => Config::load(path)
-            .map(|c| c.database_url())
-            .map_err(|e| CliError::new(e.to_string())),
-        (None, None) => Err(CliError::new(
-            "say which database: --config FILE (the daemon's configuration) or --database URL",
-        )),
+    if let Some(url) = &choice.database {
+        return Ok(url.clone());
     }
+    let path = crate::config::config_path(choice.config.as_deref())
+        .map_err(|e| CliError::new(format!("{e}; or name the database with --database URL")))?;
+    Config::load(&path)
+        .map(|c| c.database_url())
+        .map_err(|e| CliError::new(e.to_string()))
 }
 
 fn source_options(url: &str) -> Result<SqliteConnectOptions, CliError> {

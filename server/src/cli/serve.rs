@@ -16,14 +16,16 @@ use std::path::PathBuf;
 
 #[derive(Debug, Args)]
 pub struct ServeArgs {
-    /// The configuration file (see deploy/halfwave.toml for a commented example).
+    /// The configuration file (see deploy/halfwave.toml for a commented example); default:
+    /// $HALFWAVE_CONFIG, else /etc/halfwave/halfwave.toml.
     #[arg(long, short)]
-    pub config: PathBuf,
+    pub config: Option<PathBuf>,
 }
 
 /// Runs the daemon until a shutdown signal.
 pub fn run(args: ServeArgs) -> Result<(), CliError> {
-    let config = Config::load(&args.config).map_err(|e| CliError::new(e.to_string()))?;
+    let path = crate::config::config_path(args.config.as_deref()).map_err(CliError::new)?;
+    let config = Config::load(&path).map_err(|e| CliError::new(e.to_string()))?;
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()

@@ -2,7 +2,8 @@
 //!
 //! This is how the first admin token comes to exist, and it works while the daemon is down. The
 //! database is the one named by `--database URL` (a `sqlite:` URL or a file path) or by the
-//! configuration file given with `--config FILE`. A created token is printed once, on stdout, and
+//! configuration file given with `--config FILE` (default: `$HALFWAVE_CONFIG`, else
+//! `/etc/halfwave/halfwave.toml`). A created token is printed once, on stdout, and
 //! only its SHA-256 digest is stored.
 
 use super::CliError;
@@ -15,7 +16,8 @@ use std::path::PathBuf;
 /// Where the database is.
 #[derive(Debug, Args)]
 pub struct DatabaseChoice {
-    /// The daemon's configuration file (its database is used).
+    /// The daemon's configuration file (its database is used); default: $HALFWAVE_CONFIG, else
+    /// /etc/halfwave/halfwave.toml.
     #[arg(long, value_name = "FILE", conflicts_with = "database")]
     pub config: Option<PathBuf>,
     /// The database: a `sqlite:` URL or a file path.
@@ -60,18 +62,15 @@ pub enum TokenAction {
 
 /// The database URL the choice names (from the configuration file, or given directly).
 pub fn database_url(choice: &DatabaseChoice) -> Result<String, CliError> {
-    match (&choice.database, &choice.config) {
-        (Some(url), _) => Ok(url.clone()),
-        (None, Some(path)) => {
-            // A token may be created before the daemon's first start: make its data directory.
-            let config = Config::load(path).map_err(|e| CliError::new(e.to_string()))?;
-            config.create_data_dir().map_err(CliError::new)?;
-            Ok(config.database_url())
-        }
-        (None, None) => Err(CliError::new(
-            "say which database: --config FILE (the daemon's configuration) or --database URL",
-        )),
+    if let Some(url) = &choice.database {
+        return Ok(url.clone());
     }
+    let path = crate::config::config_path(choice.config.as_deref())
+        .map_err(|e| CliError::new(format!("{e}; or name the database with --database URL")))?;
+    // A token may be created before the daemon's first start: make its data directory.
+    let config = Config::load(&path).map_err(|e| CliError::new(e.to_string()))?;
+    config.create_data_dir().map_err(CliError::new)?;
+    Ok(config.database_url())
 }
 
 async fn open(choice: &DatabaseChoice) -> Result<Store, CliError> {
