@@ -38,20 +38,21 @@ pub async fn switch_off_at_start(bench: &str, source: &mut dyn RfSource) {
     }
 }
 
-fn setup_error(bench: &BenchConfig, message: String) -> EngineError {
+/// A set-up failure of this bench, named.
+pub fn setup_error(bench: &BenchConfig, message: String) -> EngineError {
     EngineError::Setup(format!("bench {}: {message}", bench.name))
 }
 
-/// The simulated bench behind a bench's simulated instruments, if it has one.
-pub fn simulation(config: &Config, bench: &BenchConfig) -> Result<Option<SimBench>, EngineError> {
+/// The simulated bench behind a bench's simulated instruments, if it has one; the error is the
+/// scenario problem (see [`setup_error`] to name the bench).
+pub fn simulation(config: &Config, bench: &BenchConfig) -> Result<Option<SimBench>, String> {
     let Some(sim) = &bench.simulation else {
         return Ok(None);
     };
     let scenario = match &sim.scenario {
         Some(path) => Scenario::from_file(&config.resolve(path))
-            .map_err(|e| setup_error(bench, format!("simulation scenario: {e}")))?,
-        None => Scenario::builtin()
-            .map_err(|e| setup_error(bench, format!("built-in simulation scenario: {e}")))?,
+            .map_err(|e| format!("simulation scenario: {e}"))?,
+        None => Scenario::builtin().map_err(|e| format!("built-in simulation scenario: {e}"))?,
     };
     Ok(Some(
         SimBench::new(scenario, sim.seed).with_time_factor(sim.time_factor),
@@ -112,7 +113,7 @@ pub async fn connect_bench_analyzer(
 
 /// Connects (or simulates) the instruments of one configured bench; nothing is switched.
 pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstruments, EngineError> {
-    let simulation = simulation(config, bench)?;
+    let simulation = simulation(config, bench).map_err(|m| setup_error(bench, m))?;
     let source = connect_bench_source(config, bench, simulation.as_ref()).await?;
     let analyzer = connect_bench_analyzer(config, bench, simulation.as_ref()).await?;
     Ok(BenchInstruments {

@@ -138,7 +138,7 @@ impl Engine {
                 Ok(simulation) => bench::connect_bench_source(config, bench, simulation.as_ref())
                     .await
                     .map(|source| (simulation, source)),
-                Err(e) => Err(e),
+                Err(message) => Err(bench::setup_error(bench, message)),
             };
             match connected {
                 Ok((simulation, mut source)) => {
