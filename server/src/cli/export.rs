@@ -137,8 +137,8 @@ mod tests {
             modulation_index: index,
             modulation_index_uncertainty: index.map(|_| 0.01),
             asymmetry_db: None,
-            lines: serde_json::Value::Null,
-            analysis: serde_json::Value::Null,
+            lines: crate::api::routes::runs::null_json(),
+            analysis: crate::api::routes::runs::null_json(),
             measured_at_unix_ms: 5,
         }
     }

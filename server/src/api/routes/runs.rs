@@ -13,6 +13,7 @@ use axum::http::header::CONTENT_TYPE;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
 use serde::{Deserialize, Serialize};
+use serde_json::value::RawValue;
 use utoipa::{IntoParams, ToSchema};
 
 /// The largest page of runs or points.
@@ -97,12 +98,13 @@ pub struct PointView {
     pub modulation_index: Option<f64>,
     pub modulation_index_uncertainty: Option<f64>,
     pub asymmetry_db: Option<f64>,
-    /// The comb lines found (order, frequency, power ...), as the analysis reported them.
+    /// The comb lines found (order, frequency, power ...), as the analysis reported them. Passed
+    /// through as stored (never parsed into a tree and written again).
     #[schema(value_type = Object)]
-    pub lines: serde_json::Value,
-    /// Method, residuals and warnings of the analysis.
+    pub lines: Box<RawValue>,
+    /// Method, residuals and warnings of the analysis, passed through as stored.
     #[schema(value_type = Object)]
-    pub analysis: serde_json::Value,
+    pub analysis: Box<RawValue>,
     pub measured_at_unix_ms: i64,
 }
 
@@ -119,11 +121,22 @@ impl From<&PointRecord> for PointView {
             modulation_index: p.modulation_index,
             modulation_index_uncertainty: p.modulation_index_uncertainty,
             asymmetry_db: p.asymmetry_db,
-            lines: serde_json::from_str(&p.line_table_json).unwrap_or(serde_json::Value::Null),
-            analysis: serde_json::from_str(&p.analysis_json).unwrap_or(serde_json::Value::Null),
+            lines: stored_json(&p.line_table_json),
+            analysis: stored_json(&p.analysis_json),
             measured_at_unix_ms: p.measured_at_unix_ms,
         }
     }
+}
+
+/// A JSON document from the store, checked (not parsed into a tree) and served as it is; `null`
+/// if it is not valid JSON.
+pub fn stored_json(text: &str) -> Box<RawValue> {
+    RawValue::from_string(text.to_owned()).unwrap_or_else(|_| null_json())
+}
+
+/// The JSON `null`, as a raw value.
+pub fn null_json() -> Box<RawValue> {
+    RawValue::from_string("null".to_owned()).expect("null is JSON")
 }
 
 /// One page of a run's points.
@@ -644,6 +657,18 @@ mod tests {
             "until"
         );
         assert!(parse_time_bound("until", "yesterday").is_err());
+    }
+
+    #[test]
+    fn stored_json_passes_through_unchanged_and_damage_becomes_null() {
+        let stored = r#"[{"order":-1,"power_dbm":-12.5},{"order":0,"power_dbm":-3.25e0}]"#;
+        let view = serde_json::to_string(&stored_json(stored)).unwrap();
+        assert_eq!(view, stored, "byte for byte, number formatting included");
+        assert_eq!(
+            serde_json::to_string(&stored_json("{\"cut")).unwrap(),
+            "null"
+        );
+        assert_eq!(serde_json::to_string(&stored_json("")).unwrap(), "null");
     }
 
     #[test]
