@@ -22,7 +22,9 @@
 //!
 //! Run: `cargo bench -p halfwave-server --bench api_load`
 //! Environment (optional): `HALFWAVE_LOAD_CONNECTIONS` (default 16), `HALFWAVE_LOAD_SECONDS`
-//! (default 20), `HALFWAVE_QUIET_SECONDS` (each quiet phase, default 10).
+//! (default 20), `HALFWAVE_QUIET_SECONDS` (each quiet phase, default 10),
+//! `HALFWAVE_LOAD_ROUTE_SECONDS` (each endpoint alone afterwards, for its CPU cost; default 3, 0
+//! skips).
 
 #[path = "../../tests/api_support/seed.rs"]
 #[allow(dead_code)]
@@ -314,6 +316,48 @@ impl Endpoint {
     }
 }
 
+/// Where and how hard a load phase drives the daemon.
+struct Load<'a> {
+    address: &'a str,
+    token: &'a Arc<str>,
+    connections: usize,
+    seconds: u64,
+    seeded_runs: i64,
+    live_run: i64,
+}
+
+/// Drives the daemon from `load.connections` keep-alive connections for `load.seconds`, with the
+/// mix or only one endpoint.
+fn load_phase(
+    runtime: &tokio::runtime::Runtime,
+    load: &Load<'_>,
+    only: Option<Endpoint>,
+) -> Vec<Tally> {
+    let stop = Arc::new(AtomicBool::new(false));
+    runtime.block_on(async {
+        let tasks: Vec<_> = (0..load.connections)
+            .map(|i| {
+                tokio::spawn(generate(
+                    load.address.to_string(),
+                    load.token.clone(),
+                    0x9E37_79B9_7F4A_7C15 ^ (i as u64 + 1).wrapping_mul(0xBF58_476D_1CE4_E5B9),
+                    load.seeded_runs,
+                    load.live_run,
+                    stop.clone(),
+                    only,
+                ))
+            })
+            .collect();
+        tokio::time::sleep(Duration::from_secs(load.seconds)).await;
+        stop.store(true, Ordering::Relaxed);
+        let mut tallies = Vec::new();
+        for task in tasks {
+            tallies.push(task.await.expect("generator task"));
+        }
+        tallies
+    })
+}
+
 /// What one generator task saw.
 #[derive(Default)]
 struct Tally {
@@ -329,6 +373,7 @@ async fn generate(
     seeded_runs: i64,
     live_run: i64,
     stop: Arc<AtomicBool>,
+    only: Option<Endpoint>,
 ) -> Tally {
     let mut tally = Tally::default();
     let mut connection = Connection::open(&address).await;
@@ -336,7 +381,7 @@ async fn generate(
     let mut roll: u32 = (seed as u32).wrapping_mul(2_654_435_761);
     while !stop.load(Ordering::Relaxed) {
         roll = roll.wrapping_mul(1_103_515_245).wrapping_add(12_345);
-        let endpoint = Endpoint::pick(roll >> 8);
+        let endpoint = only.unwrap_or_else(|| Endpoint::pick(roll >> 8));
         let path = endpoint.path(&mut rng, seeded_runs, live_run);
         let started = Instant::now();
         match connection.send("GET", &path, &token).await {
@@ -511,31 +556,21 @@ fn main() {
     let load_before = load_average();
     let daemon_cpu_before = cpu_seconds(daemon_pid);
     let own_cpu_before = cpu_seconds(std::process::id());
-    let stop = Arc::new(AtomicBool::new(false));
     let token: Arc<str> = Arc::from(viewer.as_str());
     let load_started_ms = now_unix_ms();
     let started = Instant::now();
-    let tallies: Vec<Tally> = runtime.block_on(async {
-        let tasks: Vec<_> = (0..connections)
-            .map(|i| {
-                tokio::spawn(generate(
-                    address.clone(),
-                    token.clone(),
-                    0x9E37_79B9_7F4A_7C15 ^ (i as u64 + 1).wrapping_mul(0xBF58_476D_1CE4_E5B9),
-                    seeded_runs,
-                    live_run,
-                    stop.clone(),
-                ))
-            })
-            .collect();
-        tokio::time::sleep(Duration::from_secs(load_s)).await;
-        stop.store(true, Ordering::Relaxed);
-        let mut tallies = Vec::new();
-        for task in tasks {
-            tallies.push(task.await.expect("generator task"));
-        }
-        tallies
-    });
+    let tallies = load_phase(
+        &runtime,
+        &Load {
+            address: &address,
+            token: &token,
+            connections,
+            seconds: load_s,
+            seeded_runs,
+            live_run,
+        },
+        None,
+    );
     let elapsed = started.elapsed().as_secs_f64();
     let load_window = (load_started_ms, now_unix_ms());
     let daemon_cpu = cpu_seconds(daemon_pid)
@@ -550,6 +585,39 @@ fn main() {
         std::thread::sleep(Duration::from_secs(quiet_s));
         now_unix_ms()
     });
+
+    // Each endpoint alone, briefly: what one request of each kind costs the daemon in CPU time
+    // (after the point-timing windows, so the run's figures are untouched).
+    let route_s = env_number("HALFWAVE_LOAD_ROUTE_SECONDS", 3);
+    let mut route_costs = Vec::new();
+    if route_s > 0 {
+        for (endpoint, _) in Endpoint::MIX {
+            let before = cpu_seconds(daemon_pid);
+            let started = Instant::now();
+            let tallies = load_phase(
+                &runtime,
+                &Load {
+                    address: &address,
+                    token: &token,
+                    connections,
+                    seconds: route_s,
+                    seeded_runs,
+                    live_run,
+                },
+                Some(endpoint),
+            );
+            let seconds = started.elapsed().as_secs_f64();
+            let answered: usize = tallies
+                .iter()
+                .flat_map(|t| t.latencies_us.values())
+                .map(Vec::len)
+                .sum();
+            let cpu = cpu_seconds(daemon_pid)
+                .zip(before)
+                .map(|(after, before)| after - before);
+            route_costs.push((endpoint, answered as f64 / seconds, cpu, answered));
+        }
+    }
 
     // The run's points, and then stop everything.
     let (points, run_state) = runtime.block_on(async {
@@ -647,6 +715,21 @@ fn main() {
         own_cpu.unwrap_or(f64::NAN),
         per_request_us(own_cpu),
     );
+    if !route_costs.is_empty() {
+        println!("each endpoint alone ({route_s} s each): requests/s, daemon CPU per request");
+        for (endpoint, rate, cpu, answered) in &route_costs {
+            let per_request = match cpu {
+                Some(seconds) if *answered > 0 => {
+                    format!("{:.0} us", seconds * 1e6 / *answered as f64)
+                }
+                _ => "?".to_string(),
+            };
+            println!(
+                "  {:<14} {rate:>8.0}  {per_request}",
+                format!("{endpoint:?}")
+            );
+        }
+    }
     for (kind, n) in errors.iter().take(10) {
         println!("error x{n}: {kind}");
     }
