@@ -646,14 +646,17 @@ fn main() {
         )
         .await;
         let state = run["state"].as_str().unwrap_or("?").to_string();
-        json_request(
-            &address,
-            "POST",
-            &format!("/api/v1/runs/{live_run}/cancel"),
-            &operator,
-            None,
-        )
-        .await;
+        // A long per-endpoint phase may outlast the run; only a run still going is cancelled.
+        if matches!(state.as_str(), "queued" | "running") {
+            json_request(
+                &address,
+                "POST",
+                &format!("/api/v1/runs/{live_run}/cancel"),
+                &operator,
+                None,
+            )
+            .await;
+        }
         (points, state)
     });
     drop(daemon);
@@ -742,7 +745,7 @@ fn main() {
     let (quiet_median, loaded_median) = (median(&mut quiet), median(&mut loaded));
     println!();
     println!(
-        "live run: {} points stored, state {run_state} before the benchmark cancelled it",
+        "live run: {} points stored, state {run_state} when the benchmark stopped it",
         points.len()
     );
     println!(
