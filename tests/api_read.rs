@@ -137,6 +137,38 @@ async fn runs_points_traces_history_and_v_pi() {
     assert!((rows[0]["difference_percent"].as_f64().unwrap() + 4.762).abs() < 1e-3);
     assert!(rows[1]["v_pi_a_volts"].is_null() && rows[1]["difference_percent"].is_null());
     assert!(rows[2]["v_pi_b_volts"].is_null());
+    // Malformed path and query parameters: the parameter is named, never a bare 400.
+    for (path, status, needle) in [
+        ("/api/v1/runs/abc".to_string(), 404, "run_id"),
+        (
+            format!("/api/v1/runs/{}/compare/x", older.run_id),
+            404,
+            "other_run_id",
+        ),
+        (
+            format!("/api/v1/runs/{}/points/p1/trace", older.run_id),
+            404,
+            "point_id",
+        ),
+        ("/api/v1/runs?page=abc".to_string(), 422, "page"),
+        (
+            "/api/v1/devices/PM-0042/v-pi?frequency_hz=7.5GHz".to_string(),
+            422,
+            "frequency_hz",
+        ),
+    ] {
+        let response = app.get(&path, Some(&viewer)).await;
+        assert_eq!(response.status(), status, "{path}");
+        let body = problem(response).await;
+        assert!(
+            body["detail"].as_str().unwrap().contains(needle),
+            "{path}: {body}"
+        );
+        if status == 422 {
+            assert_eq!(body["errors"][0]["field"], needle, "{path}: {body}");
+        }
+    }
+
     let missing = app
         .get(
             &format!("/api/v1/runs/{}/compare/999999", older.run_id),

@@ -16,6 +16,7 @@ pub mod engine_problems;
 pub mod json_body;
 pub mod metrics;
 pub mod openapi;
+pub mod params;
 pub mod plots;
 pub mod problem;
 pub mod read_cache;

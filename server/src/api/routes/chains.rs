@@ -7,11 +7,12 @@
 use crate::api::audit;
 use crate::api::auth::{Admin, Viewer};
 use crate::api::json_body::parse_json;
+use crate::api::params::{ApiPath, ApiQuery};
 use crate::api::problem::{FieldProblem, Problem};
 use crate::api::AppState;
 use crate::store::{ChainCalibration, ChainCalibrationHeader, ChainCalibrationPoint};
 use axum::body::Bytes;
-use axum::extract::{Path, Query, State};
+use axum::extract::State;
 use axum::http::header::CONTENT_TYPE;
 use axum::http::{HeaderMap, StatusCode};
 use axum::Json;
@@ -187,7 +188,7 @@ fn check_points(points: &[ChainPointBody]) -> Vec<FieldProblem> {
 pub async fn upload_chain(
     Admin(caller): Admin,
     State(state): State<AppState>,
-    Query(query): Query<UploadQuery>,
+    ApiQuery(query): ApiQuery<UploadQuery>,
     headers: HeaderMap,
     body: Bytes,
 ) -> Result<(StatusCode, Json<ChainView>), Problem> {
@@ -272,7 +273,7 @@ pub async fn list_chains(
 pub async fn get_chain(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(name): Path<String>,
+    ApiPath(name): ApiPath<String>,
 ) -> Result<Json<ChainView>, Problem> {
     Ok(Json(
         state.store().latest_chain_calibration(&name).await?.into(),

@@ -4,6 +4,7 @@
 //! completes another run (see `api/read_cache.rs`).
 
 use crate::api::auth::Viewer;
+use crate::api::params::{ApiPath, ApiQuery};
 use crate::api::plots::{self, VpiCurve, VpiPoint};
 use crate::api::problem::Problem;
 use crate::api::read_cache::DeviceCalibrations;
@@ -12,7 +13,7 @@ use crate::api::AppState;
 use crate::store::history::interpolate_vpi;
 use crate::store::{DeviceRecord, StoreError, VpiHistoryEntry};
 use axum::body::Bytes;
-use axum::extract::{Path, Query, State};
+use axum::extract::State;
 use axum::http::header::CONTENT_TYPE;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
@@ -133,7 +134,7 @@ pub async fn list_devices(
 pub async fn get_device(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(serial): Path<String>,
+    ApiPath(serial): ApiPath<String>,
 ) -> Result<Json<DeviceView>, Problem> {
     Ok(Json(state.store().device_by_serial(&serial).await?.into()))
 }
@@ -145,7 +146,7 @@ pub async fn get_device(
 pub async fn calibration_history(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(serial): Path<String>,
+    ApiPath(serial): ApiPath<String>,
 ) -> Result<Response, Problem> {
     let device = device_calibrations(&state, &serial).await?;
     Ok(json_bytes(device.history_json.clone()))
@@ -208,8 +209,8 @@ fn check_frequency(frequency_hz: Option<f64>) -> Result<f64, Problem> {
 pub async fn vpi_at(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(serial): Path<String>,
-    Query(query): Query<VpiQuery>,
+    ApiPath(serial): ApiPath<String>,
+    ApiQuery(query): ApiQuery<VpiQuery>,
 ) -> Result<Json<VpiAnswer>, Problem> {
     let frequency_hz = check_frequency(query.frequency_hz)?;
     let device = device_calibrations(&state, &serial).await?;
@@ -285,7 +286,7 @@ async fn calibrations(state: &AppState, serial: &str) -> Result<Arc<DeviceCalibr
 pub async fn vpi_plot(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(serial): Path<String>,
+    ApiPath(serial): ApiPath<String>,
 ) -> Result<Response, Problem> {
     let device = calibrations(&state, &serial).await?;
     let history = &device.history;
@@ -302,7 +303,7 @@ pub async fn vpi_plot(
 pub async fn response_plot(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(serial): Path<String>,
+    ApiPath(serial): ApiPath<String>,
 ) -> Result<Response, Problem> {
     let device = calibrations(&state, &serial).await?;
     svg(plots::response_svg(&curve(&device.history[0])))

@@ -10,10 +10,11 @@
 //! Authentication: the bearer header, or `?access_token=` because EventSource cannot set headers.
 
 use crate::api::auth::ViewerFromHeaderOrQuery;
+use crate::api::params::ApiQuery;
 use crate::api::problem::Problem;
 use crate::api::AppState;
 use crate::engine::events::ProgressEvent;
-use axum::extract::{Query, State};
+use axum::extract::State;
 use axum::response::sse::{Event, KeepAlive, Sse};
 use futures_util::stream::Stream;
 use serde::Deserialize;
@@ -40,7 +41,7 @@ pub struct EventsQuery {
 pub async fn events(
     _caller: ViewerFromHeaderOrQuery,
     State(state): State<AppState>,
-    Query(query): Query<EventsQuery>,
+    ApiQuery(query): ApiQuery<EventsQuery>,
 ) -> Result<Sse<impl Stream<Item = Result<Event, Infallible>>>, Problem> {
     let receiver = state.engine()?.subscribe();
     let shutdown = state.shutdown_signal();

@@ -8,10 +8,11 @@
 use crate::api::audit;
 use crate::api::auth::Operator;
 use crate::api::json_body::JsonBody;
+use crate::api::params::ApiPath;
 use crate::api::problem::Problem;
 use crate::api::AppState;
 use crate::engine::plan::PlanRequest;
-use axum::extract::{Path, State};
+use axum::extract::State;
 use axum::http::header::LOCATION;
 use axum::http::{HeaderName, StatusCode};
 use axum::Json;
@@ -66,7 +67,7 @@ pub async fn submit_run(
 pub async fn cancel_run(
     Operator(caller): Operator,
     State(state): State<AppState>,
-    Path(run_id): Path<i64>,
+    ApiPath(run_id): ApiPath<i64>,
 ) -> Result<StatusCode, Problem> {
     state.engine()?.cancel(run_id, &caller.name).await?;
     audit::record(
@@ -89,7 +90,7 @@ pub async fn cancel_run(
 pub async fn resume_run(
     Operator(caller): Operator,
     State(state): State<AppState>,
-    Path(run_id): Path<i64>,
+    ApiPath(run_id): ApiPath<i64>,
 ) -> Result<StatusCode, Problem> {
     state.engine()?.resume(run_id, &caller.name).await?;
     audit::record(

@@ -3,12 +3,13 @@
 //! one frequency). Submitting, cancelling and resuming are in [`super::run_control`].
 
 use crate::api::auth::Viewer;
+use crate::api::params::{ApiPath, ApiQuery};
 use crate::api::plots::{self, MarkedLine, ModulationPlot, ModulationPoint, SpectrumPlot};
 use crate::api::problem::{FieldProblem, Problem};
 use crate::api::AppState;
 use crate::store::{PointRecord, RunComparison, RunFilter, RunRecord, RunState};
 use axum::body::Bytes;
-use axum::extract::{Path, Query, State};
+use axum::extract::State;
 use axum::http::header::CONTENT_TYPE;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
@@ -286,7 +287,7 @@ pub fn parse_time_bound(field: &str, text: &str) -> Result<i64, FieldProblem> {
 pub async fn list_runs(
     _caller: Viewer,
     State(state): State<AppState>,
-    Query(query): Query<RunListQuery>,
+    ApiQuery(query): ApiQuery<RunListQuery>,
 ) -> Result<Json<RunList>, Problem> {
     let mut errors = Vec::new();
     let run_state = match query.state.as_deref() {
@@ -346,7 +347,7 @@ pub async fn list_runs(
 pub async fn get_run(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(run_id): Path<i64>,
+    ApiPath(run_id): ApiPath<i64>,
 ) -> Result<Response, Problem> {
     if let Some(view_json) = state.read_cache().final_run(run_id) {
         return Ok(json_bytes(view_json));
@@ -395,8 +396,8 @@ pub fn json_bytes(body: Bytes) -> Response {
 pub async fn list_points(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(run_id): Path<i64>,
-    Query(query): Query<PageQuery>,
+    ApiPath(run_id): ApiPath<i64>,
+    ApiQuery(query): ApiQuery<PageQuery>,
 ) -> Result<Json<PointList>, Problem> {
     let (page, per_page) = paging(query.page, query.per_page, 200)?;
     let store = state.store();
@@ -435,8 +436,8 @@ async fn point_of_run(
 pub async fn point_trace(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path((run_id, point_id)): Path<(i64, i64)>,
-    Query(query): Query<TraceQuery>,
+    ApiPath((run_id, point_id)): ApiPath<(i64, i64)>,
+    ApiQuery(query): ApiQuery<TraceQuery>,
 ) -> Result<Response, Problem> {
     let csv = match query.format.as_deref() {
         None | Some("json") => false,
@@ -535,7 +536,7 @@ async fn spectrum_of(state: &AppState, point: &PointRecord) -> Result<Response, 
 pub async fn point_spectrum_svg(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path((run_id, point_id)): Path<(i64, i64)>,
+    ApiPath((run_id, point_id)): ApiPath<(i64, i64)>,
 ) -> Result<Response, Problem> {
     let point = point_of_run(&state, run_id, point_id).await?;
     spectrum_of(&state, &point).await
@@ -549,7 +550,7 @@ pub async fn point_spectrum_svg(
 pub async fn latest_spectrum_svg(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(run_id): Path<i64>,
+    ApiPath(run_id): ApiPath<i64>,
 ) -> Result<Response, Problem> {
     state.store().run(run_id).await?;
     let points = state.store().points_of_run(run_id).await?;
@@ -568,8 +569,8 @@ pub async fn latest_spectrum_svg(
 pub async fn modulation_index_svg(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path(run_id): Path<i64>,
-    Query(query): Query<FrequencyIndexQuery>,
+    ApiPath(run_id): ApiPath<i64>,
+    ApiQuery(query): ApiQuery<FrequencyIndexQuery>,
 ) -> Result<Response, Problem> {
     let frequency_index = query.frequency_index.unwrap_or(0);
     let store = state.store();
@@ -628,7 +629,7 @@ pub async fn modulation_index_svg(
 pub async fn compare_runs(
     _caller: Viewer,
     State(state): State<AppState>,
-    Path((run_id, other_run_id)): Path<(i64, i64)>,
+    ApiPath((run_id, other_run_id)): ApiPath<(i64, i64)>,
 ) -> Result<Json<RunComparison>, Problem> {
     Ok(Json(
         state.store().compare_runs(run_id, other_run_id).await?,

@@ -6,10 +6,11 @@
 use crate::api::audit;
 use crate::api::auth::Admin;
 use crate::api::json_body::JsonBody;
+use crate::api::params::ApiPath;
 use crate::api::problem::Problem;
 use crate::api::tokens::{self, CreatedToken, Role, TokenError, TokenInfo};
 use crate::api::AppState;
-use axum::extract::{Path, State};
+use axum::extract::State;
 use axum::http::StatusCode;
 use axum::Json;
 use serde::Deserialize;
@@ -79,7 +80,7 @@ pub async fn create_token(
 pub async fn revoke_token(
     Admin(caller): Admin,
     State(state): State<AppState>,
-    Path(name): Path<String>,
+    ApiPath(name): ApiPath<String>,
 ) -> Result<StatusCode, Problem> {
     tokens::revoke(state.pool(), &name).await?;
     // Refused from the next request on, not only when the cached verification expires.
