@@ -216,12 +216,7 @@ async fn sigkill_mid_run_then_restart_and_resume_completes_every_point_once() {
     daemon.wait().await.unwrap();
     // Usually on already (killed mid-point); make sure it is, so that the restart is what
     // switches it off.
-    {
-        use halfwave_drivers::RfSource;
-        let mut source = bench.server.bench().rf_source();
-        source.set_output(true).await.expect("simulated output on");
-        assert!(bench.server.bench().rf_output_on());
-    }
+    engine_support::leave_rf_on(bench.server.bench()).await;
 
     let committed = stored_points(&bench.database(), run_id).await;
     assert!(

@@ -10,7 +10,9 @@
 
 mod engine_support;
 
-use engine_support::{assert_v_pi_within, plan, upload_true_chain, wait_for_end, LEVELS, POINTS};
+use engine_support::{
+    assert_v_pi_within, leave_rf_on, plan, upload_true_chain, wait_for_end, LEVELS, POINTS,
+};
 use halfwave::config::Config;
 use halfwave::engine::events::ProgressEvent;
 use halfwave::engine::Engine;
@@ -119,20 +121,11 @@ async fn a_link_to_the_source_lost_mid_run_ends_with_rf_off_and_the_cause_record
             && recorded.contains(&server.resource(Role::RfSource)),
         "the recorded cause names the lost link and the instrument: {recorded}"
     );
-    eprintln!("recorded cause: {recorded}");
     // Every point committed before the loss is kept.
     let kept = store.points_of_run(run_id).await.unwrap().len();
     assert!(kept >= committed && kept < POINTS, "{kept} points kept");
     engine.shutdown().await;
     server.shutdown().await;
-}
-
-/// Puts a simulated source's output on, as a crashed process may have left it.
-async fn leave_rf_on(server: &SimServer) {
-    use halfwave_drivers::RfSource;
-    let mut source = server.bench().rf_source();
-    source.set_output(true).await.expect("simulated output on");
-    assert!(server.bench().rf_output_on());
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -152,8 +145,8 @@ async fn start_up_switches_every_reachable_source_off_even_when_an_instrument_is
     )
     .await
     .unwrap();
-    leave_rf_on(&whole).await;
-    leave_rf_on(&half).await;
+    leave_rf_on(whole.bench()).await;
+    leave_rf_on(half.bench()).await;
     let closed = {
         let listener = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
         listener.local_addr().unwrap()

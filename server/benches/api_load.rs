@@ -31,7 +31,7 @@
 mod seed;
 
 use halfwave::api::tokens::{self, Role};
-use halfwave::store::Store;
+use halfwave::store::{now_unix_ms, Store};
 use http_body_util::{BodyExt, Empty};
 use hyper::body::Bytes;
 use hyper::client::conn::http1;
@@ -75,6 +75,13 @@ fn cpu_seconds(pid: u32) -> Option<f64> {
     (per_second > 0.0).then(|| ticks / per_second)
 }
 
+/// CPU seconds a process has used since an earlier [`cpu_seconds`] reading.
+fn cpu_since(pid: u32, before: Option<f64>) -> Option<f64> {
+    cpu_seconds(pid)
+        .zip(before)
+        .map(|(after, before)| after - before)
+}
+
 /// The first field of /proc/loadavg: runnable processes averaged over the last minute.
 fn load_average() -> String {
     std::fs::read_to_string("/proc/loadavg")
@@ -83,17 +90,14 @@ fn load_average() -> String {
         .unwrap_or_else(|| "?".to_string())
 }
 
-fn now_unix_ms() -> i64 {
-    halfwave::store::now_unix_ms()
-}
-
 /// An invented V_pi curve for device `d` (plumbing data; see the seed module).
 fn v_pi_of(d: usize) -> impl Fn(f64) -> f64 {
     let base = 3.0 + 0.05 * d as f64;
     move |f: f64| base * (1.0 + 0.12 * (f / 1e9).sqrt())
 }
 
-/// Step 1: the stored data. Returns the number of points stored.
+/// Step 1: the stored data. Returns the number of points stored and a viewer's and an operator's
+/// token.
 async fn seed_store(path: &str) -> (usize, String, String) {
     let store = Store::open(path)
         .await
@@ -446,7 +450,9 @@ async fn json_request(
     token: &str,
     body: Option<&serde_json::Value>,
 ) -> serde_json::Value {
-    let client = reqwest::Client::new();
+    // One client for the benchmark's own requests, so polls reuse their connection.
+    static CLIENT: std::sync::OnceLock<reqwest::Client> = std::sync::OnceLock::new();
+    let client = CLIENT.get_or_init(reqwest::Client::new);
     let url = format!("http://{address}{path}");
     let request = match method {
         "POST" => client.post(url),
@@ -518,7 +524,6 @@ fn main() {
         .await;
         let run_id = submitted["run_id"]
             .as_i64()
-            .or_else(|| submitted["id"].as_i64())
             .unwrap_or_else(|| panic!("no run id in {submitted}"));
         // Wait until it is measuring points.
         let deadline = Instant::now() + Duration::from_secs(30);
@@ -542,9 +547,9 @@ fn main() {
         }
         run_id
     });
+    let daemon_pid = daemon.child.id();
     println!(
-        "live run {live_run} measuring (time factor {TIME_FACTOR}); daemon pid {} (for a profiler)",
-        daemon.child.id()
+        "live run {live_run} measuring (time factor {TIME_FACTOR}); daemon pid {daemon_pid} (for a profiler)"
     );
 
     let quiet_before = (now_unix_ms(), {
@@ -552,33 +557,25 @@ fn main() {
         now_unix_ms()
     });
 
-    let daemon_pid = daemon.child.id();
     let load_before = load_average();
     let daemon_cpu_before = cpu_seconds(daemon_pid);
     let own_cpu_before = cpu_seconds(std::process::id());
     let token: Arc<str> = Arc::from(viewer.as_str());
     let load_started_ms = now_unix_ms();
     let started = Instant::now();
-    let tallies = load_phase(
-        &runtime,
-        &Load {
-            address: &address,
-            token: &token,
-            connections,
-            seconds: load_s,
-            seeded_runs,
-            live_run,
-        },
-        None,
-    );
+    let mut load = Load {
+        address: &address,
+        token: &token,
+        connections,
+        seconds: load_s,
+        seeded_runs,
+        live_run,
+    };
+    let tallies = load_phase(&runtime, &load, None);
     let elapsed = started.elapsed().as_secs_f64();
     let load_window = (load_started_ms, now_unix_ms());
-    let daemon_cpu = cpu_seconds(daemon_pid)
-        .zip(daemon_cpu_before)
-        .map(|(after, before)| after - before);
-    let own_cpu = cpu_seconds(std::process::id())
-        .zip(own_cpu_before)
-        .map(|(after, before)| after - before);
+    let daemon_cpu = cpu_since(daemon_pid, daemon_cpu_before);
+    let own_cpu = cpu_since(std::process::id(), own_cpu_before);
     let load_after = load_average();
 
     let quiet_after = (now_unix_ms(), {
@@ -607,27 +604,15 @@ fn main() {
         for (endpoint, _) in Endpoint::MIX {
             let before = cpu_seconds(daemon_pid);
             let started = Instant::now();
-            let tallies = load_phase(
-                &runtime,
-                &Load {
-                    address: &address,
-                    token: &token,
-                    connections,
-                    seconds: route_s,
-                    seeded_runs,
-                    live_run,
-                },
-                Some(endpoint),
-            );
+            load.seconds = route_s;
+            let tallies = load_phase(&runtime, &load, Some(endpoint));
             let seconds = started.elapsed().as_secs_f64();
             let answered: usize = tallies
                 .iter()
                 .flat_map(|t| t.latencies_us.values())
                 .map(Vec::len)
                 .sum();
-            let cpu = cpu_seconds(daemon_pid)
-                .zip(before)
-                .map(|(after, before)| after - before);
+            let cpu = cpu_since(daemon_pid, before);
             route_costs.push((endpoint, answered as f64 / seconds, cpu, answered));
         }
     }

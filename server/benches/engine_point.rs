@@ -10,13 +10,7 @@
 mod support;
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
-use halfwave::config::Limits;
-use halfwave::engine::bench::BenchInstruments;
-use halfwave::engine::events::ProgressEvent;
 use halfwave::engine::plan::PlanRequest;
-use halfwave::engine::Engine;
-use halfwave::store::Store;
-use halfwave_drivers::sim::{Scenario, SimBench};
 
 use support::LEVELS;
 
@@ -31,41 +25,13 @@ fn engine_point(c: &mut Criterion) {
         .build()
         .unwrap();
     let dir = tempfile::tempdir().unwrap();
-    let (engine, _sim) = runtime.block_on(async {
-        let store = Store::open(dir.path().join("bench.db").to_str().unwrap())
-            .await
-            .unwrap();
-        let sim = SimBench::new(Scenario::builtin().unwrap(), 1).with_time_factor(0.0);
-        let engine = Engine::start_with(
-            Limits::default(),
-            store,
-            vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
-        )
-        .await
-        .unwrap();
-        (engine, sim)
-    });
+    let (engine, _sim) =
+        runtime.block_on(support::sim_engine(&dir.path().join("bench.db"), 1, 0.0));
     let mut group = c.benchmark_group("engine");
     group.sample_size(10);
     group.throughput(Throughput::Elements(LEVELS as u64));
     group.bench_function("run_of_9_points_10001_point_traces", |b| {
-        b.iter(|| {
-            runtime.block_on(async {
-                let mut events = engine.subscribe();
-                let run_id = engine.submit(plan(), "bench").await.unwrap();
-                loop {
-                    if let Ok(ProgressEvent::Finished {
-                        run_id: id, state, ..
-                    }) = events.recv().await
-                    {
-                        if id == run_id {
-                            assert_eq!(state, "completed");
-                            break;
-                        }
-                    }
-                }
-            })
-        })
+        b.iter(|| runtime.block_on(support::run_to_completion(&engine, plan())))
     });
     group.finish();
     runtime.block_on(engine.shutdown());

@@ -18,9 +18,7 @@
 
 mod support;
 
-use halfwave::config::{Config, Limits};
-use halfwave::engine::bench::BenchInstruments;
-use halfwave::engine::events::ProgressEvent;
+use halfwave::config::Config;
 use halfwave::engine::plan::PlanRequest;
 use halfwave::engine::Engine;
 use halfwave::store::Store;
@@ -44,21 +42,10 @@ struct Measured {
 
 async fn one_run(engine: &Engine, sim: &SimBench) -> Measured {
     let busy_before = sim.busy_time(Role::RfSource) + sim.busy_time(Role::Analyzer);
-    let mut events = engine.subscribe();
     let started = Instant::now();
-    let run_id = engine.submit(plan(), "bench").await.unwrap();
-    let points = loop {
-        if let Ok(ProgressEvent::Finished {
-            run_id: id, state, ..
-        }) = events.recv().await
-        {
-            if id == run_id {
-                assert_eq!(state, "completed");
-                break engine.store().points_of_run(run_id).await.unwrap().len();
-            }
-        }
-    };
+    let run_id = support::run_to_completion(engine, plan()).await;
     let wall = started.elapsed();
+    let points = engine.store().points_of_run(run_id).await.unwrap().len();
     let busy = sim.busy_time(Role::RfSource) + sim.busy_time(Role::Analyzer) - busy_before;
     Measured { wall, busy, points }
 }
@@ -83,17 +70,7 @@ fn report(name: &str, runs: &[Measured]) -> bool {
 }
 
 async fn in_process(dir: &std::path::Path) -> Vec<Measured> {
-    let store = Store::open(dir.join("in-process.db").to_str().unwrap())
-        .await
-        .unwrap();
-    let sim = SimBench::new(Scenario::builtin().unwrap(), 1).with_time_factor(1.0);
-    let engine = Engine::start_with(
-        Limits::default(),
-        store,
-        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
-    )
-    .await
-    .unwrap();
+    let (engine, sim) = support::sim_engine(&dir.join("in-process.db"), 1, 1.0).await;
     let mut runs = Vec::new();
     for _ in 0..REPEATS {
         runs.push(one_run(&engine, &sim).await);

@@ -12,7 +12,7 @@ use halfwave::engine::plan::{
     AnalyzerSpec, ChainSpec, DeviceSpec, FrequencySpec, LevelSpec, PlanRequest,
 };
 use halfwave::store::{ChainCalibrationPoint, Store};
-use halfwave_drivers::sim::Scenario;
+use halfwave_drivers::sim::{Scenario, SimBench};
 use halfwave_units::{Db, Hz};
 use std::time::Duration;
 
@@ -55,7 +55,7 @@ pub fn plan(chain_name: &str) -> PlanRequest {
 }
 
 /// The chain calibration of the simulated bench at the plan's frequencies.
-pub fn true_chain_points(scenario: &Scenario) -> Vec<ChainCalibrationPoint> {
+fn true_chain_points(scenario: &Scenario) -> Vec<ChainCalibrationPoint> {
     FREQUENCIES_HZ
         .iter()
         .map(|&f| {
@@ -120,4 +120,12 @@ pub fn assert_v_pi_within(
             error * 100.0
         );
     }
+}
+
+/// Puts a simulated source's output on, as a crashed process may have left it.
+pub async fn leave_rf_on(sim: &SimBench) {
+    use halfwave_drivers::RfSource;
+    let mut source = sim.rf_source();
+    source.set_output(true).await.expect("simulated output on");
+    assert!(sim.rf_output_on());
 }

@@ -30,8 +30,9 @@ impl BenchInstruments {
     }
 }
 
-/// Switches a source's output off once, logging (not returning) a failure: used at start-up, where
-/// the operator must be told to check the source by hand.
+/// The start-up interlock for one source: switches its output off (the driver's `safe_off`
+/// reconnects and repeats until the instrument confirms), logging (not returning) a failure,
+/// because the operator must then check the source by hand.
 pub async fn switch_off_at_start(bench: &str, source: &mut dyn RfSource) {
     if let Err(e) = source.safe_off().await {
         tracing::error!(bench, error = %e, "could not switch the RF output off; check the source by hand");

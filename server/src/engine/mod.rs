@@ -169,12 +169,25 @@ impl Engine {
             let all: Vec<String> = failures.iter().map(ToString::to_string).collect();
             return Err(EngineError::Setup(all.join("; ")));
         }
-        Self::start_with(config.limits.clone(), store, benches).await
+        Self::launch(config.limits.clone(), store, benches).await
     }
 
     /// Starts the engine on benches built by the caller (tests use this to keep a handle on
-    /// the simulated bench).
+    /// the simulated bench), switching every source off first.
     pub async fn start_with(
+        limits: Limits,
+        store: Store,
+        mut benches: Vec<(String, BenchInstruments)>,
+    ) -> Result<Engine, EngineError> {
+        // Start-up interlock: whatever the previous process left on, switch it off now.
+        for (name, instruments) in &mut benches {
+            bench::switch_off_at_start(name, instruments.source.as_mut()).await;
+        }
+        Self::launch(limits, store, benches).await
+    }
+
+    /// Starts the engine on benches whose sources were switched off at start-up.
+    async fn launch(
         limits: Limits,
         store: Store,
         benches: Vec<(String, BenchInstruments)>,
@@ -196,10 +209,6 @@ impl Engine {
                 queue: std::sync::Mutex::new(BenchQueue::default()),
                 jobs: tx,
             });
-            // Start-up interlock: whatever the previous process left on, switch it off now.
-            if let Err(e) = safety::switch_off(&slot.source).await {
-                tracing::error!(bench = %name, error = %e, "could not switch the RF output off at start-up; check the source");
-            }
             slot.refresh_identities(&store).await;
             receivers.push((slot.clone(), rx));
             slots.insert(name, slot);

@@ -1,5 +1,6 @@
 //! Reads the HTTP API serves many times a second, kept small: a run's point count, one page of
-//! its points, and a fingerprint of a device's completed calibrations.
+//! its points, a fingerprint of a device's completed calibrations, and the runs counted by state
+//! (for the metrics).
 //!
 //! The SQLite driver hands every row from its database thread to the async side one at a time,
 //! so a read's cost grows with the rows it returns more than with the work SQLite does: counting
@@ -50,6 +51,14 @@ impl Store {
         .fetch_all(&self.pool)
         .await
         .map_err(StoreError::database("reading a page of a run's points"))
+    }
+
+    /// How many runs are in each state (states with none are absent), in one grouped count.
+    pub async fn run_counts_by_state(&self) -> Result<Vec<(String, i64)>, StoreError> {
+        sqlx::query_as("SELECT state, COUNT(*) FROM runs GROUP BY state")
+            .fetch_all(&self.pool)
+            .await
+            .map_err(StoreError::database("counting runs by state"))
     }
 
     /// The device's id with the number of its completed runs and the newest one's id, in one

@@ -109,8 +109,8 @@ pub struct PointView {
     pub measured_at_unix_ms: i64,
 }
 
-impl From<&PointRecord> for PointView {
-    fn from(p: &PointRecord) -> PointView {
+impl From<PointRecord> for PointView {
+    fn from(p: PointRecord) -> PointView {
         PointView {
             id: p.id,
             frequency_index: p.frequency_index,
@@ -122,17 +122,17 @@ impl From<&PointRecord> for PointView {
             modulation_index: p.modulation_index,
             modulation_index_uncertainty: p.modulation_index_uncertainty,
             asymmetry_db: p.asymmetry_db,
-            lines: stored_json(&p.line_table_json),
-            analysis: stored_json(&p.analysis_json),
+            lines: stored_json(p.line_table_json),
+            analysis: stored_json(p.analysis_json),
             measured_at_unix_ms: p.measured_at_unix_ms,
         }
     }
 }
 
-/// A JSON document from the store, checked (not parsed into a tree) and served as it is; `null`
-/// if it is not valid JSON.
-pub fn stored_json(text: &str) -> Box<RawValue> {
-    RawValue::from_string(text.to_owned()).unwrap_or_else(|_| null_json())
+/// A JSON document from the store, checked (not parsed into a tree) and served as it is, without
+/// a copy; `null` if it is not valid JSON.
+pub fn stored_json(text: String) -> Box<RawValue> {
+    RawValue::from_string(text).unwrap_or_else(|_| null_json())
 }
 
 /// The JSON `null`, as a raw value.
@@ -409,7 +409,7 @@ pub async fn list_points(
     let offset = u64::from(page - 1) * u64::from(per_page);
     let points = store.points_page(run_id, per_page, offset).await?;
     Ok(Json(PointList {
-        points: points.iter().map(PointView::from).collect(),
+        points: points.into_iter().map(PointView::from).collect(),
         page,
         per_page,
         total,
@@ -663,13 +663,16 @@ mod tests {
     #[test]
     fn stored_json_passes_through_unchanged_and_damage_becomes_null() {
         let stored = r#"[{"order":-1,"power_dbm":-12.5},{"order":0,"power_dbm":-3.25e0}]"#;
-        let view = serde_json::to_string(&stored_json(stored)).unwrap();
+        let view = serde_json::to_string(&stored_json(stored.to_string())).unwrap();
         assert_eq!(view, stored, "byte for byte, number formatting included");
         assert_eq!(
-            serde_json::to_string(&stored_json("{\"cut")).unwrap(),
+            serde_json::to_string(&stored_json("{\"cut".to_string())).unwrap(),
             "null"
         );
-        assert_eq!(serde_json::to_string(&stored_json("")).unwrap(), "null");
+        assert_eq!(
+            serde_json::to_string(&stored_json(String::new())).unwrap(),
+            "null"
+        );
     }
 
     #[test]

@@ -48,11 +48,7 @@ pub async fn health(State(state): State<AppState>) -> Result<Json<Health>, Probl
     responses((status = 200, description = "Prometheus text exposition format 0.0.4", body = String, content_type = "text/plain"),
               (status = 401, description = "No valid token", body = Problem)))]
 pub async fn metrics(_caller: Viewer, State(state): State<AppState>) -> Result<Response, Problem> {
-    let runs_by_state: Vec<(String, i64)> =
-        sqlx::query_as("SELECT state, COUNT(*) FROM runs GROUP BY state")
-            .fetch_all(state.pool())
-            .await
-            .map_err(|e| Problem::internal(format!("the database does not answer: {e}")))?;
+    let runs_by_state = state.store().run_counts_by_state().await?;
     let mut out = String::with_capacity(4096);
     out.push_str("# HELP halfwave_uptime_seconds Seconds since the daemon started.\n");
     out.push_str("# TYPE halfwave_uptime_seconds gauge\n");
