@@ -406,3 +406,168 @@ async fn a_second_daemon_on_the_same_store_exits_naming_the_first_and_changes_no
         Some(SMALL_PLAN_POINTS as u64)
     );
 }
+
+/// A small seeded generator for the soak's random choices (xorshift64*; Vigna, "An experimental
+/// exploration of Marsaglia's xorshift generators, scrambled", 2016): the soak is repeatable.
+struct SoakRandom(u64);
+
+impl SoakRandom {
+    fn next(&mut self) -> u64 {
+        self.0 ^= self.0 >> 12;
+        self.0 ^= self.0 << 25;
+        self.0 ^= self.0 >> 27;
+        self.0.wrapping_mul(0x2545_F491_4F6C_DD1D)
+    }
+
+    /// A duration uniformly between `low` and `high`.
+    fn between(&mut self, low: Duration, high: Duration) -> Duration {
+        let span = (high - low).as_millis() as u64;
+        low + Duration::from_millis(self.next() % (span + 1))
+    }
+}
+
+/// Soak, SIGKILL: 100 random kills of the real daemon mid-run over SCPI/TCP, each followed by a
+/// restart and a resume. After every restart the output must be off, and the run's committed
+/// points must include every point committed before the kill, each once. Run with
+/// `cargo test -p halfwave-server --test daemon_faults -- --ignored --nocapture soak_kills`.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+#[ignore = "a soak of several minutes; run it by name (see README, Safety under faults)"]
+async fn soak_kills_100_random_sigkills_lose_no_point_and_leave_no_rf_on() {
+    const KILLS: usize = 100;
+    let bench = Bench::new(51).await;
+    let token = bench.operator_token().await;
+    let mut random = SoakRandom(0x5eed_0001);
+    let mut daemon = bench.serve("soak-0.log").await;
+    let mut run_id = daemon_support::submit(&bench, &token).await;
+    let (mut kills, mut rf_on_after_restart, mut lost, mut duplicated, mut runs_completed) =
+        (0, 0, 0, 0, 0);
+    while kills < KILLS {
+        tokio::time::sleep(random.between(Duration::from_millis(200), Duration::from_millis(1500)))
+            .await;
+        let before = stored_points(&bench.database(), run_id).await;
+        daemon.kill().await.unwrap();
+        daemon.wait().await.unwrap();
+        kills += 1;
+        let committed = stored_points(&bench.database(), run_id).await;
+        daemon = bench.serve(&format!("soak-{kills}.log")).await;
+        if bench.server.bench().rf_output_on() {
+            rf_on_after_restart += 1;
+        }
+        let after = stored_points(&bench.database(), run_id).await;
+        let distinct: HashSet<_> = after.iter().copied().collect();
+        duplicated += after.len() - distinct.len();
+        lost += before.iter().filter(|p| !distinct.contains(p)).count();
+        lost += committed.iter().filter(|p| !distinct.contains(p)).count();
+        let run = bench.run(run_id, &token).await;
+        match run["state"].as_str() {
+            Some("interrupted") => {
+                let resumed = bench
+                    .post(&format!("/api/v1/runs/{run_id}/resume"), &token, &json!({}))
+                    .await;
+                assert_eq!(resumed.status(), 202, "resume after kill {kills}");
+            }
+            Some("completed") => {
+                assert_eq!(after.len(), engine_support::POINTS);
+                runs_completed += 1;
+                run_id = daemon_support::submit(&bench, &token).await;
+            }
+            other => panic!("run {run_id} is {other:?} after kill {kills}: {run}"),
+        }
+    }
+    println!(
+        "soak: {kills} SIGKILLs, {runs_completed} runs completed across them, {lost} points lost, {duplicated} duplicated, RF on after {rf_on_after_restart} restarts"
+    );
+    assert_eq!((lost, duplicated, rf_on_after_restart), (0, 0, 0));
+    assert!(runs_completed >= 1, "the kills spanned several runs");
+}
+
+/// Soak, link faults: 50 random faults on the source's link with the output on (link reset or
+/// silence, 0.2 to 4 s), each followed by the link's return; the output must read back off within
+/// 2 s of the return every time. Held benches are acknowledged and failed runs resumed, as an
+/// operator would. Run with
+/// `cargo test -p halfwave-server --test daemon_faults -- --ignored --nocapture soak_link`.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+#[ignore = "a soak of several minutes; run it by name (see README, Safety under faults)"]
+async fn soak_link_faults_50_random_faults_rf_off_every_time() {
+    const FAULTS: usize = 50;
+    let bench = Bench::new(52).await;
+    let token = bench.operator_token().await;
+    let _daemon = bench.serve("soak.log").await;
+    let faults = bench.server.faults(Role::RfSource);
+    let mut random = SoakRandom(0x5eed_0002);
+    let mut run_id = bench.submit_plan(&token, &small_plan()).await;
+    let mut off_times = Vec::new();
+    for fault in 1..=FAULTS {
+        // Wait for the output to be on in a run; keep a run going.
+        let deadline = Instant::now() + Duration::from_secs(60);
+        while !bench.server.bench().rf_output_on() {
+            let run = bench.run(run_id, &token).await;
+            if is_final(&run) {
+                run_id = bench.submit_plan(&token, &small_plan()).await;
+            }
+            assert!(Instant::now() < deadline, "no RF on before fault {fault}");
+            tokio::time::sleep(Duration::from_millis(5)).await;
+        }
+        tokio::time::sleep(random.between(Duration::ZERO, Duration::from_millis(300))).await;
+        let silent = random.next() % 2 == 0;
+        if silent {
+            faults.stop_answering();
+        } else {
+            faults.link_down();
+        }
+        tokio::time::sleep(random.between(Duration::from_millis(200), Duration::from_secs(4)))
+            .await;
+        if silent {
+            faults.resume();
+        } else {
+            faults.link_up();
+        }
+        let off =
+            time_until_rf_off(&bench, Duration::from_secs(2), &format!("fault {fault}")).await;
+        off_times.push(off);
+        // As an operator: acknowledge a held bench, resume or replace the run.
+        let end = Instant::now() + Duration::from_secs(60);
+        loop {
+            let status = bench.bench_status(&token).await;
+            let run = bench.run(run_id, &token).await;
+            match status["safety_state"].as_str() {
+                Some("awaiting_acknowledgement") => {
+                    let ack = bench
+                        .post(
+                            "/api/v1/benches/sim/acknowledge",
+                            &token,
+                            &json!({"note": "soak"}),
+                        )
+                        .await;
+                    assert_eq!(ack.status(), 204);
+                }
+                Some("clear") if is_final(&run) => {
+                    if run["resumable"] == true {
+                        let resumed = bench
+                            .post(&format!("/api/v1/runs/{run_id}/resume"), &token, &json!({}))
+                            .await;
+                        assert_eq!(resumed.status(), 202);
+                    } else {
+                        run_id = bench.submit_plan(&token, &small_plan()).await;
+                    }
+                    break;
+                }
+                Some("clear") if run["state"] == "running" => break,
+                _ => {}
+            }
+            assert!(
+                Instant::now() < end,
+                "fault {fault}: no recovery: {status} {run}"
+            );
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+    off_times.sort();
+    println!(
+        "soak: {FAULTS} link faults with RF on, output off after the link's return in {} of {FAULTS}; median {} ms, longest {} ms",
+        off_times.len(),
+        off_times[off_times.len() / 2].as_millis(),
+        off_times.last().map_or(0, |d| d.as_millis())
+    );
+    assert_eq!(off_times.len(), FAULTS);
+}
