@@ -196,10 +196,10 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
         completed,
     ));
     let caps = ctx.analyzer.lock().await.capabilities();
-    let mut carrier = plan.wavelength.to_frequency();
+    let mut carrier = plan.wavelength().to_frequency();
 
     let mut result = Ok(());
-    'frequencies: for (fi, step) in plan.steps.iter().enumerate() {
+    'frequencies: for (fi, step) in plan.steps().iter().enumerate() {
         let remaining: Vec<usize> = (0..step.generator_levels.len())
             .filter(|li| !ctx.done.contains(&(fi, *li)))
             .collect();
@@ -275,9 +275,9 @@ async fn measure_frequency(
         points: step.analyzer.points,
     };
     analyzer.configure(&settings).await?;
-    let reference = if plan.request.reference_trace {
-        let r = acquire::measure(analyzer.as_mut(), plan.averages).await?;
-        if plan.request.carrier_tracking {
+    let reference = if plan.request().reference_trace {
+        let r = acquire::measure(analyzer.as_mut(), plan.averages()).await?;
+        if plan.request().carrier_tracking {
             *carrier = acquire::peak_frequency(&r);
         }
         ctx.store
@@ -309,16 +309,16 @@ async fn measure_frequency(
                 output_on = true;
             }
         }
-        tokio::time::sleep(plan.settle.to_duration()).await;
+        tokio::time::sleep(plan.settle().to_duration()).await;
         let mut analyzer = ctx.analyzer.lock().await;
-        if plan.request.carrier_tracking
+        if plan.request().carrier_tracking
             && (settings.center.0 - carrier.0).abs() > 1e-3 * settings.span.0
         {
             settings.center = analyzer.set_center(*carrier).await?;
         }
-        let trace = acquire::measure(analyzer.as_mut(), plan.averages).await?;
+        let trace = acquire::measure(analyzer.as_mut(), plan.averages()).await?;
         drop(analyzer);
-        if plan.request.carrier_tracking {
+        if plan.request().carrier_tracking {
             // The strongest line may be a sideband, so track by the comb's centre of symmetry:
             // the power-weighted mean frequency of a symmetric comb is the carrier.
             if let Some(c) = comb_centroid(&trace) {
