@@ -221,7 +221,10 @@ pub async fn serve_connections(
             },
         };
         let Some((id, evicted)) = registry.admit(cap) else {
-            tracing::debug!(cap, "HTTP connection refused: every slot is serving a request");
+            tracing::debug!(
+                cap,
+                "HTTP connection refused: every slot is serving a request"
+            );
             drop(stream);
             continue;
         };
@@ -324,15 +327,13 @@ mod tests {
     }
 
     async fn start(limits: ConnectionLimits) -> Server {
-        let app = Router::new()
-            .route("/ok", get(|| async { "ok" }))
-            .route(
-                "/slow",
-                get(|| async {
-                    tokio::time::sleep(Duration::from_millis(300)).await;
-                    "slow"
-                }),
-            );
+        let app = Router::new().route("/ok", get(|| async { "ok" })).route(
+            "/slow",
+            get(|| async {
+                tokio::time::sleep(Duration::from_millis(300)).await;
+                "slow"
+            }),
+        );
         let listener = TcpListener::bind("127.0.0.1:0").await.unwrap();
         let address = listener.local_addr().unwrap();
         let (stop, stopped) = tokio::sync::oneshot::channel::<()>();
@@ -365,7 +366,10 @@ mod tests {
                 Err(_) => panic!("the server kept the connection open for over {SOON:?}"),
             }
         }
-        (String::from_utf8_lossy(&received).into_owned(), Instant::now())
+        (
+            String::from_utf8_lossy(&received).into_owned(),
+            Instant::now(),
+        )
     }
 
     /// Sends one whole request (kept alive) and reads its response head and body.
@@ -442,7 +446,10 @@ mod tests {
             half_open[cap - 1].read(&mut byte),
         )
         .await;
-        assert!(still_open.is_err(), "the newest half-open connection was closed too");
+        assert!(
+            still_open.is_err(),
+            "the newest half-open connection was closed too"
+        );
     }
 
     #[tokio::test]
@@ -462,7 +469,9 @@ mod tests {
         let (received, _) = read_until_closed(&mut newcomer).await;
         assert!(received.is_empty(), "{received}");
         // The kept-alive connections still work.
-        assert!(request(&mut kept[0], "/ok").await.starts_with("HTTP/1.1 200"));
+        assert!(request(&mut kept[0], "/ok")
+            .await
+            .starts_with("HTTP/1.1 200"));
     }
 
     #[tokio::test]
