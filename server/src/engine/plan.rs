@@ -1023,7 +1023,11 @@ mod tests {
                 stop_dbm: 20.0,
                 step_db,
             });
-            assert_eq!(refused_fields(&req), vec!["levels.step_db"], "step {step_db}");
+            assert_eq!(
+                refused_fields(&req),
+                vec!["levels.step_db"],
+                "step {step_db}"
+            );
         }
     }
 
@@ -1038,7 +1042,10 @@ mod tests {
         let err = validate(&req, 30.0).unwrap_err();
         assert_eq!(err.errors.len(), 1, "{err}");
         assert_eq!(err.errors[0].field, "levels.step_db");
-        assert!(err.errors[0].message.contains("more than 200 levels"), "{err}");
+        assert!(
+            err.errors[0].message.contains("more than 200 levels"),
+            "{err}"
+        );
     }
 
     #[test]
@@ -1126,7 +1133,10 @@ mod tests {
         let plan = validate(&req, 24.0).unwrap();
         assert_eq!(plan.steps().len(), 4);
         for step in plan.steps() {
-            assert!(step.generator_levels.len() >= MIN_LEVELS_FOR_FIT, "{step:?}");
+            assert!(
+                step.generator_levels.len() >= MIN_LEVELS_FOR_FIT,
+                "{step:?}"
+            );
         }
         assert_eq!(plan.point_count(), 4 * 3);
     }
