@@ -375,6 +375,7 @@ async fn invalid_plans_are_refused_with_fields_named_and_nothing_sent() {
     ];
     for (levels, field) in absurd {
         let mut request = plan("c");
+        request["chain"] = serde_json::json!({"kind": "flat_loss", "loss_db": 1.0});
         request["levels"] = levels.clone();
         let response = app
             .post_json("/api/v1/runs", Some(&operator), &request)
