@@ -74,26 +74,28 @@ fn sim_prints_two_resource_strings_and_serves_scpi() {
     assert!(running.0.try_wait().unwrap().is_none(), "still running");
 }
 
+/// Runs `halfwave sim` on free ports with `flag FILE`; asserts it exits non-zero and returns its
+/// stderr.
+fn sim_refuses(flag: &str, file: &std::path::Path) -> String {
+    let output = Command::new(env!("CARGO_BIN_EXE_halfwave"))
+        .args(["sim", "--source-port", "0", "--analyzer-port", "0", flag])
+        .arg(file)
+        .output()
+        .unwrap();
+    assert!(
+        !output.status.success(),
+        "halfwave sim accepted {flag} {file:?}"
+    );
+    String::from_utf8_lossy(&output.stderr).into_owned()
+}
+
 #[test]
 fn sim_refuses_a_bad_scenario_with_a_clear_message() {
     let dir = std::env::temp_dir().join(format!("halfwave-sim-cli-{}", std::process::id()));
     std::fs::create_dir_all(&dir).unwrap();
     let path = dir.join("broken.toml");
     std::fs::write(&path, "name = \"x\"\n[laser]\nwavelength_nm = -3\n").unwrap();
-    let output = Command::new(env!("CARGO_BIN_EXE_halfwave"))
-        .args([
-            "sim",
-            "--source-port",
-            "0",
-            "--analyzer-port",
-            "0",
-            "--scenario",
-        ])
-        .arg(&path)
-        .output()
-        .unwrap();
-    assert!(!output.status.success());
-    let stderr = String::from_utf8_lossy(&output.stderr);
+    let stderr = sim_refuses("--scenario", &path);
     assert!(stderr.contains("scenario"), "{stderr}");
     let _ = std::fs::remove_dir_all(&dir);
 }
@@ -302,20 +304,7 @@ fn sim_refuses_a_bad_drill_naming_the_fault_and_key() {
         "[[fault]]\nat_s = 1\ninstrument = \"rf_source\"\nkind = \"link_down\"\n",
     )
     .unwrap();
-    let output = Command::new(env!("CARGO_BIN_EXE_halfwave"))
-        .args([
-            "sim",
-            "--source-port",
-            "0",
-            "--analyzer-port",
-            "0",
-            "--drill",
-        ])
-        .arg(&path)
-        .output()
-        .unwrap();
-    assert!(!output.status.success());
-    let stderr = String::from_utf8_lossy(&output.stderr);
+    let stderr = sim_refuses("--drill", &path);
     assert!(
         stderr.contains("fault 1") && stderr.contains("for_s"),
         "{stderr}"

@@ -18,9 +18,12 @@
 //!
 //! Run: `cargo bench -p halfwave-server --bench slow_clients` (Linux; about 40 s).
 
-use std::io::{BufRead, BufReader, ErrorKind, Read, Write};
+#[path = "support/daemon.rs"]
+mod daemon;
+
+use daemon::{simulated_config, status_mb, Daemon};
+use std::io::{ErrorKind, Read, Write};
 use std::net::{SocketAddr, TcpStream};
-use std::process::{Child, Command, Stdio};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
@@ -32,27 +35,6 @@ const PROBE_INTERVAL: Duration = Duration::from_millis(50);
 const HOLD: Duration = Duration::from_secs(25);
 /// Descriptors this process keeps for itself beyond the attack (probes, pipes, the runtime).
 const SPARE_DESCRIPTORS: u64 = 200;
-
-/// The daemon process; killed if the benchmark stops early.
-struct Daemon(Child);
-
-impl Drop for Daemon {
-    fn drop(&mut self) {
-        let _ = self.0.kill();
-        let _ = self.0.wait();
-    }
-}
-
-/// A field of `/proc/<pid>/status` in MB (the kernel reports kB).
-fn status_mb(pid: u32, field: &str) -> f64 {
-    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap_or_default();
-    status
-        .lines()
-        .find(|l| l.starts_with(field))
-        .and_then(|l| l.split_whitespace().nth(1))
-        .and_then(|kb| kb.parse::<f64>().ok())
-        .map_or(f64::NAN, |kb| kb / 1024.0)
-}
 
 /// Raises this process's descriptor limit to its hard limit and returns how many half-open
 /// connections fit (at most [`HALF_OPEN_TARGET`]).
@@ -133,41 +115,10 @@ fn main() {
     }
     let count = half_open_count();
     let dir = tempfile::tempdir().unwrap();
-    let port = std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port();
+    let (config, port) = simulated_config(dir.path());
     let address: SocketAddr = format!("127.0.0.1:{port}").parse().unwrap();
-    let config = dir.path().join("halfwave.toml");
-    std::fs::write(
-        &config,
-        format!(
-            "bind = \"127.0.0.1:{port}\"\ndata_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n[bench.simulation]\nseed = 3\ntime_factor = 0.02\n",
-            dir.path().join("data").display()
-        ),
-    )
-    .unwrap();
-    let mut child = Command::new(env!("CARGO_BIN_EXE_halfwave"))
-        .args(["serve", "--config"])
-        .arg(&config)
-        .env("HALFWAVE_LOG", "warn")
-        .stdout(Stdio::piped())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
-    let pid = child.id();
-    let mut stdout = BufReader::new(child.stdout.take().unwrap());
-    let daemon = Daemon(child);
-    let mut line = String::new();
-    stdout.read_line(&mut line).unwrap();
-    assert!(line.contains("listening"), "{line}");
-    std::thread::spawn(move || {
-        let mut sink = String::new();
-        while stdout.read_line(&mut sink).map(|n| n > 0).unwrap_or(false) {
-            sink.clear();
-        }
-    });
+    let daemon = Daemon::serve(&config);
+    let pid = daemon.pid();
     std::thread::sleep(Duration::from_secs(2));
     let idle_mb = status_mb(pid, "VmRSS:");
     let baseline = probe(address).expect("/health answers before the attack");
