@@ -105,6 +105,20 @@ pub enum InstrumentError {
 }
 
 impl InstrumentError {
+    /// True for faults of the link or of the instrument's liveness (lost connection, silence, a
+    /// garbled reply, a link re-established mid-step): the plan and the stored points are still
+    /// good, so a run stopped by one may be resumed once the link is back. An instrument's own
+    /// refusal (a SCPI error, a read-back mismatch, a range) is not one.
+    pub fn is_link_fault(&self) -> bool {
+        matches!(
+            self,
+            InstrumentError::Connection { .. }
+                | InstrumentError::Timeout { .. }
+                | InstrumentError::Parse { .. }
+                | InstrumentError::LinkInterrupted { .. }
+        )
+    }
+
     /// True for errors after which the connection should be re-established before the next
     /// command (lost link, silence, a reply that left the stream out of step).
     pub fn needs_reconnect(&self) -> bool {
@@ -153,6 +167,15 @@ pub trait RfSource: Send {
     /// Switches the RF output off by every means available (reconnecting if needed) and confirms
     /// it. This is the call every stop path makes; it must not give up after one failed attempt.
     async fn safe_off(&mut self) -> Result<(), InstrumentError>;
+
+    /// One quick, self-contained attempt to switch the output off and prove it: on a fresh
+    /// connection where there is one, send the output-off command, wait for the operation to
+    /// complete and read the output state back. The engine calls it repeatedly, under its own
+    /// time limit, while an output stays unconfirmed; cancelling it half-way must leave the driver
+    /// usable (the next attempt starts afresh). The default is [`RfSource::safe_off`].
+    async fn confirm_off_fresh(&mut self) -> Result<(), InstrumentError> {
+        self.safe_off().await
+    }
 }
 
 /// The settings of one analyzer sweep.
@@ -231,4 +254,9 @@ pub trait SpectrumAnalyzer: Send {
     /// Fetches the last trace: frequency axis in hertz and power in dBm, with the resolution
     /// bandwidth the instrument used.
     async fn fetch_trace(&mut self) -> Result<Trace, InstrumentError>;
+
+    /// Forgets an operation the caller stopped waiting for (a sweep that overran): the next
+    /// operation must not read a late reply of the abandoned one. Drivers with a connection drop
+    /// it here, so the next operation reconnects. The default does nothing.
+    fn abandon_operation(&mut self) {}
 }

@@ -352,6 +352,37 @@ async fn fault_delay_garble_push_error_and_silence() {
 }
 
 #[tokio::test]
+async fn fault_link_down_closes_connections_until_it_comes_back() {
+    let server = start(quiet_scenario(), 0.0).await;
+    let faults = server.faults(Role::RfSource);
+    let mut open = Client::connect(&server, Role::RfSource).await;
+    assert_eq!(open.query("OUTP?").await, "0");
+
+    faults.link_down();
+    assert!(faults.is_link_down());
+    assert_eq!(
+        open.read_line_within(ANSWER_TIMEOUT).await,
+        Some(Vec::new()),
+        "an open connection is closed when the link goes down"
+    );
+    // New connections are accepted and closed at once, without executing anything.
+    let mut refused = Client::connect(&server, Role::RfSource).await;
+    let _ = refused.writer.write_all(b"OUTP ON\n").await;
+    assert_eq!(
+        refused.read_line_within(ANSWER_TIMEOUT).await,
+        Some(Vec::new())
+    );
+    assert!(!server.bench().rf_output_on());
+    // The other instrument's link is untouched.
+    let mut analyzer = Client::connect(&server, Role::Analyzer).await;
+    assert_eq!(analyzer.query("*OPC?").await, "1");
+
+    faults.link_up();
+    let mut again = Client::connect(&server, Role::RfSource).await;
+    assert_eq!(again.query("OUTP?").await, "0");
+}
+
+#[tokio::test]
 async fn generic_scpi_drivers_run_against_the_simulator() {
     let server = start(quiet_scenario(), 0.0).await;
     let mut source =

@@ -58,9 +58,11 @@ async function loadBenches() {
   const select = $("bench-select");
   const chosen = select.value;
   select.replaceChildren();
+  showSafety(benches);
   for (const bench of benches) {
     const row = body.insertRow();
     cell(row, bench.name);
+    cell(row, safetyWords[bench.safety_state] || bench.safety_state, "safety-" + bench.safety_state);
     cell(row, bench.active_run_id ?? "idle");
     cell(row, (bench.queued_run_ids || []).join(", ") || "none");
     cell(row, describeInstrument({ identity: bench.source_identity, resource: bench.source_resource }));
@@ -69,6 +71,50 @@ async function loadBenches() {
     select.add(option);
   }
   if (chosen) select.value = chosen;
+}
+
+const safetyWords = {
+  clear: "RF off or driven by a run",
+  output_unconfirmed: "RF OUTPUT NOT CONFIRMED OFF",
+  awaiting_acknowledgement: "RF off; held until acknowledged",
+};
+
+// Benches with an RF safety fault get a banner above everything else, with what happened and,
+// once the output has been read back off, a button to acknowledge (an operator token is needed).
+function showSafety(benches) {
+  const banner = $("safety-banner");
+  banner.replaceChildren();
+  const faulty = benches.filter((b) => b.safety_state && b.safety_state !== "clear");
+  banner.hidden = faulty.length === 0;
+  for (const bench of faulty) {
+    const item = document.createElement("div");
+    item.className = "safety-item safety-" + bench.safety_state;
+    const fault = bench.safety_fault || {};
+    const text = document.createElement("p");
+    text.textContent = bench.safety_state === "output_unconfirmed"
+      ? `Bench ${bench.name}: the RF output could not be read back off since ${when(fault.since_unix_ms)} UTC. ` +
+        `The daemon keeps trying; no run starts. Check the source and its link, or switch it off by hand. Cause: ${fault.cause}`
+      : `Bench ${bench.name}: the RF output was read back off at ${when(fault.confirmed_off_at_unix_ms)} UTC after a safety fault. ` +
+        `Runs wait until an operator has checked the bench and acknowledges. Cause: ${fault.cause}`;
+    item.append(text);
+    if (bench.safety_state === "awaiting_acknowledgement") {
+      const button = document.createElement("button");
+      button.type = "button";
+      button.textContent = `acknowledge ${bench.name}`;
+      button.dataset.bench = bench.name;
+      button.onclick = async () => {
+        const note = prompt(`What did you check on bench ${bench.name}? (kept in the audit log)`, "") ?? "";
+        try {
+          await api(`/benches/${encodeURIComponent(bench.name)}/acknowledge`, {
+            method: "POST", headers: { "Content-Type": "application/json" }, body: JSON.stringify({ note }),
+          });
+        } catch (e) { alert(e.message); }
+        refreshAll();
+      };
+      item.append(button);
+    }
+    banner.append(item);
+  }
 }
 
 function describeInstrument(instrument) {
@@ -96,7 +142,7 @@ async function loadRuns() {
     cell(row, run.submitted_by);
     const actions = row.insertCell();
     if (run.state === "queued" || run.state === "running") actions.append(actionButton("cancel", run.id));
-    if (run.state === "interrupted" || run.state === "failed" || run.state === "cancelled") actions.append(actionButton("resume", run.id));
+    if (run.state === "interrupted" || (run.state === "failed" && run.resumable)) actions.append(actionButton("resume", run.id));
     if (run.state === "running" && state.liveRunId === null) watchRun(run.id);
   }
 }
@@ -198,6 +244,9 @@ function connectEvents() {
         $("live-summary").textContent = `Run ${event.run_id} ${event.state}` + (event.cause ? `: ${event.cause}` : "");
         state.liveRunId = null;
         refreshAll();
+        break;
+      case "bench_safety":
+        loadBenches().catch(() => {});
         break;
       case "queued":
         loadRuns().catch(() => {});

@@ -5,6 +5,7 @@
 //! - [`store`]: the database (sqlx + SQLite): devices, calibrations, runs, points, traces, results.
 //! - [`cli`]: the `halfwave` command line (each subcommand one file).
 //! - [`config`]: the daemon's TOML configuration with environment overrides.
+//! - [`data_claim`]: one daemon per data store (an OS file lock taken before anything starts).
 //! - [`engine`]: plans, the per-bench queue, the sweep executor and the RF-off interlocks.
 //! - [`shutdown`]: waiting for SIGINT/SIGTERM.
 //! - [`telemetry`]: tracing set-up, done once at start.
@@ -13,6 +14,7 @@ pub mod analysis;
 pub mod api;
 pub mod cli;
 pub mod config;
+pub mod data_claim;
 pub mod engine;
 pub mod shutdown;
 pub mod store;

@@ -229,6 +229,11 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
         }
     }
 
+    fn abandon_operation(&mut self) {
+        // A late reply to the abandoned query must not be read as the answer to the next one.
+        self.session.transport_mut().disconnect();
+    }
+
     async fn fetch_trace(&mut self) -> Result<Trace, InstrumentError> {
         let c = self.profile.commands.clone();
         let start = self.session.query_number(&c.query_start).await?;

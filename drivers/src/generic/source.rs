@@ -127,7 +127,7 @@ impl ScpiRfSource {
         };
         match self.safe_off().await {
             Err(e) => Err(interrupted(format!(
-                "the output could not be confirmed off afterwards ({e}); switch it off by hand"
+                "the output could not be confirmed off afterwards ({e})"
             ))),
             Ok(()) if was_on => Err(interrupted(
                 "the output was switched off because its state while the link was down is unknown; the measurement in progress is void".into(),
@@ -255,6 +255,41 @@ impl RfSource for ScpiRfSource {
         let result = self.session.query_bool(&query).await;
         self.after_step("read the output state", before, result)
             .await
+    }
+
+    async fn confirm_off_fresh(&mut self) -> Result<(), InstrumentError> {
+        // A fresh connection: whatever the old one was waiting for is forgotten.
+        self.session.transport_mut().disconnect();
+        let c = &self.profile.commands;
+        let command = fill_template(&c.set_output, &c.output_off_word);
+        let query = c.query_output.clone();
+        let complete = self.profile.common.operation_complete.clone();
+        let result = async {
+            let transport = self.session.transport_mut();
+            transport.write(&command).await?;
+            if !complete.is_empty() {
+                transport.query(&complete).await?;
+            }
+            transport.query(&query).await
+        }
+        .await;
+        let reply = match result {
+            Ok(reply) => reply,
+            Err(e) => {
+                self.session.transport_mut().disconnect();
+                return Err(e);
+            }
+        };
+        match parse_bool(&reply) {
+            Ok(false) => {
+                self.output_may_be_on = false;
+                Ok(())
+            }
+            Ok(true) => Err(self
+                .session
+                .read_back_error("output", "off".into(), "on".into())),
+            Err(e) => Err(self.session.parse_error(&query, e)),
+        }
     }
 
     async fn safe_off(&mut self) -> Result<(), InstrumentError> {

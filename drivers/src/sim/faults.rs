@@ -11,12 +11,16 @@
 //! - [`FaultHandle::garble_replies`]: replace the next N replies with bytes that parse as nothing;
 //! - [`FaultHandle::push_error`]: put an error in the instrument's error queue;
 //! - [`FaultHandle::stop_answering`]: read and log commands but neither execute nor answer them,
-//!   until [`FaultHandle::resume`].
+//!   until [`FaultHandle::resume`];
+//! - [`FaultHandle::link_down`]: the network path is gone: every open connection is closed at once
+//!   and new ones are accepted and closed straight away, until [`FaultHandle::link_up`] (a cable
+//!   pulled, a switch rebooting, an instrument's LAN stack restarting).
 
 use super::bench::{Role, SimBench};
 use crate::scpi::command::ScpiError;
 use std::sync::{Arc, Mutex, MutexGuard};
 use std::time::Duration;
+use tokio::sync::watch;
 
 /// What a reply looks like when garbled: not a number, not a block, not valid text.
 pub const GARBLED_REPLY: &[u8] = b"\x15?%\xfe garbled \xff~";
@@ -46,6 +50,8 @@ pub struct FaultHandle {
     role: Role,
     bench: SimBench,
     faults: Arc<Mutex<Faults>>,
+    /// `true` while the link is down; connections watch it to close at once.
+    link_down: Arc<watch::Sender<bool>>,
 }
 
 impl FaultHandle {
@@ -54,6 +60,7 @@ impl FaultHandle {
             role,
             bench,
             faults: Arc::new(Mutex::new(Faults::default())),
+            link_down: Arc::new(watch::channel(false).0),
         }
     }
 
@@ -98,9 +105,31 @@ impl FaultHandle {
         self.lock().silent = false;
     }
 
-    /// Switches every fault off.
+    /// Takes the link down: open connections close now, new ones are closed as soon as they
+    /// are accepted, until [`FaultHandle::link_up`].
+    pub fn link_down(&self) {
+        self.link_down.send_replace(true);
+    }
+
+    /// Brings the link back: connections are served again.
+    pub fn link_up(&self) {
+        self.link_down.send_replace(false);
+    }
+
+    /// Whether the link is down.
+    pub fn is_link_down(&self) -> bool {
+        *self.link_down.borrow()
+    }
+
+    /// A receiver that sees the link go down and up (for the server's connections).
+    pub(crate) fn link_watch(&self) -> watch::Receiver<bool> {
+        self.link_down.subscribe()
+    }
+
+    /// Switches every fault off, the link included.
     pub fn clear(&self) {
         *self.lock() = Faults::default();
+        self.link_up();
     }
 
     /// Decides what to do with a line of `units` commands, counting them towards a drop.

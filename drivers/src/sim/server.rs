@@ -178,6 +178,11 @@ async fn accept_loop(
         };
         match accepted {
             Ok((stream, peer)) => {
+                if faults.is_link_down() {
+                    tracing::debug!(role = role.name(), %peer, "fault injection: link down, connection closed");
+                    drop(stream);
+                    continue;
+                }
                 tracing::debug!(role = role.name(), %peer, "simulated instrument connected");
                 let _ = stream.set_nodelay(true);
                 tokio::spawn(serve_connection(
@@ -197,6 +202,22 @@ async fn accept_loop(
 }
 
 async fn serve_connection(
+    stream: TcpStream,
+    role: Role,
+    bench: SimBench,
+    faults: FaultHandle,
+    shutdown: watch::Receiver<bool>,
+) {
+    let mut link = faults.link_watch();
+    tokio::select! {
+        _ = serve_lines(stream, role, bench, faults, shutdown) => {}
+        _ = link.wait_for(|down| *down) => {
+            tracing::debug!(role = role.name(), "fault injection: link down, connection closed");
+        }
+    }
+}
+
+async fn serve_lines(
     stream: TcpStream,
     role: Role,
     bench: SimBench,

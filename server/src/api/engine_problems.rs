@@ -2,6 +2,7 @@
 //! unknown run 404, a run in the wrong state 409, the rest 500 with the engine's message.
 
 use super::problem::{FieldProblem, Problem};
+use crate::engine::rf_safety::AcknowledgeError;
 use crate::engine::{EngineError, SubmitError};
 
 impl From<SubmitError> for Problem {
@@ -31,10 +32,14 @@ impl From<EngineError> for Problem {
     fn from(e: EngineError) -> Problem {
         let message = e.to_string();
         match e {
-            EngineError::RunNotFound(_) => Problem::not_found(message),
+            EngineError::RunNotFound(_) | EngineError::BenchNotFound(_) => {
+                Problem::not_found(message)
+            }
             EngineError::NotCancellable { .. }
             | EngineError::NotResumable { .. }
             | EngineError::ResumeRefused { .. } => Problem::conflict(message),
+            EngineError::Acknowledge(AcknowledgeError::Store(e)) => e.into(),
+            EngineError::Acknowledge(_) => Problem::conflict(message),
             EngineError::Store(e) => e.into(),
             _ => {
                 tracing::error!(error = %message, "engine error in an API call");

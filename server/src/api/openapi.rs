@@ -18,7 +18,7 @@ use utoipa::{Modify, OpenApi};
         system::health, system::metrics, system::openapi_document,
         token_routes::list_tokens, token_routes::create_token, token_routes::revoke_token,
         run_control::submit_run, run_control::cancel_run, run_control::resume_run,
-        benches::list_benches, events::events,
+        benches::list_benches, benches::acknowledge_bench, events::events,
         runs::list_runs, runs::get_run, runs::list_points, runs::point_trace,
         runs::point_spectrum_svg, runs::latest_spectrum_svg, runs::modulation_index_svg, runs::compare_runs,
         devices::list_devices, devices::get_device, devices::calibration_history, devices::vpi_at,
@@ -27,7 +27,7 @@ use utoipa::{Modify, OpenApi};
     ),
     components(schemas(
         Problem, FieldProblem, Role, TokenInfo, CreatedToken, token_routes::NewToken, system::Health,
-        run_control::SubmittedRun,
+        run_control::SubmittedRun, benches::Acknowledgement, system::BenchAttention,
         runs::RunSummary, runs::RunList, runs::RunView, runs::FrequencyResultView, runs::PointView,
         runs::PointList, runs::TraceView, RunComparison, ComparisonRow,
         devices::DeviceView, devices::Calibration, devices::CalibrationPoint, devices::VpiAnswer,

@@ -212,7 +212,7 @@ impl IntoResponse for Problem {
     }
 }
 
-/// Middleware: turns error responses that carry no problem document (produced by layers and
+/// Middleware: turns error responses that carry no JSON document (produced by layers and
 /// the router itself) into problem details, so clients see one error format everywhere.
 pub async fn problems_for_bare_errors(
     request: axum::extract::Request,
@@ -223,12 +223,14 @@ pub async fn problems_for_bare_errors(
     if !(status.is_client_error() || status.is_server_error()) {
         return response;
     }
-    let is_problem = response
+    // A problem document, or a JSON body a handler chose to send with an error status (the
+    // degraded health report), is kept as it is.
+    let is_deliberate = response
         .headers()
         .get(header::CONTENT_TYPE)
         .and_then(|v| v.to_str().ok())
-        .is_some_and(|v| v.starts_with(PROBLEM_JSON));
-    if is_problem {
+        .is_some_and(|v| v.starts_with(PROBLEM_JSON) || v.starts_with("application/json"));
+    if is_deliberate {
         return response;
     }
     Problem::for_bare_status(status).into_response()

@@ -108,7 +108,8 @@ impl RunGauges {
             }
             ProgressEvent::Queued { .. }
             | ProgressEvent::Frequency { .. }
-            | ProgressEvent::Response { .. } => {}
+            | ProgressEvent::Response { .. }
+            | ProgressEvent::BenchSafety { .. } => {}
         }
     }
 
@@ -178,6 +179,26 @@ pub fn render_engine(engine: &Engine, gauges: &RunGauges, out: &mut String) {
         benches.iter().map(|b| {
             let busy = u8::from(b.active_run_id.is_some());
             (bench_label(&b.name), busy.to_string())
+        }),
+    );
+    family(
+        out,
+        "halfwave_bench_rf_output_unconfirmed",
+        "gauge",
+        "1 while the bench's RF output could not be read back off (the daemon keeps trying), else 0.",
+        benches.iter().map(|b| {
+            let unconfirmed = u8::from(b.safety_state == "output_unconfirmed");
+            (bench_label(&b.name), unconfirmed.to_string())
+        }),
+    );
+    family(
+        out,
+        "halfwave_bench_awaiting_acknowledgement",
+        "gauge",
+        "1 while the bench holds its runs after a safety fault until an operator acknowledges, else 0.",
+        benches.iter().map(|b| {
+            let held = u8::from(b.safety_state == "awaiting_acknowledgement");
+            (bench_label(&b.name), held.to_string())
         }),
     );
     family(

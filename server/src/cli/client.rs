@@ -146,6 +146,20 @@ impl ApiClient {
         decode(response, path).await
     }
 
+    /// POST a JSON body to `path` for an answer without content (204).
+    pub async fn post_no_content(
+        &self,
+        path: &str,
+        body: &serde_json::Value,
+    ) -> Result<(), CliError> {
+        let request = self
+            .http
+            .post(self.url(path))
+            .header(reqwest::header::CONTENT_TYPE, "application/json")
+            .body(body.to_string());
+        self.send(request, path).await.map(|_| ())
+    }
+
     /// Opens the server-sent event stream (optionally of one run); the caller reads its chunks.
     pub async fn event_stream(&self, run_id: Option<i64>) -> Result<reqwest::Response, CliError> {
         let path = match run_id {

@@ -142,7 +142,7 @@ async fn demo(args: DemoArgs) -> Result<(), CliError> {
     let scenario = Scenario::builtin()
         .map_err(|e| CliError::new(format!("the built-in simulated bench is broken: {e}")))?;
 
-    let (engine, listener) = super::serve::start(&config).await?;
+    let (engine, listener, _claim) = super::serve::start(&config).await?;
     let address = listener
         .local_addr()
         .map_err(|e| CliError::new(format!("cannot read the bound address: {e}")))?;

@@ -3,7 +3,7 @@
 //! Every subcommand returns `Result<(), CliError>`; `main` prints the error for the person at the
 //! terminal and exits non-zero. Three kinds of command live here: the daemon and its local tools
 //! (`serve`, `demo`, `sim`, `analyze`, `token`, `check-bench`, `db`), which read the configuration
-//! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `export`), which
+//! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `export`, `benches`, `acknowledge`), which
 //! speak only HTTP to a running daemon through [`client::ApiClient`], so they work from any
 //! machine that can reach it. Clients print tables for people and JSON with `--json`.
 
@@ -11,6 +11,7 @@ pub mod analyze;
 
 use clap::{Parser, Subcommand};
 
+pub mod benches;
 pub mod check_bench;
 pub mod client;
 pub mod db;
@@ -73,6 +74,11 @@ pub enum Command {
     CheckBench(check_bench::CheckBenchArgs),
     /// Database maintenance: `db backup DEST` (consistent copy, safe while the daemon runs).
     Db(db::DbCommand),
+    /// List the benches with their queue and RF safety state.
+    Benches(benches::BenchesArgs),
+    /// Acknowledge a bench's safety fault once its RF output reads back off (operator token);
+    /// the bench then takes runs again.
+    Acknowledge(benches::AcknowledgeArgs),
 }
 
 /// Runs the parsed command.
@@ -90,5 +96,7 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Export(args) => export::run(args),
         Command::CheckBench(args) => check_bench::run(args),
         Command::Db(command) => db::run(command),
+        Command::Benches(args) => benches::list(args),
+        Command::Acknowledge(args) => benches::acknowledge(args),
     }
 }

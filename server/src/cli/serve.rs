@@ -1,14 +1,17 @@
 //! `halfwave serve`: the daemon. Configuration in, engine and HTTP API up, RF off on the way out.
 //!
 //! Start-up order matters for safety: the configuration is checked first (nothing starts
-//! half-configured), then the store is opened and migrated, then the engine switches every
-//! configured source off and marks runs left running as interrupted, and only then does the HTTP
-//! listener accept requests. On SIGINT or SIGTERM the listener stops taking requests, the engine
-//! cancels the active runs (they become interrupted, so they can be resumed) and switches every
-//! source off before the process exits.
+//! half-configured), then the daemon claims its data store (`data_claim`: a second daemon on the
+//! same database exits here, naming the first, having changed nothing), then it binds its port
+//! (a taken port also stops it before any instrument is touched), then the store is opened and
+//! migrated, and only then does the engine switch every configured source off and mark runs left
+//! running as interrupted, before the HTTP listener accepts requests. On SIGINT or SIGTERM the
+//! listener stops taking requests, the engine cancels the active runs (they become interrupted,
+//! so they can be resumed) and switches every source off before the process exits.
 
 use super::CliError;
 use crate::config::Config;
+use crate::data_claim::DataClaim;
 use crate::engine::Engine;
 use crate::store::Store;
 use clap::Args;
@@ -36,7 +39,7 @@ pub fn run(args: ServeArgs) -> Result<(), CliError> {
 
 /// Opens the store, starts the engine and serves the API until SIGINT/SIGTERM.
 pub async fn serve(config: Config) -> Result<(), CliError> {
-    let (engine, listener) = start(&config).await?;
+    let (engine, listener, _claim) = start(&config).await?;
     let address = listener
         .local_addr()
         .map_err(|e| CliError::new(format!("cannot read the bound address: {e}")))?;
@@ -58,15 +61,14 @@ pub async fn serve(config: Config) -> Result<(), CliError> {
     Ok(())
 }
 
-/// Opens the store, starts the engine (RF off everywhere, recovery) and binds the listener.
-pub async fn start(config: &Config) -> Result<(Engine, tokio::net::TcpListener), CliError> {
+/// Claims the data store, binds the listener, opens the store and starts the engine (RF off
+/// everywhere, recovery), in that order: a daemon that cannot claim its store or bind its port
+/// stops before it changes anything. The claim must be kept for as long as the daemon runs.
+pub async fn start(
+    config: &Config,
+) -> Result<(Engine, tokio::net::TcpListener, DataClaim), CliError> {
     config.create_data_dir().map_err(CliError::new)?;
-    let store = Store::open(&config.database_url())
-        .await
-        .map_err(|e| CliError::new(e.to_string()))?;
-    let engine = Engine::start(config, store)
-        .await
-        .map_err(|e| CliError::new(e.to_string()))?;
+    let claim = DataClaim::acquire(config).map_err(CliError::new)?;
     let listener = tokio::net::TcpListener::bind(config.bind)
         .await
         .map_err(|e| {
@@ -75,5 +77,11 @@ pub async fn start(config: &Config) -> Result<(Engine, tokio::net::TcpListener),
                 config.bind
             ))
         })?;
-    Ok((engine, listener))
+    let store = Store::open(&config.database_url())
+        .await
+        .map_err(|e| CliError::new(e.to_string()))?;
+    let engine = Engine::start(config, store)
+        .await
+        .map_err(|e| CliError::new(e.to_string()))?;
+    Ok((engine, listener, claim))
 }

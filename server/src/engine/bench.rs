@@ -31,12 +31,21 @@ impl BenchInstruments {
 }
 
 /// The start-up interlock for one source: switches its output off (the driver's `safe_off`
-/// reconnects and repeats until the instrument confirms), logging (not returning) a failure,
-/// because the operator must then check the source by hand.
-pub async fn switch_off_at_start(bench: &str, source: &mut dyn RfSource) {
-    if let Err(e) = source.safe_off().await {
-        tracing::error!(bench, error = %e, "could not switch the RF output off; check the source by hand");
-    }
+/// reconnects and repeats until the instrument confirms) within the stop paths' budget. A failure
+/// is logged and returned: the engine then flags the bench and keeps trying (`rf_safety`).
+pub async fn switch_off_at_start(bench: &str, source: &mut dyn RfSource) -> Result<(), String> {
+    let budget = super::safety::SWITCH_OFF_BUDGET;
+    let error = match tokio::time::timeout(budget, source.safe_off()).await {
+        Ok(Ok(())) => return Ok(()),
+        Ok(Err(e)) => e.to_string(),
+        Err(_) => format!(
+            "{} did not confirm the output off within {:.1} s",
+            source.resource(),
+            budget.as_secs_f64()
+        ),
+    };
+    tracing::error!(bench, error = %error, "could not switch the RF output off at start-up; the bench is held and the daemon keeps trying");
+    Err(error)
 }
 
 /// A set-up failure of this bench, named.

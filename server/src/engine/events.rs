@@ -62,6 +62,13 @@ pub enum ProgressEvent {
         state: String,
         cause: Option<String>,
     },
+    /// A bench's RF safety state changed: `output_unconfirmed`, `awaiting_acknowledgement` or
+    /// `clear` (see `engine::rf_safety`). Not tied to a run; sent to every watcher.
+    BenchSafety {
+        bench: String,
+        state: String,
+        cause: Option<String>,
+    },
 }
 
 /// One frequency of the response curve in a [`ProgressEvent::Response`].
@@ -73,8 +80,8 @@ pub struct ResponsePointEvent {
 }
 
 impl ProgressEvent {
-    /// The run this event belongs to.
-    pub fn run_id(&self) -> i64 {
+    /// The run this event belongs to; `None` for bench events, which every watcher gets.
+    pub fn run_id(&self) -> Option<i64> {
         match self {
             ProgressEvent::Queued { run_id, .. }
             | ProgressEvent::Started { run_id, .. }
@@ -82,7 +89,8 @@ impl ProgressEvent {
             | ProgressEvent::PointFailed { run_id, .. }
             | ProgressEvent::Frequency { run_id, .. }
             | ProgressEvent::Response { run_id, .. }
-            | ProgressEvent::Finished { run_id, .. } => *run_id,
+            | ProgressEvent::Finished { run_id, .. } => Some(*run_id),
+            ProgressEvent::BenchSafety { .. } => None,
         }
     }
 }

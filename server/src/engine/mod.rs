@@ -15,20 +15,22 @@ pub mod acquire;
 pub mod bench;
 pub mod events;
 pub mod plan;
+pub mod rf_safety;
 pub mod runner;
 pub mod safety;
 
 use crate::analysis::chain::{ChainPoint, DriveChain};
 use crate::config::{Config, Limits};
 use crate::store::{
-    ChainCalibration, ChainCalibrationPoint, NewDevice, NewRun, RunFilter, RunRecord, RunState,
-    Store, StoreError,
+    BenchFault, BenchSafetyRecord, ChainCalibration, ChainCalibrationPoint, NewDevice, NewRun,
+    RunFilter, RunRecord, RunState, Store, StoreError,
 };
 use bench::BenchInstruments;
 use events::ProgressEvent;
 use halfwave_drivers::{Identity, InstrumentError};
 use halfwave_units::{Db, Dbm, Hz, Nanometers};
 use plan::{ChainSpec, FieldError, Plan, PlanContext, PlanErrors, PlanRequest};
+use rf_safety::{AcknowledgeError, BenchSafety};
 use runner::{RunContext, RunOutcome, SharedAnalyzer};
 use safety::SharedSource;
 use serde::Serialize;
@@ -56,8 +58,12 @@ pub enum EngineError {
     RunNotFound(i64),
     #[error("run {run_id} is {state}; only queued, running or interrupted runs can be cancelled")]
     NotCancellable { run_id: i64, state: String },
-    #[error("run {run_id} is {state}; only interrupted runs can be resumed")]
+    #[error("run {run_id} is {state}; only interrupted runs, and failed runs stopped by a link fault, can be resumed")]
     NotResumable { run_id: i64, state: String },
+    #[error("no bench named {0:?} is configured on this daemon")]
+    BenchNotFound(String),
+    #[error(transparent)]
+    Acknowledge(#[from] AcknowledgeError),
     #[error("run {run_id} cannot be resumed: {reason}")]
     ResumeRefused { run_id: i64, reason: String },
     #[error(transparent)]
@@ -73,7 +79,7 @@ pub enum EngineError {
 }
 
 /// A bench as the API shows it.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct BenchStatus {
     pub name: String,
     pub source_resource: String,
@@ -82,6 +88,12 @@ pub struct BenchStatus {
     pub analyzer_identity: Option<Identity>,
     pub active_run_id: Option<i64>,
     pub queued_run_ids: Vec<i64>,
+    /// `clear`, `output_unconfirmed` (the RF output could not be read back off; the daemon keeps
+    /// trying and no run starts) or `awaiting_acknowledgement` (confirmed off after a fault; an
+    /// operator must acknowledge before runs start again).
+    pub safety_state: String,
+    /// The fault behind a state other than `clear`: cause, since when, when confirmed off.
+    pub safety_fault: Option<BenchSafetyRecord>,
 }
 
 struct Job {
@@ -106,6 +118,15 @@ struct BenchSlot {
     identities: std::sync::Mutex<(Option<Identity>, Option<Identity>)>,
     queue: std::sync::Mutex<BenchQueue>,
     jobs: mpsc::UnboundedSender<Job>,
+    safety: Arc<BenchSafety>,
+}
+
+/// Locks a std mutex even if a thread panicked while holding it: the engine's maps stay usable,
+/// and above all the cancel path still finds the run to stop and switch off.
+fn lock<T>(mutex: &std::sync::Mutex<T>) -> std::sync::MutexGuard<'_, T> {
+    mutex
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
 }
 
 struct Inner {
@@ -133,6 +154,7 @@ impl Engine {
         // does not leave a source on that a previous process was driving.
         let mut sources = Vec::new();
         let mut failures = Vec::new();
+        let mut start_off = HashMap::new();
         for bench in &config.benches {
             let connected = match bench::simulation(config, bench) {
                 Ok(simulation) => bench::connect_bench_source(config, bench, simulation.as_ref())
@@ -142,7 +164,8 @@ impl Engine {
             };
             match connected {
                 Ok((simulation, mut source)) => {
-                    bench::switch_off_at_start(&bench.name, source.as_mut()).await;
+                    let off = bench::switch_off_at_start(&bench.name, source.as_mut()).await;
+                    start_off.insert(bench.name.clone(), off);
                     sources.push((bench, simulation, source));
                 }
                 Err(e) => failures.push(e),
@@ -169,7 +192,7 @@ impl Engine {
             let all: Vec<String> = failures.iter().map(ToString::to_string).collect();
             return Err(EngineError::Setup(all.join("; ")));
         }
-        Self::launch(config.limits.clone(), store, benches).await
+        Self::launch(config.limits.clone(), store, benches, start_off).await
     }
 
     /// Starts the engine on benches built by the caller (tests use this to keep a handle on
@@ -180,19 +203,30 @@ impl Engine {
         mut benches: Vec<(String, BenchInstruments)>,
     ) -> Result<Engine, EngineError> {
         // Start-up interlock: whatever the previous process left on, switch it off now.
+        let mut start_off = HashMap::new();
         for (name, instruments) in &mut benches {
-            bench::switch_off_at_start(name, instruments.source.as_mut()).await;
+            let off = bench::switch_off_at_start(name, instruments.source.as_mut()).await;
+            start_off.insert(name.clone(), off);
         }
-        Self::launch(limits, store, benches).await
+        Self::launch(limits, store, benches, start_off).await
     }
 
-    /// Starts the engine on benches whose sources were switched off at start-up.
+    /// Starts the engine on benches whose sources were switched off at start-up (`start_off`
+    /// holds each bench's result: a failure flags the bench, see `rf_safety`).
     async fn launch(
         limits: Limits,
         store: Store,
         benches: Vec<(String, BenchInstruments)>,
+        mut start_off: HashMap<String, Result<(), String>>,
     ) -> Result<Engine, EngineError> {
         let (events, _) = broadcast::channel(EVENT_BUFFER);
+        let shutdown = CancellationToken::new();
+        let mut stored_faults: HashMap<String, BenchSafetyRecord> = store
+            .bench_safety_faults()
+            .await?
+            .into_iter()
+            .map(|r| (r.bench_name.clone(), r))
+            .collect();
         let mut slots = HashMap::new();
         let mut receivers = Vec::new();
         for (name, instruments) in benches {
@@ -208,7 +242,15 @@ impl Engine {
                 identities: std::sync::Mutex::new((None, None)),
                 queue: std::sync::Mutex::new(BenchQueue::default()),
                 jobs: tx,
+                safety: BenchSafety::new(
+                    name.clone(),
+                    store.clone(),
+                    events.clone(),
+                    stored_faults.remove(&name),
+                    shutdown.clone(),
+                ),
             });
+            slot.settle_safety_at_start(start_off.remove(&name)).await;
             slot.refresh_identities(&store).await;
             receivers.push((slot.clone(), rx));
             slots.insert(name, slot);
@@ -227,7 +269,7 @@ impl Engine {
                 events,
                 benches: slots,
                 cancels: std::sync::Mutex::new(HashMap::new()),
-                shutdown: CancellationToken::new(),
+                shutdown,
                 workers: Mutex::new(Vec::new()),
             }),
         };
@@ -391,13 +433,7 @@ impl Engine {
             .store
             .append_audit(by, "cancel", &format!("run:{run_id}"), "")
             .await?;
-        let token = self
-            .inner
-            .cancels
-            .lock()
-            .map(|m| m.get(&run_id).cloned())
-            .ok()
-            .flatten();
+        let token = lock(&self.inner.cancels).get(&run_id).cloned();
         match token {
             Some(t) => t.cancel(),
             None => {
@@ -420,11 +456,15 @@ impl Engine {
     /// plan and chain calibration.
     pub async fn resume(&self, run_id: i64, by: &str) -> Result<(), EngineError> {
         let run = self.run_record(run_id).await?;
-        if run.state != RunState::Interrupted {
-            return Err(EngineError::NotResumable {
-                run_id,
-                state: run.state.as_str().into(),
-            });
+        let resumable_failure = run.state == RunState::Failed && run.resumable;
+        if run.state != RunState::Interrupted && !resumable_failure {
+            let state = match run.state {
+                RunState::Failed => {
+                    "failed on a cause that is not a link fault (a limit, an instrument's refusal or the analysis); resubmit it".into()
+                }
+                other => other.as_str().into(),
+            };
+            return Err(EngineError::NotResumable { run_id, state });
         }
         if self.is_queued_or_active(run_id) {
             return Err(EngineError::NotResumable {
@@ -432,7 +472,8 @@ impl Engine {
                 state: "already queued for resumption".into(),
             });
         }
-        // The run stays `interrupted` until its bench's worker moves it to `running`.
+        // The run stays `interrupted` (or `failed`) until its bench's worker moves it to
+        // `running`; the plan is proven again against today's limits first.
         self.inner
             .store
             .append_audit(by, "resume", &format!("run:{run_id}"), "")
@@ -443,12 +484,7 @@ impl Engine {
     /// Cancels everything, waits for the RF to go off, and switches every source off again.
     pub async fn shutdown(&self) {
         self.inner.shutdown.cancel();
-        let tokens: Vec<CancellationToken> = self
-            .inner
-            .cancels
-            .lock()
-            .map(|m| m.values().cloned().collect())
-            .unwrap_or_default();
+        let tokens: Vec<CancellationToken> = lock(&self.inner.cancels).values().cloned().collect();
         for t in tokens {
             t.cancel();
         }
@@ -464,6 +500,13 @@ impl Engine {
         for slot in self.inner.benches.values() {
             if let Err(e) = safety::switch_off(&slot.source).await {
                 tracing::error!(bench = %slot.name, error = %e, "could not confirm RF off at shutdown; switch it off by hand");
+                // Stored, so the next start flags the bench and switches it off first.
+                slot.safety
+                    .output_unconfirmed(
+                        slot.source.clone(),
+                        format!("the RF output could not be confirmed off at shutdown: {e}"),
+                    )
+                    .await;
             }
         }
     }
@@ -508,11 +551,7 @@ impl Engine {
     }
 
     fn is_queued_or_active(&self, run_id: i64) -> bool {
-        self.inner
-            .cancels
-            .lock()
-            .map(|m| m.contains_key(&run_id))
-            .unwrap_or(false)
+        lock(&self.inner.cancels).contains_key(&run_id)
     }
 
     async fn run_record(&self, run_id: i64) -> Result<RunRecord, EngineError> {
@@ -589,12 +628,8 @@ impl Engine {
         let Some(slot) = self.inner.benches.get(&bench) else {
             return;
         };
-        if let Ok(mut m) = self.inner.cancels.lock() {
-            m.insert(run_id, CancellationToken::new());
-        }
-        if let Ok(mut q) = slot.queue.lock() {
-            q.queued.push_back(run_id);
-        }
+        lock(&self.inner.cancels).insert(run_id, CancellationToken::new());
+        lock(&slot.queue).queued.push_back(run_id);
         let _ = self.inner.events.send(ProgressEvent::Queued {
             run_id,
             bench: bench.clone(),
@@ -613,34 +648,41 @@ impl Engine {
                 _ = self.inner.shutdown.cancelled() => break,
                 job = jobs.recv() => match job { Some(j) => j, None => break },
             };
-            let token = self
-                .inner
-                .cancels
-                .lock()
-                .ok()
-                .and_then(|m| m.get(&job.run_id).cloned())
+            // A bench with a safety fault starts nothing until the output is confirmed off and
+            // an operator has acknowledged; the run keeps its place in the queue meanwhile.
+            if !slot.safety.is_clear() {
+                tracing::warn!(bench = %slot.name, run_id = job.run_id, "run waits: the bench is held by a safety fault");
+                tokio::select! {
+                    _ = self.inner.shutdown.cancelled() => break,
+                    _ = slot.safety.wait_clear() => {}
+                }
+            }
+            let token = lock(&self.inner.cancels)
+                .get(&job.run_id)
+                .cloned()
                 .unwrap_or_default();
-            if let Ok(mut q) = slot.queue.lock() {
+            {
+                let mut q = lock(&slot.queue);
                 q.queued.retain(|id| *id != job.run_id);
                 q.active = Some(job.run_id);
             }
             self.run_job(&slot, job, token).await;
-            if let Ok(mut q) = slot.queue.lock() {
-                q.active = None;
-            }
+            lock(&slot.queue).active = None;
         }
     }
 
     async fn run_job(&self, slot: &Arc<BenchSlot>, job: Job, token: CancellationToken) {
         let store = &self.inner.store;
         let run_id = job.run_id;
-        let finish = |state: RunState, cause: Option<String>| async move {
-            if let Err(e) = store.transition_run(run_id, state, cause.as_deref()).await {
+        let finish = |state: RunState, cause: Option<String>, resumable: bool| async move {
+            let recorded = match (&cause, resumable) {
+                (Some(c), true) => store.fail_run_resumably(run_id, c).await,
+                _ => store.transition_run(run_id, state, cause.as_deref()).await,
+            };
+            if let Err(e) = recorded {
                 tracing::error!(run_id, error = %e, "could not record the end of the run");
             }
-            if let Ok(mut m) = self.inner.cancels.lock() {
-                m.remove(&run_id);
-            }
+            lock(&self.inner.cancels).remove(&run_id);
             let _ = self.inner.events.send(ProgressEvent::Finished {
                 run_id,
                 state: state.as_str().into(),
@@ -651,6 +693,7 @@ impl Engine {
             finish(
                 RunState::Cancelled,
                 Some("cancelled before it started".into()),
+                false,
             )
             .await;
             return;
@@ -660,6 +703,7 @@ impl Engine {
             finish(
                 RunState::Failed,
                 Some(format!("the store refused to start the run: {e}")),
+                false,
             )
             .await;
             return;
@@ -687,26 +731,70 @@ impl Engine {
             Ok(outcome) => outcome,
             Err(join) => {
                 // Give the guard's spawned safe-off the lock, then make sure ourselves.
-                let _ = safety::switch_off(&slot.source).await;
-                RunOutcome::Failed(format!("the run task failed: {join}"))
+                match safety::switch_off(&slot.source).await {
+                    Ok(()) => RunOutcome::Failed(format!("the run task failed: {join}")),
+                    Err(e) => RunOutcome::OutputUnconfirmed(format!(
+                        "the run task failed ({join}) and the RF output could not be confirmed off ({e})"
+                    )),
+                }
             }
         };
-        let (state, cause) = match outcome {
-            RunOutcome::Completed => (RunState::Completed, None),
+        let outcome = match outcome {
+            RunOutcome::Completed => self.check_results(run_id).await,
+            other => other,
+        };
+        let (state, cause, resumable) = match outcome {
+            RunOutcome::Completed => (RunState::Completed, None, false),
             RunOutcome::Cancelled if self.inner.shutdown.is_cancelled() => (
                 RunState::Interrupted,
                 Some("the daemon shut down; resume the run to finish it".into()),
+                false,
             ),
-            RunOutcome::Cancelled => (RunState::Cancelled, Some("cancelled".into())),
-            RunOutcome::Failed(cause) => (RunState::Failed, Some(cause)),
+            RunOutcome::Cancelled => (RunState::Cancelled, Some("cancelled".into()), false),
+            RunOutcome::Failed(cause) => (RunState::Failed, Some(cause), false),
+            RunOutcome::FailedResumable(cause) => (RunState::Failed, Some(cause), true),
+            RunOutcome::OutputUnconfirmed(cause) => {
+                // Flag the bench first: the keeper starts at once, then the run is recorded.
+                slot.safety
+                    .output_unconfirmed(slot.source.clone(), cause.clone())
+                    .await;
+                (RunState::Failed, Some(cause), true)
+            }
         };
         tracing::info!(
             run_id,
             state = state.as_str(),
             cause = cause.as_deref().unwrap_or(""),
+            resumable,
             "run ended"
         );
-        finish(state, cause).await;
+        finish(state, cause, resumable).await;
+    }
+
+    /// A run that measured everything is `completed` only with at least one V_pi; otherwise it
+    /// failed (its points stay for a look).
+    async fn check_results(&self, run_id: i64) -> RunOutcome {
+        match self.inner.store.frequency_results(run_id).await {
+            Ok(results) if !results.is_empty() => RunOutcome::Completed,
+            Ok(_) => RunOutcome::Failed(
+                "every point was measured but no frequency gave a V_pi (too few points with a modulation index); look at the points and resubmit with more levels".into(),
+            ),
+            Err(e) => RunOutcome::Failed(format!(
+                "could not read the V_pi results back to close the run: {e}"
+            )),
+        }
+    }
+
+    /// An operator's acknowledgement of a bench's safety fault (see `rf_safety`): the bench takes
+    /// runs again. Refused while the output is still unconfirmed.
+    pub async fn acknowledge(&self, bench: &str, by: &str, note: &str) -> Result<(), EngineError> {
+        let slot = self
+            .inner
+            .benches
+            .get(bench)
+            .ok_or_else(|| EngineError::BenchNotFound(bench.to_string()))?;
+        slot.safety.acknowledge(by, note).await?;
+        Ok(())
     }
 }
 
@@ -728,16 +816,12 @@ fn drive_chain(
 
 impl BenchSlot {
     fn status(&self) -> BenchStatus {
-        let (source_identity, analyzer_identity) = self
-            .identities
-            .lock()
-            .map(|g| g.clone())
-            .unwrap_or((None, None));
-        let (active, queued) = self
-            .queue
-            .lock()
-            .map(|q| (q.active, q.queued.iter().copied().collect()))
-            .unwrap_or((None, Vec::new()));
+        let (source_identity, analyzer_identity) = lock(&self.identities).clone();
+        let (active, queued) = {
+            let q = lock(&self.queue);
+            (q.active, q.queued.iter().copied().collect())
+        };
+        let safety_fault = self.safety.current();
         BenchStatus {
             name: self.name.clone(),
             source_resource: self.source_resource.clone(),
@@ -746,6 +830,11 @@ impl BenchSlot {
             analyzer_identity,
             active_run_id: active,
             queued_run_ids: queued,
+            safety_state: safety_fault
+                .as_ref()
+                .map_or("clear", |f| f.fault.as_str())
+                .to_string(),
+            safety_fault,
         }
     }
 
@@ -769,8 +858,31 @@ impl BenchSlot {
                 }
             }
         }
-        if let Ok(mut ids) = self.identities.lock() {
-            *ids = (source.ok(), analyzer.ok());
+        *lock(&self.identities) = (source.ok(), analyzer.ok());
+    }
+
+    /// After the start-up switch-off (`off`: its result, `None` when it was not tried): a bench
+    /// whose output could not be confirmed off is flagged and its keeper started; a bench that
+    /// was stored as unconfirmed and is now off waits for an acknowledgement.
+    async fn settle_safety_at_start(&self, off: Option<Result<(), String>>) {
+        match (off, self.safety.current()) {
+            (Some(Err(e)), _) => {
+                self.safety
+                    .output_unconfirmed(
+                        self.source.clone(),
+                        format!("the start-up switch-off could not confirm the output off: {e}"),
+                    )
+                    .await
+            }
+            (Some(Ok(())), Some(f)) if f.fault == BenchFault::OutputUnconfirmed => {
+                self.safety.confirmed_off(f.cause, f.since_unix_ms).await
+            }
+            (Some(Ok(())), Some(f)) => tracing::warn!(
+                bench = %self.name,
+                cause = %f.cause,
+                "the bench still waits for an operator's acknowledgement of a safety fault; no run starts on it until then"
+            ),
+            _ => {}
         }
     }
 }

@@ -40,7 +40,14 @@ pub type SharedAnalyzer = Arc<Mutex<Box<dyn SpectrumAnalyzer>>>;
 pub enum RunOutcome {
     Completed,
     Cancelled,
+    /// Stopped for good: a limit, an instrument's refusal, the analysis, the store.
     Failed(String),
+    /// Stopped by a link or instrument liveness fault with the stored points intact: the run may
+    /// be resumed once the link is back. RF was confirmed off.
+    FailedResumable(String),
+    /// The run stopped and the RF output could not be confirmed off: the bench must be flagged
+    /// and the keeper started (`engine::rf_safety`).
+    OutputUnconfirmed(String),
 }
 
 /// Everything one run needs.
@@ -102,6 +109,9 @@ async fn run_inner(ctx: RunContext) -> RunOutcome {
         }
         (Err(Stop::Cancelled), Ok(())) => RunOutcome::Cancelled,
         (Err(Stop::Failed(cause)), Ok(())) => RunOutcome::Failed(cause),
+        (Err(Stop::LinkFault(cause)), Ok(())) => RunOutcome::FailedResumable(format!(
+            "{cause}; the points so far are kept: resume the run once the instrument answers again"
+        )),
         (Err(Stop::PipelineEnded), Ok(())) => {
             RunOutcome::Failed("the analysis task stopped early".into())
         }
@@ -109,11 +119,11 @@ async fn run_inner(ctx: RunContext) -> RunOutcome {
             let before = match r {
                 Ok(()) => String::new(),
                 Err(Stop::Cancelled) => "after cancel: ".into(),
-                Err(Stop::Failed(c)) => format!("{c}; then "),
+                Err(Stop::Failed(c)) | Err(Stop::LinkFault(c)) => format!("{c}; then "),
                 Err(Stop::PipelineEnded) => "after the analysis stopped: ".into(),
             };
-            RunOutcome::Failed(format!(
-                "{before}the RF output could not be confirmed off ({e}); switch it off by hand"
+            RunOutcome::OutputUnconfirmed(format!(
+                "{before}the RF output could not be confirmed off ({e}); the bench is held while the daemon keeps trying to switch it off"
             ))
         }
     }
@@ -171,13 +181,19 @@ async fn publish_response(ctx: &RunContext) {
 enum Stop {
     Cancelled,
     Failed(String),
+    /// A link or liveness fault of an instrument (see [`InstrumentError::is_link_fault`]).
+    LinkFault(String),
     /// The analysis-and-storage task ended early; its own error is the cause.
     PipelineEnded,
 }
 
 impl From<InstrumentError> for Stop {
     fn from(e: InstrumentError) -> Stop {
-        Stop::Failed(format!("instrument error: {e}"))
+        if e.is_link_fault() {
+            Stop::LinkFault(format!("instrument link fault: {e}"))
+        } else {
+            Stop::Failed(format!("instrument error: {e}"))
+        }
     }
 }
 
@@ -217,7 +233,7 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
             break 'frequencies;
         }
         if let Err(e) = off {
-            result = Err(Stop::Failed(format!(
+            result = Err(Stop::LinkFault(format!(
                 "the RF output could not be confirmed off after {:.6} GHz: {e}",
                 step.frequency.ghz()
             )));
@@ -316,7 +332,7 @@ async fn measure_frequency(
         {
             settings.center = analyzer.set_center(*carrier).await?;
         }
-        let trace = acquire::measure(analyzer.as_mut(), plan.averages()).await?;
+        let trace = measure_with_rf_watchdog(ctx, analyzer.as_mut(), caps).await?;
         drop(analyzer);
         if plan.request().carrier_tracking {
             // The strongest line may be a sideband, so track by the comb's centre of symmetry:
@@ -339,6 +355,55 @@ async fn measure_frequency(
         }
     }
     Ok(())
+}
+
+/// The least time a sweep with RF on may take before the output is switched off.
+pub const MIN_SWEEP_OVERRUN_MARGIN: std::time::Duration = std::time::Duration::from_secs(5);
+
+/// How long the analyzer may take for a point's sweeps (and their fetch) while the RF output is
+/// on: twice the analyzer's typical sweep time for the averages asked for, and at least
+/// [`MIN_SWEEP_OVERRUN_MARGIN`].
+pub fn sweep_overrun_margin(
+    caps: &halfwave_drivers::AnalyzerCapabilities,
+    averages: u32,
+) -> std::time::Duration {
+    let expected_s = caps.typical_sweep_time.0.max(0.0) * f64::from(averages.max(1));
+    let margin_s = (2.0 * expected_s).min(24.0 * 3600.0);
+    MIN_SWEEP_OVERRUN_MARGIN.max(std::time::Duration::from_secs_f64(margin_s))
+}
+
+/// A point's sweep with the RF output on, watched: when the analyzer overruns
+/// [`sweep_overrun_margin`] (hung, silent, or far slower than it said), the output is switched off
+/// first, then the sweep is abandoned and the run stops with a resumable cause. A hung analyzer
+/// must not hold RF on the modulator.
+async fn measure_with_rf_watchdog(
+    ctx: &RunContext,
+    analyzer: &mut dyn SpectrumAnalyzer,
+    caps: &halfwave_drivers::AnalyzerCapabilities,
+) -> Result<Trace, Stop> {
+    let margin = sweep_overrun_margin(caps, ctx.plan.averages());
+    let measured = acquire::measure(&mut *analyzer, ctx.plan.averages());
+    if let Ok(result) = tokio::time::timeout(margin, measured).await {
+        return result.map_err(Stop::from);
+    }
+    tracing::error!(
+        margin_s = margin.as_secs_f64(),
+        analyzer = analyzer.resource(),
+        "the analyzer overran its sweep with RF on; switching the output off"
+    );
+    let off = super::safety::switch_off(&ctx.source).await;
+    analyzer.abandon_operation();
+    let what = format!(
+        "the analyzer did not finish the sweep within {:.1} s (twice its typical sweep time, at least {} s)",
+        margin.as_secs_f64(),
+        MIN_SWEEP_OVERRUN_MARGIN.as_secs()
+    );
+    Err(match off {
+        Ok(()) => Stop::LinkFault(format!("{what}; the RF output was switched off first")),
+        Err(e) => Stop::LinkFault(format!(
+            "{what}; switching the RF output off failed too ({e})"
+        )),
+    })
 }
 
 /// The +1/-1 asymmetry in dB, when both first-order lines were measured.

@@ -15,29 +15,47 @@ use tokio::sync::Mutex;
 /// A source shared between the run that drives it and the interlocks that may switch it off.
 pub type SharedSource = Arc<Mutex<Box<dyn RfSource>>>;
 
-/// How many times a safe-off is tried before the failure is reported.
-const SAFE_OFF_ATTEMPTS: usize = 3;
+/// How long a stop path spends on switching the output off before it gives up and hands the
+/// bench to the keeper (`engine::rf_safety`), which goes on trying for as long as the daemon runs.
+pub const SWITCH_OFF_BUDGET: std::time::Duration = std::time::Duration::from_millis(1500);
 
-/// Switches a source's output off, retrying (the driver reconnects between attempts), and
-/// returns the last error if every attempt failed.
+/// Switches a source's output off and confirms it, retrying (the driver reconnects between
+/// attempts) within [`SWITCH_OFF_BUDGET`]; returns the last error if it could not be confirmed.
+/// The caller then flags the bench (`BenchSafety::output_unconfirmed`).
 pub async fn switch_off(source: &SharedSource) -> Result<(), InstrumentError> {
+    let deadline = tokio::time::Instant::now() + SWITCH_OFF_BUDGET;
     let mut last = None;
-    for attempt in 1..=SAFE_OFF_ATTEMPTS {
-        let mut src = source.lock().await;
-        match src.safe_off().await {
-            Ok(()) => {
-                tracing::debug!(resource = src.resource(), "RF output confirmed off");
+    let mut attempt = 0u64;
+    loop {
+        attempt += 1;
+        let tried = tokio::time::timeout_at(deadline, async {
+            let mut src = source.lock().await;
+            let result = src.safe_off().await;
+            (src.resource().to_string(), result)
+        })
+        .await;
+        match tried {
+            Ok((resource, Ok(()))) => {
+                tracing::debug!(resource, "RF output confirmed off");
                 return Ok(());
             }
-            Err(e) => {
-                tracing::warn!(resource = src.resource(), attempt, error = %e, "RF safe-off failed; retrying");
+            Ok((resource, Err(e))) => {
+                tracing::warn!(resource, attempt, error = %e, "RF safe-off failed; retrying");
                 last = Some(e);
             }
+            Err(_) => break,
         }
-        drop(src);
-        tokio::time::sleep(std::time::Duration::from_millis(100 * attempt as u64)).await;
+        let pause = std::time::Duration::from_millis(100 * attempt.min(5));
+        if tokio::time::Instant::now() + pause >= deadline {
+            break;
+        }
+        tokio::time::sleep(pause).await;
     }
-    Err(last.expect("at least one attempt was made"))
+    Err(last.unwrap_or_else(|| InstrumentError::Timeout {
+        resource: "the RF source".into(),
+        operation: "switching the output off and reading it back".into(),
+        after: SWITCH_OFF_BUDGET,
+    }))
 }
 
 /// Armed while a run may have RF on; switches the output off when released or dropped.

@@ -19,6 +19,7 @@
 
 pub mod api_reads;
 pub mod audit;
+pub mod bench_safety;
 pub mod calibrations;
 pub mod devices;
 pub mod error;
@@ -29,6 +30,7 @@ pub mod runs;
 pub mod trace_codec;
 
 pub use api_reads::CompletedRunsFingerprint;
+pub use bench_safety::{BenchFault, BenchSafetyRecord};
 pub use error::StoreError;
 pub use records::*;
 pub use trace_codec::TraceCodecError;

@@ -200,6 +200,9 @@ pub struct RunRecord {
     pub finished_at_unix_ms: Option<i64>,
     /// Why the run ended as it did (failure, cancel or interruption), when known.
     pub cause: Option<String>,
+    /// A failed run whose points are intact and whose cause was a link or instrument fault: it
+    /// can be resumed like an interrupted one.
+    pub resumable: bool,
 }
 
 impl RunRecord {

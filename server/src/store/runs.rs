@@ -24,7 +24,7 @@ pub const INTERRUPTED_CAUSE: &str =
 /// Columns of a [`RunRecord`], from `runs r JOIN devices d`.
 const RUN_SELECT: &str = "SELECT r.id, r.plan_json, r.device_id, d.serial AS device_serial, \
      r.bench_name, r.chain_calibration_id, r.state, r.submitted_by, r.created_at_unix_ms, \
-     r.started_at_unix_ms, r.finished_at_unix_ms, r.cause \
+     r.started_at_unix_ms, r.finished_at_unix_ms, r.cause, r.resumable \
      FROM runs r JOIN devices d ON d.id = r.device_id";
 
 /// The states a run may be in to move to `to`.
@@ -130,6 +130,23 @@ impl Store {
         to: RunState,
         cause: Option<&str>,
     ) -> Result<RunRecord, StoreError> {
+        self.change_run_state(id, to, cause, false).await
+    }
+
+    /// Records a run as failed on a fault that left its points intact and its plan valid (a lost
+    /// instrument link, a hung instrument): it may be resumed like an interrupted run.
+    pub async fn fail_run_resumably(&self, id: i64, cause: &str) -> Result<RunRecord, StoreError> {
+        self.change_run_state(id, RunState::Failed, Some(cause), true)
+            .await
+    }
+
+    async fn change_run_state(
+        &self,
+        id: i64,
+        to: RunState,
+        cause: Option<&str>,
+        resumable: bool,
+    ) -> Result<RunRecord, StoreError> {
         let now = now_unix_ms();
         let sources = allowed_sources(to);
         let mut tx = self
@@ -149,16 +166,28 @@ impl Store {
         if to.is_final() {
             update.push(", finished_at_unix_ms = ");
             update.push_bind(now);
+        } else {
+            update.push(", finished_at_unix_ms = NULL");
         }
+        update.push(", resumable = ");
+        update.push_bind(resumable);
         update.push(" WHERE id = ");
         update.push_bind(id);
-        update.push(" AND state IN (");
+        update.push(" AND (state IN (");
         let mut list = update.separated(", ");
         for source in sources {
             list.push_bind(source.as_str());
         }
         if sources.is_empty() {
             list.push("NULL");
+        }
+        update.push(")");
+        if matches!(to, RunState::Running | RunState::Cancelled) {
+            // A failure that left the points intact may be resumed (see `fail_run_resumably`),
+            // and a resumption still queued may be cancelled.
+            update.push(" OR (state = ");
+            update.push_bind(RunState::Failed.as_str());
+            update.push(" AND resumable)");
         }
         update.push(")");
         let changed = update
@@ -176,7 +205,8 @@ impl Store {
                 to,
             });
         }
-        let detail = serde_json::json!({ "state": to.as_str(), "cause": cause });
+        let detail =
+            serde_json::json!({ "state": to.as_str(), "cause": cause, "resumable": resumable });
         audit_in(
             &mut tx,
             now,

@@ -55,7 +55,8 @@ pub async fn events(
                 };
                 let data = match received {
                     Ok(event) => {
-                        if run_filter.is_some_and(|id| id != event.run_id()) {
+                        let other_run = event.run_id().is_some_and(|run| Some(run) != run_filter);
+                        if run_filter.is_some() && other_run {
                             continue;
                         }
                         event_json(&event)
@@ -78,7 +79,9 @@ fn event_json(event: &ProgressEvent) -> String {
     serde_json::to_string(event).unwrap_or_else(|e| {
         format!(
             "{{\"event\":\"encoding_error\",\"run_id\":{},\"detail\":\"{e}\"}}",
-            event.run_id()
+            event
+                .run_id()
+                .map_or("null".to_string(), |id| id.to_string())
         )
     })
 }

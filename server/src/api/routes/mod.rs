@@ -70,6 +70,11 @@ pub fn route_table() -> Vec<RouteEntry> {
             post(run_control::resume_run),
         ),
         entry(Method::GET, "/benches", get(benches::list_benches)),
+        entry(
+            Method::POST,
+            "/benches/{bench}/acknowledge",
+            post(benches::acknowledge_bench),
+        ),
         RouteEntry {
             method: Method::GET,
             path: "/events",

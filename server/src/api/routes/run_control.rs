@@ -81,7 +81,8 @@ pub async fn cancel_run(
     Ok(StatusCode::ACCEPTED)
 }
 
-/// Resumes an interrupted, failed or cancelled run where it stopped (measured points are kept).
+/// Resumes an interrupted run, or a failed run whose cause was a link fault (`resumable`), where
+/// it stopped (measured points are kept; the plan is proven again first).
 #[utoipa::path(post, path = "/api/v1/runs/{run_id}/resume", tag = "runs", security(("bearer" = [])),
     params(("run_id" = i64, Path, description = "Run id")),
     responses((status = 202, description = "Queued again"), (status = 401, body = Problem),

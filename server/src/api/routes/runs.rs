@@ -34,6 +34,10 @@ pub struct RunSummary {
     pub finished_at_unix_ms: Option<i64>,
     /// Why the run ended as it did, when it did not complete.
     pub cause: Option<String>,
+    /// True for a failed run whose cause was a link or instrument fault with its points intact:
+    /// it can be resumed like an interrupted run.
+    #[serde(default)]
+    pub resumable: bool,
 }
 
 impl From<&RunRecord> for RunSummary {
@@ -48,6 +52,7 @@ impl From<&RunRecord> for RunSummary {
             started_at_unix_ms: run.started_at_unix_ms,
             finished_at_unix_ms: run.finished_at_unix_ms,
             cause: run.cause.clone(),
+            resumable: run.resumable,
         }
     }
 }
@@ -377,7 +382,8 @@ pub async fn get_run(
         Bytes::from(serde_json::to_vec(&view).map_err(|e| {
             Problem::internal(format!("the run could not be written as JSON: {e}"))
         })?);
-    if run.state.is_final() {
+    // A resumable failure can still change; every other final run cannot.
+    if run.state.is_final() && !run.resumable {
         state.read_cache().keep_final_run(run_id, view_json.clone());
     }
     Ok(json_bytes(view_json))

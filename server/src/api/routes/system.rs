@@ -1,9 +1,10 @@
 //! Health, Prometheus metrics and the OpenAPI document.
 //!
 //! Health is the one call that needs no token (load balancers and systemd probes have none); it
-//! answers only whether the daemon and its database respond. Metrics and the OpenAPI document are
+//! answers whether the daemon and its database respond, and turns `degraded` (503) while a bench
+//! has an RF safety fault, naming the bench, so an unattended daemon's monitoring sees it. Metrics and the OpenAPI document are
 //! readable by any token. Metrics: uptime, runs by state, each bench's queue, points committed,
-//! the active runs' progress ([`crate::api::run_gauges`]) and the HTTP counters and latency
+//! each bench's RF safety gauges, the active runs' progress ([`crate::api::run_gauges`]) and the HTTP counters and latency
 //! histograms ([`crate::api::metrics`]).
 
 use crate::api::auth::Viewer;
@@ -13,6 +14,7 @@ use crate::api::run_gauges;
 use crate::api::AppState;
 use axum::extract::State;
 use axum::http::header::CONTENT_TYPE;
+use axum::http::StatusCode;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
 use serde::{Deserialize, Serialize};
@@ -21,26 +23,65 @@ use utoipa::{OpenApi, ToSchema};
 /// The daemon's health.
 #[derive(Debug, Serialize, Deserialize, ToSchema)]
 pub struct Health {
-    /// `ok` when the database answers.
+    /// `ok` when the database answers and no bench has an RF safety fault; `degraded` (sent
+    /// with status 503) while a bench's RF output is unconfirmed or waits for an acknowledgement.
     pub status: String,
     pub version: String,
     pub uptime_s: f64,
+    /// The benches that need an operator, with what is wrong (empty when `ok`).
+    #[serde(default)]
+    pub attention: Vec<BenchAttention>,
 }
 
-/// Whether the daemon and its database respond. No token needed.
+/// A bench whose RF safety state needs an operator.
+#[derive(Debug, Serialize, Deserialize, ToSchema)]
+pub struct BenchAttention {
+    pub bench: String,
+    /// `output_unconfirmed` or `awaiting_acknowledgement`.
+    pub safety_state: String,
+    pub cause: String,
+}
+
+/// Whether the daemon and its database respond, and whether a bench needs an operator. No token
+/// needed, so monitoring can poll it.
 #[utoipa::path(get, path = "/api/v1/health", tag = "system",
-    responses((status = 200, description = "The daemon and its database respond", body = Health),
+    responses((status = 200, description = "The daemon and its database respond; every bench is clear", body = Health),
+              (status = 503, description = "Degraded: a bench's RF output is unconfirmed or waits for an acknowledgement (see `attention`)", body = Health),
               (status = 500, description = "The database does not answer", body = Problem)))]
-pub async fn health(State(state): State<AppState>) -> Result<Json<Health>, Problem> {
+pub async fn health(State(state): State<AppState>) -> Result<(StatusCode, Json<Health>), Problem> {
     sqlx::query("SELECT 1")
         .execute(state.pool())
         .await
         .map_err(|e| Problem::internal(format!("the database does not answer: {e}")))?;
-    Ok(Json(Health {
-        status: "ok".to_string(),
-        version: env!("CARGO_PKG_VERSION").to_string(),
-        uptime_s: state.uptime_s(),
-    }))
+    let attention: Vec<BenchAttention> = match state.engine() {
+        Ok(engine) => engine
+            .benches()
+            .into_iter()
+            .filter_map(|b| {
+                let fault = b.safety_fault?;
+                Some(BenchAttention {
+                    bench: b.name,
+                    safety_state: b.safety_state,
+                    cause: fault.cause,
+                })
+            })
+            .collect(),
+        Err(_) => Vec::new(),
+    };
+    let (code, status) = if attention.is_empty() {
+        (StatusCode::OK, "ok")
+    } else {
+        (StatusCode::SERVICE_UNAVAILABLE, "degraded")
+    };
+    Ok((
+        code,
+        Json(Health {
+            status: status.to_string(),
+            version: env!("CARGO_PKG_VERSION").to_string(),
+            uptime_s: state.uptime_s(),
+            attention,
+        }),
+    ))
 }
 
 /// Request counters, latency histograms and run gauges in the Prometheus text format.

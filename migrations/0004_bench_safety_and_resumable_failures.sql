@@ -1,0 +1,15 @@
+-- The RF safety state of each bench, kept across restarts: a bench whose source output could not
+-- be confirmed off, or that was confirmed off after such a fault and waits for an operator's
+-- acknowledgement, must still be flagged (and hold its queue) after the daemon restarts. A bench
+-- without a row is clear. Portable SQL (SQLite and PostgreSQL).
+CREATE TABLE bench_safety (
+    bench_name TEXT PRIMARY KEY,
+    state TEXT NOT NULL CHECK (state IN ('output_unconfirmed', 'awaiting_acknowledgement')),
+    cause TEXT NOT NULL,
+    since_unix_ms BIGINT NOT NULL,
+    confirmed_off_at_unix_ms BIGINT,
+    updated_at_unix_ms BIGINT NOT NULL
+);
+
+-- A run that failed on a link fault with its points intact may be resumed like an interrupted one.
+ALTER TABLE runs ADD COLUMN resumable BOOLEAN NOT NULL DEFAULT FALSE;

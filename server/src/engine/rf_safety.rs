@@ -1,0 +1,248 @@
+//! A bench's RF safety state: clear, output unconfirmed, or awaiting an operator's
+//! acknowledgement; and the keeper task that switches an unconfirmed output off.
+//!
+//! When a stop path cannot read the source's output back as off (the link is down, the source
+//! does not answer), the bench becomes **output unconfirmed**: the state is stored, logged at
+//! ERROR (again every [`UNCONFIRMED_LOG_INTERVAL`]), shown by `/benches`, `/health`, `/metrics`
+//! and the dashboard, and a keeper task tries again and again, for as long as the daemon runs,
+//! to switch the output off on a fresh connection ([`RfSource::confirm_off_fresh`], each attempt
+//! within [`ATTEMPT_TIMEOUT`], [`BACKOFF_START`] doubling to [`BACKOFF_MAX`] between them, so the
+//! output goes off within about two seconds of the link's return). Only a read-back of "off" ends
+//! that state, and then the bench **awaits acknowledgement**: an operator looks at the bench and
+//! acknowledges (API, CLI or dashboard; audited) before any run starts on it again. The bench's
+//! worker waits for [`BenchSafety::wait_clear`] before it takes a run, so queued runs keep their
+//! place meanwhile.
+//!
+//! The state lives here, in the engine's bench slot, and every view reads it from here; the store
+//! keeps a copy so a restart keeps the bench flagged (see `store::bench_safety`).
+
+use super::events::ProgressEvent;
+use super::safety::SharedSource;
+use crate::store::{now_unix_ms, BenchFault, BenchSafetyRecord, Store, StoreError};
+use std::sync::Arc;
+use std::time::Duration;
+use tokio::sync::{broadcast, watch};
+use tokio_util::sync::CancellationToken;
+
+/// Time limit of one keeper attempt (connect, output off, `*OPC?`, read-back).
+pub const ATTEMPT_TIMEOUT: Duration = Duration::from_millis(1000);
+/// First pause between keeper attempts.
+pub const BACKOFF_START: Duration = Duration::from_millis(100);
+/// Longest pause between keeper attempts.
+pub const BACKOFF_MAX: Duration = Duration::from_millis(400);
+/// How often the keeper repeats its ERROR log while the output stays unconfirmed.
+pub const UNCONFIRMED_LOG_INTERVAL: Duration = Duration::from_secs(60);
+
+/// Why an acknowledgement was refused.
+#[derive(Debug, thiserror::Error)]
+pub enum AcknowledgeError {
+    #[error("bench {bench}: the RF output is not confirmed off yet ({cause}); the daemon keeps trying to switch it off. Check the source and its link; acknowledge once the bench shows awaiting_acknowledgement")]
+    StillUnconfirmed { bench: String, cause: String },
+    #[error("bench {0} has no safety fault to acknowledge")]
+    NothingToAcknowledge(String),
+    #[error(transparent)]
+    Store(#[from] StoreError),
+}
+
+/// The safety state of one bench (see the module documentation).
+pub struct BenchSafety {
+    bench: String,
+    store: Store,
+    events: broadcast::Sender<ProgressEvent>,
+    state: watch::Sender<Option<BenchSafetyRecord>>,
+    /// Cancelled when the daemon shuts down: the keeper stops (the stored state stays).
+    shutdown: CancellationToken,
+    keeper_running: std::sync::atomic::AtomicBool,
+}
+
+impl BenchSafety {
+    /// The safety state of `bench`, starting from what the store kept.
+    pub fn new(
+        bench: String,
+        store: Store,
+        events: broadcast::Sender<ProgressEvent>,
+        stored: Option<BenchSafetyRecord>,
+        shutdown: CancellationToken,
+    ) -> Arc<BenchSafety> {
+        Arc::new(BenchSafety {
+            bench,
+            store,
+            events,
+            state: watch::channel(stored).0,
+            shutdown,
+            keeper_running: std::sync::atomic::AtomicBool::new(false),
+        })
+    }
+
+    /// The current fault, `None` when the bench is clear.
+    pub fn current(&self) -> Option<BenchSafetyRecord> {
+        self.state.borrow().clone()
+    }
+
+    /// True when no fault holds the bench.
+    pub fn is_clear(&self) -> bool {
+        self.state.borrow().is_none()
+    }
+
+    /// Waits until the bench is clear (returns at once when it is).
+    pub async fn wait_clear(&self) {
+        let mut rx = self.state.subscribe();
+        let _ = rx.wait_for(Option::is_none).await;
+    }
+
+    /// The stop path could not confirm the output off: flag the bench, store and log it, and
+    /// start the keeper (once).
+    pub async fn output_unconfirmed(self: &Arc<Self>, source: SharedSource, cause: String) {
+        let since = match self.current() {
+            Some(r) if r.fault == BenchFault::OutputUnconfirmed => r.since_unix_ms,
+            _ => now_unix_ms(),
+        };
+        tracing::error!(
+            bench = %self.bench,
+            cause = %cause,
+            "RF OUTPUT NOT CONFIRMED OFF: the bench is held and the daemon keeps trying to switch it off; check the source and its link"
+        );
+        self.set(BenchSafetyRecord {
+            bench_name: self.bench.clone(),
+            fault: BenchFault::OutputUnconfirmed,
+            cause,
+            since_unix_ms: since,
+            confirmed_off_at_unix_ms: None,
+        })
+        .await;
+        self.start_keeper(source);
+    }
+
+    /// The output was read back off after a fault: hold the bench for an acknowledgement.
+    pub async fn confirmed_off(&self, cause: String, since_unix_ms: i64) {
+        tracing::warn!(
+            bench = %self.bench,
+            "RF output confirmed off after a safety fault; the bench holds its runs until an operator acknowledges (halfwave acknowledge {})",
+            self.bench
+        );
+        self.set(BenchSafetyRecord {
+            bench_name: self.bench.clone(),
+            fault: BenchFault::AwaitingAcknowledgement,
+            cause,
+            since_unix_ms,
+            confirmed_off_at_unix_ms: Some(now_unix_ms()),
+        })
+        .await;
+    }
+
+    /// An operator's acknowledgement: clears a bench whose output was confirmed off, with an
+    /// audit entry. Refused while the output is still unconfirmed.
+    pub async fn acknowledge(&self, by: &str, note: &str) -> Result<(), AcknowledgeError> {
+        match self.current() {
+            None => return Err(AcknowledgeError::NothingToAcknowledge(self.bench.clone())),
+            Some(r) if r.fault == BenchFault::OutputUnconfirmed => {
+                return Err(AcknowledgeError::StillUnconfirmed {
+                    bench: self.bench.clone(),
+                    cause: r.cause,
+                })
+            }
+            Some(_) => {}
+        }
+        if !self
+            .store
+            .acknowledge_bench_fault(&self.bench, by, note)
+            .await?
+        {
+            return Err(AcknowledgeError::NothingToAcknowledge(self.bench.clone()));
+        }
+        tracing::info!(bench = %self.bench, by, "safety fault acknowledged; the bench takes runs again");
+        self.state.send_replace(None);
+        let _ = self.events.send(ProgressEvent::BenchSafety {
+            bench: self.bench.clone(),
+            state: "clear".into(),
+            cause: None,
+        });
+        Ok(())
+    }
+
+    /// Whether the keeper task is trying to switch the output off right now.
+    pub fn keeper_running(&self) -> bool {
+        self.keeper_running
+            .load(std::sync::atomic::Ordering::SeqCst)
+    }
+
+    /// Stores and publishes a new fault state. A store failure is logged: the state in memory
+    /// still holds the bench, which is what safety needs.
+    async fn set(&self, record: BenchSafetyRecord) {
+        if let Err(e) = self.store.record_bench_fault(&record).await {
+            tracing::error!(bench = %self.bench, error = %e, "could not store the bench's safety state; it holds in memory until the daemon stops");
+        }
+        let _ = self.events.send(ProgressEvent::BenchSafety {
+            bench: self.bench.clone(),
+            state: record.fault.as_str().into(),
+            cause: Some(record.cause.clone()),
+        });
+        self.state.send_replace(Some(record));
+    }
+
+    fn start_keeper(self: &Arc<Self>, source: SharedSource) {
+        use std::sync::atomic::Ordering;
+        if self.keeper_running.swap(true, Ordering::SeqCst) {
+            return;
+        }
+        let me = self.clone();
+        tokio::spawn(async move {
+            me.keep_switching_off(source).await;
+            me.keeper_running.store(false, Ordering::SeqCst);
+        });
+    }
+
+    async fn keep_switching_off(&self, source: SharedSource) {
+        let started = tokio::time::Instant::now();
+        let mut next_log = started + UNCONFIRMED_LOG_INTERVAL;
+        let mut backoff = BACKOFF_START;
+        let mut attempts: u64 = 0;
+        loop {
+            if self.shutdown.is_cancelled() {
+                tracing::error!(bench = %self.bench, "the daemon stops with the RF output still unconfirmed; the next start switches it off, or switch it off by hand");
+                return;
+            }
+            attempts += 1;
+            let attempt = async {
+                let mut src = source.lock().await;
+                src.confirm_off_fresh().await
+            };
+            let outcome = tokio::select! {
+                r = tokio::time::timeout(ATTEMPT_TIMEOUT, attempt) => r,
+                _ = self.shutdown.cancelled() => continue,
+            };
+            match outcome {
+                Ok(Ok(())) => {
+                    let (cause, since) = self
+                        .current()
+                        .map(|r| (r.cause, r.since_unix_ms))
+                        .unwrap_or_else(|| ("RF output unconfirmed".into(), now_unix_ms()));
+                    tracing::warn!(bench = %self.bench, attempts, after_s = started.elapsed().as_secs_f64(), "the keeper switched the RF output off and read it back off");
+                    self.confirmed_off(cause, since).await;
+                    return;
+                }
+                Ok(Err(e)) => {
+                    tracing::debug!(bench = %self.bench, attempts, error = %e, "RF output still unconfirmed")
+                }
+                Err(_) => {
+                    tracing::debug!(bench = %self.bench, attempts, "RF off attempt timed out")
+                }
+            }
+            let now = tokio::time::Instant::now();
+            if now >= next_log {
+                tracing::error!(
+                    bench = %self.bench,
+                    unconfirmed_for_s = (now - started).as_secs(),
+                    attempts,
+                    "RF OUTPUT STILL NOT CONFIRMED OFF; the daemon keeps trying. Check the source and its link, or switch it off by hand"
+                );
+                next_log = now + UNCONFIRMED_LOG_INTERVAL;
+            }
+            tokio::select! {
+                _ = tokio::time::sleep(backoff) => {}
+                _ = self.shutdown.cancelled() => {}
+            }
+            backoff = (backoff * 2).min(BACKOFF_MAX);
+        }
+    }
+}

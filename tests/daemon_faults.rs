@@ -1,0 +1,408 @@
+//! The RF interlocks of the real `halfwave serve` process under link and instrument faults, on a
+//! bench reached over SCPI/TCP (the simulator's server runs in this test and reports what the
+//! source's output really does; its fault injection plays the faults):
+//! - the source's link reset for 3 s with the output on: the output reads back off within 2 s of
+//!   the link's return; until then the bench is flagged `output_unconfirmed` (benches, health,
+//!   metrics), then held `awaiting_acknowledgement` with a run queued behind it until an operator
+//!   acknowledges with the CLI (audited); the failed run is resumable and resumes to completion
+//!   with every point measured once;
+//! - the source silent for 45 s: off within 2 s of its return;
+//! - the analyzer silent mid-sweep: the output goes off within the sweep-overrun margin, the run
+//!   fails resumably without holding the bench, and resumes to completion;
+//! - a second `serve` on the same data store: exits non-zero naming the first, which finishes its
+//!   run undisturbed.
+//!
+//! Common practice behind the checks: an instrument keeps its output as it was when its remote link
+//! drops, so the controller must switch it off as soon as it can talk to it again, and must not
+//! leave RF on a modulator while it waits for another instrument.
+
+mod daemon_support;
+mod engine_support;
+
+use daemon_support::{small_plan, stored_points, Bench};
+use halfwave::store::Store;
+use halfwave_drivers::sim::Role;
+use serde_json::{json, Value};
+use std::collections::HashSet;
+use std::time::{Duration, Instant};
+
+/// Levels of `small_plan`.
+const SMALL_PLAN_POINTS: usize = 9;
+
+/// Polls until the simulated output is on with at least `points` committed and the ramp still
+/// early (so the next source command comes with the output on), up to 60 s.
+async fn wait_for_rf_on_early_in_the_ramp(bench: &Bench, run_id: i64, token: &str, points: u64) {
+    let deadline = Instant::now() + Duration::from_secs(60);
+    loop {
+        let run = bench.run(run_id, token).await;
+        let measured = run["measured_points"].as_u64().unwrap_or(0);
+        if measured >= points && measured <= points + 2 && bench.server.bench().rf_output_on() {
+            return;
+        }
+        assert!(
+            Instant::now() < deadline,
+            "no point with RF on early in the ramp: {run}"
+        );
+        tokio::time::sleep(Duration::from_millis(5)).await;
+    }
+}
+
+/// Polls the simulated output until it is off; returns how long that took (panics after `limit`).
+async fn time_until_rf_off(bench: &Bench, limit: Duration, what: &str) -> Duration {
+    let started = Instant::now();
+    while bench.server.bench().rf_output_on() {
+        assert!(
+            started.elapsed() < limit,
+            "{what}: RF still on after {limit:?}"
+        );
+        tokio::time::sleep(Duration::from_millis(5)).await;
+    }
+    started.elapsed()
+}
+
+/// Polls `/benches` until bench "sim" is in `state` (up to `limit`).
+async fn wait_for_safety_state(bench: &Bench, token: &str, state: &str, limit: Duration) -> Value {
+    let deadline = Instant::now() + limit;
+    loop {
+        let status = bench.bench_status(token).await;
+        if status["safety_state"] == state {
+            return status;
+        }
+        assert!(
+            Instant::now() < deadline,
+            "bench never became {state}: {status}"
+        );
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+}
+
+fn is_final(run: &Value) -> bool {
+    matches!(
+        run["state"].as_str(),
+        Some("completed" | "failed" | "cancelled")
+    )
+}
+
+/// Final and not waiting to be resumed (a resumed run stays `failed`, resumable, until its
+/// bench's worker takes it up again).
+fn is_final_after_resume(run: &Value) -> bool {
+    is_final(run) && run["resumable"] != true
+}
+
+async fn metric(bench: &Bench, token: &str, name: &str) -> Option<f64> {
+    let text = bench
+        .client
+        .get(bench.url("/api/v1/metrics"))
+        .bearer_auth(token)
+        .send()
+        .await
+        .unwrap()
+        .text()
+        .await
+        .unwrap();
+    let prefix = format!("{name}{{bench=\"sim\"}} ");
+    text.lines()
+        .find_map(|l| l.strip_prefix(&prefix))
+        .and_then(|v| v.trim().parse().ok())
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn source_link_reset_for_3_s_output_off_within_2_s_of_return_and_bench_held_until_acknowledged(
+) {
+    let bench = Bench::new(41).await;
+    let token = bench.operator_token().await;
+    let _daemon = bench.serve("daemon.log").await;
+    let run_id = bench.submit_plan(&token, &small_plan()).await;
+    wait_for_rf_on_early_in_the_ramp(&bench, run_id, &token, 2).await;
+
+    let faults = bench.server.faults(Role::RfSource);
+    faults.link_down();
+    let outage = Instant::now();
+    // During the outage the daemon cannot switch the output off: it must say so.
+    let flagged =
+        wait_for_safety_state(&bench, &token, "output_unconfirmed", Duration::from_secs(3)).await;
+    assert!(
+        flagged["safety_fault"]["cause"]
+            .as_str()
+            .unwrap_or("")
+            .contains("could not be confirmed off"),
+        "{flagged}"
+    );
+    let (health_status, health) = bench.get("/api/v1/health", "").await;
+    assert_eq!(health_status, 503, "{health}");
+    assert_eq!(health["status"], "degraded");
+    assert_eq!(health["attention"][0]["bench"], "sim");
+    assert_eq!(
+        metric(&bench, &token, "halfwave_bench_rf_output_unconfirmed").await,
+        Some(1.0)
+    );
+    let remaining = Duration::from_secs(3).saturating_sub(outage.elapsed());
+    tokio::time::sleep(remaining).await;
+    assert!(
+        bench.server.bench().rf_output_on(),
+        "the fault was played with the output on (nothing can switch it off while the link is down)"
+    );
+    faults.link_up();
+    let off_after = time_until_rf_off(&bench, Duration::from_secs(2), "link back").await;
+    println!(
+        "source link reset for 3 s: output read back off {} ms after the link's return",
+        off_after.as_millis()
+    );
+
+    // Off, but held until an operator has looked.
+    let held = wait_for_safety_state(
+        &bench,
+        &token,
+        "awaiting_acknowledgement",
+        Duration::from_secs(2),
+    )
+    .await;
+    assert!(
+        held["safety_fault"]["confirmed_off_at_unix_ms"].is_i64(),
+        "{held}"
+    );
+    let run = bench
+        .wait_for(run_id, &token, Duration::from_secs(30), is_final)
+        .await;
+    assert_eq!(run["state"], "failed", "{run}");
+    assert_eq!(run["resumable"], true, "{run}");
+    let queued = bench.submit_plan(&token, &small_plan()).await;
+    tokio::time::sleep(Duration::from_millis(1500)).await;
+    let waiting = bench.run(queued, &token).await;
+    assert_eq!(
+        waiting["state"], "queued",
+        "no run starts on a held bench: {waiting}"
+    );
+    assert_eq!(bench.get("/api/v1/health", "").await.0, 503);
+    assert_eq!(
+        metric(&bench, &token, "halfwave_bench_awaiting_acknowledgement").await,
+        Some(1.0)
+    );
+
+    // The operator acknowledges with the CLI.
+    let out = tokio::process::Command::new(env!("CARGO_BIN_EXE_halfwave"))
+        .args([
+            "acknowledge",
+            "sim",
+            "--note",
+            "source checked, cable reseated",
+        ])
+        .args(["--url", &bench.url("")])
+        .args(["--token", &token])
+        .output()
+        .await
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let (health_status, health) = bench.get("/api/v1/health", "").await;
+    assert_eq!(health_status, 200, "{health}");
+    assert_eq!(health["status"], "ok");
+    let second = bench
+        .wait_for(queued, &token, Duration::from_secs(60), is_final)
+        .await;
+    assert_eq!(second["state"], "completed", "{second}");
+
+    // The failed run resumes where it stopped and measures every point once.
+    let resumed = bench
+        .post(&format!("/api/v1/runs/{run_id}/resume"), &token, &json!({}))
+        .await;
+    assert_eq!(resumed.status(), 202);
+    let run = bench
+        .wait_for(
+            run_id,
+            &token,
+            Duration::from_secs(60),
+            is_final_after_resume,
+        )
+        .await;
+    assert_eq!(
+        run["state"],
+        "completed",
+        "{run}: {}",
+        bench.log("daemon.log")
+    );
+    let points = stored_points(&bench.database(), run_id).await;
+    let distinct: HashSet<_> = points.iter().copied().collect();
+    assert_eq!(points.len(), SMALL_PLAN_POINTS);
+    assert_eq!(
+        distinct.len(),
+        SMALL_PLAN_POINTS,
+        "every point measured once"
+    );
+    assert!(!bench.server.bench().rf_output_on());
+
+    let store = Store::open(bench.database().to_str().unwrap())
+        .await
+        .unwrap();
+    let audit = store.audit_log(200, None).await.unwrap();
+    assert!(
+        audit.iter().any(|e| e.action == "bench.acknowledge"
+            && e.actor == "lab-b"
+            && e.detail.contains("cable reseated")),
+        "the acknowledgement is audited with the operator's name and note"
+    );
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn source_silent_for_45_s_output_off_within_2_s_of_its_return() {
+    let bench = Bench::new(42).await;
+    let token = bench.operator_token().await;
+    let _daemon = bench.serve("daemon.log").await;
+    let run_id = bench.submit_plan(&token, &small_plan()).await;
+    wait_for_rf_on_early_in_the_ramp(&bench, run_id, &token, 2).await;
+
+    let faults = bench.server.faults(Role::RfSource);
+    faults.stop_answering();
+    let silence = Instant::now();
+    wait_for_safety_state(
+        &bench,
+        &token,
+        "output_unconfirmed",
+        Duration::from_secs(44),
+    )
+    .await;
+    tokio::time::sleep(Duration::from_secs(45).saturating_sub(silence.elapsed())).await;
+    assert!(
+        bench.server.bench().rf_output_on(),
+        "silent: the output stayed on"
+    );
+    faults.resume();
+    let off_after =
+        time_until_rf_off(&bench, Duration::from_secs(2), "source answering again").await;
+    println!(
+        "source silent for 45 s: output read back off {} ms after it answered again",
+        off_after.as_millis()
+    );
+    wait_for_safety_state(
+        &bench,
+        &token,
+        "awaiting_acknowledgement",
+        Duration::from_secs(2),
+    )
+    .await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_silent_analyzer_cannot_hold_rf_on_past_the_sweep_overrun_margin() {
+    let bench = Bench::new(43).await;
+    let token = bench.operator_token().await;
+    let _daemon = bench.serve("daemon.log").await;
+    let run_id = bench.submit_plan(&token, &small_plan()).await;
+    wait_for_rf_on_early_in_the_ramp(&bench, run_id, &token, 2).await;
+
+    let faults = bench.server.faults(Role::Analyzer);
+    faults.stop_answering();
+    // The margin: twice the analyzer's typical sweep time (0.4 s in the built-in scenario), at
+    // least 5 s; plus the switch-off itself.
+    let margin = halfwave::engine::runner::MIN_SWEEP_OVERRUN_MARGIN;
+    let off_after = time_until_rf_off(
+        &bench,
+        margin + halfwave::engine::safety::SWITCH_OFF_BUDGET,
+        "analyzer silent",
+    )
+    .await;
+    println!(
+        "analyzer silent: output off {} ms after the analyzer stopped answering (margin {} s)",
+        off_after.as_millis(),
+        margin.as_secs()
+    );
+    let run = bench
+        .wait_for(run_id, &token, Duration::from_secs(30), is_final)
+        .await;
+    assert_eq!(run["state"], "failed", "{run}");
+    assert_eq!(run["resumable"], true, "{run}");
+    assert!(
+        run["cause"]
+            .as_str()
+            .unwrap_or("")
+            .contains("analyzer did not finish the sweep"),
+        "{run}"
+    );
+    // The output was confirmed off: the bench is not held.
+    assert_eq!(bench.bench_status(&token).await["safety_state"], "clear");
+
+    faults.resume();
+    let resumed = bench
+        .post(&format!("/api/v1/runs/{run_id}/resume"), &token, &json!({}))
+        .await;
+    assert_eq!(resumed.status(), 202);
+    let run = bench
+        .wait_for(
+            run_id,
+            &token,
+            Duration::from_secs(60),
+            is_final_after_resume,
+        )
+        .await;
+    assert_eq!(
+        run["state"],
+        "completed",
+        "{run}: {}",
+        bench.log("daemon.log")
+    );
+    assert_eq!(
+        run["measured_points"].as_u64(),
+        Some(SMALL_PLAN_POINTS as u64)
+    );
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_second_daemon_on_the_same_store_exits_naming_the_first_and_changes_nothing() {
+    let bench = Bench::new(44).await;
+    let token = bench.operator_token().await;
+    let first = bench.serve("first.log").await;
+    let first_pid = first.id().expect("the first daemon runs");
+    let run_id = bench.submit_plan(&token, &small_plan()).await;
+    wait_for_rf_on_early_in_the_ramp(&bench, run_id, &token, 1).await;
+    let source_commands_before = bench.server.bench().command_log(Role::RfSource).len();
+
+    let second = tokio::time::timeout(
+        Duration::from_secs(20),
+        tokio::process::Command::new(env!("CARGO_BIN_EXE_halfwave"))
+            .args(["serve", "--config"])
+            .arg(&bench.config)
+            .output(),
+    )
+    .await
+    .expect("the second daemon exits at once")
+    .unwrap();
+    assert!(!second.status.success());
+    let message = String::from_utf8_lossy(&second.stderr);
+    assert!(
+        message.contains(&format!("pid {first_pid}"))
+            && message.contains("another halfwave daemon"),
+        "{message}"
+    );
+    let run = bench.run(run_id, &token).await;
+    assert_eq!(
+        run["state"], "running",
+        "the first daemon's run is untouched: {run}"
+    );
+    // The second daemon never switched the source off under the first one's sweep: the one
+    // frequency's ramp has no output-off command until its end.
+    let log = bench.server.bench().command_log(Role::RfSource);
+    let switched_off = log[source_commands_before..].iter().any(|c| {
+        let c = c.to_ascii_uppercase();
+        c.starts_with("OUTP") && c.contains("OFF")
+    });
+    assert!(
+        !switched_off || is_final(&bench.run(run_id, &token).await),
+        "{log:?}"
+    );
+    let run = bench
+        .wait_for(run_id, &token, Duration::from_secs(60), is_final)
+        .await;
+    assert_eq!(
+        run["state"],
+        "completed",
+        "{run}: {}",
+        bench.log("first.log")
+    );
+    assert_eq!(
+        run["measured_points"].as_u64(),
+        Some(SMALL_PLAN_POINTS as u64)
+    );
+}
