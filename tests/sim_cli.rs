@@ -107,6 +107,8 @@ struct Simulator {
     analyzer_port: u16,
     ready: Instant,
     stderr: std::sync::mpsc::Receiver<String>,
+    /// Every stderr line read so far.
+    seen: std::cell::RefCell<Vec<String>>,
 }
 
 /// Starts `halfwave sim` on free ports with `drill` (TOML) as its drill file.
@@ -149,22 +151,32 @@ fn start_with_drill(drill: &str) -> (Simulator, tempfile::TempDir) {
         analyzer_port: port_of(analyzer.strip_prefix("analyzer ").unwrap()),
         ready,
         stderr: rx,
+        seen: std::cell::RefCell::new(Vec::new()),
     };
     (simulator, dir)
 }
 
 impl Simulator {
-    /// Waits (at most 20 s) for a stderr line containing `text`.
+    /// Waits (at most 20 s) for a stderr line containing `text`, among the lines already read
+    /// too (lines printed by two tasks within milliseconds may come in either order).
     fn log_line(&self, text: &str) -> String {
+        let mut seen = self.seen.borrow_mut();
+        if let Some(line) = seen.iter().find(|l| l.contains(text)) {
+            return line.clone();
+        }
         let deadline = Instant::now() + Duration::from_secs(20);
         while let Some(left) = deadline.checked_duration_since(Instant::now()) {
             match self.stderr.recv_timeout(left) {
-                Ok(line) if line.contains(text) => return line,
-                Ok(_) => continue,
+                Ok(line) => {
+                    seen.push(line.clone());
+                    if line.contains(text) {
+                        return line;
+                    }
+                }
                 Err(_) => break,
             }
         }
-        panic!("no stderr line with {text:?} within 20 s");
+        panic!("no stderr line with {text:?} within 20 s; seen: {seen:?}");
     }
 }
 
