@@ -357,6 +357,34 @@ async fn invalid_plans_are_refused_with_fields_named_and_nothing_sent() {
         "{body}"
     );
 
+    // Plans that cannot give a V_pi: a ramp step so small its level count overflows (it used to
+    // wrap to 0 levels and "complete" empty), one level given twice, one level.
+    let absurd = [
+        (
+            serde_json::json!({"kind": "ramp", "start_dbm": -5.0, "stop_dbm": 20.0, "step_db": 1e-18}),
+            "levels.step_db",
+        ),
+        (
+            serde_json::json!({"kind": "list", "values_dbm": [3.0, 3.0]}),
+            "levels.values_dbm",
+        ),
+        (
+            serde_json::json!({"kind": "list", "values_dbm": [3.0]}),
+            "levels.values_dbm",
+        ),
+    ];
+    for (levels, field) in absurd {
+        let mut request = plan("c");
+        request["chain"] = serde_json::json!({"kind": "flat_loss", "loss_db": 1.0});
+        request["levels"] = levels.clone();
+        let response = app
+            .post_json("/api/v1/runs", Some(&operator), &request)
+            .await;
+        assert_eq!(response.status(), 422, "{levels}");
+        let body = problem(response).await;
+        assert_eq!(body["errors"][0]["field"], field, "{levels}: {body}");
+    }
+
     assert!(
         bench.sim.command_log(Instrument::RfSource).is_empty(),
         "{:?}",

@@ -10,37 +10,14 @@
 //!
 //! Run: `cargo bench -p halfwave-server --bench daemon_memory` (Linux; about half a minute).
 
-use std::io::{BufRead, BufReader};
-use std::process::{Child, Command, Stdio};
+#[path = "support/daemon.rs"]
+mod daemon;
+
+use daemon::{halfwave, simulated_config, Daemon};
 use std::time::{Duration, Instant};
 
 const IDLE_TARGET_MB: f64 = 30.0;
 const RUN_TARGET_MB: f64 = 80.0;
-
-/// The daemon process; killed if the benchmark stops early.
-struct Daemon(Child);
-
-impl Drop for Daemon {
-    fn drop(&mut self) {
-        let _ = self.0.kill();
-        let _ = self.0.wait();
-    }
-}
-
-/// A field of `/proc/<pid>/status` in MB (the kernel reports kB).
-fn status_mb(pid: u32, field: &str) -> f64 {
-    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap_or_default();
-    status
-        .lines()
-        .find(|l| l.starts_with(field))
-        .and_then(|l| l.split_whitespace().nth(1))
-        .and_then(|kb| kb.parse::<f64>().ok())
-        .map_or(f64::NAN, |kb| kb / 1024.0)
-}
-
-fn halfwave() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_halfwave"))
-}
 
 fn main() {
     if !std::env::args().any(|a| a == "--bench") {
@@ -48,20 +25,7 @@ fn main() {
         return;
     }
     let dir = tempfile::tempdir().unwrap();
-    let port = std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port();
-    let config = dir.path().join("halfwave.toml");
-    std::fs::write(
-        &config,
-        format!(
-            "bind = \"127.0.0.1:{port}\"\ndata_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n[bench.simulation]\nseed = 3\ntime_factor = 0.02\n",
-            dir.path().join("data").display()
-        ),
-    )
-    .unwrap();
+    let (config, port) = simulated_config(dir.path());
     let token = halfwave()
         .args([
             "token",
@@ -82,28 +46,9 @@ fn main() {
     );
     let token = String::from_utf8(token.stdout).unwrap().trim().to_string();
 
-    let mut child = halfwave()
-        .args(["serve", "--config"])
-        .arg(&config)
-        .env("RUST_LOG", "warn")
-        .stdout(Stdio::piped())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
-    let pid = child.id();
-    let mut stdout = BufReader::new(child.stdout.take().unwrap());
-    let daemon = Daemon(child);
-    let mut line = String::new();
-    stdout.read_line(&mut line).unwrap();
-    assert!(line.contains("listening"), "{line}");
-    std::thread::spawn(move || {
-        let mut sink = String::new();
-        while stdout.read_line(&mut sink).map(|n| n > 0).unwrap_or(false) {
-            sink.clear();
-        }
-    });
+    let daemon = Daemon::serve(&config);
     std::thread::sleep(Duration::from_secs(2));
-    let idle_before = status_mb(pid, "VmRSS:");
+    let idle_before = daemon.status_mb("VmRSS:");
 
     let runtime = tokio::runtime::Builder::new_current_thread()
         .enable_all()
@@ -142,7 +87,7 @@ fn main() {
     let mut peak_sampled = 0f64;
     let mut last_poll = Instant::now() - Duration::from_secs(1);
     let (state, points) = loop {
-        peak_sampled = peak_sampled.max(status_mb(pid, "VmRSS:"));
+        peak_sampled = peak_sampled.max(daemon.status_mb("VmRSS:"));
         if last_poll.elapsed() > Duration::from_millis(250) {
             last_poll = Instant::now();
             let run: serde_json::Value = runtime.block_on(async {
@@ -167,9 +112,9 @@ fn main() {
         );
         std::thread::sleep(Duration::from_millis(20));
     };
-    let peak_kernel = status_mb(pid, "VmHWM:");
+    let peak_kernel = daemon.status_mb("VmHWM:");
     std::thread::sleep(Duration::from_secs(2));
-    let idle_after = status_mb(pid, "VmRSS:");
+    let idle_after = daemon.status_mb("VmRSS:");
     drop(daemon);
 
     println!(

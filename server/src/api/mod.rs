@@ -9,9 +9,12 @@
 //! ([`token_cache`]) before the database, and the most read views that cannot change (final runs,
 //! device histories) are served from [`read_cache`]; both exist because the load benchmark
 //! (`server/benches/api_load.rs`) showed database round trips, not handlers, limiting the rate.
+//! Connections are accepted by [`connections`] (a cap, hyper's header read timeout, graceful
+//! shutdown), not `axum::serve`, so half-open and slow clients cannot starve `/health`.
 
 pub mod audit;
 pub mod auth;
+pub mod connections;
 pub mod engine_problems;
 pub mod json_body;
 pub mod metrics;
@@ -54,6 +57,8 @@ pub struct ApiSettings {
     /// Origins allowed to call the API from a browser page served elsewhere. Empty (the default)
     /// sends no CORS headers at all, so only the daemon's own dashboard can call it.
     pub cors_allowed_origins: Vec<String>,
+    /// Connection cap, header read timeout and buffer size (see [`connections`]).
+    pub connections: connections::ConnectionLimits,
 }
 
 struct StateInner {
@@ -220,6 +225,7 @@ impl ApiSettings {
             .unwrap_or_default();
         ApiSettings {
             cors_allowed_origins,
+            connections: connections::ConnectionLimits::default(),
         }
     }
 }
@@ -246,18 +252,20 @@ pub async fn serve(
     .await
 }
 
-/// Serves `state` on an already bound listener until `shutdown` completes.
+/// Serves `state` on an already bound listener until `shutdown` completes, within the
+/// state's [`connections::ConnectionLimits`]; then event streams end, the other responses
+/// finish, and it returns when every connection has closed.
 pub async fn serve_on(
     listener: tokio::net::TcpListener,
     state: AppState,
     shutdown: impl std::future::Future<Output = ()> + Send + 'static,
 ) -> Result<(), ServeError> {
     let on_shutdown = state.clone();
-    axum::serve(listener, router(state))
-        .with_graceful_shutdown(async move {
-            shutdown.await;
-            on_shutdown.begin_shutdown();
-        })
-        .await
-        .map_err(ServeError::Io)
+    let limits = state.settings().connections;
+    connections::serve_connections(listener, router(state), limits, async move {
+        shutdown.await;
+        on_shutdown.begin_shutdown();
+    })
+    .await;
+    Ok(())
 }

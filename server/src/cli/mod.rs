@@ -16,6 +16,7 @@ pub mod check_bench;
 pub mod client;
 pub mod db;
 pub mod demo;
+pub mod drill;
 pub mod export;
 pub mod follow;
 pub mod report;

@@ -5,7 +5,12 @@
 //! ports on 127.0.0.1, prints one line per instrument with its VISA-style resource string once
 //! both accept connections, and runs until Ctrl-C. Printing only after binding means a script or
 //! test can start it with port 0 and read the ports it got from stdout.
+//!
+//! `--drill FILE` runs a fault drill ([`super::drill`]): link losses, silence, garbled replies
+//! and errors at scheduled times, to rehearse the daemon's interlocks. Every change of the
+//! simulated RF output is printed on stderr, drill or not.
 
+use super::drill::{self, Drill};
 use super::CliError;
 use halfwave_drivers::sim::bench::MAX_TIME_FACTOR;
 use halfwave_drivers::sim::{Role, Scenario, SimBench, SimServer, SimServerConfig};
@@ -31,6 +36,14 @@ pub struct SimArgs {
     /// Multiplies sweep and settling times (0 makes them instant, 1 is real time).
     #[arg(long, default_value_t = 1.0)]
     pub time_factor: f64,
+    /// Fault drill (TOML): faults to inject at scheduled times, e.g. the source's link down for
+    /// 3 s, 20 s after the RF output first goes on. Keys: `start` ("ready" or "rf_on") and
+    /// [[fault]] tables with `at_s`, `instrument` ("rf_source" or "analyzer"), `kind`
+    /// (link_down / silent with `for_s`; slow_replies with `for_s` and `delay_ms`;
+    /// garble_replies with `count`; push_error with `code` and `message`). README.md,
+    /// "Rehearse the interlocks", has an example.
+    #[arg(long, value_name = "FILE")]
+    pub drill: Option<PathBuf>,
 }
 
 /// Runs `halfwave sim` until Ctrl-C.
@@ -50,15 +63,21 @@ pub fn run(args: SimArgs) -> Result<(), CliError> {
             args.time_factor
         )));
     }
+    let drill = args
+        .drill
+        .as_deref()
+        .map(Drill::from_file)
+        .transpose()
+        .map_err(CliError::new)?;
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
         .build()
         .map_err(|e| CliError::new(format!("cannot start the async runtime: {e}")))?;
-    runtime.block_on(serve(scenario, args))
+    runtime.block_on(serve(scenario, drill, args))
 }
 
-async fn serve(scenario: Scenario, args: SimArgs) -> Result<(), CliError> {
+async fn serve(scenario: Scenario, drill: Option<Drill>, args: SimArgs) -> Result<(), CliError> {
     let bench = SimBench::new(scenario, args.seed).with_time_factor(args.time_factor);
     let config = SimServerConfig {
         source_port: args.source_port,
@@ -79,9 +98,28 @@ async fn serve(scenario: Scenario, args: SimArgs) -> Result<(), CliError> {
         server.bench().scenario().name,
         args.seed
     );
+    let ready = tokio::time::Instant::now();
+    let watcher = tokio::spawn(drill::watch_rf_output(server.bench().clone(), ready));
+    let drill_task = drill.map(|drill| {
+        let source = server.faults(Role::RfSource);
+        let analyzer = server.faults(Role::Analyzer);
+        tokio::spawn(drill::run(
+            drill,
+            server.bench().clone(),
+            move |role| match role {
+                Role::RfSource => source.clone(),
+                Role::Analyzer => analyzer.clone(),
+            },
+            ready,
+        ))
+    });
     tokio::signal::ctrl_c()
         .await
         .map_err(|e| CliError::new(format!("cannot wait for Ctrl-C: {e}")))?;
+    if let Some(task) = drill_task {
+        task.abort();
+    }
+    watcher.abort();
     let bench = server.bench().clone();
     server.shutdown().await;
     if bench.overdriven() {

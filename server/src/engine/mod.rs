@@ -407,7 +407,7 @@ impl Engine {
                     request.device.serial,
                     request.bench,
                     plan.point_count(),
-                    plan.max_level_at_modulator
+                    plan.max_level_at_modulator()
                 ),
             )
             .await?;
@@ -624,7 +624,7 @@ impl Engine {
         chain: Arc<DriveChain>,
         done: HashSet<(usize, usize)>,
     ) {
-        let bench = plan.request.bench.clone();
+        let bench = plan.request().bench.clone();
         let Some(slot) = self.inner.benches.get(&bench) else {
             return;
         };

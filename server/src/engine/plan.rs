@@ -30,6 +30,12 @@ pub const DEFAULT_TRACE_POINTS: usize = 10_001;
 pub const AUTO_RBW_FRACTION: f64 = 0.1;
 /// The smallest spacing-to-RBW ratio accepted at all (about three, common practice).
 pub const MIN_SPACING_TO_RBW: f64 = 3.0;
+/// Fewest distinct drive levels per frequency: V_pi comes from the slope of beta against the
+/// peak voltage over a level sweep, and one level gives no slope to check a point against.
+pub const MIN_LEVELS_FOR_FIT: usize = 2;
+/// Levels closer than this are one setting on a generator (0.01 dB is a common level resolution;
+/// common practice), so they are not two usable levels and a ramp step must be at least this.
+pub const MIN_LEVEL_SEPARATION_DB: f64 = 0.01;
 
 /// The modulator being calibrated.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -200,19 +206,50 @@ pub struct FrequencyStep {
     pub analyzer: AnalyzerChoice,
 }
 
-/// A proven plan: every value inside every limit. Only [`PlanRequest::validate`] makes one.
+/// A proven plan: every value inside every limit, and at least [`MIN_LEVELS_FOR_FIT`] distinct
+/// levels at every frequency. Only [`PlanRequest::validate`] makes one, and its fields are
+/// private so that nothing can change it after it was proven; read it through the accessors.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct Plan {
-    pub request: PlanRequest,
-    pub steps: Vec<FrequencyStep>,
-    pub settle: Seconds,
-    pub averages: u32,
-    pub wavelength: Nanometers,
-    /// The highest level the plan puts on the modulator (after the chain), for the record.
-    pub max_level_at_modulator: Dbm,
+    request: PlanRequest,
+    steps: Vec<FrequencyStep>,
+    settle: Seconds,
+    averages: u32,
+    wavelength: Nanometers,
+    max_level_at_modulator: Dbm,
 }
 
 impl Plan {
+    /// The request the plan was proven from.
+    pub fn request(&self) -> &PlanRequest {
+        &self.request
+    }
+
+    /// The frequencies in the order they are measured, each with its ascending levels.
+    pub fn steps(&self) -> &[FrequencyStep] {
+        &self.steps
+    }
+
+    /// Wait after each level change before sweeping.
+    pub fn settle(&self) -> Seconds {
+        self.settle
+    }
+
+    /// Sweeps averaged per point.
+    pub fn averages(&self) -> u32 {
+        self.averages
+    }
+
+    /// The laser's wavelength (where the engine starts looking for the comb).
+    pub fn wavelength(&self) -> Nanometers {
+        self.wavelength
+    }
+
+    /// The highest level the plan puts on the modulator (after the chain), for the record.
+    pub fn max_level_at_modulator(&self) -> Dbm {
+        self.max_level_at_modulator
+    }
+
     /// Number of measured points (frequencies x levels).
     pub fn point_count(&self) -> usize {
         self.steps.iter().map(|s| s.generator_levels.len()).sum()
@@ -391,6 +428,16 @@ fn expand_frequencies(
                 errs.push("frequencies.values_hz", "give at least one frequency");
                 return None;
             }
+            if values_hz.len() > MAX_FREQUENCIES {
+                errs.push(
+                    "frequencies.values_hz",
+                    format!(
+                        "at most {MAX_FREQUENCIES} frequencies per plan, got {}",
+                        values_hz.len()
+                    ),
+                );
+                return None;
+            }
             let mut bad = false;
             for (i, f) in values_hz.iter().enumerate() {
                 if !f.is_finite() || !in_range(*f) {
@@ -473,19 +520,25 @@ fn expand_frequencies(
                 .collect()
         }
     };
-    if values.len() > MAX_FREQUENCIES {
+    // The spacing arithmetic cannot leave the range for inputs that passed the checks above;
+    // this keeps that true if the arithmetic ever changes.
+    if let Some((i, f)) = values
+        .iter()
+        .enumerate()
+        .find(|(_, f)| !f.is_finite() || !in_range(**f))
+    {
         errs.push(
             "frequencies",
-            format!(
-                "at most {MAX_FREQUENCIES} frequencies per plan, got {}",
-                values.len()
-            ),
+            format!("frequency {i} came out as {f} Hz, outside {range_text}; give the frequencies as a list"),
         );
         return None;
     }
     Some(values.into_iter().map(Hz).collect())
 }
 
+/// The generator levels of every frequency, ascending, at least [`MIN_LEVELS_FOR_FIT`] of them
+/// and each at least [`MIN_LEVEL_SEPARATION_DB`] from the next. Counts are computed with checked
+/// arithmetic: a step so small that the count would not fit is refused, never wrapped.
 fn expand_levels(
     spec: &LevelSpec,
     limits: &SourceLimits,
@@ -496,10 +549,31 @@ fn expand_levels(
         "the source's range {:.2} to {:.2}",
         limits.min_level, limits.max_level
     );
+    // Where to point the user when there are too few levels.
+    let (few_field, few_hint) = match spec {
+        LevelSpec::List { .. } => ("levels.values_dbm", "add levels"),
+        LevelSpec::Ramp { .. } => (
+            "levels.stop_dbm",
+            "raise stop_dbm above start_dbm by at least one step",
+        ),
+    };
     let values: Vec<f64> = match spec {
         LevelSpec::List { values_dbm } => {
             if values_dbm.is_empty() {
-                errs.push("levels.values_dbm", "give at least one level");
+                errs.push(
+                    "levels.values_dbm",
+                    format!("give at least {MIN_LEVELS_FOR_FIT} levels (a V_pi fit needs a level sweep)"),
+                );
+                return None;
+            }
+            if values_dbm.len() > MAX_LEVELS {
+                errs.push(
+                    "levels.values_dbm",
+                    format!(
+                        "at most {MAX_LEVELS} levels per frequency, got {}",
+                        values_dbm.len()
+                    ),
+                );
                 return None;
             }
             let mut bad = false;
@@ -515,10 +589,24 @@ fn expand_levels(
             if bad {
                 return None;
             }
-            // Levels always ramp from low to high, whatever order they were given in.
+            // Levels always ramp from low to high, whatever order they were given in; a level
+            // given twice is measured once.
             let mut v = values_dbm.clone();
             v.sort_by(f64::total_cmp);
             v.dedup();
+            if let Some(pair) = v
+                .windows(2)
+                .find(|pair| pair[1] - pair[0] < MIN_LEVEL_SEPARATION_DB)
+            {
+                errs.push(
+                    "levels.values_dbm",
+                    format!(
+                        "{} dBm and {} dBm are less than {MIN_LEVEL_SEPARATION_DB} dB apart, which a generator sets alike; remove one or move them apart",
+                        pair[0], pair[1]
+                    ),
+                );
+                return None;
+            }
             v
         }
         LevelSpec::Ramp {
@@ -536,10 +624,12 @@ fn expand_levels(
                     bad = true;
                 }
             }
-            if !step_db.is_finite() || *step_db <= 0.0 {
+            if !step_db.is_finite() || *step_db < MIN_LEVEL_SEPARATION_DB {
                 errs.push(
                     "levels.step_db",
-                    format!("must be a positive step in dB, got {step_db}"),
+                    format!(
+                        "must be a step of at least {MIN_LEVEL_SEPARATION_DB} dB (finer steps are one setting on a generator), got {step_db}"
+                    ),
                 );
                 bad = true;
             }
@@ -553,28 +643,47 @@ fn expand_levels(
             if bad {
                 return None;
             }
-            let count = ((stop_dbm - start_dbm) / step_db + 1e-9).floor() as usize + 1;
-            if count > MAX_LEVELS {
-                errs.push(
-                    "levels.step_db",
-                    format!("gives {count} levels; at most {MAX_LEVELS} per frequency"),
-                );
-                return None;
+            match ramp_level_count(*start_dbm, *stop_dbm, *step_db) {
+                Some(count) => (0..count)
+                    // Never past stop_dbm, even by a rounding error: stop_dbm was range-checked.
+                    .map(|i| (start_dbm + i as f64 * step_db).min(*stop_dbm))
+                    .collect(),
+                None => {
+                    errs.push(
+                        "levels.step_db",
+                        format!(
+                            "a step of {step_db} dB from {start_dbm} to {stop_dbm} dBm gives more than {MAX_LEVELS} levels per frequency; use a larger step"
+                        ),
+                    );
+                    return None;
+                }
             }
-            (0..count).map(|i| start_dbm + i as f64 * step_db).collect()
         }
     };
-    if values.len() > MAX_LEVELS {
+    if values.len() < MIN_LEVELS_FOR_FIT {
         errs.push(
-            "levels",
+            few_field,
             format!(
-                "at most {MAX_LEVELS} levels per frequency, got {}",
+                "gives {} distinct level(s) per frequency; a V_pi fit needs at least {MIN_LEVELS_FOR_FIT}; {few_hint}",
                 values.len()
             ),
         );
         return None;
     }
     Some(values.into_iter().map(Dbm).collect())
+}
+
+/// Levels in a ramp from `start` to `stop` (inclusive when it lands on a step, within 1e-9 of a
+/// step), or `None` when there would be more than [`MAX_LEVELS`]. The quotient is compared as a
+/// float before any conversion, so no step, however small, can overflow the count.
+fn ramp_level_count(start_dbm: f64, stop_dbm: f64, step_db: f64) -> Option<usize> {
+    let steps = ((stop_dbm - start_dbm) / step_db + 1e-9).floor();
+    if !steps.is_finite() || steps < 0.0 || steps >= MAX_LEVELS as f64 {
+        return None;
+    }
+    // In range by the check above, so the conversion is exact.
+    let count = (steps as usize).checked_add(1)?;
+    (count <= MAX_LEVELS).then_some(count)
 }
 
 /// Picks span, resolution bandwidth and points for one modulation frequency.
@@ -832,7 +941,7 @@ mod tests {
         });
         let plan = validate(&req, 24.0).unwrap();
         assert_eq!(
-            plan.steps[0].generator_levels,
+            plan.steps()[0].generator_levels,
             vec![Dbm(-5.0), Dbm(3.0), Dbm(10.0)]
         );
         assert_eq!(plan.point_count(), 4 * 3);
@@ -841,7 +950,7 @@ mod tests {
     #[test]
     fn logarithmic_frequencies_are_geometric() {
         let mut req = request(LevelSpec::List {
-            values_dbm: vec![0.0],
+            values_dbm: vec![0.0, 3.0],
         });
         req.frequencies = FrequencySpec::Logarithmic {
             start_hz: 0.2e9,
@@ -849,7 +958,7 @@ mod tests {
             count: 3,
         };
         let plan = validate(&req, 24.0).unwrap();
-        let f: Vec<f64> = plan.steps.iter().map(|s| s.frequency.0).collect();
+        let f: Vec<f64> = plan.steps().iter().map(|s| s.frequency.0).collect();
         // Geometric mean of 0.2 and 20 GHz is 2 GHz.
         assert!((f[1] - 2e9).abs() < 1.0, "{f:?}");
         assert_eq!(f[0], 0.2e9);
@@ -859,10 +968,10 @@ mod tests {
     #[test]
     fn automatic_analyzer_settings_resolve_the_lines() {
         let req = request(LevelSpec::List {
-            values_dbm: vec![0.0],
+            values_dbm: vec![0.0, 3.0],
         });
         let plan = validate(&req, 24.0).unwrap();
-        for step in &plan.steps {
+        for step in plan.steps() {
             let a = step.analyzer;
             assert!(a.resolution_bandwidth.0 <= step.frequency.0 * AUTO_RBW_FRACTION);
             assert_eq!(
@@ -871,13 +980,13 @@ mod tests {
             );
         }
         // 1 GHz spacing: widest RBW at most 100 MHz is 100 MHz.
-        assert_eq!(plan.steps[0].analyzer.resolution_bandwidth, Hz(100e6));
+        assert_eq!(plan.steps()[0].analyzer.resolution_bandwidth, Hz(100e6));
     }
 
     #[test]
     fn spacing_below_three_resolution_widths_is_refused() {
         let mut req = request(LevelSpec::List {
-            values_dbm: vec![0.0],
+            values_dbm: vec![0.0, 3.0],
         });
         req.analyzer.resolution_bandwidth_hz = Some(500e6);
         let err = validate(&req, 24.0).unwrap_err();
@@ -896,5 +1005,150 @@ mod tests {
             "levels":{"kind":"list","values_dbm":[0]}}"#;
         let err = serde_json::from_str::<PlanRequest>(json).unwrap_err();
         assert!(err.to_string().contains("colour"), "{err}");
+    }
+
+    /// The field names of a refused plan.
+    fn refused_fields(req: &PlanRequest) -> Vec<String> {
+        let err = validate(req, 24.0).expect_err("the plan must be refused");
+        err.errors.into_iter().map(|e| e.field).collect()
+    }
+
+    #[test]
+    fn a_vanishing_ramp_step_is_refused_not_wrapped_into_zero_levels() {
+        // A step of 1e-18 dB over 25 dB is 2.5e19 steps, more than a 64-bit count holds: the old
+        // `floor() as usize + 1` saturated and wrapped to 0 levels, and the run "completed" empty.
+        for step_db in [1e-18, 6.5e-18, 1e-300, f64::MIN_POSITIVE, 5e-324] {
+            let req = request(LevelSpec::Ramp {
+                start_dbm: -5.0,
+                stop_dbm: 20.0,
+                step_db,
+            });
+            assert_eq!(
+                refused_fields(&req),
+                vec!["levels.step_db"],
+                "step {step_db}"
+            );
+        }
+    }
+
+    #[test]
+    fn a_ramp_with_more_levels_than_allowed_is_refused_by_count() {
+        // 0.01 dB from -30 to 25 dBm is 5,501 levels: a real step, but too many.
+        let req = request(LevelSpec::Ramp {
+            start_dbm: -30.0,
+            stop_dbm: 25.0,
+            step_db: 0.01,
+        });
+        let err = validate(&req, 30.0).unwrap_err();
+        assert_eq!(err.errors.len(), 1, "{err}");
+        assert_eq!(err.errors[0].field, "levels.step_db");
+        assert!(
+            err.errors[0].message.contains("more than 200 levels"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn ramp_count_never_overflows() {
+        assert_eq!(ramp_level_count(3.0, 3.0, 1.0), Some(1));
+        assert_eq!(ramp_level_count(0.0, 20.0, 2.5), Some(9));
+        assert_eq!(ramp_level_count(0.0, 199.0, 1.0), Some(MAX_LEVELS));
+        assert_eq!(ramp_level_count(0.0, 200.0, 1.0), None);
+        assert_eq!(ramp_level_count(-5.0, 20.0, 1e-18), None);
+        assert_eq!(ramp_level_count(-f64::MAX, f64::MAX, 1.0), None);
+        assert_eq!(ramp_level_count(0.0, 1.0, 0.0), None);
+        assert_eq!(ramp_level_count(1.0, 0.0, 1.0), None);
+    }
+
+    #[test]
+    fn a_single_level_is_refused_naming_the_field() {
+        // [3, 3] is one level given twice; [3] is one level: neither gives a V_pi fit.
+        for values_dbm in [vec![3.0, 3.0], vec![3.0]] {
+            let req = request(LevelSpec::List {
+                values_dbm: values_dbm.clone(),
+            });
+            let err = validate(&req, 24.0).unwrap_err();
+            assert_eq!(err.errors.len(), 1, "{values_dbm:?}: {err}");
+            assert_eq!(err.errors[0].field, "levels.values_dbm");
+            assert!(err.errors[0].message.contains("at least 2"), "{err}");
+        }
+        // A ramp that starts and stops at the same level is one level too.
+        let req = request(LevelSpec::Ramp {
+            start_dbm: 3.0,
+            stop_dbm: 3.0,
+            step_db: 1.0,
+        });
+        assert_eq!(refused_fields(&req), vec!["levels.stop_dbm"]);
+        // So is a ramp whose stop is less than one step above its start.
+        let req = request(LevelSpec::Ramp {
+            start_dbm: 3.0,
+            stop_dbm: 3.5,
+            step_db: 1.0,
+        });
+        assert_eq!(refused_fields(&req), vec!["levels.stop_dbm"]);
+        // An empty list is refused as well.
+        let req = request(LevelSpec::List { values_dbm: vec![] });
+        assert_eq!(refused_fields(&req), vec!["levels.values_dbm"]);
+    }
+
+    #[test]
+    fn levels_closer_than_a_generator_resolves_are_refused() {
+        let req = request(LevelSpec::List {
+            values_dbm: vec![3.0, 3.001, 6.0],
+        });
+        let err = validate(&req, 24.0).unwrap_err();
+        assert_eq!(err.errors[0].field, "levels.values_dbm");
+        assert!(err.errors[0].message.contains("apart"), "{err}");
+        let req = request(LevelSpec::Ramp {
+            start_dbm: 0.0,
+            stop_dbm: 1.0,
+            step_db: 0.001,
+        });
+        assert_eq!(refused_fields(&req), vec!["levels.step_db"]);
+    }
+
+    #[test]
+    fn a_ramp_never_passes_its_stop_level() {
+        // 0.3 / 0.1 is 2.9999999999999996 in binary floating point and 3 x 0.1 is
+        // 0.30000000000000004: the last level must still be the stop level, not above it.
+        let req = request(LevelSpec::Ramp {
+            start_dbm: 0.0,
+            stop_dbm: 0.3,
+            step_db: 0.1,
+        });
+        let plan = validate(&req, 24.0).unwrap();
+        let levels = &plan.steps()[0].generator_levels;
+        assert_eq!(levels.len(), 4, "{levels:?}");
+        assert_eq!(levels.last(), Some(&Dbm(0.3)));
+        assert!(levels.windows(2).all(|w| w[0].0 < w[1].0), "{levels:?}");
+    }
+
+    #[test]
+    fn every_frequency_of_a_proven_plan_has_enough_levels_for_a_fit() {
+        let req = request(LevelSpec::Ramp {
+            start_dbm: 0.0,
+            stop_dbm: 10.0,
+            step_db: 5.0,
+        });
+        let plan = validate(&req, 24.0).unwrap();
+        assert_eq!(plan.steps().len(), 4);
+        for step in plan.steps() {
+            assert!(
+                step.generator_levels.len() >= MIN_LEVELS_FOR_FIT,
+                "{step:?}"
+            );
+        }
+        assert_eq!(plan.point_count(), 4 * 3);
+    }
+
+    #[test]
+    fn an_oversized_frequency_list_is_refused_before_it_is_sorted() {
+        let mut req = request(LevelSpec::List {
+            values_dbm: vec![0.0, 3.0],
+        });
+        req.frequencies = FrequencySpec::List {
+            values_hz: vec![1e9; MAX_FREQUENCIES + 1],
+        };
+        assert_eq!(refused_fields(&req), vec!["frequencies.values_hz"]);
     }
 }

@@ -212,10 +212,10 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
         completed,
     ));
     let caps = ctx.analyzer.lock().await.capabilities();
-    let mut carrier = plan.wavelength.to_frequency();
+    let mut carrier = plan.wavelength().to_frequency();
 
     let mut result = Ok(());
-    'frequencies: for (fi, step) in plan.steps.iter().enumerate() {
+    'frequencies: for (fi, step) in plan.steps().iter().enumerate() {
         let remaining: Vec<usize> = (0..step.generator_levels.len())
             .filter(|li| !ctx.done.contains(&(fi, *li)))
             .collect();
@@ -291,9 +291,9 @@ async fn measure_frequency(
         points: step.analyzer.points,
     };
     analyzer.configure(&settings).await?;
-    let reference = if plan.request.reference_trace {
-        let r = acquire::measure(analyzer.as_mut(), plan.averages).await?;
-        if plan.request.carrier_tracking {
+    let reference = if plan.request().reference_trace {
+        let r = acquire::measure(analyzer.as_mut(), plan.averages()).await?;
+        if plan.request().carrier_tracking {
             *carrier = acquire::peak_frequency(&r);
         }
         ctx.store
@@ -325,16 +325,16 @@ async fn measure_frequency(
                 output_on = true;
             }
         }
-        tokio::time::sleep(plan.settle.to_duration()).await;
+        tokio::time::sleep(plan.settle().to_duration()).await;
         let mut analyzer = ctx.analyzer.lock().await;
-        if plan.request.carrier_tracking
+        if plan.request().carrier_tracking
             && (settings.center.0 - carrier.0).abs() > 1e-3 * settings.span.0
         {
             settings.center = analyzer.set_center(*carrier).await?;
         }
         let trace = measure_with_rf_watchdog(ctx, analyzer.as_mut(), caps).await?;
         drop(analyzer);
-        if plan.request.carrier_tracking {
+        if plan.request().carrier_tracking {
             // The strongest line may be a sideband, so track by the comb's centre of symmetry:
             // the power-weighted mean frequency of a symmetric comb is the carrier.
             if let Some(c) = comb_centroid(&trace) {
@@ -381,8 +381,8 @@ async fn measure_with_rf_watchdog(
     analyzer: &mut dyn SpectrumAnalyzer,
     caps: &halfwave_drivers::AnalyzerCapabilities,
 ) -> Result<Trace, Stop> {
-    let margin = sweep_overrun_margin(caps, ctx.plan.averages);
-    let measured = acquire::measure(&mut *analyzer, ctx.plan.averages);
+    let margin = sweep_overrun_margin(caps, ctx.plan.averages());
+    let measured = acquire::measure(&mut *analyzer, ctx.plan.averages());
     if let Ok(result) = tokio::time::timeout(margin, measured).await {
         return result.map_err(Stop::from);
     }
