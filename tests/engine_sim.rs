@@ -320,3 +320,66 @@ async fn analysis_failures_in_a_row_stop_the_run_with_rf_off_first() {
     assert!(points.len() < POINTS);
     engine.shutdown().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_stored_unconfirmed_output_is_switched_off_at_start_and_holds_the_bench_until_acknowledged(
+) {
+    use halfwave::store::{BenchFault, BenchSafetyRecord};
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let sim = SimBench::new(scenario.clone(), 8).with_time_factor(0.0);
+    let chain = upload_true_chain(&store, &scenario).await;
+    // The previous process stopped with the output unconfirmed (and left it on).
+    store
+        .record_bench_fault(&BenchSafetyRecord {
+            bench_name: "sim".into(),
+            fault: BenchFault::OutputUnconfirmed,
+            cause: "the link was down when the daemon stopped".into(),
+            since_unix_ms: 1,
+            confirmed_off_at_unix_ms: None,
+        })
+        .await
+        .unwrap();
+    engine_support::leave_rf_on(&sim).await;
+
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
+    assert!(
+        !sim.rf_output_on(),
+        "the start-up interlock switched it off"
+    );
+    let status = engine.benches().remove(0);
+    assert_eq!(status.safety_state, "awaiting_acknowledgement");
+    assert!(status
+        .safety_fault
+        .unwrap()
+        .confirmed_off_at_unix_ms
+        .is_some());
+
+    // A run submitted now waits in the queue; nothing is sent to the source.
+    sim.clear_command_log(Role::RfSource);
+    let mut events = engine.subscribe();
+    let run_id = engine.submit(plan(&chain), "test").await.unwrap();
+    tokio::time::sleep(Duration::from_millis(500)).await;
+    assert_eq!(store.run(run_id).await.unwrap().state, RunState::Queued);
+    assert!(sim.command_log(Role::RfSource).is_empty());
+
+    // Acknowledging: refused for an unknown bench, accepted for "sim", audited; the run goes.
+    assert!(engine.acknowledge("nope", "op", "").await.is_err());
+    engine
+        .acknowledge("sim", "op", "checked the source")
+        .await
+        .unwrap();
+    assert_eq!(engine.benches()[0].safety_state, "clear");
+    assert!(store.bench_safety_faults().await.unwrap().is_empty());
+    assert_eq!(wait_for_end(&mut events, run_id).await.0, "completed");
+    let audit = store.audit_log(100, None).await.unwrap();
+    assert!(audit
+        .iter()
+        .any(|e| e.action == "bench.acknowledge" && e.actor == "op"));
+    // A second acknowledgement has nothing to clear.
+    assert!(engine.acknowledge("sim", "op", "").await.is_err());
+    engine.shutdown().await;
+}

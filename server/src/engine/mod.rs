@@ -886,3 +886,25 @@ impl BenchSlot {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::lock;
+    use std::sync::{Arc, Mutex};
+
+    #[test]
+    fn a_poisoned_engine_lock_still_gives_its_contents() {
+        // The cancel path reads the run's cancel token through this lock: a panic elsewhere while
+        // it was held must not hide the token (and so leave a run, and its RF, going).
+        let tokens = Arc::new(Mutex::new(vec![7_i64]));
+        let poisoner = tokens.clone();
+        let joined = std::thread::spawn(move || {
+            let _held = poisoner.lock().unwrap();
+            panic!("a bug while the lock is held");
+        })
+        .join();
+        assert!(joined.is_err());
+        assert!(tokens.is_poisoned());
+        assert_eq!(*lock(&tokens), vec![7]);
+    }
+}

@@ -319,11 +319,27 @@ async fn measure_frequency(
         let started = Instant::now();
         {
             let mut src = ctx.source.lock().await;
-            src.set_level(level).await?;
-            if !output_on {
-                src.set_output(true).await?;
-                output_on = true;
+            let drive = async {
+                src.set_level(level).await?;
+                if !output_on {
+                    src.set_output(true).await?;
+                }
+                Ok::<(), InstrumentError>(())
+            };
+            // With the output (possibly) on, a source that stops answering must not keep the
+            // run waiting for the transport's timeout: give up after the step limit and let the
+            // stop path switch the output off on a fresh attempt.
+            match tokio::time::timeout(SOURCE_STEP_LIMIT, drive).await {
+                Ok(result) => result?,
+                Err(_) => {
+                    return Err(Stop::LinkFault(format!(
+                        "{} did not complete a level change within {:.1} s with the output on",
+                        src.resource(),
+                        SOURCE_STEP_LIMIT.as_secs_f64()
+                    )))
+                }
             }
+            output_on = true;
         }
         tokio::time::sleep(plan.settle().to_duration()).await;
         let mut analyzer = ctx.analyzer.lock().await;
@@ -356,6 +372,12 @@ async fn measure_frequency(
     }
     Ok(())
 }
+
+/// The longest a level change (with its settling `*OPC?`) may take on the source while the
+/// output may be on; a source that stops answering is given up on after this, so the stop path
+/// switches the output off without waiting for the transport's own timeout. Sources settle in
+/// milliseconds to a few hundred (common practice), so this leaves a wide margin.
+pub const SOURCE_STEP_LIMIT: std::time::Duration = std::time::Duration::from_secs(2);
 
 /// The least time a sweep with RF on may take before the output is switched off.
 pub const MIN_SWEEP_OVERRUN_MARGIN: std::time::Duration = std::time::Duration::from_secs(5);
