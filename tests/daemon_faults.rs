@@ -89,6 +89,29 @@ fn is_final_after_resume(run: &Value) -> bool {
     is_final(run) && run["resumable"] != true
 }
 
+/// Resumes a run through the API and waits (up to 60 s) for it to complete.
+async fn resume_to_completion(bench: &Bench, run_id: i64, token: &str) -> Value {
+    let resumed = bench
+        .post(&format!("/api/v1/runs/{run_id}/resume"), token, &json!({}))
+        .await;
+    assert_eq!(resumed.status(), 202);
+    let run = bench
+        .wait_for(
+            run_id,
+            token,
+            Duration::from_secs(60),
+            is_final_after_resume,
+        )
+        .await;
+    assert_eq!(
+        run["state"],
+        "completed",
+        "{run}: {}",
+        bench.log("daemon.log")
+    );
+    run
+}
+
 async fn metric(bench: &Bench, token: &str, name: &str) -> Option<f64> {
     let text = bench
         .client
@@ -206,24 +229,7 @@ async fn source_link_reset_for_3_s_output_off_within_2_s_of_return_and_bench_hel
     assert_eq!(second["state"], "completed", "{second}");
 
     // The failed run resumes where it stopped and measures every point once.
-    let resumed = bench
-        .post(&format!("/api/v1/runs/{run_id}/resume"), &token, &json!({}))
-        .await;
-    assert_eq!(resumed.status(), 202);
-    let run = bench
-        .wait_for(
-            run_id,
-            &token,
-            Duration::from_secs(60),
-            is_final_after_resume,
-        )
-        .await;
-    assert_eq!(
-        run["state"],
-        "completed",
-        "{run}: {}",
-        bench.log("daemon.log")
-    );
+    resume_to_completion(&bench, run_id, &token).await;
     let points = stored_points(&bench.database(), run_id).await;
     let distinct: HashSet<_> = points.iter().copied().collect();
     assert_eq!(points.len(), SMALL_PLAN_POINTS);
@@ -325,24 +331,7 @@ async fn a_silent_analyzer_cannot_hold_rf_on_past_the_sweep_overrun_margin() {
     assert_eq!(bench.bench_status(&token).await["safety_state"], "clear");
 
     faults.resume();
-    let resumed = bench
-        .post(&format!("/api/v1/runs/{run_id}/resume"), &token, &json!({}))
-        .await;
-    assert_eq!(resumed.status(), 202);
-    let run = bench
-        .wait_for(
-            run_id,
-            &token,
-            Duration::from_secs(60),
-            is_final_after_resume,
-        )
-        .await;
-    assert_eq!(
-        run["state"],
-        "completed",
-        "{run}: {}",
-        bench.log("daemon.log")
-    );
+    let run = resume_to_completion(&bench, run_id, &token).await;
     assert_eq!(
         run["measured_points"].as_u64(),
         Some(SMALL_PLAN_POINTS as u64)
