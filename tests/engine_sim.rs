@@ -374,7 +374,8 @@ async fn a_stored_unconfirmed_output_is_switched_off_at_start_and_holds_the_benc
         .unwrap();
     assert_eq!(engine.benches()[0].safety_state, "clear");
     assert!(store.bench_safety_faults().await.unwrap().is_empty());
-    assert_eq!(wait_for_end(&mut events, run_id).await.0, "completed");
+    let (state, cause) = wait_for_end(&mut events, run_id).await;
+    assert_eq!(state, "completed", "{cause:?}");
     let audit = store.audit_log(100, None).await.unwrap();
     assert!(audit
         .iter()
