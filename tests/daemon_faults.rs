@@ -203,23 +203,18 @@ async fn source_link_reset_for_3_s_output_off_within_2_s_of_return_and_bench_hel
     );
 
     // The operator acknowledges with the CLI.
-    let out = tokio::process::Command::new(env!("CARGO_BIN_EXE_halfwave"))
-        .args([
-            "acknowledge",
-            "sim",
-            "--note",
-            "source checked, cable reseated",
-        ])
-        .args(["--url", &bench.url("")])
-        .args(["--token", &token])
-        .output()
-        .await
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
+    let url = bench.url("");
+    daemon_support::cli_succeeds(&[
+        "acknowledge",
+        "sim",
+        "--note",
+        "source checked, cable reseated",
+        "--url",
+        &url,
+        "--token",
+        &token,
+    ])
+    .await;
     let (health_status, health) = bench.get("/api/v1/health", "").await;
     assert_eq!(health_status, 200, "{health}");
     assert_eq!(health["status"], "ok");

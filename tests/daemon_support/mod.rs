@@ -66,19 +66,9 @@ impl Bench {
 
     /// Creates an operator token with the real CLI, as an administrator would.
     pub async fn operator_token(&self) -> String {
-        let out = Command::new(env!("CARGO_BIN_EXE_halfwave"))
-            .args(["token", "create", "--role", "operator", "--name", "lab-b"])
-            .arg("--config")
-            .arg(&self.config)
-            .output()
-            .await
-            .unwrap();
-        assert!(
-            out.status.success(),
-            "{}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-        String::from_utf8(out.stdout).unwrap().trim().to_string()
+        let config = self.config.to_string_lossy().into_owned();
+        let args = ["token", "create", "--role", "operator", "--name", "lab-b"];
+        cli_succeeds(&[&args[..], &["--config", &config]].concat()).await
     }
 
     /// Starts `halfwave serve` and waits for it to listen. Its log goes to a file in the
@@ -193,6 +183,22 @@ pub async fn stored_points(database: &Path, run_id: i64) -> Vec<(u32, u32)> {
         .collect();
     store.close().await;
     indices
+}
+
+/// Runs the real `halfwave` CLI with `args`, asserts that it succeeds and returns its stdout,
+/// trimmed.
+pub async fn cli_succeeds(args: &[&str]) -> String {
+    let out = Command::new(env!("CARGO_BIN_EXE_halfwave"))
+        .args(args)
+        .output()
+        .await
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "halfwave {args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout).unwrap().trim().to_string()
 }
 
 /// A short plan on bench "sim": one frequency, nine levels with RF on for a while at each (the

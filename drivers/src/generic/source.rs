@@ -136,13 +136,18 @@ impl ScpiRfSource {
         }
     }
 
-    async fn try_off(&mut self) -> Result<(), InstrumentError> {
+    /// Sends the output-off command, optionally waits for `*OPC?`, and reads the output back.
+    async fn try_off(&mut self, wait_complete: bool) -> Result<(), InstrumentError> {
         let c = &self.profile.commands;
         let command = fill_template(&c.set_output, &c.output_off_word);
         let query = c.query_output.clone();
+        let complete = self.profile.common.operation_complete.clone();
         // The error queue is not consulted here: only the read-back proves the output is off.
         let transport = self.session.transport_mut();
         transport.write(&command).await?;
+        if wait_complete {
+            transport.query(&complete).await?;
+        }
         let reply = transport.query(&query).await?;
         match parse_bool(&reply) {
             Ok(false) => Ok(()),
@@ -260,42 +265,18 @@ impl RfSource for ScpiRfSource {
     async fn confirm_off_fresh(&mut self) -> Result<(), InstrumentError> {
         // A fresh connection: whatever the old one was waiting for is forgotten.
         self.session.transport_mut().disconnect();
-        let c = &self.profile.commands;
-        let command = fill_template(&c.set_output, &c.output_off_word);
-        let query = c.query_output.clone();
-        let complete = self.profile.common.operation_complete.clone();
-        let result = async {
-            let transport = self.session.transport_mut();
-            transport.write(&command).await?;
-            if !complete.is_empty() {
-                transport.query(&complete).await?;
-            }
-            transport.query(&query).await
+        let result = self.try_off(true).await;
+        match &result {
+            Ok(()) => self.output_may_be_on = false,
+            Err(_) => self.session.transport_mut().disconnect(),
         }
-        .await;
-        let reply = match result {
-            Ok(reply) => reply,
-            Err(e) => {
-                self.session.transport_mut().disconnect();
-                return Err(e);
-            }
-        };
-        match parse_bool(&reply) {
-            Ok(false) => {
-                self.output_may_be_on = false;
-                Ok(())
-            }
-            Ok(true) => Err(self
-                .session
-                .read_back_error("output", "off".into(), "on".into())),
-            Err(e) => Err(self.session.parse_error(&query, e)),
-        }
+        result
     }
 
     async fn safe_off(&mut self) -> Result<(), InstrumentError> {
         let mut last_error = None;
         for attempt in 1..=SAFE_OFF_ATTEMPTS {
-            match self.try_off().await {
+            match self.try_off(false).await {
                 Ok(()) => {
                     self.output_may_be_on = false;
                     tracing::debug!(resource = %self.session.name(), attempt, "RF output confirmed off");

@@ -12,7 +12,7 @@
 use super::metrics::escape_label;
 use crate::engine::events::ProgressEvent;
 use crate::engine::Engine;
-use crate::store::RunState;
+use crate::store::{BenchFault, RunState};
 use std::collections::HashMap;
 use std::fmt::Write as _;
 use std::sync::atomic::{AtomicU64, Ordering};
@@ -158,6 +158,13 @@ pub fn render_runs_by_state(counts: &[(String, i64)], out: &mut String) {
     );
 }
 
+fn has_fault(bench: &crate::engine::BenchStatus, fault: BenchFault) -> bool {
+    bench
+        .safety_fault
+        .as_ref()
+        .is_some_and(|f| f.fault == fault)
+}
+
 /// Appends each bench's queue, the committed-point counter and the active runs' progress.
 pub fn render_engine(engine: &Engine, gauges: &RunGauges, out: &mut String) {
     let benches = engine.benches();
@@ -187,7 +194,7 @@ pub fn render_engine(engine: &Engine, gauges: &RunGauges, out: &mut String) {
         "gauge",
         "1 while the bench's RF output could not be read back off (the daemon keeps trying), else 0.",
         benches.iter().map(|b| {
-            let unconfirmed = u8::from(b.safety_state == "output_unconfirmed");
+            let unconfirmed = u8::from(has_fault(b, BenchFault::OutputUnconfirmed));
             (bench_label(&b.name), unconfirmed.to_string())
         }),
     );
@@ -197,7 +204,7 @@ pub fn render_engine(engine: &Engine, gauges: &RunGauges, out: &mut String) {
         "gauge",
         "1 while the bench holds its runs after a safety fault until an operator acknowledges, else 0.",
         benches.iter().map(|b| {
-            let held = u8::from(b.safety_state == "awaiting_acknowledgement");
+            let held = u8::from(has_fault(b, BenchFault::AwaitingAcknowledgement));
             (bench_label(&b.name), held.to_string())
         }),
     );

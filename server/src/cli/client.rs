@@ -137,12 +137,7 @@ impl ApiClient {
         path: &str,
         body: &serde_json::Value,
     ) -> Result<T, CliError> {
-        let request = self
-            .http
-            .post(self.url(path))
-            .header(reqwest::header::CONTENT_TYPE, "application/json")
-            .body(body.to_string());
-        let response = self.send(request, path).await?;
+        let response = self.send(self.post_request(path, body), path).await?;
         decode(response, path).await
     }
 
@@ -152,12 +147,16 @@ impl ApiClient {
         path: &str,
         body: &serde_json::Value,
     ) -> Result<(), CliError> {
-        let request = self
-            .http
+        self.send(self.post_request(path, body), path)
+            .await
+            .map(|_| ())
+    }
+
+    fn post_request(&self, path: &str, body: &serde_json::Value) -> reqwest::RequestBuilder {
+        self.http
             .post(self.url(path))
             .header(reqwest::header::CONTENT_TYPE, "application/json")
-            .body(body.to_string());
-        self.send(request, path).await.map(|_| ())
+            .body(body.to_string())
     }
 
     /// Opens the server-sent event stream (optionally of one run); the caller reads its chunks.

@@ -30,22 +30,14 @@ impl BenchInstruments {
     }
 }
 
-/// The start-up interlock for one source: switches its output off (the driver's `safe_off`
-/// reconnects and repeats until the instrument confirms) within the stop paths' budget. A failure
-/// is logged and returned: the engine then flags the bench and keeps trying (`rf_safety`).
+/// The start-up interlock for one source: switches its output off and confirms it
+/// ([`super::safety::switch_off_source`], the stop paths' budget). A failure is logged and
+/// returned: the engine then flags the bench and keeps trying (`rf_safety`).
 pub async fn switch_off_at_start(bench: &str, source: &mut dyn RfSource) -> Result<(), String> {
-    let budget = super::safety::SWITCH_OFF_BUDGET;
-    let error = match tokio::time::timeout(budget, source.safe_off()).await {
-        Ok(Ok(())) => return Ok(()),
-        Ok(Err(e)) => e.to_string(),
-        Err(_) => format!(
-            "{} did not confirm the output off within {:.1} s",
-            source.resource(),
-            budget.as_secs_f64()
-        ),
-    };
-    tracing::error!(bench, error = %error, "could not switch the RF output off at start-up; the bench is held and the daemon keeps trying");
-    Err(error)
+    super::safety::switch_off_source(source).await.map_err(|e| {
+        tracing::error!(bench, error = %e, "could not switch the RF output off at start-up; the bench is held and the daemon keeps trying");
+        e.to_string()
+    })
 }
 
 /// A set-up failure of this bench, named.

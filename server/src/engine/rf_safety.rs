@@ -160,12 +160,6 @@ impl BenchSafety {
         Ok(())
     }
 
-    /// Whether the keeper task is trying to switch the output off right now.
-    pub fn keeper_running(&self) -> bool {
-        self.keeper_running
-            .load(std::sync::atomic::Ordering::SeqCst)
-    }
-
     /// Stores and publishes a new fault state. A store failure is logged: the state in memory
     /// still holds the bench, which is what safety needs.
     async fn set(&self, record: BenchSafetyRecord) {

@@ -11,6 +11,7 @@
 use halfwave_drivers::{InstrumentError, RfSource};
 use std::sync::Arc;
 use tokio::sync::Mutex;
+use tokio::time::Instant;
 
 /// A source shared between the run that drives it and the interlocks that may switch it off.
 pub type SharedSource = Arc<Mutex<Box<dyn RfSource>>>;
@@ -19,43 +20,58 @@ pub type SharedSource = Arc<Mutex<Box<dyn RfSource>>>;
 /// bench to the keeper (`engine::rf_safety`), which goes on trying for as long as the daemon runs.
 pub const SWITCH_OFF_BUDGET: std::time::Duration = std::time::Duration::from_millis(1500);
 
-/// Switches a source's output off and confirms it, retrying (the driver reconnects between
-/// attempts) within [`SWITCH_OFF_BUDGET`]; returns the last error if it could not be confirmed.
-/// The caller then flags the bench (`BenchSafety::output_unconfirmed`).
+/// Switches a shared source's output off and confirms it, retrying (the driver reconnects
+/// between attempts) within [`SWITCH_OFF_BUDGET`], the wait for the source's lock included;
+/// returns the last error if it could not be confirmed. The caller then flags the bench
+/// (`BenchSafety::output_unconfirmed`).
 pub async fn switch_off(source: &SharedSource) -> Result<(), InstrumentError> {
-    let deadline = tokio::time::Instant::now() + SWITCH_OFF_BUDGET;
+    let deadline = Instant::now() + SWITCH_OFF_BUDGET;
+    match tokio::time::timeout_at(deadline, source.lock()).await {
+        Ok(mut src) => switch_off_until(src.as_mut(), deadline).await,
+        Err(_) => Err(budget_spent("the RF source (its lock was held)".into())),
+    }
+}
+
+/// [`switch_off`] for a source not shared yet (the start-up interlock).
+pub async fn switch_off_source(source: &mut dyn RfSource) -> Result<(), InstrumentError> {
+    switch_off_until(source, Instant::now() + SWITCH_OFF_BUDGET).await
+}
+
+async fn switch_off_until(
+    source: &mut dyn RfSource,
+    deadline: Instant,
+) -> Result<(), InstrumentError> {
+    let resource = source.resource().to_string();
     let mut last = None;
     let mut attempt = 0u64;
     loop {
         attempt += 1;
-        let tried = tokio::time::timeout_at(deadline, async {
-            let mut src = source.lock().await;
-            let result = src.safe_off().await;
-            (src.resource().to_string(), result)
-        })
-        .await;
-        match tried {
-            Ok((resource, Ok(()))) => {
+        match tokio::time::timeout_at(deadline, source.safe_off()).await {
+            Ok(Ok(())) => {
                 tracing::debug!(resource, "RF output confirmed off");
                 return Ok(());
             }
-            Ok((resource, Err(e))) => {
+            Ok(Err(e)) => {
                 tracing::warn!(resource, attempt, error = %e, "RF safe-off failed; retrying");
                 last = Some(e);
             }
             Err(_) => break,
         }
         let pause = std::time::Duration::from_millis(100 * attempt.min(5));
-        if tokio::time::Instant::now() + pause >= deadline {
+        if Instant::now() + pause >= deadline {
             break;
         }
         tokio::time::sleep(pause).await;
     }
-    Err(last.unwrap_or_else(|| InstrumentError::Timeout {
-        resource: "the RF source".into(),
+    Err(last.unwrap_or_else(|| budget_spent(resource)))
+}
+
+fn budget_spent(resource: String) -> InstrumentError {
+    InstrumentError::Timeout {
+        resource,
         operation: "switching the output off and reading it back".into(),
         after: SWITCH_OFF_BUDGET,
-    }))
+    }
 }
 
 /// Armed while a run may have RF on; switches the output off when released or dropped.

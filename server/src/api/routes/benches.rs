@@ -1,7 +1,6 @@
 //! Benches: each bench's instruments, its active run, its queue and its RF safety state, as the
 //! engine sees them now; and the operator's acknowledgement of a safety fault.
 
-use crate::api::audit;
 use crate::api::auth::{Operator, Viewer};
 use crate::api::json_body::parse_json;
 use crate::api::params::ApiPath;
@@ -59,17 +58,10 @@ pub async fn acknowledge_bench(
     } else {
         parse_json(&body)?
     };
+    // The engine writes the audit entry in the same transaction as the release.
     state
         .engine()?
         .acknowledge(&bench, &caller.name, &request.note)
         .await?;
-    audit::record(
-        &state,
-        &caller.name,
-        "bench.acknowledge",
-        &format!("bench {bench}"),
-        &request.note,
-    )
-    .await;
     Ok(StatusCode::NO_CONTENT)
 }

@@ -55,8 +55,8 @@ pub async fn events(
                 };
                 let data = match received {
                     Ok(event) => {
-                        let other_run = event.run_id().is_some_and(|run| Some(run) != run_filter);
-                        if run_filter.is_some() && other_run {
+                        // Bench events (no run) go to every watcher.
+                        if matches!((run_filter, event.run_id()), (Some(f), Some(r)) if f != r) {
                             continue;
                         }
                         event_json(&event)
