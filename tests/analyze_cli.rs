@@ -88,7 +88,7 @@ fn a_trace_file_gives_the_modulation_index_lines_and_asymmetry() {
         let uncertainty = number(&out, "/modulation_index/uncertainty");
         assert!((value - beta).abs() < 0.01 * beta, "beta {beta}: {value}");
         assert!(uncertainty > 0.0 && uncertainty < 0.01 * beta);
-        assert_eq!(out["modulation_index"]["method"], "least_squares");
+        assert_eq!(out["modulation_index"]["method"], "whole_trace_fit");
         let lines = out["lines"].as_array().unwrap();
         let carrier = lines.iter().find(|l| l["order"] == 0).unwrap();
         let expected_carrier = 193.4e12 + 0.4 * SPACING_HZ;
@@ -108,6 +108,37 @@ fn a_trace_file_gives_the_modulation_index_lines_and_asymmetry() {
             "{first}"
         );
         assert_eq!(out["resolution_bandwidth_estimated"], true);
+    }
+}
+
+#[test]
+fn the_modulation_frequency_is_read_from_the_trace_and_a_wrong_one_refused() {
+    // Without --modulation-frequency the spacing is read from the lines; a spacing the trace
+    // contradicts (twice or half the real one) is refused, naming the spacing the trace shows.
+    let dir = scratch("spacing");
+    let path = dir.join("comb.csv");
+    write_csv(&path, &draw(&synthetic(1.3, 0.2), 21));
+    let out = json(&halfwave(&["analyze", path.to_str().unwrap()]));
+    assert_eq!(out["modulation_frequency_from_trace"], true);
+    let read = number(&out, "/modulation_frequency_hz");
+    assert!((read - SPACING_HZ).abs() < 1e-3 * SPACING_HZ, "{read}");
+    assert!((number(&out, "/modulation_index/value") - 1.3).abs() < 0.01 * 1.3);
+    for wrong in ["4e9", "1e9"] {
+        let refused = halfwave(&[
+            "analyze",
+            "--modulation-frequency",
+            wrong,
+            path.to_str().unwrap(),
+        ]);
+        assert!(!refused.status.success(), "{wrong} accepted");
+        let stderr = String::from_utf8_lossy(&refused.stderr);
+        let shown: f64 = stderr
+            .split("the trace shows lines ")
+            .nth(1)
+            .and_then(|rest| rest.split(' ').next())
+            .and_then(|n| n.parse().ok())
+            .unwrap_or_else(|| panic!("no spacing named: {stderr}"));
+        assert!((shown - SPACING_HZ).abs() < 1e-2 * SPACING_HZ, "{stderr}");
     }
 }
 
@@ -146,7 +177,12 @@ fn a_reference_and_a_given_resolution_are_used() {
         .collect();
     assert_eq!(
         methods,
-        ["least_squares", "sideband_ratio", "carrier_depletion"]
+        [
+            "whole_trace_fit",
+            "least_squares",
+            "sideband_ratio",
+            "carrier_depletion"
+        ]
     );
     for estimate in out["estimates"].as_array().unwrap() {
         let value = estimate["value"].as_f64().unwrap();

@@ -1,8 +1,11 @@
 //! Speed of the trace analysis: comb location, line measurement and the least-squares fit on a
 //! 10,001-point trace, the work done for every spectrum a sweep records.
 //!
-//! Run with `cargo bench -p halfwave-server --bench analysis`. The target is a median under
-//! 100 microseconds for the whole `analyze_trace` on a 2-core machine.
+//! Run with `cargo bench -p halfwave-server --bench analysis`. Targets on a 2-core machine: the
+//! whole-trace fit (`fit::fit_trace`, started from the line-by-line estimate) under 1 ms median,
+//! timed in the same run as the line-by-line method it starts from (`measure_comb` +
+//! `least_squares`), so that the two can be compared; the whole `analyze_trace` (both, plus the
+//! spacing check and the cross-checks) is timed as well.
 //!
 //! Two clocks: criterion's usual wall clock, and the CPU time of the benchmark thread
 //! (`CLOCK_THREAD_CPUTIME_ID`, the `cpu-time` group). On a machine shared with other builds the wall
@@ -12,6 +15,7 @@
 use criterion::measurement::{Measurement, ValueFormatter};
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 use halfwave::analysis::comb::measure_comb;
+use halfwave::analysis::fit::{fit_trace, FitStart, LineShape};
 use halfwave::analysis::index::{least_squares, FitData};
 use halfwave::analysis::synthetic::SyntheticComb;
 use halfwave::analysis::{analyze_trace, AnalysisOptions};
@@ -48,6 +52,39 @@ fn bench(c: &mut Criterion) {
         let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
         c.bench_function(&format!("least-squares fit beta {beta}"), |b| {
             b.iter(|| least_squares(black_box(&data)))
+        });
+        c.bench_function(
+            &format!("old method (lines + least squares) beta {beta}"),
+            |b| {
+                b.iter(|| {
+                    let comb = measure_comb(black_box(&trace), SPACING, None, &options).unwrap();
+                    let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
+                    least_squares(&data)
+                })
+            },
+        );
+        let start = FitStart {
+            beta: least_squares(&data).unwrap().value,
+            carrier_hz: comb.carrier_frequency_hz,
+            floor_mw: comb.floor_mw,
+            strongest_line_peak_mw: comb.lines.iter().map(|l| l.power_mw).fold(0.0, f64::max),
+            asymmetry: true,
+        };
+        let shape = LineShape::pseudo_voigt(
+            comb.resolution_bandwidth_hz,
+            comb.resolution_bandwidth_hz,
+            0.02,
+        );
+        c.bench_function(&format!("whole-trace fit beta {beta}"), |b| {
+            b.iter(|| {
+                fit_trace(
+                    black_box(&trace),
+                    SPACING,
+                    &shape,
+                    &start,
+                    comb.noise_sigma_db,
+                )
+            })
         });
     }
 }
@@ -121,6 +158,41 @@ fn bench_cpu_time(c: &mut Criterion<ThreadCpuTime>) {
         analyze_trace(&trace, SPACING, None, &options).expect("the synthetic trace analyses");
         group.bench_function(format!("analyze_trace 10001 points beta {beta}"), |b| {
             b.iter(|| analyze_trace(black_box(&trace), SPACING, None, &options))
+        });
+        let comb = measure_comb(&trace, SPACING, None, &options).expect("comb found");
+        let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
+        group.bench_function(
+            format!("old method (lines + least squares) beta {beta}"),
+            |b| {
+                b.iter(|| {
+                    let comb = measure_comb(black_box(&trace), SPACING, None, &options).unwrap();
+                    let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
+                    least_squares(&data)
+                })
+            },
+        );
+        let start = FitStart {
+            beta: least_squares(&data).unwrap().value,
+            carrier_hz: comb.carrier_frequency_hz,
+            floor_mw: comb.floor_mw,
+            strongest_line_peak_mw: comb.lines.iter().map(|l| l.power_mw).fold(0.0, f64::max),
+            asymmetry: true,
+        };
+        let shape = LineShape::pseudo_voigt(
+            comb.resolution_bandwidth_hz,
+            comb.resolution_bandwidth_hz,
+            0.02,
+        );
+        group.bench_function(format!("whole-trace fit beta {beta}"), |b| {
+            b.iter(|| {
+                fit_trace(
+                    black_box(&trace),
+                    SPACING,
+                    &shape,
+                    &start,
+                    comb.noise_sigma_db,
+                )
+            })
         });
     }
     group.finish();

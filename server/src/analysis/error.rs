@@ -71,6 +71,26 @@ pub enum AnalysisError {
     #[error("V_pi fit: {0}")]
     BadSweep(String),
 
+    /// The whole-trace fit could not be made.
+    #[error("whole-trace fit: {0}")]
+    FitFailed(String),
+
+    /// The trace shows lines at another spacing than the modulation frequency given.
+    #[error(
+        "the trace shows lines {shown_hz:.0} Hz apart ({lines} lines), not the {given} given as the modulation frequency; \
+         check the generator frequency and the drive chain, or give --modulation-frequency {shown_hz:.0}"
+    )]
+    SpacingMismatch {
+        given: Hz,
+        shown: Hz,
+        shown_hz: f64,
+        lines: usize,
+    },
+
+    /// No modulation frequency was given and the trace shows no regular comb to read it from.
+    #[error("the trace shows no regular comb of lines to read the modulation frequency from; give it with --modulation-frequency <HZ>")]
+    NoSpacing,
+
     /// A V_pi-versus-frequency set cannot give a response curve.
     #[error("response curve: {0}")]
     BadResponse(String),

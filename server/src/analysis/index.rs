@@ -34,6 +34,8 @@ const BETA_CEILING_PAST_LAST_LINE: f64 = 4.0;
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum IndexMethod {
+    /// The whole displayed trace fitted with the instrument's line shape ([`super::fit`]).
+    WholeTraceFit,
     LeastSquares,
     SidebandRatio,
     CarrierDepletion,

@@ -7,6 +7,8 @@
 //! - [`chain`]: generator level <-> level at the modulator <-> peak voltage.
 //! - [`bessel`]: J_n tabulated once for fast fitting, with its reference checks.
 //! - [`comb`]: finding the comb on a trace and measuring its lines and floor.
+//! - [`fit`]: the whole displayed trace fitted with the instrument's line shape (the primary).
+//! - [`spacing`]: the line spacing read from the trace alone.
 //! - [`index`]: the modulation index by least squares, sideband ratio and carrier depletion.
 //! - [`trace_analysis`]: one trace in, every estimate and the line table out.
 //! - [`vpi`]: V_pi from a drive-level sweep, with the points that break the line flagged.
@@ -18,8 +20,10 @@ pub mod bessel;
 pub mod chain;
 pub mod comb;
 pub mod error;
+pub mod fit;
 pub mod index;
 pub mod response;
+pub mod spacing;
 pub mod synthetic;
 pub mod trace_analysis;
 pub mod vpi;
@@ -31,6 +35,7 @@ pub use error::AnalysisError;
 pub use index::{IndexEstimate, IndexMethod};
 pub use response::{response_curve, ResponseCurve, ResponsePoint, VpiAtFrequency};
 pub use trace_analysis::{
-    analyze_trace, AnalysisOptions, LineMeasurement, OrderAsymmetry, TraceAnalysis,
+    analyze_trace, analyze_trace_with_model, AnalysisOptions, CrossCheck, LineMeasurement,
+    OrderAsymmetry, TraceAnalysis,
 };
 pub use vpi::{fit_v_pi, CarrierNull, DrivePoint, ExcludedPoint, VpiFit};

@@ -6,7 +6,9 @@
 //! reference carrier when an RF-off trace is given.
 
 use super::comb::{self, MeasuredComb};
-use super::index::{self, FitData, IndexEstimate};
+use super::fit::{self, FitStart, FittedModel, LineShape, WholeTraceFit};
+use super::index::{self, FitData, IndexEstimate, IndexMethod};
+use super::spacing;
 use super::AnalysisError;
 use halfwave_units::{Dbm, Hz, Trace};
 use serde::Serialize;
@@ -45,6 +47,10 @@ pub struct LineMeasurement {
     /// Standard uncertainty of the line power, dB (`None` with the power).
     pub power_uncertainty_db: Option<f64>,
     pub above_floor: bool,
+    /// The line's peak power in the whole-trace fit (P0 w_n), which may lie below the floor.
+    pub fitted_power_dbm: Dbm,
+    /// Whether the fitted line's peak rises above the fitted floor.
+    pub fitted_above_floor: bool,
 }
 
 /// Level difference between order +n and order -n.
@@ -59,6 +65,8 @@ pub struct OrderAsymmetry {
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct TraceAnalysis {
     pub modulation_frequency_hz: Hz,
+    /// The line spacing read from the trace alone, when it shows a regular comb.
+    pub spacing_from_trace_hz: Option<Hz>,
     pub carrier_frequency_hz: Hz,
     pub resolution_bandwidth_hz: Hz,
     /// True when the resolution bandwidth was estimated from the line shape.
@@ -68,22 +76,72 @@ pub struct TraceAnalysis {
     pub noise_sigma_db: f64,
     /// Power of the unmodulated carrier, from the RF-off reference trace when one was given.
     pub unmodulated_power_dbm: Option<Dbm>,
-    /// The primary estimate (least squares over all resolved orders).
+    /// The primary estimate: the whole-trace fit, with its combined standard uncertainty.
     pub modulation_index: IndexEstimate,
-    /// Every estimate that applied, the primary first, for cross-checks.
+    /// Every estimate that applied, the primary first, then the line-by-line least squares, the
+    /// sideband ratio and the carrier depletion as cross-checks.
     pub estimates: Vec<IndexEstimate>,
+    /// The cross-checks against the fit.
+    pub cross_checks: Vec<CrossCheck>,
+    /// The whole-trace fit in full: parameters, line shape, both uncertainty parts.
+    pub fit: WholeTraceFit,
     pub lines: Vec<LineMeasurement>,
     pub asymmetry: Vec<OrderAsymmetry>,
 }
 
+/// The spacing the trace shows may differ from the one given by this fraction before the trace
+/// is refused (the estimate is good to a small fraction of a percent on a resolved comb).
+const SPACING_TOLERANCE: f64 = 0.02;
+
+/// A reference trace gives the measured line shape when it has at least this many points across
+/// the line's half-maximum width (fewer cannot be interpolated between samples).
+const MEASURED_SHAPE_MIN_POINTS: f64 = 5.0;
+
+/// How far a cross-check estimate lies from the whole-trace fit.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct CrossCheck {
+    pub method: IndexMethod,
+    pub value: f64,
+    pub uncertainty: f64,
+    /// value - fitted beta.
+    pub difference: f64,
+    /// The difference over the combined standard uncertainty of both (|E_n| <= 2 agrees at k = 2).
+    pub normalised_difference: f64,
+    pub agrees: bool,
+}
+
 /// Analyses one trace of a comb with line spacing `modulation_frequency`, optionally with an
-/// RF-off `reference` trace (carrier position and unmodulated power).
+/// RF-off `reference` trace (the measured line shape, the carrier position and the unmodulated
+/// power).
 pub fn analyze_trace(
     trace: &Trace,
     modulation_frequency: Hz,
     reference: Option<&Trace>,
     options: &AnalysisOptions,
 ) -> Result<TraceAnalysis, AnalysisError> {
+    analyze_trace_with_model(trace, modulation_frequency, reference, options).map(|(a, _)| a)
+}
+
+/// [`analyze_trace`], also giving the fitted model (to draw it over the trace).
+pub fn analyze_trace_with_model(
+    trace: &Trace,
+    modulation_frequency: Hz,
+    reference: Option<&Trace>,
+    options: &AnalysisOptions,
+) -> Result<(TraceAnalysis, FittedModel), AnalysisError> {
+    comb::check_span(trace, modulation_frequency)?;
+    let shown = spacing::estimate_spacing(trace);
+    if let Some(s) = shown {
+        let off = (s.spacing_hz.0 - modulation_frequency.0).abs();
+        if s.lines >= 3 && off > SPACING_TOLERANCE * modulation_frequency.0 {
+            return Err(AnalysisError::SpacingMismatch {
+                given: modulation_frequency,
+                shown: s.spacing_hz,
+                shown_hz: s.spacing_hz.0,
+                lines: s.lines,
+            });
+        }
+    }
     let mut options = *options;
     let mut estimated_in_first_pass = None;
     let reference_carrier = match reference {
@@ -128,12 +186,61 @@ pub fn analyze_trace(
         measured.floor_mw,
         measured.floor_uncertainty_mw,
     );
-    let primary = index::least_squares(&data).ok_or(AnalysisError::TooFewLines {
+    let line_by_line = index::least_squares(&data).ok_or(AnalysisError::TooFewLines {
         found: measured.lines.iter().filter(|l| l.above_floor).count(),
         needed: 4,
     })?;
-    let mut estimates = vec![primary.clone()];
-    estimates.extend(index::sideband_ratio(&measured.lines, &data, primary.value));
+
+    // The whole-trace fit, from the line-by-line estimate.
+    let shape = reference
+        .and_then(|r| LineShape::measured(r, MEASURED_SHAPE_MIN_POINTS))
+        .unwrap_or_else(|| {
+            LineShape::pseudo_voigt(
+                measured.resolution_bandwidth_hz,
+                measured.resolution_bandwidth_hz,
+                0.02,
+            )
+        });
+    let strongest = measured
+        .lines
+        .iter()
+        .map(|l| l.power_mw)
+        .fold(0.0, f64::max);
+    let start = FitStart {
+        beta: line_by_line.value,
+        carrier_hz: measured.carrier_frequency_hz,
+        floor_mw: measured.floor_mw,
+        strongest_line_peak_mw: strongest,
+        asymmetry: true,
+    };
+    let (fit, model) = fit::fit_trace(
+        trace,
+        modulation_frequency,
+        &shape,
+        &start,
+        measured.noise_sigma_db,
+    )?;
+    let step = (trace.span().1 .0 - trace.span().0 .0) / (trace.len() - 1) as f64;
+    if fit.line_width_hz < MIN_POINTS_PER_WIDTH * step {
+        return Err(AnalysisError::TooCoarse(format!(
+            "the points are {} apart but the lines only {} wide (at least {MIN_POINTS_PER_WIDTH} point per line width is needed)",
+            Hz(step),
+            Hz(fit.line_width_hz)
+        )));
+    }
+    let primary = IndexEstimate {
+        method: IndexMethod::WholeTraceFit,
+        value: fit.modulation_index,
+        uncertainty: fit.uncertainty_combined,
+        residual: fit.residual_db,
+        orders_used: fit.orders.clone(),
+    };
+    let mut estimates = vec![primary.clone(), line_by_line.clone()];
+    estimates.extend(index::sideband_ratio(
+        &measured.lines,
+        &data,
+        fit.modulation_index,
+    ));
     let unmodulated = reference_carrier.map(|r| {
         (
             r.integral / measured.equivalent_bandwidth_hz,
@@ -146,31 +253,60 @@ pub fn analyze_trace(
             &data,
             power,
             sigma,
-            primary.value,
+            fit.modulation_index,
         ));
     }
-    Ok(TraceAnalysis {
+    let cross_checks = estimates
+        .iter()
+        .skip(1)
+        .map(|e| {
+            let difference = e.value - fit.modulation_index;
+            let combined = (e.uncertainty.powi(2) + fit.uncertainty_combined.powi(2)).sqrt();
+            let normalised = difference / combined;
+            CrossCheck {
+                method: e.method,
+                value: e.value,
+                uncertainty: e.uncertainty,
+                difference,
+                normalised_difference: normalised,
+                agrees: normalised.abs() <= 2.0,
+            }
+        })
+        .collect();
+    let lines = line_table(&measured, &model);
+    let analysis = TraceAnalysis {
         modulation_frequency_hz: modulation_frequency,
-        carrier_frequency_hz: Hz(measured.carrier_frequency_hz),
+        spacing_from_trace_hz: shown.map(|s| s.spacing_hz),
+        carrier_frequency_hz: fit.carrier_frequency_hz,
         resolution_bandwidth_hz: Hz(measured.resolution_bandwidth_hz),
         resolution_bandwidth_estimated: measured.resolution_estimated,
-        noise_floor_dbm: Dbm(10.0 * measured.floor_mw.log10()),
+        noise_floor_dbm: Dbm(fit.floor_dbm),
         noise_sigma_db: measured.noise_sigma_db,
         unmodulated_power_dbm: unmodulated.and_then(|(p, _)| Dbm::from_milliwatts(p)),
         modulation_index: primary,
         estimates,
-        lines: line_table(&measured),
+        cross_checks,
+        fit,
+        lines,
         asymmetry: asymmetry(&measured),
-    })
+    };
+    Ok((analysis, model))
 }
 
-fn line_table(measured: &MeasuredComb) -> Vec<LineMeasurement> {
+/// The fitted line width must span at least this many points.
+const MIN_POINTS_PER_WIDTH: f64 = 0.8;
+
+fn line_table(measured: &MeasuredComb, model: &FittedModel) -> Vec<LineMeasurement> {
+    let floor = model.floor_mw;
     measured
         .lines
         .iter()
         .map(|l| {
             let power = Dbm::from_milliwatts(l.power_mw);
+            let fitted = model.line_power_mw(l.order);
             LineMeasurement {
+                fitted_power_dbm: Dbm(10.0 * fitted.max(1e-300).log10()),
+                fitted_above_floor: fitted > floor,
                 order: l.order,
                 frequency_hz: Hz(l.frequency_hz),
                 power_dbm: power,
@@ -261,7 +397,7 @@ mod tests {
             let trace = draw(&synthetic, 100 + seed as u64);
             let result = analyze_trace(&trace, SPACING, None, &AnalysisOptions::default()).unwrap();
             let fit = &result.modulation_index;
-            assert_eq!(fit.method, IndexMethod::LeastSquares);
+            assert_eq!(fit.method, IndexMethod::WholeTraceFit);
             assert!(
                 relative_error(fit.value, beta) < 0.01,
                 "beta {beta}: fitted {} +- {}",
@@ -320,6 +456,7 @@ mod tests {
             assert_eq!(
                 methods,
                 [
+                    IndexMethod::WholeTraceFit,
                     IndexMethod::LeastSquares,
                     IndexMethod::SidebandRatio,
                     IndexMethod::CarrierDepletion

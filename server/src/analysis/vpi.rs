@@ -11,10 +11,18 @@
 //! drive voltage at the null gives a second, independent V_pi.
 
 use super::bessel::J0_FIRST_ZERO;
+use super::fit::SHAPE_SYSTEMATIC_MEASURED;
 use super::AnalysisError;
 use halfwave_units::Volts;
 use serde::Serialize;
 use std::f64::consts::PI;
+
+/// No point's standard uncertainty is taken below this fraction of its beta (the line-shape term
+/// of the trace fit, [`SHAPE_SYSTEMATIC_MEASURED`]): a point whose noise happens to be tiny, such
+/// as one near the carrier null, cannot carry the fit alone.
+pub const POINT_UNCERTAINTY_FLOOR_RELATIVE: f64 = SHAPE_SYSTEMATIC_MEASURED;
+/// ... nor below this absolute value of beta.
+const POINT_UNCERTAINTY_FLOOR_ABSOLUTE: f64 = 1e-5;
 
 /// A point is off the line when it misses by more than this many standard uncertainties...
 const OUTLIER_SIGMAS: f64 = 4.0;
@@ -61,8 +69,17 @@ pub struct VpiFit {
     pub v_pi_uncertainty: Volts,
     /// pi / V_pi, the modulation index per volt of peak drive.
     pub index_per_volt: f64,
-    /// chi^2 / (n - 1) of the used points.
+    /// chi^2 / (n - 1) of the used points (with the floored uncertainties).
     pub reduced_chi_squared: f64,
+    /// Factor applied to the slope's uncertainty: sqrt(reduced chi^2) when above 1 (the points
+    /// disagree more than their uncertainties say), else 1.
+    pub uncertainty_inflation: f64,
+    /// The floor put under each point's relative uncertainty.
+    pub point_uncertainty_floor_relative: f64,
+    /// Index (in the input) of the point with the largest weight in the slope, and its share of
+    /// the total weight (w V^2 / sum w V^2).
+    pub heaviest_point: Option<usize>,
+    pub heaviest_weight_share: f64,
     /// Indices of the points in the fit.
     pub used: Vec<usize>,
     pub excluded: Vec<ExcludedPoint>,
@@ -71,9 +88,21 @@ pub struct VpiFit {
 
 /// Fits beta = (pi / V_pi) V_pk through the origin over a drive sweep.
 pub fn fit_v_pi(points: &[DrivePoint]) -> Result<VpiFit, AnalysisError> {
+    let floored: Vec<DrivePoint> = points
+        .iter()
+        .map(|p| DrivePoint {
+            uncertainty: p
+                .uncertainty
+                .max(POINT_UNCERTAINTY_FLOOR_RELATIVE * p.modulation_index.abs())
+                .max(POINT_UNCERTAINTY_FLOOR_ABSOLUTE),
+            ..*p
+        })
+        .collect();
+    let original = points;
+    let points = &floored[..];
     let mut excluded = Vec::new();
     let mut usable = Vec::with_capacity(points.len());
-    for (index, p) in points.iter().enumerate() {
+    for (index, p) in original.iter().enumerate() {
         let valid = p.v_peak.0.is_finite()
             && p.v_peak.0 > 0.0
             && p.modulation_index.is_finite()
@@ -172,8 +201,19 @@ pub fn fit_v_pi(points: &[DrivePoint]) -> Result<VpiFit, AnalysisError> {
         })
         .sum();
     let reduced = chi2 / (used.len() - 1) as f64;
-    let slope_sigma = slope_sigma * reduced.max(1.0).sqrt();
+    let inflation = reduced.max(1.0).sqrt();
+    let slope_sigma = slope_sigma * inflation;
+    let weights: Vec<(usize, f64)> = used
+        .iter()
+        .map(|&i| (i, (points[i].v_peak.0 / points[i].uncertainty).powi(2)))
+        .collect();
+    let total: f64 = weights.iter().map(|w| w.1).sum();
+    let heaviest = weights.iter().copied().max_by(|a, b| a.1.total_cmp(&b.1));
     Ok(VpiFit {
+        uncertainty_inflation: inflation,
+        point_uncertainty_floor_relative: POINT_UNCERTAINTY_FLOOR_RELATIVE,
+        heaviest_point: heaviest.map(|h| h.0),
+        heaviest_weight_share: heaviest.map_or(0.0, |h| h.1 / total),
         v_pi: Volts(PI / slope),
         v_pi_uncertainty: Volts(PI * slope_sigma / (slope * slope)),
         index_per_volt: slope,
@@ -311,6 +351,28 @@ mod tests {
         let expected = PI * (1.0 / svv.sqrt()) / (k * k);
         assert!((fit.v_pi_uncertainty.0 - expected).abs() < 1e-12 * expected.max(1.0));
         assert!(fit.carrier_null.is_none());
+    }
+
+    #[test]
+    fn no_single_point_carries_the_fit() {
+        // Nine points with 0.2 % uncertainty, one of them (near the carrier null) claiming 1e-6
+        // and biased by +1 %: without a floor it would hold 99.9 % of the weight and pull V_pi
+        // 1 % off. With the floor (the line-shape term of the trace fit) its weight share is about
+        // a half, the result moves half as far, and the reduced chi-squared exposes the
+        // disagreement and inflates the uncertainty.
+        let mut points: Vec<DrivePoint> = (1..=9).map(|k| ideal(0.35 * k as f64, 0.002)).collect();
+        points[6].modulation_index *= 1.01;
+        points[6].uncertainty = 1e-6;
+        let fit = fit_v_pi(&points).unwrap();
+        assert_eq!(fit.heaviest_point, Some(6));
+        assert!((0.3..0.7).contains(&fit.heaviest_weight_share), "{fit:?}");
+        assert!((fit.v_pi.0 - V_PI).abs() < 0.007 * V_PI, "{fit:?}");
+        assert!(fit.reduced_chi_squared > 4.0, "{fit:?}");
+        assert!(fit.uncertainty_inflation > 2.0, "{fit:?}");
+        assert_eq!(
+            fit.point_uncertainty_floor_relative,
+            POINT_UNCERTAINTY_FLOOR_RELATIVE
+        );
     }
 
     #[test]

@@ -24,7 +24,8 @@ pub struct AnalyzeArgs {
     /// A trace CSV (header `frequency_hz,power_dbm`) or a sweep description (`.json`).
     #[arg(value_name = "TRACE.csv|SWEEP.json")]
     pub input: PathBuf,
-    /// RF drive frequency, which is the line spacing of the comb (needed for a trace CSV).
+    /// RF drive frequency, which is the line spacing of the comb; for a trace CSV it is read
+    /// from the trace when left out, and a trace that shows another spacing is refused.
     #[arg(long, value_name = "HZ")]
     pub modulation_frequency: Option<f64>,
     /// A trace taken with the RF output off: the carrier position and the unmodulated power.
@@ -175,19 +176,21 @@ fn options(resolution_bandwidth: Option<f64>) -> AnalysisOptions {
 pub struct TraceReport {
     pub trace: PathBuf,
     pub reference: Option<PathBuf>,
+    /// True when the modulation frequency was read from the trace (no --modulation-frequency).
+    pub modulation_frequency_from_trace: bool,
     #[serde(flatten)]
     pub analysis: TraceAnalysis,
 }
 
 fn analyze_trace_file(args: &AnalyzeArgs) -> Result<TraceReport, CliError> {
-    let Some(modulation) = args.modulation_frequency else {
-        return Err(CliError::new(format!(
-            "{}: give the RF drive frequency with --modulation-frequency <HZ> to analyse a trace file \
-             (or pass a sweep `.json`)",
-            args.input.display()
-        )));
-    };
     let trace = TraceFile::read(&args.input)?;
+    let from_trace = args.modulation_frequency.is_none();
+    let modulation = match args.modulation_frequency {
+        Some(given) => given,
+        None => crate::analysis::spacing::estimate_spacing(&trace.trace)
+            .map(|s| s.spacing_hz.0)
+            .ok_or_else(|| trace.error(&AnalysisError::NoSpacing))?,
+    };
     let reference = args.reference.as_deref().map(TraceFile::read).transpose()?;
     let analysis = analyze_with_reference(
         &trace,
@@ -198,6 +201,7 @@ fn analyze_trace_file(args: &AnalyzeArgs) -> Result<TraceReport, CliError> {
     Ok(TraceReport {
         trace: trace.path,
         reference: reference.map(|r| r.path),
+        modulation_frequency_from_trace: from_trace,
         analysis,
     })
 }

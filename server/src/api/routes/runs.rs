@@ -510,6 +510,11 @@ fn marked_lines(point: &PointRecord) -> Vec<MarkedLine> {
                 order: i32::try_from(order).ok()?,
                 frequency_hz,
                 power_dbm,
+                above_floor: row
+                    .get("fitted_above_floor")
+                    .or_else(|| row.get("above_floor"))
+                    .and_then(|v| v.as_bool())
+                    .unwrap_or(true),
             })
         })
         .collect()
@@ -524,12 +529,37 @@ async fn spectrum_of(state: &AppState, point: &PointRecord) -> Result<Response, 
         point.generator_level_dbm,
         point.id
     );
+    // The fitted model is drawn over the trace: the analysis is run again on the stored trace
+    // (with the frequency's RF-off reference when one was stored), a millisecond's work.
+    let reference = state
+        .store()
+        .reference_traces(point.run_id)
+        .await
+        .ok()
+        .and_then(|r| {
+            r.into_iter()
+                .find(|r| r.frequency_index == point.frequency_index)
+        })
+        .map(|r| r.trace);
+    let fitted = crate::analysis::analyze_trace_with_model(
+        &trace,
+        point.frequency(),
+        reference.as_ref(),
+        &crate::analysis::AnalysisOptions::default(),
+    )
+    .ok();
+    let model_dbm = fitted
+        .as_ref()
+        .map(|(_, model)| model.levels_dbm(trace.frequency_hz()));
+    let floor_dbm = fitted.as_ref().map(|(a, _)| a.fit.floor_dbm);
     let (frequency_hz, power_dbm, _) = trace.into_parts();
     let plot = SpectrumPlot {
         title,
         frequency_hz,
         power_dbm,
         lines: marked_lines(point),
+        model_dbm,
+        floor_dbm,
     };
     svg(plots::spectrum_svg(&plot))
 }

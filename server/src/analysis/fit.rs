@@ -1,0 +1,1119 @@
+//! The whole displayed trace fitted with a forward model of the instrument.
+//!
+//! What an analyzer shows for a phase-modulated laser is, point by point,
+//!
+//! ```text
+//! M(f) = F + P0 * sum_n w_n * K(f - f_c - n f_m),   w_n = J_n(beta)^2 (1 + a n)^2
+//! ```
+//!
+//! the Jacobi-Anger comb (DLMF 10.12.1: line powers J_n(beta)^2) seen through the instrument's
+//! line shape K (unit peak) on top of a floor F, with w_n = (J_n + (m/2)(J_{n-1} + J_{n+1}))^2
+//! when residual amplitude modulation of depth m in phase with the drive is present:
+//! (1 + m cos wt) e^{i beta sin wt} has lines i^n [J_n + (m/2)(J_{n-1} + J_{n+1})]
+//! = i^n J_n (1 + m n / beta) by the recurrence J_{n-1} + J_{n+1} = (2n / x) J_n (DLMF 10.6.1),
+//! so that w_n = J_n^2 (1 + a n)^2 with a = m / beta: the first-order asymmetry. The quadrature
+//! part of the AM, second order in m, is left out. K is either measured (the RF-off reference trace: the laser line as this analyzer
+//! shows it, floor removed, normalised, its wings averaged over a window growing with the
+//! distance from the line, read back by cubic interpolation at any sub-sample offset) or
+//! parametric (a pseudo-Voigt, unit-peak mix of a Gaussian and a Lorentzian of one width, with
+//! the width and the mix fitted: it is a Gaussian at eta = 0 and a Lorentzian at eta = 1).
+//!
+//! The fit is weighted least squares on the displayed levels in dB: display noise is a spread of
+//! the level in dB, on the lines and on the floor alike, so every point carries the same weight
+//! and the residual of point i is 10 log10 M(f_i) - y_i. beta, ln P0, f_c, ln F and a (and the
+//! shape's width and mix when parametric) are found by Levenberg-Marquardt with the analytic
+//! Jacobian, starting from the line-by-line estimate (which has already chosen the branch past
+//! the carrier null). Points where no line reaches a thousandth of the floor only inform F; they
+//! enter as one block (count, sum, sum of squares of their levels), exactly, so the cost grows
+//! with the points under the lines, not with the span.
+//!
+//! Uncertainty (GUM, JCGM 100:2008): the statistical part is the covariance (J^T J)^-1 scaled by
+//! the residual variance s^2 = SSR / (N - p) (Type A, clause 4.2); the line-shape part is a
+//! stated relative term ([`SHAPE_SYSTEMATIC_MEASURED`], [`SHAPE_SYSTEMATIC_PARAMETRIC`], Type B,
+//! clause 4.3) for what the shape model may get wrong; both are reported and combined in
+//! quadrature (clause 5.1.2, uncorrelated inputs).
+
+use super::bessel::{BesselTable, MAX_ORDER};
+use super::AnalysisError;
+use halfwave_units::{Hz, Trace};
+use serde::Serialize;
+use std::cell::RefCell;
+
+/// 10 / ln 10: a natural log times this is a level in dB.
+const DB_PER_NEPER: f64 = 4.342_944_819_032_518;
+
+/// A line contributes to a point when it reaches this fraction of the floor there (0.004 dB).
+const CONTRIBUTION_FLOOR: f64 = 1e-3;
+
+/// Relative standard uncertainty of beta for the line-shape model when K is measured on the
+/// reference trace. Set from the randomised study in `tests/measurement_truth.rs`: the largest
+/// root-mean-square excess of |error| over the statistical uncertainty among its conditions with
+/// a measured shape, rounded up.
+pub const SHAPE_SYSTEMATIC_MEASURED: f64 = 5e-4;
+/// The same for the parametric (pseudo-Voigt) shape, which cannot follow a true Voigt profile or
+/// an analyzer's own filter exactly; set the same way from the conditions without a reference.
+pub const SHAPE_SYSTEMATIC_PARAMETRIC: f64 = 1e-3;
+
+/// Most Levenberg-Marquardt iterations.
+const MAX_ITERATIONS: usize = 60;
+
+/// Parameter slots.
+const BETA: usize = 0;
+const LN_P0: usize = 1;
+const CENTRE: usize = 2;
+const LN_FLOOR: usize = 3;
+const ASYM: usize = 4;
+const LN_WIDTH: usize = 5;
+const ETA: usize = 6;
+const LN_WIDTH_L: usize = 7;
+const NP: usize = 8;
+
+/// Which line shape the fit used.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ShapeKind {
+    /// Measured on the RF-off reference trace.
+    Measured,
+    /// Pseudo-Voigt with fitted width and mix.
+    PseudoVoigt,
+}
+
+/// The instrument line shape K(x), unit peak at x = 0.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LineShape {
+    kind: ShapeKind,
+    /// Full width at half maximum of the Gaussian part (pseudo-Voigt) or of the measured line, Hz.
+    width_hz: f64,
+    /// Pseudo-Voigt: full width at half maximum of the Lorentzian part, Hz.
+    width_l_hz: f64,
+    /// Pseudo-Voigt Lorentzian fraction of the peak, 0..1.
+    eta: f64,
+    /// Measured: K at x0 + j h.
+    table: Vec<f64>,
+    x0: f64,
+    h: f64,
+    /// Measured: for each j, the largest table value at or beyond j away from the centre (for
+    /// the reach of a line).
+    envelope: Vec<f64>,
+    /// Index of the table's peak.
+    peak_index: usize,
+}
+
+/// K, dK/dx, dK/d(ln Gaussian width), dK/d(eta), dK/d(ln Lorentzian width).
+#[derive(Debug, Clone, Copy, Default)]
+struct ShapeValue {
+    k: f64,
+    dx: f64,
+    dw: f64,
+    de: f64,
+    dl: f64,
+}
+
+impl LineShape {
+    /// A pseudo-Voigt: a Gaussian of full width `width_hz` and a Lorentzian of full width
+    /// `lorentzian_width_hz`, mixed with Lorentzian peak fraction `eta`. With two widths it follows
+    /// both the core of a true Voigt profile (Gaussian-like) and its far wings (the Lorentzian's
+    /// 1/x^2), which one shared width cannot.
+    pub fn pseudo_voigt(width_hz: f64, lorentzian_width_hz: f64, eta: f64) -> LineShape {
+        LineShape {
+            kind: ShapeKind::PseudoVoigt,
+            width_hz,
+            width_l_hz: lorentzian_width_hz,
+            eta: eta.clamp(0.0, 1.0),
+            table: Vec::new(),
+            x0: 0.0,
+            h: 1.0,
+            envelope: Vec::new(),
+            peak_index: 0,
+        }
+    }
+
+    /// The kind of shape.
+    pub fn kind(&self) -> ShapeKind {
+        self.kind
+    }
+
+    /// Full width at half maximum, Hz.
+    pub fn width_hz(&self) -> f64 {
+        self.width_hz
+    }
+
+    /// Lorentzian peak fraction (pseudo-Voigt only; 0 for a measured shape).
+    pub fn eta(&self) -> f64 {
+        self.eta
+    }
+
+    /// Full width at half maximum of the whole shape, Hz.
+    pub fn fwhm(&self) -> f64 {
+        if self.kind == ShapeKind::Measured {
+            return self.width_hz;
+        }
+        let (mut lo, mut hi) = (0.0, 10.0 * self.width_hz.max(self.width_l_hz));
+        for _ in 0..60 {
+            let mid = 0.5 * (lo + hi);
+            if self.eval(mid).k > 0.5 {
+                lo = mid;
+            } else {
+                hi = mid;
+            }
+        }
+        lo + hi
+    }
+
+    /// The line shape measured on an RF-off trace: the points above the trace's floor, the
+    /// floor removed, normalised to the peak, centred on the centroid of the part above half
+    /// maximum. Its wings, where single points drown in the display noise, are averaged over a
+    /// window of +-|x|/8 (a 1/x^2 Lorentzian wing is changed by under 1 % by such an average).
+    /// `None` when the trace has fewer than `min_points_per_width` points across the half-maximum
+    /// width (the shape cannot then be read between its samples) or shows no line.
+    pub fn measured(reference: &Trace, min_points_per_width: f64) -> Option<LineShape> {
+        let freq = reference.frequency_hz();
+        let level = reference.power_dbm();
+        let n = freq.len();
+        if n < 8 {
+            return None;
+        }
+        let h = (freq[n - 1] - freq[0]) / (n - 1) as f64;
+        let peak = level
+            .iter()
+            .enumerate()
+            .max_by(|a, b| a.1.total_cmp(b.1))
+            .map(|(i, _)| i)?;
+        // Half-maximum width and centroid of the core, from the excess over a first floor (the
+        // median of the outer quarters).
+        let mut outer: Vec<f64> = level
+            .iter()
+            .enumerate()
+            .filter(|(i, _)| i.abs_diff(peak) > n / 4)
+            .map(|(_, l)| *l)
+            .step_by(((n / 2) / 512).max(1))
+            .collect();
+        if outer.len() < 8 {
+            return None;
+        }
+        let mid = outer.len() / 2;
+        let first_floor_db = *outer.select_nth_unstable_by(mid, f64::total_cmp).1;
+        if level[peak] < first_floor_db + 20.0 {
+            return None;
+        }
+        let linear: Vec<f64> = level.iter().map(|l| db_to_mw(*l)).collect();
+        let first_floor = db_to_mw(first_floor_db);
+        let top = linear[peak] - first_floor;
+        let mut lo = peak;
+        while lo > 0 && linear[lo - 1] - first_floor > 0.5 * top {
+            lo -= 1;
+        }
+        let mut hi = peak;
+        while hi + 1 < n && linear[hi + 1] - first_floor > 0.5 * top {
+            hi += 1;
+        }
+        let width = (hi - lo + 1) as f64 * h;
+        if width < min_points_per_width * h {
+            return None;
+        }
+        let (mut m1, mut m0) = (0.0, 0.0);
+        for i in lo..=hi {
+            let e = linear[i] - first_floor;
+            m0 += e;
+            m1 += e * freq[i];
+        }
+        let centre = m1 / m0;
+        // The floor under the wings: a Lorentzian wing falls as c / x^2 and does not reach the
+        // floor within the span, so a median would count wing as floor. Beyond ten widths (the
+        // core has no weight there) the levels are fitted by F + c / x^2, weighted for the
+        // display noise, which is a fixed fraction of each level.
+        let (mut s00, mut s01, mut s11, mut b0, mut b1) = (0.0, 0.0, 0.0, 0.0, 0.0);
+        let mut count = 0;
+        for i in 0..n {
+            let x = freq[i] - centre;
+            if x.abs() < 10.0 * width {
+                continue;
+            }
+            let u = 1.0 / (x * x);
+            let w = 1.0 / (linear[i] * linear[i]);
+            s00 += w;
+            s01 += w * u;
+            s11 += w * u * u;
+            b0 += w * linear[i];
+            b1 += w * u * linear[i];
+            count += 1;
+        }
+        let det = s00 * s11 - s01 * s01;
+        let floor = if count >= 32 && det > 0.0 {
+            let f = (b0 * s11 - b1 * s01) / det;
+            if f > 0.0 && f <= first_floor * 1.5 {
+                f
+            } else {
+                first_floor
+            }
+        } else {
+            first_floor
+        };
+        let excess: Vec<f64> = linear.iter().map(|l| l - floor).collect();
+        let top = excess[peak];
+        // Prefix sums of x^2 K for the growing-window average of the wings (exact on a 1/x^2
+        // wing, where x^2 K is flat).
+        let mut prefix = Vec::with_capacity(n + 1);
+        prefix.push(0.0);
+        let mut s = 0.0;
+        for (i, e) in excess.iter().enumerate() {
+            let x = freq[i] - centre;
+            s += e * x * x;
+            prefix.push(s);
+        }
+        let core = (3.0 * width / h) as usize;
+        let mut table = vec![0.0; n];
+        for (i, slot) in table.iter_mut().enumerate() {
+            let d = i.abs_diff(peak);
+            if d <= core {
+                *slot = excess[i];
+            } else {
+                let half = (d / 8).max(1);
+                let a = i.saturating_sub(half);
+                let b = (i + half).min(n - 1);
+                let x = freq[i] - centre;
+                *slot = (prefix[b + 1] - prefix[a]) / (b + 1 - a) as f64 / (x * x);
+            }
+        }
+        let scale = 1.0 / top;
+        for v in table.iter_mut() {
+            *v = (*v * scale).max(0.0);
+        }
+        Some(LineShape::from_table(
+            table,
+            freq[0] - centre,
+            h,
+            width,
+            ShapeKind::Measured,
+        ))
+    }
+
+    fn from_table(table: Vec<f64>, x0: f64, h: f64, width: f64, kind: ShapeKind) -> LineShape {
+        let peak_index = table
+            .iter()
+            .enumerate()
+            .max_by(|a, b| a.1.total_cmp(b.1))
+            .map_or(0, |(i, _)| i);
+        let mut envelope = table.clone();
+        for i in (peak_index + 1..envelope.len()).rev().skip(1) {
+            envelope[i] = envelope[i].max(envelope[i + 1]);
+        }
+        for i in 1..peak_index {
+            envelope[i] = envelope[i].max(envelope[i - 1]);
+        }
+        LineShape {
+            kind,
+            width_hz: width,
+            width_l_hz: width,
+            eta: 0.0,
+            table,
+            x0,
+            h,
+            envelope,
+            peak_index,
+        }
+    }
+
+    /// K at offset `x` (Hz) and its derivatives.
+    #[inline]
+    fn eval(&self, x: f64) -> ShapeValue {
+        match self.kind {
+            ShapeKind::PseudoVoigt => {
+                let ln2 = std::f64::consts::LN_2;
+                let (wg, wl) = (self.width_hz, self.width_l_hz);
+                let qg = x * x / (wg * wg);
+                let ql = x * x / (wl * wl);
+                let g = (-4.0 * ln2 * qg).exp();
+                let l = 1.0 / (1.0 + 4.0 * ql);
+                let eta = self.eta;
+                ShapeValue {
+                    k: (1.0 - eta) * g + eta * l,
+                    dx: (1.0 - eta) * g * (-8.0 * ln2 * x / (wg * wg))
+                        - eta * l * l * 8.0 * x / (wl * wl),
+                    dw: (1.0 - eta) * g * 8.0 * ln2 * qg,
+                    de: l - g,
+                    dl: eta * l * l * 8.0 * ql,
+                }
+            }
+            ShapeKind::Measured => {
+                let t = (x - self.x0) / self.h;
+                let last = self.table.len() as f64 - 1.0;
+                if t < 0.0 || t > last {
+                    // Beyond the table: a 1/x^2 wing from its end value.
+                    let (end_x, end_v) = if t < 0.0 {
+                        (self.x0, self.table[0])
+                    } else {
+                        (self.x0 + last * self.h, self.table[self.table.len() - 1])
+                    };
+                    let k = end_v * (end_x / x).powi(2);
+                    return ShapeValue {
+                        k,
+                        dx: -2.0 * k / x,
+                        ..ShapeValue::default()
+                    };
+                }
+                let j = t.floor();
+                let s = t - j;
+                let j = j as isize;
+                let at = |i: isize| -> f64 {
+                    if i < 0 || i as usize >= self.table.len() {
+                        0.0
+                    } else {
+                        self.table[i as usize]
+                    }
+                };
+                let (p0, p1, p2, p3) = (at(j - 1), at(j), at(j + 1), at(j + 2));
+                // Catmull-Rom cubic through the four neighbours.
+                let c1 = 0.5 * (p2 - p0);
+                let c2 = p0 - 2.5 * p1 + 2.0 * p2 - 0.5 * p3;
+                let c3 = 0.5 * (p3 - p0) + 1.5 * (p1 - p2);
+                let k = p1 + s * (c1 + s * (c2 + s * c3));
+                let dk = (c1 + s * (2.0 * c2 + 3.0 * s * c3)) / self.h;
+                ShapeValue {
+                    k,
+                    dx: dk,
+                    ..ShapeValue::default()
+                }
+            }
+        }
+    }
+
+    /// Half-widths (left, right) beyond which K stays below `ratio`, with a margin for a
+    /// width that changes during the fit.
+    fn reach(&self, ratio: f64) -> (f64, f64) {
+        if ratio >= 1.0 {
+            return (0.0, 0.0);
+        }
+        match self.kind {
+            ShapeKind::PseudoVoigt => {
+                let (wg, wl) = (self.width_hz, self.width_l_hz);
+                let part = 0.5 * ratio;
+                let g = if (1.0 - self.eta) > part {
+                    wg * ((((1.0 - self.eta) / part).ln()) / (4.0 * std::f64::consts::LN_2)).sqrt()
+                } else {
+                    0.0
+                };
+                let l = if self.eta > part {
+                    0.5 * wl * (self.eta / part - 1.0).max(0.0).sqrt()
+                } else {
+                    0.0
+                };
+                let x = 1.3 * g.max(l) + 0.5 * wg.max(wl);
+                (x, x)
+            }
+            ShapeKind::Measured => {
+                let side = |sign: f64| -> f64 {
+                    let (end_index, step): (usize, isize) = if sign > 0.0 {
+                        (self.table.len() - 1, 1)
+                    } else {
+                        (0, -1)
+                    };
+                    let end_x = (self.x0 + end_index as f64 * self.h).abs();
+                    let end_v = self.table[end_index];
+                    if end_v > ratio {
+                        return end_x * (end_v / ratio).sqrt() + self.h;
+                    }
+                    // Walk the envelope out from the peak by bisection.
+                    let (mut inner, mut outer) = (self.peak_index as isize, end_index as isize);
+                    while (outer - inner).abs() > 1 {
+                        let mid = (inner + outer) / 2;
+                        if self.envelope[mid as usize] > ratio {
+                            inner = mid;
+                        } else {
+                            outer = mid;
+                        }
+                    }
+                    let _ = step;
+                    (self.x0 + outer as f64 * self.h).abs() + 2.0 * self.h
+                };
+                (side(-1.0), side(1.0))
+            }
+        }
+    }
+}
+
+#[inline]
+fn db_to_mw(db: f64) -> f64 {
+    super::comb::milliwatts(db)
+}
+
+/// Where the fit starts.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FitStart {
+    pub beta: f64,
+    pub carrier_hz: f64,
+    pub floor_mw: f64,
+    /// Peak power of the strongest line above the floor, mW (sets P0).
+    pub strongest_line_peak_mw: f64,
+    /// Fit the residual-AM depth.
+    pub asymmetry: bool,
+}
+
+/// The result of the whole-trace fit.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct WholeTraceFit {
+    pub modulation_index: f64,
+    /// Statistical standard uncertainty (covariance scaled by the residual; GUM Type A).
+    pub uncertainty_statistical: f64,
+    /// Stated line-shape model term (GUM Type B).
+    pub uncertainty_line_shape: f64,
+    /// Both combined in quadrature.
+    pub uncertainty_combined: f64,
+    /// Peak power of a line of unit weight (w_n = 1): P0 with K normalised to unit peak.
+    pub line_peak_power_dbm: f64,
+    pub floor_dbm: f64,
+    pub carrier_frequency_hz: Hz,
+    pub carrier_uncertainty_hz: f64,
+    /// Depth m of residual amplitude modulation in phase with the drive (the first-order
+    /// asymmetry: w_n = J_n^2 (1 + m n / beta)^2), and its standard uncertainty.
+    pub residual_am_depth: f64,
+    pub residual_am_uncertainty: f64,
+    pub line_shape: ShapeKind,
+    /// Full width at half maximum of the whole line shape (fitted when parametric).
+    pub line_width_hz: f64,
+    /// Lorentzian fraction of the pseudo-Voigt (0 when measured).
+    pub line_shape_eta: f64,
+    /// Full width at half maximum of the pseudo-Voigt's Lorentzian part (0 when measured).
+    pub lorentzian_width_hz: f64,
+    /// Root-mean-square residual over all points, dB.
+    pub residual_db: f64,
+    /// Residual variance over the display noise variance measured between the lines.
+    pub reduced_chi_squared: f64,
+    /// Points under the lines fitted one by one, and floor points fitted as one block.
+    pub points_under_lines: usize,
+    pub points_in_floor_block: usize,
+    pub iterations: usize,
+    /// Orders in the model.
+    pub orders: Vec<i32>,
+}
+
+/// A fitted model that can be evaluated on any axis (for plots).
+#[derive(Debug, Clone, PartialEq)]
+pub struct FittedModel {
+    pub shape: LineShape,
+    pub beta: f64,
+    pub p0_mw: f64,
+    pub floor_mw: f64,
+    pub carrier_hz: f64,
+    pub spacing_hz: f64,
+    /// Residual AM depth m.
+    pub asymmetry: f64,
+    pub max_order: i32,
+}
+
+/// Weight of line `n` with residual AM of depth `m` in phase with the drive, and its slopes in
+/// beta and m: c_n = J_n + (m/2)(J_{n-1} + J_{n+1}) (= J_n (1 + m n / beta) by DLMF 10.6.1, but
+/// without the division, so that it stays regular as beta goes to 0), w_n = c_n^2.
+#[inline]
+fn line_weight(table: &BesselTable, n: i32, beta: f64, m: f64) -> (f64, f64, f64) {
+    let (j, dj) = table.value_and_slope(n, beta);
+    let (jm, djm) = table.value_and_slope(n - 1, beta);
+    let (jp, djp) = table.value_and_slope(n + 1, beta);
+    let c = j + 0.5 * m * (jm + jp);
+    let dc = dj + 0.5 * m * (djm + djp);
+    (c * c, 2.0 * c * dc, c * (jm + jp))
+}
+
+impl FittedModel {
+    /// Relative weight of line `n`.
+    pub fn weight(&self, n: i32) -> f64 {
+        line_weight(BesselTable::get(), n, self.beta, self.asymmetry).0
+    }
+
+    /// Power of line `n` (mW) as the model has it: P0 w_n times the shape's peak.
+    pub fn line_power_mw(&self, n: i32) -> f64 {
+        self.p0_mw * self.weight(n)
+    }
+
+    /// Displayed level in dBm at each of `frequencies_hz`.
+    pub fn levels_dbm(&self, frequencies_hz: &[f64]) -> Vec<f64> {
+        let amplitudes: Vec<f64> = (-self.max_order..=self.max_order)
+            .map(|n| self.p0_mw * self.weight(n))
+            .collect();
+        frequencies_hz
+            .iter()
+            .map(|f| {
+                let mut m = self.floor_mw;
+                for (k, a) in amplitudes.iter().enumerate() {
+                    let n = k as i32 - self.max_order;
+                    m += a * self
+                        .shape
+                        .eval(f - self.carrier_hz - n as f64 * self.spacing_hz)
+                        .k;
+                }
+                10.0 * m.max(1e-300).log10()
+            })
+            .collect()
+    }
+}
+
+/// Buffers kept between fits on one thread, so that a sweep's traces reuse them.
+#[derive(Default)]
+struct Workspace {
+    s: [Vec<f64>; 7],
+    /// (first, last) point index of each line (inclusive), per order slot.
+    ranges: Vec<(usize, usize)>,
+    /// Merged intervals of points under the lines.
+    intervals: Vec<(usize, usize)>,
+    cover: Vec<i32>,
+}
+
+thread_local! {
+    static WORKSPACE: RefCell<Workspace> = RefCell::new(Workspace::default());
+}
+
+/// Fixed data of one fit.
+struct Problem<'a> {
+    freq: &'a [f64],
+    level: &'a [f64],
+    spacing: f64,
+    max_order: i32,
+    /// Floor block: count, sum and sum of squares of the levels (dB).
+    block_n: f64,
+    block_sum: f64,
+    block_sq: f64,
+    active: [bool; NP],
+    /// Scale of the centre parameter (Hz per unit).
+    centre_scale: f64,
+    centre0: f64,
+}
+
+struct Evaluation {
+    ssr: f64,
+    jtj: [[f64; NP]; NP],
+    jtr: [f64; NP],
+    points: usize,
+}
+
+fn params_shape(base: &LineShape, p: &[f64; NP]) -> LineShape {
+    let mut s = base.clone();
+    if s.kind == ShapeKind::PseudoVoigt {
+        s.width_hz = p[LN_WIDTH].exp();
+        s.width_l_hz = p[LN_WIDTH_L].exp();
+        s.eta = p[ETA].clamp(0.0, 1.0);
+    }
+    s
+}
+
+/// The parameters free in this step: a width whose part has no weight (eta at 0 or 1) is held.
+fn free_parameters(base: &[bool; NP], p: &[f64; NP]) -> [bool; NP] {
+    let mut active = *base;
+    if base[ETA] {
+        if p[ETA] <= 1e-9 {
+            active[LN_WIDTH_L] = false;
+        }
+        if p[ETA] >= 1.0 - 1e-9 {
+            active[LN_WIDTH] = false;
+        }
+    }
+    active
+}
+
+fn evaluate(
+    prob: &Problem,
+    shape: &LineShape,
+    p: &[f64; NP],
+    ws: &mut Workspace,
+    jacobian: bool,
+) -> Evaluation {
+    let table = BesselTable::get();
+    let beta = p[BETA];
+    let p0 = p[LN_P0].exp();
+    let floor = p[LN_FLOOR].exp();
+    let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
+    let a = p[ASYM];
+    for (_, s) in ws.s.iter_mut().enumerate() {
+        for &(lo, hi) in &ws.intervals {
+            s[lo..=hi].fill(0.0);
+        }
+    }
+    let nmax = prob.max_order;
+    for n in -nmax..=nmax {
+        let (lo, hi) = ws.ranges[(n + nmax) as usize];
+        if hi < lo {
+            continue;
+        }
+        let (w, dw_beta, dw_a) = line_weight(table, n, beta, a);
+        let centre = fc + n as f64 * prob.spacing;
+        let [s0, s1, s2, s3, s4, s5, s6] = &mut ws.s;
+        if jacobian {
+            for i in lo..=hi {
+                let v = shape.eval(prob.freq[i] - centre);
+                s0[i] += w * v.k;
+                s1[i] += dw_beta * v.k;
+                s2[i] += w * v.dx;
+                s3[i] += dw_a * v.k;
+                s4[i] += w * v.dw;
+                s5[i] += w * v.de;
+                s6[i] += w * v.dl;
+            }
+        } else {
+            for i in lo..=hi {
+                s0[i] += w * shape.eval(prob.freq[i] - centre).k;
+            }
+        }
+    }
+    let mut e = Evaluation {
+        ssr: 0.0,
+        jtj: [[0.0; NP]; NP],
+        jtr: [0.0; NP],
+        points: 0,
+    };
+    let c = DB_PER_NEPER;
+    let width_active = prob.active[LN_WIDTH];
+    let eta_active = prob.active[ETA];
+    let asym_active = prob.active[ASYM];
+    let width_l_active = prob.active[LN_WIDTH_L];
+    let [s0, s1, s2, s3, s4, s5, s6] = &ws.s;
+    for &(lo, hi) in &ws.intervals {
+        e.points += hi + 1 - lo;
+        for i in lo..=hi {
+            let m = floor + p0 * s0[i];
+            let m = if m > 1e-300 { m } else { 1e-300 };
+            let r = c * m.ln() - prob.level[i];
+            e.ssr += r * r;
+            if !jacobian {
+                continue;
+            }
+            let g = c / m;
+            let gp = g * p0;
+            let mut jr = [0.0; NP];
+            jr[BETA] = gp * s1[i];
+            jr[LN_P0] = gp * s0[i];
+            jr[CENTRE] = -gp * s2[i] * prob.centre_scale;
+            jr[LN_FLOOR] = g * floor;
+            if asym_active {
+                jr[ASYM] = gp * s3[i];
+            }
+            if width_active {
+                jr[LN_WIDTH] = gp * s4[i];
+            }
+            if eta_active {
+                jr[ETA] = gp * s5[i];
+            }
+            if width_l_active {
+                jr[LN_WIDTH_L] = gp * s6[i];
+            }
+            for row in 0..NP {
+                let v = jr[row];
+                if v == 0.0 {
+                    continue;
+                }
+                e.jtr[row] += v * r;
+                for col in row..NP {
+                    e.jtj[row][col] += v * jr[col];
+                }
+            }
+        }
+    }
+    // The floor block: r_i = L_F - y_i with L_F = c ln F.
+    if prob.block_n > 0.0 {
+        let lf = c * floor.ln();
+        e.ssr += prob.block_n * lf * lf - 2.0 * lf * prob.block_sum + prob.block_sq;
+        if jacobian {
+            e.jtj[LN_FLOOR][LN_FLOOR] += prob.block_n * c * c;
+            e.jtr[LN_FLOOR] += c * (prob.block_n * lf - prob.block_sum);
+        }
+    }
+    if jacobian {
+        for row in 0..NP {
+            for col in 0..row {
+                e.jtj[row][col] = e.jtj[col][row];
+            }
+        }
+    }
+    e
+}
+
+/// Solves the active part of `m x = b` by Cholesky; `None` when not positive definite.
+fn solve(m: &[[f64; NP]; NP], b: &[f64; NP], active: &[bool; NP]) -> Option<[f64; NP]> {
+    let idx: Vec<usize> = (0..NP).filter(|&i| active[i]).collect();
+    let k = idx.len();
+    let mut l = [[0.0; NP]; NP];
+    for r in 0..k {
+        for c in 0..=r {
+            let mut s = m[idx[r]][idx[c]];
+            for q in 0..c {
+                s -= l[r][q] * l[c][q];
+            }
+            if r == c {
+                if s <= 0.0 || !s.is_finite() {
+                    return None;
+                }
+                l[r][r] = s.sqrt();
+            } else {
+                l[r][c] = s / l[c][c];
+            }
+        }
+    }
+    let mut y = [0.0; NP];
+    for r in 0..k {
+        let mut s = b[idx[r]];
+        for q in 0..r {
+            s -= l[r][q] * y[q];
+        }
+        y[r] = s / l[r][r];
+    }
+    let mut x = [0.0; NP];
+    for r in (0..k).rev() {
+        let mut s = y[r];
+        for q in r + 1..k {
+            s -= l[q][r] * x[q];
+        }
+        x[r] = s / l[r][r];
+    }
+    let mut out = [0.0; NP];
+    for (r, &i) in idx.iter().enumerate() {
+        out[i] = x[r];
+    }
+    Some(out)
+}
+
+/// Diagonal of the inverse of the active part of `m` (the variances up to a scale).
+fn inverse_diagonal(m: &[[f64; NP]; NP], active: &[bool; NP]) -> [f64; NP] {
+    let mut out = [f64::INFINITY; NP];
+    for i in 0..NP {
+        if !active[i] {
+            continue;
+        }
+        let mut e = [0.0; NP];
+        e[i] = 1.0;
+        if let Some(x) = solve(m, &e, active) {
+            out[i] = x[i];
+        }
+    }
+    out
+}
+
+/// Sets the point range of every line and the floor block for the parameters `p`.
+fn set_windows(prob: &mut Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Workspace) {
+    let table = BesselTable::get();
+    let n_points = prob.freq.len();
+    let nmax = prob.max_order;
+    let beta = p[BETA];
+    let p0 = p[LN_P0].exp();
+    let floor = p[LN_FLOOR].exp();
+    let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
+    ws.ranges.clear();
+    ws.cover.clear();
+    ws.cover.resize(n_points + 1, 0);
+    for n in -nmax..=nmax {
+        // The largest weight this line may take while beta moves by 10 %: lines at a Bessel
+        // zero keep their window.
+        let mut bound: f64 = 0.0;
+        for f in [0.9, 0.95, 1.0, 1.05, 1.1] {
+            let (j, _) = table.value_and_slope(n, beta * f);
+            let (jm, _) = table.value_and_slope(n - 1, beta * f);
+            let (jp, _) = table.value_and_slope(n + 1, beta * f);
+            bound = bound.max((j.abs() + 0.5 * p[ASYM].abs() * (jm.abs() + jp.abs())).powi(2));
+        }
+        let ratio = CONTRIBUTION_FLOOR * floor / (p0 * bound).max(1e-300);
+        let (left, right) = shape.reach(ratio);
+        let centre = fc + n as f64 * prob.spacing;
+        let lo = prob.freq.partition_point(|f| *f < centre - left);
+        let hi = prob.freq.partition_point(|f| *f <= centre + right);
+        if hi > lo && left + right > 0.0 {
+            ws.ranges.push((lo, hi - 1));
+            ws.cover[lo] += 1;
+            ws.cover[hi] -= 1;
+        } else {
+            ws.ranges.push((1, 0));
+        }
+    }
+    ws.intervals.clear();
+    let (mut depth, mut start) = (0, None);
+    let (mut bn, mut bs, mut bq) = (0.0, 0.0, 0.0);
+    for i in 0..n_points {
+        depth += ws.cover[i];
+        if depth > 0 {
+            if start.is_none() {
+                start = Some(i);
+            }
+        } else {
+            if let Some(s) = start.take() {
+                ws.intervals.push((s, i - 1));
+            }
+            let y = prob.level[i];
+            bn += 1.0;
+            bs += y;
+            bq += y * y;
+        }
+    }
+    if let Some(s) = start {
+        ws.intervals.push((s, n_points - 1));
+    }
+    prob.block_n = bn;
+    prob.block_sum = bs;
+    prob.block_sq = bq;
+    for s in ws.s.iter_mut() {
+        if s.len() < n_points {
+            s.resize(n_points, 0.0);
+        }
+    }
+}
+
+/// The reduced chi-squared above which the fit is tried again from other starting indices.
+const CHI2_RETRY: f64 = 1.5;
+/// The reduced chi-squared above which the model is taken not to describe the trace.
+pub const CHI2_REFUSE: f64 = 30.0;
+/// Starting indices tried when the first fit leaves a residual far above the noise.
+const RETRY_BETAS: [f64; 14] = [
+    0.05, 0.15, 0.3, 0.6, 1.0, 1.5, 2.0, 2.6, 3.2, 4.0, 5.0, 6.5, 8.0, 10.0,
+];
+
+/// Fits the whole trace. `noise_sigma_db` (the display noise measured between the lines) is used
+/// for the reduced chi-squared: a fit whose residual stays far above it is tried again from
+/// other starting indices, and refused when none describes the trace.
+pub fn fit_trace(
+    trace: &Trace,
+    spacing: Hz,
+    shape: &LineShape,
+    start: &FitStart,
+    noise_sigma_db: f64,
+) -> Result<(WholeTraceFit, FittedModel), AnalysisError> {
+    WORKSPACE.with(|ws| {
+        let mut ws = ws.borrow_mut();
+        let noise = (noise_sigma_db * noise_sigma_db).max(1e-12);
+        let mut best = fit_once(&mut ws, trace, spacing, shape, start, noise)?;
+        // A parametric shape may settle on the wrong mix: start again nearer a Lorentzian.
+        if best.0.reduced_chi_squared > CHI2_RETRY && shape.kind == ShapeKind::PseudoVoigt {
+            for eta in [0.5, 0.98] {
+                let mut other_shape = shape.clone();
+                other_shape.eta = eta;
+                if let Ok(candidate) = fit_once(&mut ws, trace, spacing, &other_shape, start, noise) {
+                    if candidate.0.reduced_chi_squared < 0.9 * best.0.reduced_chi_squared {
+                        best = candidate;
+                    }
+                }
+            }
+        }
+        if best.0.reduced_chi_squared > 3.0 * CHI2_RETRY {
+            for beta in RETRY_BETAS {
+                if (beta - start.beta).abs() < 0.05 * start.beta {
+                    continue;
+                }
+                let other = FitStart { beta, ..*start };
+                if let Ok(candidate) = fit_once(&mut ws, trace, spacing, shape, &other, noise) {
+                    if candidate.0.reduced_chi_squared < 0.9 * best.0.reduced_chi_squared {
+                        best = candidate;
+                    }
+                }
+            }
+        }
+        if best.0.reduced_chi_squared > CHI2_REFUSE {
+            return Err(AnalysisError::FitFailed(format!(
+                "the comb model does not describe the trace: its residual is {:.2} dB against a display noise of \
+                 {:.2} dB (beta {:.4}); check the modulation frequency, that one laser is on the analyzer and that \
+                 the span holds the comb",
+                best.0.residual_db,
+                noise.sqrt(),
+                best.0.modulation_index
+            )));
+        }
+        Ok(best)
+    })
+}
+
+fn fit_once(
+    ws: &mut Workspace,
+    trace: &Trace,
+    spacing: Hz,
+    shape0: &LineShape,
+    start: &FitStart,
+    noise_variance: f64,
+) -> Result<(WholeTraceFit, FittedModel), AnalysisError> {
+    let freq = trace.frequency_hz();
+    let level = trace.power_dbm();
+    let fm = spacing.0;
+    let (first, last) = (freq[0], freq[freq.len() - 1]);
+    let step = (last - first) / (freq.len() - 1) as f64;
+    // Orders whose centre lies within the span, and two beyond each end for their skirts.
+    let reach_orders =
+        (((start.carrier_hz - first).max(last - start.carrier_hz)) / fm).ceil() as i32 + 2;
+    let max_order = reach_orders.min(MAX_ORDER as i32).max(1);
+    let parametric = shape0.kind == ShapeKind::PseudoVoigt;
+    let mut base = [true; NP];
+    base[ASYM] = start.asymmetry;
+    base[LN_WIDTH] = parametric;
+    base[ETA] = parametric;
+    base[LN_WIDTH_L] = parametric;
+    let mut prob = Problem {
+        freq,
+        level,
+        spacing: fm,
+        max_order,
+        block_n: 0.0,
+        block_sum: 0.0,
+        block_sq: 0.0,
+        active: base,
+        centre_scale: shape0.width_hz.max(step),
+        centre0: start.carrier_hz,
+    };
+    let table = BesselTable::get();
+    let strongest = (-max_order..=max_order)
+        .map(|n| table.power(n, start.beta))
+        .fold(0.0, f64::max)
+        .max(1e-12);
+    let mut p = [0.0; NP];
+    p[BETA] = start.beta.max(1e-4);
+    p[LN_P0] = (start.strongest_line_peak_mw.max(1e-30) / strongest).ln();
+    p[CENTRE] = 0.0;
+    p[LN_FLOOR] = start.floor_mw.max(1e-30).ln();
+    p[ASYM] = 0.0;
+    p[LN_WIDTH] = shape0.width_hz.max(1e-3).ln();
+    p[LN_WIDTH_L] = shape0.width_l_hz.max(1e-3).ln();
+    p[ETA] = if parametric {
+        shape0.eta.max(0.02)
+    } else {
+        0.0
+    };
+
+    set_windows(&mut prob, shape0, &p, ws);
+    let mut shape = params_shape(shape0, &p);
+    prob.active = free_parameters(&base, &p);
+    let mut eval = evaluate(&prob, &shape, &p, ws, true);
+    let mut lambda = 1e-3;
+    let mut iterations = 0;
+    let mut rewindowed = false;
+    let p_start_beta = p[BETA];
+    loop {
+        iterations += 1;
+        if iterations > MAX_ITERATIONS {
+            break;
+        }
+        let mut damped = eval.jtj;
+        for i in 0..NP {
+            if prob.active[i] {
+                damped[i][i] = damped[i][i] * (1.0 + lambda) + 1e-30;
+            }
+        }
+        let neg: [f64; NP] = std::array::from_fn(|i| -eval.jtr[i]);
+        let Some(delta) = solve(&damped, &neg, &prob.active) else {
+            lambda *= 10.0;
+            if lambda > 1e12 {
+                break;
+            }
+            continue;
+        };
+        let mut trial = p;
+        for i in 0..NP {
+            trial[i] += delta[i];
+        }
+        trial[BETA] = trial[BETA].max(1e-6);
+        // Residual AM weaker than the phase modulation: at small beta a depth m and an index
+        // beta give the same first sidebands as the two swapped, and only this picks the
+        // physical one.
+        trial[ASYM] = trial[ASYM].clamp(-trial[BETA].min(0.5), trial[BETA].min(0.5));
+        trial[ETA] = trial[ETA].clamp(0.0, 1.0);
+        // Widths within a factor of 100 of the start: a part with no weight cannot run away.
+        for slot in [LN_WIDTH, LN_WIDTH_L] {
+            trial[slot] = trial[slot].clamp(
+                shape0.width_hz.max(1e-3).ln() - 4.6,
+                shape0.width_hz.max(1e-3).ln() + 4.6,
+            );
+        }
+        let trial_shape = params_shape(shape0, &trial);
+        let trial_eval = evaluate(&prob, &trial_shape, &trial, ws, false);
+        if trial_eval.ssr.is_finite() && trial_eval.ssr < eval.ssr {
+            let gain = (eval.ssr - trial_eval.ssr) / eval.ssr.max(1e-300);
+            p = trial;
+            shape = trial_shape;
+            // Beta moved far from where the windows were set: set them again.
+            if !rewindowed && (p[BETA] - p_start_beta).abs() > 0.05 * p_start_beta {
+                set_windows(&mut prob, &shape, &p, ws);
+                rewindowed = true;
+            }
+            prob.active = free_parameters(&base, &p);
+            eval = evaluate(&prob, &shape, &p, ws, true);
+            lambda = (lambda / 5.0).max(1e-9);
+            let small_step = (delta[BETA].abs() < 1e-9 * p[BETA].max(1e-3)) || gain < 1e-12;
+            if small_step {
+                break;
+            }
+        } else {
+            lambda *= 4.0;
+            if lambda > 1e10 {
+                break;
+            }
+        }
+    }
+    let n_total = eval.points as f64 + prob.block_n;
+    let n_params = prob.active.iter().filter(|a| **a).count() as f64;
+    let dof = (n_total - n_params).max(1.0);
+    let variance = eval.ssr / dof;
+    // When the shape's mix or widths are not determined (a part with no weight), the covariance
+    // is taken with them held.
+    let mut inv = inverse_diagonal(&eval.jtj, &prob.active);
+    for held in [[ETA, NP, NP], [ETA, LN_WIDTH, LN_WIDTH_L]] {
+        if inv[BETA].is_finite() && inv[BETA] > 0.0 {
+            break;
+        }
+        let mut fewer = prob.active;
+        for slot in held {
+            if slot < NP {
+                fewer[slot] = false;
+            }
+        }
+        inv = inverse_diagonal(&eval.jtj, &fewer);
+    }
+    let u_stat = (variance * inv[BETA]).sqrt();
+    let beta = p[BETA];
+    let relative = if parametric {
+        SHAPE_SYSTEMATIC_PARAMETRIC
+    } else {
+        SHAPE_SYSTEMATIC_MEASURED
+    };
+    let u_shape = relative * beta;
+    let u_combined = (u_stat * u_stat + u_shape * u_shape).sqrt();
+    if !(beta.is_finite() && u_stat.is_finite()) {
+        return Err(AnalysisError::FitFailed(format!(
+            "the whole-trace fit did not converge (beta {beta}, uncertainty {u_stat})"
+        )));
+    }
+    let p0 = p[LN_P0].exp();
+    let floor = p[LN_FLOOR].exp();
+    let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
+    let orders: Vec<i32> = (-max_order..=max_order)
+        .filter(|n| {
+            let (lo, hi) = ws.ranges[(n + max_order) as usize];
+            hi >= lo
+        })
+        .collect();
+    let fit = WholeTraceFit {
+        modulation_index: beta,
+        uncertainty_statistical: u_stat,
+        uncertainty_line_shape: u_shape,
+        uncertainty_combined: u_combined,
+        line_peak_power_dbm: 10.0 * p0.log10(),
+        floor_dbm: 10.0 * floor.log10(),
+        carrier_frequency_hz: Hz(fc),
+        carrier_uncertainty_hz: (variance * inv[CENTRE]).sqrt() * prob.centre_scale,
+        residual_am_depth: p[ASYM],
+        residual_am_uncertainty: if prob.active[ASYM] {
+            (variance * inv[ASYM]).sqrt()
+        } else {
+            0.0
+        },
+        line_shape: shape.kind,
+        line_width_hz: shape.fwhm(),
+        line_shape_eta: shape.eta,
+        lorentzian_width_hz: if parametric { shape.width_l_hz } else { 0.0 },
+        residual_db: (eval.ssr / n_total.max(1.0)).sqrt(),
+        reduced_chi_squared: variance / noise_variance,
+        points_under_lines: eval.points,
+        points_in_floor_block: prob.block_n as usize,
+        iterations,
+        orders,
+    };
+    let model = FittedModel {
+        shape,
+        beta,
+        p0_mw: p0,
+        floor_mw: floor,
+        carrier_hz: fc,
+        spacing_hz: fm,
+        asymmetry: p[ASYM],
+        max_order,
+    };
+    Ok((fit, model))
+}
