@@ -50,6 +50,7 @@ fn demo_recovers_the_simulated_v_pi_and_writes_svg_plots() {
     let mut truth = Vec::new();
     let mut covered = 0;
     let mut table = String::new();
+    let mut off = Vec::new();
     for row in rows {
         let f = row["frequency_hz"].as_f64().unwrap();
         let measured = row["v_pi_volts"].as_f64().unwrap();
@@ -64,11 +65,12 @@ fn demo_recovers_the_simulated_v_pi_and_writes_svg_plots() {
             100.0 * uncertainty / measured,
             (measured - expected) / uncertainty
         ));
-        assert!(
-            error.abs() < 0.003,
-            "V_pi at {f} Hz: demo {measured} V, scenario {expected} V ({:+.3} %)",
-            100.0 * error
-        );
+        if error.abs() >= 0.003 {
+            off.push(format!(
+                "V_pi at {f} Hz: demo {measured} V, scenario {expected} V ({:+.3} %)",
+                100.0 * error
+            ));
+        }
         assert!(uncertainty > 0.0 && uncertainty < 0.1 * measured);
         if (measured - expected).abs() <= 2.0 * uncertainty {
             covered += 1;
@@ -80,6 +82,7 @@ fn demo_recovers_the_simulated_v_pi_and_writes_svg_plots() {
         });
     }
     println!("{table}");
+    assert!(off.is_empty(), "{off:?}\n{table}");
     assert!(
         covered >= 20,
         "the stated uncertainty covers the error at k = 2 at only {covered} of {FREQUENCY_COUNT} frequencies:\n{table}"

@@ -73,7 +73,16 @@ fn bench(c: &mut Criterion) {
         let shape = LineShape::pseudo_voigt(
             comb.resolution_bandwidth_hz,
             comb.resolution_bandwidth_hz,
-            0.02,
+            0.0,
+        );
+        let (fitted, _) = fit_trace(&trace, SPACING, &shape, &start, comb.noise_sigma_db)
+            .expect("the synthetic trace fits");
+        println!(
+            "whole-trace fit beta {beta}: {} iterations, {} points under lines, {} in the floor block, reduced chi-squared {:.2}",
+            fitted.iterations,
+            fitted.points_under_lines,
+            fitted.points_in_floor_block,
+            fitted.reduced_chi_squared
         );
         c.bench_function(&format!("whole-trace fit beta {beta}"), |b| {
             b.iter(|| {
@@ -181,7 +190,7 @@ fn bench_cpu_time(c: &mut Criterion<ThreadCpuTime>) {
         let shape = LineShape::pseudo_voigt(
             comb.resolution_bandwidth_hz,
             comb.resolution_bandwidth_hz,
-            0.02,
+            0.0,
         );
         group.bench_function(format!("whole-trace fit beta {beta}"), |b| {
             b.iter(|| {

@@ -11,7 +11,7 @@
 //! drive voltage at the null gives a second, independent V_pi.
 
 use super::bessel::J0_FIRST_ZERO;
-use super::fit::SHAPE_SYSTEMATIC_MEASURED;
+use super::fit::{SHAPE_SYSTEMATIC_MEASURED, SHAPE_SYSTEMATIC_PARAMETRIC};
 use super::AnalysisError;
 use halfwave_units::Volts;
 use serde::Serialize;
@@ -21,6 +21,11 @@ use std::f64::consts::PI;
 /// of the trace fit, [`SHAPE_SYSTEMATIC_MEASURED`]): a point whose noise happens to be tiny, such
 /// as one near the carrier null, cannot carry the fit alone.
 pub const POINT_UNCERTAINTY_FLOOR_RELATIVE: f64 = SHAPE_SYSTEMATIC_MEASURED;
+/// The line-shape term is common to every point of a sweep (one reference trace, one shape
+/// model at one frequency): it does not average down over the points, so it enters V_pi's
+/// uncertainty as a fully correlated relative term (GUM, JCGM 100:2008, 5.2), at the larger of
+/// the two shape terms since the sweep does not say which shape its traces used.
+pub const V_PI_LINE_SHAPE_RELATIVE: f64 = SHAPE_SYSTEMATIC_PARAMETRIC;
 /// ... nor below this absolute value of beta.
 const POINT_UNCERTAINTY_FLOOR_ABSOLUTE: f64 = 1e-5;
 
@@ -65,8 +70,14 @@ pub struct CarrierNull {
 pub struct VpiFit {
     #[serde(rename = "v_pi_volts")]
     pub v_pi: Volts,
+    /// Combined standard uncertainty: the fit's (inflated when the points disagree) and the
+    /// correlated line-shape term, in quadrature.
     #[serde(rename = "v_pi_uncertainty_volts")]
     pub v_pi_uncertainty: Volts,
+    /// The fit's part alone.
+    pub v_pi_uncertainty_statistical_volts: Volts,
+    /// The line-shape part alone ([`V_PI_LINE_SHAPE_RELATIVE`] of V_pi).
+    pub v_pi_uncertainty_line_shape_volts: Volts,
     /// pi / V_pi, the modulation index per volt of peak drive.
     pub index_per_volt: f64,
     /// chi^2 / (n - 1) of the used points (with the floored uncertainties).
@@ -209,13 +220,18 @@ pub fn fit_v_pi(points: &[DrivePoint]) -> Result<VpiFit, AnalysisError> {
         .collect();
     let total: f64 = weights.iter().map(|w| w.1).sum();
     let heaviest = weights.iter().copied().max_by(|a, b| a.1.total_cmp(&b.1));
+    let v_pi = PI / slope;
+    let statistical = PI * slope_sigma / (slope * slope);
+    let line_shape = V_PI_LINE_SHAPE_RELATIVE * v_pi;
     Ok(VpiFit {
+        v_pi_uncertainty_statistical_volts: Volts(statistical),
+        v_pi_uncertainty_line_shape_volts: Volts(line_shape),
         uncertainty_inflation: inflation,
         point_uncertainty_floor_relative: POINT_UNCERTAINTY_FLOOR_RELATIVE,
         heaviest_point: heaviest.map(|h| h.0),
         heaviest_weight_share: heaviest.map_or(0.0, |h| h.1 / total),
-        v_pi: Volts(PI / slope),
-        v_pi_uncertainty: Volts(PI * slope_sigma / (slope * slope)),
+        v_pi: Volts(v_pi),
+        v_pi_uncertainty: Volts(statistical.hypot(line_shape)),
         index_per_volt: slope,
         reduced_chi_squared: reduced,
         carrier_null: carrier_null(points, &used),
@@ -349,7 +365,12 @@ mod tests {
         let svv: f64 = 1.0 / 0.01f64.powi(2) + 4.0 / 0.02f64.powi(2);
         let k = PI / V_PI;
         let expected = PI * (1.0 / svv.sqrt()) / (k * k);
-        assert!((fit.v_pi_uncertainty.0 - expected).abs() < 1e-12 * expected.max(1.0));
+        assert!(
+            (fit.v_pi_uncertainty_statistical_volts.0 - expected).abs() < 1e-12 * expected.max(1.0)
+        );
+        // Combined with the correlated line-shape term in quadrature (GUM 5.1.2).
+        let combined = expected.hypot(V_PI_LINE_SHAPE_RELATIVE * V_PI);
+        assert!((fit.v_pi_uncertainty.0 - combined).abs() < 1e-9 * combined);
         assert!(fit.carrier_null.is_none());
     }
 
