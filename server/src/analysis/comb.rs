@@ -280,10 +280,11 @@ pub fn measure_comb(
                     Hz(reference)
                 )));
             }
-            k
+            Some(k)
         }
-        None => carrier_by_symmetry(&measured, floor_mw),
+        None => None,
     };
+    let carrier_k = carrier_order(&measured, floor_mw, carrier_k);
     let max_order = i64::from(options.max_order);
     let lines = measured
         .into_iter()
@@ -667,9 +668,16 @@ fn estimate_resolution(
     }
 }
 
-/// The order-0 line: among the lines near the power centroid of the comb, the one about which
-/// the levels are most symmetric (P_n = P_-n).
-fn carrier_by_symmetry(measured: &[(i64, MeasuredLine)], floor_mw: f64) -> i64 {
+/// The order of the carrier among the measured lines: the centre about which the line levels
+/// are most nearly symmetric (a pure phase modulation has |J_-n| = |J_n|, DLMF 10.4.1, so its
+/// comb is symmetric about the carrier), searched within two lines of the power centroid.
+///
+/// With an RF-off reference, its carrier names the line nearest to it, unless the laser drifted
+/// between the two sweeps by close to half a spacing or more: the reference is then taken only
+/// when the symmetry does not clearly prefer another line (a mean squared level difference over
+/// four times smaller and below 1 dB^2 is clear). A wrong carrier order would shift every order
+/// by one and give a wrong modulation index without any other sign.
+fn carrier_order(measured: &[(i64, MeasuredLine)], floor_mw: f64, reference_k: Option<i64>) -> i64 {
     let (mut moment, mut mass) = (0.0, 0.0);
     for (k, line) in measured {
         let p = line.power_mw.max(0.0);
@@ -677,7 +685,7 @@ fn carrier_by_symmetry(measured: &[(i64, MeasuredLine)], floor_mw: f64) -> i64 {
         mass += p;
     }
     let Some(first_k) = measured.first().map(|(k, _)| *k) else {
-        return 0;
+        return reference_k.unwrap_or(0);
     };
     let centre = if mass > 0.0 {
         (moment / mass).round() as i64
@@ -693,10 +701,9 @@ fn carrier_by_symmetry(measured: &[(i64, MeasuredLine)], floor_mw: f64) -> i64 {
             )
         })
     };
-    let mut best = (f64::INFINITY, centre);
-    for candidate in centre - 2..=centre + 2 {
+    let score = |candidate: i64| -> f64 {
         if level(candidate).is_none() {
-            continue;
+            return f64::INFINITY;
         }
         let (mut sum, mut count) = (0.0, 0usize);
         for n in 1.. {
@@ -710,16 +717,31 @@ fn carrier_by_symmetry(measured: &[(i64, MeasuredLine)], floor_mw: f64) -> i64 {
                 _ => break,
             }
         }
-        let score = if count > 0 {
+        if count > 0 {
             sum / count as f64
         } else {
             f64::INFINITY
-        };
-        if score < best.0 {
-            best = (score, candidate);
+        }
+    };
+    let mut best = (f64::INFINITY, centre);
+    for candidate in centre - 2..=centre + 2 {
+        let s = score(candidate);
+        if s < best.0 {
+            best = (s, candidate);
         }
     }
-    best.1
+    match reference_k {
+        Some(k) if k != best.1 => {
+            let at_reference = score(k);
+            if best.0 < 1.0 && best.0 * 4.0 < at_reference {
+                best.1
+            } else {
+                k
+            }
+        }
+        Some(k) => k,
+        None => best.1,
+    }
 }
 
 #[cfg(test)]

@@ -488,6 +488,40 @@ mod tests {
     }
 
     #[test]
+    fn a_laser_that_drifted_between_the_two_sweeps_does_not_move_the_carrier_order() {
+        // The RF-off reference was taken while the laser sat 0.6 spacings away: the line nearest
+        // to its carrier is the wrong one. A phase-modulated comb is symmetric about its carrier
+        // (|J_-n| = |J_n|, DLMF 10.4.1), which names the right order; taking the reference's
+        // would shift every order by one and fit a wrong beta.
+        for (seed, beta) in [0.4, 1.8, 2.6].into_iter().enumerate() {
+            let modulated = comb(beta, 0.3);
+            let trace = draw(&modulated, 700 + seed as u64);
+            let mut off = modulated.clone();
+            off.modulation_index = 0.0;
+            off.carrier = Hz(modulated.carrier.0 + 0.6 * SPACING.0);
+            let reference = draw(&off, 800 + seed as u64);
+            let result = analyze_trace(
+                &trace,
+                SPACING,
+                Some(&reference),
+                &AnalysisOptions::default(),
+            )
+            .unwrap();
+            let carrier_error = result.carrier_frequency_hz.0 - modulated.carrier.0;
+            assert!(
+                carrier_error.abs() < 0.05 * SPACING.0,
+                "beta {beta}: carrier placed {} away from the truth",
+                Hz(carrier_error)
+            );
+            assert!(
+                relative_error(result.modulation_index.value, beta).abs() < 0.01,
+                "beta {beta}: fitted {}",
+                result.modulation_index.value
+            );
+        }
+    }
+
+    #[test]
     fn lines_at_bessel_zeros_are_marked_below_the_floor() {
         // At the carrier null J_0 = 0 and at 3.8317 J_1 = 0 (DLMF 10.21): those lines vanish
         // into the floor, are marked so, and the fit still recovers beta from the other orders.
