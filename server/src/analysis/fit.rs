@@ -1096,6 +1096,7 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
 
 /// The statistics of one segment with nodes at the points `at` (node slots `slots`) over its
 /// points `first..=last`.
+#[allow(clippy::needless_range_loop)]
 fn segment(
     freq: &[f64],
     level: &[f64],
