@@ -56,9 +56,11 @@ pub const SHAPE_SYSTEMATIC_PARAMETRIC: f64 = 1e-3;
 /// The same when the fitted pseudo-Voigt is a real mix (Lorentzian fraction between 0.02 and
 /// 0.98): a pseudo-Voigt follows a true Voigt profile (a Gaussian filter seen with a laser's
 /// Lorentzian line) only to about a percent of the peak in the wings, and the weak sidebands of
-/// a small index sit on those wings. Set from the randomised study's true-Voigt traces read
-/// without a reference: the largest |error| there was 1.66 %, so that a term of 1 % covers it at
-/// k = 2.
+/// a small index sit on those wings. It applies below beta = 0.3 and falls as 0.3 / beta above
+/// (a larger index rests on many strong lines, not on two weak ones; never below
+/// [`SHAPE_SYSTEMATIC_PARAMETRIC`]). Set from the randomised study's true-Voigt traces read
+/// without a reference: the largest |error| there was 1.66 % at beta 0.27 and 0.66 % at 0.8, so
+/// that this term covers them at k = 2.
 pub const SHAPE_SYSTEMATIC_MIXED: f64 = 1e-2;
 
 /// Most Levenberg-Marquardt iterations.
@@ -1406,7 +1408,8 @@ fn fit_once(
     let relative = if !parametric {
         SHAPE_SYSTEMATIC_MEASURED
     } else if shape.eta > 0.02 && shape.eta < 0.98 {
-        SHAPE_SYSTEMATIC_MIXED
+        (SHAPE_SYSTEMATIC_MIXED * (0.3 / p[BETA].max(1e-6)).min(1.0))
+            .max(SHAPE_SYSTEMATIC_PARAMETRIC)
     } else {
         SHAPE_SYSTEMATIC_PARAMETRIC
     };
