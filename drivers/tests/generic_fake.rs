@@ -664,3 +664,70 @@ async fn the_format_is_asserted_before_every_fetch() {
     // The fetch ends with an error-queue check.
     assert_eq!(commands[fetch + 1], "SYSTem:ERRor?");
 }
+
+#[tokio::test]
+async fn an_explicit_axis_query_gives_a_non_linear_axis() {
+    // An analyzer with neither STARt?/STOP? nor a linear grid: the profile names its axis query
+    // (an invented dialect, TRACe:XVALues?) and the trace carries the reported frequencies.
+    let fake = FakeInstrument::start_with(State {
+        without_start_stop: true,
+        ..State::default()
+    })
+    .await;
+    let mut profile = quick_analyzer_profile(DataFormat::Real64, ByteOrder::Normal);
+    profile.axis.method = halfwave_drivers::profile::AxisMethod::Query;
+    profile.commands.query_axis = "TRACe:XVALues? TRACE1".into();
+    let mut analyzer = ScpiSpectrumAnalyzer::connect(&fake.resource(), profile)
+        .await
+        .unwrap();
+    analyzer.set_points(101).await.unwrap();
+    analyzer.sweep().await.unwrap();
+    let trace = analyzer.fetch_trace().await.unwrap();
+    let expected = common::fake_axis_hz(&fake.state());
+    assert_eq!(trace.frequency_hz(), expected.as_slice());
+    assert!(fake.state().errors.is_empty());
+    // A profile that asks for the query method without naming the query is refused.
+    let mut bad = quick_analyzer_profile(DataFormat::Ascii, ByteOrder::Normal);
+    bad.axis.method = halfwave_drivers::profile::AxisMethod::Query;
+    let err = ScpiSpectrumAnalyzer::connect(&fake.resource(), bad)
+        .await
+        .unwrap_err();
+    assert!(err.to_string().contains("commands.query_axis"), "{err}");
+}
+
+#[tokio::test]
+async fn suggestions_name_the_keys_a_non_conforming_analyzer_needs() {
+    use halfwave_drivers::generic::suggest::{as_toml, suggest_analyzer, suggest_source};
+    let fake = FakeInstrument::start_with(State {
+        without_start_stop: true,
+        without_continuous: true,
+        ..State::default()
+    })
+    .await;
+    let profile = quick_analyzer_profile(DataFormat::Real32, ByteOrder::Normal);
+    let suggestions = suggest_analyzer(&fake.resource(), &profile).await.unwrap();
+    let lines: Vec<&str> = suggestions.iter().map(|s| s.line.as_str()).collect();
+    assert_eq!(
+        lines,
+        ["single_sweep_mode = \"\"", "method = \"center_span\""],
+        "{suggestions:?}"
+    );
+    // The fragment is a profile the driver accepts, and with it the analyzer connects.
+    let fragment = as_toml("spectrum_analyzer", &suggestions);
+    let mut fixed = AnalyzerProfile::from_toml_str(&fragment, "suggested").unwrap();
+    fixed.connection = profile.connection.clone();
+    let mut analyzer = ScpiSpectrumAnalyzer::connect(&fake.resource(), fixed)
+        .await
+        .unwrap();
+    analyzer.sweep().await.unwrap();
+    assert_eq!(analyzer.fetch_trace().await.unwrap().len(), 1001);
+    // Every refusal was read and cleared.
+    assert!(fake.state().errors.is_empty());
+
+    // A conforming source: nothing to suggest.
+    let source = FakeInstrument::start().await;
+    let none = suggest_source(&source.resource(), &quick_source_profile())
+        .await
+        .unwrap();
+    assert!(none.is_empty(), "{none:?}");
+}

@@ -357,31 +357,13 @@ fn handle(state: &mut State, line: &str) -> Reply {
     }
     if m("TRACe[:DATA]") && is_query {
         let values = fake_trace_dbm(state.points);
-        return match state.format.as_str() {
-            "ASC" => Reply::Text(
-                values
-                    .iter()
-                    .map(|v| format!("{v:E}"))
-                    .collect::<Vec<_>>()
-                    .join(","),
-            ),
-            kind => {
-                let mut payload = Vec::new();
-                for v in &values {
-                    match (kind, state.swapped) {
-                        ("REAL32", false) => payload.extend((*v as f32).to_be_bytes()),
-                        ("REAL32", true) => payload.extend((*v as f32).to_le_bytes()),
-                        (_, false) => payload.extend(v.to_be_bytes()),
-                        (_, true) => payload.extend(v.to_le_bytes()),
-                    }
-                }
-                let len = payload.len().to_string();
-                let mut out = format!("#{}{}", len.len(), len).into_bytes();
-                out.extend(payload);
-                out.extend(state.reply_terminator.as_bytes());
-                Reply::Bytes(out)
-            }
-        };
+        return encode(state, &values);
+    }
+    // An invented dialect's axis query: the frequency of every point, on a grid that is not
+    // linear (steps growing along the sweep).
+    if m("TRACe:XVALues") && is_query {
+        let values = fake_axis_hz(state);
+        return encode(state, &values);
     }
     push(state, -113, "Undefined header");
     if is_query {
@@ -389,6 +371,47 @@ fn handle(state: &mut State, line: &str) -> Reply {
         return Reply::Nothing;
     }
     Reply::Nothing
+}
+
+/// The fake's non-linear axis: centre - span/2 to centre + span/2 with the offset going as the
+/// square of the point's position (so steps grow along the sweep).
+pub fn fake_axis_hz(state: &State) -> Vec<f64> {
+    let n = state.points.max(2);
+    (0..n)
+        .map(|i| {
+            let x = i as f64 / (n - 1) as f64;
+            state.center_hz - state.span_hz / 2.0 + state.span_hz * x * x
+        })
+        .collect()
+}
+
+/// Values in the fake's current data format and byte order.
+fn encode(state: &State, values: &[f64]) -> Reply {
+    match state.format.as_str() {
+        "ASC" => Reply::Text(
+            values
+                .iter()
+                .map(|v| format!("{v:E}"))
+                .collect::<Vec<_>>()
+                .join(","),
+        ),
+        kind => {
+            let mut payload = Vec::new();
+            for v in values {
+                match (kind, state.swapped) {
+                    ("REAL32", false) => payload.extend((*v as f32).to_be_bytes()),
+                    ("REAL32", true) => payload.extend((*v as f32).to_le_bytes()),
+                    (_, false) => payload.extend(v.to_be_bytes()),
+                    (_, true) => payload.extend(v.to_le_bytes()),
+                }
+            }
+            let len = payload.len().to_string();
+            let mut out = format!("#{}{}", len.len(), len).into_bytes();
+            out.extend(payload);
+            out.extend(state.reply_terminator.as_bytes());
+            Reply::Bytes(out)
+        }
+    }
 }
 
 async fn serve(socket: tokio::net::TcpStream, state: Arc<Mutex<State>>) {

@@ -61,6 +61,10 @@ pub struct CheckBenchArgs {
     /// Print the result as JSON.
     #[arg(long)]
     pub json: bool,
+    /// Instead of the check: probe each SCPI instrument for the standard commands a run uses
+    /// and print the profile keys that make a non-conforming one work (RF stays off).
+    #[arg(long)]
+    pub suggest_profile: bool,
 }
 
 /// One verified setting.
@@ -128,6 +132,21 @@ pub fn run(args: CheckBenchArgs) -> Result<(), CliError> {
                 path.display()
             ),
         }));
+    }
+    if args.suggest_profile {
+        let all = runtime()?.block_on(super::suggest_profile::suggest(&config, &benches));
+        if args.json {
+            println!("{}", to_json(&all)?);
+        } else {
+            print!("{}", super::suggest_profile::report_text(&all));
+        }
+        return match all.iter().find(|i| i.error.is_some()) {
+            Some(i) => Err(CliError::new(format!(
+                "could not probe the {} of bench {}; see above",
+                i.role, i.bench
+            ))),
+            None => Ok(()),
+        };
     }
     let report = runtime()?.block_on(async {
         let mut checks = Vec::new();
