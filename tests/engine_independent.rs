@@ -17,6 +17,103 @@ use halfwave::store::{ChainCalibrationPoint, Store};
 use halfwave_units::{Db, Hz};
 use independent_support::{true_v_pi, IndependentBench, Role};
 
+/// Writes a daemon configuration for the independent bench (with the analyzer profile when
+/// `with_profile`) and returns its path.
+fn write_config(
+    dir: &std::path::Path,
+    bench: &IndependentBench,
+    with_profile: bool,
+) -> std::path::PathBuf {
+    let profile = dir.join("analyzer.toml");
+    std::fs::write(
+        &profile,
+        "kind = \"spectrum_analyzer\"\n[commands]\nsingle_sweep_mode = \"\"\n",
+    )
+    .unwrap();
+    let analyzer_profile = if with_profile {
+        format!(", profile = \"{}\"", profile.display())
+    } else {
+        String::new()
+    };
+    let text = format!(
+        "data_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\"{} }}\n",
+        dir.join("data").display(),
+        bench.resource(Role::Source),
+        bench.resource(Role::Analyzer),
+        analyzer_profile,
+    );
+    let path = dir.join(if with_profile {
+        "with.toml"
+    } else {
+        "without.toml"
+    });
+    std::fs::write(&path, text).unwrap();
+    path
+}
+
+async fn halfwave(args: &[&str]) -> (bool, String) {
+    let out = tokio::process::Command::new(env!("CARGO_BIN_EXE_halfwave"))
+        .args(args)
+        .output()
+        .await
+        .expect("run halfwave");
+    let text = format!(
+        "{}{}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    (out.status.success(), text)
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn check_bench_reports_the_choices_and_suggests_the_missing_profile_key() {
+    let dir = tempfile::tempdir().unwrap();
+    let bench = IndependentBench::start().await;
+    // Without a profile the analyzer refuses INITiate:CONTinuous OFF: the check fails and names
+    // the key that avoids it.
+    let without = write_config(dir.path(), &bench, false);
+    let (ok, text) = halfwave(&["check-bench", "--config", without.to_str().unwrap()]).await;
+    assert!(!ok, "{text}");
+    assert!(text.contains("-113"), "{text}");
+    assert!(text.contains("commands.single_sweep_mode = \"\""), "{text}");
+    // --suggest-profile prints the fragment that makes it work.
+    let (ok, text) = halfwave(&[
+        "check-bench",
+        "--suggest-profile",
+        "--config",
+        without.to_str().unwrap(),
+    ])
+    .await;
+    assert!(ok, "{text}");
+    assert!(text.contains("single_sweep_mode = \"\""), "{text}");
+    assert!(text.contains("method = \"center_span\""), "{text}");
+    // With it, the check passes, RF off, and says how the axis is read and where the source's
+    // ranges came from.
+    let with = write_config(dir.path(), &bench, true);
+    let (ok, text) = halfwave(&["check-bench", "--config", with.to_str().unwrap()]).await;
+    assert!(ok, "{text}");
+    assert!(
+        text.contains("frequency axis: center_span via FREQuency:CENTer? / FREQuency:SPAN?"),
+        "{text}"
+    );
+    assert!(
+        text.contains("FREQuency:STARt? / FREQuency:STOP? drew -113,\"Undefined header\""),
+        "the refused probe is named: {text}"
+    );
+    assert!(
+        text.contains("level range: -110 dBm to 25 dBm (stated by the instrument)"),
+        "{text}"
+    );
+    assert!(
+        text.contains(
+            "plans are validated against: 100000 Hz to 40000000000 Hz, -110 dBm to 25 dBm"
+        ),
+        "{text}"
+    );
+    assert!(text.contains("trace of 1001 points"), "{text}");
+    assert!(!bench.truth.lock().unwrap().output_on);
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_whole_calibration_against_an_independent_bench_by_configuration_only() {
     let dir = tempfile::tempdir().unwrap();

@@ -145,7 +145,7 @@ impl ScpiSpectrumAnalyzer {
                     };
                     return Ok(());
                 }
-                Err(e) if refusal(&e) => refused.push(e.to_string()),
+                Err(e) if refusal(&e) => refused.push(short_refusal(first, second, &e)),
                 Err(e) => return Err(e),
             }
         }
@@ -509,6 +509,16 @@ fn refusal(error: &InstrumentError) -> bool {
             | InstrumentError::Unanswered { .. }
             | InstrumentError::Parse { .. }
     )
+}
+
+/// A refused probe in a few words, for the axis note: the instrument's own error when it gave one.
+fn short_refusal(first: &str, second: &str, error: &InstrumentError) -> String {
+    match error {
+        InstrumentError::Scpi { code, message, .. } => {
+            format!("{first} / {second} drew {code},\"{message}\"")
+        }
+        other => format!("{first} / {second}: {other}"),
+    }
 }
 
 /// Adds the profile key that sent a refused set-up command to the error, so the operator knows
