@@ -124,26 +124,22 @@ impl ScpiRfSource {
             min_level: Dbm(min_l),
             max_level: Dbm(max_l),
         };
-        let resource = self.session.name().to_string();
-        if min_f >= max_f {
-            return Err(InstrumentError::BadProfile {
-                resource,
+        let empty =
+            |what: &str, range: String, note: &str, keys: &str| InstrumentError::BadProfile {
+                resource: self.session.name().to_string(),
                 reason: format!(
-                    "the frequency range {} to {} ({f_note}) is empty; correct limits.min_frequency_hz / limits.max_frequency_hz in the source's profile",
-                    Hz(min_f),
-                    Hz(max_f)
-                ),
-            });
+                "the {what} range {range} ({note}) is empty; correct {keys} in the source's profile"
+            ),
+            };
+        if min_f >= max_f {
+            let range = format!("{} to {}", Hz(min_f), Hz(max_f));
+            let keys = "limits.min_frequency_hz / limits.max_frequency_hz";
+            return Err(empty("frequency", range, &f_note, keys));
         }
         if min_l >= max_l {
-            return Err(InstrumentError::BadProfile {
-                resource,
-                reason: format!(
-                    "the level range {} to {} ({l_note}) is empty; correct limits.min_level_dbm / limits.max_level_dbm in the source's profile",
-                    Dbm(min_l),
-                    Dbm(max_l)
-                ),
-            });
+            let range = format!("{} to {}", Dbm(min_l), Dbm(max_l));
+            let keys = "limits.min_level_dbm / limits.max_level_dbm";
+            return Err(empty("level", range, &l_note, keys));
         }
         self.limit_notes = vec![
             ConnectionNote::new(

@@ -78,19 +78,26 @@ async fn try_queries(session: &mut ScpiSession, queries: &[&str]) -> Result<(), 
         .await
 }
 
+/// How a profile given to the probing is named in its errors.
+const ORIGIN: &str = "(given to --suggest-profile)";
+
+/// A session without set-up commands (the probing sends them one by one).
+async fn open(
+    resource: &str,
+    check: Result<(), crate::profile::ProfileError>,
+    connection: &crate::profile::ConnectionProfile,
+    common: &crate::profile::CommonCommands,
+) -> Result<ScpiSession, InstrumentError> {
+    ScpiSession::open(resource, check, connection, common, &[]).await
+}
+
 /// Probes an analyzer at `resource` with `profile` (the standard tree when it has no file).
 pub async fn suggest_analyzer(
     resource: &str,
     profile: &AnalyzerProfile,
 ) -> Result<Vec<Suggestion>, InstrumentError> {
-    let mut session = ScpiSession::open(
-        resource,
-        profile.validate("(given to --suggest-profile)"),
-        &profile.connection,
-        &profile.common,
-        &[],
-    )
-    .await?;
+    let check = profile.validate(ORIGIN);
+    let mut session = open(resource, check, &profile.connection, &profile.common).await?;
     let c = &profile.commands;
     let mut out = Vec::new();
     if !c.single_sweep_mode.is_empty() {
@@ -172,14 +179,8 @@ pub async fn suggest_source(
     resource: &str,
     profile: &SourceProfile,
 ) -> Result<Vec<Suggestion>, InstrumentError> {
-    let mut session = ScpiSession::open(
-        resource,
-        profile.validate("(given to --suggest-profile)"),
-        &profile.connection,
-        &profile.common,
-        &[],
-    )
-    .await?;
+    let check = profile.validate(ORIGIN);
+    let mut session = open(resource, check, &profile.connection, &profile.common).await?;
     let c = &profile.commands;
     let mut out = Vec::new();
     for (min_key, min_query, max_key, max_query, limit_keys) in [
