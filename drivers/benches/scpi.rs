@@ -8,6 +8,10 @@
 //! simulator also serves a whole configuration step (set, error-queue check, read-back) and a
 //! 10,001-point REAL,32 trace fetch.
 //!
+//! The trace fetch is measured twice: as the driver runs it (format and byte order sent again
+//! before every fetch, `data.assert_each_fetch = true`), and with the format set at connect only;
+//! the difference is the cost of asserting the format (issue 12).
+//!
 //! Run: `cargo bench -p halfwave-drivers --bench scpi`
 
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
@@ -122,6 +126,11 @@ fn simulator_exchanges(c: &mut Criterion) {
             AnalyzerProfile::standard(),
         ))
         .expect("connect the analyzer driver");
+    let mut profile = AnalyzerProfile::standard();
+    profile.data.assert_each_fetch = false;
+    let mut analyzer_format_once = runtime
+        .block_on(ScpiSpectrumAnalyzer::connect(&analyzer_resource, profile))
+        .expect("connect the second analyzer driver");
     runtime.block_on(async {
         analyzer.set_points(10_001).await.expect("points");
         analyzer.sweep().await.expect("sweep");
@@ -165,6 +174,25 @@ fn simulator_exchanges(c: &mut Criterion) {
             })
         })
     });
+    group.bench_function(
+        "fetch_trace_10001_points_real32_simulator_format_set_once",
+        |b| {
+            b.iter_custom(|iterations| {
+                runtime.block_on(async {
+                    let started = Instant::now();
+                    for _ in 0..iterations {
+                        black_box(
+                            analyzer_format_once
+                                .fetch_trace()
+                                .await
+                                .expect("fetch trace"),
+                        );
+                    }
+                    started.elapsed()
+                })
+            })
+        },
+    );
     group.finish();
     drop(server);
 }

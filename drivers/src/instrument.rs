@@ -52,13 +52,25 @@ pub enum InstrumentError {
         after: Duration,
     },
 
-    /// The instrument reported an error in its SCPI error queue.
-    #[error("{resource} reported SCPI error {code},\"{message}\" after {operation}")]
+    /// A query drew no reply in time, and what the instrument's error queue said about it on a
+    /// fresh connection (nothing, or that it could not be asked) is in `instrument_said`.
+    #[error("{resource} did not answer {operation} within {after:?}; {instrument_said}")]
+    Unanswered {
+        resource: String,
+        operation: String,
+        after: Duration,
+        instrument_said: String,
+    },
+
+    /// The instrument reported an error in its SCPI error queue. `message` is the first entry's
+    /// own text; `detail` (empty or starting with "; ") holds further entries and what to do.
+    #[error("{resource} reported SCPI error {code},\"{message}\" after {operation}{detail}")]
     Scpi {
         resource: String,
         operation: String,
         code: i32,
         message: String,
+        detail: String,
     },
 
     /// A reply could not be parsed.
@@ -114,6 +126,7 @@ impl InstrumentError {
             self,
             InstrumentError::Connection { .. }
                 | InstrumentError::Timeout { .. }
+                | InstrumentError::Unanswered { .. }
                 | InstrumentError::Parse { .. }
                 | InstrumentError::LinkInterrupted { .. }
         )
@@ -126,8 +139,28 @@ impl InstrumentError {
             self,
             InstrumentError::Connection { .. }
                 | InstrumentError::Timeout { .. }
+                | InstrumentError::Unanswered { .. }
                 | InstrumentError::Parse { .. }
         )
+    }
+}
+
+/// One thing a driver learned or chose when it connected (how it reads the frequency axis, where
+/// its limits come from), for check-bench and the logs.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ConnectionNote {
+    /// What the note is about, e.g. `frequency axis`.
+    pub item: String,
+    /// What was chosen and why.
+    pub value: String,
+}
+
+impl ConnectionNote {
+    pub fn new(item: impl Into<String>, value: impl Into<String>) -> ConnectionNote {
+        ConnectionNote {
+            item: item.into(),
+            value: value.into(),
+        }
     }
 }
 
@@ -151,6 +184,11 @@ pub trait RfSource: Send {
 
     /// The frequency and level ranges this source accepts.
     fn limits(&self) -> SourceLimits;
+
+    /// What the driver learned or chose at connect (for check-bench); none by default.
+    fn connection_notes(&self) -> Vec<ConnectionNote> {
+        Vec::new()
+    }
 
     /// Sets the CW frequency; returns the read-back.
     async fn set_frequency(&mut self, frequency: Hz) -> Result<Hz, InstrumentError>;
@@ -216,6 +254,11 @@ pub trait SpectrumAnalyzer: Send {
 
     /// What the instrument can do.
     fn capabilities(&self) -> AnalyzerCapabilities;
+
+    /// What the driver learned or chose at connect (for check-bench); none by default.
+    fn connection_notes(&self) -> Vec<ConnectionNote> {
+        Vec::new()
+    }
 
     /// Sets the centre frequency; returns the read-back.
     async fn set_center(&mut self, center: Hz) -> Result<Hz, InstrumentError>;

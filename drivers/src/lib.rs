@@ -22,8 +22,8 @@ pub mod transport;
 
 pub use generic::{ScpiRfSource, ScpiSpectrumAnalyzer};
 pub use instrument::{
-    AnalyzerCapabilities, AnalyzerSettings, Identity, InstrumentError, RfSource, SourceLimits,
-    SpectrumAnalyzer,
+    AnalyzerCapabilities, AnalyzerSettings, ConnectionNote, Identity, InstrumentError, RfSource,
+    SourceLimits, SpectrumAnalyzer,
 };
 pub use profile::{AnalyzerProfile, SourceProfile};
 pub use resource::Resource;

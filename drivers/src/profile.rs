@@ -16,6 +16,7 @@ use crate::transport::TransportConfig;
 use crate::{AnalyzerCapabilities, SourceLimits};
 use halfwave_units::{Dbm, Hz, Seconds};
 use serde::{Deserialize, Serialize};
+use std::ops::Not;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
@@ -82,7 +83,14 @@ impl Default for ConnectionProfile {
 impl ConnectionProfile {
     /// The transport settings these connection settings stand for.
     pub fn transport_config(&self) -> TransportConfig {
+        self.transport_config_clearing("")
+    }
+
+    /// The transport settings, sending `clear_status` (`*CLS`; empty for none) on every new
+    /// connection.
+    pub fn transport_config_clearing(&self, clear_status: &str) -> TransportConfig {
         TransportConfig {
+            clear_on_connect: clear_status.to_string(),
             read_terminator: self.read_terminator.as_bytes().to_vec(),
             write_terminator: self.write_terminator.as_bytes().to_vec(),
             timeout: Duration::from_millis(self.timeout_ms),
@@ -242,6 +250,13 @@ pub struct SourceCommands {
     pub query_output: String,
     pub output_on_word: String,
     pub output_off_word: String,
+    /// Range queries asked once at connect, with the standard MINimum/MAXimum query parameters
+    /// (SCPI-1999 Vol 1, 7.2.1.1). An empty string skips one; an instrument that refuses one
+    /// falls back to `[limits]`, then to the conservative defaults.
+    pub query_min_frequency: String,
+    pub query_max_frequency: String,
+    pub query_min_level: String,
+    pub query_max_level: String,
 }
 
 impl Default for SourceCommands {
@@ -255,30 +270,37 @@ impl Default for SourceCommands {
             query_output: "OUTPut?".into(),
             output_on_word: "ON".into(),
             output_off_word: "OFF".into(),
+            query_min_frequency: "FREQuency? MINimum".into(),
+            query_max_frequency: "FREQuency? MAXimum".into(),
+            query_min_level: "POWer? MINimum".into(),
+            query_max_level: "POWer? MAXimum".into(),
         }
     }
 }
 
-/// The ranges a source accepts (the driver refuses requests outside them before sending).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+/// The ranges a source accepts (the driver refuses requests outside them before sending). Each
+/// key is optional: the driver asks the instrument at connect and uses the narrower of its answer
+/// and the key; a bound that neither gives is [`SourceLimitsProfile::CONSERVATIVE`]'s.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
 #[serde(default, deny_unknown_fields)]
 pub struct SourceLimitsProfile {
-    pub min_frequency_hz: f64,
-    pub max_frequency_hz: f64,
-    pub min_level_dbm: f64,
-    pub max_level_dbm: f64,
+    pub min_frequency_hz: Option<f64>,
+    pub max_frequency_hz: Option<f64>,
+    pub min_level_dbm: Option<f64>,
+    pub max_level_dbm: Option<f64>,
 }
 
-impl Default for SourceLimitsProfile {
-    fn default() -> Self {
-        // Wide enough for any microwave synthesizer; a model profile should narrow them.
-        SourceLimitsProfile {
-            min_frequency_hz: 1e3,
-            max_frequency_hz: 110e9,
-            min_level_dbm: -150.0,
-            max_level_dbm: 30.0,
-        }
-    }
+impl SourceLimitsProfile {
+    /// The limits used when neither the instrument nor the profile states a bound: 10 MHz to
+    /// 20 GHz and -100 dBm to +10 dBm. Conservative on purpose: nearly every microwave signal
+    /// generator covers this range (common practice), and +10 dBm cannot harm a modulator rated
+    /// for +24 dBm or more (from memory; the device's own limit is checked by the engine).
+    pub const CONSERVATIVE: SourceLimits = SourceLimits {
+        min_frequency: Hz(10e6),
+        max_frequency: Hz(20e9),
+        min_level: Dbm(-100.0),
+        max_level: Dbm(10.0),
+    };
 }
 
 /// How far a read-back may differ from the request.
@@ -369,19 +391,28 @@ impl SourceProfile {
         check.non_empty("commands.output_on_word", &c.output_on_word);
         check.non_empty("commands.output_off_word", &c.output_off_word);
         let l = &self.limits;
+        let finite = |v: Option<f64>| v.is_none_or(f64::is_finite);
         check.require(
             "limits.min_frequency_hz",
-            l.min_frequency_hz.is_finite()
-                && l.max_frequency_hz.is_finite()
-                && 0.0 < l.min_frequency_hz
-                && l.min_frequency_hz < l.max_frequency_hz,
-            "must be above 0 and below limits.max_frequency_hz",
+            finite(l.min_frequency_hz)
+                && finite(l.max_frequency_hz)
+                && l.min_frequency_hz.is_none_or(|v| v > 0.0)
+                && l.max_frequency_hz.is_none_or(|v| v > 0.0),
+            "must be a number above 0",
+        );
+        check.require(
+            "limits.min_frequency_hz",
+            matches!((l.min_frequency_hz, l.max_frequency_hz), (Some(a), Some(b)) if a >= b).not(),
+            "must be below limits.max_frequency_hz",
         );
         check.require(
             "limits.min_level_dbm",
-            l.min_level_dbm.is_finite()
-                && l.max_level_dbm.is_finite()
-                && l.min_level_dbm < l.max_level_dbm,
+            finite(l.min_level_dbm) && finite(l.max_level_dbm),
+            "must be a finite number",
+        );
+        check.require(
+            "limits.min_level_dbm",
+            matches!((l.min_level_dbm, l.max_level_dbm), (Some(a), Some(b)) if a >= b).not(),
             "must be below limits.max_level_dbm",
         );
         check.require(
@@ -397,13 +428,17 @@ impl SourceProfile {
         check.finish(origin)
     }
 
-    /// The limits as the trait reports them.
+    /// The limits from the profile alone, each missing bound taken from
+    /// [`SourceLimitsProfile::CONSERVATIVE`] (what the driver uses when the instrument does not
+    /// state its ranges).
     pub fn source_limits(&self) -> SourceLimits {
+        let l = &self.limits;
+        let d = SourceLimitsProfile::CONSERVATIVE;
         SourceLimits {
-            min_frequency: Hz(self.limits.min_frequency_hz),
-            max_frequency: Hz(self.limits.max_frequency_hz),
-            min_level: Dbm(self.limits.min_level_dbm),
-            max_level: Dbm(self.limits.max_level_dbm),
+            min_frequency: Hz(l.min_frequency_hz.unwrap_or(d.min_frequency.0)),
+            max_frequency: Hz(l.max_frequency_hz.unwrap_or(d.max_frequency.0)),
+            min_level: Dbm(l.min_level_dbm.unwrap_or(d.min_level.0)),
+            max_level: Dbm(l.max_level_dbm.unwrap_or(d.max_level.0)),
         }
     }
 }
@@ -440,6 +475,10 @@ pub struct AnalyzerCommands {
     pub byte_order_swapped: String,
     /// Returns the trace values.
     pub query_trace: String,
+    /// Returns the frequency of every trace point (ASCII list or a block in the data format),
+    /// for an analyzer that answers neither `query_start`/`query_stop` nor
+    /// `query_center`/`query_span`, or whose grid is not linear. Empty: not used.
+    pub query_axis: String,
 }
 
 impl Default for AnalyzerCommands {
@@ -463,6 +502,7 @@ impl Default for AnalyzerCommands {
             byte_order_normal: "FORMat:BORDer NORMal".into(),
             byte_order_swapped: "FORMat:BORDer SWAPped".into(),
             query_trace: "TRACe:DATA? TRACE1".into(),
+            query_axis: String::new(),
         }
     }
 }
@@ -478,7 +518,7 @@ pub enum PowerUnit {
 }
 
 /// How trace data is transferred.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
 pub struct TraceDataProfile {
     /// `ascii`, `real32` or `real64`.
@@ -487,6 +527,55 @@ pub struct TraceDataProfile {
     pub byte_order: ByteOrder,
     /// `dbm`, `milliwatt` or `watt`.
     pub power_unit: PowerUnit,
+    /// Send the format (and byte order) commands again before every trace fetch, so a change
+    /// made by another client of the instrument cannot make a trace be misread.
+    pub assert_each_fetch: bool,
+}
+
+impl Default for TraceDataProfile {
+    fn default() -> Self {
+        TraceDataProfile {
+            format: DataFormat::default(),
+            byte_order: ByteOrder::default(),
+            power_unit: PowerUnit::default(),
+            assert_each_fetch: true,
+        }
+    }
+}
+
+/// How the driver learns the frequency of each trace point (the `[axis]` table's `method`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum AxisMethod {
+    /// Try `query_start`/`query_stop`, then `query_center`/`query_span`, then `query_axis`, at
+    /// connect, and keep the first the instrument answers.
+    #[default]
+    Probe,
+    /// `query_start` and `query_stop`: a linear grid between them.
+    StartStop,
+    /// `query_center` and `query_span`: a linear grid from centre - span/2 to centre + span/2.
+    CenterSpan,
+    /// `query_axis`: the frequency of every point, as the instrument reports it.
+    Query,
+}
+
+impl std::fmt::Display for AxisMethod {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(match self {
+            AxisMethod::Probe => "probe",
+            AxisMethod::StartStop => "start_stop",
+            AxisMethod::CenterSpan => "center_span",
+            AxisMethod::Query => "query",
+        })
+    }
+}
+
+/// The `[axis]` table.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+#[serde(default, deny_unknown_fields)]
+pub struct AxisProfile {
+    /// `probe` (default), `start_stop`, `center_span` or `query`.
+    pub method: AxisMethod,
 }
 
 /// What the analyzer can do (reported through the trait; requests outside are refused).
@@ -556,6 +645,7 @@ pub struct AnalyzerProfile {
     pub common: CommonCommands,
     pub commands: AnalyzerCommands,
     pub data: TraceDataProfile,
+    pub axis: AxisProfile,
     pub capabilities: AnalyzerCapabilitiesProfile,
     pub read_back: AnalyzerReadBack,
     /// Time limit for one sweep (`start_sweep` until `*OPC?` answers), in milliseconds.
@@ -573,6 +663,7 @@ impl Default for AnalyzerProfile {
             common: CommonCommands::default(),
             commands: AnalyzerCommands::default(),
             data: TraceDataProfile::default(),
+            axis: AxisProfile::default(),
             capabilities: AnalyzerCapabilitiesProfile::default(),
             read_back: AnalyzerReadBack::default(),
             sweep_timeout_ms: 60_000,
@@ -639,6 +730,11 @@ impl AnalyzerProfile {
             DataFormat::Real64 => ("commands.format_real64", &c.format_real64),
         };
         check.non_empty(format_key.0, format_key.1);
+        check.require(
+            "commands.query_axis",
+            self.axis.method != AxisMethod::Query || !c.query_axis.trim().is_empty(),
+            "must name the instrument's axis query when axis.method = \"query\"",
+        );
         let k = &self.capabilities;
         check.require(
             "capabilities.min_frequency_hz",

@@ -39,6 +39,9 @@ pub struct TransportConfig {
     pub max_reconnect_backoff: Duration,
     /// Largest reply accepted, in bytes (guards memory against a runaway or garbled stream).
     pub max_reply_bytes: usize,
+    /// Sent on every new connection before anything else (IEEE 488.2 `*CLS`, so errors queued
+    /// before this connection are never blamed on a command sent on it); empty sends nothing.
+    pub clear_on_connect: String,
 }
 
 impl Default for TransportConfig {
@@ -52,6 +55,7 @@ impl Default for TransportConfig {
             reconnect_backoff: Duration::from_millis(100),
             max_reconnect_backoff: Duration::from_secs(2),
             max_reply_bytes: 64 * 1024 * 1024,
+            clear_on_connect: String::new(),
         }
     }
 }
@@ -158,8 +162,49 @@ impl ScpiTransport {
     }
 
     /// Drops any open socket and connects again, trying `reconnect_attempts` times with a backoff
-    /// that doubles from `reconnect_backoff` up to `max_reconnect_backoff`.
+    /// that doubles from `reconnect_backoff` up to `max_reconnect_backoff`, then sends
+    /// `clear_on_connect` (`*CLS`) on the new connection.
     pub async fn reconnect(&mut self) -> Result<(), InstrumentError> {
+        self.open_connection().await?;
+        if self.config.clear_on_connect.is_empty() {
+            return Ok(());
+        }
+        let clear = self.config.clear_on_connect.clone();
+        let mut bytes = clear.clone().into_bytes();
+        bytes.extend_from_slice(&self.config.write_terminator);
+        let timeout = self.config.timeout;
+        let Some(stream) = self.stream.as_mut() else {
+            return Err(self.io_error(&clear, io::Error::from(io::ErrorKind::NotConnected)));
+        };
+        let outcome = tokio::time::timeout(timeout, stream.write_all(&bytes)).await;
+        match outcome {
+            Ok(Ok(())) => {
+                tracing::debug!(resource = %self.name, command = %clear, "scpi status cleared on the new connection");
+                Ok(())
+            }
+            Ok(Err(e)) => {
+                self.disconnect();
+                Err(self.io_error(&clear, e))
+            }
+            Err(_) => {
+                self.disconnect();
+                Err(InstrumentError::Timeout {
+                    resource: self.name.clone(),
+                    operation: clear,
+                    after: timeout,
+                })
+            }
+        }
+    }
+
+    /// Like [`reconnect`](Self::reconnect) but without `clear_on_connect`: for reading the error
+    /// queue an earlier connection left (what the instrument said about a command it did not
+    /// answer). The caller clears the status itself afterwards.
+    pub async fn reconnect_keeping_errors(&mut self) -> Result<(), InstrumentError> {
+        self.open_connection().await
+    }
+
+    async fn open_connection(&mut self) -> Result<(), InstrumentError> {
         self.disconnect();
         let attempts = self.config.reconnect_attempts.max(1);
         let mut backoff = self.config.reconnect_backoff;

@@ -61,14 +61,78 @@ async fn source_identifies_sets_and_reads_back() {
     source.safe_off().await.unwrap();
     assert!(!fake.state().output_on);
     assert!(!source.output_enabled().await.unwrap());
-    // Each setting step drained the error queue before reading back.
+    // Each setting step read back, then drained the error queue, so an entry belongs to it.
     let commands = fake.state().commands.clone();
     let set = commands
         .iter()
         .position(|c| c == "FREQuency 2500000000")
         .unwrap();
-    assert_eq!(commands[set + 1], "SYSTem:ERRor?");
-    assert_eq!(commands[set + 2], "FREQuency?");
+    assert_eq!(commands[set + 1], "FREQuency?");
+    assert_eq!(commands[set + 2], "SYSTem:ERRor?");
+}
+
+#[tokio::test]
+async fn the_source_learns_its_ranges_from_the_instrument() {
+    // SCPI-1999 Vol 1 §7.2.1.1 (from memory): a numeric query with MINimum or MAXimum returns
+    // the lowest or highest allowed value. The fake states 1 kHz to 40 GHz and -130 to 25 dBm.
+    let fake = FakeInstrument::start().await;
+    let source = ScpiRfSource::connect(&fake.resource(), quick_source_profile())
+        .await
+        .unwrap();
+    let limits = source.limits();
+    assert_eq!(limits.min_frequency, Hz(common::SOURCE_MIN_HZ));
+    assert_eq!(limits.max_frequency, Hz(common::SOURCE_MAX_HZ));
+    assert_eq!(limits.min_level, Dbm(common::SOURCE_MIN_DBM));
+    assert_eq!(limits.max_level, Dbm(common::SOURCE_MAX_DBM));
+    let notes = source.connection_notes();
+    assert!(
+        notes
+            .iter()
+            .all(|n| n.value.contains("stated by the instrument")),
+        "{notes:?}"
+    );
+    let commands = fake.state().commands.clone();
+    for query in [
+        "FREQuency? MINimum",
+        "FREQuency? MAXimum",
+        "POWer? MINimum",
+        "POWer? MAXimum",
+    ] {
+        assert!(
+            commands.iter().any(|c| c == query),
+            "{query} in {commands:?}"
+        );
+    }
+
+    // A profile narrower than the instrument wins; a level of 26 dBm is refused before sending
+    // on a 25 dBm instrument even though the profile would allow 30 dBm.
+    let mut profile = quick_source_profile();
+    profile.limits.max_level_dbm = Some(30.0);
+    profile.limits.max_frequency_hz = Some(20e9);
+    let mut source = ScpiRfSource::connect(&fake.resource(), profile)
+        .await
+        .unwrap();
+    assert_eq!(source.limits().max_level, Dbm(25.0));
+    assert_eq!(source.limits().max_frequency, Hz(20e9));
+    let err = source.set_level(Dbm(26.0)).await.unwrap_err();
+    assert!(matches!(err, InstrumentError::OutOfRange { .. }), "{err:?}");
+
+    // An instrument that states nothing: the profile, then the conservative default.
+    let mut profile = quick_source_profile();
+    profile.commands.query_min_level = String::new();
+    profile.commands.query_max_level = String::new();
+    profile.commands.query_min_frequency = "FREQuency? LOWest".into(); // refused: -224
+    profile.limits.min_level_dbm = Some(-50.0);
+    let source = ScpiRfSource::connect(&fake.resource(), profile)
+        .await
+        .unwrap();
+    let defaults = halfwave_drivers::profile::SourceLimitsProfile::CONSERVATIVE;
+    assert_eq!(source.limits().min_level, Dbm(-50.0));
+    assert_eq!(source.limits().max_level, defaults.max_level);
+    assert_eq!(source.limits().min_frequency, defaults.min_frequency);
+    assert_eq!(source.limits().max_frequency, defaults.max_frequency);
+    // The refusal was read and cleared at connect, not left for a later command.
+    assert!(fake.state().errors.is_empty());
 }
 
 #[tokio::test]
@@ -88,7 +152,11 @@ async fn requests_outside_the_limits_are_refused_before_sending() {
 #[tokio::test]
 async fn an_error_from_the_instrument_surfaces_with_its_code() {
     let fake = FakeInstrument::start().await;
-    let mut source = ScpiRfSource::connect(&fake.resource(), quick_source_profile())
+    // The range is not asked, so 60 GHz passes the driver's check and reaches the instrument.
+    let mut profile = quick_source_profile();
+    profile.commands.query_max_frequency = String::new();
+    profile.limits.max_frequency_hz = Some(100e9);
+    let mut source = ScpiRfSource::connect(&fake.resource(), profile)
         .await
         .unwrap();
     // 60 GHz is inside the profile's limits but beyond the fake's 40 GHz: it answers -222.
@@ -114,13 +182,25 @@ async fn an_error_from_the_instrument_surfaces_with_its_code() {
     fake.state()
         .errors
         .push_back((-113, "Undefined header".into()));
-    match source.set_level(Dbm(0.0)).await.unwrap_err() {
+    let err = source.set_level(Dbm(0.0)).await.unwrap_err();
+    match &err {
         InstrumentError::Scpi { code, message, .. } => {
-            assert_eq!(code, -350);
-            assert!(message.contains("-113"), "{message}");
+            assert_eq!(*code, -350);
+            assert_eq!(message, "Queue overflow");
         }
         other => panic!("expected a SCPI error, got {other:?}"),
     }
+    // Each entry keeps the <code>,"<message>" form of SCPI-1999 Vol 2 §21.8 (from memory),
+    // none nested inside another's quotes.
+    let text = err.to_string();
+    assert!(
+        text.contains("SCPI error -350,\"Queue overflow\" after"),
+        "{text}"
+    );
+    assert!(
+        text.contains("the error queue also held -113,\"Undefined header\""),
+        "{text}"
+    );
     assert!(fake.state().errors.is_empty());
     assert_eq!(source.set_level(Dbm(0.0)).await.unwrap(), Dbm(0.0));
 }
@@ -177,8 +257,20 @@ async fn a_silent_instrument_times_out_cleanly() {
     let started = Instant::now();
     let err = source.set_frequency(Hz(2e9)).await.unwrap_err();
     let waited = started.elapsed();
-    assert!(matches!(err, InstrumentError::Timeout { .. }), "{err:?}");
-    assert!(err.to_string().contains("did not answer"), "{err}");
+    // The source asked its error queue on a fresh connection, so the link was re-established
+    // mid-step and the interlock tried to confirm the output off, which a silent instrument
+    // cannot: the step fails as interrupted, carrying the first failure.
+    assert!(
+        matches!(err, InstrumentError::LinkInterrupted { .. }),
+        "{err:?}"
+    );
+    let text = err.to_string();
+    assert!(text.contains("did not answer FREQuency? within"), "{text}");
+    // The error queue was asked on a fresh connection, and the message says it did not answer.
+    assert!(
+        text.contains("did not answer SYSTem:ERRor? on a fresh connection either"),
+        "{text}"
+    );
     assert!(
         waited >= Duration::from_millis(300) && waited < Duration::from_secs(3),
         "{waited:?}"
@@ -401,4 +493,241 @@ async fn drivers_connect_from_configuration_as_trait_objects() {
         err.to_string().contains("/nonexistent/profile.toml"),
         "{err}"
     );
+}
+
+#[tokio::test]
+async fn a_query_the_instrument_does_not_know_is_reported_with_its_own_error() {
+    // IEEE 488.2 §6.1.6 / SCPI-1999 Vol 2 §21.8.6 (from memory): an unknown header queues -113
+    // and draws no response. The driver must read that entry, not just report a timeout.
+    let fake = FakeInstrument::start_with(State {
+        without_start_stop: true,
+        ..State::default()
+    })
+    .await;
+    let mut source = ScpiRfSource::connect(&fake.resource(), quick_source_profile())
+        .await
+        .unwrap();
+    let err = source
+        .session_mut()
+        .query("FREQuency:STARt?")
+        .await
+        .unwrap_err();
+    match &err {
+        InstrumentError::Scpi {
+            code, operation, ..
+        } => {
+            assert_eq!(*code, -113);
+            assert!(operation.starts_with("FREQuency:STARt?"), "{operation}");
+        }
+        other => panic!("expected the instrument's -113, got {other:?}"),
+    }
+    let text = err.to_string();
+    assert!(
+        text.contains("it sent no reply to FREQuency:STARt?"),
+        "{text}"
+    );
+    assert!(!text.contains("busy, hung"), "{text}");
+    // Not repeated (the instrument has answered), and the queue is clean for the next command.
+    let asked = fake
+        .state()
+        .commands
+        .iter()
+        .filter(|c| c.as_str() == "FREQuency:STARt?")
+        .count();
+    assert_eq!(asked, 1);
+    assert!(fake.state().errors.is_empty());
+    assert_eq!(source.set_level(Dbm(-1.0)).await.unwrap(), Dbm(-1.0));
+}
+
+#[tokio::test]
+async fn every_new_connection_starts_with_clear_status() {
+    // IEEE 488.2 §10.3 (from memory): *CLS empties the error queue. An error left by another
+    // connection must not be blamed on the first command of this one.
+    let fake = FakeInstrument::start().await;
+    let mut source = ScpiRfSource::connect(&fake.resource(), quick_source_profile())
+        .await
+        .unwrap();
+    assert_eq!(
+        fake.state().commands.first().map(String::as_str),
+        Some("*CLS")
+    );
+    source.safe_off().await.unwrap();
+    source.session_mut().transport_mut().disconnect();
+    fake.state()
+        .errors
+        .push_back((-113, "Undefined header".into()));
+    let before = fake.state().commands.len();
+    assert_eq!(source.set_frequency(Hz(3e9)).await.unwrap(), Hz(3e9));
+    let commands = fake.state().commands.clone();
+    assert_eq!(commands[before], "*CLS", "{commands:?}");
+    assert_eq!(fake.state().connections, 2);
+}
+
+#[tokio::test]
+async fn an_analyzer_without_start_stop_is_read_through_center_and_span() {
+    let fake = FakeInstrument::start_with(State {
+        without_start_stop: true,
+        ..State::default()
+    })
+    .await;
+    let mut analyzer = ScpiSpectrumAnalyzer::connect(
+        &fake.resource(),
+        quick_analyzer_profile(DataFormat::Real32, ByteOrder::Normal),
+    )
+    .await
+    .unwrap();
+    assert_eq!(
+        analyzer.axis_method(),
+        halfwave_drivers::profile::AxisMethod::CenterSpan
+    );
+    let notes = analyzer.connection_notes();
+    let axis = notes.iter().find(|n| n.item == "frequency axis").unwrap();
+    assert!(axis.value.contains("center_span"), "{axis:?}");
+    assert!(axis.value.contains("-113"), "{axis:?}");
+    // The probe asked STARt? once and cleared the -113 it drew.
+    let asked = |q: &str| fake.state().commands.iter().filter(|c| *c == q).count();
+    assert_eq!(asked("FREQuency:STARt?"), 1);
+    assert!(fake.state().errors.is_empty());
+
+    analyzer.set_points(1001).await.unwrap();
+    analyzer.sweep().await.unwrap();
+    let trace = analyzer.fetch_trace().await.unwrap();
+    // The axis is centre -/+ span/2 in 1000 equal steps (the fake's 193.4 THz and 20 GHz).
+    let f = trace.frequency_hz();
+    assert_eq!(f.len(), 1001);
+    assert!((f[0] - (193.4e12 - 10e9)).abs() < 1.0, "{}", f[0]);
+    assert!((f[1000] - (193.4e12 + 10e9)).abs() < 1.0, "{}", f[1000]);
+    assert_eq!(
+        asked("FREQuency:STARt?"),
+        1,
+        "never asked again after the probe"
+    );
+}
+
+#[tokio::test]
+async fn a_refused_setup_command_names_the_profile_key() {
+    let fake = FakeInstrument::start_with(State {
+        without_continuous: true,
+        ..State::default()
+    })
+    .await;
+    let profile = quick_analyzer_profile(DataFormat::Ascii, ByteOrder::Normal);
+    let err = ScpiSpectrumAnalyzer::connect(&fake.resource(), profile.clone())
+        .await
+        .unwrap_err();
+    let text = err.to_string();
+    assert!(
+        matches!(err, InstrumentError::Scpi { code: -113, .. }),
+        "{err:?}"
+    );
+    assert!(text.contains("commands.single_sweep_mode = \"\""), "{text}");
+    // With the key emptied the analyzer connects and sweeps.
+    let mut profile = profile;
+    profile.commands.single_sweep_mode = String::new();
+    let mut analyzer = ScpiSpectrumAnalyzer::connect(&fake.resource(), profile)
+        .await
+        .unwrap();
+    analyzer.sweep().await.unwrap();
+    assert_eq!(analyzer.fetch_trace().await.unwrap().len(), 1001);
+}
+
+#[tokio::test]
+async fn the_format_is_asserted_before_every_fetch() {
+    let fake = FakeInstrument::start().await;
+    let mut analyzer = ScpiSpectrumAnalyzer::connect(
+        &fake.resource(),
+        quick_analyzer_profile(DataFormat::Real32, ByteOrder::Swapped),
+    )
+    .await
+    .unwrap();
+    analyzer.set_points(1001).await.unwrap();
+    analyzer.sweep().await.unwrap();
+    // Another client switches the instrument to ASCII, big-endian.
+    fake.state().format = "ASC".into();
+    fake.state().swapped = false;
+    let trace = analyzer.fetch_trace().await.unwrap();
+    assert_eq!(trace.power_dbm(), fake_trace_dbm(1001).as_slice());
+    let commands = fake.state().commands.clone();
+    let fetch = commands
+        .iter()
+        .rposition(|c| c == "TRACe:DATA? TRACE1")
+        .unwrap();
+    let format = commands
+        .iter()
+        .rposition(|c| c == "FORMat:DATA REAL,32")
+        .unwrap();
+    let order = commands
+        .iter()
+        .rposition(|c| c == "FORMat:BORDer SWAPped")
+        .unwrap();
+    assert!(format < fetch && order < fetch, "{commands:?}");
+    // The fetch ends with an error-queue check.
+    assert_eq!(commands[fetch + 1], "SYSTem:ERRor?");
+}
+
+#[tokio::test]
+async fn an_explicit_axis_query_gives_a_non_linear_axis() {
+    // An analyzer with neither STARt?/STOP? nor a linear grid: the profile names its axis query
+    // (an invented dialect, TRACe:XVALues?) and the trace carries the reported frequencies.
+    let fake = FakeInstrument::start_with(State {
+        without_start_stop: true,
+        ..State::default()
+    })
+    .await;
+    let mut profile = quick_analyzer_profile(DataFormat::Real64, ByteOrder::Normal);
+    profile.axis.method = halfwave_drivers::profile::AxisMethod::Query;
+    profile.commands.query_axis = "TRACe:XVALues? TRACE1".into();
+    let mut analyzer = ScpiSpectrumAnalyzer::connect(&fake.resource(), profile)
+        .await
+        .unwrap();
+    analyzer.set_points(101).await.unwrap();
+    analyzer.sweep().await.unwrap();
+    let trace = analyzer.fetch_trace().await.unwrap();
+    let expected = common::fake_axis_hz(&fake.state());
+    assert_eq!(trace.frequency_hz(), expected.as_slice());
+    assert!(fake.state().errors.is_empty());
+    // A profile that asks for the query method without naming the query is refused.
+    let mut bad = quick_analyzer_profile(DataFormat::Ascii, ByteOrder::Normal);
+    bad.axis.method = halfwave_drivers::profile::AxisMethod::Query;
+    let err = ScpiSpectrumAnalyzer::connect(&fake.resource(), bad)
+        .await
+        .unwrap_err();
+    assert!(err.to_string().contains("commands.query_axis"), "{err}");
+}
+
+#[tokio::test]
+async fn suggestions_name_the_keys_a_non_conforming_analyzer_needs() {
+    use halfwave_drivers::generic::suggest::{as_toml, suggest_analyzer, suggest_source};
+    let fake = FakeInstrument::start_with(State {
+        without_start_stop: true,
+        without_continuous: true,
+        ..State::default()
+    })
+    .await;
+    let profile = quick_analyzer_profile(DataFormat::Real32, ByteOrder::Normal);
+    let suggestions = suggest_analyzer(&fake.resource(), &profile).await.unwrap();
+    let lines: Vec<&str> = suggestions.iter().map(|s| s.line.as_str()).collect();
+    assert_eq!(
+        lines,
+        ["single_sweep_mode = \"\"", "method = \"center_span\""],
+        "{suggestions:?}"
+    );
+    // The fragment is a profile the driver accepts, and with it the analyzer connects.
+    let fragment = as_toml("spectrum_analyzer", &suggestions);
+    let mut fixed = AnalyzerProfile::from_toml_str(&fragment, "suggested").unwrap();
+    fixed.connection = profile.connection.clone();
+    let mut analyzer = ScpiSpectrumAnalyzer::connect(&fake.resource(), fixed)
+        .await
+        .unwrap();
+    analyzer.sweep().await.unwrap();
+    assert_eq!(analyzer.fetch_trace().await.unwrap().len(), 1001);
+    // Every refusal was read and cleared.
+    assert!(fake.state().errors.is_empty());
+
+    // A conforming source: nothing to suggest.
+    let source = FakeInstrument::start().await;
+    let none = suggest_source(&source.resource(), &quick_source_profile())
+        .await
+        .unwrap();
+    assert!(none.is_empty(), "{none:?}");
 }

@@ -66,11 +66,21 @@ async fn source_identifies_sets_and_reads_back_against_the_simulator() {
 #[tokio::test]
 async fn simulator_errors_surface_with_their_codes() {
     let server = start_bench(0.0).await;
-    let mut source = ScpiRfSource::connect(&server.resource(Role::RfSource), source_profile(1))
+    // The source states its range (FREQuency? MAXimum), which the driver then enforces itself.
+    let limits = ScpiRfSource::connect(&server.resource(Role::RfSource), source_profile(1))
+        .await
+        .unwrap()
+        .limits();
+    assert_eq!(limits, server.bench().scenario().source_limits());
+    // Without the range query, 60 GHz passes the profile's limits but not the simulated 40 GHz
+    // source: the instrument answers -222 "Data out of range" (SCPI-1999 Vol 2 error list;
+    // from memory).
+    let mut profile = source_profile(1);
+    profile.commands.query_max_frequency = String::new();
+    profile.limits.max_frequency_hz = Some(100e9);
+    let mut source = ScpiRfSource::connect(&server.resource(Role::RfSource), profile)
         .await
         .unwrap();
-    // 60 GHz passes the standard profile's limits but not the simulated 40 GHz source: the
-    // instrument answers -222 "Data out of range" (SCPI-1999 Vol 2 error list; from memory).
     match source.set_frequency(Hz(60e9)).await.unwrap_err() {
         InstrumentError::Scpi { code, message, .. } => {
             assert_eq!(code, -222);
@@ -118,7 +128,13 @@ async fn link_faults_of_the_simulator_are_survived() {
     faults.stop_answering();
     let started = Instant::now();
     let err = strict.output_enabled().await.unwrap_err();
-    assert!(matches!(err, InstrumentError::Timeout { .. }), "{err:?}");
+    // The error queue is asked on a fresh connection, so the interlock then tries to confirm
+    // the output off, which a silent instrument cannot: interrupted, carrying both failures.
+    assert!(
+        matches!(err, InstrumentError::LinkInterrupted { .. }),
+        "{err:?}"
+    );
+    assert!(err.to_string().contains("did not answer OUTPut?"), "{err}");
     assert!(started.elapsed() >= Duration::from_millis(400));
     faults.resume();
     assert!(!strict.output_enabled().await.unwrap());

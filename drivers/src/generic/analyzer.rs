@@ -2,67 +2,193 @@
 //! [`AnalyzerProfile`].
 //!
 //! On connect it selects single-sweep mode and the profile's trace format and byte order, so that
-//! a sweep runs only when asked and traces arrive in a known encoding. Setters are range-checked
-//! against the profile's capabilities, sent as session steps (send, drain errors, read back) and
-//! verified within tolerance. A trace is fetched as ASCII or as a binary block, whichever the
-//! reply turns out to be, and its frequency axis is rebuilt from `STARt?`, `STOP?` and `POINts?`
-//! (linear), as the agreed command set defines it.
+//! a sweep runs only when asked and traces arrive in a known encoding; a set-up command the
+//! instrument refuses is reported with the profile key that sends it. It then chooses how to
+//! learn the trace's frequency axis (the profile's `[axis] method`, by default by probing):
+//! `STARt?`/`STOP?`, else `CENTer?`/`SPAN?`, else the profile's explicit axis query. A probe the
+//! instrument does not know draws -113 and no reply; the session reads that entry on a fresh
+//! connection and clears it, and the probe is not repeated. The choice is kept for the life of
+//! the driver and reported by [`SpectrumAnalyzer::connection_notes`].
+//!
+//! Setters are range-checked against the profile's capabilities, sent as session steps (send,
+//! read back, drain errors) and verified within tolerance. Before every trace fetch the format
+//! and byte order are sent again (unless the profile's `data.assert_each_fetch` is false), since
+//! another client of the instrument may have changed them; the fetch ends with an error-queue
+//! check. A trace arrives as ASCII or as a binary block, whichever the reply turns out to be.
 
 use super::session::ScpiSession;
-use crate::profile::{fill_template, AnalyzerProfile, PowerUnit};
+use crate::profile::{fill_template, AnalyzerProfile, AxisMethod, PowerUnit};
 use crate::scpi::block::decode_binary_reply_into;
 use crate::scpi::response::{parse_integer, parse_number_list_into};
 use crate::scpi::{ByteOrder, DataFormat, ParseError};
-use crate::{AnalyzerCapabilities, Identity, InstrumentError, SpectrumAnalyzer};
+use crate::{AnalyzerCapabilities, ConnectionNote, Identity, InstrumentError, SpectrumAnalyzer};
 use async_trait::async_trait;
 use halfwave_units::{Hz, Trace};
 use std::time::Duration;
+
+/// Longest wait for the answer to an axis probe at connect (a settings query is answered within
+/// milliseconds by an instrument that knows it; common practice). A probe that draws no reply
+/// costs this much once, at connect.
+const PROBE_TIMEOUT: Duration = Duration::from_millis(1500);
 
 /// A spectrum analyzer reached over SCPI.
 #[derive(Debug)]
 pub struct ScpiSpectrumAnalyzer {
     session: ScpiSession,
     profile: AnalyzerProfile,
+    /// How the frequency axis is read (never [`AxisMethod::Probe`] after connect).
+    axis: AxisMethod,
+    /// Why that axis method was chosen, for [`SpectrumAnalyzer::connection_notes`].
+    axis_reason: String,
 }
 
 impl ScpiSpectrumAnalyzer {
     /// Connects to `resource`, clears the status, selects single-sweep mode and the profile's
-    /// data format, then runs the profile's `on_connect` commands.
+    /// data format, runs the profile's `on_connect` commands and chooses the axis method.
     pub async fn connect(
         resource: &str,
         profile: AnalyzerProfile,
     ) -> Result<ScpiSpectrumAnalyzer, InstrumentError> {
-        let c = &profile.commands;
-        let mut setup = Vec::new();
-        if !c.single_sweep_mode.is_empty() {
-            setup.push(c.single_sweep_mode.clone());
-        }
-        let format = match profile.data.format {
-            DataFormat::Ascii => &c.format_ascii,
-            DataFormat::Real32 => &c.format_real32,
-            DataFormat::Real64 => &c.format_real64,
-        };
-        setup.push(format.clone());
-        if profile.data.format != DataFormat::Ascii {
-            let order = match profile.data.byte_order {
-                ByteOrder::Normal => &c.byte_order_normal,
-                ByteOrder::Swapped => &c.byte_order_swapped,
-            };
-            if !order.is_empty() {
-                setup.push(order.clone());
-            }
-        }
-        setup.extend(profile.on_connect.iter().cloned());
         let session = ScpiSession::open(
             resource,
             profile.validate("(given to the analyzer driver)"),
             &profile.connection,
             &profile.common,
-            &setup,
+            &[],
         )
         .await?;
-        let analyzer = ScpiSpectrumAnalyzer { session, profile };
+        let mut analyzer = ScpiSpectrumAnalyzer {
+            session,
+            profile,
+            axis: AxisMethod::StartStop,
+            axis_reason: String::new(),
+        };
+        for (key, command) in analyzer.setup_commands() {
+            analyzer
+                .session
+                .write(&command)
+                .await
+                .map_err(|e| with_profile_key(e, &key, &command))?;
+        }
+        analyzer.choose_axis().await?;
+        tracing::info!(resource = %analyzer.session.name(), axis = %analyzer.axis, reason = %analyzer.axis_reason, "analyzer connected");
         Ok(analyzer)
+    }
+
+    /// The set-up commands sent at connect, each with the profile key that sends it.
+    fn setup_commands(&self) -> Vec<(String, String)> {
+        let c = &self.profile.commands;
+        let mut setup = Vec::new();
+        if !c.single_sweep_mode.is_empty() {
+            setup.push((
+                "commands.single_sweep_mode".into(),
+                c.single_sweep_mode.clone(),
+            ));
+        }
+        setup.extend(self.format_commands());
+        for (index, command) in self.profile.on_connect.iter().enumerate() {
+            setup.push((format!("on_connect[{index}]"), command.clone()));
+        }
+        setup
+    }
+
+    /// The format command and, for binary formats, the byte-order command, with their keys.
+    fn format_commands(&self) -> Vec<(String, String)> {
+        let c = &self.profile.commands;
+        let mut out = Vec::new();
+        let format = match self.profile.data.format {
+            DataFormat::Ascii => ("commands.format_ascii", &c.format_ascii),
+            DataFormat::Real32 => ("commands.format_real32", &c.format_real32),
+            DataFormat::Real64 => ("commands.format_real64", &c.format_real64),
+        };
+        out.push((format.0.to_string(), format.1.clone()));
+        if self.profile.data.format != DataFormat::Ascii {
+            let order = match self.profile.data.byte_order {
+                ByteOrder::Normal => ("commands.byte_order_normal", &c.byte_order_normal),
+                ByteOrder::Swapped => ("commands.byte_order_swapped", &c.byte_order_swapped),
+            };
+            if !order.1.is_empty() {
+                out.push((order.0.to_string(), order.1.clone()));
+            }
+        }
+        out
+    }
+
+    /// Decides how the axis is read: the profile's method, or the first pair of queries the
+    /// instrument answers (probing). An error that is not the instrument's refusal (a lost link)
+    /// ends the connect.
+    async fn choose_axis(&mut self) -> Result<(), InstrumentError> {
+        let c = self.profile.commands.clone();
+        match self.profile.axis.method {
+            AxisMethod::Probe => {}
+            fixed => {
+                self.axis = fixed;
+                self.axis_reason = "set by the profile's axis.method".into();
+                return Ok(());
+            }
+        }
+        let mut refused = Vec::new();
+        for (method, first, second) in [
+            (AxisMethod::StartStop, &c.query_start, &c.query_stop),
+            (AxisMethod::CenterSpan, &c.query_center, &c.query_span),
+        ] {
+            match self.probe_pair(first, second).await {
+                Ok(()) => {
+                    self.axis = method;
+                    self.axis_reason = if refused.is_empty() {
+                        format!("{first} and {second} answered")
+                    } else {
+                        format!(
+                            "{first} and {second} answered; not used: {}",
+                            refused.join("; ")
+                        )
+                    };
+                    return Ok(());
+                }
+                Err(e) if refusal(&e) => refused.push(short_refusal(first, second, &e)),
+                Err(e) => return Err(e),
+            }
+        }
+        if !c.query_axis.trim().is_empty() {
+            self.axis = AxisMethod::Query;
+            self.axis_reason = format!(
+                "{} from the profile (not used: {})",
+                c.query_axis,
+                refused.join("; ")
+            );
+            return Ok(());
+        }
+        Err(InstrumentError::Unsupported {
+            resource: self.session.name().to_string(),
+            what: format!(
+                "any of the axis queries tried ({}); name the queries it answers in its profile \
+                 (commands.query_start/query_stop, commands.query_center/query_span, or \
+                 commands.query_axis with axis.method = \"query\")",
+                refused.join("; ")
+            ),
+        })
+    }
+
+    /// Asks both queries of an axis method once; both must answer with a finite number.
+    async fn probe_pair(&mut self, first: &str, second: &str) -> Result<(), InstrumentError> {
+        let timeout = PROBE_TIMEOUT.min(self.session.transport().config().timeout);
+        for query in [first, second] {
+            let reply = self.session.probe(query, timeout).await?;
+            let value = crate::scpi::response::parse_number(&reply)
+                .map_err(|e| self.session.parse_error(query, e))?;
+            if !value.is_finite() {
+                return Err(self.session.parse_error(
+                    query,
+                    ParseError(format!("the reply {reply:?} is not a finite number")),
+                ));
+            }
+        }
+        self.session.check_errors(second).await
+    }
+
+    /// How the frequency axis is read (chosen at connect).
+    pub fn axis_method(&self) -> AxisMethod {
+        self.axis
     }
 
     /// The profile in use.
@@ -111,6 +237,12 @@ impl ScpiSpectrumAnalyzer {
 
     /// Decodes a trace reply (ASCII list or binary block) into dBm values.
     fn decode_trace(&self, reply: &[u8], out: &mut Vec<f64>) -> Result<(), ParseError> {
+        self.decode_values(reply, out)?;
+        convert_to_dbm(out, self.profile.data.power_unit)
+    }
+
+    /// Decodes a reply that is an ASCII list or a binary block in the profile's format.
+    fn decode_values(&self, reply: &[u8], out: &mut Vec<f64>) -> Result<(), ParseError> {
         let data = &self.profile.data;
         if reply.first() == Some(&b'#') {
             let format = match data.format {
@@ -124,7 +256,7 @@ impl ScpiSpectrumAnalyzer {
                 .map_err(|_| ParseError("the ASCII trace holds bytes that are not text".into()))?;
             parse_number_list_into(text, out)?;
         }
-        convert_to_dbm(out, data.power_unit)
+        Ok(())
     }
 }
 
@@ -236,30 +368,28 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
 
     async fn fetch_trace(&mut self) -> Result<Trace, InstrumentError> {
         let c = self.profile.commands.clone();
-        let start = self.session.query_number(&c.query_start).await?;
-        let stop = self.session.query_number(&c.query_stop).await?;
         let points_reply = self.session.query(&c.query_points).await?;
         let points = parse_integer(&points_reply)
             .map_err(|e| self.session.parse_error(&c.query_points, e))?;
+        let points = usize::try_from(points)
+            .ok()
+            .filter(|p| *p >= Trace::MIN_POINTS)
+            .ok_or_else(|| {
+                self.session.parse_error(
+                    &c.query_points,
+                    ParseError(format!("the instrument reports {points} points")),
+                )
+            })?;
         let rbw = self
             .session
             .query_number(&c.query_resolution_bandwidth)
             .await?;
-        let name = self.session.name().to_string();
-        let axis_error = |detail: String| InstrumentError::Parse {
-            resource: name.clone(),
-            operation: format!("{} / {} / {}", c.query_start, c.query_stop, c.query_points),
-            detail,
-        };
-        if !(start.is_finite() && stop.is_finite() && stop > start) {
-            return Err(axis_error(format!(
-                "the sweep runs from {start} Hz to {stop} Hz; the stop must be above the start"
-            )));
+        if self.profile.data.assert_each_fetch {
+            for (_, command) in self.format_commands() {
+                self.session.transport_mut().write(&command).await?;
+            }
         }
-        let points = usize::try_from(points)
-            .ok()
-            .filter(|p| *p >= Trace::MIN_POINTS)
-            .ok_or_else(|| axis_error(format!("the instrument reports {points} points")))?;
+        let frequency_hz = self.read_axis(points).await?;
 
         let reply = self.session.query_raw(&c.query_trace).await?.to_vec();
         let mut power_dbm = Vec::with_capacity(points);
@@ -274,13 +404,151 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
                 )),
             ));
         }
-        let step = (stop - start) / (points - 1) as f64;
-        let frequency_hz: Vec<f64> = (0..points).map(|i| start + step * i as f64).collect();
+        // Everything this fetch sent (format, axis and trace queries) is accounted for here.
+        self.session.check_errors(&c.query_trace).await?;
         Trace::new(frequency_hz, power_dbm, Some(Hz(rbw))).map_err(|e| InstrumentError::Parse {
             resource: self.session.name().to_string(),
             operation: c.query_trace.clone(),
             detail: format!("the trace is not usable: {e}"),
         })
+    }
+
+    fn connection_notes(&self) -> Vec<ConnectionNote> {
+        let c = &self.profile.commands;
+        let queries = match self.axis {
+            AxisMethod::StartStop | AxisMethod::Probe => {
+                format!("{} / {}", c.query_start, c.query_stop)
+            }
+            AxisMethod::CenterSpan => format!("{} / {}", c.query_center, c.query_span),
+            AxisMethod::Query => c.query_axis.clone(),
+        };
+        let d = &self.profile.data;
+        let format = self
+            .format_commands()
+            .into_iter()
+            .map(|(_, command)| command)
+            .collect::<Vec<_>>()
+            .join(", ");
+        vec![
+            ConnectionNote::new(
+                "frequency axis",
+                format!("{} via {queries} ({})", self.axis, self.axis_reason),
+            ),
+            ConnectionNote::new(
+                "trace format",
+                format!(
+                    "{format}; values in {:?}; {}",
+                    d.power_unit,
+                    if d.assert_each_fetch {
+                        "sent again before every fetch"
+                    } else {
+                        "set at connect only (data.assert_each_fetch = false)"
+                    }
+                ),
+            ),
+        ]
+    }
+}
+
+impl ScpiSpectrumAnalyzer {
+    /// The frequency of every point, by the axis method chosen at connect.
+    async fn read_axis(&mut self, points: usize) -> Result<Vec<f64>, InstrumentError> {
+        let c = self.profile.commands.clone();
+        let (start, stop, queries) = match self.axis {
+            AxisMethod::Query => {
+                let reply = self.session.query_raw(&c.query_axis).await?.to_vec();
+                let mut axis = Vec::with_capacity(points);
+                self.decode_values(&reply, &mut axis)
+                    .map_err(|e| self.session.parse_error(&c.query_axis, e))?;
+                if axis.len() != points || !axis.iter().all(|f| f.is_finite()) {
+                    return Err(self.session.parse_error(
+                        &c.query_axis,
+                        ParseError(format!(
+                            "the axis holds {} values (all must be finite) but the instrument reports {points} points",
+                            axis.len()
+                        )),
+                    ));
+                }
+                return Ok(axis);
+            }
+            AxisMethod::CenterSpan => {
+                let center = self.session.query_number(&c.query_center).await?;
+                let span = self.session.query_number(&c.query_span).await?;
+                (
+                    center - span / 2.0,
+                    center + span / 2.0,
+                    format!("{} / {}", c.query_center, c.query_span),
+                )
+            }
+            AxisMethod::StartStop | AxisMethod::Probe => {
+                let start = self.session.query_number(&c.query_start).await?;
+                let stop = self.session.query_number(&c.query_stop).await?;
+                (start, stop, format!("{} / {}", c.query_start, c.query_stop))
+            }
+        };
+        if !(start.is_finite() && stop.is_finite() && stop > start) {
+            return Err(InstrumentError::Parse {
+                resource: self.session.name().to_string(),
+                operation: queries,
+                detail: format!(
+                    "the sweep runs from {start} Hz to {stop} Hz; the stop must be above the start"
+                ),
+            });
+        }
+        let step = (stop - start) / (points - 1) as f64;
+        Ok((0..points).map(|i| start + step * i as f64).collect())
+    }
+}
+
+/// True when an error is the instrument's answer that it does not know a query (rather than a
+/// lost link): a SCPI error, or silence with an empty error queue.
+fn refusal(error: &InstrumentError) -> bool {
+    matches!(
+        error,
+        InstrumentError::Scpi { .. }
+            | InstrumentError::Unanswered { .. }
+            | InstrumentError::Parse { .. }
+    )
+}
+
+/// A refused probe in a few words, for the axis note: the instrument's own error when it gave one.
+fn short_refusal(first: &str, second: &str, error: &InstrumentError) -> String {
+    match error {
+        InstrumentError::Scpi { code, message, .. } => {
+            format!("{first} / {second} drew {code},\"{message}\"")
+        }
+        other => format!("{first} / {second}: {other}"),
+    }
+}
+
+/// Adds the profile key that sent a refused set-up command to the error, so the operator knows
+/// what to change.
+fn with_profile_key(error: InstrumentError, key: &str, command: &str) -> InstrumentError {
+    match error {
+        InstrumentError::Scpi {
+            resource,
+            operation,
+            code,
+            message,
+            mut detail,
+        } => {
+            let skip = if key == "commands.single_sweep_mode" {
+                format!(" (or {key} = \"\" if the instrument sweeps only when told to, having no continuous mode)")
+            } else {
+                String::new()
+            };
+            detail.push_str(&format!(
+                "; {command:?} is sent at connect by the profile key {key}: set it to the instrument's own form{skip}"
+            ));
+            InstrumentError::Scpi {
+                resource,
+                operation,
+                code,
+                message,
+                detail,
+            }
+        }
+        other => other,
     }
 }
 

@@ -11,6 +11,7 @@
 pub mod analyzer;
 pub mod session;
 pub mod source;
+pub mod suggest;
 
 pub use analyzer::ScpiSpectrumAnalyzer;
 pub use session::ScpiSession;

@@ -32,6 +32,7 @@ fn scpi_to_instrument(resource: &str, operation: &str, e: ScpiError) -> Instrume
             Some(d) => format!("{};{d}", standard_message(e.code)),
             None => standard_message(e.code).to_string(),
         },
+        detail: String::new(),
     }
 }
 

@@ -277,8 +277,12 @@ fn execute_source(
     match command.id {
         SourceCommand::Common(c) => execute_common(state, Role::RfSource, c, command),
         SourceCommand::Frequency if command.query => {
-            command.no_params()?;
-            Response::number(state.source.frequency.value())
+            let limits = state.scenario.source_limits();
+            match min_or_max(command)? {
+                Some(Bound::Min) => Response::number(limits.min_frequency.0),
+                Some(Bound::Max) => Response::number(limits.max_frequency.0),
+                None => Response::number(state.source.frequency.value()),
+            }
         }
         SourceCommand::Frequency => {
             let hz = command.single_param()?.number(Unit::Hertz)?;
@@ -286,8 +290,12 @@ fn execute_source(
             Response::none()
         }
         SourceCommand::Power if command.query => {
-            command.no_params()?;
-            Response::number(state.source.level.value())
+            let limits = state.scenario.source_limits();
+            match min_or_max(command)? {
+                Some(Bound::Min) => Response::number(limits.min_level.0),
+                Some(Bound::Max) => Response::number(limits.max_level.0),
+                None => Response::number(state.source.level.value()),
+            }
         }
         SourceCommand::Power => {
             let dbm = command.single_param()?.number(Unit::DecibelMilliwatts)?;
@@ -303,6 +311,29 @@ fn execute_source(
             state.set_source_output(on);
             Response::none()
         }
+    }
+}
+
+/// A MINimum/MAXimum query parameter.
+enum Bound {
+    Min,
+    Max,
+}
+
+/// The optional `MINimum`/`MAXimum` parameter of a numeric query (SCPI-1999 Vol 1, 7.2.1.1:
+/// the query returns the setting's lowest or highest allowed value). No parameter is `None`;
+/// anything else is -224.
+fn min_or_max<Id>(command: &Command<Id>) -> Result<Option<Bound>, ScpiError> {
+    let Some(param) = command.params_between(0, 1)?.first() else {
+        return Ok(None);
+    };
+    match param {
+        Param::Word(w) if w == "MIN" || w == "MINIMUM" => Ok(Some(Bound::Min)),
+        Param::Word(w) if w == "MAX" || w == "MAXIMUM" => Ok(Some(Bound::Max)),
+        other => Err(ScpiError::new(
+            codes::ILLEGAL_PARAMETER_VALUE,
+            format!("{} takes MINimum or MAXimum, not {other}", command.text),
+        )),
     }
 }
 

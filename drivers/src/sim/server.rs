@@ -302,7 +302,12 @@ async fn serve_lines(
         let Some(mut message) = outcome.message() else {
             continue;
         };
-        if let Some(ready_at) = outcome.ready_at {
+        // A moment already past is not waited for: tokio's timer rounds a sleep up to its next
+        // millisecond tick, which would add about 1 ms to every `*OPC?` of an idle instrument.
+        if let Some(ready_at) = outcome
+            .ready_at
+            .filter(|at| *at > tokio::time::Instant::now())
+        {
             tokio::select! {
                 _ = tokio::time::sleep_until(ready_at) => {}
                 _ = shutdown.changed() => return,

@@ -18,7 +18,11 @@ use tokio::net::TcpListener;
 /// Resolution bandwidths the fake analyzer offers; a request is rounded to the nearest.
 pub const OFFERED_RBW_HZ: [f64; 5] = [1e6, 2e6, 5e6, 10e6, 20e6];
 /// The fake source's frequency range; outside it the setter pushes -222.
+pub const SOURCE_MIN_HZ: f64 = 1e3;
 pub const SOURCE_MAX_HZ: f64 = 40e9;
+/// The fake source's level range (dBm); outside it the setter pushes -222.
+pub const SOURCE_MIN_DBM: f64 = -130.0;
+pub const SOURCE_MAX_DBM: f64 = 25.0;
 
 #[derive(Debug, Clone, Default)]
 pub struct Faults {
@@ -51,6 +55,11 @@ pub struct State {
     pub commands: Vec<String>,
     pub connections: usize,
     pub reply_terminator: String,
+    /// Leave out the optional FREQuency:STARt?/STOP? queries (the axis is then only available
+    /// as CENTer?/SPAN?), as an analyzer that implements only part of the tree would.
+    pub without_start_stop: bool,
+    /// Leave out INITiate:CONTinuous (an analyzer that sweeps only when told to).
+    pub without_continuous: bool,
 }
 
 impl Default for State {
@@ -73,6 +82,8 @@ impl Default for State {
             commands: Vec::new(),
             connections: 0,
             reply_terminator: "\n".into(),
+            without_start_stop: false,
+            without_continuous: false,
         }
     }
 }
@@ -196,7 +207,9 @@ fn handle(state: &mut State, line: &str) -> Reply {
             state.connections,
         );
         let commands = std::mem::take(&mut state.commands);
+        let dialect = (state.without_start_stop, state.without_continuous);
         *state = State::default();
+        (state.without_start_stop, state.without_continuous) = dialect;
         (state.faults, state.identity, state.connections) = keep;
         state.commands = commands;
         return Reply::Nothing;
@@ -207,12 +220,22 @@ fn handle(state: &mut State, line: &str) -> Reply {
             None => "0,\"No error\"".into(),
         });
     }
+    // A numeric query may take MINimum or MAXimum (SCPI-1999 Vol 1 §7.2.1.1, from memory).
+    let bound = |min: f64, max: f64, now: f64| match argument.to_ascii_uppercase().as_str() {
+        "" => Some(num(now)),
+        "MIN" | "MINIMUM" => Some(num(min)),
+        "MAX" | "MAXIMUM" => Some(num(max)),
+        _ => None,
+    };
     if m("[SOURce:]FREQuency[:CW]") {
         if is_query {
-            return num(state.frequency_hz);
+            return bound(SOURCE_MIN_HZ, SOURCE_MAX_HZ, state.frequency_hz).unwrap_or_else(|| {
+                push(state, -224, "Illegal parameter value");
+                Reply::Nothing
+            });
         }
         match number() {
-            Some(v) if v > 0.0 && v <= SOURCE_MAX_HZ => state.frequency_hz = v,
+            Some(v) if (SOURCE_MIN_HZ..=SOURCE_MAX_HZ).contains(&v) => state.frequency_hz = v,
             Some(_) => push(state, -222, "Data out of range"),
             None => push(state, -109, "Missing parameter"),
         }
@@ -221,10 +244,13 @@ fn handle(state: &mut State, line: &str) -> Reply {
     if m("[SOURce:]POWer[:LEVel][:IMMediate][:AMPLitude]") {
         if is_query {
             // Levels are set in 0.01 dB steps.
-            return num(state.level_dbm);
+            return bound(SOURCE_MIN_DBM, SOURCE_MAX_DBM, state.level_dbm).unwrap_or_else(|| {
+                push(state, -224, "Illegal parameter value");
+                Reply::Nothing
+            });
         }
         match number() {
-            Some(v) if (-130.0..=25.0).contains(&v) => {
+            Some(v) if (SOURCE_MIN_DBM..=SOURCE_MAX_DBM).contains(&v) => {
                 state.level_dbm = (v * 100.0).round() / 100.0
             }
             Some(_) => push(state, -222, "Data out of range"),
@@ -261,6 +287,14 @@ fn handle(state: &mut State, line: &str) -> Reply {
             Some(v) if v > 0.0 && v <= 200e9 => state.span_hz = v,
             _ => push(state, -222, "Data out of range"),
         }
+        return Reply::Nothing;
+    }
+    if state.without_start_stop && (m("[SENSe:]FREQuency:STARt") || m("[SENSe:]FREQuency:STOP")) {
+        push(state, -113, "Undefined header");
+        return Reply::Nothing;
+    }
+    if state.without_continuous && m("INITiate:CONTinuous") {
+        push(state, -113, "Undefined header");
         return Reply::Nothing;
     }
     if m("[SENSe:]FREQuency:STARt") && is_query {
@@ -323,31 +357,13 @@ fn handle(state: &mut State, line: &str) -> Reply {
     }
     if m("TRACe[:DATA]") && is_query {
         let values = fake_trace_dbm(state.points);
-        return match state.format.as_str() {
-            "ASC" => Reply::Text(
-                values
-                    .iter()
-                    .map(|v| format!("{v:E}"))
-                    .collect::<Vec<_>>()
-                    .join(","),
-            ),
-            kind => {
-                let mut payload = Vec::new();
-                for v in &values {
-                    match (kind, state.swapped) {
-                        ("REAL32", false) => payload.extend((*v as f32).to_be_bytes()),
-                        ("REAL32", true) => payload.extend((*v as f32).to_le_bytes()),
-                        (_, false) => payload.extend(v.to_be_bytes()),
-                        (_, true) => payload.extend(v.to_le_bytes()),
-                    }
-                }
-                let len = payload.len().to_string();
-                let mut out = format!("#{}{}", len.len(), len).into_bytes();
-                out.extend(payload);
-                out.extend(state.reply_terminator.as_bytes());
-                Reply::Bytes(out)
-            }
-        };
+        return encode(state, &values);
+    }
+    // An invented dialect's axis query: the frequency of every point, on a grid that is not
+    // linear (steps growing along the sweep).
+    if m("TRACe:XVALues") && is_query {
+        let values = fake_axis_hz(state);
+        return encode(state, &values);
     }
     push(state, -113, "Undefined header");
     if is_query {
@@ -355,6 +371,47 @@ fn handle(state: &mut State, line: &str) -> Reply {
         return Reply::Nothing;
     }
     Reply::Nothing
+}
+
+/// The fake's non-linear axis: centre - span/2 to centre + span/2 with the offset going as the
+/// square of the point's position (so steps grow along the sweep).
+pub fn fake_axis_hz(state: &State) -> Vec<f64> {
+    let n = state.points.max(2);
+    (0..n)
+        .map(|i| {
+            let x = i as f64 / (n - 1) as f64;
+            state.center_hz - state.span_hz / 2.0 + state.span_hz * x * x
+        })
+        .collect()
+}
+
+/// Values in the fake's current data format and byte order.
+fn encode(state: &State, values: &[f64]) -> Reply {
+    match state.format.as_str() {
+        "ASC" => Reply::Text(
+            values
+                .iter()
+                .map(|v| format!("{v:E}"))
+                .collect::<Vec<_>>()
+                .join(","),
+        ),
+        kind => {
+            let mut payload = Vec::new();
+            for v in values {
+                match (kind, state.swapped) {
+                    ("REAL32", false) => payload.extend((*v as f32).to_be_bytes()),
+                    ("REAL32", true) => payload.extend((*v as f32).to_le_bytes()),
+                    (_, false) => payload.extend(v.to_be_bytes()),
+                    (_, true) => payload.extend(v.to_le_bytes()),
+                }
+            }
+            let len = payload.len().to_string();
+            let mut out = format!("#{}{}", len.len(), len).into_bytes();
+            out.extend(payload);
+            out.extend(state.reply_terminator.as_bytes());
+            Reply::Bytes(out)
+        }
+    }
 }
 
 async fn serve(socket: tokio::net::TcpStream, state: Arc<Mutex<State>>) {

@@ -13,7 +13,7 @@ use super::runs::{runtime, to_json};
 use super::CliError;
 use crate::config::{BenchConfig, Config};
 use crate::engine::bench::build;
-use halfwave_drivers::{Identity, InstrumentError, RfSource, SpectrumAnalyzer};
+use halfwave_drivers::{ConnectionNote, Identity, InstrumentError, RfSource, SpectrumAnalyzer};
 use halfwave_units::{Dbm, Hz};
 use serde::Serialize;
 use std::path::PathBuf;
@@ -61,6 +61,10 @@ pub struct CheckBenchArgs {
     /// Print the result as JSON.
     #[arg(long)]
     pub json: bool,
+    /// Instead of the check: probe each SCPI instrument for the standard commands a run uses
+    /// and print the profile keys that make a non-conforming one work (RF stays off).
+    #[arg(long)]
+    pub suggest_profile: bool,
 }
 
 /// One verified setting.
@@ -79,6 +83,9 @@ pub struct InstrumentCheck {
     pub role: String,
     pub resource: String,
     pub identity: Option<Identity>,
+    /// What the driver learned or chose at connect (the analyzer's axis queries and trace
+    /// format, the source's ranges and where they came from).
+    pub connection: Vec<ConnectionNote>,
     pub read_backs: Vec<ReadBack>,
     /// The source's output state before and after the check (always off after).
     pub rf_output_on_before: Option<bool>,
@@ -125,6 +132,21 @@ pub fn run(args: CheckBenchArgs) -> Result<(), CliError> {
                 path.display()
             ),
         }));
+    }
+    if args.suggest_profile {
+        let all = runtime()?.block_on(super::suggest_profile::suggest(&config, &benches));
+        if args.json {
+            println!("{}", to_json(&all)?);
+        } else {
+            print!("{}", super::suggest_profile::report_text(&all));
+        }
+        return match all.iter().find(|i| i.error.is_some()) {
+            Some(i) => Err(CliError::new(format!(
+                "could not probe the {} of bench {}; see above",
+                i.role, i.bench
+            ))),
+            None => Ok(()),
+        };
     }
     let report = runtime()?.block_on(async {
         let mut checks = Vec::new();
@@ -209,12 +231,21 @@ async fn check_source(source: &mut dyn RfSource) -> InstrumentCheck {
         role: "source".into(),
         resource: source.resource().to_string(),
         identity: None,
+        connection: source.connection_notes(),
         read_backs: Vec::new(),
         rf_output_on_before: None,
         rf_output_on_after: None,
         trace_points: None,
         problems: Vec::new(),
     };
+    let limits = source.limits();
+    check.connection.push(ConnectionNote::new(
+        "plans are validated against",
+        format!(
+            "{} to {}, {} to {}",
+            limits.min_frequency, limits.max_frequency, limits.min_level, limits.max_level
+        ),
+    ));
     match source.identify().await {
         Ok(identity) => check.identity = Some(identity),
         Err(e) => {
@@ -268,6 +299,7 @@ async fn check_analyzer(analyzer: &mut dyn SpectrumAnalyzer) -> InstrumentCheck 
         role: "analyzer".into(),
         resource: analyzer.resource().to_string(),
         identity: None,
+        connection: analyzer.connection_notes(),
         read_backs: Vec::new(),
         rf_output_on_before: None,
         rf_output_on_after: None,
@@ -373,6 +405,9 @@ fn report_text(report: &CheckReport) -> String {
                     id.manufacturer, id.model, id.serial, id.firmware
                 ));
             }
+            for note in &inst.connection {
+                out.push_str(&format!("    {}: {}\n", note.item, note.value));
+            }
             if let Some(on) = inst.rf_output_on_before {
                 out.push_str(&format!(
                     "    RF output before: {}\n",
@@ -393,7 +428,9 @@ fn report_text(report: &CheckReport) -> String {
                 ));
             }
             if let Some(n) = inst.trace_points {
-                out.push_str(&format!("    one sweep: trace of {n} points fetched\n"));
+                out.push_str(&format!(
+                    "    one sweep (*OPC?) and a trace of {n} points fetched with the axis queries above; error queue empty\n"
+                ));
             }
             if let Some(on) = inst.rf_output_on_after {
                 out.push_str(&format!(

@@ -23,6 +23,7 @@ pub mod report;
 pub mod runs;
 pub mod serve;
 pub mod sim;
+pub mod suggest_profile;
 pub mod token;
 
 /// An error that ends a command: the message says what is wrong and what to do.

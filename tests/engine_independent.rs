@@ -1,0 +1,189 @@
+//! A whole calibration against the independent bench (`independent_support`): SCPI instruments
+//! written from the standards, not from the project's simulator, whose analyzer has no
+//! `FREQuency:STARt?`/`STOP?` and no `INITiate:CONTinuous`. The daemon is told only the two
+//! resource strings and a three-line analyzer profile (`single_sweep_mode = ""`); the axis is
+//! found by probing and the source's ranges by its MINimum/MAXimum queries.
+//!
+//! Check: every fitted V_pi within 0.3 % of the bench's truth (`independent_support::true_v_pi`),
+//! a stated 2.9 V x (1 + 0.035 sqrt(f/GHz)) of an invented modulator.
+
+mod engine_support;
+mod independent_support;
+
+use engine_support::{plan, wait_for_end, FREQUENCIES_HZ, POINTS};
+use halfwave::config::Config;
+use halfwave::engine::Engine;
+use halfwave::store::{ChainCalibrationPoint, Store};
+use halfwave_units::{Db, Hz};
+use independent_support::{true_v_pi, IndependentBench, Role};
+
+/// Writes a daemon configuration for the independent bench (with the analyzer profile when
+/// `with_profile`) and returns its path.
+fn write_config(
+    dir: &std::path::Path,
+    bench: &IndependentBench,
+    with_profile: bool,
+) -> std::path::PathBuf {
+    let profile = dir.join("analyzer.toml");
+    std::fs::write(
+        &profile,
+        "kind = \"spectrum_analyzer\"\n[commands]\nsingle_sweep_mode = \"\"\n",
+    )
+    .unwrap();
+    let analyzer_profile = if with_profile {
+        format!(", profile = \"{}\"", profile.display())
+    } else {
+        String::new()
+    };
+    let text = format!(
+        "data_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\"{} }}\n",
+        dir.join("data").display(),
+        bench.resource(Role::Source),
+        bench.resource(Role::Analyzer),
+        analyzer_profile,
+    );
+    let path = dir.join(if with_profile {
+        "with.toml"
+    } else {
+        "without.toml"
+    });
+    std::fs::write(&path, text).unwrap();
+    path
+}
+
+async fn halfwave(args: &[&str]) -> (bool, String) {
+    let out = tokio::process::Command::new(env!("CARGO_BIN_EXE_halfwave"))
+        .args(args)
+        .output()
+        .await
+        .expect("run halfwave");
+    let text = format!(
+        "{}{}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    (out.status.success(), text)
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn check_bench_reports_the_choices_and_suggests_the_missing_profile_key() {
+    let dir = tempfile::tempdir().unwrap();
+    let bench = IndependentBench::start().await;
+    // Without a profile the analyzer refuses INITiate:CONTinuous OFF: the check fails and names
+    // the key that avoids it.
+    let without = write_config(dir.path(), &bench, false);
+    let (ok, text) = halfwave(&["check-bench", "--config", without.to_str().unwrap()]).await;
+    assert!(!ok, "{text}");
+    assert!(text.contains("-113"), "{text}");
+    assert!(text.contains("commands.single_sweep_mode = \"\""), "{text}");
+    // --suggest-profile prints the fragment that makes it work.
+    let (ok, text) = halfwave(&[
+        "check-bench",
+        "--suggest-profile",
+        "--config",
+        without.to_str().unwrap(),
+    ])
+    .await;
+    assert!(ok, "{text}");
+    assert!(text.contains("single_sweep_mode = \"\""), "{text}");
+    assert!(text.contains("method = \"center_span\""), "{text}");
+    // With it, the check passes, RF off, and says how the axis is read and where the source's
+    // ranges came from.
+    let with = write_config(dir.path(), &bench, true);
+    let (ok, text) = halfwave(&["check-bench", "--config", with.to_str().unwrap()]).await;
+    assert!(ok, "{text}");
+    assert!(
+        text.contains("frequency axis: center_span via FREQuency:CENTer? / FREQuency:SPAN?"),
+        "{text}"
+    );
+    assert!(
+        text.contains("FREQuency:STARt? / FREQuency:STOP? drew -113,\"Undefined header\""),
+        "the refused probe is named: {text}"
+    );
+    assert!(
+        text.contains("level range: -110 dBm to 25 dBm (stated by the instrument)"),
+        "{text}"
+    );
+    assert!(
+        text.contains(
+            "plans are validated against: 100000 Hz to 40000000000 Hz, -110 dBm to 25 dBm"
+        ),
+        "{text}"
+    );
+    assert!(text.contains("trace of 1001 points"), "{text}");
+    assert!(!bench.truth.lock().unwrap().output_on);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_whole_calibration_against_an_independent_bench_by_configuration_only() {
+    let dir = tempfile::tempdir().unwrap();
+    let bench = IndependentBench::start().await;
+    // The only adaptation: this analyzer sweeps only when told to and has no continuous mode.
+    let profile = dir.path().join("analyzer.toml");
+    std::fs::write(
+        &profile,
+        "kind = \"spectrum_analyzer\"\n[commands]\nsingle_sweep_mode = \"\"\n",
+    )
+    .unwrap();
+    let text = format!(
+        "data_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\", profile = \"{}\" }}\n",
+        dir.path().join("data").display(),
+        bench.resource(Role::Source),
+        bench.resource(Role::Analyzer),
+        profile.display(),
+    );
+    let config = Config::from_toml(&text, &dir.path().join("halfwave.toml"), dir.path().into())
+        .expect("configuration parses");
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    // The generator drives the modulator directly: a flat 0 dB chain.
+    let chain: Vec<ChainCalibrationPoint> = FREQUENCIES_HZ
+        .iter()
+        .map(|&f| ChainCalibrationPoint::new(Hz(f), Db(0.0)))
+        .collect();
+    store
+        .create_chain_calibration("direct", "test", &chain)
+        .await
+        .unwrap();
+    let engine = Engine::start(&config, store.clone()).await.unwrap();
+    let mut events = engine.subscribe();
+    let run_id = engine.submit(plan("direct"), "test").await.unwrap();
+    let (state, cause) = wait_for_end(&mut events, run_id).await;
+    assert_eq!(state, "completed", "cause: {cause:?}");
+    assert_eq!(store.points_of_run(run_id).await.unwrap().len(), POINTS);
+
+    let results = store.frequency_results(run_id).await.unwrap();
+    assert_eq!(results.len(), FREQUENCIES_HZ.len());
+    for r in &results {
+        let truth = true_v_pi(r.frequency_hz);
+        let error = (r.v_pi_volts - truth) / truth;
+        println!(
+            "{:>5} GHz: V_pi {:.5} V (u {:.5}), truth {:.5} V, error {:+.4} %",
+            r.frequency_hz / 1e9,
+            r.v_pi_volts,
+            r.v_pi_uncertainty_volts,
+            truth,
+            error * 100.0
+        );
+        assert!(
+            error.abs() < 0.003,
+            "at {} GHz: V_pi {} V (u {}), truth {} V, error {:.3} %",
+            r.frequency_hz / 1e9,
+            r.v_pi_volts,
+            r.v_pi_uncertainty_volts,
+            truth,
+            error * 100.0
+        );
+    }
+    {
+        let truth = bench.truth.lock().unwrap();
+        assert!(!truth.output_on, "RF must be off after the run");
+        // The optional nodes were asked once each at connect, never again.
+        let asked = |q: &str| truth.analyzer_log.iter().filter(|c| *c == q).count();
+        assert_eq!(asked("FREQuency:STARt?"), 1, "probed once");
+        assert_eq!(asked("INITiate:CONTinuous OFF"), 0);
+        assert!(truth.source_log.iter().any(|c| c == "POWer? MAXimum"));
+    }
+    engine.shutdown().await;
+}
