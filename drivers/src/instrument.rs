@@ -122,14 +122,7 @@ impl InstrumentError {
     /// good, so a run stopped by one may be resumed once the link is back. An instrument's own
     /// refusal (a SCPI error, a read-back mismatch, a range) is not one.
     pub fn is_link_fault(&self) -> bool {
-        matches!(
-            self,
-            InstrumentError::Connection { .. }
-                | InstrumentError::Timeout { .. }
-                | InstrumentError::Unanswered { .. }
-                | InstrumentError::Parse { .. }
-                | InstrumentError::LinkInterrupted { .. }
-        )
+        self.needs_reconnect() || matches!(self, InstrumentError::LinkInterrupted { .. })
     }
 
     /// True for errors after which the connection should be re-established before the next

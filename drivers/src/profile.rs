@@ -371,6 +371,11 @@ impl SourceProfile {
         SourceProfile::from_toml_str(&text, &path.display().to_string())
     }
 
+    /// The profile in the file at `path`, or the standard SCPI tree when there is none.
+    pub fn from_optional_file(path: Option<&Path>) -> Result<SourceProfile, ProfileError> {
+        path.map_or_else(|| Ok(SourceProfile::standard()), SourceProfile::from_file)
+    }
+
     /// Checks what serde cannot: templates, terminators, limits, tolerances.
     pub fn validate(&self, origin: &str) -> Result<(), ProfileError> {
         let mut check = Checker { problem: None };
@@ -689,6 +694,14 @@ impl AnalyzerProfile {
     pub fn from_file(path: &Path) -> Result<AnalyzerProfile, ProfileError> {
         let text = read_file(path)?;
         AnalyzerProfile::from_toml_str(&text, &path.display().to_string())
+    }
+
+    /// The profile in the file at `path`, or the standard SCPI tree when there is none.
+    pub fn from_optional_file(path: Option<&Path>) -> Result<AnalyzerProfile, ProfileError> {
+        path.map_or_else(
+            || Ok(AnalyzerProfile::standard()),
+            AnalyzerProfile::from_file,
+        )
     }
 
     /// Checks what serde cannot.

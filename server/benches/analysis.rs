@@ -7,6 +7,12 @@
 //! `least_squares`), so that the two can be compared; the whole `analyze_trace` (both, plus the
 //! spacing check and the cross-checks) is timed as well.
 //!
+//! Two kinds of trace: synthetic combs at beta 1, 2.5 and 6 (Gaussian lines, no reference, so
+//! the pseudo-Voigt is fitted), and a trace drawn by the simulator's physics as the simulated
+//! bench shows it at 0.2 GHz (`bench trace`: a Gaussian filter widened by the laser's Lorentzian
+//! linewidth, whose wings cover the whole span, read with the line shape measured on an RF-off
+//! reference).
+//!
 //! Two clocks: criterion's usual wall clock, and the CPU time of the benchmark thread
 //! (`CLOCK_THREAD_CPUTIME_ID`, the `cpu-time` group). On a machine shared with other builds the wall
 //! clock also counts the time the thread waited for a core; the thread CPU time does not, so it
@@ -14,12 +20,14 @@
 
 use criterion::measurement::{Measurement, ValueFormatter};
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
-use halfwave::analysis::comb::measure_comb;
+use halfwave::analysis::comb::{measure_comb, measure_reference, MeasuredComb};
 use halfwave::analysis::fit::{fit_trace, FitStart, LineShape};
 use halfwave::analysis::index::{least_squares, FitData};
 use halfwave::analysis::synthetic::SyntheticComb;
 use halfwave::analysis::{analyze_trace, AnalysisOptions};
 use halfwave::units::{Hz, Trace};
+use halfwave_drivers::sim::physics::{self, OpticalLine, Rendering};
+use halfwave_drivers::sim::scenario::FilterShape;
 use rand::{rngs::StdRng, SeedableRng};
 use rand_distr::{Distribution, Normal};
 use std::hint::black_box;
@@ -35,67 +43,211 @@ fn trace(beta: f64) -> Trace {
         .expect("valid synthetic trace")
 }
 
-fn bench(c: &mut Criterion) {
-    let options = AnalysisOptions::default();
-    for beta in [1.0, 2.5, 6.0] {
+/// A trace as the simulated bench shows it at 0.2 GHz (the default scenario's 50 kHz laser
+/// linewidth, 20 MHz resolution, -72 dBm floor, 0.15 dB display noise, 2.8 GHz span), drawn by the
+/// simulator's physics; `beta` 0 gives the RF-off reference.
+fn bench_trace(beta: f64, seed: u64) -> Trace {
+    let spacing = 0.2e9;
+    let carrier = 193.4e12 - 37e6;
+    let lines: Vec<OpticalLine> = physics::comb_lines(beta, 0.0, 0.0)
+        .into_iter()
+        .map(|l| OpticalLine {
+            frequency_hz: carrier + l.order as f64 * spacing,
+            power_mw: 4.6 * l.relative_power,
+        })
+        .collect();
+    let rendering = Rendering {
+        start_hz: 193.4e12 - 1.4e9,
+        stop_hz: 193.4e12 + 1.4e9,
+        points: 10_001,
+        resolution_bandwidth_hz: 20e6,
+        filter: FilterShape::Gaussian,
+        laser_linewidth_hz: 50e3,
+        noise_floor_dbm: -72.0,
+        display_noise_db: 0.15,
+    };
+    let levels = physics::render_trace(&lines, &rendering, &mut StdRng::seed_from_u64(seed));
+    let step = (rendering.stop_hz - rendering.start_hz) / (rendering.points - 1) as f64;
+    let axis = (0..rendering.points)
+        .map(|i| rendering.start_hz + step * i as f64)
+        .collect();
+    Trace::new(axis, levels, None).expect("valid rendered trace")
+}
+
+/// One benchmarked trace and what the fit starts from.
+struct Case {
+    name: String,
+    trace: Trace,
+    reference: Option<Trace>,
+    spacing: Hz,
+    options: AnalysisOptions,
+    comb: MeasuredComb,
+    start: FitStart,
+    shape: LineShape,
+}
+
+impl Case {
+    /// A synthetic comb read without a reference (pseudo-Voigt shape).
+    fn synthetic(beta: f64) -> Case {
         let trace = trace(beta);
         assert_eq!(trace.len(), 10_001);
-        // Build the Bessel table before timing (it is built once per process).
-        analyze_trace(&trace, SPACING, None, &options).expect("the synthetic trace analyses");
-        c.bench_function(&format!("analyze_trace 10001 points beta {beta}"), |b| {
-            b.iter(|| analyze_trace(black_box(&trace), SPACING, None, &options))
-        });
+        let options = AnalysisOptions::default();
         let comb = measure_comb(&trace, SPACING, None, &options).expect("comb found");
-        c.bench_function(&format!("locate and measure lines beta {beta}"), |b| {
-            b.iter(|| measure_comb(black_box(&trace), SPACING, None, &options))
-        });
-        let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
-        c.bench_function(&format!("least-squares fit beta {beta}"), |b| {
-            b.iter(|| least_squares(black_box(&data)))
-        });
-        c.bench_function(
-            &format!("old method (lines + least squares) beta {beta}"),
-            |b| {
-                b.iter(|| {
-                    let comb = measure_comb(black_box(&trace), SPACING, None, &options).unwrap();
-                    let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
-                    least_squares(&data)
-                })
-            },
-        );
-        let start = FitStart {
-            beta: least_squares(&data).unwrap().value,
-            carrier_hz: comb.carrier_frequency_hz,
-            floor_mw: comb.floor_mw,
-            strongest_line_peak_mw: comb.lines.iter().map(|l| l.power_mw).fold(0.0, f64::max),
-            asymmetry: true,
-        };
         let shape = LineShape::pseudo_voigt(
             comb.resolution_bandwidth_hz,
             comb.resolution_bandwidth_hz,
             0.0,
         );
-        let (fitted, _) = fit_trace(&trace, SPACING, &shape, &start, comb.noise_sigma_db)
-            .expect("the synthetic trace fits");
+        Case::new(
+            format!("beta {beta}"),
+            trace,
+            None,
+            SPACING,
+            options,
+            comb,
+            shape,
+        )
+    }
+
+    /// The simulated bench's 0.2 GHz trace at beta 1.6, read with its RF-off reference (measured
+    /// shape), as `analyze_trace` reads it.
+    fn simulated_bench() -> Case {
+        let trace = bench_trace(1.6, 7);
+        let reference = bench_trace(0.0, 8);
+        let spacing = Hz(0.2e9);
+        let first =
+            measure_comb(&trace, spacing, None, &AnalysisOptions::default()).expect("comb found");
+        let options = AnalysisOptions {
+            resolution_bandwidth: Some(Hz(first.resolution_bandwidth_hz)),
+            ..AnalysisOptions::default()
+        };
+        let carrier = measure_reference(
+            &reference,
+            first.resolution_bandwidth_hz,
+            first.window_half_width_hz,
+            options.detection_threshold_db,
+        )
+        .expect("reference carrier found");
+        let comb = measure_comb(&trace, spacing, Some(carrier.frequency_hz), &options)
+            .expect("comb found");
+        let shape = LineShape::measured(&reference, 8.0).expect("the reference gives a shape");
+        Case::new(
+            "bench trace 0.2 GHz".into(),
+            trace,
+            Some(reference),
+            spacing,
+            options,
+            comb,
+            shape,
+        )
+    }
+
+    fn new(
+        name: String,
+        trace: Trace,
+        reference: Option<Trace>,
+        spacing: Hz,
+        options: AnalysisOptions,
+        comb: MeasuredComb,
+        shape: LineShape,
+    ) -> Case {
+        let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
+        let start = FitStart::from_comb(&comb, least_squares(&data).expect("index").value);
+        // Builds the Bessel table before timing (it is built once per process).
+        analyze_trace(&trace, spacing, reference.as_ref(), &options).expect("the trace analyses");
+        Case {
+            name,
+            trace,
+            reference,
+            spacing,
+            options,
+            comb,
+            start,
+            shape,
+        }
+    }
+
+    fn fit(&self) -> halfwave::analysis::fit::WholeTraceFit {
+        fit_trace(
+            black_box(&self.trace),
+            self.spacing,
+            &self.shape,
+            &self.start,
+            self.comb.noise_sigma_db,
+        )
+        .expect("the trace fits")
+        .0
+    }
+}
+
+fn cases() -> Vec<Case> {
+    let mut cases: Vec<Case> = [1.0, 2.5, 6.0].into_iter().map(Case::synthetic).collect();
+    cases.push(Case::simulated_bench());
+    cases
+}
+
+/// Times the whole analysis, the old method and the whole-trace fit of each case, named after
+/// `prefix`.
+fn register<M: Measurement + 'static>(c: &mut Criterion<M>, prefix: &str, cases: &[Case]) {
+    for case in cases {
+        let name = &case.name;
+        c.bench_function(&format!("{prefix}analyze_trace 10001 points {name}"), |b| {
+            b.iter(|| {
+                analyze_trace(
+                    black_box(&case.trace),
+                    case.spacing,
+                    case.reference.as_ref(),
+                    &case.options,
+                )
+            })
+        });
+        c.bench_function(
+            &format!("{prefix}old method (lines + least squares) {name}"),
+            |b| {
+                b.iter(|| {
+                    let comb =
+                        measure_comb(black_box(&case.trace), case.spacing, None, &case.options)
+                            .unwrap();
+                    let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
+                    least_squares(&data)
+                })
+            },
+        );
+        c.bench_function(&format!("{prefix}whole-trace fit {name}"), |b| {
+            b.iter(|| case.fit())
+        });
+    }
+}
+
+fn bench(c: &mut Criterion) {
+    let cases = cases();
+    for case in &cases {
+        let fitted = case.fit();
         println!(
-            "whole-trace fit beta {beta}: {} iterations, {} points under lines, {} in the floor block, reduced chi-squared {:.2}",
+            "whole-trace fit {}: beta {:.5}, {} iterations, {} points under lines, {} in the floor block, reduced chi-squared {:.2}",
+            case.name,
+            fitted.modulation_index,
             fitted.iterations,
             fitted.points_under_lines,
             fitted.points_in_floor_block,
             fitted.reduced_chi_squared
         );
-        c.bench_function(&format!("whole-trace fit beta {beta}"), |b| {
-            b.iter(|| {
-                fit_trace(
-                    black_box(&trace),
-                    SPACING,
-                    &shape,
-                    &start,
-                    comb.noise_sigma_db,
-                )
-            })
+    }
+    // The old method's two parts, on the synthetic traces.
+    for case in &cases[..3] {
+        c.bench_function(&format!("locate and measure lines {}", case.name), |b| {
+            b.iter(|| measure_comb(black_box(&case.trace), case.spacing, None, &case.options))
+        });
+        let data = FitData::new(
+            &case.comb.lines,
+            case.comb.floor_mw,
+            case.comb.floor_uncertainty_mw,
+        );
+        c.bench_function(&format!("least-squares fit {}", case.name), |b| {
+            b.iter(|| least_squares(black_box(&data)))
         });
     }
+    register(c, "", &cases);
 }
 
 /// CPU time consumed by the calling thread.
@@ -160,51 +312,7 @@ impl ValueFormatter for Microseconds {
 }
 
 fn bench_cpu_time(c: &mut Criterion<ThreadCpuTime>) {
-    let options = AnalysisOptions::default();
-    let mut group = c.benchmark_group("cpu-time");
-    for beta in [1.0, 2.5, 6.0] {
-        let trace = trace(beta);
-        analyze_trace(&trace, SPACING, None, &options).expect("the synthetic trace analyses");
-        group.bench_function(format!("analyze_trace 10001 points beta {beta}"), |b| {
-            b.iter(|| analyze_trace(black_box(&trace), SPACING, None, &options))
-        });
-        let comb = measure_comb(&trace, SPACING, None, &options).expect("comb found");
-        let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
-        group.bench_function(
-            format!("old method (lines + least squares) beta {beta}"),
-            |b| {
-                b.iter(|| {
-                    let comb = measure_comb(black_box(&trace), SPACING, None, &options).unwrap();
-                    let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
-                    least_squares(&data)
-                })
-            },
-        );
-        let start = FitStart {
-            beta: least_squares(&data).unwrap().value,
-            carrier_hz: comb.carrier_frequency_hz,
-            floor_mw: comb.floor_mw,
-            strongest_line_peak_mw: comb.lines.iter().map(|l| l.power_mw).fold(0.0, f64::max),
-            asymmetry: true,
-        };
-        let shape = LineShape::pseudo_voigt(
-            comb.resolution_bandwidth_hz,
-            comb.resolution_bandwidth_hz,
-            0.0,
-        );
-        group.bench_function(format!("whole-trace fit beta {beta}"), |b| {
-            b.iter(|| {
-                fit_trace(
-                    black_box(&trace),
-                    SPACING,
-                    &shape,
-                    &start,
-                    comb.noise_sigma_db,
-                )
-            })
-        });
-    }
-    group.finish();
+    register(c, "cpu-time/", &cases());
 }
 
 criterion_group!(benches, bench);

@@ -23,15 +23,12 @@ pub async fn connect_source(
     resource: &str,
     profile: Option<&std::path::Path>,
 ) -> Result<Box<dyn crate::RfSource>, crate::InstrumentError> {
-    let profile = match profile {
-        Some(path) => crate::profile::SourceProfile::from_file(path).map_err(|e| {
-            crate::InstrumentError::BadProfile {
-                resource: resource.to_string(),
-                reason: e.to_string(),
-            }
-        })?,
-        None => crate::profile::SourceProfile::standard(),
-    };
+    let profile = crate::profile::SourceProfile::from_optional_file(profile).map_err(|e| {
+        crate::InstrumentError::BadProfile {
+            resource: resource.to_string(),
+            reason: e.to_string(),
+        }
+    })?;
     Ok(Box::new(ScpiRfSource::connect(resource, profile).await?))
 }
 
@@ -41,15 +38,12 @@ pub async fn connect_analyzer(
     resource: &str,
     profile: Option<&std::path::Path>,
 ) -> Result<Box<dyn crate::SpectrumAnalyzer>, crate::InstrumentError> {
-    let profile = match profile {
-        Some(path) => crate::profile::AnalyzerProfile::from_file(path).map_err(|e| {
-            crate::InstrumentError::BadProfile {
-                resource: resource.to_string(),
-                reason: e.to_string(),
-            }
-        })?,
-        None => crate::profile::AnalyzerProfile::standard(),
-    };
+    let profile = crate::profile::AnalyzerProfile::from_optional_file(profile).map_err(|e| {
+        crate::InstrumentError::BadProfile {
+            resource: resource.to_string(),
+            reason: e.to_string(),
+        }
+    })?;
     Ok(Box::new(
         ScpiSpectrumAnalyzer::connect(resource, profile).await?,
     ))

@@ -270,7 +270,7 @@ pub fn measure_comb(
         });
     }
 
-    let carrier_k = match reference_carrier_hz {
+    let reference_k = match reference_carrier_hz {
         Some(reference) => {
             let k = ((reference - phase) / fm).round() as i64;
             if !(k_min..=k_max).contains(&k) {
@@ -284,7 +284,7 @@ pub fn measure_comb(
         }
         None => None,
     };
-    let carrier_k = carrier_order(&measured, floor_mw, carrier_k);
+    let carrier_k = carrier_order(&measured, floor_mw, reference_k);
     let max_order = i64::from(options.max_order);
     let lines = measured
         .into_iter()

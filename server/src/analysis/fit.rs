@@ -472,6 +472,20 @@ pub struct FitStart {
     pub asymmetry: bool,
 }
 
+impl FitStart {
+    /// The start from the line-by-line measurement `comb` and its index estimate `beta`, with
+    /// the residual-AM depth fitted.
+    pub fn from_comb(comb: &super::comb::MeasuredComb, beta: f64) -> FitStart {
+        FitStart {
+            beta,
+            carrier_hz: comb.carrier_frequency_hz,
+            floor_mw: comb.floor_mw,
+            strongest_line_peak_mw: comb.lines.iter().map(|l| l.power_mw).fold(0.0, f64::max),
+            asymmetry: true,
+        }
+    }
+}
+
 /// The result of the whole-trace fit.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct WholeTraceFit {
@@ -1045,15 +1059,14 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
         while a < hi {
             let reach = (nearest_centre(a) / 2).clamp(2, MAX_SEGMENT_POINTS);
             let mut len = reach.min(hi - a).min(2 * previous);
-            let mut level_b;
-            let mut level_c;
-            loop {
+            let level_c = loop {
                 let (b, c) = (a + len / 2, a + len);
-                level_b = level_at(b);
-                level_c = level_at(c);
+                let level_c = level_at(c);
                 if len <= 2 {
-                    break;
+                    // Every point of the segment is a node: nothing to check.
+                    break level_c;
                 }
+                let level_b = level_at(b);
                 let quadratic = |i: usize| {
                     let (x, xa, xb, xc) = (freq[i], freq[a], freq[b], freq[c]);
                     level_a * (x - xb) * (x - xc) / ((xa - xb) * (xa - xc))
@@ -1064,10 +1077,10 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
                 if (quadratic(q1) - level_at(q1)).abs() <= prob.segment_tolerance_db
                     && (quadratic(q3) - level_at(q3)).abs() <= prob.segment_tolerance_db
                 {
-                    break;
+                    break level_c;
                 }
                 len /= 2;
-            }
+            };
             let (b, c) = (a + len / 2, a + len);
             let first = (ws.nodes.len() - 1) as u32;
             let last_point = if c == hi { c } else { c - 1 };
@@ -1090,7 +1103,6 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
             previous = len;
             a = c;
             level_a = level_c;
-            let _ = level_b;
         }
     }
     ws.points_under = under;
@@ -1108,7 +1120,10 @@ fn segment(
     last: usize,
 ) -> Segment {
     let count = at.len();
-    let x: Vec<f64> = at.iter().map(|i| freq[*i]).collect();
+    let mut x = [0.0; 3];
+    for (slot, i) in x.iter_mut().zip(at) {
+        *slot = freq[*i];
+    }
     let mut seg = Segment {
         slots: [0; 3],
         count: count as u8,
@@ -1522,13 +1537,7 @@ mod tests {
             let trace = rendered(beta, 193.4e12 - 37e6, 10 + seed as u64);
             let comb = measure_comb(&trace, Hz(200e6), None, &AnalysisOptions::default()).unwrap();
             let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
-            let start = FitStart {
-                beta: least_squares(&data).unwrap().value,
-                carrier_hz: comb.carrier_frequency_hz,
-                floor_mw: comb.floor_mw,
-                strongest_line_peak_mw: comb.lines.iter().map(|l| l.power_mw).fold(0.0, f64::max),
-                asymmetry: true,
-            };
+            let start = FitStart::from_comb(&comb, least_squares(&data).unwrap().value);
             let fit = |tolerance: f64| {
                 fit_trace_segmented(
                     &trace,

@@ -203,18 +203,7 @@ pub fn analyze_trace_with_model(
                 0.0,
             )
         });
-    let strongest = measured
-        .lines
-        .iter()
-        .map(|l| l.power_mw)
-        .fold(0.0, f64::max);
-    let start = FitStart {
-        beta: line_by_line.value,
-        carrier_hz: measured.carrier_frequency_hz,
-        floor_mw: measured.floor_mw,
-        strongest_line_peak_mw: strongest,
-        asymmetry: true,
-    };
+    let start = FitStart::from_comb(&measured, line_by_line.value);
     let (fit, model) = fit::fit_trace(
         trace,
         modulation_frequency,

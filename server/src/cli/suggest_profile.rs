@@ -34,31 +34,20 @@ pub async fn suggest(config: &Config, benches: &[&BenchConfig]) -> Vec<Instrumen
                 continue;
             };
             let path = profile.as_ref().map(|p| config.resolve(p));
+            let path = path.as_deref();
             let outcome = match role {
-                "source" => {
-                    let profile = match &path {
-                        Some(p) => SourceProfile::from_file(p).map_err(|e| e.to_string()),
-                        None => Ok(SourceProfile::standard()),
-                    };
-                    match profile {
-                        Ok(p) => suggest_source(resource, &p)
-                            .await
-                            .map_err(|e| e.to_string()),
-                        Err(e) => Err(e),
-                    }
-                }
-                _ => {
-                    let profile = match &path {
-                        Some(p) => AnalyzerProfile::from_file(p).map_err(|e| e.to_string()),
-                        None => Ok(AnalyzerProfile::standard()),
-                    };
-                    match profile {
-                        Ok(p) => suggest_analyzer(resource, &p)
-                            .await
-                            .map_err(|e| e.to_string()),
-                        Err(e) => Err(e),
-                    }
-                }
+                "source" => match SourceProfile::from_optional_file(path) {
+                    Ok(p) => suggest_source(resource, &p)
+                        .await
+                        .map_err(|e| e.to_string()),
+                    Err(e) => Err(e.to_string()),
+                },
+                _ => match AnalyzerProfile::from_optional_file(path) {
+                    Ok(p) => suggest_analyzer(resource, &p)
+                        .await
+                        .map_err(|e| e.to_string()),
+                    Err(e) => Err(e.to_string()),
+                },
             };
             let (suggestions, error) = match outcome {
                 Ok(s) => (s, None),
