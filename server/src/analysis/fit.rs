@@ -37,6 +37,7 @@ use super::bessel::{BesselTable, MAX_ORDER};
 use super::AnalysisError;
 use halfwave_units::{Hz, Trace};
 use serde::Serialize;
+use std::borrow::Cow;
 use std::cell::RefCell;
 
 /// 10 / ln 10: a natural log times this is a level in dB.
@@ -662,16 +663,19 @@ struct Evaluation {
     points: usize,
 }
 
-fn params_shape(base: &LineShape, p: &[f64; NP]) -> LineShape {
-    let mut s = base.clone();
-    if s.kind == ShapeKind::PseudoVoigt {
-        s.width_hz = p[LN_WIDTH].exp();
-        s.width_l_hz = p[LN_WIDTH_L].exp();
-        s.inv_width_sq = 1.0 / (s.width_hz * s.width_hz);
-        s.inv_width_l_sq = 1.0 / (s.width_l_hz * s.width_l_hz);
-        s.eta = p[ETA].clamp(0.0, 1.0);
+/// The line shape at the parameters `p`: a measured shape has no parameters and is borrowed
+/// (its table is not copied on every step); a pseudo-Voigt (no table) takes its widths and mix.
+fn params_shape<'a>(base: &'a LineShape, p: &[f64; NP]) -> Cow<'a, LineShape> {
+    if base.kind != ShapeKind::PseudoVoigt {
+        return Cow::Borrowed(base);
     }
-    s
+    let mut s = base.clone();
+    s.width_hz = p[LN_WIDTH].exp();
+    s.width_l_hz = p[LN_WIDTH_L].exp();
+    s.inv_width_sq = 1.0 / (s.width_hz * s.width_hz);
+    s.inv_width_l_sq = 1.0 / (s.width_l_hz * s.width_l_hz);
+    s.eta = p[ETA].clamp(0.0, 1.0);
+    Cow::Owned(s)
 }
 
 /// The parameters free in this step: a width whose part has no weight (eta at 0 or 1) is held.
@@ -844,8 +848,12 @@ fn evaluate(
 /// Solves the active part of `m x = b` by Cholesky; `None` when not positive definite.
 #[allow(clippy::needless_range_loop)]
 fn solve(m: &[[f64; NP]; NP], b: &[f64; NP], active: &[bool; NP]) -> Option<[f64; NP]> {
-    let idx: Vec<usize> = (0..NP).filter(|&i| active[i]).collect();
-    let k = idx.len();
+    let mut idx = [0usize; NP];
+    let mut k = 0;
+    for i in (0..NP).filter(|&i| active[i]) {
+        idx[k] = i;
+        k += 1;
+    }
     let mut l = [[0.0; NP]; NP];
     for r in 0..k {
         for c in 0..=r {
@@ -880,7 +888,7 @@ fn solve(m: &[[f64; NP]; NP], b: &[f64; NP], active: &[bool; NP]) -> Option<[f64
         x[r] = s / l[r][r];
     }
     let mut out = [0.0; NP];
-    for (r, &i) in idx.iter().enumerate() {
+    for (r, &i) in idx[..k].iter().enumerate() {
         out[i] = x[r];
     }
     Some(out)
@@ -1011,9 +1019,12 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     let p0 = p[LN_P0].exp();
     let floor = p[LN_FLOOR].exp();
     let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
-    let amplitudes: Vec<f64> = (-nmax..=nmax)
-        .map(|n| p0 * line_weight(table, n, p[BETA], p[ASYM]).0)
-        .collect();
+    let mut amplitudes = [0.0; 2 * MAX_ORDER + 1];
+    let amplitudes = &mut amplitudes[..(2 * nmax + 1) as usize];
+    for (slot, n) in amplitudes.iter_mut().zip(-nmax..=nmax) {
+        *slot = p0 * line_weight(table, n, p[BETA], p[ASYM]).0;
+    }
+    let amplitudes = &*amplitudes;
     let ranges = &ws.ranges;
     let level_at = |i: usize| -> f64 {
         let f = prob.freq[i];
@@ -1471,7 +1482,7 @@ fn fit_once(
         orders,
     };
     let model = FittedModel {
-        shape,
+        shape: shape.into_owned(),
         beta,
         p0_mw: p0,
         floor_mw: floor,
