@@ -67,11 +67,7 @@ fn bench_trace(beta: f64, seed: u64) -> Trace {
         display_noise_db: 0.15,
     };
     let levels = physics::render_trace(&lines, &rendering, &mut StdRng::seed_from_u64(seed));
-    let step = (rendering.stop_hz - rendering.start_hz) / (rendering.points - 1) as f64;
-    let axis = (0..rendering.points)
-        .map(|i| rendering.start_hz + step * i as f64)
-        .collect();
-    Trace::new(axis, levels, None).expect("valid rendered trace")
+    Trace::new(rendering.frequencies_hz(), levels, None).expect("valid rendered trace")
 }
 
 /// One benchmarked trace and what the fit starts from.

@@ -212,6 +212,18 @@ fn add_line(
     }
 }
 
+impl Rendering {
+    /// The frequency of each point the rendering draws (linear from start to stop), for pairing
+    /// a rendered trace with its axis.
+    pub fn frequencies_hz(&self) -> Vec<f64> {
+        let points = self.points.max(2);
+        let step = (self.stop_hz - self.start_hz) / (points - 1) as f64;
+        (0..points)
+            .map(|i| self.start_hz + step * i as f64)
+            .collect()
+    }
+}
+
 /// The noise-free displayed power (mW) at each point of a linear axis from `start_hz` to
 /// `stop_hz`: the noise floor plus every line seen through the filter.
 pub fn render_linear(lines: &[OpticalLine], r: &Rendering) -> Vec<f64> {

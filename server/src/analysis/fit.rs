@@ -1528,14 +1528,7 @@ mod tests {
         };
         let mut rng = StdRng::seed_from_u64(seed);
         let levels = physics::render_trace(&lines, &rendering, &mut rng);
-        let axis: Vec<f64> = (0..rendering.points)
-            .map(|i| {
-                rendering.start_hz
-                    + (rendering.stop_hz - rendering.start_hz) * i as f64
-                        / (rendering.points - 1) as f64
-            })
-            .collect();
-        Trace::new(axis, levels, None).unwrap()
+        Trace::new(rendering.frequencies_hz(), levels, None).unwrap()
     }
 
     #[test]

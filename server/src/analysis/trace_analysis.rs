@@ -354,6 +354,14 @@ mod tests {
         comb.trace(&mut || normal.sample(&mut rng)).unwrap()
     }
 
+    /// The RF-off reference of `modulated`, taken after the laser moved by `drift_spacings`.
+    fn rf_off(modulated: &SyntheticComb, drift_spacings: f64, seed: u64) -> Trace {
+        let mut off = modulated.clone();
+        off.modulation_index = 0.0;
+        off.carrier = Hz(modulated.carrier.0 + drift_spacings * SPACING.0);
+        draw(&off, seed)
+    }
+
     fn relative_error(estimate: f64, truth: f64) -> f64 {
         (estimate - truth).abs() / truth
     }
@@ -433,9 +441,7 @@ mod tests {
         for (seed, beta) in [0.4, 1.0, 1.9].into_iter().enumerate() {
             let modulated = comb(beta, 0.3);
             let trace = draw(&modulated, 300 + seed as u64);
-            let mut off = modulated.clone();
-            off.modulation_index = 0.0;
-            let reference = draw(&off, 400 + seed as u64);
+            let reference = rf_off(&modulated, 0.0, 400 + seed as u64);
             let result = analyze_trace(
                 &trace,
                 SPACING,
@@ -485,10 +491,7 @@ mod tests {
         for (seed, beta) in [0.4, 1.8, 2.6].into_iter().enumerate() {
             let modulated = comb(beta, 0.3);
             let trace = draw(&modulated, 700 + seed as u64);
-            let mut off = modulated.clone();
-            off.modulation_index = 0.0;
-            off.carrier = Hz(modulated.carrier.0 + 0.6 * SPACING.0);
-            let reference = draw(&off, 800 + seed as u64);
+            let reference = rf_off(&modulated, 0.6, 800 + seed as u64);
             let result = analyze_trace(
                 &trace,
                 SPACING,
