@@ -354,3 +354,30 @@ fn bad_input_is_refused_with_the_file_and_line() {
     let stderr = String::from_utf8_lossy(&output.stderr);
     assert!(stderr.contains("non-numeric.csv:4:"), "{stderr}");
 }
+
+#[test]
+fn a_closed_pipe_ends_the_command_quietly() {
+    // `halfwave analyze ... | head -1` once panicked ("failed printing to stdout: Broken pipe",
+    // exit 101). Here the reader of stdout is gone before the command writes anything.
+    let dir = scratch("closed-pipe");
+    let path = dir.join("trace.csv");
+    write_csv(&path, &draw(&synthetic(1.2, 0.1), 5));
+    let (reader, writer) = std::io::pipe().expect("a pipe");
+    drop(reader);
+    let out = Command::new(env!("CARGO_BIN_EXE_halfwave"))
+        .args([
+            "analyze",
+            "--modulation-frequency",
+            "2e9",
+            path.to_str().unwrap(),
+        ])
+        .stdout(writer)
+        .stderr(std::process::Stdio::piped())
+        .output()
+        .expect("the halfwave binary runs");
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(!stderr.contains("panicked"), "{stderr}");
+    assert!(stderr.trim().is_empty(), "nothing said: {stderr}");
+    // 128 + SIGPIPE (13): the status a shell reports for a program a closed pipe stopped.
+    assert_eq!(out.status.code(), Some(141), "{:?}", out.status);
+}

@@ -400,3 +400,86 @@ async fn invalid_plans_are_refused_with_fields_named_and_nothing_sent() {
         .unwrap();
     assert_eq!(runs["total"], 0);
 }
+
+#[tokio::test]
+async fn a_plan_with_six_mistakes_names_them_all_at_once_and_stores_nothing() {
+    let bench = spawn_app_with_engine(0.0).await;
+    let app = &bench.app;
+    let operator = app.token("operator-1", Role::Operator).await;
+    let chains_before: serde_json::Value = app
+        .get("/api/v1/chain-calibrations", Some(&operator))
+        .await
+        .json()
+        .await
+        .unwrap();
+
+    // An unknown bench, a chain that does not exist, a settling time and an average count out
+    // of range, a bad serial and an absurd wavelength: six mistakes, one answer.
+    let mut wrong = plan("no such chain");
+    wrong["bench"] = serde_json::json!("bench-nope");
+    wrong["settle_s"] = serde_json::json!(-1.0);
+    wrong["averages"] = serde_json::json!(0);
+    wrong["device"]["serial"] = serde_json::json!("bad serial!");
+    wrong["device"]["wavelength_nm"] = serde_json::json!(1.0);
+    let response = app.post_json("/api/v1/runs", Some(&operator), &wrong).await;
+    assert_eq!(response.status(), 422);
+    let body = problem(response).await;
+    let mut fields: Vec<&str> = body["errors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["field"].as_str().unwrap())
+        .collect();
+    fields.sort();
+    assert_eq!(
+        fields,
+        [
+            "averages",
+            "bench",
+            "chain",
+            "device.serial",
+            "device.wavelength_nm",
+            "settle_s"
+        ],
+        "{body}"
+    );
+    let bench_message = body["errors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|e| e["field"] == "bench")
+        .unwrap()["message"]
+        .as_str()
+        .unwrap()
+        .to_string();
+    assert!(
+        bench_message.contains("sim-bench"),
+        "names the benches: {bench_message}"
+    );
+
+    // A flat-loss plan refused for its levels leaves no `flat-loss-...` chain behind.
+    let mut refused = plan("unused");
+    refused["chain"] = serde_json::json!({"kind": "flat_loss", "loss_db": -30.0});
+    refused["levels"] = serde_json::json!({"kind": "list", "values_dbm": [0.0, 10.0]});
+    let response = app
+        .post_json("/api/v1/runs", Some(&operator), &refused)
+        .await;
+    assert_eq!(response.status(), 422);
+    let chains_after: serde_json::Value = app
+        .get("/api/v1/chain-calibrations", Some(&operator))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(
+        chains_after, chains_before,
+        "a refused plan stores no chain"
+    );
+    let runs: serde_json::Value = app
+        .get("/api/v1/runs", Some(&operator))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(runs["total"], 0);
+}

@@ -15,6 +15,30 @@ async fn create_prints_once_list_hides_secrets_revoke_disables() {
     let database = dir.path().join("tokens.sqlite");
     let database = database.to_str().unwrap();
 
+    // A mistyped database path is refused, not made into a new empty database whose token the
+    // daemon would refuse.
+    let typo = dir.path().join("tokns.sqlite");
+    let refused = halfwave(&[
+        "token",
+        "create",
+        "--role",
+        "operator",
+        "--name",
+        "lab-b",
+        "--database",
+        typo.to_str().unwrap(),
+    ]);
+    assert!(!refused.status.success());
+    let said = String::from_utf8_lossy(&refused.stderr);
+    assert!(
+        said.contains("there is no database") && said.contains("--create"),
+        "{said}"
+    );
+    assert!(!typo.exists(), "nothing is created");
+    let listed_typo = halfwave(&["token", "list", "--database", typo.to_str().unwrap()]);
+    assert!(!listed_typo.status.success());
+    assert!(!typo.exists());
+
     let created = halfwave(&[
         "token",
         "create",
@@ -24,6 +48,7 @@ async fn create_prints_once_list_hides_secrets_revoke_disables() {
         "lab-b",
         "--database",
         database,
+        "--create",
     ]);
     assert!(
         created.status.success(),
@@ -48,6 +73,15 @@ async fn create_prints_once_list_hides_secrets_revoke_disables() {
     assert!(listed.status.success());
     let listed = String::from_utf8(listed.stdout).unwrap();
     assert!(listed.contains("lab-b") && !listed.contains(&token));
+    assert!(
+        listed.contains("operator") && listed.contains("active"),
+        "a table: {listed}"
+    );
+    let listed_json = halfwave(&["token", "list", "--json", "--database", database]);
+    assert!(listed_json.status.success());
+    let rows: serde_json::Value = serde_json::from_slice(&listed_json.stdout).expect("JSON");
+    assert_eq!(rows[0]["name"], "lab-b");
+    assert_eq!(rows[0]["role"], "operator");
 
     let again = halfwave(&[
         "token",

@@ -21,6 +21,7 @@ fn halfwave(args: &[&str]) -> Output {
     std::process::Command::new(BIN)
         .args(args)
         .env_remove("HALFWAVE_TOKEN")
+        .env_remove("HALFWAVE_URL")
         .output()
         .expect("the halfwave binary runs")
 }
@@ -30,6 +31,7 @@ async fn halfwave_async(args: &[&str]) -> Output {
     tokio::process::Command::new(BIN)
         .args(args)
         .env_remove("HALFWAVE_TOKEN")
+        .env_remove("HALFWAVE_URL")
         .output()
         .await
         .expect("the halfwave binary runs")
@@ -62,7 +64,7 @@ const SIMULATED_CONFIG: &str = "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"si
 
 #[test]
 fn every_subcommand_has_help() {
-    let subcommands: [(&[&str], &str); 15] = [
+    let subcommands: [(&[&str], &str); 22] = [
         (&["demo"], "--data-dir"),
         (&["serve"], "--config"),
         (&["sim"], "--scenario"),
@@ -78,6 +80,13 @@ fn every_subcommand_has_help() {
         (&["db", "backup"], "VACUUM INTO"),
         (&["token", "create"], "--role"),
         (&["runs"], "HALFWAVE_TOKEN"),
+        (&["runs"], "HALFWAVE_URL"),
+        (&["cancel"], "<RUN_ID>"),
+        (&["resume"], "--no-follow"),
+        (&["compare"], "<RUN_B>"),
+        (&["devices"], "--json"),
+        (&["v-pi"], "--frequency"),
+        (&["trace"], "--force"),
     ];
     for (words, expected) in subcommands {
         let mut args = words.to_vec();
@@ -113,6 +122,13 @@ fn submit_names_a_missing_plan_file() {
         &out,
         &["/nonexistent/plan.json", "cannot read the plan file"],
     );
+    // A binary file given by mistake is named as not text, not as a bad path.
+    let dir = tempfile::tempdir().unwrap();
+    let binary = dir.path().join("plan.json");
+    std::fs::write(&binary, [0x7f, b'E', b'L', b'F', 0xff, 0xfe, 0x00]).unwrap();
+    let out = halfwave(&["submit", binary.to_str().unwrap()]);
+    failed_with(&out, &["is not a text file", "right file"]);
+    assert!(!stderr(&out).contains("check the path"), "{}", stderr(&out));
 }
 
 #[test]
@@ -188,7 +204,13 @@ fn check_bench_identifies_the_simulated_instruments_and_leaves_rf_off() {
         "--bench",
         "no-such-bench",
     ]);
-    failed_with(&out, &["no bench named \"no-such-bench\""]);
+    failed_with(
+        &out,
+        &[
+            "no bench named \"no-such-bench\"",
+            "its benches are: \"sim-bench\"",
+        ],
+    );
 }
 
 #[test]
@@ -279,14 +301,14 @@ fn plan_json() -> serde_json::Value {
     })
 }
 
-#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
-    // Instrument times scaled to 5 %: the run lasts about a second, so submit really follows it.
+/// The daemon on the simulated bench at 5 % of its instrument times, with the bench's true chain
+/// uploaded as "sim chain"; returns it with an operator token.
+async fn bench_with_chain() -> (api_support::EngineApp, String) {
     let bench = spawn_app_with_engine(0.05).await;
-    let app = &bench.app;
-    let admin = app.token("admin-1", Role::Admin).await;
-    let operator = app.token("lab-b", Role::Operator).await;
-    let chain = app
+    let admin = bench.app.token("admin-1", Role::Admin).await;
+    let operator = bench.app.token("lab-b", Role::Operator).await;
+    let chain = bench
+        .app
         .post_json(
             "/api/v1/chain-calibrations",
             Some(&admin),
@@ -294,6 +316,14 @@ async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
         )
         .await;
     assert_eq!(chain.status(), 201);
+    (bench, operator)
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
+    // Instrument times scaled to 5 %: the run lasts about a second, so submit really follows it.
+    let (bench, operator) = bench_with_chain().await;
+    let app = &bench.app;
 
     let dir = tempfile::tempdir().unwrap();
     let plan = dir.path().join("plan.json");
@@ -423,6 +453,237 @@ async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
     assert!(queued.status.success(), "{}", stderr(&queued));
     let queued: serde_json::Value = serde_json::from_slice(&queued.stdout).unwrap();
     assert!(queued["run_id"].as_i64().unwrap() > run_id);
+    let second = queued["run_id"].as_i64().unwrap().to_string();
+
+    the_record_verbs(&bench, &client, dir.path(), run_id, &csv_path, &second).await;
+}
+
+/// The verbs over a completed run (`run_id`, exported to `csv_path`) and a second run of the
+/// same plan (`second`, just queued): export's record columns and --force, trace round trip,
+/// devices, v-pi, watch, compare, cancel and resume.
+async fn the_record_verbs(
+    bench: &api_support::EngineApp,
+    client: &[&str],
+    dir: &Path,
+    run_id: i64,
+    csv_path: &Path,
+    second: &str,
+) {
+    let id = run_id.to_string();
+    let run = |words: &[&str]| {
+        let args: Vec<String> = words
+            .iter()
+            .chain(client.iter())
+            .map(|s| s.to_string())
+            .collect();
+        async move {
+            let refs: Vec<&str> = args.iter().map(String::as_str).collect();
+            halfwave_async(&refs).await
+        }
+    };
+
+    // The export names the record: serial, chain and version, the instruments' identities.
+    let csv = std::fs::read_to_string(csv_path).unwrap();
+    let header: Vec<&str> = csv.lines().next().unwrap().split(',').collect();
+    let first_row: Vec<&str> = csv.lines().nth(1).unwrap().split(',').collect();
+    let cell = |name: &str| first_row[header.iter().position(|h| *h == name).unwrap()];
+    assert_eq!(cell("device_serial"), "EG-PM-0042");
+    assert_eq!(cell("chain_name"), "sim chain");
+    assert_eq!(cell("chain_version"), "1");
+    let scenario = halfwave_drivers::sim::Scenario::builtin().unwrap();
+    assert!(
+        cell("source_identity").contains(&scenario.rf_source.serial),
+        "{}",
+        cell("source_identity")
+    );
+    assert!(
+        cell("analyzer_identity").contains(&scenario.analyzer.serial),
+        "{}",
+        cell("analyzer_identity")
+    );
+    // An existing file is not overwritten without --force.
+    let csv_arg = csv_path.to_str().unwrap();
+    let again = run(&["export", &id, "--output", csv_arg]).await;
+    failed_with(&again, &["already exists", "--force"]);
+    let forced = run(&["export", &id, "--output", csv_arg, "--force"]).await;
+    assert!(forced.status.success(), "{}", stderr(&forced));
+
+    // One stored trace out as the CSV `analyze` reads, bit for bit the stored values, and the
+    // offline analysis of it agrees with the modulation index the run stored.
+    let trace_path = dir.join("point-5.csv");
+    let traced = run(&["trace", &id, "5", "--output", trace_path.to_str().unwrap()]).await;
+    assert!(traced.status.success(), "{}", stderr(&traced));
+    let points: serde_json::Value = bench
+        .app
+        .get(
+            &format!("/api/v1/runs/{id}/points?page=5&per_page=1"),
+            Some(client[3]),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    let point = &points["points"][0];
+    let stored: serde_json::Value = bench
+        .app
+        .get(
+            &format!("/api/v1/runs/{id}/points/{}/trace", point["id"]),
+            Some(client[3]),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    let file = halfwave::cli::analyze::TraceFile::read(&trace_path).expect("analyze reads it");
+    let as_f64 = |v: &serde_json::Value| -> Vec<f64> {
+        v.as_array()
+            .unwrap()
+            .iter()
+            .map(|x| x.as_f64().unwrap())
+            .collect()
+    };
+    // serde_json's default float parsing may differ from the exact value in the last bit, so the
+    // JSON comparison allows one part in 1e15; the CSV itself is the daemon's, byte for byte.
+    let same = |a: &[f64], b: &[f64]| {
+        a.len() == b.len()
+            && a.iter()
+                .zip(b)
+                .all(|(x, y)| (x - y).abs() <= 1e-15 * x.abs().max(y.abs()))
+    };
+    assert!(same(
+        file.trace.frequency_hz(),
+        &as_f64(&stored["frequency_hz"])
+    ));
+    assert!(same(file.trace.power_dbm(), &as_f64(&stored["power_dbm"])));
+    let daemon_csv = bench
+        .app
+        .get(
+            &format!("/api/v1/runs/{id}/points/{}/trace?format=csv", point["id"]),
+            Some(client[3]),
+        )
+        .await
+        .text()
+        .await
+        .unwrap();
+    assert_eq!(std::fs::read_to_string(&trace_path).unwrap(), daemon_csv);
+    let f = point["frequency_hz"].as_f64().unwrap().to_string();
+    let analysed = halfwave_async(&[
+        "analyze",
+        trace_path.to_str().unwrap(),
+        "--modulation-frequency",
+        &f,
+    ])
+    .await;
+    assert!(analysed.status.success(), "{}", stderr(&analysed));
+    let analysed: serde_json::Value = serde_json::from_slice(&analysed.stdout).unwrap();
+    let offline = analysed["modulation_index"]["value"].as_f64().unwrap();
+    let online = point["modulation_index"].as_f64().unwrap();
+    let u = point["modulation_index_uncertainty"].as_f64().unwrap()
+        + analysed["modulation_index"]["uncertainty"]
+            .as_f64()
+            .unwrap();
+    assert!(
+        (offline - online).abs() <= 2.0 * u,
+        "offline {offline} against stored {online} (u {u})"
+    );
+    let past = run(&["trace", &id, "999"]).await;
+    failed_with(&past, &["has 18 points", "1 to 18"]);
+    let exists = run(&["trace", &id, "5", "--output", trace_path.to_str().unwrap()]).await;
+    failed_with(&exists, &["already exists"]);
+
+    // devices: the modulator with its newest calibration's run and range.
+    let devices = run(&["devices", "--json"]).await;
+    assert!(devices.status.success(), "{}", stderr(&devices));
+    let devices: serde_json::Value = serde_json::from_slice(&devices.stdout).unwrap();
+    assert_eq!(devices[0]["serial"], "EG-PM-0042");
+    assert_eq!(devices[0]["last_calibration_run_id"], run_id);
+    assert_eq!(devices[0]["lowest_frequency_hz"], FREQUENCIES_HZ[0]);
+    assert_eq!(devices[0]["highest_frequency_hz"], FREQUENCIES_HZ[1]);
+    let table = run(&["devices"]).await;
+    assert!(
+        stdout(&table).contains("2.000-8.000 GHz"),
+        "{}",
+        stdout(&table)
+    );
+
+    // v-pi: interpolated between the two measured frequencies, near the simulated truth (the
+    // scenario's V_pi(f) is smooth; linear interpolation over 2-8 GHz stays within 2 %).
+    let answer = run(&["v-pi", "EG-PM-0042", "--frequency", "5e9", "--json"]).await;
+    assert!(answer.status.success(), "{}", stderr(&answer));
+    let answer: serde_json::Value = serde_json::from_slice(&answer.stdout).unwrap();
+    assert_eq!(answer["run_id"], run_id);
+    assert_eq!(answer["interpolated"], true);
+    let truth = bench.sim.v_pi_at(halfwave::units::Hz(5e9)).0;
+    let v = answer["v_pi_volts"].as_f64().unwrap();
+    assert!((v - truth).abs() / truth < 0.02, "{v} V against {truth} V");
+    let text = run(&["v-pi", "EG-PM-0042", "--frequency", "8e9"]).await;
+    assert!(
+        stdout(&text).contains("measured at this frequency"),
+        "{}",
+        stdout(&text)
+    );
+    let outside = run(&["v-pi", "EG-PM-0042", "--frequency", "20e9"]).await;
+    failed_with(&outside, &["outside"]);
+
+    // The second run completes; compare puts the two side by side with E_n.
+    let watched = run(&["watch", second, "--json"]).await;
+    assert!(watched.status.success(), "{}", stderr(&watched));
+    let compared = run(&["compare", &id, second, "--json"]).await;
+    let comparison: serde_json::Value = serde_json::from_slice(&compared.stdout).unwrap();
+    let rows = comparison["rows"].as_array().unwrap();
+    assert_eq!(rows.len(), 2);
+    let mut any_significant = false;
+    for row in rows {
+        let (a, b) = (
+            row["v_pi_a_volts"].as_f64().unwrap(),
+            row["v_pi_b_volts"].as_f64().unwrap(),
+        );
+        let (ua, ub) = (
+            row["v_pi_a_uncertainty_volts"].as_f64().unwrap(),
+            row["v_pi_b_uncertainty_volts"].as_f64().unwrap(),
+        );
+        let u = row["difference_uncertainty_volts"].as_f64().unwrap();
+        assert!((u - (ua * ua + ub * ub).sqrt()).abs() < 1e-12);
+        let en = row["normalized_error"].as_f64().unwrap();
+        assert!((en - (b - a) / (2.0 * u)).abs() < 1e-9);
+        assert_eq!(row["significant"], en.abs() > 1.0);
+        any_significant |= en.abs() > 1.0;
+    }
+    // The exit status says whether any frequency differs significantly.
+    assert_eq!(
+        compared.status.success(),
+        !any_significant,
+        "{}",
+        stderr(&compared)
+    );
+    let table = run(&["compare", &id, second]).await;
+    assert!(
+        stdout(&table).contains("2 common frequencies"),
+        "{}",
+        stdout(&table)
+    );
+
+    // cancel a queued run: it ends cancelled; resume refuses a cancelled run and says why.
+    let dir_plan = dir.join("plan.json");
+    let queued = run(&[
+        "submit",
+        dir_plan.to_str().unwrap(),
+        "--no-follow",
+        "--json",
+    ])
+    .await;
+    let queued: serde_json::Value = serde_json::from_slice(&queued.stdout).unwrap();
+    let third = queued["run_id"].as_i64().unwrap().to_string();
+    let cancelled = run(&["cancel", &third]).await;
+    assert!(cancelled.status.success(), "{}", stderr(&cancelled));
+    assert!(
+        stdout(&cancelled).contains(&format!("run {third} cancelled")),
+        "{}",
+        stdout(&cancelled)
+    );
+    assert!(!bench.sim.rf_output_on(), "RF is off after the cancel");
+    let resumed = run(&["resume", &third]).await;
+    failed_with(&resumed, &["409", "cancelled"]);
 }
 
 #[tokio::test]
@@ -729,4 +990,123 @@ fn token_create_finds_the_configuration_from_the_environment() {
             &["--config FILE", "HALFWAVE_CONFIG", "--database URL"],
         );
     }
+}
+
+#[test]
+fn the_shipped_chain_of_the_simulated_bench_is_its_chain() {
+    // deploy/sim-bench-chain.csv is what README's example plan uses on the simulated bench: the
+    // net gain generator -> modulator (the source's level error minus the cable loss). It must be
+    // the scenario's own, or the example prints a wrong V_pi (a flat 2 dB chain gave 2.81 V at
+    // 0.2 GHz and 7.02 V at 20 GHz where the simulated modulator has 3.32 V and 5.31 V).
+    let text = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/sim-bench-chain.csv"),
+    )
+    .unwrap();
+    let mut lines = text.lines();
+    assert_eq!(lines.next(), Some("frequency_hz,gain_db"));
+    let points: Vec<halfwave::analysis::ChainPoint> = lines
+        .map(|l| {
+            let (f, g) = l.split_once(',').unwrap();
+            halfwave::analysis::ChainPoint {
+                frequency: halfwave::units::Hz(f.parse().unwrap()),
+                gain: halfwave::units::Db(g.parse().unwrap()),
+            }
+        })
+        .collect();
+    let chain = halfwave::analysis::DriveChain::new(points).unwrap();
+    let scenario = halfwave_drivers::sim::Scenario::builtin().unwrap();
+    for i in 0..=200 {
+        // 100 MHz to 40 GHz, log-spaced.
+        let f = halfwave::units::Hz(1e8 * 400f64.powf(f64::from(i) / 200.0));
+        let truth = scenario.level_error_at(f).0 - scenario.chain_loss_at(f).0;
+        let shipped = chain.gain_at(f).0;
+        assert!(
+            (shipped - truth).abs() < 1e-3,
+            "at {f:?}: {shipped} dB against {truth} dB"
+        );
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn ctrl_c_stops_following_only_and_hints_keep_the_url() {
+    // Instrument times at 5 %: 2 frequencies x 81 levels take several seconds.
+    let (bench, operator) = bench_with_chain().await;
+    let app = &bench.app;
+    let dir = tempfile::tempdir().unwrap();
+    let plan = dir.path().join("plan.json");
+    let mut long = plan_json();
+    long["levels"] =
+        serde_json::json!({"kind": "ramp", "start_dbm": 0.0, "stop_dbm": 20.0, "step_db": 0.25});
+    std::fs::write(&plan, long.to_string()).unwrap();
+
+    // The URL from HALFWAVE_URL: the hint needs no --url; given with --url, the hint repeats it.
+    let queued = tokio::process::Command::new(BIN)
+        .args(["submit", plan.to_str().unwrap(), "--no-follow"])
+        .env("HALFWAVE_URL", &app.base)
+        .env("HALFWAVE_TOKEN", &operator)
+        .output()
+        .await
+        .unwrap();
+    assert!(queued.status.success(), "{}", stderr(&queued));
+    let said = stdout(&queued);
+    let run_id: i64 = said
+        .split_whitespace()
+        .nth(1)
+        .and_then(|w| w.parse().ok())
+        .unwrap_or_else(|| panic!("run id in {said:?}"));
+    assert!(
+        said.contains(&format!("`halfwave watch {run_id}`")),
+        "{said}"
+    );
+
+    let watcher = tokio::process::Command::new(BIN)
+        .args(["watch", &run_id.to_string(), "--url", &app.base])
+        .env("HALFWAVE_TOKEN", &operator)
+        .env_remove("HALFWAVE_URL")
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    tokio::time::sleep(std::time::Duration::from_millis(1500)).await;
+    let pid = watcher.id().unwrap().to_string();
+    let signalled = std::process::Command::new("kill")
+        .args(["-INT", &pid])
+        .status()
+        .unwrap();
+    assert!(signalled.success());
+    let out = tokio::time::timeout(
+        std::time::Duration::from_secs(10),
+        watcher.wait_with_output(),
+    )
+    .await
+    .expect("watch stops at Ctrl-C")
+    .unwrap();
+    let text = stderr(&out);
+    assert!(!out.status.success());
+    assert!(text.contains("the run goes on in the daemon"), "{text}");
+    assert!(
+        text.contains(&format!("halfwave cancel {run_id} --url {}", app.base)),
+        "{text}"
+    );
+    let run: serde_json::Value = app
+        .get(&format!("/api/v1/runs/{run_id}"), Some(&operator))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert!(
+        matches!(run["state"].as_str(), Some("queued" | "running")),
+        "the run went on: {run}"
+    );
+    let cancelled = halfwave_async(&[
+        "cancel",
+        &run_id.to_string(),
+        "--url",
+        &app.base,
+        "--token",
+        &operator,
+    ])
+    .await;
+    assert!(cancelled.status.success(), "{}", stderr(&cancelled));
+    assert!(!bench.sim.rf_output_on());
 }

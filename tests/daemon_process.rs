@@ -96,5 +96,10 @@ fn serves_health_and_stops_cleanly_on_sigterm() {
     stdout.read_to_string(&mut rest).unwrap();
     assert!(exit.success(), "exit {exit:?}");
     assert!(rest.contains("RF outputs off"), "{rest}");
+    // A fresh database holds no token: serve says how to make the first one.
+    assert!(
+        rest.contains("no API token exists yet") && rest.contains("halfwave token create --config"),
+        "{rest}"
+    );
     assert!(dir.path().join("data").join("halfwave.db").exists());
 }

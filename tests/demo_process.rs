@@ -146,10 +146,8 @@ fn demo_recovers_the_simulated_v_pi_and_writes_svg_plots() {
             Some("http://www.w3.org/2000/svg")
         );
     }
-    assert!(report["dashboard_url"]
-        .as_str()
-        .unwrap()
-        .starts_with("http://127.0.0.1:"));
+    // Without --stay the daemon is gone once the JSON is printed: no dead dashboard link.
+    assert!(report.get("dashboard_url").is_none(), "{report}");
 }
 
 #[test]

@@ -179,10 +179,7 @@ impl Config {
     /// Parses configuration text; `path` is only used in messages.
     pub fn from_toml(text: &str, path: &Path, base_dir: PathBuf) -> Result<Config, ConfigError> {
         let mut config: Config = toml::from_str(text).map_err(|e| {
-            let line = e
-                .span()
-                .map(|s| text[..s.start.min(text.len())].lines().count().max(1))
-                .unwrap_or(0);
+            let line = e.span().map(|s| line_of(text, s.start)).unwrap_or(0);
             ConfigError::Syntax {
                 path: path.to_path_buf(),
                 line,
@@ -330,6 +327,17 @@ impl Config {
     }
 }
 
+/// The 1-based line of byte offset `offset` in `text`: one more than the line breaks before it
+/// (counting lines of the text before the offset is one short when the offset starts a line).
+fn line_of(text: &str, offset: usize) -> usize {
+    let end = offset.min(text.len());
+    text.as_bytes()[..end]
+        .iter()
+        .filter(|&&b| b == b'\n')
+        .count()
+        + 1
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -357,6 +365,18 @@ mod tests {
             ConfigError::Syntax { line, .. } => assert_eq!(line, 4),
             other => panic!("expected a syntax error, got {other}"),
         }
+    }
+
+    #[test]
+    fn an_unknown_key_on_line_three_is_reported_on_line_three() {
+        // The case a user met: a misspelt key at the start of line 3 was reported on line 2.
+        let err = parse("bind = \"127.0.0.1:8440\"\n\nbnd = 1\n").unwrap_err();
+        match err {
+            ConfigError::Syntax { line, .. } => assert_eq!(line, 3, "{err}"),
+            other => panic!("expected a syntax error, got {other}"),
+        }
+        assert_eq!(line_of("a\nb\nc", 4), 3);
+        assert_eq!(line_of("a\nb\nc", 0), 1);
     }
 
     #[test]

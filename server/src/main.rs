@@ -12,6 +12,9 @@ fn main() -> std::process::ExitCode {
     halfwave::telemetry::init(level);
     match halfwave::cli::run(cli) {
         Ok(()) => std::process::ExitCode::SUCCESS,
+        Err(halfwave::cli::CliError::ClosedPipe) => {
+            std::process::ExitCode::from(halfwave::cli::CLOSED_PIPE_EXIT_CODE)
+        }
         Err(e) => {
             eprintln!("error: {e}");
             std::process::ExitCode::FAILURE

@@ -12,10 +12,12 @@
 //! - [`index`]: the modulation index by least squares, sideband ratio and carrier depletion.
 //! - [`trace_analysis`]: one trace in, every estimate and the line table out.
 //! - [`vpi`]: V_pi from a drive-level sweep, with the points that break the line flagged.
+//! - [`agreement`]: whether two V_pi agree within their uncertainties (E_n).
 //! - [`response`]: V_pi versus frequency as a response in dB, with its 3 dB and 6 dB points.
 //! - [`synthetic`]: traces computed from Bessel physics, for tests, benchmarks and demos.
 //! - [`error`]: the one error type, with messages for the operator.
 
+pub mod agreement;
 pub mod bessel;
 pub mod chain;
 pub mod comb;

@@ -29,7 +29,7 @@ use utoipa::{Modify, OpenApi};
         Problem, FieldProblem, Role, TokenInfo, CreatedToken, token_routes::NewToken, system::Health,
         run_control::SubmittedRun, benches::Acknowledgement, system::BenchAttention,
         runs::RunSummary, runs::RunList, runs::RunView, runs::FrequencyResultView, runs::PointView,
-        runs::PointList, runs::TraceView, RunComparison, ComparisonRow,
+        runs::PointList, runs::TraceView, RunComparison, ComparisonRow, crate::store::RunInstrument,
         devices::DeviceView, devices::Calibration, devices::CalibrationPoint, devices::VpiAnswer,
         chains::ChainUpload, chains::ChainPointBody, chains::ChainView, chains::ChainHeaderView,
     )),

@@ -48,7 +48,7 @@ pub fn run(args: AnalyzeArgs) -> Result<(), CliError> {
         serde_json::to_string_pretty(&analyze_trace_file(&args)?)
     }
     .map_err(|e| CliError::new(format!("could not write the result as JSON: {e}")))?;
-    println!("{json}");
+    outln!("{json}");
     Ok(())
 }
 

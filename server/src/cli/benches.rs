@@ -36,16 +36,16 @@ pub fn list(args: BenchesArgs) -> Result<(), CliError> {
         if args.client.json {
             let text = serde_json::to_string_pretty(&benches)
                 .map_err(|e| CliError::new(format!("cannot write JSON: {e}")))?;
-            println!("{text}");
+            outln!("{text}");
             return Ok(());
         }
-        println!(
+        outln!(
             "{:<16} {:<26} {:>10} {:<12}",
             "bench", "RF safety", "active run", "queued"
         );
         for b in &benches {
             let queued: Vec<String> = b.queued_run_ids.iter().map(ToString::to_string).collect();
-            println!(
+            outln!(
                 "{:<16} {:<26} {:>10} {:<12}",
                 b.name,
                 b.safety_state,
@@ -58,12 +58,12 @@ pub fn list(args: BenchesArgs) -> Result<(), CliError> {
                 }
             );
             if let Some(fault) = &b.safety_fault {
-                println!("  cause: {}", fault.cause);
+                outln!("  cause: {}", fault.cause);
                 match b.safety_state.as_str() {
-                    "output_unconfirmed" => println!(
+                    "output_unconfirmed" => outln!(
                         "  the daemon keeps trying to switch the output off; check the source and its link"
                     ),
-                    _ => println!(
+                    _ => outln!(
                         "  the output reads back off; check the bench, then: halfwave acknowledge {} --note \"...\"",
                         b.name
                     ),
@@ -86,12 +86,12 @@ pub fn acknowledge(args: AcknowledgeArgs) -> Result<(), CliError> {
             .post_no_content(&path, &serde_json::json!({ "note": args.note }))
             .await?;
         if args.client.json {
-            println!(
+            outln!(
                 "{}",
                 serde_json::json!({ "bench": args.bench, "acknowledged": true })
             );
         } else {
-            println!(
+            outln!(
                 "bench {} acknowledged: it takes runs again (recorded in the audit log)",
                 args.bench
             );

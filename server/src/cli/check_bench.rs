@@ -123,8 +123,18 @@ pub fn run(args: CheckBenchArgs) -> Result<(), CliError> {
         .collect();
     if benches.is_empty() {
         return Err(CliError::new(match &args.bench {
+            Some(name) if !config.benches.is_empty() => format!(
+                "{} has no bench named {name:?}; its benches are: {}",
+                path.display(),
+                config
+                    .benches
+                    .iter()
+                    .map(|b| format!("{:?}", b.name))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ),
             Some(name) => format!(
-                "{} has no bench named {name:?}; the names are in its [[bench]] tables",
+                "{} has no bench named {name:?}, and no bench at all; add a [[bench]] table (see deploy/halfwave.toml)",
                 path.display()
             ),
             None => format!(
@@ -136,9 +146,9 @@ pub fn run(args: CheckBenchArgs) -> Result<(), CliError> {
     if args.suggest_profile {
         let all = runtime()?.block_on(super::suggest_profile::suggest(&config, &benches));
         if args.json {
-            println!("{}", to_json(&all)?);
+            outln!("{}", to_json(&all)?);
         } else {
-            print!("{}", super::suggest_profile::report_text(&all));
+            out!("{}", super::suggest_profile::report_text(&all));
         }
         return match all.iter().find(|i| i.error.is_some()) {
             Some(i) => Err(CliError::new(format!(
@@ -159,9 +169,9 @@ pub fn run(args: CheckBenchArgs) -> Result<(), CliError> {
         }
     });
     if args.json {
-        println!("{}", to_json(&report)?);
+        outln!("{}", to_json(&report)?);
     } else {
-        print!("{}", report_text(&report));
+        out!("{}", report_text(&report));
     }
     let failed: Vec<&str> = report
         .benches

@@ -20,6 +20,9 @@ pub const DEFAULT_URL: &str = "http://127.0.0.1:8440";
 /// The environment variable that holds the token when `--token` is not given.
 pub const TOKEN_ENV: &str = "HALFWAVE_TOKEN";
 
+/// The environment variable that holds the daemon's URL when `--url` is not given.
+pub const URL_ENV: &str = "HALFWAVE_URL";
+
 /// How long one request may take before the CLI gives up (the daemon's own limit is 30 s).
 const REQUEST_TIMEOUT: Duration = Duration::from_secs(60);
 
@@ -29,9 +32,10 @@ const CONNECT_TIMEOUT: Duration = Duration::from_secs(5);
 /// The options every command that talks to a daemon takes.
 #[derive(Debug, Clone, Args)]
 pub struct ClientArgs {
-    /// The daemon's base URL.
-    #[arg(long, value_name = "URL", default_value = DEFAULT_URL)]
-    pub url: String,
+    /// The daemon's base URL; default: the HALFWAVE_URL environment variable, else
+    /// http://127.0.0.1:8440.
+    #[arg(long, value_name = "URL")]
+    pub url: Option<String>,
     /// The API token (`hwt_...`, from `halfwave token create`); default: the HALFWAVE_TOKEN
     /// environment variable, which keeps the secret out of the shell history.
     #[arg(long, value_name = "TOKEN")]
@@ -49,7 +53,19 @@ impl ClientArgs {
             .clone()
             .or_else(|| std::env::var(TOKEN_ENV).ok())
             .filter(|t| !t.trim().is_empty());
-        ApiClient::new(&self.url, token)
+        let mut client = ApiClient::new(&self.resolved_url(), token)?;
+        client.url_given = self.url.as_deref().is_some_and(|u| !u.trim().is_empty());
+        Ok(client)
+    }
+
+    /// The daemon's URL: `--url`, else `HALFWAVE_URL`, else [`DEFAULT_URL`].
+    pub fn resolved_url(&self) -> String {
+        self.url
+            .clone()
+            .or_else(|| std::env::var(URL_ENV).ok())
+            .map(|u| u.trim().to_string())
+            .filter(|u| !u.is_empty())
+            .unwrap_or_else(|| DEFAULT_URL.to_string())
     }
 }
 
@@ -61,6 +77,8 @@ pub struct ApiClient {
     http: reqwest::Client,
     /// A client without the overall timeout, for the event stream.
     streaming: reqwest::Client,
+    /// True when the URL came from `--url` (so follow-up hints must repeat it).
+    url_given: bool,
 }
 
 impl ApiClient {
@@ -96,7 +114,19 @@ impl ApiClient {
             token,
             http: build(Some(REQUEST_TIMEOUT))?,
             streaming: build(None)?,
+            url_given: false,
         })
+    }
+
+    /// A follow-up command for the person at the terminal, e.g. `halfwave watch 2`, carrying the
+    /// `--url` this command was given so that copying the hint reaches the same daemon (a URL
+    /// from `HALFWAVE_URL` needs no repeating: the next command reads it too).
+    pub fn hint(&self, command: &str) -> String {
+        if self.url_given {
+            format!("halfwave {command} --url {}", self.base)
+        } else {
+            format!("halfwave {command}")
+        }
     }
 
     /// The daemon's base URL, without a trailing slash.

@@ -62,11 +62,15 @@ pub fn run(command: DbCommand) -> Result<(), CliError> {
             let url = source_url(&database)?;
             let report = runtime()?.block_on(backup(&url, &dest))?;
             if json {
-                println!("{}", to_json(&report)?);
+                outln!("{}", to_json(&report)?);
             } else {
-                println!(
+                outln!(
                     "backup of {} written to {} ({} bytes, {} runs, {} points; integrity check ok)",
-                    report.source, report.backup, report.bytes, report.runs, report.points
+                    report.source,
+                    report.backup,
+                    report.bytes,
+                    report.runs,
+                    report.points
                 );
             }
             Ok(())

@@ -75,7 +75,10 @@ pub struct DemoReport {
     pub device_serial: String,
     pub data_dir: String,
     pub database: String,
-    pub dashboard_url: String,
+    /// The dashboard, present only with `--stay` (without it the daemon is gone when the JSON
+    /// is read, and a dead link is worse than none).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub dashboard_url: Option<String>,
     pub v_pi: Vec<FrequencyResultView>,
     pub response: Option<ResponseSummary>,
     pub plots: Vec<String>,
@@ -156,11 +159,11 @@ async fn demo(args: DemoArgs) -> Result<(), CliError> {
         let _ = stopped.await;
     }));
     if !args.json {
-        println!(
+        outln!(
             "halfwave demo: the daemon runs in this process at {base}/ on a simulated bench ({})",
             scenario.name
         );
-        println!("data directory: {}", data_dir.display());
+        outln!("data directory: {}", data_dir.display());
     }
 
     let outcome = measure(&args, &base, &admin, &operator, &scenario, &data_dir).await;
@@ -172,7 +175,7 @@ async fn demo(args: DemoArgs) -> Result<(), CliError> {
             device_serial: run.summary.device_serial.clone(),
             data_dir: data_dir.display().to_string(),
             database: config.database_url(),
-            dashboard_url: format!("{base}/dashboard/"),
+            dashboard_url: args.stay.then(|| format!("{base}/dashboard/")),
             v_pi: run.results,
             response,
             plots,
@@ -180,7 +183,7 @@ async fn demo(args: DemoArgs) -> Result<(), CliError> {
         }
     });
     if let Ok(report) = &outcome {
-        print_report(report, &args, &operator)?;
+        print_report(report, &args, &operator, &base)?;
     }
     if outcome.is_ok() && args.stay {
         eprintln!("the daemon stays up for the dashboard; Ctrl-C stops it (RF outputs off)");
@@ -248,7 +251,7 @@ async fn measure(
     let events = EventStream::open(&client, None).await.ok();
     let submitted: SubmittedRun = client.post_json("/api/v1/runs", &plan).await?;
     if !args.json {
-        println!(
+        outln!(
             "run {} submitted: {} on {} frequencies from {} to {} GHz, levels {}..{} dBm in {} dB steps",
             submitted.run_id,
             scenario.modulator.serial,
@@ -326,34 +329,37 @@ async fn save_plots(
     Ok(written)
 }
 
-fn print_report(report: &DemoReport, args: &DemoArgs, operator: &str) -> Result<(), CliError> {
+fn print_report(
+    report: &DemoReport,
+    args: &DemoArgs,
+    operator: &str,
+    base: &str,
+) -> Result<(), CliError> {
     if args.json {
-        println!("{}", to_json(report)?);
+        outln!("{}", to_json(report)?);
         return Ok(());
     }
-    println!(
+    outln!(
         "\nrun {} {} in {:.1} s — V_pi of {} versus drive frequency:",
-        report.run_id, report.state, report.wall_time_s, report.device_serial
+        report.run_id,
+        report.state,
+        report.wall_time_s,
+        report.device_serial
     );
-    print!("{}", vpi_table(&report.v_pi));
+    out!("{}", vpi_table(&report.v_pi));
     if let Some(summary) = &report.response {
-        print!("{}", response_lines(summary));
+        out!("{}", response_lines(summary));
     }
-    println!("plots (SVG):");
+    outln!("plots (SVG):");
     for plot in &report.plots {
-        println!("  {plot}");
+        outln!("  {plot}");
     }
-    println!("database: {}", report.database);
-    if args.stay {
-        println!(
-            "dashboard: {} (paste the operator token {operator})",
-            report.dashboard_url
-        );
-    } else {
-        println!(
-            "dashboard: {} — up only while the demo runs; `halfwave demo --stay` keeps it open",
-            report.dashboard_url
-        );
+    outln!("database: {}", report.database);
+    match &report.dashboard_url {
+        Some(url) => outln!("dashboard: {url} (paste the operator token {operator})"),
+        None => outln!(
+            "dashboard: {base}/dashboard/ — up only while the demo runs; `halfwave demo --stay` keeps it open"
+        ),
     }
     Ok(())
 }

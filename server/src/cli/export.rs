@@ -7,11 +7,11 @@
 //! API serves them. Points are read page by page, so a run of any size exports.
 
 use super::client::ClientArgs;
+use super::output_file::OutputArgs;
 use super::runs::{runtime, to_json};
 use super::CliError;
-use crate::api::routes::runs::{FrequencyResultView, PointList, PointView, RunView};
+use crate::api::routes::runs::{PointList, PointView, RunView};
 use clap::{Args, ValueEnum};
-use std::path::PathBuf;
 
 /// Points per request (the API's largest page).
 const PAGE: u32 = 1000;
@@ -29,20 +29,51 @@ pub struct ExportArgs {
     /// csv: one row per point, units in the column names; json: the run with all its points.
     #[arg(long, value_enum, default_value_t = ExportFormat::Csv)]
     pub format: ExportFormat,
-    /// Write to this file instead of stdout.
-    #[arg(long, short)]
-    pub output: Option<PathBuf>,
+    #[command(flatten)]
+    pub output: OutputArgs,
     #[command(flatten)]
     pub client: ClientArgs,
 }
 
-/// The CSV header; units in every name.
-pub const CSV_HEADER: &str = "run_id,frequency_index,level_index,frequency_hz,generator_level_dbm,level_at_modulator_dbm,v_peak_volts,modulation_index,modulation_index_uncertainty,asymmetry_db,v_pi_volts,v_pi_uncertainty_volts,measured_at_unix_ms";
+/// The CSV header; units in every name. The run's record (device, chain, instruments) is
+/// repeated on every row so that a row read alone still says what it is.
+pub const CSV_HEADER: &str = "run_id,device_serial,chain_name,chain_version,source_identity,analyzer_identity,frequency_index,level_index,frequency_hz,generator_level_dbm,level_at_modulator_dbm,v_peak_volts,modulation_index,modulation_index_uncertainty,asymmetry_db,v_pi_volts,v_pi_uncertainty_volts,measured_at_unix_ms";
+
+/// A text cell as RFC 4180 writes it: quoted (inner quotes doubled) when it holds a comma, a
+/// quote or a line break.
+pub fn csv_text(cell: &str) -> String {
+    if cell.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", cell.replace('"', "\"\""))
+    } else {
+        cell.to_string()
+    }
+}
+
+/// The identities of a run's instruments in one role, joined by " then " (a run resumed on a
+/// replaced instrument has two).
+fn identities(run: &RunView, role: &str) -> String {
+    run.instruments
+        .iter()
+        .filter(|i| i.role == role)
+        .map(|i| i.identity_line())
+        .collect::<Vec<_>>()
+        .join(" then ")
+}
 
 /// The run and its points as CSV.
-pub fn points_csv(run_id: i64, points: &[PointView], results: &[FrequencyResultView]) -> String {
+pub fn points_csv(run: &RunView, points: &[PointView]) -> String {
+    let run_id = run.summary.id;
+    let results = &run.results;
+    let record = format!(
+        "{run_id},{},{},{},{},{}",
+        csv_text(&run.summary.device_serial),
+        csv_text(&run.summary.chain_name),
+        run.summary.chain_version,
+        csv_text(&identities(run, "source")),
+        csv_text(&identities(run, "analyzer"))
+    );
     let optional = |v: Option<f64>| v.map(|v| v.to_string()).unwrap_or_default();
-    let mut out = String::with_capacity(points.len() * 160 + CSV_HEADER.len() + 1);
+    let mut out = String::with_capacity(points.len() * 260 + CSV_HEADER.len() + 1);
     out.push_str(CSV_HEADER);
     out.push('\n');
     for p in points {
@@ -50,7 +81,7 @@ pub fn points_csv(run_id: i64, points: &[PointView], results: &[FrequencyResultV
             .iter()
             .find(|r| r.frequency_index == p.frequency_index);
         out.push_str(&format!(
-            "{run_id},{},{},{},{},{},{},{},{},{},{},{},{}\n",
+            "{record},{},{},{},{},{},{},{},{},{},{},{},{}\n",
             p.frequency_index,
             p.level_index,
             p.frequency_hz,
@@ -90,7 +121,7 @@ pub fn run(args: ExportArgs) -> Result<(), CliError> {
         Ok::<_, CliError>((run, points))
     })?;
     let text = match args.format {
-        ExportFormat::Csv => points_csv(run_id, &points, &run.results),
+        ExportFormat::Csv => points_csv(&run, &points),
         ExportFormat::Json => {
             let mut value = serde_json::to_value(&run)
                 .map_err(|e| CliError::new(format!("cannot encode the run: {e}")))?;
@@ -99,31 +130,21 @@ pub fn run(args: ExportArgs) -> Result<(), CliError> {
             to_json(&value)? + "\n"
         }
     };
-    match &args.output {
-        None => {
-            print!("{text}");
-            Ok(())
-        }
-        Some(path) => {
-            std::fs::write(path, text).map_err(|e| {
-                CliError::new(format!(
-                    "cannot write {}: {e}; check that the directory exists and is writable",
-                    path.display()
-                ))
-            })?;
-            eprintln!(
-                "run {run_id}: {} points written to {}",
-                points.len(),
-                path.display()
-            );
-            Ok(())
-        }
+    args.output.write(&text)?;
+    if let Some(path) = &args.output.output {
+        eprintln!(
+            "run {run_id}: {} points written to {}",
+            points.len(),
+            path.display()
+        );
     }
+    Ok(())
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::api::routes::runs::FrequencyResultView;
 
     fn point(frequency_index: u32, index: Option<f64>) -> PointView {
         PointView {
@@ -143,25 +164,57 @@ mod tests {
         }
     }
 
+    fn run() -> RunView {
+        let summary: crate::api::routes::runs::RunSummary = serde_json::from_value(serde_json::json!({
+            "id": 7, "device_serial": "EG-PM-0042", "bench": "bench-7", "chain_name": "bench-7 chain",
+            "chain_version": 2, "state": "completed", "submitted_by": "op", "created_at_unix_ms": 1,
+            "started_at_unix_ms": null, "finished_at_unix_ms": null, "cause": null
+        }))
+        .expect("a summary");
+        let instrument = |role: &str, model: &str| crate::store::RunInstrument {
+            role: role.into(),
+            manufacturer: "Example Instruments".into(),
+            model: model.into(),
+            serial: "SN1".into(),
+            firmware: "1.0".into(),
+            resource: "TCPIP::192.0.2.7::5025::SOCKET".into(),
+        };
+        RunView {
+            summary,
+            plan: serde_json::Value::Null,
+            measured_points: 2,
+            results: vec![FrequencyResultView {
+                frequency_index: 0,
+                frequency_hz: 2e9,
+                v_pi_volts: 3.7,
+                v_pi_uncertainty_volts: 0.02,
+                excluded_points: serde_json::Value::Null,
+            }],
+            instruments: vec![
+                instrument("source", "SG-1"),
+                instrument("analyzer", "OSA-2"),
+            ],
+        }
+    }
+
     #[test]
-    fn csv_rows_carry_their_frequency_v_pi_and_leave_missing_values_empty() {
-        let results = [FrequencyResultView {
-            frequency_index: 0,
-            frequency_hz: 2e9,
-            v_pi_volts: 3.7,
-            v_pi_uncertainty_volts: 0.02,
-            excluded_points: serde_json::Value::Null,
-        }];
-        let csv = points_csv(7, &[point(0, Some(0.67)), point(1, None)], &results);
+    fn csv_rows_carry_the_record_their_frequency_v_pi_and_leave_missing_values_empty() {
+        let csv = points_csv(&run(), &[point(0, Some(0.67)), point(1, None)]);
         let lines: Vec<&str> = csv.lines().collect();
         assert_eq!(lines[0], CSV_HEADER);
-        let columns = CSV_HEADER.split(',').count();
-        assert!(lines.iter().all(|l| l.split(',').count() == columns));
+        let record = "7,EG-PM-0042,bench-7 chain,2,Example Instruments / SG-1 / SN1 / 1.0 @ TCPIP::192.0.2.7::5025::SOCKET,Example Instruments / OSA-2 / SN1 / 1.0 @ TCPIP::192.0.2.7::5025::SOCKET";
         assert_eq!(
             lines[1],
-            "7,0,0,2000000000,10,8,0.7943,0.67,0.01,,3.7,0.02,5"
+            format!("{record},0,0,2000000000,10,8,0.7943,0.67,0.01,,3.7,0.02,5")
         );
         // A point whose spectrum was not analysed, at a frequency without a V_pi fit.
-        assert_eq!(lines[2], "7,1,0,2000000000,10,8,0.7943,,,,,,5");
+        assert_eq!(
+            lines[2],
+            format!("{record},1,0,2000000000,10,8,0.7943,,,,,,5")
+        );
+        // A cell with a comma or a quote is quoted, inner quotes doubled (RFC 4180, section 2,
+        // rules 6 and 7).
+        assert_eq!(csv_text("say \"hi\""), "\"say \"\"hi\"\"\"");
+        assert_eq!(csv_text("a,b"), "\"a,b\"");
     }
 }

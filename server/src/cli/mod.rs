@@ -3,9 +3,26 @@
 //! Every subcommand returns `Result<(), CliError>`; `main` prints the error for the person at the
 //! terminal and exits non-zero. Three kinds of command live here: the daemon and its local tools
 //! (`serve`, `demo`, `sim`, `analyze`, `token`, `check-bench`, `db`), which read the configuration
-//! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `export`, `benches`, `acknowledge`), which
+//! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `cancel`, `resume`, `compare`, `devices`,
+//! `v-pi`, `export`, `trace`, `benches`, `acknowledge`), which
 //! speak only HTTP to a running daemon through [`client::ApiClient`], so they work from any
 //! machine that can reach it. Clients print tables for people and JSON with `--json`.
+
+/// Prints a line on stdout like `println!`, inside a function that returns
+/// `Result<_, CliError>`: a reader that closed the pipe (`halfwave runs | head -1`) ends the
+/// command quietly through [`CliError::ClosedPipe`] instead of a panic.
+macro_rules! outln {
+    ($($arg:tt)*) => {
+        $crate::cli::write_stdout(format_args!($($arg)*), true)?
+    };
+}
+
+/// Prints on stdout like `print!`; see [`outln!`].
+macro_rules! out {
+    ($($arg:tt)*) => {
+        $crate::cli::write_stdout(format_args!($($arg)*), false)?
+    };
+}
 
 pub mod analyze;
 
@@ -14,26 +31,66 @@ use clap::{Parser, Subcommand};
 pub mod benches;
 pub mod check_bench;
 pub mod client;
+pub mod compare;
+pub mod control;
 pub mod db;
 pub mod demo;
+pub mod devices;
 pub mod drill;
 pub mod export;
 pub mod follow;
+pub mod output_file;
 pub mod report;
 pub mod runs;
 pub mod serve;
 pub mod sim;
 pub mod suggest_profile;
 pub mod token;
+pub mod trace;
 
 /// An error that ends a command: the message says what is wrong and what to do.
 #[derive(Debug, thiserror::Error)]
-#[error("{0}")]
-pub struct CliError(pub String);
+pub enum CliError {
+    /// What went wrong and what to do, for the person at the terminal.
+    #[error("{0}")]
+    Message(String),
+    /// The reader of stdout went away (`| head`): nothing is wrong and nothing more is said;
+    /// the process exits with [`CLOSED_PIPE_EXIT_CODE`].
+    #[error("standard output was closed by its reader")]
+    ClosedPipe,
+}
 
 impl CliError {
     pub fn new(message: impl Into<String>) -> Self {
-        CliError(message.into())
+        CliError::Message(message.into())
+    }
+}
+
+/// The exit status after stdout's reader went away: 128 + SIGPIPE (13), what a shell reports for
+/// a program that a closed pipe stopped (common practice), so `set -o pipefail` still sees it.
+pub const CLOSED_PIPE_EXIT_CODE: u8 = 141;
+
+/// Writes to stdout (and flushes, so that a closed pipe is noticed at once); a closed pipe is
+/// [`CliError::ClosedPipe`], any other failure a message naming stdout.
+pub fn write_stdout(text: std::fmt::Arguments<'_>, newline: bool) -> Result<(), CliError> {
+    use std::io::Write;
+    let mut stdout = std::io::stdout().lock();
+    let written = stdout
+        .write_fmt(text)
+        .and_then(|()| {
+            if newline {
+                stdout.write_all(b"\n")
+            } else {
+                Ok(())
+            }
+        })
+        .and_then(|()| stdout.flush());
+    match written {
+        Ok(()) => Ok(()),
+        Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => Err(CliError::ClosedPipe),
+        Err(e) => Err(CliError::new(format!(
+            "cannot write to standard output: {e}"
+        ))),
     }
 }
 
@@ -68,6 +125,20 @@ pub enum Command {
     Runs(runs::RunsArgs),
     /// Show one run: state, V_pi per frequency, response frequencies.
     Show(runs::ShowArgs),
+    /// Cancel a queued or running run (operator token); its RF output goes off, its points stay.
+    Cancel(control::CancelArgs),
+    /// Resume an interrupted run (or one that failed on a link fault) where it stopped, and
+    /// follow it.
+    Resume(control::ResumeArgs),
+    /// Compare two runs' V_pi per frequency: difference, combined uncertainty, significance (E_n).
+    Compare(compare::CompareArgs),
+    /// List the modulators with their newest calibration (date, run, frequency range).
+    Devices(devices::DevicesArgs),
+    /// V_pi of a modulator at one frequency, with its uncertainty and the run it comes from.
+    #[command(name = "v-pi")]
+    VPi(devices::VpiArgs),
+    /// Export one stored analyzer trace as the CSV that `halfwave analyze` reads.
+    Trace(trace::TraceArgs),
     /// Export a run's points and V_pi as CSV or JSON (units in the column names).
     Export(export::ExportArgs),
     /// Identify every configured instrument and verify its read-backs. RF stays off: this never
@@ -94,6 +165,12 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Watch(args) => runs::watch(args),
         Command::Runs(args) => runs::list(args),
         Command::Show(args) => runs::show(args),
+        Command::Cancel(args) => control::cancel(args),
+        Command::Resume(args) => control::resume(args),
+        Command::Compare(args) => compare::run(args),
+        Command::Devices(args) => devices::list(args),
+        Command::VPi(args) => devices::v_pi(args),
+        Command::Trace(args) => trace::run(args),
         Command::Export(args) => export::run(args),
         Command::CheckBench(args) => check_bench::run(args),
         Command::Db(command) => db::run(command),

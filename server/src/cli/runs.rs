@@ -76,10 +76,17 @@ pub fn runtime() -> Result<tokio::runtime::Runtime, CliError> {
 
 /// Reads a JSON file, naming the file (and the line and column of a syntax error).
 pub fn read_json_file(path: &Path, what: &str) -> Result<serde_json::Value, CliError> {
-    let text = std::fs::read_to_string(path).map_err(|e| {
+    let bytes = std::fs::read(path).map_err(|e| {
         CliError::new(format!(
             "cannot read the {what} {}: {e}; check the path",
             path.display()
+        ))
+    })?;
+    let text = String::from_utf8(bytes).map_err(|e| {
+        CliError::new(format!(
+            "the {what} {} is not a text file (byte {} is not UTF-8); a {what} is JSON text — is this the right file?",
+            path.display(),
+            e.utf8_error().valid_up_to()
         ))
     })?;
     serde_json::from_str(&text).map_err(|e| {
@@ -93,28 +100,34 @@ pub fn read_json_file(path: &Path, what: &str) -> Result<serde_json::Value, CliE
 }
 
 /// Prints a finished run (JSON or text) and fails unless it completed.
-pub fn finish(run: &RunView, json: bool) -> Result<(), CliError> {
+pub fn finish(client: &ApiClient, run: &RunView, json: bool) -> Result<(), CliError> {
     if json {
-        println!("{}", to_json(run)?);
+        outln!("{}", to_json(run)?);
     } else {
-        print!("{}", report::run_text(run));
+        out!("{}", report::run_text(run));
     }
+    let id = run.summary.id;
     if run.summary.state == "completed" {
-        Ok(())
-    } else {
-        Err(CliError::new(format!(
-            "run {} ended {}{}; `halfwave show {}` has the details, and an interrupted or failed run can be resumed from the dashboard or with POST /api/v1/runs/{}/resume",
-            run.summary.id,
-            run.summary.state,
-            run.summary
-                .cause
-                .as_ref()
-                .map(|c| format!(": {c}"))
-                .unwrap_or_default(),
-            run.summary.id,
-            run.summary.id
-        )))
+        return Ok(());
     }
+    let resume = if run.summary.resumable {
+        format!(
+            "; it can be resumed where it stopped with `{}`",
+            client.hint(&format!("resume {id}"))
+        )
+    } else {
+        String::new()
+    };
+    Err(CliError::new(format!(
+        "run {id} ended {}{}; `{}` has the details{resume}",
+        run.summary.state,
+        run.summary
+            .cause
+            .as_ref()
+            .map(|c| format!(": {c}"))
+            .unwrap_or_default(),
+        client.hint(&format!("show {id}")),
+    )))
 }
 
 /// Pretty JSON of anything serializable.
@@ -158,16 +171,17 @@ pub fn submit(args: SubmitArgs) -> Result<(), CliError> {
         match run {
             None => {
                 if args.client.json {
-                    println!("{}", to_json(&submitted)?);
+                    outln!("{}", to_json(&submitted)?);
                 } else {
-                    println!(
-                        "run {} queued; follow it with `halfwave watch {}`",
-                        submitted.run_id, submitted.run_id
+                    outln!(
+                        "run {} queued; follow it with `{}`",
+                        submitted.run_id,
+                        client.hint(&format!("watch {}", submitted.run_id))
                     );
                 }
                 Ok(())
             }
-            Some(run) => finish(&run, args.client.json),
+            Some(run) => finish(&client, &run, args.client.json),
         }
     })
 }
@@ -177,7 +191,7 @@ pub fn watch(args: WatchArgs) -> Result<(), CliError> {
     let client = args.client.client()?;
     runtime()?.block_on(async {
         let run = follow_run(&client, args.run_id, None).await?;
-        finish(&run, args.client.json)
+        finish(&client, &run, args.client.json)
     })
 }
 
@@ -202,19 +216,26 @@ pub fn list(args: RunsArgs) -> Result<(), CliError> {
     runtime()?.block_on(async {
         let list: RunList = client.get_json(&path).await?;
         if args.client.json {
-            println!("{}", to_json(&list)?);
+            outln!("{}", to_json(&list)?);
             return Ok(());
         }
         if list.runs.is_empty() {
-            println!("no runs match (page {} of {} runs)", list.page, list.total);
+            outln!(
+                "{}",
+                empty_page_text(list.page, list.per_page, list.total.max(0) as u64)
+            );
             return Ok(());
         }
-        println!(
+        outln!(
             "{:>6}  {:<11}  {:<16}  {:<12}  {:<23}  submitted by",
-            "run", "state", "device", "bench", "created"
+            "run",
+            "state",
+            "device",
+            "bench",
+            "created"
         );
         for run in &list.runs {
-            println!(
+            outln!(
                 "{:>6}  {:<11}  {:<16}  {:<12}  {:<23}  {}",
                 run.id,
                 run.state,
@@ -224,12 +245,58 @@ pub fn list(args: RunsArgs) -> Result<(), CliError> {
                 run.submitted_by
             );
         }
-        println!(
-            "page {} ({} per page), {} runs match",
-            list.page, list.per_page, list.total
+        outln!(
+            "{}",
+            page_footer(list.page, list.per_page, list.total.max(0) as u64)
         );
         Ok(())
     })
+}
+
+/// "1 run" or "3 runs".
+pub fn count_of(n: usize, one: &str, many: &str) -> String {
+    if n == 1 {
+        format!("1 {one}")
+    } else {
+        format!("{n} {many}")
+    }
+}
+
+/// The number of pages `total` items fill at `per_page` each.
+fn page_count(total: u64, per_page: u32) -> u64 {
+    total.div_ceil(u64::from(per_page.max(1)))
+}
+
+/// "1 run matches" or "120 runs match".
+fn runs_match(total: u64) -> String {
+    if total == 1 {
+        "1 run matches".to_string()
+    } else {
+        format!("{total} runs match")
+    }
+}
+
+/// The line under a page of runs: "page 1 of 3 (50 per page), 120 runs match".
+fn page_footer(page: u32, per_page: u32, total: u64) -> String {
+    format!(
+        "page {page} of {} ({per_page} per page), {}",
+        page_count(total, per_page),
+        runs_match(total)
+    )
+}
+
+/// What `halfwave runs` says when the page is empty: nothing matches, or the page is past the end.
+fn empty_page_text(page: u32, per_page: u32, total: u64) -> String {
+    if total == 0 {
+        "no runs match".to_string()
+    } else {
+        format!(
+            "page {page} is past the end: {}, {} ({per_page} per page); ask for --page 1 to {}",
+            runs_match(total),
+            count_of(page_count(total, per_page) as usize, "page", "pages"),
+            page_count(total, per_page)
+        )
+    }
 }
 
 /// `halfwave show`.
@@ -240,9 +307,9 @@ pub fn show(args: ShowArgs) -> Result<(), CliError> {
             .get_json(&format!("/api/v1/runs/{}", args.run_id))
             .await?;
         if args.client.json {
-            println!("{}", to_json(&run)?);
+            outln!("{}", to_json(&run)?);
         } else {
-            print!("{}", report::run_text(&run));
+            out!("{}", report::run_text(&run));
         }
         Ok(())
     })
@@ -264,6 +331,24 @@ pub fn encode_query_value(value: &str) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn run_counts_and_pages_read_as_english() {
+        // The cases a user met: "1 runs match" and "page 1 of 0 runs".
+        assert_eq!(
+            page_footer(1, 50, 1),
+            "page 1 of 1 (50 per page), 1 run matches"
+        );
+        assert_eq!(
+            page_footer(2, 50, 120),
+            "page 2 of 3 (50 per page), 120 runs match"
+        );
+        assert_eq!(empty_page_text(1, 50, 0), "no runs match");
+        assert_eq!(
+            empty_page_text(4, 50, 51),
+            "page 4 is past the end: 51 runs match, 2 pages (50 per page); ask for --page 1 to 2"
+        );
+    }
 
     #[test]
     fn query_values_are_percent_encoded() {

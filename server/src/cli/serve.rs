@@ -15,7 +15,7 @@ use crate::data_claim::DataClaim;
 use crate::engine::Engine;
 use crate::store::Store;
 use clap::Args;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 #[derive(Debug, Args)]
 pub struct ServeArgs {
@@ -34,17 +34,36 @@ pub fn run(args: ServeArgs) -> Result<(), CliError> {
         .enable_all()
         .build()
         .map_err(|e| CliError::new(format!("cannot start the async runtime: {e}")))?;
-    runtime.block_on(serve(config))
+    runtime.block_on(serve(config, Some(path)))
 }
 
-/// Opens the store, starts the engine and serves the API until SIGINT/SIGTERM.
-pub async fn serve(config: Config) -> Result<(), CliError> {
+/// What to do first when the database holds no active token: every API call but the health
+/// check needs one, so the dashboard would stay empty.
+async fn token_hint(store: &Store, config_path: Option<&Path>) -> Option<String> {
+    let tokens = crate::api::tokens::list(store.pool()).await.ok()?;
+    if tokens.iter().any(|t| t.revoked_at_unix_ms.is_none()) {
+        return None;
+    }
+    let config = config_path
+        .map(|p| format!(" --config {}", p.display()))
+        .unwrap_or_default();
+    Some(format!(
+        "no API token exists yet: create one in another terminal with `halfwave token create{config} --role operator --name NAME` and paste it into the dashboard (or set HALFWAVE_TOKEN for the CLI)"
+    ))
+}
+
+/// Opens the store, starts the engine and serves the API until SIGINT/SIGTERM. `config_path`
+/// (the file the configuration came from) is only used in hints.
+pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), CliError> {
     let (engine, listener, _claim) = start(&config).await?;
     let address = listener
         .local_addr()
         .map_err(|e| CliError::new(format!("cannot read the bound address: {e}")))?;
     tracing::info!(%address, "halfwave daemon listening");
-    println!("halfwave listening on http://{address}/");
+    outln!("halfwave listening on http://{address}/ (dashboard: http://{address}/dashboard/)");
+    if let Some(hint) = token_hint(engine.store(), config_path.as_deref()).await {
+        outln!("{hint}");
+    }
     let state =
         crate::api::AppState::with_engine(engine.clone(), crate::api::ApiSettings::from_env());
     let stopped = crate::api::serve_on(listener, state, async {
@@ -57,7 +76,7 @@ pub async fn serve(config: Config) -> Result<(), CliError> {
     .await;
     engine.shutdown().await;
     stopped.map_err(|e| CliError::new(format!("the HTTP server failed: {e}")))?;
-    println!("halfwave stopped: runs interrupted where they were, RF outputs off");
+    outln!("halfwave stopped: runs interrupted where they were, RF outputs off");
     Ok(())
 }
 

@@ -45,6 +45,10 @@ pub enum TokenAction {
         name: String,
         #[command(flatten)]
         database: DatabaseChoice,
+        /// Create the --database file when it does not exist yet (a database named in the
+        /// configuration is created without it: that is the daemon's own, before its first start).
+        #[arg(long)]
+        create: bool,
     },
     /// Revoke the active token of this name.
     Revoke {
@@ -53,10 +57,13 @@ pub enum TokenAction {
         #[command(flatten)]
         database: DatabaseChoice,
     },
-    /// List tokens (never their secrets) as JSON.
+    /// List tokens (never their secrets): a table, or JSON with --json.
     List {
         #[command(flatten)]
         database: DatabaseChoice,
+        /// Print JSON for scripts instead of a table.
+        #[arg(long)]
+        json: bool,
     },
 }
 
@@ -73,7 +80,34 @@ pub fn database_url(choice: &DatabaseChoice) -> Result<String, CliError> {
     Ok(config.database_url())
 }
 
-async fn open(choice: &DatabaseChoice) -> Result<Store, CliError> {
+/// The file a `--database` URL or path names (`None` for an in-memory database).
+fn database_file(url: &str) -> Option<PathBuf> {
+    if url.contains(":memory:") || url.contains("mode=memory") {
+        return None;
+    }
+    let path = match url.strip_prefix("sqlite:") {
+        Some(rest) => rest
+            .trim_start_matches("//")
+            .split('?')
+            .next()
+            .unwrap_or(rest),
+        None => url,
+    };
+    Some(PathBuf::from(path))
+}
+
+/// Opens the chosen database. A `--database` file that does not exist is refused unless `create`
+/// (a typo must not make a new empty database and a token the daemon will refuse); the database
+/// of a configuration file is created, as the daemon itself would at its first start.
+async fn open(choice: &DatabaseChoice, create: bool) -> Result<Store, CliError> {
+    if let (Some(url), false) = (&choice.database, create) {
+        if let Some(file) = database_file(url).filter(|f| !f.exists()) {
+            return Err(CliError::new(format!(
+                "there is no database at {}; check --database (the daemon's is `data_dir`/halfwave.db of its configuration, or pass --config FILE), or add --create to make a new one",
+                file.display()
+            )));
+        }
+    }
     let url = database_url(choice)?;
     Store::open(&url)
         .await
@@ -92,9 +126,10 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                 role,
                 name,
                 database,
+                create,
             } => {
                 let role: Role = role.parse().map_err(CliError::new)?;
-                let store = open(&database).await?;
+                let store = open(&database, create).await?;
                 let created = tokens::create(store.pool(), &name, role, "cli")
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;
@@ -105,11 +140,11 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                     "token {:?} ({}) created; it is shown once, store it now:",
                     created.name, created.role
                 );
-                println!("{}", created.token);
+                outln!("{}", created.token);
                 Ok(())
             }
             TokenAction::Revoke { name, database } => {
-                let store = open(&database).await?;
+                let store = open(&database, false).await?;
                 tokens::revoke(store.pool(), &name)
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;
@@ -117,16 +152,41 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                 eprintln!("token {name:?} revoked");
                 Ok(())
             }
-            TokenAction::List { database } => {
-                let store = open(&database).await?;
+            TokenAction::List { database, json } => {
+                let store = open(&database, false).await?;
                 let list = tokens::list(store.pool())
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;
-                let json = serde_json::to_string_pretty(&list)
-                    .map_err(|e| CliError::new(format!("could not encode the list: {e}")))?;
-                println!("{json}");
+                if json {
+                    let json = serde_json::to_string_pretty(&list)
+                        .map_err(|e| CliError::new(format!("could not encode the list: {e}")))?;
+                    outln!("{json}");
+                    return Ok(());
+                }
+                if list.is_empty() {
+                    outln!("no tokens yet; create one with `halfwave token create --role operator --name NAME`");
+                    return Ok(());
+                }
+                outln!("{:<24}  {:<8}  {:<23}  state", "name", "role", "created");
+                for token in &list {
+                    outln!("{}", token_row(token));
+                }
                 Ok(())
             }
         }
     })
+}
+
+/// One token as a table row: name, role, creation date, and whether it is active.
+fn token_row(token: &tokens::TokenInfo) -> String {
+    let state = match token.revoked_at_unix_ms {
+        Some(at) => format!("revoked {}", super::report::utc_time(at)),
+        None => "active".to_string(),
+    };
+    format!(
+        "{:<24}  {:<8}  {:<23}  {state}",
+        token.name,
+        token.role.to_string(),
+        super::report::utc_time(token.created_at_unix_ms)
+    )
 }

@@ -27,7 +27,7 @@ use crate::store::{
 };
 use bench::BenchInstruments;
 use events::ProgressEvent;
-use halfwave_drivers::{Identity, InstrumentError};
+use halfwave_drivers::{AnalyzerCapabilities, Identity, InstrumentError, SourceLimits};
 use halfwave_units::{Db, Dbm, Hz, Nanometers};
 use plan::{ChainSpec, FieldError, Plan, PlanContext, PlanErrors, PlanRequest};
 use rf_safety::{AcknowledgeError, BenchSafety};
@@ -333,32 +333,77 @@ impl Engine {
     pub async fn check_plan(
         &self,
         request: &PlanRequest,
-    ) -> Result<(Plan, DriveChain, i64), SubmitError> {
-        let Some(slot) = self.inner.benches.get(&request.bench) else {
+    ) -> Result<(Plan, DriveChain, ChainChoice), SubmitError> {
+        // Every mistake is named in one answer: an unknown bench or an unusable chain does not
+        // stop the other fields from being checked (against stand-ins that refuse nothing).
+        let mut errors = Vec::new();
+        let slot = self.inner.benches.get(&request.bench);
+        if slot.is_none() && !request.bench.trim().is_empty() {
             let mut known: Vec<&str> = self.inner.benches.keys().map(String::as_str).collect();
             known.sort();
-            return Err(SubmitError::Invalid(PlanErrors {
-                errors: vec![FieldError {
-                    field: "bench".into(),
-                    message: format!(
-                        "no bench named {:?}; configured benches: {}",
-                        request.bench,
-                        known.join(", ")
-                    ),
-                }],
-            }));
+            errors.push(FieldError {
+                field: "bench".into(),
+                message: format!(
+                    "no bench named {:?}; configured benches: {}",
+                    request.bench,
+                    known.join(", ")
+                ),
+            });
+        }
+        let chain = match self.resolve_chain(&request.chain).await {
+            Ok(chain) => Some(chain),
+            Err(SubmitError::Invalid(invalid)) => {
+                errors.extend(invalid.errors);
+                None
+            }
+            Err(other) => return Err(other),
         };
-        let (chain, chain_id) = self.resolve_chain(&request.chain).await?;
-        let source_limits = slot.source.lock().await.limits();
-        let caps = slot.analyzer.lock().await.capabilities();
+        let (source_limits, caps) = match slot {
+            Some(slot) => (
+                slot.source.lock().await.limits(),
+                slot.analyzer.lock().await.capabilities(),
+            ),
+            None => (
+                SourceLimits {
+                    min_frequency: Hz(0.0),
+                    max_frequency: Hz(f64::INFINITY),
+                    min_level: Dbm(f64::NEG_INFINITY),
+                    max_level: Dbm(f64::INFINITY),
+                },
+                AnalyzerCapabilities {
+                    min_frequency: Hz(0.0),
+                    max_frequency: Hz(f64::INFINITY),
+                    min_span: Hz(0.0),
+                    max_span: Hz(f64::INFINITY),
+                    resolution_bandwidths: Vec::new(),
+                    max_points: usize::MAX,
+                    typical_sweep_time: halfwave_units::Seconds(0.0),
+                },
+            ),
+        };
         let ctx = PlanContext {
             hard_limit_at_modulator: Dbm(self.inner.limits.max_level_at_modulator_dbm),
             source: source_limits,
             analyzer: &caps,
-            chain: &chain,
+            chain: chain.as_ref().map(|(c, _)| c),
         };
-        let plan = request.validate(&ctx)?;
-        Ok((plan, chain, chain_id))
+        let validated = request.validate(&ctx);
+        let chain_named = errors.iter().any(|e| e.field == "chain");
+        match (validated, chain) {
+            (Ok(plan), Some((chain, choice))) if errors.is_empty() => Ok((plan, chain, choice)),
+            (Ok(_), _) => Err(SubmitError::Invalid(PlanErrors { errors })),
+            (Err(invalid), _) => {
+                // The chain's own error says more than the plan's "no usable drive chain".
+                // Without a bench the analyzer's checks ran against a stand-in: not reported.
+                let bench_missing = slot.is_none();
+                let said_better = |e: &FieldError| {
+                    (chain_named && e.field == "chain")
+                        || (bench_missing && e.field.starts_with("analyzer."))
+                };
+                errors.extend(invalid.errors.into_iter().filter(|e| !said_better(e)));
+                Err(SubmitError::Invalid(PlanErrors { errors }))
+            }
+        }
     }
 
     /// Validates and queues a plan; returns the new run's id. Nothing is sent to an instrument
@@ -368,8 +413,13 @@ impl Engine {
         request: PlanRequest,
         submitted_by: &str,
     ) -> Result<i64, SubmitError> {
-        let (plan, chain, chain_id) = self.check_plan(&request).await?;
+        let (plan, chain, choice) = self.check_plan(&request).await?;
         let store = &self.inner.store;
+        // Only a valid plan stores anything: the flat loss's calibration row is made now.
+        let chain_id = match choice {
+            ChainChoice::Stored(id) => id,
+            ChainChoice::FlatLoss(loss_db) => self.flat_loss_calibration(loss_db).await?.id,
+        };
         let device_id = store
             .upsert_device(&NewDevice {
                 serial: request.device.serial.trim().to_string(),
@@ -511,7 +561,10 @@ impl Engine {
         }
     }
 
-    async fn resolve_chain(&self, spec: &ChainSpec) -> Result<(DriveChain, i64), SubmitError> {
+    async fn resolve_chain(
+        &self,
+        spec: &ChainSpec,
+    ) -> Result<(DriveChain, ChainChoice), SubmitError> {
         let invalid = |message: String| {
             SubmitError::Invalid(PlanErrors {
                 errors: vec![FieldError {
@@ -527,7 +580,11 @@ impl Engine {
                         "loss_db must be a loss in dB from -60 to 100, got {loss_db}"
                     )));
                 }
-                self.flat_loss_calibration(*loss_db).await?
+                // Nothing is stored before the whole plan is valid (see `submit`).
+                return Ok((
+                    DriveChain::flat_loss(Db(*loss_db)),
+                    ChainChoice::FlatLoss(*loss_db),
+                ));
             }
             ChainSpec::Stored { name, version } => {
                 let headers = self.inner.store.chain_calibrations().await?;
@@ -547,7 +604,7 @@ impl Engine {
             }
         };
         let chain = drive_chain(&calibration).map_err(|e| invalid(e.to_string()))?;
-        Ok((chain, calibration.id))
+        Ok((chain, ChainChoice::Stored(calibration.id)))
     }
 
     fn is_queued_or_active(&self, run_id: i64) -> bool {
@@ -604,7 +661,7 @@ impl Engine {
                 hard_limit_at_modulator: Dbm(self.inner.limits.max_level_at_modulator_dbm),
                 source: source_limits,
                 analyzer: &caps,
-                chain: &chain,
+                chain: Some(&chain),
             })
             .map_err(|e| refuse(format!("its plan is no longer within limits: {e}")))?;
         let done: HashSet<(usize, usize)> = store
@@ -708,6 +765,7 @@ impl Engine {
             .await;
             return;
         }
+        slot.record_run_instruments(store, run_id).await;
         let _ = self.inner.events.send(ProgressEvent::Started {
             run_id,
             bench: slot.name.clone(),
@@ -799,6 +857,14 @@ impl Engine {
 }
 
 /// The drive chain a stored calibration stands for.
+/// Which chain calibration a valid plan's run records: a stored one, or the flat loss whose
+/// calibration row is made (or reused) only once the plan is valid.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum ChainChoice {
+    Stored(i64),
+    FlatLoss(f64),
+}
+
 fn drive_chain(
     calibration: &ChainCalibration,
 ) -> Result<DriveChain, crate::analysis::AnalysisError> {
@@ -859,6 +925,27 @@ impl BenchSlot {
             }
         }
         *lock(&self.identities) = (source.ok(), analyzer.ok());
+    }
+
+    /// Asks both instruments who they are as a run starts (or resumes) and records them as the
+    /// run's instruments, so the record says what measured it. Failures are logged: a missing
+    /// identity must not stop a run whose instruments answer their commands.
+    async fn record_run_instruments(&self, store: &Store, run_id: i64) {
+        self.refresh_identities(store).await;
+        let (source, analyzer) = lock(&self.identities).clone();
+        for (role, identity, resource) in [
+            ("source", source, &self.source_resource),
+            ("analyzer", analyzer, &self.analyzer_resource),
+        ] {
+            let Some(identity) = identity else { continue };
+            let linked = match store.record_instrument_seen(&identity, resource).await {
+                Ok(instrument) => store.link_run_instrument(run_id, role, instrument.id).await,
+                Err(e) => Err(e),
+            };
+            if let Err(e) = linked {
+                tracing::warn!(run_id, role, error = %e, "could not record the run's instrument");
+            }
+        }
     }
 
     /// After the start-up switch-off (`off`: its result, `None` when it was not tried): a bench

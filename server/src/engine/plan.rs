@@ -185,8 +185,10 @@ pub struct PlanContext<'a> {
     pub hard_limit_at_modulator: Dbm,
     pub source: SourceLimits,
     pub analyzer: &'a AnalyzerCapabilities,
-    /// The drive chain resolved from the plan's [`ChainSpec`].
-    pub chain: &'a DriveChain,
+    /// The drive chain resolved from the plan's [`ChainSpec`]; `None` when it could not be (the
+    /// other fields are still checked, so that one answer names every mistake, but such a plan
+    /// never validates).
+    pub chain: Option<&'a DriveChain>,
 }
 
 /// Analyzer settings for one frequency, chosen or given.
@@ -304,11 +306,17 @@ impl PlanRequest {
             ctx.hard_limit_at_modulator
         };
         let mut max_at_modulator = Dbm(f64::NEG_INFINITY);
-        if let (Some(freqs), Some(levels)) = (&frequencies, &levels) {
+        if ctx.chain.is_none() {
+            errs.push(
+                "chain",
+                "no usable drive chain, so the levels at the modulator cannot be proven safe",
+            );
+        }
+        if let (Some(freqs), Some(levels), Some(chain)) = (&frequencies, &levels, ctx.chain) {
             let mut worst: Option<(Hz, Dbm, Dbm)> = None;
             for &f in freqs {
                 for &l in levels {
-                    let at_mod = ctx.chain.level_at_modulator(f, l);
+                    let at_mod = chain.level_at_modulator(f, l);
                     if at_mod.0 > max_at_modulator.0 {
                         max_at_modulator = at_mod;
                     }
@@ -873,7 +881,7 @@ mod tests {
             hard_limit_at_modulator: Dbm(hard),
             source: source(),
             analyzer: &caps,
-            chain: &chain,
+            chain: Some(&chain),
         })
     }
 

@@ -4,7 +4,9 @@
 //! measurements); instruments are recorded per identity and resource with first and last sighting,
 //! so a firmware change shows up as a new row and old runs stay traceable.
 
-use super::{now_unix_ms, DeviceRecord, InstrumentRecord, NewDevice, Store, StoreError};
+use super::{
+    now_unix_ms, DeviceRecord, InstrumentRecord, NewDevice, RunInstrument, Store, StoreError,
+};
 use halfwave_drivers::instrument::Identity;
 
 impl Store {
@@ -103,6 +105,40 @@ impl Store {
         .fetch_one(&self.pool)
         .await
         .map_err(StoreError::database("recording an instrument"))
+    }
+
+    /// Records that the instrument `instrument_id` measured run `run_id` in `role` (`source` or
+    /// `analyzer`); recording it again changes nothing.
+    pub async fn link_run_instrument(
+        &self,
+        run_id: i64,
+        role: &str,
+        instrument_id: i64,
+    ) -> Result<(), StoreError> {
+        sqlx::query(
+            "INSERT INTO run_instruments (run_id, role, instrument_id) VALUES ($1, $2, $3) \
+             ON CONFLICT DO NOTHING",
+        )
+        .bind(run_id)
+        .bind(role)
+        .bind(instrument_id)
+        .execute(&self.pool)
+        .await
+        .map_err(StoreError::database("recording a run's instrument"))?;
+        Ok(())
+    }
+
+    /// The instruments that measured a run, source first, each role in the order first seen.
+    pub async fn run_instruments(&self, run_id: i64) -> Result<Vec<RunInstrument>, StoreError> {
+        sqlx::query_as::<_, RunInstrument>(
+            "SELECT ri.role, i.manufacturer, i.model, i.serial, i.firmware, i.resource \
+             FROM run_instruments ri JOIN instruments i ON i.id = ri.instrument_id \
+             WHERE ri.run_id = $1 ORDER BY ri.role DESC, i.first_seen_unix_ms, i.id",
+        )
+        .bind(run_id)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(StoreError::database("reading a run's instruments"))
     }
 
     /// Every instrument identity seen, most recently seen first.

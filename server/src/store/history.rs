@@ -9,6 +9,7 @@ use super::{
     ComparisonRow, FrequencyResultRecord, InterpolatedVpi, RunComparison, RunState, Store,
     StoreError, VpiHistoryEntry,
 };
+use crate::analysis::agreement::agreement;
 use halfwave_units::{Hz, Volts};
 
 /// Frequencies of two runs closer than this count as the same in a comparison. Plans set
@@ -60,6 +61,22 @@ pub fn interpolate_vpi(
     ))
 }
 
+/// A comparison row with only the frequency filled in.
+fn one_side(frequency_hz: f64) -> ComparisonRow {
+    ComparisonRow {
+        frequency_hz,
+        v_pi_a_volts: None,
+        v_pi_b_volts: None,
+        v_pi_a_uncertainty_volts: None,
+        v_pi_b_uncertainty_volts: None,
+        difference_percent: None,
+        difference_volts: None,
+        difference_uncertainty_volts: None,
+        normalized_error: None,
+        significant: None,
+    }
+}
+
 /// Pairs two runs' results by frequency (ascending), matching within
 /// [`COMPARE_MATCH_TOLERANCE_HZ`]; the difference is 100 * (b - a) / a.
 pub fn compare_results(
@@ -71,16 +88,14 @@ pub fn compare_results(
     a.sort_by(|x, y| x.frequency_hz.total_cmp(&y.frequency_hz));
     b.sort_by(|x, y| x.frequency_hz.total_cmp(&y.frequency_hz));
     let only_a = |r: &FrequencyResultRecord| ComparisonRow {
-        frequency_hz: r.frequency_hz,
         v_pi_a_volts: Some(r.v_pi_volts),
-        v_pi_b_volts: None,
-        difference_percent: None,
+        v_pi_a_uncertainty_volts: Some(r.v_pi_uncertainty_volts),
+        ..one_side(r.frequency_hz)
     };
     let only_b = |r: &FrequencyResultRecord| ComparisonRow {
-        frequency_hz: r.frequency_hz,
-        v_pi_a_volts: None,
         v_pi_b_volts: Some(r.v_pi_volts),
-        difference_percent: None,
+        v_pi_b_uncertainty_volts: Some(r.v_pi_uncertainty_volts),
+        ..one_side(r.frequency_hz)
     };
     let (mut i, mut j) = (0, 0);
     let mut rows = Vec::with_capacity(a.len().max(b.len()));
@@ -90,13 +105,26 @@ pub fn compare_results(
             (Some(ra), Some(rb))
                 if (ra.frequency_hz - rb.frequency_hz).abs() <= COMPARE_MATCH_TOLERANCE_HZ =>
             {
+                let agreement = agreement(
+                    ra.v_pi_volts,
+                    ra.v_pi_uncertainty_volts,
+                    rb.v_pi_volts,
+                    rb.v_pi_uncertainty_volts,
+                );
                 rows.push(ComparisonRow {
                     frequency_hz: ra.frequency_hz,
                     v_pi_a_volts: Some(ra.v_pi_volts),
                     v_pi_b_volts: Some(rb.v_pi_volts),
+                    v_pi_a_uncertainty_volts: Some(ra.v_pi_uncertainty_volts),
+                    v_pi_b_uncertainty_volts: Some(rb.v_pi_uncertainty_volts),
                     difference_percent: Some(
                         100.0 * (rb.v_pi_volts - ra.v_pi_volts) / ra.v_pi_volts,
                     ),
+                    difference_volts: Some(rb.v_pi_volts - ra.v_pi_volts),
+                    difference_uncertainty_volts: agreement
+                        .map(|a| a.combined_standard_uncertainty),
+                    normalized_error: agreement.map(|a| a.normalized_error),
+                    significant: agreement.map(|a| a.significant),
                 });
                 i += 1;
                 j += 1;

@@ -8,7 +8,7 @@
 //! so the store does not depend on the engine's or the analysis's types.
 
 use halfwave_units::{Db, Dbm, Hz, Nanometers, Trace, Volts};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use std::fmt;
 
 /// Where a run is in its life. Stored as the lowercase word.
@@ -126,6 +126,30 @@ pub struct InstrumentRecord {
     pub last_seen_unix_ms: i64,
 }
 
+/// An instrument that measured a run, in its role.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, sqlx::FromRow, utoipa::ToSchema)]
+pub struct RunInstrument {
+    /// `source` or `analyzer`.
+    pub role: String,
+    pub manufacturer: String,
+    pub model: String,
+    pub serial: String,
+    pub firmware: String,
+    /// The VISA-style resource string it answered at.
+    pub resource: String,
+}
+
+impl RunInstrument {
+    /// The identity as one line: the four *IDN? fields joined by " / ", then the resource (no
+    /// commas of its own, so a CSV cell holding it needs no quoting unless a field has one).
+    pub fn identity_line(&self) -> String {
+        format!(
+            "{} / {} / {} / {} @ {}",
+            self.manufacturer, self.model, self.serial, self.firmware, self.resource
+        )
+    }
+}
+
 /// One row of a drive-chain calibration: the net gain from generator to modulator at a frequency
 /// (level at modulator = generator level + gain; a loss is a negative gain).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, sqlx::FromRow)]
@@ -192,6 +216,9 @@ pub struct RunRecord {
     pub device_serial: String,
     pub bench_name: String,
     pub chain_calibration_id: i64,
+    /// The drive-chain calibration the run used: its name and version.
+    pub chain_name: String,
+    pub chain_version: i64,
     #[sqlx(try_from = "String")]
     pub state: RunState,
     pub submitted_by: String,
@@ -407,19 +434,32 @@ pub struct InterpolatedVpi {
     pub upper_frequency_hz: Hz,
 }
 
-/// One frequency of a comparison of two runs.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
+/// One frequency of a comparison of two runs. The difference fields are present when both runs
+/// measured the frequency.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct ComparisonRow {
     pub frequency_hz: f64,
     pub v_pi_a_volts: Option<f64>,
     pub v_pi_b_volts: Option<f64>,
-    /// 100 * (b - a) / a, when both runs measured this frequency.
+    /// Standard uncertainty (k = 1) of run A's V_pi.
+    pub v_pi_a_uncertainty_volts: Option<f64>,
+    /// Standard uncertainty (k = 1) of run B's V_pi.
+    pub v_pi_b_uncertainty_volts: Option<f64>,
+    /// 100 * (b - a) / a.
     pub difference_percent: Option<f64>,
+    /// b - a.
+    pub difference_volts: Option<f64>,
+    /// sqrt(u_a² + u_b²), the two runs taken as independent (cautious when they share a chain).
+    pub difference_uncertainty_volts: Option<f64>,
+    /// E_n = (b - a) / (2 sqrt(u_a² + u_b²)) (ISO 13528's normalised error at k = 2).
+    pub normalized_error: Option<f64>,
+    /// |E_n| > 1: the runs disagree by more than their uncertainties allow.
+    pub significant: Option<bool>,
 }
 
 /// Two runs side by side, per frequency (ascending; frequencies only one run has appear with the
 /// other side empty).
-#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct RunComparison {
     pub run_a: i64,
     pub run_b: i64,

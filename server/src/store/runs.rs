@@ -23,9 +23,11 @@ pub const INTERRUPTED_CAUSE: &str =
 
 /// Columns of a [`RunRecord`], from `runs r JOIN devices d`.
 const RUN_SELECT: &str = "SELECT r.id, r.plan_json, r.device_id, d.serial AS device_serial, \
-     r.bench_name, r.chain_calibration_id, r.state, r.submitted_by, r.created_at_unix_ms, \
+     r.bench_name, r.chain_calibration_id, c.name AS chain_name, c.version AS chain_version, \
+     r.state, r.submitted_by, r.created_at_unix_ms, \
      r.started_at_unix_ms, r.finished_at_unix_ms, r.cause, r.resumable \
-     FROM runs r JOIN devices d ON d.id = r.device_id";
+     FROM runs r JOIN devices d ON d.id = r.device_id \
+     JOIN chain_calibrations c ON c.id = r.chain_calibration_id";
 
 /// The states a run may be in to move to `to`.
 fn allowed_sources(to: RunState) -> &'static [RunState] {

@@ -7,7 +7,7 @@ use crate::api::params::{ApiPath, ApiQuery};
 use crate::api::plots::{self, MarkedLine, ModulationPlot, ModulationPoint, SpectrumPlot};
 use crate::api::problem::{FieldProblem, Problem};
 use crate::api::AppState;
-use crate::store::{PointRecord, RunComparison, RunFilter, RunRecord, RunState};
+use crate::store::{PointRecord, RunComparison, RunFilter, RunInstrument, RunRecord, RunState};
 use axum::body::Bytes;
 use axum::extract::State;
 use axum::http::header::CONTENT_TYPE;
@@ -26,6 +26,11 @@ pub struct RunSummary {
     pub id: i64,
     pub device_serial: String,
     pub bench: String,
+    /// The drive-chain calibration the run converts levels with (name and version).
+    #[serde(default)]
+    pub chain_name: String,
+    #[serde(default)]
+    pub chain_version: i64,
     /// queued, running, completed, failed, cancelled or interrupted.
     pub state: String,
     pub submitted_by: String,
@@ -46,6 +51,8 @@ impl From<&RunRecord> for RunSummary {
             id: run.id,
             device_serial: run.device_serial.clone(),
             bench: run.bench_name.clone(),
+            chain_name: run.chain_name.clone(),
+            chain_version: run.chain_version,
             state: run.state.as_str().to_string(),
             submitted_by: run.submitted_by.clone(),
             created_at_unix_ms: run.created_at_unix_ms,
@@ -89,6 +96,10 @@ pub struct RunView {
     pub plan: serde_json::Value,
     pub measured_points: usize,
     pub results: Vec<FrequencyResultView>,
+    /// The source and analyzer that measured the run (their *IDN? identities at its start and
+    /// at every resumption).
+    #[serde(default)]
+    pub instruments: Vec<RunInstrument>,
 }
 
 /// One measured point.
@@ -362,10 +373,12 @@ pub async fn get_run(
     let run = store.run(run_id).await?;
     let measured_points = usize::try_from(store.point_count(run_id).await?).unwrap_or(0);
     let results = store.frequency_results(run_id).await?;
+    let instruments = store.run_instruments(run_id).await?;
     let view = RunView {
         summary: RunSummary::from(&run),
         plan: run.plan().unwrap_or(serde_json::Value::Null),
         measured_points,
+        instruments,
         results: results
             .iter()
             .map(|r| FrequencyResultView {
