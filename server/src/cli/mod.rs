@@ -19,6 +19,7 @@ pub mod demo;
 pub mod drill;
 pub mod export;
 pub mod follow;
+pub mod pin;
 pub mod report;
 pub mod runs;
 pub mod serve;
@@ -80,6 +81,8 @@ pub enum Command {
     /// Acknowledge a bench's safety fault once its RF output reads back off (operator token);
     /// the bench then takes runs again.
     Acknowledge(benches::AcknowledgeArgs),
+    #[command(flatten)]
+    Pins(pin::PinCommand),
 }
 
 /// Runs the parsed command.
@@ -99,5 +102,6 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Db(command) => db::run(command),
         Command::Benches(args) => benches::list(args),
         Command::Acknowledge(args) => benches::acknowledge(args),
+        Command::Pins(command) => pin::run(command),
     }
 }
