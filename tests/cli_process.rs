@@ -656,6 +656,25 @@ async fn the_record_verbs(
         "{}",
         stderr(&compared)
     );
+    // Two completed runs now: the newest covering answers unless a run is asked for.
+    let newest = run(&["v-pi", "EG-PM-0042", "--frequency", "5e9", "--json"]).await;
+    let newest: serde_json::Value = serde_json::from_slice(&newest.stdout).unwrap();
+    assert_eq!(newest["run_id"].as_i64().unwrap().to_string(), second);
+    assert_eq!(newest["selection"], "newest_covering");
+    let asked = run(&[
+        "v-pi",
+        "EG-PM-0042",
+        "--frequency",
+        "5e9",
+        "--run",
+        &id,
+        "--json",
+    ])
+    .await;
+    assert!(asked.status.success(), "{}", stderr(&asked));
+    let asked: serde_json::Value = serde_json::from_slice(&asked.stdout).unwrap();
+    assert_eq!(asked["run_id"], run_id);
+    assert_eq!(asked["selection"], "requested");
     let table = run(&["compare", &id, second]).await;
     assert!(
         stdout(&table).contains("2 common frequencies"),

@@ -13,7 +13,7 @@ mod daemon_support;
 use daemon_support::{stored_points, submit, Bench};
 use engine_support::{FREQUENCIES_HZ, LEVELS, POINTS};
 use halfwave::store::{RunState, Store};
-use serde_json::json;
+use serde_json::{json, Value};
 use std::collections::HashSet;
 use std::time::Duration;
 
@@ -59,24 +59,28 @@ async fn sigkill_mid_run_then_restart_and_resume_completes_every_point_once() {
     let after_restart = stored_points(&bench.database(), run_id).await;
     assert_eq!(after_restart, committed, "committed points changed");
 
-    let resumed = bench
-        .post(&format!("/api/v1/runs/{run_id}/resume"), &token, &json!({}))
-        .await;
-    assert!(resumed.status().is_success(), "{}", resumed.status());
-    let run = bench
-        .wait_for(run_id, &token, Duration::from_secs(180), |r| {
-            !matches!(
-                r["state"].as_str(),
-                Some("interrupted" | "running" | "queued")
-            )
-        })
-        .await;
+    // Resumed with the CLI, which follows the run to its end (it reads "interrupted" until the
+    // bench's worker takes it up, and must not take that for the end).
+    let url = bench.url("");
+    let followed = daemon_support::cli_succeeds(&[
+        "resume",
+        &run_id.to_string(),
+        "--url",
+        &url,
+        "--token",
+        &token,
+        "--json",
+    ])
+    .await;
+    let followed: Value = serde_json::from_str(&followed).expect("the run as JSON");
     assert_eq!(
-        run["state"],
+        followed["state"],
         "completed",
-        "{run}: {}",
+        "{followed}: {}",
         bench.log("second.log")
     );
+    let run = bench.run(run_id, &token).await;
+    assert_eq!(run["state"], "completed", "{run}");
     assert_eq!(run["measured_points"].as_u64(), Some(POINTS as u64));
     assert_eq!(
         run["results"].as_array().map(Vec::len),

@@ -1,5 +1,9 @@
 //! The dashboard in headless Chromium against the simulated bench: paste a token, submit a sweep
-//! through the form, watch the progress bar move and the live spectrum appear, save a screenshot.
+//! through the form, watch the progress bar move (from 0 % when idle) and the live spectrum
+//! appear, save a screenshot; then, on stored runs in every state: resume offered only where the
+//! engine would resume, cancel only after a confirmation, the form's number checks in the unit
+//! typed, pinning from the device history and from a run's own view (V_pi table, plots, export,
+//! compare).
 //!
 //! Skips (loudly) only when `chromium` is not installed and CI is not set; under CI=true a
 //! missing browser fails the test.
@@ -7,6 +11,7 @@
 mod api_support;
 
 use api_support::cdp::Browser;
+use api_support::seed::{seed_completed_run, seed_device};
 use api_support::spawn_app_with_engine;
 use base64::Engine as _;
 use halfwave::api::tokens::Role;
@@ -44,6 +49,15 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
         30,
     )
     .await;
+    // Before a token: the page says why it is empty, and the idle bar shows nothing done.
+    assert_eq!(
+        browser
+            .eval("!document.getElementById('token-notice').hidden && document.getElementById('token-notice').textContent.includes('token create')")
+            .await,
+        serde_json::Value::Bool(true),
+        "the page says that a token is needed and how to get one"
+    );
+    assert_eq!(bar_fraction(&mut browser).await, 0.0, "idle bar at 0 %");
     browser
         .eval(&format!(
             "document.getElementById('token-input').value = '{operator}'; \
@@ -56,6 +70,17 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
         30,
     )
     .await;
+    assert_eq!(
+        browser
+            .eval("document.getElementById('token-notice').hidden")
+            .await,
+        serde_json::Value::Bool(true)
+    );
+    assert_eq!(
+        bar_fraction(&mut browser).await,
+        0.0,
+        "idle bar at 0 % with a token"
+    );
     browser
         .eval(
             "const f = document.getElementById('run-form'); \
@@ -123,6 +148,365 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
         )
         .expect("docs screenshot written");
     }
+    browser.close().await;
+}
+
+/// The fraction of the progress bar drawn as done, as the page renders it: a `<progress>`'s
+/// position, or for any other element its rendered width against its container's.
+async fn bar_fraction(browser: &mut Browser) -> f64 {
+    browser
+        .eval(
+            "(() => { const b = document.getElementById('progress-bar'); \
+               if (b.tagName === 'PROGRESS') return Math.max(0, b.position); \
+               return b.getBoundingClientRect().width / b.parentElement.getBoundingClientRect().width; })()",
+        )
+        .await
+        .as_f64()
+        .expect("a number")
+}
+
+async fn click(browser: &mut Browser, selector: &str) {
+    let clicked = browser
+        .eval(&format!(
+            "(() => {{ const e = document.querySelector({selector:?}); if (!e) return false; e.click(); return true; }})()"
+        ))
+        .await;
+    assert_eq!(
+        clicked,
+        serde_json::Value::Bool(true),
+        "nothing to click at {selector}"
+    );
+}
+
+async fn text_of(browser: &mut Browser, selector: &str) -> String {
+    browser
+        .eval(&format!(
+            "(() => {{ const e = document.querySelector({selector:?}); return e ? e.textContent : ''; }})()"
+        ))
+        .await
+        .as_str()
+        .unwrap_or_default()
+        .to_string()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn dashboard_resumes_only_resumable_runs_confirms_cancel_and_pins_from_a_run_view() {
+    let Some(executable) = chromium() else {
+        if std::env::var("CI").is_ok_and(|v| v == "true" || v == "1") {
+            panic!("chromium is not installed but CI is set: .ci/run installs it (apt-get install chromium)");
+        }
+        eprintln!("\n*** SKIPPED dashboard_browser: `chromium` is not on PATH (apt-get install chromium) ***\n");
+        return;
+    };
+    let bench = spawn_app_with_engine(0.0).await;
+    let app = &bench.app;
+    let operator = app.token("browser", Role::Operator).await;
+    let store = app.store();
+    let (device_id, chain_id) = seed_device(store, "PM-0042").await;
+    // Two calibrations of the device: a wide one, then a quick narrow check.
+    let v_pi = |f: f64| 3.0 + 0.25 * (f / 1e9).sqrt();
+    let wide = seed_completed_run(
+        store,
+        device_id,
+        chain_id,
+        &[0.5e9, 2e9, 8e9, 16e9],
+        &[0.0, 6.0],
+        v_pi,
+        51,
+    )
+    .await;
+    let quick = seed_completed_run(
+        store,
+        device_id,
+        chain_id,
+        &[1e9, 5e9],
+        &[0.0, 6.0],
+        |f| 1.01 * v_pi(f),
+        51,
+    )
+    .await;
+    // Runs in the other states, as the engine leaves them.
+    let new_run = || async {
+        store
+            .create_run(&halfwave::store::NewRun {
+                plan: serde_json::json!({"seeded": true}),
+                device_id,
+                bench_name: "sim-bench".into(),
+                chain_calibration_id: chain_id,
+                submitted_by: "seed".into(),
+            })
+            .await
+            .unwrap()
+            .id
+    };
+    use halfwave::store::RunState::{Cancelled, Failed, Interrupted, Running};
+    let cancelled = new_run().await;
+    store
+        .transition_run(cancelled, Cancelled, Some("cancelled by seed"))
+        .await
+        .unwrap();
+    let failed = new_run().await;
+    store
+        .transition_run(failed, Failed, Some("a limit"))
+        .await
+        .unwrap();
+    let failed_on_link = new_run().await;
+    store
+        .transition_run(failed_on_link, Running, None)
+        .await
+        .unwrap();
+    store
+        .fail_run_resumably(failed_on_link, "the source's link dropped")
+        .await
+        .unwrap();
+    let interrupted = new_run().await;
+    store
+        .transition_run(interrupted, Running, None)
+        .await
+        .unwrap();
+    store
+        .transition_run(interrupted, Interrupted, Some("daemon stopped"))
+        .await
+        .unwrap();
+    // Queued in the store only (the engine's queue does not hold it): cancel works on it.
+    let queued = new_run().await;
+
+    let mut browser = Browser::launch(&executable).await;
+    browser.navigate(&app.url("/dashboard/")).await;
+    wait_for(
+        &mut browser,
+        "document.readyState === 'complete' && !!document.getElementById('token-input')",
+        30,
+    )
+    .await;
+    browser
+        .eval(&format!(
+            "document.getElementById('token-input').value = '{operator}'; \
+             document.getElementById('token-form').requestSubmit(); true"
+        ))
+        .await;
+    wait_for(
+        &mut browser,
+        &format!("!!document.querySelector('#run-table tr[data-run-id=\"{queued}\"]')"),
+        30,
+    )
+    .await;
+
+    // Resume only where the engine resumes: interrupted, and failed on a link fault.
+    for (run, resumable) in [
+        (wide.run_id, false),
+        (cancelled, false),
+        (failed, false),
+        (failed_on_link, true),
+        (interrupted, true),
+        (queued, false),
+    ] {
+        let offered = browser
+            .eval(&format!(
+                "!!document.querySelector('#run-table tr[data-run-id=\"{run}\"] button[data-action=\"resume\"]')"
+            ))
+            .await;
+        assert_eq!(
+            offered,
+            serde_json::Value::Bool(resumable),
+            "resume offered on run {run}?"
+        );
+    }
+
+    // Cancel asks first; "no" keeps the run, "yes" cancels it.
+    let row = format!("#run-table tr[data-run-id=\"{queued}\"]");
+    click(
+        &mut browser,
+        &format!("{row} button[data-action=\"cancel\"]"),
+    )
+    .await;
+    assert!(text_of(&mut browser, &format!("{row} .confirm"))
+        .await
+        .contains(&format!("Cancel run {queued}?")));
+    assert_eq!(
+        store.run(queued).await.unwrap().state,
+        halfwave::store::RunState::Queued
+    );
+    click(&mut browser, &format!("{row} button[data-action=\"keep\"]")).await;
+    assert_eq!(
+        store.run(queued).await.unwrap().state,
+        halfwave::store::RunState::Queued
+    );
+    click(
+        &mut browser,
+        &format!("{row} button[data-action=\"cancel\"]"),
+    )
+    .await;
+    click(
+        &mut browser,
+        &format!("{row} button[data-action=\"confirm-cancel\"]"),
+    )
+    .await;
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(10);
+    while store.run(queued).await.unwrap().state != halfwave::store::RunState::Cancelled {
+        assert!(
+            tokio::time::Instant::now() < deadline,
+            "the confirmed cancel did not arrive"
+        );
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+
+    // The form checks numbers itself, each message in the unit typed; the daemon's hertz come
+    // back in GHz.
+    browser
+        .eval(
+            "(() => { const f = document.getElementById('run-form'); \
+             f.elements['frequencies.count'].value = ''; f.elements['frequencies.start_hz'].value = '-1'; \
+             f.requestSubmit(); return true; })()",
+        )
+        .await;
+    wait_for(
+        &mut browser,
+        "document.getElementById('submit-result').textContent.startsWith('Not sent')",
+        10,
+    )
+    .await;
+    let errors = text_of(&mut browser, "#run-form").await;
+    assert!(errors.contains("Count: enter a value"), "{errors}");
+    assert!(
+        errors.contains("Start must be above 0 GHz (not -1 GHz)"),
+        "{errors}"
+    );
+    browser
+        .eval(
+            "(() => { const f = document.getElementById('run-form'); \
+             f.elements['frequencies.count'].value = '3'; f.elements['frequencies.start_hz'].value = '1'; \
+             f.elements['frequencies.stop_hz'].value = '50'; f.requestSubmit(); return true; })()",
+        )
+        .await;
+    wait_for(&mut browser, "document.getElementById('submit-result').className === 'error' && !document.getElementById('submit-result').textContent.startsWith('Not sent') && !document.getElementById('submit-result').textContent.startsWith('Submitting')", 20).await;
+    // The simulated source stops at 40 GHz; the daemon says "50000000000 Hz is outside ...".
+    let stop_error = text_of(
+        &mut browser,
+        "#run-form input[name=\"frequencies.stop_hz\"] + .field-error",
+    )
+    .await;
+    assert!(stop_error.contains("50 GHz is outside"), "{stop_error}");
+    assert!(!stop_error.contains("50000000000"), "{stop_error}");
+
+    // Device history: pin the wide calibration; the table marks it and the plots say so.
+    wait_for(
+        &mut browser,
+        "!!document.querySelector('#device-select option[value=\"PM-0042\"]')",
+        20,
+    )
+    .await;
+    browser
+        .eval("(() => { const s = document.getElementById('device-select'); s.value = 'PM-0042'; s.dispatchEvent(new Event('change')); return true; })()")
+        .await;
+    let wide_row = format!("#calibration-table tr[data-run-id=\"{}\"]", wide.run_id);
+    wait_for(
+        &mut browser,
+        &format!("!!document.querySelector('{wide_row} button[data-action=\"pin\"]')"),
+        20,
+    )
+    .await;
+    wait_for(
+        &mut browser,
+        &format!(
+            "document.getElementById('device-plot-note').textContent.includes('run {}')",
+            wide.run_id
+        ),
+        20,
+    )
+    .await;
+    click(
+        &mut browser,
+        &format!("{wide_row} button[data-action=\"pin\"]"),
+    )
+    .await;
+    wait_for(
+        &mut browser,
+        &format!("document.querySelector('{wide_row}').classList.contains('pinned')"),
+        20,
+    )
+    .await;
+    wait_for(&mut browser, "document.getElementById('device-plot-note').textContent.includes('pinned reference calibration')", 20).await;
+    assert_eq!(
+        store.device_pin("PM-0042").await.unwrap().unwrap().run_id,
+        wide.run_id
+    );
+
+    // A run's own view: V_pi table, plots, export links, pin state and button, compare.
+    browser
+        .eval(&format!("location.hash = '#run/{}'; true", quick.run_id))
+        .await;
+    wait_for(&mut browser, &format!("!document.getElementById('run-panel').hidden && document.getElementById('run-title').textContent.startsWith('Run {}')", quick.run_id), 20).await;
+    wait_for(
+        &mut browser,
+        "document.querySelectorAll('#run-vpi-table tbody tr').length === 2",
+        20,
+    )
+    .await;
+    wait_for(&mut browser, "(() => { const i = document.getElementById('run-vpi-plot'); return !i.hidden && i.complete && i.naturalWidth > 0; })()", 20).await;
+    wait_for(&mut browser, "(() => { const i = document.getElementById('run-response-plot'); return !i.hidden && i.complete && i.naturalWidth > 0; })()", 20).await;
+    for link in ["export-vpi-csv", "export-run-json", "export-points-json"] {
+        assert_eq!(
+            browser
+                .eval(&format!("!!document.getElementById('{link}')"))
+                .await,
+            serde_json::Value::Bool(true)
+        );
+    }
+    wait_for(&mut browser, &format!("document.getElementById('run-pin-state').textContent.includes('Run {} is the pinned reference calibration')", wide.run_id), 20).await;
+    assert_eq!(
+        browser
+            .eval("document.getElementById('run-pin').hidden")
+            .await,
+        serde_json::Value::Bool(false)
+    );
+    click(&mut browser, "#run-pin").await;
+    wait_for(
+        &mut browser,
+        "document.getElementById('run-pin-state').textContent.startsWith('Pinned')",
+        20,
+    )
+    .await;
+    assert_eq!(
+        store.device_pin("PM-0042").await.unwrap().unwrap().run_id,
+        quick.run_id
+    );
+    wait_for(
+        &mut browser,
+        &format!(
+            "!!document.querySelector('#compare-select option[value=\"{}\"]')",
+            wide.run_id
+        ),
+        20,
+    )
+    .await;
+    browser
+        .eval(&format!(
+            "document.getElementById('compare-select').value = '{}'; document.getElementById('compare-form').requestSubmit(); true",
+            wide.run_id
+        ))
+        .await;
+    // 0.5, 1, 2, 5, 8 and 16 GHz: the union of the two runs' frequencies.
+    wait_for(&mut browser, "!document.getElementById('compare-table').hidden && document.querySelectorAll('#compare-table tbody tr').length === 6", 20).await;
+    let png = base64::engine::general_purpose::STANDARD
+        .decode(browser.screenshot_base64().await)
+        .expect("screenshot is base64");
+    std::fs::write(
+        std::path::Path::new(env!("CARGO_TARGET_TMPDIR")).join("dashboard-run-view.png"),
+        &png,
+    )
+    .expect("screenshot written");
+    // A run that cannot be pinned says so and offers no button.
+    browser
+        .eval(&format!("location.hash = '#run/{failed}'; true"))
+        .await;
+    wait_for(&mut browser, &format!("document.getElementById('run-title').textContent.startsWith('Run {failed}') && document.getElementById('run-pin-state').textContent.includes('Only a completed run')"), 20).await;
+    assert_eq!(
+        browser
+            .eval("document.getElementById('run-pin').hidden")
+            .await,
+        serde_json::Value::Bool(true)
+    );
     browser.close().await;
 }
 

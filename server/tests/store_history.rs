@@ -1,9 +1,11 @@
-//! A device's V_pi record: history, the latest V_pi at a frequency by interpolation, and two runs
-//! compared. Expected values are worked by hand in the comments.
+//! A device's V_pi record: history, V_pi at a frequency by interpolation (the lookup rule: the
+//! pinned reference calibration, else the newest completed run covering the frequency), pinning
+//! and unpinning, the run a device plot shows, and two runs compared. Expected values are worked
+//! by hand in the comments.
 
 mod store_support;
 
-use halfwave::store::{RunState, Store, StoreError};
+use halfwave::store::{RunSelection, RunState, Store, StoreError};
 use halfwave::units::Hz;
 use store_support::{queued_run, result};
 
@@ -34,7 +36,7 @@ fn close(a: f64, b: f64) -> bool {
 }
 
 #[tokio::test]
-async fn latest_vpi_is_interpolated_from_the_newest_completed_run() {
+async fn vpi_is_interpolated_from_the_newest_completed_run_covering_it() {
     let store = Store::open_in_memory().await.unwrap();
     // An older completed run with other values: must not be used.
     finished_run(
@@ -59,7 +61,7 @@ async fn latest_vpi_is_interpolated_from_the_newest_completed_run() {
     // V_pi = 4.00 + 0.25 * (5.00 - 4.00) = 4.25 V
     // u    = 0.04 + 0.25 * (0.10 - 0.04) = 0.04 + 0.015 = 0.055 V
     let at = store
-        .latest_vpi_at("DEMO-0400", Hz::from_ghz(12.5))
+        .vpi_at("DEMO-0400", Hz::from_ghz(12.5), None)
         .await
         .unwrap();
     assert_eq!(at.run_id, newest);
@@ -71,7 +73,7 @@ async fn latest_vpi_is_interpolated_from_the_newest_completed_run() {
     // Hand-worked: 26 GHz between 20 GHz (5.00 V +- 0.10 V) and 30 GHz (7.00 V +- 0.20 V).
     // t = 6 / 10 = 0.6; V_pi = 5.00 + 0.6 * 2.00 = 6.20 V; u = 0.10 + 0.6 * 0.10 = 0.16 V
     let at = store
-        .latest_vpi_at("DEMO-0400", Hz::from_ghz(26.0))
+        .vpi_at("DEMO-0400", Hz::from_ghz(26.0), None)
         .await
         .unwrap();
     assert!(close(at.v_pi_volts.value(), 6.2), "{at:?}");
@@ -79,7 +81,7 @@ async fn latest_vpi_is_interpolated_from_the_newest_completed_run() {
 
     // At a measured frequency the measured value comes back as it is.
     let at = store
-        .latest_vpi_at("DEMO-0400", Hz::from_ghz(20.0))
+        .vpi_at("DEMO-0400", Hz::from_ghz(20.0), None)
         .await
         .unwrap();
     assert_eq!(
@@ -87,25 +89,23 @@ async fn latest_vpi_is_interpolated_from_the_newest_completed_run() {
         (5.0, 0.1)
     );
     let edge = store
-        .latest_vpi_at("DEMO-0400", Hz::from_ghz(30.0))
+        .vpi_at("DEMO-0400", Hz::from_ghz(30.0), None)
         .await
         .unwrap();
     assert_eq!(edge.v_pi_volts.value(), 7.0);
 
+    // Outside every completed run: refused, with each run's measured range named.
     for outside_ghz in [9.999, 30.001] {
         let err = store
-            .latest_vpi_at("DEMO-0400", Hz::from_ghz(outside_ghz))
+            .vpi_at("DEMO-0400", Hz::from_ghz(outside_ghz), None)
             .await
             .unwrap_err();
-        match err {
-            StoreError::OutsideMeasuredRange {
-                run_id,
-                min_hz,
-                max_hz,
-                ..
-            } => {
-                assert_eq!(run_id, newest);
-                assert_eq!((min_hz, max_hz), (10e9, 30e9));
+        match &err {
+            StoreError::NotCovered { ranges, .. } => {
+                assert!(
+                    ranges.contains(&format!("run {newest}: 10000000000 Hz to 30000000000 Hz")),
+                    "{err}"
+                );
             }
             other => panic!("expected an out-of-range error, got {other}"),
         }
@@ -123,13 +123,285 @@ async fn latest_vpi_needs_a_completed_run() {
     )
     .await;
     assert!(matches!(
-        store.latest_vpi_at("DEMO-0401", Hz::from_ghz(10.0)).await,
+        store.vpi_at("DEMO-0401", Hz::from_ghz(10.0), None).await,
         Err(StoreError::NoCompletedRun { .. })
     ));
     assert!(matches!(
-        store.latest_vpi_at("DEMO-0499", Hz::from_ghz(10.0)).await,
+        store.vpi_at("DEMO-0499", Hz::from_ghz(10.0), None).await,
         Err(StoreError::NotFound { .. })
     ));
+}
+
+#[tokio::test]
+async fn a_quick_narrow_run_does_not_hide_an_older_wide_calibration() {
+    let store = Store::open_in_memory().await.unwrap();
+    // The case from the issue: a 0.2-20 GHz calibration, then a quick 1-5 GHz check.
+    let wide = finished_run(
+        &store,
+        "DEMO-0410",
+        RunState::Completed,
+        &[
+            (0.2, 3.0, 0.01),
+            (5.0, 4.0, 0.02),
+            (10.0, 5.0, 0.03),
+            (20.0, 6.0, 0.04),
+        ],
+    )
+    .await;
+    let quick = finished_run(
+        &store,
+        "DEMO-0410",
+        RunState::Completed,
+        &[(1.0, 3.5, 0.01), (5.0, 4.1, 0.02)],
+    )
+    .await;
+    // 7.5 GHz is outside the quick check: the wide run answers, halfway between 5 GHz (4.0 V)
+    // and 10 GHz (5.0 V): 4.5 V (worked by hand).
+    let at = store
+        .vpi_at("DEMO-0410", Hz::from_ghz(7.5), None)
+        .await
+        .unwrap();
+    assert_eq!(at.run_id, wide);
+    assert_eq!(at.selection, RunSelection::NewestCovering);
+    assert!(!at.pinned);
+    assert!(close(at.v_pi_volts.value(), 4.5), "{at:?}");
+    // Inside it, the newest covering run is the quick check.
+    let at = store
+        .vpi_at("DEMO-0410", Hz::from_ghz(3.0), None)
+        .await
+        .unwrap();
+    assert_eq!(at.run_id, quick);
+    // A run named explicitly answers whatever the rule says, and only within its range.
+    let at = store
+        .vpi_at("DEMO-0410", Hz::from_ghz(3.0), Some(wide))
+        .await
+        .unwrap();
+    assert_eq!((at.run_id, at.selection), (wide, RunSelection::Requested));
+    let err = store
+        .vpi_at("DEMO-0410", Hz::from_ghz(7.5), Some(quick))
+        .await
+        .unwrap_err();
+    assert!(
+        matches!(err, StoreError::OutsideMeasuredRange { run_id, .. } if run_id == quick),
+        "{err}"
+    );
+    assert!(
+        err.to_string().contains(&format!("run {wide} covers it")),
+        "{err}"
+    );
+    assert!(matches!(
+        store
+            .vpi_at("DEMO-0410", Hz::from_ghz(3.0), Some(9999))
+            .await,
+        Err(StoreError::NotACalibration { run_id: 9999, .. })
+    ));
+}
+
+#[tokio::test]
+async fn a_pinned_run_answers_until_it_is_unpinned() {
+    let store = Store::open_in_memory().await.unwrap();
+    let reference = finished_run(
+        &store,
+        "DEMO-0411",
+        RunState::Completed,
+        &[(1.0, 3.0, 0.01), (10.0, 5.0, 0.05)],
+    )
+    .await;
+    let newer = finished_run(
+        &store,
+        "DEMO-0411",
+        RunState::Completed,
+        &[(1.0, 3.2, 0.01), (20.0, 6.0, 0.05)],
+    )
+    .await;
+    let failed = finished_run(&store, "DEMO-0411", RunState::Failed, &[(1.0, 3.0, 0.1)]).await;
+    let foreign = finished_run(&store, "DEMO-0412", RunState::Completed, &[(1.0, 3.0, 0.1)]).await;
+    // A completed run without results: nothing to refer to.
+    let empty = finished_run(&store, "DEMO-0411", RunState::Completed, &[]).await;
+    let before = store.completed_runs_fingerprint("DEMO-0411").await.unwrap();
+    assert_eq!(before.pinned_run_id, 0);
+    assert!(store.device_pin("DEMO-0411").await.unwrap().is_none());
+
+    // Without a pin the newer run covers 5.5 GHz.
+    let at = store
+        .vpi_at("DEMO-0411", Hz::from_ghz(5.5), None)
+        .await
+        .unwrap();
+    assert_eq!(at.run_id, newer);
+
+    let change = store
+        .pin_run("DEMO-0411", reference, "lab-b", "accredited calibration")
+        .await
+        .unwrap();
+    assert_eq!(change.previous_run_id, None);
+    assert_eq!(change.pinned.as_ref().unwrap().run_id, reference);
+    assert_eq!(
+        store
+            .completed_runs_fingerprint("DEMO-0411")
+            .await
+            .unwrap()
+            .pinned_run_id,
+        reference
+    );
+    // Pinned: the reference answers although the newer run covers the frequency too.
+    // 5.5 GHz is halfway between 1 GHz (3.0 V) and 10 GHz (5.0 V): 4.0 V (worked by hand).
+    let at = store
+        .vpi_at("DEMO-0411", Hz::from_ghz(5.5), None)
+        .await
+        .unwrap();
+    assert_eq!(
+        (at.run_id, at.selection, at.pinned),
+        (reference, RunSelection::Pinned, true)
+    );
+    assert!(close(at.v_pi_volts.value(), 4.0), "{at:?}");
+    // Outside the pinned run's range: refused, naming the run that would cover it.
+    let err = store
+        .vpi_at("DEMO-0411", Hz::from_ghz(15.0), None)
+        .await
+        .unwrap_err();
+    let text = err.to_string();
+    assert!(
+        matches!(err, StoreError::OutsideMeasuredRange { run_id, .. } if run_id == reference),
+        "{text}"
+    );
+    assert!(text.contains("pinned reference calibration"), "{text}");
+    assert!(text.contains(&format!("run_id={newer}")), "{text}");
+    // Asking for the newer run by id still works, and says it is not the pinned one.
+    let at = store
+        .vpi_at("DEMO-0411", Hz::from_ghz(15.0), Some(newer))
+        .await
+        .unwrap();
+    assert_eq!((at.run_id, at.pinned), (newer, false));
+
+    // Refused pins change nothing.
+    for (run, expected) in [(failed, "failed"), (empty, "no V_pi results")] {
+        let err = store
+            .pin_run("DEMO-0411", run, "lab-b", "")
+            .await
+            .unwrap_err();
+        assert!(matches!(err, StoreError::NotPinnable { .. }), "{err}");
+        assert!(err.to_string().contains(expected), "{err}");
+    }
+    let err = store
+        .pin_run("DEMO-0411", foreign, "lab-b", "")
+        .await
+        .unwrap_err();
+    assert!(
+        matches!(&err, StoreError::RunOfAnotherDevice { run_serial, .. } if run_serial == "DEMO-0412"),
+        "{err}"
+    );
+    assert!(matches!(
+        store.pin_run("DEMO-0411", 9999, "lab-b", "").await,
+        Err(StoreError::NotFound { .. })
+    ));
+    assert!(matches!(
+        store.pin_run("DEMO-0499", reference, "lab-b", "").await,
+        Err(StoreError::NotFound { .. })
+    ));
+    assert_eq!(
+        store.device_pin("DEMO-0411").await.unwrap().unwrap().run_id,
+        reference
+    );
+
+    // Pinning another run replaces the pin; unpinning restores the newest-covering rule.
+    let change = store
+        .pin_run("DEMO-0411", newer, "lab-c", "")
+        .await
+        .unwrap();
+    assert_eq!(change.previous_run_id, Some(reference));
+    let change = store
+        .unpin_device("DEMO-0411", "lab-c", "back to the rule")
+        .await
+        .unwrap();
+    assert_eq!((change.previous_run_id, change.pinned), (Some(newer), None));
+    assert!(matches!(
+        store.unpin_device("DEMO-0411", "lab-c", "").await,
+        Err(StoreError::NothingPinned { .. })
+    ));
+    let at = store
+        .vpi_at("DEMO-0411", Hz::from_ghz(5.5), None)
+        .await
+        .unwrap();
+    assert_eq!(
+        (at.run_id, at.selection),
+        (newer, RunSelection::NewestCovering)
+    );
+
+    // One audit entry per pin and unpin, with the actor, the device and the runs; none for the
+    // refusals.
+    let entries: Vec<_> = store
+        .audit_log(100, None)
+        .await
+        .unwrap()
+        .into_iter()
+        .filter(|e| e.action.starts_with("device."))
+        .collect();
+    let summary: Vec<(&str, &str, &str)> = entries
+        .iter()
+        .rev()
+        .map(|e| (e.action.as_str(), e.actor.as_str(), e.subject.as_str()))
+        .collect();
+    assert_eq!(
+        summary,
+        [
+            ("device.pin", "lab-b", "device:DEMO-0411"),
+            ("device.pin", "lab-c", "device:DEMO-0411"),
+            ("device.unpin", "lab-c", "device:DEMO-0411"),
+        ]
+    );
+    let first: serde_json::Value = serde_json::from_str(&entries[2].detail).unwrap();
+    assert_eq!(first["run_id"], reference);
+    assert_eq!(first["note"], "accredited calibration");
+    let second: serde_json::Value = serde_json::from_str(&entries[1].detail).unwrap();
+    assert_eq!(second["previous_run_id"], reference);
+    let last: serde_json::Value = serde_json::from_str(&entries[0].detail).unwrap();
+    assert_eq!(
+        (last["run_id"].as_i64(), last["note"].as_str()),
+        (Some(newer), Some("back to the rule"))
+    );
+}
+
+#[tokio::test]
+async fn a_device_plot_shows_the_pinned_run_else_the_newest_covering_everything() {
+    let store = Store::open_in_memory().await.unwrap();
+    let wide = finished_run(
+        &store,
+        "DEMO-0413",
+        RunState::Completed,
+        &[(0.2, 3.0, 0.01), (20.0, 6.0, 0.04)],
+    )
+    .await;
+    let quick = finished_run(
+        &store,
+        "DEMO-0413",
+        RunState::Completed,
+        &[(1.0, 3.5, 0.01), (5.0, 4.1, 0.02)],
+    )
+    .await;
+    let set = store.device_calibrations("DEMO-0413").await.unwrap();
+    assert_eq!(set.calibrated_range_hz(), Some((0.2e9, 20e9)));
+    let (run, how) = set.plotted_run(None).unwrap();
+    assert_eq!((run.run_id, how), (wide, RunSelection::NewestCovering));
+    let (run, how) = set.plotted_run(Some(quick)).unwrap();
+    assert_eq!((run.run_id, how), (quick, RunSelection::Requested));
+    // A newer run that reaches higher: none covers 0.2-40 GHz, so the newest is shown.
+    let higher = finished_run(
+        &store,
+        "DEMO-0413",
+        RunState::Completed,
+        &[(10.0, 5.0, 0.03), (40.0, 7.0, 0.05)],
+    )
+    .await;
+    let set = store.device_calibrations("DEMO-0413").await.unwrap();
+    let (run, how) = set.plotted_run(None).unwrap();
+    assert_eq!((run.run_id, how), (higher, RunSelection::Newest));
+    store
+        .pin_run("DEMO-0413", quick, "lab-b", "")
+        .await
+        .unwrap();
+    let set = store.device_calibrations("DEMO-0413").await.unwrap();
+    let (run, how) = set.plotted_run(None).unwrap();
+    assert_eq!((run.run_id, how), (quick, RunSelection::Pinned));
 }
 
 #[tokio::test]

@@ -38,7 +38,7 @@ pub fn parse_json<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, Problem> {
             let message = if syntax {
                 format!("the body is not valid JSON: {inner}")
             } else {
-                strip_position(&inner.to_string())
+                in_words(&field, &strip_position(&inner.to_string()))
             };
             return Err(Problem::invalid(
                 format!("{field}: {message}"),
@@ -53,6 +53,26 @@ pub fn parse_json<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, Problem> {
         )
     })?;
     Ok(value)
+}
+
+/// serde's "invalid type: null, expected usize" (or "invalid value: ...") as a sentence that names
+/// the field and the kind of value it takes: "frequencies.count must be a whole number (0 or
+/// more), not null". Other messages (unknown or missing fields) are kept as they are.
+fn in_words(field: &str, message: &str) -> String {
+    let rest = message
+        .strip_prefix("invalid type: ")
+        .or_else(|| message.strip_prefix("invalid value: "));
+    let Some((got, expected)) = rest.and_then(|r| r.split_once(", expected ")) else {
+        return message.to_string();
+    };
+    let expected = match expected {
+        "usize" | "u8" | "u16" | "u32" | "u64" => "a whole number (0 or more)",
+        "isize" | "i8" | "i16" | "i32" | "i64" => "a whole number",
+        "f32" | "f64" => "a number",
+        "a boolean" => "true or false",
+        other => other,
+    };
+    format!("{field} must be {expected}, not {got}")
 }
 
 /// serde_json appends " at line L column C"; the field path says more, so drop it for fields.
@@ -123,6 +143,34 @@ mod tests {
             parse_json::<Outer>(br#"{"levels":{"stop_dbm":1.0,"power_w":3}}"#).unwrap_err();
         assert_eq!(problem.errors[0].field, "levels.power_w");
         assert!(problem.errors[0].message.contains("unknown field"));
+    }
+
+    #[derive(Debug, Deserialize)]
+    #[allow(dead_code)]
+    struct Counted {
+        count: usize,
+    }
+
+    #[test]
+    fn a_wrong_type_is_said_in_words_with_the_field() {
+        // What the dashboard sent for "abc" in a number field: the browser gives "" and the page
+        // sent null.
+        let problem = parse_json::<Counted>(br#"{"count":null}"#).unwrap_err();
+        assert_eq!(problem.errors[0].field, "count");
+        assert_eq!(
+            problem.errors[0].message,
+            "count must be a whole number (0 or more), not null"
+        );
+        let problem = parse_json::<Counted>(br#"{"count":-3}"#).unwrap_err();
+        assert_eq!(
+            problem.errors[0].message,
+            "count must be a whole number (0 or more), not integer `-3`"
+        );
+        let problem = parse_json::<Outer>(br#"{"levels":{"stop_dbm":"hot"}}"#).unwrap_err();
+        assert_eq!(
+            problem.errors[0].message,
+            "levels.stop_dbm must be a number, not string \"hot\""
+        );
     }
 
     #[test]

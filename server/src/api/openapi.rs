@@ -3,10 +3,10 @@
 
 use super::problem::{FieldProblem, Problem};
 use super::routes::{
-    benches, chains, devices, events, run_control, runs, system, tokens as token_routes,
+    benches, chains, devices, events, pins, run_control, runs, system, tokens as token_routes,
 };
 use super::tokens::{CreatedToken, Role, TokenInfo};
-use crate::store::{ComparisonRow, RunComparison};
+use crate::store::{ComparisonRow, RunComparison, RunSelection};
 use utoipa::openapi::security::{HttpAuthScheme, HttpBuilder, SecurityScheme};
 use utoipa::{Modify, OpenApi};
 
@@ -23,6 +23,7 @@ use utoipa::{Modify, OpenApi};
         runs::point_spectrum_svg, runs::latest_spectrum_svg, runs::modulation_index_svg, runs::compare_runs,
         devices::list_devices, devices::get_device, devices::calibration_history, devices::vpi_at,
         devices::vpi_plot, devices::response_plot,
+        pins::get_pin, pins::pin_run, pins::unpin_device,
         chains::upload_chain, chains::list_chains, chains::get_chain,
     ),
     components(schemas(
@@ -31,6 +32,7 @@ use utoipa::{Modify, OpenApi};
         runs::RunSummary, runs::RunList, runs::RunView, runs::FrequencyResultView, runs::PointView,
         runs::PointList, runs::TraceView, RunComparison, ComparisonRow, crate::store::RunInstrument,
         devices::DeviceView, devices::Calibration, devices::CalibrationPoint, devices::VpiAnswer,
+        RunSelection, pins::DevicePin, pins::PinnedRun, pins::PinRequest, pins::UnpinRequest,
         chains::ChainUpload, chains::ChainPointBody, chains::ChainView, chains::ChainHeaderView,
     )),
     modifiers(&BearerScheme)

@@ -5,16 +5,16 @@
 //! - A run in a final state (completed, failed, cancelled) never changes again: its JSON view is
 //!   kept by id and served as stored bytes. Runs still queued, running or interrupted are read
 //!   from the database every time.
-//! - A device's calibration history (its completed runs' V_pi per frequency, and the newest
-//!   run's results for V_pi queries) is kept with the fingerprint of the completed runs it was
-//!   built from ([`crate::store::CompletedRunsFingerprint`]): a request reads the fingerprint
-//!   (one row) and rebuilds the entry only when it differs.
+//! - A device's calibrations (its completed runs' V_pi per frequency and its pinned run, from
+//!   which V_pi queries and plots choose) are kept with the fingerprint they were built from
+//!   ([`crate::store::CompletedRunsFingerprint`]: the completed runs and the pin): a request reads
+//!   the fingerprint (one row) and rebuilds the entry only when it differs.
 //!
 //! Each map holds a bounded number of entries and starts over when full (a lab's runs and devices
 //! number in the thousands; the bound only protects memory).
 
 use super::routes::devices::Calibration;
-use crate::store::{CompletedRunsFingerprint, FrequencyResultRecord};
+use crate::store::{CompletedRunsFingerprint, DeviceCalibrationSet};
 use axum::body::Bytes;
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
@@ -33,8 +33,9 @@ pub struct DeviceCalibrations {
     pub history: Vec<Calibration>,
     /// `history` as the JSON the history route returns.
     pub history_json: Bytes,
-    /// The per-frequency results of the newest calibration (for V_pi queries); empty when none.
-    pub newest_results: Vec<FrequencyResultRecord>,
+    /// The same runs as the store gives them, with the pin: what V_pi queries and plots choose
+    /// from.
+    pub set: DeviceCalibrationSet,
 }
 
 /// The cache; one per server.
@@ -102,6 +103,7 @@ mod tests {
             device_id: 1,
             completed_runs,
             newest_run_id,
+            pinned_run_id: 0,
         }
     }
 
@@ -110,7 +112,11 @@ mod tests {
             fingerprint: fp,
             history: Vec::new(),
             history_json: Bytes::from_static(b"[]"),
-            newest_results: Vec::new(),
+            set: DeviceCalibrationSet {
+                serial: "PM-1".into(),
+                pinned: None,
+                runs: Vec::new(),
+            },
         })
     }
 
@@ -119,8 +125,13 @@ mod tests {
         let cache = ReadCache::default();
         cache.keep_device("PM-1", calibrations(fingerprint(2, 9)));
         assert!(cache.device("PM-1", fingerprint(2, 9)).is_some());
-        // One more completed run: the entry is stale.
+        // One more completed run, or a pin: the entry is stale.
         assert!(cache.device("PM-1", fingerprint(3, 12)).is_none());
+        let pinned = CompletedRunsFingerprint {
+            pinned_run_id: 9,
+            ..fingerprint(2, 9)
+        };
+        assert!(cache.device("PM-1", pinned).is_none());
         assert!(cache.device("PM-2", fingerprint(2, 9)).is_none());
     }
 

@@ -10,9 +10,14 @@ impl From<StoreError> for Problem {
             StoreError::NotFound { .. } | StoreError::NoCompletedRun { .. } => {
                 Problem::not_found(e.to_string())
             }
-            StoreError::InvalidTransition { .. } => Problem::conflict(e.to_string()),
-            StoreError::OutsideMeasuredRange { .. } => {
+            StoreError::InvalidTransition { .. }
+            | StoreError::NotPinnable { .. }
+            | StoreError::NothingPinned { .. } => Problem::conflict(e.to_string()),
+            StoreError::OutsideMeasuredRange { .. } | StoreError::NotCovered { .. } => {
                 Problem::invalid_field("frequency_hz", e.to_string())
+            }
+            StoreError::NotACalibration { .. } | StoreError::RunOfAnotherDevice { .. } => {
+                Problem::invalid_field("run_id", e.to_string())
             }
             StoreError::InvalidInput { what, .. } => {
                 Problem::invalid(e.to_string(), vec![FieldProblem::new(*what, e.to_string())])

@@ -3,8 +3,9 @@
 //!
 //! `devices` lists every modulator with its newest calibration (date, frequency range, number of
 //! frequencies). `v-pi` answers the question the record is kept for: V_pi at one frequency, with
-//! its standard uncertainty, from the calibration the daemon's lookup rule picks, or from the run
-//! given with `--run`; it says which run answered and whether the value is interpolated.
+//! its standard uncertainty, from the calibration the daemon's lookup rule picks (the pinned
+//! reference calibration, else the newest completed run covering the frequency), or from the run
+//! given with `--run`; it says which run answered, why, and whether the value is interpolated.
 
 use super::client::ClientArgs;
 use super::report::utc_time;
@@ -159,8 +160,15 @@ pub fn v_pi(args: VpiArgs) -> Result<(), CliError> {
         } else {
             "measured at this frequency".to_string()
         };
+        let which = if answer.pinned {
+            " (the device's pinned reference calibration)"
+        } else if args.run.is_some() {
+            " (as asked)"
+        } else {
+            " (the newest completed run that covers this frequency)"
+        };
         outln!(
-            "{} at {:.4} GHz: V_pi = {:.4} V +- {:.4} V (1 sigma), {how}, from run {}",
+            "{} at {:.4} GHz: V_pi = {:.4} V +- {:.4} V (1 sigma), {how}, from run {}{which}",
             answer.serial,
             answer.frequency_hz / 1e9,
             answer.v_pi_volts,

@@ -4,7 +4,7 @@
 //! terminal and exits non-zero. Three kinds of command live here: the daemon and its local tools
 //! (`serve`, `demo`, `sim`, `analyze`, `token`, `check-bench`, `db`), which read the configuration
 //! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `cancel`, `resume`, `compare`, `devices`,
-//! `v-pi`, `export`, `trace`, `benches`, `acknowledge`), which
+//! `v-pi`, `pin`, `unpin`, `export`, `trace`, `benches`, `acknowledge`), which
 //! speak only HTTP to a running daemon through [`client::ApiClient`], so they work from any
 //! machine that can reach it. Clients print tables for people and JSON with `--json`.
 
@@ -40,6 +40,7 @@ pub mod drill;
 pub mod export;
 pub mod follow;
 pub mod output_file;
+pub mod pin;
 pub mod report;
 pub mod runs;
 pub mod serve;
@@ -151,6 +152,8 @@ pub enum Command {
     /// Acknowledge a bench's safety fault once its RF output reads back off (operator token);
     /// the bench then takes runs again.
     Acknowledge(benches::AcknowledgeArgs),
+    #[command(flatten)]
+    Pins(pin::PinCommand),
 }
 
 /// Runs the parsed command.
@@ -176,5 +179,6 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Db(command) => db::run(command),
         Command::Benches(args) => benches::list(args),
         Command::Acknowledge(args) => benches::acknowledge(args),
+        Command::Pins(command) => pin::run(command),
     }
 }

@@ -8,7 +8,8 @@
 //! run. The fingerprint lets the API keep a device's calibration history in memory and ask the
 //! database only whether it changed: completed runs are never modified or deleted (completed is
 //! a final state, and a run's results are written before it completes), so the number of a
-//! device's completed runs and the highest such id change exactly when its history does.
+//! device's completed runs and the highest such id change exactly when its history does; the
+//! pinned run's id, read in the same row, changes when a pin does.
 
 use super::{PointRecord, RunState, Store, StoreError};
 
@@ -19,6 +20,8 @@ pub struct CompletedRunsFingerprint {
     pub completed_runs: i64,
     /// 0 when there is none.
     pub newest_run_id: i64,
+    /// The pinned reference calibration; 0 when none is pinned.
+    pub pinned_run_id: i64,
 }
 
 impl Store {
@@ -61,14 +64,17 @@ impl Store {
             .map_err(StoreError::database("counting runs by state"))
     }
 
-    /// The device's id with the number of its completed runs and the newest one's id, in one
-    /// round trip. [`StoreError::NotFound`] when no device has this serial number.
+    /// The device's id with the number of its completed runs, the newest one's id and its pinned
+    /// run's id, in one round trip. [`StoreError::NotFound`] when no device has this serial
+    /// number.
     pub async fn completed_runs_fingerprint(
         &self,
         serial: &str,
     ) -> Result<CompletedRunsFingerprint, StoreError> {
-        let row: Option<(i64, i64, i64)> = sqlx::query_as(
-            "SELECT d.id, COUNT(r.id), COALESCE(MAX(r.id), 0) FROM devices d \
+        let row: Option<(i64, i64, i64, i64)> = sqlx::query_as(
+            "SELECT d.id, COUNT(r.id), COALESCE(MAX(r.id), 0), \
+                 COALESCE((SELECT p.run_id FROM device_pins p WHERE p.device_id = d.id), 0) \
+             FROM devices d \
              LEFT JOIN runs r ON r.device_id = d.id AND r.state = $2 \
              WHERE d.serial = $1 GROUP BY d.id",
         )
@@ -77,7 +83,7 @@ impl Store {
         .fetch_optional(&self.pool)
         .await
         .map_err(StoreError::database("reading a device's completed runs"))?;
-        let (device_id, completed_runs, newest_run_id) =
+        let (device_id, completed_runs, newest_run_id, pinned_run_id) =
             row.ok_or_else(|| StoreError::NotFound {
                 what: "device with serial",
                 key: serial.to_string(),
@@ -86,6 +92,7 @@ impl Store {
             device_id,
             completed_runs,
             newest_run_id,
+            pinned_run_id,
         })
     }
 }

@@ -70,15 +70,50 @@ pub enum StoreError {
     #[error("device {serial} has no completed run with V_pi results; calibrate it first")]
     NoCompletedRun { serial: String },
 
-    /// The frequency asked for lies outside what the newest completed run measured.
-    #[error("{frequency_hz} Hz is outside the range measured for device {serial} in run {run_id} ({min_hz} Hz to {max_hz} Hz); V_pi is not extrapolated, measure that frequency")]
+    /// The frequency asked for lies outside what the chosen run (the pinned one, or the one asked
+    /// for) measured. `hint` says, starting with "; ", what else may answer.
+    #[error("{frequency_hz} Hz is outside the range measured for device {serial} in run {run_id} ({min_hz} Hz to {max_hz} Hz){hint}; V_pi is not extrapolated, measure that frequency")]
     OutsideMeasuredRange {
         serial: String,
         run_id: i64,
         frequency_hz: f64,
         min_hz: f64,
         max_hz: f64,
+        hint: String,
     },
+
+    /// No completed calibration of the device covers the frequency (and none is pinned).
+    #[error("{frequency_hz} Hz is outside every completed calibration of device {serial} ({ranges}); V_pi is not extrapolated, measure that frequency")]
+    NotCovered {
+        serial: String,
+        frequency_hz: f64,
+        /// The measured range of each run, e.g. "run 2: 200000000 Hz to 20000000000 Hz".
+        ranges: String,
+    },
+
+    /// The run named is not one of the device's completed calibrations with V_pi results.
+    #[error("run {run_id} is not a completed calibration of device {serial} with V_pi results; its calibrations are listed at /api/v1/devices/{serial}/calibrations")]
+    NotACalibration { serial: String, run_id: i64 },
+
+    /// The run cannot be pinned as a reference calibration in its state.
+    #[error("run {run_id} cannot be the reference calibration of device {serial}: {reason}; only a completed run with V_pi results can be pinned")]
+    NotPinnable {
+        serial: String,
+        run_id: i64,
+        reason: String,
+    },
+
+    /// The run belongs to another device than the one it is to be pinned on.
+    #[error("run {run_id} is a run of device {run_serial}, not of {serial}; a run can be pinned only on its own device")]
+    RunOfAnotherDevice {
+        serial: String,
+        run_id: i64,
+        run_serial: String,
+    },
+
+    /// An unpin on a device without a pinned run.
+    #[error("device {serial} has no pinned run; nothing to unpin")]
+    NothingPinned { serial: String },
 }
 
 impl StoreError {

@@ -1,16 +1,63 @@
-//! What a device's record says over time: its V_pi history, the latest V_pi at any frequency, and
-//! two runs side by side.
+//! What a device's record says over time: its V_pi history, V_pi at any frequency, the run a
+//! device plot shows, and two runs side by side.
 //!
 //! Only completed runs count: a failed, cancelled or interrupted run may have stopped half way and
-//! must not stand as the device's calibration. The interpolation is a pure function
-//! ([`interpolate_vpi`]) so it can be checked against hand-worked numbers without a database.
+//! must not stand as the device's calibration.
+//!
+//! **The lookup rule** ([`DeviceCalibrationSet::vpi_at`]): V_pi at a frequency comes from the
+//! device's pinned reference calibration when one is pinned (and from nothing else: a frequency
+//! outside its range is refused, naming a run that would cover it); otherwise from the newest
+//! completed run whose measured range covers the frequency, so a quick narrow check never hides an
+//! older wide calibration outside its own range. A caller may name a run instead.
+//!
+//! **The plot rule** ([`DeviceCalibrationSet::plotted_run`]): a device plot shows one run: the
+//! pinned one; otherwise the newest completed run that covers every frequency the device was
+//! calibrated at (the lookup rule applied to the whole calibrated range); otherwise, when no run
+//! covers all of it, the newest completed run. The others are drawn lighter behind it.
+//!
+//! The interpolation and both rules are pure functions, checked against hand-worked numbers
+//! without a database.
 
 use super::{
-    ComparisonRow, FrequencyResultRecord, InterpolatedVpi, RunComparison, RunState, Store,
-    StoreError, VpiHistoryEntry,
+    CalibrationRun, ComparisonRow, DeviceCalibrationSet, FrequencyResultRecord, InterpolatedVpi,
+    RunComparison, RunSelection, RunState, Store, StoreError, VpiHistoryEntry,
 };
 use crate::analysis::agreement::agreement;
 use halfwave_units::{Hz, Volts};
+
+/// A measured V_pi at one frequency, whatever row it was read from.
+pub trait VpiSample {
+    fn frequency_hz(&self) -> f64;
+    fn v_pi_volts(&self) -> f64;
+    fn v_pi_uncertainty_volts(&self) -> f64;
+}
+
+impl VpiSample for FrequencyResultRecord {
+    fn frequency_hz(&self) -> f64 {
+        self.frequency_hz
+    }
+    fn v_pi_volts(&self) -> f64 {
+        self.v_pi_volts
+    }
+    fn v_pi_uncertainty_volts(&self) -> f64 {
+        self.v_pi_uncertainty_volts
+    }
+}
+
+impl VpiSample for VpiHistoryEntry {
+    fn frequency_hz(&self) -> f64 {
+        self.frequency_hz
+    }
+    fn v_pi_volts(&self) -> f64 {
+        self.v_pi_volts
+    }
+    fn v_pi_uncertainty_volts(&self) -> f64 {
+        self.v_pi_uncertainty_volts
+    }
+}
+
+/// How many runs an error message lists by their measured range.
+const RANGES_LISTED: usize = 5;
 
 /// Frequencies of two runs closer than this count as the same in a comparison. Plans set
 /// generator frequencies at hertz resolution or coarser (common practice), so two runs of the same
@@ -23,8 +70,8 @@ pub const COMPARE_MATCH_TOLERANCE_HZ: f64 = 1.0;
 /// uncertainties as fully correlated, the cautious choice: it never comes out smaller than the
 /// smaller of the two). `None` when the frequency is outside the measured range or there are no
 /// results.
-pub fn interpolate_vpi(
-    results: &[FrequencyResultRecord],
+pub fn interpolate_vpi<S: VpiSample>(
+    results: &[S],
     frequency: Hz,
 ) -> Option<(Volts, Volts, Hz, Hz)> {
     let f = frequency.value();
@@ -33,32 +80,199 @@ pub fn interpolate_vpi(
     }
     let below = results
         .iter()
-        .filter(|r| r.frequency_hz <= f)
-        .max_by(|a, b| a.frequency_hz.total_cmp(&b.frequency_hz))?;
+        .filter(|r| r.frequency_hz() <= f)
+        .max_by(|a, b| a.frequency_hz().total_cmp(&b.frequency_hz()))?;
     let above = results
         .iter()
-        .filter(|r| r.frequency_hz >= f)
-        .min_by(|a, b| a.frequency_hz.total_cmp(&b.frequency_hz))?;
-    let span = above.frequency_hz - below.frequency_hz;
+        .filter(|r| r.frequency_hz() >= f)
+        .min_by(|a, b| a.frequency_hz().total_cmp(&b.frequency_hz()))?;
+    let span = above.frequency_hz() - below.frequency_hz();
     if span <= 0.0 {
         // `f` is a measured frequency.
         return Some((
-            below.v_pi(),
-            below.v_pi_uncertainty(),
-            below.frequency(),
-            above.frequency(),
+            Volts(below.v_pi_volts()),
+            Volts(below.v_pi_uncertainty_volts()),
+            Hz(below.frequency_hz()),
+            Hz(above.frequency_hz()),
         ));
     }
-    let t = (f - below.frequency_hz) / span;
-    let v_pi = below.v_pi_volts + t * (above.v_pi_volts - below.v_pi_volts);
-    let uncertainty = below.v_pi_uncertainty_volts
-        + t * (above.v_pi_uncertainty_volts - below.v_pi_uncertainty_volts);
+    let t = (f - below.frequency_hz()) / span;
+    let v_pi = below.v_pi_volts() + t * (above.v_pi_volts() - below.v_pi_volts());
+    let uncertainty = below.v_pi_uncertainty_volts()
+        + t * (above.v_pi_uncertainty_volts() - below.v_pi_uncertainty_volts());
     Some((
         Volts(v_pi),
         Volts(uncertainty),
-        below.frequency(),
-        above.frequency(),
+        Hz(below.frequency_hz()),
+        Hz(above.frequency_hz()),
     ))
+}
+
+/// Groups a device's history (newest run first, as [`Store::vpi_history`] returns it) into runs,
+/// each ascending in frequency.
+pub fn group_history(entries: Vec<VpiHistoryEntry>) -> Vec<CalibrationRun> {
+    let mut runs: Vec<CalibrationRun> = Vec::new();
+    for entry in entries {
+        match runs.iter_mut().find(|c| c.run_id == entry.run_id) {
+            Some(run) => run.values.push(entry),
+            None => runs.push(CalibrationRun {
+                run_id: entry.run_id,
+                finished_at_unix_ms: entry.finished_at_unix_ms,
+                values: vec![entry],
+            }),
+        }
+    }
+    for run in &mut runs {
+        run.values
+            .sort_by(|a, b| a.frequency_hz.total_cmp(&b.frequency_hz));
+    }
+    runs
+}
+
+impl DeviceCalibrationSet {
+    /// The completed run with this id, if it is one of the device's calibrations.
+    pub fn run(&self, run_id: i64) -> Option<&CalibrationRun> {
+        self.runs.iter().find(|r| r.run_id == run_id)
+    }
+
+    /// The pinned run's id, when one is pinned.
+    pub fn pinned_run_id(&self) -> Option<i64> {
+        self.pinned.as_ref().map(|p| p.run_id)
+    }
+
+    /// The newest run that covers `frequency_hz`.
+    pub fn newest_covering(&self, frequency_hz: f64) -> Option<&CalibrationRun> {
+        self.runs.iter().find(|r| r.covers(frequency_hz))
+    }
+
+    /// The lowest and highest frequency any completed run measured.
+    pub fn calibrated_range_hz(&self) -> Option<(f64, f64)> {
+        self.runs
+            .iter()
+            .filter_map(CalibrationRun::range_hz)
+            .reduce(|(lo, hi), (l, h)| (lo.min(l), hi.max(h)))
+    }
+
+    fn requested(&self, run_id: i64) -> Result<&CalibrationRun, StoreError> {
+        self.run(run_id).ok_or_else(|| StoreError::NotACalibration {
+            serial: self.serial.clone(),
+            run_id,
+        })
+    }
+
+    /// The pinned run, when it is one of the calibrations (always, as only completed runs with
+    /// results can be pinned and completed runs never change).
+    fn pinned_run(&self) -> Option<&CalibrationRun> {
+        self.pinned_run_id().and_then(|id| self.run(id))
+    }
+
+    /// V_pi at `frequency` by the lookup rule (module documentation): the run `requested` if
+    /// given, else the pinned run, else the newest completed run that covers the frequency.
+    pub fn vpi_at(
+        &self,
+        frequency: Hz,
+        requested: Option<i64>,
+    ) -> Result<InterpolatedVpi, StoreError> {
+        if self.runs.is_empty() {
+            return Err(StoreError::NoCompletedRun {
+                serial: self.serial.clone(),
+            });
+        }
+        let f = frequency.value();
+        let (run, selection) = match (requested, self.pinned_run()) {
+            (Some(id), _) => (self.requested(id)?, RunSelection::Requested),
+            (None, Some(pinned)) => (pinned, RunSelection::Pinned),
+            (None, None) => match self.newest_covering(f) {
+                Some(run) => (run, RunSelection::NewestCovering),
+                None => {
+                    return Err(StoreError::NotCovered {
+                        serial: self.serial.clone(),
+                        frequency_hz: f,
+                        ranges: self.ranges_text(),
+                    })
+                }
+            },
+        };
+        let Some((v_pi, uncertainty, lower, upper)) = interpolate_vpi(&run.values, frequency)
+        else {
+            let (min_hz, max_hz) = run.range_hz().unwrap_or((f64::NAN, f64::NAN));
+            let other = self.newest_covering(f).map(|r| r.run_id);
+            let hint = match (selection, other) {
+                (RunSelection::Pinned, Some(other)) => format!(
+                    "; run {} is the device's pinned reference calibration: run {other} covers                      {f} Hz (ask with run_id={other}, or unpin run {})",
+                    run.run_id, run.run_id
+                ),
+                (RunSelection::Pinned, None) => format!(
+                    "; run {} is the device's pinned reference calibration and no other completed                      run covers {f} Hz either",
+                    run.run_id
+                ),
+                (_, Some(other)) => format!("; run {other} covers it"),
+                (_, None) => String::new(),
+            };
+            return Err(StoreError::OutsideMeasuredRange {
+                serial: self.serial.clone(),
+                run_id: run.run_id,
+                frequency_hz: f,
+                min_hz,
+                max_hz,
+                hint,
+            });
+        };
+        Ok(InterpolatedVpi {
+            run_id: run.run_id,
+            selection,
+            pinned: self.pinned_run_id() == Some(run.run_id),
+            frequency_hz: frequency,
+            v_pi_volts: v_pi,
+            v_pi_uncertainty_volts: uncertainty,
+            lower_frequency_hz: lower,
+            upper_frequency_hz: upper,
+        })
+    }
+
+    /// The run a device plot shows, by the plot rule (module documentation): the run `requested`
+    /// if given, else the pinned run, else the newest that covers every calibrated frequency,
+    /// else the newest.
+    pub fn plotted_run(
+        &self,
+        requested: Option<i64>,
+    ) -> Result<(&CalibrationRun, RunSelection), StoreError> {
+        if self.runs.is_empty() {
+            return Err(StoreError::NoCompletedRun {
+                serial: self.serial.clone(),
+            });
+        }
+        if let Some(id) = requested {
+            return Ok((self.requested(id)?, RunSelection::Requested));
+        }
+        if let Some(pinned) = self.pinned_run() {
+            return Ok((pinned, RunSelection::Pinned));
+        }
+        let covering = self
+            .calibrated_range_hz()
+            .and_then(|(lo, hi)| self.runs.iter().find(|r| r.covers(lo) && r.covers(hi)));
+        Ok(match covering {
+            Some(run) => (run, RunSelection::NewestCovering),
+            None => (&self.runs[0], RunSelection::Newest),
+        })
+    }
+
+    /// "run 5: 1000000000 Hz to 5000000000 Hz; run 2: ..." for the newest few runs.
+    fn ranges_text(&self) -> String {
+        let mut parts: Vec<String> = self
+            .runs
+            .iter()
+            .take(RANGES_LISTED)
+            .filter_map(|r| {
+                r.range_hz()
+                    .map(|(lo, hi)| format!("run {}: {lo} Hz to {hi} Hz", r.run_id))
+            })
+            .collect();
+        if self.runs.len() > RANGES_LISTED {
+            parts.push(format!("{} older runs", self.runs.len() - RANGES_LISTED));
+        }
+        parts.join("; ")
+    }
 }
 
 /// A comparison row with only the frequency filled in.
@@ -165,56 +379,35 @@ impl Store {
         .map_err(StoreError::database("reading a device's V_pi history"))
     }
 
-    /// V_pi of the device at `frequency` from its newest completed run with results, interpolated
-    /// linearly between the measured frequencies around it. Errors when the device has no such
-    /// run or the frequency is outside the run's measured range (no extrapolation).
-    pub async fn latest_vpi_at(
+    /// The device's completed calibrations with V_pi results (newest first) and its pinned run:
+    /// what lookups and plots choose from.
+    pub async fn device_calibrations(
+        &self,
+        serial: &str,
+    ) -> Result<DeviceCalibrationSet, StoreError> {
+        let runs = group_history(self.vpi_history(serial).await?);
+        let pinned = self.device_pin(serial).await?;
+        Ok(DeviceCalibrationSet {
+            serial: serial.to_string(),
+            pinned,
+            runs,
+        })
+    }
+
+    /// V_pi of the device at `frequency` by the lookup rule (module documentation): from the run
+    /// `requested` if given, else the pinned reference calibration, else the newest completed run
+    /// that covers the frequency; interpolated linearly between the measured frequencies around
+    /// it. Errors when the device has no completed run with results or the chosen run (or, with
+    /// none pinned, every run) does not cover the frequency (no extrapolation).
+    pub async fn vpi_at(
         &self,
         serial: &str,
         frequency: Hz,
+        requested: Option<i64>,
     ) -> Result<InterpolatedVpi, StoreError> {
-        let device = self.device_by_serial(serial).await?;
-        let run_id: Option<i64> = sqlx::query_scalar(
-            "SELECT r.id FROM runs r WHERE r.device_id = $1 AND r.state = $2 \
-                 AND EXISTS (SELECT 1 FROM frequency_results fr WHERE fr.run_id = r.id) \
-             ORDER BY COALESCE(r.finished_at_unix_ms, r.created_at_unix_ms) DESC, r.id DESC LIMIT 1",
-        )
-        .bind(device.id)
-        .bind(RunState::Completed.as_str())
-        .fetch_optional(&self.pool)
-        .await
-        .map_err(StoreError::database("finding a device's newest completed run"))?;
-        let run_id = run_id.ok_or_else(|| StoreError::NoCompletedRun {
-            serial: device.serial.clone(),
-        })?;
-        let results = self.frequency_results(run_id).await?;
-        match interpolate_vpi(&results, frequency) {
-            Some((v_pi, uncertainty, lower, upper)) => Ok(InterpolatedVpi {
-                run_id,
-                frequency_hz: frequency,
-                v_pi_volts: v_pi,
-                v_pi_uncertainty_volts: uncertainty,
-                lower_frequency_hz: lower,
-                upper_frequency_hz: upper,
-            }),
-            None => {
-                let min_hz = results
-                    .iter()
-                    .map(|r| r.frequency_hz)
-                    .fold(f64::INFINITY, f64::min);
-                let max_hz = results
-                    .iter()
-                    .map(|r| r.frequency_hz)
-                    .fold(f64::NEG_INFINITY, f64::max);
-                Err(StoreError::OutsideMeasuredRange {
-                    serial: device.serial,
-                    run_id,
-                    frequency_hz: frequency.value(),
-                    min_hz,
-                    max_hz,
-                })
-            }
-        }
+        self.device_calibrations(serial)
+            .await?
+            .vpi_at(frequency, requested)
     }
 
     /// Two runs' V_pi per frequency, with the difference of run B from run A in percent where both

@@ -15,7 +15,8 @@
 //! The methods live in one file per table group: [`devices`](self::devices) (modulators and
 //! instruments), [`calibrations`](self::calibrations), [`runs`](self::runs) (life cycle, listing,
 //! recovery), [`points`](self::points) (points, traces, results), [`history`](self::history) (V_pi
-//! history, interpolation, comparison) and [`audit`](self::audit).
+//! history, the lookup and plot rules, interpolation, comparison), [`pins`](self::pins) (a
+//! device's pinned reference calibration) and [`audit`](self::audit).
 
 pub mod api_reads;
 pub mod audit;
@@ -24,6 +25,7 @@ pub mod calibrations;
 pub mod devices;
 pub mod error;
 pub mod history;
+pub mod pins;
 pub mod points;
 pub mod records;
 pub mod runs;

@@ -421,11 +421,100 @@ pub struct VpiHistoryEntry {
     pub v_pi_uncertainty_volts: f64,
 }
 
-/// V_pi at a requested frequency from a device's newest completed run, interpolated linearly
-/// between the two measured frequencies around it (the same weights for the uncertainty).
+/// How the run that answers a V_pi lookup, or that a device plot shows, was chosen (the rule is in
+/// [`super::history`]). Serialized as the snake-case word.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize, utoipa::ToSchema)]
+#[serde(rename_all = "snake_case")]
+pub enum RunSelection {
+    /// The device's pinned reference calibration.
+    Pinned,
+    /// The caller named the run.
+    Requested,
+    /// No run is pinned: the newest completed run whose measured range covers the frequency (a
+    /// lookup) or every frequency the device was calibrated at (a plot).
+    NewestCovering,
+    /// Plots only: no run is pinned and none covers every frequency the device was calibrated
+    /// at, so the newest completed run.
+    Newest,
+}
+
+impl RunSelection {
+    /// The word used in JSON and in the `Halfwave-Run-Selection` header.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            RunSelection::Pinned => "pinned",
+            RunSelection::Requested => "requested",
+            RunSelection::NewestCovering => "newest_covering",
+            RunSelection::Newest => "newest",
+        }
+    }
+}
+
+/// The run pinned as a device's reference calibration.
+#[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
+pub struct PinRecord {
+    pub device_id: i64,
+    pub run_id: i64,
+    /// The token name (or `cli`) that pinned it.
+    pub pinned_by: String,
+    pub pinned_at_unix_ms: i64,
+    pub note: String,
+}
+
+/// What a pin or an unpin changed.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct PinChange {
+    pub serial: String,
+    /// The pin now in force (`None` after an unpin).
+    pub pinned: Option<PinRecord>,
+    /// The run pinned before the change, if any.
+    pub previous_run_id: Option<i64>,
+}
+
+/// One completed run of a device with its V_pi per frequency (ascending in frequency).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct CalibrationRun {
+    pub run_id: i64,
+    pub finished_at_unix_ms: i64,
+    pub values: Vec<VpiHistoryEntry>,
+}
+
+impl CalibrationRun {
+    /// The lowest and highest measured frequency, Hz (`None` without values).
+    pub fn range_hz(&self) -> Option<(f64, f64)> {
+        let lowest = self.values.first()?.frequency_hz;
+        let highest = self.values.last()?.frequency_hz;
+        Some((lowest, highest))
+    }
+
+    /// True when `frequency_hz` lies within the measured range (ends included): V_pi can be
+    /// interpolated there without extrapolating.
+    pub fn covers(&self, frequency_hz: f64) -> bool {
+        self.range_hz()
+            .is_some_and(|(lo, hi)| lo <= frequency_hz && frequency_hz <= hi)
+    }
+}
+
+/// A device's completed calibrations with V_pi results, newest first, and its pinned reference
+/// calibration. What V_pi lookups and device plots choose from (see [`super::history`]).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct DeviceCalibrationSet {
+    pub serial: String,
+    pub pinned: Option<PinRecord>,
+    /// Newest first (by finish time, then id).
+    pub runs: Vec<CalibrationRun>,
+}
+
+/// V_pi at a requested frequency from one completed run of a device (chosen by the lookup rule,
+/// see [`super::history`]), interpolated linearly between the two measured frequencies around it
+/// (the same weights for the uncertainty).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct InterpolatedVpi {
     pub run_id: i64,
+    /// How that run was chosen.
+    pub selection: RunSelection,
+    /// True when that run is the device's pinned reference calibration.
+    pub pinned: bool,
     pub frequency_hz: Hz,
     pub v_pi_volts: Volts,
     pub v_pi_uncertainty_volts: Volts,

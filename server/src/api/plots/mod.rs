@@ -1,13 +1,15 @@
 //! Plots rendered on the server as SVG, from plain data structs.
 //!
-//! The four views of a calibration: V_pi versus frequency (with uncertainty bars and earlier
-//! calibrations of the same device in muted colours), the electro-optic response in dB, one
+//! The four views of a calibration: V_pi versus frequency (with uncertainty bars and the other
+//! calibrations of the same device in muted colours), the electro-optic response in dB (both on a
+//! logarithmic frequency axis when the points are log-spaced, see [`axis`]), one
 //! analyzer spectrum with the fitted comb lines marked, and modulation index versus peak drive
 //! voltage at one frequency with the fitted line through the origin. They are built with plotters'
 //! SVG backend and its built-in text estimate, so no font files are read: the browser renders the
 //! `<text>` elements with its own sans-serif face. Inputs are plain structs, so the functions are
 //! unit-tested without a database, and the HTTP handlers only fetch and convert.
 
+pub mod axis;
 mod modulation;
 mod response;
 mod spectrum;
@@ -43,6 +45,33 @@ impl<E: std::error::Error + Send + Sync> From<plotters::drawing::DrawingAreaErro
 
 /// Width and height of every plot, pixels (the SVG scales in the page).
 pub const PLOT_SIZE: (u32, u32) = (720, 420);
+
+/// Height of the heading drawn by [`heading`], pixels.
+const HEADING_HEIGHT: u32 = 50;
+
+/// Draws a title and, under it, a subtitle (what the plot shows and why) at the top of `root`;
+/// returns the area below them for the chart.
+pub(crate) fn heading<DB: plotters::prelude::DrawingBackend>(
+    root: &plotters::prelude::DrawingArea<DB, plotters::coord::Shift>,
+    title: &str,
+    subtitle: &str,
+) -> Result<plotters::prelude::DrawingArea<DB, plotters::coord::Shift>, PlotError> {
+    use plotters::prelude::*;
+    let (head, body) = root.split_vertically(HEADING_HEIGHT);
+    head.draw(&Text::new(
+        title.to_string(),
+        (70, 10),
+        (style::FONT, 18).into_font().color(&style::INK),
+    ))?;
+    if !subtitle.is_empty() {
+        head.draw(&Text::new(
+            subtitle.to_string(),
+            (70, 32),
+            (style::FONT, 12).into_font().color(&style::MUTED),
+        ))?;
+    }
+    Ok(body)
+}
 
 /// The range of the finite values, padded by a fraction of its width (or by 1 when flat).
 pub(crate) fn padded_range(values: impl Iterator<Item = f64>, pad: f64) -> Option<(f64, f64)> {

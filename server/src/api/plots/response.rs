@@ -1,5 +1,6 @@
 //! The electro-optic response in dB, 20 log10(V_pi(f_ref) / V_pi(f)) referred to the lowest
-//! calibrated frequency, drawn with its uncertainty bars and the -3 dB and -6 dB levels as guides.
+//! calibrated frequency, drawn with its uncertainty bars and the -3 dB and -6 dB levels as guides,
+//! on a logarithmic frequency axis when the points are log-spaced ([`super::axis`]).
 //!
 //! The numbers come from [`crate::analysis::response_curve`], the one place that defines the
 //! response, its uncertainty and the -3 dB / -6 dB frequencies; this module only prepares its
@@ -8,9 +9,10 @@
 //! (a calibration stored with a repeated frequency) are combined into one by their
 //! inverse-variance weighted mean, as the analysis asks its caller to do.
 
+use super::axis::FrequencyAxis;
 use super::style::{uncertainty_bar, BACKGROUND, CURRENT, FIT, FONT, GRID, INK};
 use super::vpi::VpiCurve;
-use super::{padded_range, PlotError, PLOT_SIZE};
+use super::{heading, padded_range, PlotError, PLOT_SIZE};
 use crate::analysis::{response_curve, ResponseCurve, VpiAtFrequency};
 use halfwave_units::{Hz, Volts};
 use plotters::prelude::*;
@@ -79,12 +81,15 @@ fn merge_equal_frequencies(sorted: &[VpiAtFrequency]) -> Vec<VpiAtFrequency> {
 }
 
 /// Draws the response with one `<circle>` marker per (merged) point, uncertainty bars as paths,
-/// the -3 dB and -6 dB guides, and the frequencies where the response crosses them.
-pub fn response_svg(curve: &VpiCurve) -> Result<String, PlotError> {
+/// the -3 dB and -6 dB guides, and the frequencies where the response crosses them; `subtitle`
+/// (which run is shown and why) goes under the title.
+pub fn response_svg(curve: &VpiCurve, subtitle: &str) -> Result<String, PlotError> {
     let response = response_of(curve)?;
     let ghz = |f: Hz| f.0 / 1e9;
-    let (f_lo, f_hi) = padded_range(response.points.iter().map(|p| ghz(p.frequency_hz)), 0.04)
+    let frequencies_hz: Vec<f64> = response.points.iter().map(|p| p.frequency_hz.0).collect();
+    let axis = FrequencyAxis::new(&frequencies_hz, &frequencies_hz)
         .ok_or_else(|| PlotError::Empty("no frequencies".to_string()))?;
+    let (f_lo, f_hi) = axis.bounds();
     let (r_lo, r_hi) = padded_range(
         response
             .points
@@ -104,22 +109,26 @@ pub fn response_svg(curve: &VpiCurve) -> Result<String, PlotError> {
     {
         let root = SVGBackend::with_string(&mut svg, PLOT_SIZE).into_drawing_area();
         root.fill(&BACKGROUND)?;
-        let mut chart = ChartBuilder::on(&root)
-            .caption(
-                format!("Electro-optic response \u{2014} {}", curve.label),
-                (FONT, 18).into_font().color(&INK),
-            )
+        let body = heading(
+            &root,
+            &format!("Electro-optic response \u{2014} {}", curve.label),
+            subtitle,
+        )?;
+        let mut chart = ChartBuilder::on(&body)
             .margin(14)
+            .margin_top(4)
             .x_label_area_size(42)
             .y_label_area_size(56)
-            .build_cartesian_2d(f_lo..f_hi, r_lo..r_hi)?;
+            .build_cartesian_2d(axis.coord(), r_lo..r_hi)?;
+        let label = |x: &f64| axis.label(x);
         chart
             .configure_mesh()
             .light_line_style(GRID)
             .bold_line_style(GRID.mix(0.0))
             .axis_style(INK)
             .label_style((FONT, 13).into_font().color(&INK))
-            .x_desc("RF frequency (GHz)")
+            .x_label_formatter(&label)
+            .x_desc(axis.description())
             .y_desc("response (dB)")
             .draw()?;
         for (level, crossing) in [(-3.0, response.f_3db_hz), (-6.0, response.f_6db_hz)] {
@@ -141,7 +150,7 @@ pub fn response_svg(curve: &VpiCurve) -> Result<String, PlotError> {
             response
                 .points
                 .iter()
-                .map(|p| (ghz(p.frequency_hz), p.response_db)),
+                .map(|p| (axis.x(p.frequency_hz.0), p.response_db)),
             CURRENT.stroke_width(2),
         ))?;
         chart.draw_series(
@@ -151,20 +160,21 @@ pub fn response_svg(curve: &VpiCurve) -> Result<String, PlotError> {
                 .filter(|p| p.response_uncertainty_db > 0.0)
                 .map(|p| {
                     uncertainty_bar(
-                        ghz(p.frequency_hz),
+                        axis.x(p.frequency_hz.0),
                         p.response_db - p.response_uncertainty_db,
                         p.response_db + p.response_uncertainty_db,
-                        0.006 * (f_hi - f_lo),
+                        axis.cap_half_width(),
                         CURRENT.stroke_width(1),
                     )
                 }),
         )?;
-        chart.draw_series(
-            response
-                .points
-                .iter()
-                .map(|p| Circle::new((ghz(p.frequency_hz), p.response_db), 4, CURRENT.filled())),
-        )?;
+        chart.draw_series(response.points.iter().map(|p| {
+            Circle::new(
+                (axis.x(p.frequency_hz.0), p.response_db),
+                4,
+                CURRENT.filled(),
+            )
+        }))?;
         root.present()?;
     }
     Ok(svg)
@@ -175,6 +185,10 @@ mod tests {
     use super::super::test_support::{count_elements, texts};
     use super::super::vpi::VpiPoint;
     use super::*;
+
+    fn drawn(curve: &VpiCurve) -> Result<String, PlotError> {
+        response_svg(curve, "run 1, as requested")
+    }
 
     fn curve(values: &[(f64, f64, f64)]) -> VpiCurve {
         VpiCurve {
@@ -237,7 +251,7 @@ mod tests {
         assert_eq!(exact.points[0].v_pi_volts, Volts(4.0));
         assert!((exact.points[1].response_db + 6.0206).abs() < 1e-4);
         // Drawn: one marker per distinct frequency.
-        let svg = response_svg(&curve(&[
+        let svg = drawn(&curve(&[
             (1e9, 4.0, 0.1),
             (10e9, 8.16, 0.0),
             (1e9, 4.4, 0.2),
@@ -248,7 +262,7 @@ mod tests {
 
     #[test]
     fn svg_has_one_marker_per_point_and_names_the_crossings() {
-        let svg = response_svg(&curve(&[
+        let svg = drawn(&curve(&[
             (1e9, 4.0, 0.04),
             (5e9, 4.5, 0.05),
             (10e9, 5.5, 0.05),
@@ -269,7 +283,7 @@ mod tests {
             response_of(&curve(&[(1e9, 0.0, 0.0), (2e9, f64::NAN, 0.0)])),
             Err(PlotError::Empty(_))
         ));
-        assert!(response_svg(&curve(&[(1e9, -1.0, 0.0)])).is_err());
+        assert!(drawn(&curve(&[(1e9, -1.0, 0.0)])).is_err());
         let kept = response_of(&curve(&[
             (1e9, 4.0, 0.0),
             (2e9, -1.0, 0.0),

@@ -8,6 +8,8 @@ pub const CURRENT: RGBColor = RGBColor(0x0b, 0x6e, 0x69);
 pub const FIT: RGBColor = RGBColor(0xd9, 0x7a, 0x06);
 pub const GRID: RGBColor = RGBColor(0xe4, 0xe1, 0xd8);
 pub const INK: RGBColor = RGBColor(0x2a, 0x2d, 0x34);
+/// Secondary text (subtitles).
+pub const MUTED: RGBColor = RGBColor(0x6b, 0x6f, 0x78);
 
 /// Colours of earlier curves, oldest last; they repeat when there are more curves.
 pub const HISTORY: [RGBColor; 4] = [

@@ -1,7 +1,10 @@
-//! V_pi versus frequency, with standard-uncertainty bars, and earlier calibrations overlaid.
+//! V_pi versus frequency, with standard-uncertainty bars, and the device's other calibrations
+//! overlaid; the frequency axis is logarithmic when the shown run's points are log-spaced
+//! ([`super::axis`]).
 
+use super::axis::FrequencyAxis;
 use super::style::{uncertainty_bar, BACKGROUND, CURRENT, FONT, GRID, HISTORY, INK};
-use super::{padded_range, PlotError, PLOT_SIZE};
+use super::{heading, padded_range, PlotError, PLOT_SIZE};
 use plotters::prelude::*;
 use serde::{Deserialize, Serialize};
 
@@ -20,9 +23,14 @@ pub struct VpiCurve {
     pub points: Vec<VpiPoint>,
 }
 
-/// Draws `current` with markers and uncertainty bars, and each of `earlier` as a thin line.
-/// Markers: one `<circle>` per finite point of the current curve.
-pub fn vpi_svg(current: &VpiCurve, earlier: &[VpiCurve]) -> Result<String, PlotError> {
+/// Draws `current` with markers and uncertainty bars, and each of `earlier` as a thin line;
+/// `subtitle` (which run is shown and why) goes under the title. Markers: one `<circle>` per
+/// finite point of the current curve.
+pub fn vpi_svg(
+    current: &VpiCurve,
+    earlier: &[VpiCurve],
+    subtitle: &str,
+) -> Result<String, PlotError> {
     let finite = |p: &&VpiPoint| p.frequency_hz.is_finite() && p.v_pi_volts.is_finite();
     let all = || {
         std::iter::once(current)
@@ -30,7 +38,9 @@ pub fn vpi_svg(current: &VpiCurve, earlier: &[VpiCurve]) -> Result<String, PlotE
             .flat_map(|c| c.points.iter())
             .filter(finite)
     };
-    let (f_lo, f_hi) = padded_range(all().map(|p| p.frequency_hz / 1e9), 0.04)
+    let current_hz: Vec<f64> = current.points.iter().map(|p| p.frequency_hz).collect();
+    let all_hz: Vec<f64> = all().map(|p| p.frequency_hz).collect();
+    let axis = FrequencyAxis::new(&current_hz, &all_hz)
         .ok_or_else(|| PlotError::Empty("no V_pi values".to_string()))?;
     let (v_lo, v_hi) = padded_range(
         all().flat_map(|p| {
@@ -49,52 +59,56 @@ pub fn vpi_svg(current: &VpiCurve, earlier: &[VpiCurve]) -> Result<String, PlotE
     {
         let root = SVGBackend::with_string(&mut svg, PLOT_SIZE).into_drawing_area();
         root.fill(&BACKGROUND)?;
-        let mut chart = ChartBuilder::on(&root)
-            .caption(
-                format!("V\u{3c0} versus frequency \u{2014} {}", current.label),
-                (FONT, 18).into_font().color(&INK),
-            )
+        let body = heading(
+            &root,
+            &format!("V\u{3c0} versus frequency \u{2014} {}", current.label),
+            subtitle,
+        )?;
+        let mut chart = ChartBuilder::on(&body)
             .margin(14)
+            .margin_top(4)
             .x_label_area_size(42)
             .y_label_area_size(56)
-            .build_cartesian_2d(f_lo..f_hi, v_lo..v_hi)?;
+            .build_cartesian_2d(axis.coord(), v_lo..v_hi)?;
+        let label = |x: &f64| axis.label(x);
         chart
             .configure_mesh()
             .light_line_style(GRID)
             .bold_line_style(GRID.mix(0.0))
             .axis_style(INK)
             .label_style((FONT, 13).into_font().color(&INK))
-            .x_desc("RF frequency (GHz)")
+            .x_label_formatter(&label)
+            .x_desc(axis.description())
             .y_desc("V\u{3c0} (V)")
             .draw()?;
 
         for (i, curve) in earlier.iter().enumerate() {
             let colour = HISTORY[i % HISTORY.len()];
             chart.draw_series(LineSeries::new(
-                sorted(curve).map(|p| (p.frequency_hz / 1e9, p.v_pi_volts)),
+                sorted(curve).map(|p| (axis.x(p.frequency_hz), p.v_pi_volts)),
                 colour.stroke_width(1),
             ))?;
         }
         chart.draw_series(LineSeries::new(
-            sorted(current).map(|p| (p.frequency_hz / 1e9, p.v_pi_volts)),
+            sorted(current).map(|p| (axis.x(p.frequency_hz), p.v_pi_volts)),
             CURRENT.stroke_width(2),
         ))?;
         chart.draw_series(sorted(current).filter_map(|p| {
             let u = p.v_pi_uncertainty_volts;
             (u.is_finite() && u > 0.0).then(|| {
                 uncertainty_bar(
-                    p.frequency_hz / 1e9,
+                    axis.x(p.frequency_hz),
                     p.v_pi_volts - u,
                     p.v_pi_volts + u,
-                    0.006 * (f_hi - f_lo),
+                    axis.cap_half_width(),
                     CURRENT.stroke_width(1),
                 )
             })
         }))?;
-        chart.draw_series(
-            sorted(current)
-                .map(|p| Circle::new((p.frequency_hz / 1e9, p.v_pi_volts), 4, CURRENT.filled())),
-        )?;
+        chart
+            .draw_series(sorted(current).map(|p| {
+                Circle::new((axis.x(p.frequency_hz), p.v_pi_volts), 4, CURRENT.filled())
+            }))?;
 
         // Legend as plain text, one line per curve, in the curve's colour.
         let legend = std::iter::once((current.label.as_str(), CURRENT))
@@ -106,7 +120,7 @@ pub fn vpi_svg(current: &VpiCurve, earlier: &[VpiCurve]) -> Result<String, PlotE
             )
             .take(6);
         for (row, (label, colour)) in legend.enumerate() {
-            let y = 44 + 16 * i32::try_from(row).unwrap_or(0);
+            let y = 70 + 16 * i32::try_from(row).unwrap_or(0);
             root.draw(&Text::new(
                 format!("\u{2014} {label}"),
                 (PLOT_SIZE.0 as i32 - 250, y),
@@ -154,6 +168,7 @@ mod tests {
         let svg = vpi_svg(
             &curve("run 7", 1.0),
             &[curve("run 3", 1.02), curve("run 1", 0.97)],
+            "run 7, pinned reference calibration",
         )
         .unwrap();
         assert_eq!(count_elements(&svg, "circle"), 5);
@@ -163,8 +178,74 @@ mod tests {
         assert_eq!(polylines_in(&svg, "#9f8fb5"), 1);
         assert_eq!(polylines_in(&svg, "#0b6e69"), 1 + 5);
         let all_text = texts(&svg).join("|");
-        assert!(all_text.contains("RF frequency (GHz)"));
+        assert!(all_text.contains("RF frequency (GHz"));
         assert!(all_text.contains("run 3"));
+        assert!(all_text.contains("run 7, pinned reference calibration"));
+    }
+
+    /// The x positions of the markers, left to right.
+    fn marker_x(svg: &str) -> Vec<f64> {
+        let document = roxmltree::Document::parse(svg).unwrap();
+        let mut x: Vec<f64> = document
+            .descendants()
+            .filter(|n| n.has_tag_name("circle"))
+            .map(|n| n.attribute("cx").unwrap().parse().unwrap())
+            .collect();
+        x.sort_by(f64::total_cmp);
+        x
+    }
+
+    fn spaced(frequencies_hz: &[f64]) -> VpiCurve {
+        VpiCurve {
+            label: "run 1".into(),
+            points: frequencies_hz
+                .iter()
+                .map(|&f| VpiPoint {
+                    frequency_hz: f,
+                    v_pi_volts: 3.0 + 0.1 * (f / 1e9).sqrt(),
+                    v_pi_uncertainty_volts: 0.01,
+                })
+                .collect(),
+        }
+    }
+
+    #[test]
+    fn log_spaced_points_spread_evenly_on_a_logarithmic_axis() {
+        // The demo's grid: 21 frequencies log-spaced from 0.2 to 20 GHz. On a linear axis the
+        // first 11 (0.2 to 2 GHz) would share the leftmost tenth of the width.
+        let grid: Vec<f64> = (0..21)
+            .map(|i| 0.2e9 * 100f64.powf(f64::from(i) / 20.0))
+            .collect();
+        let svg = vpi_svg(&spaced(&grid), &[], "").unwrap();
+        let x = marker_x(&svg);
+        assert_eq!(x.len(), 21);
+        let steps: Vec<f64> = x.windows(2).map(|w| w[1] - w[0]).collect();
+        let (min, max) = steps.iter().fold((f64::INFINITY, 0.0f64), |(lo, hi), s| {
+            (lo.min(*s), hi.max(*s))
+        });
+        assert!(
+            min > 20.0 && max - min <= 1.5,
+            "even steps in pixels: {steps:?}"
+        );
+        let labels = texts(&svg);
+        for tick in ["0.2", "0.5", "1", "2", "5", "10", "20"] {
+            assert!(
+                labels.iter().any(|l| l == tick),
+                "tick {tick} in {labels:?}"
+            );
+        }
+        assert!(labels.iter().any(|l| l.contains("logarithmic")));
+
+        // A linear grid keeps a linear axis: equal steps in frequency, equal steps on the page.
+        let linear: Vec<f64> = (0..5).map(|i| 1e9 + f64::from(i) * 4.75e9).collect();
+        let svg = vpi_svg(&spaced(&linear), &[], "").unwrap();
+        let x = marker_x(&svg);
+        let steps: Vec<f64> = x.windows(2).map(|w| w[1] - w[0]).collect();
+        assert!(
+            steps.iter().all(|s| (s - steps[0]).abs() <= 1.5),
+            "{steps:?}"
+        );
+        assert!(!texts(&svg).iter().any(|l| l.contains("logarithmic")));
     }
 
     #[test]
@@ -173,6 +254,6 @@ mod tests {
             label: "none".into(),
             points: vec![],
         };
-        assert!(matches!(vpi_svg(&empty, &[]), Err(PlotError::Empty(_))));
+        assert!(matches!(vpi_svg(&empty, &[], ""), Err(PlotError::Empty(_))));
     }
 }

@@ -1,7 +1,9 @@
 //! Devices (modulators by serial number): the list, one device, its calibration history, V_pi at
-//! any frequency from its newest calibration, and the history plots. History, V_pi and plots
-//! share one read of the device's completed calibrations, kept in the read cache until the device
-//! completes another run (see `api/read_cache.rs`).
+//! any frequency and the history plots, both by the rules of `store/history.rs` (the pinned
+//! reference calibration, else the newest completed run covering what is asked). History, V_pi and
+//! plots share one read of the device's completed calibrations and pin, kept in the read cache
+//! until the device completes another run or its pin changes (see `api/read_cache.rs`). Pinning
+//! itself is in [`super::pins`].
 
 use crate::api::auth::Viewer;
 use crate::api::params::{ApiPath, ApiQuery};
@@ -10,11 +12,11 @@ use crate::api::problem::Problem;
 use crate::api::read_cache::DeviceCalibrations;
 use crate::api::routes::runs::json_bytes;
 use crate::api::AppState;
-use crate::store::history::interpolate_vpi;
-use crate::store::{DeviceRecord, StoreError, VpiHistoryEntry};
+use crate::store::{DeviceCalibrationSet, DeviceRecord, RunSelection};
 use axum::body::Bytes;
 use axum::extract::State;
 use axum::http::header::CONTENT_TYPE;
+use axum::http::HeaderName;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
 use halfwave_units::Hz;
@@ -63,15 +65,25 @@ pub struct CalibrationPoint {
 pub struct Calibration {
     pub run_id: i64,
     pub finished_at_unix_ms: i64,
+    /// True for the device's pinned reference calibration.
+    #[serde(default)]
+    pub pinned: bool,
     /// Ascending in frequency.
     pub points: Vec<CalibrationPoint>,
 }
 
-/// V_pi at a requested frequency.
+/// V_pi at a requested frequency, with the run that answered.
 #[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
 pub struct VpiAnswer {
     pub serial: String,
+    /// The run that answered.
     pub run_id: i64,
+    /// True when that run is the device's pinned reference calibration.
+    pub pinned: bool,
+    /// How the run was chosen: `pinned` (the device's reference calibration), `newest_covering`
+    /// (no run pinned: the newest completed run whose measured range covers the frequency) or
+    /// `requested` (`run_id` given).
+    pub selection: RunSelection,
     pub frequency_hz: f64,
     pub v_pi_volts: f64,
     /// Standard uncertainty (k = 1).
@@ -82,38 +94,44 @@ pub struct VpiAnswer {
     pub interpolated: bool,
 }
 
-/// The frequency of a V_pi query.
+/// The frequency of a V_pi query, and optionally the run to answer from.
 #[derive(Debug, Deserialize, IntoParams)]
 #[into_params(parameter_in = Query)]
 pub struct VpiQuery {
     /// RF frequency, Hz.
     pub frequency_hz: Option<f64>,
+    /// Answer from this completed run of the device instead of by the lookup rule.
+    pub run_id: Option<i64>,
 }
 
-/// Groups a device's history (newest run first) into calibrations.
-pub fn group_history(entries: &[VpiHistoryEntry]) -> Vec<Calibration> {
-    let mut calibrations: Vec<Calibration> = Vec::new();
-    for entry in entries {
-        let point = CalibrationPoint {
-            frequency_hz: entry.frequency_hz,
-            v_pi_volts: entry.v_pi_volts,
-            v_pi_uncertainty_volts: entry.v_pi_uncertainty_volts,
-        };
-        match calibrations.iter_mut().find(|c| c.run_id == entry.run_id) {
-            Some(calibration) => calibration.points.push(point),
-            None => calibrations.push(Calibration {
-                run_id: entry.run_id,
-                finished_at_unix_ms: entry.finished_at_unix_ms,
-                points: vec![point],
-            }),
-        }
-    }
-    for calibration in &mut calibrations {
-        calibration
-            .points
-            .sort_by(|a, b| a.frequency_hz.total_cmp(&b.frequency_hz));
-    }
-    calibrations
+/// Which run a device plot shows.
+#[derive(Debug, Deserialize, IntoParams)]
+#[into_params(parameter_in = Query)]
+pub struct PlotQuery {
+    /// Draw this completed run of the device instead of the one the plot rule chooses.
+    pub run_id: Option<i64>,
+}
+
+/// The device's calibrations as the history route serves them (newest first).
+pub fn calibration_views(set: &DeviceCalibrationSet) -> Vec<Calibration> {
+    let pinned = set.pinned_run_id();
+    set.runs
+        .iter()
+        .map(|run| Calibration {
+            run_id: run.run_id,
+            finished_at_unix_ms: run.finished_at_unix_ms,
+            pinned: pinned == Some(run.run_id),
+            points: run
+                .values
+                .iter()
+                .map(|v| CalibrationPoint {
+                    frequency_hz: v.frequency_hz,
+                    v_pi_volts: v.v_pi_volts,
+                    v_pi_uncertainty_volts: v.v_pi_uncertainty_volts,
+                })
+                .collect(),
+        })
+        .collect()
 }
 
 /// Every device, by serial number.
@@ -152,8 +170,9 @@ pub async fn calibration_history(
     Ok(json_bytes(device.history_json.clone()))
 }
 
-/// The device's completed calibrations: kept in the read cache while its completed runs stay the
-/// same (one fingerprint query per call), read again from the database when they changed.
+/// The device's completed calibrations and pin: kept in the read cache while its completed runs
+/// and its pin stay the same (one fingerprint query per call), read again from the database
+/// when they changed.
 async fn device_calibrations(
     state: &AppState,
     serial: &str,
@@ -163,11 +182,8 @@ async fn device_calibrations(
     if let Some(kept) = state.read_cache().device(serial, fingerprint) {
         return Ok(kept);
     }
-    let history = group_history(&store.vpi_history(serial).await?);
-    let newest_results = match history.first() {
-        Some(newest) => store.frequency_results(newest.run_id).await?,
-        None => Vec::new(),
-    };
+    let set = store.device_calibrations(serial).await?;
+    let history = calibration_views(&set);
     let history_json = Bytes::from(serde_json::to_vec(&history).map_err(|e| {
         Problem::internal(format!("the history could not be written as JSON: {e}"))
     })?);
@@ -175,7 +191,7 @@ async fn device_calibrations(
         fingerprint,
         history,
         history_json,
-        newest_results,
+        set,
     });
     state.read_cache().keep_device(serial, device.clone());
     Ok(device)
@@ -199,13 +215,15 @@ fn check_frequency(frequency_hz: Option<f64>) -> Result<f64, Problem> {
     }
 }
 
-/// V_pi at any frequency from the newest completed calibration, interpolated linearly between
-/// the measured frequencies around it, with its standard uncertainty. No extrapolation.
+/// V_pi at any frequency, interpolated linearly between the measured frequencies around it, with
+/// its standard uncertainty and the run that answered. The run: the device's pinned reference
+/// calibration when one is pinned, otherwise the newest completed run whose measured range covers
+/// the frequency (`run_id` names one instead). No extrapolation.
 #[utoipa::path(get, path = "/api/v1/devices/{serial}/v-pi", tag = "devices", security(("bearer" = [])),
     params(("serial" = String, Path, description = "Serial number"), VpiQuery),
     responses((status = 200, body = VpiAnswer), (status = 401, body = Problem),
               (status = 404, description = "No such device or no completed calibration", body = Problem),
-              (status = 422, description = "Frequency missing, absurd or outside the calibrated range", body = Problem)))]
+              (status = 422, description = "Frequency missing, absurd or outside the calibrated range (of the pinned run, when one is pinned); or run_id not a completed calibration of the device", body = Problem)))]
 pub async fn vpi_at(
     _caller: Viewer,
     State(state): State<AppState>,
@@ -214,34 +232,28 @@ pub async fn vpi_at(
 ) -> Result<Json<VpiAnswer>, Problem> {
     let frequency_hz = check_frequency(query.frequency_hz)?;
     let device = device_calibrations(&state, &serial).await?;
-    // The history holds only runs with results, newest first: the same run the store's
-    // `latest_vpi_at` picks.
-    let (Some(newest), false) = (device.history.first(), device.newest_results.is_empty()) else {
-        return Err(StoreError::NoCompletedRun { serial }.into());
-    };
-    let results = &device.newest_results;
-    let Some((v_pi, uncertainty, lower, upper)) = interpolate_vpi(results, Hz(frequency_hz)) else {
-        let frequencies = || results.iter().map(|r| r.frequency_hz);
-        return Err(StoreError::OutsideMeasuredRange {
-            serial,
-            run_id: newest.run_id,
-            frequency_hz,
-            min_hz: frequencies().fold(f64::INFINITY, f64::min),
-            max_hz: frequencies().fold(f64::NEG_INFINITY, f64::max),
-        }
-        .into());
-    };
+    let answer = device.set.vpi_at(Hz(frequency_hz), query.run_id)?;
     Ok(Json(VpiAnswer {
         serial,
-        run_id: newest.run_id,
+        run_id: answer.run_id,
+        pinned: answer.pinned,
+        selection: answer.selection,
         frequency_hz,
-        v_pi_volts: v_pi.value(),
-        v_pi_uncertainty_volts: uncertainty.value(),
-        lower_frequency_hz: lower.value(),
-        upper_frequency_hz: upper.value(),
-        interpolated: lower != upper,
+        v_pi_volts: answer.v_pi_volts.value(),
+        v_pi_uncertainty_volts: answer.v_pi_uncertainty_volts.value(),
+        lower_frequency_hz: answer.lower_frequency_hz.value(),
+        upper_frequency_hz: answer.upper_frequency_hz.value(),
+        interpolated: answer.lower_frequency_hz != answer.upper_frequency_hz,
     }))
 }
+
+/// The header naming the run a device plot shows.
+pub const RUN_ID_HEADER: &str = "halfwave-run-id";
+/// The header saying how that run was chosen (`pinned`, `newest_covering`, `newest`,
+/// `requested`).
+pub const RUN_SELECTION_HEADER: &str = "halfwave-run-selection";
+/// The header saying whether that run is the device's pinned reference calibration.
+pub const RUN_PINNED_HEADER: &str = "halfwave-run-pinned";
 
 fn curve(calibration: &Calibration) -> VpiCurve {
     VpiCurve {
@@ -258,9 +270,82 @@ fn curve(calibration: &Calibration) -> VpiCurve {
     }
 }
 
-fn svg(result: Result<String, plots::PlotError>) -> Result<Response, Problem> {
+/// The run a device plot shows and the sentence that says why.
+struct Shown<'a> {
+    calibration: &'a Calibration,
+    selection: RunSelection,
+    subtitle: String,
+}
+
+fn shown<'a>(
+    device: &'a DeviceCalibrations,
+    serial: &str,
+    requested: Option<i64>,
+) -> Result<Shown<'a>, Problem> {
+    let set = &device.set;
+    if set.runs.is_empty() {
+        return Err(Problem::not_found(format!(
+            "device {serial} has no completed calibration yet"
+        )));
+    }
+    let (run, selection) = set.plotted_run(requested)?;
+    let calibration = device
+        .history
+        .iter()
+        .find(|c| c.run_id == run.run_id)
+        .ok_or_else(|| Problem::internal("the plotted run is missing from the history"))?;
+    let range = |(lo, hi): (f64, f64)| {
+        format!(
+            "{}\u{2013}{} GHz",
+            plots::axis::ghz_label(lo / 1e9),
+            plots::axis::ghz_label(hi / 1e9)
+        )
+    };
+    let calibrated = set.calibrated_range_hz().map(range).unwrap_or_default();
+    let id = run.run_id;
+    let subtitle = match selection {
+        RunSelection::Pinned => {
+            format!("{serial}: run {id}, the pinned reference calibration")
+        }
+        RunSelection::Requested if calibration.pinned => {
+            format!("{serial}: run {id} as requested (the pinned reference calibration)")
+        }
+        RunSelection::Requested => format!("{serial}: run {id} as requested (not pinned)"),
+        RunSelection::NewestCovering => format!(
+            "{serial}: run {id}, the newest completed run covering {calibrated} (no run pinned)"
+        ),
+        RunSelection::Newest => format!(
+            "{serial}: run {id}, the newest completed run (none covers all of {calibrated}; no run pinned)"
+        ),
+    };
+    Ok(Shown {
+        calibration,
+        selection,
+        subtitle,
+    })
+}
+
+fn svg(result: Result<String, plots::PlotError>, shown: &Shown<'_>) -> Result<Response, Problem> {
     match result {
-        Ok(svg) => Ok(([(CONTENT_TYPE, "image/svg+xml")], svg).into_response()),
+        Ok(svg) => Ok((
+            [
+                (CONTENT_TYPE, "image/svg+xml".to_string()),
+                (
+                    HeaderName::from_static(RUN_ID_HEADER),
+                    shown.calibration.run_id.to_string(),
+                ),
+                (
+                    HeaderName::from_static(RUN_SELECTION_HEADER),
+                    shown.selection.as_str().to_string(),
+                ),
+                (
+                    HeaderName::from_static(RUN_PINNED_HEADER),
+                    shown.calibration.pinned.to_string(),
+                ),
+            ],
+            svg,
+        )
+            .into_response()),
         Err(plots::PlotError::Empty(what)) => {
             Err(Problem::not_found(format!("nothing to plot: {what}")))
         }
@@ -268,50 +353,68 @@ fn svg(result: Result<String, plots::PlotError>) -> Result<Response, Problem> {
     }
 }
 
-async fn calibrations(state: &AppState, serial: &str) -> Result<Arc<DeviceCalibrations>, Problem> {
-    let device = device_calibrations(state, serial).await?;
-    if device.history.is_empty() {
-        return Err(Problem::not_found(format!(
-            "device {serial} has no completed calibration yet"
-        )));
-    }
-    Ok(device)
-}
-
-/// V_pi versus frequency of the newest calibration with uncertainty bars, earlier ones overlaid.
+/// V_pi versus frequency of one calibration with uncertainty bars, the device's other
+/// calibrations overlaid (up to 8, newest first). The run shown: `run_id` if given, else the
+/// pinned reference calibration, else the newest completed run covering every calibrated
+/// frequency, else the newest; named in the subtitle and in the `Halfwave-Run-Id`,
+/// `Halfwave-Run-Selection` and `Halfwave-Run-Pinned` headers. Logarithmic frequency axis when
+/// the shown run's points are log-spaced.
 #[utoipa::path(get, path = "/api/v1/devices/{serial}/plots/v-pi.svg", tag = "plots", security(("bearer" = [])),
-    params(("serial" = String, Path, description = "Serial number")),
-    responses((status = 200, content_type = "image/svg+xml", body = String),
-              (status = 401, body = Problem), (status = 404, body = Problem)))]
+    params(("serial" = String, Path, description = "Serial number"), PlotQuery),
+    responses((status = 200, content_type = "image/svg+xml", body = String,
+               headers(("Halfwave-Run-Id" = i64, description = "The run shown"),
+                       ("Halfwave-Run-Selection" = String, description = "pinned, newest_covering, newest or requested"),
+                       ("Halfwave-Run-Pinned" = bool, description = "Whether the run shown is the pinned reference calibration"))),
+              (status = 401, body = Problem), (status = 404, body = Problem),
+              (status = 422, description = "run_id is not a completed calibration of the device", body = Problem)))]
 pub async fn vpi_plot(
     _caller: Viewer,
     State(state): State<AppState>,
     ApiPath(serial): ApiPath<String>,
+    ApiQuery(query): ApiQuery<PlotQuery>,
 ) -> Result<Response, Problem> {
-    let device = calibrations(&state, &serial).await?;
-    let history = &device.history;
-    let newest = curve(&history[0]);
-    let earlier: Vec<VpiCurve> = history.iter().skip(1).take(8).map(curve).collect();
-    svg(plots::vpi_svg(&newest, &earlier))
+    let device = device_calibrations(&state, &serial).await?;
+    let shown = shown(&device, &serial, query.run_id)?;
+    let current = curve(shown.calibration);
+    let others: Vec<VpiCurve> = device
+        .history
+        .iter()
+        .filter(|c| c.run_id != shown.calibration.run_id)
+        .take(8)
+        .map(curve)
+        .collect();
+    svg(plots::vpi_svg(&current, &others, &shown.subtitle), &shown)
 }
 
-/// The electro-optic response in dB of the newest calibration (SVG).
+/// The electro-optic response in dB of one calibration (SVG), chosen as for the V_pi plot and
+/// named the same way.
 #[utoipa::path(get, path = "/api/v1/devices/{serial}/plots/response.svg", tag = "plots", security(("bearer" = [])),
-    params(("serial" = String, Path, description = "Serial number")),
-    responses((status = 200, content_type = "image/svg+xml", body = String),
-              (status = 401, body = Problem), (status = 404, body = Problem)))]
+    params(("serial" = String, Path, description = "Serial number"), PlotQuery),
+    responses((status = 200, content_type = "image/svg+xml", body = String,
+               headers(("Halfwave-Run-Id" = i64, description = "The run shown"),
+                       ("Halfwave-Run-Selection" = String, description = "pinned, newest_covering, newest or requested"),
+                       ("Halfwave-Run-Pinned" = bool, description = "Whether the run shown is the pinned reference calibration"))),
+              (status = 401, body = Problem), (status = 404, body = Problem),
+              (status = 422, description = "run_id is not a completed calibration of the device", body = Problem)))]
 pub async fn response_plot(
     _caller: Viewer,
     State(state): State<AppState>,
     ApiPath(serial): ApiPath<String>,
+    ApiQuery(query): ApiQuery<PlotQuery>,
 ) -> Result<Response, Problem> {
-    let device = calibrations(&state, &serial).await?;
-    svg(plots::response_svg(&curve(&device.history[0])))
+    let device = device_calibrations(&state, &serial).await?;
+    let shown = shown(&device, &serial, query.run_id)?;
+    svg(
+        plots::response_svg(&curve(shown.calibration), &shown.subtitle),
+        &shown,
+    )
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::store::history::group_history;
+    use crate::store::{PinRecord, VpiHistoryEntry};
 
     #[test]
     fn absurd_frequencies_are_named() {
@@ -324,7 +427,7 @@ mod tests {
     }
 
     #[test]
-    fn history_groups_by_run_in_order() {
+    fn history_views_mark_the_pinned_run() {
         let entry = |run_id, f| VpiHistoryEntry {
             run_id,
             finished_at_unix_ms: run_id * 1000,
@@ -332,10 +435,22 @@ mod tests {
             v_pi_volts: 4.0,
             v_pi_uncertainty_volts: 0.1,
         };
-        let grouped = group_history(&[entry(9, 2e9), entry(9, 1e9), entry(4, 1e9)]);
-        assert_eq!(grouped.len(), 2);
-        assert_eq!(grouped[0].run_id, 9);
-        assert_eq!(grouped[0].points[0].frequency_hz, 1e9);
-        assert_eq!(grouped[1].points.len(), 1);
+        let set = DeviceCalibrationSet {
+            serial: "PM-1".into(),
+            pinned: Some(PinRecord {
+                device_id: 1,
+                run_id: 4,
+                pinned_by: "lab".into(),
+                pinned_at_unix_ms: 0,
+                note: String::new(),
+            }),
+            runs: group_history(vec![entry(9, 2e9), entry(9, 1e9), entry(4, 1e9)]),
+        };
+        let views = calibration_views(&set);
+        assert_eq!(views.len(), 2);
+        assert_eq!(views[0].run_id, 9);
+        assert!(!views[0].pinned && views[1].pinned);
+        assert_eq!(views[0].points[0].frequency_hz, 1e9);
+        assert_eq!(views[1].points.len(), 1);
     }
 }

@@ -10,6 +10,7 @@ pub mod chains;
 pub mod dashboard;
 pub mod devices;
 pub mod events;
+pub mod pins;
 pub mod run_control;
 pub mod runs;
 pub mod system;
@@ -117,6 +118,13 @@ pub fn route_table() -> Vec<RouteEntry> {
             get(devices::calibration_history),
         ),
         entry(Method::GET, "/devices/{serial}/v-pi", get(devices::vpi_at)),
+        entry(Method::GET, "/devices/{serial}/pin", get(pins::get_pin)),
+        entry(Method::POST, "/devices/{serial}/pin", post(pins::pin_run)),
+        entry(
+            Method::POST,
+            "/devices/{serial}/unpin",
+            post(pins::unpin_device),
+        ),
         entry(
             Method::GET,
             "/devices/{serial}/plots/v-pi.svg",

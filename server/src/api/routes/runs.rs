@@ -440,11 +440,31 @@ async fn point_of_run(
     run_id: i64,
     point_id: i64,
 ) -> Result<PointRecord, Problem> {
+    point_with_number(state, run_id, point_id)
+        .await
+        .map(|(p, _)| p)
+}
+
+/// The point of the run with its number in measuring order (see [`point_number`]).
+async fn point_with_number(
+    state: &AppState,
+    run_id: i64,
+    point_id: i64,
+) -> Result<(PointRecord, usize), Problem> {
     let points = state.store().points_of_run(run_id).await?;
+    let number = point_number(&points, point_id);
     points
         .into_iter()
         .find(|p| p.id == point_id)
+        .map(|p| (p, number))
         .ok_or_else(|| Problem::not_found(format!("run {run_id} has no point {point_id}")))
+}
+
+/// The number of a point within its run, counted from 1 in the order the points were committed
+/// (their ids): the same count as the progress events' `completed_points` when the point was
+/// measured, so the dashboard's "19 of 110 points" and a spectrum's "point 19" agree.
+pub fn point_number(points: &[PointRecord], point_id: i64) -> usize {
+    points.iter().filter(|p| p.id <= point_id).count()
 }
 
 /// The analyzer trace of one point, as JSON or CSV (`frequency_hz,power_dbm`).
@@ -533,14 +553,17 @@ fn marked_lines(point: &PointRecord) -> Vec<MarkedLine> {
         .collect()
 }
 
-async fn spectrum_of(state: &AppState, point: &PointRecord) -> Result<Response, Problem> {
+async fn spectrum_of(
+    state: &AppState,
+    point: &PointRecord,
+    number: usize,
+) -> Result<Response, Problem> {
     let trace = state.store().point_trace(point.id).await?;
     let title = format!(
-        "run {}, {:.3} GHz, {:.1} dBm, point {}",
+        "run {}, point {number}: {:.3} GHz, {:.1} dBm",
         point.run_id,
         point.frequency_hz / 1e9,
         point.generator_level_dbm,
-        point.id
     );
     // The fitted model is drawn over the trace: the analysis is run again on the stored trace
     // (with the frequency's RF-off reference when one was stored), a millisecond's work.
@@ -587,8 +610,8 @@ pub async fn point_spectrum_svg(
     State(state): State<AppState>,
     ApiPath((run_id, point_id)): ApiPath<(i64, i64)>,
 ) -> Result<Response, Problem> {
-    let point = point_of_run(&state, run_id, point_id).await?;
-    spectrum_of(&state, &point).await
+    let (point, number) = point_with_number(&state, run_id, point_id).await?;
+    spectrum_of(&state, &point, number).await
 }
 
 /// The spectrum of the run's most recently measured point (SVG): what the dashboard shows live.
@@ -607,7 +630,7 @@ pub async fn latest_spectrum_svg(
         .iter()
         .max_by_key(|p| (p.measured_at_unix_ms, p.id))
         .ok_or_else(|| Problem::not_found(format!("run {run_id} has no measured point yet")))?;
-    spectrum_of(&state, latest).await
+    spectrum_of(&state, latest, point_number(&points, latest.id)).await
 }
 
 /// Modulation index versus peak drive voltage at one frequency of a run, with the V_pi fit (SVG).
