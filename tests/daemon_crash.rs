@@ -13,7 +13,7 @@ mod daemon_support;
 use daemon_support::{stored_points, submit, Bench};
 use engine_support::{FREQUENCIES_HZ, LEVELS, POINTS};
 use halfwave::store::{RunState, Store};
-use serde_json::{json, Value};
+use serde_json::Value;
 use std::collections::HashSet;
 use std::time::Duration;
 
