@@ -147,9 +147,19 @@ async fn submit_follow_complete_history_and_v_pi() {
 
     // The submission is in the audit log under the token's name; the RF output is off.
     let audit = app.store().audit_log(100, None).await.unwrap();
-    assert!(audit
+    // One row per action (the engine, the store and the API once each wrote their own); the
+    // state changes that follow are rows of their own (`run.state`, by the daemon).
+    let submits: Vec<_> = audit
         .iter()
-        .any(|e| e.actor == "lab-b" && e.action == "run.submit"));
+        .filter(|e| e.subject == format!("run:{run_id}") && e.action != "run.state")
+        .collect();
+    assert_eq!(submits.len(), 1, "{submits:?}");
+    assert_eq!(submits[0].actor, "lab-b");
+    assert_eq!(submits[0].action, "run.submit");
+    assert!(
+        audit.iter().all(|e| !e.subject.starts_with("run ")),
+        "{audit:?}"
+    );
     assert!(!bench.sim.rf_output_on());
 
     // A finished run cannot be cancelled or resumed: 409; an unknown one: 404.

@@ -701,6 +701,13 @@ async fn the_record_verbs(
         stdout(&cancelled)
     );
     assert!(!bench.sim.rf_output_on(), "RF is off after the cancel");
+    let audit = bench.app.store().audit_log(100, None).await.unwrap();
+    let cancels: Vec<_> = audit
+        .iter()
+        .filter(|e| e.subject == format!("run:{third}") && e.action.contains("cancel"))
+        .collect();
+    assert_eq!(cancels.len(), 1, "one audit row per action: {cancels:?}");
+    assert_eq!(cancels[0].action, "run.cancel");
     let resumed = run(&["resume", &third]).await;
     failed_with(&resumed, &["409", "cancelled"]);
 }

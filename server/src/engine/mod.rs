@@ -447,20 +447,15 @@ impl Engine {
             })
             .await?
             .id;
-        store
-            .append_audit(
-                submitted_by,
-                "submit",
-                &format!("run {run_id}"),
-                &format!(
-                    "device {} on bench {}, {} points, up to {:.2} at the modulator",
-                    request.device.serial,
-                    request.bench,
-                    plan.point_count(),
-                    plan.max_level_at_modulator()
-                ),
-            )
-            .await?;
+        // The run's `run.submit` audit row is written with the run, in one transaction.
+        tracing::info!(
+            run_id,
+            device = %request.device.serial,
+            bench = %request.bench,
+            points = plan.point_count(),
+            max_at_modulator = %plan.max_level_at_modulator(),
+            "run queued"
+        );
         self.enqueue(run_id, Arc::new(plan), Arc::new(chain), HashSet::new());
         Ok(run_id)
     }
@@ -481,7 +476,7 @@ impl Engine {
         }
         self.inner
             .store
-            .append_audit(by, "cancel", &format!("run:{run_id}"), "")
+            .append_audit(by, "run.cancel", &format!("run:{run_id}"), "")
             .await?;
         let token = lock(&self.inner.cancels).get(&run_id).cloned();
         match token {
@@ -526,7 +521,7 @@ impl Engine {
         // `running`; the plan is proven again against today's limits first.
         self.inner
             .store
-            .append_audit(by, "resume", &format!("run:{run_id}"), "")
+            .append_audit(by, "run.resume", &format!("run:{run_id}"), "")
             .await?;
         self.enqueue_existing(run_id).await
     }

@@ -1,11 +1,11 @@
-//! Changing runs: submit a plan, cancel, resume. Operators only; every call is written to the
-//! audit log with the token's name.
+//! Changing runs: submit a plan, cancel, resume. Operators only; every change is written to the
+//! audit log with the token's name, once, by the engine and the store where it happens
+//! (`run.submit`, `run.cancel`, `run.resume`, subject `run:ID`).
 //!
 //! Submission parses the plan with field-naming errors and hands it to the engine, which checks
 //! every field against the bench and the safety limits and reports all invalid ones at once; a
 //! refused plan never reaches an instrument.
 
-use crate::api::audit;
 use crate::api::auth::Operator;
 use crate::api::json_body::JsonBody;
 use crate::api::params::ApiPath;
@@ -40,16 +40,7 @@ pub async fn submit_run(
     State(state): State<AppState>,
     JsonBody(plan): JsonBody<PlanRequest>,
 ) -> Result<(StatusCode, [(HeaderName, String); 1], Json<SubmittedRun>), Problem> {
-    let bench = plan.bench.clone();
     let run_id = state.engine()?.submit(plan, &caller.name).await?;
-    audit::record(
-        &state,
-        &caller.name,
-        "run.submit",
-        &format!("run {run_id}"),
-        &format!("bench {bench}"),
-    )
-    .await;
     let location = format!("/api/v1/runs/{run_id}");
     Ok((
         StatusCode::CREATED,
@@ -70,14 +61,6 @@ pub async fn cancel_run(
     ApiPath(run_id): ApiPath<i64>,
 ) -> Result<StatusCode, Problem> {
     state.engine()?.cancel(run_id, &caller.name).await?;
-    audit::record(
-        &state,
-        &caller.name,
-        "run.cancel",
-        &format!("run {run_id}"),
-        "",
-    )
-    .await;
     Ok(StatusCode::ACCEPTED)
 }
 
@@ -94,13 +77,5 @@ pub async fn resume_run(
     ApiPath(run_id): ApiPath<i64>,
 ) -> Result<StatusCode, Problem> {
     state.engine()?.resume(run_id, &caller.name).await?;
-    audit::record(
-        &state,
-        &caller.name,
-        "run.resume",
-        &format!("run {run_id}"),
-        "",
-    )
-    .await;
     Ok(StatusCode::ACCEPTED)
 }
