@@ -715,13 +715,19 @@ fn params_shape<'a>(base: &'a LineShape, p: &[f64; NP]) -> Cow<'a, LineShape> {
 }
 
 /// The parameters free in this step: a width whose part has no weight (eta at 0 or 1) is held.
+/// See [`free_parameters`].
+const PART_HELD: f64 = 1e-3;
+
 fn free_parameters(base: &[bool; NP], p: &[f64; NP]) -> [bool; NP] {
     let mut active = *base;
     if base[ETA] {
-        if p[ETA] <= 1e-9 {
+        // A part under a thousandth of the peak: its width is held (a Lorentzian of weight
+        // 1e-5 and any width fits a nearly Gaussian line equally well, and its width then
+        // creeps for tens of steps that change nothing else).
+        if p[ETA] <= PART_HELD {
             active[LN_WIDTH_L] = false;
         }
-        if p[ETA] >= 1.0 - 1e-9 {
+        if p[ETA] >= 1.0 - PART_HELD {
             active[LN_WIDTH] = false;
         }
     }
@@ -1061,8 +1067,8 @@ fn set_windows(prob: &mut Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Wo
 
 /// Cuts the intervals under the lines into segments: each as long as the model at `p` stays
 /// within [`SEGMENT_TOLERANCE_DB`] of its quadratic through the segment's ends and middle (checked
-/// at the quarter points), and ending at the next line centre, so that every line's peak is a
-/// node and no line can hide between the checked points.
+/// at the quarter points), and never reaching past half the distance to the nearest line centre,
+/// so that no line can hide between the checked points.
 fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Workspace) {
     let table = BesselTable::get();
     let nmax = prob.max_order;
@@ -1089,11 +1095,15 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
         DB_PER_NEPER * m.max(1e-300).ln()
     };
     let centres = &ws.centres;
-    // Points to the next line centre after `i`: segments end there, so that every line's peak
-    // is a node and no line can hide between a segment's checked points.
-    let to_next_centre = |i: usize| -> usize {
-        let k = centres.partition_point(|c| *c <= i);
-        centres.get(k).map_or(usize::MAX, |c| c - i)
+    let nearest_centre = |i: usize| -> usize {
+        let k = centres.partition_point(|c| *c < i);
+        let after = centres.get(k).map_or(usize::MAX, |c| c - i);
+        let before = if k > 0 {
+            i - centres[k - 1]
+        } else {
+            usize::MAX
+        };
+        after.min(before)
     };
     let freq = prob.freq;
     let level = prob.level;
@@ -1114,7 +1124,7 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
         // few model evaluations per segment.
         let mut previous = 4;
         while a < hi {
-            let reach = to_next_centre(a).clamp(2, MAX_SEGMENT_POINTS);
+            let reach = (nearest_centre(a) / 2).clamp(2, MAX_SEGMENT_POINTS);
             let mut len = reach.min(hi - a).min(2 * previous);
             let level_c = loop {
                 let (b, c) = (a + len / 2, a + len);
@@ -1463,7 +1473,26 @@ fn fit_once(
                 lambda = f64::INFINITY;
             }
         } else {
-            lambda *= 4.0;
+            // Refused. When the undamped (Gauss-Newton) step from here promises under 0.001 in
+            // chi-squared, the fit stands at the minimum of its quadratic model (beta within
+            // about 0.03 of its uncertainty of it): further refusals, each a whole evaluation,
+            // would only raise the damping until it stops.
+            let dof = (eval.points as f64 + prob.block_n - NP as f64).max(1.0);
+            let variance = (eval.ssr / dof).max(1e-300);
+            let mut undamped = eval.jtj;
+            for i in 0..NP {
+                undamped[i][i] += 1e-30;
+            }
+            let promised = solve(&undamped, &neg, &prob.active).map(|step| {
+                (0..NP)
+                    .filter(|&i| prob.active[i])
+                    .map(|i| step[i] * neg[i])
+                    .sum::<f64>()
+            });
+            lambda = match promised {
+                Some(gain) if gain / variance < 1e-3 => f64::INFINITY,
+                _ => lambda * 4.0,
+            };
         }
     }
     let n_total = eval.points as f64 + prob.block_n;
