@@ -1657,7 +1657,13 @@ mod tests {
 
     /// The fitted beta and its statistical uncertainty with segments (the fast path) and with
     /// every point a node (the exact sum); they must agree to 0.05 standard uncertainties.
-    fn assert_fast_matches_exact(label: &str, trace: &Trace, spacing: Hz, shape: &LineShape) {
+    /// Returns the exact fit.
+    fn assert_fast_matches_exact(
+        label: &str,
+        trace: &Trace,
+        spacing: Hz,
+        shape: &LineShape,
+    ) -> WholeTraceFit {
         let (start, comb) = start_for(trace, spacing);
         let fit = |tolerance: f64| {
             fit_trace_segmented(
@@ -1686,6 +1692,7 @@ mod tests {
             fast.uncertainty_statistical,
             exact.uncertainty_statistical
         );
+        exact
     }
 
     #[test]
@@ -1760,34 +1767,8 @@ mod tests {
         let shape = LineShape::measured(&reference, 8.0).unwrap();
         for (seed, beta) in [0.3, 1.2, 2.405, 3.4].into_iter().enumerate() {
             let trace = rendered(beta, 193.4e12 - 37e6, 10 + seed as u64);
-            let comb = measure_comb(&trace, Hz(200e6), None, &AnalysisOptions::default()).unwrap();
-            let data = FitData::new(&comb.lines, comb.floor_mw, comb.floor_uncertainty_mw);
-            let start = FitStart::from_comb(&comb, least_squares(&data).unwrap().value);
-            let fit = |tolerance: f64| {
-                fit_trace_segmented(
-                    &trace,
-                    Hz(200e6),
-                    &shape,
-                    &start,
-                    comb.noise_sigma_db,
-                    tolerance,
-                )
-                .unwrap()
-                .0
-            };
-            let (segmented, exact) = (fit(SEGMENT_TOLERANCE_DB), fit(0.0));
-            let moved = (segmented.modulation_index - exact.modulation_index).abs();
-            assert!(
-                moved <= 0.05 * exact.uncertainty_statistical,
-                "beta {beta}: segmented {} against exact {} (u {})",
-                segmented.modulation_index,
-                exact.modulation_index,
-                exact.uncertainty_statistical
-            );
-            assert!(
-                (segmented.uncertainty_statistical / exact.uncertainty_statistical - 1.0).abs()
-                    < 0.02
-            );
+            let exact =
+                assert_fast_matches_exact(&format!("beta {beta}"), &trace, Hz(200e6), &shape);
             assert!((exact.modulation_index - beta).abs() < 0.01 * beta);
         }
     }
