@@ -8,6 +8,7 @@
 //! - [`bessel`]: J_n tabulated once for fast fitting, with its reference checks.
 //! - [`comb`]: finding the comb on a trace and measuring its lines and floor.
 //! - [`fit`]: the whole displayed trace fitted with the instrument's line shape (the primary).
+//! - `smooth_shape`: the measured line shape smoothed (ln K as a penalised cubic B-spline).
 //! - [`spacing`]: the line spacing read from the trace alone.
 //! - [`index`]: the modulation index by least squares, sideband ratio and carrier depletion.
 //! - [`trace_analysis`]: one trace in, every estimate and the line table out.
@@ -25,6 +26,7 @@ pub mod error;
 pub mod fit;
 pub mod index;
 pub mod response;
+mod smooth_shape;
 pub mod spacing;
 pub mod synthetic;
 pub mod trace_analysis;
