@@ -91,16 +91,21 @@ fn source_url(choice: &DatabaseChoice) -> Result<String, CliError> {
         .map_err(|e| CliError::new(e.to_string()))
 }
 
-fn source_options(url: &str) -> Result<SqliteConnectOptions, CliError> {
-    let options = if url.starts_with("sqlite:") {
+/// The connect options a `sqlite:` URL or a file path names, parsed as sqlx parses them.
+pub fn url_options(url: &str) -> Result<SqliteConnectOptions, CliError> {
+    if url.starts_with("sqlite:") {
         SqliteConnectOptions::from_str(url).map_err(|e| {
             CliError::new(format!(
                 "{url:?} is not a usable SQLite URL ({e}); give sqlite://PATH or a file path"
             ))
-        })?
+        })
     } else {
-        SqliteConnectOptions::new().filename(url)
-    };
+        Ok(SqliteConnectOptions::new().filename(url))
+    }
+}
+
+fn source_options(url: &str) -> Result<SqliteConnectOptions, CliError> {
+    let options = url_options(url)?;
     let file = options.get_filename().to_path_buf();
     if !file.is_file() {
         return Err(CliError::new(format!(

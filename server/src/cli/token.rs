@@ -80,28 +80,15 @@ pub fn database_url(choice: &DatabaseChoice) -> Result<String, CliError> {
     Ok(config.database_url())
 }
 
-/// The file a `--database` URL or path names (`None` for an in-memory database).
-fn database_file(url: &str) -> Option<PathBuf> {
-    if url.contains(":memory:") || url.contains("mode=memory") {
-        return None;
-    }
-    let path = match url.strip_prefix("sqlite:") {
-        Some(rest) => rest
-            .trim_start_matches("//")
-            .split('?')
-            .next()
-            .unwrap_or(rest),
-        None => url,
-    };
-    Some(PathBuf::from(path))
-}
-
 /// Opens the chosen database. A `--database` file that does not exist is refused unless `create`
 /// (a typo must not make a new empty database and a token the daemon will refuse); the database
 /// of a configuration file is created, as the daemon itself would at its first start.
 async fn open(choice: &DatabaseChoice, create: bool) -> Result<Store, CliError> {
     if let (Some(url), false) = (&choice.database, create) {
-        if let Some(file) = database_file(url).filter(|f| !f.exists()) {
+        let options = super::db::url_options(url)?;
+        let file = options.get_filename();
+        let in_memory = file.as_os_str().is_empty() || file.as_os_str() == ":memory:";
+        if !in_memory && !file.exists() {
             return Err(CliError::new(format!(
                 "there is no database at {}; check --database (the daemon's is `data_dir`/halfwave.db of its configuration, or pass --config FILE), or add --create to make a new one",
                 file.display()

@@ -900,44 +900,38 @@ impl BenchSlot {
     }
 
     /// Asks both instruments who they are and records them; failures are logged, not fatal
-    /// (the daemon must start to switch RF off even with an analyzer missing).
-    async fn refresh_identities(&self, store: &Store) {
+    /// (the daemon must start to switch RF off even with an analyzer missing). Returns the
+    /// stored instrument rows that were recorded, by role.
+    async fn refresh_identities(&self, store: &Store) -> Vec<(&'static str, i64)> {
         let source = self.source.lock().await.identify().await;
         let analyzer = self.analyzer.lock().await.identify().await;
+        let mut recorded = Vec::with_capacity(2);
         for (role, result, resource) in [
             ("source", &source, &self.source_resource),
             ("analyzer", &analyzer, &self.analyzer_resource),
         ] {
             match result {
-                Ok(id) => {
-                    if let Err(e) = store.record_instrument_seen(id, resource).await {
-                        tracing::warn!(bench = %self.name, role, error = %e, "could not record the instrument identity");
+                Ok(id) => match store.record_instrument_seen(id, resource).await {
+                    Ok(instrument) => recorded.push((role, instrument.id)),
+                    Err(e) => {
+                        tracing::warn!(bench = %self.name, role, error = %e, "could not record the instrument identity")
                     }
-                }
+                },
                 Err(e) => {
                     tracing::warn!(bench = %self.name, role, error = %e, "instrument did not identify")
                 }
             }
         }
         *lock(&self.identities) = (source.ok(), analyzer.ok());
+        recorded
     }
 
-    /// Asks both instruments who they are as a run starts (or resumes) and records them as the
-    /// run's instruments, so the record says what measured it. Failures are logged: a missing
-    /// identity must not stop a run whose instruments answer their commands.
+    /// Asks both instruments who they are as a run starts (or resumes) and links the recorded
+    /// identities to the run, so the record says what measured it. Failures are logged: a
+    /// missing identity must not stop a run whose instruments answer their commands.
     async fn record_run_instruments(&self, store: &Store, run_id: i64) {
-        self.refresh_identities(store).await;
-        let (source, analyzer) = lock(&self.identities).clone();
-        for (role, identity, resource) in [
-            ("source", source, &self.source_resource),
-            ("analyzer", analyzer, &self.analyzer_resource),
-        ] {
-            let Some(identity) = identity else { continue };
-            let linked = match store.record_instrument_seen(&identity, resource).await {
-                Ok(instrument) => store.link_run_instrument(run_id, role, instrument.id).await,
-                Err(e) => Err(e),
-            };
-            if let Err(e) = linked {
+        for (role, instrument_id) in self.refresh_identities(store).await {
+            if let Err(e) = store.link_run_instrument(run_id, role, instrument_id).await {
                 tracing::warn!(run_id, role, error = %e, "could not record the run's instrument");
             }
         }
