@@ -358,6 +358,14 @@ async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
     let shown = run(with(&["show", &id])).await;
     assert!(shown.status.success(), "{}", stderr(&shown));
     assert!(stdout(&shown).contains("8.000 GHz"), "{}", stdout(&shown));
+    // show names the instruments that measured the run, each on its own line.
+    for role in ["source   ", "analyzer "] {
+        assert!(
+            stdout(&shown).lines().any(|l| l.starts_with(role)),
+            "{}",
+            stdout(&shown)
+        );
+    }
     let listed = run(with(&[
         "runs",
         "--device",

@@ -15,7 +15,7 @@ use halfwave::config::Config;
 use halfwave::engine::Engine;
 use halfwave::store::{ChainCalibrationPoint, Store};
 use halfwave_units::{Db, Hz};
-use independent_support::{true_v_pi, IndependentBench, Role};
+use independent_support::{true_v_pi, BenchAxis, BenchOptions, IndependentBench, Role};
 
 /// Writes a daemon configuration for the independent bench (with the analyzer profile when
 /// `with_profile`) and returns its path.
@@ -114,17 +114,12 @@ async fn check_bench_reports_the_choices_and_suggests_the_missing_profile_key() 
     assert!(!bench.truth.lock().unwrap().output_on);
 }
 
-#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn a_whole_calibration_against_an_independent_bench_by_configuration_only() {
+/// Runs the test plan against `bench` with `profile_text` as the analyzer's profile and checks
+/// every fitted V_pi within 0.3 % of the bench's truth, RF off after the run.
+async fn calibrate_and_check(bench: &IndependentBench, profile_text: &str) -> i64 {
     let dir = tempfile::tempdir().unwrap();
-    let bench = IndependentBench::start().await;
-    // The only adaptation: this analyzer sweeps only when told to and has no continuous mode.
     let profile = dir.path().join("analyzer.toml");
-    std::fs::write(
-        &profile,
-        "kind = \"spectrum_analyzer\"\n[commands]\nsingle_sweep_mode = \"\"\n",
-    )
-    .unwrap();
+    std::fs::write(&profile, profile_text).unwrap();
     let text = format!(
         "data_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\", profile = \"{}\" }}\n",
         dir.path().join("data").display(),
@@ -176,14 +171,166 @@ async fn a_whole_calibration_against_an_independent_bench_by_configuration_only(
             error * 100.0
         );
     }
-    {
-        let truth = bench.truth.lock().unwrap();
-        assert!(!truth.output_on, "RF must be off after the run");
-        // The optional nodes were asked once each at connect, never again.
-        let asked = |q: &str| truth.analyzer_log.iter().filter(|c| *c == q).count();
-        assert_eq!(asked("FREQuency:STARt?"), 1, "probed once");
-        assert_eq!(asked("INITiate:CONTinuous OFF"), 0);
-        assert!(truth.source_log.iter().any(|c| c == "POWer? MAXimum"));
-    }
+    // The record says how the analyzer's axis was read.
+    let instruments = store.run_instruments(run_id).await.unwrap();
+    let analyzer = instruments
+        .iter()
+        .find(|i| i.role == "analyzer")
+        .expect("the analyzer is recorded with the run");
+    assert!(
+        analyzer
+            .connection
+            .iter()
+            .any(|n| n.item == "frequency axis" && n.value.starts_with("center_span via")),
+        "{:?}",
+        analyzer.connection
+    );
+    assert!(
+        !bench.truth.lock().unwrap().output_on,
+        "RF must be off after the run"
+    );
     engine.shutdown().await;
+    run_id
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_whole_calibration_against_an_independent_bench_by_configuration_only() {
+    let bench = IndependentBench::start().await;
+    // The only adaptation: this analyzer sweeps only when told to and has no continuous mode.
+    calibrate_and_check(
+        &bench,
+        "kind = \"spectrum_analyzer\"\n[commands]\nsingle_sweep_mode = \"\"\n",
+    )
+    .await;
+    let truth = bench.truth.lock().unwrap();
+    // The optional nodes were asked once each at connect, never again.
+    let asked = |q: &str| truth.analyzer_log.iter().filter(|c| *c == q).count();
+    assert_eq!(asked("FREQuency:STARt?"), 1, "probed once");
+    assert_eq!(asked("INITiate:CONTinuous OFF"), 0);
+    assert!(truth.source_log.iter().any(|c| c == "POWer? MAXimum"));
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_wavelength_analyzer_in_air_with_a_trace_in_watts_calibrates_by_configuration() {
+    // An analyzer set and read in air wavelengths (metres), resolution in metres, trace in
+    // watts: the profile names its commands, the axis unit and medium, and the power unit. The
+    // bench converts with its own air formula (Birch and Downs 1994), the drivers with
+    // Edlén 1966; V_pi must still come out within 0.3 % of the truth.
+    let bench = IndependentBench::start_with(BenchOptions {
+        axis: BenchAxis::Wavelength { air: true },
+        trace_in_watts: true,
+    })
+    .await;
+    calibrate_and_check(
+        &bench,
+        r#"kind = "spectrum_analyzer"
+[commands]
+single_sweep_mode = ""
+set_center = "SENSe:WAVelength:CENTer {value}"
+query_center = "SENSe:WAVelength:CENTer?"
+set_span = "SENSe:WAVelength:SPAN {value}"
+query_span = "SENSe:WAVelength:SPAN?"
+query_start = "SENSe:WAVelength:STARt?"
+query_stop = "SENSe:WAVelength:STOP?"
+[axis]
+unit = "m"
+medium = "air"
+[data]
+power_unit = "watt"
+"#,
+    )
+    .await;
+    let truth = bench.truth.lock().unwrap();
+    // Settings went over in metres: the centre sits near 1550 nm in air.
+    assert!(
+        (truth.center_m - 1549.7e-9).abs() < 1e-9,
+        "centre {} m",
+        truth.center_m
+    );
+    assert!(truth
+        .analyzer_log
+        .iter()
+        .any(|c| c.starts_with("SENSe:WAVelength:SPAN 0.000000")));
+}
+
+/// The analyzer profile for the wavelength bench, with the medium given.
+fn wavelength_profile(medium: &str) -> halfwave_drivers::AnalyzerProfile {
+    halfwave_drivers::AnalyzerProfile::from_toml_str(
+        &format!(
+            r#"kind = "spectrum_analyzer"
+[commands]
+single_sweep_mode = ""
+set_center = "SENSe:WAVelength:CENTer {{value}}"
+query_center = "SENSe:WAVelength:CENTer?"
+set_span = "SENSe:WAVelength:SPAN {{value}}"
+query_span = "SENSe:WAVelength:SPAN?"
+[axis]
+unit = "m"
+medium = "{medium}"
+[data]
+power_unit = "watt"
+"#
+        ),
+        "test",
+    )
+    .expect("profile parses")
+}
+
+/// Sweeps the bench's laser (RF off) with the wavelength profile and returns where the line
+/// peaks and its level, the trace's ends and its stated resolution bandwidth (hertz, dBm).
+async fn laser_line_seen_through(medium: &str) -> (f64, f64, f64, f64, f64) {
+    use halfwave_drivers::SpectrumAnalyzer;
+    let bench = IndependentBench::start_with(BenchOptions {
+        axis: BenchAxis::Wavelength { air: true },
+        trace_in_watts: true,
+    })
+    .await;
+    let mut analyzer = halfwave_drivers::ScpiSpectrumAnalyzer::connect(
+        &bench.resource(Role::Analyzer),
+        wavelength_profile(medium),
+    )
+    .await
+    .expect("connects");
+    analyzer
+        .set_center(Hz(independent_support::LASER_HZ))
+        .await
+        .unwrap();
+    analyzer.set_span(Hz(20e9)).await.unwrap();
+    let rbw = analyzer.set_resolution_bandwidth(Hz(5e6)).await.unwrap();
+    assert!((rbw.0 / 5e6 - 1.0).abs() < 0.01, "read back {rbw}");
+    analyzer.set_points(2001).await.unwrap();
+    analyzer.sweep().await.unwrap();
+    let trace = analyzer.fetch_trace().await.unwrap();
+    let f = trace.frequency_hz();
+    let p = trace.power_dbm();
+    let peak = (0..f.len()).max_by(|&a, &b| p[a].total_cmp(&p[b])).unwrap();
+    (
+        f[peak],
+        p[peak],
+        f[0],
+        f[f.len() - 1],
+        trace.resolution_bandwidth().map_or(f64::NAN, |b| b.0),
+    )
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_wavelength_axis_in_air_puts_the_laser_where_it_is() {
+    // The bench's laser is at LASER_HZ. Read with the right medium the line sits there within
+    // a point (the trace arrives in ascending frequency, 20 GHz wide, its resolution stated in
+    // hertz); read as vacuum wavelengths it would be n - 1 = 2.7e-4 of 193 THz (53 GHz) off
+    // (Edlén 1966), outside the span.
+    let (peak, level, first, last, rbw) = laser_line_seen_through("air").await;
+    let step = (last - first) / 2000.0;
+    assert!(
+        (peak - independent_support::LASER_HZ).abs() <= 1.5 * step,
+        "peak at {peak} Hz, laser at {} Hz",
+        independent_support::LASER_HZ
+    );
+    assert!(first < last && ((last - first) / 20e9 - 1.0).abs() < 1e-3);
+    assert!((rbw / 5e6 - 1.0).abs() < 0.01, "{rbw}");
+    let (_, level_vacuum, ..) = laser_line_seen_through("vacuum").await;
+    assert!(
+        level > independent_support::OPTICAL_DBM - 3.0 && level_vacuum < level - 30.0,
+        "the medium must matter: the laser shows at {level} dBm read as air, and read as vacuum the window misses it ({level_vacuum} dBm at most)"
+    );
 }

@@ -575,12 +575,40 @@ impl std::fmt::Display for AxisMethod {
     }
 }
 
+/// The unit the analyzer's axis settings and replies are in (the `[axis]` table's `unit`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum AxisUnit {
+    /// Optical frequency in hertz (centre, span, start/stop, resolution bandwidth, axis).
+    #[default]
+    Hz,
+    /// Wavelength in metres: centre, span, start/stop, resolution bandwidth and the axis query
+    /// are all wavelengths, in the profile's `axis.medium`. The driver converts every setting
+    /// and every point to optical frequency, so the trace reaches the analysis in hertz.
+    #[serde(alias = "metre", alias = "meter")]
+    M,
+}
+
+impl std::fmt::Display for AxisUnit {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(match self {
+            AxisUnit::Hz => "hz",
+            AxisUnit::M => "m",
+        })
+    }
+}
+
 /// The `[axis]` table.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
 #[serde(default, deny_unknown_fields)]
 pub struct AxisProfile {
     /// `probe` (default), `start_stop`, `center_span` or `query`.
     pub method: AxisMethod,
+    /// `hz` (default) or `m` (wavelength in metres).
+    pub unit: AxisUnit,
+    /// For `unit = "m"`: `vacuum` (default) or `standard_air` (alias `air`; Edlén 1966, see
+    /// `halfwave_units::wavelength`). The instrument's manual says which it reports.
+    pub medium: halfwave_units::Medium,
 }
 
 /// What the analyzer can do (reported through the trait; requests outside are refused).
@@ -748,6 +776,11 @@ impl AnalyzerProfile {
             self.axis.method != AxisMethod::Query || !c.query_axis.trim().is_empty(),
             "must name the instrument's axis query when axis.method = \"query\"",
         );
+        check.require(
+            "axis.medium",
+            self.axis.unit == AxisUnit::M || self.axis.medium == halfwave_units::Medium::Vacuum,
+            "applies only to a wavelength axis: set axis.unit = \"m\" as well, or remove it",
+        );
         let k = &self.capabilities;
         check.require(
             "capabilities.min_frequency_hz",
@@ -816,6 +849,29 @@ impl AnalyzerProfile {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_wavelength_axis_is_declared_with_its_unit_and_medium() {
+        let text = "kind = \"spectrum_analyzer\"\n[axis]\nunit = \"m\"\nmedium = \"air\"\n";
+        let profile = AnalyzerProfile::from_toml_str(text, "inline").unwrap();
+        assert_eq!(profile.axis.unit, AxisUnit::M);
+        assert_eq!(profile.axis.medium, halfwave_units::Medium::StandardAir);
+        // A medium on a frequency axis means nothing: refused, naming the key and the fix.
+        let text = "kind = \"spectrum_analyzer\"\n[axis]\nmedium = \"standard_air\"\n";
+        let err = AnalyzerProfile::from_toml_str(text, "inline")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            err.contains("axis.medium") && err.contains("axis.unit = \"m\""),
+            "{err}"
+        );
+        // An unknown unit is named by serde.
+        let text = "kind = \"spectrum_analyzer\"\n[axis]\nunit = \"nm\"\n";
+        let err = AnalyzerProfile::from_toml_str(text, "inline")
+            .unwrap_err()
+            .to_string();
+        assert!(err.contains("nm"), "{err}");
+    }
 
     #[test]
     fn an_empty_profile_is_the_standard_tree() {

@@ -13,6 +13,11 @@
 //! from puruspe), beta = pi V_pk / V_pi with V_pk = sqrt(2 R P_rf) into R = 50 ohm, each line
 //! drawn as a Gaussian of the resolution bandwidth (FWHM) on a flat floor with a little
 //! deterministic display noise. It uses nothing of the project's analysis code.
+//!
+//! Options a lab's analyzer may have ([`BenchOptions`]): an axis in **wavelength** (metres, in
+//! vacuum or in standard air, set and read through `[SENSe:]WAVelength:CENTer`/`SPAN`, with
+//! the resolution bandwidth in metres too; air by the revised Edlén equation of Birch and Downs,
+//! Metrologia 31, 315 (1994), not the formula the drivers use), and a trace in **watts**.
 
 #![allow(dead_code)]
 
@@ -152,6 +157,62 @@ impl ErrorQueue {
     }
 }
 
+/// Speed of light in vacuum, m/s (exact, SI definition).
+const C_M_PER_S: f64 = 299_792_458.0;
+
+/// Refractive index of standard air (dry, 15 °C, 101 325 Pa, 450 ppm CO2) at the vacuum
+/// wavelength `vacuum_m`: the revised Edlén equation, Birch and Downs, Metrologia 31, 315
+/// (1994), coefficients from memory: (n - 1) 1e8 = 8342.54 + 2406147 / (130 - s^2) +
+/// 15998 / (38.9 - s^2), s in inverse micrometres.
+pub fn air_index(vacuum_m: f64) -> f64 {
+    let s2 = (1e-6 / vacuum_m).powi(2);
+    1.0 + (8342.54 + 2_406_147.0 / (130.0 - s2) + 15_998.0 / (38.9 - s2)) * 1e-8
+}
+
+/// How the analyzer states its axis.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub enum BenchAxis {
+    /// Frequency in hertz, `[SENSe:]FREQuency:CENTer`/`SPAN` (the default).
+    #[default]
+    Frequency,
+    /// Wavelength in metres, `[SENSe:]WAVelength:CENTer`/`SPAN`; `air`: wavelengths in standard
+    /// air, else in vacuum.
+    Wavelength { air: bool },
+}
+
+/// Options of the bench's analyzer.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct BenchOptions {
+    pub axis: BenchAxis,
+    /// `TRACe[:DATA]?` in watts instead of dBm.
+    pub trace_in_watts: bool,
+}
+
+impl BenchAxis {
+    /// The wavelength in this axis's medium of light at `f_hz`.
+    fn wavelength(self, f_hz: f64) -> f64 {
+        let vacuum = C_M_PER_S / f_hz;
+        match self {
+            BenchAxis::Wavelength { air: true } => vacuum / air_index(vacuum),
+            _ => vacuum,
+        }
+    }
+
+    /// The optical frequency of light whose wavelength in this axis's medium is `l_m`.
+    fn frequency(self, l_m: f64) -> f64 {
+        match self {
+            BenchAxis::Wavelength { air: true } => {
+                let mut vacuum = l_m;
+                for _ in 0..5 {
+                    vacuum = air_index(vacuum) * l_m;
+                }
+                C_M_PER_S / vacuum
+            }
+            _ => C_M_PER_S / l_m,
+        }
+    }
+}
+
 // ---------------------------------------------------------------------------------------------
 // Instrument state
 
@@ -177,6 +238,11 @@ pub struct Truth {
     /// Every command unit received, per instrument, for the test's assertions.
     pub source_log: Vec<String>,
     pub analyzer_log: Vec<String>,
+    pub options: BenchOptions,
+    /// The wavelength settings (metres) when the axis is in wavelength.
+    pub center_m: f64,
+    pub span_m: f64,
+    pub rbw_m: f64,
 }
 
 impl Default for Truth {
@@ -198,6 +264,10 @@ impl Default for Truth {
             analyzer_errors: ErrorQueue::default(),
             source_log: Vec::new(),
             analyzer_log: Vec::new(),
+            options: BenchOptions::default(),
+            center_m: 1550e-9,
+            span_m: 0.4e-9,
+            rbw_m: 0.08e-12,
         }
     }
 }
@@ -234,18 +304,43 @@ impl Truth {
             })
             .filter(|(_, p)| *p > 1e-14)
             .collect();
-        let start = self.center_hz - self.span_hz / 2.0;
-        let step = self.span_hz / (self.points - 1) as f64;
-        let sigma = self.rbw_hz / (2.0 * (2.0 * std::f64::consts::LN_2).sqrt());
+        // Where each point sits in optical frequency: a grid uniform in the axis's own unit.
+        let (positions, rbw_hz): (Vec<f64>, f64) = match self.options.axis {
+            BenchAxis::Frequency => {
+                let start = self.center_hz - self.span_hz / 2.0;
+                let step = self.span_hz / (self.points - 1) as f64;
+                let x = (0..self.points).map(|i| start + step * i as f64).collect();
+                (x, self.rbw_hz)
+            }
+            axis @ BenchAxis::Wavelength { .. } => {
+                let start = self.center_m - self.span_m / 2.0;
+                let step = self.span_m / (self.points - 1) as f64;
+                let x = (0..self.points)
+                    .map(|i| axis.frequency(start + step * i as f64))
+                    .collect();
+                // The resolution is a wavelength width: its frequency width at the centre.
+                let h = 1e-13;
+                let per_metre = (axis.frequency(self.center_m - h)
+                    - axis.frequency(self.center_m + h))
+                    / (2.0 * h);
+                (x, self.rbw_m * per_metre)
+            }
+        };
+        let sigma = rbw_hz / (2.0 * (2.0 * std::f64::consts::LN_2).sqrt());
         let floor_mw = 10f64.powf(FLOOR_DBM / 10.0);
         let mut trace = Vec::with_capacity(self.points);
         for i in 0..self.points {
-            let x = start + step * i as f64;
+            let x = positions[i];
+            let step = if i + 1 < self.points {
+                (positions[i + 1] - x).abs()
+            } else {
+                (x - positions[i - 1]).abs()
+            };
             let mut p = floor_mw;
             for &(f, power) in &lines {
                 // Coarser than the resolution, a point shows the strongest response within its
                 // bin (a peak detector, common practice); finer, the response at its frequency.
-                let d = if step > self.rbw_hz {
+                let d = if step > rbw_hz {
                     ((x - f).abs() - step / 2.0).max(0.0)
                 } else {
                     (x - f).abs()
@@ -286,7 +381,9 @@ fn number_with_suffix(text: &str) -> Option<f64> {
     let value: f64 = digits.trim().parse().ok()?;
     // Suffix multipliers (SCPI-1999 Vol 1 7.7.3): MHZ is mega, MA mega, K kilo, G giga.
     let scale = match suffix.trim().to_ascii_uppercase().as_str() {
-        "" | "HZ" | "DBM" => 1.0,
+        "" | "HZ" | "DBM" | "M" => 1.0,
+        "NM" => 1e-9,
+        "UM" => 1e-6,
         "KHZ" => 1e3,
         "MHZ" | "MAHZ" => 1e6,
         "GHZ" => 1e9,
@@ -526,6 +623,11 @@ fn analyzer_command(
         return outcome;
     }
     let is = |notation: &str| header_matches(keywords, &pattern(notation));
+    if let BenchAxis::Wavelength { .. } = truth.options.axis {
+        if let Some(outcome) = wavelength_command(truth, keywords, query, params) {
+            return outcome;
+        }
+    }
     if is("[SENSe:]FREQuency:CENTer") {
         let now = truth.center_hz;
         return numeric(query, params, now, (180e12, 240e12), &mut |v| {
@@ -606,12 +708,61 @@ fn analyzer_command(
         };
     }
     if is("TRACe[:DATA]") && query {
-        let Some(trace) = truth.trace.clone() else {
+        let Some(mut trace) = truth.trace.clone() else {
             return Err((-230, "Data corrupt or stale"));
         };
+        if truth.options.trace_in_watts {
+            for v in trace.iter_mut() {
+                *v = 10f64.powf((*v - 30.0) / 10.0);
+            }
+        }
         return Ok(Some(encode(&trace, truth.format_bits, truth.swapped)));
     }
     Err(UNDEFINED_HEADER)
+}
+
+/// The axis and resolution commands of a wavelength analyzer (all in metres); the frequency
+/// forms are then undefined headers. `None` for any other command.
+fn wavelength_command(
+    truth: &mut Truth,
+    keywords: &[String],
+    query: bool,
+    params: &[&str],
+) -> Option<Outcome> {
+    let is = |notation: &str| header_matches(keywords, &pattern(notation));
+    if is("[SENSe:]FREQuency:CENTer") || is("[SENSe:]FREQuency:SPAN") {
+        return Some(Err(UNDEFINED_HEADER));
+    }
+    if is("[SENSe:]WAVelength:CENTer") {
+        let now = truth.center_m;
+        return Some(numeric(query, params, now, (1250e-9, 1650e-9), &mut |v| {
+            truth.center_m = v
+        }));
+    }
+    if is("[SENSe:]WAVelength:SPAN") {
+        let now = truth.span_m;
+        return Some(numeric(query, params, now, (1e-12, 100e-9), &mut |v| {
+            truth.span_m = v
+        }));
+    }
+    if is("[SENSe:]BANDwidth[:RESolution]") {
+        // The offered bandwidths are the frequency ones as wavelength widths at 1550 nm
+        // (d lambda = lambda^2 d f / c).
+        let offered: Vec<f64> = RBW_HZ
+            .iter()
+            .map(|b| 1550e-9 * 1550e-9 * b / C_M_PER_S)
+            .collect();
+        let now = truth.rbw_m;
+        let range = (offered[0] / 2.0, offered[offered.len() - 1] * 2.0);
+        return Some(numeric(query, params, now, range, &mut |v| {
+            truth.rbw_m = offered
+                .iter()
+                .copied()
+                .min_by(|a, b| (a - v).abs().total_cmp(&(b - v).abs()))
+                .unwrap_or(v)
+        }));
+    }
+    None
 }
 
 /// ASCII (NR3 values separated by commas) or a definite-length block `#<d><len><bytes>` of
@@ -649,7 +800,15 @@ pub struct IndependentBench {
 
 impl IndependentBench {
     pub async fn start() -> IndependentBench {
-        let truth = Arc::new(Mutex::new(Truth::default()));
+        IndependentBench::start_with(BenchOptions::default()).await
+    }
+
+    /// A bench whose analyzer has the given options.
+    pub async fn start_with(options: BenchOptions) -> IndependentBench {
+        let truth = Arc::new(Mutex::new(Truth {
+            options,
+            ..Truth::default()
+        }));
         let source = listen(truth.clone(), Role::Source).await;
         let analyzer = listen(truth.clone(), Role::Analyzer).await;
         IndependentBench {
@@ -734,6 +893,25 @@ fn the_bench_answers_as_the_standards_say() {
     // MINimum/MAXimum (SCPI-1999 Vol 1 7.2.1.1).
     let reply = execute(&mut t, Role::Source, "SOUR:POW? MAX;:FREQ? min").unwrap();
     assert_eq!(String::from_utf8(reply).unwrap(), "2.5E1;1E5\n");
+    // A wavelength analyzer in air: 1550 nm in standard air is 193.36 THz (n - 1 = 2.73e-4;
+    // c / 1550 nm = 193.4145 THz in vacuum); frequency commands are undefined headers.
+    let mut w = Truth {
+        options: BenchOptions {
+            axis: BenchAxis::Wavelength { air: true },
+            trace_in_watts: true,
+        },
+        ..Truth::default()
+    };
+    let f = BenchAxis::Wavelength { air: true }.frequency(1550e-9);
+    assert!(
+        (f - 193.4145e12 / (1.0 + 2.73e-4)).abs() < 0.01e12 * 1e-2,
+        "{f}"
+    );
+    assert!(execute(&mut w, Role::Analyzer, "FREQ:CENT?").is_none());
+    assert_eq!(w.analyzer_errors.next(), "-113,\"Undefined header\"");
+    let reply = execute(&mut w, Role::Analyzer, "SENS:WAV:CENT 1549.5NM;CENT?").unwrap();
+    let centre: f64 = String::from_utf8(reply).unwrap().trim().parse().unwrap();
+    assert!((centre - 1549.5e-9).abs() < 1e-18, "{centre}");
     // Sum rule J_0^2 + 2 sum J_k^2 = 1 (DLMF 10.23.3): the comb keeps the optical power.
     t.output_on = true;
     t.source_level_dbm = 15.0;

@@ -10,7 +10,9 @@
 //! from the drivers to the analysis.
 
 pub mod trace;
+pub mod wavelength;
 pub use trace::{Trace, TraceError};
+pub use wavelength::Medium;
 
 use serde::{Deserialize, Serialize};
 use std::fmt;

@@ -15,15 +15,22 @@
 //! and byte order are sent again (unless the profile's `data.assert_each_fetch` is false), since
 //! another client of the instrument may have changed them; the fetch ends with an error-queue
 //! check. A trace arrives as ASCII or as a binary block, whichever the reply turns out to be.
+//!
+//! An analyzer whose axis is in wavelength (`[axis] unit = "m"`, in vacuum or standard air) is
+//! driven in hertz all the same: every setting is converted to metres before it is sent and its
+//! read-back converted back, and every trace point's wavelength becomes an optical frequency
+//! (f = c / (n lambda), `halfwave_units::wavelength`). Such a trace runs from long to short
+//! wavelength, so it is reversed to ascending frequency; its grid is not uniform in frequency,
+//! which the analysis takes as it comes.
 
 use super::session::ScpiSession;
-use crate::profile::{fill_template, AnalyzerProfile, AxisMethod, PowerUnit};
+use crate::profile::{fill_template, AnalyzerProfile, AxisMethod, AxisUnit, PowerUnit};
 use crate::scpi::block::decode_binary_reply_into;
 use crate::scpi::response::{parse_integer, parse_number_list_into};
 use crate::scpi::{ByteOrder, DataFormat, ParseError};
 use crate::{AnalyzerCapabilities, ConnectionNote, Identity, InstrumentError, SpectrumAnalyzer};
 use async_trait::async_trait;
-use halfwave_units::{Hz, Trace};
+use halfwave_units::{Hz, Medium, Trace};
 use std::time::Duration;
 
 /// Longest wait for the answer to an axis probe at connect (a settings query is answered within
@@ -40,6 +47,48 @@ pub struct ScpiSpectrumAnalyzer {
     axis: AxisMethod,
     /// Why that axis method was chosen, for [`SpectrumAnalyzer::connection_notes`].
     axis_reason: String,
+    /// The centre frequency last set or read back; a wavelength axis converts span and
+    /// resolution bandwidth around it.
+    center_hz: Option<f64>,
+}
+
+/// How a frequency-like setting travels between hertz and the instrument's unit.
+#[derive(Debug, Clone, Copy)]
+enum Conversion {
+    /// The instrument works in hertz.
+    Identity,
+    /// A position: wavelength in the medium.
+    Position(Medium),
+    /// A span around the centre `center_hz`: the wavelength interval between its ends.
+    Span { medium: Medium, center_hz: f64 },
+    /// A narrow width (resolution bandwidth): by the local derivative, in Hz per metre.
+    Width { hz_per_metre: f64 },
+}
+
+impl Conversion {
+    fn to_instrument(self, hz: f64) -> f64 {
+        match self {
+            Conversion::Identity => hz,
+            Conversion::Position(medium) => medium.wavelength_m(hz),
+            Conversion::Span { medium, center_hz } => {
+                medium.wavelength_m(center_hz - hz / 2.0)
+                    - medium.wavelength_m(center_hz + hz / 2.0)
+            }
+            Conversion::Width { hz_per_metre } => hz / hz_per_metre,
+        }
+    }
+
+    fn from_instrument(self, value: f64) -> f64 {
+        match self {
+            Conversion::Identity => value,
+            Conversion::Position(medium) => medium.frequency_hz(value),
+            Conversion::Span { medium, center_hz } => {
+                let lc = medium.wavelength_m(center_hz);
+                medium.frequency_hz(lc - value / 2.0) - medium.frequency_hz(lc + value / 2.0)
+            }
+            Conversion::Width { hz_per_metre } => value * hz_per_metre,
+        }
+    }
 }
 
 impl ScpiSpectrumAnalyzer {
@@ -62,6 +111,7 @@ impl ScpiSpectrumAnalyzer {
             profile,
             axis: AxisMethod::StartStop,
             axis_reason: String::new(),
+            center_hz: None,
         };
         for (key, command) in analyzer.setup_commands() {
             analyzer
@@ -215,6 +265,7 @@ impl ScpiSpectrumAnalyzer {
         (min, max): (f64, f64),
         (set, query): (String, String),
         tolerance_hz: f64,
+        conversion: Conversion,
     ) -> Result<Hz, InstrumentError> {
         if !(value.0.is_finite() && value.0 >= min && value.0 <= max) {
             return Err(self.session.out_of_range(
@@ -224,7 +275,8 @@ impl ScpiSpectrumAnalyzer {
                 Hz(max).to_string(),
             ));
         }
-        let actual = self.session.set_number(&set, &query, value.0).await?;
+        let sent = conversion.to_instrument(value.0);
+        let actual = conversion.from_instrument(self.session.set_number(&set, &query, sent).await?);
         if !actual.is_finite() || (actual - value.0).abs() > tolerance_hz {
             return Err(self.session.read_back_error(
                 what,
@@ -233,6 +285,49 @@ impl ScpiSpectrumAnalyzer {
             ));
         }
         Ok(Hz(actual))
+    }
+
+    /// The medium of a wavelength axis, `None` for an axis in hertz.
+    fn wavelength_medium(&self) -> Option<Medium> {
+        (self.profile.axis.unit == AxisUnit::M).then_some(self.profile.axis.medium)
+    }
+
+    /// The centre frequency in hertz: the one last set, else asked of the instrument.
+    async fn current_center_hz(&mut self) -> Result<f64, InstrumentError> {
+        if let Some(center) = self.center_hz {
+            return Ok(center);
+        }
+        let query = self.profile.commands.query_center.clone();
+        let raw = self.session.query_number(&query).await?;
+        let center = match self.wavelength_medium() {
+            Some(medium) => medium.frequency_hz(raw),
+            None => raw,
+        };
+        if !(center.is_finite() && center > 0.0) {
+            return Err(self.session.parse_error(
+                &query,
+                ParseError(format!("the centre {raw} is not a usable optical position")),
+            ));
+        }
+        self.center_hz = Some(center);
+        Ok(center)
+    }
+
+    /// The conversion of a width (span, resolution bandwidth) around the centre: identity for a
+    /// frequency axis; for a wavelength axis, `span_like` converts the whole interval exactly
+    /// (the interval's ends, for a span), otherwise by the local derivative.
+    async fn width_conversion(&mut self, span_like: bool) -> Result<Conversion, InstrumentError> {
+        let Some(medium) = self.wavelength_medium() else {
+            return Ok(Conversion::Identity);
+        };
+        let center_hz = self.current_center_hz().await?;
+        Ok(if span_like {
+            Conversion::Span { medium, center_hz }
+        } else {
+            Conversion::Width {
+                hz_per_metre: medium.hz_per_metre(center_hz),
+            }
+        })
     }
 
     /// Decodes a trace reply (ASCII list or binary block) into dBm values.
@@ -280,8 +375,22 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
         let c = &self.profile.commands;
         let commands = (c.set_center.clone(), c.query_center.clone());
         let tolerance = self.profile.read_back.center_hz;
-        self.set_frequency_setting("centre frequency", center, range, commands, tolerance)
-            .await
+        let conversion = self
+            .wavelength_medium()
+            .map_or(Conversion::Identity, Conversion::Position);
+        self.center_hz = None;
+        let actual = self
+            .set_frequency_setting(
+                "centre frequency",
+                center,
+                range,
+                commands,
+                tolerance,
+                conversion,
+            )
+            .await?;
+        self.center_hz = Some(actual.0);
+        Ok(actual)
     }
 
     async fn set_span(&mut self, span: Hz) -> Result<Hz, InstrumentError> {
@@ -290,7 +399,8 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
         let c = &self.profile.commands;
         let commands = (c.set_span.clone(), c.query_span.clone());
         let tolerance = self.profile.read_back.span_relative * span.0.abs();
-        self.set_frequency_setting("span", span, range, commands, tolerance)
+        let conversion = self.width_conversion(true).await?;
+        self.set_frequency_setting("span", span, range, commands, tolerance, conversion)
             .await
     }
 
@@ -310,8 +420,16 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
             c.query_resolution_bandwidth.clone(),
         );
         let tolerance = self.profile.read_back.resolution_bandwidth_relative * rbw.0.abs();
-        self.set_frequency_setting("resolution bandwidth", rbw, range, commands, tolerance)
-            .await
+        let conversion = self.width_conversion(false).await?;
+        self.set_frequency_setting(
+            "resolution bandwidth",
+            rbw,
+            range,
+            commands,
+            tolerance,
+            conversion,
+        )
+        .await
     }
 
     async fn set_points(&mut self, points: usize) -> Result<usize, InstrumentError> {
@@ -389,7 +507,7 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
                 self.session.transport_mut().write(&command).await?;
             }
         }
-        let frequency_hz = self.read_axis(points).await?;
+        let mut frequency_hz = self.read_axis(points).await?;
 
         let reply = self.session.query_raw(&c.query_trace).await?.to_vec();
         let mut power_dbm = Vec::with_capacity(points);
@@ -406,6 +524,19 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
         }
         // Everything this fetch sent (format, axis and trace queries) is accounted for here.
         self.session.check_errors(&c.query_trace).await?;
+        let rbw = match self.wavelength_medium() {
+            Some(medium) => {
+                // The resolution is a wavelength width: converted at the trace's middle.
+                let middle = 0.5 * (frequency_hz[0] + frequency_hz[points - 1]);
+                rbw * medium.hz_per_metre(middle)
+            }
+            None => rbw,
+        };
+        if frequency_hz.first() > frequency_hz.last() {
+            // A wavelength axis runs from low to high frequency backwards.
+            frequency_hz.reverse();
+            power_dbm.reverse();
+        }
         Trace::new(frequency_hz, power_dbm, Some(Hz(rbw))).map_err(|e| InstrumentError::Parse {
             resource: self.session.name().to_string(),
             operation: c.query_trace.clone(),
@@ -432,7 +563,13 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
         vec![
             ConnectionNote::new(
                 "frequency axis",
-                format!("{} via {queries} ({})", self.axis, self.axis_reason),
+                match self.wavelength_medium() {
+                    None => format!("{} via {queries} ({})", self.axis, self.axis_reason),
+                    Some(medium) => format!(
+                        "{} via {queries} ({}); wavelengths in metres in {medium}, converted to optical frequency",
+                        self.axis, self.axis_reason
+                    ),
+                },
             ),
             ConnectionNote::new(
                 "trace format",
@@ -460,14 +597,19 @@ impl ScpiSpectrumAnalyzer {
                 let mut axis = Vec::with_capacity(points);
                 self.decode_values(&reply, &mut axis)
                     .map_err(|e| self.session.parse_error(&c.query_axis, e))?;
-                if axis.len() != points || !axis.iter().all(|f| f.is_finite()) {
+                if axis.len() != points || !axis.iter().all(|f| f.is_finite() && *f > 0.0) {
                     return Err(self.session.parse_error(
                         &c.query_axis,
                         ParseError(format!(
-                            "the axis holds {} values (all must be finite) but the instrument reports {points} points",
+                            "the axis holds {} values (all must be finite and above 0) but the instrument reports {points} points",
                             axis.len()
                         )),
                     ));
+                }
+                if let Some(medium) = self.wavelength_medium() {
+                    for value in axis.iter_mut() {
+                        *value = medium.frequency_hz(*value);
+                    }
                 }
                 return Ok(axis);
             }
@@ -486,17 +628,27 @@ impl ScpiSpectrumAnalyzer {
                 (start, stop, format!("{} / {}", c.query_start, c.query_stop))
             }
         };
-        if !(start.is_finite() && stop.is_finite() && stop > start) {
+        let unit = match self.profile.axis.unit {
+            AxisUnit::Hz => "Hz",
+            AxisUnit::M => "m",
+        };
+        if !(start.is_finite() && stop.is_finite() && stop > start && start > 0.0) {
             return Err(InstrumentError::Parse {
                 resource: self.session.name().to_string(),
                 operation: queries,
                 detail: format!(
-                    "the sweep runs from {start} Hz to {stop} Hz; the stop must be above the start"
+                    "the sweep runs from {start} {unit} to {stop} {unit}; the start must be above 0 and the stop above the start"
                 ),
             });
         }
         let step = (stop - start) / (points - 1) as f64;
-        Ok((0..points).map(|i| start + step * i as f64).collect())
+        let grid = (0..points).map(|i| start + step * i as f64);
+        Ok(match self.wavelength_medium() {
+            // Wavelength points: each becomes its optical frequency (descending; the caller
+            // reverses the trace).
+            Some(medium) => grid.map(|l| medium.frequency_hz(l)).collect(),
+            None => grid.collect(),
+        })
     }
 }
 

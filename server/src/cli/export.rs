@@ -178,6 +178,8 @@ mod tests {
             serial: "SN1".into(),
             firmware: "1.0".into(),
             resource: "TCPIP::192.0.2.7::5025::SOCKET".into(),
+            connection: Vec::new(),
+            connection_json: String::new(),
         };
         RunView {
             summary,

@@ -96,6 +96,16 @@ pub fn run_text(run: &RunView) -> String {
     if let Some(cause) = &s.cause {
         out.push_str(&format!("cause: {cause}\n"));
     }
+    for instrument in &run.instruments {
+        out.push_str(&format!(
+            "{:<8} {}\n",
+            instrument.role,
+            instrument.identity_line()
+        ));
+        for note in &instrument.connection {
+            out.push_str(&format!("         {}: {}\n", note.item, note.value));
+        }
+    }
     out.push_str(&format!("measured points: {}\n", run.measured_points));
     if run.results.is_empty() {
         out.push_str("no V_pi yet\n");

@@ -930,8 +930,21 @@ impl BenchSlot {
     /// identities to the run, so the record says what measured it. Failures are logged: a
     /// missing identity must not stop a run whose instruments answer their commands.
     async fn record_run_instruments(&self, store: &Store, run_id: i64) {
-        for (role, instrument_id) in self.refresh_identities(store).await {
-            if let Err(e) = store.link_run_instrument(run_id, role, instrument_id).await {
+        let recorded = self.refresh_identities(store).await;
+        let source_notes = self.source.lock().await.connection_notes();
+        let analyzer_notes = self.analyzer.lock().await.connection_notes();
+        for (role, instrument_id) in recorded {
+            let notes = if role == "source" {
+                &source_notes
+            } else {
+                &analyzer_notes
+            };
+            // Serialising a list of string pairs cannot fail; an empty list is stored if it did.
+            let notes = serde_json::to_string(notes).unwrap_or_else(|_| "[]".into());
+            if let Err(e) = store
+                .link_run_instrument(run_id, role, instrument_id, &notes)
+                .await
+            {
                 tracing::warn!(run_id, role, error = %e, "could not record the run's instrument");
             }
         }

@@ -5,7 +5,8 @@
 //! so a firmware change shows up as a new row and old runs stay traceable.
 
 use super::{
-    now_unix_ms, DeviceRecord, InstrumentRecord, NewDevice, RunInstrument, Store, StoreError,
+    now_unix_ms, ConnectionNoteRecord, DeviceRecord, InstrumentRecord, NewDevice, RunInstrument,
+    Store, StoreError,
 };
 use halfwave_drivers::instrument::Identity;
 
@@ -108,37 +109,52 @@ impl Store {
     }
 
     /// Records that the instrument `instrument_id` measured run `run_id` in `role` (`source` or
-    /// `analyzer`); recording it again changes nothing.
+    /// `analyzer`), with the driver's connection notes (`connection_json`, a JSON array of
+    /// `{item, value}`); recording it again keeps one row and the latest notes.
     pub async fn link_run_instrument(
         &self,
         run_id: i64,
         role: &str,
         instrument_id: i64,
+        connection_json: &str,
     ) -> Result<(), StoreError> {
         sqlx::query(
-            "INSERT INTO run_instruments (run_id, role, instrument_id) VALUES ($1, $2, $3) \
-             ON CONFLICT DO NOTHING",
+            "INSERT INTO run_instruments (run_id, role, instrument_id, connection) VALUES ($1, $2, $3, $4) \
+             ON CONFLICT (run_id, role, instrument_id) DO UPDATE SET connection = excluded.connection",
         )
         .bind(run_id)
         .bind(role)
         .bind(instrument_id)
+        .bind(connection_json)
         .execute(&self.pool)
         .await
         .map_err(StoreError::database("recording a run's instrument"))?;
         Ok(())
     }
 
-    /// The instruments that measured a run, source first, each role in the order first seen.
+    /// The instruments that measured a run, source first, each role in the order first seen,
+    /// with the connection notes recorded for the run. Notes that do not read as JSON are
+    /// returned as one note holding the stored text, so nothing stored is hidden.
     pub async fn run_instruments(&self, run_id: i64) -> Result<Vec<RunInstrument>, StoreError> {
-        sqlx::query_as::<_, RunInstrument>(
-            "SELECT ri.role, i.manufacturer, i.model, i.serial, i.firmware, i.resource \
+        let mut rows = sqlx::query_as::<_, RunInstrument>(
+            "SELECT ri.role, i.manufacturer, i.model, i.serial, i.firmware, i.resource, \
+                    ri.connection AS connection_json \
              FROM run_instruments ri JOIN instruments i ON i.id = ri.instrument_id \
              WHERE ri.run_id = $1 ORDER BY ri.role DESC, i.first_seen_unix_ms, i.id",
         )
         .bind(run_id)
         .fetch_all(&self.pool)
         .await
-        .map_err(StoreError::database("reading a run's instruments"))
+        .map_err(StoreError::database("reading a run's instruments"))?;
+        for row in &mut rows {
+            row.connection = serde_json::from_str(&row.connection_json).unwrap_or_else(|_| {
+                vec![ConnectionNoteRecord {
+                    item: "connection notes (stored text)".into(),
+                    value: row.connection_json.clone(),
+                }]
+            });
+        }
+        Ok(rows)
     }
 
     /// Every instrument identity seen, most recently seen first.

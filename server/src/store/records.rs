@@ -137,6 +137,24 @@ pub struct RunInstrument {
     pub firmware: String,
     /// The VISA-style resource string it answered at.
     pub resource: String,
+    /// What the driver chose when it connected (how it reads the frequency axis and in which
+    /// unit, the trace format, where the source's limits came from), as the run last saw it.
+    #[sqlx(skip)]
+    #[serde(default)]
+    pub connection: Vec<ConnectionNoteRecord>,
+    /// `connection` as stored (a JSON array).
+    #[serde(skip)]
+    #[schema(ignore)]
+    pub(crate) connection_json: String,
+}
+
+/// One choice a driver made at connect: what it is about and what was chosen, with why.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct ConnectionNoteRecord {
+    /// What the note is about, e.g. `frequency axis`.
+    pub item: String,
+    /// What was chosen and why.
+    pub value: String,
 }
 
 impl RunInstrument {
