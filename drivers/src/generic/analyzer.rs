@@ -78,7 +78,7 @@ impl Conversion {
         }
     }
 
-    fn from_instrument(self, value: f64) -> f64 {
+    fn to_hz(self, value: f64) -> f64 {
         match self {
             Conversion::Identity => value,
             Conversion::Position(medium) => medium.frequency_hz(value),
@@ -276,7 +276,7 @@ impl ScpiSpectrumAnalyzer {
             ));
         }
         let sent = conversion.to_instrument(value.0);
-        let actual = conversion.from_instrument(self.session.set_number(&set, &query, sent).await?);
+        let actual = conversion.to_hz(self.session.set_number(&set, &query, sent).await?);
         if !actual.is_finite() || (actual - value.0).abs() > tolerance_hz {
             return Err(self.session.read_back_error(
                 what,
