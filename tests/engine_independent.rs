@@ -334,3 +334,39 @@ async fn a_wavelength_axis_in_air_puts_the_laser_where_it_is() {
         "the medium must matter: the laser shows at {level} dBm read as air, and read as vacuum the window misses it ({level_vacuum} dBm at most)"
     );
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn check_bench_passes_a_wavelength_analyzer_and_says_how_it_reads_the_axis() {
+    let dir = tempfile::tempdir().unwrap();
+    let bench = IndependentBench::start_with(BenchOptions {
+        axis: BenchAxis::Wavelength { air: true },
+        trace_in_watts: true,
+    })
+    .await;
+    let profile = dir.path().join("analyzer.toml");
+    std::fs::write(
+        &profile,
+        toml::to_string(&wavelength_profile("air")).expect("profile as TOML"),
+    )
+    .unwrap();
+    let config = dir.path().join("halfwave.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "data_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\", profile = \"{}\" }}\n",
+            dir.path().join("data").display(),
+            bench.resource(Role::Source),
+            bench.resource(Role::Analyzer),
+            profile.display(),
+        ),
+    )
+    .unwrap();
+    let (ok, text) = halfwave(&["check-bench", "--config", config.to_str().unwrap()]).await;
+    assert!(ok, "{text}");
+    assert!(
+        text.contains("wavelengths in metres in standard air (Edlén 1966)"),
+        "{text}"
+    );
+    assert!(text.contains("values in Watt"), "{text}");
+    assert!(!bench.truth.lock().unwrap().output_on);
+}
