@@ -14,15 +14,9 @@ use halfwave_units::{Dbm, Hz, Seconds, Trace};
 use serde::{Deserialize, Serialize};
 use std::time::Duration;
 
-/// An instrument's identity as reported by IEEE 488.2 `*IDN?`
-/// (manufacturer, model, serial number, firmware level).
-#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
-pub struct Identity {
-    pub manufacturer: String,
-    pub model: String,
-    pub serial: String,
-    pub firmware: String,
-}
+/// An instrument's identity (`*IDN?`); defined in `halfwave_units` so the store and the views
+/// need not depend on the drivers for it.
+pub use halfwave_units::Identity;
 
 /// What went wrong talking to an instrument. Messages name the instrument and say what to do.
 #[derive(Debug, thiserror::Error)]

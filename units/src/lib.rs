@@ -9,8 +9,10 @@
 //! The [`Trace`] (an analyzer sweep) lives here too: it is the one measured value that crosses
 //! from the drivers to the analysis.
 
+pub mod identity;
 pub mod trace;
 pub mod wavelength;
+pub use identity::Identity;
 pub use trace::{Trace, TraceError};
 pub use wavelength::Medium;
 

@@ -8,7 +8,7 @@ use super::{
     now_unix_ms, ConnectionNoteRecord, DeviceRecord, InstrumentRecord, NewDevice, RunInstrument,
     Store, StoreError,
 };
-use halfwave_drivers::instrument::Identity;
+use halfwave_units::Identity;
 
 impl Store {
     /// Registers a modulator, or updates model, RF limit and wavelength of the one with this serial
