@@ -16,7 +16,7 @@ use halfwave_units::{Dbm, Volts, REFERENCE_IMPEDANCE_OHMS};
 use rand::Rng;
 use rand_distr::StandardNormal;
 
-use super::noise::Xoshiro256PlusPlus;
+use super::noise::trace_noise;
 use super::scenario::FilterShape;
 
 /// Peak voltage of a sine of this level into the reference impedance: V_pk = sqrt(2 R P).
@@ -247,7 +247,7 @@ pub fn render_linear(lines: &[OpticalLine], r: &Rendering) -> Vec<f64> {
 /// [`super::noise`]), so the same `rng` state gives the same trace.
 pub fn render_trace<R: Rng>(lines: &[OpticalLine], r: &Rendering, rng: &mut R) -> Vec<f64> {
     let mut powers = render_linear(lines, r);
-    let mut noise = Xoshiro256PlusPlus::from_seed_u64(rng.next_u64());
+    let mut noise = trace_noise(rng.next_u64());
     let sigma = r.display_noise_db;
     for p in &mut powers {
         *p = 10.0 * p.log10();
