@@ -6,6 +6,9 @@
 //! - stopped with SIGTERM mid-run: the process exits cleanly, the run is marked interrupted with its
 //!   cause, and the RF output is off.
 
+// libc::kill sends SIGTERM to the daemon under test.
+#![allow(unsafe_code)]
+
 mod engine_support;
 
 mod daemon_support;

@@ -9,6 +9,8 @@
 //! - the simulated bench: the physics of laser, modulator, drive chain and analyzer, in-process and
 //!   served over TCP as SCPI instruments.
 
+#![forbid(unsafe_code)]
+
 pub use halfwave_units as units;
 
 pub mod generic;

@@ -18,6 +18,9 @@
 //! clock also counts the time the thread waited for a core; the thread CPU time does not, so it
 //! is what the analysis itself costs.
 
+// libc::clock_gettime(CLOCK_THREAD_CPUTIME_ID): the CPU time of the measuring thread.
+#![allow(unsafe_code)]
+
 use criterion::measurement::{Measurement, ValueFormatter};
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 use halfwave::analysis::comb::{measure_comb, measure_reference, MeasuredComb};

@@ -26,6 +26,9 @@
 //! `HALFWAVE_LOAD_ROUTE_SECONDS` (each endpoint alone afterwards, for its CPU cost; default 3, 0
 //! skips).
 
+// libc::sysconf for the kernel clock tick, to turn /proc CPU times into seconds.
+#![allow(unsafe_code)]
+
 #[path = "../../tests/api_support/seed.rs"]
 #[allow(dead_code)]
 mod seed;

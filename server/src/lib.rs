@@ -10,6 +10,8 @@
 //! - [`shutdown`]: waiting for SIGINT/SIGTERM.
 //! - [`telemetry`]: tracing set-up, done once at start.
 
+#![forbid(unsafe_code)]
+
 pub mod analysis;
 pub mod api;
 pub mod cli;

@@ -1,5 +1,7 @@
 //! The `halfwave` binary: parses the command line and hands over to [`halfwave::cli`].
 
+#![forbid(unsafe_code)]
+
 use clap::Parser;
 
 fn main() -> std::process::ExitCode {

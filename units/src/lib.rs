@@ -9,6 +9,8 @@
 //! The [`Trace`] (an analyzer sweep) lives here too: it is the one measured value that crosses
 //! from the drivers to the analysis.
 
+#![forbid(unsafe_code)]
+
 pub mod identity;
 pub mod trace;
 pub mod wavelength;
