@@ -198,3 +198,38 @@ async fn run_and_queue_gauges_follow_a_run() {
         .unwrap();
     assert_eq!(stored, 18);
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn made_up_methods_and_paths_do_not_add_series() {
+    // Any token is a valid HTTP method (RFC 9110 section 9.1) and any path can be asked for:
+    // each must not become a label value of its own, or clients without a token could grow
+    // the daemon's memory for good.
+    let app = api_support::spawn_app().await;
+    let viewer = app.token("watcher", Role::Viewer).await;
+    let client = reqwest::Client::new();
+    for i in 0..20 {
+        let method = reqwest::Method::from_bytes(format!("AAAA{i}").as_bytes()).unwrap();
+        let _ = client
+            .request(method, app.url("/api/v1/health"))
+            .send()
+            .await
+            .unwrap();
+        let _ = client
+            .get(app.url(&format!("/api/v1/no-such-thing-{i}")))
+            .send()
+            .await
+            .unwrap();
+    }
+    let text = scrape(&app, &viewer).await;
+    assert!(!text.contains("AAAA"), "{text}");
+    assert!(!text.contains("no-such-thing"), "{text}");
+    let series = |needle: &str| {
+        text.lines()
+            .filter(|l| l.starts_with("halfwave_http_requests_total{") && l.contains(needle))
+            .count()
+    };
+    assert_eq!(series("method=\"other\""), 1, "{text}");
+    // Paths no route serves are answered before the metrics layer (it wraps routes only), or
+    // at most under the one `unmatched` label.
+    assert!(series("route=\"unmatched\"") <= 1, "{text}");
+}

@@ -1,7 +1,8 @@
 //! Request counters and latency histograms, exposed in the Prometheus text format.
 //!
 //! A middleware records each request under its route template (`/api/v1/runs/{run_id}`, never
-//! the raw path, so the label set stays small), method and status. Counting takes one short
+//! the raw path; `unmatched` for paths no route serves), its method (standard methods by name,
+//! any other as `other`) and status, so the label set stays small whatever clients send. Counting takes one short
 //! mutex section per request; with a handful of routes this costs far less than the request
 //! itself. Uptime, run and queue gauges are exported beside them (`routes/system.rs`,
 //! `run_gauges.rs`).
@@ -117,7 +118,28 @@ pub fn escape_label(value: &str) -> String {
         .replace('\n', "\\n")
 }
 
-/// Middleware recording every request into the state's [`HttpMetrics`].
+/// The method as a label: the standard methods by name (RFC 9110 section 9, and PATCH), any
+/// other as `other`. HTTP allows any token as a method, and a label value per method sent
+/// would let anyone, even without a token, add series to the daemon's memory for good.
+pub fn method_label(method: &axum::http::Method) -> &'static str {
+    use axum::http::Method;
+    match *method {
+        Method::GET => "GET",
+        Method::HEAD => "HEAD",
+        Method::POST => "POST",
+        Method::PUT => "PUT",
+        Method::DELETE => "DELETE",
+        Method::CONNECT => "CONNECT",
+        Method::OPTIONS => "OPTIONS",
+        Method::TRACE => "TRACE",
+        Method::PATCH => "PATCH",
+        _ => "other",
+    }
+}
+
+/// Middleware recording every request into the state's [`HttpMetrics`]. Labels come from a
+/// bounded set: the matched route template (`unmatched` for any path no route serves), the
+/// method through [`method_label`], and the status.
 pub async fn record_requests(
     axum::extract::State(state): axum::extract::State<super::AppState>,
     request: Request,
@@ -128,7 +150,7 @@ pub async fn record_requests(
         .get::<MatchedPath>()
         .map(|p| p.as_str().to_string())
         .unwrap_or_else(|| "unmatched".to_string());
-    let method = request.method().as_str().to_string();
+    let method = method_label(request.method()).to_string();
     let started = Instant::now();
     let response = next.run(request).await;
     state.http_metrics().record(
