@@ -16,6 +16,7 @@ pub mod analysis;
 pub mod api;
 pub mod cli;
 pub mod config;
+pub mod csv_table;
 pub mod data_claim;
 pub mod engine;
 pub mod shutdown;

@@ -70,41 +70,53 @@ impl TraceFile {
         TraceFile::parse(path, &text)
     }
 
-    /// Parses the text of a trace CSV; `path` is used in the messages.
+    /// Parses the text of a trace CSV (`crate::csv_table`: BOM, `#` comments and blank lines
+    /// allowed, header in any case); `path` is used in the messages.
     pub fn parse(path: &Path, text: &str) -> Result<TraceFile, CliError> {
+        use crate::csv_table::{read_numeric, TableError};
         let name = path.display();
-        let text = text.strip_prefix('\u{feff}').unwrap_or(text);
-        let mut lines = text
-            .lines()
-            .enumerate()
-            .map(|(i, l)| (i + 1, l.trim()))
-            .filter(|(_, l)| !l.is_empty());
-        let Some((header_line, header)) = lines.next() else {
-            return Err(CliError::new(format!(
-                "{name}:1: the file is empty; a trace file starts with the header line `{TRACE_HEADER}` \
-                 followed by one point per line"
-            )));
-        };
-        let columns: Vec<&str> = header.split(',').map(str::trim).collect();
-        if columns != ["frequency_hz", "power_dbm"] {
-            return Err(CliError::new(format!(
-                "{name}:{header_line}: expected the header `{TRACE_HEADER}`, found `{header}`; \
-                 add the header line (frequency in hertz, power in dBm)"
-            )));
-        }
-        let mut frequency = Vec::new();
-        let mut power = Vec::new();
+        let rows = read_numeric(text, &["frequency_hz", "power_dbm"]).map_err(|e| {
+            CliError::new(match e {
+                TableError::Empty => format!(
+                    "{name}:1: the file is empty; a trace file starts with the header line `{TRACE_HEADER}` \
+                     followed by one point per line"
+                ),
+                TableError::Header { line, found } => format!(
+                    "{name}:{line}: expected the header `{TRACE_HEADER}`, found `{found}`; \
+                     add the header line (frequency in hertz, power in dBm)"
+                ),
+                TableError::Malformed { line, detail } => {
+                    format!("{name}:{line}: not a CSV file: {detail}")
+                }
+            })
+        })?;
+        let mut frequency = Vec::with_capacity(rows.len());
+        let mut power = Vec::with_capacity(rows.len());
         let (mut first_line, mut last_line) = (0, 0);
-        for (number, line) in lines {
-            let cells: Vec<&str> = line.split(',').map(str::trim).collect();
-            let [f_cell, p_cell] = cells[..] else {
-                return Err(CliError::new(format!(
-                    "{name}:{number}: expected 2 values (`{TRACE_HEADER}`), found {}: `{line}`",
-                    cells.len()
-                )));
+        for row in rows {
+            let number = row.line;
+            let (f, p) = match row.values.as_deref() {
+                Ok(&[f, p]) => (f, p),
+                Ok(_) => {
+                    return Err(CliError::new(format!(
+                        "{name}:{number}: expected 2 values (`{TRACE_HEADER}`): `{}`",
+                        row.text
+                    )))
+                }
+                Err(problem) => {
+                    return Err(CliError::new(format!(
+                        "{name}:{number}: {problem} (the line reads `{}`)",
+                        row.text
+                    )))
+                }
             };
-            let f = number_cell(&name, number, f_cell, "frequency_hz")?;
-            let p = number_cell(&name, number, p_cell, "power_dbm")?;
+            for (value, column) in [(f, "frequency_hz"), (p, "power_dbm")] {
+                if !value.is_finite() {
+                    return Err(CliError::new(format!(
+                        "{name}:{number}: {column} {value} is not a finite number"
+                    )));
+                }
+            }
             if let Some(previous) = frequency.last() {
                 if f <= *previous {
                     return Err(CliError::new(format!(
@@ -121,7 +133,7 @@ impl TraceFile {
         }
         if frequency.is_empty() {
             return Err(CliError::new(format!(
-                "{name}:{header_line}: the header is there but no points follow; add one `frequency,power` line per point"
+                "{name}: the header is there but no points follow; add one `frequency,power` line per point"
             )));
         }
         let trace = Trace::new(frequency, power, None)
@@ -143,25 +155,6 @@ impl TraceFile {
             self.last_line
         ))
     }
-}
-
-fn number_cell(
-    name: &std::path::Display<'_>,
-    line: usize,
-    cell: &str,
-    column: &str,
-) -> Result<f64, CliError> {
-    let value: f64 = cell.parse().map_err(|_| {
-        CliError::new(format!(
-            "{name}:{line}: `{cell}` in column {column} is not a number"
-        ))
-    })?;
-    if !value.is_finite() {
-        return Err(CliError::new(format!(
-            "{name}:{line}: `{cell}` in column {column} is not a finite number"
-        )));
-    }
-    Ok(value)
 }
 
 fn options(resolution_bandwidth: Option<f64>) -> AnalysisOptions {

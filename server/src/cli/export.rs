@@ -39,16 +39,6 @@ pub struct ExportArgs {
 /// repeated on every row so that a row read alone still says what it is.
 pub const CSV_HEADER: &str = "run_id,device_serial,chain_name,chain_version,source_identity,analyzer_identity,frequency_index,level_index,frequency_hz,generator_level_dbm,level_at_modulator_dbm,v_peak_volts,modulation_index,modulation_index_uncertainty,asymmetry_db,v_pi_volts,v_pi_uncertainty_volts,measured_at_unix_ms";
 
-/// A text cell as RFC 4180 writes it: quoted (inner quotes doubled) when it holds a comma, a
-/// quote or a line break.
-pub fn csv_text(cell: &str) -> String {
-    if cell.contains([',', '"', '\n', '\r']) {
-        format!("\"{}\"", cell.replace('"', "\"\""))
-    } else {
-        cell.to_string()
-    }
-}
-
 /// The identities of a run's instruments in one role, joined by " then " (a run resumed on a
 /// replaced instrument has two).
 fn identities(run: &RunView, role: &str) -> String {
@@ -60,43 +50,44 @@ fn identities(run: &RunView, role: &str) -> String {
         .join(" then ")
 }
 
-/// The run and its points as CSV.
+/// The run and its points as CSV (`crate::csv_table::write_rows`: RFC 4180 quoting).
 pub fn points_csv(run: &RunView, points: &[PointView]) -> String {
-    let run_id = run.summary.id;
     let results = &run.results;
-    let record = format!(
-        "{run_id},{},{},{},{},{}",
-        csv_text(&run.summary.device_serial),
-        csv_text(&run.summary.chain_name),
-        run.summary.chain_version,
-        csv_text(&identities(run, "source")),
-        csv_text(&identities(run, "analyzer"))
-    );
+    let record = [
+        run.summary.id.to_string(),
+        run.summary.device_serial.clone(),
+        run.summary.chain_name.clone(),
+        run.summary.chain_version.to_string(),
+        identities(run, "source"),
+        identities(run, "analyzer"),
+    ];
     let optional = |v: Option<f64>| v.map(|v| v.to_string()).unwrap_or_default();
-    let mut out = String::with_capacity(points.len() * 260 + CSV_HEADER.len() + 1);
-    out.push_str(CSV_HEADER);
-    out.push('\n');
-    for p in points {
+    let header = CSV_HEADER
+        .split(',')
+        .map(str::to_string)
+        .collect::<Vec<_>>();
+    let rows = points.iter().map(|p| {
         let fit = results
             .iter()
             .find(|r| r.frequency_index == p.frequency_index);
-        out.push_str(&format!(
-            "{record},{},{},{},{},{},{},{},{},{},{},{},{}\n",
-            p.frequency_index,
-            p.level_index,
-            p.frequency_hz,
-            p.generator_level_dbm,
-            p.level_at_modulator_dbm,
-            p.v_peak_volts,
+        let mut row = record.to_vec();
+        row.extend([
+            p.frequency_index.to_string(),
+            p.level_index.to_string(),
+            p.frequency_hz.to_string(),
+            p.generator_level_dbm.to_string(),
+            p.level_at_modulator_dbm.to_string(),
+            p.v_peak_volts.to_string(),
             optional(p.modulation_index),
             optional(p.modulation_index_uncertainty),
             optional(p.asymmetry_db),
             optional(fit.map(|r| r.v_pi_volts)),
             optional(fit.map(|r| r.v_pi_uncertainty_volts)),
-            p.measured_at_unix_ms
-        ));
-    }
-    out
+            p.measured_at_unix_ms.to_string(),
+        ]);
+        row
+    });
+    crate::csv_table::write_rows(std::iter::once(header).chain(rows))
 }
 
 /// `halfwave export`.
@@ -216,7 +207,15 @@ mod tests {
         );
         // A cell with a comma or a quote is quoted, inner quotes doubled (RFC 4180, section 2,
         // rules 6 and 7).
-        assert_eq!(csv_text("say \"hi\""), "\"say \"\"hi\"\"\"");
-        assert_eq!(csv_text("a,b"), "\"a,b\"");
+        let mut quoted = run();
+        quoted.summary.chain_name = "bench-7, \"spare\" chain".into();
+        let csv = points_csv(&quoted, &[point(0, None)]);
+        assert!(
+            csv.lines()
+                .nth(1)
+                .unwrap()
+                .starts_with("7,EG-PM-0042,\"bench-7, \"\"spare\"\" chain\",2,"),
+            "{csv}"
+        );
     }
 }

@@ -96,45 +96,36 @@ pub struct UploadQuery {
     pub name: Option<String>,
 }
 
-/// Parses the CSV form; every bad line is reported.
+/// Parses the CSV form (`crate::csv_table`: BOM, `#` comments and blank lines allowed, header
+/// in any case); every bad line is reported.
 pub fn parse_csv(text: &str) -> Result<Vec<ChainPointBody>, Vec<FieldProblem>> {
-    let mut lines = text
-        .lines()
-        .enumerate()
-        .map(|(i, l)| (i + 1, l.trim()))
-        .filter(|(_, l)| !l.is_empty() && !l.starts_with('#'));
-    let Some((_, header)) = lines.next() else {
-        return Err(vec![FieldProblem::new(
-            "body",
-            "empty CSV; send a header `frequency_hz,gain_db` and one row per frequency",
-        )]);
-    };
-    let columns: Vec<String> = header
-        .split(',')
-        .map(|c| c.trim().to_ascii_lowercase())
-        .collect();
-    if columns != ["frequency_hz", "gain_db"] {
-        return Err(vec![FieldProblem::new(
-            "body.line[1]",
-            format!("header is {header:?}; it must be `frequency_hz,gain_db`"),
-        )]);
-    }
+    use crate::csv_table::{read_numeric, TableError};
+    let rows = read_numeric(text, &["frequency_hz", "gain_db"]).map_err(|e| {
+        vec![match e {
+            TableError::Empty => FieldProblem::new(
+                "body",
+                "empty CSV; send a header `frequency_hz,gain_db` and one row per frequency",
+            ),
+            TableError::Header { line, found } => FieldProblem::new(
+                format!("body.line[{line}]"),
+                format!("header is {found:?}; it must be `frequency_hz,gain_db`"),
+            ),
+            TableError::Malformed { line, detail } => {
+                FieldProblem::new(format!("body.line[{line}]"), format!("not CSV: {detail}"))
+            }
+        }]
+    })?;
     let mut points = Vec::new();
     let mut errors = Vec::new();
-    for (number, line) in lines {
-        let cells: Vec<&str> = line.split(',').map(str::trim).collect();
-        let parsed = match cells.as_slice() {
-            [f, g] => f.parse::<f64>().ok().zip(g.parse::<f64>().ok()),
-            _ => None,
-        };
-        match parsed {
-            Some((frequency_hz, gain_db)) => points.push(ChainPointBody {
-                frequency_hz,
-                gain_db,
+    for row in rows {
+        match row.values.as_deref() {
+            Ok([frequency_hz, gain_db]) => points.push(ChainPointBody {
+                frequency_hz: *frequency_hz,
+                gain_db: *gain_db,
             }),
-            None => errors.push(FieldProblem::new(
-                format!("body.line[{number}]"),
-                format!("{line:?} is not two numbers `frequency_hz,gain_db`"),
+            _ => errors.push(FieldProblem::new(
+                format!("body.line[{}]", row.line),
+                format!("{:?} is not two numbers `frequency_hz,gain_db`", row.text),
             )),
         }
     }
