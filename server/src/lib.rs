@@ -14,6 +14,7 @@
 
 pub mod analysis;
 pub mod api;
+pub mod calendar;
 pub mod cli;
 pub mod config;
 pub mod csv_table;

@@ -118,46 +118,11 @@ pub fn run_text(run: &RunView) -> String {
     out
 }
 
-/// Milliseconds since the Unix epoch as `YYYY-MM-DD HH:MM:SS UTC`.
-pub fn utc_time(unix_ms: i64) -> String {
-    let seconds = unix_ms.div_euclid(1000);
-    let days = seconds.div_euclid(86_400);
-    let of_day = seconds.rem_euclid(86_400);
-    let (year, month, day) = civil_from_days(days);
-    format!(
-        "{year:04}-{month:02}-{day:02} {:02}:{:02}:{:02} UTC",
-        of_day / 3600,
-        (of_day % 3600) / 60,
-        of_day % 60
-    )
-}
-
-/// The proleptic Gregorian date of a day count since 1970-01-01 (H. Hinnant's civil_from_days).
-fn civil_from_days(days: i64) -> (i64, i64, i64) {
-    let z = days + 719_468;
-    let era = if z >= 0 { z } else { z - 146_096 } / 146_097;
-    let doe = z - era * 146_097;
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let day = doy - (153 * mp + 2) / 5 + 1;
-    let month = if mp < 10 { mp + 3 } else { mp - 9 };
-    let year = yoe + era * 400 + i64::from(month <= 2);
-    (year, month, day)
-}
+pub use crate::calendar::utc_time;
 
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn unix_epoch_and_a_leap_day_format_as_dates() {
-        // Reference dates: the Unix epoch, and 2024-02-29 12:00:00 UTC = 1709208000 s (POSIX
-        // time as computed by `date -u -d @1709208000`).
-        assert_eq!(utc_time(0), "1970-01-01 00:00:00 UTC");
-        assert_eq!(utc_time(1_709_208_000_000), "2024-02-29 12:00:00 UTC");
-        assert_eq!(utc_time(-1000), "1969-12-31 23:59:59 UTC");
-    }
 
     fn result(f: f64, v: f64) -> FrequencyResultView {
         FrequencyResultView {

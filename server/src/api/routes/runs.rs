@@ -238,17 +238,6 @@ fn paging(page: Option<u32>, per_page: Option<u32>, default: u32) -> Result<(u32
     }
 }
 
-/// Days since 1970-01-01 of a proleptic Gregorian date (H. Hinnant's days_from_civil algorithm).
-fn days_from_civil(year: i64, month: i64, day: i64) -> i64 {
-    let y = if month <= 2 { year - 1 } else { year };
-    let era = if y >= 0 { y } else { y - 399 } / 400;
-    let yoe = y - era * 400;
-    let mp = (month + 9) % 12;
-    let doy = (153 * mp + 2) / 5 + day - 1;
-    let doe = yoe * 365 + yoe / 4 - yoe / 100 + doy;
-    era * 146_097 + doe - 719_468
-}
-
 /// Parses `YYYY-MM-DD` (UTC midnight) or integer milliseconds since the epoch.
 pub fn parse_time_bound(field: &str, text: &str) -> Result<i64, FieldProblem> {
     let text = text.trim();
@@ -261,38 +250,7 @@ pub fn parse_time_bound(field: &str, text: &str) -> Result<i64, FieldProblem> {
             format!("{text:?} is neither a date YYYY-MM-DD nor milliseconds since 1970-01-01 UTC"),
         )
     };
-    let mut parts = text.split('-');
-    let (Some(y), Some(m), Some(d), None) =
-        (parts.next(), parts.next(), parts.next(), parts.next())
-    else {
-        return Err(bad());
-    };
-    if y.len() != 4 || m.len() != 2 || d.len() != 2 {
-        return Err(bad());
-    }
-    let (Ok(y), Ok(m), Ok(d)) = (y.parse::<i64>(), m.parse::<i64>(), d.parse::<i64>()) else {
-        return Err(bad());
-    };
-    let leap = (y % 4 == 0 && y % 100 != 0) || y % 400 == 0;
-    let month_days = [
-        31,
-        if leap { 29 } else { 28 },
-        31,
-        30,
-        31,
-        30,
-        31,
-        31,
-        30,
-        31,
-        30,
-        31,
-    ];
-    let valid_month = (1..=12).contains(&m);
-    if !valid_month || d < 1 || d > month_days[usize::try_from(m - 1).unwrap_or(0)] {
-        return Err(bad());
-    }
-    Ok(days_from_civil(y, m, d) * 86_400_000)
+    crate::calendar::utc_midnight_ms(text).ok_or_else(bad)
 }
 
 /// Lists runs, newest first, filtered by device, state and creation date.
