@@ -2,7 +2,7 @@
 //!
 //! Clause numbers are given from memory where marked; each case names the rule it checks.
 
-use halfwave_drivers::scpi::command::{
+use halfwave_drivers::sim::scpi_parser::{
     codes, parse_line, parse_param, Command, CommandTree, ErrorQueue, Forms, Param, ScpiError, Unit,
 };
 

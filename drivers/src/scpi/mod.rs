@@ -4,15 +4,15 @@
 //!   booleans, quoted strings, comma-separated arrays and error-queue entries.
 //! - [`block`]: arbitrary blocks (`#<d><len><bytes>` and `#0...<LF>`), binary `REAL,32`/`REAL,64`
 //!   in either byte order, and finding where a reply ends in a byte stream that may hold binary.
-//! - [`command`]: the instrument side, used by the simulated bench: program messages parsed the way
-//!   an instrument parses them (long/short forms, optional nodes, suffix multipliers, error codes).
+//!
+//! The instrument side (program messages parsed the way an instrument parses them) is used only
+//! by the simulated bench and lives with it, in `crate::sim::scpi_parser`.
 //!
 //! Parsers here are pure functions over bytes or text and return [`ParseError`], never panic, so
 //! they can be fuzzed and benchmarked alone; the transport and drivers wrap the error with the
 //! instrument's name and the command that was sent.
 
 pub mod block;
-pub mod command;
 pub mod response;
 
 pub use block::{ByteOrder, DataFormat};

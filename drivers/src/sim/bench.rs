@@ -7,7 +7,7 @@
 use super::in_process::{SimAnalyzer, SimRfSource};
 use super::scenario::Scenario;
 use super::state::{BenchState, OverdriveEvent};
-use crate::scpi::command::ScpiError;
+use crate::sim::scpi_parser::ScpiError;
 use halfwave_units::{Dbm, Hz, Volts};
 use rand::SeedableRng;
 use std::sync::{Arc, Mutex, MutexGuard};

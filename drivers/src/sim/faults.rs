@@ -17,7 +17,7 @@
 //!   pulled, a switch rebooting, an instrument's LAN stack restarting).
 
 use super::bench::{Role, SimBench};
-use crate::scpi::command::ScpiError;
+use crate::sim::scpi_parser::ScpiError;
 use std::sync::{Arc, Mutex, MutexGuard};
 use std::time::Duration;
 use tokio::sync::watch;

@@ -11,7 +11,7 @@ use super::state::BenchState;
 use crate::instrument::{
     AnalyzerCapabilities, Identity, InstrumentError, RfSource, SourceLimits, SpectrumAnalyzer,
 };
-use crate::scpi::command::{codes, standard_message, ScpiError};
+use crate::sim::scpi_parser::{codes, standard_message, ScpiError};
 use async_trait::async_trait;
 use halfwave_units::{Dbm, Hz, Seconds, Trace};
 

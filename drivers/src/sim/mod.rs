@@ -17,7 +17,8 @@
 //! (Bessel comb and analyzer rendering), [`state`] (settings and operations shared by every way
 //! in), [`bench`] (the shared handle), [`in_process`] (the trait implementations),
 //! [`scpi_instruments`] (the SCPI command sets), [`server`] (TCP), [`faults`] (fault injection),
-//! [`noise`] (the fast generator for display noise).
+//! [`noise`] (the fast generator for display noise), [`scpi_parser`] (the instrument side of
+//! SCPI: how an instrument parses program messages).
 
 pub mod bench;
 pub mod faults;
@@ -26,6 +27,7 @@ pub mod noise;
 pub mod physics;
 pub mod scenario;
 pub mod scpi_instruments;
+pub mod scpi_parser;
 pub mod server;
 pub mod state;
 

@@ -11,7 +11,7 @@
 use super::bench::Role;
 use super::state::{BenchState, InstrumentStatus};
 use crate::scpi::block::{encode_values, ByteOrder, DataFormat};
-use crate::scpi::command::{
+use crate::sim::scpi_parser::{
     codes, parse_line, Command, CommandTree, Forms, Param, ScpiError, Unit,
 };
 use std::sync::LazyLock;

@@ -12,7 +12,7 @@
 use super::bench::{Role, SimBench};
 use super::faults::{FaultHandle, LineAction, GARBLED_REPLY};
 use super::scpi_instruments::execute_line;
-use crate::scpi::command::{codes, split_units, ScpiError};
+use crate::sim::scpi_parser::{codes, split_units, ScpiError};
 use std::net::{Ipv4Addr, SocketAddr};
 use tokio::io::{AsyncBufReadExt, AsyncReadExt, AsyncWriteExt, BufReader};
 use tokio::net::{TcpListener, TcpStream};

@@ -10,7 +10,7 @@
 use super::physics::{self, OpticalLine, Rendering};
 use super::scenario::Scenario;
 use crate::scpi::block::{ByteOrder, DataFormat};
-use crate::scpi::command::{codes, ErrorQueue, ScpiError};
+use crate::sim::scpi_parser::{codes, ErrorQueue, ScpiError};
 use halfwave_units::{Dbm, Hz};
 use rand::rngs::StdRng;
 use rand::Rng;

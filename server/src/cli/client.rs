@@ -92,7 +92,15 @@ impl ApiClient {
         match parsed.scheme() {
             // https: through the TLS reverse proxy of deploy/, verified against the system's
             // trusted certificates (install a lab CA there).
-            "http" | "https" => {}
+            "http" => {}
+            "https" if cfg!(feature = "tls") => {}
+            "https" => {
+                return Err(CliError::new(format!(
+                    "--url {url:?}: this halfwave was built without TLS (cargo's --no-default-features \
+                     drops the `tls` feature); give the daemon's plain http:// address on the lab \
+                     network, or use a build with the default features"
+                )))
+            }
             other => {
                 return Err(CliError::new(format!(
                     "--url {url:?}: unknown scheme {other:?}; give an http:// or https:// address such as {DEFAULT_URL}"
