@@ -4,8 +4,9 @@
 //! source). The database keeps only the SHA-256 digest, so reading the database does not give
 //! access; a presented token is hashed and looked up by digest. Revoking keeps the row (audit
 //! trail) and frees the name. The same functions serve the `halfwave token` command, which acts on
-//! the database directly, and the admin routes of the API.
+//! the database directly, and the admin routes of the API. The SQL is in `crate::store::tokens`.
 
+use crate::store::tokens as store_tokens;
 use rand::rngs::OsRng;
 use rand::TryRngCore;
 use serde::{Deserialize, Serialize};
@@ -166,16 +167,14 @@ pub async fn create(
         return Err(TokenError::BadName(name.to_string()));
     }
     let token = generate_token()?;
-    let result = sqlx::query(
-        "INSERT INTO api_tokens (name, role, token_sha256, created_at_unix_ms, created_by) \
-         VALUES ($1, $2, $3, $4, $5)",
+    let result = store_tokens::insert(
+        pool,
+        name,
+        role.as_str(),
+        &digest_hex(&token),
+        now_unix_ms(),
+        created_by,
     )
-    .bind(name)
-    .bind(role.as_str())
-    .bind(digest_hex(&token))
-    .bind(now_unix_ms())
-    .bind(created_by)
-    .execute(pool)
     .await;
     match result {
         Ok(_) => Ok(CreatedToken {
@@ -192,15 +191,10 @@ pub async fn create(
 
 /// Revokes the active token of this name.
 pub async fn revoke(pool: &SqlitePool, name: &str) -> Result<(), TokenError> {
-    let done = sqlx::query(
-        "UPDATE api_tokens SET revoked_at_unix_ms = $1 WHERE name = $2 AND revoked_at_unix_ms IS NULL",
-    )
-    .bind(now_unix_ms())
-    .bind(name)
-    .execute(pool)
-    .await
-    .map_err(db("revoking a token"))?;
-    if done.rows_affected() == 0 {
+    let revoked = store_tokens::revoke(pool, name, now_unix_ms())
+        .await
+        .map_err(db("revoking a token"))?;
+    if !revoked {
         return Err(TokenError::NoSuchToken(name.to_string()));
     }
     Ok(())
@@ -208,13 +202,9 @@ pub async fn revoke(pool: &SqlitePool, name: &str) -> Result<(), TokenError> {
 
 /// Every token, active and revoked, oldest first.
 pub async fn list(pool: &SqlitePool) -> Result<Vec<TokenInfo>, TokenError> {
-    let rows: Vec<(String, String, i64, String, Option<i64>)> = sqlx::query_as(
-        "SELECT name, role, created_at_unix_ms, created_by, revoked_at_unix_ms \
-         FROM api_tokens ORDER BY id",
-    )
-    .fetch_all(pool)
-    .await
-    .map_err(db("listing tokens"))?;
+    let rows = store_tokens::list(pool)
+        .await
+        .map_err(db("listing tokens"))?;
     Ok(rows
         .into_iter()
         .filter_map(|(name, role, created, by, revoked)| {
@@ -242,13 +232,9 @@ pub async fn authenticate_digest(
     pool: &SqlitePool,
     digest: &str,
 ) -> Result<Option<TokenHolder>, TokenError> {
-    let row: Option<(String, String)> = sqlx::query_as(
-        "SELECT name, role FROM api_tokens WHERE token_sha256 = $1 AND revoked_at_unix_ms IS NULL",
-    )
-    .bind(digest)
-    .fetch_optional(pool)
-    .await
-    .map_err(db("checking a token"))?;
+    let row = store_tokens::active_by_digest(pool, digest)
+        .await
+        .map_err(db("checking a token"))?;
     Ok(row.and_then(|(name, role)| {
         Some(TokenHolder {
             name,

@@ -15,7 +15,6 @@ use super::CliError;
 use crate::config::Config;
 use clap::{Args, Subcommand};
 use sqlx::sqlite::SqliteConnectOptions;
-use sqlx::{ConnectOptions, Connection};
 use std::path::{Path, PathBuf};
 use std::str::FromStr;
 use std::time::Duration;
@@ -143,55 +142,38 @@ pub async fn backup(url: &str, dest: &Path) -> Result<BackupReport, CliError> {
             dest.display()
         ))
     })?;
-    let mut connection = options
-        .connect()
+    use crate::store::maintenance::{backup_into, BackupStep};
+    let contents = backup_into(options, dest, dest_text)
         .await
-        .map_err(|e| CliError::new(format!("cannot open the database {source}: {e}")))?;
-    sqlx::query("VACUUM INTO $1")
-        .bind(dest_text)
-        .execute(&mut connection)
-        .await
-        .map_err(|e| {
-            CliError::new(format!(
-                "the backup of {source} into {} failed: {e}; check free space and permissions",
-                dest.display()
-            ))
+        .map_err(|(step, e)| {
+            CliError::new(match step {
+                BackupStep::OpenSource => format!("cannot open the database {source}: {e}"),
+                BackupStep::Copy => format!(
+                    "the backup of {source} into {} failed: {e}; check free space and permissions",
+                    dest.display()
+                ),
+                BackupStep::OpenCopy => {
+                    format!("cannot open the backup {}: {e}", dest.display())
+                }
+                BackupStep::IntegrityCheck => {
+                    format!("cannot check the backup {}: {e}", dest.display())
+                }
+                BackupStep::CountRuns => {
+                    format!("the backup has no run table ({e}); is {source} a Halfwave database?")
+                }
+                BackupStep::CountPoints => {
+                    format!("the backup has no point table ({e}); is {source} a Halfwave database?")
+                }
+            })
         })?;
-    let _ = connection.close().await;
-
-    let mut copy = SqliteConnectOptions::new()
-        .filename(dest)
-        .read_only(true)
-        .connect()
-        .await
-        .map_err(|e| CliError::new(format!("cannot open the backup {}: {e}", dest.display())))?;
-    let check: String = sqlx::query_scalar("PRAGMA integrity_check")
-        .fetch_one(&mut copy)
-        .await
-        .map_err(|e| CliError::new(format!("cannot check the backup {}: {e}", dest.display())))?;
-    if check != "ok" {
+    if contents.integrity != "ok" {
         return Err(CliError::new(format!(
-            "the backup {} fails SQLite's integrity check ({check}); do not rely on it, and check the disk",
-            dest.display()
+            "the backup {} fails SQLite's integrity check ({}); do not rely on it, and check the disk",
+            dest.display(),
+            contents.integrity
         )));
     }
-    let runs: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM runs")
-        .fetch_one(&mut copy)
-        .await
-        .map_err(|e| {
-            CliError::new(format!(
-                "the backup has no run table ({e}); is {source} a Halfwave database?"
-            ))
-        })?;
-    let points: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM points")
-        .fetch_one(&mut copy)
-        .await
-        .map_err(|e| {
-            CliError::new(format!(
-                "the backup has no point table ({e}); is {source} a Halfwave database?"
-            ))
-        })?;
-    let _ = copy.close().await;
+    let (runs, points) = (contents.runs, contents.points);
     let bytes = std::fs::metadata(dest).map(|m| m.len()).unwrap_or(0);
     Ok(BackupReport {
         source,

@@ -25,10 +25,12 @@ pub mod calibrations;
 pub mod devices;
 pub mod error;
 pub mod history;
+pub mod maintenance;
 pub mod pins;
 pub mod points;
 pub mod records;
 pub mod runs;
+pub mod tokens;
 pub mod trace_codec;
 
 pub use api_reads::CompletedRunsFingerprint;

@@ -49,8 +49,7 @@ pub struct BenchAttention {
               (status = 503, description = "Degraded: a bench's RF output is unconfirmed or waits for an acknowledgement (see `attention`)", body = Health),
               (status = 500, description = "The database does not answer", body = Problem)))]
 pub async fn health(State(state): State<AppState>) -> Result<(StatusCode, Json<Health>), Problem> {
-    sqlx::query("SELECT 1")
-        .execute(state.pool())
+    crate::store::maintenance::ping(state.pool())
         .await
         .map_err(|e| Problem::internal(format!("the database does not answer: {e}")))?;
     let attention: Vec<BenchAttention> = match state.engine() {
