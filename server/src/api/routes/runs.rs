@@ -68,7 +68,9 @@ impl From<&RunRecord> for RunSummary {
 #[derive(Debug, Serialize, Deserialize, ToSchema)]
 pub struct RunList {
     pub runs: Vec<RunSummary>,
+    #[schema(format = Int64, minimum = 1, maximum = 4294967295_u64)]
     pub page: u32,
+    #[schema(minimum = 1, maximum = 1000)]
     pub per_page: u32,
     /// Runs matching the filter, on all pages.
     pub total: i64,
@@ -211,7 +213,9 @@ pub fn null_json() -> Box<RawValue> {
 #[derive(Debug, Serialize, Deserialize, ToSchema)]
 pub struct PointList {
     pub points: Vec<PointView>,
+    #[schema(format = Int64, minimum = 1, maximum = 4294967295_u64)]
     pub page: u32,
+    #[schema(minimum = 1, maximum = 1000)]
     pub per_page: u32,
     pub total: usize,
 }
