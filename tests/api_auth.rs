@@ -420,6 +420,13 @@ async fn the_document_describes_what_is_sent_and_accepted() {
         "#/components/schemas/ExcludedPointView"
     );
 
+    // A run's plan is shown in the form POST /runs takes.
+    let shown = component(&document, "RunView").to_string();
+    assert!(
+        shown.contains("#/components/schemas/PlanRequest"),
+        "{shown}"
+    );
+
     // The plan: the body of POST /runs is the derived schema with every form.
     let body = &document["paths"]["/api/v1/runs"]["post"]["requestBody"]["content"]
         ["application/json"]["schema"];

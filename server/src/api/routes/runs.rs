@@ -133,8 +133,9 @@ pub fn stored_json_array(text: &str) -> serde_json::Value {
 pub struct RunView {
     #[serde(flatten)]
     pub summary: RunSummary,
-    /// The plan as submitted (after defaults).
-    #[schema(value_type = Object)]
+    /// The plan as submitted (after defaults), in the form `POST /runs` takes; null only if the
+    /// stored plan cannot be read.
+    #[schema(value_type = Option<crate::engine::plan::PlanRequest>)]
     pub plan: serde_json::Value,
     pub measured_points: usize,
     pub results: Vec<FrequencyResultView>,
@@ -162,8 +163,9 @@ pub struct PointView {
     /// stored table is not a list.
     #[schema(value_type = Vec<LineView>)]
     pub lines: Box<RawValue>,
-    /// Method, residuals and warnings of the analysis, passed through as stored.
-    #[schema(value_type = Object)]
+    /// Method, residuals and warnings of the analysis, passed through as stored (`{"error": ...}`
+    /// when the trace could not be analysed; null if the stored text is damaged).
+    #[schema(value_type = Option<Object>)]
     pub analysis: Box<RawValue>,
     pub measured_at_unix_ms: i64,
 }
