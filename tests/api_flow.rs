@@ -493,3 +493,45 @@ async fn a_plan_with_six_mistakes_names_them_all_at_once_and_stores_nothing() {
         .unwrap();
     assert_eq!(runs["total"], 0);
 }
+
+#[tokio::test]
+async fn the_event_stream_ends_after_timeout_s() {
+    // A sampling client (a script, a test tool) asks for a bounded stream and gets a response
+    // that ends; without `timeout_s` the stream stays open (the dashboard's case).
+    let app = spawn_app_with_engine(0.0).await.app;
+    let viewer = app.token("sampler", Role::Viewer).await;
+    let started = std::time::Instant::now();
+    let response = app.get("/api/v1/events?timeout_s=0.3", Some(&viewer)).await;
+    assert_eq!(response.status(), 200);
+    assert!(response.headers()["content-type"]
+        .to_str()
+        .unwrap()
+        .starts_with("text/event-stream"));
+    let body = tokio::time::timeout(Duration::from_secs(10), response.text())
+        .await
+        .expect("the stream ends after timeout_s")
+        .expect("the stream ends cleanly");
+    assert!(started.elapsed() >= Duration::from_millis(300));
+    assert!(
+        !body.contains("data:"),
+        "nothing happened on the bench: {body:?}"
+    );
+
+    let open = app.get("/api/v1/events", Some(&viewer)).await;
+    assert_eq!(open.status(), 200);
+    let mut open = open;
+    assert!(
+        tokio::time::timeout(Duration::from_millis(500), open.chunk())
+            .await
+            .is_err(),
+        "without timeout_s the stream stays open"
+    );
+
+    for bad in ["0", "-1", "86401", "NaN", "soon"] {
+        let response = app
+            .get(&format!("/api/v1/events?timeout_s={bad}"), Some(&viewer))
+            .await;
+        assert_eq!(response.status(), 422, "timeout_s={bad}");
+        assert_eq!(problem(response).await["errors"][0]["field"], "timeout_s");
+    }
+}

@@ -12,15 +12,32 @@ use axum::extract::{FromRequest, Request};
 use axum::http::header::CONTENT_TYPE;
 use axum::http::StatusCode;
 use serde::de::DeserializeOwned;
+use serde::Deserialize;
 
 /// A request body parsed from JSON, with field-naming errors.
 #[derive(Debug, Clone)]
 pub struct JsonBody<T>(pub T);
 
-/// Parses JSON bytes into `T`, naming the offending field on failure.
+/// Parses JSON bytes into `T`, naming the offending field on failure. A number with a fraction of
+/// zero (`12.0`) is taken as the integer it is, as JSON Schema counts it, so a client that writes
+/// every number as a float is understood; any other fraction still fails for an integer field.
 pub fn parse_json<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, Problem> {
     let mut deserializer = serde_json::Deserializer::from_slice(bytes);
-    let parsed: Result<T, _> = serde_path_to_error::deserialize(&mut deserializer);
+    let mut tree = serde_json::Value::deserialize(&mut deserializer).map_err(|e| {
+        let message = format!("the body is not valid JSON: {e}");
+        Problem::invalid(
+            format!("body: {message}"),
+            vec![FieldProblem::new("body", message)],
+        )
+    })?;
+    deserializer.end().map_err(|e| {
+        Problem::invalid_field(
+            "body",
+            format!("unexpected content after the JSON value: {e}"),
+        )
+    })?;
+    whole_numbers_as_integers(&mut tree);
+    let parsed: Result<T, _> = serde_path_to_error::deserialize(tree);
     let value = match parsed {
         Ok(value) => value,
         Err(e) => {
@@ -46,13 +63,28 @@ pub fn parse_json<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, Problem> {
             ));
         }
     };
-    deserializer.end().map_err(|e| {
-        Problem::invalid_field(
-            "body",
-            format!("unexpected content after the JSON value: {e}"),
-        )
-    })?;
     Ok(value)
+}
+
+/// Turns every float with a zero fraction that an `i64` holds exactly into that integer.
+fn whole_numbers_as_integers(value: &mut serde_json::Value) {
+    match value {
+        serde_json::Value::Number(n) if !n.is_i64() && !n.is_u64() => {
+            if let Some(f) = n.as_f64() {
+                // 2^63 is the first float above i64::MAX; every float in [-2^63, 2^63) with a
+                // zero fraction converts exactly.
+                const TWO_TO_63: f64 = (1u64 << 63) as f64;
+                if f.fract() == 0.0 && (-TWO_TO_63..TWO_TO_63).contains(&f) {
+                    *value = serde_json::Value::from(f as i64);
+                }
+            }
+        }
+        serde_json::Value::Array(items) => items.iter_mut().for_each(whole_numbers_as_integers),
+        serde_json::Value::Object(members) => {
+            members.values_mut().for_each(whole_numbers_as_integers)
+        }
+        _ => {}
+    }
 }
 
 /// serde's "invalid type: null, expected usize" (or "invalid value: ...") as a sentence that names
@@ -171,6 +203,29 @@ mod tests {
             problem.errors[0].message,
             "levels.stop_dbm must be a number, not string \"hot\""
         );
+    }
+
+    #[test]
+    fn a_whole_number_written_as_a_float_is_an_integer() {
+        // JSON Schema (2020-12, section 6.1.1 of the validation vocabulary) counts 12.0 as an
+        // integer; a client that writes every number as a float must be understood.
+        assert_eq!(
+            parse_json::<Counted>(br#"{"count":12.0}"#).unwrap().count,
+            12
+        );
+        assert_eq!(
+            parse_json::<Counted>(br#"{"count":1e3}"#).unwrap().count,
+            1000
+        );
+        let problem = parse_json::<Counted>(br#"{"count":12.5}"#).unwrap_err();
+        assert_eq!(problem.errors[0].field, "count");
+        let problem = parse_json::<Counted>(br#"{"count":-1.0}"#).unwrap_err();
+        assert_eq!(problem.errors[0].field, "count");
+        // Floats stay floats where a float is wanted.
+        let outer = parse_json::<Outer>(br#"{"levels":{"stop_dbm":3}}"#).unwrap();
+        assert_eq!(outer.levels.stop_dbm, 3.0);
+        let problem = parse_json::<Counted>(br#"{"count":1} trailing"#).unwrap_err();
+        assert!(problem.errors[0].message.contains("unexpected content"));
     }
 
     #[test]

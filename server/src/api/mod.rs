@@ -1,9 +1,9 @@
 //! The HTTP API and the dashboard: routes under `/api/v1`, auth, errors, plots, static pages.
 //!
 //! [`router`] builds the whole application from an [`AppState`]; [`serve`] binds it and runs it
-//! until shutdown. Every route is declared once in [`routes`], together with its OpenAPI
-//! description (utoipa), so the document at `/api/v1/openapi.json` is generated from the same code
-//! that serves; a test checks that the two agree. Layers, from the outside in: problem details
+//! until shutdown. Every route is declared once in [`routes`] (utoipa-axum's `routes!`), together
+//! with its OpenAPI description (utoipa), so the document at `/api/v1/openapi.json` is generated
+//! from the same entries that serve; tests check that the two agree. Layers, from the outside in: problem details
 //! for bare errors, tracing, request metrics, timeout (not on the event stream), body size limit.
 //! A request's bearer token is checked against a short-lived cache of verified tokens
 //! ([`token_cache`]) before the database, and the most read views that cannot change (final runs,
@@ -180,9 +180,11 @@ pub fn router(state: AppState) -> Router {
         ))
         .layer(DefaultBodyLimit::max(MAX_BODY_BYTES))
         .layer(RequestBodyLimitLayer::new(MAX_BODY_BYTES));
+    // The document is built from the same entries by `openapi::document`; only the router is
+    // kept here.
+    let (api, _document) = timed.merge(routes::streaming_routes()).split_for_parts();
     let app = Router::new()
-        .merge(timed)
-        .merge(routes::streaming_routes())
+        .merge(api)
         .merge(routes::dashboard::dashboard_routes())
         .layer(axum::middleware::from_fn_with_state(
             state.clone(),

@@ -11,6 +11,7 @@ use crate::analysis::chain::DriveChain;
 use halfwave_drivers::{AnalyzerCapabilities, SourceLimits};
 use halfwave_units::{Db, Dbm, Hz, Nanometers, Seconds};
 use serde::{Deserialize, Serialize};
+use utoipa::ToSchema;
 
 /// Most frequency points one plan may hold.
 pub const MAX_FREQUENCIES: usize = 1000;
@@ -38,7 +39,7 @@ pub const MIN_LEVELS_FOR_FIT: usize = 2;
 pub const MIN_LEVEL_SEPARATION_DB: f64 = 0.01;
 
 /// The modulator being calibrated.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct DeviceSpec {
     /// Serial number; the key of its calibration history.
@@ -58,7 +59,7 @@ fn default_wavelength_nm() -> f64 {
 }
 
 /// Drive frequencies of a plan.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, ToSchema)]
 #[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
 pub enum FrequencySpec {
     /// Explicit frequencies.
@@ -78,7 +79,7 @@ pub enum FrequencySpec {
 }
 
 /// Generator levels applied at every frequency (the engine always ramps from low to high).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, ToSchema)]
 #[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
 pub enum LevelSpec {
     /// Explicit generator levels.
@@ -92,7 +93,7 @@ pub enum LevelSpec {
 }
 
 /// Analyzer settings; anything left out is chosen from the modulation frequency.
-#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct AnalyzerSpec {
     /// Fixed span; default: (2 * expected_orders + 2) times the modulation frequency.
@@ -107,7 +108,7 @@ pub struct AnalyzerSpec {
 }
 
 /// The drive chain calibration a plan uses.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, ToSchema)]
 #[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
 pub enum ChainSpec {
     /// A frequency-independent loss between generator and modulator.
@@ -117,7 +118,7 @@ pub enum ChainSpec {
 }
 
 /// A calibration plan as submitted: plain numbers with units in their names.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct PlanRequest {
     pub device: DeviceSpec,
@@ -126,11 +127,13 @@ pub struct PlanRequest {
     pub chain: ChainSpec,
     pub frequencies: FrequencySpec,
     pub levels: LevelSpec,
-    /// Wait after each level change before sweeping.
+    /// Wait after each level change before sweeping, 0 to 600 s (default 0.2).
     #[serde(default = "default_settle_s")]
+    #[schema(minimum = 0, maximum = 600, default = 0.2)]
     pub settle_s: f64,
-    /// Sweeps averaged per point (in linear power).
+    /// Sweeps averaged per point (in linear power), 1 to 64 (default 1).
     #[serde(default = "default_averages")]
+    #[schema(minimum = 1, maximum = 64, default = 1)]
     pub averages: u32,
     #[serde(default)]
     pub analyzer: AnalyzerSpec,

@@ -26,8 +26,10 @@ pub const MAX_CHAIN_POINTS: usize = 10_000;
 #[derive(Debug, Clone, Copy, Serialize, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ChainPointBody {
+    #[schema(exclusive_minimum = 0)]
     pub frequency_hz: f64,
     /// Net gain generator -> modulator, dB (negative for a loss).
+    #[schema(minimum = -100, maximum = 100)]
     pub gain_db: f64,
 }
 
@@ -35,7 +37,10 @@ pub struct ChainPointBody {
 #[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ChainUpload {
+    /// 1 to 200 characters, not only spaces, tabs and line breaks.
+    #[schema(min_length = 1, max_length = 200, pattern = "[^ \\t\\r\\n]")]
     pub name: String,
+    #[schema(min_items = 1, max_items = 10000)]
     pub points: Vec<ChainPointBody>,
 }
 
@@ -94,6 +99,12 @@ impl From<ChainCalibrationHeader> for ChainHeaderView {
 pub struct UploadQuery {
     /// The calibration's name (CSV uploads; JSON uploads carry it in the body).
     pub name: Option<String>,
+}
+
+/// True for a name of nothing but spaces, tabs and line breaks (the document's pattern refuses
+/// the same ones).
+fn blank_name(name: &str) -> bool {
+    name.chars().all(|c| matches!(c, ' ' | '\t' | '\r' | '\n'))
 }
 
 /// Parses the CSV form (`crate::csv_table`: BOM, `#` comments and blank lines allowed, header
@@ -195,7 +206,7 @@ pub async fn upload_chain(
         })
         .unwrap_or_default();
     let (name, points) = if content_type == "text/csv" {
-        let name = query.name.filter(|n| !n.trim().is_empty()).ok_or_else(|| {
+        let name = query.name.filter(|n| !blank_name(n)).ok_or_else(|| {
             Problem::invalid_field("name", "a CSV upload needs ?name=<calibration name>")
         })?;
         let text = std::str::from_utf8(&body)
@@ -210,7 +221,7 @@ pub async fn upload_chain(
         return Err(Problem::for_bare_status(StatusCode::UNSUPPORTED_MEDIA_TYPE));
     };
     let mut errors = check_points(&points);
-    if name.trim().is_empty() || name.len() > 200 {
+    if blank_name(&name) || name.chars().count() > 200 {
         errors.insert(
             0,
             FieldProblem::new("name", "give a name of 1 to 200 characters"),

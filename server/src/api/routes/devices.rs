@@ -98,7 +98,8 @@ pub struct VpiAnswer {
 #[derive(Debug, Deserialize, IntoParams)]
 #[into_params(parameter_in = Query)]
 pub struct VpiQuery {
-    /// RF frequency, Hz.
+    /// RF frequency, Hz (required).
+    #[param(value_type = f64, required = true, exclusive_minimum = 0, maximum = 1e12)]
     pub frequency_hz: Option<f64>,
     /// Answer from this completed run of the device instead of by the lookup rule.
     pub run_id: Option<i64>,

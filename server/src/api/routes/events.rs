@@ -5,13 +5,14 @@
 //! kind) and `id:` is a per-connection counter. `?run_id=` narrows the stream to one run. A watcher
 //! that falls behind the broadcast buffer gets a `lagged` message saying how many events it
 //! missed, never a stalled engine. A keep-alive comment every 15 s keeps proxies from closing an
-//! idle stream. The stream ends when the daemon shuts down, so graceful shutdown is not held up.
+//! idle stream. The stream ends when the daemon shuts down, so graceful shutdown is not held up,
+//! and after `?timeout_s=` seconds when that is given, so a script or a test tool can sample it.
 //!
 //! Authentication: the bearer header, or `?access_token=` because EventSource cannot set headers.
 
 use crate::api::auth::ViewerFromHeaderOrQuery;
 use crate::api::params::ApiQuery;
-use crate::api::problem::Problem;
+use crate::api::problem::{FieldProblem, Problem};
 use crate::api::AppState;
 use crate::engine::events::ProgressEvent;
 use axum::extract::State;
@@ -31,27 +32,60 @@ pub struct EventsQuery {
     pub run_id: Option<i64>,
     /// The token, for clients that cannot send an Authorization header (EventSource).
     pub access_token: Option<String>,
+    /// End the stream after this many seconds (up to a day); without it the stream lasts until
+    /// the client leaves or the daemon stops.
+    #[param(exclusive_minimum = 0, maximum = 86400)]
+    pub timeout_s: Option<f64>,
 }
+
+/// The longest `timeout_s` accepted: a day.
+pub const MAX_STREAM_TIMEOUT_S: f64 = 86_400.0;
+
+/// What the event stream carries, for the document.
+const STREAM_DESCRIPTION: &str = "Server-sent events (`text/event-stream`). Each message's `data:` is one JSON object whose `event` member names its kind: `queued`, `started`, `point`, `point_failed`, `frequency`, `response`, `finished` (run progress, each with `run_id`), `bench_safety` (a bench's RF safety state, sent to every watcher) or `lagged` (`missed_events`: the watcher fell behind). `id:` counts messages per connection; a comment line every 15 s keeps the connection alive. The stream ends after `timeout_s` when given, and when the daemon stops.";
 
 /// Live progress of runs as server-sent events; each `data:` is one JSON progress event.
 #[utoipa::path(get, path = "/api/v1/events", tag = "runs", security(("bearer" = [])),
     params(EventsQuery),
-    responses((status = 200, description = "text/event-stream of progress events (queued, started, point, point_failed, frequency, response, finished, lagged)", content_type = "text/event-stream", body = String),
-              (status = 401, body = Problem)))]
+    responses((status = 200, description = STREAM_DESCRIPTION, content_type = "text/event-stream", body = String),
+              (status = 401, body = Problem),
+              (status = 503, description = "Read-only server without an engine", body = Problem)))]
 pub async fn events(
     _caller: ViewerFromHeaderOrQuery,
     State(state): State<AppState>,
     ApiQuery(query): ApiQuery<EventsQuery>,
 ) -> Result<Sse<impl Stream<Item = Result<Event, Infallible>>>, Problem> {
+    let deadline = match query.timeout_s {
+        None => None,
+        Some(s) if s.is_finite() && s > 0.0 && s <= MAX_STREAM_TIMEOUT_S => {
+            Some(tokio::time::Instant::now() + Duration::from_secs_f64(s))
+        }
+        Some(s) => {
+            return Err(Problem::invalid(
+                format!("timeout_s: {s} is not a number of seconds above 0 and at most {MAX_STREAM_TIMEOUT_S}"),
+                vec![FieldProblem::new(
+                    "timeout_s",
+                    format!("{s} is outside (0, {MAX_STREAM_TIMEOUT_S}] seconds"),
+                )],
+            ))
+        }
+    };
     let receiver = state.engine()?.subscribe();
     let shutdown = state.shutdown_signal();
     let stream = futures_util::stream::unfold(
         (receiver, shutdown, 0u64, query.run_id),
-        |(mut receiver, mut shutdown, mut counter, run_filter)| async move {
+        move |(mut receiver, mut shutdown, mut counter, run_filter)| async move {
             loop {
+                let timed_out = async {
+                    match deadline {
+                        Some(at) => tokio::time::sleep_until(at).await,
+                        None => std::future::pending().await,
+                    }
+                };
                 let received = tokio::select! {
                     received = receiver.recv() => received,
                     _ = shutdown.wait_for(|stopping| *stopping) => return None,
+                    _ = timed_out => return None,
                 };
                 let data = match received {
                     Ok(event) => {

@@ -1,9 +1,10 @@
-//! The route table: one entry per (method, path), one file per resource.
+//! The route table: one entry per handler, one file per resource.
 //!
-//! Routes are registered from [`route_table`], and the same table is what the OpenAPI test
-//! compares with the generated document, so a route cannot be served without being documented
-//! (or documented without being served). Paths use the `{name}` template syntax, which is both
-//! axum's and OpenAPI's.
+//! Each route is registered with utoipa-axum's `routes!`, which takes the method and path from the
+//! handler's `#[utoipa::path]` attribute: the same entry serves the route and puts its operation
+//! into the OpenAPI document ([`crate::api::openapi::document`]), so a route cannot be served
+//! without being documented. Paths use the `{name}` template syntax, which is both axum's and
+//! OpenAPI's.
 
 pub mod benches;
 pub mod chains;
@@ -19,156 +20,55 @@ pub mod tokens;
 use super::problem::Problem;
 use super::{ApiSettings, AppState};
 use axum::http::{HeaderValue, Method};
-use axum::routing::MethodRouter;
-use axum::Router;
 use tower_http::cors::{AllowOrigin, CorsLayer};
+use utoipa_axum::router::OpenApiRouter;
+use utoipa_axum::routes;
 
 /// Prefix of every API route.
 pub const API_PREFIX: &str = "/api/v1";
 
-/// One served route.
-pub struct RouteEntry {
-    pub method: Method,
-    /// Path under [`API_PREFIX`].
-    pub path: &'static str,
-    /// True for long-lived responses (server-sent events), which are exempt from the timeout.
-    pub streaming: bool,
-    handler: MethodRouter<AppState>,
+/// The routes that produce their response promptly (the request timeout applies to them). Add a
+/// route here, with its `#[utoipa::path]` attribute on the handler; nothing else lists it.
+pub fn timed_routes() -> OpenApiRouter<AppState> {
+    OpenApiRouter::new()
+        .routes(routes!(system::health))
+        .routes(routes!(system::metrics))
+        .routes(routes!(system::openapi_document))
+        .routes(routes!(tokens::list_tokens, tokens::create_token))
+        .routes(routes!(tokens::revoke_token))
+        .routes(routes!(run_control::submit_run, runs::list_runs))
+        .routes(routes!(run_control::cancel_run))
+        .routes(routes!(run_control::resume_run))
+        .routes(routes!(benches::list_benches))
+        .routes(routes!(benches::acknowledge_bench))
+        .routes(routes!(runs::get_run))
+        .routes(routes!(runs::list_points))
+        .routes(routes!(runs::point_trace))
+        .routes(routes!(runs::point_spectrum_svg))
+        .routes(routes!(runs::latest_spectrum_svg))
+        .routes(routes!(runs::modulation_index_svg))
+        .routes(routes!(runs::compare_runs))
+        .routes(routes!(devices::list_devices))
+        .routes(routes!(devices::get_device))
+        .routes(routes!(devices::calibration_history))
+        .routes(routes!(devices::vpi_at))
+        .routes(routes!(pins::get_pin, pins::pin_run))
+        .routes(routes!(pins::unpin_device))
+        .routes(routes!(devices::vpi_plot))
+        .routes(routes!(devices::response_plot))
+        .routes(routes!(chains::upload_chain, chains::list_chains))
+        .routes(routes!(chains::get_chain))
 }
 
-fn entry(method: Method, path: &'static str, handler: MethodRouter<AppState>) -> RouteEntry {
-    RouteEntry {
-        method,
-        path,
-        streaming: false,
-        handler,
-    }
+/// The long-lived routes (server-sent events), exempt from the request timeout.
+pub fn streaming_routes() -> OpenApiRouter<AppState> {
+    OpenApiRouter::new().routes(routes!(events::events))
 }
 
-/// Every API route. Add a route here and its `#[utoipa::path]` to `openapi.rs`.
-pub fn route_table() -> Vec<RouteEntry> {
-    use axum::routing::{delete, get, post};
-    vec![
-        entry(Method::GET, "/health", get(system::health)),
-        entry(Method::GET, "/metrics", get(system::metrics)),
-        entry(Method::GET, "/openapi.json", get(system::openapi_document)),
-        entry(Method::GET, "/tokens", get(tokens::list_tokens)),
-        entry(Method::POST, "/tokens", post(tokens::create_token)),
-        entry(
-            Method::DELETE,
-            "/tokens/{name}",
-            delete(tokens::revoke_token),
-        ),
-        entry(Method::POST, "/runs", post(run_control::submit_run)),
-        entry(
-            Method::POST,
-            "/runs/{run_id}/cancel",
-            post(run_control::cancel_run),
-        ),
-        entry(
-            Method::POST,
-            "/runs/{run_id}/resume",
-            post(run_control::resume_run),
-        ),
-        entry(Method::GET, "/benches", get(benches::list_benches)),
-        entry(
-            Method::POST,
-            "/benches/{bench}/acknowledge",
-            post(benches::acknowledge_bench),
-        ),
-        RouteEntry {
-            method: Method::GET,
-            path: "/events",
-            streaming: true,
-            handler: get(events::events),
-        },
-        entry(Method::GET, "/runs", get(runs::list_runs)),
-        entry(Method::GET, "/runs/{run_id}", get(runs::get_run)),
-        entry(Method::GET, "/runs/{run_id}/points", get(runs::list_points)),
-        entry(
-            Method::GET,
-            "/runs/{run_id}/points/{point_id}/trace",
-            get(runs::point_trace),
-        ),
-        entry(
-            Method::GET,
-            "/runs/{run_id}/points/{point_id}/spectrum.svg",
-            get(runs::point_spectrum_svg),
-        ),
-        entry(
-            Method::GET,
-            "/runs/{run_id}/spectrum.svg",
-            get(runs::latest_spectrum_svg),
-        ),
-        entry(
-            Method::GET,
-            "/runs/{run_id}/plots/modulation-index.svg",
-            get(runs::modulation_index_svg),
-        ),
-        entry(
-            Method::GET,
-            "/runs/{run_id}/compare/{other_run_id}",
-            get(runs::compare_runs),
-        ),
-        entry(Method::GET, "/devices", get(devices::list_devices)),
-        entry(Method::GET, "/devices/{serial}", get(devices::get_device)),
-        entry(
-            Method::GET,
-            "/devices/{serial}/calibrations",
-            get(devices::calibration_history),
-        ),
-        entry(Method::GET, "/devices/{serial}/v-pi", get(devices::vpi_at)),
-        entry(Method::GET, "/devices/{serial}/pin", get(pins::get_pin)),
-        entry(Method::POST, "/devices/{serial}/pin", post(pins::pin_run)),
-        entry(
-            Method::POST,
-            "/devices/{serial}/unpin",
-            post(pins::unpin_device),
-        ),
-        entry(
-            Method::GET,
-            "/devices/{serial}/plots/v-pi.svg",
-            get(devices::vpi_plot),
-        ),
-        entry(
-            Method::GET,
-            "/devices/{serial}/plots/response.svg",
-            get(devices::response_plot),
-        ),
-        entry(
-            Method::POST,
-            "/chain-calibrations",
-            post(chains::upload_chain),
-        ),
-        entry(Method::GET, "/chain-calibrations", get(chains::list_chains)),
-        entry(
-            Method::GET,
-            "/chain-calibrations/{name}",
-            get(chains::get_chain),
-        ),
-    ]
-}
-
-fn build(streaming: bool) -> Router<AppState> {
-    let mut router = Router::new();
-    for route in route_table()
-        .into_iter()
-        .filter(|r| r.streaming == streaming)
-    {
-        let path = format!("{API_PREFIX}{}", route.path);
-        router = router.route(&path, route.handler);
-    }
-    router
-}
-
-/// The routes that produce their response promptly (timeout applies).
-pub fn timed_routes() -> Router<AppState> {
-    build(false)
-}
-
-/// The long-lived routes (server-sent events).
-pub fn streaming_routes() -> Router<AppState> {
-    build(true)
+/// Every API route with its operation, without the layers [`crate::api::router`] adds: what the
+/// OpenAPI document is made from.
+pub fn all_routes() -> OpenApiRouter<AppState> {
+    timed_routes().merge(streaming_routes())
 }
 
 /// 404 for paths that match no route.

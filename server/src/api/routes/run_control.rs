@@ -30,7 +30,7 @@ pub struct SubmittedRun {
 /// Queues a calibration run. Every invalid field is reported at once (422); nothing reaches an
 /// instrument unless the whole plan is valid.
 #[utoipa::path(post, path = "/api/v1/runs", tag = "runs", security(("bearer" = [])),
-    request_body(content = Object, description = "A sweep plan: device {serial, model, rf_input_limit_dbm, wavelength_nm}, bench, chain {kind: flat_loss {loss_db} | stored {name, version}}, frequencies {kind: list {values_hz} | linear | logarithmic {start_hz, stop_hz, count}}, levels {kind: list {values_dbm} | ramp {start_dbm, stop_dbm, step_db}}, settle_s, averages, analyzer {span_hz, resolution_bandwidth_hz, points, expected_orders}, reference_trace, carrier_tracking, note"),
+    request_body(content = PlanRequest, description = "A sweep plan. The schema gives its shape; whether a plan can run is decided against the bench it names (its instruments' ranges, the drive chain, the device's RF input limit and the daemon's ceiling), and every field that fails is named in the 422."),
     responses((status = 201, body = SubmittedRun), (status = 401, body = Problem),
               (status = 403, body = Problem), (status = 413, body = Problem),
               (status = 422, description = "Invalid fields, each named in `errors`", body = Problem),

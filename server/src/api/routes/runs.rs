@@ -68,7 +68,9 @@ impl From<&RunRecord> for RunSummary {
 #[derive(Debug, Serialize, Deserialize, ToSchema)]
 pub struct RunList {
     pub runs: Vec<RunSummary>,
+    #[schema(format = Int64, minimum = 1, maximum = 4294967295_u64)]
     pub page: u32,
+    #[schema(minimum = 1, maximum = 1000)]
     pub per_page: u32,
     /// Runs matching the filter, on all pages.
     pub total: i64,
@@ -81,9 +83,49 @@ pub struct FrequencyResultView {
     pub frequency_hz: f64,
     pub v_pi_volts: f64,
     pub v_pi_uncertainty_volts: f64,
-    /// Points the fit left out, with reasons (as the engine recorded them).
-    #[schema(value_type = Object)]
+    /// Points the fit left out, with reasons (as the engine recorded them; empty when none).
+    #[schema(value_type = Vec<ExcludedPointView>)]
     pub excluded_points: serde_json::Value,
+}
+
+/// A point the V_pi fit left out (the shape the engine stores; documentation of
+/// [`FrequencyResultView::excluded_points`], which is passed through as stored).
+#[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
+pub struct ExcludedPointView {
+    pub level_index: u32,
+    /// The generator level of that point (null if it was not a number).
+    pub generator_level_dbm: Option<f64>,
+    /// Why the fit left it out.
+    pub reason: String,
+}
+
+/// One row of a point's line table: a comb line the analysis looked for (the shape the engine
+/// stores; documentation of [`PointView::lines`], which is passed through as stored).
+#[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
+pub struct LineView {
+    /// Sideband order: 0 the carrier, -n and +n the n-th lower and upper sidebands.
+    pub order: i32,
+    /// Optical frequency of the line, Hz.
+    pub frequency_hz: f64,
+    /// Line power integrated over the line shape with the floor removed; null when nothing is
+    /// left above the floor.
+    pub power_dbm: Option<f64>,
+    /// Standard uncertainty of the line power, dB (null with the power).
+    pub power_uncertainty_db: Option<f64>,
+    pub above_floor: Option<bool>,
+    /// The line's peak power in the whole-trace fit, which may lie below the floor.
+    pub fitted_power_dbm: Option<f64>,
+    /// Whether the fitted line's peak rises above the fitted floor.
+    pub fitted_above_floor: Option<bool>,
+}
+
+/// A stored JSON array as a value: anything else (damaged or not a list) is the empty list, so the
+/// view always has the documented shape.
+pub fn stored_json_array(text: &str) -> serde_json::Value {
+    match serde_json::from_str(text) {
+        Ok(array @ serde_json::Value::Array(_)) => array,
+        _ => serde_json::Value::Array(Vec::new()),
+    }
 }
 
 /// One run with its plan and its per-frequency results.
@@ -91,8 +133,9 @@ pub struct FrequencyResultView {
 pub struct RunView {
     #[serde(flatten)]
     pub summary: RunSummary,
-    /// The plan as submitted (after defaults).
-    #[schema(value_type = Object)]
+    /// The plan as submitted (after defaults), in the form `POST /runs` takes; null only if the
+    /// stored plan cannot be read.
+    #[schema(value_type = Option<crate::engine::plan::PlanRequest>)]
     pub plan: serde_json::Value,
     pub measured_points: usize,
     pub results: Vec<FrequencyResultView>,
@@ -116,11 +159,13 @@ pub struct PointView {
     pub modulation_index_uncertainty: Option<f64>,
     pub asymmetry_db: Option<f64>,
     /// The comb lines found (order, frequency, power ...), as the analysis reported them. Passed
-    /// through as stored (never parsed into a tree and written again).
-    #[schema(value_type = Object)]
+    /// through as stored (never parsed into a tree and written again); an empty list when the
+    /// stored table is not a list.
+    #[schema(value_type = Vec<LineView>)]
     pub lines: Box<RawValue>,
-    /// Method, residuals and warnings of the analysis, passed through as stored.
-    #[schema(value_type = Object)]
+    /// Method, residuals and warnings of the analysis, passed through as stored (`{"error": ...}`
+    /// when the trace could not be analysed; null if the stored text is damaged).
+    #[schema(value_type = Option<Object>)]
     pub analysis: Box<RawValue>,
     pub measured_at_unix_ms: i64,
 }
@@ -138,7 +183,7 @@ impl From<PointRecord> for PointView {
             modulation_index: p.modulation_index,
             modulation_index_uncertainty: p.modulation_index_uncertainty,
             asymmetry_db: p.asymmetry_db,
-            lines: stored_json(p.line_table_json),
+            lines: stored_json_list(p.line_table_json),
             analysis: stored_json(p.analysis_json),
             measured_at_unix_ms: p.measured_at_unix_ms,
         }
@@ -151,6 +196,16 @@ pub fn stored_json(text: String) -> Box<RawValue> {
     RawValue::from_string(text).unwrap_or_else(|_| null_json())
 }
 
+/// A JSON list from the store, served as it is like [`stored_json`]; `[]` if it is not a list.
+pub fn stored_json_list(text: String) -> Box<RawValue> {
+    if text.trim_start().starts_with('[') {
+        if let Ok(raw) = RawValue::from_string(text) {
+            return raw;
+        }
+    }
+    RawValue::from_string("[]".to_owned()).expect("[] is JSON")
+}
+
 /// The JSON `null`, as a raw value.
 pub fn null_json() -> Box<RawValue> {
     RawValue::from_string("null".to_owned()).expect("null is JSON")
@@ -160,7 +215,9 @@ pub fn null_json() -> Box<RawValue> {
 #[derive(Debug, Serialize, Deserialize, ToSchema)]
 pub struct PointList {
     pub points: Vec<PointView>,
+    #[schema(format = Int64, minimum = 1, maximum = 4294967295_u64)]
     pub page: u32,
+    #[schema(minimum = 1, maximum = 1000)]
     pub per_page: u32,
     pub total: usize,
 }
@@ -171,25 +228,56 @@ pub struct PointList {
 pub struct RunListQuery {
     /// Device serial number.
     pub device: Option<String>,
-    /// queued, running, completed, failed, cancelled or interrupted.
+    /// queued, running, completed, failed, cancelled or interrupted (empty: any).
+    #[param(pattern = "^(queued|running|completed|failed|cancelled|interrupted)?$")]
     pub state: Option<String>,
-    /// Created at or after: a date `YYYY-MM-DD` (UTC midnight) or milliseconds since the epoch.
+    /// Created at or after: a date `YYYY-MM-DD` (UTC midnight) or milliseconds since the epoch
+    /// (up to 15 digits); empty: no bound.
+    #[param(schema_with = time_bound_schema)]
     pub since: Option<String>,
-    /// Created before: a date `YYYY-MM-DD` (UTC midnight) or milliseconds since the epoch.
+    /// Created before: a date `YYYY-MM-DD` (UTC midnight) or milliseconds since the epoch
+    /// (up to 15 digits); empty: no bound.
+    #[param(schema_with = time_bound_schema)]
     pub until: Option<String>,
     /// Page number, from 1.
+    #[param(format = Int64, minimum = 1, maximum = 4294967295_u64)]
     pub page: Option<u32>,
     /// Runs per page, 1 to 1000 (default 50).
+    #[param(minimum = 1, maximum = 1000)]
     pub per_page: Option<u32>,
 }
+
+/// The schema of a time bound: a date, or milliseconds since the epoch as digits, or empty.
+fn time_bound_schema() -> utoipa::openapi::schema::Schema {
+    use utoipa::openapi::schema::{AnyOfBuilder, KnownFormat, ObjectBuilder, SchemaFormat, Type};
+    AnyOfBuilder::new()
+        .item(
+            ObjectBuilder::new()
+                .schema_type(Type::String)
+                .format(Some(SchemaFormat::KnownFormat(KnownFormat::Date))),
+        )
+        .item(
+            ObjectBuilder::new()
+                .schema_type(Type::String)
+                .pattern(Some(TIME_BOUND_MS_PATTERN)),
+        )
+        .build()
+        .into()
+}
+
+/// Milliseconds since the epoch in a time bound: up to 15 digits (beyond the year 9999), or
+/// nothing.
+const TIME_BOUND_MS_PATTERN: &str = "^[0-9]{0,15}$";
 
 /// Paging of a run's points.
 #[derive(Debug, Deserialize, IntoParams)]
 #[into_params(parameter_in = Query)]
 pub struct PageQuery {
     /// Page number, from 1.
+    #[param(format = Int64, minimum = 1, maximum = 4294967295_u64)]
     pub page: Option<u32>,
     /// Items per page, 1 to 1000 (default 200).
+    #[param(minimum = 1, maximum = 1000)]
     pub per_page: Option<u32>,
 }
 
@@ -198,6 +286,7 @@ pub struct PageQuery {
 #[into_params(parameter_in = Query)]
 pub struct TraceQuery {
     /// `json` (default) or `csv`.
+    #[param(pattern = "^(json|csv)$")]
     pub format: Option<String>,
 }
 
@@ -206,6 +295,7 @@ pub struct TraceQuery {
 #[into_params(parameter_in = Query)]
 pub struct FrequencyIndexQuery {
     /// Index of the frequency in the run's plan, from 0 (default 0).
+    #[param(format = Int64, minimum = 0, maximum = 4294967295_u64)]
     pub frequency_index: Option<u32>,
 }
 
@@ -238,11 +328,13 @@ fn paging(page: Option<u32>, per_page: Option<u32>, default: u32) -> Result<(u32
     }
 }
 
-/// Parses `YYYY-MM-DD` (UTC midnight) or integer milliseconds since the epoch.
+/// Parses `YYYY-MM-DD` (UTC midnight) or milliseconds since the epoch (1 to 15 digits, as the
+/// document's pattern says).
 pub fn parse_time_bound(field: &str, text: &str) -> Result<i64, FieldProblem> {
-    let text = text.trim();
-    if let Ok(ms) = text.parse::<i64>() {
-        return Ok(ms);
+    if !text.is_empty() && text.len() <= 15 && text.bytes().all(|b| b.is_ascii_digit()) {
+        if let Ok(ms) = text.parse::<i64>() {
+            return Ok(ms);
+        }
     }
     let bad = || {
         FieldProblem::new(
@@ -344,8 +436,7 @@ pub async fn get_run(
                 frequency_hz: r.frequency_hz,
                 v_pi_volts: r.v_pi_volts,
                 v_pi_uncertainty_volts: r.v_pi_uncertainty_volts,
-                excluded_points: serde_json::from_str(&r.excluded_points_json)
-                    .unwrap_or(serde_json::Value::Null),
+                excluded_points: stored_json_array(&r.excluded_points_json),
             })
             .collect(),
     };
@@ -428,7 +519,8 @@ pub fn point_number(points: &[PointRecord], point_id: i64) -> usize {
 /// The analyzer trace of one point, as JSON or CSV (`frequency_hz,power_dbm`).
 #[utoipa::path(get, path = "/api/v1/runs/{run_id}/points/{point_id}/trace", tag = "runs", security(("bearer" = [])),
     params(("run_id" = i64, Path, description = "Run id"), ("point_id" = i64, Path, description = "Point id"), TraceQuery),
-    responses((status = 200, body = TraceView, description = "JSON, or text/csv with format=csv"),
+    responses((status = 200, description = "JSON, or text/csv (`frequency_hz,power_dbm`) with format=csv",
+               content((TraceView = "application/json"), (String = "text/csv"))),
               (status = 401, body = Problem), (status = 404, body = Problem), (status = 422, body = Problem)))]
 pub async fn point_trace(
     _caller: Viewer,
@@ -688,6 +780,15 @@ mod tests {
             "until"
         );
         assert!(parse_time_bound("until", "yesterday").is_err());
+        // Only what the document's pattern allows: digits (at most 15) or a date.
+        assert!(parse_time_bound("since", "+5").is_err());
+        assert!(parse_time_bound("since", " 5").is_err());
+        assert!(parse_time_bound("since", "-5").is_err());
+        assert!(parse_time_bound("since", "1000000000000000").is_err());
+        assert_eq!(
+            parse_time_bound("since", "999999999999999").unwrap(),
+            999_999_999_999_999
+        );
     }
 
     #[test]
@@ -702,6 +803,28 @@ mod tests {
         assert_eq!(
             serde_json::to_string(&stored_json(String::new())).unwrap(),
             "null"
+        );
+    }
+
+    #[test]
+    fn stored_lists_keep_their_shape() {
+        let stored = r#"[{"order":0,"frequency_hz":1.0}]"#;
+        assert_eq!(stored_json_list(stored.to_string()).get(), stored);
+        for damaged in ["", "null", "{\"lines\":[]}", "[1,"] {
+            assert_eq!(
+                stored_json_list(damaged.to_string()).get(),
+                "[]",
+                "{damaged:?}"
+            );
+            assert_eq!(
+                stored_json_array(damaged),
+                serde_json::json!([]),
+                "{damaged:?}"
+            );
+        }
+        assert_eq!(
+            stored_json_array(r#"[{"level_index":2,"reason":"outlier"}]"#)[0]["level_index"],
+            2
         );
     }
 

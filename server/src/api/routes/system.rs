@@ -8,7 +8,6 @@
 //! histograms ([`crate::api::metrics`]).
 
 use crate::api::auth::Viewer;
-use crate::api::openapi::ApiDoc;
 use crate::api::problem::Problem;
 use crate::api::run_gauges;
 use crate::api::AppState;
@@ -18,7 +17,7 @@ use axum::http::StatusCode;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
 use serde::{Deserialize, Serialize};
-use utoipa::{OpenApi, ToSchema};
+use utoipa::ToSchema;
 
 /// The daemon's health.
 #[derive(Debug, Serialize, Deserialize, ToSchema)]
@@ -110,5 +109,5 @@ pub async fn metrics(_caller: Viewer, State(state): State<AppState>) -> Result<R
     responses((status = 200, description = "OpenAPI 3.1 document", body = Object),
               (status = 401, description = "No valid token", body = Problem)))]
 pub async fn openapi_document(_caller: Viewer) -> Response {
-    Json(ApiDoc::openapi()).into_response()
+    Json(crate::api::openapi::document()).into_response()
 }

@@ -20,7 +20,9 @@ use utoipa::ToSchema;
 #[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct NewToken {
-    /// A name that says who holds it (`lab-b`, `ci-bot`); appears in the audit log.
+    /// A name that says who holds it (`lab-b`, `ci-bot`); appears in the audit log. 1 to 64
+    /// letters, digits, `-`, `_`, `.` or `@`.
+    #[schema(min_length = 1, max_length = 64, pattern = "^[A-Za-z0-9._@-]+$")]
     pub name: String,
     pub role: Role,
 }
