@@ -1519,9 +1519,8 @@ fn fit_once(
         evaluate(&prob, &shape, &p, ws, true);
     }
     // With a measured shape, P0 and the floor put right for the starting beta and centre before
-    // the first full step; the windows and segments set again when that moved them far (the reach of every
-    // line is set against the floor).
-    let levels_before = (p[LN_P0], p[LN_FLOOR]);
+    // the first full step. The windows and segments stay those of the start until the cut near
+    // the optimum (cutting them again here cost more than the steps it saved).
     let mut eval = if parametric {
         // A parametric shape's width and mix are as far off at the start as P0 and the floor
         // (the start's small Lorentzian part puts wings far above the floor between the
@@ -1530,10 +1529,6 @@ fn fit_once(
     } else {
         polish_levels(&prob, &mut p, ws)
     };
-    if (p[LN_P0] - levels_before.0).abs() > 0.1 || (p[LN_FLOOR] - levels_before.1).abs() > 0.1 {
-        set_windows(&mut prob, &shape, &p, ws);
-        eval = evaluate(&prob, &shape, &p, ws, true);
-    }
     let mut lambda = 1e-3;
     let mut iterations = 0;
     let mut rewindowed = false;
