@@ -41,6 +41,7 @@ use halfwave_units::{Hz, Trace};
 use serde::Serialize;
 use std::borrow::Cow;
 use std::cell::RefCell;
+use std::sync::Arc;
 
 /// 10 / ln 10: a natural log times this is a level in dB.
 const DB_PER_NEPER: f64 = 4.342_944_819_032_518;
@@ -103,16 +104,19 @@ pub struct LineShape {
     inv_width_l_sq: f64,
     /// Pseudo-Voigt Lorentzian fraction of the peak, 0..1.
     eta: f64,
-    /// Measured: K at x0 + j h.
-    table: Vec<f64>,
+    /// Measured: K at x0 + j h. The measured tables are shared (`Arc`), so that the fitted
+    /// model returned with every fit does not copy them.
+    table: Arc<[f64]>,
     x0: f64,
     h: f64,
     inv_h: f64,
-    /// Measured: the table with one zero before and two after (see `eval`).
-    padded: Vec<f64>,
+    /// Measured: per table interval j (from x0 + j h), the Catmull-Rom cubic through the table's
+    /// four neighbours of the interval, as the coefficients of 1, s, s^2, s^3 (s the fraction of
+    /// the interval), with zeros beyond the table's ends (see `measured_value`).
+    cubic: Arc<[[f64; 4]]>,
     /// Measured: for each j, the largest table value at or beyond j away from the centre (for
     /// the reach of a line).
-    envelope: Vec<f64>,
+    envelope: Arc<[f64]>,
     /// Index of the table's peak.
     peak_index: usize,
 }
@@ -140,12 +144,12 @@ impl LineShape {
             inv_width_sq: 1.0 / (width_hz * width_hz),
             inv_width_l_sq: 1.0 / (lorentzian_width_hz * lorentzian_width_hz),
             eta: eta.clamp(0.0, 1.0),
-            table: Vec::new(),
+            table: Arc::from([]),
             x0: 0.0,
             h: 1.0,
             inv_h: 1.0,
-            padded: Vec::new(),
-            envelope: Vec::new(),
+            cubic: Arc::from([]),
+            envelope: Arc::from([]),
             peak_index: 0,
         }
     }
@@ -351,17 +355,12 @@ impl LineShape {
             inv_width_sq: 1.0 / (width * width),
             inv_width_l_sq: 1.0 / (width * width),
             eta: 0.0,
-            padded: [0.0]
-                .iter()
-                .chain(&table)
-                .chain(&[0.0, 0.0])
-                .copied()
-                .collect(),
-            table,
+            cubic: catmull_rom_coefficients(&table).into(),
+            table: table.into(),
             x0,
             h,
             inv_h: 1.0 / h,
-            envelope,
+            envelope: envelope.into(),
             peak_index,
         }
     }
@@ -424,15 +423,8 @@ impl LineShape {
         // baseline x86-64 target).
         let j = t as usize;
         let s = t - j as f64;
-        // `padded` holds the table with one zero before and two after: the four neighbours of
-        // j are padded[j..j + 4].
-        let p = &self.padded[j..j + 4];
-        let (p0, p1, p2, p3) = (p[0], p[1], p[2], p[3]);
-        // Catmull-Rom cubic through the four neighbours.
-        let c1 = 0.5 * (p2 - p0);
-        let c2 = p0 - 2.5 * p1 + 2.0 * p2 - 0.5 * p3;
-        let c3 = 0.5 * (p3 - p0) + 1.5 * (p1 - p2);
-        let k = p1 + s * (c1 + s * (c2 + s * c3));
+        let [c0, c1, c2, c3] = self.cubic[j];
+        let k = c0 + s * (c1 + s * (c2 + s * c3));
         let dk = (c1 + s * (2.0 * c2 + 3.0 * s * c3)) * self.inv_h;
         (k, dk)
     }
@@ -489,6 +481,30 @@ impl LineShape {
             }
         }
     }
+}
+
+/// The Catmull-Rom cubic of every interval of `table` (one per entry; the last one is read at
+/// its start only), with zeros taken beyond both ends: for interval j through the values
+/// p0..p3 at j - 1..j + 2, K = p1 + s (c1 + s (c2 + s c3)).
+fn catmull_rom_coefficients(table: &[f64]) -> Vec<[f64; 4]> {
+    let at = |i: isize| -> f64 {
+        if i < 0 || i as usize >= table.len() {
+            0.0
+        } else {
+            table[i as usize]
+        }
+    };
+    (0..table.len() as isize)
+        .map(|j| {
+            let (p0, p1, p2, p3) = (at(j - 1), at(j), at(j + 1), at(j + 2));
+            [
+                p1,
+                0.5 * (p2 - p0),
+                p0 - 2.5 * p1 + 2.0 * p2 - 0.5 * p3,
+                0.5 * (p3 - p0) + 1.5 * (p1 - p2),
+            ]
+        })
+        .collect()
 }
 
 #[inline]
@@ -644,6 +660,8 @@ struct Workspace {
     centres: Vec<usize>,
     /// Points under the lines.
     points_under: usize,
+    /// The model's level at each point while the segments are cut.
+    level_cache: Vec<f64>,
 }
 
 /// Points between nodes on which the model in dB is taken as the quadratic through the nodes
@@ -745,8 +763,6 @@ fn evaluate(
 ) -> Evaluation {
     let table = BesselTable::get();
     let beta = p[BETA];
-    let p0 = p[LN_P0].exp();
-    let floor = p[LN_FLOOR].exp();
     let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
     let a = p[ASYM];
     let node_count = ws.nodes.len();
@@ -788,6 +804,18 @@ fn evaluate(
             }
         }
     }
+    assemble(prob, p, ws, jacobian)
+}
+
+/// The sum of squares (and with `jacobian`, J^T J and J^T r) at the parameters `p` from the line
+/// sums at the nodes that [`evaluate`] left in the workspace: the levels at the nodes, then the
+/// segments' quadratic forms. The sums do not depend on P0 and the floor, so this alone serves
+/// for steps in those two (see [`polish_levels`]).
+#[allow(clippy::needless_range_loop)]
+fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -> Evaluation {
+    let p0 = p[LN_P0].exp();
+    let floor = p[LN_FLOOR].exp();
+    let node_count = ws.nodes.len();
     let c = DB_PER_NEPER;
     let width_active = prob.active[LN_WIDTH];
     let eta_active = prob.active[ETA];
@@ -894,6 +922,95 @@ fn evaluate(
         }
     }
     e
+}
+
+/// Moves ln P0 and ln F in `p` to the least squares for the line sums at the nodes that
+/// [`evaluate`] left in the workspace (Gauss-Newton in those two alone, each step kept only when
+/// it lowers the sum of squares). The model is linear in P0 and F but its level in dB is not, so
+/// this is iterative, but it costs per node, not per line and node: the fit's start (a floor
+/// read between lines that may hold the lines' own wings, a line power from the line-by-line
+/// measurement) is put right before the first full step. Returns the evaluation at the new
+/// parameters (with the Jacobian).
+#[allow(clippy::needless_range_loop)]
+fn polish_levels(prob: &Problem, p: &mut [f64; NP], ws: &mut Workspace) -> Evaluation {
+    let c = DB_PER_NEPER;
+    let node_count = ws.nodes.len();
+    // Sum of squares, and its gradient and Gauss-Newton matrix in (ln P0, ln F).
+    let sums = |p0: f64, floor: f64, ws: &mut Workspace| -> (f64, [f64; 2], [[f64; 2]; 2]) {
+        let s0 = &ws.s[0];
+        for k in 0..node_count {
+            let m = (floor + p0 * s0[k]).max(1e-300);
+            ws.node_level[k] = c * m.ln();
+            let g = c / m;
+            ws.node_gradient[k][0] = g * p0 * s0[k];
+            ws.node_gradient[k][1] = g * floor;
+        }
+        let (mut ssr, mut jtr, mut jtj) = (0.0, [0.0; 2], [[0.0; 2]; 2]);
+        for seg in &ws.segments {
+            let count = seg.count as usize;
+            for j in 0..count {
+                let sj = seg.slots[j] as usize;
+                let mut gm = 0.0;
+                let mut gd = [0.0; 2];
+                for k in 0..count {
+                    let sk = seg.slots[k] as usize;
+                    let g = seg.g(j, k);
+                    gm += g * ws.node_level[sk];
+                    gd[0] += g * ws.node_gradient[sk][0];
+                    gd[1] += g * ws.node_gradient[sk][1];
+                }
+                let lj = ws.node_level[sj];
+                let dj = [ws.node_gradient[sj][0], ws.node_gradient[sj][1]];
+                ssr += gm * lj - 2.0 * seg.h[j] * lj;
+                for r in 0..2 {
+                    jtr[r] += dj[r] * (gm - seg.h[j]);
+                    for q in 0..2 {
+                        jtj[r][q] += dj[r] * gd[q];
+                    }
+                }
+            }
+            ssr += seg.yy;
+        }
+        if prob.block_n > 0.0 {
+            let lf = c * floor.ln();
+            ssr += prob.block_n * lf * lf - 2.0 * lf * prob.block_sum + prob.block_sq;
+            jtj[1][1] += prob.block_n * c * c;
+            jtr[1] += c * (prob.block_n * lf - prob.block_sum);
+        }
+        (ssr, jtr, jtj)
+    };
+    let (mut u, mut v) = (p[LN_P0], p[LN_FLOOR]);
+    let (mut ssr, mut jtr, mut jtj) = sums(u.exp(), v.exp(), ws);
+    for _ in 0..8 {
+        let det = jtj[0][0] * jtj[1][1] - jtj[0][1] * jtj[1][0];
+        if !(det > 0.0 && det.is_finite()) {
+            break;
+        }
+        let du = -(jtj[1][1] * jtr[0] - jtj[0][1] * jtr[1]) / det;
+        let dv = -(jtj[0][0] * jtr[1] - jtj[1][0] * jtr[0]) / det;
+        // Steps of more than a factor e^2 are cut back (the floor may start tens of dB off).
+        let scale = (2.0 / du.abs().max(dv.abs())).min(1.0);
+        let mut accepted = false;
+        let mut t = scale;
+        for _ in 0..6 {
+            let (tu, tv) = (u + t * du, v + t * dv);
+            let trial = sums(tu.exp(), tv.exp(), ws);
+            if trial.0.is_finite() && trial.0 < ssr {
+                (u, v) = (tu, tv);
+                (ssr, jtr, jtj) = trial;
+                accepted = true;
+                break;
+            }
+            t *= 0.5;
+        }
+        // Converged (a step under 1e-4 in ln P0 and ln F: 0.0004 dB) or no further decrease.
+        if !accepted || (t * du).abs().max((t * dv).abs()) < 1e-4 {
+            break;
+        }
+    }
+    p[LN_P0] = u;
+    p[LN_FLOOR] = v;
+    assemble(prob, p, ws, true)
 }
 
 /// Solves the active part of `m x = b` by Cholesky; `None` when not positive definite.
@@ -1082,7 +1199,15 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     }
     let amplitudes = &*amplitudes;
     let ranges = &ws.ranges;
-    let level_at = |i: usize| -> f64 {
+    // The model's level at each point, computed once (the halving below asks for the same
+    // points again): NaN where not yet computed.
+    let mut cache = std::mem::take(&mut ws.level_cache);
+    cache.clear();
+    cache.resize(prob.freq.len(), f64::NAN);
+    let mut level_at = |i: usize| -> f64 {
+        if !cache[i].is_nan() {
+            return cache[i];
+        }
         let f = prob.freq[i];
         let mut m = floor;
         for (slot, amplitude) in amplitudes.iter().enumerate() {
@@ -1092,7 +1217,9 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
                 m += amplitude * shape.eval(f - fc - n as f64 * prob.spacing).k;
             }
         }
-        DB_PER_NEPER * m.max(1e-300).ln()
+        let level = DB_PER_NEPER * m.max(1e-300).ln();
+        cache[i] = level;
+        level
     };
     let centres = &ws.centres;
     let nearest_centre = |i: usize| -> usize {
@@ -1173,6 +1300,7 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
         }
     }
     ws.points_under = under;
+    ws.level_cache = cache;
 }
 
 /// The statistics of one segment with nodes at the points `at` (node slots `slots`) over its
@@ -1307,6 +1435,26 @@ pub(crate) fn fit_trace_segmented(
     })
 }
 
+/// The parameters `p` moved by `delta`, kept where the model is physical.
+fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
+    let mut trial: [f64; NP] = std::array::from_fn(|i| p[i] + delta[i]);
+    trial[BETA] = trial[BETA].max(1e-6);
+    // Residual AM weaker than the phase modulation: at small beta a depth m and an index
+    // beta give the same first sidebands as the two swapped, and only this picks the
+    // physical one.
+    trial[ASYM] = trial[ASYM].clamp(-trial[BETA].min(0.5), trial[BETA].min(0.5));
+    trial[ETA] = trial[ETA].clamp(0.0, 1.0);
+    // Widths within a factor of 20 of the start: a part with little weight cannot run away
+    // (and widen every line's window with it).
+    for slot in [LN_WIDTH, LN_WIDTH_L] {
+        trial[slot] = trial[slot].clamp(
+            shape0.width_hz.max(1e-3).ln() - 3.0,
+            shape0.width_hz.max(1e-3).ln() + 3.0,
+        );
+    }
+    trial
+}
+
 #[allow(clippy::needless_range_loop)]
 fn fit_once(
     ws: &mut Workspace,
@@ -1367,7 +1515,20 @@ fn fit_once(
     set_windows(&mut prob, shape0, &p, ws);
     let mut shape = params_shape(shape0, &p);
     prob.active = free_parameters(&base, &p);
-    let mut eval = evaluate(&prob, &shape, &p, ws, true);
+    if !parametric {
+        evaluate(&prob, &shape, &p, ws, true);
+    }
+    // With a measured shape, P0 and the floor put right for the starting beta and centre before
+    // the first full step. The windows and segments stay those of the start until the cut near
+    // the optimum (cutting them again here cost more than the steps it saved).
+    let mut eval = if parametric {
+        // A parametric shape's width and mix are as far off at the start as P0 and the floor
+        // (the start's small Lorentzian part puts wings far above the floor between the
+        // lines, which drags P0 down): they are fitted together from the first step.
+        evaluate(&prob, &shape, &p, ws, true)
+    } else {
+        polish_levels(&prob, &mut p, ws)
+    };
     let mut lambda = 1e-3;
     let mut iterations = 0;
     let mut rewindowed = false;
@@ -1381,8 +1542,10 @@ fn fit_once(
             // The windows and segments were set for the starting parameters: set them for the
             // fitted ones (a parametric shape that grew a Lorentzian part reaches further, a
             // line that grew needs finer segments) and go on while that changes the residual.
+            // Not needed when they were set near the optimum already (a step under one
+            // standard uncertainty, the steps after it smaller).
             let before = (eval.points, eval.ssr);
-            if pass == 0 {
+            if pass == 0 && !recut_near_optimum {
                 pass = 1;
                 set_windows(&mut prob, &shape, &p, ws);
                 let after = evaluate(&prob, &shape, &p, ws, true);
@@ -1409,24 +1572,7 @@ fn fit_once(
             lambda *= 10.0;
             continue;
         };
-        let mut trial = p;
-        for i in 0..NP {
-            trial[i] += delta[i];
-        }
-        trial[BETA] = trial[BETA].max(1e-6);
-        // Residual AM weaker than the phase modulation: at small beta a depth m and an index
-        // beta give the same first sidebands as the two swapped, and only this picks the
-        // physical one.
-        trial[ASYM] = trial[ASYM].clamp(-trial[BETA].min(0.5), trial[BETA].min(0.5));
-        trial[ETA] = trial[ETA].clamp(0.0, 1.0);
-        // Widths within a factor of 20 of the start: a part with little weight cannot run away
-        // (and widen every line's window with it).
-        for slot in [LN_WIDTH, LN_WIDTH_L] {
-            trial[slot] = trial[slot].clamp(
-                shape0.width_hz.max(1e-3).ln() - 3.0,
-                shape0.width_hz.max(1e-3).ln() + 3.0,
-            );
-        }
+        let trial = stepped(&p, &delta, shape0);
         let trial_shape = params_shape(shape0, &trial);
         // With the Jacobian: a step is taken far more often than refused, and the accepted
         // trial's evaluation is then the next step's (the Jacobian does not change the sum of
@@ -1471,6 +1617,30 @@ fn fit_once(
                 // Converged: the step moved the parameters by under a twentieth of their
                 // standard uncertainties (or changed the residual by under 1e-7 of itself).
                 lambda = f64::INFINITY;
+            } else if recut_near_optimum && !recut {
+                // The next (undamped) step from here, from this evaluation's J^T J and J^T r:
+                // when it is under a twentieth of the standard uncertainties, the test above
+                // would stop the fit right after it, so it is taken without evaluating the
+                // model there (J^T J and the residual change by a negligible amount over it).
+                let neg: [f64; NP] = std::array::from_fn(|i| -eval.jtr[i]);
+                let mut undamped = eval.jtj;
+                for i in 0..NP {
+                    undamped[i][i] += 1e-30;
+                }
+                if let Some(next) = solve(&undamped, &neg, &prob.active) {
+                    let norm: f64 = (0..NP)
+                        .filter(|&i| prob.active[i])
+                        .map(|i| next[i] * neg[i])
+                        .sum();
+                    let dof = (eval.points as f64 + prob.block_n - NP as f64).max(1.0);
+                    let variance = (eval.ssr / dof).max(1e-300);
+                    if norm >= 0.0 && norm / variance < 0.05 * 0.05 {
+                        p = stepped(&p, &next, shape0);
+                        shape = params_shape(shape0, &p);
+                        iterations += 1;
+                        lambda = f64::INFINITY;
+                    }
+                }
             }
         } else {
             // Refused. When the undamped (Gauss-Newton) step from here promises under 0.001 in

@@ -12,6 +12,7 @@ use super::spacing;
 use super::AnalysisError;
 use halfwave_units::{Dbm, Hz, Trace};
 use serde::Serialize;
+use std::sync::Mutex;
 
 /// Settings of the trace analysis.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -98,6 +99,29 @@ const SPACING_TOLERANCE: f64 = 0.02;
 /// peak by a few tenths of a percent (the demo's 16 GHz frequency, 4.5 points, was 0.4 % off),
 /// and the pseudo-Voigt does better.
 const MEASURED_SHAPE_MIN_POINTS: f64 = 8.0;
+
+/// The last RF-off reference read and the line shape measured on it. The points of one
+/// frequency share one reference, and measuring and smoothing it (`LineShape::measured`) costs
+/// more than the whole-trace fit itself, so it is done once per reference, not once per point.
+/// One entry: the memory it holds does not grow with the traces analysed.
+static SHAPE_OF_LAST_REFERENCE: Mutex<Option<(Trace, Option<LineShape>)>> = Mutex::new(None);
+
+/// The line shape measured on `reference` (see [`LineShape::measured`]), from
+/// [`SHAPE_OF_LAST_REFERENCE`] when the reference is the same trace, value for value.
+fn measured_shape(reference: &Trace) -> Option<LineShape> {
+    if let Ok(last) = SHAPE_OF_LAST_REFERENCE.lock() {
+        if let Some((trace, shape)) = last.as_ref() {
+            if trace == reference {
+                return shape.clone();
+            }
+        }
+    }
+    let shape = LineShape::measured(reference, MEASURED_SHAPE_MIN_POINTS);
+    if let Ok(mut last) = SHAPE_OF_LAST_REFERENCE.lock() {
+        *last = Some((reference.clone(), shape.clone()));
+    }
+    shape
+}
 
 /// How far a cross-check estimate lies from the whole-trace fit.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -194,15 +218,13 @@ pub fn analyze_trace_with_model(
     })?;
 
     // The whole-trace fit, from the line-by-line estimate.
-    let shape = reference
-        .and_then(|r| LineShape::measured(r, MEASURED_SHAPE_MIN_POINTS))
-        .unwrap_or_else(|| {
-            LineShape::pseudo_voigt(
-                measured.resolution_bandwidth_hz,
-                measured.resolution_bandwidth_hz,
-                0.0,
-            )
-        });
+    let shape = reference.and_then(measured_shape).unwrap_or_else(|| {
+        LineShape::pseudo_voigt(
+            measured.resolution_bandwidth_hz,
+            measured.resolution_bandwidth_hz,
+            0.0,
+        )
+    });
     let start = FitStart::from_comb(&measured, line_by_line.value);
     let (fit, model) = fit::fit_trace(
         trace,
@@ -360,6 +382,25 @@ mod tests {
         off.modulation_index = 0.0;
         off.carrier = Hz(modulated.carrier.0 + drift_spacings * SPACING.0);
         draw(&off, seed)
+    }
+
+    #[test]
+    fn the_shape_of_the_last_reference_is_reused_only_for_the_same_reference() {
+        // Two RF-off references that differ only in their noise: each must give the shape
+        // measured afresh on itself, whichever was read before (the cache is shared by all
+        // threads, so other tests may also change it in between; the answer must not depend
+        // on that).
+        let modulated = comb(1.0, 0.0);
+        let a = rf_off(&modulated, 0.0, 11);
+        let b = rf_off(&modulated, 0.0, 12);
+        let fresh_a = LineShape::measured(&a, MEASURED_SHAPE_MIN_POINTS).expect("a shape");
+        let fresh_b = LineShape::measured(&b, MEASURED_SHAPE_MIN_POINTS).expect("a shape");
+        assert_ne!(fresh_a, fresh_b);
+        for _ in 0..2 {
+            assert_eq!(measured_shape(&a).as_ref(), Some(&fresh_a));
+            assert_eq!(measured_shape(&a).as_ref(), Some(&fresh_a));
+            assert_eq!(measured_shape(&b).as_ref(), Some(&fresh_b));
+        }
     }
 
     fn relative_error(estimate: f64, truth: f64) -> f64 {
