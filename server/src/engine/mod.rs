@@ -12,6 +12,7 @@
 //! to go off and switches every source off once more.
 
 pub mod acquire;
+pub mod adaptive;
 pub mod bench;
 pub mod events;
 pub mod plan;

@@ -7,6 +7,7 @@
 //! once, each with its path (`frequencies.stop_hz`) and a sentence that says what to change, so a
 //! remote user fixes a plan in one round trip. Nothing here talks to an instrument.
 
+use super::adaptive::AdaptiveSettings;
 use crate::analysis::chain::DriveChain;
 use halfwave_drivers::{AnalyzerCapabilities, SourceLimits};
 use halfwave_units::{Db, Dbm, Hz, Nanometers, Seconds};
@@ -90,7 +91,37 @@ pub enum LevelSpec {
         stop_dbm: f64,
         step_db: f64,
     },
+    /// Levels chosen per frequency from what was measured there (`engine::adaptive`), upward
+    /// only, on a ladder of [`ADAPTIVE_RUNG_DB`] rungs from min_dbm to max_dbm (the whole range
+    /// is proven against every limit before any command), until u(V_pi)/V_pi is at most
+    /// target_relative_uncertainty or max_points were measured.
+    Adaptive {
+        min_dbm: f64,
+        max_dbm: f64,
+        /// Stop a frequency when u(V_pi)/V_pi is at or below this (from 0.0011 to 0.5; V_pi's
+        /// line-shape term, 0.001, does not average down, so lower targets cannot be met).
+        #[schema(minimum = 0.0011, maximum = 0.5)]
+        target_relative_uncertainty: f64,
+        /// The most points at one frequency (3 to 40, default 6).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        #[schema(minimum = 3, maximum = 40)]
+        max_points: Option<usize>,
+        /// The largest step up from one point's level to the next (0.25 to 20 dB, default 6).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        #[schema(minimum = 0.25, maximum = 20.0)]
+        max_step_db: Option<f64>,
+    },
 }
+
+/// Rung spacing of an adaptive plan's level ladder.
+pub const ADAPTIVE_RUNG_DB: f64 = 0.25;
+/// The lowest target an adaptive plan accepts: just above V_pi's line-shape term
+/// (`analysis::vpi::V_PI_LINE_SHAPE_RELATIVE`, 0.001), which more points do not reduce.
+pub const ADAPTIVE_MIN_TARGET: f64 = 0.0011;
+/// Default most points per frequency of an adaptive plan.
+pub const ADAPTIVE_DEFAULT_MAX_POINTS: usize = 6;
+/// Default largest step up of an adaptive plan.
+pub const ADAPTIVE_DEFAULT_MAX_STEP_DB: f64 = 6.0;
 
 /// Analyzer settings; anything left out is chosen from the modulation frequency.
 #[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize, ToSchema)]
@@ -209,6 +240,9 @@ pub struct FrequencyStep {
     /// Generator levels, strictly ascending.
     pub generator_levels: Vec<Dbm>,
     pub analyzer: AnalyzerChoice,
+    /// Set for an adaptive plan: `generator_levels` is then the ladder the engine picks from.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub adaptive: Option<AdaptiveSettings>,
 }
 
 /// A proven plan: every value inside every limit, and at least [`MIN_LEVELS_FOR_FIT`] distinct
@@ -255,9 +289,21 @@ impl Plan {
         self.max_level_at_modulator
     }
 
-    /// Number of measured points (frequencies x levels).
+    /// Number of measured points (frequencies x levels); for an adaptive plan the most it can
+    /// take (frequencies x max_points).
     pub fn point_count(&self) -> usize {
-        self.steps.iter().map(|s| s.generator_levels.len()).sum()
+        self.steps
+            .iter()
+            .map(|s| match &s.adaptive {
+                Some(a) => a.max_points.min(s.generator_levels.len()),
+                None => s.generator_levels.len(),
+            })
+            .sum()
+    }
+
+    /// Whether the engine chooses the levels as it goes.
+    pub fn is_adaptive(&self) -> bool {
+        matches!(self.request.levels, LevelSpec::Adaptive { .. })
     }
 }
 
@@ -299,6 +345,7 @@ impl PlanRequest {
 
         let frequencies = expand_frequencies(&self.frequencies, &ctx.source, &mut errs);
         let levels = expand_levels(&self.levels, &ctx.source, &mut errs);
+        let adaptive = adaptive_settings(&self.levels, &mut errs);
 
         // The safety interlock: the level reaching the modulator, after the chain's gain at each
         // frequency, must stay under both the device's limit and the daemon's hard limit.
@@ -359,6 +406,7 @@ impl PlanRequest {
                         frequency: f,
                         generator_levels: levels.clone().unwrap_or_default(),
                         analyzer: choice,
+                        adaptive,
                     }),
                     Err((field, message)) => {
                         errs.push(
@@ -567,6 +615,10 @@ fn expand_levels(
             "levels.stop_dbm",
             "raise stop_dbm above start_dbm by at least one step",
         ),
+        LevelSpec::Adaptive { .. } => (
+            "levels.max_dbm",
+            "raise max_dbm above min_dbm by a few dB",
+        ),
     };
     let values: Vec<f64> = match spec {
         LevelSpec::List { values_dbm } => {
@@ -670,6 +722,52 @@ fn expand_levels(
                 }
             }
         }
+        LevelSpec::Adaptive {
+            min_dbm, max_dbm, ..
+        } => {
+            let mut bad = false;
+            for (name, l) in [("min_dbm", min_dbm), ("max_dbm", max_dbm)] {
+                if !l.is_finite() || !in_range(*l) {
+                    errs.push(
+                        format!("levels.{name}"),
+                        format!("{l} dBm is outside {range_text}"),
+                    );
+                    bad = true;
+                }
+            }
+            if !bad && max_dbm <= min_dbm {
+                errs.push(
+                    "levels.max_dbm",
+                    "must be above min_dbm (adaptive levels go from low to high)",
+                );
+                bad = true;
+            }
+            if bad {
+                return None;
+            }
+            // Every rung, and max_dbm itself, is proven like a ramp's levels.
+            match ramp_level_count(*min_dbm, *max_dbm, ADAPTIVE_RUNG_DB) {
+                Some(count) => {
+                    let mut v: Vec<f64> = (0..count)
+                        .map(|i| (min_dbm + i as f64 * ADAPTIVE_RUNG_DB).min(*max_dbm))
+                        .collect();
+                    if v.last().is_some_and(|l| max_dbm - l >= MIN_LEVEL_SEPARATION_DB) {
+                        v.push(*max_dbm);
+                    }
+                    v
+                }
+                None => {
+                    errs.push(
+                        "levels.max_dbm",
+                        format!(
+                            "an adaptive range wider than {} dB has more than {MAX_LEVELS} rungs of {ADAPTIVE_RUNG_DB} dB; narrow it",
+                            (MAX_LEVELS - 1) as f64 * ADAPTIVE_RUNG_DB
+                        ),
+                    );
+                    return None;
+                }
+            }
+        }
     };
     if values.len() < MIN_LEVELS_FOR_FIT {
         errs.push(
@@ -682,6 +780,56 @@ fn expand_levels(
         return None;
     }
     Some(values.into_iter().map(Dbm).collect())
+}
+
+/// The adaptive settings of an adaptive level form, with defaults filled in; `None` for the
+/// other forms and for invalid settings (reported in `errs`).
+fn adaptive_settings(spec: &LevelSpec, errs: &mut Collector) -> Option<AdaptiveSettings> {
+    let LevelSpec::Adaptive {
+        target_relative_uncertainty,
+        max_points,
+        max_step_db,
+        ..
+    } = spec
+    else {
+        return None;
+    };
+    let floor = crate::analysis::vpi::V_PI_LINE_SHAPE_RELATIVE;
+    let target = *target_relative_uncertainty;
+    let mut ok = true;
+    if !(target.is_finite() && (ADAPTIVE_MIN_TARGET..=0.5).contains(&target)) {
+        errs.push(
+            "levels.target_relative_uncertainty",
+            format!(
+                "must be from {ADAPTIVE_MIN_TARGET} to 0.5, got {target}: V_pi's line-shape term ({floor}) does not average down over points, so a lower target cannot be met"
+            ),
+        );
+        ok = false;
+    }
+    let max_points = max_points.unwrap_or(ADAPTIVE_DEFAULT_MAX_POINTS);
+    if !(super::adaptive::MIN_ADAPTIVE_POINTS..=40).contains(&max_points) {
+        errs.push(
+            "levels.max_points",
+            format!(
+                "must be from {} to 40, got {max_points}",
+                super::adaptive::MIN_ADAPTIVE_POINTS
+            ),
+        );
+        ok = false;
+    }
+    let max_step_db = max_step_db.unwrap_or(ADAPTIVE_DEFAULT_MAX_STEP_DB);
+    if !(max_step_db.is_finite() && (ADAPTIVE_RUNG_DB..=20.0).contains(&max_step_db)) {
+        errs.push(
+            "levels.max_step_db",
+            format!("must be from {ADAPTIVE_RUNG_DB} to 20 dB, got {max_step_db}"),
+        );
+        ok = false;
+    }
+    ok.then_some(AdaptiveSettings {
+        target_relative_uncertainty: target,
+        max_points,
+        max_step_db,
+    })
 }
 
 /// Levels in a ramp from `start` to `stop` (inclusive when it lands on a step, within 1e-9 of a
@@ -1057,6 +1205,79 @@ mod tests {
             err.errors[0].message.contains("more than 200 levels"),
             "{err}"
         );
+    }
+
+    fn adaptive(min_dbm: f64, max_dbm: f64, target: f64) -> LevelSpec {
+        LevelSpec::Adaptive {
+            min_dbm,
+            max_dbm,
+            target_relative_uncertainty: target,
+            max_points: None,
+            max_step_db: None,
+        }
+    }
+
+    #[test]
+    fn an_adaptive_range_is_proven_rung_by_rung_like_a_ramp() {
+        // 20 dBm device limit, 3 dB chain loss: a top of 23.3 dBm reaches the modulator at
+        // 20.3 dBm, above the limit, and is refused before any command although the engine
+        // might never have gone that high.
+        let mut req = request(adaptive(0.0, 23.3, 0.003));
+        req.device.rf_input_limit_dbm = 20.0;
+        let err = validate(&req, 30.0).unwrap_err();
+        assert!(
+            err.errors.iter().any(|e| e.field == "levels"
+                && e.message.contains("20.30 dBm")
+                && e.message.contains("device's RF input limit")),
+            "{err:?}"
+        );
+        let plan = validate(&request(adaptive(0.0, 20.1, 0.003)), 30.0).unwrap();
+        let step = &plan.steps()[0];
+        let ladder = &step.generator_levels;
+        // 0 to 20 dBm in 0.25 dB rungs (81), then 20.1 dBm itself: the top is a rung too.
+        assert_eq!(ladder.len(), 82);
+        assert_eq!(ladder.last(), Some(&Dbm(20.1)));
+        assert!(ladder.windows(2).all(|w| w[1].0 > w[0].0));
+        let settings = step.adaptive.expect("adaptive settings");
+        assert_eq!(settings.max_points, ADAPTIVE_DEFAULT_MAX_POINTS);
+        assert_eq!(settings.max_step_db, ADAPTIVE_DEFAULT_MAX_STEP_DB);
+        assert!(plan.is_adaptive());
+        // The progress total is the most points it can take.
+        assert_eq!(plan.point_count(), 4 * ADAPTIVE_DEFAULT_MAX_POINTS);
+    }
+
+    #[test]
+    fn adaptive_settings_outside_their_ranges_are_refused_by_name() {
+        let err = validate(&request(adaptive(0.0, 20.0, 0.0005)), 30.0).unwrap_err();
+        assert!(
+            err.errors.iter().any(|e| e.field == "levels.target_relative_uncertainty"
+                && e.message.contains("line-shape term")),
+            "{err:?}"
+        );
+        let req = request(LevelSpec::Adaptive {
+            min_dbm: 0.0,
+            max_dbm: 20.0,
+            target_relative_uncertainty: 0.003,
+            max_points: Some(2),
+            max_step_db: Some(0.1),
+        });
+        let err = validate(&req, 30.0).unwrap_err();
+        let fields: Vec<&str> = err.errors.iter().map(|e| e.field.as_str()).collect();
+        assert!(fields.contains(&"levels.max_points"), "{fields:?}");
+        assert!(fields.contains(&"levels.max_step_db"), "{fields:?}");
+        let err = validate(&request(adaptive(10.0, 10.0, 0.003)), 30.0).unwrap_err();
+        assert!(err.errors.iter().any(|e| e.field == "levels.max_dbm"), "{err:?}");
+        // The lowest target accepted is accepted exactly (the schema's minimum).
+        assert!(validate(&request(adaptive(0.0, 20.0, ADAPTIVE_MIN_TARGET)), 30.0).is_ok());
+    }
+
+    #[test]
+    fn the_adaptive_form_reads_with_the_names_of_the_plan_format() {
+        let req: LevelSpec = serde_json::from_str(
+            r#"{"kind": "adaptive", "min_dbm": -5, "max_dbm": 18, "target_relative_uncertainty": 0.003}"#,
+        )
+        .unwrap();
+        assert_eq!(req, adaptive(-5.0, 18.0, 0.003));
     }
 
     #[test]
