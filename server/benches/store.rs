@@ -105,6 +105,7 @@ fn bench_store(c: &mut Criterion) {
                 line_table: line_table.clone(),
                 analysis: analysis.clone(),
                 trace: &trace,
+                analyzer_sweeps: 1,
             };
             runtime
                 .block_on(store.commit_point(black_box(&point)))

@@ -112,6 +112,7 @@ pub async fn seed_completed_run(
                     line_table: serde_json::Value::Array(lines),
                     analysis,
                     trace: &trace,
+                    analyzer_sweeps: 1,
                 })
                 .await
                 .expect("point stored");

@@ -176,12 +176,14 @@ mod tests {
             summary,
             plan: serde_json::Value::Null,
             measured_points: 2,
+            analyzer_sweeps: 0,
             results: vec![FrequencyResultView {
                 frequency_index: 0,
                 frequency_hz: 2e9,
                 v_pi_volts: 3.7,
                 v_pi_uncertainty_volts: 0.02,
                 excluded_points: serde_json::Value::Null,
+                analyzer_sweeps: None,
             }],
             instruments: vec![
                 instrument("source", "SG-1"),

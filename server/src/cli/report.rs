@@ -107,6 +107,9 @@ pub fn run_text(run: &RunView) -> String {
         }
     }
     out.push_str(&format!("measured points: {}\n", run.measured_points));
+    if run.analyzer_sweeps > 0 {
+        out.push_str(&format!("analyzer sweeps: {}\n", run.analyzer_sweeps));
+    }
     if run.results.is_empty() {
         out.push_str("no V_pi yet\n");
         return out;
@@ -131,6 +134,7 @@ mod tests {
             v_pi_volts: v,
             v_pi_uncertainty_volts: 0.01,
             excluded_points: serde_json::Value::Null,
+            analyzer_sweeps: None,
         }
     }
 

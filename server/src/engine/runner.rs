@@ -15,17 +15,18 @@
 //! off, and then the cause is recorded. An instrument or store error stops the run the same way.
 
 use super::acquire;
+use super::adaptive::{self, AdaptivePoint, AdaptiveSettings, AdaptiveStep};
 use super::events::{ProgressEvent, ResponsePointEvent};
 use super::plan::{FrequencyStep, Plan};
 use super::safety::{RfOffGuard, SharedSource};
 use crate::analysis::{self, chain::peak_voltage, chain::DriveChain, AnalysisOptions, DrivePoint};
 use crate::store::{NewFrequencyResult, NewPoint, Store};
 use halfwave_drivers::{AnalyzerSettings, InstrumentError, SpectrumAnalyzer};
-use halfwave_units::{Db, Dbm, Hz, Trace};
+use halfwave_units::{Db, Dbm, Hz, Trace, Volts};
 use std::collections::HashSet;
 use std::sync::Arc;
 use std::time::Instant;
-use tokio::sync::{broadcast, mpsc, Mutex};
+use tokio::sync::{broadcast, mpsc, oneshot, Mutex};
 use tokio_util::sync::CancellationToken;
 use tracing::Instrument;
 
@@ -73,6 +74,11 @@ struct Measured {
     trace: Trace,
     reference: Option<Arc<Trace>>,
     acquired_in: std::time::Duration,
+    /// Analyzer sweeps this point cost (see `NewPoint::analyzer_sweeps`).
+    analyzer_sweeps: u32,
+    /// For an adaptive frequency: where to send the point's modulation index and its
+    /// uncertainty (or `None` when the trace could not be analysed) once it is committed.
+    reply: Option<oneshot::Sender<Option<(f64, f64)>>>,
 }
 
 /// What the acquisition side hands to the pipeline, in order.
@@ -215,17 +221,45 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
     let mut carrier = plan.wavelength().to_frequency();
 
     let mut result = Ok(());
+    // The V_pi the previous adaptive frequency ended with (a prior for the next).
+    let mut previous_v_pi: Option<Volts> = None;
     'frequencies: for (fi, step) in plan.steps().iter().enumerate() {
-        let remaining: Vec<usize> = (0..step.generator_levels.len())
-            .filter(|li| !ctx.done.contains(&(fi, *li)))
-            .collect();
-        if remaining.is_empty() {
-            continue;
-        }
         let span = tracing::info_span!("frequency", frequency_hz = step.frequency.0);
-        let r = measure_frequency(ctx, fi, step, &remaining, &caps, &mut carrier, &tx)
-            .instrument(span)
-            .await;
+        let r = match step.adaptive {
+            None => {
+                let remaining: Vec<usize> = (0..step.generator_levels.len())
+                    .filter(|li| !ctx.done.contains(&(fi, *li)))
+                    .collect();
+                if remaining.is_empty() {
+                    continue;
+                }
+                measure_frequency(ctx, fi, step, Levels::Fixed(&remaining), &caps, &mut carrier, &tx)
+                    .instrument(span)
+                    .await
+            }
+            Some(settings) => {
+                let Some(seed) = adaptive_seed(ctx, fi).await? else {
+                    continue;
+                };
+                let prior = match ctx
+                    .store
+                    .vpi_at(&plan.request().device.serial, step.frequency, None)
+                    .await
+                {
+                    Ok(stored) => Some(stored.v_pi_volts),
+                    Err(_) => previous_v_pi,
+                };
+                let levels = Levels::Adaptive {
+                    settings,
+                    seed,
+                    prior,
+                    estimate: &mut previous_v_pi,
+                };
+                measure_frequency(ctx, fi, step, levels, &caps, &mut carrier, &tx)
+                    .instrument(span)
+                    .await
+            }
+        };
         // RF off at the end of every frequency, whatever happened.
         let off = super::safety::switch_off(&ctx.source).await;
         if let Err(stop) = r {
@@ -266,11 +300,52 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
     result
 }
 
+/// Which levels a frequency measures.
+enum Levels<'a> {
+    /// These indices of the step's levels, in order.
+    Fixed(&'a [usize]),
+    /// Chosen one by one (`engine::adaptive`), starting from the points already stored at this
+    /// frequency (on resume); `estimate` receives the V_pi the frequency ended with.
+    Adaptive {
+        settings: AdaptiveSettings,
+        seed: Vec<AdaptivePoint>,
+        prior: Option<Volts>,
+        estimate: &'a mut Option<Volts>,
+    },
+}
+
+/// The points an adaptive frequency already has (on resume), or `None` when the frequency is
+/// finished (it has points and a stored V_pi).
+async fn adaptive_seed(ctx: &RunContext, fi: usize) -> Result<Option<Vec<AdaptivePoint>>, Stop> {
+    if !ctx.done.iter().any(|(f, _)| *f == fi) {
+        return Ok(Some(Vec::new()));
+    }
+    let read = |e: crate::store::StoreError| {
+        Stop::Failed(format!("could not read back the stored points to resume: {e}"))
+    };
+    let results = ctx.store.frequency_results(ctx.run_id).await.map_err(read)?;
+    if results.iter().any(|r| r.frequency_index as usize == fi) {
+        return Ok(None);
+    }
+    let points = ctx.store.points_of_run(ctx.run_id).await.map_err(read)?;
+    Ok(Some(
+        points
+            .iter()
+            .filter(|p| p.frequency_index as usize == fi)
+            .map(|p| AdaptivePoint {
+                rung: p.level_index as usize,
+                v_peak: p.v_peak(),
+                index: p.modulation_index.zip(p.modulation_index_uncertainty),
+            })
+            .collect(),
+    ))
+}
+
 async fn measure_frequency(
     ctx: &RunContext,
     fi: usize,
     step: &FrequencyStep,
-    remaining: &[usize],
+    levels: Levels<'_>,
     caps: &halfwave_drivers::AnalyzerCapabilities,
     carrier: &mut Hz,
     tx: &mpsc::Sender<Msg>,
@@ -284,15 +359,18 @@ async fn measure_frequency(
     let mut analyzer = ctx.analyzer.lock().await;
     // Find the laser with RF off, wherever it drifted.
     *carrier = acquire::locate_laser(analyzer.as_mut(), caps, *carrier, step.analyzer.span).await?;
-    let mut settings = AnalyzerSettings {
+    let settings = AnalyzerSettings {
         center: *carrier,
         span: step.analyzer.span,
         resolution_bandwidth: step.analyzer.resolution_bandwidth,
         points: step.analyzer.points,
     };
     analyzer.configure(&settings).await?;
+    // The laser search's sweep, then the reference's, are charged to the next point committed.
+    let mut pending_sweeps = 1;
     let reference = if plan.request().reference_trace {
         let r = acquire::measure(analyzer.as_mut(), plan.averages()).await?;
+        pending_sweeps += plan.averages();
         if plan.request().carrier_tracking {
             *carrier = acquire::peak_frequency(&r);
         }
@@ -306,8 +384,91 @@ async fn measure_frequency(
     };
     drop(analyzer);
 
-    let mut output_on = false;
-    for &li in remaining {
+    let mut point = PointState {
+        output_on: false,
+        settings,
+        carrier,
+        pending_sweeps,
+    };
+    match levels {
+        Levels::Fixed(remaining) => {
+            for &li in remaining {
+                let measured = point
+                    .measure(ctx, caps, tx, fi, step, li, reference.clone())
+                    .await?;
+                if tx.send(Msg::Point(Box::new(measured))).await.is_err() {
+                    return Err(Stop::PipelineEnded);
+                }
+            }
+        }
+        Levels::Adaptive {
+            settings,
+            seed,
+            prior,
+            estimate,
+        } => {
+            let mut measured = seed;
+            loop {
+                let next = adaptive::next_step(
+                    &step.generator_levels,
+                    &ctx.chain,
+                    step.frequency,
+                    &measured,
+                    prior,
+                    &settings,
+                );
+                let rung = match next {
+                    AdaptiveStep::Measure(rung) => rung,
+                    AdaptiveStep::Stop(why) => {
+                        tracing::info!(points = measured.len(), reason = %why, "adaptive levels done");
+                        break;
+                    }
+                };
+                let mut m = point
+                    .measure(ctx, caps, tx, fi, step, rung, reference.clone())
+                    .await?;
+                let (reply, answer) = oneshot::channel();
+                m.reply = Some(reply);
+                let v_peak = peak_voltage(ctx.chain.level_at_modulator(step.frequency, m.generator_level));
+                if tx.send(Msg::Point(Box::new(m))).await.is_err() {
+                    return Err(Stop::PipelineEnded);
+                }
+                let index = answer.await.map_err(|_| Stop::PipelineEnded)?;
+                measured.push(AdaptivePoint {
+                    rung,
+                    v_peak,
+                    index,
+                });
+            }
+            *estimate = adaptive::estimate_v_pi(&measured, None).or(*estimate);
+        }
+    }
+    Ok(())
+}
+
+/// What carries over from one point of a frequency to the next.
+struct PointState<'a> {
+    output_on: bool,
+    settings: AnalyzerSettings,
+    carrier: &'a mut Hz,
+    /// Sweeps not yet charged to a committed point (the laser search and the reference).
+    pending_sweeps: u32,
+}
+
+impl PointState<'_> {
+    /// One point: set the level, output on, settle, sweep (watched), fetch.
+    #[allow(clippy::too_many_arguments)]
+    async fn measure(
+        &mut self,
+        ctx: &RunContext,
+        caps: &halfwave_drivers::AnalyzerCapabilities,
+        tx: &mpsc::Sender<Msg>,
+        fi: usize,
+        step: &FrequencyStep,
+        li: usize,
+        reference: Option<Arc<Trace>>,
+    ) -> Result<Measured, Stop> {
+        let plan = &ctx.plan;
         if ctx.cancel.is_cancelled() {
             return Err(Stop::Cancelled);
         }
@@ -319,6 +480,7 @@ async fn measure_frequency(
         let started = Instant::now();
         {
             let mut src = ctx.source.lock().await;
+            let output_on = self.output_on;
             let drive = async {
                 src.set_level(level).await?;
                 if !output_on {
@@ -339,14 +501,14 @@ async fn measure_frequency(
                     )))
                 }
             }
-            output_on = true;
+            self.output_on = true;
         }
         tokio::time::sleep(plan.settle().to_duration()).await;
         let mut analyzer = ctx.analyzer.lock().await;
         if plan.request().carrier_tracking
-            && (settings.center.0 - carrier.0).abs() > 1e-3 * settings.span.0
+            && (self.settings.center.0 - self.carrier.0).abs() > 1e-3 * self.settings.span.0
         {
-            settings.center = analyzer.set_center(*carrier).await?;
+            self.settings.center = analyzer.set_center(*self.carrier).await?;
         }
         let trace = measure_with_rf_watchdog(ctx, analyzer.as_mut(), caps).await?;
         drop(analyzer);
@@ -354,23 +516,22 @@ async fn measure_frequency(
             // The strongest line may be a sideband, so track by the comb's centre of symmetry:
             // the power-weighted mean frequency of a symmetric comb is the carrier.
             if let Some(c) = comb_centroid(&trace) {
-                *carrier = c;
+                *self.carrier = c;
             }
         }
-        let measured = Measured {
+        let analyzer_sweeps = std::mem::take(&mut self.pending_sweeps) + plan.averages();
+        Ok(Measured {
             frequency_index: fi,
             level_index: li,
             frequency: step.frequency,
             generator_level: level,
             trace,
-            reference: reference.clone(),
+            reference,
             acquired_in: started.elapsed(),
-        };
-        if tx.send(Msg::Point(Box::new(measured))).await.is_err() {
-            return Err(Stop::PipelineEnded);
-        }
+            analyzer_sweeps,
+            reply: None,
+        })
     }
-    Ok(())
 }
 
 /// The longest a level change (with its settling `*OPC?`) may take on the source while the
@@ -467,8 +628,9 @@ async fn pipeline(
     let mut failures_in_a_row = 0;
     while let Some(msg) = rx.recv().await {
         match msg {
-            Msg::Point(m) => {
-                let failure = commit_point(
+            Msg::Point(mut m) => {
+                let reply = m.reply.take();
+                let (failure, index) = commit_point(
                     &m,
                     run_id,
                     &store,
@@ -479,6 +641,11 @@ async fn pipeline(
                     &mut completed,
                 )
                 .await?;
+                if let Some(reply) = reply {
+                    // The acquisition waits for this before choosing the next level; if it has
+                    // stopped meanwhile there is no one to tell.
+                    let _ = reply.send(index);
+                }
                 match failure {
                     None => failures_in_a_row = 0,
                     Some(reason) => {
@@ -503,7 +670,7 @@ async fn pipeline(
 }
 
 /// Analyses and commits one point; returns why it could not be analysed, if it could not (the
-/// point is stored either way).
+/// point is stored either way), and its modulation index with its uncertainty, if it could.
 #[allow(clippy::too_many_arguments)]
 async fn commit_point(
     m: &Measured,
@@ -514,7 +681,7 @@ async fn commit_point(
     events: &broadcast::Sender<ProgressEvent>,
     total: usize,
     completed: &mut usize,
-) -> Result<Option<String>, String> {
+) -> Result<(Option<String>, Option<(f64, f64)>), String> {
     let at_modulator = chain.level_at_modulator(m.frequency, m.generator_level);
     let v_peak = peak_voltage(at_modulator);
     let analysis = analysis::analyze_trace(&m.trace, m.frequency, m.reference.as_deref(), options);
@@ -551,6 +718,7 @@ async fn commit_point(
         line_table,
         analysis: details,
         trace: &m.trace,
+        analyzer_sweeps: m.analyzer_sweeps,
     };
     store.commit_point(&point).await.map_err(|e| {
         format!(
@@ -582,7 +750,8 @@ async fn commit_point(
             reason: e.to_string(),
         },
     });
-    Ok(analysis.err().map(|e| e.to_string()))
+    let index = ok.map(|a| (a.modulation_index.value, a.modulation_index.uncertainty));
+    Ok((analysis.err().map(|e| e.to_string()), index))
 }
 
 /// Fits V_pi for one frequency of the run from its stored points and stores the result. A fit

@@ -51,8 +51,8 @@ impl Store {
             "INSERT INTO points (run_id, frequency_index, level_index, frequency_hz, generator_level_dbm, \
                  level_at_modulator_dbm, v_peak_volts, modulation_index, modulation_index_uncertainty, \
                  asymmetry_db, line_table_json, analysis_json, measured_at_unix_ms, \
-                 trace_point_count, trace_encoded) \
-             VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15) RETURNING id",
+                 trace_point_count, trace_encoded, analyzer_sweeps) \
+             VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16) RETURNING id",
         )
         .bind(point.run_id)
         .bind(i64::from(point.frequency_index))
@@ -69,6 +69,7 @@ impl Store {
         .bind(now)
         .bind(point_count)
         .bind(encoded)
+        .bind(i64::from(point.analyzer_sweeps))
         .fetch_one(&self.pool)
         .await
         .map_err(|source| {
@@ -249,6 +250,26 @@ impl Store {
                 }
             }
         })
+    }
+
+    /// Analyzer sweeps per frequency index of a run, summed over its committed points (points
+    /// stored before sweeps were counted add nothing; a frequency with none of them counted is
+    /// left out).
+    pub async fn analyzer_sweeps(&self, run_id: i64) -> Result<Vec<(u32, i64)>, StoreError> {
+        let rows: Vec<(i64, Option<i64>)> = sqlx::query_as(
+            "SELECT frequency_index, SUM(analyzer_sweeps) FROM points WHERE run_id = $1 \
+             GROUP BY frequency_index ORDER BY frequency_index",
+        )
+        .bind(run_id)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(StoreError::database("counting a run's analyzer sweeps"))?;
+        rows.into_iter()
+            .filter_map(|(index, sweeps)| sweeps.map(|s| (index, s)))
+            .map(|(index, sweeps)| {
+                Ok((super::index_from_db("frequency index", index)?, sweeps))
+            })
+            .collect()
     }
 
     /// The per-frequency results of a run, by frequency index.

@@ -323,6 +323,9 @@ pub struct NewPoint<'a> {
     /// The rest of the analysis (method, residuals, warnings ...).
     pub analysis: serde_json::Value,
     pub trace: &'a Trace,
+    /// Analyzer sweeps this point cost (its averages, plus the laser search and reference
+    /// sweeps for the first point after them).
+    pub analyzer_sweeps: u32,
 }
 
 /// A stored point (without its trace; see [`super::Store::point_trace`]).

@@ -117,6 +117,7 @@ pub fn point<'a>(
         line_table: serde_json::json!([{ "order": 0, "power_dbm": -3.0 }]),
         analysis: serde_json::json!({ "method": "ratio" }),
         trace,
+        analyzer_sweeps: 3,
     }
 }
 

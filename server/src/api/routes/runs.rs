@@ -86,6 +86,10 @@ pub struct FrequencyResultView {
     /// Points the fit left out, with reasons (as the engine recorded them; empty when none).
     #[schema(value_type = Vec<ExcludedPointView>)]
     pub excluded_points: serde_json::Value,
+    /// Analyzer sweeps spent at this frequency (laser search, reference, every point's
+    /// averages); null for runs measured before sweeps were counted.
+    #[serde(default)]
+    pub analyzer_sweeps: Option<i64>,
 }
 
 /// A point the V_pi fit left out (the shape the engine stores; documentation of
@@ -138,6 +142,9 @@ pub struct RunView {
     #[schema(value_type = Option<crate::engine::plan::PlanRequest>)]
     pub plan: serde_json::Value,
     pub measured_points: usize,
+    /// Analyzer sweeps the run spent so far, over every frequency (with or without a V_pi).
+    #[serde(default)]
+    pub analyzer_sweeps: i64,
     pub results: Vec<FrequencyResultView>,
     /// The source and analyzer that measured the run (their *IDN? identities at its start and
     /// at every resumption).
@@ -424,10 +431,18 @@ pub async fn get_run(
     let measured_points = usize::try_from(store.point_count(run_id).await?).unwrap_or(0);
     let results = store.frequency_results(run_id).await?;
     let instruments = store.run_instruments(run_id).await?;
+    let sweeps = store.analyzer_sweeps(run_id).await?;
+    let sweeps_at = |index: u32| {
+        sweeps
+            .iter()
+            .find(|(i, _)| *i == index)
+            .map(|(_, count)| *count)
+    };
     let view = RunView {
         summary: RunSummary::from(&run),
         plan: run.plan().unwrap_or(serde_json::Value::Null),
         measured_points,
+        analyzer_sweeps: sweeps.iter().map(|(_, count)| count).sum(),
         instruments,
         results: results
             .iter()
@@ -437,6 +452,7 @@ pub async fn get_run(
                 v_pi_volts: r.v_pi_volts,
                 v_pi_uncertainty_volts: r.v_pi_uncertainty_volts,
                 excluded_points: stored_json_array(&r.excluded_points_json),
+                analyzer_sweeps: sweeps_at(r.frequency_index),
             })
             .collect(),
     };
