@@ -33,6 +33,9 @@ pub const MAX_ORDERS: u32 = 1000;
 pub const MAX_MODULATION_FREQUENCY_HZ: f64 = 1e12;
 /// Each tone's dropped Bessel terms sum (in absolute value, both sides) to at most this.
 pub const TONE_TAIL_TOLERANCE: f64 = 1e-16;
+/// Allowance for rounding in the Bessel values and the convolution, relative to the carrier's
+/// power: the Parseval sums of the tests come out within 5e-16 of 1.
+pub const ROUNDING_ALLOWANCE: f64 = 1e-15;
 
 /// One sinusoidal component of the phase drive: beta sin(h 2 pi F t + phase).
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -69,6 +72,9 @@ pub struct Prediction {
     pub lines: Vec<PredictedLine>,
     /// Bound on the error of each line's relative power from cutting the Bessel sums.
     pub truncation_error_bound: f64,
+    /// Relative powers below this (the truncation bound plus [`ROUNDING_ALLOWANCE`]) are not
+    /// resolved: such a line is weaker than this, its value says no more.
+    pub resolution_floor: f64,
     /// Highest Bessel order kept per tone, in the input's order.
     pub bessel_orders_kept: Vec<u32>,
 }
@@ -275,9 +281,11 @@ pub fn predict_spectrum(
         delta += grown * s;
         grown *= 1.0 + s;
     }
+    let truncation_error_bound = delta * (2.0 + delta);
     Ok(Prediction {
         lines,
-        truncation_error_bound: delta * (2.0 + delta),
+        truncation_error_bound,
+        resolution_floor: truncation_error_bound + ROUNDING_ALLOWANCE,
         bessel_orders_kept: cuts.iter().map(|c| c.0).collect(),
     })
 }

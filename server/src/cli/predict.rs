@@ -83,22 +83,28 @@ pub fn run(args: PredictArgs) -> Result<(), CliError> {
         "power (linear)"
     );
     for line in &prediction.lines {
-        let db = line
-            .relative_power_db
-            .map_or_else(|| "absent".to_string(), |db| format!("{db:.3}"));
+        let floor = prediction.resolution_floor;
+        let (db, linear) = match line.relative_power_db {
+            None => ("absent".to_string(), "0".to_string()),
+            Some(_) if line.relative_power < floor => (
+                format!("< {:.0}", 10.0 * floor.log10()),
+                format!("< {floor:.0e}"),
+            ),
+            Some(db) => (format!("{db:.3}"), format!("{:.6e}", line.relative_power)),
+        };
         outln!(
-            "{:>6}  {:>14.6}  {:>12}  {:>14.6e}",
+            "{:>6}  {:>14.6}  {:>12}  {:>14}",
             line.order,
             line.frequency_offset_hz / 1e9,
             db,
-            line.relative_power
+            linear
         );
     }
     let listed: f64 = prediction.lines.iter().map(|l| l.relative_power).sum();
     outln!(
-        "powers relative to the unmodulated carrier; the listed orders hold {:.9} of it; truncation error bound {:.1e} per line",
+        "powers relative to the unmodulated carrier; the listed orders hold {:.12} of it; lines below {:.1e} are not resolved",
         listed,
-        prediction.truncation_error_bound
+        prediction.resolution_floor
     );
     Ok(())
 }

@@ -68,6 +68,9 @@ pub struct SpectrumPrediction {
     /// Bound on each line's error in relative power from cutting the Bessel sums (rounding adds
     /// a few 1e-16).
     pub truncation_error_bound: f64,
+    /// Relative powers below this (truncation bound plus a rounding allowance of 1e-15) are not
+    /// resolved: such a line is weaker than this, its value says no more.
+    pub resolution_floor: f64,
     /// Highest Bessel order kept for each tone, in the request's order.
     pub bessel_orders_kept: Vec<u32>,
 }
@@ -101,6 +104,7 @@ impl DriveSpectrumRequest {
                 })
                 .collect(),
             truncation_error_bound: prediction.truncation_error_bound,
+            resolution_floor: prediction.resolution_floor,
             bessel_orders_kept: prediction.bessel_orders_kept,
         })
     }
