@@ -12,7 +12,7 @@
 mod api_support;
 
 use api_support::seed::{seed_completed_run, seed_device};
-use api_support::{problem, spawn_app, TestApp};
+use api_support::{problem, serve_state, spawn_app, TestApp};
 use halfwave::api::tokens::Role;
 use halfwave::store::NewDevice;
 use halfwave::units::{Dbm, Nanometers};
@@ -25,6 +25,12 @@ const BIN: &str = env!("CARGO_BIN_EXE_halfwave");
 /// the run id.
 async fn calibrated() -> (TestApp, String, i64) {
     let app = spawn_app().await;
+    let (token, run_id) = seed(&app).await;
+    (app, token, run_id)
+}
+
+/// Seeds the device and its calibration into `app`'s store; returns a viewer token.
+async fn seed(app: &TestApp) -> (String, i64) {
     let (device_id, chain_id) = seed_device(app.store(), SERIAL).await;
     let run = seed_completed_run(
         app.store(),
@@ -36,8 +42,7 @@ async fn calibrated() -> (TestApp, String, i64) {
         201,
     )
     .await;
-    let token = app.token("viewer", Role::Viewer).await;
-    (app, token, run.run_id)
+    (app.token("viewer", Role::Viewer).await, run.run_id)
 }
 
 async fn drive(app: &TestApp, token: &str, query: &str) -> (u16, Value) {
@@ -128,6 +133,60 @@ async fn the_planner_answers_from_the_record_both_ways() {
     assert_eq!(c["chain"]["version"], 1);
     assert_eq!(c["chain"]["outside_table"], false);
     assert!(close(&c["level_uncertainty_db"], 0.13245, 1e-5), "{c}");
+    // Below both records: the chain's table starts at 1 GHz (its end value held at 0.5 GHz) and
+    // V_pi's at 2 GHz (the line through 2 and 4 GHz: 3.5 - 0.25 x 1.5 = 3.125 V).
+    let (status, d) = drive(
+        &app,
+        &token,
+        &format!("frequency_hz=5e8&modulation_index=1&chain={chain}&extrapolate=true"),
+    )
+    .await;
+    assert_eq!(status, 200, "{d}");
+    assert_eq!(d["chain"]["outside_table"], true);
+    assert_eq!(d["chain"]["gain_db"], -1.5);
+    assert!(close(&d["v_pi"]["v_pi_volts"], 3.125, 1e-12), "{d}");
+    assert_eq!(d["v_pi"]["extrapolated"], true);
+}
+
+#[tokio::test]
+async fn the_daemon_limit_is_the_engines() {
+    use halfwave::api::{ApiSettings, AppState};
+    use halfwave::config::Limits;
+    use halfwave::engine::Engine;
+    // A daemon configured with a 15 dBm ceiling at the modulator (and no bench).
+    let dir = tempfile::tempdir().unwrap();
+    let store = halfwave::store::Store::open(dir.path().join("h.sqlite").to_str().unwrap())
+        .await
+        .unwrap();
+    let limits = Limits {
+        max_level_at_modulator_dbm: 15.0,
+    };
+    let engine = Engine::start_with(limits, store, Vec::new()).await.unwrap();
+    let app = serve_state(AppState::with_engine(engine, ApiSettings::default()), dir).await;
+    let (token, _) = seed(&app).await;
+    // beta 1.2 at 6 GHz needs 14.7049 dBm at the modulator (worked above): 0.2951 dB to spare.
+    let (status, a) = drive(
+        &app,
+        &token,
+        "frequency_hz=6e9&modulation_index=1.2&chain_loss_db=3",
+    )
+    .await;
+    assert_eq!(status, 200, "{a}");
+    assert_eq!(a["limits"]["daemon_limit_dbm"], 15.0);
+    assert!(close(&a["limits"]["margin_db"], 0.2951, 1e-4), "{a}");
+    // beta 1.3 needs 20 log10(1.3 / 1.2) = 0.6952 dB more, 15.4001 dBm: refused.
+    let (status, p) = drive(
+        &app,
+        &token,
+        "frequency_hz=6e9&modulation_index=1.3&chain_loss_db=3",
+    )
+    .await;
+    assert_eq!(status, 422, "{p}");
+    let message = p["errors"][0]["message"].as_str().unwrap();
+    assert!(
+        message.contains("of 15 dBm") && message.contains("15.40 dBm"),
+        "{message}"
+    );
 }
 
 #[tokio::test]
