@@ -70,9 +70,12 @@ pub fn solve_drive(inputs: &DriveInputs, target: DriveTarget) -> Result<DriveSol
         return Err(DriveError::BadVpi(v_pi));
     }
     let (u_v, u_g) = (inputs.v_pi_uncertainty.0, inputs.chain_gain_uncertainty.0);
-    if !(u_v.is_finite() && u_v >= 0.0 && u_g.is_finite() && u_g >= 0.0)
-        || !inputs.chain_gain.0.is_finite()
-    {
+    let usable = u_v.is_finite()
+        && u_v >= 0.0
+        && u_g.is_finite()
+        && u_g >= 0.0
+        && inputs.chain_gain.0.is_finite();
+    if !usable {
         return Err(DriveError::BadUncertainty);
     }
     let (modulation_index, level_at_modulator, v_peak) = match target {
