@@ -6,6 +6,7 @@
 //! extrapolated), and the limits it was checked against; the daemon refuses a level over a limit.
 
 use super::client::ClientArgs;
+use super::devices::how_obtained;
 use super::runs::{encode_query_value, runtime, to_json};
 use super::CliError;
 use crate::api::routes::drive::{DriveAnswer, SolvedFor};
@@ -136,14 +137,8 @@ pub fn drive_text(a: &DriveAnswer) -> String {
             v.lower_frequency_hz / 1e9,
             v.upper_frequency_hz / 1e9
         )
-    } else if v.interpolated {
-        format!(
-            "interpolated between {:.3} and {:.3} GHz",
-            v.lower_frequency_hz / 1e9,
-            v.upper_frequency_hz / 1e9
-        )
     } else {
-        "measured at this frequency".to_string()
+        how_obtained(v.interpolated, v.lower_frequency_hz, v.upper_frequency_hz)
     };
     let which = match v.selection {
         RunSelection::Pinned => "the device's pinned reference calibration",

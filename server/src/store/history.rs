@@ -270,7 +270,19 @@ impl DeviceCalibrationSet {
                 hint,
             });
         };
-        Ok(InterpolatedVpi {
+        Ok(self.answer(run, selection, frequency, (v_pi, uncertainty, lower, upper)))
+    }
+
+    /// The answer from `run`: V_pi, its uncertainty and the two measured frequencies it comes
+    /// from.
+    fn answer(
+        &self,
+        run: &CalibrationRun,
+        selection: RunSelection,
+        frequency: Hz,
+        (v_pi, uncertainty, lower, upper): (Volts, Volts, Hz, Hz),
+    ) -> InterpolatedVpi {
+        InterpolatedVpi {
             run_id: run.run_id,
             selection,
             pinned: self.pinned_run_id() == Some(run.run_id),
@@ -279,7 +291,7 @@ impl DeviceCalibrationSet {
             v_pi_uncertainty_volts: uncertainty,
             lower_frequency_hz: lower,
             upper_frequency_hz: upper,
-        })
+        }
     }
 
     /// V_pi at `frequency` for planning a drive: by the lookup rule ([`Self::vpi_at`]); when that
@@ -302,23 +314,10 @@ impl DeviceCalibrationSet {
                 Err(e) => return Err(e),
             };
         let (run, selection) = self.plotted_run(requested)?;
-        let Some((v_pi, uncertainty, lower, upper)) = extrapolate_vpi(&run.values, frequency)
-        else {
+        let Some(values) = extrapolate_vpi(&run.values, frequency) else {
             return Err(outside);
         };
-        Ok((
-            InterpolatedVpi {
-                run_id: run.run_id,
-                selection,
-                pinned: self.pinned_run_id() == Some(run.run_id),
-                frequency_hz: frequency,
-                v_pi_volts: v_pi,
-                v_pi_uncertainty_volts: uncertainty,
-                lower_frequency_hz: lower,
-                upper_frequency_hz: upper,
-            },
-            true,
-        ))
+        Ok((self.answer(run, selection, frequency, values), true))
     }
 
     /// The run a device plot shows, by the plot rule (module documentation): the run `requested`
