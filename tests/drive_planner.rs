@@ -378,6 +378,19 @@ async fn halfwave(args: &[&str]) -> std::process::Output {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn drive_and_predict_through_the_binary() {
+    for (command, expected) in [
+        ("drive", "--modulation-index"),
+        ("drive", "--generator-level-dbm"),
+        ("drive", "--extrapolate"),
+        ("predict", "DRIVE.json"),
+    ] {
+        let out = halfwave(&[command, "--help"]).await;
+        let text = String::from_utf8_lossy(&out.stdout);
+        assert!(
+            text.contains(expected),
+            "{command} --help lacks {expected}: {text}"
+        );
+    }
     let (app, token, run_id) = calibrated().await;
     let common = ["--url", app.base.as_str(), "--token", token.as_str()];
     // The generator level for beta 1.2 at 6 GHz through a 3 dB loss (worked above: 17.70 dBm).
