@@ -271,6 +271,16 @@ async fn the_planner_refuses_outside_the_range_and_over_the_limits() {
     assert_eq!(status, 422, "{p}");
     assert_eq!(p["errors"][0]["field"], "generator_level_dbm");
 
+    // An index too small to give any power in floating point is the asker's mistake, not the
+    // server's: 422 naming it.
+    let (status, p) = drive(
+        &app,
+        &token,
+        "frequency_hz=6e9&modulation_index=5e-324&chain_loss_db=3",
+    )
+    .await;
+    assert_eq!(status, 422, "{p}");
+    assert_eq!(p["errors"][0]["field"], "modulation_index");
     // Malformed questions name every field at once.
     let (status, p) = drive(
         &app,

@@ -30,7 +30,14 @@ fn refused(path: &std::path::Path, problem: &crate::api::problem::Problem) -> Cl
     let fields: Vec<String> = problem
         .errors
         .iter()
-        .map(|e| format!("  {}: {}", e.field, e.message))
+        .map(|e| {
+            // The route's parser calls the whole document `body`; here it is the file.
+            if e.field == "body" {
+                format!("  file: {}", e.message.replace("the body", "the file"))
+            } else {
+                format!("  {}: {}", e.field, e.message)
+            }
+        })
         .collect();
     CliError::new(format!(
         "the drive file {} cannot be predicted:\n{}",

@@ -289,6 +289,14 @@ fn check_query(query: &DriveQuery) -> Result<Question, Problem> {
     }
 }
 
+/// The query parameter that carries `target`.
+fn target_field(target: DriveTarget) -> &'static str {
+    match target {
+        DriveTarget::ModulationIndex(_) => "modulation_index",
+        DriveTarget::GeneratorLevel(_) => "generator_level_dbm",
+    }
+}
+
 /// The chain asked for, with what to report about it.
 async fn resolve_chain(
     state: &AppState,
@@ -396,8 +404,14 @@ pub async fn plan_drive(
         chain_gain: chain.gain_at(question.frequency),
         chain_gain_uncertainty: question.chain_uncertainty,
     };
-    let solution = solve_drive(&inputs, question.target)
-        .map_err(|e| Problem::internal(format!("the drive could not be solved: {e}")))?;
+    // The inputs are checked above and V_pi is positive, so what is left is an index too small
+    // to give any power in floating point (below about 1e-150): the asker's field.
+    let solution = solve_drive(&inputs, question.target).map_err(|e| {
+        Problem::invalid_field(
+            target_field(question.target),
+            format!("the drive cannot be worked out: {e}"),
+        )
+    })?;
     let device_limit = device.rf_input_limit_dbm;
     let daemon_limit = state
         .engine()
@@ -412,12 +426,8 @@ pub async fn plan_drive(
         } else {
             format!("the daemon's limit at the modulator (limits.max_level_at_modulator_dbm) of {daemon_limit} dBm")
         };
-        let field = match question.target {
-            DriveTarget::ModulationIndex(_) => "modulation_index",
-            DriveTarget::GeneratorLevel(_) => "generator_level_dbm",
-        };
         return Err(Problem::invalid_field(
-            field,
+            target_field(question.target),
             format!(
                 "beta {:.4} at {} needs {:.2} dBm at the modulator (generator {:.2} dBm through a chain gain of {:.2} dB), above {which}; ask for less",
                 solution.modulation_index,
