@@ -5,6 +5,7 @@
 
 mod store_support;
 
+use halfwave::store::history::extrapolate_vpi;
 use halfwave::store::{RunSelection, RunState, Store, StoreError};
 use halfwave::units::Hz;
 use store_support::{queued_run, result};
@@ -496,4 +497,58 @@ async fn run_detail_holds_points_and_results() {
         .collect();
     assert_eq!(order, vec![(0, 0), (0, 1), (1, 1)]);
     assert_eq!(detail.results.len(), 1);
+}
+
+#[tokio::test]
+async fn a_drive_plan_extrapolates_only_when_asked_and_then_widens_the_uncertainty() {
+    let store = Store::open_in_memory().await.unwrap();
+    let run = finished_run(
+        &store,
+        "DEMO-0500",
+        RunState::Completed,
+        &[(10.0, 4.0, 0.04), (20.0, 5.0, 0.10), (30.0, 7.0, 0.20)],
+    )
+    .await;
+    let set = store.device_calibrations("DEMO-0500").await.unwrap();
+    // Inside the range it is the lookup rule's interpolation, not flagged.
+    let (inside, extrapolated) = set.vpi_for_drive(Hz(25e9), None, true).unwrap();
+    assert!(!extrapolated);
+    assert!(close(inside.v_pi_volts.value(), 6.0));
+    // Outside, refused unless asked.
+    assert!(matches!(
+        set.vpi_for_drive(Hz(35e9), None, false),
+        Err(StoreError::NotCovered { .. })
+    ));
+    // Hand-worked: the line through 20 GHz (5.0 V) and 30 GHz (7.0 V) has 0.2 V/GHz; at 35 GHz
+    // it gives 8.0 V, 1.0 V past the end value, so u = sqrt(0.20^2 + 1.0^2) = 1.0198 V.
+    let (above, extrapolated) = set.vpi_for_drive(Hz(35e9), None, true).unwrap();
+    assert!(extrapolated);
+    assert_eq!(above.run_id, run);
+    assert!(close(above.v_pi_volts.value(), 8.0), "{above:?}");
+    assert!(close(above.v_pi_uncertainty_volts.value(), 1.04f64.sqrt()));
+    assert_eq!(
+        (above.lower_frequency_hz, above.upper_frequency_hz),
+        (Hz(20e9), Hz(30e9))
+    );
+    // Below: 0.1 V/GHz through 10 and 20 GHz; at 6 GHz 4.0 - 0.4 = 3.6 V, u = sqrt(0.04^2 + 0.4^2).
+    let (below, _) = set.vpi_for_drive(Hz(6e9), None, true).unwrap();
+    assert!(close(below.v_pi_volts.value(), 3.6), "{below:?}");
+    assert!(close(
+        below.v_pi_uncertainty_volts.value(),
+        (0.04f64.powi(2) + 0.16).sqrt()
+    ));
+    // A line that would reach zero volts or below is no V_pi: 1.0 V at 1 GHz and 3.0 V at 2 GHz
+    // give 1.0 - 2.0 x 0.6 = -0.2 V at 0.4 GHz, refused; 0.8 GHz gives 0.6 V.
+    let entry = |ghz: f64, v: f64| halfwave::store::VpiHistoryEntry {
+        run_id: 1,
+        finished_at_unix_ms: 0,
+        frequency_hz: ghz * 1e9,
+        v_pi_volts: v,
+        v_pi_uncertainty_volts: 0.0,
+    };
+    let steep = [entry(2.0, 3.0), entry(1.0, 1.0)];
+    assert!(extrapolate_vpi(&steep, Hz(0.4e9)).is_none());
+    let (v, u, _, _) = extrapolate_vpi(&steep, Hz(0.8e9)).unwrap();
+    assert!(close(v.value(), 0.6) && close(u.value(), 0.4));
+    assert!(extrapolate_vpi(&steep, Hz(1.5e9)).is_none());
 }

@@ -5,6 +5,7 @@
 //! path.
 //!
 //! - [`chain`]: generator level <-> level at the modulator <-> peak voltage.
+//! - [`drive_plan`]: the generator level for a wanted modulation index (and back), with uncertainty.
 //! - [`bessel`]: J_n tabulated once for fast fitting, with its reference checks.
 //! - [`comb`]: finding the comb on a trace and measuring its lines and floor.
 //! - [`fit`]: the whole displayed trace fitted with the instrument's line shape (the primary).
@@ -15,6 +16,7 @@
 //! - [`vpi`]: V_pi from a drive-level sweep, with the points that break the line flagged.
 //! - [`agreement`]: whether two V_pi agree within their uncertainties (E_n).
 //! - [`response`]: V_pi versus frequency as a response in dB, with its 3 dB and 6 dB points.
+//! - [`prediction`]: the comb a periodic phase drive (several harmonics) makes, exactly.
 //! - [`synthetic`]: traces computed from Bessel physics, for tests, benchmarks and demos.
 //! - [`error`]: the one error type, with messages for the operator.
 
@@ -22,9 +24,11 @@ pub mod agreement;
 pub mod bessel;
 pub mod chain;
 pub mod comb;
+pub mod drive_plan;
 pub mod error;
 pub mod fit;
 pub mod index;
+pub mod prediction;
 pub mod response;
 mod smooth_shape;
 pub mod spacing;

@@ -128,6 +128,20 @@ pub fn list(args: DevicesArgs) -> Result<(), CliError> {
     })
 }
 
+/// How a V_pi value was obtained, for the text output: interpolated between two measured
+/// frequencies, or measured at the one asked for.
+pub fn how_obtained(interpolated: bool, lower_hz: f64, upper_hz: f64) -> String {
+    if interpolated {
+        format!(
+            "interpolated between {:.3} and {:.3} GHz",
+            lower_hz / 1e9,
+            upper_hz / 1e9
+        )
+    } else {
+        "measured at this frequency".to_string()
+    }
+}
+
 /// `halfwave v-pi`.
 pub fn v_pi(args: VpiArgs) -> Result<(), CliError> {
     if !args.frequency.is_finite() || args.frequency <= 0.0 {
@@ -151,15 +165,11 @@ pub fn v_pi(args: VpiArgs) -> Result<(), CliError> {
             outln!("{}", to_json(&answer)?);
             return Ok(());
         }
-        let how = if answer.interpolated {
-            format!(
-                "interpolated between {:.3} and {:.3} GHz",
-                answer.lower_frequency_hz / 1e9,
-                answer.upper_frequency_hz / 1e9
-            )
-        } else {
-            "measured at this frequency".to_string()
-        };
+        let how = how_obtained(
+            answer.interpolated,
+            answer.lower_frequency_hz,
+            answer.upper_frequency_hz,
+        );
         let which = if answer.pinned {
             " (the device's pinned reference calibration)"
         } else if args.run.is_some() {

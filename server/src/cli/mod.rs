@@ -2,9 +2,9 @@
 //!
 //! Every subcommand returns `Result<(), CliError>`; `main` prints the error for the person at the
 //! terminal and exits non-zero. Three kinds of command live here: the daemon and its local tools
-//! (`serve`, `demo`, `sim`, `analyze`, `token`, `check-bench`, `db`), which read the configuration
+//! (`serve`, `demo`, `sim`, `analyze`, `predict`, `token`, `check-bench`, `db`), which read the configuration
 //! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `cancel`, `resume`, `compare`, `devices`,
-//! `v-pi`, `pin`, `unpin`, `export`, `trace`, `benches`, `acknowledge`), which
+//! `v-pi`, `drive`, `pin`, `unpin`, `export`, `trace`, `benches`, `acknowledge`), which
 //! speak only HTTP to a running daemon through [`client::ApiClient`], so they work from any
 //! machine that can reach it. Clients print tables for people and JSON with `--json`.
 
@@ -37,10 +37,12 @@ pub mod db;
 pub mod demo;
 pub mod devices;
 pub mod drill;
+pub mod drive;
 pub mod export;
 pub mod follow;
 pub mod output_file;
 pub mod pin;
+pub mod predict;
 pub mod report;
 pub mod runs;
 pub mod serve;
@@ -138,6 +140,12 @@ pub enum Command {
     /// V_pi of a modulator at one frequency, with its uncertainty and the run it comes from.
     #[command(name = "v-pi")]
     VPi(devices::VpiArgs),
+    /// The generator level for a wanted modulation index on a calibrated modulator at one
+    /// frequency through a drive chain (or the index a level gives), checked against the limits.
+    Drive(drive::DriveArgs),
+    /// Predict the optical comb of a periodic phase drive (several harmonics) from a JSON file;
+    /// computed locally, no daemon needed.
+    Predict(predict::PredictArgs),
     /// Export one stored analyzer trace as the CSV that `halfwave analyze` reads.
     Trace(trace::TraceArgs),
     /// Export a run's points and V_pi as CSV or JSON (units in the column names).
@@ -173,6 +181,8 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Compare(args) => compare::run(args),
         Command::Devices(args) => devices::list(args),
         Command::VPi(args) => devices::v_pi(args),
+        Command::Drive(args) => drive::run(args),
+        Command::Predict(args) => predict::run(args),
         Command::Trace(args) => trace::run(args),
         Command::Export(args) => export::run(args),
         Command::CheckBench(args) => check_bench::run(args),

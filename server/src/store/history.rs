@@ -108,6 +108,58 @@ pub fn interpolate_vpi<S: VpiSample>(
     ))
 }
 
+/// V_pi at `frequency` outside one run's measured range, for a caller that asked to extrapolate:
+/// the straight line through the two measured frequencies nearest that end (held flat when the
+/// run measured one frequency). The line is a guess, so its departure from the end value is
+/// counted as a further standard uncertainty, combined in quadrature with the end value's own:
+/// the farther out, the wider. Returns (V_pi, uncertainty, and the two measured frequencies
+/// used, lower first); `None` inside the range (interpolate instead), without results, or when
+/// the line reaches zero or below.
+pub fn extrapolate_vpi<S: VpiSample>(
+    results: &[S],
+    frequency: Hz,
+) -> Option<(Volts, Volts, Hz, Hz)> {
+    let f = frequency.value();
+    if !f.is_finite() || results.is_empty() {
+        return None;
+    }
+    let mut sorted: Vec<&S> = results.iter().collect();
+    sorted.sort_by(|a, b| a.frequency_hz().total_cmp(&b.frequency_hz()));
+    let (first, last) = (sorted[0], sorted[sorted.len() - 1]);
+    let (end, next) = if f < first.frequency_hz() {
+        (first, sorted.get(1).copied().unwrap_or(first))
+    } else if f > last.frequency_hz() {
+        (
+            last,
+            sorted.len().checked_sub(2).map_or(last, |i| sorted[i]),
+        )
+    } else {
+        return None;
+    };
+    let span = next.frequency_hz() - end.frequency_hz();
+    let slope = if span == 0.0 {
+        0.0
+    } else {
+        (next.v_pi_volts() - end.v_pi_volts()) / span
+    };
+    let v_pi = end.v_pi_volts() + slope * (f - end.frequency_hz());
+    if !(v_pi.is_finite() && v_pi > 0.0) {
+        return None;
+    }
+    let uncertainty = end.v_pi_uncertainty_volts().hypot(v_pi - end.v_pi_volts());
+    let (lower, upper) = if end.frequency_hz() <= next.frequency_hz() {
+        (end, next)
+    } else {
+        (next, end)
+    };
+    Some((
+        Volts(v_pi),
+        Volts(uncertainty),
+        Hz(lower.frequency_hz()),
+        Hz(upper.frequency_hz()),
+    ))
+}
+
 /// Groups a device's history (newest run first, as [`Store::vpi_history`] returns it) into runs,
 /// each ascending in frequency.
 pub fn group_history(entries: Vec<VpiHistoryEntry>) -> Vec<CalibrationRun> {
@@ -218,7 +270,19 @@ impl DeviceCalibrationSet {
                 hint,
             });
         };
-        Ok(InterpolatedVpi {
+        Ok(self.answer(run, selection, frequency, (v_pi, uncertainty, lower, upper)))
+    }
+
+    /// The answer from `run`: V_pi, its uncertainty and the two measured frequencies it comes
+    /// from.
+    fn answer(
+        &self,
+        run: &CalibrationRun,
+        selection: RunSelection,
+        frequency: Hz,
+        (v_pi, uncertainty, lower, upper): (Volts, Volts, Hz, Hz),
+    ) -> InterpolatedVpi {
+        InterpolatedVpi {
             run_id: run.run_id,
             selection,
             pinned: self.pinned_run_id() == Some(run.run_id),
@@ -227,7 +291,33 @@ impl DeviceCalibrationSet {
             v_pi_uncertainty_volts: uncertainty,
             lower_frequency_hz: lower,
             upper_frequency_hz: upper,
-        })
+        }
+    }
+
+    /// V_pi at `frequency` for planning a drive: by the lookup rule ([`Self::vpi_at`]); when that
+    /// finds the frequency outside the measured range and `extrapolate` is set, from the run the
+    /// plot rule picks ([`Self::plotted_run`]: requested, pinned, newest covering every
+    /// calibrated frequency, newest) by [`extrapolate_vpi`]. The flag says whether it
+    /// extrapolated.
+    pub fn vpi_for_drive(
+        &self,
+        frequency: Hz,
+        requested: Option<i64>,
+        extrapolate: bool,
+    ) -> Result<(InterpolatedVpi, bool), StoreError> {
+        let outside =
+            match self.vpi_at(frequency, requested) {
+                Ok(answer) => return Ok((answer, false)),
+                Err(
+                    e @ (StoreError::OutsideMeasuredRange { .. } | StoreError::NotCovered { .. }),
+                ) if extrapolate => e,
+                Err(e) => return Err(e),
+            };
+        let (run, selection) = self.plotted_run(requested)?;
+        let Some(values) = extrapolate_vpi(&run.values, frequency) else {
+            return Err(outside);
+        };
+        Ok((self.answer(run, selection, frequency, values), true))
     }
 
     /// The run a device plot shows, by the plot rule (module documentation): the run `requested`

@@ -174,7 +174,7 @@ pub async fn calibration_history(
 /// The device's completed calibrations and pin: kept in the read cache while its completed runs
 /// and its pin stay the same (one fingerprint query per call), read again from the database
 /// when they changed.
-async fn device_calibrations(
+pub(crate) async fn device_calibrations(
     state: &AppState,
     serial: &str,
 ) -> Result<Arc<DeviceCalibrations>, Problem> {
@@ -198,7 +198,7 @@ async fn device_calibrations(
     Ok(device)
 }
 
-fn check_frequency(frequency_hz: Option<f64>) -> Result<f64, Problem> {
+pub(crate) fn check_frequency(frequency_hz: Option<f64>) -> Result<f64, Problem> {
     match frequency_hz {
         None => Err(Problem::invalid_field(
             "frequency_hz",

@@ -10,8 +10,10 @@ pub mod benches;
 pub mod chains;
 pub mod dashboard;
 pub mod devices;
+pub mod drive;
 pub mod events;
 pub mod pins;
+pub mod prediction;
 pub mod run_control;
 pub mod runs;
 pub mod system;
@@ -52,6 +54,8 @@ pub fn timed_routes() -> OpenApiRouter<AppState> {
         .routes(routes!(devices::get_device))
         .routes(routes!(devices::calibration_history))
         .routes(routes!(devices::vpi_at))
+        .routes(routes!(drive::plan_drive))
+        .routes(routes!(prediction::predict))
         .routes(routes!(pins::get_pin, pins::pin_run))
         .routes(routes!(pins::unpin_device))
         .routes(routes!(devices::vpi_plot))
