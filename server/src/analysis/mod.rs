@@ -5,6 +5,8 @@
 //! path.
 //!
 //! - [`chain`]: generator level <-> level at the modulator <-> peak voltage.
+//! - [`touchstone`]: Touchstone 1.x / 2.0 files read into S-parameters at 50 ohm.
+//! - [`cascade`]: two-ports cascaded and terminated in the modulator: the chain's gain table.
 //! - [`bessel`]: J_n tabulated once for fast fitting, with its reference checks.
 //! - [`comb`]: finding the comb on a trace and measuring its lines and floor.
 //! - [`fit`]: the whole displayed trace fitted with the instrument's line shape (the primary).
@@ -20,6 +22,7 @@
 
 pub mod agreement;
 pub mod bessel;
+pub mod cascade;
 pub mod chain;
 pub mod comb;
 pub mod error;
@@ -29,6 +32,7 @@ pub mod response;
 mod smooth_shape;
 pub mod spacing;
 pub mod synthetic;
+pub mod touchstone;
 pub mod trace_analysis;
 pub mod vpi;
 
