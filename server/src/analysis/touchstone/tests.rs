@@ -318,6 +318,8 @@ fn errors_name_the_file_and_the_line() {
     let cases: &[(&str, &str, Option<usize>, &str)] = &[
         ("! c\n# GHz Y RI R 50\n1 0 0\n", "y.s1p", Some(2), "admittance (Y)"),
         ("# GHz Z MA\n", "z.s2p", Some(1), "impedance (Z)"),
+        ("# MHz H DB\n", "h.s2p", Some(1), "hybrid-h (H)"),
+        ("# kHz g RI\n", "g.s2p", Some(1), "hybrid-g (G)"),
         ("# GHz S XY\n", "u.s1p", Some(1), "unknown option \"XY\""),
         ("# GHz S RI R\n", "r.s1p", Some(1), "`R` on the option line has no value"),
         ("# GHz S RI R -5\n", "r.s1p", Some(1), "not a positive number of ohms"),
