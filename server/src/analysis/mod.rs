@@ -15,6 +15,7 @@
 //! - [`index`]: the modulation index by least squares, sideband ratio and carrier depletion.
 //! - [`trace_analysis`]: one trace in, every estimate and the line table out.
 //! - [`vpi`]: V_pi from a drive-level sweep, with the points that break the line flagged.
+//! - [`budget`]: V_pi's uncertainty budget (fit, chain, generator level) by the GUM.
 //! - [`agreement`]: whether two V_pi agree within their uncertainties (E_n).
 //! - [`response`]: V_pi versus frequency as a response in dB, with its 3 dB and 6 dB points.
 //! - [`synthetic`]: traces computed from Bessel physics, for tests, benchmarks and demos.
@@ -22,6 +23,7 @@
 
 pub mod agreement;
 pub mod bessel;
+pub mod budget;
 pub mod cascade;
 pub mod chain;
 pub mod comb;
