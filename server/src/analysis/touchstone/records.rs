@@ -168,7 +168,17 @@ impl Collector {
                 ));
             }
         }
+        if !(f * self.hz_per_unit).is_finite() {
+            return Err(format!("the frequency {f} is too large to be a frequency"));
+        }
         let c = |i: usize| self.format.complex(record[i], record[i + 1]);
+        if let Some(i) = (1..record.len()).step_by(2).find(|&i| !c(i).is_finite()) {
+            return Err(format!(
+                "the pair {} {} is not a finite complex number in this format",
+                record[i],
+                record[i + 1]
+            ));
+        }
         match self.layout {
             Layout::OnePort => self.one.push(c(1)),
             Layout::TwoPort21First => self.two.push(super::TwoPort {

@@ -326,6 +326,8 @@ fn errors_name_the_file_and_the_line() {
         ("# GHz S RI\n1 0 0\n2 0 zero\n", "bad.s1p", Some(3), "\"zero\" is not a number"),
         ("# GHz S RI\n1 0 0\n1 0 0\n", "dup.s1p", Some(3), "frequencies must increase"),
         ("# GHz S RI\n1 0 0 0\n", "long.s1p", Some(2), "4 numbers on one line"),
+        ("# GHz S RI\n1e305 0 0\n", "huge.s1p", Some(2), "too large to be a frequency"),
+        ("# GHz S DB\n1 1e300 0\n", "db.s1p", Some(2), "not a finite complex number"),
         ("# GHz S RI\n1 0 0 0 0\n", "short.s2p", Some(2), "5 of its 9 numbers"),
         ("1 0 0\n# GHz S RI\n", "early.s1p", Some(1), "data before the option line"),
         ("# GHz S RI\n# GHz S RI\n", "twice.s1p", Some(2), "a second option line"),
@@ -386,6 +388,46 @@ fn errors_name_the_file_and_the_line() {
         assert!(shown.starts_with(file), "{shown}");
         if let Some(l) = line {
             assert!(shown.contains(&format!("line {l}")), "{shown}");
+        }
+    }
+}
+
+#[test]
+fn damaged_files_are_refused_or_read_never_a_panic() {
+    // Every prefix of a valid file (a transfer cut short) and the file with each line left out
+    // or doubled: each is read or refused with the file's name, and nothing panics.
+    let files = [
+        (
+            v1_text("MHz", "DB", &sample()) + "1 0.8 0.3 45 0.2\n",
+            "cut.s2p",
+        ),
+        (
+            v2_text("12_21", &sample(), "[Reference] 75\n 75\n")
+                .replace("[End]", "[Noise Data]\n1 0.8 0.3 45 0.2\n[End]"),
+            "cut.s2p",
+        ),
+    ];
+    for (text, name) in files {
+        let mut variants: Vec<String> = (0..=text.len())
+            .filter(|i| text.is_char_boundary(*i))
+            .map(|i| text[..i].to_string())
+            .collect();
+        let lines: Vec<&str> = text.lines().collect();
+        for i in 0..lines.len() {
+            let mut without = lines.clone();
+            without.remove(i);
+            variants.push(without.join("\n"));
+            let mut doubled = lines.clone();
+            doubled.insert(i, lines[i]);
+            variants.push(doubled.join("\n"));
+        }
+        for variant in variants {
+            let read = std::panic::catch_unwind(|| parse(&variant, name));
+            match read {
+                Ok(Ok(t)) => assert!(!t.frequencies.is_empty()),
+                Ok(Err(e)) => assert!(e.to_string().starts_with(name), "{e}"),
+                Err(_) => panic!("the reader panicked on {variant:?}"),
+            }
         }
     }
 }
