@@ -64,7 +64,7 @@ const SIMULATED_CONFIG: &str = "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"si
 
 #[test]
 fn every_subcommand_has_help() {
-    let subcommands: [(&[&str], &str); 25] = [
+    let subcommands: [(&[&str], &str); 26] = [
         (&["demo"], "--data-dir"),
         (&["serve"], "--config"),
         (&["sim"], "--scenario"),
@@ -90,6 +90,7 @@ fn every_subcommand_has_help() {
         (&["chain"], "cascade"),
         (&["chain", "cascade"], "--load"),
         (&["chain", "import"], "HALFWAVE_TOKEN"),
+        (&["budget"], "--source-level-accuracy-db"),
     ];
     for (words, expected) in subcommands {
         let mut args = words.to_vec();
@@ -1346,4 +1347,68 @@ async fn chain_import_stores_a_version_with_the_files_names_and_hashes() {
     let problem = api_support::problem(bad).await.to_string();
     assert!(problem.contains("sources[0].sha256"), "{problem}");
     assert!(problem.contains("more than one load"), "{problem}");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn budget_prints_the_gum_table_of_a_run() {
+    // The numbers checked are the GUM combination written out here (JCGM 100:2008 4.3.7, 5.1.2,
+    // k = 2 per 6.3) from what the store holds; the run is seeded plumbing data.
+    let app = spawn_app().await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let (device, chain) = api_support::seed::seed_device(app.store(), "PM-0099").await;
+    let run = api_support::seed::seed_completed_run(
+        app.store(),
+        device,
+        chain,
+        &[3e9],
+        &[0.0, 6.0],
+        |_| 4.0,
+        201,
+    )
+    .await;
+    let id = run.run_id.to_string();
+    let args = [
+        "budget",
+        id.as_str(),
+        "--chain-uncertainty-db",
+        "0.1",
+        "--source-level-accuracy-db",
+        "0.3",
+        "--url",
+        app.base.as_str(),
+        "--token",
+        viewer.as_str(),
+    ];
+    let out = halfwave_async(&args).await;
+    assert!(out.status.success(), "{}", stderr(&out));
+    let text = stdout(&out);
+    let (_, v_pi, u_fit) = run.results[0];
+    let per_db = v_pi * std::f64::consts::LN_10 / 20.0;
+    let combined =
+        (u_fit.powi(2) + (per_db * 0.1).powi(2) + (per_db * 0.3 / 3f64.sqrt()).powi(2)).sqrt();
+    assert!(text.contains("3.000 GHz"), "{text}");
+    assert!(
+        text.contains(&format!("combined standard uncertainty {combined:.4} V")),
+        "{combined:.4} not in {text}"
+    );
+    assert!(
+        text.contains(&format!("expanded (k = 2) {:.4} V", 2.0 * combined)),
+        "{text}"
+    );
+
+    let mut json_args = args.to_vec();
+    json_args.push("--json");
+    let out = halfwave_async(&json_args).await;
+    assert!(out.status.success(), "{}", stderr(&out));
+    let view: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let got = view["frequencies"][0]["combined_standard_uncertainty_volts"]
+        .as_f64()
+        .unwrap();
+    assert!((got - combined).abs() < 1e-12, "{got} vs {combined}");
+
+    // An input out of range is named by the daemon.
+    let mut bad = args.to_vec();
+    bad[3] = "-1";
+    let out = halfwave_async(&bad).await;
+    failed_with(&out, &["chain_uncertainty_db"]);
 }

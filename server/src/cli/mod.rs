@@ -4,7 +4,7 @@
 //! terminal and exits non-zero. Three kinds of command live here: the daemon and its local tools
 //! (`serve`, `demo`, `sim`, `analyze`, `token`, `check-bench`, `db`, `chain cascade`), which read the configuration
 //! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `cancel`, `resume`, `compare`, `devices`,
-//! `v-pi`, `pin`, `unpin`, `export`, `trace`, `benches`, `acknowledge`, `chain import`), which
+//! `v-pi`, `pin`, `unpin`, `export`, `trace`, `benches`, `acknowledge`, `chain import`, `budget`), which
 //! speak only HTTP to a running daemon through [`client::ApiClient`], so they work from any
 //! machine that can reach it. Clients print tables for people and JSON with `--json`.
 
@@ -29,6 +29,7 @@ pub mod analyze;
 use clap::{Parser, Subcommand};
 
 pub mod benches;
+pub mod budget;
 pub mod chain;
 pub mod check_bench;
 pub mod client;
@@ -159,6 +160,8 @@ pub enum Command {
     /// it as a chain calibration version.
     #[command(subcommand)]
     Chain(chain::ChainCommand),
+    /// V_pi's uncertainty budget per frequency of a run (fit, drive chain, generator level; GUM).
+    Budget(budget::BudgetArgs),
 }
 
 /// Runs the parsed command.
@@ -186,5 +189,6 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Acknowledge(args) => benches::acknowledge(args),
         Command::Pins(command) => pin::run(command),
         Command::Chain(command) => chain::run(command),
+        Command::Budget(args) => budget::run(args),
     }
 }
