@@ -64,7 +64,7 @@ const SIMULATED_CONFIG: &str = "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"si
 
 #[test]
 fn every_subcommand_has_help() {
-    let subcommands: [(&[&str], &str); 26] = [
+    let subcommands: [(&[&str], &str); 27] = [
         (&["demo"], "--data-dir"),
         (&["serve"], "--config"),
         (&["sim"], "--scenario"),
@@ -90,6 +90,7 @@ fn every_subcommand_has_help() {
         (&["chain"], "cascade"),
         (&["chain", "cascade"], "--load"),
         (&["chain", "import"], "HALFWAVE_TOKEN"),
+        (&["chain", "list"], "--json"),
         (&["budget"], "--source-level-accuracy-db"),
     ];
     for (words, expected) in subcommands {
@@ -1332,6 +1333,21 @@ async fn chain_import_stores_a_version_with_the_files_names_and_hashes() {
     assert_eq!(list[1]["sources"][2]["sha256"], hashes[2].as_str());
     assert_eq!(list[2]["name"], "typed");
     assert_eq!(list[2]["sources"].as_array().unwrap().len(), 0);
+
+    // `chain list` shows the versions with their files.
+    let out = halfwave_async(&["chain", "list", "--url", &app.base, "--token", &viewer]).await;
+    assert!(out.status.success(), "{}", stderr(&out));
+    let text = stdout(&out);
+    assert!(text.contains("\"bench-7 chain\" version 2"), "{text}");
+    assert!(text.contains("\"typed\" version 1"), "{text}");
+    assert!(text.contains("typed table"), "{text}");
+    assert_eq!(text.matches(hashes[1].as_str()).count(), 2, "{text}");
+    let out = halfwave_async(&[
+        "chain", "list", "--json", "--url", &app.base, "--token", &viewer,
+    ])
+    .await;
+    let listed: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(listed[1]["sources"][0]["file_name"], "pad-3db.s2p");
 
     // The route refuses a bad digest and two loads, naming the fields.
     let bad = app

@@ -6,7 +6,8 @@
 //! file's frequencies that every file covers (`analysis::cascade`; no file is extrapolated).
 //! `cascade` prints the table and needs no daemon; `import NAME` stores it as a new version of
 //! the chain calibration NAME through the API (admin token), with every file's name and the
-//! SHA-256 of its bytes, so the stored table can be traced to the measurements. What the reader
+//! SHA-256 of its bytes, so the stored table can be traced to the measurements; `list` shows
+//! every version with those files. What the reader
 //! skipped or converted (noise parameters, a reference impedance renormalised to 50 ohm,
 //! frequencies outside another file's range) is said on stderr, so `--json` output stays clean.
 
@@ -16,7 +17,7 @@ use super::CliError;
 use crate::analysis::cascade::{chain_gain, ChainGain};
 use crate::analysis::touchstone::{self, Touchstone};
 use crate::analysis::ChainPoint;
-use crate::api::routes::chains::{ChainSourceBody, ChainView, SourceRole};
+use crate::api::routes::chains::{ChainHeaderView, ChainSourceBody, ChainView, SourceRole};
 use crate::api::tokens::sha256_hex;
 use clap::{Args, Subcommand};
 use serde::Serialize;
@@ -30,6 +31,15 @@ pub enum ChainCommand {
     /// Cascade Touchstone files and store the gain as a new version of a chain calibration on a
     /// running daemon (admin token), with each file's name and SHA-256.
     Import(ImportArgs),
+    /// List the chain calibration versions on a running daemon, with the files each was
+    /// computed from.
+    List(ListArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct ListArgs {
+    #[command(flatten)]
+    pub client: ClientArgs,
 }
 
 /// The files of a chain.
@@ -140,6 +150,7 @@ pub fn run(command: ChainCommand) -> Result<(), CliError> {
     match command {
         ChainCommand::Cascade(args) => cascade(args),
         ChainCommand::Import(args) => import(args),
+        ChainCommand::List(args) => list(args),
     }
 }
 
@@ -192,7 +203,12 @@ fn import(args: ImportArgs) -> Result<(), CliError> {
         created.version,
         created.points.len()
     );
-    for source in &created.sources {
+    print_sources(&created.sources)?;
+    Ok(())
+}
+
+fn print_sources(sources: &[ChainSourceBody]) -> Result<(), CliError> {
+    for source in sources {
         let role = match source.role {
             SourceRole::TwoPort => "two-port",
             SourceRole::Load => "load",
@@ -202,6 +218,35 @@ fn import(args: ImportArgs) -> Result<(), CliError> {
             source.file_name,
             source.sha256
         );
+    }
+    Ok(())
+}
+
+fn list(args: ListArgs) -> Result<(), CliError> {
+    let client = args.client.client()?;
+    let versions: Vec<ChainHeaderView> =
+        runtime()?.block_on(client.get_json("/api/v1/chain-calibrations"))?;
+    if args.client.json {
+        outln!("{}", to_json(&versions)?);
+        return Ok(());
+    }
+    if versions.is_empty() {
+        outln!("no chain calibrations yet");
+    }
+    for v in &versions {
+        let made = if v.sources.is_empty() {
+            "typed table"
+        } else {
+            "from files:"
+        };
+        outln!(
+            "{:?} version {}  {}  by {}  {made}",
+            v.name,
+            v.version,
+            super::report::utc_time(v.created_at_unix_ms),
+            v.created_by
+        );
+        print_sources(&v.sources)?;
     }
     Ok(())
 }
