@@ -250,3 +250,29 @@ fn list(args: ListArgs) -> Result<(), CliError> {
     }
     Ok(())
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn file_digests_are_the_standard_sha256_that_sha256sum_prints() {
+        // FIPS 180-4's example "abc" (NIST's published SHA-256 example, appendix B.1 of FIPS
+        // 180-2): the digest `sha256sum` prints for a file holding those three bytes.
+        assert_eq!(
+            sha256_hex(b"abc"),
+            "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+        );
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("pad.s2p");
+        std::fs::write(&path, "# Hz S RI\n1 0 0 1 0 1 0 0 0\n").unwrap();
+        let read = read_file(&path).unwrap();
+        assert_eq!(read.file_name, "pad.s2p");
+        assert_eq!(read.sha256, sha256_hex(b"# Hz S RI\n1 0 0 1 0 1 0 0 0\n"));
+        std::fs::write(&path, [0xff, 0xfe, 0x00]).unwrap();
+        let Err(e) = read_file(&path) else {
+            panic!("binary accepted")
+        };
+        assert!(e.to_string().contains("is not a text file"), "{e}");
+    }
+}
