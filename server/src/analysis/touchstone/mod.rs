@@ -202,9 +202,8 @@ fn renormalise_two_port(s: TwoPort, reference_ohms: f64) -> Option<TwoPort> {
     })
 }
 
-/// Puts the parsed records into a network, renormalising to 50 ohm when the reference differs.
-/// `values` holds, per frequency, the complex numbers in file order (already mapped to
-/// S11, S21, S12, S22 for two-ports by the caller).
+/// Puts the parsed records into a network, renormalising to 50 ohm when the reference differs
+/// (`data` already holds S11 or S11, S21, S12, S22 per frequency, whatever the file's order).
 pub(crate) fn build(
     file: &str,
     version: Version,
