@@ -600,3 +600,88 @@ async fn chain_calibrations_upload_as_json_or_csv_for_admins() {
         .iter()
         .any(|e| e.actor == "admin-1" && e.action == "chain_calibration.upload"));
 }
+
+#[tokio::test]
+async fn a_runs_v_pi_budget_combines_the_fit_the_chain_and_the_generator() {
+    // GUM (JCGM 100:2008): Type B term of a +/- a limit read as rectangular, u = a / sqrt(3)
+    // (4.3.7); uncorrelated inputs combine as the root sum of squares (5.1.2); k = 2 (6.3).
+    // V_pi scales as 10^(L/20) with a level error L common to the sweep, so a dB of level error
+    // moves V_pi by ln(10)/20 of itself (definition of the decibel). Written out here.
+    let app = spawn_app().await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let store = app.store();
+    let (device_id, chain_id) = seed_device(store, "PM-0077").await;
+    let run = seed_completed_run(
+        store,
+        device_id,
+        chain_id,
+        &[2e9, 8e9],
+        &[0.0, 6.0],
+        v_pi_at,
+        201,
+    )
+    .await;
+    let path = format!(
+        "/api/v1/runs/{}/v-pi-budget?chain_uncertainty_db=0.1&source_level_accuracy_db=0.5",
+        run.run_id
+    );
+    let response = app.get(&path, Some(&viewer)).await;
+    assert_eq!(response.status(), 200);
+    let budget: serde_json::Value = response.json().await.unwrap();
+    let frequencies = budget["frequencies"].as_array().unwrap();
+    assert_eq!(frequencies.len(), run.results.len());
+    for (view, (f, v_pi, u_fit)) in frequencies.iter().zip(&run.results) {
+        assert_eq!(view["frequency_hz"].as_f64().unwrap(), *f);
+        let per_db = v_pi * std::f64::consts::LN_10 / 20.0;
+        let chain = per_db * 0.1;
+        let source = per_db * 0.5 / 3f64.sqrt();
+        let combined = (u_fit * u_fit + chain * chain + source * source).sqrt();
+        let got = view["combined_standard_uncertainty_volts"]
+            .as_f64()
+            .unwrap();
+        assert!(
+            (got - combined).abs() < 1e-12 * combined.max(1.0),
+            "{got} vs {combined}"
+        );
+        assert_eq!(
+            view["expanded_uncertainty_volts"].as_f64().unwrap(),
+            2.0 * got
+        );
+        let rows = view["rows"].as_array().unwrap();
+        let evaluations: Vec<&str> = rows
+            .iter()
+            .map(|r| r["evaluation"].as_str().unwrap())
+            .collect();
+        assert_eq!(evaluations, ["A", "B", "B"]);
+        assert!((rows[1]["contribution_volts"].as_f64().unwrap() - chain).abs() < 1e-12);
+    }
+    // Inputs out of range or missing are named; an unknown run is 404.
+    let bad = app
+        .get(
+            &format!(
+                "/api/v1/runs/{}/v-pi-budget?chain_uncertainty_db=-1&source_level_accuracy_db=0.5",
+                run.run_id
+            ),
+            Some(&viewer),
+        )
+        .await;
+    assert_eq!(bad.status(), 422);
+    assert!(problem(bad)
+        .await
+        .to_string()
+        .contains("chain_uncertainty_db"));
+    let missing = app
+        .get(
+            &format!("/api/v1/runs/{}/v-pi-budget", run.run_id),
+            Some(&viewer),
+        )
+        .await;
+    assert_eq!(missing.status(), 422);
+    let unknown = app
+        .get(
+            "/api/v1/runs/9999/v-pi-budget?chain_uncertainty_db=0.1&source_level_accuracy_db=0.5",
+            Some(&viewer),
+        )
+        .await;
+    assert_eq!(unknown.status(), 404);
+}

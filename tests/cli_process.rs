@@ -64,7 +64,7 @@ const SIMULATED_CONFIG: &str = "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"si
 
 #[test]
 fn every_subcommand_has_help() {
-    let subcommands: [(&[&str], &str); 22] = [
+    let subcommands: [(&[&str], &str); 27] = [
         (&["demo"], "--data-dir"),
         (&["serve"], "--config"),
         (&["sim"], "--scenario"),
@@ -87,6 +87,11 @@ fn every_subcommand_has_help() {
         (&["devices"], "--json"),
         (&["v-pi"], "--frequency"),
         (&["trace"], "--force"),
+        (&["chain"], "cascade"),
+        (&["chain", "cascade"], "--load"),
+        (&["chain", "import"], "HALFWAVE_TOKEN"),
+        (&["chain", "list"], "--json"),
+        (&["budget"], "--source-level-accuracy-db"),
     ];
     for (words, expected) in subcommands {
         let mut args = words.to_vec();
@@ -1143,4 +1148,283 @@ async fn ctrl_c_stops_following_only_and_hints_keep_the_url() {
     .await;
     assert!(cancelled.status.success(), "{}", stderr(&cancelled));
     assert!(!bench.sim.rf_output_on());
+}
+
+/// Three Touchstone files of an invented chain (written here from the formulas, not by the code
+/// under test): a matched 3 dB pad (1.x, MA, GHz, S21 = 10^(-3/20)), a matched 6 dB pad (2.0,
+/// DB, MHz, order 12_21) and the modulator's input with Gamma_L = 0.2 (1.x, RI). Pozar,
+/// Microwave Engineering, 4th ed., section 12.1: G_T = |S21|^2 (1 - |Gamma_L|^2) /
+/// |1 - S22 Gamma_L|^2 with S22 = 0, so the chain gain is -9 dB + 10 log10(0.96) at the
+/// frequencies the three files share (1 and 2 GHz: the 4 GHz point lies outside the 6 dB pad's
+/// 0.5 to 3 GHz).
+fn write_chain_files(dir: &Path) -> [std::path::PathBuf; 3] {
+    let pad3 = 10f64.powf(-3.0 / 20.0);
+    let mut first = String::from("! 3 dB pad, bench 7\n# GHz S MA R 50\n");
+    for f in [1.0, 2.0, 4.0] {
+        first.push_str(&format!("{f} 0 0 {pad3} 0\n  {pad3} 0 0 0\n"));
+    }
+    let second =
+        "[Version] 2.0\n# MHz S DB R 50\n[Number of Ports] 2\n[Two-Port Data Order] 12_21\n\
+                  [Number of Frequencies] 2\n[Network Data]\n500 -200 0 -6 0 -6 0 -200 0\n\
+                  3000 -200 0 -6 0 -6 0 -200 0\n[End]\n";
+    let load = "# GHz S RI R 50\n0.1 0.2 0\n10 0.2 0\n";
+    let paths = [
+        dir.join("pad-3db.s2p"),
+        dir.join("pad-6db.s2p"),
+        dir.join("modulator.s1p"),
+    ];
+    std::fs::write(&paths[0], first).unwrap();
+    std::fs::write(&paths[1], second).unwrap();
+    std::fs::write(&paths[2], load).unwrap();
+    paths
+}
+
+fn sha256_hex(bytes: &[u8]) -> String {
+    use sha2::Digest;
+    sha2::Sha256::digest(bytes)
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect()
+}
+
+#[test]
+fn chain_cascade_prints_the_transducer_gain_of_touchstone_files() {
+    let dir = tempfile::tempdir().unwrap();
+    let [pad3, pad6, load] = write_chain_files(dir.path());
+    let (pad3, pad6, load) = (
+        pad3.to_str().unwrap(),
+        pad6.to_str().unwrap(),
+        load.to_str().unwrap(),
+    );
+    let out = halfwave(&["chain", "cascade", pad3, pad6, "--load", load, "--json"]);
+    assert!(out.status.success(), "{}", stderr(&out));
+    let printed: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let points = printed["points"].as_array().unwrap();
+    let expected = -9.0 + 10.0 * 0.96f64.log10();
+    let frequencies: Vec<f64> = points
+        .iter()
+        .map(|p| p["frequency_hz"].as_f64().unwrap())
+        .collect();
+    assert_eq!(frequencies, vec![1e9, 2e9]);
+    for p in points {
+        let gain = p["gain_db"].as_f64().unwrap();
+        assert!((gain - expected).abs() < 1e-9, "{gain} vs {expected}");
+    }
+    assert!(
+        stderr(&out).contains("left out (no extrapolation)"),
+        "{}",
+        stderr(&out)
+    );
+
+    // Without a load: matched, -9 dB; the table for people names its columns.
+    let out = halfwave(&["chain", "cascade", pad3, pad6]);
+    assert!(out.status.success(), "{}", stderr(&out));
+    let text = stdout(&out);
+    assert!(
+        text.contains("frequency_hz") && text.contains("gain_db"),
+        "{text}"
+    );
+    assert!(text.contains("-9.000"), "{text}");
+
+    // A bad line is named with its file and line; a one-port in the two-port list is refused.
+    let bad = dir.path().join("bad.s2p");
+    std::fs::write(&bad, "# GHz S RI\n1 0 0 1 0 1 0 0 0\n2 0 0 one 0 1 0 0 0\n").unwrap();
+    let out = halfwave(&["chain", "cascade", bad.to_str().unwrap()]);
+    failed_with(&out, &["bad.s2p, line 3", "\"one\" is not a number"]);
+    let out = halfwave(&["chain", "cascade", pad3, load]);
+    failed_with(&out, &["modulator.s1p", "--load"]);
+    let out = halfwave(&["chain", "cascade", "/nonexistent/x.s2p"]);
+    failed_with(&out, &["/nonexistent/x.s2p", "cannot read"]);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn chain_import_stores_a_version_with_the_files_names_and_hashes() {
+    let app = spawn_app().await;
+    let admin = app.token("admin-1", Role::Admin).await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let dir = tempfile::tempdir().unwrap();
+    let paths = write_chain_files(dir.path());
+    let [pad3, pad6, load] = paths.each_ref().map(|p| p.to_str().unwrap());
+    let import = |token: String| {
+        let base = app.base.clone();
+        let (pad3, pad6, load) = (pad3.to_string(), pad6.to_string(), load.to_string());
+        async move {
+            halfwave_async(&[
+                "chain",
+                "import",
+                "bench-7 chain",
+                &pad3,
+                &pad6,
+                "--load",
+                &load,
+                "--url",
+                &base,
+                "--token",
+                &token,
+            ])
+            .await
+        }
+    };
+    // A viewer may not store a calibration.
+    failed_with(&import(viewer.clone()).await, &["role is not allowed"]);
+
+    let out = import(admin.clone()).await;
+    assert!(out.status.success(), "{}", stderr(&out));
+    let text = stdout(&out);
+    assert!(text.contains("version 1 (2 points)"), "{text}");
+    let hashes: Vec<String> = paths
+        .iter()
+        .map(|p| sha256_hex(&std::fs::read(p).unwrap()))
+        .collect();
+    for hash in &hashes {
+        assert!(text.contains(hash.as_str()), "{hash} not in {text}");
+    }
+    // A second import is version 2; the stored version carries the files in cascade order.
+    let again = import(admin.clone()).await;
+    assert!(again.status.success(), "{}", stderr(&again));
+    let stored: serde_json::Value = app
+        .get("/api/v1/chain-calibrations/bench-7%20chain", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(stored["version"], 2);
+    let expected = -9.0 + 10.0 * 0.96f64.log10();
+    for p in stored["points"].as_array().unwrap() {
+        assert!(
+            (p["gain_db"].as_f64().unwrap() - expected).abs() < 1e-9,
+            "{p}"
+        );
+    }
+    let sources = stored["sources"].as_array().unwrap();
+    let names: Vec<&str> = sources
+        .iter()
+        .map(|s| s["file_name"].as_str().unwrap())
+        .collect();
+    assert_eq!(names, ["pad-3db.s2p", "pad-6db.s2p", "modulator.s1p"]);
+    let roles: Vec<&str> = sources
+        .iter()
+        .map(|s| s["role"].as_str().unwrap())
+        .collect();
+    assert_eq!(roles, ["two_port", "two_port", "load"]);
+    let stored_hashes: Vec<&str> = sources
+        .iter()
+        .map(|s| s["sha256"].as_str().unwrap())
+        .collect();
+    assert_eq!(stored_hashes, hashes);
+    // The list of versions shows them too; a typed table has none.
+    let typed = app
+        .post_json(
+            "/api/v1/chain-calibrations",
+            Some(&admin),
+            &serde_json::json!({"name": "typed", "points": [{"frequency_hz": 1e9, "gain_db": -2.0}]}),
+        )
+        .await;
+    assert_eq!(typed.status(), 201);
+    let list: serde_json::Value = app
+        .get("/api/v1/chain-calibrations", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    let list = list.as_array().unwrap();
+    assert_eq!(list.len(), 3);
+    assert_eq!(list[0]["sources"].as_array().unwrap().len(), 3);
+    assert_eq!(list[1]["sources"][2]["sha256"], hashes[2].as_str());
+    assert_eq!(list[2]["name"], "typed");
+    assert_eq!(list[2]["sources"].as_array().unwrap().len(), 0);
+
+    // `chain list` shows the versions with their files.
+    let out = halfwave_async(&["chain", "list", "--url", &app.base, "--token", &viewer]).await;
+    assert!(out.status.success(), "{}", stderr(&out));
+    let text = stdout(&out);
+    assert!(text.contains("\"bench-7 chain\" version 2"), "{text}");
+    assert!(text.contains("\"typed\" version 1"), "{text}");
+    assert!(text.contains("typed table"), "{text}");
+    assert_eq!(text.matches(hashes[1].as_str()).count(), 2, "{text}");
+    let out = halfwave_async(&[
+        "chain", "list", "--json", "--url", &app.base, "--token", &viewer,
+    ])
+    .await;
+    let listed: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(listed[1]["sources"][0]["file_name"], "pad-3db.s2p");
+
+    // The route refuses a bad digest and two loads, naming the fields.
+    let bad = app
+        .post_json(
+            "/api/v1/chain-calibrations",
+            Some(&admin),
+            &serde_json::json!({"name": "x", "points": [{"frequency_hz": 1e9, "gain_db": -2.0}],
+                "sources": [{"role": "load", "file_name": "a.s1p", "sha256": "ABC"},
+                            {"role": "load", "file_name": "b.s1p", "sha256": hashes[0]}]}),
+        )
+        .await;
+    assert_eq!(bad.status(), 422);
+    let problem = api_support::problem(bad).await.to_string();
+    assert!(problem.contains("sources[0].sha256"), "{problem}");
+    assert!(problem.contains("more than one load"), "{problem}");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn budget_prints_the_gum_table_of_a_run() {
+    // The numbers checked are the GUM combination written out here (JCGM 100:2008 4.3.7, 5.1.2,
+    // k = 2 per 6.3) from what the store holds; the run is seeded plumbing data.
+    let app = spawn_app().await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let (device, chain) = api_support::seed::seed_device(app.store(), "PM-0099").await;
+    let run = api_support::seed::seed_completed_run(
+        app.store(),
+        device,
+        chain,
+        &[3e9],
+        &[0.0, 6.0],
+        |_| 4.0,
+        201,
+    )
+    .await;
+    let id = run.run_id.to_string();
+    let args = [
+        "budget",
+        id.as_str(),
+        "--chain-uncertainty-db",
+        "0.1",
+        "--source-level-accuracy-db",
+        "0.3",
+        "--url",
+        app.base.as_str(),
+        "--token",
+        viewer.as_str(),
+    ];
+    let out = halfwave_async(&args).await;
+    assert!(out.status.success(), "{}", stderr(&out));
+    let text = stdout(&out);
+    let (_, v_pi, u_fit) = run.results[0];
+    let per_db = v_pi * std::f64::consts::LN_10 / 20.0;
+    let combined =
+        (u_fit.powi(2) + (per_db * 0.1).powi(2) + (per_db * 0.3 / 3f64.sqrt()).powi(2)).sqrt();
+    assert!(text.contains("3.000 GHz"), "{text}");
+    assert!(
+        text.contains(&format!("combined standard uncertainty {combined:.4} V")),
+        "{combined:.4} not in {text}"
+    );
+    assert!(
+        text.contains(&format!("expanded (k = 2) {:.4} V", 2.0 * combined)),
+        "{text}"
+    );
+
+    let mut json_args = args.to_vec();
+    json_args.push("--json");
+    let out = halfwave_async(&json_args).await;
+    assert!(out.status.success(), "{}", stderr(&out));
+    let view: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let got = view["frequencies"][0]["combined_standard_uncertainty_volts"]
+        .as_f64()
+        .unwrap();
+    assert!((got - combined).abs() < 1e-12, "{got} vs {combined}");
+
+    // An input out of range is named by the daemon.
+    let mut bad = args.to_vec();
+    bad[3] = "-1";
+    let out = halfwave_async(&bad).await;
+    failed_with(&out, &["chain_uncertainty_db"]);
 }

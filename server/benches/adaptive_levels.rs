@@ -20,9 +20,7 @@
 
 mod support;
 
-use halfwave::cli::demo::{
-    demo_frequencies_hz, RAMP_START_DBM, RAMP_STEP_DB, RAMP_STOP_DBM, SEED,
-};
+use halfwave::cli::demo::{demo_frequencies_hz, RAMP_START_DBM, RAMP_STEP_DB, RAMP_STOP_DBM, SEED};
 use halfwave::engine::plan::{ChainSpec, FrequencySpec, LevelSpec, PlanRequest};
 use halfwave::engine::Engine;
 use halfwave::store::ChainCalibrationPoint;
@@ -90,7 +88,9 @@ async fn calibrate(engine: &Engine, name: &'static str, plan: PlanRequest) -> Ou
 
 fn main() {
     if !std::env::args().any(|a| a == "--bench") {
-        println!("adaptive_levels: run with `cargo bench -p halfwave-server --bench adaptive_levels`");
+        println!(
+            "adaptive_levels: run with `cargo bench -p halfwave-server --bench adaptive_levels`"
+        );
         return;
     }
     let time_factor: f64 = std::env::var("HALFWAVE_BENCH_TIME_FACTOR")

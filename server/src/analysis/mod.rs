@@ -6,6 +6,8 @@
 //!
 //! - [`chain`]: generator level <-> level at the modulator <-> peak voltage.
 //! - [`drive_plan`]: the generator level for a wanted modulation index (and back), with uncertainty.
+//! - [`touchstone`]: Touchstone 1.x / 2.0 files read into S-parameters at 50 ohm.
+//! - [`cascade`]: two-ports cascaded and terminated in the modulator: the chain's gain table.
 //! - [`bessel`]: J_n tabulated once for fast fitting, with its reference checks.
 //! - [`comb`]: finding the comb on a trace and measuring its lines and floor.
 //! - [`fit`]: the whole displayed trace fitted with the instrument's line shape (the primary).
@@ -14,6 +16,7 @@
 //! - [`index`]: the modulation index by least squares, sideband ratio and carrier depletion.
 //! - [`trace_analysis`]: one trace in, every estimate and the line table out.
 //! - [`vpi`]: V_pi from a drive-level sweep, with the points that break the line flagged.
+//! - [`budget`]: V_pi's uncertainty budget (fit, chain, generator level) by the GUM.
 //! - [`agreement`]: whether two V_pi agree within their uncertainties (E_n).
 //! - [`response`]: V_pi versus frequency as a response in dB, with its 3 dB and 6 dB points.
 //! - [`prediction`]: the comb a periodic phase drive (several harmonics) makes, exactly.
@@ -22,6 +25,8 @@
 
 pub mod agreement;
 pub mod bessel;
+pub mod budget;
+pub mod cascade;
 pub mod chain;
 pub mod comb;
 pub mod drive_plan;
@@ -33,6 +38,7 @@ pub mod response;
 mod smooth_shape;
 pub mod spacing;
 pub mod synthetic;
+pub mod touchstone;
 pub mod trace_analysis;
 pub mod vpi;
 

@@ -118,8 +118,13 @@ fn db(operation: &'static str) -> impl FnOnce(sqlx::Error) -> TokenError {
 
 /// Lower-case hex SHA-256 of a token, as stored.
 pub fn digest_hex(token: &str) -> String {
-    let digest = Sha256::digest(token.as_bytes());
-    hex(&digest)
+    sha256_hex(token.as_bytes())
+}
+
+/// Lower-case hex SHA-256 of any bytes (tokens, and the Touchstone files a chain calibration is
+/// computed from).
+pub fn sha256_hex(bytes: &[u8]) -> String {
+    hex(&Sha256::digest(bytes))
 }
 
 fn hex(bytes: &[u8]) -> String {

@@ -2,9 +2,9 @@
 //!
 //! Every subcommand returns `Result<(), CliError>`; `main` prints the error for the person at the
 //! terminal and exits non-zero. Three kinds of command live here: the daemon and its local tools
-//! (`serve`, `demo`, `sim`, `analyze`, `predict`, `token`, `check-bench`, `db`), which read the configuration
+//! (`serve`, `demo`, `sim`, `analyze`, `predict`, `token`, `check-bench`, `db`, `chain cascade`), which read the configuration
 //! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `cancel`, `resume`, `compare`, `devices`,
-//! `v-pi`, `drive`, `pin`, `unpin`, `export`, `trace`, `benches`, `acknowledge`), which
+//! `v-pi`, `drive`, `pin`, `unpin`, `export`, `trace`, `benches`, `acknowledge`, `chain import`, `budget`), which
 //! speak only HTTP to a running daemon through [`client::ApiClient`], so they work from any
 //! machine that can reach it. Clients print tables for people and JSON with `--json`.
 
@@ -29,6 +29,8 @@ pub mod analyze;
 use clap::{Parser, Subcommand};
 
 pub mod benches;
+pub mod budget;
+pub mod chain;
 pub mod check_bench;
 pub mod client;
 pub mod compare;
@@ -162,6 +164,12 @@ pub enum Command {
     Acknowledge(benches::AcknowledgeArgs),
     #[command(flatten)]
     Pins(pin::PinCommand),
+    /// Drive chain from Touchstone files: `chain cascade` prints the gain, `chain import` stores
+    /// it as a chain calibration version.
+    #[command(subcommand)]
+    Chain(chain::ChainCommand),
+    /// V_pi's uncertainty budget per frequency of a run (fit, drive chain, generator level; GUM).
+    Budget(budget::BudgetArgs),
 }
 
 /// Runs the parsed command.
@@ -190,5 +198,7 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Benches(args) => benches::list(args),
         Command::Acknowledge(args) => benches::acknowledge(args),
         Command::Pins(command) => pin::run(command),
+        Command::Chain(command) => chain::run(command),
+        Command::Budget(args) => budget::run(args),
     }
 }

@@ -75,7 +75,9 @@ impl std::fmt::Display for AdaptiveStop {
                 f,
                 "u(V_pi)/V_pi {relative_uncertainty:.2e} reached the target"
             ),
-            AdaptiveStop::MaxPoints => write!(f, "the plan's maximum number of points was measured"),
+            AdaptiveStop::MaxPoints => {
+                write!(f, "the plan's maximum number of points was measured")
+            }
             AdaptiveStop::TopOfRange => write!(f, "the top of the level range was measured"),
         }
     }
@@ -158,7 +160,9 @@ pub fn next_step(
         None => top,
         Some(r) => {
             let ceiling = ladder[r].0 + settings.max_step_db;
-            ladder.partition_point(|l| l.0 <= ceiling + 1e-9).saturating_sub(1)
+            ladder
+                .partition_point(|l| l.0 <= ceiling + 1e-9)
+                .saturating_sub(1)
         }
     }
     .max(lowest);

@@ -615,10 +615,7 @@ fn expand_levels(
             "levels.stop_dbm",
             "raise stop_dbm above start_dbm by at least one step",
         ),
-        LevelSpec::Adaptive { .. } => (
-            "levels.max_dbm",
-            "raise max_dbm above min_dbm by a few dB",
-        ),
+        LevelSpec::Adaptive { .. } => ("levels.max_dbm", "raise max_dbm above min_dbm by a few dB"),
     };
     let values: Vec<f64> = match spec {
         LevelSpec::List { values_dbm } => {
@@ -751,7 +748,9 @@ fn expand_levels(
                     let mut v: Vec<f64> = (0..count)
                         .map(|i| (min_dbm + i as f64 * ADAPTIVE_RUNG_DB).min(*max_dbm))
                         .collect();
-                    if v.last().is_some_and(|l| max_dbm - l >= MIN_LEVEL_SEPARATION_DB) {
+                    if v.last()
+                        .is_some_and(|l| max_dbm - l >= MIN_LEVEL_SEPARATION_DB)
+                    {
                         v.push(*max_dbm);
                     }
                     v
@@ -1250,8 +1249,10 @@ mod tests {
     fn adaptive_settings_outside_their_ranges_are_refused_by_name() {
         let err = validate(&request(adaptive(0.0, 20.0, 0.0005)), 30.0).unwrap_err();
         assert!(
-            err.errors.iter().any(|e| e.field == "levels.target_relative_uncertainty"
-                && e.message.contains("line-shape term")),
+            err.errors
+                .iter()
+                .any(|e| e.field == "levels.target_relative_uncertainty"
+                    && e.message.contains("line-shape term")),
             "{err:?}"
         );
         let req = request(LevelSpec::Adaptive {
@@ -1266,7 +1267,10 @@ mod tests {
         assert!(fields.contains(&"levels.max_points"), "{fields:?}");
         assert!(fields.contains(&"levels.max_step_db"), "{fields:?}");
         let err = validate(&request(adaptive(10.0, 10.0, 0.003)), 30.0).unwrap_err();
-        assert!(err.errors.iter().any(|e| e.field == "levels.max_dbm"), "{err:?}");
+        assert!(
+            err.errors.iter().any(|e| e.field == "levels.max_dbm"),
+            "{err:?}"
+        );
         // The lowest target accepted is accepted exactly (the schema's minimum).
         assert!(validate(&request(adaptive(0.0, 20.0, ADAPTIVE_MIN_TARGET)), 30.0).is_ok());
     }

@@ -233,9 +233,17 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
                 if remaining.is_empty() {
                     continue;
                 }
-                measure_frequency(ctx, fi, step, Levels::Fixed(&remaining), &caps, &mut carrier, &tx)
-                    .instrument(span)
-                    .await
+                measure_frequency(
+                    ctx,
+                    fi,
+                    step,
+                    Levels::Fixed(&remaining),
+                    &caps,
+                    &mut carrier,
+                    &tx,
+                )
+                .instrument(span)
+                .await
             }
             Some(settings) => {
                 let Some(seed) = adaptive_seed(ctx, fi).await? else {
@@ -321,9 +329,15 @@ async fn adaptive_seed(ctx: &RunContext, fi: usize) -> Result<Option<Vec<Adaptiv
         return Ok(Some(Vec::new()));
     }
     let read = |e: crate::store::StoreError| {
-        Stop::Failed(format!("could not read back the stored points to resume: {e}"))
+        Stop::Failed(format!(
+            "could not read back the stored points to resume: {e}"
+        ))
     };
-    let results = ctx.store.frequency_results(ctx.run_id).await.map_err(read)?;
+    let results = ctx
+        .store
+        .frequency_results(ctx.run_id)
+        .await
+        .map_err(read)?;
     if results.iter().any(|r| r.frequency_index as usize == fi) {
         return Ok(None);
     }
@@ -429,7 +443,10 @@ async fn measure_frequency(
                     .await?;
                 let (reply, answer) = oneshot::channel();
                 m.reply = Some(reply);
-                let v_peak = peak_voltage(ctx.chain.level_at_modulator(step.frequency, m.generator_level));
+                let v_peak = peak_voltage(
+                    ctx.chain
+                        .level_at_modulator(step.frequency, m.generator_level),
+                );
                 if tx.send(Msg::Point(Box::new(m))).await.is_err() {
                     return Err(Stop::PipelineEnded);
                 }

@@ -7,7 +7,8 @@
 
 use super::audit::audit_in;
 use super::{
-    now_unix_ms, ChainCalibration, ChainCalibrationHeader, ChainCalibrationPoint, Store, StoreError,
+    now_unix_ms, ChainCalibration, ChainCalibrationHeader, ChainCalibrationPoint,
+    ChainCalibrationSource, Store, StoreError,
 };
 
 impl Store {
@@ -21,6 +22,22 @@ impl Store {
         created_by: &str,
         points: &[ChainCalibrationPoint],
     ) -> Result<ChainCalibration, StoreError> {
+        self.create_chain_calibration_with_sources(name, created_by, points, &[])
+            .await
+    }
+
+    /// [`Store::create_chain_calibration`] with the files the table was computed from, in
+    /// cascade order (stored in the same transaction). Each needs a known role, a file name of 1
+    /// to 255 characters and a SHA-256 of 64 lowercase hexadecimal digits; at most one is the
+    /// load.
+    pub async fn create_chain_calibration_with_sources(
+        &self,
+        name: &str,
+        created_by: &str,
+        points: &[ChainCalibrationPoint],
+        sources: &[ChainCalibrationSource],
+    ) -> Result<ChainCalibration, StoreError> {
+        check_sources(sources)?;
         let name = name.trim();
         if name.is_empty() {
             return Err(StoreError::InvalidInput {
@@ -60,10 +77,25 @@ impl Store {
             .await
             .map_err(StoreError::database("storing a calibration point"))?;
         }
+        for (position, source) in sources.iter().enumerate() {
+            sqlx::query(
+                "INSERT INTO chain_calibration_sources \
+                 (chain_calibration_id, position, role, file_name, sha256) VALUES ($1, $2, $3, $4, $5)",
+            )
+            .bind(header.id)
+            .bind(position as i64)
+            .bind(&source.role)
+            .bind(&source.file_name)
+            .bind(&source.sha256)
+            .execute(&mut *tx)
+            .await
+            .map_err(StoreError::database("storing a calibration source file"))?;
+        }
         let detail = serde_json::json!({
             "id": header.id,
             "version": header.version,
             "points": points.len(),
+            "sources": sources.len(),
         });
         audit_in(
             &mut tx,
@@ -85,6 +117,7 @@ impl Store {
             created_at_unix_ms: header.created_at_unix_ms,
             created_by: header.created_by,
             points,
+            sources: sources.to_vec(),
         })
     }
 
@@ -169,6 +202,14 @@ impl Store {
         .fetch_all(&self.pool)
         .await
         .map_err(StoreError::database("reading calibration points"))?;
+        let sources = sqlx::query_as::<_, ChainCalibrationSource>(
+            "SELECT role, file_name, sha256 FROM chain_calibration_sources \
+             WHERE chain_calibration_id = $1 ORDER BY position",
+        )
+        .bind(header.id)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(StoreError::database("reading calibration source files"))?;
         Ok(ChainCalibration {
             id: header.id,
             name: header.name,
@@ -176,8 +217,81 @@ impl Store {
             created_at_unix_ms: header.created_at_unix_ms,
             created_by: header.created_by,
             points,
+            sources,
         })
     }
+
+    /// The source files of every calibration version, by version id, each in cascade order.
+    pub async fn chain_calibration_sources(
+        &self,
+    ) -> Result<std::collections::BTreeMap<i64, Vec<ChainCalibrationSource>>, StoreError> {
+        #[derive(sqlx::FromRow)]
+        struct Row {
+            chain_calibration_id: i64,
+            #[sqlx(flatten)]
+            source: ChainCalibrationSource,
+        }
+        let rows = sqlx::query_as::<_, Row>(
+            "SELECT chain_calibration_id, role, file_name, sha256 FROM chain_calibration_sources \
+             ORDER BY chain_calibration_id, position",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .map_err(StoreError::database("listing calibration source files"))?;
+        let mut by_id = std::collections::BTreeMap::<i64, Vec<ChainCalibrationSource>>::new();
+        for row in rows {
+            by_id
+                .entry(row.chain_calibration_id)
+                .or_default()
+                .push(row.source);
+        }
+        Ok(by_id)
+    }
+}
+
+/// Refuses source files with an unknown role, an empty or overlong name, a digest that is not
+/// 64 lowercase hexadecimal digits, or more than one load.
+fn check_sources(sources: &[ChainCalibrationSource]) -> Result<(), StoreError> {
+    for source in sources {
+        if !ChainCalibrationSource::ROLES.contains(&source.role.as_str()) {
+            return Err(StoreError::InvalidInput {
+                what: "calibration source role",
+                reason: format!("{:?} is neither \"two_port\" nor \"load\"", source.role),
+            });
+        }
+        let length = source.file_name.chars().count();
+        let blank = source
+            .file_name
+            .chars()
+            .all(|c| matches!(c, ' ' | '\t' | '\r' | '\n'));
+        if blank || length > 255 {
+            return Err(StoreError::InvalidInput {
+                what: "calibration source file name",
+                reason: format!(
+                    "{:?} is not a name of 1 to 255 characters",
+                    source.file_name
+                ),
+            });
+        }
+        if source.sha256.len() != 64
+            || !source
+                .sha256
+                .bytes()
+                .all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b))
+        {
+            return Err(StoreError::InvalidInput {
+                what: "calibration source SHA-256",
+                reason: format!("{:?} is not 64 lowercase hexadecimal digits", source.sha256),
+            });
+        }
+    }
+    if sources.iter().filter(|s| s.role == "load").count() > 1 {
+        return Err(StoreError::InvalidInput {
+            what: "calibration sources",
+            reason: "more than one load; a chain ends in one modulator".to_string(),
+        });
+    }
+    Ok(())
 }
 
 /// Sorts the points by frequency and refuses empty tables, non-finite values, frequencies that are

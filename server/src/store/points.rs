@@ -266,9 +266,7 @@ impl Store {
         .map_err(StoreError::database("counting a run's analyzer sweeps"))?;
         rows.into_iter()
             .filter_map(|(index, sweeps)| sweeps.map(|s| (index, s)))
-            .map(|(index, sweeps)| {
-                Ok((super::index_from_db("frequency index", index)?, sweeps))
-            })
+            .map(|(index, sweeps)| Ok((super::index_from_db("frequency index", index)?, sweeps)))
             .collect()
     }
 

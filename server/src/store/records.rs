@@ -202,6 +202,24 @@ pub struct ChainCalibration {
     pub created_at_unix_ms: i64,
     pub created_by: String,
     pub points: Vec<ChainCalibrationPoint>,
+    /// The files the table was computed from, in cascade order (empty for a typed table).
+    pub sources: Vec<ChainCalibrationSource>,
+}
+
+/// One file a chain calibration was computed from: a two-port of the chain or the modulator's
+/// one-port load, named, with the SHA-256 of its bytes.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, sqlx::FromRow)]
+pub struct ChainCalibrationSource {
+    /// `two_port` or `load` (see [`ChainCalibrationSource::ROLES`]).
+    pub role: String,
+    pub file_name: String,
+    /// 64 lowercase hexadecimal digits.
+    pub sha256: String,
+}
+
+impl ChainCalibrationSource {
+    /// The roles a source file can have.
+    pub const ROLES: [&'static str; 2] = ["two_port", "load"];
 }
 
 /// The header row of a chain calibration (without its points).

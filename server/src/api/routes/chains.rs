@@ -3,6 +3,10 @@
 //!
 //! CSV form: a header line `frequency_hz,gain_db` and one row per frequency (a loss is a negative
 //! gain); the name is the `name` query parameter. Every bad row is reported with its line number.
+//!
+//! A JSON upload may name the files the table was computed from (`sources`: each a `two_port` or
+//! the `load`, with its file name and SHA-256), as `halfwave chain import` does for Touchstone
+//! files; they are stored with the version and shown wherever versions are.
 
 use crate::api::audit;
 use crate::api::auth::{Admin, Viewer};
@@ -10,7 +14,9 @@ use crate::api::json_body::parse_json;
 use crate::api::params::{ApiPath, ApiQuery};
 use crate::api::problem::{FieldProblem, Problem};
 use crate::api::AppState;
-use crate::store::{ChainCalibration, ChainCalibrationHeader, ChainCalibrationPoint};
+use crate::store::{
+    ChainCalibration, ChainCalibrationHeader, ChainCalibrationPoint, ChainCalibrationSource,
+};
 use axum::body::Bytes;
 use axum::extract::State;
 use axum::http::header::CONTENT_TYPE;
@@ -33,6 +39,56 @@ pub struct ChainPointBody {
     pub gain_db: f64,
 }
 
+/// The most source files one calibration may name.
+pub const MAX_CHAIN_SOURCES: usize = 64;
+
+/// How a source file enters the chain.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, ToSchema)]
+#[serde(rename_all = "snake_case")]
+pub enum SourceRole {
+    /// A two-port of the chain (cable, attenuator, amplifier), in cascade order.
+    TwoPort,
+    /// The modulator's one-port reflection that terminates the chain.
+    Load,
+}
+
+impl SourceRole {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            SourceRole::TwoPort => "two_port",
+            SourceRole::Load => "load",
+        }
+    }
+}
+
+/// A file a calibration was computed from.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize, ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct ChainSourceBody {
+    pub role: SourceRole,
+    /// The file's name (without its directory), 1 to 255 characters.
+    #[schema(min_length = 1, max_length = 255, pattern = "[^ \\t\\r\\n]")]
+    pub file_name: String,
+    /// SHA-256 of the file's bytes, 64 lowercase hexadecimal digits.
+    #[schema(min_length = 64, max_length = 64, pattern = "^[0-9a-f]{64}$")]
+    pub sha256: String,
+}
+
+impl ChainSourceBody {
+    fn from_stored(s: ChainCalibrationSource) -> Option<ChainSourceBody> {
+        let role = match s.role.as_str() {
+            "two_port" => SourceRole::TwoPort,
+            "load" => SourceRole::Load,
+            _ => return None,
+        };
+        Some(ChainSourceBody {
+            role,
+            file_name: s.file_name,
+            sha256: s.sha256,
+        })
+    }
+}
+
 /// A chain calibration upload (JSON form).
 #[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
@@ -42,6 +98,11 @@ pub struct ChainUpload {
     pub name: String,
     #[schema(min_items = 1, max_items = 10000)]
     pub points: Vec<ChainPointBody>,
+    /// The files the table was computed from, in cascade order from the generator, at most one
+    /// `load` (`halfwave chain import`); leave out for a typed table.
+    #[serde(default)]
+    #[schema(max_items = 64)]
+    pub sources: Vec<ChainSourceBody>,
 }
 
 /// A stored calibration version.
@@ -52,6 +113,9 @@ pub struct ChainView {
     pub created_at_unix_ms: i64,
     pub created_by: String,
     pub points: Vec<ChainPointBody>,
+    /// The files the table was computed from, in cascade order (empty for a typed table).
+    #[serde(default)]
+    pub sources: Vec<ChainSourceBody>,
 }
 
 impl From<ChainCalibration> for ChainView {
@@ -69,6 +133,11 @@ impl From<ChainCalibration> for ChainView {
                     gain_db: p.gain_db,
                 })
                 .collect(),
+            sources: c
+                .sources
+                .into_iter()
+                .filter_map(ChainSourceBody::from_stored)
+                .collect(),
         }
     }
 }
@@ -80,15 +149,22 @@ pub struct ChainHeaderView {
     pub version: i64,
     pub created_at_unix_ms: i64,
     pub created_by: String,
+    /// The files the table was computed from, in cascade order (empty for a typed table).
+    #[serde(default)]
+    pub sources: Vec<ChainSourceBody>,
 }
 
-impl From<ChainCalibrationHeader> for ChainHeaderView {
-    fn from(h: ChainCalibrationHeader) -> ChainHeaderView {
+impl ChainHeaderView {
+    fn new(h: ChainCalibrationHeader, sources: Vec<ChainCalibrationSource>) -> ChainHeaderView {
         ChainHeaderView {
             name: h.name,
             version: h.version,
             created_at_unix_ms: h.created_at_unix_ms,
             created_by: h.created_by,
+            sources: sources
+                .into_iter()
+                .filter_map(ChainSourceBody::from_stored)
+                .collect(),
         }
     }
 }
@@ -181,6 +257,47 @@ fn check_points(points: &[ChainPointBody]) -> Vec<FieldProblem> {
     errors
 }
 
+/// Checks the source files; all problems at once.
+fn check_sources(sources: &[ChainSourceBody]) -> Vec<FieldProblem> {
+    let mut errors = Vec::new();
+    if sources.len() > MAX_CHAIN_SOURCES {
+        errors.push(FieldProblem::new(
+            "sources",
+            format!("{} files; at most {MAX_CHAIN_SOURCES}", sources.len()),
+        ));
+    }
+    for (i, s) in sources.iter().enumerate() {
+        if blank_name(&s.file_name) || s.file_name.chars().count() > 255 {
+            errors.push(FieldProblem::new(
+                format!("sources[{i}].file_name"),
+                "give the file's name, 1 to 255 characters",
+            ));
+        }
+        let hex = s.sha256.len() == 64
+            && s.sha256
+                .bytes()
+                .all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b));
+        if !hex {
+            errors.push(FieldProblem::new(
+                format!("sources[{i}].sha256"),
+                "give the SHA-256 of the file as 64 lowercase hexadecimal digits",
+            ));
+        }
+    }
+    if sources
+        .iter()
+        .filter(|s| s.role == SourceRole::Load)
+        .count()
+        > 1
+    {
+        errors.push(FieldProblem::new(
+            "sources",
+            "more than one load; a chain ends in one modulator",
+        ));
+    }
+    errors
+}
+
 /// Uploads a new version of a chain calibration, as JSON (`{name, points}`) or CSV.
 #[utoipa::path(post, path = "/api/v1/chain-calibrations", tag = "calibrations", security(("bearer" = [])),
     params(UploadQuery),
@@ -205,7 +322,7 @@ pub async fn upload_chain(
                 .to_ascii_lowercase()
         })
         .unwrap_or_default();
-    let (name, points) = if content_type == "text/csv" {
+    let (name, points, sources) = if content_type == "text/csv" {
         let name = query.name.filter(|n| !blank_name(n)).ok_or_else(|| {
             Problem::invalid_field("name", "a CSV upload needs ?name=<calibration name>")
         })?;
@@ -213,14 +330,15 @@ pub async fn upload_chain(
             .map_err(|_| Problem::invalid_field("body", "the CSV is not UTF-8 text"))?;
         let points =
             parse_csv(text).map_err(|errors| Problem::invalid("the CSV has bad lines", errors))?;
-        (name, points)
+        (name, points, Vec::new())
     } else if content_type == "application/json" {
         let upload: ChainUpload = parse_json(&body)?;
-        (upload.name, upload.points)
+        (upload.name, upload.points, upload.sources)
     } else {
         return Err(Problem::for_bare_status(StatusCode::UNSUPPORTED_MEDIA_TYPE));
     };
     let mut errors = check_points(&points);
+    errors.extend(check_sources(&sources));
     if blank_name(&name) || name.chars().count() > 200 {
         errors.insert(
             0,
@@ -240,16 +358,28 @@ pub async fn upload_chain(
             gain_db: p.gain_db,
         })
         .collect();
+    let stored_sources: Vec<ChainCalibrationSource> = sources
+        .iter()
+        .map(|s| ChainCalibrationSource {
+            role: s.role.as_str().to_string(),
+            file_name: s.file_name.clone(),
+            sha256: s.sha256.clone(),
+        })
+        .collect();
     let created = state
         .store()
-        .create_chain_calibration(&name, &caller.name, &rows)
+        .create_chain_calibration_with_sources(&name, &caller.name, &rows, &stored_sources)
         .await?;
     audit::record(
         &state,
         &caller.name,
         "chain_calibration.upload",
         &format!("{} v{}", created.name, created.version),
-        &format!("{} points", created.points.len()),
+        &format!(
+            "{} points, {} source files",
+            created.points.len(),
+            created.sources.len()
+        ),
     )
     .await;
     Ok((StatusCode::CREATED, Json(created.into())))
@@ -263,8 +393,15 @@ pub async fn list_chains(
     State(state): State<AppState>,
 ) -> Result<Json<Vec<ChainHeaderView>>, Problem> {
     let headers = state.store().chain_calibrations().await?;
+    let mut sources = state.store().chain_calibration_sources().await?;
     Ok(Json(
-        headers.into_iter().map(ChainHeaderView::from).collect(),
+        headers
+            .into_iter()
+            .map(|h| {
+                let files = sources.remove(&h.id).unwrap_or_default();
+                ChainHeaderView::new(h, files)
+            })
+            .collect(),
     ))
 }
 
@@ -311,5 +448,35 @@ mod tests {
         ]);
         let fields: Vec<&str> = errors.iter().map(|e| e.field.as_str()).collect();
         assert_eq!(fields, ["points[0].frequency_hz", "points[1].gain_db"]);
+    }
+
+    #[test]
+    fn source_files_are_checked() {
+        let good = ChainSourceBody {
+            role: SourceRole::TwoPort,
+            file_name: "pad.s2p".into(),
+            sha256: "0123456789abcdef".repeat(4),
+        };
+        assert!(check_sources(std::slice::from_ref(&good)).is_empty());
+        let errors = check_sources(&[
+            ChainSourceBody {
+                file_name: " \t".into(),
+                sha256: "0123456789ABCDEF".repeat(4),
+                ..good.clone()
+            },
+            ChainSourceBody {
+                role: SourceRole::Load,
+                ..good.clone()
+            },
+            ChainSourceBody {
+                role: SourceRole::Load,
+                ..good.clone()
+            },
+        ]);
+        let fields: Vec<&str> = errors.iter().map(|e| e.field.as_str()).collect();
+        assert_eq!(
+            fields,
+            ["sources[0].file_name", "sources[0].sha256", "sources"]
+        );
     }
 }

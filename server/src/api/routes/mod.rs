@@ -7,6 +7,7 @@
 //! OpenAPI's.
 
 pub mod benches;
+pub mod budget;
 pub mod chains;
 pub mod dashboard;
 pub mod devices;
@@ -62,6 +63,7 @@ pub fn timed_routes() -> OpenApiRouter<AppState> {
         .routes(routes!(devices::response_plot))
         .routes(routes!(chains::upload_chain, chains::list_chains))
         .routes(routes!(chains::get_chain))
+        .routes(routes!(budget::run_budget))
 }
 
 /// The long-lived routes (server-sent events), exempt from the request timeout.
