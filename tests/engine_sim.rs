@@ -9,7 +9,9 @@
 
 mod engine_support;
 
-use engine_support::{assert_v_pi_within, plan, upload_true_chain, wait_for_end, POINTS};
+use engine_support::{
+    assert_v_pi_within, plan, upload_true_chain, wait_for_end, FREQUENCIES_HZ, LEVELS, POINTS,
+};
 use halfwave::config::Limits;
 use halfwave::engine::bench::BenchInstruments;
 use halfwave::engine::events::ProgressEvent;
@@ -383,4 +385,79 @@ async fn a_stored_unconfirmed_output_is_switched_off_at_start_and_holds_the_benc
     // A second acknowledgement has nothing to clear.
     assert!(engine.acknowledge("sim", "op", "").await.is_err());
     engine.shutdown().await;
+}
+
+/// Adaptive levels on the same simulated modulator as the blind ramp: every frequency still gets
+/// a V_pi within 2 % of the scenario's truth, the levels only go up and stay in the stated range,
+/// no frequency takes more than the stated maximum of points, and the analyzer sweeps (locate,
+/// reference and one per point here) are fewer than the blind ramp's over the same frequencies.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn adaptive_levels_recover_v_pi_with_fewer_sweeps_than_the_blind_ramp() {
+    use halfwave::engine::plan::LevelSpec;
+
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let sim = SimBench::new(scenario.clone(), 11).with_time_factor(0.0);
+    let chain = upload_true_chain(&store, &scenario).await;
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
+    let mut events = engine.subscribe();
+
+    let blind_id = engine.submit(plan(&chain), "test").await.unwrap();
+    assert_eq!(wait_for_end(&mut events, blind_id).await.0, "completed");
+
+    // A fresh serial: no stored V_pi to start from, so the rule begins from a low safe level.
+    let mut adaptive = plan(&chain);
+    adaptive.device.serial = "EG-PM-0043".into();
+    const MAX_POINTS: usize = 6;
+    adaptive.levels = LevelSpec::Adaptive {
+        min_dbm: 0.0,
+        max_dbm: 20.0,
+        target_relative_uncertainty: 0.003,
+        max_points: Some(MAX_POINTS),
+        max_step_db: Some(6.0),
+    };
+    let adaptive_id = engine.submit(adaptive, "test").await.unwrap();
+    assert_eq!(wait_for_end(&mut events, adaptive_id).await.0, "completed");
+    assert!(!sim.rf_output_on(), "RF must be off after the run");
+    assert!(!sim.overdriven(), "never above the modulator's RF limit");
+
+    let results = store.frequency_results(adaptive_id).await.unwrap();
+    assert_v_pi_within(&results, &scenario, 0.02);
+
+    let points = store.points_of_run(adaptive_id).await.unwrap();
+    for (index, _) in FREQUENCIES_HZ.iter().enumerate() {
+        let levels: Vec<f64> = points
+            .iter()
+            .filter(|p| p.frequency_index as usize == index)
+            .map(|p| p.generator_level_dbm)
+            .collect();
+        assert!(
+            (3..=MAX_POINTS).contains(&levels.len()),
+            "frequency {index}: {} points",
+            levels.len()
+        );
+        assert!(
+            levels
+                .windows(2)
+                .all(|w| w[1] > w[0] && w[1] - w[0] <= 6.0 + 1e-9),
+            "frequency {index}: levels must go up by at most 6 dB: {levels:?}"
+        );
+        assert!(
+            levels.iter().all(|l| (0.0..=20.0).contains(l)),
+            "{levels:?}"
+        );
+    }
+
+    let total = |sweeps: Vec<(u32, i64)>| sweeps.iter().map(|(_, n)| n).sum::<i64>();
+    let blind_sweeps = total(store.analyzer_sweeps(blind_id).await.unwrap());
+    let adaptive_sweeps = total(store.analyzer_sweeps(adaptive_id).await.unwrap());
+    // The blind ramp: per frequency one locate sweep, one reference and nine levels.
+    assert_eq!(blind_sweeps, (FREQUENCIES_HZ.len() * (2 + LEVELS)) as i64);
+    assert!(
+        adaptive_sweeps < blind_sweeps,
+        "adaptive {adaptive_sweeps} sweeps, blind {blind_sweeps}"
+    );
 }
