@@ -446,7 +446,10 @@ async fn the_document_describes_what_is_sent_and_accepted() {
         plan["additionalProperties"], false,
         "unknown plan fields are refused"
     );
-    assert_eq!(kinds(component(&document, "LevelSpec")), ["list", "ramp"]);
+    assert_eq!(
+        kinds(component(&document, "LevelSpec")),
+        ["list", "ramp", "adaptive"]
+    );
     assert_eq!(
         kinds(component(&document, "FrequencySpec")),
         ["list", "linear", "logarithmic"]

@@ -685,3 +685,133 @@ async fn a_runs_v_pi_budget_combines_the_fit_the_chain_and_the_generator() {
         .await;
     assert_eq!(unknown.status(), 404);
 }
+
+#[tokio::test]
+async fn the_budget_reads_the_chain_tables_uncertainty_and_the_benchs_stated_level_accuracy() {
+    // The stored inputs: the chain table's standard uncertainty per frequency (the larger of the
+    // two entries around a frequency) and the bench's configured +/- level accuracy, read as
+    // rectangular (GUM 4.3.7) and combined in quadrature (GUM 5.1.2), written out here.
+    use halfwave::api::{ApiSettings, AppState};
+    use halfwave::config::Config;
+    use halfwave::engine::Engine;
+    use halfwave::store::ChainCalibrationPoint;
+    use halfwave::units::{Db, Hz};
+
+    let dir = tempfile::tempdir().unwrap();
+    let store = halfwave::store::Store::open(dir.path().join("h.sqlite").to_str().unwrap())
+        .await
+        .unwrap();
+    let mut config = Config::simulated(dir.path().to_path_buf(), 0.0, 3);
+    config.benches[0].name = "bench-a".into(); // the seeded run's bench
+    config.benches[0].source_level_accuracy_db = Some(0.7);
+    let engine = Engine::start(&config, store.clone()).await.unwrap();
+    let app =
+        api_support::serve_state(AppState::with_engine(engine, ApiSettings::default()), dir).await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let (device_id, _) = seed_device(&store, "PM-0078").await;
+    let chain = store
+        .create_chain_calibration(
+            "certified chain",
+            "seed",
+            &[
+                ChainCalibrationPoint::new(Hz(1e9), Db(-1.5)).with_uncertainty(Db(0.05)),
+                ChainCalibrationPoint::new(Hz(5e9), Db(-2.5)).with_uncertainty(Db(0.08)),
+                ChainCalibrationPoint::new(Hz(10e9), Db(-3.5)).with_uncertainty(Db(0.06)),
+            ],
+        )
+        .await
+        .unwrap();
+    let run = seed_completed_run(
+        &store,
+        device_id,
+        chain.id,
+        &[2e9, 10e9],
+        &[0.0, 6.0],
+        v_pi_at,
+        201,
+    )
+    .await;
+
+    let response = app
+        .get(
+            &format!("/api/v1/runs/{}/v-pi-budget", run.run_id),
+            Some(&viewer),
+        )
+        .await;
+    assert_eq!(response.status(), 200);
+    let budget: serde_json::Value = response.json().await.unwrap();
+    assert_eq!(
+        budget["chain_uncertainty_from"],
+        "chain calibration certified chain v1"
+    );
+    assert_eq!(
+        budget["source_level_accuracy_from"],
+        "bench bench-a configuration"
+    );
+    assert_eq!(budget["source_level_accuracy_db"], 0.7);
+    let frequencies = budget["frequencies"].as_array().unwrap();
+    // 2 GHz lies between the 1 GHz (0.05 dB) and 5 GHz (0.08 dB) entries; 10 GHz is tabulated.
+    for (view, ((f, v_pi, u_fit), chain_u)) in
+        frequencies.iter().zip(run.results.iter().zip([0.08, 0.06]))
+    {
+        assert_eq!(view["frequency_hz"].as_f64().unwrap(), *f);
+        let rows = view["rows"].as_array().unwrap();
+        assert_eq!(rows[1]["standard_uncertainty"].as_f64().unwrap(), chain_u);
+        let per_db = v_pi * std::f64::consts::LN_10 / 20.0;
+        let combined =
+            (u_fit.powi(2) + (per_db * chain_u).powi(2) + (per_db * 0.7 / 3f64.sqrt()).powi(2))
+                .sqrt();
+        let got = view["combined_standard_uncertainty_volts"]
+            .as_f64()
+            .unwrap();
+        assert!(
+            (got - combined).abs() < 1e-12 * combined.max(1.0),
+            "{got} vs {combined}"
+        );
+    }
+
+    // A query value overrides the stored one and says so.
+    let overridden: serde_json::Value = app
+        .get(
+            &format!(
+                "/api/v1/runs/{}/v-pi-budget?source_level_accuracy_db=0.2&chain_uncertainty_db=0.01",
+                run.run_id
+            ),
+            Some(&viewer),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(overridden["chain_uncertainty_from"], "query");
+    assert_eq!(overridden["source_level_accuracy_from"], "query");
+    assert_eq!(
+        overridden["frequencies"][0]["rows"][1]["standard_uncertainty"],
+        0.01
+    );
+
+    // A chain table without uncertainties: the answer names the parameter to give.
+    let (_, bare_chain) = seed_device(&store, "PM-0079").await;
+    let bare = seed_completed_run(
+        &store,
+        device_id,
+        bare_chain,
+        &[2e9],
+        &[0.0, 6.0],
+        v_pi_at,
+        201,
+    )
+    .await;
+    let refused = app
+        .get(
+            &format!("/api/v1/runs/{}/v-pi-budget", bare.run_id),
+            Some(&viewer),
+        )
+        .await;
+    assert_eq!(refused.status(), 422);
+    let text = problem(refused).await.to_string();
+    assert!(
+        text.contains("chain_uncertainty_db") && text.contains("PM-0079 chain"),
+        "{text}"
+    );
+}

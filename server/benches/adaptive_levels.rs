@@ -25,7 +25,7 @@ use halfwave::engine::plan::{ChainSpec, FrequencySpec, LevelSpec, PlanRequest};
 use halfwave::engine::Engine;
 use halfwave::store::ChainCalibrationPoint;
 use halfwave_drivers::sim::Scenario;
-use halfwave_units::Hz;
+use halfwave_units::{Db, Hz};
 use std::time::Instant;
 
 const CHAIN: &str = "adaptive benchmark chain";
@@ -109,9 +109,11 @@ fn main() {
         let scenario = Scenario::builtin().unwrap();
         let chain: Vec<ChainCalibrationPoint> = demo_frequencies_hz()
             .into_iter()
-            .map(|f| ChainCalibrationPoint {
-                frequency_hz: f,
-                gain_db: scenario.level_error_at(Hz(f)).0 - scenario.chain_loss_at(Hz(f)).0,
+            .map(|f| {
+                ChainCalibrationPoint::new(
+                    Hz(f),
+                    Db(scenario.level_error_at(Hz(f)).0 - scenario.chain_loss_at(Hz(f)).0),
+                )
             })
             .collect();
         engine

@@ -130,6 +130,10 @@ pub struct BenchConfig {
     pub analyzer: InstrumentConfig,
     #[serde(default)]
     pub simulation: Option<SimulationConfig>,
+    /// The generator's level accuracy, +/- dB, as its data sheet states it over the bench's
+    /// frequencies (0 to 10); V_pi's uncertainty budget reads it as a rectangular distribution.
+    #[serde(default)]
+    pub source_level_accuracy_db: Option<f64>,
 }
 
 /// The whole configuration.
@@ -207,6 +211,7 @@ impl Config {
                     seed,
                     time_factor,
                 }),
+                source_level_accuracy_db: None,
             }],
             base_dir: PathBuf::from("."),
         }
@@ -286,6 +291,16 @@ impl Config {
                     if let Err(e) = halfwave_drivers::resource::Resource::parse(resource) {
                         return Err(invalid(&format!("{field}.{role}.resource"), e.to_string()));
                     }
+                }
+            }
+            if let Some(accuracy) = bench.source_level_accuracy_db {
+                if !accuracy.is_finite() || !(0.0..=10.0).contains(&accuracy) {
+                    return Err(invalid(
+                        &format!("{field}.source_level_accuracy_db"),
+                        format!(
+                            "must be the generator's level accuracy in dB, 0 to 10 (the +/- value of its data sheet), got {accuracy}"
+                        ),
+                    ));
                 }
             }
             if let Some(sim) = &bench.simulation {
@@ -384,6 +399,20 @@ mod tests {
         let err = parse("bnd = \"127.0.0.1:1\"\n").unwrap_err();
         assert!(err.to_string().contains("line 1"), "{err}");
         assert!(err.to_string().contains("bnd"), "{err}");
+    }
+
+    #[test]
+    fn a_level_accuracy_out_of_range_is_refused_by_name() {
+        let bench = "[[bench]]\nname = \"b\"\nsource = { kind = \"simulated\" }\nanalyzer = { kind = \"simulated\" }\n[bench.simulation]\n";
+        let good = parse(&format!("{bench}\n[[bench]]\nname = \"c\"\nsource_level_accuracy_db = 0.5\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n[bench.simulation]\n")).unwrap();
+        assert_eq!(good.benches[0].source_level_accuracy_db, None);
+        assert_eq!(good.benches[1].source_level_accuracy_db, Some(0.5));
+        let err = parse(&format!("[[bench]]\nname = \"b\"\nsource_level_accuracy_db = -0.5\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n[bench.simulation]\n")).unwrap_err();
+        assert!(
+            err.to_string()
+                .contains("bench[0].source_level_accuracy_db"),
+            "{err}"
+        );
     }
 
     #[test]

@@ -15,7 +15,7 @@
 //! with k = 2 (GUM 6.3; about 95 % for a near-normal result). With these sensitivities 0.1 dB of
 //! chain error is 1.15 % of V_pi.
 
-use halfwave_units::{Db, Volts};
+use halfwave_units::{Db, Hz, Volts};
 use serde::Serialize;
 
 /// Coverage factor of the expanded uncertainty (GUM 6.2.1, 6.3.3).
@@ -123,9 +123,42 @@ pub fn v_pi_budget(inputs: BudgetInputs) -> Option<VpiBudget> {
     })
 }
 
+/// The chain's standard uncertainty at `f` from a calibration table's per-frequency values
+/// (`(frequency, uncertainty)`, sorted by frequency, `None` where the table states none): the
+/// larger of the two entries that bracket `f` (an interpolated gain is no better known than
+/// either end; no credit is taken for interpolation), the end entry's beyond the table's ends,
+/// the entry's own at a tabulated frequency. `None` when an entry it needs states none.
+pub fn chain_uncertainty_at(table: &[(Hz, Option<Db>)], f: Hz) -> Option<Db> {
+    let above = table.partition_point(|(frequency, _)| frequency.0 <= f.0);
+    let below = above.checked_sub(1).map(|i| table[i]);
+    match (below, table.get(above).copied()) {
+        (Some((frequency, u)), _) if frequency.0 == f.0 => u,
+        (Some((_, lo)), Some((_, hi))) => Some(Db(lo?.0.max(hi?.0))),
+        (Some((_, only)), None) | (None, Some((_, only))) => only,
+        (None, None) => None,
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn chain_uncertainty_takes_the_larger_bracketing_entry_and_holds_at_the_ends() {
+        let table = [
+            (Hz(1e9), Some(Db(0.05))),
+            (Hz(2e9), Some(Db(0.08))),
+            (Hz(3e9), None),
+        ];
+        assert_eq!(chain_uncertainty_at(&table, Hz(1e9)), Some(Db(0.05)));
+        assert_eq!(chain_uncertainty_at(&table, Hz(1.5e9)), Some(Db(0.08)));
+        assert_eq!(chain_uncertainty_at(&table, Hz(0.5e9)), Some(Db(0.05)));
+        assert_eq!(chain_uncertainty_at(&table, Hz(2e9)), Some(Db(0.08)));
+        // An entry that states none leaves the neighbourhood unknown, never zero.
+        assert_eq!(chain_uncertainty_at(&table, Hz(2.5e9)), None);
+        assert_eq!(chain_uncertainty_at(&table, Hz(4e9)), None);
+        assert_eq!(chain_uncertainty_at(&[], Hz(1e9)), None);
+    }
 
     #[test]
     fn a_tenth_of_a_decibel_of_chain_error_is_1_15_percent_of_v_pi() {

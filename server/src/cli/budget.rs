@@ -1,8 +1,8 @@
-//! `halfwave budget RUN --chain-uncertainty-db U --source-level-accuracy-db A`: V_pi's
+//! `halfwave budget RUN [--chain-uncertainty-db U] [--source-level-accuracy-db A]`: V_pi's
 //! uncertainty budget per frequency of a run, from `GET /api/v1/runs/{id}/v-pi-budget` (the fit,
 //! the drive chain's gain and the generator's level accuracy, combined by the GUM). The two
-//! Type B inputs come from the chain's calibration certificate and the generator's data sheet:
-//! nothing stored holds them yet.
+//! Type B inputs default to the run's chain table (`gain_uncertainty_db`) and the bench's
+//! `source_level_accuracy_db`; the flags override them (from a certificate and a data sheet).
 
 use super::client::ClientArgs;
 use super::runs::{runtime, to_json};
@@ -14,12 +14,14 @@ use clap::Args;
 pub struct BudgetArgs {
     /// The run.
     pub run_id: i64,
-    /// Standard uncertainty of the drive chain's gain, dB (0 to 10).
+    /// Standard uncertainty of the drive chain's gain, dB (0 to 10); default: the run's chain
+    /// calibration's own, where its table states one.
     #[arg(long, value_name = "DB", allow_negative_numbers = true)]
-    pub chain_uncertainty_db: f64,
-    /// The generator's level accuracy, +/- dB (0 to 10), read as a rectangular distribution.
+    pub chain_uncertainty_db: Option<f64>,
+    /// The generator's level accuracy, +/- dB (0 to 10), read as a rectangular distribution;
+    /// default: the bench's `source_level_accuracy_db` in the daemon's configuration.
     #[arg(long, value_name = "DB", allow_negative_numbers = true)]
-    pub source_level_accuracy_db: f64,
+    pub source_level_accuracy_db: Option<f64>,
     #[command(flatten)]
     pub client: ClientArgs,
 }
@@ -27,8 +29,12 @@ pub struct BudgetArgs {
 /// The budgets as a table for the terminal.
 pub fn budget_text(view: &RunBudgetView) -> String {
     let mut out = format!(
-        "run {}: V_pi uncertainty budget (GUM, JCGM 100:2008; contributions in volts, expanded with k = 2)\n",
-        view.run_id
+        "run {}: V_pi uncertainty budget (GUM, JCGM 100:2008; contributions in volts, expanded with k = 2)\n\
+         chain uncertainty from {}; generator level accuracy +/- {} dB from {}\n",
+        view.run_id,
+        view.chain_uncertainty_from,
+        view.source_level_accuracy_db,
+        view.source_level_accuracy_from
     );
     for f in &view.frequencies {
         out.push_str(&format!(
@@ -64,10 +70,22 @@ pub fn budget_text(view: &RunBudgetView) -> String {
 /// `halfwave budget`.
 pub fn run(args: BudgetArgs) -> Result<(), CliError> {
     let client = args.client.client()?;
-    let path = format!(
-        "/api/v1/runs/{}/v-pi-budget?chain_uncertainty_db={}&source_level_accuracy_db={}",
-        args.run_id, args.chain_uncertainty_db, args.source_level_accuracy_db
-    );
+    let mut query = Vec::new();
+    if let Some(u) = args.chain_uncertainty_db {
+        query.push(format!("chain_uncertainty_db={u}"));
+    }
+    if let Some(a) = args.source_level_accuracy_db {
+        query.push(format!("source_level_accuracy_db={a}"));
+    }
+    let path = if query.is_empty() {
+        format!("/api/v1/runs/{}/v-pi-budget", args.run_id)
+    } else {
+        format!(
+            "/api/v1/runs/{}/v-pi-budget?{}",
+            args.run_id,
+            query.join("&")
+        )
+    };
     let view: RunBudgetView = runtime()?.block_on(client.get_json(&path))?;
     if args.client.json {
         outln!("{}", to_json(&view)?);

@@ -135,6 +135,8 @@ struct Inner {
     limits: Limits,
     events: broadcast::Sender<ProgressEvent>,
     benches: HashMap<String, Arc<BenchSlot>>,
+    /// Each bench's stated generator level accuracy (+/- dB, from the configuration), where given.
+    source_level_accuracy: HashMap<String, Db>,
     /// Cancel tokens of queued and running runs.
     cancels: std::sync::Mutex<HashMap<i64, CancellationToken>>,
     shutdown: CancellationToken,
@@ -193,7 +195,12 @@ impl Engine {
             let all: Vec<String> = failures.iter().map(ToString::to_string).collect();
             return Err(EngineError::Setup(all.join("; ")));
         }
-        Self::launch(config.limits.clone(), store, benches, start_off).await
+        let accuracy = config
+            .benches
+            .iter()
+            .filter_map(|b| Some((b.name.clone(), Db(b.source_level_accuracy_db?))))
+            .collect();
+        Self::launch(config.limits.clone(), store, benches, start_off, accuracy).await
     }
 
     /// Starts the engine on benches built by the caller (tests use this to keep a handle on
@@ -209,7 +216,7 @@ impl Engine {
             let off = bench::switch_off_at_start(name, instruments.source.as_mut()).await;
             start_off.insert(name.clone(), off);
         }
-        Self::launch(limits, store, benches, start_off).await
+        Self::launch(limits, store, benches, start_off, HashMap::new()).await
     }
 
     /// Starts the engine on benches whose sources were switched off at start-up (`start_off`
@@ -219,6 +226,7 @@ impl Engine {
         store: Store,
         benches: Vec<(String, BenchInstruments)>,
         mut start_off: HashMap<String, Result<(), String>>,
+        source_level_accuracy: HashMap<String, Db>,
     ) -> Result<Engine, EngineError> {
         let (events, _) = broadcast::channel(EVENT_BUFFER);
         let shutdown = CancellationToken::new();
@@ -269,6 +277,7 @@ impl Engine {
                 limits,
                 events,
                 benches: slots,
+                source_level_accuracy,
                 cancels: std::sync::Mutex::new(HashMap::new()),
                 shutdown,
                 workers: Mutex::new(Vec::new()),
@@ -316,6 +325,11 @@ impl Engine {
     /// A receiver of progress events from now on.
     pub fn subscribe(&self) -> broadcast::Receiver<ProgressEvent> {
         self.inner.events.subscribe()
+    }
+
+    /// The generator level accuracy (+/- dB) the configuration states for `bench`, if any.
+    pub fn source_level_accuracy(&self, bench: &str) -> Option<Db> {
+        self.inner.source_level_accuracy.get(bench).copied()
     }
 
     /// Every bench with its instruments and queue.

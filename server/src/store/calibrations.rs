@@ -67,12 +67,14 @@ impl Store {
         .map_err(StoreError::database("storing a calibration version"))?;
         for point in &points {
             sqlx::query(
-                "INSERT INTO chain_calibration_points (chain_calibration_id, frequency_hz, gain_db) \
-                 VALUES ($1, $2, $3)",
+                "INSERT INTO chain_calibration_points \
+                 (chain_calibration_id, frequency_hz, gain_db, gain_uncertainty_db) \
+                 VALUES ($1, $2, $3, $4)",
             )
             .bind(header.id)
             .bind(point.frequency_hz)
             .bind(point.gain_db)
+            .bind(point.gain_uncertainty_db)
             .execute(&mut *tx)
             .await
             .map_err(StoreError::database("storing a calibration point"))?;
@@ -195,7 +197,7 @@ impl Store {
         header: ChainCalibrationHeader,
     ) -> Result<ChainCalibration, StoreError> {
         let points = sqlx::query_as::<_, ChainCalibrationPoint>(
-            "SELECT frequency_hz, gain_db FROM chain_calibration_points \
+            "SELECT frequency_hz, gain_db, gain_uncertainty_db FROM chain_calibration_points \
              WHERE chain_calibration_id = $1 ORDER BY frequency_hz",
         )
         .bind(header.id)
@@ -308,6 +310,15 @@ fn checked_points(
     for point in points {
         StoreError::require_finite("calibration frequency", point.frequency_hz)?;
         StoreError::require_finite("calibration gain", point.gain_db)?;
+        if let Some(u) = point.gain_uncertainty_db {
+            StoreError::require_finite("calibration gain uncertainty", u)?;
+            if u < 0.0 {
+                return Err(StoreError::InvalidInput {
+                    what: "calibration gain uncertainty",
+                    reason: format!("{u} dB is negative; a standard uncertainty is at least 0"),
+                });
+            }
+        }
         if point.frequency_hz < 0.0 {
             return Err(StoreError::InvalidInput {
                 what: "calibration frequency",

@@ -174,6 +174,8 @@ impl RunInstrument {
 pub struct ChainCalibrationPoint {
     pub frequency_hz: f64,
     pub gain_db: f64,
+    /// The gain's standard uncertainty, dB, where the calibration states one.
+    pub gain_uncertainty_db: Option<f64>,
 }
 
 impl ChainCalibrationPoint {
@@ -181,6 +183,15 @@ impl ChainCalibrationPoint {
         ChainCalibrationPoint {
             frequency_hz: frequency.value(),
             gain_db: gain.value(),
+            gain_uncertainty_db: None,
+        }
+    }
+
+    /// The same point with the gain's standard uncertainty.
+    pub fn with_uncertainty(self, standard_uncertainty: Db) -> ChainCalibrationPoint {
+        ChainCalibrationPoint {
+            gain_uncertainty_db: Some(standard_uncertainty.value()),
+            ..self
         }
     }
 

@@ -1,35 +1,39 @@
 //! V_pi's uncertainty budget for a run, per frequency (GUM, JCGM 100:2008; the arithmetic is
 //! `analysis::budget`).
 //!
-//! The fit's standard uncertainty is the run's own. The chain's standard uncertainty and the
-//! generator's level accuracy are query parameters: a chain calibration stores gains without
-//! uncertainties (typed tables and Touchstone files alike), and neither the source profiles nor
-//! the bench configuration state a level accuracy, so the caller gives both from the chain's
-//! calibration certificate and the generator's data sheet.
+//! The fit's standard uncertainty is the run's own. The chain's standard uncertainty comes from
+//! the run's chain calibration where its table states one per frequency (`gain_uncertainty_db`,
+//! the larger of the two entries around the frequency: `analysis::budget::chain_uncertainty_at`),
+//! and the generator's level accuracy from the bench's `source_level_accuracy_db` in the daemon's
+//! configuration. A query parameter overrides either (for a chain table stored without
+//! uncertainties, a Touchstone cascade, or a certificate read later); where neither is known the
+//! answer is 422 naming the parameter to give. Each answer says where its inputs came from.
 
-use crate::analysis::budget::{v_pi_budget, BudgetInputs, BudgetRow, VpiBudget};
+use crate::analysis::budget::{
+    chain_uncertainty_at, v_pi_budget, BudgetInputs, BudgetRow, VpiBudget,
+};
 use crate::api::auth::Viewer;
 use crate::api::params::{ApiPath, ApiQuery};
 use crate::api::problem::{FieldProblem, Problem};
 use crate::api::AppState;
 use axum::extract::State;
 use axum::Json;
-use halfwave_units::{Db, Volts};
+use halfwave_units::{Db, Hz, Volts};
 use serde::{Deserialize, Serialize};
 use utoipa::{IntoParams, ToSchema};
 
-/// The Type B inputs the store does not hold.
+/// Type B inputs that override the stored ones.
 #[derive(Debug, Deserialize, IntoParams)]
 #[into_params(parameter_in = Query)]
 pub struct BudgetQuery {
     /// Standard uncertainty of the drive chain's gain, dB (0 to 10), e.g. from its calibration
-    /// certificate.
+    /// certificate; default: the run's chain calibration's own, where it states one.
     #[param(minimum = 0, maximum = 10)]
-    pub chain_uncertainty_db: f64,
+    pub chain_uncertainty_db: Option<f64>,
     /// The generator's level accuracy, +/- dB (0 to 10) as its data sheet states it; read as a
-    /// rectangular distribution (GUM 4.3.7).
+    /// rectangular distribution (GUM 4.3.7); default: the bench's `source_level_accuracy_db`.
     #[param(minimum = 0, maximum = 10)]
-    pub source_level_accuracy_db: f64,
+    pub source_level_accuracy_db: Option<f64>,
 }
 
 /// One line of a budget table.
@@ -63,6 +67,12 @@ pub struct FrequencyBudgetView {
 #[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
 pub struct RunBudgetView {
     pub run_id: i64,
+    /// Where the chain's uncertainty came from: `query`, or `chain calibration NAME vN`.
+    pub chain_uncertainty_from: String,
+    /// The generator level accuracy used, +/- dB.
+    pub source_level_accuracy_db: f64,
+    /// Where it came from: `query`, or `bench NAME configuration`.
+    pub source_level_accuracy_from: String,
     pub frequencies: Vec<FrequencyBudgetView>,
 }
 
@@ -96,7 +106,7 @@ pub async fn run_budget(
         ("chain_uncertainty_db", query.chain_uncertainty_db),
         ("source_level_accuracy_db", query.source_level_accuracy_db),
     ] {
-        if !(0.0..=10.0).contains(&value) {
+        if let Some(value) = value.filter(|v| !(0.0..=10.0).contains(v)) {
             errors.push(FieldProblem::new(
                 field,
                 format!("{value} dB is not between 0 and 10 dB"),
@@ -110,15 +120,76 @@ pub async fn run_budget(
         ));
     }
     let store = state.store();
-    store.run(run_id).await?;
+    let run = store.run(run_id).await?;
     let results = store.frequency_results(run_id).await?;
+
+    let (source_level_accuracy, source_level_accuracy_from) = match query
+        .source_level_accuracy_db
+    {
+        Some(value) => (Db(value), "query".to_string()),
+        None => match state
+            .engine()
+            .ok()
+            .and_then(|engine| engine.source_level_accuracy(&run.bench_name))
+        {
+            Some(value) => (value, format!("bench {} configuration", run.bench_name)),
+            None => {
+                return Err(Problem::invalid(
+                    "the generator's level accuracy is not known",
+                    vec![FieldProblem::new(
+                        "source_level_accuracy_db",
+                        format!(
+                            "bench {:?} states no source_level_accuracy_db in this daemon's configuration; give the generator's +/- level accuracy from its data sheet",
+                            run.bench_name
+                        ),
+                    )],
+                ))
+            }
+        },
+    };
+    let chain_table: Vec<(Hz, Option<Db>)> = if query.chain_uncertainty_db.is_some() {
+        Vec::new()
+    } else {
+        store
+            .chain_calibration(run.chain_calibration_id)
+            .await?
+            .points
+            .iter()
+            .map(|p| (p.frequency(), p.gain_uncertainty_db.map(Db)))
+            .collect()
+    };
+    let chain_uncertainty_from = match query.chain_uncertainty_db {
+        Some(_) => "query".to_string(),
+        None => format!(
+            "chain calibration {} v{}",
+            run.chain_name, run.chain_version
+        ),
+    };
+
     let mut frequencies = Vec::with_capacity(results.len());
     for r in results {
+        let chain_uncertainty = match query.chain_uncertainty_db {
+            Some(value) => Db(value),
+            None => chain_uncertainty_at(&chain_table, Hz(r.frequency_hz)).ok_or_else(|| {
+                Problem::invalid(
+                    "the drive chain's uncertainty is not known",
+                    vec![FieldProblem::new(
+                        "chain_uncertainty_db",
+                        format!(
+                            "chain calibration {:?} v{} states no gain uncertainty at {} GHz; give the chain's standard uncertainty in dB from its calibration certificate",
+                            run.chain_name,
+                            run.chain_version,
+                            r.frequency_hz / 1e9
+                        ),
+                    )],
+                )
+            })?,
+        };
         let budget: Option<VpiBudget> = v_pi_budget(BudgetInputs {
             v_pi: Volts(r.v_pi_volts),
             fit_uncertainty: Volts(r.v_pi_uncertainty_volts),
-            chain_uncertainty: Db(query.chain_uncertainty_db),
-            source_level_accuracy: Db(query.source_level_accuracy_db),
+            chain_uncertainty,
+            source_level_accuracy,
         });
         // A stored V_pi that is not positive has no budget; it is left out, not invented.
         if let Some(b) = budget {
@@ -135,6 +206,9 @@ pub async fn run_budget(
     }
     Ok(Json(RunBudgetView {
         run_id,
+        chain_uncertainty_from,
+        source_level_accuracy_db: source_level_accuracy.0,
+        source_level_accuracy_from,
         frequencies,
     }))
 }

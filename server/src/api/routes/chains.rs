@@ -1,8 +1,8 @@
 //! Drive-chain calibrations: the net gain from generator to modulator versus frequency, uploaded
 //! by admins as JSON or CSV, versioned by name (an upload never edits an earlier version).
 //!
-//! CSV form: a header line `frequency_hz,gain_db` and one row per frequency (a loss is a negative
-//! gain); the name is the `name` query parameter. Every bad row is reported with its line number.
+//! CSV form: a header line `frequency_hz,gain_db` (or `frequency_hz,gain_db,gain_uncertainty_db`)
+//! and one row per frequency (a loss is a negative gain); the name is the `name` query parameter. Every bad row is reported with its line number.
 //!
 //! A JSON upload may name the files the table was computed from (`sources`: each a `two_port` or
 //! the `load`, with its file name and SHA-256), as `halfwave chain import` does for Touchstone
@@ -37,6 +37,11 @@ pub struct ChainPointBody {
     /// Net gain generator -> modulator, dB (negative for a loss).
     #[schema(minimum = -100, maximum = 100)]
     pub gain_db: f64,
+    /// Standard uncertainty of the gain, dB (0 to 10), as the chain's calibration states it;
+    /// V_pi's uncertainty budget uses it. Absent where the calibration states none.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[schema(minimum = 0, maximum = 10)]
+    pub gain_uncertainty_db: Option<f64>,
 }
 
 /// The most source files one calibration may name.
@@ -131,6 +136,7 @@ impl From<ChainCalibration> for ChainView {
                 .map(|p| ChainPointBody {
                     frequency_hz: p.frequency_hz,
                     gain_db: p.gain_db,
+                    gain_uncertainty_db: p.gain_uncertainty_db,
                 })
                 .collect(),
             sources: c
@@ -187,15 +193,23 @@ fn blank_name(name: &str) -> bool {
 /// in any case); every bad line is reported.
 pub fn parse_csv(text: &str) -> Result<Vec<ChainPointBody>, Vec<FieldProblem>> {
     use crate::csv_table::{read_numeric, TableError};
-    let rows = read_numeric(text, &["frequency_hz", "gain_db"]).map_err(|e| {
+    const TWO: [&str; 2] = ["frequency_hz", "gain_db"];
+    const THREE: [&str; 3] = ["frequency_hz", "gain_db", "gain_uncertainty_db"];
+    const HEADERS: &str = "`frequency_hz,gain_db` or `frequency_hz,gain_db,gain_uncertainty_db`";
+    // The three-column header first; a two-column table is read when that header does not fit.
+    let rows = match read_numeric(text, &THREE) {
+        Err(TableError::Header { .. }) => read_numeric(text, &TWO),
+        other => other,
+    }
+    .map_err(|e| {
         vec![match e {
             TableError::Empty => FieldProblem::new(
                 "body",
-                "empty CSV; send a header `frequency_hz,gain_db` and one row per frequency",
+                format!("empty CSV; send a header {HEADERS} and one row per frequency"),
             ),
             TableError::Header { line, found } => FieldProblem::new(
                 format!("body.line[{line}]"),
-                format!("header is {found:?}; it must be `frequency_hz,gain_db`"),
+                format!("header is {found:?}; it must be {HEADERS}"),
             ),
             TableError::Malformed { line, detail } => {
                 FieldProblem::new(format!("body.line[{line}]"), format!("not CSV: {detail}"))
@@ -209,11 +223,20 @@ pub fn parse_csv(text: &str) -> Result<Vec<ChainPointBody>, Vec<FieldProblem>> {
             Ok([frequency_hz, gain_db]) => points.push(ChainPointBody {
                 frequency_hz: *frequency_hz,
                 gain_db: *gain_db,
+                gain_uncertainty_db: None,
             }),
-            _ => errors.push(FieldProblem::new(
-                format!("body.line[{}]", row.line),
-                format!("{:?} is not two numbers `frequency_hz,gain_db`", row.text),
-            )),
+            Ok([frequency_hz, gain_db, uncertainty_db]) => points.push(ChainPointBody {
+                frequency_hz: *frequency_hz,
+                gain_db: *gain_db,
+                gain_uncertainty_db: Some(*uncertainty_db),
+            }),
+            Ok(_) => bad_row(
+                &mut errors,
+                &row.line,
+                &row.text,
+                "a wrong number of values",
+            ),
+            Err(detail) => bad_row(&mut errors, &row.line, &row.text, detail),
         }
     }
     if errors.is_empty() {
@@ -221,6 +244,14 @@ pub fn parse_csv(text: &str) -> Result<Vec<ChainPointBody>, Vec<FieldProblem>> {
     } else {
         Err(errors)
     }
+}
+
+/// Records a row that does not hold the header's numbers.
+fn bad_row(errors: &mut Vec<FieldProblem>, line: &usize, text: &str, detail: &str) {
+    errors.push(FieldProblem::new(
+        format!("body.line[{line}]"),
+        format!("{text:?} is not the header's numbers: {detail}"),
+    ));
 }
 
 /// Checks every point; all problems at once.
@@ -251,6 +282,15 @@ fn check_points(points: &[ChainPointBody]) -> Vec<FieldProblem> {
                     "{} dB is not a plausible chain gain (-100 to 100 dB)",
                     p.gain_db
                 ),
+            ));
+        }
+        if let Some(u) = p
+            .gain_uncertainty_db
+            .filter(|u| !u.is_finite() || !(0.0..=10.0).contains(u))
+        {
+            errors.push(FieldProblem::new(
+                format!("points[{i}].gain_uncertainty_db"),
+                format!("{u} dB is not a standard uncertainty of a chain gain (0 to 10 dB)"),
             ));
         }
     }
@@ -356,6 +396,7 @@ pub async fn upload_chain(
         .map(|p| ChainCalibrationPoint {
             frequency_hz: p.frequency_hz,
             gain_db: p.gain_db,
+            gain_uncertainty_db: p.gain_uncertainty_db,
         })
         .collect();
     let stored_sources: Vec<ChainCalibrationSource> = sources
@@ -432,6 +473,16 @@ mod tests {
         let fields: Vec<&str> = errors.iter().map(|e| e.field.as_str()).collect();
         assert_eq!(fields, ["body.line[3]", "body.line[4]"]);
         assert!(parse_csv("f,g\n1,2").is_err());
+
+        // The optional third column: each row's standard uncertainty of the gain.
+        let with_u =
+            parse_csv("frequency_hz,gain_db,gain_uncertainty_db\n1e9,-1.5,0.05\n2e9,-2,0.07\n")
+                .unwrap();
+        assert_eq!(with_u[0].gain_uncertainty_db, Some(0.05));
+        assert_eq!(with_u[1].gain_uncertainty_db, Some(0.07));
+        assert_eq!(good[0].gain_uncertainty_db, None);
+        let short = parse_csv("frequency_hz,gain_db,gain_uncertainty_db\n1e9,-1.5\n").unwrap_err();
+        assert_eq!(short[0].field, "body.line[2]");
     }
 
     #[test]
@@ -440,14 +491,28 @@ mod tests {
             ChainPointBody {
                 frequency_hz: -1.0,
                 gain_db: 0.0,
+                gain_uncertainty_db: None,
             },
             ChainPointBody {
                 frequency_hz: 1e9,
                 gain_db: 400.0,
+                gain_uncertainty_db: Some(0.1),
+            },
+            ChainPointBody {
+                frequency_hz: 2e9,
+                gain_db: -3.0,
+                gain_uncertainty_db: Some(-0.1),
             },
         ]);
         let fields: Vec<&str> = errors.iter().map(|e| e.field.as_str()).collect();
-        assert_eq!(fields, ["points[0].frequency_hz", "points[1].gain_db"]);
+        assert_eq!(
+            fields,
+            [
+                "points[0].frequency_hz",
+                "points[1].gain_db",
+                "points[2].gain_uncertainty_db"
+            ]
+        );
     }
 
     #[test]
