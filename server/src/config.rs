@@ -407,7 +407,7 @@ mod tests {
         let good = parse(&format!("{bench}\n[[bench]]\nname = \"c\"\nsource_level_accuracy_db = 0.5\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n[bench.simulation]\n")).unwrap();
         assert_eq!(good.benches[0].source_level_accuracy_db, None);
         assert_eq!(good.benches[1].source_level_accuracy_db, Some(0.5));
-        let err = parse(&format!("[[bench]]\nname = \"b\"\nsource_level_accuracy_db = -0.5\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n[bench.simulation]\n")).unwrap_err();
+        let err = parse("[[bench]]\nname = \"b\"\nsource_level_accuracy_db = -0.5\nsource = { kind = \"simulated\" }\nanalyzer = { kind = \"simulated\" }\n[bench.simulation]\n").unwrap_err();
         assert!(
             err.to_string()
                 .contains("bench[0].source_level_accuracy_db"),
