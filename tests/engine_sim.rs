@@ -129,6 +129,67 @@ async fn plan_over_the_limit_is_refused_before_any_command() {
     engine.shutdown().await;
 }
 
+/// A chain computed from measurement files (Touchstone) is known only over the band it was
+/// measured: a plan frequency outside it is refused by name, before any command; the same plan
+/// inside the band is accepted. A typed table keeps its documented hold-constant ends.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_measured_chain_is_not_extrapolated_beyond_its_band() {
+    use halfwave::engine::plan::FrequencySpec;
+    use halfwave::store::{ChainCalibrationPoint, ChainCalibrationSource};
+    use halfwave::units::{Db, Hz};
+
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let sim = SimBench::new(Scenario::builtin().unwrap(), 5).with_time_factor(0.0);
+    store
+        .create_chain_calibration_with_sources(
+            "cascaded",
+            "test",
+            &[
+                ChainCalibrationPoint::new(Hz(1e9), Db(-2.0)),
+                ChainCalibrationPoint::new(Hz(12e9), Db(-4.0)),
+            ],
+            &[ChainCalibrationSource {
+                role: "two_port".into(),
+                file_name: "cable.s2p".into(),
+                sha256: "ab".repeat(32),
+            }],
+        )
+        .await
+        .unwrap();
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
+    sim.clear_command_log(Role::RfSource);
+
+    let mut outside = plan("cascaded");
+    outside.frequencies = FrequencySpec::List {
+        values_hz: vec![0.5e9, 2e9, 20e9],
+    };
+    let err = engine
+        .submit(outside, "test")
+        .await
+        .unwrap_err()
+        .to_string();
+    assert!(
+        err.contains("frequencies")
+            && err.contains("0.5 GHz, 20 GHz")
+            && err.contains("1 to 12 GHz"),
+        "{err}"
+    );
+    assert!(sim.command_log(Role::RfSource).is_empty());
+
+    let mut inside = plan("cascaded");
+    inside.frequencies = FrequencySpec::List {
+        values_hz: vec![1e9, 2e9, 12e9],
+    };
+    engine
+        .check_plan(&inside)
+        .await
+        .expect("inside the measured band");
+    engine.shutdown().await;
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn cancel_leaves_the_output_off_within_a_second() {
     let dir = tempfile::tempdir().unwrap();

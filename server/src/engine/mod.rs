@@ -403,6 +403,28 @@ impl Engine {
             chain: chain.as_ref().map(|(c, _)| c),
         };
         let validated = request.validate(&ctx);
+        if let (Ok(plan), Some((_, choice))) = (&validated, &chain) {
+            if let Some((name, low, high)) = self.measured_chain_band(choice).await? {
+                let outside: Vec<String> = plan
+                    .steps()
+                    .iter()
+                    .map(|step| step.frequency)
+                    .filter(|f| f.0 < low.0 || f.0 > high.0)
+                    .map(|f| format!("{} GHz", f.0 / 1e9))
+                    .collect();
+                if !outside.is_empty() {
+                    errors.push(FieldError {
+                        field: "frequencies".into(),
+                        message: format!(
+                            "{} lie outside {} to {} GHz, the band chain calibration {name} was measured over (from its files); the chain's gain there would be extrapolated: measure the chain over these frequencies or plan inside the band",
+                            outside.join(", "),
+                            low.0 / 1e9,
+                            high.0 / 1e9
+                        ),
+                    });
+                }
+            }
+        }
         let chain_named = errors.iter().any(|e| e.field == "chain");
         match (validated, chain) {
             (Ok(plan), Some((chain, choice))) if errors.is_empty() => Ok((plan, chain, choice)),
@@ -615,6 +637,32 @@ impl Engine {
         };
         let chain = drive_chain(&calibration).map_err(|e| invalid(e.to_string()))?;
         Ok((chain, ChainChoice::Stored(calibration.id)))
+    }
+
+    /// The band a stored chain calibration was measured over, when it was computed from
+    /// measurement files (Touchstone): a plan frequency outside it would be an extrapolation of
+    /// a measurement, which is refused. A typed table is held constant beyond its ends, as
+    /// documented, and a flat loss applies everywhere: `None` for both.
+    async fn measured_chain_band(
+        &self,
+        choice: &ChainChoice,
+    ) -> Result<Option<(String, Hz, Hz)>, SubmitError> {
+        let ChainChoice::Stored(id) = choice else {
+            return Ok(None);
+        };
+        let calibration = self.inner.store.chain_calibration(*id).await?;
+        if calibration.sources.is_empty() {
+            return Ok(None);
+        }
+        let (Some(first), Some(last)) = (calibration.points.first(), calibration.points.last())
+        else {
+            return Ok(None);
+        };
+        Ok(Some((
+            format!("{:?} v{}", calibration.name, calibration.version),
+            first.frequency(),
+            last.frequency(),
+        )))
     }
 
     fn is_queued_or_active(&self, run_id: i64) -> bool {
