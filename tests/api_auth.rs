@@ -542,3 +542,19 @@ async fn every_reference_in_the_document_resolves() {
         component(&document, name);
     }
 }
+
+#[tokio::test]
+async fn every_problem_carries_the_request_id_of_its_header() {
+    let app = spawn_app().await;
+    let response = app.get("/api/v1/runs", None).await;
+    assert_eq!(response.status(), 401);
+    let id = response.headers()["x-request-id"]
+        .to_str()
+        .unwrap()
+        .to_string();
+    let problem: serde_json::Value = response.json().await.unwrap();
+    assert_eq!(problem["request_id"], id.as_str());
+    // A successful answer carries the header too.
+    let health = app.get("/api/v1/health", None).await;
+    assert!(health.headers().contains_key("x-request-id"));
+}

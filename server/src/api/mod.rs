@@ -23,6 +23,7 @@ pub mod params;
 pub mod plots;
 pub mod problem;
 pub mod read_cache;
+pub mod request_id;
 pub mod routes;
 pub mod run_gauges;
 pub mod store_problems;
@@ -192,7 +193,8 @@ pub fn router(state: AppState) -> Router {
         ))
         .fallback(routes::unknown_route)
         .layer(TraceLayer::new_for_http())
-        .layer(axum::middleware::from_fn(problem::problems_for_bare_errors));
+        .layer(axum::middleware::from_fn(problem::problems_for_bare_errors))
+        .layer(axum::middleware::from_fn(request_id::assign));
     let app = match routes::cors_layer(state.settings()) {
         Some(cors) => app.layer(cors),
         None => app,

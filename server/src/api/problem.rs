@@ -35,7 +35,9 @@ impl FieldProblem {
     }
 }
 
-/// A problem-details document (RFC 9457).
+/// A problem-details document (RFC 9457). As sent, every problem also carries the extension
+/// member `request_id` (the `X-Request-Id` header's value), added by `api::request_id` on the
+/// way out; the daemon's log lines of the request carry the same id.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, ToSchema)]
 pub struct Problem {
     /// A URI reference naming the kind of problem (relative, under `/problems/`).
@@ -120,7 +122,8 @@ impl Problem {
         )
     }
 
-    /// 500: something failed inside the daemon; the detail says what, the log has more.
+    /// 500: something failed inside the daemon; the detail says what for the log (the client
+    /// gets the request id instead: `api::request_id`).
     pub fn internal(detail: impl Into<String>) -> Self {
         Problem::new(
             StatusCode::INTERNAL_SERVER_ERROR,
