@@ -366,7 +366,7 @@ impl LineShape {
     }
 
     /// K at offset `x` (Hz) and its derivatives.
-    #[inline]
+    #[inline(always)]
     fn eval(&self, x: f64) -> ShapeValue {
         match self.kind {
             ShapeKind::PseudoVoigt => {
@@ -645,6 +645,17 @@ struct Workspace {
     ranges: Vec<(usize, usize)>,
     /// (first, last) node slot of each line (inclusive), per order slot.
     node_ranges: Vec<(usize, usize)>,
+    /// Runs of node slots (first, last, inclusive) on which each line is summed: the line's
+    /// node range less the nodes where it is negligible against the other lines there (see
+    /// [`limit_reach`]); line slot `s` owns `line_runs[line_run_start[s]..line_run_start[s + 1]]`.
+    line_runs: Vec<(usize, usize)>,
+    line_run_start: Vec<usize>,
+    /// Per order slot: the largest amplitude P0 w_n the line may take while beta moves by 10 %.
+    bound_amplitude: Vec<f64>,
+    /// Scratch for [`limit_reach`]: per node the lines' sum and count, per (line, node) pair K.
+    local_total: Vec<f64>,
+    local_count: Vec<u32>,
+    pair_shape: Vec<f64>,
     /// Merged intervals of points under the lines.
     intervals: Vec<(usize, usize)>,
     cover: Vec<i32>,
@@ -656,6 +667,9 @@ struct Workspace {
     /// Model level (dB) and its gradient at each node.
     node_level: Vec<f64>,
     node_gradient: Vec<[f64; NP]>,
+    /// Per node, summed over its segments: sum_k G_jk D_k (see [`assemble`]) and (G M - h)_j.
+    node_e: Vec<[f64; NP]>,
+    node_r: Vec<f64>,
     /// Point index of every line centre within the span, ascending.
     centres: Vec<usize>,
     /// Points under the lines.
@@ -771,36 +785,39 @@ fn evaluate(
     }
     let nmax = prob.max_order;
     for n in -nmax..=nmax {
-        let (lo, hi) = ws.node_ranges[(n + nmax) as usize];
-        if hi < lo {
+        let slot = (n + nmax) as usize;
+        let runs = &ws.line_runs[ws.line_run_start[slot]..ws.line_run_start[slot + 1]];
+        if runs.is_empty() {
             continue;
         }
         let (w, dw_beta, dw_a) = line_weight(table, n, beta, a);
         let centre = fc + n as f64 * prob.spacing;
         let [s0, s1, s2, s3, s4, s5, s6] = &mut ws.s;
-        if jacobian && shape.kind == ShapeKind::Measured {
-            // A measured shape has no parameters: its three slopes are zero.
-            for k in lo..=hi {
-                let (v, dv) = shape.measured_value(ws.node_freq[k] - centre);
-                s0[k] += w * v;
-                s1[k] += dw_beta * v;
-                s2[k] += w * dv;
-                s3[k] += dw_a * v;
-            }
-        } else if jacobian {
-            for k in lo..=hi {
-                let v = shape.eval(ws.node_freq[k] - centre);
-                s0[k] += w * v.k;
-                s1[k] += dw_beta * v.k;
-                s2[k] += w * v.dx;
-                s3[k] += dw_a * v.k;
-                s4[k] += w * v.dw;
-                s5[k] += w * v.de;
-                s6[k] += w * v.dl;
-            }
-        } else {
-            for k in lo..=hi {
-                s0[k] += w * shape.eval(ws.node_freq[k] - centre).k;
+        for &(lo, hi) in runs {
+            if jacobian && shape.kind == ShapeKind::Measured {
+                // A measured shape has no parameters: its three slopes are zero.
+                for k in lo..=hi {
+                    let (v, dv) = shape.measured_value(ws.node_freq[k] - centre);
+                    s0[k] += w * v;
+                    s1[k] += dw_beta * v;
+                    s2[k] += w * dv;
+                    s3[k] += dw_a * v;
+                }
+            } else if jacobian {
+                for k in lo..=hi {
+                    let v = shape.eval(ws.node_freq[k] - centre);
+                    s0[k] += w * v.k;
+                    s1[k] += dw_beta * v.k;
+                    s2[k] += w * v.dx;
+                    s3[k] += dw_a * v.k;
+                    s4[k] += w * v.dw;
+                    s5[k] += w * v.de;
+                    s6[k] += w * v.dl;
+                }
+            } else {
+                for k in lo..=hi {
+                    s0[k] += w * shape.eval(ws.node_freq[k] - centre).k;
+                }
             }
         }
     }
@@ -858,7 +875,10 @@ fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -
         jtr: [0.0; NP],
         points: ws.points_under,
     };
-    let active = prob.active;
+    if jacobian {
+        ws.node_e[..node_count].fill([0.0; NP]);
+        ws.node_r[..node_count].fill(0.0);
+    }
     for seg in &ws.segments {
         let count = seg.count as usize;
         let mut levels = [0.0; 3];
@@ -882,9 +902,11 @@ fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -
         if !jacobian {
             continue;
         }
+        // The segment's J^T J is D^T G D and its J^T r is D^T (G M - h) (D the gradients at its
+        // nodes): node j collects E_j = sum_k G_jk D_k and (G M - h)_j, so that both are summed
+        // over nodes below (a node shared by two segments once).
         for j in 0..count {
-            let dj = &ws.node_gradient[seg.slots[j] as usize];
-            // E_j = sum_k G_jk D_k; J^T J gains D_j E_j^T summed over j.
+            let sj = seg.slots[j] as usize;
             let mut ej = [0.0; NP];
             for k in 0..count {
                 let g = seg.g(j, k);
@@ -893,16 +915,32 @@ fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -
                     ej[q] += g * dk[q];
                 }
             }
-            for row in 0..NP {
-                let v = dj[row];
-                if v == 0.0 || !active[row] {
-                    continue;
-                }
-                e.jtr[row] += v * weighted[j];
-                for col in row..NP {
-                    e.jtj[row][col] += v * ej[col];
+            let acc = &mut ws.node_e[sj];
+            for q in 0..NP {
+                acc[q] += ej[q];
+            }
+            ws.node_r[sj] += weighted[j];
+        }
+    }
+    if jacobian {
+        // J^T J = sum_k D_k E_k^T and J^T r = sum_k D_k (G M - h)_k, one row at a time (its sums
+        // stay in registers; the gradients of parameters not free are zero).
+        for row in 0..NP {
+            if !prob.active[row] {
+                continue;
+            }
+            let mut acc = [0.0; NP];
+            let mut jr = 0.0;
+            for k in 0..node_count {
+                let v = ws.node_gradient[k][row];
+                jr += v * ws.node_r[k];
+                let ek = &ws.node_e[k];
+                for col in 0..NP {
+                    acc[col] += v * ek[col];
                 }
             }
+            e.jtr[row] = jr;
+            e.jtj[row] = acc;
         }
     }
     // The floor block: r_i = L_F - y_i with L_F = c ln F.
@@ -1100,6 +1138,7 @@ fn set_windows(prob: &mut Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Wo
     let floor = p[LN_FLOOR].exp();
     let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
     ws.ranges.clear();
+    ws.bound_amplitude.clear();
     ws.cover.clear();
     ws.cover.resize(n_points + 1, 0);
     ws.centres.clear();
@@ -1113,6 +1152,7 @@ fn set_windows(prob: &mut Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Wo
             let (jp, _) = table.value_and_slope(n + 1, beta * f);
             bound = bound.max((j.abs() + 0.5 * p[ASYM].abs() * (jm.abs() + jp.abs())).powi(2));
         }
+        ws.bound_amplitude.push(p0 * bound);
         let ratio = CONTRIBUTION_FLOOR * floor / (p0 * bound).max(1e-300);
         let (left, right) = shape.reach(ratio);
         let centre = fc + n as f64 * prob.spacing;
@@ -1166,6 +1206,8 @@ fn set_windows(prob: &mut Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Wo
     ws.node_freq.extend(ws.nodes.iter().map(|&i| prob.freq[i]));
     ws.node_level.resize(node_count, 0.0);
     ws.node_gradient.resize(node_count, [0.0; NP]);
+    ws.node_e.resize(node_count, [0.0; NP]);
+    ws.node_r.resize(node_count, 0.0);
     ws.node_ranges.clear();
     for &(lo, hi) in &ws.ranges {
         if hi < lo {
@@ -1180,6 +1222,88 @@ fn set_windows(prob: &mut Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Wo
             (1, 0)
         });
     }
+    limit_reach(prob, shape, p, ws);
+}
+
+/// Share of the lines' level at a node that the lines left out of the sum there may carry
+/// together (4e-4 dB at most, under half the segments' [`SEGMENT_TOLERANCE_DB`]).
+const LOCAL_SHARE_DROPPED: f64 = 1e-4;
+
+/// Sets the runs of nodes on which each line is summed ([`Workspace::line_runs`]): within its
+/// node range (where it reaches a thousandth of the floor), a line is left out at a node where,
+/// even with the largest weight it may take while beta moves by 10 %, it is under
+/// [`LOCAL_SHARE_DROPPED`] of the lines' sum there divided by the number of lines reaching the
+/// node, so that the lines left out carry under that share together. The local level is the
+/// lines' sum without the floor (a floor read high at the start would otherwise drop more).
+/// Near a strong line's centre its neighbours' far wings then drop out, which on a trace whose
+/// lines' wings reach every point (a laser's Lorentzian line) leaves a few lines per node
+/// instead of all. With tolerance 0 (the exact sum) every line keeps its whole node range.
+fn limit_reach(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Workspace) {
+    let node_count = ws.nodes.len();
+    ws.line_runs.clear();
+    ws.line_run_start.clear();
+    if prob.segment_tolerance_db <= 0.0 {
+        for &(lo, hi) in &ws.node_ranges {
+            ws.line_run_start.push(ws.line_runs.len());
+            if hi >= lo {
+                ws.line_runs.push((lo, hi));
+            }
+        }
+        ws.line_run_start.push(ws.line_runs.len());
+        return;
+    }
+    let table = BesselTable::get();
+    let nmax = prob.max_order;
+    let p0 = p[LN_P0].exp();
+    let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
+    ws.local_total.clear();
+    ws.local_total.resize(node_count, 0.0);
+    ws.local_count.clear();
+    ws.local_count.resize(node_count, 0);
+    ws.pair_shape.clear();
+    for n in -nmax..=nmax {
+        let (lo, hi) = ws.node_ranges[(n + nmax) as usize];
+        if hi < lo {
+            continue;
+        }
+        let amplitude = p0 * line_weight(table, n, p[BETA], p[ASYM]).0;
+        let centre = fc + n as f64 * prob.spacing;
+        for k in lo..=hi {
+            let v = shape.eval(ws.node_freq[k] - centre).k;
+            ws.pair_shape.push(v);
+            ws.local_total[k] += amplitude * v;
+            ws.local_count[k] += 1;
+        }
+    }
+    // The threshold per node, in place of the sum.
+    for k in 0..node_count {
+        ws.local_total[k] *= LOCAL_SHARE_DROPPED / f64::from(ws.local_count[k].max(1));
+    }
+    let mut pair = 0;
+    for (slot, &(lo, hi)) in ws.node_ranges.iter().enumerate() {
+        ws.line_run_start.push(ws.line_runs.len());
+        if hi < lo {
+            continue;
+        }
+        let bound = ws.bound_amplitude[slot];
+        let mut run: Option<usize> = None;
+        for k in lo..=hi {
+            let keep = bound * ws.pair_shape[pair] >= ws.local_total[k];
+            pair += 1;
+            match (keep, run) {
+                (true, None) => run = Some(k),
+                (false, Some(first)) => {
+                    ws.line_runs.push((first, k - 1));
+                    run = None;
+                }
+                _ => {}
+            }
+        }
+        if let Some(first) = run {
+            ws.line_runs.push((first, hi));
+        }
+    }
+    ws.line_run_start.push(ws.line_runs.len());
 }
 
 /// Cuts the intervals under the lines into segments: each as long as the model at `p` stays
