@@ -384,6 +384,7 @@ async fn views_follow_runs_that_start_and_complete_after_being_read() {
             bench_name: "bench-a".into(),
             chain_calibration_id: chain_id,
             submitted_by: "seed".into(),
+            provenance: Default::default(),
         })
         .await
         .unwrap();
@@ -814,4 +815,154 @@ async fn the_budget_reads_the_chain_tables_uncertainty_and_the_benchs_stated_lev
         text.contains("chain_uncertainty_db") && text.contains("PM-0079 chain"),
         "{text}"
     );
+}
+
+/// Markup that must never reach a report unescaped: an element, an attribute breaking out of its
+/// quotes, an entity and an apostrophe.
+const HOSTILE: &str = "<script>alert(\"x\")</script><img src=x onerror='y'>&amp;";
+
+#[tokio::test]
+async fn the_calibration_report_is_one_escaped_self_contained_html_record_of_the_run() {
+    use api_support::seed::seed_recorded_run;
+    let app = spawn_app().await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    app.token("lab-a-operator", Role::Operator).await;
+    let token_id = halfwave::api::tokens::list(&app.pool)
+        .await
+        .unwrap()
+        .iter()
+        .find(|t| t.name == "lab-a-operator")
+        .expect("the token is listed with its id")
+        .id;
+    let seeded = seed_recorded_run(app.store(), HOSTILE, token_id).await;
+
+    // The JSON view carries the same record.
+    let view: serde_json::Value = app
+        .get(&format!("/api/v1/runs/{}", seeded.run_id), Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    let provenance = &view["provenance"];
+    assert_eq!(
+        provenance["analysis_method"],
+        halfwave::analysis::ANALYSIS_METHOD
+    );
+    assert_eq!(
+        provenance["software_version"],
+        "halfwave 0.1.0 (git 0123456789ab)"
+    );
+    assert_eq!(provenance["submitted_by_token_id"], token_id);
+    assert_eq!(provenance["hard_limit_at_modulator_dbm"], 24.0);
+    assert_eq!(provenance["planned_max_at_modulator_dbm"], 10.5);
+
+    let response = app
+        .get(
+            &format!("/api/v1/runs/{}/report.html", seeded.run_id),
+            Some(&viewer),
+        )
+        .await;
+    assert_eq!(response.status(), 200);
+    let content_type = response.headers()["content-type"]
+        .to_str()
+        .unwrap()
+        .to_string();
+    assert!(content_type.starts_with("text/html"), "{content_type}");
+    let html = response.text().await.unwrap();
+    assert!(html.starts_with("<!DOCTYPE html>"), "{}", &html[..80]);
+
+    // Every V_pi and its uncertainty, as stored, in the table (four decimals of volts).
+    for (f, v_pi, u) in &seeded.results {
+        let row = format!(
+            "<td class=\"num\">{:.6}</td><td class=\"num\">{v_pi:.4}</td><td class=\"num\">{u:.4}</td>",
+            f / 1e9
+        );
+        assert!(html.contains(&row), "no row {row}");
+    }
+    // The instruments' *IDN? parts, the method and software versions, the operator and the
+    // limits in force.
+    for identity in &seeded.identities {
+        for part in [&identity.manufacturer, &identity.model, &identity.serial] {
+            assert!(html.contains(part.as_str()), "{part} missing");
+        }
+    }
+    assert!(html.contains("5.0.3"), "analyzer firmware missing");
+    assert!(html.contains(halfwave::analysis::ANALYSIS_METHOD));
+    assert!(html.contains("halfwave 0.1.0 (git 0123456789ab)"));
+    assert!(html.contains(&format!("lab-a-operator (API token id {token_id})")));
+    for limit in ["27.00 dBm", "24.00 dBm", "10.50 dBm"] {
+        assert!(html.contains(limit), "limit {limit} missing");
+    }
+    assert!(html.contains("local codes or licensed practice"));
+    // The -3 dB and -6 dB points are those of the response curve of the stored values (the
+    // plumbing check: the report shows what the analysis computes, on the same points).
+    let curve = halfwave::analysis::response_curve(
+        &seeded
+            .results
+            .iter()
+            .map(|&(f, v, u)| halfwave::analysis::VpiAtFrequency {
+                frequency: halfwave::units::Hz(f),
+                v_pi: halfwave::units::Volts(v),
+                uncertainty: halfwave::units::Volts(u),
+            })
+            .collect::<Vec<_>>(),
+    )
+    .unwrap();
+    // 20 log10(3.1234 / 6.4321) = -6.27 dB at 9 GHz: both points are reached.
+    for (label, f) in [("-3 dB", curve.f_3db_hz), ("-6 dB", curve.f_6db_hz)] {
+        let text = format!(
+            "<dt>{label} response</dt><dd>{:.3} GHz</dd>",
+            f.expect("reached").0 / 1e9
+        );
+        assert!(html.contains(&text), "no {text}");
+    }
+    // The excluded point with its reason, escaped.
+    assert!(html.contains("off the line by 5 sigma &lt;script&gt;"));
+
+    // Escaping: the hostile text appears only escaped, wherever it was stored (serial, note,
+    // firmware, connection notes, reason), and the document has no script and loads nothing.
+    let escaped = "&lt;script&gt;alert(&quot;x&quot;)&lt;/script&gt;&lt;img src=x onerror=&#39;y&#39;&gt;&amp;amp;";
+    assert!(!html.contains(HOSTILE));
+    assert!(!html.contains("<script") && !html.contains("<img"));
+    assert_eq!(
+        html.matches(escaped).count(),
+        9,
+        "the serial in the title, heading and device list, the chain's name, the note, the \
+         firmware, two connection notes and the reason: {html}"
+    );
+    for external in ["<link", "src=\"", "href=", "url(", "@import"] {
+        assert!(!html.contains(external), "{external} in the report");
+    }
+    // Two inline SVG plots, each well-formed XML with one marker per V_pi.
+    let svgs: Vec<&str> = html
+        .split("<svg")
+        .skip(1)
+        .map(|rest| rest.split("</svg>").next().unwrap())
+        .collect();
+    assert_eq!(svgs.len(), 2);
+    for body in svgs {
+        let svg = format!("<svg{body}</svg>");
+        let document = roxmltree::Document::parse(&svg).expect("well-formed SVG");
+        let circles = document
+            .descendants()
+            .filter(|n| n.has_tag_name("circle"))
+            .count();
+        assert_eq!(circles, seeded.results.len());
+    }
+
+    // Viewer role and a run that exists.
+    assert_eq!(
+        app.get(&format!("/api/v1/runs/{}/report.html", seeded.run_id), None)
+            .await
+            .status(),
+        401
+    );
+    let missing = app
+        .get("/api/v1/runs/9999/report.html", Some(&viewer))
+        .await;
+    assert_eq!(missing.status(), 404);
+    assert!(problem(missing).await["detail"]
+        .as_str()
+        .unwrap_or_default()
+        .contains("9999"));
 }

@@ -64,7 +64,7 @@ const SIMULATED_CONFIG: &str = "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"si
 
 #[test]
 fn every_subcommand_has_help() {
-    let subcommands: [(&[&str], &str); 27] = [
+    let subcommands: [(&[&str], &str); 28] = [
         (&["demo"], "--data-dir"),
         (&["serve"], "--config"),
         (&["sim"], "--scenario"),
@@ -92,6 +92,7 @@ fn every_subcommand_has_help() {
         (&["chain", "import"], "HALFWAVE_TOKEN"),
         (&["chain", "list"], "--json"),
         (&["budget"], "--source-level-accuracy-db"),
+        (&["report"], "--output"),
     ];
     for (words, expected) in subcommands {
         let mut args = words.to_vec();
@@ -371,6 +372,29 @@ async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
             stdout(&shown)
         );
     }
+    // show gives the rest of the record: operator with the token's id, software, method, limits.
+    let token_id = halfwave::api::tokens::list(&app.pool)
+        .await
+        .unwrap()
+        .iter()
+        .find(|t| t.name == "lab-b")
+        .unwrap()
+        .id;
+    for line in [
+        format!("operator: lab-b (token id {token_id})"),
+        format!("software: halfwave {}", env!("CARGO_PKG_VERSION")),
+        format!("method:   {}", halfwave::analysis::ANALYSIS_METHOD),
+        "chain:    sim chain version 1".to_string(),
+        "limits:   device RF input 27.00 dBm, daemon ceiling".to_string(),
+    ] {
+        assert!(
+            stdout(&shown).lines().any(|l| l.starts_with(&line)),
+            "{line:?} not in {}",
+            stdout(&shown)
+        );
+    }
+    the_report_command(&finished, &with, dir.path()).await;
+
     let listed = run(with(&[
         "runs",
         "--device",
@@ -469,6 +493,50 @@ async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
     let second = queued["run_id"].as_i64().unwrap().to_string();
 
     the_record_verbs(&bench, &client, dir.path(), run_id, &csv_path, &second).await;
+}
+
+/// `halfwave report RUN --output FILE.html` on the completed run `finished` (its JSON view):
+/// the file holds its V_pi values, the instruments that measured it and the method version; an
+/// existing file is kept without --force; --json is refused with the command that gives JSON.
+async fn the_report_command(
+    finished: &serde_json::Value,
+    with: &dyn Fn(&[&str]) -> Vec<String>,
+    dir: &Path,
+) {
+    let id = finished["id"].as_i64().unwrap().to_string();
+    let path = dir.join("report.html");
+    let file = path.to_str().unwrap();
+    let run = |args: Vec<String>| async move {
+        let refs: Vec<&str> = args.iter().map(String::as_str).collect();
+        halfwave_async(&refs).await
+    };
+    let written = run(with(&["report", &id, "--output", file])).await;
+    assert!(written.status.success(), "{}", stderr(&written));
+    assert!(stderr(&written).contains(file), "{}", stderr(&written));
+    let html = std::fs::read_to_string(&path).unwrap();
+    assert!(html.starts_with("<!DOCTYPE html>"));
+    for result in finished["results"].as_array().unwrap() {
+        let v_pi = format!("{:.4}", result["v_pi_volts"].as_f64().unwrap());
+        assert!(html.contains(&v_pi), "V_pi {v_pi} missing");
+    }
+    let scenario = halfwave_drivers::sim::Scenario::builtin().unwrap();
+    for part in [
+        &scenario.rf_source.serial,
+        &scenario.rf_source.firmware,
+        &scenario.analyzer.serial,
+        &scenario.analyzer.model,
+    ] {
+        assert!(html.contains(part.as_str()), "{part} missing");
+    }
+    assert!(html.contains(halfwave::analysis::ANALYSIS_METHOD));
+    assert!(html.contains("lab-b"));
+    // Not replaced without --force; --json does not apply.
+    let again = run(with(&["report", &id, "--output", file])).await;
+    failed_with(&again, &["already exists", "--force"]);
+    let json = run(with(&["report", &id, "--json"])).await;
+    failed_with(&json, &["HTML", &format!("halfwave show {id} --json")]);
+    let missing = run(with(&["report", "9999"])).await;
+    failed_with(&missing, &["404", "9999"]);
 }
 
 /// The verbs over a completed run (`run_id`, exported to `csv_path`) and a second run of the

@@ -3,7 +3,8 @@
 //! appear, save a screenshot; then, on stored runs in every state: resume offered only where the
 //! engine would resume, cancel only after a confirmation, the form's number checks in the unit
 //! typed, pinning from the device history and from a run's own view (V_pi table, plots, export,
-//! compare).
+//! compare). And the printable calibration report: rendered (tables, inline plots, stored markup
+//! shown as text) and printed to PDF with `chromium --print-to-pdf`.
 //!
 //! Skips (loudly) only when `chromium` is not installed and CI is not set; under CI=true a
 //! missing browser fails the test.
@@ -234,6 +235,7 @@ async fn dashboard_resumes_only_resumable_runs_confirms_cancel_and_pins_from_a_r
                 bench_name: "sim-bench".into(),
                 chain_calibration_id: chain_id,
                 submitted_by: "seed".into(),
+                provenance: Default::default(),
             })
             .await
             .unwrap()
@@ -522,4 +524,103 @@ async fn wait_for(browser: &mut Browser, condition: &str, seconds: u64) {
         );
         tokio::time::sleep(Duration::from_millis(100)).await;
     }
+}
+
+/// The printable calibration report in headless Chromium: the document served by
+/// `GET /runs/{id}/report.html`, saved as a file, renders its tables and both inline plots with
+/// the markup in stored strings shown as text (no element made from it), and prints to PDF.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_calibration_report_renders_and_prints_to_pdf() {
+    let Some(executable) = chromium() else {
+        if std::env::var("CI").is_ok_and(|v| v == "true" || v == "1") {
+            panic!("chromium is not installed but CI is set: .ci/run installs it (apt-get install chromium)");
+        }
+        eprintln!("\n*** SKIPPED dashboard_browser: `chromium` is not on PATH (apt-get install chromium) ***\n");
+        return;
+    };
+    let app = api_support::spawn_app().await;
+    let viewer = app.token("viewer-1", Role::Viewer).await;
+    let hostile = "<b id=\"injected\">bold</b>";
+    let seeded = api_support::seed::seed_recorded_run(app.store(), hostile, 1).await;
+    let html = app
+        .get(
+            &format!("/api/v1/runs/{}/report.html", seeded.run_id),
+            Some(&viewer),
+        )
+        .await
+        .text()
+        .await
+        .unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let page = dir.path().join("report.html");
+    std::fs::write(&page, &html).unwrap();
+    let url = format!("file://{}", page.display());
+
+    let mut browser = Browser::launch(&executable).await;
+    browser.navigate(&url).await;
+    wait_for(&mut browser, "document.readyState === 'complete'", 30).await;
+    let rendered = browser
+        .eval(
+            "JSON.stringify({svgs: document.querySelectorAll('figure svg').length, \
+             width: Math.round(document.querySelector('figure svg').getBoundingClientRect().width), \
+             tables: document.querySelectorAll('table').length, \
+             rows: document.querySelectorAll('table')[1].querySelectorAll('tr').length, \
+             injected: document.getElementById('injected') !== null, \
+             scripts: document.scripts.length, \
+             serial: document.querySelector('dd').textContent})",
+        )
+        .await;
+    let rendered: serde_json::Value =
+        serde_json::from_str(rendered.as_str().expect("a JSON string")).unwrap();
+    assert_eq!(rendered["svgs"], 2, "{rendered}");
+    assert!(rendered["width"].as_i64().unwrap() > 300, "{rendered}");
+    // Instruments, V_pi (header + 3 frequencies), excluded points.
+    assert_eq!(rendered["tables"], 3, "{rendered}");
+    assert_eq!(rendered["rows"], 4, "{rendered}");
+    assert_eq!(rendered["injected"], false, "{rendered}");
+    assert_eq!(rendered["scripts"], 0, "{rendered}");
+    assert_eq!(
+        rendered["serial"],
+        format!("PM-9{hostile}"),
+        "the serial reads as typed"
+    );
+    browser.close().await;
+
+    // Printing: Chromium's own --print-to-pdf, as a user would from the browser.
+    let pdf = dir.path().join("report.pdf");
+    let profile = tempfile::tempdir().unwrap();
+    let printed = tokio::process::Command::new(&executable)
+        .args([
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--disable-dev-shm-usage",
+            "--no-first-run",
+            "--no-pdf-header-footer",
+        ])
+        .arg(format!("--user-data-dir={}", profile.path().display()))
+        .arg(format!("--print-to-pdf={}", pdf.display()))
+        .arg(&url)
+        .kill_on_drop(true)
+        .output();
+    let printed = tokio::time::timeout(Duration::from_secs(120), printed)
+        .await
+        .expect("chromium printed within 120 s")
+        .expect("chromium runs");
+    assert!(
+        printed.status.success(),
+        "chromium --print-to-pdf failed: {}",
+        String::from_utf8_lossy(&printed.stderr)
+    );
+    let bytes = std::fs::read(&pdf).expect("the PDF exists");
+    // ISO 32000-1, 7.5.2 and 7.5.5: a PDF file starts with the header %PDF-1.n and ends with
+    // the end-of-file marker %%EOF.
+    assert!(bytes.starts_with(b"%PDF-"), "not a PDF header");
+    let tail = String::from_utf8_lossy(&bytes[bytes.len().saturating_sub(64)..]).into_owned();
+    assert!(tail.contains("%%EOF"), "no end-of-file marker: {tail:?}");
+    assert!(
+        bytes.len() > 10_000,
+        "{} bytes: too small for two plots and tables",
+        bytes.len()
+    );
 }

@@ -180,6 +180,7 @@ async fn a_quick_check_does_not_hide_a_wide_calibration_and_a_pin_decides() {
             bench_name: "sim-bench".into(),
             chain_calibration_id: chain_id,
             submitted_by: "seed".into(),
+            provenance: Default::default(),
         })
         .await
         .unwrap();

@@ -71,6 +71,7 @@ fn bench_store(c: &mut Criterion) {
                 bench_name: "bench".into(),
                 chain_calibration_id: calibration.id,
                 submitted_by: "bench".into(),
+                provenance: Default::default(),
             })
             .await
             .expect("run");

@@ -9,6 +9,7 @@
 //! - [`engine`]: plans, the per-bench queue, the sweep executor and the RF-off interlocks.
 //! - [`shutdown`]: waiting for SIGINT/SIGTERM.
 //! - [`telemetry`]: tracing set-up, done once at start.
+//! - [`version`]: the software version (crate version and git commit) runs record.
 
 #![forbid(unsafe_code)]
 
@@ -23,5 +24,6 @@ pub mod engine;
 pub mod shutdown;
 pub mod store;
 pub mod telemetry;
+pub mod version;
 
 pub use halfwave_units as units;

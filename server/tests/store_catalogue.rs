@@ -298,3 +298,45 @@ async fn reference_traces_and_results_replace_on_retake() {
         Err(StoreError::NotFound { .. })
     ));
 }
+
+#[tokio::test]
+async fn a_runs_software_versions_are_kept_in_the_order_they_executed_it() {
+    let store = Store::open_in_memory().await.unwrap();
+    let run = queued_run(&store, "DEMO-0300").await;
+    // Queued without a record (as runs before migration 0011 were): nothing is claimed.
+    assert_eq!(run.software_version, None);
+    assert_eq!(run.analysis_method, None);
+    assert_eq!(run.submitted_by_token_id, None);
+    // First start: set. Restarted by the same version: unchanged.
+    for _ in 0..2 {
+        store
+            .record_run_software(run.id, "halfwave 0.1.0", "fit v1")
+            .await
+            .unwrap();
+    }
+    let started = store.run(run.id).await.unwrap();
+    assert_eq!(started.software_version.as_deref(), Some("halfwave 0.1.0"));
+    assert_eq!(started.analysis_method.as_deref(), Some("fit v1"));
+    // Resumed by a newer daemon with the same method, then by one with a new method.
+    store
+        .record_run_software(run.id, "halfwave 0.2.0", "fit v1")
+        .await
+        .unwrap();
+    store
+        .record_run_software(run.id, "halfwave 0.2.0", "fit v2")
+        .await
+        .unwrap();
+    let resumed = store.run(run.id).await.unwrap();
+    assert_eq!(
+        resumed.software_version.as_deref(),
+        Some("halfwave 0.1.0 then halfwave 0.2.0")
+    );
+    assert_eq!(
+        resumed.analysis_method.as_deref(),
+        Some("fit v1 then fit v2")
+    );
+    assert!(matches!(
+        store.record_run_software(9999, "x", "y").await,
+        Err(StoreError::NotFound { .. })
+    ));
+}

@@ -9,7 +9,8 @@
 use halfwave::analysis::synthetic::SyntheticComb;
 use halfwave::analysis::{analyze_trace, AnalysisOptions};
 use halfwave::store::{
-    ChainCalibrationPoint, NewDevice, NewFrequencyResult, NewPoint, NewRun, RunState, Store,
+    ChainCalibrationPoint, NewDevice, NewFrequencyResult, NewPoint, NewRun, RunProvenance,
+    RunState, Store,
 };
 use halfwave::units::{Db, Dbm, Hz, Nanometers, Volts};
 
@@ -64,6 +65,7 @@ pub async fn seed_completed_run(
             bench_name: "bench-a".to_string(),
             chain_calibration_id: chain_id,
             submitted_by: "seed".to_string(),
+            provenance: Default::default(),
         })
         .await
         .expect("run stored");
@@ -141,5 +143,122 @@ pub async fn seed_completed_run(
         run_id: run.id,
         point_ids,
         results,
+    }
+}
+
+/// What [`seed_recorded_run`] stored, for the report checks.
+pub struct RecordedRun {
+    pub run_id: i64,
+    /// (frequency, V_pi, uncertainty) as stored.
+    pub results: Vec<(f64, f64, f64)>,
+    /// The source's and analyzer's invented identities, in that order.
+    pub identities: [halfwave::units::Identity; 2],
+    pub token_id: i64,
+}
+
+/// A completed run with everything a calibration record holds, written through the store as the
+/// engine would: provenance (software, method, token id, limits), both instruments linked with
+/// their connection notes, three V_pi results (one with an excluded point) and a plan note.
+/// `hostile` (markup) goes into the device serial, the note, an instrument's firmware, the
+/// connection notes and the excluded point's reason, so a report must escape every one of them.
+pub async fn seed_recorded_run(store: &Store, hostile: &str, token_id: i64) -> RecordedRun {
+    let serial = format!("PM-9{hostile}");
+    let (device_id, chain_id) = seed_device(store, &serial).await;
+    let plan = serde_json::json!({
+        "device": {"serial": serial, "model": "demo phase modulator", "rf_input_limit_dbm": 27.0, "wavelength_nm": 1550.0},
+        "bench": "bench-a",
+        "chain": {"kind": "stored", "name": format!("{serial} chain")},
+        "frequencies": {"kind": "list", "values_hz": [1e9, 5e9, 9e9]},
+        "levels": {"kind": "ramp", "start_dbm": 0.0, "stop_dbm": 12.0, "step_db": 3.0},
+        "settle_s": 0.2,
+        "averages": 2,
+        "note": format!("overnight check {hostile}"),
+    });
+    let run = store
+        .create_run(&NewRun {
+            plan,
+            device_id,
+            bench_name: "bench-a".to_string(),
+            chain_calibration_id: chain_id,
+            submitted_by: "lab-a-operator".to_string(),
+            provenance: RunProvenance {
+                software_version: Some("halfwave 0.1.0 (git 0123456789ab)".to_string()),
+                analysis_method: Some(halfwave::analysis::ANALYSIS_METHOD.to_string()),
+                submitted_by_token_id: Some(token_id),
+                hard_limit_at_modulator: Some(Dbm(24.0)),
+                planned_max_at_modulator: Some(Dbm(10.5)),
+            },
+        })
+        .await
+        .expect("run stored");
+    store
+        .transition_run(run.id, RunState::Running, None)
+        .await
+        .expect("run started");
+    let identities = [
+        halfwave::units::Identity {
+            manufacturer: "Example Signal Works".to_string(),
+            model: "SG-40".to_string(),
+            serial: "SGW-000123".to_string(),
+            firmware: format!("2.1{hostile}"),
+        },
+        halfwave::units::Identity {
+            manufacturer: "Example Optics Lab".to_string(),
+            model: "HR-OSA-7".to_string(),
+            serial: "EOL-004567".to_string(),
+            firmware: "5.0.3".to_string(),
+        },
+    ];
+    for (role, identity, port) in [
+        ("source", &identities[0], 5025),
+        ("analyzer", &identities[1], 5026),
+    ] {
+        let instrument = store
+            .record_instrument_seen(identity, &format!("TCPIP::192.0.2.10::{port}::SOCKET"))
+            .await
+            .expect("instrument stored");
+        let notes = serde_json::json!([{"item": "frequency axis", "value": format!("start_stop in hz {hostile}")}]);
+        store
+            .link_run_instrument(run.id, role, instrument.id, &notes.to_string())
+            .await
+            .expect("instrument linked");
+    }
+    let mut results = Vec::new();
+    for (fi, (f, v_pi, u)) in [
+        (1e9, 3.1234, 0.0123),
+        (5e9, 4.5678, 0.0234),
+        (9e9, 6.4321, 0.0456),
+    ]
+    .into_iter()
+    .enumerate()
+    {
+        let excluded = if fi == 1 {
+            serde_json::json!([{"level_index": 4, "generator_level_dbm": 12.0, "reason": format!("off the line by 5 sigma {hostile}")}])
+        } else {
+            serde_json::json!([])
+        };
+        store
+            .save_frequency_result(&NewFrequencyResult {
+                run_id: run.id,
+                frequency_index: u32::try_from(fi).expect("small index"),
+                frequency: Hz(f),
+                v_pi: Volts(v_pi),
+                v_pi_uncertainty: Volts(u),
+                excluded_points: excluded,
+                fit: serde_json::json!({"method": "seeded"}),
+            })
+            .await
+            .expect("result stored");
+        results.push((f, v_pi, u));
+    }
+    store
+        .transition_run(run.id, RunState::Completed, None)
+        .await
+        .expect("run completed");
+    RecordedRun {
+        run_id: run.id,
+        results,
+        identities,
+        token_id,
     }
 }

@@ -22,6 +22,7 @@
 //! - [`prediction`]: the comb a periodic phase drive (several harmonics) makes, exactly.
 //! - [`synthetic`]: traces computed from Bessel physics, for tests, benchmarks and demos.
 //! - [`error`]: the one error type, with messages for the operator.
+//! - [`ANALYSIS_METHOD`]: the method's name and version, recorded with every run.
 
 pub mod agreement;
 pub mod bessel;
@@ -53,3 +54,13 @@ pub use trace_analysis::{
     OrderAsymmetry, TraceAnalysis,
 };
 pub use vpi::{fit_v_pi, CarrierNull, DrivePoint, ExcludedPoint, VpiFit};
+
+/// The analysis method, named and versioned, that every run records with its results
+/// (`runs.analysis_method`, migration 0011): the whole-trace Bessel comb fit ([`fit`]) for the
+/// modulation index, then the weighted line through the origin ([`vpi`]) for V_pi.
+///
+/// Rule (DEVELOPERS.md, "Analysis"): raise the number after `v` in the same commit as any change
+/// that can move a stored beta, V_pi or uncertainty for the same trace (the model, the weights,
+/// the exclusion rule, a systematic term, a tolerance). Refactors that leave every number
+/// unchanged keep it. A record read later then says which method judged it.
+pub const ANALYSIS_METHOD: &str = "bessel-comb-trace-fit+weighted-origin-line v1";

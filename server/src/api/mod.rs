@@ -14,6 +14,7 @@
 
 pub mod audit;
 pub mod auth;
+pub mod calibration_report;
 pub mod connections;
 pub mod engine_problems;
 pub mod json_body;

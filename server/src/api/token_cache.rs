@@ -91,6 +91,7 @@ mod tests {
 
     fn holder(name: &str) -> TokenHolder {
         TokenHolder {
+            id: 1,
             name: name.to_string(),
             role: Role::Viewer,
         }

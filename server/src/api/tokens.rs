@@ -69,6 +69,9 @@ pub const TOKEN_PREFIX: &str = "hwt_";
 /// A token as listed: everything but the secret.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, ToSchema)]
 pub struct TokenInfo {
+    /// The token's id: runs record it beside the name (`provenance.submitted_by_token_id`),
+    /// because the name of a revoked token can be given to a new one.
+    pub id: i64,
     pub name: String,
     pub role: Role,
     pub created_at_unix_ms: i64,
@@ -89,6 +92,8 @@ pub struct CreatedToken {
 /// The identity behind a presented token.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct TokenHolder {
+    /// `api_tokens.id`: unlike the name, never reused after a revocation.
+    pub id: i64,
     pub name: String,
     pub role: Role,
 }
@@ -212,8 +217,9 @@ pub async fn list(pool: &SqlitePool) -> Result<Vec<TokenInfo>, TokenError> {
         .map_err(db("listing tokens"))?;
     Ok(rows
         .into_iter()
-        .filter_map(|(name, role, created, by, revoked)| {
+        .filter_map(|(id, name, role, created, by, revoked)| {
             Some(TokenInfo {
+                id,
                 name,
                 role: role.parse().ok()?,
                 created_at_unix_ms: created,
@@ -240,8 +246,9 @@ pub async fn authenticate_digest(
     let row = store_tokens::active_by_digest(pool, digest)
         .await
         .map_err(db("checking a token"))?;
-    Ok(row.and_then(|(name, role)| {
+    Ok(row.and_then(|(id, name, role)| {
         Some(TokenHolder {
+            id,
             name,
             role: role.parse().ok()?,
         })

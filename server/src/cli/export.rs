@@ -35,9 +35,27 @@ pub struct ExportArgs {
     pub client: ClientArgs,
 }
 
-/// The CSV header; units in every name. The run's record (device, chain, instruments) is
-/// repeated on every row so that a row read alone still says what it is.
-pub const CSV_HEADER: &str = "run_id,device_serial,chain_name,chain_version,source_identity,analyzer_identity,frequency_index,level_index,frequency_hz,generator_level_dbm,level_at_modulator_dbm,v_peak_volts,modulation_index,modulation_index_uncertainty,asymmetry_db,v_pi_volts,v_pi_uncertainty_volts,measured_at_unix_ms";
+/// The CSV header; units in every name. The run's record (device, chain, instruments, and after
+/// the measured values the operator, software, analysis method and how each instrument was
+/// driven) is repeated on every row so that a row read alone still says what it is.
+pub const CSV_HEADER: &str = "run_id,device_serial,chain_name,chain_version,source_identity,analyzer_identity,frequency_index,level_index,frequency_hz,generator_level_dbm,level_at_modulator_dbm,v_peak_volts,modulation_index,modulation_index_uncertainty,asymmetry_db,v_pi_volts,v_pi_uncertainty_volts,measured_at_unix_ms,submitted_by,submitted_by_token_id,software_version,analysis_method,source_connection,analyzer_connection";
+
+/// The driver's choices for a run's instruments in one role, "item: value" joined by "; " (and
+/// " then " between instruments, as [`identities`]).
+fn connections(run: &RunView, role: &str) -> String {
+    run.instruments
+        .iter()
+        .filter(|i| i.role == role)
+        .map(|i| {
+            i.connection
+                .iter()
+                .map(|n| format!("{}: {}", n.item, n.value))
+                .collect::<Vec<_>>()
+                .join("; ")
+        })
+        .collect::<Vec<_>>()
+        .join(" then ")
+}
 
 /// The identities of a run's instruments in one role, joined by " then " (a run resumed on a
 /// replaced instrument has two).
@@ -60,6 +78,18 @@ pub fn points_csv(run: &RunView, points: &[PointView]) -> String {
         run.summary.chain_version.to_string(),
         identities(run, "source"),
         identities(run, "analyzer"),
+    ];
+    let provenance = &run.provenance;
+    let trailer = [
+        run.summary.submitted_by.clone(),
+        provenance
+            .submitted_by_token_id
+            .map(|id| id.to_string())
+            .unwrap_or_default(),
+        provenance.software_version.clone().unwrap_or_default(),
+        provenance.analysis_method.clone().unwrap_or_default(),
+        connections(run, "source"),
+        connections(run, "analyzer"),
     ];
     let optional = |v: Option<f64>| v.map(|v| v.to_string()).unwrap_or_default();
     let header = CSV_HEADER
@@ -85,6 +115,7 @@ pub fn points_csv(run: &RunView, points: &[PointView]) -> String {
             optional(fit.map(|r| r.v_pi_uncertainty_volts)),
             p.measured_at_unix_ms.to_string(),
         ]);
+        row.extend(trailer.iter().cloned());
         row
     });
     crate::csv_table::write_rows(std::iter::once(header).chain(rows))
@@ -169,7 +200,10 @@ mod tests {
             serial: "SN1".into(),
             firmware: "1.0".into(),
             resource: "TCPIP::192.0.2.7::5025::SOCKET".into(),
-            connection: Vec::new(),
+            connection: vec![crate::store::ConnectionNoteRecord {
+                item: "frequency axis".into(),
+                value: format!("{role} start_stop, hz"),
+            }],
             connection_json: String::new(),
         };
         RunView {
@@ -189,6 +223,13 @@ mod tests {
                 instrument("source", "SG-1"),
                 instrument("analyzer", "OSA-2"),
             ],
+            provenance: crate::api::routes::runs::ProvenanceView {
+                software_version: Some("halfwave 0.1.0 (git 0123456789ab)".into()),
+                analysis_method: Some("method v1".into()),
+                submitted_by_token_id: Some(4),
+                hard_limit_at_modulator_dbm: Some(27.0),
+                planned_max_at_modulator_dbm: Some(20.0),
+            },
         }
     }
 
@@ -198,14 +239,15 @@ mod tests {
         let lines: Vec<&str> = csv.lines().collect();
         assert_eq!(lines[0], CSV_HEADER);
         let record = "7,EG-PM-0042,bench-7 chain,2,Example Instruments / SG-1 / SN1 / 1.0 @ TCPIP::192.0.2.7::5025::SOCKET,Example Instruments / OSA-2 / SN1 / 1.0 @ TCPIP::192.0.2.7::5025::SOCKET";
+        let trailer = "op,4,halfwave 0.1.0 (git 0123456789ab),method v1,\"frequency axis: source start_stop, hz\",\"frequency axis: analyzer start_stop, hz\"";
         assert_eq!(
             lines[1],
-            format!("{record},0,0,2000000000,10,8,0.7943,0.67,0.01,,3.7,0.02,5")
+            format!("{record},0,0,2000000000,10,8,0.7943,0.67,0.01,,3.7,0.02,5,{trailer}")
         );
         // A point whose spectrum was not analysed, at a frequency without a V_pi fit.
         assert_eq!(
             lines[2],
-            format!("{record},1,0,2000000000,10,8,0.7943,,,,,,5")
+            format!("{record},1,0,2000000000,10,8,0.7943,,,,,,5,{trailer}")
         );
         // A cell with a comma or a quote is quoted, inner quotes doubled (RFC 4180, section 2,
         // rules 6 and 7).

@@ -4,7 +4,7 @@
 //! terminal and exits non-zero. Three kinds of command live here: the daemon and its local tools
 //! (`serve`, `demo`, `sim`, `analyze`, `predict`, `token`, `check-bench`, `db`, `chain cascade`), which read the configuration
 //! or the database directly, and the clients (`submit`, `watch`, `runs`, `show`, `cancel`, `resume`, `compare`, `devices`,
-//! `v-pi`, `drive`, `pin`, `unpin`, `export`, `trace`, `benches`, `acknowledge`, `chain import`, `budget`), which
+//! `v-pi`, `drive`, `pin`, `unpin`, `export`, `report`, `trace`, `benches`, `acknowledge`, `chain import`, `budget`), which
 //! speak only HTTP to a running daemon through [`client::ApiClient`], so they work from any
 //! machine that can reach it. Clients print tables for people and JSON with `--json`.
 
@@ -30,6 +30,7 @@ use clap::{Parser, Subcommand};
 
 pub mod benches;
 pub mod budget;
+pub mod calibration_report;
 pub mod chain;
 pub mod check_bench;
 pub mod client;
@@ -152,6 +153,9 @@ pub enum Command {
     Trace(trace::TraceArgs),
     /// Export a run's points and V_pi as CSV or JSON (units in the column names).
     Export(export::ExportArgs),
+    /// Write a run's printable calibration report: one self-contained HTML file (device,
+    /// instruments, chain, method, V_pi with uncertainties, response plot, limits in force).
+    Report(calibration_report::ReportArgs),
     /// Identify every configured instrument and verify its read-backs. RF stays off: this never
     /// switches an RF output on.
     CheckBench(check_bench::CheckBenchArgs),
@@ -193,6 +197,7 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Predict(args) => predict::run(args),
         Command::Trace(args) => trace::run(args),
         Command::Export(args) => export::run(args),
+        Command::Report(args) => calibration_report::run(args),
         Command::CheckBench(args) => check_bench::run(args),
         Command::Db(command) => db::run(command),
         Command::Benches(args) => benches::list(args),

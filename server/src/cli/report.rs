@@ -106,6 +106,7 @@ pub fn run_text(run: &RunView) -> String {
             out.push_str(&format!("         {}: {}\n", note.item, note.value));
         }
     }
+    out.push_str(&provenance_text(run));
     out.push_str(&format!("measured points: {}\n", run.measured_points));
     if run.analyzer_sweeps > 0 {
         out.push_str(&format!("analyzer sweeps: {}\n", run.analyzer_sweeps));
@@ -119,6 +120,34 @@ pub fn run_text(run: &RunView) -> String {
         out.push_str(&response_lines(&summary));
     }
     out
+}
+
+/// The record's other lines: operator token, chain, software, analysis method and the limits in
+/// force ("not recorded" for runs queued before these were kept).
+pub fn provenance_text(run: &RunView) -> String {
+    let s = &run.summary;
+    let p = &run.provenance;
+    let unknown = "not recorded";
+    let operator = match p.submitted_by_token_id {
+        Some(id) => format!("{} (token id {id})", s.submitted_by),
+        None => s.submitted_by.clone(),
+    };
+    let level = |v: Option<f64>| v.map_or(unknown.to_string(), |v| format!("{v:.2} dBm"));
+    let device_limit = run
+        .plan
+        .pointer("/device/rf_input_limit_dbm")
+        .and_then(serde_json::Value::as_f64);
+    format!(
+        "operator: {operator}\nchain:    {} version {}\nsoftware: {}\nmethod:   {}\n\
+         limits:   device RF input {}, daemon ceiling {}, plan's highest at the modulator {}\n",
+        s.chain_name,
+        s.chain_version,
+        p.software_version.as_deref().unwrap_or(unknown),
+        p.analysis_method.as_deref().unwrap_or(unknown),
+        level(device_limit),
+        level(p.hard_limit_at_modulator_dbm),
+        level(p.planned_max_at_modulator_dbm),
+    )
 }
 
 pub use crate::calendar::utc_time;
@@ -136,6 +165,26 @@ mod tests {
             excluded_points: serde_json::Value::Null,
             analyzer_sweeps: None,
         }
+    }
+
+    #[test]
+    fn the_record_says_not_recorded_for_what_an_old_run_lacks() {
+        let run: RunView = serde_json::from_value(serde_json::json!({
+            "id": 3, "device_serial": "EG-PM-0042", "bench": "b", "chain_name": "c",
+            "chain_version": 2, "state": "completed", "submitted_by": "op", "created_at_unix_ms": 0,
+            "started_at_unix_ms": null, "finished_at_unix_ms": null, "cause": null,
+            "plan": {"device": {"rf_input_limit_dbm": 27.0}}, "measured_points": 0, "results": []
+        }))
+        .expect("a run from before provenance was recorded still reads");
+        let text = provenance_text(&run);
+        assert!(text.contains("operator: op\n"), "{text}");
+        assert!(text.contains("chain:    c version 2"), "{text}");
+        assert!(text.contains("software: not recorded"), "{text}");
+        assert!(text.contains("method:   not recorded"), "{text}");
+        assert!(
+            text.contains("device RF input 27.00 dBm, daemon ceiling not recorded"),
+            "{text}"
+        );
     }
 
     #[test]

@@ -154,7 +154,13 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                     outln!("no tokens yet; create one with `halfwave token create --role operator --name NAME`");
                     return Ok(());
                 }
-                outln!("{:<24}  {:<8}  {:<23}  state", "name", "role", "created");
+                outln!(
+                    "{:>5}  {:<24}  {:<8}  {:<23}  state",
+                    "id",
+                    "name",
+                    "role",
+                    "created"
+                );
                 for token in &list {
                     outln!("{}", token_row(token));
                 }
@@ -164,14 +170,15 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
     })
 }
 
-/// One token as a table row: name, role, creation date, and whether it is active.
+/// One token as a table row: id, name, role, creation date, and whether it is active.
 fn token_row(token: &tokens::TokenInfo) -> String {
     let state = match token.revoked_at_unix_ms {
         Some(at) => format!("revoked {}", super::report::utc_time(at)),
         None => "active".to_string(),
     };
     format!(
-        "{:<24}  {:<8}  {:<23}  {state}",
+        "{:>5}  {:<24}  {:<8}  {:<23}  {state}",
+        token.id,
         token.name,
         token.role.to_string(),
         super::report::utc_time(token.created_at_unix_ms)

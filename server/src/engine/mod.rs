@@ -24,7 +24,7 @@ use crate::analysis::chain::{ChainPoint, DriveChain};
 use crate::config::{Config, Limits};
 use crate::store::{
     BenchFault, BenchSafetyRecord, ChainCalibration, ChainCalibrationPoint, NewDevice, NewRun,
-    RunFilter, RunRecord, RunState, Store, StoreError,
+    RunFilter, RunProvenance, RunRecord, RunState, Store, StoreError,
 };
 use bench::BenchInstruments;
 use events::ProgressEvent;
@@ -450,6 +450,17 @@ impl Engine {
         request: PlanRequest,
         submitted_by: &str,
     ) -> Result<i64, SubmitError> {
+        self.submit_by_token(request, submitted_by, None).await
+    }
+
+    /// [`Engine::submit`] for an API caller: `token_id` (the submitting token's `api_tokens.id`)
+    /// is recorded with the run beside its name, since names of revoked tokens can be reused.
+    pub async fn submit_by_token(
+        &self,
+        request: PlanRequest,
+        submitted_by: &str,
+        token_id: Option<i64>,
+    ) -> Result<i64, SubmitError> {
         let (plan, chain, choice) = self.check_plan(&request).await?;
         let store = &self.inner.store;
         // Only a valid plan stores anything: the flat loss's calibration row is made now.
@@ -481,6 +492,17 @@ impl Engine {
                 bench_name: request.bench.clone(),
                 chain_calibration_id: chain_id,
                 submitted_by: submitted_by.to_string(),
+                provenance: RunProvenance {
+                    software_version: Some(crate::version::software_version()),
+                    analysis_method: Some(crate::analysis::ANALYSIS_METHOD.to_string()),
+                    submitted_by_token_id: token_id,
+                    hard_limit_at_modulator: Some(Dbm(self
+                        .inner
+                        .limits
+                        .max_level_at_modulator_dbm)),
+                    planned_max_at_modulator: Some(plan.max_level_at_modulator())
+                        .filter(|l| l.0.is_finite()),
+                },
             })
             .await?
             .id;
@@ -990,9 +1012,20 @@ impl BenchSlot {
     }
 
     /// Asks both instruments who they are as a run starts (or resumes) and links the recorded
-    /// identities to the run, so the record says what measured it. Failures are logged: a
+    /// identities to the run, with this daemon's software and analysis method versions, so the
+    /// record says what measured it. Failures are logged: a
     /// missing identity must not stop a run whose instruments answer their commands.
     async fn record_run_instruments(&self, store: &Store, run_id: i64) {
+        if let Err(e) = store
+            .record_run_software(
+                run_id,
+                &crate::version::software_version(),
+                crate::analysis::ANALYSIS_METHOD,
+            )
+            .await
+        {
+            tracing::warn!(run_id, error = %e, "could not record the run's software version");
+        }
         let recorded = self.refresh_identities(store).await;
         let source_notes = self.source.lock().await.connection_notes();
         let analyzer_notes = self.analyzer.lock().await.connection_notes();

@@ -252,6 +252,25 @@ pub struct NewRun {
     pub bench_name: String,
     pub chain_calibration_id: i64,
     pub submitted_by: String,
+    /// What measured and judged it, and the limits in force (migration 0011).
+    pub provenance: RunProvenance,
+}
+
+/// What a run records when it is queued beyond its plan (migration 0011): the software and
+/// analysis method versions, the submitting token's id and the safety limits in force. `None`
+/// means not known (runs from before 0011, or seeded by tests); the default knows nothing.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct RunProvenance {
+    /// [`crate::version::software_version`] of the daemon that queued it.
+    pub software_version: Option<String>,
+    /// [`crate::analysis::ANALYSIS_METHOD`] of that daemon.
+    pub analysis_method: Option<String>,
+    /// The id of the API token that submitted it (`api_tokens.id`).
+    pub submitted_by_token_id: Option<i64>,
+    /// The daemon's hard ceiling at the modulator input when it was queued.
+    pub hard_limit_at_modulator: Option<Dbm>,
+    /// The highest level the proven plan puts on the modulator (after the chain).
+    pub planned_max_at_modulator: Option<Dbm>,
 }
 
 /// A stored run, with its device's serial number.
@@ -277,6 +296,17 @@ pub struct RunRecord {
     /// A failed run whose points are intact and whose cause was a link or instrument fault: it
     /// can be resumed like an interrupted one.
     pub resumable: bool,
+    /// The software that queued and executed it ("A then B" when a later version resumed it);
+    /// `None` for runs from before migration 0011.
+    pub software_version: Option<String>,
+    /// The analysis method and version that judged its points, joined the same way.
+    pub analysis_method: Option<String>,
+    /// The id of the API token that submitted it (`submitted_by` is its name).
+    pub submitted_by_token_id: Option<i64>,
+    /// The daemon's hard ceiling at the modulator input when the run was queued.
+    pub hard_limit_at_modulator_dbm: Option<f64>,
+    /// The highest level the proven plan puts on the modulator.
+    pub planned_max_at_modulator_dbm: Option<f64>,
 }
 
 impl RunRecord {

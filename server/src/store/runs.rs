@@ -25,9 +25,14 @@ pub const INTERRUPTED_CAUSE: &str =
 const RUN_SELECT: &str = "SELECT r.id, r.plan_json, r.device_id, d.serial AS device_serial, \
      r.bench_name, r.chain_calibration_id, c.name AS chain_name, c.version AS chain_version, \
      r.state, r.submitted_by, r.created_at_unix_ms, \
-     r.started_at_unix_ms, r.finished_at_unix_ms, r.cause, r.resumable \
+     r.started_at_unix_ms, r.finished_at_unix_ms, r.cause, r.resumable, \
+     r.software_version, r.analysis_method, r.submitted_by_token_id, \
+     r.hard_limit_at_modulator_dbm, r.planned_max_at_modulator_dbm \
      FROM runs r JOIN devices d ON d.id = r.device_id \
      JOIN chain_calibrations c ON c.id = r.chain_calibration_id";
+
+/// Between the versions a run was executed with, oldest first ("A then B").
+pub const VERSION_SEPARATOR: &str = " then ";
 
 /// The states a run may be in to move to `to`.
 fn allowed_sources(to: RunState) -> &'static [RunState] {
@@ -78,8 +83,9 @@ impl Store {
             .await
             .map_err(StoreError::database("starting to queue a run"))?;
         let id: i64 = sqlx::query_scalar(
-            "INSERT INTO runs (plan_json, device_id, bench_name, chain_calibration_id, state, submitted_by, created_at_unix_ms) \
-             VALUES ($1, $2, $3, $4, $5, $6, $7) RETURNING id",
+            "INSERT INTO runs (plan_json, device_id, bench_name, chain_calibration_id, state, submitted_by, created_at_unix_ms, \
+             software_version, analysis_method, submitted_by_token_id, hard_limit_at_modulator_dbm, planned_max_at_modulator_dbm) \
+             VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12) RETURNING id",
         )
         .bind(super::json_text(&run.plan))
         .bind(run.device_id)
@@ -88,6 +94,11 @@ impl Store {
         .bind(RunState::Queued.as_str())
         .bind(&run.submitted_by)
         .bind(now)
+        .bind(&run.provenance.software_version)
+        .bind(&run.provenance.analysis_method)
+        .bind(run.provenance.submitted_by_token_id)
+        .bind(run.provenance.hard_limit_at_modulator.map(|l| l.0))
+        .bind(run.provenance.planned_max_at_modulator.map(|l| l.0))
         .fetch_one(&mut *tx)
         .await
         .map_err(StoreError::database("queueing a run"))?;
@@ -121,6 +132,39 @@ impl Store {
                 what: "run with id",
                 key: id.to_string(),
             })
+    }
+
+    /// Records the software and analysis method versions executing run `id` as it starts or
+    /// resumes: set when none is stored, appended as "A then B" when the last one stored differs
+    /// (a run resumed after an upgrade was judged by both), unchanged otherwise.
+    pub async fn record_run_software(
+        &self,
+        id: i64,
+        software_version: &str,
+        analysis_method: &str,
+    ) -> Result<(), StoreError> {
+        let run = self.run(id).await?;
+        let joined = |stored: &Option<String>, now: &str| match stored {
+            None => Some(now.to_string()),
+            Some(text) if text.rsplit(VERSION_SEPARATOR).next() == Some(now) => None,
+            Some(text) => Some(format!("{text}{VERSION_SEPARATOR}{now}")),
+        };
+        let software = joined(&run.software_version, software_version);
+        let method = joined(&run.analysis_method, analysis_method);
+        if software.is_none() && method.is_none() {
+            return Ok(());
+        }
+        sqlx::query(
+            "UPDATE runs SET software_version = COALESCE($1, software_version), \
+             analysis_method = COALESCE($2, analysis_method) WHERE id = $3",
+        )
+        .bind(software)
+        .bind(method)
+        .bind(id)
+        .execute(&self.pool)
+        .await
+        .map_err(StoreError::database("recording a run's software version"))?;
+        Ok(())
     }
 
     /// Moves a run to `to` if its current state allows it, stamping the start time (first move to

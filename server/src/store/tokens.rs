@@ -5,7 +5,7 @@
 use sqlx::SqlitePool;
 
 /// A stored token row, without its digest: name, role, created, created by, revoked.
-pub type TokenRow = (String, String, i64, String, Option<i64>);
+pub type TokenRow = (i64, String, String, i64, String, Option<i64>);
 
 /// Inserts a token; a unique violation (an active token of that name) comes back as the
 /// database's error for the caller to name.
@@ -46,20 +46,20 @@ pub async fn revoke(pool: &SqlitePool, name: &str, at_unix_ms: i64) -> Result<bo
 /// Every token, active and revoked, oldest first.
 pub async fn list(pool: &SqlitePool) -> Result<Vec<TokenRow>, sqlx::Error> {
     sqlx::query_as(
-        "SELECT name, role, created_at_unix_ms, created_by, revoked_at_unix_ms \
+        "SELECT id, name, role, created_at_unix_ms, created_by, revoked_at_unix_ms \
          FROM api_tokens ORDER BY id",
     )
     .fetch_all(pool)
     .await
 }
 
-/// Name and role of the active token with this digest.
+/// Id, name and role of the active token with this digest.
 pub async fn active_by_digest(
     pool: &SqlitePool,
     digest: &str,
-) -> Result<Option<(String, String)>, sqlx::Error> {
+) -> Result<Option<(i64, String, String)>, sqlx::Error> {
     sqlx::query_as(
-        "SELECT name, role FROM api_tokens WHERE token_sha256 = $1 AND revoked_at_unix_ms IS NULL",
+        "SELECT id, name, role FROM api_tokens WHERE token_sha256 = $1 AND revoked_at_unix_ms IS NULL",
     )
     .bind(digest)
     .fetch_optional(pool)

@@ -69,6 +69,7 @@ pub async fn queued_run(store: &Store, serial: &str) -> RunRecord {
             bench_name: "bench-north".to_string(),
             chain_calibration_id: calibration.id,
             submitted_by: "operator-a".to_string(),
+            provenance: Default::default(),
         })
         .await
         .unwrap()

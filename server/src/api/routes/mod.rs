@@ -45,6 +45,7 @@ pub fn timed_routes() -> OpenApiRouter<AppState> {
         .routes(routes!(benches::list_benches))
         .routes(routes!(benches::acknowledge_bench))
         .routes(routes!(runs::get_run))
+        .routes(routes!(runs::run_report))
         .routes(routes!(runs::list_points))
         .routes(routes!(runs::point_trace))
         .routes(routes!(runs::point_spectrum_svg))

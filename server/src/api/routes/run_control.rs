@@ -40,7 +40,10 @@ pub async fn submit_run(
     State(state): State<AppState>,
     JsonBody(plan): JsonBody<PlanRequest>,
 ) -> Result<(StatusCode, [(HeaderName, String); 1], Json<SubmittedRun>), Problem> {
-    let run_id = state.engine()?.submit(plan, &caller.name).await?;
+    let run_id = state
+        .engine()?
+        .submit_by_token(plan, &caller.name, Some(caller.id))
+        .await?;
     let location = format!("/api/v1/runs/{run_id}");
     Ok((
         StatusCode::CREATED,

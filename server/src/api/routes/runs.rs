@@ -147,9 +147,42 @@ pub struct RunView {
     pub analyzer_sweeps: i64,
     pub results: Vec<FrequencyResultView>,
     /// The source and analyzer that measured the run (their *IDN? identities at its start and
-    /// at every resumption).
+    /// at every resumption), each with the choices its driver made (axis, unit, format).
     #[serde(default)]
     pub instruments: Vec<RunInstrument>,
+    /// What else the record says about how the run was made: software, analysis method,
+    /// operator token and the safety limits in force.
+    #[serde(default)]
+    pub provenance: ProvenanceView,
+}
+
+/// The software and analysis method that executed a run, the token that submitted it and the
+/// limits in force when it was queued; null members are not known (runs queued before they were
+/// recorded).
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize, ToSchema)]
+pub struct ProvenanceView {
+    /// `halfwave <version> (git <commit>)`; "A then B" when a later version resumed the run.
+    pub software_version: Option<String>,
+    /// The analysis method's name and version (`analysis::ANALYSIS_METHOD`), joined the same way.
+    pub analysis_method: Option<String>,
+    /// The id of the API token that submitted the run (its name is `submitted_by`).
+    pub submitted_by_token_id: Option<i64>,
+    /// The daemon's hard ceiling on the level at the modulator input when the run was queued.
+    pub hard_limit_at_modulator_dbm: Option<f64>,
+    /// The highest level the proven plan puts on the modulator input (after the drive chain).
+    pub planned_max_at_modulator_dbm: Option<f64>,
+}
+
+impl From<&RunRecord> for ProvenanceView {
+    fn from(run: &RunRecord) -> ProvenanceView {
+        ProvenanceView {
+            software_version: run.software_version.clone(),
+            analysis_method: run.analysis_method.clone(),
+            submitted_by_token_id: run.submitted_by_token_id,
+            hard_limit_at_modulator_dbm: run.hard_limit_at_modulator_dbm,
+            planned_max_at_modulator_dbm: run.planned_max_at_modulator_dbm,
+        }
+    }
 }
 
 /// One measured point.
@@ -425,6 +458,39 @@ pub async fn get_run(
     if let Some(view_json) = state.read_cache().final_run(run_id) {
         return Ok(json_bytes(view_json));
     }
+    let (run, view) = run_view(&state, run_id).await?;
+    let view_json =
+        Bytes::from(serde_json::to_vec(&view).map_err(|e| {
+            Problem::internal(format!("the run could not be written as JSON: {e}"))
+        })?);
+    // A resumable failure can still change; every other final run cannot.
+    if run.state.is_final() && !run.resumable {
+        state.read_cache().keep_final_run(run_id, view_json.clone());
+    }
+    Ok(json_bytes(view_json))
+}
+
+/// The printable calibration report of a run: one self-contained HTML document (plots as inline
+/// SVG, no scripts, no external resources) with the device, dates, instruments, drive chain,
+/// analysis method, software, operator, the V_pi table with uncertainties, the response with its
+/// -3 dB / -6 dB points, the excluded points with reasons and the limits in force.
+#[utoipa::path(get, path = "/api/v1/runs/{run_id}/report.html", tag = "runs", security(("bearer" = [])),
+    params(("run_id" = i64, Path, description = "Run id")),
+    responses((status = 200, content_type = "text/html", body = String,
+               description = "The report, UTF-8 HTML"),
+              (status = 401, body = Problem), (status = 404, body = Problem)))]
+pub async fn run_report(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    ApiPath(run_id): ApiPath<i64>,
+) -> Result<Response, Problem> {
+    let (_, view) = run_view(&state, run_id).await?;
+    let html = crate::api::calibration_report::report_html(&view, crate::store::now_unix_ms());
+    Ok(([(CONTENT_TYPE, "text/html; charset=utf-8")], html).into_response())
+}
+
+/// A run's stored record and its view, read from the store.
+async fn run_view(state: &AppState, run_id: i64) -> Result<(RunRecord, RunView), Problem> {
     let store = state.store();
     // Read first: if the run is final now, nothing read after this can differ.
     let run = store.run(run_id).await?;
@@ -444,6 +510,7 @@ pub async fn get_run(
         measured_points,
         analyzer_sweeps: sweeps.iter().map(|(_, count)| count).sum(),
         instruments,
+        provenance: ProvenanceView::from(&run),
         results: results
             .iter()
             .map(|r| FrequencyResultView {
@@ -456,15 +523,7 @@ pub async fn get_run(
             })
             .collect(),
     };
-    let view_json =
-        Bytes::from(serde_json::to_vec(&view).map_err(|e| {
-            Problem::internal(format!("the run could not be written as JSON: {e}"))
-        })?);
-    // A resumable failure can still change; every other final run cannot.
-    if run.state.is_final() && !run.resumable {
-        state.read_cache().keep_final_run(run_id, view_json.clone());
-    }
-    Ok(json_bytes(view_json))
+    Ok((run, view))
 }
 
 /// A response with JSON already serialised.
