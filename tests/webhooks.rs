@@ -142,9 +142,15 @@ fn verified(r: &Received) -> Value {
         )
     );
     assert_eq!(header(r, "Halfwave-Signature"), expected, "{r:?}");
-    let now = SystemTime::now().duration_since(UNIX_EPOCH).unwrap().as_secs() as i64;
+    let now = SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .unwrap()
+        .as_secs() as i64;
     let sent: i64 = timestamp.parse().unwrap();
-    assert!((now - sent).abs() <= 60, "timestamp {sent} against now {now}");
+    assert!(
+        (now - sent).abs() <= 60,
+        "timestamp {sent} against now {now}"
+    );
     assert_eq!(
         header(r, "Content-Type"),
         "application/json",
@@ -176,9 +182,11 @@ fn add_webhook(bench: &Bench, url: &str, extra: &str) {
 
 /// Runs the Python `verify` of README.md's "Notifications" section on a delivery, as of `now`.
 fn readme_python_verify(r: &Received, body: &str, now: i64) -> bool {
-    let readme = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/../README.md"))
-        .unwrap();
-    let section = &readme[readme.find("## Notifications").expect("README has Notifications")..];
+    let readme =
+        std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/../README.md")).unwrap();
+    let section = &readme[readme
+        .find("## Notifications")
+        .expect("README has Notifications")..];
     let start = section.find("```python\n").expect("a Python example") + "```python\n".len();
     let snippet = &section[start..start + section[start..].find("```").unwrap()];
     let script = format!(
@@ -244,7 +252,11 @@ async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_th
     // A second run waits behind the first and is cancelled while queued.
     let cancelled = bench.submit_plan(&token, &short_plan()).await;
     let response = bench
-        .post(&format!("/api/v1/runs/{cancelled}/cancel"), &token, &json!({}))
+        .post(
+            &format!("/api/v1/runs/{cancelled}/cancel"),
+            &token,
+            &json!({}),
+        )
         .await;
     assert!(response.status().is_success(), "{:?}", response.status());
     bench
@@ -268,14 +280,22 @@ async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_th
     let all = to("/all");
     let mut types: Vec<(&str, i64)> = all
         .iter()
-        .map(|b| (b["event_type"].as_str().unwrap(), b["run_id"].as_i64().unwrap()))
+        .map(|b| {
+            (
+                b["event_type"].as_str().unwrap(),
+                b["run_id"].as_i64().unwrap(),
+            )
+        })
         .collect();
     types.sort();
     assert_eq!(
         types,
         [("run.cancelled", cancelled), ("run.completed", completed)]
     );
-    let done = all.iter().find(|b| b["event_type"] == "run.completed").unwrap();
+    let done = all
+        .iter()
+        .find(|b| b["event_type"] == "run.completed")
+        .unwrap();
     assert_eq!(done["bench"], "sim");
     assert_eq!(done["device_serial"], "EG-PM-0042");
     assert_eq!(done["state"], "completed");
@@ -283,14 +303,20 @@ async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_th
         done["summary"],
         format!("run {completed} (device EG-PM-0042) on bench sim completed")
     );
-    assert!(done["occurred_at"].as_str().unwrap().ends_with('Z'), "{done}");
+    assert!(
+        done["occurred_at"].as_str().unwrap().ends_with('Z'),
+        "{done}"
+    );
 
     let cancels = to("/cancels");
     assert_eq!(cancels.len(), 1, "{cancels:?}");
     assert_eq!(cancels[0]["event_type"], "run.cancelled");
     assert_eq!(cancels[0]["run_id"], cancelled);
     // The same event carries the same id to every receiver.
-    let same = all.iter().find(|b| b["event_type"] == "run.cancelled").unwrap();
+    let same = all
+        .iter()
+        .find(|b| b["event_type"] == "run.cancelled")
+        .unwrap();
     assert_eq!(same["event_id"], cancels[0]["event_id"]);
     assert_ne!(same["event_id"], done["event_id"]);
 
@@ -306,11 +332,21 @@ async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_th
     assert!(!readme_python_verify(&got[0], &got[0].body, sent + 301));
 
     assert_eq!(
-        metric(&bench, &token, "halfwave_webhook_deliveries{state=\"delivered\"}").await,
+        metric(
+            &bench,
+            &token,
+            "halfwave_webhook_deliveries{state=\"delivered\"}"
+        )
+        .await,
         Some(3.0)
     );
     assert_eq!(
-        metric(&bench, &token, "halfwave_webhook_deliveries{state=\"pending\"}").await,
+        metric(
+            &bench,
+            &token,
+            "halfwave_webhook_deliveries{state=\"pending\"}"
+        )
+        .await,
         Some(0.0)
     );
 }
@@ -343,11 +379,21 @@ async fn a_receiver_down_then_up_gets_the_delivery_on_a_later_attempt_with_growi
     let first_pause = got[1].at - got[0].at;
     let second_pause = got[2].at - got[1].at;
     assert!(first_pause >= Duration::from_millis(350), "{first_pause:?}");
-    assert!(second_pause >= Duration::from_millis(750), "{second_pause:?}");
-    assert!(second_pause > first_pause, "{first_pause:?} then {second_pause:?}");
+    assert!(
+        second_pause >= Duration::from_millis(750),
+        "{second_pause:?}"
+    );
+    assert!(
+        second_pause > first_pause,
+        "{first_pause:?} then {second_pause:?}"
+    );
 
     tokio::time::sleep(Duration::from_millis(300)).await;
-    assert_eq!(receiver.received().len(), 3, "no attempt after the delivery");
+    assert_eq!(
+        receiver.received().len(),
+        3,
+        "no attempt after the delivery"
+    );
     let store = Store::open(bench.database().to_str().unwrap())
         .await
         .unwrap();
@@ -408,7 +454,12 @@ async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
     assert_eq!(body["state"], "interrupted");
     assert_eq!(body["event_id"], rows[0].event_id.as_str());
     assert_eq!(
-        metric(&bench, &token, "halfwave_webhook_deliveries{state=\"delivered\"}").await,
+        metric(
+            &bench,
+            &token,
+            "halfwave_webhook_deliveries{state=\"delivered\"}"
+        )
+        .await,
         Some(1.0)
     );
 }

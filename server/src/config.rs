@@ -305,7 +305,8 @@ impl Config {
         }
         let mut urls = std::collections::HashSet::new();
         for (i, hook) in self.webhooks.iter().enumerate() {
-            hook.check(i).map_err(|(field, message)| invalid(&field, message))?;
+            hook.check(i)
+                .map_err(|(field, message)| invalid(&field, message))?;
             if !urls.insert(hook.url.as_str()) {
                 return Err(invalid(
                     &format!("webhook[{i}].url"),
@@ -433,8 +434,9 @@ mod tests {
         let twice = "[[webhook]]\nurl = \"http://192.0.2.7/\"\nsecret_env = \"A\"\n";
         let err = parse(&format!("{twice}{twice}")).unwrap_err();
         assert!(err.to_string().contains("webhook[1].url"), "{err}");
-        let err = parse("[[webhook]]\nurl = \"http://192.0.2.7/\"\nsecret_env = \"A\"\nsecret = \"x\"\n")
-            .unwrap_err();
+        let err =
+            parse("[[webhook]]\nurl = \"http://192.0.2.7/\"\nsecret_env = \"A\"\nsecret = \"x\"\n")
+                .unwrap_err();
         assert!(err.to_string().contains("line 4"), "{err}");
     }
 

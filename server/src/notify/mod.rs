@@ -210,7 +210,9 @@ async fn record_one(event: &ProgressEvent, store: &Store, receivers: &[Receiver]
 /// 128 random bits from the OS, as 32 hex digits.
 fn new_event_id() -> Result<String, String> {
     let mut bytes = [0u8; 16];
-    OsRng.try_fill_bytes(&mut bytes).map_err(|e| e.to_string())?;
+    OsRng
+        .try_fill_bytes(&mut bytes)
+        .map_err(|e| e.to_string())?;
     Ok(crate::api::tokens::hex(&bytes))
 }
 
@@ -225,7 +227,10 @@ struct Sender {
 async fn send(sender: Sender, wake: Arc<Notify>, stop: CancellationToken) {
     match sender.store.webhook_pending_due_now().await {
         Ok(0) => {}
-        Ok(pending) => tracing::info!(pending, "sending webhook deliveries left pending before the start"),
+        Ok(pending) => tracing::info!(
+            pending,
+            "sending webhook deliveries left pending before the start"
+        ),
         Err(e) => tracing::error!(error = %e, "cannot read the webhook outbox at start"),
     }
     loop {
@@ -255,7 +260,11 @@ impl Sender {
     /// Attempts every delivery due now, oldest first.
     async fn pass(&self) {
         loop {
-            let due = match self.store.due_webhook_deliveries(now_unix_ms(), BATCH).await {
+            let due = match self
+                .store
+                .due_webhook_deliveries(now_unix_ms(), BATCH)
+                .await
+            {
                 Ok(due) => due,
                 Err(e) => {
                     tracing::error!(error = %e, "cannot read the webhook outbox");
@@ -277,11 +286,7 @@ impl Sender {
 
     /// One attempt at one delivery, and its outcome stored.
     async fn attempt(&self, delivery: &WebhookDelivery) -> Result<(), crate::store::StoreError> {
-        let Some(receiver) = self
-            .receivers
-            .iter()
-            .find(|r| r.config.url == delivery.url)
-        else {
+        let Some(receiver) = self.receivers.iter().find(|r| r.config.url == delivery.url) else {
             return self
                 .store
                 .webhook_attempt_failed(
@@ -301,8 +306,12 @@ impl Sender {
             Err(error) => {
                 let retry = receiver.retry_after(attempts);
                 match retry {
-                    Some(pause) => tracing::warn!(url = %delivery.url, event = %delivery.event_type, attempts, retry_in_s = pause.as_secs_f64(), %error, "webhook delivery failed; will retry"),
-                    None => tracing::error!(url = %delivery.url, event = %delivery.event_type, event_id = %delivery.event_id, attempts, %error, "webhook delivery failed for good"),
+                    Some(pause) => {
+                        tracing::warn!(url = %delivery.url, event = %delivery.event_type, attempts, retry_in_s = pause.as_secs_f64(), %error, "webhook delivery failed; will retry")
+                    }
+                    None => {
+                        tracing::error!(url = %delivery.url, event = %delivery.event_type, event_id = %delivery.event_id, attempts, %error, "webhook delivery failed for good")
+                    }
                 }
                 let retry_at = retry.map(|pause| {
                     now_unix_ms() + i64::try_from(pause.as_millis()).unwrap_or(i64::MAX / 2)

@@ -81,13 +81,7 @@ pub fn payload(
             state,
             cause,
         } => (None, bench.clone(), None, state.clone(), cause.clone()),
-        other => (
-            other.run_id(),
-            String::new(),
-            None,
-            String::new(),
-            None,
-        ),
+        other => (other.run_id(), String::new(), None, String::new(), None),
     };
     let quoted = cause.as_deref().map(shorten);
     let run_text = |verb: &str| {
@@ -199,7 +193,10 @@ mod tests {
             kind_of(&finished("interrupted", None)),
             Some(EventKind::RunInterrupted)
         );
-        assert_eq!(kind_of(&finished("failed", None)), Some(EventKind::RunFailed));
+        assert_eq!(
+            kind_of(&finished("failed", None)),
+            Some(EventKind::RunFailed)
+        );
         let hold = |state: &str| ProgressEvent::BenchSafety {
             bench: "sim".into(),
             state: state.into(),
@@ -209,7 +206,10 @@ mod tests {
             kind_of(&hold("awaiting_acknowledgement")),
             Some(EventKind::BenchHold)
         );
-        assert_eq!(kind_of(&hold("output_unconfirmed")), Some(EventKind::BenchHold));
+        assert_eq!(
+            kind_of(&hold("output_unconfirmed")),
+            Some(EventKind::BenchHold)
+        );
         assert_eq!(kind_of(&hold("clear")), Some(EventKind::BenchHoldCleared));
         assert_eq!(
             kind_of(&ProgressEvent::Queued {
@@ -224,7 +224,13 @@ mod tests {
     fn a_failed_run_names_run_device_bench_and_cause() {
         let event = finished("failed", Some("the analyzer stopped answering"));
         // 2026-12-03 06:00:00 UTC (1,796,277,600 s since the epoch, checked with `date -u -d @1796277600`).
-        let p = payload(EventKind::RunFailed, "abc", 1_796_277_600_000, &event, Some(&run()));
+        let p = payload(
+            EventKind::RunFailed,
+            "abc",
+            1_796_277_600_000,
+            &event,
+            Some(&run()),
+        );
         assert_eq!(p.event_type, "run.failed");
         assert_eq!(p.occurred_at, "2026-12-03T06:00:00Z");
         assert_eq!(p.run_id, Some(7));

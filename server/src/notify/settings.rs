@@ -329,13 +329,16 @@ mod tests {
 
     #[test]
     fn backoff_doubles_is_capped_and_stops_at_the_attempt_limit() {
-        let config = hook("secret_env = \"A\"\nfirst_retry_s = 10\nmax_retry_s = 60\nmax_attempts = 6")
-            .unwrap();
+        let config =
+            hook("secret_env = \"A\"\nfirst_retry_s = 10\nmax_retry_s = 60\nmax_attempts = 6")
+                .unwrap();
         let r = Receiver {
             config,
             secret: vec![],
         };
-        let pauses: Vec<_> = (1..=6).map(|a| r.retry_after(a).map(|d| d.as_secs())).collect();
+        let pauses: Vec<_> = (1..=6)
+            .map(|a| r.retry_after(a).map(|d| d.as_secs()))
+            .collect();
         assert_eq!(
             pauses,
             [Some(10), Some(20), Some(40), Some(60), Some(60), None]
@@ -360,11 +363,18 @@ mod tests {
         assert!(!format!("{:?}", resolved[0]).contains("0123456789"));
 
         let err = resolve(&[from_env.clone()], |_| None, |p| p.to_path_buf()).unwrap_err();
-        assert!(err.contains("webhook[0].secret_env") && err.contains("HOOK_SECRET"), "{err}");
+        assert!(
+            err.contains("webhook[0].secret_env") && err.contains("HOOK_SECRET"),
+            "{err}"
+        );
         let err = resolve(&[from_env], |_| Some("short".into()), |p| p.to_path_buf()).unwrap_err();
         assert!(err.contains("at least 16"), "{err}");
-        let err = resolve(&[from_file], |_| None, |p| PathBuf::from("/nonexistent").join(p))
-            .unwrap_err();
+        let err = resolve(
+            &[from_file],
+            |_| None,
+            |p| PathBuf::from("/nonexistent").join(p),
+        )
+        .unwrap_err();
         assert!(err.contains("webhook[0].secret_file"), "{err}");
     }
 }

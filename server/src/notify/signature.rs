@@ -74,10 +74,7 @@ mod tests {
         let s = signature(b"Jefe", 1_700_000_000, "{}");
         assert_eq!(
             s,
-            format!(
-                "sha256={}",
-                hex(&hmac_sha256(b"Jefe", b"1700000000.{}"))
-            )
+            format!("sha256={}", hex(&hmac_sha256(b"Jefe", b"1700000000.{}")))
         );
         assert_ne!(s, signature(b"Jefe", 1_700_000_001, "{}"));
         assert_ne!(s, signature(b"Jefe", 1_700_000_000, "{ }"));

@@ -116,7 +116,9 @@ impl Store {
         .bind(now)
         .execute(&self.pool)
         .await
-        .map_err(StoreError::database("rescheduling pending webhook deliveries"))?;
+        .map_err(StoreError::database(
+            "rescheduling pending webhook deliveries",
+        ))?;
         Ok(self.webhook_delivery_counts().await?.pending.unsigned_abs())
     }
 
@@ -127,7 +129,9 @@ impl Store {
         )
         .fetch_one(&self.pool)
         .await
-        .map_err(StoreError::database("reading the next webhook delivery time"))
+        .map_err(StoreError::database(
+            "reading the next webhook delivery time",
+        ))
     }
 
     /// Every delivery, newest first, at most `limit` (for tests and inspection).
@@ -240,7 +244,10 @@ mod tests {
             .webhook_attempt_failed(a, "connection refused", Some(later))
             .await
             .unwrap();
-        store.webhook_attempt_failed(b, "HTTP 500", None).await.unwrap();
+        store
+            .webhook_attempt_failed(b, "HTTP 500", None)
+            .await
+            .unwrap();
         assert!(store
             .due_webhook_deliveries(now_unix_ms(), 10)
             .await
