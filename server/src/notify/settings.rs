@@ -362,7 +362,12 @@ mod tests {
         assert_eq!(resolved[1].secret, b"fedcba9876543210");
         assert!(!format!("{:?}", resolved[0]).contains("0123456789"));
 
-        let err = resolve(&[from_env.clone()], |_| None, |p| p.to_path_buf()).unwrap_err();
+        let err = resolve(
+            std::slice::from_ref(&from_env),
+            |_| None,
+            |p| p.to_path_buf(),
+        )
+        .unwrap_err();
         assert!(
             err.contains("webhook[0].secret_env") && err.contains("HOOK_SECRET"),
             "{err}"
