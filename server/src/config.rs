@@ -2,11 +2,13 @@
 //!
 //! The file names the benches (a source and an analyzer each, as SCPI resources with an optional
 //! command profile, or simulated), the safety limits, the data directory, the bind address and
-//! the database URL. Environment variables `HALFWAVE_BIND`, `HALFWAVE_DATA_DIR`,
+//! the database URL, and the receivers of event notifications (`[[webhook]]`, checked by
+//! `notify::settings`). Environment variables `HALFWAVE_BIND`, `HALFWAVE_DATA_DIR`,
 //! `HALFWAVE_DATABASE_URL` and `HALFWAVE_MAX_LEVEL_AT_MODULATOR_DBM` override the file (a
 //! container or systemd unit sets them without editing the file). An invalid file is refused at
 //! start-up with the line and the reason; nothing starts half-configured.
 
+use crate::notify::settings::WebhookConfig;
 use serde::{Deserialize, Serialize};
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
@@ -153,6 +155,9 @@ pub struct Config {
     pub limits: Limits,
     #[serde(default, rename = "bench")]
     pub benches: Vec<BenchConfig>,
+    /// Receivers of signed event notifications (`[[webhook]]`, see `crate::notify`).
+    #[serde(default, rename = "webhook")]
+    pub webhooks: Vec<WebhookConfig>,
     /// The directory relative paths are resolved against (the file's directory).
     #[serde(skip)]
     pub base_dir: PathBuf,
@@ -213,6 +218,7 @@ impl Config {
                 }),
                 source_level_accuracy_db: None,
             }],
+            webhooks: Vec::new(),
             base_dir: PathBuf::from("."),
         }
     }
@@ -310,6 +316,17 @@ impl Config {
                         format!("must be 0 or more, got {}", sim.time_factor),
                     ));
                 }
+            }
+        }
+        let mut urls = std::collections::HashSet::new();
+        for (i, hook) in self.webhooks.iter().enumerate() {
+            hook.check(i)
+                .map_err(|(field, message)| invalid(&field, message))?;
+            if !urls.insert(hook.url.as_str()) {
+                return Err(invalid(
+                    &format!("webhook[{i}].url"),
+                    format!("the receiver {:?} is listed twice; list each URL once (with the union of its events)", hook.url),
+                ));
             }
         }
         Ok(())
@@ -431,6 +448,25 @@ mod tests {
         )
         .unwrap_err();
         assert!(err.to_string().contains("simulation"), "{err}");
+    }
+
+    #[test]
+    fn webhook_tables_are_read_and_checked_by_key() {
+        let c = parse(
+            "[[webhook]]\nurl = \"http://192.0.2.7:9000/hook\"\nsecret_env = \"HOOK\"\nevents = [\"run.completed\"]\n",
+        )
+        .unwrap();
+        assert_eq!(c.webhooks.len(), 1);
+        assert_eq!(c.webhooks[0].max_attempts, 10);
+        let err = parse("[[webhook]]\nurl = \"http://192.0.2.7/\"\n").unwrap_err();
+        assert!(err.to_string().contains("webhook[0].secret_env"), "{err}");
+        let twice = "[[webhook]]\nurl = \"http://192.0.2.7/\"\nsecret_env = \"A\"\n";
+        let err = parse(&format!("{twice}{twice}")).unwrap_err();
+        assert!(err.to_string().contains("webhook[1].url"), "{err}");
+        let err =
+            parse("[[webhook]]\nurl = \"http://192.0.2.7/\"\nsecret_env = \"A\"\nsecret = \"x\"\n")
+                .unwrap_err();
+        assert!(err.to_string().contains("line 4"), "{err}");
     }
 
     #[test]

@@ -7,6 +7,7 @@
 //! - [`config`]: the daemon's TOML configuration with environment overrides.
 //! - [`data_claim`]: one daemon per data store (an OS file lock taken before anything starts).
 //! - [`engine`]: plans, the per-bench queue, the sweep executor and the RF-off interlocks.
+//! - [`notify`]: signed webhooks when a run ends or a bench is held, with a persistent outbox.
 //! - [`shutdown`]: waiting for SIGINT/SIGTERM.
 //! - [`telemetry`]: tracing set-up, done once at start.
 //! - [`version`]: the software version (crate version and git commit) runs record.
@@ -21,6 +22,7 @@ pub mod config;
 pub mod csv_table;
 pub mod data_claim;
 pub mod engine;
+pub mod notify;
 pub mod shutdown;
 pub mod store;
 pub mod telemetry;

@@ -248,3 +248,15 @@ impl Bench {
             .expect("bench sim listed")
     }
 }
+
+impl Bench {
+    /// Appends TOML text to the daemon's configuration file (before `serve`).
+    pub fn append_config(&self, text: &str) {
+        use std::io::Write;
+        let mut file = std::fs::OpenOptions::new()
+            .append(true)
+            .open(&self.config)
+            .unwrap();
+        file.write_all(text.as_bytes()).unwrap();
+    }
+}

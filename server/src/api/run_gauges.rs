@@ -1,5 +1,6 @@
 //! Run and queue gauges for the Prometheus metrics: runs by state, each bench's queue, the
-//! points committed since the daemon started and the progress of the runs being measured.
+//! points committed since the daemon started, the progress of the runs being measured, and the
+//! webhook outbox by state.
 //!
 //! Runs by state come from the database at each scrape (one grouped count over an indexed
 //! column), so they count runs of every process that wrote there. Queues come from the engine's
@@ -12,7 +13,7 @@
 use super::metrics::escape_label;
 use crate::engine::events::ProgressEvent;
 use crate::engine::Engine;
-use crate::store::{BenchFault, RunState};
+use crate::store::{BenchFault, RunState, WebhookDeliveryCounts};
 use std::collections::HashMap;
 use std::fmt::Write as _;
 use std::sync::atomic::{AtomicU64, Ordering};
@@ -155,6 +156,24 @@ pub fn render_runs_by_state(counts: &[(String, i64)], out: &mut String) {
         "gauge",
         "Runs in the database by state.",
         samples,
+    );
+}
+
+/// Appends the webhook outbox by state (`store::webhooks`): pending (waiting for an attempt or a
+/// retry), delivered, and failed (attempts used up; see the daemon's log for the last error).
+pub fn render_webhook_deliveries(counts: &WebhookDeliveryCounts, out: &mut String) {
+    family(
+        out,
+        "halfwave_webhook_deliveries",
+        "gauge",
+        "Webhook deliveries in the database by state.",
+        [
+            ("pending", counts.pending),
+            ("delivered", counts.delivered),
+            ("failed", counts.failed),
+        ]
+        .into_iter()
+        .map(|(state, n)| (format!("{{state=\"{state}\"}}"), n.to_string())),
     );
 }
 

@@ -7,7 +7,9 @@
 //! migrated, and only then does the engine switch every configured source off and mark runs left
 //! running as interrupted, before the HTTP listener accepts requests. On SIGINT or SIGTERM the
 //! listener stops taking requests, the engine cancels the active runs (they become interrupted,
-//! so they can be resumed) and switches every source off before the process exits.
+//! so they can be resumed) and switches every source off before the process exits; then the
+//! webhook notifier (`crate::notify`, started after the engine, its secrets read before anything
+//! else) records the interruptions and makes its last delivery pass.
 
 use super::CliError;
 use crate::config::Config;
@@ -55,7 +57,15 @@ async fn token_hint(store: &Store, config_path: Option<&Path>) -> Option<String>
 /// Opens the store, starts the engine and serves the API until SIGINT/SIGTERM. `config_path`
 /// (the file the configuration came from) is only used in hints.
 pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), CliError> {
+    // Webhook secrets are read before anything starts: a missing one stops the daemon here.
+    let receivers = crate::notify::settings::resolve(
+        &config.webhooks,
+        |name| std::env::var(name).ok(),
+        |path| config.resolve(path),
+    )
+    .map_err(CliError::new)?;
     let (engine, listener, _claim) = start(&config).await?;
+    let notifier = crate::notify::Notifier::start(&engine, receivers);
     let address = listener
         .local_addr()
         .map_err(|e| CliError::new(format!("cannot read the bound address: {e}")))?;
@@ -75,6 +85,10 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
     })
     .await;
     engine.shutdown().await;
+    // After the engine: the runs it interrupted are notified (or kept pending for next time).
+    if let Some(notifier) = notifier {
+        notifier.shutdown().await;
+    }
     stopped.map_err(|e| CliError::new(format!("the HTTP server failed: {e}")))?;
     outln!("halfwave stopped: runs interrupted where they were, RF outputs off");
     Ok(())

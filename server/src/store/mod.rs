@@ -16,7 +16,8 @@
 //! instruments), [`calibrations`](self::calibrations), [`runs`](self::runs) (life cycle, listing,
 //! recovery), [`points`](self::points) (points, traces, results), [`history`](self::history) (V_pi
 //! history, the lookup and plot rules, interpolation, comparison), [`pins`](self::pins) (a
-//! device's pinned reference calibration) and [`audit`](self::audit).
+//! device's pinned reference calibration), [`webhooks`](self::webhooks) (the notifications'
+//! outbox) and [`audit`](self::audit).
 
 pub mod api_reads;
 pub mod audit;
@@ -32,12 +33,14 @@ pub mod records;
 pub mod runs;
 pub mod tokens;
 pub mod trace_codec;
+pub mod webhooks;
 
 pub use api_reads::CompletedRunsFingerprint;
 pub use bench_safety::{BenchFault, BenchSafetyRecord};
 pub use error::StoreError;
 pub use records::*;
 pub use trace_codec::TraceCodecError;
+pub use webhooks::{NewWebhookDelivery, WebhookDelivery, WebhookDeliveryCounts};
 
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,

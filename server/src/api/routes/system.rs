@@ -96,6 +96,8 @@ pub async fn metrics(_caller: Viewer, State(state): State<AppState>) -> Result<R
     if let (Ok(engine), Some(gauges)) = (state.engine(), state.run_gauges()) {
         run_gauges::render_engine(engine, gauges, &mut out);
     }
+    let webhooks = state.store().webhook_delivery_counts().await?;
+    run_gauges::render_webhook_deliveries(&webhooks, &mut out);
     state.http_metrics().render(&mut out);
     Ok((
         [(CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],

@@ -1,0 +1,285 @@
+//! Webhook deliveries (table `webhook_deliveries`, migration 0010): the notifier's outbox.
+//!
+//! A delivery is written `pending` when the notifier sees an event (one row per event and
+//! receiver URL, the JSON body fixed then), and moved after each attempt: to `delivered`, to
+//! `failed` once its attempts are used up, or kept `pending` with the time of the next attempt
+//! and the last error. Because the outbox is in the database, a daemon that stops or dies with
+//! deliveries outstanding sends them after it starts again. See `crate::notify`.
+
+use super::{now_unix_ms, Store, StoreError};
+
+/// One delivery as stored.
+#[derive(Debug, Clone, PartialEq, Eq, sqlx::FromRow)]
+pub struct WebhookDelivery {
+    pub id: i64,
+    pub event_id: String,
+    pub event_type: String,
+    pub url: String,
+    pub body: String,
+    /// `pending`, `delivered` or `failed`.
+    pub state: String,
+    pub attempts: i64,
+    pub next_attempt_at_unix_ms: i64,
+    pub last_error: Option<String>,
+    pub created_at_unix_ms: i64,
+    pub delivered_at_unix_ms: Option<i64>,
+}
+
+/// A delivery to be written: one event for one receiver.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct NewWebhookDelivery<'a> {
+    pub event_id: &'a str,
+    pub event_type: &'a str,
+    pub url: &'a str,
+    pub body: &'a str,
+}
+
+/// Deliveries by state, for the metrics.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct WebhookDeliveryCounts {
+    pub pending: i64,
+    pub delivered: i64,
+    pub failed: i64,
+}
+
+/// The columns of [`WebhookDelivery`], for `concat!` (sqlx wants static SQL).
+macro_rules! columns {
+    () => {
+        "id, event_id, event_type, url, body, state, attempts, next_attempt_at_unix_ms, \
+         last_error, created_at_unix_ms, delivered_at_unix_ms"
+    };
+}
+
+impl Store {
+    /// Records deliveries as pending, due now, in one transaction. A delivery already recorded
+    /// for the same event and URL is left as it is.
+    pub async fn add_webhook_deliveries(
+        &self,
+        deliveries: &[NewWebhookDelivery<'_>],
+    ) -> Result<(), StoreError> {
+        let now = now_unix_ms();
+        let mut tx = self
+            .pool
+            .begin()
+            .await
+            .map_err(StoreError::database("recording webhook deliveries"))?;
+        for d in deliveries {
+            sqlx::query(
+                "INSERT INTO webhook_deliveries \
+                 (event_id, event_type, url, body, state, attempts, next_attempt_at_unix_ms, created_at_unix_ms) \
+                 VALUES (?, ?, ?, ?, 'pending', 0, ?, ?) ON CONFLICT (event_id, url) DO NOTHING",
+            )
+            .bind(d.event_id)
+            .bind(d.event_type)
+            .bind(d.url)
+            .bind(d.body)
+            .bind(now)
+            .bind(now)
+            .execute(&mut *tx)
+            .await
+            .map_err(StoreError::database("recording a webhook delivery"))?;
+        }
+        tx.commit()
+            .await
+            .map_err(StoreError::database("recording webhook deliveries"))
+    }
+
+    /// Pending deliveries due at `now_ms`, oldest first, at most `limit`.
+    pub async fn due_webhook_deliveries(
+        &self,
+        now_ms: i64,
+        limit: i64,
+    ) -> Result<Vec<WebhookDelivery>, StoreError> {
+        sqlx::query_as(concat!(
+            "SELECT ",
+            columns!(),
+            " FROM webhook_deliveries WHERE state = 'pending' AND next_attempt_at_unix_ms <= ? \
+             ORDER BY next_attempt_at_unix_ms, id LIMIT ?"
+        ))
+        .bind(now_ms)
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(StoreError::database("reading due webhook deliveries"))
+    }
+
+    /// Makes every pending delivery due now (at start-up: a restart often follows a fix at the
+    /// receiver's end, so waiting out a long backoff would only delay the news). Returns how many
+    /// are pending.
+    pub async fn webhook_pending_due_now(&self) -> Result<u64, StoreError> {
+        let now = now_unix_ms();
+        sqlx::query(
+            "UPDATE webhook_deliveries SET next_attempt_at_unix_ms = ? \
+             WHERE state = 'pending' AND next_attempt_at_unix_ms > ?",
+        )
+        .bind(now)
+        .bind(now)
+        .execute(&self.pool)
+        .await
+        .map_err(StoreError::database(
+            "rescheduling pending webhook deliveries",
+        ))?;
+        Ok(self.webhook_delivery_counts().await?.pending.unsigned_abs())
+    }
+
+    /// When the next pending delivery is due; `None` when none is pending.
+    pub async fn next_webhook_due_at(&self) -> Result<Option<i64>, StoreError> {
+        sqlx::query_scalar(
+            "SELECT MIN(next_attempt_at_unix_ms) FROM webhook_deliveries WHERE state = 'pending'",
+        )
+        .fetch_one(&self.pool)
+        .await
+        .map_err(StoreError::database(
+            "reading the next webhook delivery time",
+        ))
+    }
+
+    /// Every delivery, newest first, at most `limit` (for tests and inspection).
+    pub async fn webhook_deliveries(&self, limit: i64) -> Result<Vec<WebhookDelivery>, StoreError> {
+        sqlx::query_as(concat!(
+            "SELECT ",
+            columns!(),
+            " FROM webhook_deliveries ORDER BY id DESC LIMIT ?"
+        ))
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await
+        .map_err(StoreError::database("reading webhook deliveries"))
+    }
+
+    /// Marks a delivery delivered after its attempt.
+    pub async fn webhook_delivered(&self, id: i64) -> Result<(), StoreError> {
+        sqlx::query(
+            "UPDATE webhook_deliveries SET state = 'delivered', attempts = attempts + 1, \
+             delivered_at_unix_ms = ?, last_error = NULL WHERE id = ?",
+        )
+        .bind(now_unix_ms())
+        .bind(id)
+        .execute(&self.pool)
+        .await
+        .map_err(StoreError::database("marking a webhook delivered"))?;
+        Ok(())
+    }
+
+    /// Records a failed attempt: the delivery stays pending until `retry_at_unix_ms`, or becomes
+    /// `failed` for good when that is `None`.
+    pub async fn webhook_attempt_failed(
+        &self,
+        id: i64,
+        error: &str,
+        retry_at_unix_ms: Option<i64>,
+    ) -> Result<(), StoreError> {
+        let (state, next) = match retry_at_unix_ms {
+            Some(at) => ("pending", at),
+            None => ("failed", now_unix_ms()),
+        };
+        sqlx::query(
+            "UPDATE webhook_deliveries SET state = ?, attempts = attempts + 1, \
+             next_attempt_at_unix_ms = ?, last_error = ? WHERE id = ?",
+        )
+        .bind(state)
+        .bind(next)
+        .bind(error)
+        .bind(id)
+        .execute(&self.pool)
+        .await
+        .map_err(StoreError::database("recording a failed webhook attempt"))?;
+        Ok(())
+    }
+
+    /// Deliveries by state (one grouped count).
+    pub async fn webhook_delivery_counts(&self) -> Result<WebhookDeliveryCounts, StoreError> {
+        let rows: Vec<(String, i64)> =
+            sqlx::query_as("SELECT state, COUNT(*) FROM webhook_deliveries GROUP BY state")
+                .fetch_all(&self.pool)
+                .await
+                .map_err(StoreError::database("counting webhook deliveries"))?;
+        let mut counts = WebhookDeliveryCounts::default();
+        for (state, n) in rows {
+            match state.as_str() {
+                "pending" => counts.pending = n,
+                "delivered" => counts.delivered = n,
+                "failed" => counts.failed = n,
+                _ => {}
+            }
+        }
+        Ok(counts)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn new<'a>(event_id: &'a str, url: &'a str) -> NewWebhookDelivery<'a> {
+        NewWebhookDelivery {
+            event_id,
+            event_type: "run.completed",
+            url,
+            body: "{}",
+        }
+    }
+
+    #[tokio::test]
+    async fn a_delivery_goes_pending_retry_then_delivered_or_failed() {
+        let store = Store::open_in_memory().await.unwrap();
+        store
+            .add_webhook_deliveries(&[new("e1", "http://a/"), new("e1", "http://b/")])
+            .await
+            .unwrap();
+        // The same event for the same URL is not recorded twice.
+        store
+            .add_webhook_deliveries(&[new("e1", "http://a/")])
+            .await
+            .unwrap();
+        let due = store
+            .due_webhook_deliveries(now_unix_ms(), 10)
+            .await
+            .unwrap();
+        assert_eq!(due.len(), 2);
+        let (a, b) = (due[0].id, due[1].id);
+
+        let later = now_unix_ms() + 60_000;
+        store
+            .webhook_attempt_failed(a, "connection refused", Some(later))
+            .await
+            .unwrap();
+        store
+            .webhook_attempt_failed(b, "HTTP 500", None)
+            .await
+            .unwrap();
+        assert!(store
+            .due_webhook_deliveries(now_unix_ms(), 10)
+            .await
+            .unwrap()
+            .is_empty());
+        assert_eq!(store.next_webhook_due_at().await.unwrap(), Some(later));
+        // At start-up every pending delivery becomes due at once.
+        assert_eq!(store.webhook_pending_due_now().await.unwrap(), 1);
+        assert!(store.next_webhook_due_at().await.unwrap().unwrap() <= now_unix_ms());
+        store
+            .webhook_attempt_failed(a, "connection refused", Some(later))
+            .await
+            .unwrap();
+        let due = store.due_webhook_deliveries(later, 10).await.unwrap();
+        assert_eq!(due.len(), 1);
+        assert_eq!(due[0].attempts, 2);
+        assert_eq!(due[0].last_error.as_deref(), Some("connection refused"));
+
+        store.webhook_delivered(a).await.unwrap();
+        assert_eq!(
+            store.webhook_delivery_counts().await.unwrap(),
+            WebhookDeliveryCounts {
+                pending: 0,
+                delivered: 1,
+                failed: 1
+            }
+        );
+        assert_eq!(store.next_webhook_due_at().await.unwrap(), None);
+        let all = store.webhook_deliveries(10).await.unwrap();
+        let delivered = all.iter().find(|d| d.id == a).unwrap();
+        assert_eq!(delivered.attempts, 3);
+        assert!(delivered.delivered_at_unix_ms.is_some());
+        assert_eq!(delivered.last_error, None);
+    }
+}

@@ -1,0 +1,465 @@
+//! Webhook notifications from the real `halfwave serve` process (simulated bench over SCPI/TCP),
+//! to a receiver run by this test on 127.0.0.1:
+//! - a completed run and a cancelled one: the event set per receiver (one filtered to
+//!   `run.cancelled`), the payload, and the signature checked against an HMAC-SHA256 computed here
+//!   from SHA-256 by the construction of RFC 2104 (not with the daemon's `hmac` crate);
+//! - a receiver answering 503 twice, then 204: delivered on the third attempt with the same event
+//!   id and body, the pauses growing as configured;
+//! - a receiver that is down while SIGTERM interrupts a run: the delivery stays pending in the
+//!   database, and the restarted daemon delivers it once the receiver is up.
+
+mod engine_support;
+
+mod daemon_support;
+
+use axum::body::Bytes;
+use axum::http::{HeaderMap, StatusCode};
+use daemon_support::Bench;
+use halfwave::store::Store;
+use serde_json::{json, Value};
+use sha2::{Digest, Sha256};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+
+/// The shared secret of the tests (an invented value).
+const SECRET: &str = "lab-b-webhook-secret-0123456789abcdef";
+
+/// One request the receiver got.
+#[derive(Debug, Clone)]
+struct Received {
+    path: String,
+    headers: HeaderMap,
+    body: String,
+    at: Instant,
+}
+
+/// A receiver on 127.0.0.1 that records every POST and answers 503 to the first `fail_first`.
+#[derive(Clone)]
+struct Receiver {
+    got: Arc<Mutex<Vec<Received>>>,
+    port: u16,
+}
+
+impl Receiver {
+    async fn start_on(port: u16, fail_first: usize) -> Receiver {
+        let got: Arc<Mutex<Vec<Received>>> = Arc::default();
+        let count = Arc::new(AtomicUsize::new(0));
+        let recorder = got.clone();
+        let app = axum::Router::new().fallback(
+            move |uri: axum::http::Uri, headers: HeaderMap, body: Bytes| {
+                let recorder = recorder.clone();
+                let count = count.clone();
+                async move {
+                    recorder.lock().unwrap().push(Received {
+                        path: uri.path().to_string(),
+                        headers,
+                        body: String::from_utf8(body.to_vec()).unwrap(),
+                        at: Instant::now(),
+                    });
+                    if count.fetch_add(1, Ordering::SeqCst) < fail_first {
+                        StatusCode::SERVICE_UNAVAILABLE
+                    } else {
+                        StatusCode::NO_CONTENT
+                    }
+                }
+            },
+        );
+        let listener = tokio::net::TcpListener::bind(("127.0.0.1", port))
+            .await
+            .unwrap();
+        let port = listener.local_addr().unwrap().port();
+        tokio::spawn(async move { axum::serve(listener, app).await.unwrap() });
+        Receiver { got, port }
+    }
+
+    fn url(&self, path: &str) -> String {
+        format!("http://127.0.0.1:{}{path}", self.port)
+    }
+
+    fn received(&self) -> Vec<Received> {
+        self.got.lock().unwrap().clone()
+    }
+
+    /// Waits until at least `n` requests have arrived (up to `limit`).
+    async fn wait_for(&self, n: usize, limit: Duration) -> Vec<Received> {
+        let deadline = Instant::now() + limit;
+        loop {
+            let got = self.received();
+            if got.len() >= n {
+                return got;
+            }
+            assert!(
+                Instant::now() < deadline,
+                "{} of {n} deliveries arrived: {got:?}",
+                got.len()
+            );
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+}
+
+/// HMAC-SHA256 by RFC 2104: H((K ^ opad) || H((K ^ ipad) || m)), a 64-byte block, with `sha2`.
+fn reference_hmac_sha256(key: &[u8], message: &[u8]) -> String {
+    let mut block = [0u8; 64];
+    if key.len() > 64 {
+        block[..32].copy_from_slice(&Sha256::digest(key));
+    } else {
+        block[..key.len()].copy_from_slice(key);
+    }
+    let inner_key: Vec<u8> = block.iter().map(|b| b ^ 0x36).collect();
+    let outer_key: Vec<u8> = block.iter().map(|b| b ^ 0x5c).collect();
+    let inner = Sha256::digest([&inner_key[..], message].concat());
+    let outer = Sha256::digest([&outer_key[..], &inner[..]].concat());
+    outer.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+#[test]
+fn the_reference_hmac_matches_rfc_4231_test_case_2() {
+    // RFC 4231, section 4.3: key "Jefe", data "what do ya want for nothing?".
+    assert_eq!(
+        reference_hmac_sha256(b"Jefe", b"what do ya want for nothing?"),
+        "5bdcc146bf60754e6a042426089575c75a003f089d2739839dec58b964ec3843"
+    );
+}
+
+fn header<'a>(r: &'a Received, name: &str) -> &'a str {
+    r.headers
+        .get(name)
+        .unwrap_or_else(|| panic!("header {name} missing: {:?}", r.headers))
+        .to_str()
+        .unwrap()
+}
+
+/// Checks the signature as a receiver would (README, "Notifications") and returns the body.
+fn verified(r: &Received) -> Value {
+    let timestamp = header(r, "Halfwave-Timestamp");
+    let expected = format!(
+        "sha256={}",
+        reference_hmac_sha256(
+            SECRET.as_bytes(),
+            format!("{timestamp}.{}", r.body).as_bytes()
+        )
+    );
+    assert_eq!(header(r, "Halfwave-Signature"), expected, "{r:?}");
+    let now = SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .unwrap()
+        .as_secs() as i64;
+    let sent: i64 = timestamp.parse().unwrap();
+    assert!(
+        (now - sent).abs() <= 60,
+        "timestamp {sent} against now {now}"
+    );
+    assert_eq!(
+        header(r, "Content-Type"),
+        "application/json",
+        "{:?}",
+        r.headers
+    );
+    let body: Value = serde_json::from_str(&r.body).unwrap();
+    assert_eq!(header(r, "Halfwave-Event-Id"), body["event_id"], "{body}");
+    assert_eq!(header(r, "Halfwave-Event"), body["event_type"], "{body}");
+    body
+}
+
+/// A short plan on bench "sim": one frequency, nine levels, no settling.
+fn short_plan() -> Value {
+    let mut plan = daemon_support::plan();
+    plan["frequencies"] = json!({"kind": "list", "values_hz": [1.5e9]});
+    plan
+}
+
+/// Writes the secret file and appends a `[[webhook]]` table.
+fn add_webhook(bench: &Bench, url: &str, extra: &str) {
+    let secret = bench.dir.path().join("webhook.secret");
+    std::fs::write(&secret, format!("{SECRET}\n")).unwrap();
+    bench.append_config(&format!(
+        "\n[[webhook]]\nurl = \"{url}\"\nsecret_file = \"{}\"\n{extra}\n",
+        secret.display()
+    ));
+}
+
+/// Runs the Python `verify` of README.md's "Notifications" section on a delivery, as of `now`.
+fn readme_python_verify(r: &Received, body: &str, now: i64) -> bool {
+    let readme =
+        std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/../README.md")).unwrap();
+    let section = &readme[readme
+        .find("## Notifications")
+        .expect("README has Notifications")..];
+    let start = section.find("```python\n").expect("a Python example") + "```python\n".len();
+    let snippet = &section[start..start + section[start..].find("```").unwrap()];
+    let script = format!(
+        "{snippet}\nimport sys\nheaders = {{'Halfwave-Timestamp': sys.argv[1], 'Halfwave-Signature': sys.argv[2]}}\nprint(verify(sys.argv[3].encode(), headers, sys.stdin.buffer.read(), float(sys.argv[4])))\n"
+    );
+    let mut child = std::process::Command::new("python3")
+        .arg("-c")
+        .arg(script)
+        .arg(header(r, "Halfwave-Timestamp"))
+        .arg(header(r, "Halfwave-Signature"))
+        .arg(SECRET)
+        .arg(now.to_string())
+        .stdin(std::process::Stdio::piped())
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .expect("python3 runs (README's verification example)");
+    use std::io::Write;
+    child
+        .stdin
+        .take()
+        .unwrap()
+        .write_all(body.as_bytes())
+        .unwrap();
+    let out = child.wait_with_output().unwrap();
+    assert!(out.status.success(), "{out:?}");
+    match String::from_utf8(out.stdout).unwrap().trim() {
+        "True" => true,
+        "False" => false,
+        other => panic!("the README example printed {other:?}"),
+    }
+}
+
+async fn metric(bench: &Bench, token: &str, line_start: &str) -> Option<f64> {
+    let text = bench
+        .client
+        .get(bench.url("/api/v1/metrics"))
+        .bearer_auth(token)
+        .send()
+        .await
+        .unwrap()
+        .text()
+        .await
+        .unwrap();
+    text.lines()
+        .find_map(|l| l.strip_prefix(line_start))
+        .and_then(|v| v.trim().parse().ok())
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_that_wants_them() {
+    let receiver = Receiver::start_on(0, 0).await;
+    let bench = Bench::new(41).await;
+    add_webhook(&bench, &receiver.url("/all"), "");
+    add_webhook(
+        &bench,
+        &receiver.url("/cancels"),
+        "events = [\"run.cancelled\"]",
+    );
+    let token = bench.operator_token().await;
+    let _daemon = bench.serve("daemon.log").await;
+
+    let completed = bench.submit_plan(&token, &short_plan()).await;
+    // A second run waits behind the first and is cancelled while queued.
+    let cancelled = bench.submit_plan(&token, &short_plan()).await;
+    let response = bench
+        .post(
+            &format!("/api/v1/runs/{cancelled}/cancel"),
+            &token,
+            &json!({}),
+        )
+        .await;
+    assert!(response.status().is_success(), "{:?}", response.status());
+    bench
+        .wait_for(completed, &token, Duration::from_secs(120), |r| {
+            r["state"] == "completed"
+        })
+        .await;
+
+    let got = receiver.wait_for(3, Duration::from_secs(30)).await;
+    // Nothing more arrives (no progress events, no second copy).
+    tokio::time::sleep(Duration::from_millis(500)).await;
+    let got_now = receiver.received();
+    assert_eq!(got_now.len(), 3, "{got_now:?}");
+
+    let to = |path: &str| -> Vec<Value> {
+        got.iter()
+            .filter(|r| r.path == path)
+            .map(verified)
+            .collect()
+    };
+    let all = to("/all");
+    let mut types: Vec<(&str, i64)> = all
+        .iter()
+        .map(|b| {
+            (
+                b["event_type"].as_str().unwrap(),
+                b["run_id"].as_i64().unwrap(),
+            )
+        })
+        .collect();
+    types.sort();
+    assert_eq!(
+        types,
+        [("run.cancelled", cancelled), ("run.completed", completed)]
+    );
+    let done = all
+        .iter()
+        .find(|b| b["event_type"] == "run.completed")
+        .unwrap();
+    assert_eq!(done["bench"], "sim");
+    assert_eq!(done["device_serial"], "EG-PM-0042");
+    assert_eq!(done["state"], "completed");
+    assert_eq!(
+        done["summary"],
+        format!("run {completed} (device EG-PM-0042) on bench sim completed")
+    );
+    assert!(
+        done["occurred_at"].as_str().unwrap().ends_with('Z'),
+        "{done}"
+    );
+
+    let cancels = to("/cancels");
+    assert_eq!(cancels.len(), 1, "{cancels:?}");
+    assert_eq!(cancels[0]["event_type"], "run.cancelled");
+    assert_eq!(cancels[0]["run_id"], cancelled);
+    // The same event carries the same id to every receiver.
+    let same = all
+        .iter()
+        .find(|b| b["event_type"] == "run.cancelled")
+        .unwrap();
+    assert_eq!(same["event_id"], cancels[0]["event_id"]);
+    assert_ne!(same["event_id"], done["event_id"]);
+
+    // README's Python example accepts a real delivery, and refuses a changed body and a
+    // timestamp outside its 5-minute window.
+    let sent: i64 = header(&got[0], "Halfwave-Timestamp").parse().unwrap();
+    assert!(readme_python_verify(&got[0], &got[0].body, sent + 10));
+    assert!(!readme_python_verify(
+        &got[0],
+        &got[0].body.replace("sim", "sin"),
+        sent + 10
+    ));
+    assert!(!readme_python_verify(&got[0], &got[0].body, sent + 301));
+
+    assert_eq!(
+        metric(
+            &bench,
+            &token,
+            "halfwave_webhook_deliveries{state=\"delivered\"}"
+        )
+        .await,
+        Some(3.0)
+    );
+    assert_eq!(
+        metric(
+            &bench,
+            &token,
+            "halfwave_webhook_deliveries{state=\"pending\"}"
+        )
+        .await,
+        Some(0.0)
+    );
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_receiver_down_then_up_gets_the_delivery_on_a_later_attempt_with_growing_pauses() {
+    // 503 to the first two attempts, 204 afterwards.
+    let receiver = Receiver::start_on(0, 2).await;
+    let bench = Bench::new(42).await;
+    add_webhook(
+        &bench,
+        &receiver.url("/hook"),
+        "first_retry_s = 0.4\nmax_retry_s = 5\nmax_attempts = 5",
+    );
+    let token = bench.operator_token().await;
+    let _daemon = bench.serve("daemon.log").await;
+    let run_id = bench.submit_plan(&token, &short_plan()).await;
+    bench
+        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
+            r["state"] == "completed"
+        })
+        .await;
+
+    let got = receiver.wait_for(3, Duration::from_secs(30)).await;
+    let bodies: Vec<Value> = got.iter().map(verified).collect();
+    assert!(bodies.iter().all(|b| b == &bodies[0]), "{bodies:?}");
+    assert_eq!(bodies[0]["event_type"], "run.completed");
+    assert_eq!(bodies[0]["run_id"], run_id);
+    // 0.4 s before the second attempt, 0.8 s before the third (a little slack for the clock).
+    let first_pause = got[1].at - got[0].at;
+    let second_pause = got[2].at - got[1].at;
+    assert!(first_pause >= Duration::from_millis(350), "{first_pause:?}");
+    assert!(
+        second_pause >= Duration::from_millis(750),
+        "{second_pause:?}"
+    );
+    assert!(
+        second_pause > first_pause,
+        "{first_pause:?} then {second_pause:?}"
+    );
+
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    assert_eq!(
+        receiver.received().len(),
+        3,
+        "no attempt after the delivery"
+    );
+    let store = Store::open(bench.database().to_str().unwrap())
+        .await
+        .unwrap();
+    let rows = store.webhook_deliveries(10).await.unwrap();
+    assert_eq!(rows.len(), 1, "{rows:?}");
+    assert_eq!(rows[0].state, "delivered");
+    assert_eq!(rows[0].attempts, 3);
+    assert_eq!(rows[0].event_id, bodies[0]["event_id"].as_str().unwrap());
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
+    // Nothing listens on this port until the daemon has stopped.
+    let port = daemon_support::free_port();
+    let bench = Bench::new(43).await;
+    add_webhook(
+        &bench,
+        &format!("http://127.0.0.1:{port}/hook"),
+        "first_retry_s = 3600",
+    );
+    let token = bench.operator_token().await;
+    let mut daemon = bench.serve("first.log").await;
+    let run_id = daemon_support::submit(&bench, &token).await;
+    bench
+        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
+            r["measured_points"].as_u64().unwrap_or(0) >= 3
+        })
+        .await;
+    let pid = daemon.id().expect("the daemon is running");
+    let pid = rustix::process::Pid::from_raw(pid as i32).unwrap();
+    rustix::process::kill_process(pid, rustix::process::Signal::TERM).unwrap();
+    let status = tokio::time::timeout(Duration::from_secs(30), daemon.wait())
+        .await
+        .expect("the daemon exits within 30 s of SIGTERM")
+        .unwrap();
+    assert!(status.success(), "{status:?}: {}", bench.log("first.log"));
+
+    // The interruption was recorded and attempted once at shutdown (refused: nobody listens).
+    let store = Store::open(bench.database().to_str().unwrap())
+        .await
+        .unwrap();
+    let rows = store.webhook_deliveries(10).await.unwrap();
+    store.close().await;
+    assert_eq!(rows.len(), 1, "{rows:?}");
+    assert_eq!(rows[0].event_type, "run.interrupted");
+    assert_eq!(rows[0].state, "pending");
+    assert_eq!(rows[0].attempts, 1, "{rows:?}");
+    assert!(rows[0].last_error.is_some());
+
+    // The receiver comes up; the restarted daemon sends what was pending at once, despite the
+    // hour-long backoff.
+    let receiver = Receiver::start_on(port, 0).await;
+    let _daemon = bench.serve("second.log").await;
+    let got = receiver.wait_for(1, Duration::from_secs(30)).await;
+    let body = verified(&got[0]);
+    assert_eq!(body["event_type"], "run.interrupted");
+    assert_eq!(body["run_id"], run_id);
+    assert_eq!(body["state"], "interrupted");
+    assert_eq!(body["event_id"], rows[0].event_id.as_str());
+    assert_eq!(
+        metric(
+            &bench,
+            &token,
+            "halfwave_webhook_deliveries{state=\"delivered\"}"
+        )
+        .await,
+        Some(1.0)
+    );
+}
