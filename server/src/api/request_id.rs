@@ -35,9 +35,22 @@ fn acceptable(id: &str) -> bool {
             .all(|b| b.is_ascii_alphanumeric() || matches!(b, b'.' | b'_' | b'-'))
 }
 
-/// A fresh id: 64 random bits, so ids from several daemons or restarts do not collide in practice.
+/// A fresh id: 64 random bits from the OS, so ids from several daemons or restarts do not
+/// collide in practice (should the OS refuse, a per-process count mixed with the clock).
 fn fresh() -> String {
-    format!("hw-{:016x}", rand::random::<u64>())
+    use rand::rngs::OsRng;
+    use rand::TryRngCore;
+    static COUNT: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
+    let bits = OsRng.try_next_u64().unwrap_or_else(|_| {
+        let nanos = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map_or(0, |d| d.as_nanos() as u64);
+        nanos
+            ^ COUNT
+                .fetch_add(1, std::sync::atomic::Ordering::Relaxed)
+                .rotate_left(40)
+    });
+    format!("hw-{bits:016x}")
 }
 
 /// Middleware: assigns the id, runs the request inside a span that carries it, and stamps the
