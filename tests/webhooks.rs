@@ -463,3 +463,36 @@ async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
         Some(1.0)
     );
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_run_a_killed_daemon_left_running_is_notified_as_interrupted_at_the_next_start() {
+    // SIGKILL leaves no chance to notify; the next start marks the run interrupted and must
+    // notify it then, once.
+    let receiver = Receiver::start_on(0, 0).await;
+    let bench = Bench::new(44).await;
+    add_webhook(&bench, &receiver.url("/hook"), "");
+    let token = bench.operator_token().await;
+    let mut daemon = bench.serve("first.log").await;
+    let run_id = daemon_support::submit(&bench, &token).await;
+    bench
+        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
+            r["measured_points"].as_u64().unwrap_or(0) >= 2
+        })
+        .await;
+    daemon.start_kill().expect("SIGKILL sent");
+    daemon.wait().await.unwrap();
+    assert!(
+        receiver.received().is_empty(),
+        "nothing was sent before the kill"
+    );
+
+    let _daemon = bench.serve("second.log").await;
+    let got = receiver.wait_for(1, Duration::from_secs(30)).await;
+    let body = verified(&got[0]);
+    assert_eq!(body["event_type"], "run.interrupted");
+    assert_eq!(body["run_id"], run_id);
+    assert_eq!(body["state"], "interrupted");
+    // Only once: a later start finds nothing running.
+    tokio::time::sleep(Duration::from_secs(1)).await;
+    assert_eq!(receiver.received().len(), 1);
+}

@@ -137,6 +137,8 @@ struct Inner {
     benches: HashMap<String, Arc<BenchSlot>>,
     /// Each bench's stated generator level accuracy (+/- dB, from the configuration), where given.
     source_level_accuracy: HashMap<String, Db>,
+    /// Runs a previous process left running, marked interrupted by this start.
+    interrupted_at_start: Vec<i64>,
     /// Cancel tokens of queued and running runs.
     cancels: std::sync::Mutex<HashMap<i64, CancellationToken>>,
     shutdown: CancellationToken,
@@ -278,6 +280,7 @@ impl Engine {
                 events,
                 benches: slots,
                 source_level_accuracy,
+                interrupted_at_start: interrupted.clone(),
                 cancels: std::sync::Mutex::new(HashMap::new()),
                 shutdown,
                 workers: Mutex::new(Vec::new()),
@@ -325,6 +328,12 @@ impl Engine {
     /// A receiver of progress events from now on.
     pub fn subscribe(&self) -> broadcast::Receiver<ProgressEvent> {
         self.inner.events.subscribe()
+    }
+
+    /// The runs a previous process left running, which this start marked interrupted (no
+    /// progress event says so: nobody can be subscribed before the engine exists).
+    pub fn interrupted_at_start(&self) -> &[i64] {
+        &self.inner.interrupted_at_start
     }
 
     /// The generator level accuracy (+/- dB) the configuration states for `bench`, if any.

@@ -18,9 +18,10 @@
 //! over due deliveries within [`SHUTDOWN_GRACE`]; what is left stays pending for the next start.
 //! An attempt cut short there may have reached its receiver: receivers de-duplicate by event id.
 //!
-//! Not notified: runs found `running` and marked interrupted by the start-up recovery after a
-//! crash (the engine publishes no event for them), and events lost when the recorder falls more
-//! than the channel's buffer (1,024 events) behind, which is logged.
+//! Runs found `running` and marked interrupted by the start-up recovery after a crash have no
+//! progress event (nobody can subscribe before the engine exists): the recorder notifies them
+//! first, from `Engine::interrupted_at_start`. Not notified: events lost when the recorder falls
+//! more than the channel's buffer (1,024 events) behind, which is logged.
 
 pub mod payload;
 pub mod settings;
@@ -68,7 +69,19 @@ impl Notifier {
         let wake = Arc::new(Notify::new());
         let stop_recording = CancellationToken::new();
         let stop_sending = CancellationToken::new();
+        // Runs a crashed process left running were marked interrupted before anyone could
+        // subscribe: their notifications are recorded first, as the engine would have sent them.
+        let at_start: Vec<ProgressEvent> = engine
+            .interrupted_at_start()
+            .iter()
+            .map(|&run_id| ProgressEvent::Finished {
+                run_id,
+                state: "interrupted".into(),
+                cause: Some(crate::store::runs::INTERRUPTED_CAUSE.into()),
+            })
+            .collect();
         let recorder = tokio::spawn(record(
+            at_start,
             engine.subscribe(),
             engine.store().clone(),
             receivers.clone(),
@@ -124,12 +137,16 @@ impl Notifier {
 
 /// The recorder task: engine events in, outbox rows out.
 async fn record(
+    at_start: Vec<ProgressEvent>,
     mut events: broadcast::Receiver<ProgressEvent>,
     store: Store,
     receivers: Arc<Vec<Receiver>>,
     wake: Arc<Notify>,
     stop: CancellationToken,
 ) {
+    for event in &at_start {
+        record_one(event, &store, &receivers, &wake).await;
+    }
     loop {
         let received = tokio::select! {
             received = events.recv() => received,
