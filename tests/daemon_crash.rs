@@ -13,7 +13,7 @@ mod engine_support;
 
 mod daemon_support;
 
-use daemon_support::{stored_points, submit, Bench};
+use daemon_support::{stored_points, Bench};
 use engine_support::{FREQUENCIES_HZ, LEVELS, POINTS};
 use halfwave::store::{RunState, Store};
 use serde_json::Value;
@@ -24,14 +24,8 @@ use std::time::Duration;
 async fn sigkill_mid_run_then_restart_and_resume_completes_every_point_once() {
     let bench = Bench::new(31).await;
     let token = bench.operator_token().await;
-    let mut daemon = bench.serve("first.log").await;
-    let run_id = submit(&bench, &token).await;
     // Let a dozen points be committed, then kill the process with no chance to clean up.
-    bench
-        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
-            r["measured_points"].as_u64().unwrap_or(0) >= 12
-        })
-        .await;
+    let (mut daemon, run_id) = daemon_support::serve_mid_run(&bench, "first.log", &token, 12).await;
     daemon.kill().await.unwrap();
     daemon.wait().await.unwrap();
     // Usually on already (killed mid-point); make sure it is, so that the restart is what
@@ -103,13 +97,7 @@ async fn sigkill_mid_run_then_restart_and_resume_completes_every_point_once() {
 async fn sigterm_mid_run_marks_the_run_interrupted_with_rf_off() {
     let bench = Bench::new(32).await;
     let token = bench.operator_token().await;
-    let mut daemon = bench.serve("daemon.log").await;
-    let run_id = submit(&bench, &token).await;
-    bench
-        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
-            r["measured_points"].as_u64().unwrap_or(0) >= 5
-        })
-        .await;
+    let (mut daemon, run_id) = daemon_support::serve_mid_run(&bench, "daemon.log", &token, 5).await;
     let pid = daemon.id().expect("the daemon is running") as i32;
     // SAFETY: kill(2) with a valid pid and signal number has no memory-safety preconditions.
     assert_eq!(unsafe { libc::kill(pid, libc::SIGTERM) }, 0);

@@ -112,21 +112,11 @@ async fn resume_to_completion(bench: &Bench, run_id: i64, token: &str) -> Value 
     run
 }
 
+/// A bench gauge of the simulated bench `sim`.
 async fn metric(bench: &Bench, token: &str, name: &str) -> Option<f64> {
-    let text = bench
-        .client
-        .get(bench.url("/api/v1/metrics"))
-        .bearer_auth(token)
-        .send()
+    bench
+        .metric(token, &format!("{name}{{bench=\"sim\"}} "))
         .await
-        .unwrap()
-        .text()
-        .await
-        .unwrap();
-    let prefix = format!("{name}{{bench=\"sim\"}} ");
-    text.lines()
-        .find_map(|l| l.strip_prefix(&prefix))
-        .and_then(|v| v.trim().parse().ok())
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

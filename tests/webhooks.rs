@@ -219,22 +219,6 @@ fn readme_python_verify(r: &Received, body: &str, now: i64) -> bool {
     }
 }
 
-async fn metric(bench: &Bench, token: &str, line_start: &str) -> Option<f64> {
-    let text = bench
-        .client
-        .get(bench.url("/api/v1/metrics"))
-        .bearer_auth(token)
-        .send()
-        .await
-        .unwrap()
-        .text()
-        .await
-        .unwrap();
-    text.lines()
-        .find_map(|l| l.strip_prefix(line_start))
-        .and_then(|v| v.trim().parse().ok())
-}
-
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_that_wants_them() {
     let receiver = Receiver::start_on(0, 0).await;
@@ -332,21 +316,15 @@ async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_th
     assert!(!readme_python_verify(&got[0], &got[0].body, sent + 301));
 
     assert_eq!(
-        metric(
-            &bench,
-            &token,
-            "halfwave_webhook_deliveries{state=\"delivered\"}"
-        )
-        .await,
+        bench
+            .metric(&token, "halfwave_webhook_deliveries{state=\"delivered\"}")
+            .await,
         Some(3.0)
     );
     assert_eq!(
-        metric(
-            &bench,
-            &token,
-            "halfwave_webhook_deliveries{state=\"pending\"}"
-        )
-        .await,
+        bench
+            .metric(&token, "halfwave_webhook_deliveries{state=\"pending\"}")
+            .await,
         Some(0.0)
     );
 }
@@ -415,13 +393,7 @@ async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
         "first_retry_s = 3600",
     );
     let token = bench.operator_token().await;
-    let mut daemon = bench.serve("first.log").await;
-    let run_id = daemon_support::submit(&bench, &token).await;
-    bench
-        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
-            r["measured_points"].as_u64().unwrap_or(0) >= 3
-        })
-        .await;
+    let (mut daemon, run_id) = daemon_support::serve_mid_run(&bench, "first.log", &token, 3).await;
     let pid = daemon.id().expect("the daemon is running");
     let pid = rustix::process::Pid::from_raw(pid as i32).unwrap();
     rustix::process::kill_process(pid, rustix::process::Signal::TERM).unwrap();
@@ -454,12 +426,9 @@ async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
     assert_eq!(body["state"], "interrupted");
     assert_eq!(body["event_id"], rows[0].event_id.as_str());
     assert_eq!(
-        metric(
-            &bench,
-            &token,
-            "halfwave_webhook_deliveries{state=\"delivered\"}"
-        )
-        .await,
+        bench
+            .metric(&token, "halfwave_webhook_deliveries{state=\"delivered\"}")
+            .await,
         Some(1.0)
     );
 }
@@ -472,13 +441,7 @@ async fn a_run_a_killed_daemon_left_running_is_notified_as_interrupted_at_the_ne
     let bench = Bench::new(44).await;
     add_webhook(&bench, &receiver.url("/hook"), "");
     let token = bench.operator_token().await;
-    let mut daemon = bench.serve("first.log").await;
-    let run_id = daemon_support::submit(&bench, &token).await;
-    bench
-        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
-            r["measured_points"].as_u64().unwrap_or(0) >= 2
-        })
-        .await;
+    let (mut daemon, run_id) = daemon_support::serve_mid_run(&bench, "first.log", &token, 2).await;
     daemon.start_kill().expect("SIGKILL sent");
     daemon.wait().await.unwrap();
     assert!(

@@ -121,24 +121,11 @@ pub async fn seed_completed_run(
             point_ids.push(point_id);
         }
         let uncertainty = 0.01 * v_pi;
-        store
-            .save_frequency_result(&NewFrequencyResult {
-                run_id: run.id,
-                frequency_index: u32::try_from(fi).expect("small index"),
-                frequency: Hz(f),
-                v_pi: Volts(v_pi),
-                v_pi_uncertainty: Volts(uncertainty),
-                excluded_points: serde_json::json!([]),
-                fit: serde_json::json!({"method": "seeded"}),
-            })
-            .await
-            .expect("result stored");
+        let excluded = serde_json::json!([]);
+        save_result(store, run.id, fi, (f, v_pi, uncertainty), excluded).await;
         results.push((f, v_pi, uncertainty));
     }
-    store
-        .transition_run(run.id, RunState::Completed, None)
-        .await
-        .expect("run completed");
+    complete(store, run.id).await;
     SeededRun {
         run_id: run.id,
         point_ids,
@@ -237,28 +224,45 @@ pub async fn seed_recorded_run(store: &Store, hostile: &str, token_id: i64) -> R
         } else {
             serde_json::json!([])
         };
-        store
-            .save_frequency_result(&NewFrequencyResult {
-                run_id: run.id,
-                frequency_index: u32::try_from(fi).expect("small index"),
-                frequency: Hz(f),
-                v_pi: Volts(v_pi),
-                v_pi_uncertainty: Volts(u),
-                excluded_points: excluded,
-                fit: serde_json::json!({"method": "seeded"}),
-            })
-            .await
-            .expect("result stored");
+        save_result(store, run.id, fi, (f, v_pi, u), excluded).await;
         results.push((f, v_pi, u));
     }
-    store
-        .transition_run(run.id, RunState::Completed, None)
-        .await
-        .expect("run completed");
+    complete(store, run.id).await;
     RecordedRun {
         run_id: run.id,
         results,
         identities,
         token_id,
     }
+}
+
+/// Stores one frequency's V_pi result, `(frequency_hz, v_pi, uncertainty)`, as the engine's fit
+/// would.
+async fn save_result(
+    store: &Store,
+    run_id: i64,
+    frequency_index: usize,
+    (f, v_pi, u): (f64, f64, f64),
+    excluded_points: serde_json::Value,
+) {
+    store
+        .save_frequency_result(&NewFrequencyResult {
+            run_id,
+            frequency_index: u32::try_from(frequency_index).expect("small index"),
+            frequency: Hz(f),
+            v_pi: Volts(v_pi),
+            v_pi_uncertainty: Volts(u),
+            excluded_points,
+            fit: serde_json::json!({"method": "seeded"}),
+        })
+        .await
+        .expect("result stored");
+}
+
+/// Marks a seeded run completed.
+async fn complete(store: &Store, run_id: i64) {
+    store
+        .transition_run(run_id, RunState::Completed, None)
+        .await
+        .expect("run completed");
 }

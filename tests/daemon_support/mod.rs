@@ -108,6 +108,24 @@ impl Bench {
         format!("http://127.0.0.1:{}{path}", self.port)
     }
 
+    /// The value on the `/api/v1/metrics` line that starts with `line_start` (a metric's name
+    /// with its labels), if there is one.
+    pub async fn metric(&self, token: &str, line_start: &str) -> Option<f64> {
+        let text = self
+            .client
+            .get(self.url("/api/v1/metrics"))
+            .bearer_auth(token)
+            .send()
+            .await
+            .unwrap()
+            .text()
+            .await
+            .unwrap();
+        text.lines()
+            .find_map(|l| l.strip_prefix(line_start))
+            .and_then(|v| v.trim().parse().ok())
+    }
+
     pub async fn post(&self, path: &str, token: &str, body: &Value) -> reqwest::Response {
         self.client
             .post(self.url(path))
@@ -172,6 +190,24 @@ pub async fn submit(bench: &Bench, token: &str) -> i64 {
     assert_eq!(response.status(), 201);
     let body: Value = response.json().await.unwrap();
     body["run_id"].as_i64().expect("run_id in the reply")
+}
+
+/// Starts the daemon (its log in `log_name`), submits [`plan`] and waits (up to 120 s) until
+/// `points` are committed: a daemon in the middle of a run, for the stop and kill tests.
+pub async fn serve_mid_run(
+    bench: &Bench,
+    log_name: &str,
+    token: &str,
+    points: u64,
+) -> (Child, i64) {
+    let daemon = bench.serve(log_name).await;
+    let run_id = submit(bench, token).await;
+    bench
+        .wait_for(run_id, token, Duration::from_secs(120), |r| {
+            r["measured_points"].as_u64().unwrap_or(0) >= points
+        })
+        .await;
+    (daemon, run_id)
 }
 
 pub async fn stored_points(database: &Path, run_id: i64) -> Vec<(u32, u32)> {

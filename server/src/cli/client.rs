@@ -301,14 +301,18 @@ async fn decode<T: DeserializeOwned>(
 
 /// The error and its causes on one line (reqwest hides the useful part in the source chain).
 fn describe(error: &reqwest::Error) -> String {
-    let mut text = error.to_string();
-    let mut source = std::error::Error::source(error);
+    with_causes(error.to_string(), error)
+}
+
+/// `head` followed by every cause in `error`'s source chain, each after `": "`.
+pub fn with_causes(mut head: String, error: &dyn std::error::Error) -> String {
+    let mut source = error.source();
     while let Some(cause) = source {
-        text.push_str(": ");
-        text.push_str(&cause.to_string());
+        head.push_str(": ");
+        head.push_str(&cause.to_string());
         source = cause.source();
     }
-    text
+    head
 }
 
 /// Terminal states of a run (it will not change any more unless resumed).

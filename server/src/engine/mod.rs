@@ -409,34 +409,33 @@ impl Engine {
             hard_limit_at_modulator: Dbm(self.inner.limits.max_level_at_modulator_dbm),
             source: source_limits,
             analyzer: &caps,
-            chain: chain.as_ref().map(|(c, _)| c),
+            chain: chain.as_ref().map(|(c, _, _)| c),
         };
         let validated = request.validate(&ctx);
-        if let (Ok(plan), Some((_, choice))) = (&validated, &chain) {
-            if let Some((name, low, high)) = self.measured_chain_band(choice).await? {
-                let outside: Vec<String> = plan
-                    .steps()
-                    .iter()
-                    .map(|step| step.frequency)
-                    .filter(|f| f.0 < low.0 || f.0 > high.0)
-                    .map(|f| format!("{} GHz", f.0 / 1e9))
-                    .collect();
-                if !outside.is_empty() {
-                    errors.push(FieldError {
-                        field: "frequencies".into(),
-                        message: format!(
-                            "{} lie outside {} to {} GHz, the band chain calibration {name} was measured over (from its files); the chain's gain there would be extrapolated: measure the chain over these frequencies or plan inside the band",
-                            outside.join(", "),
-                            low.0 / 1e9,
-                            high.0 / 1e9
-                        ),
-                    });
-                }
+        if let (Ok(plan), Some((_, _, Some(band)))) = (&validated, &chain) {
+            let outside: Vec<String> = plan
+                .steps()
+                .iter()
+                .map(|step| step.frequency)
+                .filter(|f| f.0 < band.low.0 || f.0 > band.high.0)
+                .map(|f| format!("{} GHz", f.0 / 1e9))
+                .collect();
+            if !outside.is_empty() {
+                errors.push(FieldError {
+                    field: "frequencies".into(),
+                    message: format!(
+                        "{} lie outside {} to {} GHz, the band chain calibration {} was measured over (from its files); the chain's gain there would be extrapolated: measure the chain over these frequencies or plan inside the band",
+                        outside.join(", "),
+                        band.low.0 / 1e9,
+                        band.high.0 / 1e9,
+                        band.name
+                    ),
+                });
             }
         }
         let chain_named = errors.iter().any(|e| e.field == "chain");
         match (validated, chain) {
-            (Ok(plan), Some((chain, choice))) if errors.is_empty() => Ok((plan, chain, choice)),
+            (Ok(plan), Some((chain, choice, _))) if errors.is_empty() => Ok((plan, chain, choice)),
             (Ok(_), _) => Err(SubmitError::Invalid(PlanErrors { errors })),
             (Err(invalid), _) => {
                 // The chain's own error says more than the plan's "no usable drive chain".
@@ -627,7 +626,7 @@ impl Engine {
     async fn resolve_chain(
         &self,
         spec: &ChainSpec,
-    ) -> Result<(DriveChain, ChainChoice), SubmitError> {
+    ) -> Result<(DriveChain, ChainChoice, Option<MeasuredBand>), SubmitError> {
         let invalid = |message: String| {
             SubmitError::Invalid(PlanErrors {
                 errors: vec![FieldError {
@@ -647,6 +646,7 @@ impl Engine {
                 return Ok((
                     DriveChain::flat_loss(Db(*loss_db)),
                     ChainChoice::FlatLoss(*loss_db),
+                    None,
                 ));
             }
             ChainSpec::Stored { name, version } => {
@@ -667,33 +667,8 @@ impl Engine {
             }
         };
         let chain = drive_chain(&calibration).map_err(|e| invalid(e.to_string()))?;
-        Ok((chain, ChainChoice::Stored(calibration.id)))
-    }
-
-    /// The band a stored chain calibration was measured over, when it was computed from
-    /// measurement files (Touchstone): a plan frequency outside it would be an extrapolation of
-    /// a measurement, which is refused. A typed table is held constant beyond its ends, as
-    /// documented, and a flat loss applies everywhere: `None` for both.
-    async fn measured_chain_band(
-        &self,
-        choice: &ChainChoice,
-    ) -> Result<Option<(String, Hz, Hz)>, SubmitError> {
-        let ChainChoice::Stored(id) = choice else {
-            return Ok(None);
-        };
-        let calibration = self.inner.store.chain_calibration(*id).await?;
-        if calibration.sources.is_empty() {
-            return Ok(None);
-        }
-        let (Some(first), Some(last)) = (calibration.points.first(), calibration.points.last())
-        else {
-            return Ok(None);
-        };
-        Ok(Some((
-            format!("{:?} v{}", calibration.name, calibration.version),
-            first.frequency(),
-            last.frequency(),
-        )))
+        let band = MeasuredBand::of(&calibration);
+        Ok((chain, ChainChoice::Stored(calibration.id), band))
     }
 
     fn is_queued_or_active(&self, run_id: i64) -> bool {
@@ -952,6 +927,30 @@ impl Engine {
 pub enum ChainChoice {
     Stored(i64),
     FlatLoss(f64),
+}
+
+/// The band a stored chain calibration was measured over, when it was computed from measurement
+/// files (Touchstone): a plan frequency outside it would be an extrapolation of a measurement,
+/// which is refused. A typed table is held constant beyond its ends, as documented, and a flat
+/// loss applies everywhere: neither has one.
+struct MeasuredBand {
+    /// `"name" vN`, for messages.
+    name: String,
+    low: Hz,
+    high: Hz,
+}
+
+impl MeasuredBand {
+    fn of(calibration: &ChainCalibration) -> Option<MeasuredBand> {
+        if calibration.sources.is_empty() {
+            return None;
+        }
+        Some(MeasuredBand {
+            name: format!("{:?} v{}", calibration.name, calibration.version),
+            low: calibration.points.first()?.frequency(),
+            high: calibration.points.last()?.frequency(),
+        })
+    }
 }
 
 fn drive_chain(

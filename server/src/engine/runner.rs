@@ -223,6 +223,19 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
     let mut result = Ok(());
     // The V_pi the previous adaptive frequency ended with (a prior for the next).
     let mut previous_v_pi: Option<Volts> = None;
+    // The device's stored calibrations, read once per run, give an adaptive plan its priors.
+    let history = if plan.steps().iter().any(|s| s.adaptive.is_some()) {
+        let serial = &plan.request().device.serial;
+        match ctx.store.device_calibrations(serial).await {
+            Ok(set) => Some(set),
+            Err(e) => {
+                tracing::warn!(serial = %serial, error = %e, "no stored V_pi to start adaptive levels from; starting low");
+                None
+            }
+        }
+    } else {
+        None
+    };
     'frequencies: for (fi, step) in plan.steps().iter().enumerate() {
         let span = tracing::info_span!("frequency", frequency_hz = step.frequency.0);
         let r = match step.adaptive {
@@ -249,14 +262,13 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
                 let Some(seed) = adaptive_seed(ctx, fi).await? else {
                     continue;
                 };
-                let prior = match ctx
-                    .store
-                    .vpi_at(&plan.request().device.serial, step.frequency, None)
-                    .await
-                {
-                    Ok(stored) => Some(stored.v_pi_volts),
-                    Err(_) => previous_v_pi,
-                };
+                // A frequency the history does not cover (no extrapolation) takes the previous
+                // frequency's estimate.
+                let prior = history
+                    .as_ref()
+                    .and_then(|set| set.vpi_at(step.frequency, None).ok())
+                    .map(|stored| stored.v_pi_volts)
+                    .or(previous_v_pi);
                 let levels = Levels::Adaptive {
                     settings,
                     seed,

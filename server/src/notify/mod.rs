@@ -372,16 +372,10 @@ impl Sender {
 
 /// A transport error with its causes (reqwest's own text is only the outermost).
 fn describe_transport_error(error: &reqwest::Error) -> String {
-    let mut text = if error.is_timeout() {
+    let head = if error.is_timeout() {
         "timed out".to_string()
     } else {
         error.to_string()
     };
-    let mut source = std::error::Error::source(error);
-    while let Some(cause) = source {
-        text.push_str(": ");
-        text.push_str(&cause.to_string());
-        source = cause.source();
-    }
-    text
+    crate::cli::client::with_causes(head, error)
 }

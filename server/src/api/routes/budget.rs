@@ -147,24 +147,24 @@ pub async fn run_budget(
             }
         },
     };
-    let chain_table: Vec<(Hz, Option<Db>)> = if query.chain_uncertainty_db.is_some() {
-        Vec::new()
-    } else {
-        store
-            .chain_calibration(run.chain_calibration_id)
-            .await?
-            .points
-            .iter()
-            .map(|p| (p.frequency(), p.gain_uncertainty_db.map(Db)))
-            .collect()
-    };
-    let chain_uncertainty_from = match query.chain_uncertainty_db {
-        Some(_) => "query".to_string(),
-        None => format!(
-            "chain calibration {} v{}",
-            run.chain_name, run.chain_version
-        ),
-    };
+    // The chain table's own uncertainties, unless the query gives one for every frequency.
+    let (chain_table, chain_uncertainty_from): (Vec<(Hz, Option<Db>)>, String) =
+        match query.chain_uncertainty_db {
+            Some(_) => (Vec::new(), "query".to_string()),
+            None => (
+                store
+                    .chain_calibration(run.chain_calibration_id)
+                    .await?
+                    .points
+                    .iter()
+                    .map(|p| (p.frequency(), p.gain_uncertainty_db.map(Db)))
+                    .collect(),
+                format!(
+                    "chain calibration {} v{}",
+                    run.chain_name, run.chain_version
+                ),
+            ),
+        };
 
     let mut frequencies = Vec::with_capacity(results.len());
     for r in results {

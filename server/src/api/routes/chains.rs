@@ -219,39 +219,36 @@ pub fn parse_csv(text: &str) -> Result<Vec<ChainPointBody>, Vec<FieldProblem>> {
     let mut points = Vec::new();
     let mut errors = Vec::new();
     for row in rows {
-        match row.values.as_deref() {
-            Ok([frequency_hz, gain_db]) => points.push(ChainPointBody {
-                frequency_hz: *frequency_hz,
-                gain_db: *gain_db,
-                gain_uncertainty_db: None,
-            }),
-            Ok([frequency_hz, gain_db, uncertainty_db]) => points.push(ChainPointBody {
-                frequency_hz: *frequency_hz,
-                gain_db: *gain_db,
-                gain_uncertainty_db: Some(*uncertainty_db),
-            }),
-            Ok(_) => bad_row(
-                &mut errors,
-                &row.line,
-                &row.text,
-                "a wrong number of values",
-            ),
-            Err(detail) => bad_row(&mut errors, &row.line, &row.text, detail),
-        }
+        let detail = match row.values.as_deref() {
+            Ok([frequency_hz, gain_db]) => {
+                points.push(ChainPointBody {
+                    frequency_hz: *frequency_hz,
+                    gain_db: *gain_db,
+                    gain_uncertainty_db: None,
+                });
+                continue;
+            }
+            Ok([frequency_hz, gain_db, uncertainty_db]) => {
+                points.push(ChainPointBody {
+                    frequency_hz: *frequency_hz,
+                    gain_db: *gain_db,
+                    gain_uncertainty_db: Some(*uncertainty_db),
+                });
+                continue;
+            }
+            Ok(_) => "a wrong number of values",
+            Err(detail) => detail.as_str(),
+        };
+        errors.push(FieldProblem::new(
+            format!("body.line[{}]", row.line),
+            format!("{:?} is not the header's numbers: {detail}", row.text),
+        ));
     }
     if errors.is_empty() {
         Ok(points)
     } else {
         Err(errors)
     }
-}
-
-/// Records a row that does not hold the header's numbers.
-fn bad_row(errors: &mut Vec<FieldProblem>, line: &usize, text: &str, detail: &str) {
-    errors.push(FieldProblem::new(
-        format!("body.line[{line}]"),
-        format!("{text:?} is not the header's numbers: {detail}"),
-    ));
 }
 
 /// Checks every point; all problems at once.
