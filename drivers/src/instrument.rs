@@ -290,3 +290,44 @@ pub trait SpectrumAnalyzer: Send {
     /// it here, so the next operation reconnects. The default does nothing.
     fn abandon_operation(&mut self) {}
 }
+
+/// The ranges of an RF power sensor: where it measures, and the level that damages it.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct SensorLimits {
+    /// The frequency range its calibration factors cover.
+    pub min_frequency: Hz,
+    pub max_frequency: Hz,
+    /// The range of average power it measures to its specification.
+    pub min_power: Dbm,
+    pub max_power: Dbm,
+    /// The average power that damages it (its data sheet's damage level).
+    pub damage_level: Dbm,
+}
+
+/// An RF power sensor (or a meter with its sensor) measuring the average power at the end of the
+/// drive chain, for the chain's calibration. Readings are corrected by the sensor's calibration
+/// factor at the frequency it was last told ([`PowerSensor::set_frequency`]), so that call comes
+/// before every reading at a new frequency.
+#[async_trait]
+pub trait PowerSensor: Send {
+    /// A short name for logs and errors.
+    fn resource(&self) -> &str;
+
+    /// The instrument's identity (`*IDN?`).
+    async fn identify(&mut self) -> Result<Identity, InstrumentError>;
+
+    /// Where it measures and what damages it.
+    fn limits(&self) -> SensorLimits;
+
+    /// What the driver learned or chose at connect (for check-bench); none by default.
+    fn connection_notes(&self) -> Vec<ConnectionNote> {
+        Vec::new()
+    }
+
+    /// Sets the frequency whose calibration factor corrects the readings; returns the read-back.
+    async fn set_frequency(&mut self, frequency: Hz) -> Result<Hz, InstrumentError>;
+
+    /// Takes one reading of the average power (corrected by the calibration factor) and waits
+    /// for it. A reading over the sensor's range, or one it flags as such, is an error.
+    async fn measure(&mut self) -> Result<Dbm, InstrumentError>;
+}

@@ -20,6 +20,9 @@ use std::ops::Not;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
+pub mod sensor;
+pub use sensor::SensorProfile;
+
 /// The placeholder a setter template must contain.
 pub const VALUE_PLACEHOLDER: &str = "{value}";
 
@@ -230,6 +233,7 @@ fn read_file(path: &Path) -> Result<String, ProfileError> {
 pub enum ProfileKind {
     RfSource,
     SpectrumAnalyzer,
+    PowerSensor,
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -968,13 +972,16 @@ mod tests {
                 Some("spectrum_analyzer") => {
                     AnalyzerProfile::from_file(&path).unwrap();
                 }
+                Some("power_sensor") => {
+                    SensorProfile::from_file(&path).unwrap();
+                }
                 other => panic!("{}: unknown kind {other:?}", path.display()),
             }
             loaded += 1;
         }
         assert!(
-            loaded >= 2,
-            "expected the two example profiles, found {loaded}"
+            loaded >= 3,
+            "expected the three example profiles, found {loaded}"
         );
     }
 }

@@ -1,5 +1,6 @@
-//! Generic SCPI drivers: one [`RfSource`](crate::RfSource) and one
-//! [`SpectrumAnalyzer`](crate::SpectrumAnalyzer) implementation for any instrument that speaks
+//! Generic SCPI drivers: one [`RfSource`](crate::RfSource), one
+//! [`SpectrumAnalyzer`](crate::SpectrumAnalyzer) and one [`PowerSensor`](crate::PowerSensor)
+//! implementation for any instrument that speaks
 //! SCPI over a raw socket, adapted to a model by its command profile ([`crate::profile`]).
 //!
 //! Both drivers share a [`session::ScpiSession`]: the transport plus the common-command profile.
@@ -9,11 +10,13 @@
 //! code and message. Each driver adds range checks before sending and tolerance checks after.
 
 pub mod analyzer;
+pub mod sensor;
 pub mod session;
 pub mod source;
 pub mod suggest;
 
 pub use analyzer::ScpiSpectrumAnalyzer;
+pub use sensor::{connect_sensor, ScpiPowerSensor};
 pub use session::ScpiSession;
 pub use source::ScpiRfSource;
 

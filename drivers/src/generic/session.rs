@@ -442,6 +442,19 @@ impl ScpiSession {
             .unwrap_or_default())
     }
 
+    /// Sends a query and returns its reply, waiting at most `timeout` for it (a reading that
+    /// takes longer than the profile's usual timeout); repeated after a link failure.
+    pub async fn query_within(
+        &mut self,
+        query: &str,
+        timeout: Duration,
+    ) -> Result<String, InstrumentError> {
+        Ok(self
+            .run(Step::QueryWithin(query, timeout))
+            .await?
+            .unwrap_or_default())
+    }
+
     /// Asks whether the instrument knows `query`: one attempt, waiting at most `timeout`. A
     /// query it does not know comes back as [`InstrumentError::Scpi`] (its -113, read on a fresh
     /// connection and cleared), silence without an error as [`InstrumentError::Unanswered`].

@@ -5,6 +5,7 @@
 //! instruments in-process or over TCP.
 
 use super::in_process::{SimAnalyzer, SimRfSource};
+use super::sensor::SimPowerSensor;
 use super::scenario::Scenario;
 use super::state::{BenchState, OverdriveEvent};
 use crate::sim::scpi_parser::ScpiError;
@@ -20,6 +21,7 @@ pub const MAX_TIME_FACTOR: f64 = 1000.0;
 pub enum Role {
     RfSource,
     Analyzer,
+    PowerSensor,
 }
 
 impl Role {
@@ -28,6 +30,7 @@ impl Role {
         match self {
             Role::RfSource => "rf-source",
             Role::Analyzer => "analyzer",
+            Role::PowerSensor => "power-sensor",
         }
     }
 }
@@ -106,6 +109,21 @@ impl SimBench {
         SimAnalyzer::new(self.clone())
     }
 
+    /// An in-process handle to the power sensor (implements [`crate::PowerSensor`]).
+    pub fn power_sensor(&self) -> SimPowerSensor {
+        SimPowerSensor::new(self.clone())
+    }
+
+    /// Truth: every time the power sensor saw more than its damage level (frequency, level).
+    pub fn sensor_damage_events(&self) -> Vec<(Hz, Dbm)> {
+        self.lock().sensor.damage_events.clone()
+    }
+
+    /// Truth: the frequency whose calibration factor the sensor applies now.
+    pub fn sensor_frequency(&self) -> Hz {
+        self.lock().sensor.frequency
+    }
+
     /// Truth: V_pi of the modulator at `f` (same as `scenario().v_pi_at(f)`).
     pub fn v_pi_at(&self, f: Hz) -> Volts {
         self.scenario.v_pi_at(f)
@@ -160,6 +178,7 @@ impl SimBench {
         match role {
             Role::RfSource => state.source.status.log.clone(),
             Role::Analyzer => state.analyzer.status.log.clone(),
+            Role::PowerSensor => state.sensor.status.log.clone(),
         }
     }
 
@@ -170,6 +189,7 @@ impl SimBench {
         match role {
             Role::RfSource => state.source.status.busy_total,
             Role::Analyzer => state.analyzer.status.busy_total,
+            Role::PowerSensor => state.sensor.status.busy_total,
         }
     }
 
@@ -179,6 +199,7 @@ impl SimBench {
         match role {
             Role::RfSource => state.source.status.log.clear(),
             Role::Analyzer => state.analyzer.status.log.clear(),
+            Role::PowerSensor => state.sensor.status.log.clear(),
         }
     }
 
@@ -188,6 +209,7 @@ impl SimBench {
         match role {
             Role::RfSource => state.source.status.push_error(error),
             Role::Analyzer => state.analyzer.status.push_error(error),
+            Role::PowerSensor => state.sensor.status.push_error(error),
         }
     }
 }

@@ -1,10 +1,11 @@
-//! The simulated bench: a laser, a phase modulator, a drive chain, an RF source and an optical
-//! spectrum analyzer, described by a TOML [`Scenario`] and driven by a seed.
+//! The simulated bench: a laser, a phase modulator, a drive chain, an RF source, an optical
+//! spectrum analyzer and an RF power sensor at the chain's end ([`sensor`]), described by a TOML [`Scenario`] and driven by a seed.
 //!
 //! It exists so that everything above the drivers (analysis, engine, API, end-to-end tests) can
 //! run without a lab, and so that the SCPI client drivers are tested against a server that follows
 //! the standard. One [`SimBench`] holds the state behind a mutex; it hands out
-//! - in-process instruments ([`SimRfSource`], [`SimAnalyzer`]) implementing the instrument traits,
+//! - in-process instruments ([`SimRfSource`], [`SimAnalyzer`], [`SimPowerSensor`]) implementing
+//!   the instrument traits,
 //! - the same instruments as SCPI over TCP through [`SimServer`], with fault injection
 //!   ([`FaultHandle`]);
 //! - the truth for tests: V_pi at any frequency, the overdrive flag, the laser's real position,
@@ -28,12 +29,14 @@ pub mod physics;
 pub mod scenario;
 pub mod scpi_instruments;
 pub mod scpi_parser;
+pub mod sensor;
 pub mod server;
 pub mod state;
 
 pub use bench::{Role, SimBench};
 pub use faults::FaultHandle;
 pub use in_process::{SimAnalyzer, SimRfSource};
+pub use sensor::SimPowerSensor;
 pub use scenario::{Scenario, ScenarioError};
 pub use server::{SimServer, SimServerConfig};
 pub use state::OverdriveEvent;

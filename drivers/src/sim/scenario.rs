@@ -171,10 +171,14 @@ pub struct Scenario {
     pub drive_chain: DriveChainSpec,
     pub rf_source: RfSourceSpec,
     pub analyzer: AnalyzerSpec,
+    /// Optional: the power sensor used to calibrate the drive chain (the built-in one when left
+    /// out; see [`super::sensor`]).
+    #[serde(default)]
+    pub power_sensor: super::sensor::PowerSensorSpec,
 }
 
 /// Linear interpolation in an ascending `[x, y]` table, constant beyond the ends.
-fn interpolate(table: &[[f64; 2]], x: f64) -> f64 {
+pub(crate) fn interpolate(table: &[[f64; 2]], x: f64) -> f64 {
     let (Some(first), Some(last)) = (table.first(), table.last()) else {
         return 0.0;
     };
@@ -421,6 +425,7 @@ impl Scenario {
                 "must lie between min_points and max_points",
             ));
         }
+        self.power_sensor.validate()?;
         let centre = self.laser_frequency().value();
         if !(a.min_frequency_hz..=a.max_frequency_hz).contains(&centre) {
             return Err(invalid(
@@ -468,6 +473,13 @@ impl Scenario {
     /// The true level at the modulator for a generator set to `level` at `f`.
     pub fn level_at_modulator(&self, level: Dbm, f: Hz) -> Dbm {
         level + self.level_error_at(f) - self.chain_loss_at(f)
+    }
+
+    /// The true gain from the generator's set level to the level at the modulator's input at `f`
+    /// (the generator's level error less the chain's loss): what a power-sensor calibration of
+    /// the chain, made with this generator, should find.
+    pub fn generator_to_modulator_gain_at(&self, f: Hz) -> Db {
+        self.level_error_at(f) - self.chain_loss_at(f)
     }
 
     /// The true modulation index for a generator set to `level` at `f` with the output on:

@@ -122,6 +122,38 @@ pub static ANALYZER_COMMANDS: LazyLock<CommandTree<AnalyzerCommand>> = LazyLock:
     )
 });
 
+/// The power sensor's commands.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SensorCommand {
+    Common(Common),
+    Configure,
+    Measure,
+    Frequency,
+    Unit,
+}
+
+/// The power sensor's command tree (the standard power-meter subset the generic driver uses).
+pub static SENSOR_COMMANDS: LazyLock<CommandTree<SensorCommand>> = LazyLock::new(|| {
+    use SensorCommand as S;
+    with_common(
+        S::Common,
+        &[
+            (
+                "CONFigure[:SCALar][:POWer][:AC]",
+                S::Configure,
+                Forms::SetAndQuery,
+            ),
+            ("MEASure[:SCALar][:POWer][:AC]", S::Measure, Forms::QueryOnly),
+            (
+                "[SENSe:]FREQuency[:CW|:FIXed]",
+                S::Frequency,
+                Forms::SetAndQuery,
+            ),
+            ("UNIT:POWer", S::Unit, Forms::SetAndQuery),
+        ],
+    )
+});
+
 /// What one command produced.
 #[derive(Debug, Default)]
 struct Response {
@@ -179,6 +211,7 @@ fn status_mut(state: &mut BenchState, role: Role) -> &mut InstrumentStatus {
     match role {
         Role::RfSource => &mut state.source.status,
         Role::Analyzer => &mut state.analyzer.status,
+        Role::PowerSensor => &mut state.sensor.status,
     }
 }
 
@@ -187,6 +220,7 @@ pub fn execute_line(state: &mut BenchState, role: Role, line: &str) -> LineOutco
     match role {
         Role::RfSource => run_line(state, role, &SOURCE_COMMANDS, line, execute_source),
         Role::Analyzer => run_line(state, role, &ANALYZER_COMMANDS, line, execute_analyzer),
+        Role::PowerSensor => run_line(state, role, &SENSOR_COMMANDS, line, execute_sensor),
     }
 }
 
@@ -228,6 +262,7 @@ fn execute_common(
             let id = match role {
                 Role::RfSource => state.scenario.source_identity(),
                 Role::Analyzer => state.scenario.analyzer_identity(),
+                Role::PowerSensor => state.scenario.power_sensor.identity(),
             };
             Response::text(format!(
                 "{},{},{},{}",
@@ -238,6 +273,7 @@ fn execute_common(
             match role {
                 Role::RfSource => state.reset_source(),
                 Role::Analyzer => state.reset_analyzer(),
+                Role::PowerSensor => state.reset_sensor(),
             }
             Response::none()
         }
@@ -309,6 +345,65 @@ fn execute_source(
         SourceCommand::Output => {
             let on = command.single_param()?.boolean()?;
             state.set_source_output(on);
+            Response::none()
+        }
+    }
+}
+
+fn execute_sensor(
+    state: &mut BenchState,
+    command: &Command<SensorCommand>,
+) -> Result<Response, ScpiError> {
+    use SensorCommand as S;
+    match (command.id, command.query) {
+        (S::Common(c), _) => execute_common(state, Role::PowerSensor, c, command),
+        (S::Configure, true) => {
+            command.no_params()?;
+            Response::text("\"POW:AC\"")
+        }
+        // The expected value, resolution and channel list are accepted and not needed.
+        (S::Configure, false) => {
+            command.params_between(0, 3)?;
+            Response::none()
+        }
+        (S::Measure, _) => {
+            command.params_between(0, 3)?;
+            let reading = state.take_sensor_reading();
+            let value = match reading {
+                super::sensor::Reading::Power(level) if state.sensor.unit_dbm => level.value(),
+                super::sensor::Reading::Power(level) => level.to_milliwatts() / 1e3,
+                super::sensor::Reading::OverRange => {
+                    state.sensor.status.push_error(ScpiError::new(
+                        codes::DATA_OUT_OF_RANGE,
+                        "over range; reading not valid",
+                    ));
+                    super::sensor::OVER_RANGE_REPLY
+                }
+            };
+            Ok(Response {
+                body: Some(format!("{value:E}").into_bytes()),
+                after_idle: true,
+            })
+        }
+        (S::Frequency, true) => {
+            let limits = state.scenario.power_sensor.limits();
+            match min_or_max(command)? {
+                Some(Bound::Min) => Response::number(limits.min_frequency.0),
+                Some(Bound::Max) => Response::number(limits.max_frequency.0),
+                None => Response::number(state.sensor.frequency.value()),
+            }
+        }
+        (S::Frequency, false) => {
+            let hz = command.single_param()?.number(Unit::Hertz)?;
+            state.set_sensor_frequency(hz)?;
+            Response::none()
+        }
+        (S::Unit, true) => {
+            command.no_params()?;
+            Response::text(if state.sensor.unit_dbm { "DBM" } else { "W" })
+        }
+        (S::Unit, false) => {
+            state.sensor.unit_dbm = command.single_param()?.choice(&["DBM", "W"])? == 0;
             Response::none()
         }
     }

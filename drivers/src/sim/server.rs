@@ -1,7 +1,7 @@
 //! The simulated bench served over TCP: one listening socket per instrument, raw SCPI lines
 //! (LXI-style socket, newline-terminated), any number of connections.
 //!
-//! [`SimServer::start`] binds both ports on 127.0.0.1 (port 0 picks a free one), spawns the
+//! [`SimServer::start`] binds the three ports (source, analyzer, power sensor) on 127.0.0.1 (port 0 picks a free one), spawns the
 //! accept loops on the current tokio runtime and returns at once with the bound addresses, the
 //! VISA-style resource strings and a [`FaultHandle`] per instrument. Each connection reads a line,
 //! logs its message units in the bench's command log, consults the faults, executes the line under
@@ -29,6 +29,8 @@ pub struct SimServerConfig {
     pub source_port: u16,
     /// Analyzer port (0 picks a free one).
     pub analyzer_port: u16,
+    /// Power sensor port (0 picks a free one); `None` serves no sensor.
+    pub sensor_port: Option<u16>,
 }
 
 impl SimServerConfig {
@@ -37,16 +39,19 @@ impl SimServerConfig {
         SimServerConfig {
             source_port: 0,
             analyzer_port: 0,
+            sensor_port: Some(0),
         }
     }
 }
 
 impl Default for SimServerConfig {
-    /// 5025 (the LXI raw-socket convention) for the source, 5026 for the analyzer.
+    /// 5025 (the LXI raw-socket convention) for the source, 5026 for the analyzer, 5027 for
+    /// the power sensor.
     fn default() -> SimServerConfig {
         SimServerConfig {
             source_port: 5025,
             analyzer_port: 5026,
+            sensor_port: Some(5027),
         }
     }
 }
@@ -57,8 +62,10 @@ pub struct SimServer {
     bench: SimBench,
     source_address: SocketAddr,
     analyzer_address: SocketAddr,
+    sensor_address: Option<SocketAddr>,
     source_faults: FaultHandle,
     analyzer_faults: FaultHandle,
+    sensor_faults: FaultHandle,
     shutdown: watch::Sender<bool>,
     tasks: Vec<JoinHandle<()>>,
 }
@@ -87,12 +94,21 @@ impl SimServer {
         };
         let source_listener = bind(config.source_port, Role::RfSource).await?;
         let analyzer_listener = bind(config.analyzer_port, Role::Analyzer).await?;
+        let sensor_listener = match config.sensor_port {
+            Some(port) => Some(bind(port, Role::PowerSensor).await?),
+            None => None,
+        };
         let source_address = source_listener.local_addr()?;
         let analyzer_address = analyzer_listener.local_addr()?;
+        let sensor_address = sensor_listener
+            .as_ref()
+            .map(TcpListener::local_addr)
+            .transpose()?;
         let source_faults = FaultHandle::new(Role::RfSource, bench.clone());
         let analyzer_faults = FaultHandle::new(Role::Analyzer, bench.clone());
+        let sensor_faults = FaultHandle::new(Role::PowerSensor, bench.clone());
         let (shutdown, _) = watch::channel(false);
-        let tasks = vec![
+        let mut tasks = vec![
             tokio::spawn(accept_loop(
                 source_listener,
                 Role::RfSource,
@@ -108,16 +124,27 @@ impl SimServer {
                 shutdown.subscribe(),
             )),
         ];
+        if let Some(listener) = sensor_listener {
+            tasks.push(tokio::spawn(accept_loop(
+                listener,
+                Role::PowerSensor,
+                bench.clone(),
+                sensor_faults.clone(),
+                shutdown.subscribe(),
+            )));
+        }
         tracing::info!(
-            source = %source_address, analyzer = %analyzer_address,
+            source = %source_address, analyzer = %analyzer_address, sensor = ?sensor_address,
             scenario = %bench.scenario().name, "simulated bench listening"
         );
         Ok(SimServer {
             bench,
             source_address,
             analyzer_address,
+            sensor_address,
             source_faults,
             analyzer_faults,
+            sensor_faults,
             shutdown,
             tasks,
         })
@@ -129,11 +156,23 @@ impl SimServer {
     }
 
     /// The address an instrument listens on.
+    ///
+    /// # Panics
+    /// For [`Role::PowerSensor`] when the server was started without a sensor port (a test's
+    /// set-up mistake); [`SimServer::sensor_address`] asks without panicking.
     pub fn address(&self, role: Role) -> SocketAddr {
         match role {
             Role::RfSource => self.source_address,
             Role::Analyzer => self.analyzer_address,
+            Role::PowerSensor => self
+                .sensor_address
+                .expect("the simulated bench was started without a power sensor port"),
         }
+    }
+
+    /// The power sensor's address, when one is served.
+    pub fn sensor_address(&self) -> Option<SocketAddr> {
+        self.sensor_address
     }
 
     /// The VISA-style resource string of an instrument: `TCPIP::127.0.0.1::<port>::SOCKET`.
@@ -146,6 +185,7 @@ impl SimServer {
         match role {
             Role::RfSource => self.source_faults.clone(),
             Role::Analyzer => self.analyzer_faults.clone(),
+            Role::PowerSensor => self.sensor_faults.clone(),
         }
     }
 
@@ -280,6 +320,7 @@ async fn serve_lines(
             let status = match role {
                 Role::RfSource => &mut state.source.status,
                 Role::Analyzer => &mut state.analyzer.status,
+                Role::PowerSensor => &mut state.sensor.status,
             };
             status.log.extend(units);
             match action {

@@ -73,7 +73,7 @@ impl InstrumentStatus {
     }
 
     /// Marks the instrument busy for `seconds` of simulated time from now.
-    fn busy_for(&mut self, seconds: f64, time_factor: f64) {
+    pub(crate) fn busy_for(&mut self, seconds: f64, time_factor: f64) {
         let wait = halfwave_units::Seconds(seconds * time_factor).to_duration();
         let until = Instant::now() + wait;
         self.busy_total += wait;
@@ -128,6 +128,18 @@ pub struct AnalyzerState {
     pub status: InstrumentStatus,
 }
 
+/// The power sensor's settings.
+#[derive(Debug, Clone)]
+pub struct SensorState {
+    /// The frequency whose calibration factor corrects the readings.
+    pub frequency: Hz,
+    /// Readings in dBm (else watts).
+    pub unit_dbm: bool,
+    /// Every time the sensor saw more than its damage level: frequency and level.
+    pub damage_events: Vec<(Hz, Dbm)>,
+    pub status: InstrumentStatus,
+}
+
 /// Everything that changes while the bench runs.
 #[derive(Debug)]
 pub struct BenchState {
@@ -139,6 +151,7 @@ pub struct BenchState {
     pub laser_drift: Hz,
     pub source: SourceState,
     pub analyzer: AnalyzerState,
+    pub sensor: SensorState,
     pub overdrive_events: Vec<OverdriveEvent>,
     /// False while the fibre from the modulator to the analyzer is "unplugged": no light arrives,
     /// the analyzer sees its noise floor (a fault for testing what the engine does then).
@@ -172,6 +185,12 @@ impl BenchState {
             last_sweep: None,
             status: InstrumentStatus::new(),
         };
+        let sensor = SensorState {
+            frequency: Hz(0.0),
+            unit_dbm: true,
+            damage_events: Vec::new(),
+            status: InstrumentStatus::new(),
+        };
         let mut state = BenchState {
             scenario,
             rng,
@@ -179,11 +198,13 @@ impl BenchState {
             laser_drift: Hz(0.0),
             source,
             analyzer,
+            sensor,
             overdrive_events: Vec::new(),
             fibre_connected: true,
         };
         state.reset_source();
         state.reset_analyzer();
+        state.reset_sensor();
         state
     }
 

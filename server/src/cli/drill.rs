@@ -11,7 +11,7 @@
 //!
 //! [[fault]]
 //! at_s = 5.0                # seconds after the start
-//! instrument = "rf_source"  # or "analyzer"
+//! instrument = "rf_source"  # or "analyzer", "power_sensor" (with --sensor-port)
 //! kind = "link_down"        # connections closed, new ones reset, for for_s seconds
 //! for_s = 3.0
 //!
@@ -172,9 +172,10 @@ impl FaultEntry {
         let instrument = match self.instrument.as_str() {
             "rf_source" => Role::RfSource,
             "analyzer" => Role::Analyzer,
+            "power_sensor" => Role::PowerSensor,
             other => {
                 return Err(format!(
-                    "`instrument` must be \"rf_source\" or \"analyzer\", got {other:?}"
+                    "`instrument` must be \"rf_source\", \"analyzer\" or \"power_sensor\", got {other:?}"
                 ))
             }
         };

@@ -1,4 +1,5 @@
-//! `halfwave sim`: the simulated bench served as two SCPI instruments over TCP, for trying the
+//! `halfwave sim`: the simulated bench served as SCPI instruments over TCP (a source, an analyzer
+//! and, with `--sensor-port`, a power sensor), for trying the
 //! daemon, the drivers or a client script without a lab.
 //!
 //! It reads a scenario (the built-in one unless `--scenario` names a TOML file), binds the two
@@ -17,7 +18,8 @@ use halfwave_drivers::sim::{Role, Scenario, SimBench, SimServer, SimServerConfig
 use std::io::Write;
 use std::path::PathBuf;
 
-/// Serve a simulated RF source and optical spectrum analyzer as SCPI instruments over TCP.
+/// Serve a simulated RF source, optical spectrum analyzer and (with --sensor-port) RF power
+/// sensor as SCPI instruments over TCP.
 #[derive(Debug, clap::Args)]
 pub struct SimArgs {
     /// Scenario file (TOML) describing laser, modulator, drive chain, source and analyzer;
@@ -30,6 +32,10 @@ pub struct SimArgs {
     /// TCP port of the simulated analyzer on 127.0.0.1 (0 picks a free one).
     #[arg(long, default_value_t = 5026)]
     pub analyzer_port: u16,
+    /// TCP port of the simulated RF power sensor on 127.0.0.1 (0 picks a free one); without
+    /// it no sensor is served.
+    #[arg(long)]
+    pub sensor_port: Option<u16>,
     /// Seed of the noise and laser drift: the same seed and commands give the same traces.
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
@@ -82,6 +88,7 @@ async fn serve(scenario: Scenario, drill: Option<Drill>, args: SimArgs) -> Resul
     let config = SimServerConfig {
         source_port: args.source_port,
         analyzer_port: args.analyzer_port,
+        sensor_port: args.sensor_port,
     };
     let server = SimServer::start(bench, config)
         .await
@@ -90,6 +97,14 @@ async fn serve(scenario: Scenario, drill: Option<Drill>, args: SimArgs) -> Resul
         let mut out = std::io::stdout().lock();
         let printed = writeln!(out, "rf-source {}", server.resource(Role::RfSource))
             .and_then(|_| writeln!(out, "analyzer {}", server.resource(Role::Analyzer)))
+            .and_then(|_| match server.sensor_address() {
+                Some(address) => writeln!(
+                    out,
+                    "power-sensor {}",
+                    halfwave_drivers::sim::server::resource_string(address)
+                ),
+                None => Ok(()),
+            })
             .and_then(|_| out.flush());
         printed.map_err(|e| CliError::new(format!("cannot write to stdout: {e}")))?;
     }
@@ -103,12 +118,14 @@ async fn serve(scenario: Scenario, drill: Option<Drill>, args: SimArgs) -> Resul
     let drill_task = drill.map(|drill| {
         let source = server.faults(Role::RfSource);
         let analyzer = server.faults(Role::Analyzer);
+        let sensor = server.faults(Role::PowerSensor);
         tokio::spawn(drill::run(
             drill,
             server.bench().clone(),
             move |role| match role {
                 Role::RfSource => source.clone(),
                 Role::Analyzer => analyzer.clone(),
+                Role::PowerSensor => sensor.clone(),
             },
             ready,
         ))
