@@ -136,6 +136,20 @@ pub struct BenchConfig {
     /// frequencies (0 to 10); V_pi's uncertainty budget reads it as a rectangular distribution.
     #[serde(default)]
     pub source_level_accuracy_db: Option<f64>,
+    /// Optional RF power sensor for calibrating the drive chain (`halfwave chain calibrate`),
+    /// like `source`: `{ kind = "scpi", resource = "...", profile = "..." }` or
+    /// `{ kind = "simulated" }`.
+    #[serde(default)]
+    pub sensor: Option<InstrumentConfig>,
+    /// The sensor's stated accuracy, +/- percent of the reading (its data sheet's figure,
+    /// calibration factor included; 0 to 50), read as a rectangular distribution. A chain
+    /// calibration request may give its own.
+    #[serde(default)]
+    pub sensor_accuracy_percent: Option<f64>,
+    /// The magnitude of the sensor's input reflection coefficient |Gamma| (its data sheet's
+    /// worst case, 0 to 1), for the mismatch uncertainty. A request may give its own.
+    #[serde(default)]
+    pub sensor_reflection_coefficient: Option<f64>,
 }
 
 /// The whole configuration.
@@ -217,6 +231,9 @@ impl Config {
                     time_factor,
                 }),
                 source_level_accuracy_db: None,
+                sensor: Some(InstrumentConfig::Simulated),
+                sensor_accuracy_percent: None,
+                sensor_reflection_coefficient: None,
             }],
             webhooks: Vec::new(),
             base_dir: PathBuf::from("."),
@@ -285,14 +302,22 @@ impl Config {
                 ));
             }
             let simulated = matches!(bench.source, InstrumentConfig::Simulated)
-                || matches!(bench.analyzer, InstrumentConfig::Simulated);
+                || matches!(bench.analyzer, InstrumentConfig::Simulated)
+                || matches!(bench.sensor, Some(InstrumentConfig::Simulated));
             if simulated && bench.simulation.is_none() {
                 return Err(invalid(
                     &format!("{field}.simulation"),
                     "a bench with simulated instruments needs a [bench.simulation] table (it may be empty)".into(),
                 ));
             }
-            for (role, inst) in [("source", &bench.source), ("analyzer", &bench.analyzer)] {
+            for (role, inst) in [
+                ("source", Some(&bench.source)),
+                ("analyzer", Some(&bench.analyzer)),
+                ("sensor", bench.sensor.as_ref()),
+            ]
+            .into_iter()
+            .filter_map(|(role, inst)| Some((role, inst?)))
+            {
                 if let InstrumentConfig::Scpi { resource, .. } = inst {
                     if let Err(e) = halfwave_drivers::resource::Resource::parse(resource) {
                         return Err(invalid(&format!("{field}.{role}.resource"), e.to_string()));
@@ -306,6 +331,27 @@ impl Config {
                         format!(
                             "must be the generator's level accuracy in dB, 0 to 10 (the +/- value of its data sheet), got {accuracy}"
                         ),
+                    ));
+                }
+            }
+            for (key, value, max, what) in [
+                (
+                    "sensor_accuracy_percent",
+                    bench.sensor_accuracy_percent,
+                    50.0,
+                    "the sensor's +/- accuracy in percent of the reading, 0 to 50",
+                ),
+                (
+                    "sensor_reflection_coefficient",
+                    bench.sensor_reflection_coefficient,
+                    0.99,
+                    "the magnitude of the sensor's reflection coefficient, 0 to 0.99",
+                ),
+            ] {
+                if let Some(v) = value.filter(|v| !(v.is_finite() && (0.0..=max).contains(v))) {
+                    return Err(invalid(
+                        &format!("{field}.{key}"),
+                        format!("must be {what}, got {v}"),
                     ));
                 }
             }

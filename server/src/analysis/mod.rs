@@ -36,6 +36,7 @@ pub mod fit;
 pub mod index;
 pub mod prediction;
 pub mod response;
+pub mod sensor_chain;
 mod smooth_shape;
 pub mod spacing;
 pub mod synthetic;

@@ -1,13 +1,14 @@
 //! Building a bench's instruments from the configuration.
 //!
-//! A bench is a source and an analyzer behind the instrument traits; which implementation sits
+//! A bench is a source and an analyzer (and optionally a power sensor) behind the instrument
+//! traits; which implementation sits
 //! behind each (a generic SCPI driver with its command profile, or the in-process simulated
 //! bench) is decided here and nowhere else, so the engine never knows.
 
 use crate::config::{BenchConfig, Config, InstrumentConfig};
-use halfwave_drivers::generic::{connect_analyzer, connect_source};
+use halfwave_drivers::generic::{connect_analyzer, connect_sensor, connect_source};
 use halfwave_drivers::sim::{Scenario, SimBench};
-use halfwave_drivers::{RfSource, SpectrumAnalyzer};
+use halfwave_drivers::{PowerSensor, RfSource, SpectrumAnalyzer};
 
 use super::EngineError;
 
@@ -15,6 +16,8 @@ use super::EngineError;
 pub struct BenchInstruments {
     pub source: Box<dyn RfSource>,
     pub analyzer: Box<dyn SpectrumAnalyzer>,
+    /// The power sensor for chain calibrations, when the bench has one.
+    pub sensor: Option<Box<dyn PowerSensor>>,
     /// The simulation, when either instrument is simulated (tests read its truth from it).
     pub simulation: Option<SimBench>,
 }
@@ -25,6 +28,7 @@ impl BenchInstruments {
         BenchInstruments {
             source: Box::new(sim.rf_source()),
             analyzer: Box::new(sim.analyzer()),
+            sensor: Some(Box::new(sim.power_sensor())),
             simulation: Some(sim),
         }
     }
@@ -113,14 +117,44 @@ pub async fn connect_bench_analyzer(
     }
 }
 
+/// Connects (or simulates) a bench's power sensor, when it has one.
+pub async fn connect_bench_sensor(
+    config: &Config,
+    bench: &BenchConfig,
+    simulation: Option<&SimBench>,
+) -> Result<Option<Box<dyn PowerSensor>>, EngineError> {
+    match &bench.sensor {
+        None => Ok(None),
+        Some(InstrumentConfig::Simulated) => match simulation {
+            Some(sim) => Ok(Some(Box::new(sim.power_sensor()))),
+            None => Err(setup_error(
+                bench,
+                "the sensor is simulated but there is no [bench.simulation]".into(),
+            )),
+        },
+        Some(InstrumentConfig::Scpi { resource, profile }) => {
+            let profile = profile.as_ref().map(|p| config.resolve(p));
+            connect_sensor(resource, profile.as_deref())
+                .await
+                .map(Some)
+                .map_err(|source| EngineError::Instrument {
+                    bench: bench.name.clone(),
+                    source,
+                })
+        }
+    }
+}
+
 /// Connects (or simulates) the instruments of one configured bench; nothing is switched.
 pub async fn build(config: &Config, bench: &BenchConfig) -> Result<BenchInstruments, EngineError> {
     let simulation = simulation(config, bench).map_err(|m| setup_error(bench, m))?;
     let source = connect_bench_source(config, bench, simulation.as_ref()).await?;
     let analyzer = connect_bench_analyzer(config, bench, simulation.as_ref()).await?;
+    let sensor = connect_bench_sensor(config, bench, simulation.as_ref()).await?;
     Ok(BenchInstruments {
         source,
         analyzer,
+        sensor,
         simulation,
     })
 }

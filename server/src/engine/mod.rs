@@ -14,6 +14,7 @@
 pub mod acquire;
 pub mod adaptive;
 pub mod bench;
+pub mod chain_run;
 pub mod events;
 pub mod plan;
 pub mod rf_safety;
@@ -97,6 +98,12 @@ pub struct BenchStatus {
     pub safety_fault: Option<BenchSafetyRecord>,
 }
 
+/// What a bench's worker takes from its queue.
+enum Work {
+    Measure(Job),
+    Chain(chain_run::ChainJob),
+}
+
 struct Job {
     run_id: i64,
     plan: Arc<Plan>,
@@ -118,8 +125,10 @@ struct BenchSlot {
     analyzer_resource: String,
     identities: std::sync::Mutex<(Option<Identity>, Option<Identity>)>,
     queue: std::sync::Mutex<BenchQueue>,
-    jobs: mpsc::UnboundedSender<Job>,
+    jobs: mpsc::UnboundedSender<Work>,
     safety: Arc<BenchSafety>,
+    /// The power sensor for chain calibrations, when the bench has one.
+    sensor: Option<chain_run::SharedSensor>,
 }
 
 /// Locks a std mutex even if a thread panicked while holding it: the engine's maps stay usable,
@@ -137,6 +146,10 @@ struct Inner {
     benches: HashMap<String, Arc<BenchSlot>>,
     /// Each bench's stated generator level accuracy (+/- dB, from the configuration), where given.
     source_level_accuracy: HashMap<String, Db>,
+    /// Each bench's stated sensor accuracy (+/- %) and |Gamma|, where given.
+    sensor_figures: HashMap<String, (Option<f64>, Option<f64>)>,
+    /// Cancel tokens of queued and running chain calibrations.
+    chain_cancels: std::sync::Mutex<HashMap<i64, CancellationToken>>,
     /// Runs a previous process left running, marked interrupted by this start.
     interrupted_at_start: Vec<i64>,
     /// Cancel tokens of queued and running runs.
@@ -178,16 +191,19 @@ impl Engine {
         }
         let mut benches = Vec::new();
         for (bench, simulation, source) in sources {
-            match bench::connect_bench_analyzer(config, bench, simulation.as_ref()).await {
-                Ok(analyzer) => benches.push((
+            let analyzer = bench::connect_bench_analyzer(config, bench, simulation.as_ref()).await;
+            let sensor = bench::connect_bench_sensor(config, bench, simulation.as_ref()).await;
+            match (analyzer, sensor) {
+                (Ok(analyzer), Ok(sensor)) => benches.push((
                     bench.name.clone(),
                     BenchInstruments {
                         source,
                         analyzer,
+                        sensor,
                         simulation,
                     },
                 )),
-                Err(e) => failures.push(e),
+                (Err(e), _) | (_, Err(e)) => failures.push(e),
             }
         }
         if !failures.is_empty() {
@@ -202,7 +218,24 @@ impl Engine {
             .iter()
             .filter_map(|b| Some((b.name.clone(), Db(b.source_level_accuracy_db?))))
             .collect();
-        Self::launch(config.limits.clone(), store, benches, start_off, accuracy).await
+        let sensor_figures = config
+            .benches
+            .iter()
+            .map(|b| {
+                (
+                    b.name.clone(),
+                    (b.sensor_accuracy_percent, b.sensor_reflection_coefficient),
+                )
+            })
+            .collect();
+        Self::launch(
+            config.limits.clone(),
+            store,
+            benches,
+            start_off,
+            (accuracy, sensor_figures),
+        )
+        .await
     }
 
     /// Starts the engine on benches built by the caller (tests use this to keep a handle on
@@ -218,7 +251,38 @@ impl Engine {
             let off = bench::switch_off_at_start(name, instruments.source.as_mut()).await;
             start_off.insert(name.clone(), off);
         }
-        Self::launch(limits, store, benches, start_off, HashMap::new()).await
+        Self::launch(
+            limits,
+            store,
+            benches,
+            start_off,
+            (HashMap::new(), HashMap::new()),
+        )
+        .await
+    }
+
+    /// [`Engine::start_with`] with each bench's stated generator level accuracy (+/- dB) and
+    /// sensor figures (accuracy +/- %, |Gamma|), as the configuration gives them.
+    pub async fn start_with_figures(
+        limits: Limits,
+        store: Store,
+        mut benches: Vec<(String, BenchInstruments)>,
+        source_level_accuracy: HashMap<String, Db>,
+        sensor_figures: HashMap<String, (Option<f64>, Option<f64>)>,
+    ) -> Result<Engine, EngineError> {
+        let mut start_off = HashMap::new();
+        for (name, instruments) in &mut benches {
+            let off = bench::switch_off_at_start(name, instruments.source.as_mut()).await;
+            start_off.insert(name.clone(), off);
+        }
+        Self::launch(
+            limits,
+            store,
+            benches,
+            start_off,
+            (source_level_accuracy, sensor_figures),
+        )
+        .await
     }
 
     /// Starts the engine on benches whose sources were switched off at start-up (`start_off`
@@ -228,7 +292,10 @@ impl Engine {
         store: Store,
         benches: Vec<(String, BenchInstruments)>,
         mut start_off: HashMap<String, Result<(), String>>,
-        source_level_accuracy: HashMap<String, Db>,
+        (source_level_accuracy, sensor_figures): (
+            HashMap<String, Db>,
+            HashMap<String, (Option<f64>, Option<f64>)>,
+        ),
     ) -> Result<Engine, EngineError> {
         let (events, _) = broadcast::channel(EVENT_BUFFER);
         let shutdown = CancellationToken::new();
@@ -253,6 +320,7 @@ impl Engine {
                 identities: std::sync::Mutex::new((None, None)),
                 queue: std::sync::Mutex::new(BenchQueue::default()),
                 jobs: tx,
+                sensor: instruments.sensor.map(|s| Arc::new(Mutex::new(s))),
                 safety: BenchSafety::new(
                     name.clone(),
                     store.clone(),
@@ -267,6 +335,10 @@ impl Engine {
             slots.insert(name, slot);
         }
         let interrupted = store.mark_running_as_interrupted().await?;
+        let unfinished = store.fail_unfinished_chain_runs().await?;
+        if !unfinished.is_empty() {
+            tracing::warn!(chain_runs = ?unfinished, "chain calibrations left unfinished by the previous process are failed; submit them again");
+        }
         if !interrupted.is_empty() {
             tracing::warn!(
                 runs = ?interrupted,
@@ -280,6 +352,8 @@ impl Engine {
                 events,
                 benches: slots,
                 source_level_accuracy,
+                sensor_figures,
+                chain_cancels: std::sync::Mutex::new(HashMap::new()),
                 interrupted_at_start: interrupted.clone(),
                 cancels: std::sync::Mutex::new(HashMap::new()),
                 shutdown,
@@ -514,6 +588,12 @@ impl Engine {
             })
             .await?
             .id;
+        // What the budget of this run will use, whatever the configuration says later.
+        if let Some(accuracy) = self.source_level_accuracy(&request.bench) {
+            store
+                .record_run_source_level_accuracy(run_id, accuracy)
+                .await?;
+        }
         // The run's `run.submit` audit row is written with the run, in one transaction.
         tracing::info!(
             run_id,
@@ -596,7 +676,9 @@ impl Engine {
     /// Cancels everything, waits for the RF to go off, and switches every source off again.
     pub async fn shutdown(&self) {
         self.inner.shutdown.cancel();
-        let tokens: Vec<CancellationToken> = lock(&self.inner.cancels).values().cloned().collect();
+        let mut tokens: Vec<CancellationToken> =
+            lock(&self.inner.cancels).values().cloned().collect();
+        tokens.extend(lock(&self.inner.chain_cancels).values().cloned());
         for t in tokens {
             t.cancel();
         }
@@ -755,19 +837,33 @@ impl Engine {
             run_id,
             bench: bench.clone(),
         });
-        let _ = slot.jobs.send(Job {
+        let _ = slot.jobs.send(Work::Measure(Job {
             run_id,
             plan,
             chain,
             done,
-        });
+        }));
     }
 
-    async fn worker(self, slot: Arc<BenchSlot>, mut jobs: mpsc::UnboundedReceiver<Job>) {
+    async fn worker(self, slot: Arc<BenchSlot>, mut jobs: mpsc::UnboundedReceiver<Work>) {
         loop {
-            let job = tokio::select! {
+            let work = tokio::select! {
                 _ = self.inner.shutdown.cancelled() => break,
                 job = jobs.recv() => match job { Some(j) => j, None => break },
+            };
+            let job = match work {
+                Work::Measure(job) => job,
+                Work::Chain(job) => {
+                    if !slot.safety.is_clear() {
+                        tracing::warn!(bench = %slot.name, chain_run = job.id, "chain calibration waits: the bench is held by a safety fault");
+                        tokio::select! {
+                            _ = self.inner.shutdown.cancelled() => break,
+                            _ = slot.safety.wait_clear() => {}
+                        }
+                    }
+                    self.run_chain_job(&slot, job).await;
+                    continue;
+                }
             };
             // A bench with a safety fault starts nothing until the output is confirmed off and
             // an operator has acknowledged; the run keeps its place in the queue meanwhile.

@@ -23,6 +23,7 @@ pub mod api_reads;
 pub mod audit;
 pub mod bench_safety;
 pub mod calibrations;
+pub mod chain_runs;
 pub mod devices;
 pub mod error;
 pub mod history;
