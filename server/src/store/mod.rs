@@ -38,6 +38,7 @@ pub mod webhooks;
 
 pub use api_reads::CompletedRunsFingerprint;
 pub use bench_safety::{BenchFault, BenchSafetyRecord};
+pub use chain_runs::ChainRunRecord;
 pub use error::StoreError;
 pub use records::*;
 pub use trace_codec::TraceCodecError;

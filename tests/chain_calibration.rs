@@ -1,0 +1,252 @@
+//! Chain calibration runs on the simulated bench over SCPI/TCP, as the daemon drives a real one:
+//! source, analyzer and power sensor through the generic drivers, built from a configuration.
+//!
+//! The simulator is the oracle: its scenario states the true gain from the generator's set level
+//! to the modulator's input at every frequency (`Scenario::generator_to_modulator_gain_at`: the
+//! generator's level error less the cable loss). Its sensor adds what a real one adds: its own
+//! 0.8 % calibration error, mismatch with the chain's output (|Gamma_s| = 0.1 against the
+//! sensor's 0.05, phase turning with frequency) and reading noise. The stored chain must recover
+//! the true gain within its stated expanded uncertainty (k = 2), and RF must be off after
+//! completion, cancel, a fault and the in-run range interlock.
+
+use halfwave::config::Config;
+use halfwave::engine::chain_run::{ChainCalibrationRequest, ChainRunResult};
+use halfwave::engine::{Engine, SubmitError};
+use halfwave::store::{ChainRunRecord, Store};
+use halfwave_drivers::sim::server::{SimServer, SimServerConfig};
+use halfwave_drivers::sim::{Role, Scenario, SimBench};
+use std::path::Path;
+use std::time::Duration;
+
+const FREQUENCIES_HZ: [f64; 5] = [0.2e9, 1e9, 5e9, 10e9, 18e9];
+
+/// One SCPI bench "sim" with the simulator's three instruments; the sensor's profile has short
+/// timeouts so a silent sensor is found quickly.
+fn scpi_config(dir: &Path, server: &SimServer, sensor_figures: bool) -> Config {
+    let profile = dir.join("sensor.toml");
+    std::fs::write(
+        &profile,
+        "kind = \"power_sensor\"\nmeasure_timeout_ms = 600\n[connection]\ntimeout_ms = 600\nconnect_timeout_ms = 600\nreconnect_backoff_ms = 10\n",
+    )
+    .unwrap();
+    let figures = if sensor_figures {
+        "sensor_accuracy_percent = 3.0\nsensor_reflection_coefficient = 0.05\n"
+    } else {
+        ""
+    };
+    let text = format!(
+        "data_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\n{figures}source = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\" }}\nsensor = {{ kind = \"scpi\", resource = \"{}\", profile = \"sensor.toml\" }}\n",
+        dir.join("data").display(),
+        server.resource(Role::RfSource),
+        server.resource(Role::Analyzer),
+        server.resource(Role::PowerSensor),
+    );
+    Config::from_toml(&text, &dir.join("halfwave.toml"), dir.to_path_buf())
+        .expect("configuration parses")
+}
+
+async fn start(
+    time_factor: f64,
+    seed: u64,
+    sensor_figures: bool,
+) -> (tempfile::TempDir, SimServer, Store, Engine) {
+    let dir = tempfile::tempdir().unwrap();
+    let bench = SimBench::new(Scenario::builtin().unwrap(), seed).with_time_factor(time_factor);
+    let server = SimServer::start(bench, SimServerConfig::any_free_ports())
+        .await
+        .unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let config = scpi_config(dir.path(), &server, sensor_figures);
+    let engine = Engine::start(&config, store.clone()).await.unwrap();
+    (dir, server, store, engine)
+}
+
+fn request(name: &str) -> ChainCalibrationRequest {
+    ChainCalibrationRequest {
+        bench: "sim".into(),
+        name: name.into(),
+        frequencies_hz: FREQUENCIES_HZ.to_vec(),
+        levels_dbm: vec![-10.0, 0.0],
+        readings_per_level: 5,
+        max_expected_gain_db: 0.0,
+        source_reflection_coefficient: 0.1,
+        sensor_accuracy_percent: None,
+        sensor_reflection_coefficient: None,
+    }
+}
+
+/// Waits (up to 60 s) for the chain run to end.
+async fn wait_for_end(store: &Store, id: i64) -> ChainRunRecord {
+    for _ in 0..3000 {
+        let run = store.chain_run(id).await.unwrap();
+        if !matches!(run.state.as_str(), "queued" | "running") {
+            return run;
+        }
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+    panic!("chain run {id} did not end within 60 s");
+}
+
+/// Waits (up to 10 s) until the simulated RF output is on.
+async fn wait_for_rf_on(sim: &SimBench) {
+    for _ in 0..1000 {
+        if sim.rf_output_on() {
+            return;
+        }
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    panic!("the RF output never went on");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_stored_chain_recovers_the_true_gain_within_its_expanded_uncertainty() {
+    let (_dir, server, store, engine) = start(0.0, 31, true).await;
+    let sim = server.bench().clone();
+    let id = engine
+        .submit_chain_calibration(request("bench-sim chain"), "test")
+        .await
+        .unwrap();
+    let run = wait_for_end(&store, id).await;
+    assert_eq!(run.state, "completed", "cause: {:?}", run.cause);
+    assert!(!sim.rf_output_on(), "RF must be off after the calibration");
+    assert!(sim.sensor_damage_events().is_empty());
+    assert!(!sim.overdriven());
+
+    let chain = store
+        .chain_calibration(run.chain_calibration_id.unwrap())
+        .await
+        .unwrap();
+    assert_eq!((chain.name.as_str(), chain.version), ("bench-sim chain", 1));
+    assert_eq!(chain.points.len(), FREQUENCIES_HZ.len());
+    let scenario = sim.scenario();
+    for point in &chain.points {
+        let truth = scenario.generator_to_modulator_gain_at(point.frequency()).0;
+        let u = point.gain_uncertainty_db.expect("the sensor run states its uncertainty");
+        let error = point.gain_db - truth;
+        eprintln!(
+            "{:>8.2} GHz  stored {:+.4} dB  true {truth:+.4} dB  error {error:+.4} dB  U(k=2) {:.4} dB",
+            point.frequency_hz / 1e9,
+            point.gain_db,
+            2.0 * u
+        );
+        assert!(
+            error.abs() <= 2.0 * u,
+            "at {}: stored {:.4} dB, true {truth:.4} dB, error {error:.4} dB, U(k=2) {:.4} dB",
+            point.frequency(),
+            point.gain_db,
+            2.0 * u
+        );
+        // The Type B terms dominate: 3 % rectangular is 0.074 dB, mismatch 0.1 x 0.05 is
+        // 0.031 dB (U-shaped), so u is about 0.08 dB (hand computation).
+        assert!((0.075..0.09).contains(&u), "u = {u} dB");
+    }
+    let result: ChainRunResult = serde_json::from_str(run.result.as_deref().unwrap()).unwrap();
+    assert_eq!(result.frequencies.len(), FREQUENCIES_HZ.len());
+    assert!(result.frequencies.iter().all(|f| f.readings.len() == 10));
+    // Each frequency's calibration factor was set before its readings.
+    let log = sim.command_log(Role::PowerSensor);
+    for f in FREQUENCIES_HZ {
+        let set = format!("SENSe:FREQuency {}", f as u64);
+        assert!(log.contains(&set), "{set} not sent");
+    }
+
+    // A second calibration under the same name is its next version.
+    let id = engine
+        .submit_chain_calibration(request("bench-sim chain"), "test")
+        .await
+        .unwrap();
+    let run = wait_for_end(&store, id).await;
+    let chain = store
+        .chain_calibration(run.chain_calibration_id.unwrap())
+        .await
+        .unwrap();
+    assert_eq!(chain.version, 2);
+    engine.shutdown().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn cancel_and_a_silent_sensor_leave_the_rf_off() {
+    // Real instrument times: 50 ms a reading, so a calibration takes seconds.
+    let (_dir, server, store, engine) = start(1.0, 32, true).await;
+    let sim = server.bench().clone();
+    let id = engine
+        .submit_chain_calibration(request("cancelled"), "test")
+        .await
+        .unwrap();
+    wait_for_rf_on(&sim).await;
+    engine.cancel_chain_calibration(id, "test").await.unwrap();
+    let run = wait_for_end(&store, id).await;
+    assert_eq!(run.state, "cancelled", "cause: {:?}", run.cause);
+    assert!(!sim.rf_output_on(), "RF must be off after cancel");
+    assert!(run.chain_calibration_id.is_none());
+    let err = engine.cancel_chain_calibration(id, "test").await.unwrap_err();
+    assert!(err.to_string().contains("cancelled"), "{err}");
+
+    let id = engine
+        .submit_chain_calibration(request("fault"), "test")
+        .await
+        .unwrap();
+    wait_for_rf_on(&sim).await;
+    server.faults(Role::PowerSensor).stop_answering();
+    let run = wait_for_end(&store, id).await;
+    assert_eq!(run.state, "failed");
+    let cause = run.cause.unwrap();
+    assert!(cause.contains("MEASure"), "{cause}");
+    assert!(!sim.rf_output_on(), "RF must be off after a sensor fault");
+    server.faults(Role::PowerSensor).resume();
+    engine.shutdown().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_range_interlock_stops_before_a_level_the_sensor_cannot_take() {
+    let (_dir, server, store, engine) = start(0.0, 33, true).await;
+    let sim = server.bench().clone();
+    // The operator claims the chain loses at least 10 dB; it loses about 1 dB at 1 GHz, so
+    // 15 dBm gives about 14 dBm and 25 dBm would give about 24 dBm, over the sensor's +20 dBm.
+    let mut req = request("too much gain");
+    req.frequencies_hz = vec![1e9];
+    req.levels_dbm = vec![15.0, 25.0];
+    req.max_expected_gain_db = -10.0;
+    let id = engine.submit_chain_calibration(req, "test").await.unwrap();
+    let run = wait_for_end(&store, id).await;
+    assert_eq!(run.state, "failed");
+    let cause = run.cause.unwrap();
+    assert!(cause.contains("above its range"), "{cause}");
+    assert!(!sim.rf_output_on());
+    assert!(sim.sensor_damage_events().is_empty());
+    let (_, level) = sim.rf_setting();
+    assert!(level.0 < 20.0, "the 25 dBm level was never set ({level})");
+    engine.shutdown().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn requests_outside_the_limits_are_refused_naming_each_field() {
+    let (_dir, server, _store, engine) = start(0.0, 34, false).await;
+    let mut req = request("refused");
+    req.levels_dbm = vec![15.0, 22.0];
+    req.frequencies_hz = vec![1e9, 30e9];
+    req.source_reflection_coefficient = 1.5;
+    let Err(SubmitError::Invalid(invalid)) = engine.submit_chain_calibration(req, "test").await
+    else {
+        panic!("the request must be refused");
+    };
+    let fields: Vec<&str> = invalid.errors.iter().map(|e| e.field.as_str()).collect();
+    for field in [
+        "levels_dbm",
+        "frequencies_hz",
+        "source_reflection_coefficient",
+        // The bench states no sensor figures and the request gives none.
+        "sensor_accuracy_percent",
+        "sensor_reflection_coefficient",
+    ] {
+        assert!(fields.contains(&field), "{field} not in {fields:?}");
+    }
+    let mut req = request("no bench");
+    req.bench = "elsewhere".into();
+    let err = engine.submit_chain_calibration(req, "test").await.unwrap_err();
+    assert!(err.to_string().contains("no bench named"), "{err}");
+    assert!(server.bench().command_log(Role::PowerSensor).iter().all(|c| !c.starts_with("MEAS")));
+    engine.shutdown().await;
+}
