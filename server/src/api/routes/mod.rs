@@ -8,6 +8,7 @@
 
 pub mod benches;
 pub mod budget;
+pub mod chain_runs;
 pub mod chains;
 pub mod dashboard;
 pub mod devices;
@@ -65,6 +66,9 @@ pub fn timed_routes() -> OpenApiRouter<AppState> {
         .routes(routes!(chains::upload_chain, chains::list_chains))
         .routes(routes!(chains::get_chain))
         .routes(routes!(budget::run_budget))
+        .routes(routes!(chain_runs::submit_chain_run))
+        .routes(routes!(chain_runs::get_chain_run))
+        .routes(routes!(chain_runs::cancel_chain_run))
 }
 
 /// The long-lived routes (server-sent events), exempt from the request timeout.

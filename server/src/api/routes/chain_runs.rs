@@ -1,0 +1,142 @@
+//! Chain calibration runs: submit one (operators), read it, cancel it. The engine proves the
+//! request against the bench's source, its power sensor and the daemon's limits and reports every
+//! invalid field at once (422); a refused request never reaches an instrument. A completed run
+//! names the chain calibration version it stored (`GET /chain-calibrations/{id}`) and carries its
+//! readings and per-frequency uncertainty budget.
+
+use crate::api::auth::{Operator, Viewer};
+use crate::api::json_body::JsonBody;
+use crate::api::params::ApiPath;
+use crate::api::problem::Problem;
+use crate::api::AppState;
+use crate::engine::chain_run::{ChainCalibrationRequest, ChainRunResult};
+use crate::store::ChainRunRecord;
+use axum::extract::State;
+use axum::http::header::LOCATION;
+use axum::http::{HeaderName, StatusCode};
+use axum::Json;
+use serde::{Deserialize, Serialize};
+use utoipa::ToSchema;
+
+/// The answer to a submission.
+#[derive(Debug, Serialize, Deserialize, ToSchema)]
+pub struct SubmittedChainRun {
+    pub chain_run_id: i64,
+    /// Where to read it.
+    pub location: String,
+}
+
+/// A chain calibration run.
+#[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
+pub struct ChainRunView {
+    pub id: i64,
+    pub name: String,
+    pub bench: String,
+    /// `queued`, `running`, `completed`, `failed` or `cancelled`.
+    pub state: String,
+    pub cause: Option<String>,
+    pub submitted_by: String,
+    pub created_at_unix_ms: i64,
+    pub finished_at_unix_ms: Option<i64>,
+    /// The chain calibration version it stored (completed runs).
+    pub chain_calibration_id: Option<i64>,
+    pub request: ChainCalibrationRequest,
+    /// Readings and the per-frequency budget (completed runs).
+    pub result: Option<ChainRunResult>,
+}
+
+impl ChainRunView {
+    fn of(record: ChainRunRecord) -> Result<ChainRunView, Problem> {
+        let request = serde_json::from_str(&record.request).map_err(|e| {
+            Problem::internal(format!(
+                "chain run {}'s stored request cannot be read: {e}",
+                record.id
+            ))
+        })?;
+        let result = record
+            .result
+            .as_deref()
+            .map(serde_json::from_str)
+            .transpose()
+            .map_err(|e| {
+                Problem::internal(format!(
+                    "chain run {}'s stored result cannot be read: {e}",
+                    record.id
+                ))
+            })?;
+        Ok(ChainRunView {
+            id: record.id,
+            name: record.name,
+            bench: record.bench_name,
+            state: record.state,
+            cause: record.cause,
+            submitted_by: record.submitted_by,
+            created_at_unix_ms: record.created_at_unix_ms,
+            finished_at_unix_ms: record.finished_at_unix_ms,
+            chain_calibration_id: record.chain_calibration_id,
+            request,
+            result,
+        })
+    }
+}
+
+/// Queues a chain calibration: the bench's RF source drives through the drive chain into its
+/// power sensor, and the gains with their uncertainties become the next version of the named
+/// chain calibration. Every invalid field is reported at once (422).
+#[utoipa::path(post, path = "/api/v1/chain-calibration-runs", tag = "chains", security(("bearer" = [])),
+    request_body(content = ChainCalibrationRequest, description = "What to measure. Whether it can run is decided against the bench it names (its source's and sensor's ranges, the chain's largest expected gain, the daemon's ceiling) and every field that fails is named in the 422."),
+    responses((status = 201, body = SubmittedChainRun), (status = 401, body = Problem),
+              (status = 403, body = Problem), (status = 413, body = Problem),
+              (status = 422, description = "Invalid fields, each named in `errors`", body = Problem),
+              (status = 503, description = "Read-only server without an engine", body = Problem)))]
+pub async fn submit_chain_run(
+    Operator(caller): Operator,
+    State(state): State<AppState>,
+    JsonBody(request): JsonBody<ChainCalibrationRequest>,
+) -> Result<(StatusCode, [(HeaderName, String); 1], Json<SubmittedChainRun>), Problem> {
+    let id = state
+        .engine()?
+        .submit_chain_calibration(request, &caller.name)
+        .await?;
+    let location = format!("/api/v1/chain-calibration-runs/{id}");
+    Ok((
+        StatusCode::CREATED,
+        [(LOCATION, location.clone())],
+        Json(SubmittedChainRun {
+            chain_run_id: id,
+            location,
+        }),
+    ))
+}
+
+/// A chain calibration run: its state, and once completed the version it stored and its budget.
+#[utoipa::path(get, path = "/api/v1/chain-calibration-runs/{chain_run_id}", tag = "chains", security(("bearer" = [])),
+    params(("chain_run_id" = i64, Path, description = "Chain calibration run id")),
+    responses((status = 200, body = ChainRunView), (status = 401, body = Problem), (status = 404, body = Problem)))]
+pub async fn get_chain_run(
+    _caller: Viewer,
+    State(state): State<AppState>,
+    ApiPath(id): ApiPath<i64>,
+) -> Result<Json<ChainRunView>, Problem> {
+    let record = state.store().chain_run(id).await?;
+    Ok(Json(ChainRunView::of(record)?))
+}
+
+/// Cancels a queued or running chain calibration (the RF output is switched off).
+#[utoipa::path(post, path = "/api/v1/chain-calibration-runs/{chain_run_id}/cancel", tag = "chains", security(("bearer" = [])),
+    params(("chain_run_id" = i64, Path, description = "Chain calibration run id")),
+    responses((status = 202, description = "Cancellation under way"), (status = 401, body = Problem),
+              (status = 403, body = Problem), (status = 404, body = Problem),
+              (status = 409, description = "The run has already ended", body = Problem),
+              (status = 503, description = "Read-only server without an engine", body = Problem)))]
+pub async fn cancel_chain_run(
+    Operator(caller): Operator,
+    State(state): State<AppState>,
+    ApiPath(id): ApiPath<i64>,
+) -> Result<StatusCode, Problem> {
+    state
+        .engine()?
+        .cancel_chain_calibration(id, &caller.name)
+        .await?;
+    Ok(StatusCode::ACCEPTED)
+}
