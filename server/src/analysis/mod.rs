@@ -13,9 +13,10 @@
 //! - [`fit`]: the whole displayed trace fitted with the instrument's line shape (the primary).
 //! - `smooth_shape`: the measured line shape smoothed (ln K as a penalised cubic B-spline).
 //! - [`spacing`]: the line spacing read from the trace alone.
-//! - [`index`]: the modulation index by least squares, sideband ratio and carrier depletion.
+//! - [`modulation_index`]: the modulation index by least squares, sideband ratio and carrier depletion.
 //! - [`trace_analysis`]: one trace in, every estimate and the line table out.
 //! - [`vpi`]: V_pi from a drive-level sweep, with the points that break the line flagged.
+//! - [`vpi_lookup`]: V_pi between a run's measured frequencies (and, when asked, beyond them).
 //! - [`budget`]: V_pi's uncertainty budget (fit, chain, generator level) by the GUM.
 //! - [`agreement`]: whether two V_pi agree within their uncertainties (E_n).
 //! - [`response`]: V_pi versus frequency as a response in dB, with its 3 dB and 6 dB points.
@@ -43,6 +44,7 @@ pub mod synthetic;
 pub mod touchstone;
 pub mod trace_analysis;
 pub mod vpi;
+pub mod vpi_lookup;
 
 pub use chain::{
     level_for_peak_voltage, pad_dissipated_fraction, peak_voltage, ChainPoint, DriveChain,

@@ -10,12 +10,12 @@
 //! task starts with the state, so points committed before it are not counted; a follower that
 //! falls behind the channel skips old events and catches up with the next point's counts.
 
-use super::metrics::escape_label;
+use super::metrics::Exposition;
 use crate::engine::events::ProgressEvent;
 use crate::engine::Engine;
 use crate::store::{BenchFault, RunState, WebhookDeliveryCounts};
+use prometheus_client::encoding::EncodeLabelSet;
 use std::collections::HashMap;
-use std::fmt::Write as _;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Mutex};
 use tokio::sync::broadcast::error::RecvError;
@@ -124,48 +124,48 @@ impl RunGauges {
     }
 }
 
-/// Appends one metric family: its HELP and TYPE lines, then one sample per (labels, value), the
-/// labels already written as `{name="value",...}` (or empty).
-fn family(
-    out: &mut String,
-    name: &str,
-    kind: &str,
-    help: &str,
-    samples: impl IntoIterator<Item = (String, String)>,
-) {
-    let _ = writeln!(out, "# HELP {name} {help}");
-    let _ = writeln!(out, "# TYPE {name} {kind}");
-    for (labels, value) in samples {
-        let _ = writeln!(out, "{name}{labels} {value}");
-    }
+/// The label of the per-state families.
+#[derive(Debug, Clone, PartialEq, Eq, Hash, EncodeLabelSet)]
+struct StateLabel {
+    state: &'static str,
 }
 
-/// Appends runs by state (`counts` from the database, every state present, 0 when none).
-pub fn render_runs_by_state(counts: &[(String, i64)], out: &mut String) {
+/// The label of the per-bench families.
+#[derive(Debug, Clone, PartialEq, Eq, Hash, EncodeLabelSet)]
+struct BenchLabel {
+    bench: String,
+}
+
+/// The labels of the active run's progress.
+#[derive(Debug, Clone, PartialEq, Eq, Hash, EncodeLabelSet)]
+struct RunLabels {
+    bench: String,
+    run_id: i64,
+}
+
+/// Adds runs by state (`counts` from the database, every state present, 0 when none).
+pub fn expose_runs_by_state(counts: &[(String, i64)], out: &mut Exposition) {
     let samples = RunState::ALL.into_iter().map(|state| {
         let n: i64 = counts
             .iter()
             .filter(|(s, _)| s == state.as_str())
             .map(|(_, n)| *n)
             .sum();
-        (format!("{{state=\"{}\"}}", state.as_str()), n.to_string())
+        (
+            StateLabel {
+                state: state.as_str(),
+            },
+            n,
+        )
     });
-    family(
-        out,
-        "halfwave_runs",
-        "gauge",
-        "Runs in the database by state.",
-        samples,
-    );
+    out.gauges("halfwave_runs", "Runs in the database by state.", samples);
 }
 
-/// Appends the webhook outbox by state (`store::webhooks`): pending (waiting for an attempt or a
+/// Adds the webhook outbox by state (`store::webhooks`): pending (waiting for an attempt or a
 /// retry), delivered, and failed (attempts used up; see the daemon's log for the last error).
-pub fn render_webhook_deliveries(counts: &WebhookDeliveryCounts, out: &mut String) {
-    family(
-        out,
+pub fn expose_webhook_deliveries(counts: &WebhookDeliveryCounts, out: &mut Exposition) {
+    out.gauges(
         "halfwave_webhook_deliveries",
-        "gauge",
         "Webhook deliveries in the database by state.",
         [
             ("pending", counts.pending),
@@ -173,7 +173,7 @@ pub fn render_webhook_deliveries(counts: &WebhookDeliveryCounts, out: &mut Strin
             ("failed", counts.failed),
         ]
         .into_iter()
-        .map(|(state, n)| (format!("{{state=\"{state}\"}}"), n.to_string())),
+        .map(|(state, n)| (StateLabel { state }, n)),
     );
 }
 
@@ -184,84 +184,76 @@ fn has_fault(bench: &crate::engine::BenchStatus, fault: BenchFault) -> bool {
         .is_some_and(|f| f.fault == fault)
 }
 
-/// Appends each bench's queue, the committed-point counter and the active runs' progress.
-pub fn render_engine(engine: &Engine, gauges: &RunGauges, out: &mut String) {
+/// A count as a gauge value (saturating; no count comes near `i64::MAX`).
+fn count(n: usize) -> i64 {
+    i64::try_from(n).unwrap_or(i64::MAX)
+}
+
+/// Adds each bench's queue, the committed-point counter and the active runs' progress.
+pub fn expose_engine(engine: &Engine, gauges: &RunGauges, out: &mut Exposition) {
     let benches = engine.benches();
-    let bench_label = |name: &str| format!("{{bench=\"{}\"}}", escape_label(name));
-    family(
-        out,
-        "halfwave_bench_queued_runs",
-        "gauge",
-        "Runs waiting for the bench.",
+    let per_bench = |value: &dyn Fn(&crate::engine::BenchStatus) -> i64| {
         benches
             .iter()
-            .map(|b| (bench_label(&b.name), b.queued_run_ids.len().to_string())),
+            .map(|b| {
+                (
+                    BenchLabel {
+                        bench: b.name.clone(),
+                    },
+                    value(b),
+                )
+            })
+            .collect::<Vec<_>>()
+    };
+    out.gauges(
+        "halfwave_bench_queued_runs",
+        "Runs waiting for the bench.",
+        per_bench(&|b| count(b.queued_run_ids.len())),
     );
-    family(
-        out,
+    out.gauges(
         "halfwave_bench_busy",
-        "gauge",
         "1 while the bench measures a run, else 0.",
-        benches.iter().map(|b| {
-            let busy = u8::from(b.active_run_id.is_some());
-            (bench_label(&b.name), busy.to_string())
-        }),
+        per_bench(&|b| i64::from(b.active_run_id.is_some())),
     );
-    family(
-        out,
+    out.gauges(
         "halfwave_bench_rf_output_unconfirmed",
-        "gauge",
         "1 while the bench's RF output could not be read back off (the daemon keeps trying), else 0.",
-        benches.iter().map(|b| {
-            let unconfirmed = u8::from(has_fault(b, BenchFault::OutputUnconfirmed));
-            (bench_label(&b.name), unconfirmed.to_string())
-        }),
+        per_bench(&|b| i64::from(has_fault(b, BenchFault::OutputUnconfirmed))),
     );
-    family(
-        out,
+    out.gauges(
         "halfwave_bench_awaiting_acknowledgement",
-        "gauge",
         "1 while the bench holds its runs after a safety fault until an operator acknowledges, else 0.",
-        benches.iter().map(|b| {
-            let held = u8::from(has_fault(b, BenchFault::AwaitingAcknowledgement));
-            (bench_label(&b.name), held.to_string())
-        }),
+        per_bench(&|b| i64::from(has_fault(b, BenchFault::AwaitingAcknowledgement))),
     );
-    family(
-        out,
-        "halfwave_points_committed_total",
-        "counter",
+    out.counter(
+        "halfwave_points_committed",
         "Points measured and committed since the daemon started.",
-        [(String::new(), gauges.points_committed().to_string())],
+        gauges.points_committed(),
     );
-    let active: Vec<(String, Progress)> = benches
+    let active: Vec<(RunLabels, Progress)> = benches
         .iter()
         .filter_map(|b| {
             let run_id = b.active_run_id?;
-            let labels = format!(
-                "{{bench=\"{}\",run_id=\"{run_id}\"}}",
-                escape_label(&b.name)
-            );
+            let labels = RunLabels {
+                bench: b.name.clone(),
+                run_id,
+            };
             Some((labels, gauges.progress_of(run_id)?))
         })
         .collect();
-    family(
-        out,
+    out.gauges(
         "halfwave_run_points_completed",
-        "gauge",
         "Points of the active run measured so far.",
         active
             .iter()
-            .map(|(labels, p)| (labels.clone(), p.completed.to_string())),
+            .map(|(labels, p)| (labels.clone(), count(p.completed))),
     );
-    family(
-        out,
+    out.gauges(
         "halfwave_run_points_total",
-        "gauge",
         "Points in the active run's plan.",
         active
             .iter()
-            .map(|(labels, p)| (labels.clone(), p.total.to_string())),
+            .map(|(labels, p)| (labels.clone(), count(p.total))),
     );
 }
 
@@ -318,8 +310,12 @@ mod tests {
 
     #[test]
     fn every_state_is_exported_even_at_zero() {
-        let mut out = String::new();
-        render_runs_by_state(&[("completed".into(), 7), ("running".into(), 1)], &mut out);
+        let mut exposition = Exposition::default();
+        expose_runs_by_state(
+            &[("completed".into(), 7), ("running".into(), 1)],
+            &mut exposition,
+        );
+        let out = exposition.render();
         assert!(out.contains("halfwave_runs{state=\"completed\"} 7\n"));
         assert!(out.contains("halfwave_runs{state=\"running\"} 1\n"));
         assert!(out.contains("halfwave_runs{state=\"interrupted\"} 0\n"));

@@ -15,22 +15,16 @@
 //! calibrated at (the lookup rule applied to the whole calibrated range); otherwise, when no run
 //! covers all of it, the newest completed run. The others are drawn lighter behind it.
 //!
-//! The interpolation and both rules are pure functions, checked against hand-worked numbers
-//! without a database.
+//! Both rules are pure functions; the interpolation between measured frequencies is analysis
+//! (`analysis::vpi_lookup`), with its hand-worked checks there.
 
 use super::{
     CalibrationRun, ComparisonRow, DeviceCalibrationSet, FrequencyResultRecord, InterpolatedVpi,
     RunComparison, RunSelection, RunState, Store, StoreError, VpiHistoryEntry,
 };
 use crate::analysis::agreement::agreement;
+use crate::analysis::vpi_lookup::{extrapolate_vpi, interpolate_vpi, VpiSample};
 use halfwave_units::{Hz, Volts};
-
-/// A measured V_pi at one frequency, whatever row it was read from.
-pub trait VpiSample {
-    fn frequency_hz(&self) -> f64;
-    fn v_pi_volts(&self) -> f64;
-    fn v_pi_uncertainty_volts(&self) -> f64;
-}
 
 impl VpiSample for FrequencyResultRecord {
     fn frequency_hz(&self) -> f64 {
@@ -63,102 +57,6 @@ const RANGES_LISTED: usize = 5;
 /// generator frequencies at hertz resolution or coarser (common practice), so two runs of the same
 /// plan agree far better than this, while no two distinct plan frequencies are this close.
 pub const COMPARE_MATCH_TOLERANCE_HZ: f64 = 1.0;
-
-/// V_pi at `frequency` from one run's results, sorted or not: the measured value at a measured
-/// frequency, otherwise linear interpolation between the nearest measured frequencies below and
-/// above. The uncertainty is interpolated with the same weights (treating the two neighbours'
-/// uncertainties as fully correlated, the cautious choice: it never comes out smaller than the
-/// smaller of the two). `None` when the frequency is outside the measured range or there are no
-/// results.
-pub fn interpolate_vpi<S: VpiSample>(
-    results: &[S],
-    frequency: Hz,
-) -> Option<(Volts, Volts, Hz, Hz)> {
-    let f = frequency.value();
-    if !f.is_finite() {
-        return None;
-    }
-    let below = results
-        .iter()
-        .filter(|r| r.frequency_hz() <= f)
-        .max_by(|a, b| a.frequency_hz().total_cmp(&b.frequency_hz()))?;
-    let above = results
-        .iter()
-        .filter(|r| r.frequency_hz() >= f)
-        .min_by(|a, b| a.frequency_hz().total_cmp(&b.frequency_hz()))?;
-    let span = above.frequency_hz() - below.frequency_hz();
-    if span <= 0.0 {
-        // `f` is a measured frequency.
-        return Some((
-            Volts(below.v_pi_volts()),
-            Volts(below.v_pi_uncertainty_volts()),
-            Hz(below.frequency_hz()),
-            Hz(above.frequency_hz()),
-        ));
-    }
-    let t = (f - below.frequency_hz()) / span;
-    let v_pi = below.v_pi_volts() + t * (above.v_pi_volts() - below.v_pi_volts());
-    let uncertainty = below.v_pi_uncertainty_volts()
-        + t * (above.v_pi_uncertainty_volts() - below.v_pi_uncertainty_volts());
-    Some((
-        Volts(v_pi),
-        Volts(uncertainty),
-        Hz(below.frequency_hz()),
-        Hz(above.frequency_hz()),
-    ))
-}
-
-/// V_pi at `frequency` outside one run's measured range, for a caller that asked to extrapolate:
-/// the straight line through the two measured frequencies nearest that end (held flat when the
-/// run measured one frequency). The line is a guess, so its departure from the end value is
-/// counted as a further standard uncertainty, combined in quadrature with the end value's own:
-/// the farther out, the wider. Returns (V_pi, uncertainty, and the two measured frequencies
-/// used, lower first); `None` inside the range (interpolate instead), without results, or when
-/// the line reaches zero or below.
-pub fn extrapolate_vpi<S: VpiSample>(
-    results: &[S],
-    frequency: Hz,
-) -> Option<(Volts, Volts, Hz, Hz)> {
-    let f = frequency.value();
-    if !f.is_finite() || results.is_empty() {
-        return None;
-    }
-    let mut sorted: Vec<&S> = results.iter().collect();
-    sorted.sort_by(|a, b| a.frequency_hz().total_cmp(&b.frequency_hz()));
-    let (first, last) = (sorted[0], sorted[sorted.len() - 1]);
-    let (end, next) = if f < first.frequency_hz() {
-        (first, sorted.get(1).copied().unwrap_or(first))
-    } else if f > last.frequency_hz() {
-        (
-            last,
-            sorted.len().checked_sub(2).map_or(last, |i| sorted[i]),
-        )
-    } else {
-        return None;
-    };
-    let span = next.frequency_hz() - end.frequency_hz();
-    let slope = if span == 0.0 {
-        0.0
-    } else {
-        (next.v_pi_volts() - end.v_pi_volts()) / span
-    };
-    let v_pi = end.v_pi_volts() + slope * (f - end.frequency_hz());
-    if !(v_pi.is_finite() && v_pi > 0.0) {
-        return None;
-    }
-    let uncertainty = end.v_pi_uncertainty_volts().hypot(v_pi - end.v_pi_volts());
-    let (lower, upper) = if end.frequency_hz() <= next.frequency_hz() {
-        (end, next)
-    } else {
-        (next, end)
-    };
-    Some((
-        Volts(v_pi),
-        Volts(uncertainty),
-        Hz(lower.frequency_hz()),
-        Hz(upper.frequency_hz()),
-    ))
-}
 
 /// Groups a device's history (newest run first, as [`Store::vpi_history`] returns it) into runs,
 /// each ascending in frequency.

@@ -8,6 +8,7 @@
 //! histograms ([`crate::api::metrics`]).
 
 use crate::api::auth::Viewer;
+use crate::api::metrics::{self, Exposition};
 use crate::api::problem::Problem;
 use crate::api::run_gauges;
 use crate::api::AppState;
@@ -88,22 +89,20 @@ pub async fn health(State(state): State<AppState>) -> Result<(StatusCode, Json<H
               (status = 401, description = "No valid token", body = Problem)))]
 pub async fn metrics(_caller: Viewer, State(state): State<AppState>) -> Result<Response, Problem> {
     let runs_by_state = state.store().run_counts_by_state().await?;
-    let mut out = String::with_capacity(4096);
-    out.push_str("# HELP halfwave_uptime_seconds Seconds since the daemon started.\n");
-    out.push_str("# TYPE halfwave_uptime_seconds gauge\n");
-    out.push_str(&format!("halfwave_uptime_seconds {}\n", state.uptime_s()));
-    run_gauges::render_runs_by_state(&runs_by_state, &mut out);
+    let mut exposition = Exposition::default();
+    exposition.gauge(
+        "halfwave_uptime_seconds",
+        "Seconds since the daemon started.",
+        state.uptime_s(),
+    );
+    run_gauges::expose_runs_by_state(&runs_by_state, &mut exposition);
     if let (Ok(engine), Some(gauges)) = (state.engine(), state.run_gauges()) {
-        run_gauges::render_engine(engine, gauges, &mut out);
+        run_gauges::expose_engine(engine, gauges, &mut exposition);
     }
     let webhooks = state.store().webhook_delivery_counts().await?;
-    run_gauges::render_webhook_deliveries(&webhooks, &mut out);
-    state.http_metrics().render(&mut out);
-    Ok((
-        [(CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],
-        out,
-    )
-        .into_response())
+    run_gauges::expose_webhook_deliveries(&webhooks, &mut exposition);
+    state.http_metrics().expose(&mut exposition);
+    Ok(([(CONTENT_TYPE, metrics::CONTENT_TYPE)], exposition.render()).into_response())
 }
 
 /// The OpenAPI 3.1 document of this API, generated from the code.
