@@ -5,7 +5,7 @@
 
 mod store_support;
 
-use halfwave::store::history::extrapolate_vpi;
+use halfwave::analysis::vpi_lookup::extrapolate_vpi;
 use halfwave::store::{RunSelection, RunState, Store, StoreError};
 use halfwave::units::Hz;
 use store_support::{queued_run, result};
