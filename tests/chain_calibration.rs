@@ -15,6 +15,7 @@ use halfwave::engine::{Engine, SubmitError};
 use halfwave::store::{ChainRunRecord, Store};
 use halfwave_drivers::sim::server::{SimServer, SimServerConfig};
 use halfwave_drivers::sim::{Role, Scenario, SimBench};
+use halfwave_units::Hz;
 use std::path::Path;
 use std::time::Duration;
 
@@ -249,4 +250,101 @@ async fn requests_outside_the_limits_are_refused_naming_each_field() {
     assert!(err.to_string().contains("no bench named"), "{err}");
     assert!(server.bench().command_log(Role::PowerSensor).iter().all(|c| !c.starts_with("MEAS")));
     engine.shutdown().await;
+}
+
+mod api_support;
+
+/// The whole path an operator takes: `halfwave chain calibrate` (the real binary) against the
+/// daemon's API on the in-process simulated bench; the API's roles, 422s and OpenAPI entry.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_cli_and_the_api_run_a_chain_calibration() {
+    use halfwave::api::routes::chain_runs::ChainRunView;
+    use halfwave::api::tokens::Role as TokenRole;
+
+    let engine_app = api_support::spawn_app_with_engine(0.0).await;
+    let app = &engine_app.app;
+    let operator = app.token("lab-op", TokenRole::Operator).await;
+    let viewer = app.token("lab-view", TokenRole::Viewer).await;
+    let output = tokio::process::Command::new(env!("CARGO_BIN_EXE_halfwave"))
+        .args([
+            "chain",
+            "calibrate",
+            "sim bench chain",
+            "--bench",
+            "sim-bench",
+            "--frequencies-hz",
+            "1e9,10e9",
+            "--levels-dbm=-5,0",
+            "--max-expected-gain-db",
+            "0",
+            "--source-reflection",
+            "0.1",
+            "--sensor-accuracy-percent",
+            "3",
+            "--sensor-reflection",
+            "0.05",
+            "--url",
+            &app.base,
+            "--token",
+            &operator,
+            "--json",
+        ])
+        .env_remove("HALFWAVE_TOKEN")
+        .output()
+        .await
+        .unwrap();
+    assert!(
+        output.status.success(),
+        "{}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    let view: ChainRunView = serde_json::from_slice(&output.stdout).unwrap();
+    assert_eq!(view.state, "completed");
+    assert!(!engine_app.sim.rf_output_on());
+    assert!(view.chain_calibration_id.is_some());
+    let chain: serde_json::Value = app
+        .get("/api/v1/chain-calibrations/sim%20bench%20chain", Some(&viewer))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(chain["name"], "sim bench chain");
+    let points = chain["points"].as_array().unwrap();
+    assert_eq!(points.len(), 2);
+    for p in points {
+        let f = Hz(p["frequency_hz"].as_f64().unwrap());
+        let truth = engine_app.sim.scenario().generator_to_modulator_gain_at(f).0;
+        let u = p["gain_uncertainty_db"].as_f64().unwrap();
+        assert!((p["gain_db"].as_f64().unwrap() - truth).abs() <= 2.0 * u);
+    }
+
+    // A viewer may read but not submit; a refused request names its fields.
+    let body = serde_json::json!({
+        "bench": "sim-bench", "name": "x", "frequencies_hz": [1e9], "levels_dbm": [0.0],
+        "max_expected_gain_db": 0.0, "source_reflection_coefficient": 0.1
+    });
+    let response = app
+        .post_json("/api/v1/chain-calibration-runs", Some(&viewer), &body)
+        .await;
+    assert_eq!(response.status(), 403);
+    let response = app
+        .post_json("/api/v1/chain-calibration-runs", Some(&operator), &body)
+        .await;
+    assert_eq!(response.status(), 422);
+    let problem = api_support::problem(response).await.to_string();
+    assert!(problem.contains("sensor_accuracy_percent"), "{problem}");
+    let response = app
+        .get(&format!("/api/v1/chain-calibration-runs/{}", view.id), Some(&viewer))
+        .await;
+    assert_eq!(response.status(), 200);
+    let response = app
+        .post_json(
+            &format!("/api/v1/chain-calibration-runs/{}/cancel", view.id),
+            Some(&operator),
+            &serde_json::json!({}),
+        )
+        .await;
+    assert_eq!(response.status(), 409, "a completed run cannot be cancelled");
+    let document = app.get("/api/v1/openapi.json", Some(&viewer)).await.text().await.unwrap();
+    assert!(document.contains("/api/v1/chain-calibration-runs/{chain_run_id}/cancel"));
 }

@@ -34,6 +34,9 @@ pub enum ChainCommand {
     /// List the chain calibration versions on a running daemon, with the files each was
     /// computed from.
     List(ListArgs),
+    /// Measure the chain with the bench's power sensor on a running daemon (operator token) and
+    /// store the gains with their uncertainties as a new version. Mind the sensor's damage level.
+    Calibrate(super::chain_calibrate::CalibrateArgs),
 }
 
 #[derive(Debug, Args)]
@@ -151,6 +154,7 @@ pub fn run(command: ChainCommand) -> Result<(), CliError> {
         ChainCommand::Cascade(args) => cascade(args),
         ChainCommand::Import(args) => import(args),
         ChainCommand::List(args) => list(args),
+        ChainCommand::Calibrate(args) => super::chain_calibrate::run(args),
     }
 }
 

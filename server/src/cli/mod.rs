@@ -32,6 +32,7 @@ pub mod benches;
 pub mod budget;
 pub mod calibration_report;
 pub mod chain;
+pub mod chain_calibrate;
 pub mod check_bench;
 pub mod client;
 pub mod compare;

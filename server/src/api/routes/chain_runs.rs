@@ -83,7 +83,7 @@ impl ChainRunView {
 /// Queues a chain calibration: the bench's RF source drives through the drive chain into its
 /// power sensor, and the gains with their uncertainties become the next version of the named
 /// chain calibration. Every invalid field is reported at once (422).
-#[utoipa::path(post, path = "/api/v1/chain-calibration-runs", tag = "chains", security(("bearer" = [])),
+#[utoipa::path(post, path = "/api/v1/chain-calibration-runs", tag = "calibrations", security(("bearer" = [])),
     request_body(content = ChainCalibrationRequest, description = "What to measure. Whether it can run is decided against the bench it names (its source's and sensor's ranges, the chain's largest expected gain, the daemon's ceiling) and every field that fails is named in the 422."),
     responses((status = 201, body = SubmittedChainRun), (status = 401, body = Problem),
               (status = 403, body = Problem), (status = 413, body = Problem),
@@ -110,7 +110,7 @@ pub async fn submit_chain_run(
 }
 
 /// A chain calibration run: its state, and once completed the version it stored and its budget.
-#[utoipa::path(get, path = "/api/v1/chain-calibration-runs/{chain_run_id}", tag = "chains", security(("bearer" = [])),
+#[utoipa::path(get, path = "/api/v1/chain-calibration-runs/{chain_run_id}", tag = "calibrations", security(("bearer" = [])),
     params(("chain_run_id" = i64, Path, description = "Chain calibration run id")),
     responses((status = 200, body = ChainRunView), (status = 401, body = Problem), (status = 404, body = Problem)))]
 pub async fn get_chain_run(
@@ -123,7 +123,7 @@ pub async fn get_chain_run(
 }
 
 /// Cancels a queued or running chain calibration (the RF output is switched off).
-#[utoipa::path(post, path = "/api/v1/chain-calibration-runs/{chain_run_id}/cancel", tag = "chains", security(("bearer" = [])),
+#[utoipa::path(post, path = "/api/v1/chain-calibration-runs/{chain_run_id}/cancel", tag = "calibrations", security(("bearer" = [])),
     params(("chain_run_id" = i64, Path, description = "Chain calibration run id")),
     responses((status = 202, description = "Cancellation under way"), (status = 401, body = Problem),
               (status = 403, body = Problem), (status = 404, body = Problem),
