@@ -8,8 +8,8 @@
 
 use super::client::ClientArgs;
 use super::CliError;
-use crate::api::routes::pins::DevicePin;
-use crate::api::routes::runs::RunView;
+use crate::api::views::pins::DevicePin;
+use crate::api::views::runs::RunView;
 use clap::{Args, Subcommand};
 
 /// The two verbs, flattened into the top-level command list (`halfwave pin`, `halfwave unpin`).

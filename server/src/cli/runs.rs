@@ -10,8 +10,8 @@
 use super::client::{ApiClient, ClientArgs};
 use super::follow::{follow_run, EventStream};
 use super::{report, CliError};
-use crate::api::routes::run_control::SubmittedRun;
-use crate::api::routes::runs::{RunList, RunView};
+use crate::api::views::run_control::SubmittedRun;
+use crate::api::views::runs::{RunList, RunView};
 use clap::Args;
 use std::path::{Path, PathBuf};
 
