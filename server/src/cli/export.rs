@@ -146,9 +146,9 @@ pub fn run(args: ExportArgs) -> Result<(), CliError> {
         ExportFormat::Csv => points_csv(&run, &points),
         ExportFormat::Json => {
             let mut value = serde_json::to_value(&run)
-                .map_err(|e| CliError::new(format!("cannot encode the run: {e}")))?;
+                .map_err(|e| CliError::caused("cannot encode the run", e))?;
             value["points"] = serde_json::to_value(&points)
-                .map_err(|e| CliError::new(format!("cannot encode the points: {e}")))?;
+                .map_err(|e| CliError::caused("cannot encode the points", e))?;
             to_json(&value)? + "\n"
         }
     };
