@@ -25,7 +25,7 @@ use criterion::measurement::{Measurement, ValueFormatter};
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 use halfwave::analysis::comb::{measure_comb, measure_reference, MeasuredComb};
 use halfwave::analysis::fit::{fit_trace, FitStart, LineShape};
-use halfwave::analysis::index::{least_squares, FitData};
+use halfwave::analysis::modulation_index::{least_squares, FitData};
 use halfwave::analysis::synthetic::SyntheticComb;
 use halfwave::analysis::{analyze_trace, AnalysisOptions};
 use halfwave::units::{Hz, Trace};

@@ -130,6 +130,18 @@ where
     String::from_utf8(bytes).unwrap_or_default()
 }
 
+/// A trace as the CSV `halfwave analyze` reads: header `frequency_hz,power_dbm`, one point per
+/// row, each value in Rust's shortest form that reads back to the same `f64`.
+pub fn write_trace(trace: &halfwave_units::Trace) -> String {
+    let header = ["frequency_hz".to_string(), "power_dbm".to_string()];
+    let rows = trace
+        .frequency_hz()
+        .iter()
+        .zip(trace.power_dbm())
+        .map(|(f, p)| [f.to_string(), p.to_string()]);
+    write_rows(std::iter::once(header).chain(rows))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -174,5 +186,24 @@ mod tests {
         // enclosed in double quotes, and a quote inside is doubled.
         let out = write_rows([["a", "b,c", "say \"hi\"", "line\nbreak", ""]]);
         assert_eq!(out, "a,\"b,c\",\"say \"\"hi\"\"\",\"line\nbreak\",\n");
+    }
+
+    #[test]
+    fn a_trace_is_written_as_before_and_reads_back_exactly() {
+        let trace = halfwave_units::Trace::new(
+            vec![193.4e12, 193.400_000_001e12, 193.400_000_002e12],
+            vec![-3.25, -70.1, 0.1 + 0.2],
+            None,
+        )
+        .unwrap();
+        let text = write_trace(&trace);
+        // The text the route wrote by hand before (`{f},{p}` per row after the header).
+        assert_eq!(
+            text,
+            "frequency_hz,power_dbm\n193400000000000,-3.25\n193400000001000,-70.1\n193400000002000,0.30000000000000004\n"
+        );
+        let rows = read_numeric(&text, &["frequency_hz", "power_dbm"]).unwrap();
+        let back: Vec<f64> = rows.iter().map(|r| r.values.as_ref().unwrap()[1]).collect();
+        assert_eq!(back, trace.power_dbm());
     }
 }

@@ -18,7 +18,7 @@ fn main() -> std::process::ExitCode {
             std::process::ExitCode::from(halfwave::cli::CLOSED_PIPE_EXIT_CODE)
         }
         Err(e) => {
-            eprintln!("error: {e}");
+            eprintln!("error: {}", e.report());
             std::process::ExitCode::FAILURE
         }
     }

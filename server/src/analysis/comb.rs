@@ -765,4 +765,114 @@ mod tests {
         assert!(milliwatts(-3100.0) < 1.1e-300);
         assert!((milliwatts(-3000.0) / 1e-300 - 1.0).abs() < 1e-8);
     }
+
+    /// A noise-free trace written out here (not with the analysis): Gaussian filter lines
+    /// (common practice for an analyzer's resolution filter: exp(-4 ln 2 (f - f_n)^2 / RBW^2) in
+    /// linear power, peak P_n) on a flat floor, orders -3..=3 every `spacing` around `carrier`.
+    fn gaussian_comb(
+        carrier: f64,
+        spacing: f64,
+        rbw: f64,
+        powers_mw: [f64; 4],
+        floor_mw: f64,
+    ) -> Trace {
+        let points = 2201;
+        let start = carrier - 5.5 * spacing;
+        let step = 11.0 * spacing / (points - 1) as f64;
+        let freq: Vec<f64> = (0..points).map(|i| start + i as f64 * step).collect();
+        let power = freq
+            .iter()
+            .map(|f| {
+                let lines: f64 = (-3i32..=3)
+                    .map(|n| {
+                        let d = f - (carrier + f64::from(n) * spacing);
+                        powers_mw[n.unsigned_abs() as usize]
+                            * (-4.0 * std::f64::consts::LN_2 * d * d / (rbw * rbw)).exp()
+                    })
+                    .sum();
+                10.0 * (lines + floor_mw).log10()
+            })
+            .collect();
+        Trace::new(freq, power, Some(Hz(rbw))).unwrap()
+    }
+
+    #[test]
+    fn a_comb_written_by_hand_is_found_and_measured() {
+        // Carrier 0.2 mW (hand-chosen), sidebands 1.0, 0.3, 0.05 mW: the carrier is not the
+        // strongest line (as past beta = 1.43), so order 0 must come from the symmetry.
+        let carrier = 193.414e12 + 1.234e9;
+        let powers = [0.2, 1.0, 0.3, 0.05];
+        let trace = gaussian_comb(carrier, 10e9, 1e9, powers, 1e-7);
+        let comb = measure_comb(&trace, Hz(10e9), None, &AnalysisOptions::default()).unwrap();
+        // Within a tenth of the point spacing (0.05 GHz).
+        assert!(
+            (comb.carrier_frequency_hz - carrier).abs() < 5e6,
+            "carrier at {} Hz",
+            comb.carrier_frequency_hz
+        );
+        for n in -3i32..=3 {
+            let line = comb
+                .lines
+                .iter()
+                .find(|l| l.order == n)
+                .expect("order measured");
+            let want = powers[n.unsigned_abs() as usize];
+            // Every line has the strongest line's shape, so integral / equivalent bandwidth is
+            // its peak power: within 1 % (0.04 dB).
+            assert!(
+                (line.power_mw / want - 1.0).abs() < 0.01,
+                "order {n}: {} mW, written {want} mW",
+                line.power_mw
+            );
+            assert!(line.above_floor, "order {n}");
+            assert!(
+                (line.frequency_hz - (carrier + f64::from(n) * 10e9)).abs() < 5e6,
+                "order {n} at {}",
+                line.frequency_hz
+            );
+        }
+        // The floor between the lines is the written -70 dBm (1e-7 mW) within 1 %.
+        assert!(
+            (comb.floor_mw / 1e-7 - 1.0).abs() < 0.01,
+            "{}",
+            comb.floor_mw
+        );
+    }
+
+    #[test]
+    fn spans_and_spacings_that_cannot_hold_a_comb_are_named() {
+        let trace = gaussian_comb(193.4e12, 10e9, 1e9, [1.0, 0.5, 0.1, 0.01], 1e-7);
+        // The span is 110 GHz: a 60 GHz modulation needs 120 GHz (the carrier and one sideband
+        // each side).
+        assert!(matches!(
+            check_span(&trace, Hz(60e9)),
+            Err(AnalysisError::SpanTooNarrow { .. })
+        ));
+        // 2201 points over 110 GHz are 50 MHz apart: a 0.2 GHz spacing has 4 points per line
+        // spacing, fewer than the 6 needed.
+        assert!(matches!(
+            check_span(&trace, Hz(0.2e9)),
+            Err(AnalysisError::TooCoarse(_))
+        ));
+        for bad in [0.0, -1e9, f64::NAN] {
+            assert!(matches!(
+                check_span(&trace, Hz(bad)),
+                Err(AnalysisError::BadModulationFrequency(_))
+            ));
+        }
+        assert!(check_span(&trace, Hz(10e9)).is_ok());
+    }
+
+    #[test]
+    fn median_and_window_follow_their_definitions() {
+        // Hand-worked: the median of an odd count is the middle value (definition of the
+        // median); of an even count this one takes the upper middle value (the floor sample
+        // holds hundreds of points, where the two middle values barely differ).
+        assert_eq!(median_in_place(&mut [5.0, 1.0, 3.0]), 3.0);
+        assert_eq!(median_in_place(&mut [4.0, 1.0, 3.0, 2.0]), 3.0);
+        assert_eq!(median_in_place(&mut []), 0.0);
+        // The points within +-1.5 of 5.0 on the axis 0, 1, ..., 9 are 4, 5, 6.
+        let axis: Vec<f64> = (0..10).map(f64::from).collect();
+        assert_eq!(window(&axis, 5.0, 1.5), 4..7);
+    }
 }

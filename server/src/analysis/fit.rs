@@ -1877,7 +1877,7 @@ fn fit_once(
 mod tests {
     use super::*;
     use crate::analysis::comb::{measure_comb, MeasuredComb};
-    use crate::analysis::index::{least_squares, FitData};
+    use crate::analysis::modulation_index::{least_squares, FitData};
     use crate::analysis::synthetic::SyntheticComb;
     use crate::analysis::AnalysisOptions;
     use halfwave_drivers::sim::physics::{self, OpticalLine, Rendering};

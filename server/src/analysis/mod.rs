@@ -34,7 +34,7 @@ pub mod comb;
 pub mod drive_plan;
 pub mod error;
 pub mod fit;
-pub mod index;
+pub mod modulation_index;
 pub mod prediction;
 pub mod response;
 pub mod sensor_chain;
@@ -50,7 +50,7 @@ pub use chain::{
     level_for_peak_voltage, pad_dissipated_fraction, peak_voltage, ChainPoint, DriveChain,
 };
 pub use error::AnalysisError;
-pub use index::{IndexEstimate, IndexMethod};
+pub use modulation_index::{IndexEstimate, IndexMethod};
 pub use response::{response_curve, ResponseCurve, ResponsePoint, VpiAtFrequency};
 pub use trace_analysis::{
     analyze_trace, analyze_trace_with_model, AnalysisOptions, CrossCheck, LineMeasurement,

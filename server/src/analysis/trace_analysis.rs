@@ -7,7 +7,7 @@
 
 use super::comb::{self, MeasuredComb};
 use super::fit::{self, FitStart, FittedModel, LineShape, WholeTraceFit};
-use super::index::{self, FitData, IndexEstimate, IndexMethod};
+use super::modulation_index::{self, FitData, IndexEstimate, IndexMethod};
 use super::spacing;
 use super::AnalysisError;
 use halfwave_units::{Dbm, Hz, Trace};
@@ -212,10 +212,11 @@ pub fn analyze_trace_with_model(
         measured.floor_mw,
         measured.floor_uncertainty_mw,
     );
-    let line_by_line = index::least_squares(&data).ok_or(AnalysisError::TooFewLines {
-        found: measured.lines.iter().filter(|l| l.above_floor).count(),
-        needed: 4,
-    })?;
+    let line_by_line =
+        modulation_index::least_squares(&data).ok_or(AnalysisError::TooFewLines {
+            found: measured.lines.iter().filter(|l| l.above_floor).count(),
+            needed: 4,
+        })?;
 
     // The whole-trace fit, from the line-by-line estimate.
     let shape = reference.and_then(measured_shape).unwrap_or_else(|| {
@@ -249,7 +250,7 @@ pub fn analyze_trace_with_model(
         orders_used: fit.orders.clone(),
     };
     let mut estimates = vec![primary.clone(), line_by_line.clone()];
-    estimates.extend(index::sideband_ratio(
+    estimates.extend(modulation_index::sideband_ratio(
         &measured.lines,
         &data,
         fit.modulation_index,
@@ -261,7 +262,7 @@ pub fn analyze_trace_with_model(
         )
     });
     if let Some((power, sigma)) = unmodulated {
-        estimates.extend(index::carrier_depletion(
+        estimates.extend(modulation_index::carrier_depletion(
             &measured.lines,
             &data,
             power,

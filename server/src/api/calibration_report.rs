@@ -12,7 +12,7 @@
 //! numbers and run ids. Pure: no I/O, the caller passes the time it was made.
 
 use super::plots::{self, VpiCurve, VpiPoint};
-use super::routes::runs::{ExcludedPointView, RunView};
+use crate::api::views::runs::{ExcludedPointView, RunView};
 use crate::calendar::utc_time;
 use std::fmt::Write as _;
 

@@ -28,8 +28,10 @@ pub mod request_id;
 pub mod routes;
 pub mod run_gauges;
 pub mod store_problems;
+pub mod time_bound;
 pub mod token_cache;
 pub mod tokens;
+pub mod views;
 
 use crate::engine::Engine;
 use crate::store::Store;

@@ -13,7 +13,7 @@
 //! Each map holds a bounded number of entries and starts over when full (a lab's runs and devices
 //! number in the thousands; the bound only protects memory).
 
-use super::routes::devices::Calibration;
+use crate::api::views::devices::Calibration;
 use crate::store::{CompletedRunsFingerprint, DeviceCalibrationSet};
 use axum::body::Bytes;
 use std::collections::HashMap;

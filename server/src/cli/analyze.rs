@@ -47,7 +47,7 @@ pub fn run(args: AnalyzeArgs) -> Result<(), CliError> {
     } else {
         serde_json::to_string_pretty(&analyze_trace_file(&args)?)
     }
-    .map_err(|e| CliError::new(format!("could not write the result as JSON: {e}")))?;
+    .map_err(|e| CliError::caused("could not write the result as JSON", e))?;
     outln!("{json}");
     Ok(())
 }
@@ -66,7 +66,7 @@ impl TraceFile {
     pub fn read(path: &Path) -> Result<TraceFile, CliError> {
         let name = path.display();
         let text = std::fs::read_to_string(path)
-            .map_err(|e| CliError::new(format!("{name}: cannot read the trace file: {e}")))?;
+            .map_err(|e| CliError::caused(format!("{name}: cannot read the trace file"), e))?;
         TraceFile::parse(path, &text)
     }
 
@@ -137,7 +137,7 @@ impl TraceFile {
             )));
         }
         let trace = Trace::new(frequency, power, None)
-            .map_err(|e| CliError::new(format!("{name} (lines {first_line}-{last_line}): {e}")))?;
+            .map_err(|e| CliError::caused(format!("{name} (lines {first_line}-{last_line})"), e))?;
         Ok(TraceFile {
             path: path.to_path_buf(),
             trace,
@@ -266,7 +266,7 @@ fn analyze_sweep_file(args: &AnalyzeArgs) -> Result<SweepReport, CliError> {
     let path = &args.input;
     let name = path.display();
     let text = std::fs::read_to_string(path)
-        .map_err(|e| CliError::new(format!("{name}: cannot read the sweep file: {e}")))?;
+        .map_err(|e| CliError::caused(format!("{name}: cannot read the sweep file"), e))?;
     if text.trim().is_empty() {
         return Err(CliError::new(format!(
             "{name}:1: the file is empty; a sweep file is a JSON object with modulation_frequency_hz, \
@@ -287,7 +287,7 @@ fn analyze_sweep_file(args: &AnalyzeArgs) -> Result<SweepReport, CliError> {
     let chain = match (sweep.chain_loss_db, sweep.chain) {
         (Some(loss), None) if loss.is_finite() => DriveChain::flat_loss(Db(loss)),
         (None, Some(table)) => {
-            DriveChain::new(table).map_err(|e| CliError::new(format!("{name}: {e}")))?
+            DriveChain::new(table).map_err(|e| CliError::caused(name.to_string(), e))?
         }
         _ => {
             return Err(CliError::new(format!(
@@ -367,7 +367,7 @@ fn analyze_sweep_file(args: &AnalyzeArgs) -> Result<SweepReport, CliError> {
         }
         reports.push(report);
     }
-    let mut fit = fit_v_pi(&drive).map_err(|e| CliError::new(format!("{name}: {e}")))?;
+    let mut fit = fit_v_pi(&drive).map_err(|e| CliError::caused(name.to_string(), e))?;
     // Indices in the fit refer to the analysable points; report them as sweep point indices.
     let to_sweep = |i: usize| drive_index.get(i).copied().unwrap_or(i);
     fit.used = fit.used.iter().map(|&i| to_sweep(i)).collect();

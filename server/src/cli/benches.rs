@@ -35,7 +35,7 @@ pub fn list(args: BenchesArgs) -> Result<(), CliError> {
         let benches: Vec<BenchStatus> = client.get_json("/api/v1/benches").await?;
         if args.client.json {
             let text = serde_json::to_string_pretty(&benches)
-                .map_err(|e| CliError::new(format!("cannot write JSON: {e}")))?;
+                .map_err(|e| CliError::caused("cannot write JSON", e))?;
             outln!("{text}");
             return Ok(());
         }

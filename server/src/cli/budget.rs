@@ -7,7 +7,7 @@
 use super::client::ClientArgs;
 use super::runs::{runtime, to_json};
 use super::CliError;
-use crate::api::routes::budget::RunBudgetView;
+use crate::api::views::budget::RunBudgetView;
 use clap::Args;
 
 #[derive(Debug, Args)]

@@ -115,7 +115,7 @@ impl ApiClient {
             };
             builder
                 .build()
-                .map_err(|e| CliError::new(format!("cannot set up the HTTP client: {e}")))
+                .map_err(|e| CliError::caused("cannot set up the HTTP client", e))
         };
         Ok(ApiClient {
             base: url.trim_end_matches('/').to_string(),

@@ -9,7 +9,7 @@ use super::client::{is_terminal, ApiClient, ClientArgs};
 use super::follow::follow_resumed_run;
 use super::runs::{finish, runtime, to_json};
 use super::CliError;
-use crate::api::routes::runs::RunView;
+use crate::api::views::runs::RunView;
 use clap::Args;
 use std::time::{Duration, Instant};
 

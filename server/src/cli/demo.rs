@@ -17,9 +17,9 @@ use super::follow::EventStream;
 use super::report::{response_lines, response_summary, vpi_table, ResponseSummary};
 use super::runs::to_json;
 use super::CliError;
-use crate::api::routes::run_control::SubmittedRun;
-use crate::api::routes::runs::{FrequencyResultView, RunView};
 use crate::api::tokens::{self, Role};
+use crate::api::views::run_control::SubmittedRun;
+use crate::api::views::runs::{FrequencyResultView, RunView};
 use crate::api::{ApiSettings, AppState};
 use crate::config::Config;
 use clap::Args;
@@ -133,7 +133,7 @@ pub fn run(args: DemoArgs) -> Result<(), CliError> {
         .worker_threads(2)
         .enable_all()
         .build()
-        .map_err(|e| CliError::new(format!("cannot start the async runtime: {e}")))?;
+        .map_err(|e| CliError::caused("cannot start the async runtime", e))?;
     runtime.block_on(demo(args))
 }
 
@@ -143,12 +143,12 @@ async fn demo(args: DemoArgs) -> Result<(), CliError> {
     let mut config = Config::simulated(data_dir.clone(), TIME_FACTOR, SEED);
     config.bind = SocketAddr::from(([127, 0, 0, 1], args.port));
     let scenario = Scenario::builtin()
-        .map_err(|e| CliError::new(format!("the built-in simulated bench is broken: {e}")))?;
+        .map_err(|e| CliError::caused("the built-in simulated bench is broken", e))?;
 
     let (engine, listener, _claim) = super::serve::start(&config).await?;
     let address = listener
         .local_addr()
-        .map_err(|e| CliError::new(format!("cannot read the bound address: {e}")))?;
+        .map_err(|e| CliError::caused("cannot read the bound address", e))?;
     let base = format!("http://{address}");
     let admin = fresh_token(&engine, "demo-admin", Role::Admin).await?;
     let operator = fresh_token(&engine, "demo-operator", Role::Operator).await?;
@@ -227,7 +227,7 @@ async fn fresh_token(
     tokens::create(pool, name, role, "demo")
         .await
         .map(|created| created.token)
-        .map_err(|e| CliError::new(format!("cannot create the demo's {role} token: {e}")))
+        .map_err(|e| CliError::caused(format!("cannot create the demo's {role} token"), e))
 }
 
 /// Uploads the chain, submits the plan, follows the run and fetches the plots.

@@ -11,7 +11,7 @@ use super::client::ClientArgs;
 use super::report::utc_time;
 use super::runs::{encode_query_value, runtime, to_json};
 use super::CliError;
-use crate::api::routes::devices::{Calibration, DeviceView, VpiAnswer};
+use crate::api::views::devices::{Calibration, DeviceView, VpiAnswer};
 use clap::Args;
 use serde::Serialize;
 

@@ -9,7 +9,7 @@ use super::client::ClientArgs;
 use super::devices::how_obtained;
 use super::runs::{encode_query_value, runtime, to_json};
 use super::CliError;
-use crate::api::routes::drive::{DriveAnswer, SolvedFor};
+use crate::api::views::drive::{DriveAnswer, SolvedFor};
 use crate::store::RunSelection;
 use clap::Args;
 

@@ -10,7 +10,7 @@ use super::client::ClientArgs;
 use super::output_file::OutputArgs;
 use super::runs::{runtime, to_json};
 use super::CliError;
-use crate::api::routes::runs::{PointList, PointView, RunView};
+use crate::api::views::runs::{PointList, PointView, RunView};
 use clap::{Args, ValueEnum};
 
 /// Points per request (the API's largest page).
@@ -146,9 +146,9 @@ pub fn run(args: ExportArgs) -> Result<(), CliError> {
         ExportFormat::Csv => points_csv(&run, &points),
         ExportFormat::Json => {
             let mut value = serde_json::to_value(&run)
-                .map_err(|e| CliError::new(format!("cannot encode the run: {e}")))?;
+                .map_err(|e| CliError::caused("cannot encode the run", e))?;
             value["points"] = serde_json::to_value(&points)
-                .map_err(|e| CliError::new(format!("cannot encode the points: {e}")))?;
+                .map_err(|e| CliError::caused("cannot encode the points", e))?;
             to_json(&value)? + "\n"
         }
     };
@@ -166,7 +166,7 @@ pub fn run(args: ExportArgs) -> Result<(), CliError> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::api::routes::runs::FrequencyResultView;
+    use crate::api::views::runs::FrequencyResultView;
 
     fn point(frequency_index: u32, index: Option<f64>) -> PointView {
         PointView {
@@ -180,14 +180,14 @@ mod tests {
             modulation_index: index,
             modulation_index_uncertainty: index.map(|_| 0.01),
             asymmetry_db: None,
-            lines: crate::api::routes::runs::null_json(),
-            analysis: crate::api::routes::runs::null_json(),
+            lines: crate::api::views::runs::null_json(),
+            analysis: crate::api::views::runs::null_json(),
             measured_at_unix_ms: 5,
         }
     }
 
     fn run() -> RunView {
-        let summary: crate::api::routes::runs::RunSummary = serde_json::from_value(serde_json::json!({
+        let summary: crate::api::views::runs::RunSummary = serde_json::from_value(serde_json::json!({
             "id": 7, "device_serial": "EG-PM-0042", "bench": "bench-7", "chain_name": "bench-7 chain",
             "chain_version": 2, "state": "completed", "submitted_by": "op", "created_at_unix_ms": 1,
             "started_at_unix_ms": null, "finished_at_unix_ms": null, "cause": null
@@ -223,7 +223,7 @@ mod tests {
                 instrument("source", "SG-1"),
                 instrument("analyzer", "OSA-2"),
             ],
-            provenance: crate::api::routes::runs::ProvenanceView {
+            provenance: crate::api::views::runs::ProvenanceView {
                 software_version: Some("halfwave 0.1.0 (git 0123456789ab)".into()),
                 analysis_method: Some("method v1".into()),
                 submitted_by_token_id: Some(4),

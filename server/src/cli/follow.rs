@@ -10,7 +10,7 @@
 
 use super::client::{is_terminal, ApiClient};
 use super::CliError;
-use crate::api::routes::runs::{RunSummary, RunView};
+use crate::api::views::runs::{RunSummary, RunView};
 use indicatif::{ProgressBar, ProgressStyle};
 use std::time::{Duration, Instant};
 

@@ -61,6 +61,14 @@ pub enum CliError {
     /// What went wrong and what to do, for the person at the terminal.
     #[error("{0}")]
     Message(String),
+    /// What went wrong, with the error that caused it kept as its source; [`CliError::report`]
+    /// prints the message followed by every cause in the chain.
+    #[error("{message}")]
+    Caused {
+        message: String,
+        #[source]
+        source: Box<dyn std::error::Error + Send + Sync + 'static>,
+    },
     /// The reader of stdout went away (`| head`): nothing is wrong and nothing more is said;
     /// the process exits with [`CLOSED_PIPE_EXIT_CODE`].
     #[error("standard output was closed by its reader")]
@@ -70,6 +78,23 @@ pub enum CliError {
 impl CliError {
     pub fn new(message: impl Into<String>) -> Self {
         CliError::Message(message.into())
+    }
+
+    /// `message` with `source` kept as the cause (its own causes follow it in [`Self::report`]).
+    pub fn caused(
+        message: impl Into<String>,
+        source: impl Into<Box<dyn std::error::Error + Send + Sync + 'static>>,
+    ) -> Self {
+        CliError::Caused {
+            message: message.into(),
+            source: source.into(),
+        }
+    }
+
+    /// What `main` prints: the message, then each cause in the source chain after `": "` (the
+    /// formatter the webhook sender uses too, [`client::with_causes`]).
+    pub fn report(&self) -> String {
+        client::with_causes(self.to_string(), self)
     }
 }
 
@@ -206,5 +231,53 @@ pub fn run(cli: Cli) -> Result<(), CliError> {
         Command::Pins(command) => pin::run(command),
         Command::Chain(command) => chain::run(command),
         Command::Budget(args) => budget::run(args),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// An error whose text is only its own, with an optional cause (as library errors wrap
+    /// the error they met).
+    #[derive(Debug)]
+    struct Layer(&'static str, Option<Box<Layer>>);
+
+    impl std::fmt::Display for Layer {
+        fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+            f.write_str(self.0)
+        }
+    }
+
+    impl std::error::Error for Layer {
+        fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
+            self.1.as_deref().map(|e| e as _)
+        }
+    }
+
+    #[test]
+    fn a_nested_cause_reaches_the_printed_report() {
+        let root = Layer("connection refused (os error 111)", None);
+        let middle = Layer("tcp connect error", Some(Box::new(root)));
+        let error = CliError::caused("cannot reach the daemon", middle);
+        // The chain is kept, not flattened into the message.
+        let source = std::error::Error::source(&error).expect("the cause is kept");
+        assert_eq!(source.to_string(), "tcp connect error");
+        assert!(source.source().is_some());
+        assert_eq!(
+            error.report(),
+            "cannot reach the daemon: tcp connect error: connection refused (os error 111)"
+        );
+        // A message without a cause prints as it is.
+        assert_eq!(CliError::new("no run 7").report(), "no run 7");
+    }
+
+    #[test]
+    fn an_io_error_keeps_its_inner_error() {
+        let inner = Layer("disk quota exceeded", None);
+        let io = std::io::Error::other(inner);
+        let report = CliError::caused("cannot write report.html", io).report();
+        assert!(report.starts_with("cannot write report.html: "), "{report}");
+        assert!(report.contains("disk quota exceeded"), "{report}");
     }
 }

@@ -8,8 +8,8 @@
 
 use super::client::ClientArgs;
 use super::CliError;
-use crate::api::routes::pins::DevicePin;
-use crate::api::routes::runs::RunView;
+use crate::api::views::pins::DevicePin;
+use crate::api::views::runs::RunView;
 use clap::{Args, Subcommand};
 
 /// The two verbs, flattened into the top-level command list (`halfwave pin`, `halfwave unpin`).
@@ -58,7 +58,7 @@ fn runtime() -> Result<tokio::runtime::Runtime, CliError> {
     tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
-        .map_err(|e| CliError::new(format!("cannot start the async runtime: {e}")))
+        .map_err(|e| CliError::caused("cannot start the async runtime", e))
 }
 
 /// Percent-encodes a path segment (serial numbers may hold spaces or slashes).
@@ -69,8 +69,8 @@ fn encode_segment(segment: &str) -> String {
 }
 
 fn print_json(pin: &DevicePin) -> Result<(), CliError> {
-    let text = serde_json::to_string_pretty(pin)
-        .map_err(|e| CliError::new(format!("cannot write JSON: {e}")))?;
+    let text =
+        serde_json::to_string_pretty(pin).map_err(|e| CliError::caused("cannot write JSON", e))?;
     println!("{text}");
     Ok(())
 }

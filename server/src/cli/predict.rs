@@ -9,7 +9,7 @@
 use super::runs::to_json;
 use super::CliError;
 use crate::api::json_body::parse_json;
-use crate::api::routes::prediction::{invalid_drive, DriveSpectrumRequest};
+use crate::api::views::prediction::{invalid_drive, DriveSpectrumRequest};
 use clap::Args;
 use std::path::PathBuf;
 

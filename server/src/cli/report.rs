@@ -6,7 +6,7 @@
 //! tables; the JSON forms carry units in their field names.
 
 use crate::analysis::{response_curve, VpiAtFrequency};
-use crate::api::routes::runs::{FrequencyResultView, RunView};
+use crate::api::views::runs::{FrequencyResultView, RunView};
 use halfwave_units::{Hz, Volts};
 use serde::Serialize;
 

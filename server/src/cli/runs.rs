@@ -10,8 +10,8 @@
 use super::client::{ApiClient, ClientArgs};
 use super::follow::{follow_run, EventStream};
 use super::{report, CliError};
-use crate::api::routes::run_control::SubmittedRun;
-use crate::api::routes::runs::{RunList, RunView};
+use crate::api::views::run_control::SubmittedRun;
+use crate::api::views::runs::{RunList, RunView};
 use clap::Args;
 use std::path::{Path, PathBuf};
 
@@ -71,7 +71,7 @@ pub fn runtime() -> Result<tokio::runtime::Runtime, CliError> {
     tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
-        .map_err(|e| CliError::new(format!("cannot start the async runtime: {e}")))
+        .map_err(|e| CliError::caused("cannot start the async runtime", e))
 }
 
 /// Reads a JSON file, naming the file (and the line and column of a syntax error).
@@ -133,7 +133,7 @@ pub fn finish(client: &ApiClient, run: &RunView, json: bool) -> Result<(), CliEr
 /// Pretty JSON of anything serializable.
 pub fn to_json(value: &impl serde::Serialize) -> Result<String, CliError> {
     serde_json::to_string_pretty(value)
-        .map_err(|e| CliError::new(format!("cannot encode the answer as JSON: {e}")))
+        .map_err(|e| CliError::caused("cannot encode the answer as JSON", e))
 }
 
 /// Submits a plan; with `follow`, follows the run to its end and returns it.

@@ -35,7 +35,7 @@ pub fn run(args: ServeArgs) -> Result<(), CliError> {
         .worker_threads(2)
         .enable_all()
         .build()
-        .map_err(|e| CliError::new(format!("cannot start the async runtime: {e}")))?;
+        .map_err(|e| CliError::caused("cannot start the async runtime", e))?;
     runtime.block_on(serve(config, Some(path)))
 }
 
@@ -68,7 +68,7 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
     let notifier = crate::notify::Notifier::start(&engine, receivers);
     let address = listener
         .local_addr()
-        .map_err(|e| CliError::new(format!("cannot read the bound address: {e}")))?;
+        .map_err(|e| CliError::caused("cannot read the bound address", e))?;
     tracing::info!(%address, "halfwave daemon listening");
     outln!("halfwave listening on http://{address}/ (dashboard: http://{address}/dashboard/)");
     if let Some(hint) = token_hint(engine.store(), config_path.as_deref()).await {
@@ -89,7 +89,7 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
     if let Some(notifier) = notifier {
         notifier.shutdown().await;
     }
-    stopped.map_err(|e| CliError::new(format!("the HTTP server failed: {e}")))?;
+    stopped.map_err(|e| CliError::caused("the HTTP server failed", e))?;
     outln!("halfwave stopped: runs interrupted where they were, RF outputs off");
     Ok(())
 }

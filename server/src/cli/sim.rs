@@ -79,7 +79,7 @@ pub fn run(args: SimArgs) -> Result<(), CliError> {
         .worker_threads(2)
         .enable_all()
         .build()
-        .map_err(|e| CliError::new(format!("cannot start the async runtime: {e}")))?;
+        .map_err(|e| CliError::caused("cannot start the async runtime", e))?;
     runtime.block_on(serve(scenario, drill, args))
 }
 
@@ -106,7 +106,7 @@ async fn serve(scenario: Scenario, drill: Option<Drill>, args: SimArgs) -> Resul
                 None => Ok(()),
             })
             .and_then(|_| out.flush());
-        printed.map_err(|e| CliError::new(format!("cannot write to stdout: {e}")))?;
+        printed.map_err(|e| CliError::caused("cannot write to stdout", e))?;
     }
     eprintln!(
         "simulated bench \"{}\" ready (seed {}); press Ctrl-C to stop",
@@ -132,7 +132,7 @@ async fn serve(scenario: Scenario, drill: Option<Drill>, args: SimArgs) -> Resul
     });
     tokio::signal::ctrl_c()
         .await
-        .map_err(|e| CliError::new(format!("cannot wait for Ctrl-C: {e}")))?;
+        .map_err(|e| CliError::caused("cannot wait for Ctrl-C", e))?;
     if let Some(task) = drill_task {
         task.abort();
     }

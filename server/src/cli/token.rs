@@ -106,7 +106,7 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
     let runtime = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
-        .map_err(|e| CliError::new(format!("could not start the async runtime: {e}")))?;
+        .map_err(|e| CliError::caused("could not start the async runtime", e))?;
     runtime.block_on(async move {
         match command.action {
             TokenAction::Create {
@@ -146,7 +146,7 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                     .map_err(|e| CliError::new(e.to_string()))?;
                 if json {
                     let json = serde_json::to_string_pretty(&list)
-                        .map_err(|e| CliError::new(format!("could not encode the list: {e}")))?;
+                        .map_err(|e| CliError::caused("could not encode the list", e))?;
                     outln!("{json}");
                     return Ok(());
                 }

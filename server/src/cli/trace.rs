@@ -9,7 +9,7 @@ use super::client::ClientArgs;
 use super::output_file::OutputArgs;
 use super::runs::runtime;
 use super::CliError;
-use crate::api::routes::runs::PointList;
+use crate::api::views::runs::PointList;
 use clap::Args;
 
 #[derive(Debug, Args)]

@@ -13,86 +13,24 @@ use crate::api::auth::{Admin, Viewer};
 use crate::api::json_body::parse_json;
 use crate::api::params::{ApiPath, ApiQuery};
 use crate::api::problem::{FieldProblem, Problem};
-use crate::api::AppState;
-use crate::store::{
-    ChainCalibration, ChainCalibrationHeader, ChainCalibrationPoint, ChainCalibrationSource,
+use crate::api::views::chains::{
+    ChainHeaderView, ChainPointBody, ChainSourceBody, ChainView, SourceRole,
 };
+use crate::api::AppState;
+use crate::store::{ChainCalibrationPoint, ChainCalibrationSource};
 use axum::body::Bytes;
 use axum::extract::State;
 use axum::http::header::CONTENT_TYPE;
 use axum::http::{HeaderMap, StatusCode};
 use axum::Json;
-use serde::{Deserialize, Serialize};
+use serde::Deserialize;
 use utoipa::{IntoParams, ToSchema};
 
 /// The most rows one calibration may have.
 pub const MAX_CHAIN_POINTS: usize = 10_000;
 
-/// One row of a chain calibration.
-#[derive(Debug, Clone, Copy, Serialize, Deserialize, ToSchema)]
-#[serde(deny_unknown_fields)]
-pub struct ChainPointBody {
-    #[schema(exclusive_minimum = 0)]
-    pub frequency_hz: f64,
-    /// Net gain generator -> modulator, dB (negative for a loss).
-    #[schema(minimum = -100, maximum = 100)]
-    pub gain_db: f64,
-    /// Standard uncertainty of the gain, dB (0 to 10), as the chain's calibration states it;
-    /// V_pi's uncertainty budget uses it. Absent where the calibration states none.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    #[schema(minimum = 0, maximum = 10)]
-    pub gain_uncertainty_db: Option<f64>,
-}
-
 /// The most source files one calibration may name.
 pub const MAX_CHAIN_SOURCES: usize = 64;
-
-/// How a source file enters the chain.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, ToSchema)]
-#[serde(rename_all = "snake_case")]
-pub enum SourceRole {
-    /// A two-port of the chain (cable, attenuator, amplifier), in cascade order.
-    TwoPort,
-    /// The modulator's one-port reflection that terminates the chain.
-    Load,
-}
-
-impl SourceRole {
-    pub fn as_str(self) -> &'static str {
-        match self {
-            SourceRole::TwoPort => "two_port",
-            SourceRole::Load => "load",
-        }
-    }
-}
-
-/// A file a calibration was computed from.
-#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize, ToSchema)]
-#[serde(deny_unknown_fields)]
-pub struct ChainSourceBody {
-    pub role: SourceRole,
-    /// The file's name (without its directory), 1 to 255 characters.
-    #[schema(min_length = 1, max_length = 255, pattern = "[^ \\t\\r\\n]")]
-    pub file_name: String,
-    /// SHA-256 of the file's bytes, 64 lowercase hexadecimal digits.
-    #[schema(min_length = 64, max_length = 64, pattern = "^[0-9a-f]{64}$")]
-    pub sha256: String,
-}
-
-impl ChainSourceBody {
-    fn from_stored(s: ChainCalibrationSource) -> Option<ChainSourceBody> {
-        let role = match s.role.as_str() {
-            "two_port" => SourceRole::TwoPort,
-            "load" => SourceRole::Load,
-            _ => return None,
-        };
-        Some(ChainSourceBody {
-            role,
-            file_name: s.file_name,
-            sha256: s.sha256,
-        })
-    }
-}
 
 /// A chain calibration upload (JSON form).
 #[derive(Debug, Deserialize, ToSchema)]
@@ -108,71 +46,6 @@ pub struct ChainUpload {
     #[serde(default)]
     #[schema(max_items = 64)]
     pub sources: Vec<ChainSourceBody>,
-}
-
-/// A stored calibration version.
-#[derive(Debug, Serialize, Deserialize, ToSchema)]
-pub struct ChainView {
-    pub name: String,
-    pub version: i64,
-    pub created_at_unix_ms: i64,
-    pub created_by: String,
-    pub points: Vec<ChainPointBody>,
-    /// The files the table was computed from, in cascade order (empty for a typed table).
-    #[serde(default)]
-    pub sources: Vec<ChainSourceBody>,
-}
-
-impl From<ChainCalibration> for ChainView {
-    fn from(c: ChainCalibration) -> ChainView {
-        ChainView {
-            name: c.name,
-            version: c.version,
-            created_at_unix_ms: c.created_at_unix_ms,
-            created_by: c.created_by,
-            points: c
-                .points
-                .iter()
-                .map(|p| ChainPointBody {
-                    frequency_hz: p.frequency_hz,
-                    gain_db: p.gain_db,
-                    gain_uncertainty_db: p.gain_uncertainty_db,
-                })
-                .collect(),
-            sources: c
-                .sources
-                .into_iter()
-                .filter_map(ChainSourceBody::from_stored)
-                .collect(),
-        }
-    }
-}
-
-/// A calibration version as listed (without points).
-#[derive(Debug, Serialize, Deserialize, ToSchema)]
-pub struct ChainHeaderView {
-    pub name: String,
-    pub version: i64,
-    pub created_at_unix_ms: i64,
-    pub created_by: String,
-    /// The files the table was computed from, in cascade order (empty for a typed table).
-    #[serde(default)]
-    pub sources: Vec<ChainSourceBody>,
-}
-
-impl ChainHeaderView {
-    fn new(h: ChainCalibrationHeader, sources: Vec<ChainCalibrationSource>) -> ChainHeaderView {
-        ChainHeaderView {
-            name: h.name,
-            version: h.version,
-            created_at_unix_ms: h.created_at_unix_ms,
-            created_by: h.created_by,
-            sources: sources
-                .into_iter()
-                .filter_map(ChainSourceBody::from_stored)
-                .collect(),
-        }
-    }
 }
 
 /// The name of a CSV upload.

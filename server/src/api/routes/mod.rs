@@ -17,6 +17,7 @@ pub mod events;
 pub mod pins;
 pub mod prediction;
 pub mod run_control;
+pub mod run_plots;
 pub mod runs;
 pub mod system;
 pub mod tokens;
@@ -49,9 +50,9 @@ pub fn timed_routes() -> OpenApiRouter<AppState> {
         .routes(routes!(runs::run_report))
         .routes(routes!(runs::list_points))
         .routes(routes!(runs::point_trace))
-        .routes(routes!(runs::point_spectrum_svg))
-        .routes(routes!(runs::latest_spectrum_svg))
-        .routes(routes!(runs::modulation_index_svg))
+        .routes(routes!(run_plots::point_spectrum_svg))
+        .routes(routes!(run_plots::latest_spectrum_svg))
+        .routes(routes!(run_plots::modulation_index_svg))
         .routes(routes!(runs::compare_runs))
         .routes(routes!(devices::list_devices))
         .routes(routes!(devices::get_device))

@@ -11,55 +11,13 @@ use crate::api::auth::{Operator, Viewer};
 use crate::api::json_body::parse_json;
 use crate::api::params::ApiPath;
 use crate::api::problem::Problem;
+use crate::api::views::pins::{DevicePin, PinnedRun};
 use crate::api::AppState;
-use crate::store::{PinChange, PinRecord};
 use axum::body::Bytes;
 use axum::extract::State;
 use axum::Json;
 use serde::{Deserialize, Serialize};
 use utoipa::ToSchema;
-
-/// A device's pinned run.
-#[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
-pub struct PinnedRun {
-    pub run_id: i64,
-    /// The token name that pinned it.
-    pub pinned_by: String,
-    pub pinned_at_unix_ms: i64,
-    pub note: String,
-}
-
-impl From<PinRecord> for PinnedRun {
-    fn from(pin: PinRecord) -> PinnedRun {
-        PinnedRun {
-            run_id: pin.run_id,
-            pinned_by: pin.pinned_by,
-            pinned_at_unix_ms: pin.pinned_at_unix_ms,
-            note: pin.note,
-        }
-    }
-}
-
-/// A device's reference calibration: the pinned run, or none (then V_pi lookups use the newest
-/// completed run covering each frequency).
-#[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
-pub struct DevicePin {
-    pub serial: String,
-    pub pinned: Option<PinnedRun>,
-    /// In answers to a pin or unpin: the run pinned before the change, if any.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub previous_run_id: Option<i64>,
-}
-
-impl From<PinChange> for DevicePin {
-    fn from(change: PinChange) -> DevicePin {
-        DevicePin {
-            serial: change.serial,
-            pinned: change.pinned.map(PinnedRun::from),
-            previous_run_id: change.previous_run_id,
-        }
-    }
-}
 
 /// What to pin.
 #[derive(Debug, Serialize, Deserialize, ToSchema)]

@@ -10,22 +10,13 @@ use crate::api::auth::Operator;
 use crate::api::json_body::JsonBody;
 use crate::api::params::ApiPath;
 use crate::api::problem::Problem;
+use crate::api::views::run_control::SubmittedRun;
 use crate::api::AppState;
 use crate::engine::plan::PlanRequest;
 use axum::extract::State;
 use axum::http::header::LOCATION;
 use axum::http::{HeaderName, StatusCode};
 use axum::Json;
-use serde::{Deserialize, Serialize};
-use utoipa::ToSchema;
-
-/// The answer to a submission.
-#[derive(Debug, Serialize, Deserialize, ToSchema)]
-pub struct SubmittedRun {
-    pub run_id: i64,
-    /// Where to read the run.
-    pub location: String,
-}
 
 /// Queues a calibration run. Every invalid field is reported at once (422); nothing reaches an
 /// instrument unless the whole plan is valid.

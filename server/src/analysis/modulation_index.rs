@@ -577,3 +577,124 @@ pub fn carrier_depletion(
         orders_used: vec![0],
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// J_0..J_7 at beta = 1 and beta = 3, Abramowitz & Stegun Table 9.1 (10 digits, checked
+    /// against mpmath's `besselj`, a general-purpose reference library).
+    const J_AT_1: [f64; 8] = [
+        0.765_197_686_6,
+        0.440_050_585_7,
+        0.114_903_484_9,
+        0.019_563_353_98,
+        0.002_476_638_964,
+        0.000_249_757_730_2,
+        0.000_020_938_338,
+        0.000_001_502_325_817,
+    ];
+    const J_AT_3: [f64; 8] = [
+        -0.260_051_954_9,
+        0.339_058_958_5,
+        0.486_091_260_6,
+        0.309_062_722_3,
+        0.132_034_183_9,
+        0.043_028_434_88,
+        0.011_393_932_33,
+        0.002_547_294_452,
+    ];
+
+    /// Noise-free lines P_n = scale J_n^2 for orders -7..=7 (J_-n^2 = J_n^2, DLMF 10.4.1), each
+    /// with a 1 % standard uncertainty, above the floor where P_n exceeds it.
+    fn lines(j: &[f64; 8], scale_mw: f64, floor_mw: f64) -> Vec<MeasuredLine> {
+        (-7i32..=7)
+            .map(|order| {
+                let power_mw = scale_mw * j[order.unsigned_abs() as usize].powi(2);
+                MeasuredLine {
+                    order,
+                    frequency_hz: 193.4e12 + f64::from(order) * 10e9,
+                    power_mw,
+                    uncertainty_mw: 0.01 * power_mw + 0.01 * floor_mw,
+                    above_floor: power_mw > floor_mw,
+                }
+            })
+            .collect()
+    }
+
+    #[test]
+    fn least_squares_recovers_beta_one_from_table_values() {
+        let lines = lines(&J_AT_1, 2.0, 1e-6);
+        let data = FitData::new(&lines, 1e-6, 1e-7);
+        let estimate = least_squares(&data).expect("enough lines");
+        assert_eq!(estimate.method, IndexMethod::LeastSquares);
+        assert!((estimate.value - 1.0).abs() < 1e-4, "{estimate:?}");
+        // The lines are the model at beta = 1: almost nothing is left over.
+        assert!(estimate.residual < 0.01, "{estimate:?}");
+        assert!(estimate.uncertainty < 0.01, "{estimate:?}");
+    }
+
+    #[test]
+    fn least_squares_is_unambiguous_past_the_carrier_null() {
+        // At beta = 3 the carrier is weaker than sidebands 1 to 3, past J_0's first zero
+        // (2.404826, DLMF 10.21(i), Table 10.21.1): the ratio of two lines has several
+        // solutions, the whole comb one.
+        let lines = lines(&J_AT_3, 1.0, 1e-6);
+        let data = FitData::new(&lines, 1e-6, 1e-7);
+        let estimate = least_squares(&data).expect("enough lines");
+        assert!((estimate.value - 3.0).abs() < 1e-4, "{estimate:?}");
+        // The sideband ratio applies only below the carrier null.
+        assert!(sideband_ratio(&lines, &data, estimate.value).is_none());
+    }
+
+    #[test]
+    fn sideband_ratio_solves_j1_over_j0() {
+        // Hand-worked from A&S Table 9.1: (J_1(1) / J_0(1))^2 = (0.4400506 / 0.7651977)^2
+        // = 0.330718; the ratio method must invert it to beta = 1.
+        let lines = lines(&J_AT_1, 2.0, 1e-6);
+        let ratio = lines[8].power_mw / lines[7].power_mw;
+        assert!((ratio - 0.330_718).abs() < 1e-6, "{ratio}");
+        let data = FitData::new(&lines, 1e-6, 1e-7);
+        let estimate = sideband_ratio(&lines, &data, 1.0).expect("below the null");
+        assert_eq!(estimate.method, IndexMethod::SidebandRatio);
+        assert!((estimate.value - 1.0).abs() < 1e-5, "{estimate:?}");
+        assert_eq!(estimate.orders_used, vec![-1, 0, 1]);
+        // Propagated from 1 % line uncertainties: non-zero and well under the value.
+        assert!(
+            estimate.uncertainty > 0.0 && estimate.uncertainty < 0.05,
+            "{estimate:?}"
+        );
+    }
+
+    #[test]
+    fn carrier_depletion_solves_j0_squared_on_the_right_branch() {
+        // P_0 / P_ref = J_0(beta)^2: 0.585527 at beta = 1 (A&S Table 9.1: 0.7651977^2), and
+        // 0.067627 at beta = 3, which J_0^2 also takes at beta = 1.9375 (mpmath) on the branch
+        // below the null; the branch holding the primary value decides.
+        for (j, beta) in [(&J_AT_1, 1.0), (&J_AT_3, 3.0)] {
+            let lines = lines(j, 2.0, 1e-6);
+            let data = FitData::new(&lines, 1e-6, 1e-7);
+            let estimate = carrier_depletion(&lines, &data, 2.0, 0.002, beta + 0.05)
+                .expect("a carrier and a reference");
+            assert_eq!(estimate.method, IndexMethod::CarrierDepletion);
+            assert!((estimate.value - beta).abs() < 1e-4, "{beta}: {estimate:?}");
+        }
+        // No reference power: no estimate.
+        let lines = lines(&J_AT_1, 2.0, 1e-6);
+        let data = FitData::new(&lines, 1e-6, 1e-7);
+        assert!(carrier_depletion(&lines, &data, 0.0, 0.0, 1.0).is_none());
+        assert!(carrier_depletion(&lines, &data, f64::NAN, 0.0, 1.0).is_none());
+    }
+
+    #[test]
+    fn too_few_lines_give_no_fit() {
+        // Three unknowns (beta, scale, floor) need at least four lines.
+        let lines: Vec<MeasuredLine> = lines(&J_AT_1, 2.0, 1e-6)
+            .into_iter()
+            .filter(|l| l.order.abs() <= 1)
+            .collect();
+        let data = FitData::new(&lines, 0.0, 0.0);
+        assert_eq!(data.len(), 3);
+        assert!(least_squares(&data).is_none());
+    }
+}
