@@ -39,7 +39,7 @@ use axum::Router;
 use metrics::HttpMetrics;
 use read_cache::ReadCache;
 use run_gauges::RunGauges;
-use sqlx::SqlitePool;
+use crate::store::DbPool;
 use std::sync::Arc;
 use std::time::Duration;
 use token_cache::TokenCache;
@@ -130,7 +130,7 @@ impl AppState {
         })
     }
 
-    pub fn pool(&self) -> &SqlitePool {
+    pub fn pool(&self) -> &DbPool {
         self.inner.store.pool()
     }
 
