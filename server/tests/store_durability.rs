@@ -338,7 +338,67 @@ async fn migration_0003_moves_existing_point_traces_into_the_point_rows() {
     assert_eq!(moved.frequency_hz()[0], trace.frequency_hz()[0]);
 }
 
+async fn bench_leases_are_taken_refused_and_taken_over(store: Store) {
+    use halfwave::store::leases::{LeaseHolder, LeaseTaken};
+    let holder = |name: &str, pid: i64| LeaseHolder {
+        holder: format!("{name}-holder"),
+        host: format!("{name}-pc"),
+        pid,
+        listen: "127.0.0.1:8440".to_string(),
+    };
+    let (a, b) = (holder("lab-a", 101), holder("lab-b", 202));
+    let benches = ["north-bench".to_string(), "south-bench".to_string()];
+    let taken = store.take_bench_leases(&a, &benches, 300).await.unwrap();
+    assert!(taken.iter().all(|t| matches!(t, LeaseTaken::Fresh { .. })), "{taken:?}");
+    // All or none: B asking for one held bench and one free bench gets neither.
+    let refused = store
+        .take_bench_leases(&b, &["south-bench".to_string(), "east-bench".to_string()], 300)
+        .await
+        .unwrap_err();
+    let text = refused.to_string();
+    assert!(text.contains("\"south-bench\" is held by") && text.contains("pid 101 on host lab-a-pc"), "{text}");
+    assert!(store.bench_lease("east-bench").await.unwrap().is_none());
+    // A heartbeat renews both; past the expiry without one, B takes them over.
+    assert_eq!(store.renew_bench_leases(&a.holder, 300).await.unwrap(), 2);
+    tokio::time::sleep(std::time::Duration::from_millis(450)).await;
+    let lease = store.bench_lease("north-bench").await.unwrap().unwrap();
+    assert!(!lease.is_live(), "{lease:?}");
+    let taken = store.take_bench_leases(&b, &benches, 300).await.unwrap();
+    assert!(
+        taken.iter().all(|t| matches!(t, LeaseTaken::TakenOver { previous } if previous.holder.pid == 101)),
+        "{taken:?}"
+    );
+    // The old holder's heartbeat now finds nothing (it must stop); B releases on shutdown.
+    assert_eq!(store.renew_bench_leases(&a.holder, 300).await.unwrap(), 0);
+    assert_eq!(store.release_bench_leases(&b.holder).await.unwrap(), 2);
+    assert!(store.bench_lease("north-bench").await.unwrap().is_none());
+    let audit = store.audit_log(10, None).await.unwrap();
+    assert_eq!(
+        audit.iter().filter(|e| e.action == "bench.lease_taken_over").count(),
+        2
+    );
+}
+
+async fn recovery_limited_to_named_benches_leaves_other_benches_running(store: Store) {
+    let run = running_run(&store, "EG-PM-0303").await;
+    // The run is on "bench-north" (store_support); another daemon's recovery leaves it alone.
+    let none = store
+        .mark_running_as_interrupted_on(Some(&["bench-south".to_string()]))
+        .await
+        .unwrap();
+    assert!(none.is_empty());
+    assert_eq!(store.run(run.id).await.unwrap().state, RunState::Running);
+    let mine = store
+        .mark_running_as_interrupted_on(Some(&["bench-north".to_string()]))
+        .await
+        .unwrap();
+    assert_eq!(mine, vec![run.id]);
+    assert_eq!(store.run(run.id).await.unwrap().state, RunState::Interrupted);
+}
+
 on_both_backends!(
+    bench_leases_are_taken_refused_and_taken_over,
+    recovery_limited_to_named_benches_leaves_other_benches_running,
     foreign_keys_are_enforced,
     a_point_cannot_be_stored_twice,
     run_states_follow_the_allowed_edges,
