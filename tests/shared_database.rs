@@ -210,10 +210,22 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
     let a_pid = daemon_a.id().expect("lab A's daemon runs");
 
     // Both labs calibrate, each on its own bench.
-    let (status, body) = submit(&client, &a, &token, &plan("north-bench", "EG-PM-0101", &[1.5e9])).await;
+    let (status, body) = submit(
+        &client,
+        &a,
+        &token,
+        &plan("north-bench", "EG-PM-0101", &[1.5e9]),
+    )
+    .await;
     assert_eq!(status, 201, "{body}");
     let run_a = body["run_id"].as_i64().unwrap();
-    let (status, body) = submit(&client, &b, &token, &plan("south-bench", "EG-PM-0202", &[1.5e9])).await;
+    let (status, body) = submit(
+        &client,
+        &b,
+        &token,
+        &plan("south-bench", "EG-PM-0202", &[1.5e9]),
+    )
+    .await;
     assert_eq!(status, 201, "{body}");
     let run_b = body["run_id"].as_i64().unwrap();
     wait_for(&client, &a, &token, run_a, |r| r["state"] == "completed").await;
@@ -230,7 +242,13 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
     }
 
     // A run for lab B's bench submitted to lab A is refused, naming the daemon that drives it.
-    let (status, body) = submit(&client, &a, &token, &plan("south-bench", "EG-PM-0202", &[1.5e9])).await;
+    let (status, body) = submit(
+        &client,
+        &a,
+        &token,
+        &plan("south-bench", "EG-PM-0202", &[1.5e9]),
+    )
+    .await;
     assert_eq!(status, 422, "{body}");
     let text = body.to_string();
     assert!(text.contains("driven by another daemon"), "{text}");
@@ -240,11 +258,20 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
     let c = lab(dir.path(), "lab-c", "north-bench", database.url(), 0.0);
     let refused = c.serve_refused().await;
     assert!(refused.contains("\"north-bench\" is held by"), "{refused}");
-    assert!(refused.contains(&format!("pid {a_pid} on host ")), "{refused}");
+    assert!(
+        refused.contains(&format!("pid {a_pid} on host ")),
+        "{refused}"
+    );
 
     // Lab A starts a long run and is killed mid-run: no clean shutdown, the lease stays.
     let frequencies: Vec<f64> = engine_support::FREQUENCIES_HZ.to_vec();
-    let (status, body) = submit(&client, &a, &token, &plan("north-bench", "EG-PM-0101", &frequencies)).await;
+    let (status, body) = submit(
+        &client,
+        &a,
+        &token,
+        &plan("north-bench", "EG-PM-0101", &frequencies),
+    )
+    .await;
     assert_eq!(status, 201, "{body}");
     let long_run = body["run_id"].as_i64().unwrap();
     wait_for(&client, &a, &token, long_run, |r| {
@@ -254,7 +281,10 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
     daemon_a.kill().await.unwrap();
     daemon_a.wait().await.unwrap();
     let still_held = c.serve_refused().await;
-    assert!(still_held.contains(&format!("pid {a_pid} on host ")), "{still_held}");
+    assert!(
+        still_held.contains(&format!("pid {a_pid} on host ")),
+        "{still_held}"
+    );
     let stranded = run(&client, &b, &token, long_run).await;
     assert_eq!(stranded["state"], "running", "{stranded}");
 
@@ -264,10 +294,19 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
     let _daemon_c = c.serve().await;
     let interrupted = run(&client, &c, &token, long_run).await;
     assert_eq!(interrupted["state"], "interrupted", "{interrupted}");
-    assert!(interrupted["measured_points"].as_u64().unwrap_or(0) >= 2, "{interrupted}");
+    assert!(
+        interrupted["measured_points"].as_u64().unwrap_or(0) >= 2,
+        "{interrupted}"
+    );
     assert!(c.log().contains("taken over"), "{}", c.log());
     // Lab B's daemon now names the new holder for the bench.
-    let (status, body) = submit(&client, &b, &token, &plan("north-bench", "EG-PM-0101", &[1.5e9])).await;
+    let (status, body) = submit(
+        &client,
+        &b,
+        &token,
+        &plan("north-bench", "EG-PM-0101", &[1.5e9]),
+    )
+    .await;
     assert_eq!(status, 422, "{body}");
     assert!(
         body.to_string().contains(&format!("127.0.0.1:{}", c.port)),

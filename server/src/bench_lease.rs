@@ -64,11 +64,7 @@ impl BenchLeases {
     /// or none; on refusal the message names each holder. Benches taken over from a daemon that
     /// died are logged; the engine's start-up interlock (run next) switches their sources off and
     /// marks their running runs interrupted.
-    pub async fn take(
-        store: &Store,
-        config: &Config,
-        listen: &str,
-    ) -> Result<BenchLeases, String> {
+    pub async fn take(store: &Store, config: &Config, listen: &str) -> Result<BenchLeases, String> {
         let holder = LeaseHolder::this_process(listen);
         let benches: Vec<String> = config.benches.iter().map(|b| b.name.clone()).collect();
         let expiry = Duration::from_secs_f64(config.bench_lease_expiry_s);
@@ -118,7 +114,9 @@ impl BenchLeases {
         self.heartbeat.abort();
         match self.store.release_bench_leases(&self.holder.holder).await {
             Ok(n) => tracing::info!(leases = n, "bench leases released"),
-            Err(e) => tracing::warn!(error = %e, "could not release the bench leases; they expire by themselves"),
+            Err(e) => {
+                tracing::warn!(error = %e, "could not release the bench leases; they expire by themselves")
+            }
         }
     }
 }

@@ -18,11 +18,11 @@
 
 pub mod analysis;
 pub mod api;
+pub mod bench_lease;
 pub mod calendar;
 pub mod cli;
 pub mod config;
 pub mod csv_table;
-pub mod bench_lease;
 pub mod data_claim;
 pub mod engine;
 pub mod notify;

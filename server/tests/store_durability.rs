@@ -349,14 +349,24 @@ async fn bench_leases_are_taken_refused_and_taken_over(store: Store) {
     let (a, b) = (holder("lab-a", 101), holder("lab-b", 202));
     let benches = ["north-bench".to_string(), "south-bench".to_string()];
     let taken = store.take_bench_leases(&a, &benches, 300).await.unwrap();
-    assert!(taken.iter().all(|t| matches!(t, LeaseTaken::Fresh { .. })), "{taken:?}");
+    assert!(
+        taken.iter().all(|t| matches!(t, LeaseTaken::Fresh { .. })),
+        "{taken:?}"
+    );
     // All or none: B asking for one held bench and one free bench gets neither.
     let refused = store
-        .take_bench_leases(&b, &["south-bench".to_string(), "east-bench".to_string()], 300)
+        .take_bench_leases(
+            &b,
+            &["south-bench".to_string(), "east-bench".to_string()],
+            300,
+        )
         .await
         .unwrap_err();
     let text = refused.to_string();
-    assert!(text.contains("\"south-bench\" is held by") && text.contains("pid 101 on host lab-a-pc"), "{text}");
+    assert!(
+        text.contains("\"south-bench\" is held by") && text.contains("pid 101 on host lab-a-pc"),
+        "{text}"
+    );
     assert!(store.bench_lease("east-bench").await.unwrap().is_none());
     // A heartbeat renews both; past the expiry without one, B takes them over.
     assert_eq!(store.renew_bench_leases(&a.holder, 300).await.unwrap(), 2);
@@ -365,7 +375,9 @@ async fn bench_leases_are_taken_refused_and_taken_over(store: Store) {
     assert!(!lease.is_live(), "{lease:?}");
     let taken = store.take_bench_leases(&b, &benches, 300).await.unwrap();
     assert!(
-        taken.iter().all(|t| matches!(t, LeaseTaken::TakenOver { previous } if previous.holder.pid == 101)),
+        taken
+            .iter()
+            .all(|t| matches!(t, LeaseTaken::TakenOver { previous } if previous.holder.pid == 101)),
         "{taken:?}"
     );
     // The old holder's heartbeat now finds nothing (it must stop); B releases on shutdown.
@@ -374,7 +386,10 @@ async fn bench_leases_are_taken_refused_and_taken_over(store: Store) {
     assert!(store.bench_lease("north-bench").await.unwrap().is_none());
     let audit = store.audit_log(10, None).await.unwrap();
     assert_eq!(
-        audit.iter().filter(|e| e.action == "bench.lease_taken_over").count(),
+        audit
+            .iter()
+            .filter(|e| e.action == "bench.lease_taken_over")
+            .count(),
         2
     );
 }
@@ -393,7 +408,10 @@ async fn recovery_limited_to_named_benches_leaves_other_benches_running(store: S
         .await
         .unwrap();
     assert_eq!(mine, vec![run.id]);
-    assert_eq!(store.run(run.id).await.unwrap().state, RunState::Interrupted);
+    assert_eq!(
+        store.run(run.id).await.unwrap().state,
+        RunState::Interrupted
+    );
 }
 
 on_both_backends!(

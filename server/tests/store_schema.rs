@@ -69,16 +69,18 @@ async fn sqlite_schema(pool: &sqlx::SqlitePool) -> Schema {
         let columns = rows
             .iter()
             .map(|(column, declared, not_null, pk)| {
-                (column.clone(), (broad_type(declared), *not_null != 0 || *pk > 0))
+                (
+                    column.clone(),
+                    (broad_type(declared), *not_null != 0 || *pk > 0),
+                )
             })
             .collect();
-        let index_rows: Vec<(String, i64, String)> = sqlx::query_as(
-            "SELECT name, \"unique\", origin FROM pragma_index_list($1)",
-        )
-        .bind(&name)
-        .fetch_all(pool)
-        .await
-        .unwrap();
+        let index_rows: Vec<(String, i64, String)> =
+            sqlx::query_as("SELECT name, \"unique\", origin FROM pragma_index_list($1)")
+                .bind(&name)
+                .fetch_all(pool)
+                .await
+                .unwrap();
         let mut indexes = Vec::new();
         for (index, unique, origin) in index_rows {
             if origin == "pk" {
@@ -198,7 +200,10 @@ async fn both_migration_sets_give_the_same_schema() {
             .tables
             .get(name)
             .unwrap_or_else(|| panic!("table {name} is missing from PostgreSQL"));
-        assert_eq!(table, other, "table {name} differs (left SQLite, right PostgreSQL)");
+        assert_eq!(
+            table, other,
+            "table {name} differs (left SQLite, right PostgreSQL)"
+        );
     }
     assert_eq!(sqlite_schema, postgres_schema);
 }

@@ -32,6 +32,7 @@ pub mod token_cache;
 pub mod tokens;
 
 use crate::engine::Engine;
+use crate::store::DbPool;
 use crate::store::Store;
 use axum::extract::DefaultBodyLimit;
 use axum::http::StatusCode;
@@ -39,7 +40,6 @@ use axum::Router;
 use metrics::HttpMetrics;
 use read_cache::ReadCache;
 use run_gauges::RunGauges;
-use crate::store::DbPool;
 use std::sync::Arc;
 use std::time::Duration;
 use token_cache::TokenCache;

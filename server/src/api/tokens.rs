@@ -7,11 +7,11 @@
 //! the database directly, and the admin routes of the API. The SQL is in `crate::store::tokens`.
 
 use crate::store::tokens as store_tokens;
+use crate::store::DbPool;
 use rand::rngs::OsRng;
 use rand::TryRngCore;
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
-use crate::store::DbPool;
 use utoipa::ToSchema;
 
 /// What a token may do. Each role includes the rights of the roles before it.
@@ -232,10 +232,7 @@ pub async fn list(pool: &DbPool) -> Result<Vec<TokenInfo>, TokenError> {
 }
 
 /// Who holds this token, if it is known and not revoked.
-pub async fn authenticate(
-    pool: &DbPool,
-    token: &str,
-) -> Result<Option<TokenHolder>, TokenError> {
+pub async fn authenticate(pool: &DbPool, token: &str) -> Result<Option<TokenHolder>, TokenError> {
     authenticate_digest(pool, &digest_hex(token)).await
 }
 

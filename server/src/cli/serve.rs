@@ -15,8 +15,8 @@
 //! else) records the interruptions and makes its last delivery pass.
 
 use super::CliError;
-use crate::config::Config;
 use crate::bench_lease::{BenchLeases, Claim};
+use crate::config::Config;
 use crate::data_claim::DataClaim;
 use crate::engine::Engine;
 use crate::store::{Backend, Store};

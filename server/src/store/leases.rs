@@ -237,7 +237,6 @@ impl Store {
             .bind(expiry_ms)
             .execute(pool)
             .await.map(|done| done.rows_affected()))
-
         .map_err(StoreError::database("renewing bench leases"))
     }
 
@@ -247,7 +246,6 @@ impl Store {
             .bind(holder)
             .execute(pool)
             .await.map(|done| done.rows_affected()))
-
         .map_err(StoreError::database("releasing bench leases"))
     }
 

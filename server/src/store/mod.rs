@@ -147,7 +147,6 @@ impl DbPool {
     }
 }
 
-
 /// How long a statement waits for another connection's write lock before giving up.
 pub const BUSY_TIMEOUT: Duration = Duration::from_secs(5);
 

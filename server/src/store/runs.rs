@@ -53,7 +53,8 @@ impl Store {
         // never deleted), so the transaction opens with a write: in WAL mode a transaction that
         // reads first and then writes fails at once with "database is locked" when another
         // connection committed in between, whatever the busy timeout.
-        let device_exists: Option<i64> = on_pool!(&self.pool, pool => sqlx::query_scalar("SELECT id FROM devices WHERE id = $1")
+        let device_exists: Option<i64> =
+            on_pool!(&self.pool, pool => sqlx::query_scalar("SELECT id FROM devices WHERE id = $1")
             .bind(run.device_id)
             .fetch_optional(pool)
             .await)
@@ -125,11 +126,11 @@ impl Store {
             .bind(id)
             .fetch_optional(pool)
             .await)
-            .map_err(StoreError::database("reading a run"))?
-            .ok_or_else(|| StoreError::NotFound {
-                what: "run with id",
-                key: id.to_string(),
-            })
+        .map_err(StoreError::database("reading a run"))?
+        .ok_or_else(|| StoreError::NotFound {
+            what: "run with id",
+            key: id.to_string(),
+        })
     }
 
     /// Records the software and analysis method versions executing run `id` as it starts or
@@ -204,7 +205,8 @@ impl Store {
             sql.push_str(", finished_at_unix_ms = NULL");
         }
         sql.push_str(" WHERE id = $5 AND (state IN (");
-        let mut sources_sql: Vec<String> = (0..sources.len()).map(|k| format!("${}", 6 + k)).collect();
+        let mut sources_sql: Vec<String> =
+            (0..sources.len()).map(|k| format!("${}", 6 + k)).collect();
         if sources_sql.is_empty() {
             sources_sql.push("NULL".to_string());
         }
@@ -279,8 +281,7 @@ impl Store {
         benches: Option<&[String]>,
     ) -> Result<Vec<i64>, StoreError> {
         let now = now_unix_ms();
-        let mut sql =
-            String::from("UPDATE runs SET state = $1, cause = $2 WHERE state = $3");
+        let mut sql = String::from("UPDATE runs SET state = $1, cause = $2 WHERE state = $3");
         if let Some(benches) = benches {
             if benches.is_empty() {
                 return Ok(Vec::new());
@@ -358,9 +359,8 @@ impl Store {
             });
         }
         let (conditions, values) = run_conditions(filter);
-        let count_sql = format!(
-            "SELECT COUNT(*) FROM runs r JOIN devices d ON d.id = r.device_id{conditions}"
-        );
+        let count_sql =
+            format!("SELECT COUNT(*) FROM runs r JOIN devices d ON d.id = r.device_id{conditions}");
         let n = values.len();
         let select_sql = format!(
             "{RUN_SELECT}{conditions} ORDER BY r.created_at_unix_ms DESC, r.id DESC LIMIT ${} OFFSET ${}",
@@ -431,13 +431,28 @@ fn run_conditions(filter: &RunFilter) -> (String, Vec<FilterValue>) {
         condition(&mut sql, "d.serial", "=", FilterValue::Text(serial.clone()));
     }
     if let Some(state) = filter.state {
-        condition(&mut sql, "r.state", "=", FilterValue::Text(state.as_str().to_string()));
+        condition(
+            &mut sql,
+            "r.state",
+            "=",
+            FilterValue::Text(state.as_str().to_string()),
+        );
     }
     if let Some(from) = filter.created_from_unix_ms {
-        condition(&mut sql, "r.created_at_unix_ms", ">=", FilterValue::Int(from));
+        condition(
+            &mut sql,
+            "r.created_at_unix_ms",
+            ">=",
+            FilterValue::Int(from),
+        );
     }
     if let Some(before) = filter.created_before_unix_ms {
-        condition(&mut sql, "r.created_at_unix_ms", "<", FilterValue::Int(before));
+        condition(
+            &mut sql,
+            "r.created_at_unix_ms",
+            "<",
+            FilterValue::Int(before),
+        );
     }
     (sql, values)
 }

@@ -42,7 +42,13 @@ impl ScratchDatabase {
         static COUNTER: AtomicU32 = AtomicU32::new(0);
         let label: String = label
             .chars()
-            .map(|c| if c.is_ascii_alphanumeric() { c.to_ascii_lowercase() } else { '_' })
+            .map(|c| {
+                if c.is_ascii_alphanumeric() {
+                    c.to_ascii_lowercase()
+                } else {
+                    '_'
+                }
+            })
             .take(24)
             .collect();
         let name = format!(
@@ -137,6 +143,9 @@ mod tests {
             with_database("postgres://u:p@h/db?sslmode=disable", "t2"),
             "postgres://u:p@h/t2?sslmode=disable"
         );
-        assert_eq!(with_database("postgres://h:5432", "t3"), "postgres://h:5432/t3");
+        assert_eq!(
+            with_database("postgres://h:5432", "t3"),
+            "postgres://h:5432/t3"
+        );
     }
 }
