@@ -162,9 +162,15 @@ pub struct Config {
     /// Where the database, exported plots and backups live.
     #[serde(default = "default_data_dir")]
     pub data_dir: PathBuf,
-    /// `sqlite://PATH`; default `<data_dir>/halfwave.db`.
+    /// `sqlite://PATH` (default `<data_dir>/halfwave.db`), or `postgres://USER@HOST/DB` for a
+    /// database shared by the daemons of several bench PCs (each holds its benches by a lease).
     #[serde(default)]
     pub database_url: Option<String>,
+    /// PostgreSQL only: how long a bench lease outlives its holder's last heartbeat, in seconds
+    /// (the holder renews it every third of this). A daemon killed without a clean shutdown
+    /// keeps its benches this long before another daemon may take them over.
+    #[serde(default = "default_bench_lease_expiry_s")]
+    pub bench_lease_expiry_s: f64,
     #[serde(default)]
     pub limits: Limits,
     #[serde(default, rename = "bench")]
@@ -179,6 +185,10 @@ pub struct Config {
 
 fn default_bind() -> SocketAddr {
     SocketAddr::from(([127, 0, 0, 1], 8440))
+}
+
+fn default_bench_lease_expiry_s() -> f64 {
+    30.0
 }
 
 fn default_data_dir() -> PathBuf {
@@ -220,6 +230,7 @@ impl Config {
             bind: default_bind(),
             data_dir,
             database_url: None,
+            bench_lease_expiry_s: default_bench_lease_expiry_s(),
             limits: Limits::default(),
             benches: vec![BenchConfig {
                 name: "sim-bench".into(),
@@ -284,6 +295,13 @@ impl Config {
             return Err(invalid(
                 "limits.max_level_at_modulator_dbm",
                 format!("must be a level in dBm from -30 to 40, got {max}"),
+            ));
+        }
+        let expiry = self.bench_lease_expiry_s;
+        if !expiry.is_finite() || !(1.0..=3600.0).contains(&expiry) {
+            return Err(invalid(
+                "bench_lease_expiry_s",
+                format!("must be a time in seconds from 1 to 3600, got {expiry}"),
             ));
         }
         let mut names = std::collections::HashSet::new();

@@ -118,7 +118,7 @@ pub fn claim_path(config: &Config) -> PathBuf {
     }
 }
 
-fn host_name() -> String {
+pub(crate) fn host_name() -> String {
     std::fs::read_to_string("/proc/sys/kernel/hostname")
         .or_else(|_| std::fs::read_to_string("/etc/hostname"))
         .map(|s| s.trim().to_string())

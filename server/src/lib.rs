@@ -6,6 +6,8 @@
 //! - [`cli`]: the `halfwave` command line (each subcommand one file).
 //! - [`config`]: the daemon's TOML configuration with environment overrides.
 //! - [`data_claim`]: one daemon per data store (an OS file lock taken before anything starts).
+//! - [`bench_lease`]: on a shared PostgreSQL database, one daemon per bench (leases in the
+//!   database, taken before anything starts).
 //! - [`engine`]: plans, the per-bench queue, the sweep executor and the RF-off interlocks.
 //! - [`notify`]: signed webhooks when a run ends or a bench is held, with a persistent outbox.
 //! - [`shutdown`]: waiting for SIGINT/SIGTERM.
@@ -16,6 +18,7 @@
 
 pub mod analysis;
 pub mod api;
+pub mod bench_lease;
 pub mod calendar;
 pub mod cli;
 pub mod config;

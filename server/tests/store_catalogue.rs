@@ -1,6 +1,7 @@
 //! Devices, instruments, versioned chain calibrations, run listing, reference traces and
 //! per-frequency results.
 
+#[macro_use]
 mod store_support;
 
 use halfwave::store::{ChainCalibrationPoint, RunFilter, RunState, Store, StoreError};
@@ -8,9 +9,7 @@ use halfwave::units::{Db, Dbm, Hz};
 use halfwave_drivers::Identity;
 use store_support::{demo_device, queued_run, result, small_trace};
 
-#[tokio::test]
-async fn device_upsert_keeps_one_row_per_serial() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn device_upsert_keeps_one_row_per_serial(store: Store) {
     let first = store
         .upsert_device(&demo_device("DEMO-0100"))
         .await
@@ -33,9 +32,7 @@ async fn device_upsert_keeps_one_row_per_serial() {
     ));
 }
 
-#[tokio::test]
-async fn instruments_are_recorded_per_identity_and_resource() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn instruments_are_recorded_per_identity_and_resource(store: Store) {
     let identity = Identity {
         manufacturer: "Demo Instruments Lab".into(),
         model: "OSA-1".into(),
@@ -65,9 +62,7 @@ async fn instruments_are_recorded_per_identity_and_resource() {
     assert_eq!(store.instruments().await.unwrap().len(), 2);
 }
 
-#[tokio::test]
-async fn chain_calibrations_are_versioned_and_never_edited() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn chain_calibrations_are_versioned_and_never_edited(store: Store) {
     let v1_points = [
         ChainCalibrationPoint::new(Hz::from_ghz(20.0), Db(17.0)),
         ChainCalibrationPoint::new(Hz::from_ghz(1.0), Db(21.0)),
@@ -123,9 +118,10 @@ async fn chain_calibrations_are_versioned_and_never_edited() {
     assert_eq!(store.chain_calibrations().await.unwrap().len(), 3);
 
     // The table cannot be changed in place through the key either.
-    let clash = sqlx::query("INSERT INTO chain_calibrations (name, version, created_at_unix_ms, created_by) VALUES ('bench-south chain', 1, 0, 'x')")
-        .execute(store.pool())
-        .await;
+    let clash = halfwave::on_pool!(store.pool(), pool => sqlx::query("INSERT INTO chain_calibrations (name, version, created_at_unix_ms, created_by) VALUES ('bench-south chain', 1, 0, 'x')")
+        .execute(pool)
+        .await
+        .map(|_| ()));
     assert!(clash.is_err());
 
     for bad in [
@@ -162,9 +158,7 @@ async fn chain_calibrations_are_versioned_and_never_edited() {
     );
 }
 
-#[tokio::test]
-async fn runs_list_newest_first_with_filters_and_pages() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn runs_list_newest_first_with_filters_and_pages(store: Store) {
     let mut ids = Vec::new();
     for serial in ["DEMO-0200", "DEMO-0201", "DEMO-0200", "DEMO-0200"] {
         ids.push(queued_run(&store, serial).await.id);
@@ -251,9 +245,7 @@ async fn runs_list_newest_first_with_filters_and_pages() {
     assert_eq!(plan["levels_dbm"][1], 3.0);
 }
 
-#[tokio::test]
-async fn reference_traces_and_results_replace_on_retake() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn reference_traces_and_results_replace_on_retake(store: Store) {
     let run = queued_run(&store, "DEMO-0300").await;
     let trace = small_trace();
     store
@@ -299,9 +291,7 @@ async fn reference_traces_and_results_replace_on_retake() {
     ));
 }
 
-#[tokio::test]
-async fn a_runs_software_versions_are_kept_in_the_order_they_executed_it() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn a_runs_software_versions_are_kept_in_the_order_they_executed_it(store: Store) {
     let run = queued_run(&store, "DEMO-0300").await;
     // Queued without a record (as runs before migration 0011 were): nothing is claimed.
     assert_eq!(run.software_version, None);
@@ -340,3 +330,12 @@ async fn a_runs_software_versions_are_kept_in_the_order_they_executed_it() {
         Err(StoreError::NotFound { .. })
     ));
 }
+
+on_both_backends!(
+    device_upsert_keeps_one_row_per_serial,
+    instruments_are_recorded_per_identity_and_resource,
+    chain_calibrations_are_versioned_and_never_edited,
+    runs_list_newest_first_with_filters_and_pages,
+    reference_traces_and_results_replace_on_retake,
+    a_runs_software_versions_are_kept_in_the_order_they_executed_it,
+);

@@ -1,6 +1,7 @@
 //! The store on a real file: schema, pragmas, what survives a crash, start-up recovery and the
 //! guarantees a resumed run relies on.
 
+#[macro_use]
 mod store_support;
 
 use halfwave::store::{RunState, Store, StoreError};
@@ -16,7 +17,7 @@ async fn migrations_apply_to_a_fresh_file_and_pragmas_are_set() {
 
     let tables: Vec<String> =
         sqlx::query_scalar("SELECT name FROM sqlite_master WHERE type = 'table' ORDER BY name")
-            .fetch_all(store.pool())
+            .fetch_all(store.pool().as_sqlite().unwrap())
             .await
             .unwrap();
     for expected in [
@@ -37,17 +38,17 @@ async fn migrations_apply_to_a_fresh_file_and_pragmas_are_set() {
     }
 
     let journal_mode: String = sqlx::query_scalar("PRAGMA journal_mode")
-        .fetch_one(store.pool())
+        .fetch_one(store.pool().as_sqlite().unwrap())
         .await
         .unwrap();
     assert_eq!(journal_mode.to_lowercase(), "wal");
     let foreign_keys: i64 = sqlx::query_scalar("PRAGMA foreign_keys")
-        .fetch_one(store.pool())
+        .fetch_one(store.pool().as_sqlite().unwrap())
         .await
         .unwrap();
     assert_eq!(foreign_keys, 1);
     let busy_timeout_ms: i64 = sqlx::query_scalar("PRAGMA busy_timeout")
-        .fetch_one(store.pool())
+        .fetch_one(store.pool().as_sqlite().unwrap())
         .await
         .unwrap();
     assert_eq!(busy_timeout_ms, 5_000);
@@ -56,7 +57,7 @@ async fn migrations_apply_to_a_fresh_file_and_pragmas_are_set() {
     store.close().await;
     let again = Store::open(&format!("sqlite://{path}")).await.unwrap();
     let applied: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM _sqlx_migrations")
-        .fetch_one(again.pool())
+        .fetch_one(again.pool().as_sqlite().unwrap())
         .await
         .unwrap();
     // One row per migration file (the API's token table is 0002), each applied once.
@@ -72,18 +73,17 @@ async fn migrations_apply_to_a_fresh_file_and_pragmas_are_set() {
     assert!(!tables.iter().any(|t| t == "point_traces"));
 }
 
-#[tokio::test]
-async fn foreign_keys_are_enforced() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn foreign_keys_are_enforced(store: Store) {
     let trace = small_trace();
     let err = store
         .commit_point(&point(999, 0, 0, &trace))
         .await
         .unwrap_err();
     assert!(matches!(err, StoreError::NotFound { .. }), "{err}");
-    let raw = sqlx::query("INSERT INTO points (run_id, frequency_index, level_index, frequency_hz, generator_level_dbm, level_at_modulator_dbm, v_peak_volts, line_table_json, analysis_json, measured_at_unix_ms) VALUES (42, 0, 0, 1, 0, 0, 1, '[]', '{}', 0)")
-        .execute(store.pool())
-        .await;
+    let raw = halfwave::on_pool!(store.pool(), pool => sqlx::query("INSERT INTO points (run_id, frequency_index, level_index, frequency_hz, generator_level_dbm, level_at_modulator_dbm, v_peak_volts, line_table_json, analysis_json, measured_at_unix_ms) VALUES (42, 0, 0, 1, 0, 0, 1, '[]', '{}', 0)")
+        .execute(pool)
+        .await
+        .map(|_| ()));
     assert!(raw.is_err(), "a point of a missing run must be refused");
 }
 
@@ -164,9 +164,7 @@ async fn start_up_recovery_interrupts_running_runs_and_keeps_their_points() {
     assert_eq!(resumed.cause, None);
 }
 
-#[tokio::test]
-async fn a_point_cannot_be_stored_twice() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn a_point_cannot_be_stored_twice(store: Store) {
     let trace = small_trace();
     let run = running_run(&store, "DEMO-0004").await;
     store
@@ -190,17 +188,16 @@ async fn a_point_cannot_be_stored_twice() {
     );
     // The failed commit left no second point (and so no second trace).
     assert_eq!(store.points_of_run(run.id).await.unwrap().len(), 1);
-    let traces: i64 =
-        sqlx::query_scalar("SELECT COUNT(*) FROM points WHERE trace_encoded IS NOT NULL")
-            .fetch_one(store.pool())
-            .await
-            .unwrap();
+    let traces: i64 = halfwave::on_pool!(store.pool(), pool => sqlx::query_scalar(
+        "SELECT COUNT(*) FROM points WHERE trace_encoded IS NOT NULL",
+    )
+    .fetch_one(pool)
+    .await)
+    .unwrap();
     assert_eq!(traces, 1);
 }
 
-#[tokio::test]
-async fn run_states_follow_the_allowed_edges() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn run_states_follow_the_allowed_edges(store: Store) {
     let run = store_support::queued_run(&store, "DEMO-0005").await;
     let err = store
         .transition_run(run.id, RunState::Completed, None)
@@ -340,3 +337,87 @@ async fn migration_0003_moves_existing_point_traces_into_the_point_rows() {
     assert_eq!(moved.power_dbm()[200], -3.0);
     assert_eq!(moved.frequency_hz()[0], trace.frequency_hz()[0]);
 }
+
+async fn bench_leases_are_taken_refused_and_taken_over(store: Store) {
+    use halfwave::store::leases::{LeaseHolder, LeaseTaken};
+    let holder = |name: &str, pid: i64| LeaseHolder {
+        holder: format!("{name}-holder"),
+        host: format!("{name}-pc"),
+        pid,
+        listen: "127.0.0.1:8440".to_string(),
+    };
+    let (a, b) = (holder("lab-a", 101), holder("lab-b", 202));
+    let benches = ["north-bench".to_string(), "south-bench".to_string()];
+    let taken = store.take_bench_leases(&a, &benches, 300).await.unwrap();
+    assert!(
+        taken.iter().all(|t| matches!(t, LeaseTaken::Fresh { .. })),
+        "{taken:?}"
+    );
+    // All or none: B asking for one held bench and one free bench gets neither.
+    let refused = store
+        .take_bench_leases(
+            &b,
+            &["south-bench".to_string(), "east-bench".to_string()],
+            300,
+        )
+        .await
+        .unwrap_err();
+    let text = refused.to_string();
+    assert!(
+        text.contains("\"south-bench\" is held by") && text.contains("pid 101 on host lab-a-pc"),
+        "{text}"
+    );
+    assert!(store.bench_lease("east-bench").await.unwrap().is_none());
+    // A heartbeat renews both; past the expiry without one, B takes them over.
+    assert_eq!(store.renew_bench_leases(&a.holder, 300).await.unwrap(), 2);
+    tokio::time::sleep(std::time::Duration::from_millis(450)).await;
+    let lease = store.bench_lease("north-bench").await.unwrap().unwrap();
+    assert!(!lease.is_live(), "{lease:?}");
+    let taken = store.take_bench_leases(&b, &benches, 300).await.unwrap();
+    assert!(
+        taken
+            .iter()
+            .all(|t| matches!(t, LeaseTaken::TakenOver { previous } if previous.holder.pid == 101)),
+        "{taken:?}"
+    );
+    // The old holder's heartbeat now finds nothing (it must stop); B releases on shutdown.
+    assert_eq!(store.renew_bench_leases(&a.holder, 300).await.unwrap(), 0);
+    assert_eq!(store.release_bench_leases(&b.holder).await.unwrap(), 2);
+    assert!(store.bench_lease("north-bench").await.unwrap().is_none());
+    let audit = store.audit_log(10, None).await.unwrap();
+    assert_eq!(
+        audit
+            .iter()
+            .filter(|e| e.action == "bench.lease_taken_over")
+            .count(),
+        2
+    );
+}
+
+async fn recovery_limited_to_named_benches_leaves_other_benches_running(store: Store) {
+    let run = running_run(&store, "EG-PM-0303").await;
+    // The run is on "bench-north" (store_support); another daemon's recovery leaves it alone.
+    let none = store
+        .mark_running_as_interrupted_on(Some(&["bench-south".to_string()]))
+        .await
+        .unwrap();
+    assert!(none.is_empty());
+    assert_eq!(store.run(run.id).await.unwrap().state, RunState::Running);
+    let mine = store
+        .mark_running_as_interrupted_on(Some(&["bench-north".to_string()]))
+        .await
+        .unwrap();
+    assert_eq!(mine, vec![run.id]);
+    assert_eq!(
+        store.run(run.id).await.unwrap().state,
+        RunState::Interrupted
+    );
+}
+
+on_both_backends!(
+    bench_leases_are_taken_refused_and_taken_over,
+    recovery_limited_to_named_benches_leaves_other_benches_running,
+    foreign_keys_are_enforced,
+    a_point_cannot_be_stored_twice,
+    run_states_follow_the_allowed_edges,
+);

@@ -3,6 +3,7 @@
 //! and unpinning, the run a device plot shows, and two runs compared. Expected values are worked
 //! by hand in the comments.
 
+#[macro_use]
 mod store_support;
 
 use halfwave::analysis::vpi_lookup::extrapolate_vpi;
@@ -36,9 +37,7 @@ fn close(a: f64, b: f64) -> bool {
     (a - b).abs() < 1e-12
 }
 
-#[tokio::test]
-async fn vpi_is_interpolated_from_the_newest_completed_run_covering_it() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn vpi_is_interpolated_from_the_newest_completed_run_covering_it(store: Store) {
     // An older completed run with other values: must not be used.
     finished_run(
         &store,
@@ -113,9 +112,7 @@ async fn vpi_is_interpolated_from_the_newest_completed_run_covering_it() {
     }
 }
 
-#[tokio::test]
-async fn latest_vpi_needs_a_completed_run() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn latest_vpi_needs_a_completed_run(store: Store) {
     finished_run(
         &store,
         "DEMO-0401",
@@ -133,9 +130,7 @@ async fn latest_vpi_needs_a_completed_run() {
     ));
 }
 
-#[tokio::test]
-async fn a_quick_narrow_run_does_not_hide_an_older_wide_calibration() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn a_quick_narrow_run_does_not_hide_an_older_wide_calibration(store: Store) {
     // The case from the issue: a 0.2-20 GHz calibration, then a quick 1-5 GHz check.
     let wide = finished_run(
         &store,
@@ -198,9 +193,7 @@ async fn a_quick_narrow_run_does_not_hide_an_older_wide_calibration() {
     ));
 }
 
-#[tokio::test]
-async fn a_pinned_run_answers_until_it_is_unpinned() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn a_pinned_run_answers_until_it_is_unpinned(store: Store) {
     let reference = finished_run(
         &store,
         "DEMO-0411",
@@ -362,9 +355,7 @@ async fn a_pinned_run_answers_until_it_is_unpinned() {
     );
 }
 
-#[tokio::test]
-async fn a_device_plot_shows_the_pinned_run_else_the_newest_covering_everything() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn a_device_plot_shows_the_pinned_run_else_the_newest_covering_everything(store: Store) {
     let wide = finished_run(
         &store,
         "DEMO-0413",
@@ -405,9 +396,7 @@ async fn a_device_plot_shows_the_pinned_run_else_the_newest_covering_everything(
     assert_eq!((run.run_id, how), (quick, RunSelection::Pinned));
 }
 
-#[tokio::test]
-async fn history_lists_completed_runs_newest_first() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn history_lists_completed_runs_newest_first(store: Store) {
     let older = finished_run(
         &store,
         "DEMO-0402",
@@ -428,9 +417,7 @@ async fn history_lists_completed_runs_newest_first() {
     assert_eq!(rows, vec![(newer, 10e9), (older, 10e9), (older, 20e9)]);
 }
 
-#[tokio::test]
-async fn two_runs_compare_per_frequency() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn two_runs_compare_per_frequency(store: Store) {
     let a = finished_run(
         &store,
         "DEMO-0403",
@@ -473,9 +460,7 @@ async fn two_runs_compare_per_frequency() {
     ));
 }
 
-#[tokio::test]
-async fn run_detail_holds_points_and_results() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn run_detail_holds_points_and_results(store: Store) {
     let run = store_support::running_run(&store, "DEMO-0404").await;
     let trace = store_support::small_trace();
     for (f, l) in [(1, 1), (0, 1), (0, 0)] {
@@ -499,9 +484,7 @@ async fn run_detail_holds_points_and_results() {
     assert_eq!(detail.results.len(), 1);
 }
 
-#[tokio::test]
-async fn a_drive_plan_extrapolates_only_when_asked_and_then_widens_the_uncertainty() {
-    let store = Store::open_in_memory().await.unwrap();
+async fn a_drive_plan_extrapolates_only_when_asked_and_then_widens_the_uncertainty(store: Store) {
     let run = finished_run(
         &store,
         "DEMO-0500",
@@ -552,3 +535,15 @@ async fn a_drive_plan_extrapolates_only_when_asked_and_then_widens_the_uncertain
     assert!(close(v.value(), 0.6) && close(u.value(), 0.4));
     assert!(extrapolate_vpi(&steep, Hz(1.5e9)).is_none());
 }
+
+on_both_backends!(
+    vpi_is_interpolated_from_the_newest_completed_run_covering_it,
+    latest_vpi_needs_a_completed_run,
+    a_quick_narrow_run_does_not_hide_an_older_wide_calibration,
+    a_pinned_run_answers_until_it_is_unpinned,
+    a_device_plot_shows_the_pinned_run_else_the_newest_covering_everything,
+    history_lists_completed_runs_newest_first,
+    two_runs_compare_per_frequency,
+    run_detail_holds_points_and_results,
+    a_drive_plan_extrapolates_only_when_asked_and_then_widens_the_uncertainty,
+);

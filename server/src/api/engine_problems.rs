@@ -37,6 +37,7 @@ impl From<EngineError> for Problem {
             }
             EngineError::NotCancellable { .. }
             | EngineError::NotResumable { .. }
+            | EngineError::OtherDaemon { .. }
             | EngineError::ResumeRefused { .. } => Problem::conflict(message),
             EngineError::Acknowledge(AcknowledgeError::Store(e)) => e.into(),
             EngineError::Acknowledge(_) => Problem::conflict(message),

@@ -34,6 +34,7 @@ pub mod tokens;
 pub mod views;
 
 use crate::engine::Engine;
+use crate::store::DbPool;
 use crate::store::Store;
 use axum::extract::DefaultBodyLimit;
 use axum::http::StatusCode;
@@ -41,7 +42,6 @@ use axum::Router;
 use metrics::HttpMetrics;
 use read_cache::ReadCache;
 use run_gauges::RunGauges;
-use sqlx::SqlitePool;
 use std::sync::Arc;
 use std::time::Duration;
 use token_cache::TokenCache;
@@ -132,7 +132,7 @@ impl AppState {
         })
     }
 
-    pub fn pool(&self) -> &SqlitePool {
+    pub fn pool(&self) -> &DbPool {
         self.inner.store.pool()
     }
 

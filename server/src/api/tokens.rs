@@ -7,11 +7,11 @@
 //! the database directly, and the admin routes of the API. The SQL is in `crate::store::tokens`.
 
 use crate::store::tokens as store_tokens;
+use crate::store::DbPool;
 use rand::rngs::OsRng;
 use rand::TryRngCore;
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
-use sqlx::SqlitePool;
 use utoipa::ToSchema;
 
 /// What a token may do. Each role includes the rights of the roles before it.
@@ -169,7 +169,7 @@ fn now_unix_ms() -> i64 {
 
 /// Creates a token and returns it (the only time the secret exists outside the caller's hands).
 pub async fn create(
-    pool: &SqlitePool,
+    pool: &DbPool,
     name: &str,
     role: Role,
     created_by: &str,
@@ -201,7 +201,7 @@ pub async fn create(
 }
 
 /// Revokes the active token of this name.
-pub async fn revoke(pool: &SqlitePool, name: &str) -> Result<(), TokenError> {
+pub async fn revoke(pool: &DbPool, name: &str) -> Result<(), TokenError> {
     let revoked = store_tokens::revoke(pool, name, now_unix_ms())
         .await
         .map_err(db("revoking a token"))?;
@@ -212,7 +212,7 @@ pub async fn revoke(pool: &SqlitePool, name: &str) -> Result<(), TokenError> {
 }
 
 /// Every token, active and revoked, oldest first.
-pub async fn list(pool: &SqlitePool) -> Result<Vec<TokenInfo>, TokenError> {
+pub async fn list(pool: &DbPool) -> Result<Vec<TokenInfo>, TokenError> {
     let rows = store_tokens::list(pool)
         .await
         .map_err(db("listing tokens"))?;
@@ -232,16 +232,13 @@ pub async fn list(pool: &SqlitePool) -> Result<Vec<TokenInfo>, TokenError> {
 }
 
 /// Who holds this token, if it is known and not revoked.
-pub async fn authenticate(
-    pool: &SqlitePool,
-    token: &str,
-) -> Result<Option<TokenHolder>, TokenError> {
+pub async fn authenticate(pool: &DbPool, token: &str) -> Result<Option<TokenHolder>, TokenError> {
     authenticate_digest(pool, &digest_hex(token)).await
 }
 
 /// Who holds the token with this digest ([`digest_hex`]), if it is known and not revoked.
 pub async fn authenticate_digest(
-    pool: &SqlitePool,
+    pool: &DbPool,
     digest: &str,
 ) -> Result<Option<TokenHolder>, TokenError> {
     let row = store_tokens::active_by_digest(pool, digest)

@@ -59,6 +59,7 @@ pub fn run(command: DbCommand) -> Result<(), CliError> {
             json,
         } => {
             let url = source_url(&database)?;
+            refuse_postgres(&url)?;
             let report = runtime()?.block_on(backup(&url, &dest))?;
             if json {
                 outln!("{}", to_json(&report)?);
@@ -75,6 +76,19 @@ pub fn run(command: DbCommand) -> Result<(), CliError> {
             Ok(())
         }
     }
+}
+
+/// `db backup` is SQLite's `VACUUM INTO`; a PostgreSQL database is backed up with the server's
+/// own tool, which copies a consistent snapshot while the daemons write.
+pub fn refuse_postgres(url: &str) -> Result<(), CliError> {
+    if crate::store::Backend::of_url(url) == crate::store::Backend::Postgres {
+        return Err(CliError::new(format!(
+            "`halfwave db backup` copies SQLite databases only; {} is PostgreSQL: back it up with `pg_dump --format=custom --file=halfwave-$(date +%F).dump '{}'` (a consistent snapshot, safe while the daemons run; restore with pg_restore), see README \"Several labs on one database\"",
+            crate::store::redacted_url(url),
+            crate::store::redacted_url(url)
+        )));
+    }
+    Ok(())
 }
 
 /// The database to copy. Unlike `token`, nothing is created: a backup of a database that does

@@ -1,21 +1,25 @@
 //! `halfwave serve`: the daemon. Configuration in, engine and HTTP API up, RF off on the way out.
 //!
 //! Start-up order matters for safety: the configuration is checked first (nothing starts
-//! half-configured), then the daemon claims its data store (`data_claim`: a second daemon on the
-//! same database exits here, naming the first, having changed nothing), then it binds its port
-//! (a taken port also stops it before any instrument is touched), then the store is opened and
-//! migrated, and only then does the engine switch every configured source off and mark runs left
-//! running as interrupted, before the HTTP listener accepts requests. On SIGINT or SIGTERM the
+//! half-configured), then a SQLite daemon claims its data store (`data_claim`: a second daemon on
+//! the same database exits here, naming the first, having changed nothing), then it binds its
+//! port (a taken port also stops it before any instrument is touched), then the store is opened
+//! and migrated; on a shared PostgreSQL database the daemon now takes the leases of its benches
+//! (`bench_lease`: a bench a live daemon holds stops it here, naming the holder), and only then
+//! does the engine switch every configured source off and mark runs left running (on its own
+//! benches) as interrupted, before the HTTP listener accepts requests. A lease lost while running
+//! (another daemon took a bench over) shuts the daemon down like a signal. On SIGINT or SIGTERM the
 //! listener stops taking requests, the engine cancels the active runs (they become interrupted,
 //! so they can be resumed) and switches every source off before the process exits; then the
 //! webhook notifier (`crate::notify`, started after the engine, its secrets read before anything
 //! else) records the interruptions and makes its last delivery pass.
 
 use super::CliError;
+use crate::bench_lease::{BenchLeases, Claim};
 use crate::config::Config;
 use crate::data_claim::DataClaim;
 use crate::engine::Engine;
-use crate::store::Store;
+use crate::store::{Backend, Store};
 use clap::Args;
 use std::path::{Path, PathBuf};
 
@@ -64,7 +68,7 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
         |path| config.resolve(path),
     )
     .map_err(CliError::new)?;
-    let (engine, listener, _claim) = start(&config).await?;
+    let (engine, listener, claim) = start(&config).await?;
     let notifier = crate::notify::Notifier::start(&engine, receivers);
     let address = listener
         .local_addr()
@@ -76,15 +80,22 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
     }
     let state =
         crate::api::AppState::with_engine(engine.clone(), crate::api::ApiSettings::from_env());
-    let stopped = crate::api::serve_on(listener, state, async {
-        let name = crate::shutdown::signal().await;
-        tracing::info!(
-            signal = name,
-            "shutting down: stopping runs and switching RF off"
-        );
+    let lost = claim.lost();
+    let stopped = crate::api::serve_on(listener, state, async move {
+        tokio::select! {
+            name = crate::shutdown::signal() => tracing::info!(
+                signal = name,
+                "shutting down: stopping runs and switching RF off"
+            ),
+            () = lost => tracing::error!(
+                "shutting down: this daemon no longer holds its bench leases; stopping runs and switching RF off"
+            ),
+        }
     })
     .await;
     engine.shutdown().await;
+    // After the engine has switched the sources off: another daemon may take the benches now.
+    claim.release().await;
     // After the engine: the runs it interrupted are notified (or kept pending for next time).
     if let Some(notifier) = notifier {
         notifier.shutdown().await;
@@ -94,14 +105,17 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
     Ok(())
 }
 
-/// Claims the data store, binds the listener, opens the store and starts the engine (RF off
-/// everywhere, recovery), in that order: a daemon that cannot claim its store or bind its port
-/// stops before it changes anything. The claim must be kept for as long as the daemon runs.
-pub async fn start(
-    config: &Config,
-) -> Result<(Engine, tokio::net::TcpListener, DataClaim), CliError> {
+/// Claims the data store (SQLite) or binds the listener, opens the store and takes the bench
+/// leases (PostgreSQL), then starts the engine (RF off everywhere, recovery), in that order: a
+/// daemon that cannot claim its store or benches or bind its port stops before it changes
+/// anything. The claim must be kept for as long as the daemon runs.
+pub async fn start(config: &Config) -> Result<(Engine, tokio::net::TcpListener, Claim), CliError> {
     config.create_data_dir().map_err(CliError::new)?;
-    let claim = DataClaim::acquire(config).map_err(CliError::new)?;
+    let url = config.database_url();
+    let local = match Backend::of_url(&url) {
+        Backend::Sqlite => Some(DataClaim::acquire(config).map_err(CliError::new)?),
+        Backend::Postgres => None,
+    };
     let listener = tokio::net::TcpListener::bind(config.bind)
         .await
         .map_err(|e| {
@@ -110,9 +124,23 @@ pub async fn start(
                 config.bind
             ))
         })?;
-    let store = Store::open(&config.database_url())
+    let store = Store::open(&url)
         .await
         .map_err(|e| CliError::new(e.to_string()))?;
+    let claim = match local {
+        Some(local) => Claim::Local(local),
+        None => {
+            let listen = listener
+                .local_addr()
+                .map(|a| a.to_string())
+                .unwrap_or_else(|_| config.bind.to_string());
+            Claim::Leases(
+                BenchLeases::take(&store, config, &listen)
+                    .await
+                    .map_err(CliError::new)?,
+            )
+        }
+    };
     let engine = Engine::start(config, store)
         .await
         .map_err(|e| CliError::new(e.to_string()))?;

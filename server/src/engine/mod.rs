@@ -64,6 +64,8 @@ pub enum EngineError {
     NotResumable { run_id: i64, state: String },
     #[error("no bench named {0:?} is configured on this daemon")]
     BenchNotFound(String),
+    #[error("run {run_id} is on a bench this daemon does not drive: {detail}")]
+    OtherDaemon { run_id: i64, detail: String },
     #[error(transparent)]
     Acknowledge(#[from] AcknowledgeError),
     #[error("run {run_id} cannot be resumed: {reason}")]
@@ -334,8 +336,16 @@ impl Engine {
             receivers.push((slot.clone(), rx));
             slots.insert(name, slot);
         }
-        let interrupted = store.mark_running_as_interrupted().await?;
-        let unfinished = store.fail_unfinished_chain_runs().await?;
+        // On a shared database (PostgreSQL) other daemons' runs are theirs: recovery and the
+        // queue cover this daemon's benches only (it holds their leases).
+        let shared = store.backend() == crate::store::Backend::Postgres;
+        let own_benches: Vec<String> = slots.keys().cloned().collect();
+        let interrupted = store
+            .mark_running_as_interrupted_on(shared.then_some(own_benches.as_slice()))
+            .await?;
+        let unfinished = store
+            .fail_unfinished_chain_runs_on(shared.then_some(own_benches.as_slice()))
+            .await?;
         if !unfinished.is_empty() {
             tracing::warn!(chain_runs = ?unfinished, "chain calibrations left unfinished by the previous process are failed; submit them again");
         }
@@ -374,7 +384,12 @@ impl Engine {
                 ..RunFilter::default()
             })
             .await?;
-        let mut queued: Vec<i64> = queued.runs.iter().map(|r| r.id).collect();
+        let mut queued: Vec<i64> = queued
+            .runs
+            .iter()
+            .filter(|r| !shared || own_benches.contains(&r.bench_name))
+            .map(|r| r.id)
+            .collect();
         queued.sort_unstable();
         for run_id in queued {
             if let Err(e) = engine.enqueue_existing(run_id).await {
@@ -427,6 +442,38 @@ impl Engine {
         list
     }
 
+    /// Why a bench is not one of this daemon's: held by another daemon on the shared database
+    /// (named, with where to submit instead: runs are not forwarded), or not configured anywhere.
+    async fn not_here(&self, bench: &str) -> String {
+        let mut known: Vec<&str> = self.inner.benches.keys().map(String::as_str).collect();
+        known.sort();
+        if self.inner.store.backend() == crate::store::Backend::Postgres {
+            match self.inner.store.bench_lease(bench).await {
+                Ok(Some(lease)) if lease.is_live() => {
+                    return format!(
+                        "bench {bench:?} is driven by another daemon: {}; submit the run to that daemon's API (http://{}/), this daemon runs only its own benches ({})",
+                        lease.describe(),
+                        lease.holder.listen,
+                        known.join(", ")
+                    );
+                }
+                Ok(Some(lease)) => {
+                    return format!(
+                        "bench {bench:?} is not configured on this daemon, and its last holder ({}) stopped renewing its lease; start a daemon that configures it, this daemon runs only its own benches ({})",
+                        lease.holder.describe(),
+                        known.join(", ")
+                    );
+                }
+                Ok(None) => {}
+                Err(e) => tracing::warn!(error = %e, bench, "could not read the bench's lease"),
+            }
+        }
+        format!(
+            "no bench named {bench:?}; configured benches: {}",
+            known.join(", ")
+        )
+    }
+
     /// Checks a plan against the limits and the bench without queuing it.
     pub async fn check_plan(
         &self,
@@ -437,15 +484,9 @@ impl Engine {
         let mut errors = Vec::new();
         let slot = self.inner.benches.get(&request.bench);
         if slot.is_none() && !request.bench.trim().is_empty() {
-            let mut known: Vec<&str> = self.inner.benches.keys().map(String::as_str).collect();
-            known.sort();
             errors.push(FieldError {
                 field: "bench".into(),
-                message: format!(
-                    "no bench named {:?}; configured benches: {}",
-                    request.bench,
-                    known.join(", ")
-                ),
+                message: self.not_here(&request.bench).await,
             });
         }
         let chain = match self.resolve_chain(&request.chain).await {
@@ -611,6 +652,10 @@ impl Engine {
     pub async fn cancel(&self, run_id: i64, by: &str) -> Result<(), EngineError> {
         let run = self.run_record(run_id).await?;
         let state = run.state;
+        if matches!(state, RunState::Queued | RunState::Running) {
+            self.refuse_other_daemons_run(run_id, &run.bench_name)
+                .await?;
+        }
         if !matches!(
             state,
             RunState::Queued | RunState::Running | RunState::Interrupted
@@ -658,6 +703,8 @@ impl Engine {
             };
             return Err(EngineError::NotResumable { run_id, state });
         }
+        self.refuse_other_daemons_run(run_id, &run.bench_name)
+            .await?;
         if self.is_queued_or_active(run_id) {
             return Err(EngineError::NotResumable {
                 run_id,
@@ -671,6 +718,20 @@ impl Engine {
             .append_audit(by, "run.resume", &format!("run:{run_id}"), "")
             .await?;
         self.enqueue_existing(run_id).await
+    }
+
+    /// On a shared database, refuses to act on a run of a bench this daemon does not hold: its
+    /// queue and its cancel tokens live in the daemon that holds the bench.
+    async fn refuse_other_daemons_run(&self, run_id: i64, bench: &str) -> Result<(), EngineError> {
+        if self.inner.store.backend() != crate::store::Backend::Postgres
+            || self.inner.benches.contains_key(bench)
+        {
+            return Ok(());
+        }
+        Err(EngineError::OtherDaemon {
+            run_id,
+            detail: self.not_here(bench).await,
+        })
     }
 
     /// Cancels everything, waits for the RF to go off, and switches every source off again.

@@ -27,10 +27,10 @@ pub struct CompletedRunsFingerprint {
 impl Store {
     /// How many points of the run are stored.
     pub async fn point_count(&self, run_id: i64) -> Result<i64, StoreError> {
-        sqlx::query_scalar("SELECT COUNT(*) FROM points WHERE run_id = $1")
+        on_pool!(&self.pool, pool => sqlx::query_scalar("SELECT COUNT(*) FROM points WHERE run_id = $1")
             .bind(run_id)
-            .fetch_one(&self.pool)
-            .await
+            .fetch_one(pool)
+            .await)
             .map_err(StoreError::database("counting a run's points"))
     }
 
@@ -42,7 +42,7 @@ impl Store {
         limit: u32,
         offset: u64,
     ) -> Result<Vec<PointRecord>, StoreError> {
-        sqlx::query_as::<_, PointRecord>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, PointRecord>(
             "SELECT id, run_id, frequency_index, level_index, frequency_hz, generator_level_dbm, \
                  level_at_modulator_dbm, v_peak_volts, modulation_index, modulation_index_uncertainty, \
                  asymmetry_db, line_table_json, analysis_json, measured_at_unix_ms \
@@ -51,16 +51,16 @@ impl Store {
         .bind(run_id)
         .bind(i64::from(limit))
         .bind(i64::try_from(offset).unwrap_or(i64::MAX))
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading a page of a run's points"))
     }
 
     /// How many runs are in each state (states with none are absent), in one grouped count.
     pub async fn run_counts_by_state(&self) -> Result<Vec<(String, i64)>, StoreError> {
-        sqlx::query_as("SELECT state, COUNT(*) FROM runs GROUP BY state")
-            .fetch_all(&self.pool)
-            .await
+        on_pool!(&self.pool, pool => sqlx::query_as("SELECT state, COUNT(*) FROM runs GROUP BY state")
+            .fetch_all(pool)
+            .await)
             .map_err(StoreError::database("counting runs by state"))
     }
 
@@ -71,7 +71,7 @@ impl Store {
         &self,
         serial: &str,
     ) -> Result<CompletedRunsFingerprint, StoreError> {
-        let row: Option<(i64, i64, i64, i64)> = sqlx::query_as(
+        let row: Option<(i64, i64, i64, i64)> = on_pool!(&self.pool, pool => sqlx::query_as(
             "SELECT d.id, COUNT(r.id), COALESCE(MAX(r.id), 0), \
                  COALESCE((SELECT p.run_id FROM device_pins p WHERE p.device_id = d.id), 0) \
              FROM devices d \
@@ -80,8 +80,8 @@ impl Store {
         )
         .bind(serial)
         .bind(RunState::Completed.as_str())
-        .fetch_optional(&self.pool)
-        .await
+        .fetch_optional(pool)
+        .await)
         .map_err(StoreError::database("reading a device's completed runs"))?;
         let (device_id, completed_runs, newest_run_id, pinned_run_id) =
             row.ok_or_else(|| StoreError::NotFound {

@@ -5,7 +5,6 @@
 //! the engine add their own entries (submissions, cancels, logins) with [`Store::append_audit`].
 
 use super::{now_unix_ms, AuditEntry, Store, StoreError};
-use sqlx::{Sqlite, Transaction};
 
 impl Store {
     /// Appends an entry stamped with the current time.
@@ -16,7 +15,7 @@ impl Store {
         subject: &str,
         detail: &str,
     ) -> Result<AuditEntry, StoreError> {
-        sqlx::query_as::<_, AuditEntry>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, AuditEntry>(
             "INSERT INTO audit_log (at_unix_ms, actor, action, subject, detail) \
              VALUES ($1, $2, $3, $4, $5) \
              RETURNING id, at_unix_ms, actor, action, subject, detail",
@@ -26,8 +25,8 @@ impl Store {
         .bind(action)
         .bind(subject)
         .bind(detail)
-        .fetch_one(&self.pool)
-        .await
+        .fetch_one(pool)
+        .await)
         .map_err(StoreError::database("writing the audit log"))
     }
 
@@ -38,38 +37,37 @@ impl Store {
         limit: u32,
         before_id: Option<i64>,
     ) -> Result<Vec<AuditEntry>, StoreError> {
-        sqlx::query_as::<_, AuditEntry>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, AuditEntry>(
             "SELECT id, at_unix_ms, actor, action, subject, detail FROM audit_log \
              WHERE id < $1 ORDER BY id DESC LIMIT $2",
         )
         .bind(before_id.unwrap_or(i64::MAX))
         .bind(i64::from(limit))
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading the audit log"))
     }
 }
 
-/// Appends an audit entry inside an open transaction, so the entry and the change it records
-/// commit together.
-pub(crate) async fn audit_in(
-    tx: &mut Transaction<'_, Sqlite>,
-    at_unix_ms: i64,
-    actor: &str,
-    action: &str,
-    subject: &str,
-    detail: &str,
-) -> Result<(), StoreError> {
-    sqlx::query(
-        "INSERT INTO audit_log (at_unix_ms, actor, action, subject, detail) VALUES ($1, $2, $3, $4, $5)",
-    )
-    .bind(at_unix_ms)
-    .bind(actor)
-    .bind(action)
-    .bind(subject)
-    .bind(detail)
-    .execute(&mut **tx)
-    .await
-    .map_err(StoreError::database("writing the audit log"))?;
-    Ok(())
+/// Appends an audit entry inside an open transaction `$tx` (a `sqlx::Transaction` of either
+/// backend, inside [`on_pool!`](crate::on_pool)), so the entry and the change it records commit
+/// together. Arguments: the transaction, the time in Unix ms, actor, action, subject, detail; the
+/// value is a `Result<(), StoreError>`. A macro, not a function, so each backend's arm binds its
+/// own transaction type without generic bounds.
+macro_rules! audit_in {
+    ($tx:expr, $at_unix_ms:expr, $actor:expr, $action:expr, $subject:expr, $detail:expr $(,)?) => {
+        sqlx::query(
+            "INSERT INTO audit_log (at_unix_ms, actor, action, subject, detail) VALUES ($1, $2, $3, $4, $5)",
+        )
+        .bind($at_unix_ms)
+        .bind($actor)
+        .bind($action)
+        .bind($subject)
+        .bind($detail)
+        .execute(&mut *$tx)
+        .await
+        .map(|_| ())
+        .map_err($crate::store::StoreError::database("writing the audit log"))
+    };
 }
+pub(crate) use audit_in;

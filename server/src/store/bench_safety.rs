@@ -65,12 +65,12 @@ struct Row {
 impl Store {
     /// Every bench with a stored safety fault, by name.
     pub async fn bench_safety_faults(&self) -> Result<Vec<BenchSafetyRecord>, StoreError> {
-        let rows: Vec<Row> = sqlx::query_as(
+        let rows: Vec<Row> = on_pool!(&self.pool, pool => sqlx::query_as(
             "SELECT bench_name, state, cause, since_unix_ms, confirmed_off_at_unix_ms \
              FROM bench_safety ORDER BY bench_name",
         )
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading the benches' safety state"))?;
         rows.into_iter()
             .map(|r| {
@@ -92,8 +92,8 @@ impl Store {
     /// Records (or replaces) a bench's safety fault, with an audit entry by the daemon.
     pub async fn record_bench_fault(&self, record: &BenchSafetyRecord) -> Result<(), StoreError> {
         let now = now_unix_ms();
-        let mut tx = self
-            .pool
+        on_pool!(&self.pool, pool => {
+        let mut tx = pool
             .begin()
             .await
             .map_err(StoreError::database("starting a bench safety change"))?;
@@ -115,18 +115,17 @@ impl Store {
         .await
         .map_err(StoreError::database("recording a bench safety fault"))?;
         let detail = serde_json::json!({ "state": record.fault.as_str(), "cause": record.cause });
-        audit_in(
-            &mut tx,
+        audit_in!(tx,
             now,
             super::runs::DAEMON_ACTOR,
             "bench.safety",
             &format!("bench:{}", record.bench_name),
             &detail.to_string(),
-        )
-        .await?;
+        )?;
         tx.commit()
             .await
             .map_err(StoreError::database("committing a bench safety change"))
+        })
     }
 
     /// An operator's acknowledgement: clears a bench that waits for one, with the audit entry in
@@ -139,8 +138,8 @@ impl Store {
         note: &str,
     ) -> Result<bool, StoreError> {
         let now = now_unix_ms();
-        let mut tx = self
-            .pool
+        on_pool!(&self.pool, pool => {
+        let mut tx = pool
             .begin()
             .await
             .map_err(StoreError::database("starting an acknowledgement"))?;
@@ -154,18 +153,17 @@ impl Store {
         if cleared == 0 {
             return Ok(false);
         }
-        audit_in(
-            &mut tx,
+        audit_in!(tx,
             now,
             by,
             "bench.acknowledge",
             &format!("bench:{bench_name}"),
             note,
-        )
-        .await?;
+        )?;
         tx.commit()
             .await
             .map_err(StoreError::database("committing an acknowledgement"))?;
         Ok(true)
+        })
     }
 }

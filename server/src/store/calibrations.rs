@@ -49,8 +49,8 @@ impl Store {
         let points = checked_points(points)?;
         let now = now_unix_ms();
 
-        let mut tx = self
-            .pool
+        let header = on_pool!(&self.pool, pool => {
+        let mut tx = pool
             .begin()
             .await
             .map_err(StoreError::database("starting a calibration upload"))?;
@@ -99,18 +99,18 @@ impl Store {
             "points": points.len(),
             "sources": sources.len(),
         });
-        audit_in(
-            &mut tx,
+        audit_in!(tx,
             now,
             created_by,
             "chain_calibration.create",
             &format!("chain_calibration:{name}"),
             &detail.to_string(),
-        )
-        .await?;
+        )?;
         tx.commit()
             .await
             .map_err(StoreError::database("committing a calibration upload"))?;
+        header
+        });
 
         Ok(ChainCalibration {
             id: header.id,
@@ -125,12 +125,12 @@ impl Store {
 
     /// The calibration version with this id.
     pub async fn chain_calibration(&self, id: i64) -> Result<ChainCalibration, StoreError> {
-        let header = sqlx::query_as::<_, ChainCalibrationHeader>(
+        let header = on_pool!(&self.pool, pool => sqlx::query_as::<_, ChainCalibrationHeader>(
             "SELECT id, name, version, created_at_unix_ms, created_by FROM chain_calibrations WHERE id = $1",
         )
         .bind(id)
-        .fetch_optional(&self.pool)
-        .await
+        .fetch_optional(pool)
+        .await)
         .map_err(StoreError::database("reading a chain calibration"))?
         .ok_or_else(|| StoreError::NotFound {
             what: "chain calibration with id",
@@ -144,13 +144,13 @@ impl Store {
         &self,
         name: &str,
     ) -> Result<ChainCalibration, StoreError> {
-        let header = sqlx::query_as::<_, ChainCalibrationHeader>(
+        let header = on_pool!(&self.pool, pool => sqlx::query_as::<_, ChainCalibrationHeader>(
             "SELECT id, name, version, created_at_unix_ms, created_by FROM chain_calibrations \
              WHERE name = $1 ORDER BY version DESC LIMIT 1",
         )
         .bind(name.trim())
-        .fetch_optional(&self.pool)
-        .await
+        .fetch_optional(pool)
+        .await)
         .map_err(StoreError::database("reading a chain calibration"))?
         .ok_or_else(|| StoreError::NotFound {
             what: "chain calibration named",
@@ -165,14 +165,14 @@ impl Store {
         name: &str,
         version: i64,
     ) -> Result<ChainCalibration, StoreError> {
-        let header = sqlx::query_as::<_, ChainCalibrationHeader>(
+        let header = on_pool!(&self.pool, pool => sqlx::query_as::<_, ChainCalibrationHeader>(
             "SELECT id, name, version, created_at_unix_ms, created_by FROM chain_calibrations \
              WHERE name = $1 AND version = $2",
         )
         .bind(name.trim())
         .bind(version)
-        .fetch_optional(&self.pool)
-        .await
+        .fetch_optional(pool)
+        .await)
         .map_err(StoreError::database("reading a chain calibration"))?
         .ok_or_else(|| StoreError::NotFound {
             what: "chain calibration",
@@ -183,12 +183,12 @@ impl Store {
 
     /// Every calibration version (without points): by name, then version.
     pub async fn chain_calibrations(&self) -> Result<Vec<ChainCalibrationHeader>, StoreError> {
-        sqlx::query_as::<_, ChainCalibrationHeader>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, ChainCalibrationHeader>(
             "SELECT id, name, version, created_at_unix_ms, created_by FROM chain_calibrations \
              ORDER BY name, version",
         )
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("listing chain calibrations"))
     }
 
@@ -196,21 +196,21 @@ impl Store {
         &self,
         header: ChainCalibrationHeader,
     ) -> Result<ChainCalibration, StoreError> {
-        let points = sqlx::query_as::<_, ChainCalibrationPoint>(
+        let points = on_pool!(&self.pool, pool => sqlx::query_as::<_, ChainCalibrationPoint>(
             "SELECT frequency_hz, gain_db, gain_uncertainty_db FROM chain_calibration_points \
              WHERE chain_calibration_id = $1 ORDER BY frequency_hz",
         )
         .bind(header.id)
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading calibration points"))?;
-        let sources = sqlx::query_as::<_, ChainCalibrationSource>(
+        let sources = on_pool!(&self.pool, pool => sqlx::query_as::<_, ChainCalibrationSource>(
             "SELECT role, file_name, sha256 FROM chain_calibration_sources \
              WHERE chain_calibration_id = $1 ORDER BY position",
         )
         .bind(header.id)
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading calibration source files"))?;
         Ok(ChainCalibration {
             id: header.id,
@@ -233,12 +233,12 @@ impl Store {
             #[sqlx(flatten)]
             source: ChainCalibrationSource,
         }
-        let rows = sqlx::query_as::<_, Row>(
+        let rows = on_pool!(&self.pool, pool => sqlx::query_as::<_, Row>(
             "SELECT chain_calibration_id, role, file_name, sha256 FROM chain_calibration_sources \
              ORDER BY chain_calibration_id, position",
         )
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("listing calibration source files"))?;
         let mut by_id = std::collections::BTreeMap::<i64, Vec<ChainCalibrationSource>>::new();
         for row in rows {

@@ -9,6 +9,7 @@
 //! and is measured again whole).
 
 use super::{now_unix_ms, Store, StoreError};
+use sqlx::AssertSqlSafe;
 use halfwave_units::Db;
 use serde::{Deserialize, Serialize};
 
@@ -42,7 +43,7 @@ impl Store {
         request: &str,
         submitted_by: &str,
     ) -> Result<i64, StoreError> {
-        let id: i64 = sqlx::query_scalar(
+        let id: i64 = on_pool!(&self.pool, pool => sqlx::query_scalar(
             "INSERT INTO chain_calibration_runs \
              (name, bench_name, request, state, submitted_by, created_at_unix_ms) \
              VALUES ($1, $2, $3, 'queued', $4, $5) RETURNING id",
@@ -52,22 +53,20 @@ impl Store {
         .bind(request)
         .bind(submitted_by)
         .bind(now_unix_ms())
-        .fetch_one(&self.pool)
-        .await
+        .fetch_one(pool).await)
         .map_err(StoreError::database("storing a chain calibration run"))?;
         Ok(id)
     }
 
     /// The chain calibration run with this id.
     pub async fn chain_run(&self, id: i64) -> Result<ChainRunRecord, StoreError> {
-        sqlx::query_as::<_, ChainRunRecord>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, ChainRunRecord>(
             "SELECT id, name, bench_name, request, state, cause, submitted_by, \
              created_at_unix_ms, finished_at_unix_ms, chain_calibration_id, result \
              FROM chain_calibration_runs WHERE id = $1",
         )
         .bind(id)
-        .fetch_optional(&self.pool)
-        .await
+        .fetch_optional(pool).await)
         .map_err(StoreError::database("reading a chain calibration run"))?
         .ok_or_else(|| StoreError::NotFound {
             what: "chain calibration run",
@@ -77,10 +76,9 @@ impl Store {
 
     /// Marks a queued run as running.
     pub async fn start_chain_run(&self, id: i64) -> Result<(), StoreError> {
-        sqlx::query("UPDATE chain_calibration_runs SET state = 'running' WHERE id = $1")
+        on_pool!(&self.pool, pool => sqlx::query("UPDATE chain_calibration_runs SET state = 'running' WHERE id = $1")
             .bind(id)
-            .execute(&self.pool)
-            .await
+            .execute(pool).await.map(|_| ()))
             .map_err(StoreError::database("starting a chain calibration run"))?;
         Ok(())
     }
@@ -101,7 +99,7 @@ impl Store {
                 reason: format!("{state:?} is not an end state"),
             });
         }
-        sqlx::query(
+        on_pool!(&self.pool, pool => sqlx::query(
             "UPDATE chain_calibration_runs SET state = $2, cause = $3, chain_calibration_id = $4, \
              result = $5, finished_at_unix_ms = $6 WHERE id = $1",
         )
@@ -111,24 +109,41 @@ impl Store {
         .bind(chain_calibration_id)
         .bind(result)
         .bind(now_unix_ms())
-        .execute(&self.pool)
-        .await
+        .execute(pool).await.map(|_| ()))
         .map_err(StoreError::database("ending a chain calibration run"))?;
         Ok(())
     }
 
     /// Fails every chain calibration run a previous process left queued or running; returns
-    /// their ids.
-    pub async fn fail_unfinished_chain_runs(&self) -> Result<Vec<i64>, StoreError> {
-        let ids: Vec<i64> = sqlx::query_scalar(
+    /// their ids. `benches` limits it to those benches (a daemon on a shared database fails only
+    /// its own benches' runs: the others belong to live daemons); `None` means every bench.
+    pub async fn fail_unfinished_chain_runs_on(
+        &self,
+        benches: Option<&[String]>,
+    ) -> Result<Vec<i64>, StoreError> {
+        let mut sql = String::from(
             "UPDATE chain_calibration_runs SET state = 'failed', \
              cause = 'the daemon stopped before it finished; submit it again', \
-             finished_at_unix_ms = $1 WHERE state IN ('queued', 'running') RETURNING id",
-        )
-        .bind(now_unix_ms())
-        .fetch_all(&self.pool)
-        .await
+             finished_at_unix_ms = $1 WHERE state IN ('queued', 'running')",
+        );
+        if let Some(benches) = benches {
+            if benches.is_empty() {
+                return Ok(Vec::new());
+            }
+            let list: Vec<String> = (0..benches.len()).map(|k| format!("${}", 2 + k)).collect();
+            sql.push_str(&format!(" AND bench_name IN ({})", list.join(", ")));
+        }
+        sql.push_str(" RETURNING id");
+        let mut ids: Vec<i64> = on_pool!(&self.pool, pool => {
+            let mut query = sqlx::query_scalar::<_, i64>(AssertSqlSafe(sql.clone()))
+                .bind(now_unix_ms());
+            for bench in benches.unwrap_or_default() {
+                query = query.bind(bench.as_str());
+            }
+            query.fetch_all(pool).await
+        })
         .map_err(StoreError::database("failing unfinished chain calibration runs"))?;
+        ids.sort_unstable();
         Ok(ids)
     }
 
@@ -138,11 +153,10 @@ impl Store {
         run_id: i64,
         accuracy: Db,
     ) -> Result<(), StoreError> {
-        sqlx::query("UPDATE runs SET source_level_accuracy_db = $2 WHERE id = $1")
+        on_pool!(&self.pool, pool => sqlx::query("UPDATE runs SET source_level_accuracy_db = $2 WHERE id = $1")
             .bind(run_id)
             .bind(accuracy.value())
-            .execute(&self.pool)
-            .await
+            .execute(pool).await.map(|_| ()))
             .map_err(StoreError::database("recording the run's source level accuracy"))?;
         Ok(())
     }
@@ -150,10 +164,9 @@ impl Store {
     /// The generator level accuracy recorded with run `run_id` at submission, if any.
     pub async fn run_source_level_accuracy(&self, run_id: i64) -> Result<Option<Db>, StoreError> {
         let value: Option<Option<f64>> =
-            sqlx::query_scalar("SELECT source_level_accuracy_db FROM runs WHERE id = $1")
+            on_pool!(&self.pool, pool => sqlx::query_scalar("SELECT source_level_accuracy_db FROM runs WHERE id = $1")
                 .bind(run_id)
-                .fetch_optional(&self.pool)
-                .await
+                .fetch_optional(pool).await)
                 .map_err(StoreError::database("reading the run's source level accuracy"))?;
         match value {
             Some(v) => Ok(v.map(Db)),

@@ -29,7 +29,7 @@ impl Store {
             });
         }
         let now = now_unix_ms();
-        sqlx::query_as::<_, DeviceRecord>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, DeviceRecord>(
             "INSERT INTO devices (serial, model, rf_input_limit_dbm, wavelength_nm, created_at_unix_ms, updated_at_unix_ms) \
              VALUES ($1, $2, $3, $4, $5, $5) \
              ON CONFLICT (serial) DO UPDATE SET model = excluded.model, \
@@ -43,17 +43,17 @@ impl Store {
         .bind(limit)
         .bind(wavelength)
         .bind(now)
-        .fetch_one(&self.pool)
-        .await
+        .fetch_one(pool)
+        .await)
         .map_err(StoreError::database("saving a device"))
     }
 
     /// The device with this id.
     pub async fn device(&self, id: i64) -> Result<DeviceRecord, StoreError> {
-        sqlx::query_as::<_, DeviceRecord>("SELECT * FROM devices WHERE id = $1")
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, DeviceRecord>("SELECT * FROM devices WHERE id = $1")
             .bind(id)
-            .fetch_optional(&self.pool)
-            .await
+            .fetch_optional(pool)
+            .await)
             .map_err(StoreError::database("reading a device"))?
             .ok_or_else(|| StoreError::NotFound {
                 what: "device with id",
@@ -63,10 +63,10 @@ impl Store {
 
     /// The device with this serial number.
     pub async fn device_by_serial(&self, serial: &str) -> Result<DeviceRecord, StoreError> {
-        sqlx::query_as::<_, DeviceRecord>("SELECT * FROM devices WHERE serial = $1")
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, DeviceRecord>("SELECT * FROM devices WHERE serial = $1")
             .bind(serial)
-            .fetch_optional(&self.pool)
-            .await
+            .fetch_optional(pool)
+            .await)
             .map_err(StoreError::database("reading a device"))?
             .ok_or_else(|| StoreError::NotFound {
                 what: "device with serial",
@@ -76,9 +76,9 @@ impl Store {
 
     /// All devices, by serial number.
     pub async fn devices(&self) -> Result<Vec<DeviceRecord>, StoreError> {
-        sqlx::query_as::<_, DeviceRecord>("SELECT * FROM devices ORDER BY serial")
-            .fetch_all(&self.pool)
-            .await
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, DeviceRecord>("SELECT * FROM devices ORDER BY serial")
+            .fetch_all(pool)
+            .await)
             .map_err(StoreError::database("listing devices"))
     }
 
@@ -90,7 +90,7 @@ impl Store {
         resource: &str,
     ) -> Result<InstrumentRecord, StoreError> {
         let now = now_unix_ms();
-        sqlx::query_as::<_, InstrumentRecord>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, InstrumentRecord>(
             "INSERT INTO instruments (manufacturer, model, serial, firmware, resource, first_seen_unix_ms, last_seen_unix_ms) \
              VALUES ($1, $2, $3, $4, $5, $6, $6) \
              ON CONFLICT (manufacturer, model, serial, firmware, resource) \
@@ -103,8 +103,8 @@ impl Store {
         .bind(&identity.firmware)
         .bind(resource)
         .bind(now)
-        .fetch_one(&self.pool)
-        .await
+        .fetch_one(pool)
+        .await)
         .map_err(StoreError::database("recording an instrument"))
     }
 
@@ -118,7 +118,7 @@ impl Store {
         instrument_id: i64,
         connection_json: &str,
     ) -> Result<(), StoreError> {
-        sqlx::query(
+        on_pool!(&self.pool, pool => sqlx::query(
             "INSERT INTO run_instruments (run_id, role, instrument_id, connection) VALUES ($1, $2, $3, $4) \
              ON CONFLICT (run_id, role, instrument_id) DO UPDATE SET connection = excluded.connection",
         )
@@ -126,8 +126,8 @@ impl Store {
         .bind(role)
         .bind(instrument_id)
         .bind(connection_json)
-        .execute(&self.pool)
-        .await
+        .execute(pool)
+        .await.map(|done| done.rows_affected()))
         .map_err(StoreError::database("recording a run's instrument"))?;
         Ok(())
     }
@@ -136,15 +136,15 @@ impl Store {
     /// with the connection notes recorded for the run. Notes that do not read as JSON are
     /// returned as one note holding the stored text, so nothing stored is hidden.
     pub async fn run_instruments(&self, run_id: i64) -> Result<Vec<RunInstrument>, StoreError> {
-        let mut rows = sqlx::query_as::<_, RunInstrument>(
+        let mut rows = on_pool!(&self.pool, pool => sqlx::query_as::<_, RunInstrument>(
             "SELECT ri.role, i.manufacturer, i.model, i.serial, i.firmware, i.resource, \
                     ri.connection AS connection_json \
              FROM run_instruments ri JOIN instruments i ON i.id = ri.instrument_id \
              WHERE ri.run_id = $1 ORDER BY ri.role DESC, i.first_seen_unix_ms, i.id",
         )
         .bind(run_id)
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading a run's instruments"))?;
         for row in &mut rows {
             row.connection = serde_json::from_str(&row.connection_json).unwrap_or_else(|_| {
@@ -159,11 +159,11 @@ impl Store {
 
     /// Every instrument identity seen, most recently seen first.
     pub async fn instruments(&self) -> Result<Vec<InstrumentRecord>, StoreError> {
-        sqlx::query_as::<_, InstrumentRecord>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, InstrumentRecord>(
             "SELECT * FROM instruments ORDER BY last_seen_unix_ms DESC, id DESC",
         )
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("listing instruments"))
     }
 }

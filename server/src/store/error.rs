@@ -12,7 +12,7 @@ use super::trace_codec::TraceCodecError;
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
     /// The database file could not be opened or created.
-    #[error("could not open the database at {location}: {source}; check that the directory exists and is writable")]
+    #[error("could not open the database at {location}: {source}; for a file, check that the directory exists and is writable; for a PostgreSQL URL, check that the server is reachable, the database exists and the user may connect")]
     Open {
         location: String,
         #[source]
@@ -110,6 +110,10 @@ pub enum StoreError {
         run_id: i64,
         run_serial: String,
     },
+
+    /// A bench's lease is held by another live daemon (shared database).
+    #[error("{detail}; stop that daemon first, or remove the bench from this daemon's configuration; nothing was changed")]
+    BenchHeld { detail: String },
 
     /// An unpin on a device without a pinned run.
     #[error("device {serial} has no pinned run; nothing to unpin")]

@@ -353,7 +353,7 @@ impl Store {
     /// frequencies ascending.
     pub async fn vpi_history(&self, serial: &str) -> Result<Vec<VpiHistoryEntry>, StoreError> {
         let device = self.device_by_serial(serial).await?;
-        sqlx::query_as::<_, VpiHistoryEntry>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, VpiHistoryEntry>(
             "SELECT fr.run_id, COALESCE(r.finished_at_unix_ms, r.created_at_unix_ms) AS finished_at_unix_ms, \
                  fr.frequency_hz, fr.v_pi_volts, fr.v_pi_uncertainty_volts \
              FROM frequency_results fr JOIN runs r ON r.id = fr.run_id \
@@ -362,8 +362,8 @@ impl Store {
         )
         .bind(device.id)
         .bind(RunState::Completed.as_str())
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading a device's V_pi history"))
     }
 

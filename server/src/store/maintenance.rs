@@ -3,7 +3,7 @@
 //! holds) and the health check's ping. The CLI owns the messages; these return the database's
 //! own errors, each tagged with the step that failed.
 
-use sqlx::sqlite::{SqliteConnectOptions, SqlitePool};
+use sqlx::sqlite::SqliteConnectOptions;
 use sqlx::{ConnectOptions, Connection};
 use std::path::Path;
 
@@ -73,6 +73,6 @@ pub async fn backup_into(
 }
 
 /// One trivial query: whether the database answers.
-pub async fn ping(pool: &SqlitePool) -> Result<(), sqlx::Error> {
-    sqlx::query("SELECT 1").execute(pool).await.map(|_| ())
+pub async fn ping(pool: &super::DbPool) -> Result<(), sqlx::Error> {
+    on_pool!(pool, pool => sqlx::query("SELECT 1").execute(pool).await.map(|_| ()))
 }

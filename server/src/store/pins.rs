@@ -24,13 +24,13 @@ impl Store {
     /// The device's pinned run, if any. [`StoreError::NotFound`] when no device has this serial
     /// number.
     pub async fn device_pin(&self, serial: &str) -> Result<Option<PinRecord>, StoreError> {
-        let row = sqlx::query_as::<_, DeviceWithPin>(
+        let row = on_pool!(&self.pool, pool => sqlx::query_as::<_, DeviceWithPin>(
             "SELECT d.id AS device_id, p.run_id, p.pinned_by, p.pinned_at_unix_ms, p.note \
              FROM devices d LEFT JOIN device_pins p ON p.device_id = d.id WHERE d.serial = $1",
         )
         .bind(serial)
-        .fetch_optional(&self.pool)
-        .await
+        .fetch_optional(pool)
+        .await)
         .map_err(StoreError::database("reading a device's pinned run"))?
         .ok_or_else(|| StoreError::NotFound {
             what: "device with serial",
@@ -79,10 +79,10 @@ impl Store {
             });
         }
         let has_results: bool =
-            sqlx::query_scalar("SELECT EXISTS (SELECT 1 FROM frequency_results WHERE run_id = $1)")
+            on_pool!(&self.pool, pool => sqlx::query_scalar("SELECT EXISTS (SELECT 1 FROM frequency_results WHERE run_id = $1)")
                 .bind(run_id)
-                .fetch_one(&self.pool)
-                .await
+                .fetch_one(pool)
+                .await)
                 .map_err(StoreError::database("checking a run's V_pi results"))?;
         if !has_results {
             return Err(StoreError::NotPinnable {
@@ -94,8 +94,8 @@ impl Store {
         // The checks above read outside the transaction (a completed run never changes), so the
         // transaction opens with a write (see `create_run` for why that matters in WAL mode).
         let now = now_unix_ms();
-        let mut tx = self
-            .pool
+        let (pinned, previous_run_id) = on_pool!(&self.pool, pool => {
+        let mut tx = pool
             .begin()
             .await
             .map_err(StoreError::database("starting to pin a run"))?;
@@ -123,18 +123,18 @@ impl Store {
             "previous_run_id": previous_run_id,
             "note": note,
         });
-        audit_in(
-            &mut tx,
+        audit_in!(tx,
             now,
             by,
             "device.pin",
             &format!("device:{}", device.serial),
             &detail.to_string(),
-        )
-        .await?;
+        )?;
         tx.commit()
             .await
             .map_err(StoreError::database("committing a pin"))?;
+        (pinned, previous_run_id)
+        });
         Ok(PinChange {
             serial: device.serial,
             pinned: Some(pinned),
@@ -152,8 +152,8 @@ impl Store {
     ) -> Result<PinChange, StoreError> {
         let device = self.device_by_serial(serial).await?;
         let now = now_unix_ms();
-        let mut tx = self
-            .pool
+        let previous_run_id = on_pool!(&self.pool, pool => {
+        let mut tx = pool
             .begin()
             .await
             .map_err(StoreError::database("starting to unpin a run"))?;
@@ -170,18 +170,18 @@ impl Store {
             });
         };
         let detail = serde_json::json!({ "run_id": previous, "note": note });
-        audit_in(
-            &mut tx,
+        audit_in!(tx,
             now,
             by,
             "device.unpin",
             &format!("device:{}", device.serial),
             &detail.to_string(),
-        )
-        .await?;
+        )?;
         tx.commit()
             .await
             .map_err(StoreError::database("committing an unpin"))?;
+        previous_run_id
+        });
         Ok(PinChange {
             serial: device.serial,
             pinned: None,

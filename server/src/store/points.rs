@@ -47,7 +47,7 @@ impl Store {
         let now = now_unix_ms();
 
         // One statement, atomic by itself: the point and its trace arrive together or not at all.
-        let point_id: i64 = sqlx::query_scalar(
+        let point_id: i64 = on_pool!(&self.pool, pool => sqlx::query_scalar(
             "INSERT INTO points (run_id, frequency_index, level_index, frequency_hz, generator_level_dbm, \
                  level_at_modulator_dbm, v_peak_volts, modulation_index, modulation_index_uncertainty, \
                  asymmetry_db, line_table_json, analysis_json, measured_at_unix_ms, \
@@ -70,8 +70,8 @@ impl Store {
         .bind(point_count)
         .bind(encoded)
         .bind(i64::from(point.analyzer_sweeps))
-        .fetch_one(&self.pool)
-        .await
+        .fetch_one(pool)
+        .await)
         .map_err(|source| {
             if is_unique_violation(&source) {
                 StoreError::DuplicatePoint {
@@ -96,25 +96,25 @@ impl Store {
 
     /// The points of a run, by frequency index then level index.
     pub async fn points_of_run(&self, run_id: i64) -> Result<Vec<PointRecord>, StoreError> {
-        sqlx::query_as::<_, PointRecord>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, PointRecord>(
             "SELECT id, run_id, frequency_index, level_index, frequency_hz, generator_level_dbm, \
                  level_at_modulator_dbm, v_peak_volts, modulation_index, modulation_index_uncertainty, \
                  asymmetry_db, line_table_json, analysis_json, measured_at_unix_ms \
              FROM points WHERE run_id = $1 ORDER BY frequency_index, level_index",
         )
         .bind(run_id)
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading a run's points"))
     }
 
     /// The trace of a point, decoded.
     pub async fn point_trace(&self, point_id: i64) -> Result<Trace, StoreError> {
         let encoded: Option<Vec<u8>> =
-            sqlx::query_scalar("SELECT trace_encoded FROM points WHERE id = $1")
+            on_pool!(&self.pool, pool => sqlx::query_scalar("SELECT trace_encoded FROM points WHERE id = $1")
                 .bind(point_id)
-                .fetch_optional(&self.pool)
-                .await
+                .fetch_optional(pool)
+                .await)
                 .map_err(StoreError::database("reading a point's trace"))?
                 .ok_or_else(|| StoreError::NotFound {
                     what: "point with id",
@@ -138,7 +138,7 @@ impl Store {
     ) -> Result<(), StoreError> {
         let frequency_hz = StoreError::require_finite("reference frequency", frequency.value())?;
         let encoded = trace_codec::encode(trace)?;
-        sqlx::query(
+        on_pool!(&self.pool, pool => sqlx::query(
             "INSERT INTO reference_traces (run_id, frequency_index, frequency_hz, measured_at_unix_ms, point_count, encoded) \
              VALUES ($1, $2, $3, $4, $5, $6) \
              ON CONFLICT (run_id, frequency_index) DO UPDATE SET frequency_hz = excluded.frequency_hz, \
@@ -151,8 +151,8 @@ impl Store {
         .bind(now_unix_ms())
         .bind(trace.len() as i64)
         .bind(encoded)
-        .execute(&self.pool)
-        .await
+        .execute(pool)
+        .await.map(|done| done.rows_affected()))
         .map_err(|source| {
             if is_foreign_key_violation(&source) {
                 StoreError::NotFound {
@@ -171,13 +171,13 @@ impl Store {
 
     /// The RF-off reference traces of a run, by frequency index.
     pub async fn reference_traces(&self, run_id: i64) -> Result<Vec<ReferenceTrace>, StoreError> {
-        let rows: Vec<(i64, f64, i64, Vec<u8>)> = sqlx::query_as(
+        let rows: Vec<(i64, f64, i64, Vec<u8>)> = on_pool!(&self.pool, pool => sqlx::query_as(
             "SELECT frequency_index, frequency_hz, measured_at_unix_ms, encoded FROM reference_traces \
              WHERE run_id = $1 ORDER BY frequency_index",
         )
         .bind(run_id)
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading reference traces"))?;
         rows.into_iter()
             .map(
@@ -216,7 +216,7 @@ impl Store {
                 ),
             });
         }
-        sqlx::query_as::<_, FrequencyResultRecord>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, FrequencyResultRecord>(
             "INSERT INTO frequency_results (run_id, frequency_index, frequency_hz, v_pi_volts, \
                  v_pi_uncertainty_volts, excluded_points_json, fit_json, computed_at_unix_ms) \
              VALUES ($1, $2, $3, $4, $5, $6, $7, $8) \
@@ -235,8 +235,8 @@ impl Store {
         .bind(super::json_text(&result.excluded_points))
         .bind(super::json_text(&result.fit))
         .bind(now_unix_ms())
-        .fetch_one(&self.pool)
-        .await
+        .fetch_one(pool)
+        .await)
         .map_err(|source| {
             if is_foreign_key_violation(&source) {
                 StoreError::NotFound {
@@ -256,13 +256,13 @@ impl Store {
     /// stored before sweeps were counted add nothing; a frequency with none of them counted is
     /// left out).
     pub async fn analyzer_sweeps(&self, run_id: i64) -> Result<Vec<(u32, i64)>, StoreError> {
-        let rows: Vec<(i64, Option<i64>)> = sqlx::query_as(
-            "SELECT frequency_index, SUM(analyzer_sweeps) FROM points WHERE run_id = $1 \
+        let rows: Vec<(i64, Option<i64>)> = on_pool!(&self.pool, pool => sqlx::query_as(
+            "SELECT frequency_index, CAST(SUM(analyzer_sweeps) AS BIGINT) FROM points WHERE run_id = $1 \
              GROUP BY frequency_index ORDER BY frequency_index",
         )
         .bind(run_id)
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("counting a run's analyzer sweeps"))?;
         rows.into_iter()
             .filter_map(|(index, sweeps)| sweeps.map(|s| (index, s)))
@@ -275,14 +275,14 @@ impl Store {
         &self,
         run_id: i64,
     ) -> Result<Vec<FrequencyResultRecord>, StoreError> {
-        sqlx::query_as::<_, FrequencyResultRecord>(
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, FrequencyResultRecord>(
             "SELECT id, run_id, frequency_index, frequency_hz, v_pi_volts, v_pi_uncertainty_volts, \
                  excluded_points_json, fit_json, computed_at_unix_ms \
              FROM frequency_results WHERE run_id = $1 ORDER BY frequency_index",
         )
         .bind(run_id)
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading a run's frequency results"))
     }
 }

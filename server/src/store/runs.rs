@@ -11,7 +11,7 @@ use super::audit::audit_in;
 use super::{
     now_unix_ms, NewRun, RunDetail, RunFilter, RunPage, RunRecord, RunState, Store, StoreError,
 };
-use sqlx::{QueryBuilder, Sqlite};
+use sqlx::AssertSqlSafe;
 use std::collections::HashSet;
 
 /// The actor named in audit entries for changes the daemon makes by itself.
@@ -53,10 +53,11 @@ impl Store {
         // never deleted), so the transaction opens with a write: in WAL mode a transaction that
         // reads first and then writes fails at once with "database is locked" when another
         // connection committed in between, whatever the busy timeout.
-        let device_exists: Option<i64> = sqlx::query_scalar("SELECT id FROM devices WHERE id = $1")
+        let device_exists: Option<i64> =
+            on_pool!(&self.pool, pool => sqlx::query_scalar("SELECT id FROM devices WHERE id = $1")
             .bind(run.device_id)
-            .fetch_optional(&self.pool)
-            .await
+            .fetch_optional(pool)
+            .await)
             .map_err(StoreError::database("checking the run's device"))?;
         if device_exists.is_none() {
             return Err(StoreError::NotFound {
@@ -65,10 +66,10 @@ impl Store {
             });
         }
         let calibration_exists: Option<i64> =
-            sqlx::query_scalar("SELECT id FROM chain_calibrations WHERE id = $1")
+            on_pool!(&self.pool, pool => sqlx::query_scalar("SELECT id FROM chain_calibrations WHERE id = $1")
                 .bind(run.chain_calibration_id)
-                .fetch_optional(&self.pool)
-                .await
+                .fetch_optional(pool)
+                .await)
                 .map_err(StoreError::database("checking the run's chain calibration"))?;
         if calibration_exists.is_none() {
             return Err(StoreError::NotFound {
@@ -77,8 +78,8 @@ impl Store {
             });
         }
         let now = now_unix_ms();
-        let mut tx = self
-            .pool
+        let id = on_pool!(&self.pool, pool => {
+        let mut tx = pool
             .begin()
             .await
             .map_err(StoreError::database("starting to queue a run"))?;
@@ -102,36 +103,34 @@ impl Store {
         .fetch_one(&mut *tx)
         .await
         .map_err(StoreError::database("queueing a run"))?;
-        audit_in(
-            &mut tx,
+        audit_in!(tx,
             now,
             &run.submitted_by,
             "run.submit",
             &format!("run:{id}"),
             &serde_json::json!({ "device_id": run.device_id, "bench_name": run.bench_name })
                 .to_string(),
-        )
-        .await?;
+        )?;
         tx.commit()
             .await
             .map_err(StoreError::database("committing a queued run"))?;
+        id
+        });
         self.run(id).await
     }
 
     /// The run with this id.
     pub async fn run(&self, id: i64) -> Result<RunRecord, StoreError> {
-        let mut query = QueryBuilder::<Sqlite>::new(RUN_SELECT);
-        query.push(" WHERE r.id = ");
-        query.push_bind(id);
-        query
-            .build_query_as::<RunRecord>()
-            .fetch_optional(&self.pool)
-            .await
-            .map_err(StoreError::database("reading a run"))?
-            .ok_or_else(|| StoreError::NotFound {
-                what: "run with id",
-                key: id.to_string(),
-            })
+        let sql = format!("{RUN_SELECT} WHERE r.id = $1");
+        on_pool!(&self.pool, pool => sqlx::query_as::<_, RunRecord>(AssertSqlSafe(sql))
+            .bind(id)
+            .fetch_optional(pool)
+            .await)
+        .map_err(StoreError::database("reading a run"))?
+        .ok_or_else(|| StoreError::NotFound {
+            what: "run with id",
+            key: id.to_string(),
+        })
     }
 
     /// Records the software and analysis method versions executing run `id` as it starts or
@@ -154,15 +153,15 @@ impl Store {
         if software.is_none() && method.is_none() {
             return Ok(());
         }
-        sqlx::query(
+        on_pool!(&self.pool, pool => sqlx::query(
             "UPDATE runs SET software_version = COALESCE($1, software_version), \
              analysis_method = COALESCE($2, analysis_method) WHERE id = $3",
         )
         .bind(software)
         .bind(method)
         .bind(id)
-        .execute(&self.pool)
-        .await
+        .execute(pool)
+        .await.map(|done| done.rows_affected()))
         .map_err(StoreError::database("recording a run's software version"))?;
         Ok(())
     }
@@ -195,55 +194,69 @@ impl Store {
     ) -> Result<RunRecord, StoreError> {
         let now = now_unix_ms();
         let sources = allowed_sources(to);
-        let mut tx = self
-            .pool
-            .begin()
-            .await
-            .map_err(StoreError::database("starting a run state change"))?;
-        let mut update = QueryBuilder::<Sqlite>::new("UPDATE runs SET state = ");
-        update.push_bind(to.as_str());
-        update.push(", cause = ");
-        update.push_bind(cause);
+        // Placeholders are numbered by hand (`$N` is the one form both drivers read).
+        let mut sql = String::from("UPDATE runs SET state = $1, cause = $2, resumable = $3");
         if to == RunState::Running {
-            update.push(", started_at_unix_ms = COALESCE(started_at_unix_ms, ");
-            update.push_bind(now);
-            update.push(")");
+            sql.push_str(", started_at_unix_ms = COALESCE(started_at_unix_ms, $4)");
         }
         if to.is_final() {
-            update.push(", finished_at_unix_ms = ");
-            update.push_bind(now);
+            sql.push_str(", finished_at_unix_ms = $4");
         } else {
-            update.push(", finished_at_unix_ms = NULL");
+            sql.push_str(", finished_at_unix_ms = NULL");
         }
-        update.push(", resumable = ");
-        update.push_bind(resumable);
-        update.push(" WHERE id = ");
-        update.push_bind(id);
-        update.push(" AND (state IN (");
-        let mut list = update.separated(", ");
-        for source in sources {
-            list.push_bind(source.as_str());
+        sql.push_str(" WHERE id = $5 AND (state IN (");
+        let mut sources_sql: Vec<String> =
+            (0..sources.len()).map(|k| format!("${}", 6 + k)).collect();
+        if sources_sql.is_empty() {
+            sources_sql.push("NULL".to_string());
         }
-        if sources.is_empty() {
-            list.push("NULL");
-        }
-        update.push(")");
+        sql.push_str(&sources_sql.join(", "));
+        sql.push(')');
         if matches!(to, RunState::Running | RunState::Cancelled) {
             // A failure that left the points intact may be resumed (see `fail_run_resumably`),
             // and a resumption still queued may be cancelled.
-            update.push(" OR (state = ");
-            update.push_bind(RunState::Failed.as_str());
-            update.push(" AND resumable)");
+            sql.push_str(&format!(
+                " OR (state = '{}' AND resumable)",
+                RunState::Failed.as_str()
+            ));
         }
-        update.push(")");
+        sql.push(')');
+        let changed = on_pool!(&self.pool, pool => {
+        let mut tx = pool
+            .begin()
+            .await
+            .map_err(StoreError::database("starting a run state change"))?;
+        let mut update = sqlx::query(AssertSqlSafe(sql.clone()))
+            .bind(to.as_str())
+            .bind(cause)
+            .bind(resumable)
+            .bind(now)
+            .bind(id);
+        for source in sources {
+            update = update.bind(source.as_str());
+        }
         let changed = update
-            .build()
             .execute(&mut *tx)
             .await
             .map_err(StoreError::database("changing a run's state"))?
             .rows_affected();
+        if changed > 0 {
+            let detail =
+                serde_json::json!({ "state": to.as_str(), "cause": cause, "resumable": resumable });
+            audit_in!(tx,
+                now,
+                DAEMON_ACTOR,
+                "run.state",
+                &format!("run:{id}"),
+                &detail.to_string(),
+            )?;
+            tx.commit()
+                .await
+                .map_err(StoreError::database("committing a run state change"))?;
+        }
+        changed
+        });
         if changed == 0 {
-            drop(tx);
             let current = self.run(id).await?;
             return Err(StoreError::InvalidTransition {
                 run_id: id,
@@ -251,56 +264,63 @@ impl Store {
                 to,
             });
         }
-        let detail =
-            serde_json::json!({ "state": to.as_str(), "cause": cause, "resumable": resumable });
-        audit_in(
-            &mut tx,
-            now,
-            DAEMON_ACTOR,
-            "run.state",
-            &format!("run:{id}"),
-            &detail.to_string(),
-        )
-        .await?;
-        tx.commit()
-            .await
-            .map_err(StoreError::database("committing a run state change"))?;
         self.run(id).await
     }
 
     /// Start-up recovery: every run left `running` becomes `interrupted` (points untouched), with
     /// an audit entry each. Returns their ids, oldest first.
     pub async fn mark_running_as_interrupted(&self) -> Result<Vec<i64>, StoreError> {
+        self.mark_running_as_interrupted_on(None).await
+    }
+
+    /// [`Store::mark_running_as_interrupted`] limited to runs on the named benches when `benches`
+    /// is given: on a database shared by several daemons, each recovers only the benches it
+    /// holds the lease of (another daemon's running runs are its own).
+    pub async fn mark_running_as_interrupted_on(
+        &self,
+        benches: Option<&[String]>,
+    ) -> Result<Vec<i64>, StoreError> {
         let now = now_unix_ms();
-        let mut tx = self
-            .pool
+        let mut sql = String::from("UPDATE runs SET state = $1, cause = $2 WHERE state = $3");
+        if let Some(benches) = benches {
+            if benches.is_empty() {
+                return Ok(Vec::new());
+            }
+            let list: Vec<String> = (0..benches.len()).map(|k| format!("${}", 4 + k)).collect();
+            sql.push_str(&format!(" AND bench_name IN ({})", list.join(", ")));
+        }
+        sql.push_str(" RETURNING id");
+        let ids = on_pool!(&self.pool, pool => {
+        let mut tx = pool
             .begin()
             .await
             .map_err(StoreError::database("starting start-up recovery"))?;
-        let mut ids: Vec<i64> = sqlx::query_scalar(
-            "UPDATE runs SET state = $1, cause = $2 WHERE state = $3 RETURNING id",
-        )
-        .bind(RunState::Interrupted.as_str())
-        .bind(INTERRUPTED_CAUSE)
-        .bind(RunState::Running.as_str())
-        .fetch_all(&mut *tx)
-        .await
-        .map_err(StoreError::database("marking running runs as interrupted"))?;
+        let mut query = sqlx::query_scalar::<_, i64>(AssertSqlSafe(sql.clone()))
+            .bind(RunState::Interrupted.as_str())
+            .bind(INTERRUPTED_CAUSE)
+            .bind(RunState::Running.as_str());
+        for bench in benches.unwrap_or_default() {
+            query = query.bind(bench.as_str());
+        }
+        let mut ids: Vec<i64> = query
+            .fetch_all(&mut *tx)
+            .await
+            .map_err(StoreError::database("marking running runs as interrupted"))?;
         ids.sort_unstable();
         for id in &ids {
-            audit_in(
-                &mut tx,
+            audit_in!(tx,
                 now,
                 DAEMON_ACTOR,
                 "run.interrupted",
                 &format!("run:{id}"),
                 INTERRUPTED_CAUSE,
-            )
-            .await?;
+            )?;
         }
         tx.commit()
             .await
             .map_err(StoreError::database("committing start-up recovery"))?;
+        ids
+        });
         Ok(ids)
     }
 
@@ -311,10 +331,10 @@ impl Store {
         run_id: i64,
     ) -> Result<HashSet<(u32, u32)>, StoreError> {
         let rows: Vec<(i64, i64)> =
-            sqlx::query_as("SELECT frequency_index, level_index FROM points WHERE run_id = $1")
+            on_pool!(&self.pool, pool => sqlx::query_as("SELECT frequency_index, level_index FROM points WHERE run_id = $1")
                 .bind(run_id)
-                .fetch_all(&self.pool)
-                .await
+                .fetch_all(pool)
+                .await)
                 .map_err(StoreError::database("reading a run's stored points"))?;
         rows.into_iter()
             .map(|(f, l)| {
@@ -338,27 +358,42 @@ impl Store {
                 ),
             });
         }
-        let mut count = QueryBuilder::<Sqlite>::new(
-            "SELECT COUNT(*) FROM runs r JOIN devices d ON d.id = r.device_id",
+        let (conditions, values) = run_conditions(filter);
+        let count_sql =
+            format!("SELECT COUNT(*) FROM runs r JOIN devices d ON d.id = r.device_id{conditions}");
+        let n = values.len();
+        let select_sql = format!(
+            "{RUN_SELECT}{conditions} ORDER BY r.created_at_unix_ms DESC, r.id DESC LIMIT ${} OFFSET ${}",
+            n + 1,
+            n + 2
         );
-        push_run_conditions(&mut count, filter);
-        let total: i64 = count
-            .build_query_scalar()
-            .fetch_one(&self.pool)
-            .await
-            .map_err(StoreError::database("counting runs"))?;
-
-        let mut select = QueryBuilder::<Sqlite>::new(RUN_SELECT);
-        push_run_conditions(&mut select, filter);
-        select.push(" ORDER BY r.created_at_unix_ms DESC, r.id DESC LIMIT ");
-        select.push_bind(i64::from(filter.limit));
-        select.push(" OFFSET ");
-        select.push_bind(i64::from(filter.offset));
-        let runs = select
-            .build_query_as::<RunRecord>()
-            .fetch_all(&self.pool)
-            .await
-            .map_err(StoreError::database("listing runs"))?;
+        let (total, runs) = on_pool!(&self.pool, pool => {
+            let mut count = sqlx::query_scalar::<_, i64>(AssertSqlSafe(count_sql));
+            for value in &values {
+                count = match value {
+                    FilterValue::Int(v) => count.bind(*v),
+                    FilterValue::Text(v) => count.bind(v.clone()),
+                };
+            }
+            let total = count
+                .fetch_one(pool)
+                .await
+                .map_err(StoreError::database("counting runs"))?;
+            let mut select = sqlx::query_as::<_, RunRecord>(AssertSqlSafe(select_sql));
+            for value in &values {
+                select = match value {
+                    FilterValue::Int(v) => select.bind(*v),
+                    FilterValue::Text(v) => select.bind(v.clone()),
+                };
+            }
+            let runs = select
+                .bind(i64::from(filter.limit))
+                .bind(i64::from(filter.offset))
+                .fetch_all(pool)
+                .await
+                .map_err(StoreError::database("listing runs"))?;
+            (total, runs)
+        });
         Ok(RunPage { runs, total })
     }
 
@@ -375,27 +410,49 @@ impl Store {
     }
 }
 
-/// Appends the WHERE clause of a run filter.
-fn push_run_conditions(query: &mut QueryBuilder<Sqlite>, filter: &RunFilter) {
-    query.push(" WHERE 1 = 1");
+/// A value bound to a run filter's condition.
+enum FilterValue {
+    Int(i64),
+    Text(String),
+}
+
+/// The WHERE clause of a run filter, with `$1`, `$2`... in the order of the returned values.
+fn run_conditions(filter: &RunFilter) -> (String, Vec<FilterValue>) {
+    let mut sql = String::from(" WHERE 1 = 1");
+    let mut values = Vec::new();
+    let mut condition = |sql: &mut String, column: &str, operator: &str, value: FilterValue| {
+        values.push(value);
+        sql.push_str(&format!(" AND {column} {operator} ${}", values.len()));
+    };
     if let Some(device_id) = filter.device_id {
-        query.push(" AND r.device_id = ");
-        query.push_bind(device_id);
+        condition(&mut sql, "r.device_id", "=", FilterValue::Int(device_id));
     }
     if let Some(serial) = &filter.device_serial {
-        query.push(" AND d.serial = ");
-        query.push_bind(serial.clone());
+        condition(&mut sql, "d.serial", "=", FilterValue::Text(serial.clone()));
     }
     if let Some(state) = filter.state {
-        query.push(" AND r.state = ");
-        query.push_bind(state.as_str());
+        condition(
+            &mut sql,
+            "r.state",
+            "=",
+            FilterValue::Text(state.as_str().to_string()),
+        );
     }
     if let Some(from) = filter.created_from_unix_ms {
-        query.push(" AND r.created_at_unix_ms >= ");
-        query.push_bind(from);
+        condition(
+            &mut sql,
+            "r.created_at_unix_ms",
+            ">=",
+            FilterValue::Int(from),
+        );
     }
     if let Some(before) = filter.created_before_unix_ms {
-        query.push(" AND r.created_at_unix_ms < ");
-        query.push_bind(before);
+        condition(
+            &mut sql,
+            "r.created_at_unix_ms",
+            "<",
+            FilterValue::Int(before),
+        );
     }
+    (sql, values)
 }

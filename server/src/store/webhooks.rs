@@ -58,8 +58,8 @@ impl Store {
         deliveries: &[NewWebhookDelivery<'_>],
     ) -> Result<(), StoreError> {
         let now = now_unix_ms();
-        let mut tx = self
-            .pool
+        on_pool!(&self.pool, pool => {
+        let mut tx = pool
             .begin()
             .await
             .map_err(StoreError::database("recording webhook deliveries"))?;
@@ -67,7 +67,7 @@ impl Store {
             sqlx::query(
                 "INSERT INTO webhook_deliveries \
                  (event_id, event_type, url, body, state, attempts, next_attempt_at_unix_ms, created_at_unix_ms) \
-                 VALUES (?, ?, ?, ?, 'pending', 0, ?, ?) ON CONFLICT (event_id, url) DO NOTHING",
+                 VALUES ($1, $2, $3, $4, 'pending', 0, $5, $6) ON CONFLICT (event_id, url) DO NOTHING",
             )
             .bind(d.event_id)
             .bind(d.event_type)
@@ -82,6 +82,7 @@ impl Store {
         tx.commit()
             .await
             .map_err(StoreError::database("recording webhook deliveries"))
+        })
     }
 
     /// Pending deliveries due at `now_ms`, oldest first, at most `limit`.
@@ -90,16 +91,16 @@ impl Store {
         now_ms: i64,
         limit: i64,
     ) -> Result<Vec<WebhookDelivery>, StoreError> {
-        sqlx::query_as(concat!(
+        on_pool!(&self.pool, pool => sqlx::query_as(concat!(
             "SELECT ",
             columns!(),
-            " FROM webhook_deliveries WHERE state = 'pending' AND next_attempt_at_unix_ms <= ? \
-             ORDER BY next_attempt_at_unix_ms, id LIMIT ?"
+            " FROM webhook_deliveries WHERE state = 'pending' AND next_attempt_at_unix_ms <= $1 \
+             ORDER BY next_attempt_at_unix_ms, id LIMIT $2"
         ))
         .bind(now_ms)
         .bind(limit)
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading due webhook deliveries"))
     }
 
@@ -108,14 +109,14 @@ impl Store {
     /// are pending.
     pub async fn webhook_pending_due_now(&self) -> Result<u64, StoreError> {
         let now = now_unix_ms();
-        sqlx::query(
-            "UPDATE webhook_deliveries SET next_attempt_at_unix_ms = ? \
-             WHERE state = 'pending' AND next_attempt_at_unix_ms > ?",
+        on_pool!(&self.pool, pool => sqlx::query(
+            "UPDATE webhook_deliveries SET next_attempt_at_unix_ms = $1 \
+             WHERE state = 'pending' AND next_attempt_at_unix_ms > $2",
         )
         .bind(now)
         .bind(now)
-        .execute(&self.pool)
-        .await
+        .execute(pool)
+        .await.map(|done| done.rows_affected()))
         .map_err(StoreError::database(
             "rescheduling pending webhook deliveries",
         ))?;
@@ -124,11 +125,11 @@ impl Store {
 
     /// When the next pending delivery is due; `None` when none is pending.
     pub async fn next_webhook_due_at(&self) -> Result<Option<i64>, StoreError> {
-        sqlx::query_scalar(
+        on_pool!(&self.pool, pool => sqlx::query_scalar(
             "SELECT MIN(next_attempt_at_unix_ms) FROM webhook_deliveries WHERE state = 'pending'",
         )
-        .fetch_one(&self.pool)
-        .await
+        .fetch_one(pool)
+        .await)
         .map_err(StoreError::database(
             "reading the next webhook delivery time",
         ))
@@ -136,27 +137,27 @@ impl Store {
 
     /// Every delivery, newest first, at most `limit` (for tests and inspection).
     pub async fn webhook_deliveries(&self, limit: i64) -> Result<Vec<WebhookDelivery>, StoreError> {
-        sqlx::query_as(concat!(
+        on_pool!(&self.pool, pool => sqlx::query_as(concat!(
             "SELECT ",
             columns!(),
-            " FROM webhook_deliveries ORDER BY id DESC LIMIT ?"
+            " FROM webhook_deliveries ORDER BY id DESC LIMIT $1"
         ))
         .bind(limit)
-        .fetch_all(&self.pool)
-        .await
+        .fetch_all(pool)
+        .await)
         .map_err(StoreError::database("reading webhook deliveries"))
     }
 
     /// Marks a delivery delivered after its attempt.
     pub async fn webhook_delivered(&self, id: i64) -> Result<(), StoreError> {
-        sqlx::query(
+        on_pool!(&self.pool, pool => sqlx::query(
             "UPDATE webhook_deliveries SET state = 'delivered', attempts = attempts + 1, \
-             delivered_at_unix_ms = ?, last_error = NULL WHERE id = ?",
+             delivered_at_unix_ms = $1, last_error = NULL WHERE id = $2",
         )
         .bind(now_unix_ms())
         .bind(id)
-        .execute(&self.pool)
-        .await
+        .execute(pool)
+        .await.map(|done| done.rows_affected()))
         .map_err(StoreError::database("marking a webhook delivered"))?;
         Ok(())
     }
@@ -173,16 +174,16 @@ impl Store {
             Some(at) => ("pending", at),
             None => ("failed", now_unix_ms()),
         };
-        sqlx::query(
-            "UPDATE webhook_deliveries SET state = ?, attempts = attempts + 1, \
-             next_attempt_at_unix_ms = ?, last_error = ? WHERE id = ?",
+        on_pool!(&self.pool, pool => sqlx::query(
+            "UPDATE webhook_deliveries SET state = $1, attempts = attempts + 1, \
+             next_attempt_at_unix_ms = $2, last_error = $3 WHERE id = $4",
         )
         .bind(state)
         .bind(next)
         .bind(error)
         .bind(id)
-        .execute(&self.pool)
-        .await
+        .execute(pool)
+        .await.map(|done| done.rows_affected()))
         .map_err(StoreError::database("recording a failed webhook attempt"))?;
         Ok(())
     }
@@ -190,9 +191,9 @@ impl Store {
     /// Deliveries by state (one grouped count).
     pub async fn webhook_delivery_counts(&self) -> Result<WebhookDeliveryCounts, StoreError> {
         let rows: Vec<(String, i64)> =
-            sqlx::query_as("SELECT state, COUNT(*) FROM webhook_deliveries GROUP BY state")
-                .fetch_all(&self.pool)
-                .await
+            on_pool!(&self.pool, pool => sqlx::query_as("SELECT state, COUNT(*) FROM webhook_deliveries GROUP BY state")
+                .fetch_all(pool)
+                .await)
                 .map_err(StoreError::database("counting webhook deliveries"))?;
         let mut counts = WebhookDeliveryCounts::default();
         for (state, n) in rows {

@@ -139,3 +139,43 @@ pub fn result(
         fit: serde_json::json!({ "points_used": 4 }),
     }
 }
+
+/// A store on PostgreSQL in a database of its own (dropped with this), on the server
+/// `HALFWAVE_TEST_POSTGRES_URL` names; without it the test fails saying how to run it.
+pub struct PgStore {
+    pub store: Store,
+    pub database: halfwave::store::scratch_db::ScratchDatabase,
+}
+
+pub async fn postgres_store(label: &str) -> PgStore {
+    let database = halfwave::store::scratch_db::ScratchDatabase::create(label).await;
+    let store = Store::open(database.url())
+        .await
+        .unwrap_or_else(|e| panic!("opening the PostgreSQL test database: {e}"));
+    PgStore { store, database }
+}
+
+/// Runs each named test body (an `async fn NAME(store: Store)`) twice: on SQLite in memory
+/// (`NAME::sqlite`) and on PostgreSQL in a fresh database (`NAME::postgres`, which needs
+/// `HALFWAVE_TEST_POSTGRES_URL`: run through `.ci/with-postgres`).
+#[macro_export]
+macro_rules! on_both_backends {
+    ($($name:ident),* $(,)?) => {
+        $(
+            mod $name {
+                #[tokio::test]
+                async fn sqlite() {
+                    let store = halfwave::store::Store::open_in_memory().await.unwrap();
+                    super::$name(store).await;
+                }
+
+                #[tokio::test]
+                async fn postgres() {
+                    let pg = super::store_support::postgres_store(stringify!($name)).await;
+                    super::$name(pg.store.clone()).await;
+                    pg.store.close().await;
+                }
+            }
+        )*
+    };
+}
