@@ -722,6 +722,27 @@ struct Problem<'a> {
     centre0: f64,
     /// See [`SEGMENT_TOLERANCE_DB`]; 0 makes every point a node (the exact sum).
     segment_tolerance_db: f64,
+    /// Far from the optimum the segments are cut [`COARSE_FACTOR`] times looser (see
+    /// [`Problem::tolerance_db`]).
+    coarse: bool,
+}
+
+/// How much looser the segments' tolerance is while the fit is still far from the optimum
+/// (before its step falls under one standard uncertainty, or a step of under three is refused):
+/// fewer nodes for the first steps, whose accuracy does not reach the result (the segments are
+/// cut again at the fine tolerance near the optimum and the fit goes on from there). Only the
+/// tolerance: the lines left out at each node are those of [`LOCAL_SHARE_DROPPED`] throughout.
+const COARSE_FACTOR: f64 = 10.0;
+
+impl Problem<'_> {
+    /// The segments' tolerance in force, dB.
+    fn tolerance_db(&self) -> f64 {
+        if self.coarse {
+            COARSE_FACTOR * self.segment_tolerance_db
+        } else {
+            self.segment_tolerance_db
+        }
+    }
 }
 
 struct Evaluation {
@@ -1358,6 +1379,7 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     };
     let freq = prob.freq;
     let level = prob.level;
+    let tolerance = prob.tolerance_db();
     ws.nodes.clear();
     ws.segments.clear();
     let mut under = 0;
@@ -1385,15 +1407,19 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
                     break level_c;
                 }
                 let level_b = level_at(b);
+                let (xa, xb, xc) = (freq[a], freq[b], freq[c]);
+                let (wa, wb, wc) = (
+                    level_a / ((xa - xb) * (xa - xc)),
+                    level_b / ((xb - xa) * (xb - xc)),
+                    level_c / ((xc - xa) * (xc - xb)),
+                );
                 let quadratic = |i: usize| {
-                    let (x, xa, xb, xc) = (freq[i], freq[a], freq[b], freq[c]);
-                    level_a * (x - xb) * (x - xc) / ((xa - xb) * (xa - xc))
-                        + level_b * (x - xa) * (x - xc) / ((xb - xa) * (xb - xc))
-                        + level_c * (x - xa) * (x - xb) / ((xc - xa) * (xc - xb))
+                    let x = freq[i];
+                    wa * (x - xb) * (x - xc) + wb * (x - xa) * (x - xc) + wc * (x - xa) * (x - xb)
                 };
                 let (q1, q3) = (a + len / 4, a + (3 * len) / 4);
-                if (quadratic(q1) - level_at(q1)).abs() <= prob.segment_tolerance_db
-                    && (quadratic(q3) - level_at(q3)).abs() <= prob.segment_tolerance_db
+                if (quadratic(q1) - level_at(q1)).abs() <= tolerance
+                    && (quadratic(q3) - level_at(q3)).abs() <= tolerance
                 {
                     break level_c;
                 }
@@ -1451,14 +1477,26 @@ fn segment(
         yy: 0.0,
     };
     seg.slots[..count].copy_from_slice(slots);
+    // The Lagrange basis' denominators, once per segment (a division per node and point cost
+    // as much as the rest of the segment's sums).
+    let mut inv = [0.0; 3];
+    for j in 0..count {
+        let mut d = 1.0;
+        for k in 0..count {
+            if k != j {
+                d *= x[j] - x[k];
+            }
+        }
+        inv[j] = 1.0 / d;
+    }
     for i in first..=last {
         let f = freq[i];
         let mut l = [0.0; 3];
         for j in 0..count {
-            let mut v = 1.0;
+            let mut v = inv[j];
             for k in 0..count {
                 if k != j {
-                    v *= (f - x[k]) / (x[j] - x[k]);
+                    v *= f - x[k];
                 }
             }
             l[j] = v;
@@ -1559,22 +1597,71 @@ pub(crate) fn fit_trace_segmented(
     })
 }
 
-/// The parameters `p` moved by `delta`, kept where the model is physical.
+/// Solves `m x = b` for a step from `p` (see [`solve`]), holding every parameter that stands on
+/// a bound of [`stepped`] and whose step would push it further out: the step of the others is
+/// then the one for that parameter held, not one computed as if it moved and then cut off by
+/// the bound (which, with a pseudo-Voigt's Lorentzian width pressed against its lower limit,
+/// made the fit alternate between refused and tiny steps for tens of iterations).
+fn solve_within_bounds(
+    m: &[[f64; NP]; NP],
+    b: &[f64; NP],
+    active: &[bool; NP],
+    p: &[f64; NP],
+    shape0: &LineShape,
+) -> Option<[f64; NP]> {
+    let x = solve(m, b, active)?;
+    let mut held = *active;
+    let mut any = false;
+    for slot in 0..NP {
+        if !active[slot] || x[slot] == 0.0 {
+            continue;
+        }
+        let (lo, hi) = bounds(p, slot, shape0);
+        // On the bound up to rounding (the residual AM's bound moves with beta).
+        let margin = 1e-9 * (1.0 + p[slot].abs());
+        let pinned =
+            (x[slot] < 0.0 && p[slot] <= lo + margin) || (x[slot] > 0.0 && p[slot] >= hi - margin);
+        if pinned {
+            held[slot] = false;
+            any = true;
+        }
+    }
+    if any {
+        solve(m, b, &held)
+    } else {
+        Some(x)
+    }
+}
+
+/// The range [`stepped`] keeps parameter `slot` in, at the parameters `p`.
+fn bounds(p: &[f64; NP], slot: usize, shape0: &LineShape) -> (f64, f64) {
+    match slot {
+        BETA => (1e-6, f64::INFINITY),
+        // Residual AM weaker than the phase modulation: at small beta a depth m and an index
+        // beta give the same first sidebands as the two swapped, and only this picks the
+        // physical one.
+        ASYM => {
+            let a = p[BETA].min(0.5);
+            (-a, a)
+        }
+        ETA => (0.0, 1.0),
+        // Widths within a factor of 20 of the start: a part with little weight cannot run away
+        // (and widen every line's window with it).
+        LN_WIDTH | LN_WIDTH_L => {
+            let w = shape0.width_hz.max(1e-3).ln();
+            (w - 3.0, w + 3.0)
+        }
+        _ => (f64::NEG_INFINITY, f64::INFINITY),
+    }
+}
+
+/// The parameters `p` moved by `delta`, kept where the model is physical (see [`bounds`]).
 fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
     let mut trial: [f64; NP] = std::array::from_fn(|i| p[i] + delta[i]);
-    trial[BETA] = trial[BETA].max(1e-6);
-    // Residual AM weaker than the phase modulation: at small beta a depth m and an index
-    // beta give the same first sidebands as the two swapped, and only this picks the
-    // physical one.
-    trial[ASYM] = trial[ASYM].clamp(-trial[BETA].min(0.5), trial[BETA].min(0.5));
-    trial[ETA] = trial[ETA].clamp(0.0, 1.0);
-    // Widths within a factor of 20 of the start: a part with little weight cannot run away
-    // (and widen every line's window with it).
-    for slot in [LN_WIDTH, LN_WIDTH_L] {
-        trial[slot] = trial[slot].clamp(
-            shape0.width_hz.max(1e-3).ln() - 3.0,
-            shape0.width_hz.max(1e-3).ln() + 3.0,
-        );
+    // Beta first: the residual AM's range depends on it.
+    for slot in [BETA, ASYM, ETA, LN_WIDTH, LN_WIDTH_L] {
+        let (lo, hi) = bounds(&trial, slot, shape0);
+        trial[slot] = trial[slot].clamp(lo, hi);
     }
     trial
 }
@@ -1616,6 +1703,7 @@ fn fit_once(
         centre_scale: shape0.width_hz.max(step),
         centre0: start.carrier_hz,
         segment_tolerance_db,
+        coarse: segment_tolerance_db > 0.0,
     };
     let table = BesselTable::get();
     let strongest = (-max_order..=max_order)
@@ -1671,6 +1759,7 @@ fn fit_once(
             let before = (eval.points, eval.ssr);
             if pass == 0 && !recut_near_optimum {
                 pass = 1;
+                prob.coarse = false;
                 set_windows(&mut prob, &shape, &p, ws);
                 let after = evaluate(&prob, &shape, &p, ws, true);
                 if after.points > before.0 + before.0 / 50
@@ -1692,7 +1781,7 @@ fn fit_once(
             }
         }
         let neg: [f64; NP] = std::array::from_fn(|i| -eval.jtr[i]);
-        let Some(delta) = solve(&damped, &neg, &prob.active) else {
+        let Some(delta) = solve_within_bounds(&damped, &neg, &prob.active, &p, shape0) else {
             lambda *= 10.0;
             continue;
         };
@@ -1725,6 +1814,9 @@ fn fit_once(
             let rewindow =
                 recut || (!rewindowed && (p[BETA] - p_start_beta).abs() > 0.05 * p_start_beta);
             if rewindow {
+                if recut {
+                    prob.coarse = false;
+                }
                 set_windows(&mut prob, &shape, &p, ws);
                 rewindowed = true;
                 recut_near_optimum |= recut;
@@ -1751,7 +1843,7 @@ fn fit_once(
                 for i in 0..NP {
                     undamped[i][i] += 1e-30;
                 }
-                if let Some(next) = solve(&undamped, &neg, &prob.active) {
+                if let Some(next) = solve_within_bounds(&undamped, &neg, &prob.active, &p, shape0) {
                     let norm: f64 = (0..NP)
                         .filter(|&i| prob.active[i])
                         .map(|i| next[i] * neg[i])
@@ -1773,16 +1865,39 @@ fn fit_once(
             // would only raise the damping until it stops.
             let dof = (eval.points as f64 + prob.block_n - NP as f64).max(1.0);
             let variance = (eval.ssr / dof).max(1e-300);
+            if prob.coarse {
+                // A step of under three standard uncertainties refused on the coarse segments:
+                // their own error (up to COARSE_FACTOR times the fine tolerance) is what stops
+                // the fit here, so it goes on from here on the fine ones.
+                let mut norm = 0.0;
+                for i in 0..NP {
+                    for j in 0..NP {
+                        if prob.active[i] && prob.active[j] {
+                            norm += delta[i] * eval.jtj[i][j] * delta[j];
+                        }
+                    }
+                }
+                if norm / variance < 9.0 {
+                    prob.coarse = false;
+                    set_windows(&mut prob, &shape, &p, ws);
+                    rewindowed = true;
+                    recut_near_optimum = true;
+                    prob.active = free_parameters(&base, &p);
+                    eval = evaluate(&prob, &shape, &p, ws, true);
+                    continue;
+                }
+            }
             let mut undamped = eval.jtj;
             for i in 0..NP {
                 undamped[i][i] += 1e-30;
             }
-            let promised = solve(&undamped, &neg, &prob.active).map(|step| {
-                (0..NP)
-                    .filter(|&i| prob.active[i])
-                    .map(|i| step[i] * neg[i])
-                    .sum::<f64>()
-            });
+            let promised =
+                solve_within_bounds(&undamped, &neg, &prob.active, &p, shape0).map(|step| {
+                    (0..NP)
+                        .filter(|&i| prob.active[i])
+                        .map(|i| step[i] * neg[i])
+                        .sum::<f64>()
+                });
             lambda = match promised {
                 Some(gain) if gain / variance < 1e-3 => f64::INFINITY,
                 _ => lambda * 4.0,
