@@ -88,7 +88,18 @@ async fn run_and_queue_gauges_follow_a_run() {
             }
         }
     };
-    let during = scrape(app, &viewer).await;
+    // The gauges follow the events in their own task, which may not have read the third point's
+    // event yet on a loaded machine: scrape until they have (or the run moved on).
+    let completed_series =
+        format!("halfwave_run_points_completed{{bench=\"sim-bench\",run_id=\"{first}\"}}");
+    let mut during = String::new();
+    for _ in 0..100 {
+        during = scrape(app, &viewer).await;
+        if sample(&during, &completed_series).is_some_and(|c| c >= seen as f64) {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
     let seen_series = signatures(&during);
     let (types, names): (Vec<&str>, Vec<&str>) =
         SERIES_BEFORE.iter().partition(|s| s.starts_with('#'));
@@ -100,8 +111,6 @@ async fn run_and_queue_gauges_follow_a_run() {
             "{kind} missing: {during}"
         );
     }
-    let completed_series =
-        format!("halfwave_run_points_completed{{bench=\"sim-bench\",run_id=\"{first}\"}}");
     let total_series =
         format!("halfwave_run_points_total{{bench=\"sim-bench\",run_id=\"{first}\"}}");
     assert_eq!(
