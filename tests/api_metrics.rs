@@ -7,6 +7,7 @@ mod api_support;
 use api_support::spawn_app_with_engine;
 use halfwave::api::tokens::Role;
 use halfwave::engine::events::ProgressEvent;
+use halfwave::store::RunState;
 use std::time::Duration;
 
 /// 3 frequencies x 6 levels (0, 4, ..., 20 dBm) = 18 points.
@@ -161,13 +162,10 @@ async fn run_and_queue_gauges_follow_a_run() {
             ended.push((run_id, state));
         }
     }
-    ended.sort();
+    ended.sort_by_key(|(run_id, _)| *run_id);
     assert_eq!(
         ended,
-        vec![
-            (first, "completed".to_string()),
-            (second, "cancelled".to_string())
-        ]
+        vec![(first, RunState::Completed), (second, RunState::Cancelled)]
     );
 
     // The metrics follow the events: give the gauges' follower a moment to read the last ones.

@@ -153,3 +153,33 @@ fn event_json(event: &ProgressEvent) -> String {
         )
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::store::RunState;
+
+    #[test]
+    fn a_finished_event_keeps_its_json() {
+        // The run state is the enum in the engine and the same lowercase word on the wire as
+        // when it was a string (the dashboard, the CLI and webhook receivers read this).
+        for (state, word) in [
+            (RunState::Completed, "completed"),
+            (RunState::Failed, "failed"),
+            (RunState::Cancelled, "cancelled"),
+            (RunState::Interrupted, "interrupted"),
+        ] {
+            let event = ProgressEvent::Finished {
+                run_id: 12,
+                state,
+                cause: Some("operator".into()),
+            };
+            assert_eq!(
+                event_json(&event),
+                format!(
+                    r#"{{"event":"finished","run_id":12,"state":"{word}","cause":"operator"}}"#
+                )
+            );
+        }
+    }
+}
