@@ -52,10 +52,12 @@ async fn submit_follow_complete_history_and_v_pi() {
         .unwrap();
     assert_eq!(benches[0]["name"], "sim-bench");
 
-    // Watch the events (EventSource style: token in the query) before submitting.
+    // Watch the events (EventSource style: a one-time ticket in the query, asked for with the
+    // bearer header) before submitting.
+    let ticket = event_ticket(app, &viewer).await;
     let stream = app
         .client
-        .get(app.url(&format!("/api/v1/events?access_token={viewer}")))
+        .get(app.url(&format!("/api/v1/events?ticket={ticket}")))
         .send()
         .await
         .unwrap();
@@ -270,18 +272,82 @@ async fn roles_are_enforced_on_every_kind_of_call() {
     );
     assert_eq!(app.get("/api/v1/events", None).await.status(), 401);
     assert_eq!(
-        app.get("/api/v1/events?access_token=hwt_forged", None)
+        app.get("/api/v1/events?ticket=hwe_forged", None)
             .await
             .status(),
         401
     );
-    // The query-parameter token is accepted on the event stream only.
-    assert_eq!(
-        app.get(&format!("/api/v1/runs?access_token={viewer}"), None)
-            .await
-            .status(),
-        401
+    // A token in the URL is refused everywhere, the event stream included (proxies log URLs).
+    for path in ["/api/v1/runs", "/api/v1/events"] {
+        let response = app
+            .get(&format!("{path}?access_token={viewer}"), None)
+            .await;
+        assert_eq!(response.status(), 401, "{path}");
+    }
+}
+
+/// Asks for a one-time event-stream ticket with `token` in the Authorization header.
+async fn event_ticket(app: &api_support::TestApp, token: &str) -> String {
+    let response = app
+        .client
+        .post(app.url("/api/v1/events/ticket"))
+        .bearer_auth(token)
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(response.status(), 200);
+    let body: serde_json::Value = response.json().await.unwrap();
+    assert_eq!(body["expires_in_s"], 30);
+    body["ticket"].as_str().unwrap().to_string()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_event_ticket_opens_one_stream_once() {
+    let bench = spawn_app_with_engine(0.0).await;
+    let app = &bench.app;
+    let viewer = app.token("screen", Role::Viewer).await;
+    // Without a token no ticket.
+    let refused = app
+        .client
+        .post(app.url("/api/v1/events/ticket"))
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(refused.status(), 401);
+
+    let ticket = event_ticket(app, &viewer).await;
+    assert!(ticket.starts_with("hwe_"), "{ticket}");
+    // The ticket is not a token: it opens nothing else.
+    assert_eq!(app.get("/api/v1/runs", Some(&ticket)).await.status(), 401);
+    let url = app.url(&format!("/api/v1/events?ticket={ticket}&timeout_s=0.2"));
+    let first = app.client.get(url.clone()).send().await.unwrap();
+    assert_eq!(first.status(), 200);
+    assert!(first.headers()["content-type"]
+        .to_str()
+        .unwrap()
+        .starts_with("text/event-stream"));
+    drop(first);
+    // Spent: the same ticket again is refused, with a problem that says what to do.
+    let again = app.client.get(url).send().await.unwrap();
+    assert_eq!(again.status(), 401);
+    let problem: serde_json::Value = again.json().await.unwrap();
+    assert!(
+        problem["detail"]
+            .as_str()
+            .unwrap()
+            .contains("POST /api/v1/events/ticket"),
+        "{problem}"
     );
+    // Each ticket is its own: a second one works once too.
+    let second = event_ticket(app, &viewer).await;
+    assert_ne!(second, ticket);
+    let opened = app
+        .client
+        .get(app.url(&format!("/api/v1/events?ticket={second}&timeout_s=0.2")))
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(opened.status(), 200);
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

@@ -7,6 +7,7 @@ mod api_support;
 use api_support::spawn_app_with_engine;
 use halfwave::api::tokens::Role;
 use halfwave::engine::events::ProgressEvent;
+use halfwave::store::RunState;
 use std::time::Duration;
 
 /// 3 frequencies x 6 levels (0, 4, ..., 20 dBm) = 18 points.
@@ -88,7 +89,18 @@ async fn run_and_queue_gauges_follow_a_run() {
             }
         }
     };
-    let during = scrape(app, &viewer).await;
+    // The gauges follow the events in their own task, which may not have read the third point's
+    // event yet on a loaded machine: scrape until they have (or the run moved on).
+    let completed_series =
+        format!("halfwave_run_points_completed{{bench=\"sim-bench\",run_id=\"{first}\"}}");
+    let mut during = String::new();
+    for _ in 0..100 {
+        during = scrape(app, &viewer).await;
+        if sample(&during, &completed_series).is_some_and(|c| c >= seen as f64) {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
     let seen_series = signatures(&during);
     let (types, names): (Vec<&str>, Vec<&str>) =
         SERIES_BEFORE.iter().partition(|s| s.starts_with('#'));
@@ -100,8 +112,6 @@ async fn run_and_queue_gauges_follow_a_run() {
             "{kind} missing: {during}"
         );
     }
-    let completed_series =
-        format!("halfwave_run_points_completed{{bench=\"sim-bench\",run_id=\"{first}\"}}");
     let total_series =
         format!("halfwave_run_points_total{{bench=\"sim-bench\",run_id=\"{first}\"}}");
     assert_eq!(
@@ -152,13 +162,10 @@ async fn run_and_queue_gauges_follow_a_run() {
             ended.push((run_id, state));
         }
     }
-    ended.sort();
+    ended.sort_by_key(|(run_id, _)| *run_id);
     assert_eq!(
         ended,
-        vec![
-            (first, "completed".to_string()),
-            (second, "cancelled".to_string())
-        ]
+        vec![(first, RunState::Completed), (second, RunState::Cancelled)]
     );
 
     // The metrics follow the events: give the gauges' follower a moment to read the last ones.

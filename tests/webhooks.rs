@@ -7,6 +7,9 @@
 //!   id and body, the pauses growing as configured;
 //! - a receiver that is down while SIGTERM interrupts a run: the delivery stays pending in the
 //!   database, and the restarted daemon delivers it once the receiver is up.
+//! - a bench whose source link drops with the RF on: `bench.hold` when the output cannot be
+//!   confirmed off, `bench.hold` again when it is held for an operator, and `bench.hold_cleared`
+//!   after the acknowledgement, each signed, to a receiver that asked for bench events only.
 
 mod engine_support;
 
@@ -458,4 +461,83 @@ async fn a_run_a_killed_daemon_left_running_is_notified_as_interrupted_at_the_ne
     // Only once: a later start finds nothing running.
     tokio::time::sleep(Duration::from_secs(1)).await;
     assert_eq!(receiver.received().len(), 1);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_bench_entering_and_leaving_a_safety_hold_is_notified_signed() {
+    // Only bench events to this receiver, so run ends do not mix in.
+    let receiver = Receiver::start_on(0, 0).await;
+    let bench = Bench::new(43).await;
+    add_webhook(
+        &bench,
+        &receiver.url("/safety"),
+        "events = [\"bench.hold\", \"bench.hold_cleared\"]",
+    );
+    let token = bench.operator_token().await;
+    let _daemon = bench.serve("daemon.log").await;
+    let run_id = bench
+        .submit_plan(&token, &daemon_support::small_plan())
+        .await;
+
+    // Wait for the output to be on with a point or two measured, then cut the source's link
+    // for 3 s: the daemon cannot confirm the output off (hold 1: `output_unconfirmed`); once the
+    // link is back it switches it off and holds the bench for an operator (hold 2).
+    let deadline = Instant::now() + Duration::from_secs(60);
+    loop {
+        let run = bench.run(run_id, &token).await;
+        let measured = run["measured_points"].as_u64().unwrap_or(0);
+        if measured >= 2 && bench.server.bench().rf_output_on() {
+            break;
+        }
+        assert!(Instant::now() < deadline, "no point with RF on: {run}");
+        tokio::time::sleep(Duration::from_millis(5)).await;
+    }
+    let faults = bench.server.faults(halfwave_drivers::sim::Role::RfSource);
+    faults.link_down();
+    tokio::time::sleep(Duration::from_secs(3)).await;
+    faults.link_up();
+
+    let holds = receiver.wait_for(2, Duration::from_secs(30)).await;
+    let bodies: Vec<Value> = holds.iter().map(verified).collect();
+    assert!(
+        bodies.iter().all(|b| b["event_type"] == "bench.hold"),
+        "{bodies:?}"
+    );
+    assert_eq!(bodies[0]["state"], "output_unconfirmed", "{bodies:?}");
+    assert_eq!(bodies[1]["state"], "awaiting_acknowledgement", "{bodies:?}");
+    for b in &bodies {
+        assert_eq!(b["bench"], "sim");
+        assert!(b["run_id"].is_null(), "a bench event names no run: {b}");
+    }
+    assert!(
+        bodies[1]["summary"]
+            .as_str()
+            .unwrap()
+            .contains("an operator must acknowledge"),
+        "{bodies:?}"
+    );
+
+    // The operator acknowledges: one `bench.hold_cleared`.
+    let ack = bench
+        .post(
+            "/api/v1/benches/sim/acknowledge",
+            &token,
+            &json!({"note": "checked the source"}),
+        )
+        .await;
+    assert_eq!(ack.status(), 204);
+    let all = receiver.wait_for(3, Duration::from_secs(30)).await;
+    let cleared = verified(&all[2]);
+    assert_eq!(cleared["event_type"], "bench.hold_cleared", "{cleared}");
+    assert_eq!(cleared["bench"], "sim");
+    assert_eq!(cleared["state"], "clear");
+    // Each event its own id.
+    let mut ids: Vec<&str> = bodies
+        .iter()
+        .chain(std::iter::once(&cleared))
+        .map(|b| b["event_id"].as_str().unwrap())
+        .collect();
+    ids.sort();
+    ids.dedup();
+    assert_eq!(ids.len(), 3);
 }

@@ -1,13 +1,14 @@
 // Halfwave dashboard. Plain browser JavaScript, no libraries: the daemon serves this file itself.
 // The access token lives in sessionStorage (gone when the tab closes) and is sent as a bearer
-// header; the event stream, which EventSource cannot give headers, carries it as access_token.
+// header; the event stream, which EventSource cannot give headers, is opened with a one-time
+// ticket asked for with that header (POST /events/ticket), so the token never appears in a URL.
 // The page's content-security policy allows no inline styles: sizes are set through the DOM
 // (element.style, <progress>.value), never with style attributes in markup.
 "use strict";
 
 const API = "/api/v1";
 const TOKEN_KEY = "halfwave.token";
-const state = { events: null, liveRunId: null, spectrumPending: false, spectrumAgain: false, shownRun: null };
+const state = { events: null, eventsRetry: null, liveRunId: null, spectrumPending: false, spectrumAgain: false, shownRun: null };
 
 const $ = (id) => document.getElementById(id);
 const token = () => sessionStorage.getItem(TOKEN_KEY) || "";
@@ -520,11 +521,29 @@ async function refreshSpectrum(runId) {
   if (state.spectrumAgain) { state.spectrumAgain = false; refreshSpectrum(runId); }
 }
 
-function connectEvents() {
+// Opens the event stream with a fresh one-time ticket. A ticket opens one stream only, so when
+// the stream drops (daemon restart, network) the browser's own reconnection would be refused:
+// close it and connect again with a new ticket after a pause.
+async function connectEvents() {
   if (state.events) state.events.close();
+  state.events = null;
+  clearTimeout(state.eventsRetry);
   if (!token()) return;
-  const source = new EventSource(`${API}/events?access_token=${encodeURIComponent(token())}`);
+  let ticket;
+  try {
+    ticket = (await api("/events/ticket", { method: "POST" })).ticket;
+  } catch (e) {
+    if (e.status !== 401 && e.status !== 403) state.eventsRetry = setTimeout(connectEvents, 5000);
+    return;
+  }
+  const source = new EventSource(`${API}/events?ticket=${encodeURIComponent(ticket)}`);
   state.events = source;
+  source.onerror = () => {
+    if (state.events !== source) return;
+    source.close();
+    state.events = null;
+    state.eventsRetry = setTimeout(connectEvents, 3000);
+  };
   source.onmessage = (message) => {
     let event;
     try { event = JSON.parse(message.data); } catch (e) { return; }

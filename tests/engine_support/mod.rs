@@ -94,7 +94,7 @@ pub async fn wait_for_end(
         }) = ev
         {
             if id == run_id {
-                return (state, cause);
+                return (state.as_str().to_string(), cause);
             }
         }
     }

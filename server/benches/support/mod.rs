@@ -75,7 +75,7 @@ pub async fn run_to_completion(engine: &Engine, plan: PlanRequest) -> i64 {
             Ok(ProgressEvent::Finished {
                 run_id: id, state, ..
             }) if id == run_id => {
-                assert_eq!(state, "completed");
+                assert_eq!(state.as_str(), "completed");
                 return run_id;
             }
             Ok(_) | Err(tokio::sync::broadcast::error::RecvError::Lagged(_)) => {}

@@ -192,6 +192,14 @@ mod tests {
         // no V_pi, refused.
         let steep = [Row(1e9, 1.0, 0.1), Row(2e9, 5.0, 0.1)];
         assert!(extrapolate_vpi(&steep, Hz(0.0)).is_none());
+        // Hand-worked: 1.0 V at 1 GHz and 3.0 V at 2 GHz give 1.0 - 2.0 x 0.6 = -0.2 V at 0.4 GHz,
+        // refused; 0.8 GHz gives 0.6 V, 0.4 V past the end value (u = sqrt(0^2 + 0.4^2)); 1.5 GHz
+        // is inside the range.
+        let two = [Row(2e9, 3.0, 0.0), Row(1e9, 1.0, 0.0)];
+        assert!(extrapolate_vpi(&two, Hz(0.4e9)).is_none());
+        let (v, u, _, _) = extrapolate_vpi(&two, Hz(0.8e9)).unwrap();
+        assert!(close(v.0, 0.6) && close(u.0, 0.4), "{v:?} {u:?}");
+        assert!(extrapolate_vpi(&two, Hz(1.5e9)).is_none());
         // One measured frequency: held flat, the departure is zero.
         let (v, u, _, _) = extrapolate_vpi(&[Row(1e9, 4.0, 0.1)], Hz(3e9)).unwrap();
         assert_eq!((v.0, u.0), (4.0, 0.1));

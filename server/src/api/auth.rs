@@ -3,9 +3,10 @@
 //! A handler states the role it needs by the type of one argument: [`Viewer`], [`Operator`] or
 //! [`Admin`]. The extractor reads `Authorization: Bearer <token>`, looks the token's digest up
 //! (in [`super::token_cache`] first, then in the database, see [`super::tokens`]) and refuses
-//! with 401 when the token is missing, unknown or revoked, and with 403 when its role is too low. The events route alone also accepts the token as the
-//! `access_token` query parameter ([`ViewerFromHeaderOrQuery`]), because a browser's EventSource
-//! cannot set headers (RFC 6750 section 2.3 describes this form).
+//! with 401 when the token is missing, unknown or revoked, and with 403 when its role is too low. The events route alone also accepts a
+//! one-time `ticket` query parameter ([`ViewerFromHeaderOrTicket`], [`super::event_tickets`]),
+//! because a browser's EventSource cannot set headers; a token itself in the URL
+//! (`access_token`, RFC 6750 section 2.3) is refused, since proxies and servers log URLs.
 
 use super::problem::Problem;
 use super::tokens::{self, Role, TokenHolder};
@@ -34,12 +35,13 @@ fn bearer_from_header(parts: &Parts) -> Result<Option<String>, Problem> {
     Ok(Some(token.to_string()))
 }
 
-fn token_from_query(parts: &Parts) -> Option<String> {
+/// The value of query parameter `name` (the first, if repeated; `None` when empty).
+fn query_value(parts: &Parts, name: &str) -> Option<String> {
     let query = parts.uri.query()?;
-    query.split('&').find_map(|pair| {
-        let (key, value) = pair.split_once('=')?;
-        (key == "access_token" && !value.is_empty()).then(|| value.to_string())
-    })
+    form_urlencoded::parse(query.as_bytes())
+        .find(|(key, _)| key == name)
+        .map(|(_, value)| value.into_owned())
+        .filter(|value| !value.is_empty())
 }
 
 async fn authorize(
@@ -116,24 +118,45 @@ role_extractor!(
     Role::Admin
 );
 
-/// A reader authenticated by header or, for EventSource, by the `access_token` query parameter.
+/// A reader authenticated by header or, for EventSource, by a one-time `ticket` query parameter
+/// ([`super::event_tickets`]). A token in the URL (`access_token`) is refused: proxies log URLs.
 #[derive(Debug, Clone)]
-pub struct ViewerFromHeaderOrQuery(pub TokenHolder);
+pub struct ViewerFromHeaderOrTicket(pub TokenHolder);
 
-impl FromRequestParts<AppState> for ViewerFromHeaderOrQuery {
+impl FromRequestParts<AppState> for ViewerFromHeaderOrTicket {
     type Rejection = Problem;
 
     async fn from_request_parts(
         parts: &mut Parts,
         state: &AppState,
     ) -> Result<Self, Self::Rejection> {
-        let token = match bearer_from_header(parts)? {
-            Some(token) => Some(token),
-            None => token_from_query(parts),
-        };
-        authorize(state, token, Role::Viewer)
+        if let Some(token) = bearer_from_header(parts)? {
+            return authorize(state, Some(token), Role::Viewer)
+                .await
+                .map(ViewerFromHeaderOrTicket);
+        }
+        if let Some(ticket) = query_value(parts, "ticket") {
+            let holder = state
+                .event_tickets()
+                .redeem(&ticket, std::time::Instant::now())
+                .ok_or_else(|| {
+                    Problem::unauthorized(
+                        "the ticket is unknown, already used or expired (a ticket opens one stream within 30 s); ask `POST /api/v1/events/ticket` for a new one",
+                    )
+                })?;
+            if !holder.role.allows(Role::Viewer) {
+                return Err(Problem::forbidden("this ticket's role may not read events"));
+            }
+            return Ok(ViewerFromHeaderOrTicket(holder));
+        }
+        if query_value(parts, "access_token").is_some() {
+            return Err(Problem::unauthorized(
+                "a token in the URL is not accepted (proxies log URLs): send `Authorization: Bearer <token>`, or get a one-time ticket from `POST /api/v1/events/ticket` and pass `?ticket=`",
+            ));
+        }
+        authorize(state, None, Role::Viewer)
             .await
-            .map(ViewerFromHeaderOrQuery)
+            .map(ViewerFromHeaderOrTicket)
     }
 }
 
@@ -162,10 +185,12 @@ mod tests {
     }
 
     #[test]
-    fn query_token_is_found_among_other_parameters() {
-        let p = parts("/api/v1/events?run_id=3&access_token=hwt_x", None);
-        assert_eq!(token_from_query(&p).as_deref(), Some("hwt_x"));
-        let p = parts("/api/v1/events?run_id=3", None);
-        assert_eq!(token_from_query(&p), None);
+    fn query_values_are_found_among_other_parameters() {
+        let p = parts("/api/v1/events?run_id=3&ticket=hwe_x%2By", None);
+        // Percent-decoded as a query string (WHATWG URL, application/x-www-form-urlencoded).
+        assert_eq!(query_value(&p, "ticket").as_deref(), Some("hwe_x+y"));
+        let p = parts("/api/v1/events?run_id=3&ticket=", None);
+        assert_eq!(query_value(&p, "ticket"), None);
+        assert_eq!(query_value(&p, "access_token"), None);
     }
 }

@@ -17,6 +17,7 @@ pub mod auth;
 pub mod calibration_report;
 pub mod connections;
 pub mod engine_problems;
+pub mod event_tickets;
 pub mod json_body;
 pub mod metrics;
 pub mod openapi;
@@ -74,6 +75,8 @@ struct StateInner {
     run_gauges: Option<Arc<RunGauges>>,
     /// Tokens the database confirmed recently.
     token_cache: TokenCache,
+    /// One-time tickets for the event stream.
+    event_tickets: event_tickets::EventTickets,
     /// Read results that cannot change (final runs, device histories by fingerprint).
     read_cache: ReadCache,
     settings: ApiSettings,
@@ -108,6 +111,7 @@ impl AppState {
                 http_metrics: HttpMetrics::default(),
                 run_gauges,
                 token_cache: TokenCache::default(),
+                event_tickets: event_tickets::EventTickets::default(),
                 read_cache: ReadCache::default(),
                 settings,
                 started: std::time::Instant::now(),
@@ -144,6 +148,11 @@ impl AppState {
     /// Tells long-lived responses to end (called when the daemon stops).
     pub fn begin_shutdown(&self) {
         self.inner.shutdown.send_replace(true);
+    }
+
+    /// The event stream's one-time tickets.
+    pub fn event_tickets(&self) -> &event_tickets::EventTickets {
+        &self.inner.event_tickets
     }
 
     pub fn http_metrics(&self) -> &HttpMetrics {

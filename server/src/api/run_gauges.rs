@@ -301,7 +301,7 @@ mod tests {
         assert_eq!(gauges.points_committed(), 2);
         gauges.apply(&ProgressEvent::Finished {
             run_id: 4,
-            state: "completed".into(),
+            state: RunState::Completed,
             cause: None,
         });
         assert_eq!(gauges.progress_of(4), None);

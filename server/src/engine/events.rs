@@ -4,6 +4,7 @@
 //! server-sent events and the CLI into progress bars. A slow watcher that falls behind loses old
 //! events (broadcast semantics), never slows the run. Field names carry units.
 
+use crate::store::RunState;
 use serde::Serialize;
 
 /// One thing that happened in a run.
@@ -56,10 +57,10 @@ pub enum ProgressEvent {
         f_3db_hz: Option<f64>,
         f_6db_hz: Option<f64>,
     },
-    /// The run ended: completed, failed, cancelled or interrupted.
+    /// The run ended: completed, failed, cancelled or interrupted (the lowercase word in JSON).
     Finished {
         run_id: i64,
-        state: String,
+        state: RunState,
         cause: Option<String>,
     },
     /// A bench's RF safety state changed: `output_unconfirmed`, `awaiting_acknowledgement` or

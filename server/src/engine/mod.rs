@@ -963,7 +963,7 @@ impl Engine {
             lock(&self.inner.cancels).remove(&run_id);
             let _ = self.inner.events.send(ProgressEvent::Finished {
                 run_id,
-                state: state.as_str().into(),
+                state,
                 cause,
             });
         };

@@ -29,7 +29,7 @@ pub mod signature;
 
 use crate::engine::events::ProgressEvent;
 use crate::engine::Engine;
-use crate::store::{now_unix_ms, NewWebhookDelivery, Store, WebhookDelivery};
+use crate::store::{now_unix_ms, NewWebhookDelivery, RunState, Store, WebhookDelivery};
 use rand::rngs::OsRng;
 use rand::TryRngCore;
 use settings::Receiver;
@@ -76,7 +76,7 @@ impl Notifier {
             .iter()
             .map(|&run_id| ProgressEvent::Finished {
                 run_id,
-                state: "interrupted".into(),
+                state: RunState::Interrupted,
                 cause: Some(crate::store::runs::INTERRUPTED_CAUSE.into()),
             })
             .collect();

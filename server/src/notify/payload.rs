@@ -6,7 +6,7 @@
 
 use super::settings::EventKind;
 use crate::engine::events::ProgressEvent;
-use crate::store::RunRecord;
+use crate::store::{RunRecord, RunState};
 use serde::{Deserialize, Serialize};
 
 /// Longest cause quoted in a summary, in characters (the full cause is in `cause`).
@@ -41,12 +41,12 @@ pub struct Payload {
 /// The notification kind of an engine event; `None` for events that are not notified.
 pub fn kind_of(event: &ProgressEvent) -> Option<EventKind> {
     match event {
-        ProgressEvent::Finished { state, .. } => match state.as_str() {
-            "completed" => Some(EventKind::RunCompleted),
-            "failed" => Some(EventKind::RunFailed),
-            "interrupted" => Some(EventKind::RunInterrupted),
-            "cancelled" => Some(EventKind::RunCancelled),
-            _ => None,
+        ProgressEvent::Finished { state, .. } => match state {
+            RunState::Completed => Some(EventKind::RunCompleted),
+            RunState::Failed => Some(EventKind::RunFailed),
+            RunState::Interrupted => Some(EventKind::RunInterrupted),
+            RunState::Cancelled => Some(EventKind::RunCancelled),
+            RunState::Queued | RunState::Running => None,
         },
         ProgressEvent::BenchSafety { state, .. } if state == "clear" => {
             Some(EventKind::BenchHoldCleared)
@@ -73,7 +73,7 @@ pub fn payload(
             Some(*run_id),
             run.map(|r| r.bench_name.clone()).unwrap_or_default(),
             run.map(|r| r.device_serial.clone()),
-            state.clone(),
+            state.as_str().to_string(),
             cause.clone(),
         ),
         ProgressEvent::BenchSafety {
@@ -179,7 +179,10 @@ mod tests {
     fn finished(state: &str, cause: Option<&str>) -> ProgressEvent {
         ProgressEvent::Finished {
             run_id: 7,
-            state: state.into(),
+            state: RunState::ALL
+                .into_iter()
+                .find(|s| s.as_str() == state)
+                .expect("a run state"),
             cause: cause.map(str::to_string),
         }
     }

@@ -8,21 +8,25 @@
 //! idle stream. The stream ends when the daemon shuts down, so graceful shutdown is not held up,
 //! and after `?timeout_s=` seconds when that is given, so a script or a test tool can sample it.
 //!
-//! Authentication: the bearer header, or `?access_token=` because EventSource cannot set headers.
+//! Authentication: the bearer header, or `?ticket=` with a one-time ticket from
+//! `POST /api/v1/events/ticket` ([`crate::api::event_tickets`]), because EventSource cannot set
+//! headers and a token in the URL would be logged by proxies.
 
-use crate::api::auth::ViewerFromHeaderOrQuery;
+use crate::api::auth::{Viewer, ViewerFromHeaderOrTicket};
+use crate::api::event_tickets::TICKET_LIFETIME;
 use crate::api::params::ApiQuery;
 use crate::api::problem::{FieldProblem, Problem};
 use crate::api::AppState;
 use crate::engine::events::ProgressEvent;
 use axum::extract::State;
 use axum::response::sse::{Event, KeepAlive, Sse};
+use axum::Json;
 use futures_util::stream::Stream;
-use serde::Deserialize;
+use serde::{Deserialize, Serialize};
 use std::convert::Infallible;
 use std::time::Duration;
 use tokio::sync::broadcast::error::RecvError;
-use utoipa::IntoParams;
+use utoipa::{IntoParams, ToSchema};
 
 /// Query of the event stream.
 #[derive(Debug, Deserialize, IntoParams)]
@@ -30,8 +34,9 @@ use utoipa::IntoParams;
 pub struct EventsQuery {
     /// Only events of this run.
     pub run_id: Option<i64>,
-    /// The token, for clients that cannot send an Authorization header (EventSource).
-    pub access_token: Option<String>,
+    /// A one-time ticket from `POST /api/v1/events/ticket`, for clients that cannot send an
+    /// Authorization header (EventSource). Opens one stream within 30 s of being issued.
+    pub ticket: Option<String>,
     /// End the stream after this many seconds (up to a day); without it the stream lasts until
     /// the client leaves or the daemon stops.
     #[param(exclusive_minimum = 0, maximum = 86400)]
@@ -51,7 +56,7 @@ const STREAM_DESCRIPTION: &str = "Server-sent events (`text/event-stream`). Each
               (status = 401, body = Problem),
               (status = 503, description = "Read-only server without an engine", body = Problem)))]
 pub async fn events(
-    _caller: ViewerFromHeaderOrQuery,
+    _caller: ViewerFromHeaderOrTicket,
     State(state): State<AppState>,
     ApiQuery(query): ApiQuery<EventsQuery>,
 ) -> Result<Sse<impl Stream<Item = Result<Event, Infallible>>>, Problem> {
@@ -109,6 +114,35 @@ pub async fn events(
     Ok(Sse::new(stream).keep_alive(KeepAlive::new().interval(Duration::from_secs(15))))
 }
 
+/// A one-time ticket for the event stream.
+#[derive(Debug, Serialize, Deserialize, ToSchema)]
+pub struct EventTicket {
+    /// Pass as `GET /api/v1/events?ticket=...`; opens one stream, once.
+    pub ticket: String,
+    /// Seconds left to open the stream.
+    pub expires_in_s: u64,
+}
+
+/// A one-time ticket that opens one event stream within 30 s, with the role of the token that
+/// asked for it: for browsers, whose EventSource cannot send the Authorization header, so the
+/// token itself never appears in a URL (which proxies log).
+#[utoipa::path(post, path = "/api/v1/events/ticket", tag = "runs", security(("bearer" = [])),
+    responses((status = 200, description = "A ticket for `GET /api/v1/events?ticket=`", body = EventTicket),
+              (status = 401, body = Problem)))]
+pub async fn event_ticket(
+    caller: Viewer,
+    State(state): State<AppState>,
+) -> Result<Json<EventTicket>, Problem> {
+    let ticket = state
+        .event_tickets()
+        .issue(caller.0, std::time::Instant::now())
+        .map_err(|e| Problem::internal(e.to_string()))?;
+    Ok(Json(EventTicket {
+        ticket,
+        expires_in_s: TICKET_LIFETIME.as_secs(),
+    }))
+}
+
 fn event_json(event: &ProgressEvent) -> String {
     serde_json::to_string(event).unwrap_or_else(|e| {
         format!(
@@ -118,4 +152,34 @@ fn event_json(event: &ProgressEvent) -> String {
                 .map_or("null".to_string(), |id| id.to_string())
         )
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::store::RunState;
+
+    #[test]
+    fn a_finished_event_keeps_its_json() {
+        // The run state is the enum in the engine and the same lowercase word on the wire as
+        // when it was a string (the dashboard, the CLI and webhook receivers read this).
+        for (state, word) in [
+            (RunState::Completed, "completed"),
+            (RunState::Failed, "failed"),
+            (RunState::Cancelled, "cancelled"),
+            (RunState::Interrupted, "interrupted"),
+        ] {
+            let event = ProgressEvent::Finished {
+                run_id: 12,
+                state,
+                cause: Some("operator".into()),
+            };
+            assert_eq!(
+                event_json(&event),
+                format!(
+                    r#"{{"event":"finished","run_id":12,"state":"{word}","cause":"operator"}}"#
+                )
+            );
+        }
+    }
 }

@@ -46,6 +46,7 @@ pub fn timed_routes() -> OpenApiRouter<AppState> {
         .routes(routes!(run_control::resume_run))
         .routes(routes!(benches::list_benches))
         .routes(routes!(benches::acknowledge_bench))
+        .routes(routes!(events::event_ticket))
         .routes(routes!(runs::get_run))
         .routes(routes!(runs::run_report))
         .routes(routes!(runs::list_points))
