@@ -125,7 +125,7 @@ async fn token_management_is_for_admins_only() {
 
     // The database holds the SHA-256 digest, never the token.
     let stored: Vec<(String,)> = sqlx::query_as("SELECT token_sha256 FROM api_tokens")
-        .fetch_all(&app.pool)
+        .fetch_all(app.pool.as_sqlite().unwrap())
         .await
         .unwrap();
     assert!(stored

@@ -193,7 +193,7 @@ async fn run_and_queue_gauges_follow_a_run() {
     // The database agrees with the counter: 18 points stored for the completed run.
     let stored: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM points WHERE run_id = $1")
         .bind(first)
-        .fetch_one(&app.pool)
+        .fetch_one(app.pool.as_sqlite().unwrap())
         .await
         .unwrap();
     assert_eq!(stored, 18);

@@ -15,7 +15,7 @@ use std::net::SocketAddr;
 pub struct TestApp {
     pub address: SocketAddr,
     pub base: String,
-    pub pool: sqlx::SqlitePool,
+    pub pool: halfwave::store::DbPool,
     pub state: AppState,
     pub client: reqwest::Client,
     _dir: tempfile::TempDir,
