@@ -8,8 +8,9 @@
 //! for a database that is not a local file), by the operating system's file locking (`flock` on
 //! Linux): it ends with the process however it ends, SIGKILL included, so a crashed daemon never
 //! leaves a stale claim. The file's content (pid, host, start time, listen address) is only there
-//! to name the holder. A shared database served to several machines (PostgreSQL) needs a lease in
-//! the database instead; [`DataClaim::acquire`] is where that choice will be made.
+//! to name the holder. A shared database served to several machines (PostgreSQL) is claimed bench
+//! by bench with leases in the database instead (`crate::bench_lease`); `serve::start` makes the
+//! choice from the database URL.
 
 use crate::config::Config;
 use std::fs::{File, OpenOptions, TryLockError};
