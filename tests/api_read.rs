@@ -791,6 +791,27 @@ async fn the_budget_reads_the_chain_tables_uncertainty_and_the_benchs_stated_lev
         0.01
     );
 
+    // The accuracy recorded with the run at submission (migration 0014) wins over what the
+    // configuration says now: a later change of the configuration leaves an old budget alone.
+    store
+        .record_run_source_level_accuracy(run.run_id, Db(0.3))
+        .await
+        .unwrap();
+    let recorded: serde_json::Value = app
+        .get(
+            &format!("/api/v1/runs/{}/v-pi-budget", run.run_id),
+            Some(&viewer),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(recorded["source_level_accuracy_db"], 0.3);
+    assert_eq!(
+        recorded["source_level_accuracy_from"],
+        "bench bench-a configuration, recorded with the run at submission"
+    );
+
     // A chain table without uncertainties: the answer names the parameter to give.
     let (_, bare_chain) = seed_device(&store, "PM-0079").await;
     let bare = seed_completed_run(

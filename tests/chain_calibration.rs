@@ -24,6 +24,10 @@ const FREQUENCIES_HZ: [f64; 5] = [0.2e9, 1e9, 5e9, 10e9, 18e9];
 /// One SCPI bench "sim" with the simulator's three instruments; the sensor's profile has short
 /// timeouts so a silent sensor is found quickly.
 fn scpi_config(dir: &Path, server: &SimServer, sensor_figures: bool) -> Config {
+    scpi_config_with(dir, server, sensor_figures, "")
+}
+
+fn scpi_config_with(dir: &Path, server: &SimServer, sensor_figures: bool, extra: &str) -> Config {
     let profile = dir.join("sensor.toml");
     std::fs::write(
         &profile,
@@ -35,6 +39,7 @@ fn scpi_config(dir: &Path, server: &SimServer, sensor_figures: bool) -> Config {
     } else {
         ""
     };
+    let figures = format!("{figures}{extra}");
     let text = format!(
         "data_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\n{figures}source = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\" }}\nsensor = {{ kind = \"scpi\", resource = \"{}\", profile = \"sensor.toml\" }}\n",
         dir.join("data").display(),
@@ -347,4 +352,35 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
     assert_eq!(response.status(), 409, "a completed run cannot be cancelled");
     let document = app.get("/api/v1/openapi.json", Some(&viewer)).await.text().await.unwrap();
     assert!(document.contains("/api/v1/chain-calibration-runs/{chain_run_id}/cancel"));
+}
+
+mod engine_support;
+
+/// A measurement run records the generator level accuracy the configuration states when it is
+/// submitted; a daemon started later with another figure leaves the recorded one alone.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_run_keeps_the_source_level_accuracy_of_its_submission() {
+    let dir = tempfile::tempdir().unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let bench = SimBench::new(scenario.clone(), 35).with_time_factor(1.0);
+    let server = SimServer::start(bench, SimServerConfig::any_free_ports())
+        .await
+        .unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let chain = engine_support::upload_true_chain(&store, &scenario).await;
+    let config = scpi_config_with(dir.path(), &server, true, "source_level_accuracy_db = 0.6\n");
+    let engine = Engine::start(&config, store.clone()).await.unwrap();
+    let run_id = engine.submit(engine_support::plan(&chain), "test").await.unwrap();
+    engine.cancel(run_id, "test").await.unwrap();
+    engine.shutdown().await;
+    let recorded = store.run_source_level_accuracy(run_id).await.unwrap();
+    assert_eq!(recorded.map(|d| d.0), Some(0.6));
+    let config = scpi_config_with(dir.path(), &server, true, "source_level_accuracy_db = 0.2\n");
+    let engine = Engine::start(&config, store.clone()).await.unwrap();
+    assert_eq!(engine.source_level_accuracy("sim").map(|d| d.0), Some(0.2));
+    let recorded = store.run_source_level_accuracy(run_id).await.unwrap();
+    assert_eq!(recorded.map(|d| d.0), Some(0.6));
+    engine.shutdown().await;
 }
