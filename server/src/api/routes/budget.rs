@@ -122,6 +122,16 @@ pub async fn run_budget(
     Ok(Json(budget_for_run(&state, run_id, &query).await?))
 }
 
+/// The reason a run has no budget, for the report and the export: the problem's detail and
+/// the fields it names.
+pub fn unavailable_reason(problem: &Problem) -> String {
+    let mut reason = problem.detail.clone();
+    for field in &problem.errors {
+        reason.push_str(&format!("; {}: {}", field.field, field.message));
+    }
+    reason
+}
+
 /// The budget of a run with `query`'s overrides (already range-checked), for the route, the
 /// calibration report and the export. A 422 names the input that is not known.
 pub async fn budget_for_run(
