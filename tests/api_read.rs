@@ -866,7 +866,9 @@ async fn the_budget_reads_the_chain_tables_uncertainty_and_the_benchs_stated_lev
         .text()
         .await
         .unwrap();
-    let at = html.find("<h2>Uncertainty budget of V_pi</h2>\n<p>Not available: ").unwrap();
+    let at = html
+        .find("<h2>Uncertainty budget of V_pi</h2>\n<p>Not available: ")
+        .unwrap();
     assert!(html[at..].contains("chain_uncertainty_db"));
 }
 

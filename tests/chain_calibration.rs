@@ -129,7 +129,9 @@ async fn the_stored_chain_recovers_the_true_gain_within_its_expanded_uncertainty
     let scenario = sim.scenario();
     for point in &chain.points {
         let truth = scenario.generator_to_modulator_gain_at(point.frequency()).0;
-        let u = point.gain_uncertainty_db.expect("the sensor run states its uncertainty");
+        let u = point
+            .gain_uncertainty_db
+            .expect("the sensor run states its uncertainty");
         let error = point.gain_db - truth;
         eprintln!(
             "{:>8.2} GHz  stored {:+.4} dB  true {truth:+.4} dB  error {error:+.4} dB  U(k=2) {:.4} dB",
@@ -187,7 +189,10 @@ async fn cancel_and_a_silent_sensor_leave_the_rf_off() {
     assert_eq!(run.state, "cancelled", "cause: {:?}", run.cause);
     assert!(!sim.rf_output_on(), "RF must be off after cancel");
     assert!(run.chain_calibration_id.is_none());
-    let err = engine.cancel_chain_calibration(id, "test").await.unwrap_err();
+    let err = engine
+        .cancel_chain_calibration(id, "test")
+        .await
+        .unwrap_err();
     assert!(err.to_string().contains("cancelled"), "{err}");
 
     let id = engine
@@ -251,9 +256,16 @@ async fn requests_outside_the_limits_are_refused_naming_each_field() {
     }
     let mut req = request("no bench");
     req.bench = "elsewhere".into();
-    let err = engine.submit_chain_calibration(req, "test").await.unwrap_err();
+    let err = engine
+        .submit_chain_calibration(req, "test")
+        .await
+        .unwrap_err();
     assert!(err.to_string().contains("no bench named"), "{err}");
-    assert!(server.bench().command_log(Role::PowerSensor).iter().all(|c| !c.starts_with("MEAS")));
+    assert!(server
+        .bench()
+        .command_log(Role::PowerSensor)
+        .iter()
+        .all(|c| !c.starts_with("MEAS")));
     engine.shutdown().await;
 }
 
@@ -308,7 +320,10 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
     assert!(!engine_app.sim.rf_output_on());
     assert!(view.chain_calibration_id.is_some());
     let chain: serde_json::Value = app
-        .get("/api/v1/chain-calibrations/sim%20bench%20chain", Some(&viewer))
+        .get(
+            "/api/v1/chain-calibrations/sim%20bench%20chain",
+            Some(&viewer),
+        )
         .await
         .json()
         .await
@@ -318,7 +333,11 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
     assert_eq!(points.len(), 2);
     for p in points {
         let f = Hz(p["frequency_hz"].as_f64().unwrap());
-        let truth = engine_app.sim.scenario().generator_to_modulator_gain_at(f).0;
+        let truth = engine_app
+            .sim
+            .scenario()
+            .generator_to_modulator_gain_at(f)
+            .0;
         let u = p["gain_uncertainty_db"].as_f64().unwrap();
         assert!((p["gain_db"].as_f64().unwrap() - truth).abs() <= 2.0 * u);
     }
@@ -339,7 +358,10 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
     let problem = api_support::problem(response).await.to_string();
     assert!(problem.contains("sensor_accuracy_percent"), "{problem}");
     let response = app
-        .get(&format!("/api/v1/chain-calibration-runs/{}", view.id), Some(&viewer))
+        .get(
+            &format!("/api/v1/chain-calibration-runs/{}", view.id),
+            Some(&viewer),
+        )
         .await;
     assert_eq!(response.status(), 200);
     let response = app
@@ -349,8 +371,17 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
             &serde_json::json!({}),
         )
         .await;
-    assert_eq!(response.status(), 409, "a completed run cannot be cancelled");
-    let document = app.get("/api/v1/openapi.json", Some(&viewer)).await.text().await.unwrap();
+    assert_eq!(
+        response.status(),
+        409,
+        "a completed run cannot be cancelled"
+    );
+    let document = app
+        .get("/api/v1/openapi.json", Some(&viewer))
+        .await
+        .text()
+        .await
+        .unwrap();
     assert!(document.contains("/api/v1/chain-calibration-runs/{chain_run_id}/cancel"));
 }
 
@@ -370,14 +401,27 @@ async fn a_run_keeps_the_source_level_accuracy_of_its_submission() {
         .await
         .unwrap();
     let chain = engine_support::upload_true_chain(&store, &scenario).await;
-    let config = scpi_config_with(dir.path(), &server, true, "source_level_accuracy_db = 0.6\n");
+    let config = scpi_config_with(
+        dir.path(),
+        &server,
+        true,
+        "source_level_accuracy_db = 0.6\n",
+    );
     let engine = Engine::start(&config, store.clone()).await.unwrap();
-    let run_id = engine.submit(engine_support::plan(&chain), "test").await.unwrap();
+    let run_id = engine
+        .submit(engine_support::plan(&chain), "test")
+        .await
+        .unwrap();
     engine.cancel(run_id, "test").await.unwrap();
     engine.shutdown().await;
     let recorded = store.run_source_level_accuracy(run_id).await.unwrap();
     assert_eq!(recorded.map(|d| d.0), Some(0.6));
-    let config = scpi_config_with(dir.path(), &server, true, "source_level_accuracy_db = 0.2\n");
+    let config = scpi_config_with(
+        dir.path(),
+        &server,
+        true,
+        "source_level_accuracy_db = 0.2\n",
+    );
     let engine = Engine::start(&config, store.clone()).await.unwrap();
     assert_eq!(engine.source_level_accuracy("sim").map(|d| d.0), Some(0.2));
     let recorded = store.run_source_level_accuracy(run_id).await.unwrap();

@@ -263,7 +263,11 @@ mod tests {
     #[test]
     fn the_json_export_carries_the_budget_or_says_why_not() {
         let mut value = serde_json::json!({"summary": {}});
-        with_budget(&mut value, Err("source_level_accuracy_db: not stated".into())).unwrap();
+        with_budget(
+            &mut value,
+            Err("source_level_accuracy_db: not stated".into()),
+        )
+        .unwrap();
         assert!(value["v_pi_budget"].is_null());
         assert_eq!(
             value["v_pi_budget_unavailable"],
@@ -280,7 +284,10 @@ mod tests {
         .unwrap();
         let mut value = serde_json::json!({});
         with_budget(&mut value, Ok(budget)).unwrap();
-        assert_eq!(value["v_pi_budget"]["frequencies"][0]["expanded_uncertainty_volts"], 0.1);
+        assert_eq!(
+            value["v_pi_budget"]["frequencies"][0]["expanded_uncertainty_volts"],
+            0.1
+        );
         assert!(value.get("v_pi_budget_unavailable").is_none());
     }
 

@@ -128,7 +128,9 @@ impl Store {
         .bind(now_unix_ms())
         .fetch_all(&self.pool)
         .await
-        .map_err(StoreError::database("failing unfinished chain calibration runs"))?;
+        .map_err(StoreError::database(
+            "failing unfinished chain calibration runs",
+        ))?;
         Ok(ids)
     }
 
@@ -143,7 +145,9 @@ impl Store {
             .bind(accuracy.value())
             .execute(&self.pool)
             .await
-            .map_err(StoreError::database("recording the run's source level accuracy"))?;
+            .map_err(StoreError::database(
+                "recording the run's source level accuracy",
+            ))?;
         Ok(())
     }
 
@@ -154,7 +158,9 @@ impl Store {
                 .bind(run_id)
                 .fetch_optional(&self.pool)
                 .await
-                .map_err(StoreError::database("reading the run's source level accuracy"))?;
+                .map_err(StoreError::database(
+                    "reading the run's source level accuracy",
+                ))?;
         match value {
             Some(v) => Ok(v.map(Db)),
             None => Err(StoreError::NotFound {
