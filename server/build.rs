@@ -1,4 +1,4 @@
-//! Build script: the git commit the binary was built from, for the record every run keeps
+//! Build script: rebuilds when a migration file is added, and records the git commit the binary was built from, for the record every run keeps
 //! (`halfwave::version::software_version`). `HALFWAVE_GIT_COMMIT` in the environment wins (a
 //! packager building from a tarball sets it); otherwise `git rev-parse` is asked, and a build
 //! outside a git checkout (or without git) simply has no commit. Never fails the build.
@@ -16,6 +16,10 @@ fn git(args: &[&str]) -> Option<String> {
 }
 
 fn main() {
+    // The migration sets are embedded by `sqlx::migrate!`, which stable Rust cannot tell cargo
+    // about: a new migration file must rebuild the crate.
+    println!("cargo:rerun-if-changed=../migrations");
+    println!("cargo:rerun-if-changed=../migrations-postgres");
     println!("cargo:rerun-if-env-changed=HALFWAVE_GIT_COMMIT");
     let commit = std::env::var("HALFWAVE_GIT_COMMIT")
         .ok()

@@ -791,6 +791,47 @@ async fn the_budget_reads_the_chain_tables_uncertainty_and_the_benchs_stated_lev
         0.01
     );
 
+    // The accuracy recorded with the run at submission (migration 0014) wins over what the
+    // configuration says now: a later change of the configuration leaves an old budget alone.
+    store
+        .record_run_source_level_accuracy(run.run_id, Db(0.3))
+        .await
+        .unwrap();
+    let recorded: serde_json::Value = app
+        .get(
+            &format!("/api/v1/runs/{}/v-pi-budget", run.run_id),
+            Some(&viewer),
+        )
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(recorded["source_level_accuracy_db"], 0.3);
+    assert_eq!(
+        recorded["source_level_accuracy_from"],
+        "bench bench-a configuration, recorded with the run at submission"
+    );
+    // The calibration report carries the same budget, one table per frequency.
+    let html = app
+        .get(
+            &format!("/api/v1/runs/{}/report.html", run.run_id),
+            Some(&viewer),
+        )
+        .await
+        .text()
+        .await
+        .unwrap();
+    assert!(html.contains("<h2>Uncertainty budget of V_pi</h2>"));
+    for f in recorded["frequencies"].as_array().unwrap() {
+        let heading = format!(
+            "u<sub>c</sub> {:.4} V, U {:.4} V",
+            f["combined_standard_uncertainty_volts"].as_f64().unwrap(),
+            f["expanded_uncertainty_volts"].as_f64().unwrap()
+        );
+        assert!(html.contains(&heading), "{heading} missing");
+    }
+    assert!(html.find("Uncertainty budget").unwrap() < html.find("<h2>Caution</h2>").unwrap());
+
     // A chain table without uncertainties: the answer names the parameter to give.
     let (_, bare_chain) = seed_device(&store, "PM-0079").await;
     let bare = seed_completed_run(
@@ -815,6 +856,20 @@ async fn the_budget_reads_the_chain_tables_uncertainty_and_the_benchs_stated_lev
         text.contains("chain_uncertainty_db") && text.contains("PM-0079 chain"),
         "{text}"
     );
+    // Its report says why it has no budget, naming the same input.
+    let html = app
+        .get(
+            &format!("/api/v1/runs/{}/report.html", bare.run_id),
+            Some(&viewer),
+        )
+        .await
+        .text()
+        .await
+        .unwrap();
+    let at = html
+        .find("<h2>Uncertainty budget of V_pi</h2>\n<p>Not available: ")
+        .unwrap();
+    assert!(html[at..].contains("chain_uncertainty_db"));
 }
 
 /// Markup that must never reach a report unescaped: an element, an attribute breaking out of its

@@ -24,6 +24,10 @@ const FREQUENCIES_HZ: [f64; 5] = [0.2e9, 1e9, 5e9, 10e9, 18e9];
 /// One SCPI bench "sim" with the simulator's three instruments; the sensor's profile has short
 /// timeouts so a silent sensor is found quickly.
 fn scpi_config(dir: &Path, server: &SimServer, sensor_figures: bool) -> Config {
+    scpi_config_with(dir, server, sensor_figures, "")
+}
+
+fn scpi_config_with(dir: &Path, server: &SimServer, sensor_figures: bool, extra: &str) -> Config {
     let profile = dir.join("sensor.toml");
     std::fs::write(
         &profile,
@@ -35,6 +39,7 @@ fn scpi_config(dir: &Path, server: &SimServer, sensor_figures: bool) -> Config {
     } else {
         ""
     };
+    let figures = format!("{figures}{extra}");
     let text = format!(
         "data_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\n{figures}source = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\" }}\nsensor = {{ kind = \"scpi\", resource = \"{}\", profile = \"sensor.toml\" }}\n",
         dir.join("data").display(),
@@ -124,7 +129,9 @@ async fn the_stored_chain_recovers_the_true_gain_within_its_expanded_uncertainty
     let scenario = sim.scenario();
     for point in &chain.points {
         let truth = scenario.generator_to_modulator_gain_at(point.frequency()).0;
-        let u = point.gain_uncertainty_db.expect("the sensor run states its uncertainty");
+        let u = point
+            .gain_uncertainty_db
+            .expect("the sensor run states its uncertainty");
         let error = point.gain_db - truth;
         eprintln!(
             "{:>8.2} GHz  stored {:+.4} dB  true {truth:+.4} dB  error {error:+.4} dB  U(k=2) {:.4} dB",
@@ -182,7 +189,10 @@ async fn cancel_and_a_silent_sensor_leave_the_rf_off() {
     assert_eq!(run.state, "cancelled", "cause: {:?}", run.cause);
     assert!(!sim.rf_output_on(), "RF must be off after cancel");
     assert!(run.chain_calibration_id.is_none());
-    let err = engine.cancel_chain_calibration(id, "test").await.unwrap_err();
+    let err = engine
+        .cancel_chain_calibration(id, "test")
+        .await
+        .unwrap_err();
     assert!(err.to_string().contains("cancelled"), "{err}");
 
     let id = engine
@@ -246,9 +256,16 @@ async fn requests_outside_the_limits_are_refused_naming_each_field() {
     }
     let mut req = request("no bench");
     req.bench = "elsewhere".into();
-    let err = engine.submit_chain_calibration(req, "test").await.unwrap_err();
+    let err = engine
+        .submit_chain_calibration(req, "test")
+        .await
+        .unwrap_err();
     assert!(err.to_string().contains("no bench named"), "{err}");
-    assert!(server.bench().command_log(Role::PowerSensor).iter().all(|c| !c.starts_with("MEAS")));
+    assert!(server
+        .bench()
+        .command_log(Role::PowerSensor)
+        .iter()
+        .all(|c| !c.starts_with("MEAS")));
     engine.shutdown().await;
 }
 
@@ -303,7 +320,10 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
     assert!(!engine_app.sim.rf_output_on());
     assert!(view.chain_calibration_id.is_some());
     let chain: serde_json::Value = app
-        .get("/api/v1/chain-calibrations/sim%20bench%20chain", Some(&viewer))
+        .get(
+            "/api/v1/chain-calibrations/sim%20bench%20chain",
+            Some(&viewer),
+        )
         .await
         .json()
         .await
@@ -313,7 +333,11 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
     assert_eq!(points.len(), 2);
     for p in points {
         let f = Hz(p["frequency_hz"].as_f64().unwrap());
-        let truth = engine_app.sim.scenario().generator_to_modulator_gain_at(f).0;
+        let truth = engine_app
+            .sim
+            .scenario()
+            .generator_to_modulator_gain_at(f)
+            .0;
         let u = p["gain_uncertainty_db"].as_f64().unwrap();
         assert!((p["gain_db"].as_f64().unwrap() - truth).abs() <= 2.0 * u);
     }
@@ -334,7 +358,10 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
     let problem = api_support::problem(response).await.to_string();
     assert!(problem.contains("sensor_accuracy_percent"), "{problem}");
     let response = app
-        .get(&format!("/api/v1/chain-calibration-runs/{}", view.id), Some(&viewer))
+        .get(
+            &format!("/api/v1/chain-calibration-runs/{}", view.id),
+            Some(&viewer),
+        )
         .await;
     assert_eq!(response.status(), 200);
     let response = app
@@ -344,7 +371,60 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
             &serde_json::json!({}),
         )
         .await;
-    assert_eq!(response.status(), 409, "a completed run cannot be cancelled");
-    let document = app.get("/api/v1/openapi.json", Some(&viewer)).await.text().await.unwrap();
+    assert_eq!(
+        response.status(),
+        409,
+        "a completed run cannot be cancelled"
+    );
+    let document = app
+        .get("/api/v1/openapi.json", Some(&viewer))
+        .await
+        .text()
+        .await
+        .unwrap();
     assert!(document.contains("/api/v1/chain-calibration-runs/{chain_run_id}/cancel"));
+}
+
+mod engine_support;
+
+/// A measurement run records the generator level accuracy the configuration states when it is
+/// submitted; a daemon started later with another figure leaves the recorded one alone.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_run_keeps_the_source_level_accuracy_of_its_submission() {
+    let dir = tempfile::tempdir().unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let bench = SimBench::new(scenario.clone(), 35).with_time_factor(1.0);
+    let server = SimServer::start(bench, SimServerConfig::any_free_ports())
+        .await
+        .unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let chain = engine_support::upload_true_chain(&store, &scenario).await;
+    let config = scpi_config_with(
+        dir.path(),
+        &server,
+        true,
+        "source_level_accuracy_db = 0.6\n",
+    );
+    let engine = Engine::start(&config, store.clone()).await.unwrap();
+    let run_id = engine
+        .submit(engine_support::plan(&chain), "test")
+        .await
+        .unwrap();
+    engine.cancel(run_id, "test").await.unwrap();
+    engine.shutdown().await;
+    let recorded = store.run_source_level_accuracy(run_id).await.unwrap();
+    assert_eq!(recorded.map(|d| d.0), Some(0.6));
+    let config = scpi_config_with(
+        dir.path(),
+        &server,
+        true,
+        "source_level_accuracy_db = 0.2\n",
+    );
+    let engine = Engine::start(&config, store.clone()).await.unwrap();
+    assert_eq!(engine.source_level_accuracy("sim").map(|d| d.0), Some(0.2));
+    let recorded = store.run_source_level_accuracy(run_id).await.unwrap();
+    assert_eq!(recorded.map(|d| d.0), Some(0.6));
+    engine.shutdown().await;
 }

@@ -25,8 +25,8 @@ pub mod transport;
 
 pub use generic::{ScpiPowerSensor, ScpiRfSource, ScpiSpectrumAnalyzer};
 pub use instrument::{
-    AnalyzerCapabilities, AnalyzerSettings, ConnectionNote, Identity, InstrumentError,
-    PowerSensor, RfSource, SensorLimits, SourceLimits, SpectrumAnalyzer,
+    AnalyzerCapabilities, AnalyzerSettings, ConnectionNote, Identity, InstrumentError, PowerSensor,
+    RfSource, SensorLimits, SourceLimits, SpectrumAnalyzer,
 };
 pub use profile::{AnalyzerProfile, SensorProfile, SourceProfile};
 pub use resource::Resource;

@@ -112,7 +112,10 @@ async fn the_sensor_driver_survives_the_fault_drills() {
     // A garbled reply: the step is repeated on a new connection and the reading is good.
     faults.garble_replies(1);
     let reading = sensor.measure().await.unwrap();
-    assert!((reading.0 - (-5.0 + bench.scenario().generator_to_modulator_gain_at(Hz(2e9)).0)).abs() < 0.1);
+    assert!(
+        (reading.0 - (-5.0 + bench.scenario().generator_to_modulator_gain_at(Hz(2e9)).0)).abs()
+            < 0.1
+    );
     // The link dropped mid-conversation: reconnected, repeated.
     faults.drop_after_commands(0);
     assert!(sensor.measure().await.is_ok());
@@ -135,7 +138,10 @@ async fn scripted_sensor(readings: Vec<&str>, frequency_replies: Vec<&str>) -> S
     let listener = TcpListener::bind("127.0.0.1:0").await.unwrap();
     let addr = listener.local_addr().unwrap();
     let readings = Arc::new(Mutex::new(
-        readings.into_iter().map(String::from).collect::<VecDeque<_>>(),
+        readings
+            .into_iter()
+            .map(String::from)
+            .collect::<VecDeque<_>>(),
     ));
     let frequencies = Arc::new(Mutex::new(
         frequency_replies
@@ -163,7 +169,11 @@ async fn scripted_sensor(readings: Vec<&str>, frequency_replies: Vec<&str>) -> S
                         None
                     };
                     if let Some(reply) = reply {
-                        if write.write_all(format!("{reply}\n").as_bytes()).await.is_err() {
+                        if write
+                            .write_all(format!("{reply}\n").as_bytes())
+                            .await
+                            .is_err()
+                        {
                             return;
                         }
                     }
@@ -189,11 +199,11 @@ async fn bad_replies_give_errors_that_say_what_is_wrong() {
     let err = sensor.set_frequency(Hz(3e9)).await.unwrap_err();
     assert!(matches!(err, InstrumentError::ReadBack { .. }), "{err}");
     let cases = [
-        "not a number",              // abc
-        "no valid reading",          // 9.91E37
-        "over range",                // 9.9E37
-        "no power sensor reports",   // 1E6 dBm
-        "over its range",            // 25 dBm > +20 dBm
+        "not a number",            // abc
+        "no valid reading",        // 9.91E37
+        "over range",              // 9.9E37
+        "no power sensor reports", // 1E6 dBm
+        "over its range",          // 25 dBm > +20 dBm
     ];
     for expected in cases {
         let err = sensor.measure().await.unwrap_err().to_string();

@@ -187,7 +187,8 @@ async fn both_migration_sets_give_the_same_schema() {
     pg.store.close().await;
 
     // The comparison is only worth something if the catalogue reads found the schema.
-    assert_eq!(sqlite_schema.migrations, (1..=13).collect::<Vec<i64>>());
+    assert_eq!(sqlite_schema.migrations, (1..=14).collect::<Vec<i64>>());
+    assert!(sqlite_schema.tables.contains_key("chain_calibration_runs"));
     assert!(sqlite_schema.tables.contains_key("bench_leases"));
     assert!(sqlite_schema.tables["points"].columns.len() >= 16);
     assert_eq!(sqlite_schema.tables["devices"].primary_key, vec!["id"]);

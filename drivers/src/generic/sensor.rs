@@ -33,12 +33,11 @@ pub async fn connect_sensor(
     resource: &str,
     profile: Option<&std::path::Path>,
 ) -> Result<Box<dyn PowerSensor>, InstrumentError> {
-    let profile = SensorProfile::from_optional_file(profile).map_err(|e| {
-        InstrumentError::BadProfile {
+    let profile =
+        SensorProfile::from_optional_file(profile).map_err(|e| InstrumentError::BadProfile {
             resource: resource.to_string(),
             reason: e.to_string(),
-        }
-    })?;
+        })?;
     Ok(Box::new(ScpiPowerSensor::connect(resource, profile).await?))
 }
 

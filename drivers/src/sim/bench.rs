@@ -5,8 +5,8 @@
 //! instruments in-process or over TCP.
 
 use super::in_process::{SimAnalyzer, SimRfSource};
-use super::sensor::SimPowerSensor;
 use super::scenario::Scenario;
+use super::sensor::SimPowerSensor;
 use super::state::{BenchState, OverdriveEvent};
 use crate::sim::scpi_parser::ScpiError;
 use halfwave_units::{Dbm, Hz, Volts};

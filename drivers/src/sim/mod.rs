@@ -36,7 +36,7 @@ pub mod state;
 pub use bench::{Role, SimBench};
 pub use faults::FaultHandle;
 pub use in_process::{SimAnalyzer, SimRfSource};
-pub use sensor::SimPowerSensor;
 pub use scenario::{Scenario, ScenarioError};
+pub use sensor::SimPowerSensor;
 pub use server::{SimServer, SimServerConfig};
 pub use state::OverdriveEvent;

@@ -143,7 +143,11 @@ pub static SENSOR_COMMANDS: LazyLock<CommandTree<SensorCommand>> = LazyLock::new
                 S::Configure,
                 Forms::SetAndQuery,
             ),
-            ("MEASure[:SCALar][:POWer][:AC]", S::Measure, Forms::QueryOnly),
+            (
+                "MEASure[:SCALar][:POWer][:AC]",
+                S::Measure,
+                Forms::QueryOnly,
+            ),
             (
                 "[SENSe:]FREQuency[:CW|:FIXed]",
                 S::Frequency,

@@ -134,8 +134,7 @@ impl PowerSensorSpec {
                 "must be above 0 and below power_sensor.max_frequency_hz",
             ));
         }
-        if self.min_power_dbm >= self.max_power_dbm || self.damage_level_dbm < self.max_power_dbm
-        {
+        if self.min_power_dbm >= self.max_power_dbm || self.damage_level_dbm < self.max_power_dbm {
             return Err(invalid(
                 "power_sensor.max_power_dbm",
                 self.max_power_dbm,
@@ -159,14 +158,21 @@ impl PowerSensorSpec {
             ));
         }
         for (field, value) in [
-            ("power_sensor.reflection_magnitude", self.reflection_magnitude),
+            (
+                "power_sensor.reflection_magnitude",
+                self.reflection_magnitude,
+            ),
             (
                 "power_sensor.source_reflection_magnitude",
                 self.source_reflection_magnitude,
             ),
         ] {
             if !(value.is_finite() && (0.0..1.0).contains(&value)) {
-                return Err(invalid(field, value, "must be from 0 up to (not including) 1"));
+                return Err(invalid(
+                    field,
+                    value,
+                    "must be from 0 up to (not including) 1",
+                ));
             }
         }
         let table = &self.calibration_factor_percent;
@@ -290,8 +296,8 @@ impl BenchState {
             None => 0.0,
         };
         let gain_noise: f64 = self.rng.sample::<f64, _>(StandardNormal) * spec.reading_noise_db;
-        let floor_noise: f64 = self.rng.sample::<f64, _>(StandardNormal)
-            * Dbm(spec.noise_floor_dbm).to_milliwatts();
+        let floor_noise: f64 =
+            self.rng.sample::<f64, _>(StandardNormal) * Dbm(spec.noise_floor_dbm).to_milliwatts();
         let reading_mw = signal_mw * 10f64.powf(gain_noise / 10.0) + floor_noise;
         // A meter shows a reading under its noise as its floor, never a negative power.
         let floor = Dbm(spec.noise_floor_dbm).to_milliwatts();

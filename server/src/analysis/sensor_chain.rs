@@ -74,7 +74,10 @@ pub enum GainError {
 /// (20 log10(1 + |Gs||Gl|), 20 log10(1 - |Gs||Gl|)).
 pub fn mismatch_limits_db(source: f64, load: f64) -> (f64, f64) {
     let product = source * load;
-    (20.0 * (1.0 + product).log10(), 20.0 * (1.0 - product).log10())
+    (
+        20.0 * (1.0 + product).log10(),
+        20.0 * (1.0 - product).log10(),
+    )
 }
 
 /// The gain and its uncertainty from the readings at one frequency (see the module docs).
@@ -86,8 +89,7 @@ pub fn gain_from_readings(
     if n < 2 {
         return Err(GainError::TooFewReadings(n));
     }
-    if !(figures.accuracy_percent.is_finite() && (0.0..=50.0).contains(&figures.accuracy_percent))
-    {
+    if !(figures.accuracy_percent.is_finite() && (0.0..=50.0).contains(&figures.accuracy_percent)) {
         return Err(GainError::BadFigure(
             "sensor_accuracy_percent",
             format!("{} is not from 0 to 50", figures.accuracy_percent),
@@ -207,9 +209,12 @@ mod tests {
             ..figures
         };
         let err = gain_from_readings(&[reading(0.0, -1.0), reading(0.0, -1.0)], bad).unwrap_err();
-        assert!(err.to_string().contains("source_reflection_coefficient"), "{err}");
-        let err = gain_from_readings(&[reading(0.0, f64::NAN), reading(0.0, -1.0)], figures)
-            .unwrap_err();
+        assert!(
+            err.to_string().contains("source_reflection_coefficient"),
+            "{err}"
+        );
+        let err =
+            gain_from_readings(&[reading(0.0, f64::NAN), reading(0.0, -1.0)], figures).unwrap_err();
         assert_eq!(err, GainError::NotFinite);
     }
 }

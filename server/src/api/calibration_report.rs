@@ -12,6 +12,7 @@
 //! numbers and run ids. Pure: no I/O, the caller passes the time it was made.
 
 use super::plots::{self, VpiCurve, VpiPoint};
+use crate::api::views::budget::RunBudgetView;
 use crate::api::views::runs::{ExcludedPointView, RunView};
 use crate::calendar::utc_time;
 use std::fmt::Write as _;
@@ -322,6 +323,68 @@ pub fn report_html(run: &RunView, generated_at_unix_ms: i64) -> String {
         e(&utc_time(generated_at_unix_ms)),
         e(&crate::version::software_version())
     );
+    html
+}
+
+/// The report with V_pi's uncertainty budget (`GET /runs/{id}/v-pi-budget` with no overrides)
+/// before the cautions, or, when the budget's inputs are not known, a line saying which.
+pub fn report_html_with_budget(
+    run: &RunView,
+    budget: Result<&RunBudgetView, &str>,
+    generated_at_unix_ms: i64,
+) -> String {
+    let html = report_html(run, generated_at_unix_ms);
+    let section = budget_section(budget);
+    match html.find("<h2>Caution</h2>") {
+        Some(at) => format!("{}{section}{}", &html[..at], &html[at..]),
+        None => html + &section,
+    }
+}
+
+/// The budget tables, one per frequency (GUM, JCGM 100:2008), every string escaped.
+pub fn budget_section(budget: Result<&RunBudgetView, &str>) -> String {
+    let e = escape_html;
+    let mut html = String::from("<h2>Uncertainty budget of V_pi</h2>\n");
+    let budget = match budget {
+        Ok(b) => b,
+        Err(reason) => {
+            let _ = writeln!(html, "<p>Not available: {}</p>", e(reason));
+            return html;
+        }
+    };
+    let _ = writeln!(
+        html,
+        "<p>GUM (JCGM 100:2008): inputs combined in quadrature, expanded with k = {}. Drive chain from {}; generator level accuracy &plusmn;{} dB from {} (rectangular).</p>",
+        budget.frequencies.first().map_or(2.0, |f| f.coverage_factor),
+        e(&budget.chain_uncertainty_from),
+        budget.source_level_accuracy_db,
+        e(&budget.source_level_accuracy_from)
+    );
+    for f in &budget.frequencies {
+        let _ = writeln!(
+            html,
+            "<h3>{:.6} GHz: V_pi {:.4} V, u<sub>c</sub> {:.4} V, U {:.4} V</h3>",
+            f.frequency_hz / 1e9,
+            f.v_pi_volts,
+            f.combined_standard_uncertainty_volts,
+            f.expanded_uncertainty_volts
+        );
+        html.push_str("<table>\n<tr><th>Quantity</th><th>Type</th><th>Distribution</th><th>Standard uncertainty</th><th>Sensitivity (V per unit)</th><th>Contribution (V)</th></tr>\n");
+        for r in &f.rows {
+            let _ = writeln!(
+                html,
+                "<tr><td>{}</td><td>{}</td><td>{}</td><td class=\"num\">{:.4} {}</td><td class=\"num\">{:.4}</td><td class=\"num\">{:.4}</td></tr>",
+                e(&r.quantity),
+                e(&r.evaluation),
+                e(&r.distribution),
+                r.standard_uncertainty,
+                e(&r.unit),
+                r.sensitivity_volts_per_unit,
+                r.contribution_volts
+            );
+        }
+        html.push_str("</table>\n");
+    }
     html
 }
 

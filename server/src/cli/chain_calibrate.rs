@@ -23,7 +23,13 @@ pub struct CalibrateArgs {
     pub frequencies_hz: Vec<f64>,
     /// One or two generator levels in dBm, comma-separated (write `--levels-dbm=-10,0` when
     /// the first is negative).
-    #[arg(long, value_delimiter = ',', required = true, value_name = "DBM", allow_negative_numbers = true)]
+    #[arg(
+        long,
+        value_delimiter = ',',
+        required = true,
+        value_name = "DBM",
+        allow_negative_numbers = true
+    )]
     pub levels_dbm: Vec<f64>,
     /// Readings per frequency and level (2 to 100).
     #[arg(long, default_value_t = 5)]

@@ -4,12 +4,14 @@
 //! so a spreadsheet or a plotting script needs no join; every column name carries its unit
 //! (`frequency_hz`, `generator_level_dbm`, `v_peak_volts`, `v_pi_volts`), as the API's JSON
 //! fields do. JSON is the run (plan, state, per-frequency results) with all its points, as the
-//! API serves them. Points are read page by page, so a run of any size exports.
+//! API serves them, and V_pi's uncertainty budget (`v_pi_budget`, as `GET /runs/{id}/v-pi-budget`
+//! answers; null with `v_pi_budget_unavailable` when its inputs are not known). Points are read page by page, so a run of any size exports.
 
 use super::client::ClientArgs;
 use super::output_file::OutputArgs;
 use super::runs::{runtime, to_json};
 use super::CliError;
+use crate::api::views::budget::RunBudgetView;
 use crate::api::views::runs::{PointList, PointView, RunView};
 use clap::{Args, ValueEnum};
 
@@ -121,12 +123,36 @@ pub fn points_csv(run: &RunView, points: &[PointView]) -> String {
     crate::csv_table::write_rows(std::iter::once(header).chain(rows))
 }
 
+/// Adds V_pi's uncertainty budget to an exported run: `v_pi_budget` (the API's table per
+/// frequency) or null with `v_pi_budget_unavailable` saying why.
+pub fn with_budget(
+    value: &mut serde_json::Value,
+    budget: Result<RunBudgetView, String>,
+) -> Result<(), CliError> {
+    match budget {
+        Ok(b) => {
+            value["v_pi_budget"] = serde_json::to_value(&b)
+                .map_err(|e| CliError::new(format!("cannot encode the budget: {e}")))?;
+        }
+        Err(reason) => {
+            value["v_pi_budget"] = serde_json::Value::Null;
+            value["v_pi_budget_unavailable"] = serde_json::Value::String(reason);
+        }
+    }
+    Ok(())
+}
+
 /// `halfwave export`.
 pub fn run(args: ExportArgs) -> Result<(), CliError> {
     let client = args.client.client()?;
     let run_id = args.run_id;
-    let (run, points) = runtime()?.block_on(async {
+    let (run, points, budget) = runtime()?.block_on(async {
         let run: RunView = client.get_json(&format!("/api/v1/runs/{run_id}")).await?;
+        // The budget needs its inputs stored or configured; without them the export says why.
+        let budget: Result<RunBudgetView, String> = client
+            .get_json(&format!("/api/v1/runs/{run_id}/v-pi-budget"))
+            .await
+            .map_err(|e| e.to_string());
         let mut points: Vec<PointView> = Vec::new();
         for page in 1.. {
             let list: PointList = client
@@ -140,7 +166,7 @@ pub fn run(args: ExportArgs) -> Result<(), CliError> {
                 break;
             }
         }
-        Ok::<_, CliError>((run, points))
+        Ok::<_, CliError>((run, points, budget))
     })?;
     let text = match args.format {
         ExportFormat::Csv => points_csv(&run, &points),
@@ -149,6 +175,7 @@ pub fn run(args: ExportArgs) -> Result<(), CliError> {
                 .map_err(|e| CliError::caused("cannot encode the run", e))?;
             value["points"] = serde_json::to_value(&points)
                 .map_err(|e| CliError::caused("cannot encode the points", e))?;
+            with_budget(&mut value, budget)?;
             to_json(&value)? + "\n"
         }
     };
@@ -231,6 +258,37 @@ mod tests {
                 planned_max_at_modulator_dbm: Some(20.0),
             },
         }
+    }
+
+    #[test]
+    fn the_json_export_carries_the_budget_or_says_why_not() {
+        let mut value = serde_json::json!({"summary": {}});
+        with_budget(
+            &mut value,
+            Err("source_level_accuracy_db: not stated".into()),
+        )
+        .unwrap();
+        assert!(value["v_pi_budget"].is_null());
+        assert_eq!(
+            value["v_pi_budget_unavailable"],
+            "source_level_accuracy_db: not stated"
+        );
+        let budget: RunBudgetView = serde_json::from_value(serde_json::json!({
+            "run_id": 7, "chain_uncertainty_from": "query", "source_level_accuracy_db": 0.5,
+            "source_level_accuracy_from": "query", "frequencies": [{
+                "frequency_index": 0, "frequency_hz": 2e9, "v_pi_volts": 3.7, "rows": [],
+                "combined_standard_uncertainty_volts": 0.05, "coverage_factor": 2.0,
+                "expanded_uncertainty_volts": 0.1
+            }]
+        }))
+        .unwrap();
+        let mut value = serde_json::json!({});
+        with_budget(&mut value, Ok(budget)).unwrap();
+        assert_eq!(
+            value["v_pi_budget"]["frequencies"][0]["expanded_uncertainty_volts"],
+            0.1
+        );
+        assert!(value.get("v_pi_budget_unavailable").is_none());
     }
 
     #[test]

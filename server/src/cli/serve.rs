@@ -73,6 +73,8 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
     let address = listener
         .local_addr()
         .map_err(|e| CliError::caused("cannot read the bound address", e))?;
+    // Before the announcement: a supervisor may send SIGTERM as soon as it reads it.
+    let stop_signals = crate::shutdown::StopSignals::install();
     tracing::info!(%address, "halfwave daemon listening");
     outln!("halfwave listening on http://{address}/ (dashboard: http://{address}/dashboard/)");
     if let Some(hint) = token_hint(engine.store(), config_path.as_deref()).await {
@@ -83,7 +85,7 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
     let lost = claim.lost();
     let stopped = crate::api::serve_on(listener, state, async move {
         tokio::select! {
-            name = crate::shutdown::signal() => tracing::info!(
+            name = stop_signals.wait() => tracing::info!(
                 signal = name,
                 "shutting down: stopping runs and switching RF off"
             ),

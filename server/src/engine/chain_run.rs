@@ -104,7 +104,10 @@ impl ChainCalibrationRequest {
             })
         };
         if self.name.trim().is_empty() || self.name.len() > 200 {
-            bad("name", "give the chain a name of 1 to 200 characters, e.g. \"bench-2 amplifier A\"".into());
+            bad(
+                "name",
+                "give the chain a name of 1 to 200 characters, e.g. \"bench-2 amplifier A\"".into(),
+            );
         }
         let f = &self.frequencies_hz;
         let (low_f, high_f) = (
@@ -112,9 +115,15 @@ impl ChainCalibrationRequest {
             ctx.source.max_frequency.min_of(ctx.sensor.max_frequency),
         );
         if f.is_empty() || f.len() > MAX_FREQUENCIES {
-            bad("frequencies_hz", format!("give 1 to {MAX_FREQUENCIES} frequencies, got {}", f.len()));
+            bad(
+                "frequencies_hz",
+                format!("give 1 to {MAX_FREQUENCIES} frequencies, got {}", f.len()),
+            );
         } else if f.iter().any(|v| !v.is_finite()) || f.windows(2).any(|w| w[1] <= w[0]) {
-            bad("frequencies_hz", "frequencies must be finite and strictly ascending".into());
+            bad(
+                "frequencies_hz",
+                "frequencies must be finite and strictly ascending".into(),
+            );
         } else if let Some(v) = f.iter().find(|v| **v < low_f.0 || **v > high_f.0) {
             bad(
                 "frequencies_hz",
@@ -129,9 +138,17 @@ impl ChainCalibrationRequest {
         let mut levels = self.levels_dbm.clone();
         levels.sort_by(f64::total_cmp);
         if levels.is_empty() || levels.len() > 2 {
-            bad("levels_dbm", format!("give one or two levels, got {}", levels.len()));
-        } else if levels.iter().any(|l| !l.is_finite()) || levels.windows(2).any(|w| w[1] - w[0] < 0.01) {
-            bad("levels_dbm", "levels must be finite and at least 0.01 dB apart".into());
+            bad(
+                "levels_dbm",
+                format!("give one or two levels, got {}", levels.len()),
+            );
+        } else if levels.iter().any(|l| !l.is_finite())
+            || levels.windows(2).any(|w| w[1] - w[0] < 0.01)
+        {
+            bad(
+                "levels_dbm",
+                "levels must be finite and at least 0.01 dB apart".into(),
+            );
         } else if let Some(l) = levels
             .iter()
             .find(|l| **l < ctx.source.min_level.0 || **l > ctx.source.max_level.0)
@@ -145,11 +162,17 @@ impl ChainCalibrationRequest {
             );
         }
         if !(2..=100).contains(&self.readings_per_level) {
-            bad("readings_per_level", format!("must be 2 to 100, got {}", self.readings_per_level));
+            bad(
+                "readings_per_level",
+                format!("must be 2 to 100, got {}", self.readings_per_level),
+            );
         }
         let gain = self.max_expected_gain_db;
         if !(gain.is_finite() && (-100.0..=60.0).contains(&gain)) {
-            bad("max_expected_gain_db", format!("must be a gain in dB from -100 to 60, got {gain}"));
+            bad(
+                "max_expected_gain_db",
+                format!("must be a gain in dB from -100 to 60, got {gain}"),
+            );
         } else if let Some(highest) = levels.last().filter(|l| l.is_finite()) {
             let at_sensor = highest + gain;
             let ceiling = ctx.sensor.max_power.0.min(ctx.hard_limit.0);
@@ -176,7 +199,10 @@ impl ChainCalibrationRequest {
         }
         let source_reflection = self.source_reflection_coefficient;
         if !(source_reflection.is_finite() && (0.0..=0.99).contains(&source_reflection)) {
-            bad("source_reflection_coefficient", format!("must be |Gamma| from 0 to 0.99, got {source_reflection}"));
+            bad(
+                "source_reflection_coefficient",
+                format!("must be |Gamma| from 0 to 0.99, got {source_reflection}"),
+            );
         }
         let accuracy = self.sensor_accuracy_percent.or(ctx.bench_accuracy_percent);
         match accuracy {
@@ -184,7 +210,9 @@ impl ChainCalibrationRequest {
             Some(a) if !(a.is_finite() && (0.0..=50.0).contains(&a)) => bad("sensor_accuracy_percent", format!("must be 0 to 50 percent, got {a}")),
             Some(_) => {}
         }
-        let reflection = self.sensor_reflection_coefficient.or(ctx.bench_sensor_reflection);
+        let reflection = self
+            .sensor_reflection_coefficient
+            .or(ctx.bench_sensor_reflection);
         match reflection {
             None => bad("sensor_reflection_coefficient", format!("bench {:?} states no sensor_reflection_coefficient; give the sensor's |Gamma| from its data sheet (VSWR s gives (s - 1) / (s + 1))", self.bench)),
             Some(r) if !(r.is_finite() && (0.0..=0.99).contains(&r)) => bad("sensor_reflection_coefficient", format!("must be |Gamma| from 0 to 0.99, got {r}")),
@@ -327,7 +355,12 @@ impl Engine {
             .await?;
         self.inner
             .store
-            .append_audit(submitted_by, "chain_run.submit", &format!("chain_run:{id}"), &text)
+            .append_audit(
+                submitted_by,
+                "chain_run.submit",
+                &format!("chain_run:{id}"),
+                &text,
+            )
             .await?;
         tracing::info!(chain_run = id, bench = %request.bench, name = %request.name, "chain calibration queued");
         let slot = self.inner.benches.get(&request.bench).cloned();
@@ -378,16 +411,31 @@ impl Engine {
                 tracing::error!(chain_run = job.id, error = %e, "could not record the end of the chain calibration");
             }
             lock(&self.inner.chain_cancels).remove(&job.id);
-            tracing::info!(chain_run = job.id, state, cause = cause.as_deref().unwrap_or(""), "chain calibration ended");
+            tracing::info!(
+                chain_run = job.id,
+                state,
+                cause = cause.as_deref().unwrap_or(""),
+                "chain calibration ended"
+            );
         };
         if token.is_cancelled() {
-            return finish("cancelled", Some("cancelled before it started".into()), None).await;
+            return finish(
+                "cancelled",
+                Some("cancelled before it started".into()),
+                None,
+            )
+            .await;
         }
         let Some(sensor) = slot.sensor.clone() else {
             return finish("failed", Some("the bench has no power sensor".into()), None).await;
         };
         if let Err(e) = store.start_chain_run(job.id).await {
-            return finish("failed", Some(format!("the store refused to start it: {e}")), None).await;
+            return finish(
+                "failed",
+                Some(format!("the store refused to start it: {e}")),
+                None,
+            )
+            .await;
         }
         let source = slot.source.clone();
         let plan = job.plan.clone();
@@ -407,8 +455,11 @@ impl Engine {
                     .frequencies
                     .iter()
                     .map(|r| {
-                        ChainCalibrationPoint::new(Hz(r.frequency_hz), halfwave_units::Db(r.gain_db))
-                            .with_uncertainty(halfwave_units::Db(r.gain_uncertainty_db))
+                        ChainCalibrationPoint::new(
+                            Hz(r.frequency_hz),
+                            halfwave_units::Db(r.gain_db),
+                        )
+                        .with_uncertainty(halfwave_units::Db(r.gain_uncertainty_db))
                     })
                     .collect();
                 match store
@@ -420,12 +471,22 @@ impl Engine {
                         finish("completed", None, Some((chain.id, text))).await
                     }
                     Err(e) => {
-                        finish("failed", Some(format!("the chain table could not be stored: {e}")), None).await
+                        finish(
+                            "failed",
+                            Some(format!("the chain table could not be stored: {e}")),
+                            None,
+                        )
+                        .await
                     }
                 }
             }
             ChainOutcome::Cancelled if self.inner.shutdown.is_cancelled() => {
-                finish("failed", Some("the daemon shut down; submit it again".into()), None).await
+                finish(
+                    "failed",
+                    Some("the daemon shut down; submit it again".into()),
+                    None,
+                )
+                .await
             }
             ChainOutcome::Cancelled => finish("cancelled", Some("cancelled".into()), None).await,
             ChainOutcome::Failed(cause) => finish("failed", Some(cause), None).await,

@@ -100,6 +100,13 @@ pub struct BenchStatus {
     pub safety_fault: Option<BenchSafetyRecord>,
 }
 
+/// Each bench's stated generator level accuracy (+/- dB) and sensor figures (accuracy +/- %,
+/// |Gamma|), as the configuration gives them.
+type BenchFigures = (
+    HashMap<String, Db>,
+    HashMap<String, (Option<f64>, Option<f64>)>,
+);
+
 /// What a bench's worker takes from its queue.
 enum Work {
     Measure(Job),
@@ -294,10 +301,7 @@ impl Engine {
         store: Store,
         benches: Vec<(String, BenchInstruments)>,
         mut start_off: HashMap<String, Result<(), String>>,
-        (source_level_accuracy, sensor_figures): (
-            HashMap<String, Db>,
-            HashMap<String, (Option<f64>, Option<f64>)>,
-        ),
+        (source_level_accuracy, sensor_figures): BenchFigures,
     ) -> Result<Engine, EngineError> {
         let (events, _) = broadcast::channel(EVENT_BUFFER);
         let shutdown = CancellationToken::new();

@@ -24,7 +24,7 @@ use serde::Deserialize;
 use utoipa::IntoParams;
 
 /// Type B inputs that override the stored ones.
-#[derive(Debug, Deserialize, IntoParams)]
+#[derive(Debug, Default, Deserialize, IntoParams)]
 #[into_params(parameter_in = Query)]
 pub struct BudgetQuery {
     /// Standard uncertainty of the drive chain's gain, dB (0 to 10), e.g. from its calibration
@@ -80,6 +80,26 @@ pub async fn run_budget(
             errors,
         ));
     }
+    Ok(Json(budget_for_run(&state, run_id, &query).await?))
+}
+
+/// The reason a run has no budget, for the report and the export: the problem's detail and
+/// the fields it names.
+pub fn unavailable_reason(problem: &Problem) -> String {
+    let mut reason = problem.detail.clone();
+    for field in &problem.errors {
+        reason.push_str(&format!("; {}: {}", field.field, field.message));
+    }
+    reason
+}
+
+/// The budget of a run with `query`'s overrides (already range-checked), for the route, the
+/// calibration report and the export. A 422 names the input that is not known.
+pub async fn budget_for_run(
+    state: &AppState,
+    run_id: i64,
+    query: &BudgetQuery,
+) -> Result<RunBudgetView, Problem> {
     let store = state.store();
     let run = store.run(run_id).await?;
     let results = store.frequency_results(run_id).await?;
@@ -88,13 +108,22 @@ pub async fn run_budget(
         .source_level_accuracy_db
     {
         Some(value) => (Db(value), "query".to_string()),
-        None => match state
-            .engine()
-            .ok()
-            .and_then(|engine| engine.source_level_accuracy(&run.bench_name))
-        {
-            Some(value) => (value, format!("bench {} configuration", run.bench_name)),
-            None => {
+        None => match (
+            store.run_source_level_accuracy(run_id).await?,
+            state
+                .engine()
+                .ok()
+                .and_then(|engine| engine.source_level_accuracy(&run.bench_name)),
+        ) {
+            (Some(value), _) => (
+                value,
+                format!(
+                    "bench {} configuration, recorded with the run at submission",
+                    run.bench_name
+                ),
+            ),
+            (None, Some(value)) => (value, format!("bench {} configuration", run.bench_name)),
+            (None, None) => {
                 return Err(Problem::invalid(
                     "the generator's level accuracy is not known",
                     vec![FieldProblem::new(
@@ -165,11 +194,11 @@ pub async fn run_budget(
             });
         }
     }
-    Ok(Json(RunBudgetView {
+    Ok(RunBudgetView {
         run_id,
         chain_uncertainty_from,
         source_level_accuracy_db: source_level_accuracy.0,
         source_level_accuracy_from,
         frequencies,
-    }))
+    })
 }

@@ -93,7 +93,14 @@ pub async fn submit_chain_run(
     Operator(caller): Operator,
     State(state): State<AppState>,
     JsonBody(request): JsonBody<ChainCalibrationRequest>,
-) -> Result<(StatusCode, [(HeaderName, String); 1], Json<SubmittedChainRun>), Problem> {
+) -> Result<
+    (
+        StatusCode,
+        [(HeaderName, String); 1],
+        Json<SubmittedChainRun>,
+    ),
+    Problem,
+> {
     let id = state
         .engine()?
         .submit_chain_calibration(request, &caller.name)

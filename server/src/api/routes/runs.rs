@@ -190,7 +190,15 @@ pub async fn run_report(
     ApiPath(run_id): ApiPath<i64>,
 ) -> Result<Response, Problem> {
     let (_, view) = run_view(&state, run_id).await?;
-    let html = crate::api::calibration_report::report_html(&view, crate::store::now_unix_ms());
+    let budget =
+        super::budget::budget_for_run(&state, run_id, &super::budget::BudgetQuery::default())
+            .await
+            .map_err(|p| super::budget::unavailable_reason(&p));
+    let html = crate::api::calibration_report::report_html_with_budget(
+        &view,
+        budget.as_ref().map_err(String::as_str),
+        crate::store::now_unix_ms(),
+    );
     Ok(([(CONTENT_TYPE, "text/html; charset=utf-8")], html).into_response())
 }
 
