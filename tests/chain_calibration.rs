@@ -275,8 +275,8 @@ mod api_support;
 /// daemon's API on the in-process simulated bench; the API's roles, 422s and OpenAPI entry.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_cli_and_the_api_run_a_chain_calibration() {
-    use halfwave::api::routes::chain_runs::ChainRunView;
     use halfwave::api::tokens::Role as TokenRole;
+    use halfwave::api::views::chain_runs::ChainRunView;
 
     let engine_app = api_support::spawn_app_with_engine(0.0).await;
     let app = &engine_app.app;

@@ -6,7 +6,7 @@
 use super::client::ClientArgs;
 use super::runs::{runtime, to_json};
 use super::CliError;
-use crate::api::routes::chain_runs::{ChainRunView, SubmittedChainRun};
+use crate::api::views::chain_runs::{ChainRunView, SubmittedChainRun};
 use crate::engine::chain_run::ChainCalibrationRequest;
 use clap::Args;
 use std::time::Duration;

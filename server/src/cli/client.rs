@@ -4,7 +4,7 @@
 //! in-process daemon) goes through [`ApiClient`], so that failures read the same everywhere and
 //! say what to do: an unreachable daemon names the URL and asks whether `halfwave serve` runs, a
 //! refused token (401) says how to get a valid one, a refused plan (422) lists every field the
-//! daemon named. Response bodies are decoded into the API's own types (`api::routes::...`), so the
+//! daemon named. Response bodies are decoded into the API's own types (`api::views::...`), so the
 //! CLI and the daemon cannot drift apart silently. Plain HTTP only: the daemon listens on
 //! loopback or the lab network; reach it from elsewhere through the reverse proxy or a tunnel.
 

@@ -9,9 +9,9 @@
 //! and is measured again whole).
 
 use super::{now_unix_ms, Store, StoreError};
-use sqlx::AssertSqlSafe;
 use halfwave_units::Db;
 use serde::{Deserialize, Serialize};
+use sqlx::AssertSqlSafe;
 
 /// A chain calibration run as stored.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, sqlx::FromRow)]
@@ -142,7 +142,9 @@ impl Store {
             }
             query.fetch_all(pool).await
         })
-        .map_err(StoreError::database("failing unfinished chain calibration runs"))?;
+        .map_err(StoreError::database(
+            "failing unfinished chain calibration runs",
+        ))?;
         ids.sort_unstable();
         Ok(ids)
     }

@@ -8,77 +8,13 @@ use crate::api::auth::{Operator, Viewer};
 use crate::api::json_body::JsonBody;
 use crate::api::params::ApiPath;
 use crate::api::problem::Problem;
+use crate::api::views::chain_runs::{ChainRunView, SubmittedChainRun};
 use crate::api::AppState;
-use crate::engine::chain_run::{ChainCalibrationRequest, ChainRunResult};
-use crate::store::ChainRunRecord;
+use crate::engine::chain_run::ChainCalibrationRequest;
 use axum::extract::State;
 use axum::http::header::LOCATION;
 use axum::http::{HeaderName, StatusCode};
 use axum::Json;
-use serde::{Deserialize, Serialize};
-use utoipa::ToSchema;
-
-/// The answer to a submission.
-#[derive(Debug, Serialize, Deserialize, ToSchema)]
-pub struct SubmittedChainRun {
-    pub chain_run_id: i64,
-    /// Where to read it.
-    pub location: String,
-}
-
-/// A chain calibration run.
-#[derive(Debug, Clone, Serialize, Deserialize, ToSchema)]
-pub struct ChainRunView {
-    pub id: i64,
-    pub name: String,
-    pub bench: String,
-    /// `queued`, `running`, `completed`, `failed` or `cancelled`.
-    pub state: String,
-    pub cause: Option<String>,
-    pub submitted_by: String,
-    pub created_at_unix_ms: i64,
-    pub finished_at_unix_ms: Option<i64>,
-    /// The chain calibration version it stored (completed runs).
-    pub chain_calibration_id: Option<i64>,
-    pub request: ChainCalibrationRequest,
-    /// Readings and the per-frequency budget (completed runs).
-    pub result: Option<ChainRunResult>,
-}
-
-impl ChainRunView {
-    fn of(record: ChainRunRecord) -> Result<ChainRunView, Problem> {
-        let request = serde_json::from_str(&record.request).map_err(|e| {
-            Problem::internal(format!(
-                "chain run {}'s stored request cannot be read: {e}",
-                record.id
-            ))
-        })?;
-        let result = record
-            .result
-            .as_deref()
-            .map(serde_json::from_str)
-            .transpose()
-            .map_err(|e| {
-                Problem::internal(format!(
-                    "chain run {}'s stored result cannot be read: {e}",
-                    record.id
-                ))
-            })?;
-        Ok(ChainRunView {
-            id: record.id,
-            name: record.name,
-            bench: record.bench_name,
-            state: record.state,
-            cause: record.cause,
-            submitted_by: record.submitted_by,
-            created_at_unix_ms: record.created_at_unix_ms,
-            finished_at_unix_ms: record.finished_at_unix_ms,
-            chain_calibration_id: record.chain_calibration_id,
-            request,
-            result,
-        })
-    }
-}
 
 /// Queues a chain calibration: the bench's RF source drives through the drive chain into its
 /// power sensor, and the gains with their uncertainties become the next version of the named

@@ -3,6 +3,7 @@
 //! CLI never needs a route handler. The OpenAPI document takes its schemas from these types.
 
 pub mod budget;
+pub mod chain_runs;
 pub mod chains;
 pub mod devices;
 pub mod drive;
