@@ -793,8 +793,10 @@ async fn the_budget_reads_the_chain_tables_uncertainty_and_the_benchs_stated_lev
 
     // The accuracy recorded with the run at submission (migration 0014) wins over what the
     // configuration says now: a later change of the configuration leaves an old budget alone.
-    store
-        .record_run_source_level_accuracy(run.run_id, Db(0.3))
+    // (A run queued under a configuration that said 0.3 dB: the column as the engine writes it.)
+    sqlx::query("UPDATE runs SET source_level_accuracy_db = 0.3 WHERE id = $1")
+        .bind(run.run_id)
+        .execute(app.pool.as_sqlite().unwrap())
         .await
         .unwrap();
     let recorded: serde_json::Value = app

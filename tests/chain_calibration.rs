@@ -414,8 +414,8 @@ async fn a_run_keeps_the_source_level_accuracy_of_its_submission() {
         .unwrap();
     engine.cancel(run_id, "test").await.unwrap();
     engine.shutdown().await;
-    let recorded = store.run_source_level_accuracy(run_id).await.unwrap();
-    assert_eq!(recorded.map(|d| d.0), Some(0.6));
+    let recorded = store.run(run_id).await.unwrap().source_level_accuracy_db;
+    assert_eq!(recorded, Some(0.6));
     let config = scpi_config_with(
         dir.path(),
         &server,
@@ -424,7 +424,7 @@ async fn a_run_keeps_the_source_level_accuracy_of_its_submission() {
     );
     let engine = Engine::start(&config, store.clone()).await.unwrap();
     assert_eq!(engine.source_level_accuracy("sim").map(|d| d.0), Some(0.2));
-    let recorded = store.run_source_level_accuracy(run_id).await.unwrap();
-    assert_eq!(recorded.map(|d| d.0), Some(0.6));
+    let recorded = store.run(run_id).await.unwrap().source_level_accuracy_db;
+    assert_eq!(recorded, Some(0.6));
     engine.shutdown().await;
 }

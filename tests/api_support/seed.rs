@@ -174,6 +174,7 @@ pub async fn seed_recorded_run(store: &Store, hostile: &str, token_id: i64) -> R
                 submitted_by_token_id: Some(token_id),
                 hard_limit_at_modulator: Some(Dbm(24.0)),
                 planned_max_at_modulator: Some(Dbm(10.5)),
+                source_level_accuracy: None,
             },
         })
         .await

@@ -252,22 +252,9 @@ impl Engine {
     pub async fn start_with(
         limits: Limits,
         store: Store,
-        mut benches: Vec<(String, BenchInstruments)>,
+        benches: Vec<(String, BenchInstruments)>,
     ) -> Result<Engine, EngineError> {
-        // Start-up interlock: whatever the previous process left on, switch it off now.
-        let mut start_off = HashMap::new();
-        for (name, instruments) in &mut benches {
-            let off = bench::switch_off_at_start(name, instruments.source.as_mut()).await;
-            start_off.insert(name.clone(), off);
-        }
-        Self::launch(
-            limits,
-            store,
-            benches,
-            start_off,
-            (HashMap::new(), HashMap::new()),
-        )
-        .await
+        Self::start_with_figures(limits, store, benches, HashMap::new(), HashMap::new()).await
     }
 
     /// [`Engine::start_with`] with each bench's stated generator level accuracy (+/- dB) and
@@ -279,6 +266,7 @@ impl Engine {
         source_level_accuracy: HashMap<String, Db>,
         sensor_figures: HashMap<String, (Option<f64>, Option<f64>)>,
     ) -> Result<Engine, EngineError> {
+        // Start-up interlock: whatever the previous process left on, switch it off now.
         let mut start_off = HashMap::new();
         for (name, instruments) in &mut benches {
             let off = bench::switch_off_at_start(name, instruments.source.as_mut()).await;
@@ -629,16 +617,12 @@ impl Engine {
                         .max_level_at_modulator_dbm)),
                     planned_max_at_modulator: Some(plan.max_level_at_modulator())
                         .filter(|l| l.0.is_finite()),
+                    // What the budget of this run will use, whatever the configuration says later.
+                    source_level_accuracy: self.source_level_accuracy(&request.bench),
                 },
             })
             .await?
             .id;
-        // What the budget of this run will use, whatever the configuration says later.
-        if let Some(accuracy) = self.source_level_accuracy(&request.bench) {
-            store
-                .record_run_source_level_accuracy(run_id, accuracy)
-                .await?;
-        }
         // The run's `run.submit` audit row is written with the run, in one transaction.
         tracing::info!(
             run_id,

@@ -173,6 +173,7 @@ mod tests {
             submitted_by_token_id: None,
             hard_limit_at_modulator_dbm: None,
             planned_max_at_modulator_dbm: None,
+            source_level_accuracy_db: None,
         }
     }
 

@@ -1,6 +1,5 @@
-//! Chain calibration runs (table `chain_calibration_runs`, migration 0014) and the generator
-//! level accuracy recorded with a measurement run at submission (`runs.source_level_accuracy_db`,
-//! same migration).
+//! Chain calibration runs (table `chain_calibration_runs`, migration 0014). The same migration's
+//! `runs.source_level_accuracy_db` is written with the run itself ([`super::RunProvenance`]).
 //!
 //! A chain calibration run is queued, runs, and ends completed (with the id of the chain
 //! calibration version it stored and its per-frequency budget as a JSON document), failed or
@@ -9,7 +8,6 @@
 //! and is measured again whole).
 
 use super::{now_unix_ms, Store, StoreError};
-use halfwave_units::Db;
 use serde::{Deserialize, Serialize};
 use sqlx::AssertSqlSafe;
 
@@ -147,35 +145,5 @@ impl Store {
         ))?;
         ids.sort_unstable();
         Ok(ids)
-    }
-
-    /// Records the generator level accuracy in force when run `run_id` was submitted.
-    pub async fn record_run_source_level_accuracy(
-        &self,
-        run_id: i64,
-        accuracy: Db,
-    ) -> Result<(), StoreError> {
-        on_pool!(&self.pool, pool => sqlx::query("UPDATE runs SET source_level_accuracy_db = $2 WHERE id = $1")
-            .bind(run_id)
-            .bind(accuracy.value())
-            .execute(pool).await.map(|_| ()))
-            .map_err(StoreError::database("recording the run's source level accuracy"))?;
-        Ok(())
-    }
-
-    /// The generator level accuracy recorded with run `run_id` at submission, if any.
-    pub async fn run_source_level_accuracy(&self, run_id: i64) -> Result<Option<Db>, StoreError> {
-        let value: Option<Option<f64>> =
-            on_pool!(&self.pool, pool => sqlx::query_scalar("SELECT source_level_accuracy_db FROM runs WHERE id = $1")
-                .bind(run_id)
-                .fetch_optional(pool).await)
-                .map_err(StoreError::database("reading the run's source level accuracy"))?;
-        match value {
-            Some(v) => Ok(v.map(Db)),
-            None => Err(StoreError::NotFound {
-                what: "run",
-                key: run_id.to_string(),
-            }),
-        }
     }
 }

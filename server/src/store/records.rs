@@ -271,6 +271,9 @@ pub struct RunProvenance {
     pub hard_limit_at_modulator: Option<Dbm>,
     /// The highest level the proven plan puts on the modulator (after the chain).
     pub planned_max_at_modulator: Option<Dbm>,
+    /// The bench's generator level accuracy (+/- dB) in force when it was queued (migration
+    /// 0014), so a later configuration change leaves the run's V_pi budget alone.
+    pub source_level_accuracy: Option<Db>,
 }
 
 /// A stored run, with its device's serial number.
@@ -307,6 +310,8 @@ pub struct RunRecord {
     pub hard_limit_at_modulator_dbm: Option<f64>,
     /// The highest level the proven plan puts on the modulator.
     pub planned_max_at_modulator_dbm: Option<f64>,
+    /// The generator level accuracy (+/- dB) recorded when the run was queued.
+    pub source_level_accuracy_db: Option<f64>,
 }
 
 impl RunRecord {

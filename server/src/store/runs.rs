@@ -27,7 +27,7 @@ const RUN_SELECT: &str = "SELECT r.id, r.plan_json, r.device_id, d.serial AS dev
      r.state, r.submitted_by, r.created_at_unix_ms, \
      r.started_at_unix_ms, r.finished_at_unix_ms, r.cause, r.resumable, \
      r.software_version, r.analysis_method, r.submitted_by_token_id, \
-     r.hard_limit_at_modulator_dbm, r.planned_max_at_modulator_dbm \
+     r.hard_limit_at_modulator_dbm, r.planned_max_at_modulator_dbm, r.source_level_accuracy_db \
      FROM runs r JOIN devices d ON d.id = r.device_id \
      JOIN chain_calibrations c ON c.id = r.chain_calibration_id";
 
@@ -85,8 +85,8 @@ impl Store {
             .map_err(StoreError::database("starting to queue a run"))?;
         let id: i64 = sqlx::query_scalar(
             "INSERT INTO runs (plan_json, device_id, bench_name, chain_calibration_id, state, submitted_by, created_at_unix_ms, \
-             software_version, analysis_method, submitted_by_token_id, hard_limit_at_modulator_dbm, planned_max_at_modulator_dbm) \
-             VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12) RETURNING id",
+             software_version, analysis_method, submitted_by_token_id, hard_limit_at_modulator_dbm, planned_max_at_modulator_dbm, source_level_accuracy_db) \
+             VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13) RETURNING id",
         )
         .bind(super::json_text(&run.plan))
         .bind(run.device_id)
@@ -100,6 +100,7 @@ impl Store {
         .bind(run.provenance.submitted_by_token_id)
         .bind(run.provenance.hard_limit_at_modulator.map(|l| l.0))
         .bind(run.provenance.planned_max_at_modulator.map(|l| l.0))
+        .bind(run.provenance.source_level_accuracy.map(|a| a.0))
         .fetch_one(&mut *tx)
         .await
         .map_err(StoreError::database("queueing a run"))?;

@@ -109,7 +109,7 @@ pub async fn budget_for_run(
     {
         Some(value) => (Db(value), "query".to_string()),
         None => match (
-            store.run_source_level_accuracy(run_id).await?,
+            run.source_level_accuracy_db.map(Db),
             state
                 .engine()
                 .ok()
