@@ -7,6 +7,9 @@
 //! - the holder killed with SIGKILL mid-run keeps its lease until it expires (2 s here), then a
 //!   newcomer takes the bench over, and its start-up interlock marks the killed daemon's running
 //!   run interrupted.
+//! - webhooks from two daemons on one database: a receiver both are configured with gets each
+//!   event once, and a receiver only lab A has (down at first) is left to lab A (lab B neither
+//!   sends nor fails its pending row), which delivers it once the receiver is up.
 
 mod daemon_support;
 mod engine_support;
@@ -312,4 +315,142 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
         body.to_string().contains(&format!("127.0.0.1:{}", c.port)),
         "{body}"
     );
+}
+
+/// A webhook receiver on 127.0.0.1 that answers 204 and keeps each request's body.
+struct Inbox {
+    bodies: std::sync::Arc<std::sync::Mutex<Vec<Value>>>,
+}
+
+impl Inbox {
+    async fn start(port: u16) -> Inbox {
+        let bodies: std::sync::Arc<std::sync::Mutex<Vec<Value>>> = Default::default();
+        let kept = bodies.clone();
+        let app = axum::Router::new().fallback(move |body: axum::body::Bytes| {
+            let kept = kept.clone();
+            async move {
+                kept.lock()
+                    .unwrap()
+                    .push(serde_json::from_slice(&body).unwrap_or(Value::Null));
+                axum::http::StatusCode::NO_CONTENT
+            }
+        });
+        let listener = tokio::net::TcpListener::bind(("127.0.0.1", port))
+            .await
+            .unwrap();
+        tokio::spawn(async move { axum::serve(listener, app).await.unwrap() });
+        Inbox { bodies }
+    }
+
+    fn received(&self) -> Vec<Value> {
+        self.bodies.lock().unwrap().clone()
+    }
+
+    /// Waits until `count` requests have come (panics after 60 s), then `settle` more.
+    async fn wait_for(&self, count: usize, settle: Duration) -> Vec<Value> {
+        let deadline = tokio::time::Instant::now() + Duration::from_secs(60);
+        while self.received().len() < count {
+            assert!(
+                tokio::time::Instant::now() < deadline,
+                "{} of {count} webhook requests came: {:?}",
+                self.received().len(),
+                self.received()
+            );
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+        tokio::time::sleep(settle).await;
+        self.received()
+    }
+}
+
+/// Appends a `[[webhook]]` for run events to a lab's configuration (one retry a second).
+fn add_webhook(lab: &Lab, dir: &Path, url: &str) {
+    let secret = dir.join("webhook.secret");
+    std::fs::write(&secret, "shared-webhook-secret-of-the-two-labs-0123\n").unwrap();
+    let mut config = std::fs::read_to_string(&lab.config).unwrap();
+    config.push_str(&format!(
+        "\n[[webhook]]\nurl = \"{url}\"\nsecret_file = \"{}\"\n\
+         events = [\"run.completed\"]\nfirst_retry_s = 1.0\nmax_retry_s = 1.0\nmax_attempts = 60\n",
+        secret.display()
+    ));
+    std::fs::write(&lab.config, config).unwrap();
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn webhooks_of_two_daemons_on_one_database_are_each_sent_once_by_their_own_daemon() {
+    let database = ScratchDatabase::create("two_labs_webhooks").await;
+    let dir = tempfile::tempdir().unwrap();
+    let client = reqwest::Client::new();
+    let a = lab(dir.path(), "lab-a", "north-bench", database.url(), 0.0);
+    let b = lab(dir.path(), "lab-b", "south-bench", database.url(), 0.0);
+    let both_port = free_port();
+    let both = Inbox::start(both_port).await;
+    let both_url = format!("http://127.0.0.1:{both_port}/both");
+    let a_only_port = free_port();
+    let a_only_url = format!("http://127.0.0.1:{a_only_port}/lab-a");
+    add_webhook(&a, dir.path(), &both_url);
+    add_webhook(&a, dir.path(), &a_only_url);
+    add_webhook(&b, dir.path(), &both_url);
+
+    let token = daemon_support::cli_succeeds(&[
+        "token",
+        "create",
+        "--role",
+        "operator",
+        "--name",
+        "two-labs-webhooks",
+        "--config",
+        a.config.to_str().unwrap(),
+    ])
+    .await;
+    let _daemon_a = a.serve().await;
+    let _daemon_b = b.serve().await;
+
+    // Lab A calibrates while its own receiver is down: that delivery stays pending, retried.
+    let (status, body) = submit(
+        &client,
+        &a,
+        &token,
+        &plan("north-bench", "EG-PM-0101", &[1.5e9]),
+    )
+    .await;
+    assert_eq!(status, 201, "{body}");
+    let run_a = body["run_id"].as_i64().unwrap();
+    wait_for(&client, &a, &token, run_a, |r| r["state"] == "completed").await;
+    both.wait_for(1, Duration::ZERO).await;
+
+    // Lab B calibrates: its sender passes over the outbox while lab A's row is pending.
+    let (status, body) = submit(
+        &client,
+        &b,
+        &token,
+        &plan("south-bench", "EG-PM-0202", &[1.5e9]),
+    )
+    .await;
+    assert_eq!(status, 201, "{body}");
+    let run_b = body["run_id"].as_i64().unwrap();
+    wait_for(&client, &b, &token, run_b, |r| r["state"] == "completed").await;
+
+    // The receiver both daemons have gets each run once (no event sent by both daemons).
+    let got = both.wait_for(2, Duration::from_secs(2)).await;
+    let mut runs: Vec<i64> = got.iter().map(|b| b["run_id"].as_i64().unwrap()).collect();
+    runs.sort_unstable();
+    assert_eq!(runs, vec![run_a, run_b], "{got:?}");
+
+    // Lab A's own receiver comes up: lab A delivers its row (lab B left it alone).
+    let store = halfwave::store::Store::open(database.url()).await.unwrap();
+    let counts = store.webhook_delivery_counts().await.unwrap();
+    assert_eq!(
+        counts.failed, 0,
+        "lab B failed a row it has no receiver for"
+    );
+    assert_eq!(counts.pending, 1, "{counts:?}");
+    let a_only = Inbox::start(a_only_port).await;
+    let got = a_only.wait_for(1, Duration::from_secs(2)).await;
+    assert_eq!(got.len(), 1, "{got:?}");
+    assert_eq!(got[0]["run_id"].as_i64(), Some(run_a), "{got:?}");
+    assert_eq!(got[0]["event_type"], "run.completed");
+    let counts = store.webhook_delivery_counts().await.unwrap();
+    assert_eq!((counts.delivered, counts.pending, counts.failed), (3, 0, 0));
+    store.close().await;
 }

@@ -394,6 +394,57 @@ async fn bench_leases_are_taken_refused_and_taken_over(store: Store) {
     );
 }
 
+async fn webhook_deliveries_claimed_by_two_senders_at_once_go_to_one_each(store: Store) {
+    use halfwave::store::{now_unix_ms, NewWebhookDelivery};
+    let url = "http://127.0.0.1:9/receiver".to_string();
+    let ids: Vec<String> = (0..24).map(|i| format!("event-{i:02}")).collect();
+    let rows: Vec<NewWebhookDelivery> = ids
+        .iter()
+        .map(|id| NewWebhookDelivery {
+            event_id: id,
+            event_type: "run.completed",
+            url: &url,
+            body: "{}",
+        })
+        .collect();
+    store.add_webhook_deliveries(&rows).await.unwrap();
+    // Two senders (two daemons' stores on one database behave alike: the claim is one
+    // conditional UPDATE) read and claim the same due rows at the same time, in small batches.
+    let urls = vec![url.clone()];
+    let sender = |store: Store, urls: Vec<String>| async move {
+        let mut got = Vec::new();
+        loop {
+            let now = now_unix_ms();
+            let claimed = store
+                .claim_due_webhook_deliveries(now, &urls, 5, now + 60_000)
+                .await
+                .unwrap();
+            if claimed.is_empty()
+                && store
+                    .due_webhook_deliveries(now, &urls, 1)
+                    .await
+                    .unwrap()
+                    .is_empty()
+            {
+                return got;
+            }
+            got.extend(claimed.into_iter().map(|d| d.event_id));
+            tokio::task::yield_now().await;
+        }
+    };
+    let (first, second) = tokio::join!(
+        tokio::spawn(sender(store.clone(), urls.clone())),
+        tokio::spawn(sender(store.clone(), urls.clone()))
+    );
+    let (first, second) = (first.unwrap(), second.unwrap());
+    let mut all: Vec<String> = first.iter().chain(&second).cloned().collect();
+    all.sort();
+    assert_eq!(
+        all, ids,
+        "each row claimed exactly once: {first:?} / {second:?}"
+    );
+}
+
 async fn recovery_limited_to_named_benches_leaves_other_benches_running(store: Store) {
     let run = running_run(&store, "EG-PM-0303").await;
     // The run is on "bench-north" (store_support); another daemon's recovery leaves it alone.
@@ -415,6 +466,7 @@ async fn recovery_limited_to_named_benches_leaves_other_benches_running(store: S
 }
 
 on_both_backends!(
+    webhook_deliveries_claimed_by_two_senders_at_once_go_to_one_each,
     bench_leases_are_taken_refused_and_taken_over,
     recovery_limited_to_named_benches_leaves_other_benches_running,
     foreign_keys_are_enforced,

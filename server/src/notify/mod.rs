@@ -96,10 +96,12 @@ impl Notifier {
                 tracing::warn!(error = %e, "webhook HTTP client with default settings");
                 reqwest::Client::new()
             });
+        let urls = receivers.iter().map(|r| r.config.url.clone()).collect();
         let sender = tokio::spawn(send(
             Sender {
                 store: engine.store().clone(),
                 receivers,
+                urls,
                 client,
             },
             wake,
@@ -233,16 +235,25 @@ fn new_event_id() -> Result<String, String> {
     Ok(crate::api::tokens::hex(&bytes))
 }
 
+/// How long a pending row for a URL no daemon on a shared (PostgreSQL) database is configured
+/// with stays pending before it is failed: long enough for a daemon that has it to be restarted.
+pub const ORPHAN_GRACE_SHARED: Duration = Duration::from_secs(24 * 3600);
+
+/// What a claim adds to a receiver's timeout: the time to store the attempt's outcome.
+const CLAIM_MARGIN: Duration = Duration::from_secs(30);
+
 /// What the sender needs.
 struct Sender {
     store: Store,
     receivers: Arc<Vec<Receiver>>,
+    /// The receivers' URLs, the only rows this sender reads.
+    urls: Vec<String>,
     client: reqwest::Client,
 }
 
 /// The sender task: due deliveries out, until stopped (then one last pass).
 async fn send(sender: Sender, wake: Arc<Notify>, stop: CancellationToken) {
-    match sender.store.webhook_pending_due_now().await {
+    match sender.store.webhook_pending_due_now(&sender.urls).await {
         Ok(0) => {}
         Ok(pending) => tracing::info!(
             pending,
@@ -256,7 +267,7 @@ async fn send(sender: Sender, wake: Arc<Notify>, stop: CancellationToken) {
         if stopping {
             return;
         }
-        let wait = match sender.store.next_webhook_due_at().await {
+        let wait = match sender.store.next_webhook_due_at(&sender.urls).await {
             Ok(Some(at)) => Duration::from_millis(u64::try_from(at - now_unix_ms()).unwrap_or(0)),
             Ok(None) => IDLE_POLL,
             Err(e) => {
@@ -274,12 +285,36 @@ async fn send(sender: Sender, wake: Arc<Notify>, stop: CancellationToken) {
 }
 
 impl Sender {
-    /// Attempts every delivery due now, oldest first.
+    /// Fails the rows no configured receiver will take (see the module documentation), then
+    /// attempts every delivery due now for this daemon's receivers, oldest first, each claimed
+    /// just before its attempt.
     async fn pass(&self) {
+        let grace = match self.store.backend() {
+            crate::store::Backend::Sqlite => 0,
+            crate::store::Backend::Postgres => {
+                i64::try_from(ORPHAN_GRACE_SHARED.as_millis()).unwrap_or(i64::MAX / 2)
+            }
+        };
+        match self
+            .store
+            .fail_orphan_webhook_deliveries(
+                &self.urls,
+                now_unix_ms() - grace,
+                "no [[webhook]] with this URL is configured any more",
+            )
+            .await
+        {
+            Ok(0) => {}
+            Ok(failed) => tracing::warn!(
+                failed,
+                "webhook deliveries for URLs no longer configured were marked failed"
+            ),
+            Err(e) => tracing::error!(error = %e, "cannot update the webhook outbox"),
+        }
         loop {
             let due = match self
                 .store
-                .due_webhook_deliveries(now_unix_ms(), BATCH)
+                .due_webhook_deliveries(now_unix_ms(), &self.urls, BATCH)
                 .await
             {
                 Ok(due) => due,
@@ -292,7 +327,7 @@ impl Sender {
                 return;
             }
             for delivery in due {
-                if let Err(e) = self.attempt(&delivery).await {
+                if let Err(e) = self.claim_and_attempt(&delivery).await {
                     // The row could not be updated: stop here rather than send it again at once.
                     tracing::error!(error = %e, "cannot update the webhook outbox");
                     return;
@@ -301,18 +336,33 @@ impl Sender {
         }
     }
 
-    /// One attempt at one delivery, and its outcome stored.
-    async fn attempt(&self, delivery: &WebhookDelivery) -> Result<(), crate::store::StoreError> {
+    /// Claims a due delivery and attempts it; does nothing when another sender got it first.
+    async fn claim_and_attempt(
+        &self,
+        delivery: &WebhookDelivery,
+    ) -> Result<(), crate::store::StoreError> {
         let Some(receiver) = self.receivers.iter().find(|r| r.config.url == delivery.url) else {
-            return self
-                .store
-                .webhook_attempt_failed(
-                    delivery.id,
-                    "no [[webhook]] with this URL is configured any more",
-                    None,
-                )
-                .await;
+            return Ok(());
         };
+        let span = Duration::from_secs_f64(receiver.config.timeout_s) + CLAIM_MARGIN;
+        let until = now_unix_ms() + i64::try_from(span.as_millis()).unwrap_or(i64::MAX / 2);
+        if self
+            .store
+            .claim_webhook_delivery(delivery.id, delivery.next_attempt_at_unix_ms, until)
+            .await?
+        {
+            self.attempt(receiver, delivery).await
+        } else {
+            Ok(())
+        }
+    }
+
+    /// One attempt at one delivery, and its outcome stored.
+    async fn attempt(
+        &self,
+        receiver: &Receiver,
+        delivery: &WebhookDelivery,
+    ) -> Result<(), crate::store::StoreError> {
         let outcome = self.post(receiver, delivery).await;
         let attempts = u32::try_from(delivery.attempts.saturating_add(1)).unwrap_or(u32::MAX);
         match outcome {

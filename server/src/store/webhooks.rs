@@ -5,8 +5,16 @@
 //! `failed` once its attempts are used up, or kept `pending` with the time of the next attempt
 //! and the last error. Because the outbox is in the database, a daemon that stops or dies with
 //! deliveries outstanding sends them after it starts again. See `crate::notify`.
+//!
+//! Several daemons may share one database (PostgreSQL), each with its own `[[webhook]]` list.
+//! A sender therefore only reads rows for the URLs it is configured with, and takes a row for an
+//! attempt by a **claim**: one conditional UPDATE that moves the row's due time past the attempt
+//! (`next_attempt_at_unix_ms` from a time at or before now to `claim_until`) and succeeds for one
+//! sender only. A sender that dies mid-attempt leaves the row due again when its claim runs out,
+//! so a delivery is sent at least once; receivers de-duplicate by event id.
 
 use super::{now_unix_ms, Store, StoreError};
+use sqlx::AssertSqlSafe;
 
 /// One delivery as stored.
 #[derive(Debug, Clone, PartialEq, Eq, sqlx::FromRow)]
@@ -85,51 +93,172 @@ impl Store {
         })
     }
 
-    /// Pending deliveries due at `now_ms`, oldest first, at most `limit`.
+    /// Pending deliveries for `urls` due at `now_ms`, oldest first, at most `limit`. Reading is
+    /// not taking: a sender takes a row with [`Store::claim_webhook_delivery`] (or reads and claims
+    /// at once with [`Store::claim_due_webhook_deliveries`]).
     pub async fn due_webhook_deliveries(
         &self,
         now_ms: i64,
+        urls: &[String],
         limit: i64,
     ) -> Result<Vec<WebhookDelivery>, StoreError> {
-        on_pool!(&self.pool, pool => sqlx::query_as(concat!(
-            "SELECT ",
-            columns!(),
-            " FROM webhook_deliveries WHERE state = 'pending' AND next_attempt_at_unix_ms <= $1 \
-             ORDER BY next_attempt_at_unix_ms, id LIMIT $2"
-        ))
-        .bind(now_ms)
-        .bind(limit)
-        .fetch_all(pool)
-        .await)
+        if urls.is_empty() {
+            return Ok(Vec::new());
+        }
+        let sql = format!(
+            concat!(
+                "SELECT ",
+                columns!(),
+                " FROM webhook_deliveries WHERE state = 'pending' AND next_attempt_at_unix_ms <= $1 \
+                 AND url IN ({}) ORDER BY next_attempt_at_unix_ms, id LIMIT $2"
+            ),
+            url_placeholders(3, urls.len())
+        );
+        on_pool!(&self.pool, pool => {
+            let mut query = sqlx::query_as(AssertSqlSafe(sql.clone())).bind(now_ms).bind(limit);
+            for url in urls {
+                query = query.bind(url.as_str());
+            }
+            query.fetch_all(pool).await
+        })
         .map_err(StoreError::database("reading due webhook deliveries"))
     }
 
-    /// Makes every pending delivery due now (at start-up: a restart often follows a fix at the
-    /// receiver's end, so waiting out a long backoff would only delay the news). Returns how many
-    /// are pending.
-    pub async fn webhook_pending_due_now(&self) -> Result<u64, StoreError> {
-        let now = now_unix_ms();
-        on_pool!(&self.pool, pool => sqlx::query(
+    /// Takes one delivery for an attempt: moves its due time from `due_at_unix_ms` (as read, at
+    /// or before now) to `claim_until_unix_ms`. True when this caller got it; false when another
+    /// sender claimed, delivered or rescheduled it first.
+    pub async fn claim_webhook_delivery(
+        &self,
+        id: i64,
+        due_at_unix_ms: i64,
+        claim_until_unix_ms: i64,
+    ) -> Result<bool, StoreError> {
+        let claimed = on_pool!(&self.pool, pool => sqlx::query(
             "UPDATE webhook_deliveries SET next_attempt_at_unix_ms = $1 \
-             WHERE state = 'pending' AND next_attempt_at_unix_ms > $2",
+             WHERE id = $2 AND state = 'pending' AND next_attempt_at_unix_ms = $3",
         )
-        .bind(now)
-        .bind(now)
+        .bind(claim_until_unix_ms)
+        .bind(id)
+        .bind(due_at_unix_ms)
         .execute(pool)
         .await.map(|done| done.rows_affected()))
+        .map_err(StoreError::database("claiming a webhook delivery"))?;
+        Ok(claimed == 1)
+    }
+
+    /// Reads the deliveries for `urls` due at `now_ms` (at most `limit`) and claims each until
+    /// `claim_until_unix_ms`; returns the ones this caller got, oldest first.
+    pub async fn claim_due_webhook_deliveries(
+        &self,
+        now_ms: i64,
+        urls: &[String],
+        limit: i64,
+        claim_until_unix_ms: i64,
+    ) -> Result<Vec<WebhookDelivery>, StoreError> {
+        let mut claimed = Vec::new();
+        for delivery in self.due_webhook_deliveries(now_ms, urls, limit).await? {
+            if self
+                .claim_webhook_delivery(
+                    delivery.id,
+                    delivery.next_attempt_at_unix_ms,
+                    claim_until_unix_ms,
+                )
+                .await?
+            {
+                claimed.push(delivery);
+            }
+        }
+        Ok(claimed)
+    }
+
+    /// Marks `failed` the pending deliveries for URLs not in `urls` that have been due since
+    /// `overdue_since_ms` or earlier, with `reason` as their last error; returns how many. With
+    /// one daemon per database such a row is for a receiver removed from the configuration; on a
+    /// shared database it may be another daemon's, so the caller gives those a long grace.
+    pub async fn fail_orphan_webhook_deliveries(
+        &self,
+        urls: &[String],
+        overdue_since_ms: i64,
+        reason: &str,
+    ) -> Result<u64, StoreError> {
+        let url_filter = if urls.is_empty() {
+            String::new()
+        } else {
+            format!("AND url NOT IN ({})", url_placeholders(3, urls.len()))
+        };
+        let sql = format!(
+            "UPDATE webhook_deliveries SET state = 'failed', last_error = $1 \
+             WHERE state = 'pending' AND next_attempt_at_unix_ms <= $2 {url_filter}"
+        );
+        on_pool!(&self.pool, pool => {
+            let mut query = sqlx::query(AssertSqlSafe(sql.clone()))
+                .bind(reason)
+                .bind(overdue_since_ms);
+            for url in urls {
+                query = query.bind(url.as_str());
+            }
+            query.execute(pool).await.map(|done| done.rows_affected())
+        })
+        .map_err(StoreError::database(
+            "failing webhook deliveries without a receiver",
+        ))
+    }
+
+    /// Makes every pending delivery for `urls` due now (at start-up: a restart often follows a
+    /// fix at the receiver's end, so waiting out a long backoff would only delay the news).
+    /// Returns how many are pending for them.
+    pub async fn webhook_pending_due_now(&self, urls: &[String]) -> Result<u64, StoreError> {
+        if urls.is_empty() {
+            return Ok(0);
+        }
+        let now = now_unix_ms();
+        let sql = format!(
+            "UPDATE webhook_deliveries SET next_attempt_at_unix_ms = $1 \
+             WHERE state = 'pending' AND next_attempt_at_unix_ms > $2 AND url IN ({})",
+            url_placeholders(3, urls.len())
+        );
+        on_pool!(&self.pool, pool => {
+            let mut query = sqlx::query(AssertSqlSafe(sql.clone())).bind(now).bind(now);
+            for url in urls {
+                query = query.bind(url.as_str());
+            }
+            query.execute(pool).await.map(|_| ())
+        })
         .map_err(StoreError::database(
             "rescheduling pending webhook deliveries",
         ))?;
-        Ok(self.webhook_delivery_counts().await?.pending.unsigned_abs())
+        let sql = format!(
+            "SELECT COUNT(*) FROM webhook_deliveries WHERE state = 'pending' AND url IN ({})",
+            url_placeholders(1, urls.len())
+        );
+        let pending: i64 = on_pool!(&self.pool, pool => {
+            let mut query = sqlx::query_scalar(AssertSqlSafe(sql.clone()));
+            for url in urls {
+                query = query.bind(url.as_str());
+            }
+            query.fetch_one(pool).await
+        })
+        .map_err(StoreError::database("counting pending webhook deliveries"))?;
+        Ok(pending.unsigned_abs())
     }
 
-    /// When the next pending delivery is due; `None` when none is pending.
-    pub async fn next_webhook_due_at(&self) -> Result<Option<i64>, StoreError> {
-        on_pool!(&self.pool, pool => sqlx::query_scalar(
-            "SELECT MIN(next_attempt_at_unix_ms) FROM webhook_deliveries WHERE state = 'pending'",
-        )
-        .fetch_one(pool)
-        .await)
+    /// When the next pending delivery for `urls` is due; `None` when none is pending for them.
+    pub async fn next_webhook_due_at(&self, urls: &[String]) -> Result<Option<i64>, StoreError> {
+        if urls.is_empty() {
+            return Ok(None);
+        }
+        let sql = format!(
+            "SELECT MIN(next_attempt_at_unix_ms) FROM webhook_deliveries \
+             WHERE state = 'pending' AND url IN ({})",
+            url_placeholders(1, urls.len())
+        );
+        on_pool!(&self.pool, pool => {
+            let mut query = sqlx::query_scalar(AssertSqlSafe(sql.clone()));
+            for url in urls {
+                query = query.bind(url.as_str());
+            }
+            query.fetch_one(pool).await
+        })
         .map_err(StoreError::database(
             "reading the next webhook delivery time",
         ))
@@ -208,6 +337,14 @@ impl Store {
     }
 }
 
+/// `$first, $first+1, ...` for `count` bound values (the URLs of an `IN (...)` list).
+fn url_placeholders(first: usize, count: usize) -> String {
+    (first..first + count)
+        .map(|n| format!("${n}"))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -224,6 +361,7 @@ mod tests {
     #[tokio::test]
     async fn a_delivery_goes_pending_retry_then_delivered_or_failed() {
         let store = Store::open_in_memory().await.unwrap();
+        let urls = vec!["http://a/".to_string(), "http://b/".to_string()];
         store
             .add_webhook_deliveries(&[new("e1", "http://a/"), new("e1", "http://b/")])
             .await
@@ -234,7 +372,7 @@ mod tests {
             .await
             .unwrap();
         let due = store
-            .due_webhook_deliveries(now_unix_ms(), 10)
+            .due_webhook_deliveries(now_unix_ms(), &urls, 10)
             .await
             .unwrap();
         assert_eq!(due.len(), 2);
@@ -250,19 +388,22 @@ mod tests {
             .await
             .unwrap();
         assert!(store
-            .due_webhook_deliveries(now_unix_ms(), 10)
+            .due_webhook_deliveries(now_unix_ms(), &urls, 10)
             .await
             .unwrap()
             .is_empty());
-        assert_eq!(store.next_webhook_due_at().await.unwrap(), Some(later));
+        assert_eq!(store.next_webhook_due_at(&urls).await.unwrap(), Some(later));
         // At start-up every pending delivery becomes due at once.
-        assert_eq!(store.webhook_pending_due_now().await.unwrap(), 1);
-        assert!(store.next_webhook_due_at().await.unwrap().unwrap() <= now_unix_ms());
+        assert_eq!(store.webhook_pending_due_now(&urls).await.unwrap(), 1);
+        assert!(store.next_webhook_due_at(&urls).await.unwrap().unwrap() <= now_unix_ms());
         store
             .webhook_attempt_failed(a, "connection refused", Some(later))
             .await
             .unwrap();
-        let due = store.due_webhook_deliveries(later, 10).await.unwrap();
+        let due = store
+            .due_webhook_deliveries(later, &urls, 10)
+            .await
+            .unwrap();
         assert_eq!(due.len(), 1);
         assert_eq!(due[0].attempts, 2);
         assert_eq!(due[0].last_error.as_deref(), Some("connection refused"));
@@ -276,11 +417,75 @@ mod tests {
                 failed: 1
             }
         );
-        assert_eq!(store.next_webhook_due_at().await.unwrap(), None);
+        assert_eq!(store.next_webhook_due_at(&urls).await.unwrap(), None);
         let all = store.webhook_deliveries(10).await.unwrap();
         let delivered = all.iter().find(|d| d.id == a).unwrap();
         assert_eq!(delivered.attempts, 3);
         assert!(delivered.delivered_at_unix_ms.is_some());
         assert_eq!(delivered.last_error, None);
+    }
+
+    #[tokio::test]
+    async fn a_sender_sees_only_its_own_urls_and_a_claimed_row_is_taken_once() {
+        let store = Store::open_in_memory().await.unwrap();
+        store
+            .add_webhook_deliveries(&[new("e1", "http://mine/"), new("e1", "http://theirs/")])
+            .await
+            .unwrap();
+        let mine = vec!["http://mine/".to_string()];
+        let theirs = vec!["http://theirs/".to_string()];
+        let now = now_unix_ms();
+        let due = store.due_webhook_deliveries(now, &mine, 10).await.unwrap();
+        assert_eq!(due.len(), 1);
+        assert_eq!(due[0].url, "http://mine/");
+        assert!(store
+            .due_webhook_deliveries(now, &[], 10)
+            .await
+            .unwrap()
+            .is_empty());
+
+        // Two senders that read the same due row: the first claim wins, the second gets nothing.
+        let row = &due[0];
+        let until = now + 30_000;
+        assert!(store
+            .claim_webhook_delivery(row.id, row.next_attempt_at_unix_ms, until)
+            .await
+            .unwrap());
+        assert!(!store
+            .claim_webhook_delivery(row.id, row.next_attempt_at_unix_ms, until)
+            .await
+            .unwrap());
+        // Claimed, it is no longer due, and the next due time is the claim's end.
+        assert!(store
+            .due_webhook_deliveries(now, &mine, 10)
+            .await
+            .unwrap()
+            .is_empty());
+        assert_eq!(store.next_webhook_due_at(&mine).await.unwrap(), Some(until));
+        // A claim that ran out (the claimer died mid-attempt) makes the row due again.
+        let again = store
+            .claim_due_webhook_deliveries(until, &mine, 10, until + 30_000)
+            .await
+            .unwrap();
+        assert_eq!(again.len(), 1);
+
+        // The other URL's row is left to its sender while within the grace, failed after it.
+        assert_eq!(
+            store
+                .fail_orphan_webhook_deliveries(&mine, now - 60_000, "no receiver")
+                .await
+                .unwrap(),
+            0
+        );
+        assert!(store.next_webhook_due_at(&theirs).await.unwrap().unwrap() <= now_unix_ms());
+        assert_eq!(
+            store
+                .fail_orphan_webhook_deliveries(&mine, now_unix_ms(), "no receiver")
+                .await
+                .unwrap(),
+            1
+        );
+        let counts = store.webhook_delivery_counts().await.unwrap();
+        assert_eq!((counts.pending, counts.failed), (1, 1));
     }
 }
