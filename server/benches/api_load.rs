@@ -21,6 +21,9 @@
 //! its scheduler; both still share the machine's cores, as a client on the bench PC would.
 //!
 //! Run: `cargo bench -p halfwave-server --bench api_load`
+//! With `HALFWAVE_BENCH_POSTGRES_URL=postgres://USER@HOST/DB` (a server where USER may create
+//! databases) the store is a scratch PostgreSQL database instead of the SQLite file (seeded the
+//! same way, dropped afterwards), and the daemon is configured with its `database_url`.
 //! Environment (optional): `HALFWAVE_LOAD_CONNECTIONS` (default 16), `HALFWAVE_LOAD_SECONDS`
 //! (default 20), `HALFWAVE_QUIET_SECONDS` (each quiet phase, default 10),
 //! `HALFWAVE_LOAD_ROUTE_SECONDS` (each endpoint alone afterwards, for its CPU cost; default 3, 0
@@ -34,6 +37,7 @@
 mod seed;
 
 use halfwave::api::tokens::{self, Role};
+use halfwave::store::scratch_db::ScratchDatabase;
 use halfwave::store::{now_unix_ms, Store};
 use http_body_util::{BodyExt, Empty};
 use hyper::body::Bytes;
@@ -161,8 +165,9 @@ impl Drop for Daemon {
     }
 }
 
-/// Step 2: the real daemon on a simulated bench. Returns it with its address.
-fn start_daemon(dir: &std::path::Path) -> (Daemon, String) {
+/// Step 2: the real daemon on a simulated bench, on the PostgreSQL database at `database_url`
+/// when given (else the SQLite file in its data directory). Returns it with its address.
+fn start_daemon(dir: &std::path::Path, database_url: Option<&str>) -> (Daemon, String) {
     let port = std::net::TcpListener::bind("127.0.0.1:0")
         .and_then(|l| l.local_addr())
         .expect("a free loopback port")
@@ -171,10 +176,13 @@ fn start_daemon(dir: &std::path::Path) -> (Daemon, String) {
     std::fs::write(
         &config,
         format!(
-            "bind = \"127.0.0.1:{port}\"\ndata_dir = \"{}\"\n\n[limits]\nmax_level_at_modulator_dbm = 24.0\n\n\
+            "bind = \"127.0.0.1:{port}\"\ndata_dir = \"{}\"\n{}\n[limits]\nmax_level_at_modulator_dbm = 24.0\n\n\
              [[bench]]\nname = \"sim-bench\"\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n\
              [bench.simulation]\nseed = 5\ntime_factor = {TIME_FACTOR}\n",
-            dir.join("data").display()
+            dir.join("data").display(),
+            database_url
+                .map(|url| format!("database_url = \"{url}\"\n"))
+                .unwrap_or_default()
         ),
     )
     .expect("write the daemon configuration");
@@ -510,12 +518,23 @@ fn main() {
         .build()
         .expect("tokio runtime");
 
-    let (stored_points, viewer, operator) =
-        runtime.block_on(seed_store(db_path.to_str().expect("UTF-8 path")));
+    let postgres = std::env::var("HALFWAVE_BENCH_POSTGRES_URL").ok().map(|url| {
+        runtime
+            .block_on(ScratchDatabase::create_on(&url, "bench_api_load"))
+            .expect("a scratch database on HALFWAVE_BENCH_POSTGRES_URL")
+    });
+    let store_at = match &postgres {
+        Some(database) => database.url().to_string(),
+        None => db_path.to_str().expect("UTF-8 path").to_string(),
+    };
+    let (stored_points, viewer, operator) = runtime.block_on(seed_store(&store_at));
     let seeded_runs = (DEVICES * RUNS_PER_DEVICE) as i64;
-    println!("stored points: {stored_points} in {seeded_runs} completed runs");
+    println!(
+        "stored points: {stored_points} in {seeded_runs} completed runs, on {}",
+        if postgres.is_some() { "PostgreSQL" } else { "SQLite" }
+    );
 
-    let (daemon, address) = start_daemon(dir.path());
+    let (daemon, address) = start_daemon(dir.path(), postgres.as_ref().map(|d| d.url()));
     let live_run = runtime.block_on(async {
         let submitted = json_request(
             &address,

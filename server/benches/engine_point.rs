@@ -5,12 +5,17 @@
 //! events). The simulator's rendering (about 0.1-0.2 ms per trace, see `sim_trace`) is included,
 //! so the figure over-states the daemon's own cost.
 //!
+//! With `HALFWAVE_BENCH_POSTGRES_URL=postgres://USER@HOST/DB` (a server where USER may create
+//! databases) the same run is measured with the store on PostgreSQL too, in a scratch database
+//! dropped afterwards (`engine/..._postgres`), beside the SQLite file in the same process.
+//!
 //! Run: `cargo bench -p halfwave-server --bench engine_point`
 
 mod support;
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 use halfwave::engine::plan::PlanRequest;
+use halfwave::store::scratch_db::ScratchDatabase;
 
 use support::LEVELS;
 
@@ -33,8 +38,18 @@ fn engine_point(c: &mut Criterion) {
     group.bench_function("run_of_9_points_10001_point_traces", |b| {
         b.iter(|| runtime.block_on(support::run_to_completion(&engine, plan())))
     });
-    group.finish();
     runtime.block_on(engine.shutdown());
+    if let Ok(url) = std::env::var("HALFWAVE_BENCH_POSTGRES_URL") {
+        let database = runtime
+            .block_on(ScratchDatabase::create_on(&url, "bench_engine_point"))
+            .expect("a scratch database on HALFWAVE_BENCH_POSTGRES_URL");
+        let (engine, _sim) = runtime.block_on(support::sim_engine_on(database.url(), 1, 0.0));
+        group.bench_function("run_of_9_points_10001_point_traces_postgres", |b| {
+            b.iter(|| runtime.block_on(support::run_to_completion(&engine, plan())))
+        });
+        runtime.block_on(engine.shutdown());
+    }
+    group.finish();
 }
 
 criterion_group!(benches, engine_point);

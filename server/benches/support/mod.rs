@@ -50,7 +50,12 @@ pub fn plan(serial: &str, frequencies_hz: &[f64]) -> PlanRequest {
 
 /// An engine on one in-process simulated bench named "sim", storing in the database at `db`.
 pub async fn sim_engine(db: &std::path::Path, seed: u64, time_factor: f64) -> (Engine, SimBench) {
-    let store = Store::open(db.to_str().expect("a UTF-8 path"))
+    sim_engine_on(db.to_str().expect("a UTF-8 path"), seed, time_factor).await
+}
+
+/// [`sim_engine`] on the database at `url_or_path` (a file path or a `postgres://` URL).
+pub async fn sim_engine_on(url_or_path: &str, seed: u64, time_factor: f64) -> (Engine, SimBench) {
+    let store = Store::open(url_or_path)
         .await
         .expect("open the benchmark database");
     let sim = SimBench::new(Scenario::builtin().expect("built-in scenario"), seed)
