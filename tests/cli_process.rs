@@ -456,6 +456,24 @@ async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
         );
         let v_peak: f64 = row[column("v_peak_volts")].parse().unwrap();
         assert!(v_peak > 0.0);
+        // The last three cells: V_pi's budget at the row's frequency (combined u, k, U), or
+        // empty with the reason on stderr when the budget's inputs are not known.
+        let budget = &row[row.len() - 3..];
+        if budget.iter().all(|c| c.is_empty()) {
+            assert!(
+                stderr(&exported).contains("budget columns are left empty"),
+                "{}",
+                stderr(&exported)
+            );
+        } else {
+            let cells: Vec<f64> = budget.iter().map(|c| c.parse().unwrap()).collect();
+            let u_fit: f64 = row[column("v_pi_uncertainty_volts")].parse().unwrap();
+            assert!(cells[0] >= u_fit && cells[1] >= 1.0, "{budget:?}");
+            assert!(
+                (cells[2] - cells[0] * cells[1]).abs() <= 1e-9 * cells[2],
+                "{budget:?}"
+            );
+        }
     }
 
     let json = run(with(&["export", &id, "--format", "json"])).await;

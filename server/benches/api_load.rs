@@ -518,11 +518,13 @@ fn main() {
         .build()
         .expect("tokio runtime");
 
-    let postgres = std::env::var("HALFWAVE_BENCH_POSTGRES_URL").ok().map(|url| {
-        runtime
-            .block_on(ScratchDatabase::create_on(&url, "bench_api_load"))
-            .expect("a scratch database on HALFWAVE_BENCH_POSTGRES_URL")
-    });
+    let postgres = std::env::var("HALFWAVE_BENCH_POSTGRES_URL")
+        .ok()
+        .map(|url| {
+            runtime
+                .block_on(ScratchDatabase::create_on(&url, "bench_api_load"))
+                .expect("a scratch database on HALFWAVE_BENCH_POSTGRES_URL")
+        });
     let store_at = match &postgres {
         Some(database) => database.url().to_string(),
         None => db_path.to_str().expect("UTF-8 path").to_string(),
@@ -531,7 +533,11 @@ fn main() {
     let seeded_runs = (DEVICES * RUNS_PER_DEVICE) as i64;
     println!(
         "stored points: {stored_points} in {seeded_runs} completed runs, on {}",
-        if postgres.is_some() { "PostgreSQL" } else { "SQLite" }
+        if postgres.is_some() {
+            "PostgreSQL"
+        } else {
+            "SQLite"
+        }
     );
 
     let (daemon, address) = start_daemon(dir.path(), postgres.as_ref().map(|d| d.url()));

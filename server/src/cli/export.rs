@@ -40,7 +40,7 @@ pub struct ExportArgs {
 /// The CSV header; units in every name. The run's record (device, chain, instruments, and after
 /// the measured values the operator, software, analysis method and how each instrument was
 /// driven) is repeated on every row so that a row read alone still says what it is.
-pub const CSV_HEADER: &str = "run_id,device_serial,chain_name,chain_version,source_identity,analyzer_identity,frequency_index,level_index,frequency_hz,generator_level_dbm,level_at_modulator_dbm,v_peak_volts,modulation_index,modulation_index_uncertainty,asymmetry_db,v_pi_volts,v_pi_uncertainty_volts,measured_at_unix_ms,submitted_by,submitted_by_token_id,software_version,analysis_method,source_connection,analyzer_connection";
+pub const CSV_HEADER: &str = "run_id,device_serial,chain_name,chain_version,source_identity,analyzer_identity,frequency_index,level_index,frequency_hz,generator_level_dbm,level_at_modulator_dbm,v_peak_volts,modulation_index,modulation_index_uncertainty,asymmetry_db,v_pi_volts,v_pi_uncertainty_volts,measured_at_unix_ms,submitted_by,submitted_by_token_id,software_version,analysis_method,source_connection,analyzer_connection,v_pi_combined_standard_uncertainty_volts,v_pi_coverage_factor,v_pi_expanded_uncertainty_volts";
 
 /// The driver's choices for a run's instruments in one role, "item: value" joined by "; " (and
 /// " then " between instruments, as [`identities`]).
@@ -70,8 +70,11 @@ fn identities(run: &RunView, role: &str) -> String {
         .join(" then ")
 }
 
-/// The run and its points as CSV (`crate::csv_table::write_rows`: RFC 4180 quoting).
-pub fn points_csv(run: &RunView, points: &[PointView]) -> String {
+/// The run and its points as CSV (`crate::csv_table::write_rows`: RFC 4180 quoting). The last
+/// three columns are V_pi's uncertainty budget at the point's frequency (`budget`: combined
+/// standard uncertainty, coverage factor, expanded uncertainty), empty when the budget is not
+/// available (its inputs unknown) or has no row for that frequency.
+pub fn points_csv(run: &RunView, points: &[PointView], budget: Option<&RunBudgetView>) -> String {
     let results = &run.results;
     let record = [
         run.summary.id.to_string(),
@@ -118,6 +121,16 @@ pub fn points_csv(run: &RunView, points: &[PointView]) -> String {
             p.measured_at_unix_ms.to_string(),
         ]);
         row.extend(trailer.iter().cloned());
+        let budget = budget.and_then(|b| {
+            b.frequencies
+                .iter()
+                .find(|f| f.frequency_index == p.frequency_index)
+        });
+        row.extend([
+            optional(budget.map(|b| b.combined_standard_uncertainty_volts)),
+            optional(budget.map(|b| b.coverage_factor)),
+            optional(budget.map(|b| b.expanded_uncertainty_volts)),
+        ]);
         row
     });
     crate::csv_table::write_rows(std::iter::once(header).chain(rows))
@@ -169,7 +182,12 @@ pub fn run(args: ExportArgs) -> Result<(), CliError> {
         Ok::<_, CliError>((run, points, budget))
     })?;
     let text = match args.format {
-        ExportFormat::Csv => points_csv(&run, &points),
+        ExportFormat::Csv => {
+            if let Err(reason) = &budget {
+                eprintln!("run {run_id}: the V_pi budget columns are left empty: {reason}");
+            }
+            points_csv(&run, &points, budget.as_ref().ok())
+        }
         ExportFormat::Json => {
             let mut value = serde_json::to_value(&run)
                 .map_err(|e| CliError::caused("cannot encode the run", e))?;
@@ -293,31 +311,57 @@ mod tests {
 
     #[test]
     fn csv_rows_carry_the_record_their_frequency_v_pi_and_leave_missing_values_empty() {
-        let csv = points_csv(&run(), &[point(0, Some(0.67)), point(1, None)]);
+        let csv = points_csv(&run(), &[point(0, Some(0.67)), point(1, None)], None);
         let lines: Vec<&str> = csv.lines().collect();
         assert_eq!(lines[0], CSV_HEADER);
         let record = "7,EG-PM-0042,bench-7 chain,2,Example Instruments / SG-1 / SN1 / 1.0 @ TCPIP::192.0.2.7::5025::SOCKET,Example Instruments / OSA-2 / SN1 / 1.0 @ TCPIP::192.0.2.7::5025::SOCKET";
         let trailer = "op,4,halfwave 0.1.0 (git 0123456789ab),method v1,\"frequency axis: source start_stop, hz\",\"frequency axis: analyzer start_stop, hz\"";
         assert_eq!(
             lines[1],
-            format!("{record},0,0,2000000000,10,8,0.7943,0.67,0.01,,3.7,0.02,5,{trailer}")
+            format!("{record},0,0,2000000000,10,8,0.7943,0.67,0.01,,3.7,0.02,5,{trailer},,,")
         );
         // A point whose spectrum was not analysed, at a frequency without a V_pi fit.
         assert_eq!(
             lines[2],
-            format!("{record},1,0,2000000000,10,8,0.7943,,,,,,5,{trailer}")
+            format!("{record},1,0,2000000000,10,8,0.7943,,,,,,5,{trailer},,,")
         );
         // A cell with a comma or a quote is quoted, inner quotes doubled (RFC 4180, section 2,
         // rules 6 and 7).
         let mut quoted = run();
         quoted.summary.chain_name = "bench-7, \"spare\" chain".into();
-        let csv = points_csv(&quoted, &[point(0, None)]);
+        let csv = points_csv(&quoted, &[point(0, None)], None);
         assert!(
             csv.lines()
                 .nth(1)
                 .unwrap()
                 .starts_with("7,EG-PM-0042,\"bench-7, \"\"spare\"\" chain\",2,"),
             "{csv}"
+        );
+    }
+
+    #[test]
+    fn csv_rows_carry_the_budget_of_their_frequency_when_there_is_one() {
+        let budget: RunBudgetView = serde_json::from_value(serde_json::json!({
+            "run_id": 7, "chain_uncertainty_from": "query", "source_level_accuracy_db": 0.5,
+            "source_level_accuracy_from": "query", "frequencies": [{
+                "frequency_index": 0, "frequency_hz": 2e9, "v_pi_volts": 3.7, "rows": [],
+                "combined_standard_uncertainty_volts": 0.05, "coverage_factor": 2.0,
+                "expanded_uncertainty_volts": 0.1
+            }]
+        }))
+        .unwrap();
+        let csv = points_csv(
+            &run(),
+            &[point(0, Some(0.67)), point(1, None)],
+            Some(&budget),
+        );
+        let lines: Vec<&str> = csv.lines().collect();
+        assert!(lines[1].ends_with(",0.05,2,0.1"), "{}", lines[1]);
+        // Frequency 1 has no budget row: its cells stay empty.
+        assert!(
+            lines[2].ends_with("analyzer start_stop, hz\",,,"),
+            "{}",
+            lines[2]
         );
     }
 }
