@@ -11,6 +11,7 @@
 
 use halfwave::config::Config;
 use halfwave::engine::chain_run::{ChainCalibrationRequest, ChainRunResult};
+use halfwave::engine::events::{ChainRunEnd, ProgressEvent};
 use halfwave::engine::{Engine, SubmitError};
 use halfwave::store::{ChainRunRecord, Store};
 use halfwave_drivers::sim::server::{SimServer, SimServerConfig};
@@ -110,12 +111,51 @@ async fn wait_for_rf_on(sim: &SimBench) {
 async fn the_stored_chain_recovers_the_true_gain_within_its_expanded_uncertainty() {
     let (_dir, server, store, engine) = start(0.0, 31, true).await;
     let sim = server.bench().clone();
+    let mut events = engine.subscribe();
     let id = engine
         .submit_chain_calibration(request("bench-sim chain"), "test")
         .await
         .unwrap();
     let run = wait_for_end(&store, id).await;
     assert_eq!(run.state, "completed", "cause: {:?}", run.cause);
+    // Its progress went out as events: one per frequency, then the end with the chain version.
+    let mut seen = Vec::new();
+    let finished = tokio::time::timeout(Duration::from_secs(10), async {
+        loop {
+            match events.recv().await.unwrap() {
+                ProgressEvent::ChainFrequency {
+                    chain_run_id,
+                    completed_frequencies,
+                    total_frequencies,
+                    frequency_hz,
+                    gain_db,
+                    ..
+                } if chain_run_id == id => {
+                    assert_eq!(total_frequencies, FREQUENCIES_HZ.len());
+                    assert_eq!(completed_frequencies, seen.len() + 1);
+                    seen.push((frequency_hz, gain_db));
+                }
+                ProgressEvent::ChainFinished {
+                    chain_run_id,
+                    state,
+                    chain_id,
+                    bench,
+                    ..
+                } if chain_run_id == id => break (state, chain_id, bench),
+                _ => {}
+            }
+        }
+    })
+    .await
+    .expect("the chain calibration's events arrive");
+    assert_eq!(
+        finished,
+        (
+            ChainRunEnd::Completed,
+            run.chain_calibration_id,
+            "sim".to_string()
+        )
+    );
     assert!(!sim.rf_output_on(), "RF must be off after the calibration");
     assert!(sim.sensor_damage_events().is_empty());
     assert!(!sim.overdriven());
@@ -126,6 +166,13 @@ async fn the_stored_chain_recovers_the_true_gain_within_its_expanded_uncertainty
         .unwrap();
     assert_eq!((chain.name.as_str(), chain.version), ("bench-sim chain", 1));
     assert_eq!(chain.points.len(), FREQUENCIES_HZ.len());
+    // The events carried the stored gains.
+    let stored: Vec<(f64, f64)> = chain
+        .points
+        .iter()
+        .map(|p| (p.frequency_hz, p.gain_db))
+        .collect();
+    assert_eq!(seen, stored);
     let scenario = sim.scenario();
     for point in &chain.points {
         let truth = scenario.generator_to_modulator_gain_at(point.frequency()).0;

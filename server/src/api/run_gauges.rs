@@ -110,6 +110,8 @@ impl RunGauges {
             ProgressEvent::Queued { .. }
             | ProgressEvent::Frequency { .. }
             | ProgressEvent::Response { .. }
+            | ProgressEvent::ChainFrequency { .. }
+            | ProgressEvent::ChainFinished { .. }
             | ProgressEvent::BenchSafety { .. } => {}
         }
     }

@@ -16,6 +16,7 @@
 //!   instrument's error, a panic (the [`RfOffGuard`] acts from `Drop`) and daemon shutdown. An
 //!   output that cannot be confirmed off flags the bench (`rf_safety`) as a measurement run does.
 
+use super::events::{ChainRunEnd, ProgressEvent};
 use super::plan::{FieldError, PlanErrors};
 use super::safety::{self, RfOffGuard, SharedSource};
 use super::{lock, BenchSlot, Engine, EngineError, SubmitError};
@@ -402,7 +403,8 @@ impl Engine {
             .get(&job.id)
             .cloned()
             .unwrap_or_default();
-        let finish = |state: &'static str, cause: Option<String>, chain: Option<(i64, String)>| async move {
+        let finish = |end: ChainRunEnd, cause: Option<String>, chain: Option<(i64, String)>| async move {
+            let state = end.as_str();
             let (chain_id, result) = chain.unzip();
             if let Err(e) = store
                 .finish_chain_run(job.id, state, cause.as_deref(), chain_id, result.as_deref())
@@ -417,21 +419,33 @@ impl Engine {
                 cause = cause.as_deref().unwrap_or(""),
                 "chain calibration ended"
             );
+            let _ = self.inner.events.send(ProgressEvent::ChainFinished {
+                chain_run_id: job.id,
+                bench: slot.name.clone(),
+                state: end,
+                cause,
+                chain_id,
+            });
         };
         if token.is_cancelled() {
             return finish(
-                "cancelled",
+                ChainRunEnd::Cancelled,
                 Some("cancelled before it started".into()),
                 None,
             )
             .await;
         }
         let Some(sensor) = slot.sensor.clone() else {
-            return finish("failed", Some("the bench has no power sensor".into()), None).await;
+            return finish(
+                ChainRunEnd::Failed,
+                Some("the bench has no power sensor".into()),
+                None,
+            )
+            .await;
         };
         if let Err(e) = store.start_chain_run(job.id).await {
             return finish(
-                "failed",
+                ChainRunEnd::Failed,
                 Some(format!("the store refused to start it: {e}")),
                 None,
             )
@@ -439,7 +453,12 @@ impl Engine {
         }
         let source = slot.source.clone();
         let plan = job.plan.clone();
-        let task = tokio::spawn(measure_chain(plan.clone(), source, sensor, token));
+        let progress = ChainProgress {
+            events: self.inner.events.clone(),
+            chain_run_id: job.id,
+            bench: slot.name.clone(),
+        };
+        let task = tokio::spawn(measure_chain(plan.clone(), source, sensor, token, progress));
         let outcome = match task.await {
             Ok(outcome) => outcome,
             Err(join) => match safety::switch_off(&slot.source).await {
@@ -468,11 +487,11 @@ impl Engine {
                 {
                     Ok(chain) => {
                         let text = serde_json::to_string(&result).unwrap_or_default();
-                        finish("completed", None, Some((chain.id, text))).await
+                        finish(ChainRunEnd::Completed, None, Some((chain.id, text))).await
                     }
                     Err(e) => {
                         finish(
-                            "failed",
+                            ChainRunEnd::Failed,
                             Some(format!("the chain table could not be stored: {e}")),
                             None,
                         )
@@ -482,19 +501,21 @@ impl Engine {
             }
             ChainOutcome::Cancelled if self.inner.shutdown.is_cancelled() => {
                 finish(
-                    "failed",
+                    ChainRunEnd::Failed,
                     Some("the daemon shut down; submit it again".into()),
                     None,
                 )
                 .await
             }
-            ChainOutcome::Cancelled => finish("cancelled", Some("cancelled".into()), None).await,
-            ChainOutcome::Failed(cause) => finish("failed", Some(cause), None).await,
+            ChainOutcome::Cancelled => {
+                finish(ChainRunEnd::Cancelled, Some("cancelled".into()), None).await
+            }
+            ChainOutcome::Failed(cause) => finish(ChainRunEnd::Failed, Some(cause), None).await,
             ChainOutcome::OutputUnconfirmed(cause) => {
                 slot.safety
                     .output_unconfirmed(slot.source.clone(), cause.clone())
                     .await;
-                finish("failed", Some(cause), None).await
+                finish(ChainRunEnd::Failed, Some(cause), None).await
             }
         }
     }
@@ -515,12 +536,13 @@ async fn measure_chain(
     source: SharedSource,
     sensor: SharedSensor,
     cancel: CancellationToken,
+    progress: ChainProgress,
 ) -> ChainOutcome {
     let guard = RfOffGuard::arm(source.clone());
     let result = tokio::select! {
         biased;
         _ = cancel.cancelled() => Err(Stop::Cancelled),
-        r = measure_all(&plan, &source, &sensor) => r,
+        r = measure_all(&plan, &source, &sensor, &progress) => r,
     };
     let off = guard.release().await;
     match (result, off) {
@@ -540,10 +562,18 @@ async fn measure_chain(
     }
 }
 
+/// Where a chain calibration reports each measured frequency.
+struct ChainProgress {
+    events: tokio::sync::broadcast::Sender<ProgressEvent>,
+    chain_run_id: i64,
+    bench: String,
+}
+
 async fn measure_all(
     plan: &ChainPlan,
     source: &SharedSource,
     sensor: &SharedSensor,
+    progress: &ChainProgress,
 ) -> Result<ChainRunResult, Stop> {
     let mut frequencies = Vec::with_capacity(plan.frequencies.len());
     let limits = sensor.lock().await.limits();
@@ -554,6 +584,15 @@ async fn measure_all(
         let readings = readings?;
         let estimate: GainEstimate = gain_from_readings(&readings, plan.figures)
             .map_err(|e| Stop::Failed(format!("at {frequency}: {e}")))?;
+        let _ = progress.events.send(ProgressEvent::ChainFrequency {
+            chain_run_id: progress.chain_run_id,
+            bench: progress.bench.clone(),
+            completed_frequencies: frequencies.len() + 1,
+            total_frequencies: plan.frequencies.len(),
+            frequency_hz: frequency.0,
+            gain_db: estimate.gain_db,
+            gain_uncertainty_db: estimate.standard_uncertainty_db,
+        });
         frequencies.push(ChainFrequencyResult {
             frequency_hz: frequency.0,
             gain_db: estimate.gain_db,

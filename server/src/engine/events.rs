@@ -57,6 +57,26 @@ pub enum ProgressEvent {
         f_3db_hz: Option<f64>,
         f_6db_hz: Option<f64>,
     },
+    /// A chain calibration (`POST /chain-calibration-runs`, power sensor) measured one
+    /// frequency: the chain's gain there and its standard uncertainty. Chain calibrations have
+    /// their own ids (`chain_run_id`, not a run's); every watcher gets these events.
+    ChainFrequency {
+        chain_run_id: i64,
+        bench: String,
+        completed_frequencies: usize,
+        total_frequencies: usize,
+        frequency_hz: f64,
+        gain_db: f64,
+        gain_uncertainty_db: f64,
+    },
+    /// A chain calibration ended; `chain_id` is the stored chain version when it completed.
+    ChainFinished {
+        chain_run_id: i64,
+        bench: String,
+        state: ChainRunEnd,
+        cause: Option<String>,
+        chain_id: Option<i64>,
+    },
     /// The run ended: completed, failed, cancelled or interrupted (the lowercase word in JSON).
     Finished {
         run_id: i64,
@@ -72,6 +92,27 @@ pub enum ProgressEvent {
     },
 }
 
+/// How a chain calibration ended, in a [`ProgressEvent::ChainFinished`] (the lowercase word in
+/// JSON, as stored in `chain_calibration_runs.state`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ChainRunEnd {
+    Completed,
+    Failed,
+    Cancelled,
+}
+
+impl ChainRunEnd {
+    /// The stored word.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ChainRunEnd::Completed => "completed",
+            ChainRunEnd::Failed => "failed",
+            ChainRunEnd::Cancelled => "cancelled",
+        }
+    }
+}
+
 /// One frequency of the response curve in a [`ProgressEvent::Response`].
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ResponsePointEvent {
@@ -81,7 +122,8 @@ pub struct ResponsePointEvent {
 }
 
 impl ProgressEvent {
-    /// The run this event belongs to; `None` for bench events, which every watcher gets.
+    /// The run this event belongs to; `None` for bench and chain calibration events, which every
+    /// watcher gets.
     pub fn run_id(&self) -> Option<i64> {
         match self {
             ProgressEvent::Queued { run_id, .. }
@@ -91,7 +133,9 @@ impl ProgressEvent {
             | ProgressEvent::Frequency { run_id, .. }
             | ProgressEvent::Response { run_id, .. }
             | ProgressEvent::Finished { run_id, .. } => Some(*run_id),
-            ProgressEvent::BenchSafety { .. } => None,
+            ProgressEvent::ChainFrequency { .. }
+            | ProgressEvent::ChainFinished { .. }
+            | ProgressEvent::BenchSafety { .. } => None,
         }
     }
 }

@@ -47,7 +47,7 @@ pub struct EventsQuery {
 pub const MAX_STREAM_TIMEOUT_S: f64 = 86_400.0;
 
 /// What the event stream carries, for the document.
-const STREAM_DESCRIPTION: &str = "Server-sent events (`text/event-stream`). Each message's `data:` is one JSON object whose `event` member names its kind: `queued`, `started`, `point`, `point_failed`, `frequency`, `response`, `finished` (run progress, each with `run_id`), `bench_safety` (a bench's RF safety state, sent to every watcher) or `lagged` (`missed_events`: the watcher fell behind). `id:` counts messages per connection; a comment line every 15 s keeps the connection alive. The stream ends after `timeout_s` when given, and when the daemon stops.";
+const STREAM_DESCRIPTION: &str = "Server-sent events (`text/event-stream`). Each message's `data:` is one JSON object whose `event` member names its kind: `queued`, `started`, `point`, `point_failed`, `frequency`, `response`, `finished` (run progress, each with `run_id`), `bench_safety` (a bench's RF safety state, sent to every watcher), `chain_frequency` and `chain_finished` (a chain calibration's progress and end, each with `chain_run_id`, sent to every watcher) or `lagged` (`missed_events`: the watcher fell behind). `id:` counts messages per connection; a comment line every 15 s keeps the connection alive. The stream ends after `timeout_s` when given, and when the daemon stops.";
 
 /// Live progress of runs as server-sent events; each `data:` is one JSON progress event.
 #[utoipa::path(get, path = "/api/v1/events", tag = "runs", security(("bearer" = [])),
@@ -181,5 +181,35 @@ mod tests {
                 )
             );
         }
+    }
+
+    #[test]
+    fn chain_calibration_events_name_their_chain_run_and_go_to_every_watcher() {
+        use crate::engine::events::ChainRunEnd;
+        let end = ProgressEvent::ChainFinished {
+            chain_run_id: 3,
+            bench: "sim".into(),
+            state: ChainRunEnd::Completed,
+            cause: None,
+            chain_id: Some(8),
+        };
+        assert_eq!(
+            event_json(&end),
+            r#"{"event":"chain_finished","chain_run_id":3,"bench":"sim","state":"completed","cause":null,"chain_id":8}"#
+        );
+        assert_eq!(end.run_id(), None);
+        let frequency = ProgressEvent::ChainFrequency {
+            chain_run_id: 3,
+            bench: "sim".into(),
+            completed_frequencies: 1,
+            total_frequencies: 5,
+            frequency_hz: 2e8,
+            gain_db: 18.25,
+            gain_uncertainty_db: 0.08,
+        };
+        assert!(
+            event_json(&frequency).starts_with(r#"{"event":"chain_frequency","chain_run_id":3,"#)
+        );
+        assert_eq!(frequency.run_id(), None);
     }
 }
