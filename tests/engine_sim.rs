@@ -414,7 +414,10 @@ async fn a_stored_unconfirmed_output_is_switched_off_at_start_and_holds_the_benc
         "the start-up interlock switched it off"
     );
     let status = engine.benches().remove(0);
-    assert_eq!(status.safety_state, "awaiting_acknowledgement");
+    assert_eq!(
+        status.safety_state,
+        halfwave::engine::rf_safety::SafetyState::AwaitingAcknowledgement
+    );
     assert!(status
         .safety_fault
         .unwrap()
@@ -435,7 +438,10 @@ async fn a_stored_unconfirmed_output_is_switched_off_at_start_and_holds_the_benc
         .acknowledge("sim", "op", "checked the source")
         .await
         .unwrap();
-    assert_eq!(engine.benches()[0].safety_state, "clear");
+    assert_eq!(
+        engine.benches()[0].safety_state,
+        halfwave::engine::rf_safety::SafetyState::Clear
+    );
     assert!(store.bench_safety_faults().await.unwrap().is_empty());
     let (state, cause) = wait_for_end(&mut events, run_id).await;
     assert_eq!(state, "completed", "{cause:?}");

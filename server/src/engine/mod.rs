@@ -95,7 +95,7 @@ pub struct BenchStatus {
     /// `clear`, `output_unconfirmed` (the RF output could not be read back off; the daemon keeps
     /// trying and no run starts) or `awaiting_acknowledgement` (confirmed off after a fault; an
     /// operator must acknowledge before runs start again).
-    pub safety_state: String,
+    pub safety_state: rf_safety::SafetyState,
     /// The fault behind a state other than `clear`: cause, since when, when confirmed off.
     pub safety_fault: Option<BenchSafetyRecord>,
 }
@@ -1129,10 +1129,7 @@ impl BenchSlot {
             analyzer_identity,
             active_run_id: active,
             queued_run_ids: queued,
-            safety_state: safety_fault
-                .as_ref()
-                .map_or("clear", |f| f.fault.as_str())
-                .to_string(),
+            safety_state: rf_safety::SafetyState::of(safety_fault.as_ref().map(|f| f.fault)),
             safety_fault,
         }
     }
