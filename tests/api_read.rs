@@ -704,7 +704,7 @@ async fn the_budget_reads_the_chain_tables_uncertainty_and_the_benchs_stated_lev
         .unwrap();
     let mut config = Config::simulated(dir.path().to_path_buf(), 0.0, 3);
     config.benches[0].name = "bench-a".into(); // the seeded run's bench
-    config.benches[0].source_level_accuracy_db = Some(0.7);
+    config.benches[0].source_level_accuracy_db = Some(Db(0.7));
     let engine = Engine::start(&config, store.clone()).await.unwrap();
     let app =
         api_support::serve_state(AppState::with_engine(engine, ApiSettings::default()), dir).await;
