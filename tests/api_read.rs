@@ -959,8 +959,8 @@ async fn the_calibration_report_is_one_escaped_self_contained_html_record_of_the
             .iter()
             .map(|&(f, v, u)| halfwave::analysis::VpiAtFrequency {
                 frequency: halfwave::units::Hz(f),
-                v_pi: halfwave::units::Volts(v),
-                uncertainty: halfwave::units::Volts(u),
+                v_pi: halfwave::units::VoltsPeak(v),
+                uncertainty: halfwave::units::VoltsPeak(u),
             })
             .collect::<Vec<_>>(),
     )
