@@ -704,7 +704,7 @@ async fn the_budget_reads_the_chain_tables_uncertainty_and_the_benchs_stated_lev
         .unwrap();
     let mut config = Config::simulated(dir.path().to_path_buf(), 0.0, 3);
     config.benches[0].name = "bench-a".into(); // the seeded run's bench
-    config.benches[0].source_level_accuracy_db = Some(0.7);
+    config.benches[0].source_level_accuracy_db = Some(Db(0.7));
     let engine = Engine::start(&config, store.clone()).await.unwrap();
     let app =
         api_support::serve_state(AppState::with_engine(engine, ApiSettings::default()), dir).await;
@@ -959,8 +959,8 @@ async fn the_calibration_report_is_one_escaped_self_contained_html_record_of_the
             .iter()
             .map(|&(f, v, u)| halfwave::analysis::VpiAtFrequency {
                 frequency: halfwave::units::Hz(f),
-                v_pi: halfwave::units::Volts(v),
-                uncertainty: halfwave::units::Volts(u),
+                v_pi: halfwave::units::VoltsPeak(v),
+                uncertainty: halfwave::units::VoltsPeak(u),
             })
             .collect::<Vec<_>>(),
     )

@@ -11,7 +11,7 @@
 
 use halfwave::analysis::{response_curve, VpiAtFrequency};
 use halfwave::cli::demo::{FREQUENCY_COUNT, START_HZ, STOP_HZ};
-use halfwave::units::{Hz, Volts};
+use halfwave::units::{Hz, VoltsPeak};
 use halfwave_drivers::sim::Scenario;
 use std::process::Command;
 
@@ -77,8 +77,8 @@ fn demo_recovers_the_simulated_v_pi_and_writes_svg_plots() {
         }
         truth.push(VpiAtFrequency {
             frequency: Hz(f),
-            v_pi: Volts(expected),
-            uncertainty: Volts(0.0),
+            v_pi: VoltsPeak(expected),
+            uncertainty: VoltsPeak(0.0),
         });
     }
     println!("{table}");
@@ -105,7 +105,7 @@ fn demo_recovers_the_simulated_v_pi_and_writes_svg_plots() {
             .iter()
             .enumerate()
             .map(|(i, p)| VpiAtFrequency {
-                v_pi: Volts(p.v_pi.0 * if i == 0 { reference } else { others }),
+                v_pi: VoltsPeak(p.v_pi.0 * if i == 0 { reference } else { others }),
                 ..*p
             })
             .collect();

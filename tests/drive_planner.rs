@@ -159,7 +159,7 @@ async fn the_daemon_limit_is_the_engines() {
         .await
         .unwrap();
     let limits = Limits {
-        max_level_at_modulator_dbm: 15.0,
+        max_level_at_modulator_dbm: Dbm(15.0),
     };
     let engine = Engine::start_with(limits, store, Vec::new()).await.unwrap();
     let app = serve_state(AppState::with_engine(engine, ApiSettings::default()), dir).await;

@@ -18,6 +18,7 @@ use halfwave::engine::events::ProgressEvent;
 use halfwave::engine::Engine;
 use halfwave::store::{RunState, Store};
 use halfwave_drivers::sim::{Role, Scenario, SimBench};
+use halfwave_units::{Db, Dbm};
 use std::time::Duration;
 
 /// An engine on one simulated bench named "sim".
@@ -113,7 +114,7 @@ async fn plan_over_the_limit_is_refused_before_any_command() {
     let chain = upload_true_chain(&store, &scenario).await;
     let engine = start_engine(
         Limits {
-            max_level_at_modulator_dbm: 10.0,
+            max_level_at_modulator_dbm: Dbm(10.0),
         },
         store.clone(),
         &sim,
@@ -414,7 +415,10 @@ async fn a_stored_unconfirmed_output_is_switched_off_at_start_and_holds_the_benc
         "the start-up interlock switched it off"
     );
     let status = engine.benches().remove(0);
-    assert_eq!(status.safety_state, "awaiting_acknowledgement");
+    assert_eq!(
+        status.safety_state,
+        halfwave::engine::rf_safety::SafetyState::AwaitingAcknowledgement
+    );
     assert!(status
         .safety_fault
         .unwrap()
@@ -435,7 +439,10 @@ async fn a_stored_unconfirmed_output_is_switched_off_at_start_and_holds_the_benc
         .acknowledge("sim", "op", "checked the source")
         .await
         .unwrap();
-    assert_eq!(engine.benches()[0].safety_state, "clear");
+    assert_eq!(
+        engine.benches()[0].safety_state,
+        halfwave::engine::rf_safety::SafetyState::Clear
+    );
     assert!(store.bench_safety_faults().await.unwrap().is_empty());
     let (state, cause) = wait_for_end(&mut events, run_id).await;
     assert_eq!(state, "completed", "{cause:?}");
@@ -474,11 +481,11 @@ async fn adaptive_levels_recover_v_pi_with_fewer_sweeps_than_the_blind_ramp() {
     adaptive.device.serial = "EG-PM-0043".into();
     const MAX_POINTS: usize = 6;
     adaptive.levels = LevelSpec::Adaptive {
-        min_dbm: 0.0,
-        max_dbm: 20.0,
+        min_dbm: Dbm(0.0),
+        max_dbm: Dbm(20.0),
         target_relative_uncertainty: 0.003,
         max_points: Some(MAX_POINTS),
-        max_step_db: Some(6.0),
+        max_step_db: Some(Db(6.0)),
     };
     let adaptive_id = engine.submit(adaptive, "test").await.unwrap();
     assert_eq!(wait_for_end(&mut events, adaptive_id).await.0, "completed");

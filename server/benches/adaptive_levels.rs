@@ -25,7 +25,7 @@ use halfwave::engine::plan::{ChainSpec, FrequencySpec, LevelSpec, PlanRequest};
 use halfwave::engine::Engine;
 use halfwave::store::ChainCalibrationPoint;
 use halfwave_drivers::sim::Scenario;
-use halfwave_units::{Db, Hz};
+use halfwave_units::{Db, Dbm, Hz};
 use std::time::Instant;
 
 const CHAIN: &str = "adaptive benchmark chain";
@@ -45,7 +45,7 @@ struct Outcome {
 fn plan(serial: &str, levels: LevelSpec, rf_limit_dbm: f64) -> PlanRequest {
     let frequencies = demo_frequencies_hz();
     let mut plan = support::plan(serial, &frequencies);
-    plan.device.rf_input_limit_dbm = rf_limit_dbm;
+    plan.device.rf_input_limit_dbm = Dbm(rf_limit_dbm);
     plan.chain = ChainSpec::Stored {
         name: CHAIN.into(),
         version: None,
@@ -123,13 +123,13 @@ fn main() {
             .unwrap();
         let limit = scenario.modulator.max_rf_input_dbm;
         let ramp = LevelSpec::Ramp {
-            start_dbm: RAMP_START_DBM,
-            stop_dbm: RAMP_STOP_DBM,
-            step_db: RAMP_STEP_DB,
+            start_dbm: Dbm(RAMP_START_DBM),
+            stop_dbm: Dbm(RAMP_STOP_DBM),
+            step_db: Db(RAMP_STEP_DB),
         };
         let adaptive = LevelSpec::Adaptive {
-            min_dbm: RAMP_START_DBM,
-            max_dbm: RAMP_STOP_DBM,
+            min_dbm: Dbm(RAMP_START_DBM),
+            max_dbm: Dbm(RAMP_STOP_DBM),
             target_relative_uncertainty: TARGET,
             max_points: None,
             max_step_db: None,

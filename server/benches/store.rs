@@ -11,7 +11,7 @@ use halfwave::store::scratch_db::ScratchDatabase;
 use halfwave::store::{
     trace_codec, ChainCalibrationPoint, NewDevice, NewPoint, NewRun, RunState, Store,
 };
-use halfwave::units::{Db, Dbm, Hz, Nanometers, Trace, Volts};
+use halfwave::units::{Db, Dbm, Hz, Nanometers, Trace, VoltsPeak};
 use std::hint::black_box;
 
 /// A 10,001-point sweep around 193.4 THz: comb lines every 1 GHz on a floor with deterministic
@@ -72,7 +72,7 @@ fn bench_store(c: &mut Criterion) {
                     frequency: Hz::from_ghz(10.0),
                     generator_level: Dbm(0.0),
                     level_at_modulator: Dbm(20.0),
-                    v_peak: Volts(3.162),
+                    v_peak: VoltsPeak(3.162),
                     modulation_index: Some(1.2),
                     modulation_index_uncertainty: Some(0.01),
                     asymmetry: Some(Db(0.1)),

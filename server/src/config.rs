@@ -9,13 +9,14 @@
 //! start-up with the line and the reason; nothing starts half-configured.
 
 use crate::notify::settings::WebhookConfig;
+use halfwave_units::{Db, Dbm};
 use serde::{Deserialize, Serialize};
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 
 /// The hard ceiling at the modulator input when the file sets none (dBm). Lower it in the file to
 /// suit your devices; no API call can raise it.
-pub const DEFAULT_MAX_LEVEL_AT_MODULATOR_DBM: f64 = 24.0;
+pub const DEFAULT_MAX_LEVEL_AT_MODULATOR_DBM: Dbm = Dbm(24.0);
 
 /// Where the configuration file is looked for when no `--config` is given: the environment
 /// variable [`CONFIG_ENV`] if set, else this path (where `deploy/` installs it).
@@ -72,7 +73,7 @@ pub enum ConfigError {
 pub struct Limits {
     /// The hard ceiling of the RF level at any modulator input, after the drive chain.
     #[serde(default = "default_max_level")]
-    pub max_level_at_modulator_dbm: f64,
+    pub max_level_at_modulator_dbm: Dbm,
 }
 
 impl Default for Limits {
@@ -83,7 +84,7 @@ impl Default for Limits {
     }
 }
 
-fn default_max_level() -> f64 {
+fn default_max_level() -> Dbm {
     DEFAULT_MAX_LEVEL_AT_MODULATOR_DBM
 }
 
@@ -135,7 +136,7 @@ pub struct BenchConfig {
     /// The generator's level accuracy, +/- dB, as its data sheet states it over the bench's
     /// frequencies (0 to 10); V_pi's uncertainty budget reads it as a rectangular distribution.
     #[serde(default)]
-    pub source_level_accuracy_db: Option<f64>,
+    pub source_level_accuracy_db: Option<Db>,
     /// Optional RF power sensor for calibrating the drive chain (`halfwave chain calibrate`),
     /// like `source`: `{ kind = "scpi", resource = "...", profile = "..." }` or
     /// `{ kind = "simulated" }`.
@@ -275,6 +276,7 @@ impl Config {
                 "HALFWAVE_MAX_LEVEL_AT_MODULATOR_DBM" => {
                     self.limits.max_level_at_modulator_dbm = value
                         .parse()
+                        .map(Dbm)
                         .map_err(|_| invalid(format!("{value:?} is not a number of dBm")))?
                 }
                 _ => {}
@@ -290,7 +292,7 @@ impl Config {
             field: field.to_string(),
             message,
         };
-        let max = self.limits.max_level_at_modulator_dbm;
+        let max = self.limits.max_level_at_modulator_dbm.value();
         if !max.is_finite() || !(-30.0..=40.0).contains(&max) {
             return Err(invalid(
                 "limits.max_level_at_modulator_dbm",
@@ -342,7 +344,7 @@ impl Config {
                     }
                 }
             }
-            if let Some(accuracy) = bench.source_level_accuracy_db {
+            if let Some(Db(accuracy)) = bench.source_level_accuracy_db {
                 if !accuracy.is_finite() || !(0.0..=10.0).contains(&accuracy) {
                     return Err(invalid(
                         &format!("{field}.source_level_accuracy_db"),
@@ -487,7 +489,7 @@ mod tests {
         let bench = "[[bench]]\nname = \"b\"\nsource = { kind = \"simulated\" }\nanalyzer = { kind = \"simulated\" }\n[bench.simulation]\n";
         let good = parse(&format!("{bench}\n[[bench]]\nname = \"c\"\nsource_level_accuracy_db = 0.5\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n[bench.simulation]\n")).unwrap();
         assert_eq!(good.benches[0].source_level_accuracy_db, None);
-        assert_eq!(good.benches[1].source_level_accuracy_db, Some(0.5));
+        assert_eq!(good.benches[1].source_level_accuracy_db, Some(Db(0.5)));
         let err = parse("[[bench]]\nname = \"b\"\nsource_level_accuracy_db = -0.5\nsource = { kind = \"simulated\" }\nanalyzer = { kind = \"simulated\" }\n[bench.simulation]\n").unwrap_err();
         assert!(
             err.to_string()

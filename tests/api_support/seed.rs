@@ -12,7 +12,7 @@ use halfwave::store::{
     ChainCalibrationPoint, NewDevice, NewFrequencyResult, NewPoint, NewRun, RunProvenance,
     RunState, Store,
 };
-use halfwave::units::{Db, Dbm, Hz, Nanometers, Volts};
+use halfwave::units::{Db, Dbm, Hz, Nanometers, VoltsPeak};
 
 /// What one seeded run holds.
 pub struct SeededRun {
@@ -107,7 +107,7 @@ pub async fn seed_completed_run(
                     frequency: Hz(f),
                     generator_level: Dbm(level),
                     level_at_modulator: Dbm(at_modulator),
-                    v_peak: Volts(v_peak),
+                    v_peak: VoltsPeak(v_peak),
                     modulation_index: Some(beta),
                     modulation_index_uncertainty: Some(0.002),
                     asymmetry: Some(Db(0.0)),
@@ -251,8 +251,8 @@ async fn save_result(
             run_id,
             frequency_index: u32::try_from(frequency_index).expect("small index"),
             frequency: Hz(f),
-            v_pi: Volts(v_pi),
-            v_pi_uncertainty: Volts(u),
+            v_pi: VoltsPeak(v_pi),
+            v_pi_uncertainty: VoltsPeak(u),
             excluded_points,
             fit: serde_json::json!({"method": "seeded"}),
         })

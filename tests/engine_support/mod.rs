@@ -13,7 +13,7 @@ use halfwave::engine::plan::{
 };
 use halfwave::store::{ChainCalibrationPoint, Store};
 use halfwave_drivers::sim::{Scenario, SimBench};
-use halfwave_units::{Db, Hz};
+use halfwave_units::{Db, Dbm, Hz};
 use std::time::Duration;
 
 /// The plan's frequencies: 0.2 to 20 GHz.
@@ -29,7 +29,7 @@ pub fn plan(chain_name: &str) -> PlanRequest {
         device: DeviceSpec {
             serial: "EG-PM-0042".into(),
             model: "thin-film phase modulator (simulated)".into(),
-            rf_input_limit_dbm: 27.0,
+            rf_input_limit_dbm: Dbm(27.0),
             wavelength_nm: 1550.0,
         },
         bench: "sim".into(),
@@ -41,9 +41,9 @@ pub fn plan(chain_name: &str) -> PlanRequest {
             values_hz: FREQUENCIES_HZ.to_vec(),
         },
         levels: LevelSpec::Ramp {
-            start_dbm: 0.0,
-            stop_dbm: 20.0,
-            step_db: 2.5,
+            start_dbm: Dbm(0.0),
+            stop_dbm: Dbm(20.0),
+            step_db: Db(2.5),
         },
         settle_s: 0.0,
         averages: 1,

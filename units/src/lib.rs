@@ -134,11 +134,38 @@ quantity!(
 linear_quantity!(Db);
 
 quantity!(
-    /// A voltage in volts (peak amplitude unless a name says otherwise, or V_pi).
-    Volts,
+    /// A peak (amplitude) voltage in volts: the amplitude of a sine drive, and V_pi, the peak
+    /// drive voltage for a phase shift of pi, so that beta = pi V_peak / V_pi.
+    ///
+    /// Not interchangeable with [`VoltsRms`]: the two types do not add, compare or convert
+    /// implicitly, so an rms value cannot be passed where a peak value is wanted. The only
+    /// conversions are the sine-wave ones ([`VoltsPeak::to_rms_sine`], [`VoltsRms::to_peak_sine`])
+    /// and those from a level into the reference impedance ([`Dbm::to_volts_peak`]).
+    ///
+    /// ```compile_fail
+    /// use halfwave_units::{VoltsPeak, VoltsRms};
+    /// // An rms value is not a peak value: this does not compile.
+    /// let _sum = VoltsPeak(1.0) + VoltsRms(1.0);
+    /// ```
+    VoltsPeak,
     "V"
 );
-linear_quantity!(Volts);
+linear_quantity!(VoltsPeak);
+
+quantity!(
+    /// An rms voltage in volts (what a power into a resistance gives: V_rms = sqrt(P R)). See
+    /// [`VoltsPeak`] for why the two are separate types.
+    ///
+    /// ```compile_fail
+    /// use halfwave_units::{VoltsPeak, VoltsRms};
+    /// fn modulation_index(v_peak: VoltsPeak, v_pi: VoltsPeak) -> f64 { v_peak / v_pi }
+    /// // An rms drive must be converted first: this does not compile.
+    /// let _beta = modulation_index(VoltsRms(0.2), VoltsPeak(4.0));
+    /// ```
+    VoltsRms,
+    "V rms"
+);
+linear_quantity!(VoltsRms);
 
 quantity!(
     /// A duration in seconds.
@@ -182,6 +209,30 @@ impl Hz {
 }
 
 impl Dbm {
+    /// The rms voltage of this level into the reference impedance (50 ohm):
+    /// V_rms = sqrt(P R).
+    #[inline]
+    pub fn to_volts_rms(self) -> VoltsRms {
+        VoltsRms((self.to_watts().0 * REFERENCE_IMPEDANCE_OHMS).sqrt())
+    }
+
+    /// The peak voltage of a sine wave of this level into the reference impedance (50 ohm):
+    /// V_peak = sqrt(2) V_rms = sqrt(2 P R).
+    #[inline]
+    pub fn to_volts_peak(self) -> VoltsPeak {
+        self.to_volts_rms().to_peak_sine()
+    }
+
+    /// The level of a sine wave of peak voltage `v` into the reference impedance (50 ohm):
+    /// P = V_peak^2 / (2 R). `None` unless `v` is positive and finite.
+    #[inline]
+    pub fn from_volts_peak(v: VoltsPeak) -> Option<Dbm> {
+        if !(v.0.is_finite() && v.0 > 0.0) {
+            return None;
+        }
+        Dbm::from_watts(Watts(v.0 * v.0 / (2.0 * REFERENCE_IMPEDANCE_OHMS)))
+    }
+
     /// The power this level stands for: P(W) = 10^((L - 30) / 10).
     #[inline]
     pub fn to_watts(self) -> Watts {
@@ -254,6 +305,24 @@ impl Db {
     }
 }
 
+impl VoltsPeak {
+    /// The rms value of a sine wave of this amplitude: V_rms = V_peak / sqrt(2). Holds for a
+    /// sine only, which is what an RF drive at one frequency is.
+    #[inline]
+    pub fn to_rms_sine(self) -> VoltsRms {
+        VoltsRms(self.0 / std::f64::consts::SQRT_2)
+    }
+}
+
+impl VoltsRms {
+    /// The amplitude of a sine wave of this rms value: V_peak = sqrt(2) V_rms. Holds for a sine
+    /// only.
+    #[inline]
+    pub fn to_peak_sine(self) -> VoltsPeak {
+        VoltsPeak(self.0 * std::f64::consts::SQRT_2)
+    }
+}
+
 impl Nanometers {
     /// The optical frequency of this vacuum wavelength: f = c / lambda.
     #[inline]
@@ -292,6 +361,41 @@ mod tests {
         assert!((Dbm(30.0).to_watts().0 - 1.0).abs() < 1e-12);
         assert!((Dbm::from_watts(Watts(1e-3)).unwrap().0).abs() < 1e-12);
         assert!(Dbm::from_watts(Watts(0.0)).is_none());
+    }
+
+    #[test]
+    fn zero_dbm_into_50_ohm_in_rms_and_peak_volts() {
+        // 1 mW into 50 ohm: V_rms = sqrt(1e-3 W * 50 ohm) = sqrt(0.05) = 0.2236 V, and for a sine
+        // V_peak = sqrt(2) * 0.2236 = 0.3162 V (common practice, computed by hand).
+        assert!((Dbm(0.0).to_volts_rms().0 - 0.2236).abs() < 5e-5);
+        assert!((Dbm(0.0).to_volts_peak().0 - 0.3162).abs() < 5e-5);
+        // 20 dBm = 100 mW: V_rms = sqrt(5) = 2.236 V, V_peak = sqrt(10) = 3.162 V (computed by
+        // hand).
+        assert!((Dbm(20.0).to_volts_rms().0 - 2.236).abs() < 5e-4);
+        assert!((Dbm(20.0).to_volts_peak().0 - 3.162).abs() < 5e-4);
+        // Sine-wave rms <-> peak: 2 V rms is 2 sqrt(2) = 2.8284 V peak (common practice,
+        // computed by hand).
+        assert!((VoltsRms(2.0).to_peak_sine().0 - 2.8284).abs() < 5e-5);
+        assert!((VoltsPeak(2.8284).to_rms_sine().0 - 2.0).abs() < 5e-5);
+        // Back from a peak voltage: 0.3162 V peak into 50 ohm is 0 dBm (computed by hand).
+        assert!(
+            Dbm::from_volts_peak(VoltsPeak(0.316_227_766))
+                .unwrap()
+                .0
+                .abs()
+                < 1e-8
+        );
+        assert!(Dbm::from_volts_peak(VoltsPeak(0.0)).is_none());
+        assert!(Dbm::from_volts_peak(VoltsPeak(f64::NAN)).is_none());
+    }
+
+    #[test]
+    fn volts_serialise_as_plain_numbers() {
+        // `v_pi_volts` and `v_peak_volts` keep their JSON: a bare number.
+        assert_eq!(serde_json::to_string(&VoltsPeak(4.25)).unwrap(), "4.25");
+        assert_eq!(serde_json::to_string(&VoltsRms(0.5)).unwrap(), "0.5");
+        let back: VoltsPeak = serde_json::from_str("3.5").unwrap();
+        assert_eq!(back, VoltsPeak(3.5));
     }
 
     #[test]

@@ -9,7 +9,7 @@ use super::scenario::Scenario;
 use super::sensor::SimPowerSensor;
 use super::state::{BenchState, OverdriveEvent};
 use crate::sim::scpi_parser::ScpiError;
-use halfwave_units::{Dbm, Hz, Volts};
+use halfwave_units::{Dbm, Hz, VoltsPeak};
 use rand::SeedableRng;
 use std::sync::{Arc, Mutex, MutexGuard};
 
@@ -125,7 +125,7 @@ impl SimBench {
     }
 
     /// Truth: V_pi of the modulator at `f` (same as `scenario().v_pi_at(f)`).
-    pub fn v_pi_at(&self, f: Hz) -> Volts {
+    pub fn v_pi_at(&self, f: Hz) -> VoltsPeak {
         self.scenario.v_pi_at(f)
     }
 

@@ -12,7 +12,7 @@
 //!   one's shape only over the points where it rises above a thousandth of the floor, so a
 //!   10,001-point trace costs a few hundred microseconds at most.
 
-use halfwave_units::{Dbm, Volts, REFERENCE_IMPEDANCE_OHMS};
+use halfwave_units::{Dbm, VoltsPeak, REFERENCE_IMPEDANCE_OHMS};
 use rand::Rng;
 use rand_distr::StandardNormal;
 
@@ -20,12 +20,12 @@ use super::noise::trace_noise;
 use super::scenario::FilterShape;
 
 /// Peak voltage of a sine of this level into the reference impedance: V_pk = sqrt(2 R P).
-pub fn peak_voltage(level: Dbm) -> Volts {
-    Volts((2.0 * REFERENCE_IMPEDANCE_OHMS * level.to_watts().value()).sqrt())
+pub fn peak_voltage(level: Dbm) -> VoltsPeak {
+    VoltsPeak((2.0 * REFERENCE_IMPEDANCE_OHMS * level.to_watts().value()).sqrt())
 }
 
 /// Modulation index beta = pi V_pk / V_pi.
-pub fn modulation_index(v_peak: Volts, v_pi: Volts) -> f64 {
+pub fn modulation_index(v_peak: VoltsPeak, v_pi: VoltsPeak) -> f64 {
     std::f64::consts::PI * v_peak.value() / v_pi.value()
 }
 

@@ -8,7 +8,7 @@
 //! embedded in the binary.
 
 use crate::instrument::{Identity, SourceLimits};
-use halfwave_units::{Db, Dbm, Hz, Nanometers, Seconds, Volts};
+use halfwave_units::{Db, Dbm, Hz, Nanometers, Seconds, VoltsPeak};
 use serde::Deserialize;
 use std::path::Path;
 
@@ -443,7 +443,7 @@ impl Scenario {
     }
 
     /// The true V_pi of the modulator at drive frequency `f`.
-    pub fn v_pi_at(&self, f: Hz) -> Volts {
+    pub fn v_pi_at(&self, f: Hz) -> VoltsPeak {
         match &self.modulator.v_pi {
             VPiModel::Formula {
                 low_frequency_volts,
@@ -451,12 +451,12 @@ impl Scenario {
                 linear_coefficient,
             } => {
                 let ghz = f.ghz().max(0.0);
-                Volts(
+                VoltsPeak(
                     low_frequency_volts
                         * (1.0 + sqrt_coefficient * ghz.sqrt() + linear_coefficient * ghz),
                 )
             }
-            VPiModel::Table { points } => Volts(interpolate(points, f.value())),
+            VPiModel::Table { points } => VoltsPeak(interpolate(points, f.value())),
         }
     }
 

@@ -13,6 +13,7 @@ use halfwave::engine::plan::{
 use halfwave::engine::Engine;
 use halfwave::store::Store;
 use halfwave_drivers::sim::{Scenario, SimBench};
+use halfwave_units::{Db, Dbm};
 
 /// Levels per frequency in [`plan`].
 pub const LEVELS: usize = 9;
@@ -23,18 +24,18 @@ pub fn plan(serial: &str, frequencies_hz: &[f64]) -> PlanRequest {
         device: DeviceSpec {
             serial: serial.into(),
             model: "benchmark".into(),
-            rf_input_limit_dbm: 27.0,
+            rf_input_limit_dbm: Dbm(27.0),
             wavelength_nm: 1550.0,
         },
         bench: "sim".into(),
-        chain: ChainSpec::FlatLoss { loss_db: 1.5 },
+        chain: ChainSpec::FlatLoss { loss_db: Db(1.5) },
         frequencies: FrequencySpec::List {
             values_hz: frequencies_hz.to_vec(),
         },
         levels: LevelSpec::Ramp {
-            start_dbm: 3.0,
-            stop_dbm: 19.0,
-            step_db: 2.0,
+            start_dbm: Dbm(3.0),
+            stop_dbm: Dbm(19.0),
+            step_db: Db(2.0),
         },
         settle_s: 0.0,
         averages: 1,

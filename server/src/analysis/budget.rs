@@ -15,7 +15,7 @@
 //! with k = 2 (GUM 6.3; about 95 % for a near-normal result). With these sensitivities 0.1 dB of
 //! chain error is 1.15 % of V_pi.
 
-use halfwave_units::{Db, Hz, Volts};
+use halfwave_units::{Db, Hz, VoltsPeak};
 use serde::Serialize;
 
 /// Coverage factor of the expanded uncertainty (GUM 6.2.1, 6.3.3).
@@ -29,9 +29,9 @@ pub fn relative_sensitivity_per_db() -> f64 {
 /// What the budget is computed from.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct BudgetInputs {
-    pub v_pi: Volts,
+    pub v_pi: VoltsPeak,
     /// Standard uncertainty of V_pi from the fit alone.
-    pub fit_uncertainty: Volts,
+    pub fit_uncertainty: VoltsPeak,
     /// Standard uncertainty of the chain's gain at this frequency.
     pub chain_uncertainty: Db,
     /// The generator's stated level accuracy, +/- this many dB (rectangular).
@@ -165,8 +165,8 @@ mod tests {
         // V_pk is proportional to 10^(L/20): 0.1 dB is a factor 10^(0.005) = 1.011579 (definition
         // of the decibel), i.e. 1.16 % to first order, ln(10)/200 = 1.1513 %.
         let b = v_pi_budget(BudgetInputs {
-            v_pi: Volts(4.0),
-            fit_uncertainty: Volts(0.0),
+            v_pi: VoltsPeak(4.0),
+            fit_uncertainty: VoltsPeak(0.0),
             chain_uncertainty: Db(0.1),
             source_level_accuracy: Db(0.0),
         })
@@ -185,8 +185,8 @@ mod tests {
         // 0.5 / 1.732050808 = 0.288675135 dB -> 0.166174765 V; combined
         // sqrt(0.03^2 + 0.028782314^2 + 0.166174765^2) = 0.171296451 V.
         let b = v_pi_budget(BudgetInputs {
-            v_pi: Volts(5.0),
-            fit_uncertainty: Volts(0.03),
+            v_pi: VoltsPeak(5.0),
+            fit_uncertainty: VoltsPeak(0.03),
             chain_uncertainty: Db(0.05),
             source_level_accuracy: Db(0.5),
         })
@@ -203,8 +203,8 @@ mod tests {
         assert!(v_pi_budget(BudgetInputs {
             chain_uncertainty: Db(-0.1),
             ..BudgetInputs {
-                v_pi: Volts(5.0),
-                fit_uncertainty: Volts(0.03),
+                v_pi: VoltsPeak(5.0),
+                fit_uncertainty: VoltsPeak(0.03),
                 chain_uncertainty: Db(0.05),
                 source_level_accuracy: Db(0.5),
             }

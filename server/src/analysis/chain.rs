@@ -6,7 +6,7 @@
 //! to peak voltage into the 50 ohm reference impedance with P = V_pk^2 / (2 R).
 
 use super::AnalysisError;
-use halfwave_units::{Db, Dbm, Hz, Volts, Watts, REFERENCE_IMPEDANCE_OHMS};
+use halfwave_units::{Db, Dbm, Hz, VoltsPeak};
 use serde::{Deserialize, Serialize};
 
 /// One calibration entry: the net gain of the chain at one frequency (amplifier gain minus cable
@@ -102,34 +102,36 @@ impl DriveChain {
     }
 }
 
-/// Peak voltage of a sine of this level into 50 ohm: V_pk = sqrt(2 R P).
-pub fn peak_voltage(level: Dbm) -> Volts {
-    let watts = level.to_watts().0;
-    Volts((2.0 * REFERENCE_IMPEDANCE_OHMS * watts).sqrt())
+/// Peak voltage of a sine of this level into 50 ohm: V_pk = sqrt(2 R P) ([`Dbm::to_volts_peak`]).
+pub fn peak_voltage(level: Dbm) -> VoltsPeak {
+    level.to_volts_peak()
 }
 
-/// The level of a sine with peak voltage `v` into 50 ohm; `None` unless `v` is positive and finite.
-pub fn level_for_peak_voltage(v: Volts) -> Option<Dbm> {
-    if !(v.0.is_finite() && v.0 > 0.0) {
-        return None;
-    }
-    Dbm::from_watts(Watts(v.0 * v.0 / (2.0 * REFERENCE_IMPEDANCE_OHMS)))
+/// The level of a sine with peak voltage `v` into 50 ohm; `None` unless `v` is positive and finite
+/// ([`Dbm::from_volts_peak`]).
+pub fn level_for_peak_voltage(v: VoltsPeak) -> Option<Dbm> {
+    Dbm::from_volts_peak(v)
 }
 
 /// Modulation index of a peak drive voltage for a modulator of half-wave voltage `v_pi`:
 /// beta = pi V_pk / V_pi.
-pub fn modulation_index_for(v_peak: Volts, v_pi: Volts) -> f64 {
+pub fn modulation_index_for(v_peak: VoltsPeak, v_pi: VoltsPeak) -> f64 {
     std::f64::consts::PI * v_peak.0 / v_pi.0
 }
 
 /// Peak voltage that gives modulation index `beta` on a modulator of half-wave voltage `v_pi`.
-pub fn peak_voltage_for_index(beta: f64, v_pi: Volts) -> Volts {
-    Volts(beta * v_pi.0 / std::f64::consts::PI)
+pub fn peak_voltage_for_index(beta: f64, v_pi: VoltsPeak) -> VoltsPeak {
+    VoltsPeak(beta * v_pi.0 / std::f64::consts::PI)
 }
 
 /// Generator level needed at `f` for modulation index `beta` on a modulator of half-wave voltage
 /// `v_pi`; `None` when `beta` or `v_pi` is not positive and finite.
-pub fn generator_level_for_index(chain: &DriveChain, f: Hz, beta: f64, v_pi: Volts) -> Option<Dbm> {
+pub fn generator_level_for_index(
+    chain: &DriveChain,
+    f: Hz,
+    beta: f64,
+    v_pi: VoltsPeak,
+) -> Option<Dbm> {
     let at_modulator = level_for_peak_voltage(peak_voltage_for_index(beta, v_pi))?;
     Some(chain.generator_level_for(f, at_modulator))
 }
@@ -153,10 +155,10 @@ mod tests {
         // domain primer check values). 20 dBm is 3.162 V peak.
         assert!(close(peak_voltage(Dbm(0.0)).0, 0.3162, 5e-5));
         assert!(close(peak_voltage(Dbm(20.0)).0, 3.162, 5e-4));
-        let back = level_for_peak_voltage(Volts(0.316_227_766)).unwrap();
+        let back = level_for_peak_voltage(VoltsPeak(0.316_227_766)).unwrap();
         assert!(close(back.0, 0.0, 1e-8));
-        assert!(level_for_peak_voltage(Volts(0.0)).is_none());
-        assert!(level_for_peak_voltage(Volts(f64::NAN)).is_none());
+        assert!(level_for_peak_voltage(VoltsPeak(0.0)).is_none());
+        assert!(level_for_peak_voltage(VoltsPeak(f64::NAN)).is_none());
     }
 
     #[test]
@@ -226,7 +228,7 @@ mod tests {
         // beta = pi V_pk / V_pi (domain primer); the level for a target beta, passed forward
         // through the same chain, gives that beta back.
         let chain = DriveChain::flat_loss(Db(3.0));
-        let v_pi = Volts(4.0);
+        let v_pi = VoltsPeak(4.0);
         let f = Hz(10e9);
         let gen = generator_level_for_index(&chain, f, 1.2, v_pi).unwrap();
         let v = peak_voltage(chain.level_at_modulator(f, gen));

@@ -13,7 +13,7 @@
 use super::chain::{
     level_for_peak_voltage, modulation_index_for, peak_voltage, peak_voltage_for_index,
 };
-use halfwave_units::{Db, Dbm, Volts};
+use halfwave_units::{Db, Dbm, VoltsPeak};
 
 /// dB per unit relative change of a voltage: 20 / ln 10.
 pub const DB_PER_RELATIVE_VOLTAGE: f64 = 20.0 / std::f64::consts::LN_10;
@@ -30,8 +30,8 @@ pub enum DriveTarget {
 /// V_pi and chain gain at the drive frequency, with their standard uncertainties.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct DriveInputs {
-    pub v_pi: Volts,
-    pub v_pi_uncertainty: Volts,
+    pub v_pi: VoltsPeak,
+    pub v_pi_uncertainty: VoltsPeak,
     /// Net gain generator -> modulator at the frequency (negative for a loss).
     pub chain_gain: Db,
     pub chain_gain_uncertainty: Db,
@@ -43,7 +43,7 @@ pub struct DriveSolution {
     pub modulation_index: f64,
     pub generator_level: Dbm,
     pub level_at_modulator: Dbm,
-    pub v_peak: Volts,
+    pub v_peak: VoltsPeak,
     /// Standard uncertainty of the generator level that gives `modulation_index`, dB.
     pub level_uncertainty: Db,
     /// Standard uncertainty of the modulation index the generator level gives.
@@ -54,7 +54,7 @@ pub struct DriveSolution {
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum DriveError {
     #[error("V_pi {0} is not a positive voltage")]
-    BadVpi(Volts),
+    BadVpi(VoltsPeak),
     #[error("the modulation index {0} is not positive and finite")]
     BadIndex(f64),
     #[error("the generator level {0} is not a finite level")]
@@ -114,8 +114,8 @@ mod tests {
 
     fn inputs(v_pi: f64, u_v_pi: f64, gain: f64, u_gain: f64) -> DriveInputs {
         DriveInputs {
-            v_pi: Volts(v_pi),
-            v_pi_uncertainty: Volts(u_v_pi),
+            v_pi: VoltsPeak(v_pi),
+            v_pi_uncertainty: VoltsPeak(u_v_pi),
             chain_gain: Db(gain),
             chain_gain_uncertainty: Db(u_gain),
         }

@@ -7,7 +7,7 @@
 //! response that never falls that far gives `None` rather than an extrapolated guess.
 
 use super::AnalysisError;
-use halfwave_units::{Hz, Volts};
+use halfwave_units::{Hz, VoltsPeak};
 use serde::{Deserialize, Serialize};
 
 /// V_pi measured at one drive frequency.
@@ -16,16 +16,16 @@ pub struct VpiAtFrequency {
     #[serde(rename = "frequency_hz")]
     pub frequency: Hz,
     #[serde(rename = "v_pi_volts")]
-    pub v_pi: Volts,
+    pub v_pi: VoltsPeak,
     #[serde(rename = "v_pi_uncertainty_volts")]
-    pub uncertainty: Volts,
+    pub uncertainty: VoltsPeak,
 }
 
 /// One point of the response curve.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct ResponsePoint {
     pub frequency_hz: Hz,
-    pub v_pi_volts: Volts,
+    pub v_pi_volts: VoltsPeak,
     /// 20 log10(V_pi(f_ref) / V_pi(f)).
     pub response_db: f64,
     /// Standard uncertainty of `response_db`, from both V_pi uncertainties.
@@ -122,8 +122,8 @@ mod tests {
     fn at(ghz: f64, v_pi: f64) -> VpiAtFrequency {
         VpiAtFrequency {
             frequency: Hz::from_ghz(ghz),
-            v_pi: Volts(v_pi),
-            uncertainty: Volts(0.01 * v_pi),
+            v_pi: VoltsPeak(v_pi),
+            uncertainty: VoltsPeak(0.01 * v_pi),
         }
     }
 

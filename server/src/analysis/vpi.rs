@@ -13,7 +13,7 @@
 use super::bessel::J0_FIRST_ZERO;
 use super::fit::{SHAPE_SYSTEMATIC_MEASURED, SHAPE_SYSTEMATIC_PARAMETRIC};
 use super::AnalysisError;
-use halfwave_units::Volts;
+use halfwave_units::VoltsPeak;
 use serde::Serialize;
 use std::f64::consts::PI;
 
@@ -40,7 +40,7 @@ const OUTLIER_FRACTION: f64 = 0.02;
 pub struct DrivePoint {
     /// Peak drive voltage at the modulator.
     #[serde(rename = "v_peak_volts")]
-    pub v_peak: Volts,
+    pub v_peak: VoltsPeak,
     /// Measured modulation index.
     pub modulation_index: f64,
     /// Its standard uncertainty.
@@ -60,24 +60,24 @@ pub struct ExcludedPoint {
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct CarrierNull {
     /// Peak drive voltage where beta crosses 2.4048 (interpolated between the bracketing points).
-    pub v_peak_volts: Volts,
+    pub v_peak_volts: VoltsPeak,
     /// pi V_null / 2.4048.
-    pub v_pi_volts: Volts,
+    pub v_pi_volts: VoltsPeak,
 }
 
 /// The result of the sweep fit.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct VpiFit {
     #[serde(rename = "v_pi_volts")]
-    pub v_pi: Volts,
+    pub v_pi: VoltsPeak,
     /// Combined standard uncertainty: the fit's (inflated when the points disagree) and the
     /// correlated line-shape term, in quadrature.
     #[serde(rename = "v_pi_uncertainty_volts")]
-    pub v_pi_uncertainty: Volts,
+    pub v_pi_uncertainty: VoltsPeak,
     /// The fit's part alone.
-    pub v_pi_uncertainty_statistical_volts: Volts,
+    pub v_pi_uncertainty_statistical_volts: VoltsPeak,
     /// The line-shape part alone ([`V_PI_LINE_SHAPE_RELATIVE`] of V_pi).
-    pub v_pi_uncertainty_line_shape_volts: Volts,
+    pub v_pi_uncertainty_line_shape_volts: VoltsPeak,
     /// pi / V_pi, the modulation index per volt of peak drive.
     pub index_per_volt: f64,
     /// chi^2 / (n - 1) of the used points (with the floored uncertainties).
@@ -224,14 +224,14 @@ pub fn fit_v_pi(points: &[DrivePoint]) -> Result<VpiFit, AnalysisError> {
     let statistical = PI * slope_sigma / (slope * slope);
     let line_shape = V_PI_LINE_SHAPE_RELATIVE * v_pi;
     Ok(VpiFit {
-        v_pi_uncertainty_statistical_volts: Volts(statistical),
-        v_pi_uncertainty_line_shape_volts: Volts(line_shape),
+        v_pi_uncertainty_statistical_volts: VoltsPeak(statistical),
+        v_pi_uncertainty_line_shape_volts: VoltsPeak(line_shape),
         uncertainty_inflation: inflation,
         point_uncertainty_floor_relative: POINT_UNCERTAINTY_FLOOR_RELATIVE,
         heaviest_point: heaviest.map(|h| h.0),
         heaviest_weight_share: heaviest.map_or(0.0, |h| h.1 / total),
-        v_pi: Volts(v_pi),
-        v_pi_uncertainty: Volts(statistical.hypot(line_shape)),
+        v_pi: VoltsPeak(v_pi),
+        v_pi_uncertainty: VoltsPeak(statistical.hypot(line_shape)),
         index_per_volt: slope,
         reduced_chi_squared: reduced,
         carrier_null: carrier_null(points, &used),
@@ -272,8 +272,8 @@ fn carrier_null(points: &[DrivePoint], used: &[usize]) -> Option<CarrierNull> {
                 (J0_FIRST_ZERO - a.modulation_index) / (b.modulation_index - a.modulation_index);
             let v_null = a.v_peak.0 + t * (b.v_peak.0 - a.v_peak.0);
             CarrierNull {
-                v_peak_volts: Volts(v_null),
-                v_pi_volts: Volts(PI * v_null / J0_FIRST_ZERO),
+                v_peak_volts: VoltsPeak(v_null),
+                v_pi_volts: VoltsPeak(PI * v_null / J0_FIRST_ZERO),
             }
         })
     })
@@ -294,7 +294,7 @@ mod tests {
 
     fn ideal(v: f64, uncertainty: f64) -> DrivePoint {
         DrivePoint {
-            v_peak: Volts(v),
+            v_peak: VoltsPeak(v),
             modulation_index: PI * v / V_PI,
             uncertainty,
         }

@@ -4,7 +4,7 @@
 //! Pure: the store reads the rows and implements [`VpiSample`] for them; the lookup rule (which
 //! run answers) stays with the device's record in `store::history`.
 
-use halfwave_units::{Hz, Volts};
+use halfwave_units::{Hz, VoltsPeak};
 
 /// A measured V_pi at one frequency, whatever row it was read from.
 pub trait VpiSample {
@@ -22,7 +22,7 @@ pub trait VpiSample {
 pub fn interpolate_vpi<S: VpiSample>(
     results: &[S],
     frequency: Hz,
-) -> Option<(Volts, Volts, Hz, Hz)> {
+) -> Option<(VoltsPeak, VoltsPeak, Hz, Hz)> {
     let f = frequency.value();
     if !f.is_finite() {
         return None;
@@ -39,8 +39,8 @@ pub fn interpolate_vpi<S: VpiSample>(
     if span <= 0.0 {
         // `f` is a measured frequency.
         return Some((
-            Volts(below.v_pi_volts()),
-            Volts(below.v_pi_uncertainty_volts()),
+            VoltsPeak(below.v_pi_volts()),
+            VoltsPeak(below.v_pi_uncertainty_volts()),
             Hz(below.frequency_hz()),
             Hz(above.frequency_hz()),
         ));
@@ -50,8 +50,8 @@ pub fn interpolate_vpi<S: VpiSample>(
     let uncertainty = below.v_pi_uncertainty_volts()
         + t * (above.v_pi_uncertainty_volts() - below.v_pi_uncertainty_volts());
     Some((
-        Volts(v_pi),
-        Volts(uncertainty),
+        VoltsPeak(v_pi),
+        VoltsPeak(uncertainty),
         Hz(below.frequency_hz()),
         Hz(above.frequency_hz()),
     ))
@@ -67,7 +67,7 @@ pub fn interpolate_vpi<S: VpiSample>(
 pub fn extrapolate_vpi<S: VpiSample>(
     results: &[S],
     frequency: Hz,
-) -> Option<(Volts, Volts, Hz, Hz)> {
+) -> Option<(VoltsPeak, VoltsPeak, Hz, Hz)> {
     let f = frequency.value();
     if !f.is_finite() || results.is_empty() {
         return None;
@@ -102,8 +102,8 @@ pub fn extrapolate_vpi<S: VpiSample>(
         (next, end)
     };
     Some((
-        Volts(v_pi),
-        Volts(uncertainty),
+        VoltsPeak(v_pi),
+        VoltsPeak(uncertainty),
         Hz(lower.frequency_hz()),
         Hz(upper.frequency_hz()),
     ))

@@ -11,7 +11,7 @@ use crate::analysis::{
     analyze_trace, chain::peak_voltage, fit_v_pi, AnalysisError, AnalysisOptions, ChainPoint,
     DriveChain, DrivePoint, ExcludedPoint, TraceAnalysis, VpiFit,
 };
-use halfwave_units::{Db, Dbm, Hz, Trace, Volts};
+use halfwave_units::{Db, Dbm, Hz, Trace, VoltsPeak};
 use serde::{Deserialize, Serialize};
 use std::path::{Path, PathBuf};
 
@@ -245,7 +245,7 @@ pub struct SweepPointReport {
     pub trace: PathBuf,
     pub generator_level_dbm: Dbm,
     pub level_at_modulator_dbm: Dbm,
-    pub v_peak_volts: Volts,
+    pub v_peak_volts: VoltsPeak,
     pub modulation_index: Option<f64>,
     pub modulation_index_uncertainty: Option<f64>,
     /// Why the trace gave no modulation index, when it did not.

@@ -8,6 +8,7 @@
 use super::client::ClientArgs;
 use super::runs::runtime;
 use super::CliError;
+use crate::engine::rf_safety::SafetyState;
 use crate::engine::BenchStatus;
 use clap::Args;
 
@@ -48,7 +49,7 @@ pub fn list(args: BenchesArgs) -> Result<(), CliError> {
             outln!(
                 "{:<16} {:<26} {:>10} {:<12}",
                 b.name,
-                b.safety_state,
+                b.safety_state.as_str(),
                 b.active_run_id
                     .map_or_else(|| "idle".to_string(), |id| id.to_string()),
                 if queued.is_empty() {
@@ -59,8 +60,8 @@ pub fn list(args: BenchesArgs) -> Result<(), CliError> {
             );
             if let Some(fault) = &b.safety_fault {
                 outln!("  cause: {}", fault.cause);
-                match b.safety_state.as_str() {
-                    "output_unconfirmed" => outln!(
+                match b.safety_state {
+                    SafetyState::OutputUnconfirmed => outln!(
                         "  the daemon keeps trying to switch the output off; check the source and its link"
                     ),
                     _ => outln!(

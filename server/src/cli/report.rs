@@ -7,7 +7,7 @@
 
 use crate::analysis::{response_curve, VpiAtFrequency};
 use crate::api::views::runs::{FrequencyResultView, RunView};
-use halfwave_units::{Hz, Volts};
+use halfwave_units::{Hz, VoltsPeak};
 use serde::Serialize;
 
 /// The electro-optic response summary of one run.
@@ -27,8 +27,8 @@ pub fn response_summary(results: &[FrequencyResultView]) -> Option<ResponseSumma
         .iter()
         .map(|r| VpiAtFrequency {
             frequency: Hz(r.frequency_hz),
-            v_pi: Volts(r.v_pi_volts),
-            uncertainty: Volts(r.v_pi_uncertainty_volts),
+            v_pi: VoltsPeak(r.v_pi_volts),
+            uncertainty: VoltsPeak(r.v_pi_uncertainty_volts),
         })
         .collect();
     let curve = response_curve(&points).ok()?;

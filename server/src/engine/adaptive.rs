@@ -18,7 +18,7 @@
 
 use crate::analysis::chain::{generator_level_for_index, DriveChain};
 use crate::analysis::{bessel::J0_FIRST_ZERO, fit_v_pi, DrivePoint};
-use halfwave_units::{Dbm, Hz, Volts};
+use halfwave_units::{Dbm, Hz, VoltsPeak};
 use std::f64::consts::PI;
 
 /// The modulation indices the points aim at, in order (each next point aims at the first one
@@ -50,7 +50,7 @@ pub struct AdaptiveSettings {
 pub struct AdaptivePoint {
     /// Rung of the ladder it was measured at.
     pub rung: usize,
-    pub v_peak: Volts,
+    pub v_peak: VoltsPeak,
     /// Modulation index and its standard uncertainty, when the trace could be analysed.
     pub index: Option<(f64, f64)>,
 }
@@ -92,7 +92,7 @@ pub enum AdaptiveStep {
 }
 
 /// The current V_pi estimate from the points measured so far (see the module doc), if any.
-pub fn estimate_v_pi(measured: &[AdaptivePoint], prior: Option<Volts>) -> Option<Volts> {
+pub fn estimate_v_pi(measured: &[AdaptivePoint], prior: Option<VoltsPeak>) -> Option<VoltsPeak> {
     let readable: Vec<DrivePoint> = measured
         .iter()
         .filter_map(|p| {
@@ -115,7 +115,7 @@ pub fn estimate_v_pi(measured: &[AdaptivePoint], prior: Option<Volts>) -> Option
     readable
         .iter()
         .max_by(|a, b| a.modulation_index.total_cmp(&b.modulation_index))
-        .map(|p| Volts(PI * p.v_peak.0 / p.modulation_index))
+        .map(|p| VoltsPeak(PI * p.v_peak.0 / p.modulation_index))
         .or(prior.filter(|v| v.0.is_finite() && v.0 > 0.0))
 }
 
@@ -126,7 +126,7 @@ pub fn next_step(
     chain: &DriveChain,
     f: Hz,
     measured: &[AdaptivePoint],
-    prior: Option<Volts>,
+    prior: Option<VoltsPeak>,
     settings: &AdaptiveSettings,
 ) -> AdaptiveStep {
     let Some(top) = ladder.len().checked_sub(1) else {
@@ -255,7 +255,12 @@ mod tests {
         }
     }
 
-    fn run(prior: Option<Volts>, v_pi: f64, l: &[Dbm], s: &AdaptiveSettings) -> Vec<AdaptivePoint> {
+    fn run(
+        prior: Option<VoltsPeak>,
+        v_pi: f64,
+        l: &[Dbm],
+        s: &AdaptiveSettings,
+    ) -> Vec<AdaptivePoint> {
         let chain = flat_chain(-1.0);
         let mut measured = Vec::new();
         loop {
@@ -269,7 +274,7 @@ mod tests {
     #[test]
     fn with_a_good_prior_three_points_hit_the_targets_and_cross_the_null() {
         let l = ladder(0.0, 30.0, 0.25);
-        let measured = run(Some(Volts(5.0)), 5.2, &l, &SETTINGS);
+        let measured = run(Some(VoltsPeak(5.0)), 5.2, &l, &SETTINGS);
         assert_eq!(measured.len(), MIN_ADAPTIVE_POINTS, "{measured:?}");
         let betas: Vec<f64> = measured.iter().map(|p| p.index.unwrap().0).collect();
         // Upward only, the last past the carrier null (J0's first zero 2.4048, DLMF 10.21).
@@ -301,7 +306,7 @@ mod tests {
     fn a_range_too_low_for_the_null_ends_at_its_top() {
         // At 0 dBm after -1 dB the peak voltage is 0.28 V: beta 0.17 on a 5.2 V modulator.
         let l = ladder(-10.0, 0.0, 0.25);
-        let measured = run(Some(Volts(5.2)), 5.2, &l, &SETTINGS);
+        let measured = run(Some(VoltsPeak(5.2)), 5.2, &l, &SETTINGS);
         let rungs: Vec<usize> = measured.iter().map(|p| p.rung).collect();
         // Three points 3 dB apart (12 rungs of 0.25 dB), the last at the top.
         assert_eq!(rungs, vec![l.len() - 25, l.len() - 13, l.len() - 1]);
@@ -314,7 +319,7 @@ mod tests {
             ..SETTINGS
         };
         let l = ladder(0.0, 40.0, 0.25);
-        let measured = run(Some(Volts(5.2)), 5.2, &l, &s);
+        let measured = run(Some(VoltsPeak(5.2)), 5.2, &l, &s);
         assert_eq!(measured.len(), s.max_points);
     }
 
@@ -324,7 +329,7 @@ mod tests {
         let l = ladder(0.0, 20.0, 0.5);
         let measured = [AdaptivePoint {
             rung: 0,
-            v_peak: Volts(0.3),
+            v_peak: VoltsPeak(0.3),
             index: None,
         }];
         assert_eq!(

@@ -334,7 +334,7 @@ impl Engine {
         let ctx = ChainContext {
             source: slot.source.lock().await.limits(),
             sensor: sensor.lock().await.limits(),
-            hard_limit: Dbm(self.inner.limits.max_level_at_modulator_dbm),
+            hard_limit: self.inner.limits.max_level_at_modulator_dbm,
             bench_accuracy_percent: figures.and_then(|f| f.0),
             bench_sensor_reflection: figures.and_then(|f| f.1),
         };

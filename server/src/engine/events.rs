@@ -4,6 +4,7 @@
 //! server-sent events and the CLI into progress bars. A slow watcher that falls behind loses old
 //! events (broadcast semantics), never slows the run. Field names carry units.
 
+use super::rf_safety::SafetyState;
 use crate::store::RunState;
 use serde::Serialize;
 
@@ -87,7 +88,7 @@ pub enum ProgressEvent {
     /// `clear` (see `engine::rf_safety`). Not tied to a run; sent to every watcher.
     BenchSafety {
         bench: String,
-        state: String,
+        state: SafetyState,
         cause: Option<String>,
     },
 }

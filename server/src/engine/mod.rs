@@ -95,7 +95,7 @@ pub struct BenchStatus {
     /// `clear`, `output_unconfirmed` (the RF output could not be read back off; the daemon keeps
     /// trying and no run starts) or `awaiting_acknowledgement` (confirmed off after a fault; an
     /// operator must acknowledge before runs start again).
-    pub safety_state: String,
+    pub safety_state: rf_safety::SafetyState,
     /// The fault behind a state other than `clear`: cause, since when, when confirmed off.
     pub safety_fault: Option<BenchSafetyRecord>,
 }
@@ -225,7 +225,7 @@ impl Engine {
         let accuracy = config
             .benches
             .iter()
-            .filter_map(|b| Some((b.name.clone(), Db(b.source_level_accuracy_db?))))
+            .filter_map(|b| Some((b.name.clone(), b.source_level_accuracy_db?)))
             .collect();
         let sensor_figures = config
             .benches
@@ -513,7 +513,7 @@ impl Engine {
             ),
         };
         let ctx = PlanContext {
-            hard_limit_at_modulator: Dbm(self.inner.limits.max_level_at_modulator_dbm),
+            hard_limit_at_modulator: self.inner.limits.max_level_at_modulator_dbm,
             source: source_limits,
             analyzer: &caps,
             chain: chain.as_ref().map(|(c, _, _)| c),
@@ -587,7 +587,7 @@ impl Engine {
             .upsert_device(&NewDevice {
                 serial: request.device.serial.trim().to_string(),
                 model: request.device.model.clone(),
-                rf_input_limit: Dbm(request.device.rf_input_limit_dbm),
+                rf_input_limit: request.device.rf_input_limit_dbm,
                 wavelength: Nanometers(request.device.wavelength_nm),
             })
             .await?
@@ -611,10 +611,7 @@ impl Engine {
                     software_version: Some(crate::version::software_version()),
                     analysis_method: Some(crate::analysis::ANALYSIS_METHOD.to_string()),
                     submitted_by_token_id: token_id,
-                    hard_limit_at_modulator: Some(Dbm(self
-                        .inner
-                        .limits
-                        .max_level_at_modulator_dbm)),
+                    hard_limit_at_modulator: Some(self.inner.limits.max_level_at_modulator_dbm),
                     planned_max_at_modulator: Some(plan.max_level_at_modulator())
                         .filter(|l| l.0.is_finite()),
                     // What the budget of this run will use, whatever the configuration says later.
@@ -767,16 +764,17 @@ impl Engine {
             })
         };
         let calibration = match spec {
-            ChainSpec::FlatLoss { loss_db } => {
-                if !loss_db.is_finite() || !(-60.0..=100.0).contains(loss_db) {
+            &ChainSpec::FlatLoss { loss_db } => {
+                if !loss_db.is_finite() || !(-60.0..=100.0).contains(&loss_db.0) {
                     return Err(invalid(format!(
-                        "loss_db must be a loss in dB from -60 to 100, got {loss_db}"
+                        "loss_db must be a loss in dB from -60 to 100, got {}",
+                        loss_db.0
                     )));
                 }
                 // Nothing is stored before the whole plan is valid (see `submit`).
                 return Ok((
-                    DriveChain::flat_loss(Db(*loss_db)),
-                    ChainChoice::FlatLoss(*loss_db),
+                    DriveChain::flat_loss(loss_db),
+                    ChainChoice::FlatLoss(loss_db),
                     None,
                 ));
             }
@@ -815,8 +813,8 @@ impl Engine {
     }
 
     /// The stored calibration that stands for a flat loss: one per distinct loss, reused.
-    async fn flat_loss_calibration(&self, loss_db: f64) -> Result<ChainCalibration, StoreError> {
-        let name = format!("flat-loss-{loss_db:.2}dB");
+    async fn flat_loss_calibration(&self, loss: Db) -> Result<ChainCalibration, StoreError> {
+        let name = format!("flat-loss-{:.2}dB", loss.0);
         match self.inner.store.latest_chain_calibration(&name).await {
             Ok(c) => Ok(c),
             Err(StoreError::NotFound { .. }) => {
@@ -825,7 +823,7 @@ impl Engine {
                     .create_chain_calibration(
                         &name,
                         "halfwave",
-                        &[ChainCalibrationPoint::new(Hz(0.0), Db(-loss_db))],
+                        &[ChainCalibrationPoint::new(Hz(0.0), -loss)],
                     )
                     .await
             }
@@ -853,7 +851,7 @@ impl Engine {
         let caps = slot.analyzer.lock().await.capabilities();
         let plan = request
             .validate(&PlanContext {
-                hard_limit_at_modulator: Dbm(self.inner.limits.max_level_at_modulator_dbm),
+                hard_limit_at_modulator: self.inner.limits.max_level_at_modulator_dbm,
                 source: source_limits,
                 analyzer: &caps,
                 chain: Some(&chain),
@@ -1071,7 +1069,7 @@ impl Engine {
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum ChainChoice {
     Stored(i64),
-    FlatLoss(f64),
+    FlatLoss(Db),
 }
 
 /// The band a stored chain calibration was measured over, when it was computed from measurement
@@ -1129,10 +1127,7 @@ impl BenchSlot {
             analyzer_identity,
             active_run_id: active,
             queued_run_ids: queued,
-            safety_state: safety_fault
-                .as_ref()
-                .map_or("clear", |f| f.fault.as_str())
-                .to_string(),
+            safety_state: rf_safety::SafetyState::of(safety_fault.as_ref().map(|f| f.fault)),
             safety_fault,
         }
     }

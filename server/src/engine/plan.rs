@@ -49,7 +49,8 @@ pub struct DeviceSpec {
     #[serde(default)]
     pub model: String,
     /// The largest RF level the device may see at its input (datasheet value).
-    pub rf_input_limit_dbm: f64,
+    #[schema(value_type = f64)]
+    pub rf_input_limit_dbm: Dbm,
     /// Optical wavelength of the laser used (for the record).
     #[serde(default = "default_wavelength_nm")]
     pub wavelength_nm: f64,
@@ -84,20 +85,28 @@ pub enum FrequencySpec {
 #[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
 pub enum LevelSpec {
     /// Explicit generator levels.
-    List { values_dbm: Vec<f64> },
+    List {
+        #[schema(value_type = Vec<f64>)]
+        values_dbm: Vec<Dbm>,
+    },
     /// From start to stop (inclusive when it lands on a step) in steps of step_db.
     Ramp {
-        start_dbm: f64,
-        stop_dbm: f64,
-        step_db: f64,
+        #[schema(value_type = f64)]
+        start_dbm: Dbm,
+        #[schema(value_type = f64)]
+        stop_dbm: Dbm,
+        #[schema(value_type = f64)]
+        step_db: Db,
     },
     /// Levels chosen per frequency from what was measured there (`engine::adaptive`), upward
     /// only, on a ladder of [`ADAPTIVE_RUNG_DB`] rungs from min_dbm to max_dbm (the whole range
     /// is proven against every limit before any command), until u(V_pi)/V_pi is at most
     /// target_relative_uncertainty or max_points were measured.
     Adaptive {
-        min_dbm: f64,
-        max_dbm: f64,
+        #[schema(value_type = f64)]
+        min_dbm: Dbm,
+        #[schema(value_type = f64)]
+        max_dbm: Dbm,
         /// Stop a frequency when u(V_pi)/V_pi is at or below this (from 0.0011 to 0.5; V_pi's
         /// line-shape term, 0.001, does not average down, so lower targets cannot be met).
         #[schema(minimum = 0.0011, maximum = 0.5)]
@@ -108,8 +117,8 @@ pub enum LevelSpec {
         max_points: Option<usize>,
         /// The largest step up from one point's level to the next (0.25 to 20 dB, default 6).
         #[serde(default, skip_serializing_if = "Option::is_none")]
-        #[schema(minimum = 0.25, maximum = 20.0)]
-        max_step_db: Option<f64>,
+        #[schema(value_type = Option<f64>, minimum = 0.25, maximum = 20.0)]
+        max_step_db: Option<Db>,
     },
 }
 
@@ -143,7 +152,10 @@ pub struct AnalyzerSpec {
 #[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
 pub enum ChainSpec {
     /// A frequency-independent loss between generator and modulator.
-    FlatLoss { loss_db: f64 },
+    FlatLoss {
+        #[schema(value_type = f64)]
+        loss_db: Db,
+    },
     /// A stored, versioned calibration (the engine resolves it before validation).
     Stored { name: String, version: Option<i64> },
 }
@@ -349,7 +361,7 @@ impl PlanRequest {
 
         // The safety interlock: the level reaching the modulator, after the chain's gain at each
         // frequency, must stay under both the device's limit and the daemon's hard limit.
-        let device_limit = Dbm(self.device.rf_input_limit_dbm);
+        let device_limit = self.device.rf_input_limit_dbm;
         let ceiling = if device_limit.0 < ctx.hard_limit_at_modulator.0 {
             device_limit
         } else {
@@ -449,7 +461,7 @@ impl PlanRequest {
                 "use letters, digits and - _ . / : # only in a serial number",
             );
         }
-        if !d.rf_input_limit_dbm.is_finite() || !(-30.0..=40.0).contains(&d.rf_input_limit_dbm) {
+        if !d.rf_input_limit_dbm.is_finite() || !(-30.0..=40.0).contains(&d.rf_input_limit_dbm.0) {
             errs.push(
                 "device.rf_input_limit_dbm",
                 format!(
@@ -619,6 +631,7 @@ fn expand_levels(
     };
     let values: Vec<f64> = match spec {
         LevelSpec::List { values_dbm } => {
+            let values_dbm: Vec<f64> = values_dbm.iter().map(|l| l.0).collect();
             if values_dbm.is_empty() {
                 errs.push(
                     "levels.values_dbm",
@@ -651,7 +664,7 @@ fn expand_levels(
             }
             // Levels always ramp from low to high, whatever order they were given in; a level
             // given twice is measured once.
-            let mut v = values_dbm.clone();
+            let mut v = values_dbm;
             v.sort_by(f64::total_cmp);
             v.dedup();
             if let Some(pair) = v
@@ -674,6 +687,7 @@ fn expand_levels(
             stop_dbm,
             step_db,
         } => {
+            let (start_dbm, stop_dbm, step_db) = (&start_dbm.0, &stop_dbm.0, &step_db.0);
             let mut bad = false;
             for (name, l) in [("start_dbm", start_dbm), ("stop_dbm", stop_dbm)] {
                 if !l.is_finite() || !in_range(*l) {
@@ -722,6 +736,7 @@ fn expand_levels(
         LevelSpec::Adaptive {
             min_dbm, max_dbm, ..
         } => {
+            let (min_dbm, max_dbm) = (&min_dbm.0, &max_dbm.0);
             let mut bad = false;
             for (name, l) in [("min_dbm", min_dbm), ("max_dbm", max_dbm)] {
                 if !l.is_finite() || !in_range(*l) {
@@ -816,7 +831,7 @@ fn adaptive_settings(spec: &LevelSpec, errs: &mut Collector) -> Option<AdaptiveS
         );
         ok = false;
     }
-    let max_step_db = max_step_db.unwrap_or(ADAPTIVE_DEFAULT_MAX_STEP_DB);
+    let max_step_db = max_step_db.map_or(ADAPTIVE_DEFAULT_MAX_STEP_DB, |step| step.0);
     if !(max_step_db.is_finite() && (ADAPTIVE_RUNG_DB..=20.0).contains(&max_step_db)) {
         errs.push(
             "levels.max_step_db",
@@ -999,16 +1014,20 @@ mod tests {
         }
     }
 
+    fn dbm_list(levels: Vec<f64>) -> Vec<Dbm> {
+        levels.into_iter().map(Dbm).collect()
+    }
+
     fn request(levels: LevelSpec) -> PlanRequest {
         PlanRequest {
             device: DeviceSpec {
                 serial: "TEST-PM-1".into(),
                 model: "test modulator".into(),
-                rf_input_limit_dbm: 24.0,
+                rf_input_limit_dbm: Dbm(24.0),
                 wavelength_nm: 1550.0,
             },
             bench: "bench-1".into(),
-            chain: ChainSpec::FlatLoss { loss_db: 3.0 },
+            chain: ChainSpec::FlatLoss { loss_db: Db(3.0) },
             frequencies: FrequencySpec::Logarithmic {
                 start_hz: 1e9,
                 stop_hz: 20e9,
@@ -1040,11 +1059,11 @@ mod tests {
         // 25 dBm from the generator minus a 3 dB chain loss is 22 dBm at the modulator, above a
         // device limit of 20 dBm (the daemon's hard limit of 30 dBm is not the binding one).
         let mut req = request(LevelSpec::Ramp {
-            start_dbm: 0.0,
-            stop_dbm: 25.0,
-            step_db: 5.0,
+            start_dbm: Dbm(0.0),
+            stop_dbm: Dbm(25.0),
+            step_db: Db(5.0),
         });
-        req.device.rf_input_limit_dbm = 20.0;
+        req.device.rf_input_limit_dbm = Dbm(20.0);
         let err = validate(&req, 30.0).unwrap_err();
         assert_eq!(err.errors.len(), 1, "{err}");
         assert_eq!(err.errors[0].field, "levels");
@@ -1058,7 +1077,7 @@ mod tests {
     #[test]
     fn hard_limit_wins_over_a_higher_device_limit() {
         let req = request(LevelSpec::List {
-            values_dbm: vec![10.0, 20.0],
+            values_dbm: dbm_list(vec![10.0, 20.0]),
         });
         // 20 dBm - 3 dB = 17 dBm at the modulator, above a hard limit of 15 dBm.
         let err = validate(&req, 15.0).unwrap_err();
@@ -1069,9 +1088,9 @@ mod tests {
     #[test]
     fn every_invalid_field_is_reported_at_once() {
         let mut req = request(LevelSpec::Ramp {
-            start_dbm: 0.0,
-            stop_dbm: 10.0,
-            step_db: 0.0,
+            start_dbm: Dbm(0.0),
+            stop_dbm: Dbm(10.0),
+            step_db: Db(0.0),
         });
         req.frequencies = FrequencySpec::Linear {
             start_hz: 1e9,
@@ -1095,7 +1114,7 @@ mod tests {
     #[test]
     fn levels_always_ramp_upwards() {
         let req = request(LevelSpec::List {
-            values_dbm: vec![10.0, -5.0, 3.0, 10.0],
+            values_dbm: dbm_list(vec![10.0, -5.0, 3.0, 10.0]),
         });
         let plan = validate(&req, 24.0).unwrap();
         assert_eq!(
@@ -1108,7 +1127,7 @@ mod tests {
     #[test]
     fn logarithmic_frequencies_are_geometric() {
         let mut req = request(LevelSpec::List {
-            values_dbm: vec![0.0, 3.0],
+            values_dbm: dbm_list(vec![0.0, 3.0]),
         });
         req.frequencies = FrequencySpec::Logarithmic {
             start_hz: 0.2e9,
@@ -1126,7 +1145,7 @@ mod tests {
     #[test]
     fn automatic_analyzer_settings_resolve_the_lines() {
         let req = request(LevelSpec::List {
-            values_dbm: vec![0.0, 3.0],
+            values_dbm: dbm_list(vec![0.0, 3.0]),
         });
         let plan = validate(&req, 24.0).unwrap();
         for step in plan.steps() {
@@ -1144,7 +1163,7 @@ mod tests {
     #[test]
     fn spacing_below_three_resolution_widths_is_refused() {
         let mut req = request(LevelSpec::List {
-            values_dbm: vec![0.0, 3.0],
+            values_dbm: dbm_list(vec![0.0, 3.0]),
         });
         req.analyzer.resolution_bandwidth_hz = Some(500e6);
         let err = validate(&req, 24.0).unwrap_err();
@@ -1177,9 +1196,9 @@ mod tests {
         // `floor() as usize + 1` saturated and wrapped to 0 levels, and the run "completed" empty.
         for step_db in [1e-18, 6.5e-18, 1e-300, f64::MIN_POSITIVE, 5e-324] {
             let req = request(LevelSpec::Ramp {
-                start_dbm: -5.0,
-                stop_dbm: 20.0,
-                step_db,
+                start_dbm: Dbm(-5.0),
+                stop_dbm: Dbm(20.0),
+                step_db: Db(step_db),
             });
             assert_eq!(
                 refused_fields(&req),
@@ -1193,9 +1212,9 @@ mod tests {
     fn a_ramp_with_more_levels_than_allowed_is_refused_by_count() {
         // 0.01 dB from -30 to 25 dBm is 5,501 levels: a real step, but too many.
         let req = request(LevelSpec::Ramp {
-            start_dbm: -30.0,
-            stop_dbm: 25.0,
-            step_db: 0.01,
+            start_dbm: Dbm(-30.0),
+            stop_dbm: Dbm(25.0),
+            step_db: Db(0.01),
         });
         let err = validate(&req, 30.0).unwrap_err();
         assert_eq!(err.errors.len(), 1, "{err}");
@@ -1208,8 +1227,8 @@ mod tests {
 
     fn adaptive(min_dbm: f64, max_dbm: f64, target: f64) -> LevelSpec {
         LevelSpec::Adaptive {
-            min_dbm,
-            max_dbm,
+            min_dbm: Dbm(min_dbm),
+            max_dbm: Dbm(max_dbm),
             target_relative_uncertainty: target,
             max_points: None,
             max_step_db: None,
@@ -1222,7 +1241,7 @@ mod tests {
         // 20.3 dBm, above the limit, and is refused before any command although the engine
         // might never have gone that high.
         let mut req = request(adaptive(0.0, 23.3, 0.003));
-        req.device.rf_input_limit_dbm = 20.0;
+        req.device.rf_input_limit_dbm = Dbm(20.0);
         let err = validate(&req, 30.0).unwrap_err();
         assert!(
             err.errors.iter().any(|e| e.field == "levels"
@@ -1256,11 +1275,11 @@ mod tests {
             "{err:?}"
         );
         let req = request(LevelSpec::Adaptive {
-            min_dbm: 0.0,
-            max_dbm: 20.0,
+            min_dbm: Dbm(0.0),
+            max_dbm: Dbm(20.0),
             target_relative_uncertainty: 0.003,
             max_points: Some(2),
-            max_step_db: Some(0.1),
+            max_step_db: Some(Db(0.1)),
         });
         let err = validate(&req, 30.0).unwrap_err();
         let fields: Vec<&str> = err.errors.iter().map(|e| e.field.as_str()).collect();
@@ -1301,7 +1320,7 @@ mod tests {
         // [3, 3] is one level given twice; [3] is one level: neither gives a V_pi fit.
         for values_dbm in [vec![3.0, 3.0], vec![3.0]] {
             let req = request(LevelSpec::List {
-                values_dbm: values_dbm.clone(),
+                values_dbm: dbm_list(values_dbm.clone()),
             });
             let err = validate(&req, 24.0).unwrap_err();
             assert_eq!(err.errors.len(), 1, "{values_dbm:?}: {err}");
@@ -1310,35 +1329,37 @@ mod tests {
         }
         // A ramp that starts and stops at the same level is one level too.
         let req = request(LevelSpec::Ramp {
-            start_dbm: 3.0,
-            stop_dbm: 3.0,
-            step_db: 1.0,
+            start_dbm: Dbm(3.0),
+            stop_dbm: Dbm(3.0),
+            step_db: Db(1.0),
         });
         assert_eq!(refused_fields(&req), vec!["levels.stop_dbm"]);
         // So is a ramp whose stop is less than one step above its start.
         let req = request(LevelSpec::Ramp {
-            start_dbm: 3.0,
-            stop_dbm: 3.5,
-            step_db: 1.0,
+            start_dbm: Dbm(3.0),
+            stop_dbm: Dbm(3.5),
+            step_db: Db(1.0),
         });
         assert_eq!(refused_fields(&req), vec!["levels.stop_dbm"]);
         // An empty list is refused as well.
-        let req = request(LevelSpec::List { values_dbm: vec![] });
+        let req = request(LevelSpec::List {
+            values_dbm: dbm_list(vec![]),
+        });
         assert_eq!(refused_fields(&req), vec!["levels.values_dbm"]);
     }
 
     #[test]
     fn levels_closer_than_a_generator_resolves_are_refused() {
         let req = request(LevelSpec::List {
-            values_dbm: vec![3.0, 3.001, 6.0],
+            values_dbm: dbm_list(vec![3.0, 3.001, 6.0]),
         });
         let err = validate(&req, 24.0).unwrap_err();
         assert_eq!(err.errors[0].field, "levels.values_dbm");
         assert!(err.errors[0].message.contains("apart"), "{err}");
         let req = request(LevelSpec::Ramp {
-            start_dbm: 0.0,
-            stop_dbm: 1.0,
-            step_db: 0.001,
+            start_dbm: Dbm(0.0),
+            stop_dbm: Dbm(1.0),
+            step_db: Db(0.001),
         });
         assert_eq!(refused_fields(&req), vec!["levels.step_db"]);
     }
@@ -1348,9 +1369,9 @@ mod tests {
         // 0.3 / 0.1 is 2.9999999999999996 in binary floating point and 3 x 0.1 is
         // 0.30000000000000004: the last level must still be the stop level, not above it.
         let req = request(LevelSpec::Ramp {
-            start_dbm: 0.0,
-            stop_dbm: 0.3,
-            step_db: 0.1,
+            start_dbm: Dbm(0.0),
+            stop_dbm: Dbm(0.3),
+            step_db: Db(0.1),
         });
         let plan = validate(&req, 24.0).unwrap();
         let levels = &plan.steps()[0].generator_levels;
@@ -1362,9 +1383,9 @@ mod tests {
     #[test]
     fn every_frequency_of_a_proven_plan_has_enough_levels_for_a_fit() {
         let req = request(LevelSpec::Ramp {
-            start_dbm: 0.0,
-            stop_dbm: 10.0,
-            step_db: 5.0,
+            start_dbm: Dbm(0.0),
+            stop_dbm: Dbm(10.0),
+            step_db: Db(5.0),
         });
         let plan = validate(&req, 24.0).unwrap();
         assert_eq!(plan.steps().len(), 4);
@@ -1380,7 +1401,7 @@ mod tests {
     #[test]
     fn an_oversized_frequency_list_is_refused_before_it_is_sorted() {
         let mut req = request(LevelSpec::List {
-            values_dbm: vec![0.0, 3.0],
+            values_dbm: dbm_list(vec![0.0, 3.0]),
         });
         req.frequencies = FrequencySpec::List {
             values_hz: vec![1e9; MAX_FREQUENCIES + 1],

@@ -33,6 +33,46 @@ pub const BACKOFF_MAX: Duration = Duration::from_millis(400);
 /// How often the keeper repeats its ERROR log while the output stays unconfirmed.
 pub const UNCONFIRMED_LOG_INTERVAL: Duration = Duration::from_secs(60);
 
+/// A bench's RF safety state as events and views report it: one of the two stored faults, or
+/// clear. Serialises to the lowercase words `output_unconfirmed`, `awaiting_acknowledgement`
+/// and `clear`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum SafetyState {
+    /// The source's output could not be read back off; the daemon keeps trying.
+    OutputUnconfirmed,
+    /// Confirmed off after a fault; an operator must acknowledge before runs start again.
+    AwaitingAcknowledgement,
+    /// No fault holds the bench.
+    Clear,
+}
+
+impl SafetyState {
+    /// The state of a bench with `fault` (`None`: clear).
+    pub fn of(fault: Option<BenchFault>) -> SafetyState {
+        match fault {
+            Some(BenchFault::OutputUnconfirmed) => SafetyState::OutputUnconfirmed,
+            Some(BenchFault::AwaitingAcknowledgement) => SafetyState::AwaitingAcknowledgement,
+            None => SafetyState::Clear,
+        }
+    }
+
+    /// The word in JSON, the same as the serialised form.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            SafetyState::OutputUnconfirmed => "output_unconfirmed",
+            SafetyState::AwaitingAcknowledgement => "awaiting_acknowledgement",
+            SafetyState::Clear => "clear",
+        }
+    }
+}
+
+impl std::fmt::Display for SafetyState {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
 /// Why an acknowledgement was refused.
 #[derive(Debug, thiserror::Error)]
 pub enum AcknowledgeError {
@@ -154,7 +194,7 @@ impl BenchSafety {
         self.state.send_replace(None);
         let _ = self.events.send(ProgressEvent::BenchSafety {
             bench: self.bench.clone(),
-            state: "clear".into(),
+            state: SafetyState::Clear,
             cause: None,
         });
         Ok(())
@@ -168,7 +208,7 @@ impl BenchSafety {
         }
         let _ = self.events.send(ProgressEvent::BenchSafety {
             bench: self.bench.clone(),
-            state: record.fault.as_str().into(),
+            state: SafetyState::of(Some(record.fault)),
             cause: Some(record.cause.clone()),
         });
         self.state.send_replace(Some(record));
@@ -238,5 +278,59 @@ impl BenchSafety {
             }
             backoff = (backoff * 2).min(BACKOFF_MAX);
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The words are the ones the event stream, the webhook payloads, `/benches` and the
+    /// dashboard (`server/assets/app.js`) have always used; a rename would break their readers.
+    #[test]
+    fn safety_states_serialise_to_the_documented_words() {
+        for (state, word) in [
+            (SafetyState::OutputUnconfirmed, "output_unconfirmed"),
+            (
+                SafetyState::AwaitingAcknowledgement,
+                "awaiting_acknowledgement",
+            ),
+            (SafetyState::Clear, "clear"),
+        ] {
+            assert_eq!(
+                serde_json::to_value(state).unwrap(),
+                serde_json::json!(word)
+            );
+            assert_eq!(state.as_str(), word);
+            assert_eq!(state.to_string(), word);
+            let back: SafetyState = serde_json::from_value(serde_json::json!(word)).unwrap();
+            assert_eq!(back, state);
+        }
+        // The fault states carry the stored words of `BenchFault`.
+        for fault in [
+            BenchFault::OutputUnconfirmed,
+            BenchFault::AwaitingAcknowledgement,
+        ] {
+            assert_eq!(SafetyState::of(Some(fault)).as_str(), fault.as_str());
+        }
+        assert_eq!(SafetyState::of(None), SafetyState::Clear);
+    }
+
+    #[test]
+    fn a_bench_safety_event_keeps_its_json() {
+        let event = ProgressEvent::BenchSafety {
+            bench: "sim".into(),
+            state: SafetyState::AwaitingAcknowledgement,
+            cause: Some("link lost".into()),
+        };
+        assert_eq!(
+            serde_json::to_value(&event).unwrap(),
+            serde_json::json!({
+                "event": "bench_safety",
+                "bench": "sim",
+                "state": "awaiting_acknowledgement",
+                "cause": "link lost",
+            })
+        );
     }
 }

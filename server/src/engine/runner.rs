@@ -22,7 +22,7 @@ use super::safety::{RfOffGuard, SharedSource};
 use crate::analysis::{self, chain::peak_voltage, chain::DriveChain, AnalysisOptions, DrivePoint};
 use crate::store::{NewFrequencyResult, NewPoint, Store};
 use halfwave_drivers::{AnalyzerSettings, InstrumentError, SpectrumAnalyzer};
-use halfwave_units::{Db, Dbm, Hz, Trace, Volts};
+use halfwave_units::{Db, Dbm, Hz, Trace, VoltsPeak};
 use std::collections::HashSet;
 use std::sync::Arc;
 use std::time::Instant;
@@ -150,8 +150,8 @@ async fn publish_response(ctx: &RunContext) {
         .iter()
         .map(|r| analysis::response::VpiAtFrequency {
             frequency: Hz(r.frequency_hz),
-            v_pi: halfwave_units::Volts(r.v_pi_volts),
-            uncertainty: halfwave_units::Volts(r.v_pi_uncertainty_volts),
+            v_pi: halfwave_units::VoltsPeak(r.v_pi_volts),
+            uncertainty: halfwave_units::VoltsPeak(r.v_pi_uncertainty_volts),
         })
         .collect();
     let curve = match analysis::response::response_curve(&points) {
@@ -222,7 +222,7 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
 
     let mut result = Ok(());
     // The V_pi the previous adaptive frequency ended with (a prior for the next).
-    let mut previous_v_pi: Option<Volts> = None;
+    let mut previous_v_pi: Option<VoltsPeak> = None;
     // The device's stored calibrations, read once per run, give an adaptive plan its priors.
     let history = if plan.steps().iter().any(|s| s.adaptive.is_some()) {
         let serial = &plan.request().device.serial;
@@ -329,8 +329,8 @@ enum Levels<'a> {
     Adaptive {
         settings: AdaptiveSettings,
         seed: Vec<AdaptivePoint>,
-        prior: Option<Volts>,
-        estimate: &'a mut Option<Volts>,
+        prior: Option<VoltsPeak>,
+        estimate: &'a mut Option<VoltsPeak>,
     },
 }
 

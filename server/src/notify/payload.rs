@@ -6,6 +6,7 @@
 
 use super::settings::EventKind;
 use crate::engine::events::ProgressEvent;
+use crate::engine::rf_safety::SafetyState;
 use crate::store::{RunRecord, RunState};
 use serde::{Deserialize, Serialize};
 
@@ -48,9 +49,10 @@ pub fn kind_of(event: &ProgressEvent) -> Option<EventKind> {
             RunState::Cancelled => Some(EventKind::RunCancelled),
             RunState::Queued | RunState::Running => None,
         },
-        ProgressEvent::BenchSafety { state, .. } if state == "clear" => {
-            Some(EventKind::BenchHoldCleared)
-        }
+        ProgressEvent::BenchSafety {
+            state: SafetyState::Clear,
+            ..
+        } => Some(EventKind::BenchHoldCleared),
         ProgressEvent::BenchSafety { .. } => Some(EventKind::BenchHold),
         _ => None,
     }
@@ -80,7 +82,13 @@ pub fn payload(
             bench,
             state,
             cause,
-        } => (None, bench.clone(), None, state.clone(), cause.clone()),
+        } => (
+            None,
+            bench.clone(),
+            None,
+            state.as_str().to_string(),
+            cause.clone(),
+        ),
         other => (other.run_id(), String::new(), None, String::new(), None),
     };
     let quoted = cause.as_deref().map(shorten);
@@ -206,20 +214,23 @@ mod tests {
             kind_of(&finished("failed", None)),
             Some(EventKind::RunFailed)
         );
-        let hold = |state: &str| ProgressEvent::BenchSafety {
+        let hold = |state: SafetyState| ProgressEvent::BenchSafety {
             bench: "sim".into(),
-            state: state.into(),
+            state,
             cause: None,
         };
         assert_eq!(
-            kind_of(&hold("awaiting_acknowledgement")),
+            kind_of(&hold(SafetyState::AwaitingAcknowledgement)),
             Some(EventKind::BenchHold)
         );
         assert_eq!(
-            kind_of(&hold("output_unconfirmed")),
+            kind_of(&hold(SafetyState::OutputUnconfirmed)),
             Some(EventKind::BenchHold)
         );
-        assert_eq!(kind_of(&hold("clear")), Some(EventKind::BenchHoldCleared));
+        assert_eq!(
+            kind_of(&hold(SafetyState::Clear)),
+            Some(EventKind::BenchHoldCleared)
+        );
         assert_eq!(
             kind_of(&ProgressEvent::Queued {
                 run_id: 1,

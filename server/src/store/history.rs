@@ -24,7 +24,7 @@ use super::{
 };
 use crate::analysis::agreement::agreement;
 use crate::analysis::vpi_lookup::{extrapolate_vpi, interpolate_vpi, VpiSample};
-use halfwave_units::{Hz, Volts};
+use halfwave_units::{Hz, VoltsPeak};
 
 impl VpiSample for FrequencyResultRecord {
     fn frequency_hz(&self) -> f64 {
@@ -178,7 +178,7 @@ impl DeviceCalibrationSet {
         run: &CalibrationRun,
         selection: RunSelection,
         frequency: Hz,
-        (v_pi, uncertainty, lower, upper): (Volts, Volts, Hz, Hz),
+        (v_pi, uncertainty, lower, upper): (VoltsPeak, VoltsPeak, Hz, Hz),
     ) -> InterpolatedVpi {
         InterpolatedVpi {
             run_id: run.run_id,

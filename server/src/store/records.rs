@@ -3,11 +3,11 @@
 //! Rows read from the database keep plain numbers with the unit in the field name
 //! (`frequency_hz: f64`), because that is what the columns hold and what the API serializes; each
 //! offers accessors that return the unit types. Inputs the engine hands over take the unit types
-//! (`Hz`, `Dbm`, `Volts`) so a level cannot be stored as a voltage. Times are milliseconds since
+//! (`Hz`, `Dbm`, `VoltsPeak`) so a level cannot be stored as a voltage. Times are milliseconds since
 //! the Unix epoch (UTC). JSON documents (plan, line table, analysis, fit) are `serde_json::Value`,
 //! so the store does not depend on the engine's or the analysis's types.
 
-use halfwave_units::{Db, Dbm, Hz, Nanometers, Trace, Volts};
+use halfwave_units::{Db, Dbm, Hz, Nanometers, Trace, VoltsPeak};
 use serde::{Deserialize, Serialize};
 use std::fmt;
 
@@ -375,7 +375,7 @@ pub struct NewPoint<'a> {
     pub frequency: Hz,
     pub generator_level: Dbm,
     pub level_at_modulator: Dbm,
-    pub v_peak: Volts,
+    pub v_peak: VoltsPeak,
     /// The fitted modulation index; `None` when the analysis could not fit one (the reason is in
     /// `analysis`). The point is still stored so a resumed run does not measure it again.
     pub modulation_index: Option<f64>,
@@ -426,8 +426,8 @@ impl PointRecord {
         Dbm(self.level_at_modulator_dbm)
     }
 
-    pub fn v_peak(&self) -> Volts {
-        Volts(self.v_peak_volts)
+    pub fn v_peak(&self) -> VoltsPeak {
+        VoltsPeak(self.v_peak_volts)
     }
 }
 
@@ -448,9 +448,9 @@ pub struct NewFrequencyResult {
     pub run_id: i64,
     pub frequency_index: u32,
     pub frequency: Hz,
-    pub v_pi: Volts,
+    pub v_pi: VoltsPeak,
     /// Standard uncertainty of `v_pi`.
-    pub v_pi_uncertainty: Volts,
+    pub v_pi_uncertainty: VoltsPeak,
     /// The points left out of the fit, each with its reason.
     pub excluded_points: serde_json::Value,
     /// The fit's details (slope, residuals, method ...).
@@ -477,12 +477,12 @@ impl FrequencyResultRecord {
         Hz(self.frequency_hz)
     }
 
-    pub fn v_pi(&self) -> Volts {
-        Volts(self.v_pi_volts)
+    pub fn v_pi(&self) -> VoltsPeak {
+        VoltsPeak(self.v_pi_volts)
     }
 
-    pub fn v_pi_uncertainty(&self) -> Volts {
-        Volts(self.v_pi_uncertainty_volts)
+    pub fn v_pi_uncertainty(&self) -> VoltsPeak {
+        VoltsPeak(self.v_pi_uncertainty_volts)
     }
 }
 
@@ -601,8 +601,8 @@ pub struct InterpolatedVpi {
     /// True when that run is the device's pinned reference calibration.
     pub pinned: bool,
     pub frequency_hz: Hz,
-    pub v_pi_volts: Volts,
-    pub v_pi_uncertainty_volts: Volts,
+    pub v_pi_volts: VoltsPeak,
+    pub v_pi_uncertainty_volts: VoltsPeak,
     /// The measured frequencies the value comes from (equal when the frequency was measured).
     pub lower_frequency_hz: Hz,
     pub upper_frequency_hz: Hz,

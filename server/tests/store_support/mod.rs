@@ -8,7 +8,7 @@ use halfwave::store::{
     ChainCalibrationPoint, NewDevice, NewFrequencyResult, NewPoint, NewRun, RunRecord, RunState,
     Store,
 };
-use halfwave::units::{Db, Dbm, Hz, Nanometers, Trace, Volts};
+use halfwave::units::{Db, Dbm, Hz, Nanometers, Trace, VoltsPeak};
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicU32, Ordering};
 
@@ -111,7 +111,7 @@ pub fn point<'a>(
         frequency: Hz::from_ghz(10.0 * (frequency_index + 1) as f64),
         generator_level: Dbm(level_index as f64 * 3.0),
         level_at_modulator: Dbm(level_index as f64 * 3.0 + 20.0),
-        v_peak: Volts(3.162),
+        v_peak: VoltsPeak(3.162),
         modulation_index: Some(1.2),
         modulation_index_uncertainty: Some(0.01),
         asymmetry: Some(Db(0.1)),
@@ -133,8 +133,8 @@ pub fn result(
         run_id,
         frequency_index,
         frequency: Hz::from_ghz(frequency_ghz),
-        v_pi: Volts(v_pi_volts),
-        v_pi_uncertainty: Volts(u_volts),
+        v_pi: VoltsPeak(v_pi_volts),
+        v_pi_uncertainty: VoltsPeak(u_volts),
         excluded_points: serde_json::json!([]),
         fit: serde_json::json!({ "points_used": 4 }),
     }

@@ -14,7 +14,7 @@ use super::style::{uncertainty_bar, BACKGROUND, CURRENT, FIT, FONT, GRID, INK};
 use super::vpi::VpiCurve;
 use super::{heading, padded_range, PlotError, PLOT_SIZE};
 use crate::analysis::{response_curve, ResponseCurve, VpiAtFrequency};
-use halfwave_units::{Hz, Volts};
+use halfwave_units::{Hz, VoltsPeak};
 use plotters::prelude::*;
 
 /// The response of `curve`: usable points only, one per frequency (see the module documentation).
@@ -30,8 +30,8 @@ pub fn response_of(curve: &VpiCurve) -> Result<ResponseCurve, PlotError> {
         })
         .map(|p| VpiAtFrequency {
             frequency: Hz(p.frequency_hz),
-            v_pi: Volts(p.v_pi_volts),
-            uncertainty: Volts(if p.v_pi_uncertainty_volts.is_finite() {
+            v_pi: VoltsPeak(p.v_pi_volts),
+            uncertainty: VoltsPeak(if p.v_pi_uncertainty_volts.is_finite() {
                 p.v_pi_uncertainty_volts.abs()
             } else {
                 0.0
@@ -72,8 +72,8 @@ fn merge_equal_frequencies(sorted: &[VpiAtFrequency]) -> Vec<VpiAtFrequency> {
                 };
                 VpiAtFrequency {
                     frequency: group[0].frequency,
-                    v_pi: Volts(v_pi),
-                    uncertainty: Volts(uncertainty),
+                    v_pi: VoltsPeak(v_pi),
+                    uncertainty: VoltsPeak(uncertainty),
                 }
             }
         })
@@ -248,7 +248,7 @@ mod tests {
         // Exact values (no uncertainty) at one frequency: their plain mean.
         let exact =
             response_of(&curve(&[(1e9, 3.0, 0.0), (1e9, 5.0, 0.0), (2e9, 8.0, 0.3)])).unwrap();
-        assert_eq!(exact.points[0].v_pi_volts, Volts(4.0));
+        assert_eq!(exact.points[0].v_pi_volts, VoltsPeak(4.0));
         assert!((exact.points[1].response_db + 6.0206).abs() < 1e-4);
         // Drawn: one marker per distinct frequency.
         let svg = drawn(&curve(&[

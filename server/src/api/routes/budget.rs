@@ -19,7 +19,7 @@ use crate::api::views::budget::{BudgetRowView, FrequencyBudgetView, RunBudgetVie
 use crate::api::AppState;
 use axum::extract::State;
 use axum::Json;
-use halfwave_units::{Db, Hz, Volts};
+use halfwave_units::{Db, Hz, VoltsPeak};
 use serde::Deserialize;
 use utoipa::IntoParams;
 
@@ -176,8 +176,8 @@ pub async fn budget_for_run(
             })?,
         };
         let budget: Option<VpiBudget> = v_pi_budget(BudgetInputs {
-            v_pi: Volts(r.v_pi_volts),
-            fit_uncertainty: Volts(r.v_pi_uncertainty_volts),
+            v_pi: VoltsPeak(r.v_pi_volts),
+            fit_uncertainty: VoltsPeak(r.v_pi_uncertainty_volts),
             chain_uncertainty,
             source_level_accuracy,
         });

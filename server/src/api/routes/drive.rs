@@ -334,7 +334,8 @@ pub async fn plan_drive(
         .engine()
         .map_or(DEFAULT_MAX_LEVEL_AT_MODULATOR_DBM, |engine| {
             engine.limits().max_level_at_modulator_dbm
-        });
+        })
+        .value();
     let limit = device_limit.min(daemon_limit);
     let at_modulator = solution.level_at_modulator.0;
     if at_modulator > limit {

@@ -60,7 +60,7 @@ pub async fn health(State(state): State<AppState>) -> Result<(StatusCode, Json<H
                 let fault = b.safety_fault?;
                 Some(BenchAttention {
                     bench: b.name,
-                    safety_state: b.safety_state,
+                    safety_state: b.safety_state.as_str().to_string(),
                     cause: fault.cause,
                 })
             })
