@@ -19,7 +19,8 @@
 use super::events::{ChainRunEnd, ProgressEvent};
 use super::plan::{FieldError, PlanErrors};
 use super::safety::{self, RfOffGuard, SharedSource};
-use super::{lock, BenchSlot, Engine, EngineError, SubmitError};
+use super::worker::{BenchSlot, Work};
+use super::{lock, Engine, EngineError, SubmitError};
 use crate::analysis::sensor_chain::{
     gain_from_readings, GainEstimate, SensorFigures, SensorReading,
 };
@@ -367,7 +368,7 @@ impl Engine {
         let slot = self.inner.benches.get(&request.bench).cloned();
         if let Some(slot) = slot {
             lock(&self.inner.chain_cancels).insert(id, CancellationToken::new());
-            let _ = slot.jobs.send(super::Work::Chain(ChainJob {
+            let _ = slot.jobs.send(Work::Chain(ChainJob {
                 id,
                 plan: Arc::new(plan),
                 submitted_by: submitted_by.to_string(),
