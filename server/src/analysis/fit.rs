@@ -70,6 +70,14 @@ pub const SHAPE_SYSTEMATIC_MIXED: f64 = 1e-2;
 /// Most Levenberg-Marquardt iterations.
 const MAX_ITERATIONS: usize = 40;
 
+/// A step (in standard uncertainties of the parameters, its Mahalanobis norm) under which the
+/// fit is near enough its optimum for the segments to be cut again at the fine tolerance. The
+/// coarse segments' steps are hundreds of uncertainties long until the last one or two, and on
+/// the benchmark's traces the step after one of 2-5 u moved the parameters by 0.003-0.05 u,
+/// little against the 1-5 u between the coarse and the fine segments' optima: that step is not
+/// taken on the coarse segments.
+const RECUT_STEP: f64 = 10.0;
+
 /// Parameter slots.
 const BETA: usize = 0;
 const LN_P0: usize = 1;
@@ -676,6 +684,12 @@ struct Workspace {
     points_under: usize,
     /// The model's level at each point while the segments are cut.
     level_cache: Vec<f64>,
+    /// Per point, the row of [`Workspace::point_shape`] that holds each line's K there (computed
+    /// with the level while the segments are cut, read again by [`limit_reach`] at the nodes),
+    /// `u32::MAX` where the level was not computed; a row has one entry per order slot, 0 for
+    /// the lines whose window does not hold the point.
+    point_row: Vec<u32>,
+    point_shape: Vec<f64>,
 }
 
 /// Points between nodes on which the model in dB is taken as the quadratic through the nodes
@@ -1282,15 +1296,23 @@ fn limit_reach(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Worksp
     ws.local_count.clear();
     ws.local_count.resize(node_count, 0);
     ws.pair_shape.clear();
+    let width = (2 * nmax + 1) as usize;
     for n in -nmax..=nmax {
         let (lo, hi) = ws.node_ranges[(n + nmax) as usize];
         if hi < lo {
             continue;
         }
         let amplitude = p0 * line_weight(table, n, p[BETA], p[ASYM]).0;
-        let centre = fc + n as f64 * prob.spacing;
+        let slot = (n + nmax) as usize;
         for k in lo..=hi {
-            let v = shape.eval(ws.node_freq[k] - centre).k;
+            // K as the cut computed it at this node's point (the same expression where the cut
+            // did not compute the level there).
+            let row = ws.point_row[ws.nodes[k]];
+            let v = if row == u32::MAX {
+                shape.eval(ws.node_freq[k] - fc - n as f64 * prob.spacing).k
+            } else {
+                ws.point_shape[row as usize * width + slot]
+            };
             ws.pair_shape.push(v);
             ws.local_total[k] += amplitude * v;
             ws.local_count[k] += 1;
@@ -1349,17 +1371,29 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     let mut cache = std::mem::take(&mut ws.level_cache);
     cache.clear();
     cache.resize(prob.freq.len(), f64::NAN);
+    let mut point_row = std::mem::take(&mut ws.point_row);
+    point_row.clear();
+    point_row.resize(prob.freq.len(), u32::MAX);
+    let mut point_shape = std::mem::take(&mut ws.point_shape);
+    point_shape.clear();
+    let width = amplitudes.len();
     let mut level_at = |i: usize| -> f64 {
         if !cache[i].is_nan() {
             return cache[i];
         }
         let f = prob.freq[i];
         let mut m = floor;
+        let row = point_shape.len();
+        point_row[i] = (row / width) as u32;
+        point_shape.resize(row + width, 0.0);
+        let row = &mut point_shape[row..];
         for (slot, amplitude) in amplitudes.iter().enumerate() {
             let (lo, hi) = ranges[slot];
             if i >= lo && i <= hi {
                 let n = slot as i32 - nmax;
-                m += amplitude * shape.eval(f - fc - n as f64 * prob.spacing).k;
+                let v = shape.eval(f - fc - n as f64 * prob.spacing).k;
+                row[slot] = v;
+                m += amplitude * v;
             }
         }
         let level = DB_PER_NEPER * m.max(1e-300).ln();
@@ -1451,6 +1485,8 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     }
     ws.points_under = under;
     ws.level_cache = cache;
+    ws.point_row = point_row;
+    ws.point_shape = point_shape;
 }
 
 /// The statistics of one segment with nodes at the points `at` (node slots `slots`) over its
@@ -1807,10 +1843,10 @@ fn fit_once(
             let step_in_uncertainties = (norm / (trial_eval.ssr / dof).max(1e-300)).sqrt();
             p = trial;
             shape = trial_shape;
-            // Near the optimum (a step under one standard uncertainty) the windows and segments
-            // are set again for parameters close to the fitted ones; before that, only when
-            // beta moved far from where they were set.
-            let recut = !recut_near_optimum && step_in_uncertainties < 1.0;
+            // Near the optimum (a step under [`RECUT_STEP`] standard uncertainties) the windows
+            // and segments are set again for parameters close to the fitted ones; before that,
+            // only when beta moved far from where they were set.
+            let recut = !recut_near_optimum && step_in_uncertainties < RECUT_STEP;
             let rewindow =
                 recut || (!rewindowed && (p[BETA] - p_start_beta).abs() > 0.05 * p_start_beta);
             if rewindow {
@@ -1822,11 +1858,19 @@ fn fit_once(
                 recut_near_optimum |= recut;
             }
             let active = free_parameters(&base, &p);
-            eval = if rewindow || active != prob.active {
+            eval = if rewindow {
                 prob.active = active;
                 evaluate(&prob, &shape, &p, ws, true)
-            } else {
+            } else if active == prob.active || (0..NP).all(|i| prob.active[i] || !active[i]) {
+                // Fewer free parameters (a width held when the mix reached a bound): the trial's
+                // J^T J and J^T r hold the remaining ones' entries as they are, and the held
+                // ones' entries are never read.
+                prob.active = active;
                 trial_eval
+            } else {
+                // More: the line sums at the nodes are the trial's, only the assembly is redone.
+                prob.active = active;
+                assemble(&prob, &p, ws, true)
             };
             lambda = (lambda / 5.0).max(1e-9);
             if !recut && (gain < 1e-7 || step_in_uncertainties < 0.05) {
