@@ -512,15 +512,21 @@ async fn dashboard_resumes_only_resumable_runs_confirms_cancel_and_pins_from_a_r
     browser.close().await;
 }
 
+/// Waits until `condition` (a JavaScript expression) is true. An exception counts as "not yet"
+/// (a table being re-rendered has no rows for a moment); the last one is reported on timeout.
 async fn wait_for(browser: &mut Browser, condition: &str, seconds: u64) {
     let deadline = tokio::time::Instant::now() + Duration::from_secs(seconds);
+    let guarded = format!(
+        "(() => {{ try {{ return ({condition}) === true; }} catch (e) {{ return String(e); }} }})()"
+    );
     loop {
-        if browser.eval(condition).await == serde_json::Value::Bool(true) {
+        let value = browser.eval(&guarded).await;
+        if value == serde_json::Value::Bool(true) {
             return;
         }
         assert!(
             tokio::time::Instant::now() < deadline,
-            "timed out waiting for: {condition}"
+            "timed out waiting for: {condition} (last value: {value})"
         );
         tokio::time::sleep(Duration::from_millis(100)).await;
     }
