@@ -13,6 +13,7 @@
 
 mod daemon_support;
 mod engine_support;
+mod webhook_support;
 
 use daemon_support::free_port;
 use halfwave::store::scratch_db::ScratchDatabase;
@@ -22,6 +23,7 @@ use std::process::Stdio;
 use std::time::Duration;
 use tokio::io::{AsyncBufReadExt, BufReader};
 use tokio::process::{Child, Command};
+use webhook_support::Receiver;
 
 /// The lease expiry the daemons are given: short, so the takeover is seen within the test.
 const LEASE_EXPIRY_S: f64 = 2.0;
@@ -105,6 +107,37 @@ impl Lab {
         );
         stderr
     }
+}
+
+/// An operator token made through `lab`'s configuration (tokens are global on a shared database).
+async fn operator_token(lab: &Lab, name: &str) -> String {
+    daemon_support::cli_succeeds(&[
+        "token",
+        "create",
+        "--role",
+        "operator",
+        "--name",
+        name,
+        "--config",
+        lab.config.to_str().unwrap(),
+    ])
+    .await
+}
+
+/// Submits a one-frequency calibration of `serial` on `bench` to `lab`, waits for it to complete
+/// and returns its id.
+async fn calibrate(
+    client: &reqwest::Client,
+    lab: &Lab,
+    token: &str,
+    bench: &str,
+    serial: &str,
+) -> i64 {
+    let (status, body) = submit(client, lab, token, &plan(bench, serial, &[1.5e9])).await;
+    assert_eq!(status, 201, "{body}");
+    let id = body["run_id"].as_i64().unwrap();
+    wait_for(client, lab, token, id, |r| r["state"] == "completed").await;
+    id
 }
 
 fn plan(bench: &str, serial: &str, frequencies_hz: &[f64]) -> Value {
@@ -196,17 +229,7 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
     let b = lab(dir.path(), "lab-b", "south-bench", database.url(), 0.0);
 
     // Tokens are global: one made through lab A's configuration works on both daemons.
-    let token = daemon_support::cli_succeeds(&[
-        "token",
-        "create",
-        "--role",
-        "operator",
-        "--name",
-        "two-labs",
-        "--config",
-        a.config.to_str().unwrap(),
-    ])
-    .await;
+    let token = operator_token(&a, "two-labs").await;
 
     let mut daemon_a = a.serve().await;
     let _daemon_b = b.serve().await;
@@ -317,50 +340,16 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
     );
 }
 
-/// A webhook receiver on 127.0.0.1 that answers 204 and keeps each request's body.
-struct Inbox {
-    bodies: std::sync::Arc<std::sync::Mutex<Vec<Value>>>,
-}
-
-impl Inbox {
-    async fn start(port: u16) -> Inbox {
-        let bodies: std::sync::Arc<std::sync::Mutex<Vec<Value>>> = Default::default();
-        let kept = bodies.clone();
-        let app = axum::Router::new().fallback(move |body: axum::body::Bytes| {
-            let kept = kept.clone();
-            async move {
-                kept.lock()
-                    .unwrap()
-                    .push(serde_json::from_slice(&body).unwrap_or(Value::Null));
-                axum::http::StatusCode::NO_CONTENT
-            }
-        });
-        let listener = tokio::net::TcpListener::bind(("127.0.0.1", port))
-            .await
-            .unwrap();
-        tokio::spawn(async move { axum::serve(listener, app).await.unwrap() });
-        Inbox { bodies }
-    }
-
-    fn received(&self) -> Vec<Value> {
-        self.bodies.lock().unwrap().clone()
-    }
-
-    /// Waits until `count` requests have come (panics after 60 s), then `settle` more.
-    async fn wait_for(&self, count: usize, settle: Duration) -> Vec<Value> {
-        let deadline = tokio::time::Instant::now() + Duration::from_secs(60);
-        while self.received().len() < count {
-            assert!(
-                tokio::time::Instant::now() < deadline,
-                "{} of {count} webhook requests came: {:?}",
-                self.received().len(),
-                self.received()
-            );
-            tokio::time::sleep(Duration::from_millis(50)).await;
-        }
-        tokio::time::sleep(settle).await;
-        self.received()
-    }
+/// The JSON bodies `receiver` got once at least `count` requests have come (within 60 s) and
+/// `settle` more has passed (so that a duplicate would be seen).
+async fn bodies(receiver: &Receiver, count: usize, settle: Duration) -> Vec<Value> {
+    receiver.wait_for(count, Duration::from_secs(60)).await;
+    tokio::time::sleep(settle).await;
+    receiver
+        .received()
+        .iter()
+        .map(|r| serde_json::from_str(&r.body).unwrap_or(Value::Null))
+        .collect()
 }
 
 /// Appends a `[[webhook]]` for run events to a lab's configuration (one retry a second).
@@ -383,56 +372,27 @@ async fn webhooks_of_two_daemons_on_one_database_are_each_sent_once_by_their_own
     let client = reqwest::Client::new();
     let a = lab(dir.path(), "lab-a", "north-bench", database.url(), 0.0);
     let b = lab(dir.path(), "lab-b", "south-bench", database.url(), 0.0);
-    let both_port = free_port();
-    let both = Inbox::start(both_port).await;
-    let both_url = format!("http://127.0.0.1:{both_port}/both");
+    let both = Receiver::start_on(0, 0).await;
+    let both_url = both.url("/both");
     let a_only_port = free_port();
     let a_only_url = format!("http://127.0.0.1:{a_only_port}/lab-a");
     add_webhook(&a, dir.path(), &both_url);
     add_webhook(&a, dir.path(), &a_only_url);
     add_webhook(&b, dir.path(), &both_url);
 
-    let token = daemon_support::cli_succeeds(&[
-        "token",
-        "create",
-        "--role",
-        "operator",
-        "--name",
-        "two-labs-webhooks",
-        "--config",
-        a.config.to_str().unwrap(),
-    ])
-    .await;
+    let token = operator_token(&a, "two-labs-webhooks").await;
     let _daemon_a = a.serve().await;
     let _daemon_b = b.serve().await;
 
     // Lab A calibrates while its own receiver is down: that delivery stays pending, retried.
-    let (status, body) = submit(
-        &client,
-        &a,
-        &token,
-        &plan("north-bench", "EG-PM-0101", &[1.5e9]),
-    )
-    .await;
-    assert_eq!(status, 201, "{body}");
-    let run_a = body["run_id"].as_i64().unwrap();
-    wait_for(&client, &a, &token, run_a, |r| r["state"] == "completed").await;
-    both.wait_for(1, Duration::ZERO).await;
+    let run_a = calibrate(&client, &a, &token, "north-bench", "EG-PM-0101").await;
+    bodies(&both, 1, Duration::ZERO).await;
 
     // Lab B calibrates: its sender passes over the outbox while lab A's row is pending.
-    let (status, body) = submit(
-        &client,
-        &b,
-        &token,
-        &plan("south-bench", "EG-PM-0202", &[1.5e9]),
-    )
-    .await;
-    assert_eq!(status, 201, "{body}");
-    let run_b = body["run_id"].as_i64().unwrap();
-    wait_for(&client, &b, &token, run_b, |r| r["state"] == "completed").await;
+    let run_b = calibrate(&client, &b, &token, "south-bench", "EG-PM-0202").await;
 
     // The receiver both daemons have gets each run once (no event sent by both daemons).
-    let got = both.wait_for(2, Duration::from_secs(2)).await;
+    let got = bodies(&both, 2, Duration::from_secs(2)).await;
     let mut runs: Vec<i64> = got.iter().map(|b| b["run_id"].as_i64().unwrap()).collect();
     runs.sort_unstable();
     assert_eq!(runs, vec![run_a, run_b], "{got:?}");
@@ -445,8 +405,8 @@ async fn webhooks_of_two_daemons_on_one_database_are_each_sent_once_by_their_own
         "lab B failed a row it has no receiver for"
     );
     assert_eq!(counts.pending, 1, "{counts:?}");
-    let a_only = Inbox::start(a_only_port).await;
-    let got = a_only.wait_for(1, Duration::from_secs(2)).await;
+    let a_only = Receiver::start_on(a_only_port, 0).await;
+    let got = bodies(&a_only, 1, Duration::from_secs(2)).await;
     assert_eq!(got.len(), 1, "{got:?}");
     assert_eq!(got[0]["run_id"].as_i64(), Some(run_a), "{got:?}");
     assert_eq!(got[0]["event_type"], "run.completed");

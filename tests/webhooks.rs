@@ -15,92 +15,17 @@ mod engine_support;
 
 mod daemon_support;
 
-use axum::body::Bytes;
-use axum::http::{HeaderMap, StatusCode};
+mod webhook_support;
+
 use daemon_support::Bench;
 use halfwave::store::Store;
 use serde_json::{json, Value};
 use sha2::{Digest, Sha256};
-use std::sync::atomic::{AtomicUsize, Ordering};
-use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+use webhook_support::{Received, Receiver};
 
 /// The shared secret of the tests (an invented value).
 const SECRET: &str = "lab-b-webhook-secret-0123456789abcdef";
-
-/// One request the receiver got.
-#[derive(Debug, Clone)]
-struct Received {
-    path: String,
-    headers: HeaderMap,
-    body: String,
-    at: Instant,
-}
-
-/// A receiver on 127.0.0.1 that records every POST and answers 503 to the first `fail_first`.
-#[derive(Clone)]
-struct Receiver {
-    got: Arc<Mutex<Vec<Received>>>,
-    port: u16,
-}
-
-impl Receiver {
-    async fn start_on(port: u16, fail_first: usize) -> Receiver {
-        let got: Arc<Mutex<Vec<Received>>> = Arc::default();
-        let count = Arc::new(AtomicUsize::new(0));
-        let recorder = got.clone();
-        let app = axum::Router::new().fallback(
-            move |uri: axum::http::Uri, headers: HeaderMap, body: Bytes| {
-                let recorder = recorder.clone();
-                let count = count.clone();
-                async move {
-                    recorder.lock().unwrap().push(Received {
-                        path: uri.path().to_string(),
-                        headers,
-                        body: String::from_utf8(body.to_vec()).unwrap(),
-                        at: Instant::now(),
-                    });
-                    if count.fetch_add(1, Ordering::SeqCst) < fail_first {
-                        StatusCode::SERVICE_UNAVAILABLE
-                    } else {
-                        StatusCode::NO_CONTENT
-                    }
-                }
-            },
-        );
-        let listener = tokio::net::TcpListener::bind(("127.0.0.1", port))
-            .await
-            .unwrap();
-        let port = listener.local_addr().unwrap().port();
-        tokio::spawn(async move { axum::serve(listener, app).await.unwrap() });
-        Receiver { got, port }
-    }
-
-    fn url(&self, path: &str) -> String {
-        format!("http://127.0.0.1:{}{path}", self.port)
-    }
-
-    fn received(&self) -> Vec<Received> {
-        self.got.lock().unwrap().clone()
-    }
-
-    /// Waits until at least `n` requests have arrived (up to `limit`).
-    async fn wait_for(&self, n: usize, limit: Duration) -> Vec<Received> {
-        let deadline = Instant::now() + limit;
-        loop {
-            let got = self.received();
-            if got.len() >= n {
-                return got;
-            }
-            assert!(
-                Instant::now() < deadline,
-                "{} of {n} deliveries arrived: {got:?}",
-                got.len()
-            );
-            tokio::time::sleep(Duration::from_millis(50)).await;
-        }
-    }
-}
 
 /// HMAC-SHA256 by RFC 2104: H((K ^ opad) || H((K ^ ipad) || m)), a 64-byte block, with `sha2`.
 fn reference_hmac_sha256(key: &[u8], message: &[u8]) -> String {

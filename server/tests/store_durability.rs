@@ -415,20 +415,20 @@ async fn webhook_deliveries_claimed_by_two_senders_at_once_go_to_one_each(store:
         let mut got = Vec::new();
         loop {
             let now = now_unix_ms();
-            let claimed = store
-                .claim_due_webhook_deliveries(now, &urls, 5, now + 60_000)
-                .await
-                .unwrap();
-            if claimed.is_empty()
-                && store
-                    .due_webhook_deliveries(now, &urls, 1)
-                    .await
-                    .unwrap()
-                    .is_empty()
-            {
+            let due = store.due_webhook_deliveries(now, &urls, 5).await.unwrap();
+            if due.is_empty() {
                 return got;
             }
-            got.extend(claimed.into_iter().map(|d| d.event_id));
+            for row in due {
+                let until = now + 60_000;
+                if store
+                    .claim_webhook_delivery(row.id, row.next_attempt_at_unix_ms, until)
+                    .await
+                    .unwrap()
+                {
+                    got.push(row.event_id);
+                }
+            }
             tokio::task::yield_now().await;
         }
     };

@@ -278,6 +278,19 @@ mod tests {
         }
     }
 
+    /// A budget with one row, at frequency index 0 (u = 0.05 V, k = 2, U = 0.1 V).
+    fn budget_at_frequency_0() -> RunBudgetView {
+        serde_json::from_value(serde_json::json!({
+            "run_id": 7, "chain_uncertainty_from": "query", "source_level_accuracy_db": 0.5,
+            "source_level_accuracy_from": "query", "frequencies": [{
+                "frequency_index": 0, "frequency_hz": 2e9, "v_pi_volts": 3.7, "rows": [],
+                "combined_standard_uncertainty_volts": 0.05, "coverage_factor": 2.0,
+                "expanded_uncertainty_volts": 0.1
+            }]
+        }))
+        .unwrap()
+    }
+
     #[test]
     fn the_json_export_carries_the_budget_or_says_why_not() {
         let mut value = serde_json::json!({"summary": {}});
@@ -291,15 +304,7 @@ mod tests {
             value["v_pi_budget_unavailable"],
             "source_level_accuracy_db: not stated"
         );
-        let budget: RunBudgetView = serde_json::from_value(serde_json::json!({
-            "run_id": 7, "chain_uncertainty_from": "query", "source_level_accuracy_db": 0.5,
-            "source_level_accuracy_from": "query", "frequencies": [{
-                "frequency_index": 0, "frequency_hz": 2e9, "v_pi_volts": 3.7, "rows": [],
-                "combined_standard_uncertainty_volts": 0.05, "coverage_factor": 2.0,
-                "expanded_uncertainty_volts": 0.1
-            }]
-        }))
-        .unwrap();
+        let budget = budget_at_frequency_0();
         let mut value = serde_json::json!({});
         with_budget(&mut value, Ok(budget)).unwrap();
         assert_eq!(
@@ -341,15 +346,7 @@ mod tests {
 
     #[test]
     fn csv_rows_carry_the_budget_of_their_frequency_when_there_is_one() {
-        let budget: RunBudgetView = serde_json::from_value(serde_json::json!({
-            "run_id": 7, "chain_uncertainty_from": "query", "source_level_accuracy_db": 0.5,
-            "source_level_accuracy_from": "query", "frequencies": [{
-                "frequency_index": 0, "frequency_hz": 2e9, "v_pi_volts": 3.7, "rows": [],
-                "combined_standard_uncertainty_volts": 0.05, "coverage_factor": 2.0,
-                "expanded_uncertainty_volts": 0.1
-            }]
-        }))
-        .unwrap();
+        let budget = budget_at_frequency_0();
         let csv = points_csv(
             &run(),
             &[point(0, Some(0.67)), point(1, None)],

@@ -94,8 +94,8 @@ impl Store {
     }
 
     /// Pending deliveries for `urls` due at `now_ms`, oldest first, at most `limit`. Reading is
-    /// not taking: a sender takes a row with [`Store::claim_webhook_delivery`] (or reads and claims
-    /// at once with [`Store::claim_due_webhook_deliveries`]).
+    /// not taking: a sender takes a row with [`Store::claim_webhook_delivery`] just before its
+    /// attempt.
     pub async fn due_webhook_deliveries(
         &self,
         now_ms: i64,
@@ -144,31 +144,6 @@ impl Store {
         .await.map(|done| done.rows_affected()))
         .map_err(StoreError::database("claiming a webhook delivery"))?;
         Ok(claimed == 1)
-    }
-
-    /// Reads the deliveries for `urls` due at `now_ms` (at most `limit`) and claims each until
-    /// `claim_until_unix_ms`; returns the ones this caller got, oldest first.
-    pub async fn claim_due_webhook_deliveries(
-        &self,
-        now_ms: i64,
-        urls: &[String],
-        limit: i64,
-        claim_until_unix_ms: i64,
-    ) -> Result<Vec<WebhookDelivery>, StoreError> {
-        let mut claimed = Vec::new();
-        for delivery in self.due_webhook_deliveries(now_ms, urls, limit).await? {
-            if self
-                .claim_webhook_delivery(
-                    delivery.id,
-                    delivery.next_attempt_at_unix_ms,
-                    claim_until_unix_ms,
-                )
-                .await?
-            {
-                claimed.push(delivery);
-            }
-        }
-        Ok(claimed)
     }
 
     /// Marks `failed` the pending deliveries for URLs not in `urls` that have been due since
@@ -464,10 +439,14 @@ mod tests {
         assert_eq!(store.next_webhook_due_at(&mine).await.unwrap(), Some(until));
         // A claim that ran out (the claimer died mid-attempt) makes the row due again.
         let again = store
-            .claim_due_webhook_deliveries(until, &mine, 10, until + 30_000)
+            .due_webhook_deliveries(until, &mine, 10)
             .await
             .unwrap();
         assert_eq!(again.len(), 1);
+        assert!(store
+            .claim_webhook_delivery(again[0].id, until, until + 30_000)
+            .await
+            .unwrap());
 
         // The other URL's row is left to its sender while within the grace, failed after it.
         assert_eq!(
