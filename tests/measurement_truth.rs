@@ -514,7 +514,7 @@ fn randomised_study_of_beta_against_two_independent_generators() {
     }
     // What relative line-shape term would cover each analysed trace at k = 2 (for setting
     // SHAPE_SYSTEMATIC_*): sqrt((err / 2)^2 - u^2) / beta, quantiles by shape kind.
-    for kind in ["Measured", "PseudoVoigt"] {
+    for kind in ["Measured", "PseudoVoigt", "Voigt"] {
         let mut needed: Vec<f64> = outcomes
             .iter()
             .filter(|o| o.shape.starts_with(kind))
@@ -533,27 +533,27 @@ fn randomised_study_of_beta_against_two_independent_generators() {
             percentile(&needed, 0.95)
         );
     }
-    // The known gap: a true Voigt filter (the FFT generator's) read with the parametric
-    // pseudo-Voigt, i.e. without a reference trace fine enough for the measured shape. The
-    // pseudo-Voigt cannot follow the Voigt core to better than about 1 % of the peak, and at
-    // small beta (two lines sampled at different sub-sample offsets) that biases beta by up to
-    // 1.7 % with a chi-squared near 1, so the fit cannot see it. Held to a looser bound below.
-    let in_gap = |o: &Outcome| {
+    // A true Voigt filter (the FFT generator's) without a reference fine enough for the measured
+    // shape: read with the parametric shapes, where the pseudo-Voigt alone left beta biased by
+    // up to 1.7 % at small beta with a residual at the noise level. The Voigt profile must be
+    // the one chosen and the error must be that of the other conditions.
+    let true_voigt_parametric = |o: &Outcome| {
         o.condition.generator == Generator::Fft
             && matches!(o.condition.filter, Filter::Voigt(_))
-            && o.shape.starts_with("PseudoVoigt")
+            && o.result.is_ok()
+            && !o.shape.starts_with("Measured")
     };
-    let mut rest = Row::default();
-    let mut gap = Row::default();
-    for o in &outcomes {
-        if in_gap(o) {
-            gap.add(o);
-        } else {
-            rest.add(o);
-        }
+    let mut voigt_row = Row::default();
+    let mut voigt_chosen = 0;
+    for o in outcomes.iter().filter(|o| true_voigt_parametric(o)) {
+        voigt_row.add(o);
+        voigt_chosen += usize::from(o.shape.starts_with("Voigt"));
     }
-    println!("{}", rest.line("all but the gap"));
-    println!("{}", gap.line("gap: true Voigt, parametric shape"));
+    println!("{}", voigt_row.line("true Voigt, parametric shape"));
+    println!(
+        "true Voigt, parametric shape: read with the Voigt profile on {voigt_chosen} of {}",
+        voigt_row.errors.len()
+    );
     let stats = |row: &Row| {
         let mut e = row.errors.clone();
         e.sort_by(f64::total_cmp);
@@ -564,63 +564,38 @@ fn randomised_study_of_beta_against_two_independent_generators() {
             row.covered as f64 / e.len().max(1) as f64,
         )
     };
-    let (median, p95, worst, coverage) = stats(&rest);
-    let silent_rest = outcomes
-        .iter()
-        .filter(|o| !in_gap(o))
-        .filter(|o| {
-            o.result
-                .as_ref()
-                .is_ok_and(|(b, _)| ((b - o.condition.beta) / o.condition.beta).abs() > 0.01)
-        })
-        .count();
-    // The targets, asserted where they are met; where they are not, the bound asserted
-    // is what this study achieves, and README says so: two traces outside the gap are off by
-    // more than 1 % without a refusal, both Lorentzian filters read with the parametric shape at
-    // small beta with residual AM (1.03 points per width, beta 0.268: +1.54 %; 4.4 widths
-    // between lines, beta 0.108: +1.07 %), and the 95th percentile is 0.32 %, not 0.3 %.
-    assert!(
-        silent_rest <= 2,
-        "{silent_rest} traces off by more than 1 % without a refusal"
-    );
-    assert!(worst <= 0.016, "worst |error| {:.4} %", 100.0 * worst);
-    assert!(all.refused <= TRACES / 10, "{} refusals", all.refused);
+    let (median, p95, worst, coverage) = stats(&all);
+    // The targets: median <= 0.1 %, 95th percentile <= 0.3 %, |error| <= 2u on >= 95 %.
     assert!(median <= 0.001, "median |error| {:.4} %", 100.0 * median);
+    assert!(p95 <= 0.003, "95th percentile |error| {:.4} %", 100.0 * p95);
     assert!(
-        p95 <= P95_ACHIEVED,
-        "95th percentile |error| {:.4} %",
-        100.0 * p95
-    );
-    assert!(
-        coverage >= COVERAGE_ACHIEVED,
+        coverage >= 0.95,
         "|error| <= 2u on {:.1} %",
         100.0 * coverage
     );
-    let (gap_median, _, gap_worst, gap_coverage) = stats(&gap);
-    // Without a reference a true Voigt is read with the pseudo-Voigt, whose stated line-shape
-    // term (1 % when the fitted mix is real) must cover the error it leaves.
+    assert!(all.refused <= TRACES / 10, "{} refusals", all.refused);
+    // Not met: no silent failure. What the study achieves is asserted, and README says so: two
+    // traces sampled at about one point per resolution width (1.03 and 1.43) with display noise
+    // of 0.09-0.1 dB are off by 1.36 % without a refusal.
     assert!(
-        gap_coverage >= 0.95,
-        "gap: |error| <= 2u on {:.1} %",
-        100.0 * gap_coverage
+        silent.len() <= 2,
+        "{} traces off by more than 1 % without a refusal",
+        silent.len()
     );
-    let (_, _, _, all_coverage) = stats(&all);
+    assert!(worst <= 0.015, "worst |error| {:.4} %", 100.0 * worst);
+    let (_, voigt_p95, _, voigt_coverage) = stats(&voigt_row);
     assert!(
-        all_coverage >= 0.95,
-        "all traces: |error| <= 2u on {:.1} %",
-        100.0 * all_coverage
+        voigt_chosen * 10 >= voigt_row.errors.len() * 8,
+        "the Voigt profile read {voigt_chosen} of {} true-Voigt traces",
+        voigt_row.errors.len()
     );
     assert!(
-        gap_median <= 0.002,
-        "gap median {:.4} %",
-        100.0 * gap_median
+        voigt_p95 <= 0.003 && voigt_coverage >= 0.95,
+        "true Voigt, parametric shape: p95 {:.4} %, |error| <= 2u on {:.1} %",
+        100.0 * voigt_p95,
+        100.0 * voigt_coverage
     );
-    assert!(gap_worst <= 0.02, "gap worst {:.4} %", 100.0 * gap_worst);
 }
-
-/// What the study achieves outside the gap, asserted (the targets are 0.3 % and 95 %).
-const P95_ACHIEVED: f64 = 0.0035;
-const COVERAGE_ACHIEVED: f64 = 0.95;
 
 #[test]
 fn the_fft_generator_matches_the_jacobi_anger_expansion() {

@@ -35,6 +35,7 @@
 //! quadrature (clause 5.1.2, uncorrelated inputs).
 
 use super::bessel::{BesselTable, MAX_ORDER};
+use super::faddeeva::{self, VoigtCore};
 use super::smooth_shape;
 use super::AnalysisError;
 use halfwave_units::{Hz, Trace};
@@ -97,6 +98,8 @@ pub enum ShapeKind {
     Measured,
     /// Pseudo-Voigt with fitted width and mix.
     PseudoVoigt,
+    /// Voigt profile (a Gaussian convolved with a Lorentzian) with both widths fitted.
+    Voigt,
 }
 
 /// The instrument line shape K(x), unit peak at x = 0.
@@ -127,7 +130,16 @@ pub struct LineShape {
     envelope: Arc<[f64]>,
     /// Index of the table's peak.
     peak_index: usize,
+    /// Voigt: w(z) along Im z = y = gamma / (sigma sqrt 2), 1 / (sigma sqrt 2), and
+    /// w(iy) = erfcx(y) (the profile's peak, by which K is divided) with its slope in y.
+    voigt: Option<Arc<VoigtCore>>,
+    voigt_inv_s: f64,
+    voigt_inv_peak: f64,
+    voigt_peak_slope: f64,
 }
+
+/// FWHM / sigma of a Gaussian: 2 sqrt(2 ln 2).
+const FWHM_PER_SIGMA: f64 = 2.354_820_045_030_949;
 
 /// K, dK/dx, dK/d(ln Gaussian width), dK/d(eta), dK/d(ln Lorentzian width).
 #[derive(Debug, Clone, Copy, Default)]
@@ -159,7 +171,57 @@ impl LineShape {
             cubic: Arc::from([]),
             envelope: Arc::from([]),
             peak_index: 0,
+            voigt: None,
+            voigt_inv_s: 0.0,
+            voigt_inv_peak: 0.0,
+            voigt_peak_slope: 0.0,
         }
+    }
+
+    /// A Voigt profile, unit peak: a Gaussian of full width `gaussian_width_hz` convolved with a
+    /// Lorentzian of full width `lorentzian_width_hz` (a Gaussian resolution filter seen with a
+    /// laser's Lorentzian line). K(x) = Re w(z) / w(iy), z = (x + i gamma) / (sigma sqrt 2),
+    /// y = gamma / (sigma sqrt 2), gamma the Lorentzian's half width (DLMF 7.19.3; see
+    /// [`super::faddeeva`]).
+    pub fn voigt(gaussian_width_hz: f64, lorentzian_width_hz: f64) -> LineShape {
+        let s = gaussian_width_hz / FWHM_PER_SIGMA * std::f64::consts::SQRT_2;
+        let y = 0.5 * lorentzian_width_hz / s;
+        let core = VoigtCore::new(y);
+        let peak = core.at(0.0).0.re;
+        let mut shape = LineShape::pseudo_voigt(gaussian_width_hz, lorentzian_width_hz, 0.0);
+        shape.kind = ShapeKind::Voigt;
+        shape.voigt = Some(Arc::new(core));
+        shape.voigt_inv_s = 1.0 / s;
+        shape.voigt_inv_peak = 1.0 / peak;
+        // d erfcx(y) / dy = 2 y erfcx(y) - 2 / sqrt(pi) (DLMF 7.10.2 at z = iy).
+        shape.voigt_peak_slope = 2.0 * y * peak - 2.0 / std::f64::consts::PI.sqrt();
+        shape
+    }
+
+    /// The Voigt profile nearest a fitted pseudo-Voigt `pv`: the same far-wing level (the
+    /// Lorentzian's 1/x^2, which sets the weak lines' background) and the same full width at half
+    /// maximum, by the Olivero-Longbothum relation between the Voigt's and its parts' widths
+    /// (J. Quant. Spectrosc. Radiat. Transfer 17, 233, 1977: f_V = 0.5346 f_L + sqrt(0.2166 f_L^2
+    /// + f_G^2), to 0.02 %).
+    pub fn voigt_like(pv: &LineShape) -> LineShape {
+        let fwhm = pv.fwhm();
+        // The pseudo-Voigt's far wing: K ~ eta (f_L / 2)^2 / x^2.
+        let wing = pv.eta * 0.25 * pv.width_l_hz * pv.width_l_hz;
+        let mut gaussian = pv.width_hz;
+        let mut lorentzian = pv.width_l_hz;
+        for _ in 0..4 {
+            // The Voigt's far wing: K ~ y s^2 / (sqrt(pi) erfcx(y) x^2) = gamma s / (sqrt(pi)
+            // erfcx(y) x^2).
+            let s = gaussian / FWHM_PER_SIGMA * std::f64::consts::SQRT_2;
+            let mut gamma = wing * std::f64::consts::PI.sqrt() / s;
+            gamma *= faddeeva::faddeeva(num_complex::Complex64::new(0.0, gamma / s)).re;
+            lorentzian = (2.0 * gamma).max(1e-6 * fwhm);
+            let rest = fwhm - 0.5346 * lorentzian;
+            gaussian = (rest * rest - 0.2166 * lorentzian * lorentzian)
+                .max(0.01 * fwhm * fwhm)
+                .sqrt();
+        }
+        LineShape::voigt(gaussian, lorentzian)
     }
 
     /// The kind of shape.
@@ -370,6 +432,10 @@ impl LineShape {
             inv_h: 1.0 / h,
             envelope: envelope.into(),
             peak_index,
+            voigt: None,
+            voigt_inv_s: 0.0,
+            voigt_inv_peak: 0.0,
+            voigt_peak_slope: 0.0,
         }
     }
 
@@ -401,6 +467,7 @@ impl LineShape {
                     dl: eta * l * l * 8.0 * ql,
                 }
             }
+            ShapeKind::Voigt => self.voigt_value(x),
             ShapeKind::Measured => {
                 let (k, dx) = self.measured_value(x);
                 ShapeValue {
@@ -409,6 +476,31 @@ impl LineShape {
                     ..ShapeValue::default()
                 }
             }
+        }
+    }
+
+    /// A Voigt shape's K and its slopes at offset `x` (Hz). With z = u + iy, u = |x| / s,
+    /// s = sigma sqrt 2, V = Re w(z) and E = w(iy): K = V / E; d/dx moves z by 1 / s, d/d(ln
+    /// sigma) by -z, d/d(ln gamma) by iy (and E by -y E' and y E'), so each slope is
+    /// (Re(w'(z) dz) - K dE) / E.
+    #[inline(always)]
+    fn voigt_value(&self, x: f64) -> ShapeValue {
+        let Some(core) = self.voigt.as_deref() else {
+            return ShapeValue::default();
+        };
+        let u = x.abs() * self.voigt_inv_s;
+        let y = core.y();
+        let (w, dw) = core.at(u);
+        let inv_e = self.voigt_inv_peak;
+        let k = w.re * inv_e;
+        let dx = dw.re * self.voigt_inv_s * inv_e;
+        let de = y * self.voigt_peak_slope;
+        ShapeValue {
+            k,
+            dx: if x < 0.0 { -dx } else { dx },
+            dw: (-(dw.re * u - dw.im * y) + k * de) * inv_e,
+            de: 0.0,
+            dl: (-dw.im * y - k * de) * inv_e,
         }
     }
 
@@ -457,6 +549,17 @@ impl LineShape {
                 } else {
                     0.0
                 };
+                let x = 1.1 * g.max(l) + 0.25 * wg;
+                (x, x)
+            }
+            ShapeKind::Voigt => {
+                // The Gaussian core where it reaches `ratio`, and the far wing, K ~ y s^2 /
+                // (sqrt(pi) E x^2) (see [`LineShape::voigt_value`]).
+                let wg = self.width_hz;
+                let g = wg * ((1.0 / ratio).ln() / (4.0 * std::f64::consts::LN_2)).sqrt();
+                let y = self.voigt.as_deref().map_or(0.0, VoigtCore::y);
+                let l = (y * self.voigt_inv_peak / (std::f64::consts::PI.sqrt() * ratio)).sqrt()
+                    / self.voigt_inv_s;
                 let x = 1.1 * g.max(l) + 0.25 * wg;
                 (x, x)
             }
@@ -769,8 +872,15 @@ struct Evaluation {
 /// The line shape at the parameters `p`: a measured shape has no parameters and is borrowed
 /// (its table is not copied on every step); a pseudo-Voigt (no table) takes its widths and mix.
 fn params_shape<'a>(base: &'a LineShape, p: &[f64; NP]) -> Cow<'a, LineShape> {
-    if base.kind != ShapeKind::PseudoVoigt {
+    if base.kind == ShapeKind::Measured {
         return Cow::Borrowed(base);
+    }
+    if base.kind == ShapeKind::Voigt {
+        let (gaussian, lorentzian) = (p[LN_WIDTH].exp(), p[LN_WIDTH_L].exp());
+        if gaussian == base.width_hz && lorentzian == base.width_l_hz {
+            return Cow::Borrowed(base);
+        }
+        return Cow::Owned(LineShape::voigt(gaussian, lorentzian));
     }
     let mut s = base.clone();
     s.width_hz = p[LN_WIDTH].exp();
@@ -1593,16 +1703,22 @@ pub(crate) fn fit_trace_segmented(
     WORKSPACE.with(|ws| {
         let mut ws = ws.borrow_mut();
         let noise = (noise_sigma_db * noise_sigma_db).max(1e-12);
-        let mut best = fit_once(&mut ws, trace, spacing, shape, start, noise, segment_tolerance_db)?;
-        // A parametric shape may settle on the wrong mix: start again nearer a Lorentzian.
-        if best.0.reduced_chi_squared > CHI2_RETRY && shape.kind == ShapeKind::PseudoVoigt {
-            for eta in [0.5, 0.98] {
-                let mut other_shape = shape.clone();
-                other_shape.eta = eta;
-                if let Ok(candidate) = fit_once(&mut ws, trace, spacing, &other_shape, start, noise, segment_tolerance_db) {
-                    if candidate.0.reduced_chi_squared < 0.9 * best.0.reduced_chi_squared {
-                        best = candidate;
-                    }
+        let first = fit_once(&mut ws, trace, spacing, shape, start, noise, segment_tolerance_db)?;
+        let mut best = if shape.kind == ShapeKind::PseudoVoigt {
+            best_parametric(&mut ws, trace, spacing, shape, start, noise, segment_tolerance_db, first)
+        } else {
+            first
+        };
+        // A measured shape that leaves a residual above the noise (a reference whose line the
+        // analyzer showed differently, or too noisy to read the wings): the parametric shapes
+        // are tried too, and kept when they describe the trace clearly better.
+        if shape.kind == ShapeKind::Measured && best.0.reduced_chi_squared > CHI2_RETRY {
+            let width = best.0.line_width_hz;
+            let pv = LineShape::pseudo_voigt(width, width, 0.0);
+            if let Ok(first) = fit_once(&mut ws, trace, spacing, &pv, start, noise, segment_tolerance_db) {
+                let candidate = best_parametric(&mut ws, trace, spacing, &pv, start, noise, segment_tolerance_db, first);
+                if candidate.0.reduced_chi_squared < 0.9 * best.0.reduced_chi_squared {
+                    best = candidate;
                 }
             }
         }
@@ -1631,6 +1747,77 @@ pub(crate) fn fit_trace_segmented(
         }
         Ok(best)
     })
+}
+
+/// The best parametric fit from a first pseudo-Voigt fit `first` (from the start `shape`): when
+/// its residual is above the noise, the pseudo-Voigt again from mixes nearer a Lorentzian (it
+/// may settle on the wrong one); when the mix it settles on is real, the Voigt profile as well.
+#[allow(clippy::too_many_arguments)]
+fn best_parametric(
+    ws: &mut Workspace,
+    trace: &Trace,
+    spacing: Hz,
+    shape: &LineShape,
+    start: &FitStart,
+    noise: f64,
+    segment_tolerance_db: f64,
+    first: (WholeTraceFit, FittedModel),
+) -> (WholeTraceFit, FittedModel) {
+    let mut best = first;
+    if best.0.reduced_chi_squared > CHI2_RETRY {
+        for eta in [0.5, 0.98] {
+            let mut other_shape = shape.clone();
+            other_shape.eta = eta;
+            if let Ok(candidate) = fit_once(
+                ws,
+                trace,
+                spacing,
+                &other_shape,
+                start,
+                noise,
+                segment_tolerance_db,
+            ) {
+                if candidate.0.reduced_chi_squared < 0.9 * best.0.reduced_chi_squared {
+                    best = candidate;
+                }
+            }
+        }
+    }
+    // A pseudo-Voigt that settled on a real mix may stand for a true Voigt profile (a Gaussian
+    // filter seen with a laser's Lorentzian line), which it follows only to about a percent of
+    // the peak in the wings: the Voigt is fitted from it too, and the shape with the smaller
+    // residual kept.
+    if is_mixed(best.1.shape.eta) {
+        let voigt = LineShape::voigt_like(&best.1.shape);
+        let from_fit = FitStart {
+            beta: best.0.modulation_index,
+            carrier_hz: best.0.carrier_frequency_hz.0,
+            floor_mw: best.1.floor_mw,
+            strongest_line_peak_mw: (-best.1.max_order..=best.1.max_order)
+                .map(|n| best.1.line_power_mw(n))
+                .fold(0.0, f64::max),
+            asymmetry: start.asymmetry,
+        };
+        if let Ok(candidate) = fit_once(
+            ws,
+            trace,
+            spacing,
+            &voigt,
+            &from_fit,
+            noise,
+            segment_tolerance_db,
+        ) {
+            if candidate.0.reduced_chi_squared < best.0.reduced_chi_squared {
+                best = candidate;
+            }
+        }
+    }
+    best
+}
+
+/// A pseudo-Voigt whose Lorentzian fraction is neither nearly 0 nor nearly 1.
+fn is_mixed(eta: f64) -> bool {
+    eta > 0.02 && eta < 0.98
 }
 
 /// Solves `m x = b` for a step from `p` (see [`solve`]), holding every parameter that stands on
@@ -1683,6 +1870,12 @@ fn bounds(p: &[f64; NP], slot: usize, shape0: &LineShape) -> (f64, f64) {
         ETA => (0.0, 1.0),
         // Widths within a factor of 20 of the start: a part with little weight cannot run away
         // (and widen every line's window with it).
+        LN_WIDTH_L if shape0.kind == ShapeKind::Voigt => {
+            // A Voigt's Lorentzian part may be a small fraction of its Gaussian (a laser line
+            // far narrower than the filter): within a factor of 20 of its own start.
+            let w = shape0.width_l_hz.max(1e-3).ln();
+            (w - 3.0, w + 3.0)
+        }
         LN_WIDTH | LN_WIDTH_L => {
             let w = shape0.width_hz.max(1e-3).ln();
             (w - 3.0, w + 3.0)
@@ -1721,11 +1914,11 @@ fn fit_once(
     let reach_orders =
         (((start.carrier_hz - first).max(last - start.carrier_hz)) / fm).ceil() as i32 + 2;
     let max_order = reach_orders.min(MAX_ORDER as i32).max(1);
-    let parametric = shape0.kind == ShapeKind::PseudoVoigt;
+    let parametric = shape0.kind != ShapeKind::Measured;
     let mut base = [true; NP];
     base[ASYM] = start.asymmetry;
     base[LN_WIDTH] = parametric;
-    base[ETA] = parametric;
+    base[ETA] = shape0.kind == ShapeKind::PseudoVoigt;
     base[LN_WIDTH_L] = parametric;
     let mut prob = Problem {
         freq,
@@ -1754,7 +1947,7 @@ fn fit_once(
     p[ASYM] = 0.0;
     p[LN_WIDTH] = shape0.width_hz.max(1e-3).ln();
     p[LN_WIDTH_L] = shape0.width_l_hz.max(1e-3).ln();
-    p[ETA] = if parametric {
+    p[ETA] = if shape0.kind == ShapeKind::PseudoVoigt {
         shape0.eta.max(0.02)
     } else {
         0.0
@@ -1971,7 +2164,7 @@ fn fit_once(
     let beta = p[BETA];
     let relative = if !parametric {
         SHAPE_SYSTEMATIC_MEASURED
-    } else if shape.eta > 0.02 && shape.eta < 0.98 {
+    } else if shape.kind == ShapeKind::PseudoVoigt && is_mixed(shape.eta) {
         (SHAPE_SYSTEMATIC_MIXED * (0.3 / p[BETA].max(1e-6)).min(1.0))
             .max(SHAPE_SYSTEMATIC_PARAMETRIC)
     } else {
@@ -2223,6 +2416,97 @@ mod tests {
             let exact =
                 assert_fast_matches_exact(&format!("beta {beta}"), &trace, Hz(200e6), &shape);
             assert!((exact.modulation_index - beta).abs() < 0.01 * beta);
+        }
+    }
+
+    /// The Voigt profile against the convolution of its Gaussian and Lorentzian parts computed
+    /// by quadrature (an independent method: V(x) = int G(t) L(x - t) dt, Simpson's rule), each
+    /// normalised to its peak, from the core to the far wing.
+    #[test]
+    fn the_voigt_shape_is_its_gaussian_convolved_with_its_lorentzian() {
+        let (wg, wl) = (10e6, 0.8e6);
+        let shape = LineShape::voigt(wg, wl);
+        let sigma = wg / FWHM_PER_SIGMA;
+        let gamma = 0.5 * wl;
+        let convolution = |x: f64| -> f64 {
+            let n = 400_000;
+            let (a, b) = (-12.0 * sigma, 12.0 * sigma);
+            let h = (b - a) / n as f64;
+            let mut sum = 0.0;
+            for k in 0..=n {
+                let t = a + k as f64 * h;
+                let weight = if k == 0 || k == n {
+                    1.0
+                } else if k % 2 == 1 {
+                    4.0
+                } else {
+                    2.0
+                };
+                let g = (-0.5 * t * t / (sigma * sigma)).exp();
+                let l = gamma / ((x - t) * (x - t) + gamma * gamma);
+                sum += weight * g * l;
+            }
+            sum * h / 3.0
+        };
+        let peak = convolution(0.0);
+        for x in [0.0, 1e6, 4e6, 7e6, 12e6, 30e6, 100e6, 1e9] {
+            let expected = convolution(x) / peak;
+            let k = shape.eval(x).k;
+            assert!(
+                (k - expected).abs() <= 1e-6 * expected + 1e-12,
+                "K({x}) = {k} against the convolution's {expected}"
+            );
+            assert_eq!(k, shape.eval(-x).k, "K is even");
+        }
+    }
+
+    /// The Voigt's full width at half maximum against the Olivero-Longbothum relation
+    /// (J. Quant. Spectrosc. Radiat. Transfer 17, 233, 1977; accurate to 0.02 %), from nearly
+    /// Gaussian to nearly Lorentzian.
+    #[test]
+    fn the_voigt_width_follows_the_olivero_longbothum_relation() {
+        for ratio in [0.001, 0.05, 0.3, 1.0, 3.0, 20.0] {
+            let (wg, wl) = (5e6, 5e6 * ratio);
+            let fwhm = LineShape::voigt(wg, wl).fwhm();
+            let expected = 0.5346 * wl + (0.2166 * wl * wl + wg * wg).sqrt();
+            assert!(
+                (fwhm / expected - 1.0).abs() < 3e-4,
+                "ratio {ratio}: {fwhm} against {expected}"
+            );
+        }
+    }
+
+    /// The Voigt's slopes in x and in its two log widths against central differences of K.
+    #[test]
+    fn the_voigt_slopes_are_those_of_its_values() {
+        let (wg, wl) = (8e6, 1.5e6);
+        let shape = LineShape::voigt(wg, wl);
+        let e = 1e-5;
+        for x in [-40e6, -6e6, -1e6, 0.5e6, 3e6, 9e6, 25e6, 300e6] {
+            let v = shape.eval(x);
+            let dx = (shape.eval(x + e * wg).k - shape.eval(x - e * wg).k) / (2.0 * e * wg);
+            let dw = (LineShape::voigt(wg * (1.0 + e), wl).eval(x).k
+                - LineShape::voigt(wg * (1.0 - e), wl).eval(x).k)
+                / (2.0 * e);
+            let dl = (LineShape::voigt(wg, wl * (1.0 + e)).eval(x).k
+                - LineShape::voigt(wg, wl * (1.0 - e)).eval(x).k)
+                / (2.0 * e);
+            let scale = v.k.max(1e-9);
+            assert!(
+                (v.dx - dx).abs() * wg < 1e-5 * scale + 1e-9,
+                "dK/dx at {x}: {} vs {dx}",
+                v.dx
+            );
+            assert!(
+                (v.dw - dw).abs() < 1e-5 * scale + 1e-9,
+                "dK/dln wg at {x}: {} vs {dw}",
+                v.dw
+            );
+            assert!(
+                (v.dl - dl).abs() < 1e-5 * scale + 1e-9,
+                "dK/dln wl at {x}: {} vs {dl}",
+                v.dl
+            );
         }
     }
 }

@@ -10,6 +10,7 @@
 //! - [`cascade`]: two-ports cascaded and terminated in the modulator: the chain's gain table.
 //! - [`bessel`]: J_n tabulated once for fast fitting, with its reference checks.
 //! - [`comb`]: finding the comb on a trace and measuring its lines and floor.
+//! - [`faddeeva`]: the Faddeeva function w(z), whose real part is the Voigt line shape.
 //! - [`fit`]: the whole displayed trace fitted with the instrument's line shape (the primary).
 //! - `smooth_shape`: the measured line shape smoothed (ln K as a penalised cubic B-spline).
 //! - [`spacing`]: the line spacing read from the trace alone.
@@ -33,6 +34,7 @@ pub mod chain;
 pub mod comb;
 pub mod drive_plan;
 pub mod error;
+pub mod faddeeva;
 pub mod fit;
 pub mod modulation_index;
 pub mod prediction;
