@@ -16,8 +16,12 @@
 //! shows it, floor removed, normalised, its wings averaged over a window growing with the
 //! distance from the line, or, with enough points per width, smoothed as a spline in ln K (see
 //! `smooth_shape`), read back by cubic interpolation at any sub-sample offset) or
-//! parametric (a pseudo-Voigt, unit-peak mix of a Gaussian and a Lorentzian of one width, with
-//! the width and the mix fitted: it is a Gaussian at eta = 0 and a Lorentzian at eta = 1).
+//! parametric: a pseudo-Voigt (unit-peak mix of a Gaussian and a Lorentzian, with both widths and
+//! the mix fitted: a Gaussian at eta = 0 and a Lorentzian at eta = 1) or, when the pseudo-Voigt
+//! settles on a real mix, also the true Voigt profile (the Gaussian convolved with the
+//! Lorentzian, from the Faddeeva function, see `faddeeva`), the one with the smaller residual
+//! kept. A measured shape that leaves a residual above the noise is tried against the
+//! parametric ones the same way.
 //!
 //! The fit is weighted least squares on the displayed levels in dB: display noise is a spread of
 //! the level in dB, on the lines and on the floor alike, so every point carries the same weight
@@ -55,13 +59,14 @@ const CONTRIBUTION_FLOOR: f64 = 1e-3;
 /// root-mean-square excess of |error| over the statistical uncertainty among its conditions with
 /// a measured shape, rounded up.
 pub const SHAPE_SYSTEMATIC_MEASURED: f64 = 5e-4;
-/// The same for the parametric (pseudo-Voigt) shape, which cannot follow a true Voigt profile or
-/// an analyzer's own filter exactly; set the same way from the conditions without a reference.
+/// The same for the parametric shapes (pseudo-Voigt or Voigt), which cannot follow an
+/// analyzer's own filter exactly; set the same way from the conditions without a reference.
 pub const SHAPE_SYSTEMATIC_PARAMETRIC: f64 = 1e-3;
-/// The same when the fitted pseudo-Voigt is a real mix (Lorentzian fraction between 0.02 and
-/// 0.98): a pseudo-Voigt follows a true Voigt profile (a Gaussian filter seen with a laser's
-/// Lorentzian line) only to about a percent of the peak in the wings, and the weak sidebands of
-/// a small index sit on those wings. It applies below beta = 0.3 and falls as 0.3 / beta above
+/// The same when the pseudo-Voigt is kept with a real mix (Lorentzian fraction between 0.02 and
+/// 0.98; the Voigt profile, fitted from it, did not describe the trace better): a pseudo-Voigt
+/// follows a true Voigt profile (a Gaussian filter seen with a laser's Lorentzian line) only to
+/// about a percent of the peak in the wings, and the weak sidebands of a small index sit on
+/// those wings. It applies below beta = 0.3 and falls as 0.3 / beta above
 /// (a larger index rests on many strong lines, not on two weak ones; never below
 /// [`SHAPE_SYSTEMATIC_PARAMETRIC`]). Set from the randomised study's true-Voigt traces read
 /// without a reference: the largest |error| there was 1.66 % at beta 0.27 and 0.66 % at 0.8, so
