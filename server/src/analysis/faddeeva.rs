@@ -267,11 +267,7 @@ mod tests {
             (7.0, 0.072_180_97, 1e-6),
         ] {
             let w = faddeeva(Complex::new(x, 0.0));
-            assert!(
-                (w.re - (-x * x).exp()).abs() < 1e-13,
-                "x {x}: re {}",
-                w.re
-            );
+            assert!((w.re - (-x * x).exp()).abs() < 1e-13, "x {x}: re {}", w.re);
             let expected = 2.0 * FRAC_1_SQRT_PI * dawson;
             assert!(
                 close(w.im, expected, tolerance),

@@ -1708,38 +1708,46 @@ pub(crate) fn fit_trace_segmented(
     WORKSPACE.with(|ws| {
         let mut ws = ws.borrow_mut();
         let noise = (noise_sigma_db * noise_sigma_db).max(1e-12);
-        let first = fit_once(&mut ws, trace, spacing, shape, start, noise, segment_tolerance_db)?;
-        let mut best = if shape.kind == ShapeKind::PseudoVoigt {
+        let first = fit_once(&mut ws, trace, spacing, shape, start, noise, segment_tolerance_db);
+        let best = if shape.kind == ShapeKind::PseudoVoigt {
             best_parametric(&mut ws, trace, spacing, shape, start, noise, segment_tolerance_db, first)
         } else {
             first
         };
         // A measured shape that leaves a residual above the noise (a reference whose line the
-        // analyzer showed differently, or too noisy to read the wings): the parametric shapes
-        // are tried too, and kept when they describe the trace clearly better.
-        if shape.kind == ShapeKind::Measured && best.0.reduced_chi_squared > CHI2_RETRY {
-            let width = best.0.line_width_hz;
-            let pv = LineShape::pseudo_voigt(width, width, 0.0);
-            if let Ok(first) = fit_once(&mut ws, trace, spacing, &pv, start, noise, segment_tolerance_db) {
-                let candidate = best_parametric(&mut ws, trace, spacing, &pv, start, noise, segment_tolerance_db, first);
-                if candidate.0.reduced_chi_squared < 0.9 * best.0.reduced_chi_squared {
-                    best = candidate;
+        // analyzer showed differently, or too noisy to read the wings), or whose fit failed: the
+        // parametric shapes are tried too, and kept when they describe the trace clearly better.
+        let best = match best {
+            Ok(fit) if shape.kind != ShapeKind::Measured || fit.0.reduced_chi_squared <= CHI2_RETRY => Ok(fit),
+            measured => {
+                let width = measured.as_ref().map_or(shape.width_hz, |m| m.0.line_width_hz);
+                let pv = LineShape::pseudo_voigt(width, width, 0.0);
+                let first = fit_once(&mut ws, trace, spacing, &pv, start, noise, segment_tolerance_db);
+                match (measured, best_parametric(&mut ws, trace, spacing, &pv, start, noise, segment_tolerance_db, first)) {
+                    (Ok(m), Ok(p)) if p.0.reduced_chi_squared < 0.9 * m.0.reduced_chi_squared => Ok(p),
+                    (Ok(m), _) => Ok(m),
+                    (Err(_), Ok(p)) => Ok(p),
+                    (Err(e), Err(_)) => Err(e),
                 }
             }
-        }
-        if best.0.reduced_chi_squared > 3.0 * CHI2_RETRY {
+        };
+        // Far above the noise, or failed: other starting indices (the line-by-line start may be
+        // on the wrong side of a Bessel zero, or far off on lines that overlap).
+        let mut best = best;
+        if best.as_ref().map_or(true, |b| b.0.reduced_chi_squared > 3.0 * CHI2_RETRY) {
             for beta in RETRY_BETAS {
                 if (beta - start.beta).abs() < 0.05 * start.beta {
                     continue;
                 }
                 let other = FitStart { beta, ..*start };
                 if let Ok(candidate) = fit_once(&mut ws, trace, spacing, shape, &other, noise, segment_tolerance_db) {
-                    if candidate.0.reduced_chi_squared < 0.9 * best.0.reduced_chi_squared {
-                        best = candidate;
+                    if best.as_ref().map_or(true, |b| candidate.0.reduced_chi_squared < 0.9 * b.0.reduced_chi_squared) {
+                        best = Ok(candidate);
                     }
                 }
             }
         }
+        let best = best?;
         if best.0.reduced_chi_squared > CHI2_REFUSE {
             return Err(AnalysisError::FitFailed(format!(
                 "the comb model does not describe the trace: its residual is {:.2} dB against a display noise of \
@@ -1754,6 +1762,9 @@ pub(crate) fn fit_trace_segmented(
     })
 }
 
+/// A fit's result and its model.
+type Fitted = (WholeTraceFit, FittedModel);
+
 /// The best parametric fit from a first pseudo-Voigt fit `first` (from the start `shape`): when
 /// its residual is above the noise, the pseudo-Voigt again from mixes nearer a Lorentzian (it
 /// may settle on the wrong one); when the mix it settles on is real, the Voigt profile as well.
@@ -1766,10 +1777,15 @@ fn best_parametric(
     start: &FitStart,
     noise: f64,
     segment_tolerance_db: f64,
-    first: (WholeTraceFit, FittedModel),
-) -> (WholeTraceFit, FittedModel) {
+    first: Result<Fitted, AnalysisError>,
+) -> Result<Fitted, AnalysisError> {
     let mut best = first;
-    if best.0.reduced_chi_squared > CHI2_RETRY {
+    // A first fit that failed (beta run down to its bound, where its slope vanishes: a start
+    // too Gaussian for lines on each other's Lorentzian wings) counts as the worst residual.
+    if best
+        .as_ref()
+        .map_or(true, |b| b.0.reduced_chi_squared > CHI2_RETRY)
+    {
         for eta in [0.5, 0.98] {
             let mut other_shape = shape.clone();
             other_shape.eta = eta;
@@ -1782,12 +1798,17 @@ fn best_parametric(
                 noise,
                 segment_tolerance_db,
             ) {
-                if candidate.0.reduced_chi_squared < 0.9 * best.0.reduced_chi_squared {
-                    best = candidate;
+                if best.as_ref().map_or(true, |b| {
+                    candidate.0.reduced_chi_squared < 0.9 * b.0.reduced_chi_squared
+                }) {
+                    best = Ok(candidate);
                 }
             }
         }
     }
+    let Ok(mut best) = best else {
+        return best;
+    };
     // A pseudo-Voigt that settled on a real mix may stand for a true Voigt profile (a Gaussian
     // filter seen with a laser's Lorentzian line), which it follows only to about a percent of
     // the peak in the wings: the Voigt is fitted from it too, and the shape with the smaller
@@ -1817,7 +1838,7 @@ fn best_parametric(
             }
         }
     }
-    best
+    Ok(best)
 }
 
 /// A pseudo-Voigt whose Lorentzian fraction is neither nearly 0 nor nearly 1.
@@ -1892,6 +1913,10 @@ fn bounds(p: &[f64; NP], slot: usize, shape0: &LineShape) -> (f64, f64) {
 /// The parameters `p` moved by `delta`, kept where the model is physical (see [`bounds`]).
 fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
     let mut trial: [f64; NP] = std::array::from_fn(|i| p[i] + delta[i]);
+    // Beta falls by at most a factor of four per step: at 0 its slope vanishes (the sidebands'
+    // J_n^2 is flat there), so a step from a start far too high (the line-by-line estimate on
+    // lines sitting on each other's Lorentzian wings) that overshot to the bound stayed there.
+    trial[BETA] = trial[BETA].max(0.25 * p[BETA]);
     // Beta first: the residual AM's range depends on it.
     for slot in [BETA, ASYM, ETA, LN_WIDTH, LN_WIDTH_L] {
         let (lo, hi) = bounds(&trial, slot, shape0);
