@@ -2524,4 +2524,16 @@ mod tests {
             );
         }
     }
+
+    /// The shape's name in the JSON `halfwave analyze` prints (README names `"voigt"`).
+    #[test]
+    fn the_shape_kinds_are_named_in_snake_case() {
+        for (kind, name) in [
+            (ShapeKind::Measured, "\"measured\""),
+            (ShapeKind::PseudoVoigt, "\"pseudo_voigt\""),
+            (ShapeKind::Voigt, "\"voigt\""),
+        ] {
+            assert_eq!(serde_json::to_string(&kind).unwrap(), name);
+        }
+    }
 }
