@@ -14,11 +14,12 @@
 //! resolution widths, beta 0.05-6, floor 40-75 dB under the optical power, display noise
 //! 0.01-0.2 dB, carrier anywhere within half a spacing of the centre, point spacing from a 30th of
 //! the resolution width down to the resolution width itself, residual AM on a quarter of the
-//! traces, an RF-off reference trace (drifted) on about half. Every trace must give beta within
-//! 1 % or a named refusal (no silent failure); over the traces analysed, the median |error| must be
-//! at most 0.1 %, the 95th percentile at most 0.3 %, and |error| <= 2 u (combined standard
-//! uncertainty, GUM JCGM 100:2008 5.1.2) on at least 95 %. The table by condition is printed
-//! (`cargo test --test measurement_truth -- --nocapture`).
+//! traces, an RF-off reference trace (drifted) on about half. Over the traces analysed, the median
+//! |error| must be at most 0.1 %, the 95th percentile at most 0.3 %, and |error| <= 2 u (combined
+//! standard uncertainty, GUM JCGM 100:2008 5.1.2) on at least 95 %. The target that every trace
+//! give beta within 1 % or a named refusal (no silent failure) is not met: the test holds the
+//! traces off by more than 1 % without a refusal to the three it has (see the assertion). The
+//! table by condition is printed (`cargo test --test measurement_truth -- --nocapture`).
 
 use halfwave::analysis::{analyze_trace, AnalysisError, AnalysisOptions};
 use halfwave::units::{Hz, Trace};
@@ -622,7 +623,8 @@ fn the_fft_generator_matches_the_jacobi_anger_expansion() {
 /// 0.108): the line-by-line start reads beta near 1.4 (each line's window holds its neighbours'
 /// wings), and the fit's first step from there used to overshoot beta to its lower bound, where
 /// its slope vanishes, and end in "did not converge". The trace is now fitted, within its stated
-/// uncertainty at k = 2, wherever the carrier sits between the sampled points.
+/// uncertainty at k = 2, with the carrier at four places from half a spacing below the span's
+/// centre to a third of one above.
 #[test]
 fn a_small_index_on_lines_that_overlap_is_fitted_not_refused() {
     for (seed, drift) in [(1, -0.49), (2, -0.2), (3, 0.0), (4, 0.3)] {

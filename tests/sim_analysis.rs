@@ -2,7 +2,7 @@
 //! the Jacobi-Anger expansion (NIST DLMF 10.12: line powers J_n(beta)^2) and analysed by
 //! `analyze_trace` + `fit_v_pi` give back the scenario's V_pi within 1 %.
 
-use halfwave::analysis::{analyze_trace, fit_v_pi, peak_voltage, AnalysisOptions, DrivePoint};
+use halfwave::analysis::{analyze_trace, fit_v_pi, AnalysisOptions, DrivePoint};
 use halfwave_drivers::sim::{Scenario, SimBench};
 use halfwave_drivers::{AnalyzerSettings, RfSource, SpectrumAnalyzer};
 use halfwave_units::{Dbm, Hz};
@@ -33,7 +33,7 @@ async fn a_nine_level_sweep_on_the_simulator_gives_its_v_pi_within_one_percent()
         let trace = analyzer.fetch_trace().await.unwrap();
         let analysis = analyze_trace(&trace, f, None, &AnalysisOptions::default()).unwrap();
         points.push(DrivePoint {
-            v_peak: peak_voltage(scenario.level_at_modulator(level, f)),
+            v_peak: scenario.level_at_modulator(level, f).to_volts_peak(),
             modulation_index: analysis.modulation_index.value,
             uncertainty: analysis.modulation_index.uncertainty,
         });

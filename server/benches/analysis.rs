@@ -97,22 +97,20 @@ impl Case {
     fn synthetic(beta: f64) -> Case {
         let trace = trace(beta);
         assert_eq!(trace.len(), 10_001);
+        Case::without_reference(format!("beta {beta}"), trace, SPACING)
+    }
+
+    /// `trace` read without a reference, as `analyze_trace` reads it: the fit starts from a
+    /// pseudo-Voigt as wide as the estimated resolution bandwidth.
+    fn without_reference(name: String, trace: Trace, spacing: Hz) -> Case {
         let options = AnalysisOptions::default();
-        let comb = measure_comb(&trace, SPACING, None, &options).expect("comb found");
+        let comb = measure_comb(&trace, spacing, None, &options).expect("comb found");
         let shape = LineShape::pseudo_voigt(
             comb.resolution_bandwidth_hz,
             comb.resolution_bandwidth_hz,
             0.0,
         );
-        Case::new(
-            format!("beta {beta}"),
-            trace,
-            None,
-            SPACING,
-            options,
-            comb,
-            shape,
-        )
+        Case::new(name, trace, None, spacing, options, comb, shape)
     }
 
     /// The simulated bench's 0.2 GHz trace at beta 1.6, read with its RF-off reference (measured
@@ -149,27 +147,14 @@ impl Case {
     }
 
     /// The simulated bench's 0.2 GHz trace at beta 1.6 with a 1 MHz laser line, read without a
-    /// reference: the pseudo-Voigt settles on a real mix (about 7 % Lorentzian), so the Voigt
+    /// reference: the pseudo-Voigt settles on a real mix (4.5 % Lorentzian), so the Voigt
     /// profile is fitted from it as well and the two compared (the simulator's filter is a
     /// pseudo-Voigt, which is kept).
     fn bench_without_reference() -> Case {
-        let trace = bench_trace_with_laser(1.6, 9, 1e6);
-        let spacing = Hz(0.2e9);
-        let options = AnalysisOptions::default();
-        let comb = measure_comb(&trace, spacing, None, &options).expect("comb found");
-        let shape = LineShape::pseudo_voigt(
-            comb.resolution_bandwidth_hz,
-            comb.resolution_bandwidth_hz,
-            0.0,
-        );
-        Case::new(
+        Case::without_reference(
             "bench trace 0.2 GHz, 1 MHz laser, no reference".into(),
-            trace,
-            None,
-            spacing,
-            options,
-            comb,
-            shape,
+            bench_trace_with_laser(1.6, 9, 1e6),
+            Hz(0.2e9),
         )
     }
 

@@ -102,17 +102,6 @@ impl DriveChain {
     }
 }
 
-/// Peak voltage of a sine of this level into 50 ohm: V_pk = sqrt(2 R P) ([`Dbm::to_volts_peak`]).
-pub fn peak_voltage(level: Dbm) -> VoltsPeak {
-    level.to_volts_peak()
-}
-
-/// The level of a sine with peak voltage `v` into 50 ohm; `None` unless `v` is positive and finite
-/// ([`Dbm::from_volts_peak`]).
-pub fn level_for_peak_voltage(v: VoltsPeak) -> Option<Dbm> {
-    Dbm::from_volts_peak(v)
-}
-
 /// Modulation index of a peak drive voltage for a modulator of half-wave voltage `v_pi`:
 /// beta = pi V_pk / V_pi.
 pub fn modulation_index_for(v_peak: VoltsPeak, v_pi: VoltsPeak) -> f64 {
@@ -132,7 +121,7 @@ pub fn generator_level_for_index(
     beta: f64,
     v_pi: VoltsPeak,
 ) -> Option<Dbm> {
-    let at_modulator = level_for_peak_voltage(peak_voltage_for_index(beta, v_pi))?;
+    let at_modulator = Dbm::from_volts_peak(peak_voltage_for_index(beta, v_pi))?;
     Some(chain.generator_level_for(f, at_modulator))
 }
 
@@ -147,18 +136,6 @@ mod tests {
 
     fn close(a: f64, b: f64, tol: f64) -> bool {
         (a - b).abs() <= tol
-    }
-
-    #[test]
-    fn zero_dbm_is_0_3162_volts_peak_into_50_ohm() {
-        // 1 mW into 50 ohm: V_rms = sqrt(0.05) = 0.2236 V, V_pk = 0.3162 V (common practice;
-        // domain primer check values). 20 dBm is 3.162 V peak.
-        assert!(close(peak_voltage(Dbm(0.0)).0, 0.3162, 5e-5));
-        assert!(close(peak_voltage(Dbm(20.0)).0, 3.162, 5e-4));
-        let back = level_for_peak_voltage(VoltsPeak(0.316_227_766)).unwrap();
-        assert!(close(back.0, 0.0, 1e-8));
-        assert!(level_for_peak_voltage(VoltsPeak(0.0)).is_none());
-        assert!(level_for_peak_voltage(VoltsPeak(f64::NAN)).is_none());
     }
 
     #[test]
@@ -231,7 +208,7 @@ mod tests {
         let v_pi = VoltsPeak(4.0);
         let f = Hz(10e9);
         let gen = generator_level_for_index(&chain, f, 1.2, v_pi).unwrap();
-        let v = peak_voltage(chain.level_at_modulator(f, gen));
+        let v = chain.level_at_modulator(f, gen).to_volts_peak();
         assert!(close(modulation_index_for(v, v_pi), 1.2, 1e-12));
         assert!(generator_level_for_index(&chain, f, 0.0, v_pi).is_none());
     }

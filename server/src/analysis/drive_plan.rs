@@ -10,9 +10,7 @@
 //! independent measurements). The same figure, read the other way, is the uncertainty of the
 //! modulation index a set level gives: u(beta)/beta = (ln 10 / 20) u_level.
 
-use super::chain::{
-    level_for_peak_voltage, modulation_index_for, peak_voltage, peak_voltage_for_index,
-};
+use super::chain::{modulation_index_for, peak_voltage_for_index};
 use halfwave_units::{Db, Dbm, VoltsPeak};
 
 /// dB per unit relative change of a voltage: 20 / ln 10.
@@ -84,7 +82,7 @@ pub fn solve_drive(inputs: &DriveInputs, target: DriveTarget) -> Result<DriveSol
                 return Err(DriveError::BadIndex(beta));
             }
             let v_peak = peak_voltage_for_index(beta, v_pi);
-            let level = level_for_peak_voltage(v_peak).ok_or(DriveError::BadIndex(beta))?;
+            let level = Dbm::from_volts_peak(v_peak).ok_or(DriveError::BadIndex(beta))?;
             (beta, level, v_peak)
         }
         DriveTarget::GeneratorLevel(generator) => {
@@ -92,7 +90,7 @@ pub fn solve_drive(inputs: &DriveInputs, target: DriveTarget) -> Result<DriveSol
                 return Err(DriveError::BadLevel(generator));
             }
             let level = generator + inputs.chain_gain;
-            let v_peak = peak_voltage(level);
+            let v_peak = level.to_volts_peak();
             (modulation_index_for(v_peak, v_pi), level, v_peak)
         }
     };

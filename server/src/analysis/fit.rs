@@ -135,12 +135,10 @@ pub struct LineShape {
     envelope: Arc<[f64]>,
     /// Index of the table's peak.
     peak_index: usize,
-    /// Voigt: w(z) along Im z = y = gamma / (sigma sqrt 2), 1 / (sigma sqrt 2), and
-    /// w(iy) = erfcx(y) (the profile's peak, by which K is divided) with its slope in y.
+    /// Voigt: w(z) along Im z = y = gamma / (sigma sqrt 2) (with the profile's peak w(iy)), and
+    /// 1 / (sigma sqrt 2).
     voigt: Option<Arc<VoigtCore>>,
     voigt_inv_s: f64,
-    voigt_inv_peak: f64,
-    voigt_peak_slope: f64,
 }
 
 /// FWHM / sigma of a Gaussian: 2 sqrt(2 ln 2).
@@ -178,8 +176,6 @@ impl LineShape {
             peak_index: 0,
             voigt: None,
             voigt_inv_s: 0.0,
-            voigt_inv_peak: 0.0,
-            voigt_peak_slope: 0.0,
         }
     }
 
@@ -191,15 +187,10 @@ impl LineShape {
     pub fn voigt(gaussian_width_hz: f64, lorentzian_width_hz: f64) -> LineShape {
         let s = gaussian_width_hz / FWHM_PER_SIGMA * std::f64::consts::SQRT_2;
         let y = 0.5 * lorentzian_width_hz / s;
-        let core = VoigtCore::new(y);
-        let peak = core.at(0.0).0.re;
         let mut shape = LineShape::pseudo_voigt(gaussian_width_hz, lorentzian_width_hz, 0.0);
         shape.kind = ShapeKind::Voigt;
-        shape.voigt = Some(Arc::new(core));
+        shape.voigt = Some(Arc::new(VoigtCore::new(y)));
         shape.voigt_inv_s = 1.0 / s;
-        shape.voigt_inv_peak = 1.0 / peak;
-        // d erfcx(y) / dy = 2 y erfcx(y) - 2 / sqrt(pi) (DLMF 7.10.2 at z = iy).
-        shape.voigt_peak_slope = 2.0 * y * peak - 2.0 / std::f64::consts::PI.sqrt();
         shape
     }
 
@@ -439,8 +430,6 @@ impl LineShape {
             peak_index,
             voigt: None,
             voigt_inv_s: 0.0,
-            voigt_inv_peak: 0.0,
-            voigt_peak_slope: 0.0,
         }
     }
 
@@ -496,10 +485,10 @@ impl LineShape {
         let u = x.abs() * self.voigt_inv_s;
         let y = core.y();
         let (w, dw) = core.at(u);
-        let inv_e = self.voigt_inv_peak;
+        let inv_e = core.inv_peak();
         let k = w.re * inv_e;
         let dx = dw.re * self.voigt_inv_s * inv_e;
-        let de = y * self.voigt_peak_slope;
+        let de = y * core.peak_slope();
         ShapeValue {
             k,
             dx: if x < 0.0 { -dx } else { dx },
@@ -562,8 +551,11 @@ impl LineShape {
                 // (sqrt(pi) E x^2) (see [`LineShape::voigt_value`]).
                 let wg = self.width_hz;
                 let g = wg * ((1.0 / ratio).ln() / (4.0 * std::f64::consts::LN_2)).sqrt();
-                let y = self.voigt.as_deref().map_or(0.0, VoigtCore::y);
-                let l = (y * self.voigt_inv_peak / (std::f64::consts::PI.sqrt() * ratio)).sqrt()
+                let (y, inv_peak) = self
+                    .voigt
+                    .as_deref()
+                    .map_or((0.0, 0.0), |core| (core.y(), core.inv_peak()));
+                let l = (y * inv_peak / (std::f64::consts::PI.sqrt() * ratio)).sqrt()
                     / self.voigt_inv_s;
                 let x = 1.1 * g.max(l) + 0.25 * wg;
                 (x, x)
@@ -676,9 +668,10 @@ pub struct WholeTraceFit {
     pub line_shape: ShapeKind,
     /// Full width at half maximum of the whole line shape (fitted when parametric).
     pub line_width_hz: f64,
-    /// Lorentzian fraction of the pseudo-Voigt (0 when measured).
+    /// Lorentzian fraction of the pseudo-Voigt (0 when measured or a Voigt).
     pub line_shape_eta: f64,
-    /// Full width at half maximum of the pseudo-Voigt's Lorentzian part (0 when measured).
+    /// Full width at half maximum of the pseudo-Voigt's or the Voigt's Lorentzian part (0 when
+    /// measured).
     pub lorentzian_width_hz: f64,
     /// Root-mean-square residual over all points, dB.
     pub residual_db: f64,
@@ -875,7 +868,8 @@ struct Evaluation {
 }
 
 /// The line shape at the parameters `p`: a measured shape has no parameters and is borrowed
-/// (its table is not copied on every step); a pseudo-Voigt (no table) takes its widths and mix.
+/// (its table is not copied on every step); a pseudo-Voigt (no table) takes its widths and mix,
+/// a Voigt its two widths (its table of w is built again when they moved).
 fn params_shape<'a>(base: &'a LineShape, p: &[f64; NP]) -> Cow<'a, LineShape> {
     if base.kind == ShapeKind::Measured {
         return Cow::Borrowed(base);
@@ -1708,43 +1702,34 @@ pub(crate) fn fit_trace_segmented(
     WORKSPACE.with(|ws| {
         let mut ws = ws.borrow_mut();
         let noise = (noise_sigma_db * noise_sigma_db).max(1e-12);
-        let first = fit_once(&mut ws, trace, spacing, shape, start, noise, segment_tolerance_db);
-        let best = if shape.kind == ShapeKind::PseudoVoigt {
-            best_parametric(&mut ws, trace, spacing, shape, start, noise, segment_tolerance_db, first)
+        let mut fit = |shape: &LineShape, start: &FitStart| {
+            fit_once(&mut ws, trace, spacing, shape, start, noise, segment_tolerance_db)
+        };
+        let first = fit(shape, start);
+        let mut best = if shape.kind == ShapeKind::PseudoVoigt {
+            best_parametric(&mut fit, shape, start, first)
         } else {
             first
         };
         // A measured shape that leaves a residual above the noise (a reference whose line the
         // analyzer showed differently, or too noisy to read the wings), or whose fit failed: the
         // parametric shapes are tried too, and kept when they describe the trace clearly better.
-        let best = match best {
-            Ok(fit) if shape.kind != ShapeKind::Measured || fit.0.reduced_chi_squared <= CHI2_RETRY => Ok(fit),
-            measured => {
-                let width = measured.as_ref().map_or(shape.width_hz, |m| m.0.line_width_hz);
-                let pv = LineShape::pseudo_voigt(width, width, 0.0);
-                let first = fit_once(&mut ws, trace, spacing, &pv, start, noise, segment_tolerance_db);
-                match (measured, best_parametric(&mut ws, trace, spacing, &pv, start, noise, segment_tolerance_db, first)) {
-                    (Ok(m), Ok(p)) if p.0.reduced_chi_squared < 0.9 * m.0.reduced_chi_squared => Ok(p),
-                    (Ok(m), _) => Ok(m),
-                    (Err(_), Ok(p)) => Ok(p),
-                    (Err(e), Err(_)) => Err(e),
-                }
-            }
-        };
+        if shape.kind == ShapeKind::Measured
+            && best.as_ref().map_or(true, |m| m.0.reduced_chi_squared > CHI2_RETRY)
+        {
+            let width = best.as_ref().map_or(shape.width_hz, |m| m.0.line_width_hz);
+            let pv = LineShape::pseudo_voigt(width, width, 0.0);
+            let first = fit(&pv, start);
+            keep_better(&mut best, best_parametric(&mut fit, &pv, start, first), 0.9);
+        }
         // Far above the noise, or failed: other starting indices (the line-by-line start may be
         // on the wrong side of a Bessel zero, or far off on lines that overlap).
-        let mut best = best;
         if best.as_ref().map_or(true, |b| b.0.reduced_chi_squared > 3.0 * CHI2_RETRY) {
             for beta in RETRY_BETAS {
                 if (beta - start.beta).abs() < 0.05 * start.beta {
                     continue;
                 }
-                let other = FitStart { beta, ..*start };
-                if let Ok(candidate) = fit_once(&mut ws, trace, spacing, shape, &other, noise, segment_tolerance_db) {
-                    if best.as_ref().map_or(true, |b| candidate.0.reduced_chi_squared < 0.9 * b.0.reduced_chi_squared) {
-                        best = Ok(candidate);
-                    }
-                }
+                keep_better(&mut best, fit(shape, &FitStart { beta, ..*start }), 0.9);
             }
         }
         let best = best?;
@@ -1765,23 +1750,34 @@ pub(crate) fn fit_trace_segmented(
 /// A fit's result and its model.
 type Fitted = (WholeTraceFit, FittedModel);
 
-/// The best parametric fit from a first pseudo-Voigt fit `first` (from the start `shape`): when
-/// its residual is above the noise, the pseudo-Voigt again from mixes nearer a Lorentzian (it
-/// may settle on the wrong one); when the mix it settles on is real, the Voigt profile as well.
-#[allow(clippy::too_many_arguments)]
+/// Puts `candidate` in `best` when it succeeded and its reduced chi-squared is under `factor`
+/// times the best's; a failed best counts as the worst residual (a fit whose beta ran down to its
+/// bound, where its slope vanishes, must not stop the other starts from being kept).
+fn keep_better(
+    best: &mut Result<Fitted, AnalysisError>,
+    candidate: Result<Fitted, AnalysisError>,
+    factor: f64,
+) {
+    if let Ok(candidate) = candidate {
+        if best.as_ref().map_or(true, |b| {
+            candidate.0.reduced_chi_squared < factor * b.0.reduced_chi_squared
+        }) {
+            *best = Ok(candidate);
+        }
+    }
+}
+
+/// The best parametric fit, by `fit`, from a first pseudo-Voigt fit `first` (from the start
+/// `shape`): when its residual is above the noise, the pseudo-Voigt again from mixes nearer a
+/// Lorentzian (it may settle on the wrong one); when the mix it settles on is real, the Voigt
+/// profile as well.
 fn best_parametric(
-    ws: &mut Workspace,
-    trace: &Trace,
-    spacing: Hz,
+    fit: &mut impl FnMut(&LineShape, &FitStart) -> Result<Fitted, AnalysisError>,
     shape: &LineShape,
     start: &FitStart,
-    noise: f64,
-    segment_tolerance_db: f64,
     first: Result<Fitted, AnalysisError>,
 ) -> Result<Fitted, AnalysisError> {
     let mut best = first;
-    // A first fit that failed (beta run down to its bound, where its slope vanishes: a start
-    // too Gaussian for lines on each other's Lorentzian wings) counts as the worst residual.
     if best
         .as_ref()
         .map_or(true, |b| b.0.reduced_chi_squared > CHI2_RETRY)
@@ -1789,56 +1785,32 @@ fn best_parametric(
         for eta in [0.5, 0.98] {
             let mut other_shape = shape.clone();
             other_shape.eta = eta;
-            if let Ok(candidate) = fit_once(
-                ws,
-                trace,
-                spacing,
-                &other_shape,
-                start,
-                noise,
-                segment_tolerance_db,
-            ) {
-                if best.as_ref().map_or(true, |b| {
-                    candidate.0.reduced_chi_squared < 0.9 * b.0.reduced_chi_squared
-                }) {
-                    best = Ok(candidate);
-                }
-            }
+            keep_better(&mut best, fit(&other_shape, start), 0.9);
         }
     }
-    let Ok(mut best) = best else {
-        return best;
-    };
     // A pseudo-Voigt that settled on a real mix may stand for a true Voigt profile (a Gaussian
     // filter seen with a laser's Lorentzian line), which it follows only to about a percent of
     // the peak in the wings: the Voigt is fitted from it too, and the shape with the smaller
     // residual kept.
-    if is_mixed(best.1.shape.eta) {
-        let voigt = LineShape::voigt_like(&best.1.shape);
-        let from_fit = FitStart {
-            beta: best.0.modulation_index,
-            carrier_hz: best.0.carrier_frequency_hz.0,
-            floor_mw: best.1.floor_mw,
-            strongest_line_peak_mw: (-best.1.max_order..=best.1.max_order)
-                .map(|n| best.1.line_power_mw(n))
-                .fold(0.0, f64::max),
-            asymmetry: start.asymmetry,
-        };
-        if let Ok(candidate) = fit_once(
-            ws,
-            trace,
-            spacing,
-            &voigt,
-            &from_fit,
-            noise,
-            segment_tolerance_db,
-        ) {
-            if candidate.0.reduced_chi_squared < best.0.reduced_chi_squared {
-                best = candidate;
-            }
-        }
+    let voigt_start = match &best {
+        Ok((fitted, model)) if is_mixed(model.shape.eta) => Some((
+            LineShape::voigt_like(&model.shape),
+            FitStart {
+                beta: fitted.modulation_index,
+                carrier_hz: fitted.carrier_frequency_hz.0,
+                floor_mw: model.floor_mw,
+                strongest_line_peak_mw: (-model.max_order..=model.max_order)
+                    .map(|n| model.line_power_mw(n))
+                    .fold(0.0, f64::max),
+                asymmetry: start.asymmetry,
+            },
+        )),
+        _ => None,
+    };
+    if let Some((voigt, from_fit)) = voigt_start {
+        keep_better(&mut best, fit(&voigt, &from_fit), 1.0);
     }
-    Ok(best)
+    best
 }
 
 /// A pseudo-Voigt whose Lorentzian fraction is neither nearly 0 nor nearly 1.

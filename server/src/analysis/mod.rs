@@ -48,9 +48,7 @@ pub mod trace_analysis;
 pub mod vpi;
 pub mod vpi_lookup;
 
-pub use chain::{
-    level_for_peak_voltage, pad_dissipated_fraction, peak_voltage, ChainPoint, DriveChain,
-};
+pub use chain::{pad_dissipated_fraction, ChainPoint, DriveChain};
 pub use error::AnalysisError;
 pub use modulation_index::{IndexEstimate, IndexMethod};
 pub use response::{response_curve, ResponseCurve, ResponsePoint, VpiAtFrequency};

@@ -282,7 +282,7 @@ fn carrier_null(points: &[DrivePoint], used: &[usize]) -> Option<CarrierNull> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::analysis::chain::{peak_voltage, DriveChain};
+    use crate::analysis::chain::DriveChain;
     use crate::analysis::synthetic::SyntheticComb;
     use crate::analysis::{analyze_trace, AnalysisOptions};
     use halfwave_units::{Db, Dbm, Hz};
@@ -313,7 +313,7 @@ mod tests {
         let points: Vec<DrivePoint> = (0..9)
             .map(|k| {
                 let generator = Dbm(2.0 + 3.0 * k as f64);
-                let v = peak_voltage(chain.level_at_modulator(spacing, generator));
+                let v = chain.level_at_modulator(spacing, generator).to_volts_peak();
                 let beta = PI * v.0 / V_PI;
                 let drift = spacing * rng.random_range(-0.5..0.5);
                 let synthetic =

@@ -8,8 +8,8 @@
 
 use super::CliError;
 use crate::analysis::{
-    analyze_trace, chain::peak_voltage, fit_v_pi, AnalysisError, AnalysisOptions, ChainPoint,
-    DriveChain, DrivePoint, ExcludedPoint, TraceAnalysis, VpiFit,
+    analyze_trace, fit_v_pi, AnalysisError, AnalysisOptions, ChainPoint, DriveChain, DrivePoint,
+    ExcludedPoint, TraceAnalysis, VpiFit,
 };
 use halfwave_units::{Db, Dbm, Hz, Trace, VoltsPeak};
 use serde::{Deserialize, Serialize};
@@ -332,7 +332,7 @@ fn analyze_sweep_file(args: &AnalyzeArgs) -> Result<SweepReport, CliError> {
         let trace = TraceFile::read(&resolve(&point.trace))?;
         let generator = Dbm(point.generator_level_dbm);
         let at_modulator = chain.level_at_modulator(modulation, generator);
-        let v_peak = peak_voltage(at_modulator);
+        let v_peak = at_modulator.to_volts_peak();
         let mut report = SweepPointReport {
             trace: trace.path.clone(),
             generator_level_dbm: generator,

@@ -222,7 +222,7 @@ fn nearest_rung(ladder: &[Dbm], level: Dbm) -> usize {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::analysis::chain::{peak_voltage, ChainPoint};
+    use crate::analysis::chain::ChainPoint;
     use halfwave_units::Db;
 
     fn flat_chain(gain_db: f64) -> DriveChain {
@@ -246,7 +246,9 @@ mod tests {
 
     /// A modulator that follows beta = pi V_pk / V_pi exactly, measured with 0.1 % uncertainty.
     fn measure(chain: &DriveChain, ladder: &[Dbm], rung: usize, v_pi: f64) -> AdaptivePoint {
-        let v_peak = peak_voltage(chain.level_at_modulator(Hz(1e9), ladder[rung]));
+        let v_peak = chain
+            .level_at_modulator(Hz(1e9), ladder[rung])
+            .to_volts_peak();
         let beta = PI * v_peak.0 / v_pi;
         AdaptivePoint {
             rung,

@@ -19,7 +19,7 @@ use super::adaptive::{self, AdaptivePoint, AdaptiveSettings, AdaptiveStep};
 use super::events::{ProgressEvent, ResponsePointEvent};
 use super::plan::{FrequencyStep, Plan};
 use super::safety::{RfOffGuard, SharedSource};
-use crate::analysis::{self, chain::peak_voltage, chain::DriveChain, AnalysisOptions, DrivePoint};
+use crate::analysis::{self, chain::DriveChain, AnalysisOptions, DrivePoint};
 use crate::store::{NewFrequencyResult, NewPoint, Store};
 use halfwave_drivers::{AnalyzerSettings, InstrumentError, SpectrumAnalyzer};
 use halfwave_units::{Db, Dbm, Hz, Trace, VoltsPeak};
@@ -455,10 +455,10 @@ async fn measure_frequency(
                     .await?;
                 let (reply, answer) = oneshot::channel();
                 m.reply = Some(reply);
-                let v_peak = peak_voltage(
-                    ctx.chain
-                        .level_at_modulator(step.frequency, m.generator_level),
-                );
+                let v_peak = ctx
+                    .chain
+                    .level_at_modulator(step.frequency, m.generator_level)
+                    .to_volts_peak();
                 if tx.send(Msg::Point(Box::new(m))).await.is_err() {
                     return Err(Stop::PipelineEnded);
                 }
@@ -712,7 +712,7 @@ async fn commit_point(
     completed: &mut usize,
 ) -> Result<(Option<String>, Option<(f64, f64)>), String> {
     let at_modulator = chain.level_at_modulator(m.frequency, m.generator_level);
-    let v_peak = peak_voltage(at_modulator);
+    let v_peak = at_modulator.to_volts_peak();
     let analysis = analysis::analyze_trace(&m.trace, m.frequency, m.reference.as_deref(), options);
     if let Err(e) = &analysis {
         tracing::warn!(
