@@ -330,8 +330,10 @@ fn run_one(c: &Condition, rng: &mut StdRng) -> Outcome {
         (
             a.fit.reduced_chi_squared,
             format!(
-                "{:?} w {:.3e} eta {:.4} wl {:.3e} a {:.2e}",
+                "{:?} carrier {:+.3} pts, {} iterations, w {:.3e} eta {:.4} wl {:.3e} a {:.2e}",
                 a.fit.line_shape,
+                (a.fit.carrier_frequency_hz.0 - carrier) / step,
+                a.fit.iterations,
                 a.fit.line_width_hz,
                 a.fit.line_shape_eta,
                 a.fit.lorentzian_width_hz,
@@ -649,6 +651,43 @@ fn a_small_index_on_lines_that_overlap_is_fitted_not_refused() {
             (beta - c.beta).abs() <= 2.0 * u,
             "drift {drift}: beta {beta} +- {u} against {}",
             c.beta
+        );
+    }
+}
+
+/// An index just above the first zero of J_1 (j_1,1 = 3.8317, A&S Table 9.5, from memory), on a
+/// trace with under two points per resolution width: the first sidebands' power J_1^2 is nearly
+/// the same at the mirror image of beta across that zero (3.821), and the fit, started from the
+/// line-by-line estimate, settled there on some noise draws (on 6 of 40 seeds, 0.58 % low, six
+/// times its stated uncertainty, with a 3 % narrower line and a larger residual). The mirror
+/// image is now tried too and the smaller residual kept: every seed within 0.05 % of beta.
+#[test]
+fn an_index_near_a_bessel_zero_is_not_trapped_on_its_mirror_image() {
+    let c = Condition {
+        generator: Generator::Simulator,
+        filter: Filter::Lorentzian,
+        rbw: 3.6345e6,
+        spacing: 1.68825e9,
+        beta: 3.8431,
+        floor_below_db: 65.3,
+        noise_db: 0.0877,
+        drift: 0.0675,
+        points_per_rbw: 1.93,
+        am_depth: 0.0,
+        reference: false,
+    };
+    for seed in 1000..1016 {
+        let o = run_one(&c, &mut StdRng::seed_from_u64(seed));
+        let (beta, u) = o
+            .result
+            .unwrap_or_else(|e| panic!("seed {seed}: refused: {e}"));
+        let error = (beta - c.beta) / c.beta;
+        assert!(
+            error.abs() < 5e-4 && (beta - c.beta).abs() <= 2.0 * u,
+            "seed {seed}: beta {beta} +- {u} against {} ({:+.3} %, {})",
+            c.beta,
+            100.0 * error,
+            o.shape
         );
     }
 }

@@ -1732,6 +1732,24 @@ pub(crate) fn fit_trace_segmented(
                 keep_better(&mut best, fit(shape, &FitStart { beta, ..*start }), 0.9);
             }
         }
+        // Near a zero of one of the lines' J_n, that line's power J_n^2 is the same on both sides
+        // of the zero, and on a coarsely sampled trace the other lines may not tell the two
+        // apart clearly enough for the fit not to settle on the wrong one: the mirror image is
+        // tried too and the smaller residual kept.
+        let mirror = best.as_ref().ok().and_then(|(fitted, model)| {
+            mirrored_across_zero(fitted.modulation_index, model.max_order).map(|beta| {
+                (
+                    model.shape.clone(),
+                    FitStart {
+                        beta,
+                        ..start_from(fitted, model, start.asymmetry)
+                    },
+                )
+            })
+        });
+        if let Some((shape, from)) = mirror {
+            keep_better(&mut best, fit(&shape, &from), 1.0);
+        }
         let best = best?;
         if best.0.reduced_chi_squared > CHI2_REFUSE {
             return Err(AnalysisError::FitFailed(format!(
@@ -1795,15 +1813,7 @@ fn best_parametric(
     let voigt_start = match &best {
         Ok((fitted, model)) if is_mixed(model.shape.eta) => Some((
             LineShape::voigt_like(&model.shape),
-            FitStart {
-                beta: fitted.modulation_index,
-                carrier_hz: fitted.carrier_frequency_hz.0,
-                floor_mw: model.floor_mw,
-                strongest_line_peak_mw: (-model.max_order..=model.max_order)
-                    .map(|n| model.line_power_mw(n))
-                    .fold(0.0, f64::max),
-                asymmetry: start.asymmetry,
-            },
+            start_from(fitted, model, start.asymmetry),
         )),
         _ => None,
     };
@@ -1811,6 +1821,56 @@ fn best_parametric(
         keep_better(&mut best, fit(&voigt, &from_fit), 1.0);
     }
     best
+}
+
+/// A start at a fit's result (for fitting it again with another shape or index).
+fn start_from(fitted: &WholeTraceFit, model: &FittedModel, asymmetry: bool) -> FitStart {
+    FitStart {
+        beta: fitted.modulation_index,
+        carrier_hz: fitted.carrier_frequency_hz.0,
+        floor_mw: model.floor_mw,
+        strongest_line_peak_mw: (-model.max_order..=model.max_order)
+            .map(|n| model.line_power_mw(n))
+            .fold(0.0, f64::max),
+        asymmetry,
+    }
+}
+
+/// How near (relative) a zero of some J_n (|n| <= the orders fitted) a fitted index must be for
+/// its mirror image across that zero to be tried.
+const NEAR_ZERO: f64 = 0.02;
+
+/// The mirror image 2 z - beta of `beta` across the zero z of J_n (0 <= n <= `max_order`) nearest
+/// to it, when one lies within [`NEAR_ZERO`] of `beta`. The zero is found by bisection on the
+/// sign change of J_n (DLMF 10.21: the zeros of J_n are simple, so J_n changes sign at each).
+fn mirrored_across_zero(beta: f64, max_order: i32) -> Option<f64> {
+    let table = BesselTable::get();
+    let (lo, hi) = (beta * (1.0 - NEAR_ZERO), beta * (1.0 + NEAR_ZERO));
+    let mut nearest: Option<f64> = None;
+    for n in 0..=max_order {
+        let j = |x: f64| table.value_and_slope(n, x).0;
+        for (a, b) in [(lo, beta), (beta, hi)] {
+            let (mut a, mut b, ja) = (a, b, j(a));
+            if ja * j(b) > 0.0 {
+                continue;
+            }
+            for _ in 0..40 {
+                let mid = 0.5 * (a + b);
+                if j(mid) * ja > 0.0 {
+                    a = mid;
+                } else {
+                    b = mid;
+                }
+            }
+            let zero = 0.5 * (a + b);
+            if nearest.is_none_or(|z| (zero - beta).abs() < (z - beta).abs()) {
+                nearest = Some(zero);
+            }
+        }
+    }
+    nearest
+        .filter(|z| (z - beta).abs() > 1e-6 * beta)
+        .map(|z| 2.0 * z - beta)
 }
 
 /// A pseudo-Voigt whose Lorentzian fraction is neither nearly 0 nor nearly 1.
@@ -2498,6 +2558,27 @@ mod tests {
     }
 
     /// The shape's name in the JSON `halfwave analyze` prints (README names `"voigt"`).
+    /// The mirror images across the first zeros of J_0, J_1 and J_2 (A&S Table 9.5, from
+    /// memory: j_0,1 = 2.404825557695773, j_1,1 = 3.831705970207512, j_2,1 = 5.135622301840683),
+    /// and none where no zero of the fitted orders lies within 2 %.
+    #[test]
+    fn the_mirror_image_is_taken_across_the_nearest_bessel_zero() {
+        for (beta, zero) in [
+            (2.40, 2.404825557695773),
+            (3.8431, 3.831705970207512),
+            (5.1, 5.135622301840683),
+        ] {
+            let mirrored = mirrored_across_zero(beta, 4).expect("a zero within 2 %");
+            assert!(
+                (mirrored - (2.0 * zero - beta)).abs() < 1e-9,
+                "{beta}: {mirrored}"
+            );
+        }
+        assert_eq!(mirrored_across_zero(3.0, 4), None);
+        // j_2,1 is not a zero of the orders fitted when only orders 0 and 1 are.
+        assert_eq!(mirrored_across_zero(5.1, 1), None);
+    }
+
     #[test]
     fn the_shape_kinds_are_named_in_snake_case() {
         for (kind, name) in [
