@@ -691,3 +691,44 @@ fn an_index_near_a_bessel_zero_is_not_trapped_on_its_mirror_image() {
         );
     }
 }
+
+/// The randomised study draws each condition once; this draws 400 other conditions (seed 77) and
+/// renders each eight times with other noise (seeds 5000-5007), so that a fit that settles on the
+/// wrong minimum on some draws, or an uncertainty that covers one draw by luck, shows. It asserts
+/// coverage at k = 2 over all draws (at least 95 %) and prints the conditions with a draw beyond
+/// 3 standard uncertainties. About 3,100 fits: a minute and a half in release, so it is not part
+/// of the default run; `cargo test --release --test measurement_truth -- --ignored --nocapture`.
+#[test]
+#[ignore]
+fn coverage_holds_over_repeated_noise_draws() {
+    let mut rng = StdRng::seed_from_u64(77);
+    let (mut analysed, mut covered, mut beyond_3u) = (0, 0, 0);
+    for i in 0..400 {
+        let c = draw_condition(&mut rng, i);
+        let mut worst: Option<(f64, String)> = None;
+        for seed in 5000..5008 {
+            let o = run_one(&c, &mut StdRng::seed_from_u64(seed));
+            let Ok((beta, u)) = o.result else { continue };
+            analysed += 1;
+            let z = (beta - c.beta) / u;
+            if z.abs() <= 2.0 {
+                covered += 1;
+            }
+            if worst.as_ref().is_none_or(|(w, _)| z.abs() > w.abs()) {
+                let error = 100.0 * (beta - c.beta) / c.beta;
+                let line = format!("{error:+.3} % u {:.3} % {}", 100.0 * u / c.beta, o.shape);
+                worst = Some((z, line));
+            }
+        }
+        if let Some((z, line)) = worst.filter(|(z, _)| z.abs() > 3.0) {
+            beyond_3u += 1;
+            println!("{z:+.1} u: {line} | {c:?}");
+        }
+    }
+    let coverage = covered as f64 / analysed as f64;
+    println!(
+        "{analysed} draws analysed, {:.1} % within 2u; {beyond_3u} of 400 conditions with a draw beyond 3u",
+        100.0 * coverage
+    );
+    assert!(coverage >= 0.95, "coverage {coverage}");
+}

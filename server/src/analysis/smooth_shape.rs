@@ -322,12 +322,49 @@ pub(crate) fn smoothed_excess(
             break;
         }
     }
-    let out: Vec<f64> = (0..n)
+    let mut out: Vec<f64> = (0..n)
         .map(|i| {
             milliwatts(DB_PER_NEPER * spline_at(&c, placement.first[i], &placement.weights[i]))
         })
         .collect();
-    out.iter().all(|v| v.is_finite()).then_some(out)
+    if !out.iter().all(|v| v.is_finite()) {
+        return None;
+    }
+    bound_unsupported_wings(&mut out, freq, centre_hz, floor_mw);
+    Some(out)
+}
+
+/// Where the reference shows only its floor, nothing holds the spline down: its extrapolation
+/// beyond the last points above the floor may turn upwards, and the steps on the levels cannot
+/// bring it under the floor (a level far under the floor moves the displayed level by nothing).
+/// A Gaussian filter's line then kept a pedestal some 16 dB under the reference's floor out to
+/// the span's ends, which on a trace whose sidebands stand 20 dB above the floor read beta 0.8 %
+/// high. Beyond the outermost point on each side where the smoothed excess reaches the floor
+/// (3 dB above it), the excess is therefore held under a 1/x^2 fall from that point: a
+/// Lorentzian wing (the slowest physical fall of a line, 1/x^2) passes unchanged, anything
+/// rising is cut.
+fn bound_unsupported_wings(excess: &mut [f64], freq: &[f64], centre_hz: f64, floor_mw: f64) {
+    let Some(peak) = excess
+        .iter()
+        .enumerate()
+        .max_by(|a, b| a.1.total_cmp(b.1))
+        .map(|(i, _)| i)
+    else {
+        return;
+    };
+    let right = (peak..excess.len())
+        .rev()
+        .find(|&i| excess[i] >= floor_mw)
+        .unwrap_or(peak);
+    let left = (0..=peak).find(|&i| excess[i] >= floor_mw).unwrap_or(peak);
+    for (support, beyond) in [(right, right + 1..excess.len()), (left, 0..left)] {
+        let x_s = (freq[support] - centre_hz).abs();
+        let k_s = excess[support];
+        for i in beyond {
+            let x = (freq[i] - centre_hz).abs().max(x_s);
+            excess[i] = excess[i].min(k_s * (x_s / x).powi(2));
+        }
+    }
 }
 
 #[cfg(test)]
