@@ -66,4 +66,10 @@ pub use vpi::{fit_v_pi, CarrierNull, DrivePoint, ExcludedPoint, VpiFit};
 /// that can move a stored beta, V_pi or uncertainty for the same trace (the model, the weights,
 /// the exclusion rule, a systematic term, a tolerance). Refactors that leave every number
 /// unchanged keep it. A record read later then says which method judged it.
-pub const ANALYSIS_METHOD: &str = "bessel-comb-trace-fit+weighted-origin-line v1";
+///
+/// v2: the Voigt profile as a parametric shape and the measured shape tried against the
+/// parametric ones (d2770f5), beta's steps bounded (f0a91ac), a fit near a zero of some J_n tried
+/// again from its mirror image (a0e29f4), the smoothed measured shape's unsupported wings bounded
+/// (1de37f7). The earlier of these moved stored numbers without raising the version; v2 is raised
+/// for all four together.
+pub const ANALYSIS_METHOD: &str = "bessel-comb-trace-fit+weighted-origin-line v2";
