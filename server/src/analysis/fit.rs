@@ -2299,18 +2299,31 @@ mod tests {
     use rand::{rngs::StdRng, SeedableRng};
     use rand_distr::{Distribution, Normal};
 
-    /// A trace from the simulator's physics (lines J_n(beta)^2 by the library Bessel routine,
-    /// DLMF 10.12.1, through a Gaussian filter widened by a Lorentzian laser line), not from this
-    /// module's model.
-    fn rendered(beta: f64, carrier: f64, seed: u64) -> Trace {
-        let spacing = 200e6;
+    /// The comb of index `beta` (line powers J_n(beta)^2 by the library Bessel routine, DLMF
+    /// 10.12.1, times `power_mw`) around `carrier`, drawn by the simulator's physics as
+    /// `rendering` says, with the noise of `seed`: not from this module's model.
+    fn drawn(
+        beta: f64,
+        carrier: f64,
+        spacing: f64,
+        power_mw: f64,
+        rendering: &Rendering,
+        seed: u64,
+    ) -> Trace {
         let lines: Vec<OpticalLine> = physics::comb_lines(beta, 0.0, 0.0)
             .into_iter()
             .map(|l| OpticalLine {
                 frequency_hz: carrier + l.order as f64 * spacing,
-                power_mw: l.relative_power,
+                power_mw: power_mw * l.relative_power,
             })
             .collect();
+        let levels = physics::render_trace(&lines, rendering, &mut StdRng::seed_from_u64(seed));
+        Trace::new(rendering.frequencies_hz(), levels, None).unwrap()
+    }
+
+    /// A trace from the simulator's physics through a Gaussian filter widened by a Lorentzian
+    /// laser line (see [`drawn`]).
+    fn rendered(beta: f64, carrier: f64, seed: u64) -> Trace {
         let rendering = Rendering {
             start_hz: 193.4e12 - 1.4e9,
             stop_hz: 193.4e12 + 1.4e9,
@@ -2321,24 +2334,13 @@ mod tests {
             noise_floor_dbm: -70.0,
             display_noise_db: 0.15,
         };
-        let mut rng = StdRng::seed_from_u64(seed);
-        let levels = physics::render_trace(&lines, &rendering, &mut rng);
-        Trace::new(rendering.frequencies_hz(), levels, None).unwrap()
+        drawn(beta, carrier, 200e6, 1.0, &rendering, seed)
     }
 
     /// A trace as the simulated bench shows it at 0.2 GHz (the default scenario's 50 kHz laser
     /// line through a 20 MHz Gaussian filter: Lorentzian wings over the whole 2.8 GHz span,
     /// 78 dB above the floor), drawn by the simulator's physics; `beta` 0 is the RF-off reference.
     fn bench_like(beta: f64, seed: u64, display_noise_db: f64) -> Trace {
-        let spacing = 0.2e9;
-        let carrier = 193.4e12 - 37e6;
-        let lines: Vec<OpticalLine> = physics::comb_lines(beta, 0.0, 0.0)
-            .into_iter()
-            .map(|l| OpticalLine {
-                frequency_hz: carrier + l.order as f64 * spacing,
-                power_mw: 4.6 * l.relative_power,
-            })
-            .collect();
         let rendering = Rendering {
             start_hz: 193.4e12 - 1.4e9,
             stop_hz: 193.4e12 + 1.4e9,
@@ -2349,8 +2351,7 @@ mod tests {
             noise_floor_dbm: -72.0,
             display_noise_db,
         };
-        let levels = physics::render_trace(&lines, &rendering, &mut StdRng::seed_from_u64(seed));
-        Trace::new(rendering.frequencies_hz(), levels, None).unwrap()
+        drawn(beta, 193.4e12 - 37e6, 0.2e9, 4.6, &rendering, seed)
     }
 
     /// The fit's start from the line-by-line measurement, as `analyze_trace` makes it.
@@ -2557,7 +2558,6 @@ mod tests {
         }
     }
 
-    /// The shape's name in the JSON `halfwave analyze` prints (README names `"voigt"`).
     /// A trace through a Gaussian filter (no laser line: nothing but the floor beyond a few
     /// widths), drawn by the simulator's physics at beta 0.192 with its sidebands 21 dB above the
     /// floor, read with the shape measured on a noisy RF-off reference (0.085 dB, 18 points per
@@ -2568,28 +2568,19 @@ mod tests {
     fn a_shape_smoothed_on_a_noisy_reference_adds_no_pedestal_to_the_lines() {
         let (spacing, rbw, beta) = (314.27e6, 3.937e6, 0.192);
         let carrier = 193.4e12 + 19.037e6;
+        let span = 14.0 * spacing;
+        let rendering = Rendering {
+            start_hz: 193.4e12 - 0.5 * span,
+            stop_hz: 193.4e12 + 0.5 * span,
+            points: 20_001,
+            resolution_bandwidth_hz: rbw,
+            filter: FilterShape::Gaussian,
+            laser_linewidth_hz: 0.0,
+            noise_floor_dbm: -41.7,
+            display_noise_db: 0.085,
+        };
         let render = |beta: f64, carrier: f64, seed: u64| {
-            let span = 14.0 * spacing;
-            let lines: Vec<OpticalLine> = physics::comb_lines(beta, 0.0, 0.0)
-                .into_iter()
-                .map(|l| OpticalLine {
-                    frequency_hz: carrier + l.order as f64 * spacing,
-                    power_mw: l.relative_power,
-                })
-                .collect();
-            let rendering = Rendering {
-                start_hz: 193.4e12 - 0.5 * span,
-                stop_hz: 193.4e12 + 0.5 * span,
-                points: 20_001,
-                resolution_bandwidth_hz: rbw,
-                filter: FilterShape::Gaussian,
-                laser_linewidth_hz: 0.0,
-                noise_floor_dbm: -41.7,
-                display_noise_db: 0.085,
-            };
-            let levels =
-                physics::render_trace(&lines, &rendering, &mut StdRng::seed_from_u64(seed));
-            Trace::new(rendering.frequencies_hz(), levels, None).unwrap()
+            drawn(beta, carrier, spacing, 1.0, &rendering, seed)
         };
         let draws = 10;
         let mut mean_error = 0.0;
@@ -2631,6 +2622,7 @@ mod tests {
         assert_eq!(mirrored_across_zero(5.1, 1), None);
     }
 
+    /// The shape's name in the JSON `halfwave analyze` prints (README names `"voigt"`).
     #[test]
     fn the_shape_kinds_are_named_in_snake_case() {
         for (kind, name) in [
