@@ -160,6 +160,36 @@ impl BesselTable {
         }
     }
 
+    /// The zeros of J_0 .. J_{orders-1} (at most MAX_ORDER + 1 orders) within [lo, hi], each by 40
+    /// bisections on the sign change of its J_n over the interval (the zeros of J_n are simple,
+    /// DLMF 10.21(i), so J_n changes sign at each; an interval of a few hundredths holds at most
+    /// one zero of each order). Near such a zero a line's power J_n^2 is the same on both sides,
+    /// so both fits look at the mirror image of their index about it.
+    pub fn zeros_within(&self, orders: usize, lo: f64, hi: f64) -> Vec<f64> {
+        let count = orders.min(MAX_ORDER + 1);
+        let (mut below, mut above) = ([0.0; MAX_ORDER + 1], [0.0; MAX_ORDER + 1]);
+        self.values_into(lo, &mut below[..count]);
+        self.values_into(hi, &mut above[..count]);
+        let mut zeros = Vec::new();
+        for n in 0..count {
+            if below[n] * above[n] >= 0.0 {
+                continue;
+            }
+            let (mut a, mut b) = (lo, hi);
+            let sign_lo = below[n].signum();
+            for _ in 0..40 {
+                let mid = 0.5 * (a + b);
+                if self.value_and_slope(n as i32, mid).0.signum() == sign_lo {
+                    a = mid;
+                } else {
+                    b = mid;
+                }
+            }
+            zeros.push(0.5 * (a + b));
+        }
+        zeros
+    }
+
     /// J_n(beta)^2, the relative power of line n.
     #[inline]
     pub fn power(&self, n: i32, beta: f64) -> f64 {
@@ -223,6 +253,10 @@ mod tests {
         }
     }
 
+    fn table_zeros(orders: usize, lo: f64, hi: f64) -> Vec<f64> {
+        BesselTable::get().zeros_within(orders, lo, hi)
+    }
+
     #[test]
     fn zeros_match_dlmf() {
         // Zeros j_{0,1}, j_{0,2}, j_{1,1}, j_{1,2}: DLMF 10.21(i), Table 10.21.1 (A&S Table 9.5);
@@ -242,6 +276,18 @@ mod tests {
             assert!(bessel_j(n, zero - 1e-6) * bessel_j(n, zero + 1e-6) < 0.0);
             assert!(bessel_integral(n, zero).abs() < 1e-12);
         }
+        // The same zeros found by the table's bisection, each alone in a small interval, and
+        // j_0,2 and j_1,2 together in one that holds both (only orders 0 and 1 searched).
+        for (n, zero) in zeros {
+            let found = table_zeros(n as usize + 1, zero - 0.01, zero + 0.013);
+            assert!(
+                found.iter().any(|z| (z - zero).abs() < 1e-9),
+                "{found:?} for {zero}"
+            );
+        }
+        let both = table_zeros(2, 5.4, 7.1);
+        assert_eq!(both.len(), 2, "{both:?}");
+        assert!(table_zeros(2, 2.5, 3.7).is_empty());
         // J_1 is largest at 1.8412 (first zero of J_1', DLMF Table 10.21.1): the slope changes sign.
         let table = BesselTable::get();
         assert!(table.value_and_slope(1, 1.8411).1 > 0.0);

@@ -1841,34 +1841,13 @@ fn start_from(fitted: &WholeTraceFit, model: &FittedModel, asymmetry: bool) -> F
 const NEAR_ZERO: f64 = 0.02;
 
 /// The mirror image 2 z - beta of `beta` across the zero z of J_n (0 <= n <= `max_order`) nearest
-/// to it, when one lies within [`NEAR_ZERO`] of `beta`. The zero is found by bisection on the
-/// sign change of J_n (DLMF 10.21: the zeros of J_n are simple, so J_n changes sign at each).
+/// to it, when one lies within [`NEAR_ZERO`] of `beta` (see [`BesselTable::zeros_within`]).
 fn mirrored_across_zero(beta: f64, max_order: i32) -> Option<f64> {
-    let table = BesselTable::get();
-    let (lo, hi) = (beta * (1.0 - NEAR_ZERO), beta * (1.0 + NEAR_ZERO));
-    let mut nearest: Option<f64> = None;
-    for n in 0..=max_order {
-        let j = |x: f64| table.value_and_slope(n, x).0;
-        for (a, b) in [(lo, beta), (beta, hi)] {
-            let (mut a, mut b, ja) = (a, b, j(a));
-            if ja * j(b) > 0.0 {
-                continue;
-            }
-            for _ in 0..40 {
-                let mid = 0.5 * (a + b);
-                if j(mid) * ja > 0.0 {
-                    a = mid;
-                } else {
-                    b = mid;
-                }
-            }
-            let zero = 0.5 * (a + b);
-            if nearest.is_none_or(|z| (zero - beta).abs() < (z - beta).abs()) {
-                nearest = Some(zero);
-            }
-        }
-    }
-    nearest
+    let orders = usize::try_from(max_order).map_or(0, |n| n + 1);
+    BesselTable::get()
+        .zeros_within(orders, beta * (1.0 - NEAR_ZERO), beta * (1.0 + NEAR_ZERO))
+        .into_iter()
+        .min_by(|a, b| (a - beta).abs().total_cmp(&(b - beta).abs()))
         .filter(|z| (z - beta).abs() > 1e-6 * beta)
         .map(|z| 2.0 * z - beta)
 }

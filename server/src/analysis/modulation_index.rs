@@ -363,31 +363,12 @@ pub fn least_squares(data: &FitData) -> Option<IndexEstimate> {
 fn mirror_candidates(data: &FitData, table: &BesselTable, beta: f64) -> Vec<f64> {
     const REACH: f64 = 0.02;
     let count = data.all.weight.len().min(MAX_ORDER + 1);
-    let (mut below, mut above) = ([0.0; MAX_ORDER + 1], [0.0; MAX_ORDER + 1]);
-    table.values_into((beta - REACH).max(0.0), &mut below[..count]);
-    table.values_into(beta + REACH, &mut above[..count]);
-    let mut mirrors = Vec::new();
-    for n in 0..count {
-        if below[n] * above[n] >= 0.0 {
-            continue;
-        }
-        let (mut lo, mut hi) = ((beta - REACH).max(0.0), beta + REACH);
-        let sign_lo = below[n].signum();
-        for _ in 0..40 {
-            let mid = 0.5 * (lo + hi);
-            if table.value_and_slope(n as i32, mid).0.signum() == sign_lo {
-                lo = mid;
-            } else {
-                hi = mid;
-            }
-        }
-        let zero = 0.5 * (lo + hi);
-        let mirror = 2.0 * zero - beta;
-        if (mirror - beta).abs() > 1e-6 && mirror > 0.0 {
-            mirrors.push(mirror);
-        }
-    }
-    mirrors
+    table
+        .zeros_within(count, (beta - REACH).max(0.0), beta + REACH)
+        .into_iter()
+        .map(|zero| 2.0 * zero - beta)
+        .filter(|mirror| (mirror - beta).abs() > 1e-6 && *mirror > 0.0)
+        .collect()
 }
 
 /// Distance from `beta` in `direction` (+1 or -1) at which `residual` exceeds `s_min + rise`:
