@@ -40,6 +40,7 @@
 
 use super::bessel::{BesselTable, MAX_ORDER};
 use super::faddeeva::{self, VoigtCore};
+use super::reference_noise::{display_noise_db, table_window, TableNoise};
 use super::smooth_shape;
 use super::AnalysisError;
 use halfwave_units::{Hz, Trace};
@@ -139,6 +140,9 @@ pub struct LineShape {
     /// 1 / (sigma sqrt 2).
     voigt: Option<Arc<VoigtCore>>,
     voigt_inv_s: f64,
+    /// Measured point by point: how the reference's display noise sits in the table (see
+    /// `reference_noise`); `None` for a smoothed or parametric shape.
+    table_noise: Option<Arc<TableNoise>>,
 }
 
 /// FWHM / sigma of a Gaussian: 2 sqrt(2 ln 2).
@@ -176,6 +180,7 @@ impl LineShape {
             peak_index: 0,
             voigt: None,
             voigt_inv_s: 0.0,
+            table_noise: None,
         }
     }
 
@@ -368,37 +373,43 @@ impl LineShape {
         let core = (3.0 * width / h) as usize;
         let mut table = vec![0.0; n];
         for (i, slot) in table.iter_mut().enumerate() {
-            let d = i.abs_diff(peak);
-            if d <= core {
-                *slot = excess[i];
+            let (a, b) = table_window(i, peak, core, n);
+            *slot = if a == b {
+                excess[i]
             } else {
-                let half = (d / 8).max(1);
-                let a = i.saturating_sub(half);
-                let b = (i + half).min(n - 1);
                 let x = freq[i] - centre;
-                *slot = (prefix[b + 1] - prefix[a]) / (b + 1 - a) as f64 / (x * x);
-            }
+                (prefix[b + 1] - prefix[a]) / (b + 1 - a) as f64 / (x * x)
+            };
         }
         let mut top = top;
+        let mut smoothed = false;
         if smooth {
-            if let Some(smoothed) =
+            if let Some(spline) =
                 smooth_shape::smoothed_excess(freq, level, &table, centre, floor, width)
             {
-                table = smoothed;
+                table = spline;
                 top = table.iter().fold(0.0, |a: f64, b| a.max(*b));
+                smoothed = true;
             }
         }
         let scale = 1.0 / top;
         for v in table.iter_mut() {
             *v = (*v * scale).max(0.0);
         }
-        Some(LineShape::from_table(
-            table,
-            freq[0] - centre,
-            h,
-            width,
-            ShapeKind::Measured,
-        ))
+        let mut shape =
+            LineShape::from_table(table, freq[0] - centre, h, width, ShapeKind::Measured);
+        if !smoothed {
+            let display_noise_db = display_noise_db(level);
+            shape.table_noise = Some(Arc::new(TableNoise::new(
+                freq.iter().map(|f| f - centre),
+                &linear,
+                display_noise_db,
+                top,
+                peak,
+                core,
+            )));
+        }
+        Some(shape)
     }
 
     fn from_table(table: Vec<f64>, x0: f64, h: f64, width: f64, kind: ShapeKind) -> LineShape {
@@ -430,6 +441,7 @@ impl LineShape {
             peak_index,
             voigt: None,
             voigt_inv_s: 0.0,
+            table_noise: None,
         }
     }
 
@@ -521,6 +533,31 @@ impl LineShape {
         let k = c0 + s * (c1 + s * (c2 + s * c3));
         let dk = (c1 + s * (2.0 * c2 + 3.0 * s * c3)) * self.inv_h;
         (k, dk)
+    }
+
+    /// Adds `weight` times dK(x)/dT_j to `sensitivity[j]` for the measured table's entries T_j that
+    /// K at offset `x` (Hz) is interpolated from (the Catmull-Rom weights of the four neighbours,
+    /// as in [`catmull_rom_coefficients`]); nothing beyond the table.
+    fn add_table_sensitivity(&self, x: f64, weight: f64, sensitivity: &mut [f64]) {
+        let t = (x - self.x0) * self.inv_h;
+        let last = self.table.len() as f64 - 1.0;
+        if !(0.0..=last).contains(&t) {
+            return;
+        }
+        let j = t as usize;
+        let s = t - j as f64;
+        let (s2, s3) = (s * s, s * s * s);
+        let basis = [
+            0.5 * (-s + 2.0 * s2 - s3),
+            1.0 - 2.5 * s2 + 1.5 * s3,
+            0.5 * s + 2.0 * s2 - 1.5 * s3,
+            0.5 * (s3 - s2),
+        ];
+        for (k, b) in basis.iter().enumerate() {
+            if let Some(slot) = (j + k).checked_sub(1).and_then(|i| sensitivity.get_mut(i)) {
+                *slot += weight * b;
+            }
+        }
     }
 
     /// Half-widths (left, right) beyond which K stays below `ratio`, with a margin for a
@@ -652,9 +689,12 @@ pub struct WholeTraceFit {
     pub modulation_index: f64,
     /// Statistical standard uncertainty (covariance scaled by the residual; GUM Type A).
     pub uncertainty_statistical: f64,
+    /// The RF-off reference's display noise carried through a measured shape read point by point
+    /// (GUM Type A, propagated; 0 for a smoothed or parametric shape, see `reference_noise`).
+    pub uncertainty_reference: f64,
     /// Stated line-shape model term (GUM Type B).
     pub uncertainty_line_shape: f64,
-    /// Both combined in quadrature.
+    /// The three combined in quadrature.
     pub uncertainty_combined: f64,
     /// Peak power of a line of unit weight (w_n = 1): P0 with K normalised to unit peak.
     pub line_peak_power_dbm: f64,
@@ -1598,6 +1638,55 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     ws.point_shape = point_shape;
 }
 
+/// The Lagrange basis of a segment's nodes (one, two or three): l_j(f), 1 at node j and 0 at the
+/// others, so that the quadratic through the nodes' values v_j is sum_j l_j(f) v_j.
+struct Lagrange {
+    x: [f64; 3],
+    /// The basis' denominators, once per segment (a division per node and point cost as much as
+    /// the rest of the segment's sums).
+    inv: [f64; 3],
+    count: usize,
+}
+
+impl Lagrange {
+    /// The basis of the nodes at the points `at` of the axis `freq`.
+    fn new(freq: &[f64], at: &[usize]) -> Lagrange {
+        let count = at.len().min(3);
+        let mut x = [0.0; 3];
+        for (slot, i) in x.iter_mut().zip(at) {
+            *slot = freq[*i];
+        }
+        let mut inv = [0.0; 3];
+        for j in 0..count {
+            let mut d = 1.0;
+            for k in 0..count {
+                if k != j {
+                    d *= x[j] - x[k];
+                }
+            }
+            inv[j] = 1.0 / d;
+        }
+        Lagrange { x, inv, count }
+    }
+
+    /// l_j(f) for every node (0 beyond `count`).
+    #[inline(always)]
+    #[allow(clippy::needless_range_loop)]
+    fn at(&self, f: f64) -> [f64; 3] {
+        let mut l = [0.0; 3];
+        for j in 0..self.count {
+            let mut v = self.inv[j];
+            for k in 0..self.count {
+                if k != j {
+                    v *= f - self.x[k];
+                }
+            }
+            l[j] = v;
+        }
+        l
+    }
+}
+
 /// The statistics of one segment with nodes at the points `at` (node slots `slots`) over its
 /// points `first..=last`.
 #[allow(clippy::needless_range_loop)]
@@ -1610,10 +1699,6 @@ fn segment(
     last: usize,
 ) -> Segment {
     let count = at.len();
-    let mut x = [0.0; 3];
-    for (slot, i) in x.iter_mut().zip(at) {
-        *slot = freq[*i];
-    }
     let mut seg = Segment {
         slots: [0; 3],
         count: count as u8,
@@ -1622,30 +1707,9 @@ fn segment(
         yy: 0.0,
     };
     seg.slots[..count].copy_from_slice(slots);
-    // The Lagrange basis' denominators, once per segment (a division per node and point cost
-    // as much as the rest of the segment's sums).
-    let mut inv = [0.0; 3];
-    for j in 0..count {
-        let mut d = 1.0;
-        for k in 0..count {
-            if k != j {
-                d *= x[j] - x[k];
-            }
-        }
-        inv[j] = 1.0 / d;
-    }
+    let basis = Lagrange::new(freq, at);
     for i in first..=last {
-        let f = freq[i];
-        let mut l = [0.0; 3];
-        for j in 0..count {
-            let mut v = inv[j];
-            for k in 0..count {
-                if k != j {
-                    v *= f - x[k];
-                }
-            }
-            l[j] = v;
-        }
+        let l = basis.at(freq[i]);
         let y = level[i];
         seg.g[0] += l[0] * l[0];
         seg.g[1] += l[0] * l[1];
@@ -2212,8 +2276,12 @@ fn fit_once(
         SHAPE_SYSTEMATIC_PARAMETRIC
     };
     let u_shape = relative * beta;
-    let u_combined = (u_stat * u_stat + u_shape * u_shape).sqrt();
-    if !(beta.is_finite() && u_stat.is_finite()) {
+    let u_reference = match shape.table_noise.as_deref() {
+        Some(noise) => reference_noise_uncertainty(&prob, &shape, noise, &p, ws),
+        None => 0.0,
+    };
+    let u_combined = (u_stat * u_stat + u_reference * u_reference + u_shape * u_shape).sqrt();
+    if !(beta.is_finite() && u_stat.is_finite() && u_combined.is_finite()) {
         return Err(AnalysisError::FitFailed(format!(
             "the whole-trace fit did not converge (beta {beta}, uncertainty {u_stat})"
         )));
@@ -2230,6 +2298,7 @@ fn fit_once(
     let fit = WholeTraceFit {
         modulation_index: beta,
         uncertainty_statistical: u_stat,
+        uncertainty_reference: u_reference,
         uncertainty_line_shape: u_shape,
         uncertainty_combined: u_combined,
         line_peak_power_dbm: 10.0 * p0.log10(),
@@ -2264,6 +2333,75 @@ fn fit_once(
         max_order,
     };
     Ok((fit, model))
+}
+
+/// The standard uncertainty of beta from the reference's display noise in a measured shape read
+/// point by point (see `reference_noise`). A change dT_j of table entry j changes the model's
+/// level at point i by dL_i = c P0 sum_n w_n dK(f_i - f_n)/dT_j dT_j / M_i, and the fitted
+/// parameters by -(J^T J)^-1 J^T dL; beta's row of (J^T J)^-1 dotted with each point's gradient,
+/// q_i, gives beta's sensitivity to T_j as -sum_i q_i dL_i/dT_j. The gradients and levels at the
+/// points between nodes are the segments' quadratics through the nodes (as the fit takes them);
+/// each line is summed where the fit sums it ([`Workspace::line_runs`]).
+#[allow(clippy::needless_range_loop)]
+fn reference_noise_uncertainty(
+    prob: &Problem,
+    shape: &LineShape,
+    noise: &TableNoise,
+    p: &[f64; NP],
+    ws: &mut Workspace,
+) -> f64 {
+    // The workspace may hold a refused trial's gradients: evaluated again at the fitted values.
+    let eval = evaluate(prob, shape, p, ws, true);
+    let mut unit = [0.0; NP];
+    unit[BETA] = 1.0;
+    let Some(row) = solve(&eval.jtj, &unit, &prob.active) else {
+        return f64::NAN;
+    };
+    let c = DB_PER_NEPER;
+    let p0 = p[LN_P0].exp();
+    let node_count = ws.nodes.len();
+    let q_node: Vec<f64> = ws.node_gradient[..node_count]
+        .iter()
+        .map(|d| (0..NP).map(|i| row[i] * d[i]).sum())
+        .collect();
+    // Per point under the lines: q_i c P0 / M_i (0 in the floor block, where no line reaches).
+    let mut per_point = vec![0.0; prob.freq.len()];
+    let mut at = [0usize; 3];
+    for seg in &ws.segments {
+        let count = seg.count as usize;
+        for j in 0..count {
+            at[j] = ws.nodes[seg.slots[j] as usize];
+        }
+        let basis = Lagrange::new(prob.freq, &at[..count]);
+        for i in at[0]..=at[count - 1] {
+            let l = basis.at(prob.freq[i]);
+            let (mut q, mut level) = (0.0, 0.0);
+            for j in 0..count {
+                let slot = seg.slots[j] as usize;
+                q += l[j] * q_node[slot];
+                level += l[j] * ws.node_level[slot];
+            }
+            per_point[i] = q * c * p0 / (level / c).exp();
+        }
+    }
+    let table = BesselTable::get();
+    let nmax = prob.max_order;
+    let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
+    let mut sensitivity = vec![0.0; shape.table.len()];
+    for n in -nmax..=nmax {
+        let slot = (n + nmax) as usize;
+        let (w, _, _) = line_weight(table, n, p[BETA], p[ASYM]);
+        let centre = fc + n as f64 * prob.spacing;
+        for &(first, last) in &ws.line_runs[ws.line_run_start[slot]..ws.line_run_start[slot + 1]] {
+            for i in ws.nodes[first]..=ws.nodes[last] {
+                let weight = w * per_point[i];
+                if weight != 0.0 {
+                    shape.add_table_sensitivity(prob.freq[i] - centre, weight, &mut sensitivity);
+                }
+            }
+        }
+    }
+    noise.variance(&sensitivity).sqrt()
 }
 
 #[cfg(test)]
@@ -2331,6 +2469,53 @@ mod tests {
             display_noise_db,
         };
         drawn(beta, 193.4e12 - 37e6, 0.2e9, 4.6, &rendering, seed)
+    }
+
+    /// A measured shape read point by point (9 points per width, too few for the smoothing) from
+    /// references with 0.15 dB of display noise, and a trace with almost none: the scatter of
+    /// beta over the references' noise draws is what the reference's noise does to it, and
+    /// `uncertainty_reference` must state it: the ratio of the two within 0.85-1.15 over 200
+    /// draws (0.97 measured; 0.80 when the reference's noise was read from first differences,
+    /// which count the wings' slope as noise). Before it was propagated, the stated uncertainty
+    /// was the residual's alone, 3.2e-4 against a scatter of 8.6e-4. The traces come from the
+    /// simulator's physics (`drawn`), not from the fit's model.
+    #[test]
+    fn the_reference_noise_in_a_point_by_point_shape_is_in_the_uncertainty() {
+        let rendering = |display_noise_db: f64| Rendering {
+            start_hz: 193.4e12 - 0.9e9,
+            stop_hz: 193.4e12 + 0.9e9,
+            points: 811,
+            resolution_bandwidth_hz: 20e6,
+            filter: FilterShape::Gaussian,
+            laser_linewidth_hz: 50e3,
+            noise_floor_dbm: -65.0,
+            display_noise_db,
+        };
+        let (beta, carrier, spacing) = (0.7, 193.4e12 + 13e6, 0.2e9);
+        let trace = drawn(beta, carrier, spacing, 1.0, &rendering(0.002), 1);
+        let (start, _) = start_for(&trace, Hz(spacing));
+        let mut betas = Vec::new();
+        let (mut u_reference, mut u_statistical) = (0.0, 0.0);
+        for seed in 100..300 {
+            let reference = drawn(0.0, carrier - 7e6, spacing, 1.0, &rendering(0.15), seed);
+            let shape = LineShape::measured(&reference, 8.0).unwrap();
+            assert!(shape.table_noise.is_some(), "read point by point");
+            let (fit, _) = fit_trace(&trace, Hz(spacing), &shape, &start, 0.15).unwrap();
+            assert_eq!(fit.line_shape, ShapeKind::Measured);
+            betas.push(fit.modulation_index);
+            u_reference += fit.uncertainty_reference / 200.0;
+            u_statistical += fit.uncertainty_statistical / 200.0;
+        }
+        let mean = betas.iter().sum::<f64>() / 200.0;
+        let spread = (betas.iter().map(|b| (b - mean).powi(2)).sum::<f64>() / 199.0).sqrt();
+        println!(
+            "mean {mean:.5} spread {spread:.2e} u_reference {u_reference:.2e} u_statistical {u_statistical:.2e}"
+        );
+        let ratio = spread / u_reference;
+        assert!(
+            (0.85..=1.15).contains(&ratio),
+            "spread over u_reference {ratio:.2}"
+        );
     }
 
     /// The fit's start from the line-by-line measurement, as `analyze_trace` makes it.

@@ -13,6 +13,8 @@
 //! - [`faddeeva`]: the Faddeeva function w(z), whose real part is the Voigt line shape.
 //! - [`fit`]: the whole displayed trace fitted with the instrument's line shape (the primary).
 //! - `smooth_shape`: the measured line shape smoothed (ln K as a penalised cubic B-spline).
+//! - `reference_noise`: the reference's display noise in a point-by-point measured shape, carried
+//!   into the index's uncertainty.
 //! - [`spacing`]: the line spacing read from the trace alone.
 //! - [`modulation_index`]: the modulation index by least squares, sideband ratio and carrier depletion.
 //! - [`trace_analysis`]: one trace in, every estimate and the line table out.
@@ -38,6 +40,7 @@ pub mod faddeeva;
 pub mod fit;
 pub mod modulation_index;
 pub mod prediction;
+mod reference_noise;
 pub mod response;
 pub mod sensor_chain;
 mod smooth_shape;
@@ -72,4 +75,7 @@ pub use vpi::{fit_v_pi, CarrierNull, DrivePoint, ExcludedPoint, VpiFit};
 /// again from its mirror image (a0e29f4), the smoothed measured shape's unsupported wings bounded
 /// (1de37f7). The earlier of these moved stored numbers without raising the version; v2 is raised
 /// for all four together.
-pub const ANALYSIS_METHOD: &str = "bessel-comb-trace-fit+weighted-origin-line v2";
+///
+/// v3: a measured shape read point by point carries the reference's display noise into beta's
+/// uncertainty (`reference_noise`, `WholeTraceFit::uncertainty_reference`).
+pub const ANALYSIS_METHOD: &str = "bessel-comb-trace-fit+weighted-origin-line v3";
