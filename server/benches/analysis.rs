@@ -13,7 +13,8 @@
 //! linewidth, whose wings cover the whole span, read with the line shape measured on an RF-off
 //! reference), and the same at a 1 MHz laser linewidth read without a reference (the
 //! pseudo-Voigt settles on a real mix, so the Voigt profile is fitted too: the dearest parametric
-//! case).
+//! case), and the bench at 1 GHz over a 20 GHz span, whose 10 points per width are too few for
+//! the smoothing, so the reference is read point by point and its noise propagated.
 //!
 //! Two clocks: criterion's usual wall clock, and the CPU time of the benchmark thread
 //! (`CLOCK_THREAD_CPUTIME_ID`, the `cpu-time` group). On a machine shared with other builds the wall
@@ -57,7 +58,18 @@ fn bench_trace(beta: f64, seed: u64) -> Trace {
 
 /// [`bench_trace`] with a laser of linewidth `laser_linewidth_hz`.
 fn bench_trace_with_laser(beta: f64, seed: u64, laser_linewidth_hz: f64) -> Trace {
-    let spacing = 0.2e9;
+    bench_trace_over(beta, seed, laser_linewidth_hz, 0.2e9, 1.4e9)
+}
+
+/// [`bench_trace`] with a laser of linewidth `laser_linewidth_hz`, lines `spacing` apart and a
+/// span of +-`half_span_hz`.
+fn bench_trace_over(
+    beta: f64,
+    seed: u64,
+    laser_linewidth_hz: f64,
+    spacing: f64,
+    half_span_hz: f64,
+) -> Trace {
     let carrier = 193.4e12 - 37e6;
     let lines: Vec<OpticalLine> = physics::comb_lines(beta, 0.0, 0.0)
         .into_iter()
@@ -67,8 +79,8 @@ fn bench_trace_with_laser(beta: f64, seed: u64, laser_linewidth_hz: f64) -> Trac
         })
         .collect();
     let rendering = Rendering {
-        start_hz: 193.4e12 - 1.4e9,
-        stop_hz: 193.4e12 + 1.4e9,
+        start_hz: 193.4e12 - half_span_hz,
+        stop_hz: 193.4e12 + half_span_hz,
         points: 10_001,
         resolution_bandwidth_hz: 20e6,
         filter: FilterShape::Gaussian,
@@ -116,9 +128,28 @@ impl Case {
     /// The simulated bench's 0.2 GHz trace at beta 1.6, read with its RF-off reference (measured
     /// shape), as `analyze_trace` reads it.
     fn simulated_bench() -> Case {
-        let trace = bench_trace(1.6, 7);
-        let reference = bench_trace(0.0, 8);
-        let spacing = Hz(0.2e9);
+        Case::with_reference(
+            "bench trace 0.2 GHz".into(),
+            bench_trace(1.6, 7),
+            bench_trace(0.0, 8),
+            Hz(0.2e9),
+        )
+    }
+
+    /// The simulated bench at 1 GHz over +-10 GHz: 10 points per resolution width, too few for
+    /// the smoothing, so the reference is read point by point and its display noise propagated
+    /// to beta's uncertainty (`reference_noise`).
+    fn point_by_point_reference() -> Case {
+        Case::with_reference(
+            "bench trace 1 GHz, shape read point by point".into(),
+            bench_trace_over(1.6, 7, 50e3, 1e9, 10e9),
+            bench_trace_over(0.0, 8, 50e3, 1e9, 10e9),
+            Hz(1e9),
+        )
+    }
+
+    /// `trace` read with the measured shape of `reference`, as `analyze_trace` reads it.
+    fn with_reference(name: String, trace: Trace, reference: Trace, spacing: Hz) -> Case {
         let first =
             measure_comb(&trace, spacing, None, &AnalysisOptions::default()).expect("comb found");
         let options = AnalysisOptions {
@@ -135,15 +166,7 @@ impl Case {
         let comb = measure_comb(&trace, spacing, Some(carrier.frequency_hz), &options)
             .expect("comb found");
         let shape = LineShape::measured(&reference, 8.0).expect("the reference gives a shape");
-        Case::new(
-            "bench trace 0.2 GHz".into(),
-            trace,
-            Some(reference),
-            spacing,
-            options,
-            comb,
-            shape,
-        )
+        Case::new(name, trace, Some(reference), spacing, options, comb, shape)
     }
 
     /// The simulated bench's 0.2 GHz trace at beta 1.6 with a 1 MHz laser line, read without a
@@ -200,6 +223,7 @@ fn cases() -> Vec<Case> {
     let mut cases: Vec<Case> = [1.0, 2.5, 6.0].into_iter().map(Case::synthetic).collect();
     cases.push(Case::simulated_bench());
     cases.push(Case::bench_without_reference());
+    cases.push(Case::point_by_point_reference());
     cases
 }
 

@@ -545,18 +545,55 @@ impl LineShape {
             return;
         }
         let j = t as usize;
-        let s = t - j as f64;
-        let (s2, s3) = (s * s, s * s * s);
-        let basis = [
-            0.5 * (-s + 2.0 * s2 - s3),
-            1.0 - 2.5 * s2 + 1.5 * s3,
-            0.5 * s + 2.0 * s2 - 1.5 * s3,
-            0.5 * (s3 - s2),
-        ];
+        let basis = catmull_rom_weights(t - j as f64);
         for (k, b) in basis.iter().enumerate() {
             if let Some(slot) = (j + k).checked_sub(1).and_then(|i| sensitivity.get_mut(i)) {
                 *slot += weight * b;
             }
+        }
+    }
+
+    /// [`LineShape::add_table_sensitivity`] for a run of points one table step apart, the first
+    /// at offset `x_first` (Hz), with weights `weights`: every point falls at the same fraction
+    /// of its table interval, so the interpolation weights are computed once (the trace and its
+    /// reference share one axis in the engine, which makes this the usual case).
+    fn add_run_sensitivity(&self, x_first: f64, weights: &[f64], sensitivity: &mut [f64]) {
+        let t = (x_first - self.x0) * self.inv_h;
+        let whole = t.floor();
+        let (j0, s) = (whole as i64, t - whole);
+        let len = self.table.len().min(sensitivity.len()) as i64;
+        let count = weights.len() as i64;
+        // Points whose four entries j - 1..j + 2 all lie in the table (1 <= j <= len - 3), with
+        // j = j0 + k for the run's k-th point; the others go one by one.
+        let lo = (1 - j0).clamp(0, count);
+        let hi = (len - 2 - j0).clamp(lo, count);
+        let (lo, hi) = (lo as usize, hi as usize);
+        for k in (0..lo).chain(hi..weights.len()) {
+            self.add_table_sensitivity(x_first + k as f64 * self.h, weights[k], sensitivity);
+        }
+        if lo == hi {
+            return;
+        }
+        let [b0, b1, b2, b3] = catmull_rom_weights(s);
+        let start = (j0 + lo as i64 - 1) as usize;
+        let inner = &weights[lo..hi];
+        let target = &mut sensitivity[start..start + inner.len() + 3];
+        // Entry m of the target takes point m with b0, m - 1 with b1, m - 2 with b2 and m - 3
+        // with b3: each entry written once (adding each point to four entries in turn made every
+        // step wait for the one before it through memory).
+        let at = |m: usize| inner.get(m).copied().unwrap_or(0.0);
+        for (m, slot) in target.iter_mut().enumerate() {
+            let mut v = b0 * at(m);
+            if m >= 1 {
+                v += b1 * at(m - 1);
+            }
+            if m >= 2 {
+                v += b2 * at(m - 2);
+            }
+            if m >= 3 {
+                v += b3 * at(m - 3);
+            }
+            *slot += v;
         }
     }
 
@@ -626,6 +663,19 @@ impl LineShape {
             }
         }
     }
+}
+
+/// The weights of the four table values p0..p3 (at j - 1..j + 2) in the Catmull-Rom cubic of
+/// interval j at fraction `s` of it (the same cubic as [`catmull_rom_coefficients`]).
+#[inline]
+fn catmull_rom_weights(s: f64) -> [f64; 4] {
+    let (s2, s3) = (s * s, s * s * s);
+    [
+        0.5 * (-s + 2.0 * s2 - s3),
+        1.0 - 2.5 * s2 + 1.5 * s3,
+        0.5 * s + 2.0 * s2 - 1.5 * s3,
+        0.5 * (s3 - s2),
+    ]
 }
 
 /// The Catmull-Rom cubic of every interval of `table` (one per entry; the last one is read at
@@ -2388,15 +2438,33 @@ fn reference_noise_uncertainty(
     let nmax = prob.max_order;
     let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
     let mut sensitivity = vec![0.0; shape.table.len()];
+    // The trace's points one table step apart (the reference on the same axis): whole runs at a
+    // time, else point by point.
+    let freq = prob.freq;
+    // (every point within a thousandth of a step of its place on the table's grid: the absolute
+    // frequencies' rounding makes single steps differ by parts in 1e8).
+    let uniform = freq
+        .iter()
+        .enumerate()
+        .all(|(i, f)| (f - freq[0] - i as f64 * shape.h).abs() <= 1e-3 * shape.h);
+    let mut weights = Vec::new();
     for n in -nmax..=nmax {
         let slot = (n + nmax) as usize;
         let (w, _, _) = line_weight(table, n, p[BETA], p[ASYM]);
         let centre = fc + n as f64 * prob.spacing;
         for &(first, last) in &ws.line_runs[ws.line_run_start[slot]..ws.line_run_start[slot + 1]] {
-            for i in ws.nodes[first]..=ws.nodes[last] {
-                let weight = w * per_point[i];
-                if weight != 0.0 {
-                    shape.add_table_sensitivity(prob.freq[i] - centre, weight, &mut sensitivity);
+            let (a, b) = (ws.nodes[first], ws.nodes[last]);
+            if uniform {
+                weights.clear();
+                weights.extend(per_point[a..=b].iter().map(|q| w * q));
+                shape.add_run_sensitivity(freq[a] - centre, &weights, &mut sensitivity);
+            } else {
+                for i in a..=b {
+                    shape.add_table_sensitivity(
+                        freq[i] - centre,
+                        w * per_point[i],
+                        &mut sensitivity,
+                    );
                 }
             }
         }
@@ -2563,6 +2631,32 @@ mod tests {
             (0.85..=1.15).contains(&ratio),
             "spread over the trace's and the reference's uncertainty {ratio:.2}"
         );
+    }
+
+    /// The run path of the table sensitivities adds what the point-by-point path adds, for runs
+    /// inside the table, across both of its ends and beyond them.
+    #[test]
+    fn table_sensitivities_of_a_run_match_those_point_by_point() {
+        let table: Vec<f64> = (0..40)
+            .map(|i| 1.0 / (1.0 + ((i as f64 - 19.6) / 3.0).powi(2)))
+            .collect();
+        let h = 2.5e6;
+        let shape = LineShape::from_table(table, -19.6 * h, h, 6.0 * h, ShapeKind::Measured);
+        for x_first in [-30.3 * h, -21.7 * h, -5.25 * h, 10.9 * h, 25.0 * h] {
+            let weights: Vec<f64> = (0..23).map(|k| 1.0 + 0.1 * k as f64).collect();
+            let mut run = vec![0.0; 40];
+            shape.add_run_sensitivity(x_first, &weights, &mut run);
+            let mut single = vec![0.0; 40];
+            for (k, w) in weights.iter().enumerate() {
+                shape.add_table_sensitivity(x_first + k as f64 * h, *w, &mut single);
+            }
+            for (a, b) in run.iter().zip(&single) {
+                assert!(
+                    (a - b).abs() <= 1e-9 * (1.0 + b.abs()),
+                    "{x_first}: {run:?} {single:?}"
+                );
+            }
+        }
     }
 
     /// The fit's start from the line-by-line measurement, as `analyze_trace` makes it.
