@@ -505,7 +505,7 @@ fn rough_floor(power: &[f64]) -> (f64, f64) {
     (median, spread)
 }
 
-fn median_in_place(values: &mut [f64]) -> f64 {
+pub(crate) fn median_in_place(values: &mut [f64]) -> f64 {
     if values.is_empty() {
         return 0.0;
     }

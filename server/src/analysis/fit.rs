@@ -881,6 +881,13 @@ struct Workspace {
     /// the lines whose window does not hold the point.
     point_row: Vec<u32>,
     point_shape: Vec<f64>,
+    /// Scratch for [`reference_noise_uncertainty`]: per node and per point, beta's row of
+    /// (J^T J)^-1 dotted with the gradient (per point times c P0 / M), per table entry beta's
+    /// sensitivity, and one run's weights.
+    noise_node: Vec<f64>,
+    noise_point: Vec<f64>,
+    noise_sensitivity: Vec<f64>,
+    noise_run: Vec<f64>,
 }
 
 /// Points between nodes on which the model in dB is taken as the quadratic through the nodes
@@ -2333,7 +2340,7 @@ fn fit_once(
     let u_combined = (u_stat * u_stat + u_reference * u_reference + u_shape * u_shape).sqrt();
     if !(beta.is_finite() && u_stat.is_finite() && u_combined.is_finite()) {
         return Err(AnalysisError::FitFailed(format!(
-            "the whole-trace fit did not converge (beta {beta}, uncertainty {u_stat})"
+            "the whole-trace fit did not converge (beta {beta}, uncertainty {u_stat}, with the reference's noise {u_reference})"
         )));
     }
     let p0 = p[LN_P0].exp();
@@ -2410,12 +2417,17 @@ fn reference_noise_uncertainty(
     let c = DB_PER_NEPER;
     let p0 = p[LN_P0].exp();
     let node_count = ws.nodes.len();
-    let q_node: Vec<f64> = ws.node_gradient[..node_count]
-        .iter()
-        .map(|d| (0..NP).map(|i| row[i] * d[i]).sum())
-        .collect();
+    let mut q_node = std::mem::take(&mut ws.noise_node);
+    q_node.clear();
+    q_node.extend(
+        ws.node_gradient[..node_count]
+            .iter()
+            .map(|d| (0..NP).map(|i| row[i] * d[i]).sum::<f64>()),
+    );
     // Per point under the lines: q_i c P0 / M_i (0 in the floor block, where no line reaches).
-    let mut per_point = vec![0.0; prob.freq.len()];
+    let mut per_point = std::mem::take(&mut ws.noise_point);
+    per_point.clear();
+    per_point.resize(prob.freq.len(), 0.0);
     let mut at = [0usize; 3];
     for seg in &ws.segments {
         let count = seg.count as usize;
@@ -2437,7 +2449,9 @@ fn reference_noise_uncertainty(
     let table = BesselTable::get();
     let nmax = prob.max_order;
     let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
-    let mut sensitivity = vec![0.0; shape.table.len()];
+    let mut sensitivity = std::mem::take(&mut ws.noise_sensitivity);
+    sensitivity.clear();
+    sensitivity.resize(shape.table.len(), 0.0);
     // The trace's points one table step apart (the reference on the same axis): whole runs at a
     // time, else point by point.
     let freq = prob.freq;
@@ -2447,7 +2461,7 @@ fn reference_noise_uncertainty(
         .iter()
         .enumerate()
         .all(|(i, f)| (f - freq[0] - i as f64 * shape.h).abs() <= 1e-3 * shape.h);
-    let mut weights = Vec::new();
+    let mut weights = std::mem::take(&mut ws.noise_run);
     for n in -nmax..=nmax {
         let slot = (n + nmax) as usize;
         let (w, _, _) = line_weight(table, n, p[BETA], p[ASYM]);
@@ -2469,7 +2483,12 @@ fn reference_noise_uncertainty(
             }
         }
     }
-    noise.variance(&sensitivity).sqrt()
+    let u = noise.variance(&sensitivity).sqrt();
+    ws.noise_node = q_node;
+    ws.noise_point = per_point;
+    ws.noise_sensitivity = sensitivity;
+    ws.noise_run = weights;
+    u
 }
 
 #[cfg(test)]
@@ -2587,8 +2606,8 @@ mod tests {
     }
 
     /// A measured shape read point by point (9 points per width, too few for the smoothing) from
-    /// references with 0.15 dB of display noise, and a trace with almost none: the scatter of
-    /// beta over the references' noise draws is what the reference's noise does to it, and
+    /// references with 0.15 dB of display noise, and traces with almost none (0.002 dB): the
+    /// scatter of beta over the draws is what the reference's noise does to it, and
     /// `uncertainty_reference` must state it: the ratio of the two within 0.85-1.15 over 200
     /// draws (0.97 measured; 0.80 when the reference's noise was read from first differences,
     /// which count the wings' slope as noise). Before it was propagated, the stated uncertainty

@@ -16,6 +16,8 @@
 //! whole table: P0 and the carrier absorb them, so they carry nothing to beta. The floor removed
 //! from the reference (fitted over thousands of points) is left out.
 
+use super::comb::median_in_place;
+
 /// How each entry of a point-by-point measured table was read from the reference, and the noise
 /// of the reference's points, in units of the normalised table.
 #[derive(Debug, Clone, PartialEq)]
@@ -53,12 +55,7 @@ pub(crate) fn display_noise_db(level_db: &[f64]) -> f64 {
         .windows(3)
         .map(|w| (w[2] - 2.0 * w[1] + w[0]).abs())
         .collect();
-    if second.is_empty() {
-        return 0.0;
-    }
-    let mid = second.len() / 2;
-    let (_, median, _) = second.select_nth_unstable_by(mid, f64::total_cmp);
-    *median / (0.6745 * 6f64.sqrt())
+    median_in_place(&mut second) / (0.6745 * 6f64.sqrt())
 }
 
 impl TableNoise {
@@ -96,10 +93,10 @@ impl TableNoise {
             if s == 0.0 {
                 continue;
             }
-            let (first, last) = table_window(j, self.peak, self.core, n);
-            if first == last && j.abs_diff(self.peak) <= self.core {
+            if j.abs_diff(self.peak) <= self.core {
                 per_point[j] += s;
             } else {
+                let (first, last) = table_window(j, self.peak, self.core, n);
                 let weight = s / ((last + 1 - first) as f64 * self.x_sq[j]);
                 runs[first] += weight;
                 runs[last + 1] -= weight;
