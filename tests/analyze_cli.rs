@@ -33,8 +33,13 @@ fn synthetic(beta: f64, drift_spacings: f64) -> SyntheticComb {
 }
 
 fn draw(comb: &SyntheticComb, seed: u64) -> Trace {
+    draw_with_noise(comb, seed, 0.3)
+}
+
+/// A trace with display noise of `sigma_db` (normal in dB).
+fn draw_with_noise(comb: &SyntheticComb, seed: u64, sigma_db: f64) -> Trace {
     let mut rng = StdRng::seed_from_u64(seed);
-    let noise = Normal::new(0.0, 0.3).unwrap();
+    let noise = Normal::new(0.0, sigma_db).unwrap();
     comb.trace(&mut || noise.sample(&mut rng)).unwrap()
 }
 
@@ -109,6 +114,52 @@ fn a_trace_file_gives_the_modulation_index_lines_and_asymmetry() {
         );
         assert_eq!(out["resolution_bandwidth_estimated"], true);
     }
+}
+
+/// A result whose standard uncertainty is over a third of 1 % is still printed, with a named
+/// warning in the JSON and on stderr that says what limits it; a precise one carries none.
+#[test]
+fn an_imprecise_index_is_given_with_a_named_warning() {
+    let dir = scratch("warning");
+    let spacing = format!("{SPACING_HZ}");
+    let mut stated = Vec::new();
+    for (seed, beta, noise_db) in [(11, 0.05, 1.0), (12, 2.5, 0.3)] {
+        let path = dir.join(format!("beta-{beta}.csv"));
+        write_csv(
+            &path,
+            &draw_with_noise(&synthetic(beta, 0.2), seed, noise_db),
+        );
+        let output = halfwave(&[
+            "analyze",
+            "--modulation-frequency",
+            &spacing,
+            path.to_str().unwrap(),
+        ]);
+        let out = json(&output);
+        let stderr = String::from_utf8_lossy(&output.stderr).to_string();
+        let relative =
+            number(&out, "/modulation_index/uncertainty") / number(&out, "/modulation_index/value");
+        let warnings = out["warnings"].as_array().expect("a warnings array");
+        stated.push(relative);
+        if relative > 0.01 / 3.0 {
+            assert_eq!(warnings.len(), 1, "beta {beta}: {out}");
+            assert_eq!(warnings[0]["code"], "index_not_within_one_percent");
+            let message = warnings[0]["message"].as_str().unwrap();
+            assert!(message.contains("raise the drive level"), "{message}");
+            assert!(
+                stderr.contains("warning: ") && stderr.contains(&format!("beta-{beta}.csv")),
+                "{stderr}"
+            );
+        } else {
+            assert!(warnings.is_empty(), "beta {beta}: {out}");
+            assert!(!stderr.contains("warning"), "{stderr}");
+        }
+    }
+    // One of each, or the test shows nothing.
+    assert!(
+        stated[0] > 0.01 / 3.0 && stated[1] < 0.01 / 3.0,
+        "{stated:?}"
+    );
 }
 
 #[test]

@@ -16,10 +16,10 @@
 //! the resolution width down to the resolution width itself, residual AM on a quarter of the
 //! traces, an RF-off reference trace (drifted) on about half. Over the traces analysed, the median
 //! |error| must be at most 0.1 %, the 95th percentile at most 0.3 %, and |error| <= 2 u (combined
-//! standard uncertainty, GUM JCGM 100:2008 5.1.2) on at least 95 %. The target that every trace
-//! give beta within 1 % or a named refusal (no silent failure) is not met: the test holds the
-//! traces off by more than 1 % without a refusal to the three it has (see the assertion). The
-//! table by condition is printed (`cargo test --test measurement_truth -- --nocapture`).
+//! standard uncertainty, GUM JCGM 100:2008 5.1.2) on at least 95 %, and no failure may be
+//! silent: a trace off by more than 1 % must be refused or carry the named warning that its
+//! uncertainty does not keep beta within 1 % (`analysis::precision`). The table by condition is
+//! printed (`cargo test --test measurement_truth -- --nocapture`).
 
 use halfwave::analysis::{analyze_trace, AnalysisError, AnalysisOptions};
 use halfwave::units::{Hz, Trace};
@@ -296,6 +296,8 @@ struct Outcome {
     result: Result<(f64, f64), AnalysisError>,
     chi2: f64,
     shape: String,
+    /// The result came with a named warning (`analysis::precision`).
+    warned: bool,
 }
 
 fn run_one(c: &Condition, rng: &mut StdRng) -> Outcome {
@@ -341,6 +343,7 @@ fn run_one(c: &Condition, rng: &mut StdRng) -> Outcome {
             ),
         )
     });
+    let warned = analysis.as_ref().is_ok_and(|a| !a.warnings.is_empty());
     let result = analysis.map(|a| (a.modulation_index.value, a.modulation_index.uncertainty));
     Outcome {
         condition: c.clone(),
@@ -348,6 +351,7 @@ fn run_one(c: &Condition, rng: &mut StdRng) -> Outcome {
         result,
         chi2,
         shape,
+        warned,
     }
 }
 
@@ -496,7 +500,7 @@ fn randomised_study_of_beta_against_two_independent_generators() {
                         o.shape
                     );
                 }
-                if err.abs() > 0.01 {
+                if err.abs() > 0.01 && !o.warned {
                     silent.push(format!(
                         "{:?}: beta {beta} +- {u} ({:.3} %) chi2 {:.2} {}",
                         o.condition,
@@ -513,7 +517,7 @@ fn randomised_study_of_beta_against_two_independent_generators() {
         }
     }
     for s in &silent {
-        println!("over 1 %: {s}");
+        println!("over 1 % without a refusal or a warning: {s}");
     }
     // What relative line-shape term would cover each analysed trace at k = 2 (for setting
     // SHAPE_SYSTEMATIC_*): sqrt((err / 2)^2 - u^2) / beta, quantiles by shape kind.
@@ -577,15 +581,30 @@ fn randomised_study_of_beta_against_two_independent_generators() {
         100.0 * coverage
     );
     assert!(all.refused <= TRACES / 10, "{} refusals", all.refused);
-    // Not met: no silent failure. What the study achieves is asserted, and README says so: two
-    // traces sampled at about one point per resolution width (1.03 and 1.43) with display noise
-    // of 0.09-0.1 dB are off by 1.36 % without a refusal, and one at beta 0.108 on overlapping
-    // Lorentzian lines by 1.07 %, within its stated uncertainty (1.03 %).
+    // No silent failure: every trace off by more than 1 % carries the named warning (before the
+    // warning, three did not: 1.03 and 1.43 points per resolution width under 0.09-0.1 dB of
+    // display noise, and beta 0.108 on overlapping Lorentzian lines; their stated standard
+    // uncertainties were 0.46-1.03 %). The warning must stay the exception: 18 of 311 analysed
+    // traces carried it when it was set, 15 of them within 1 % all the same.
+    let warned = outcomes.iter().filter(|o| o.warned).count();
+    let warned_within = outcomes
+        .iter()
+        .filter(|o| o.warned)
+        .filter(|o| {
+            o.result
+                .as_ref()
+                .is_ok_and(|(b, _)| ((b - o.condition.beta) / o.condition.beta).abs() <= 0.01)
+        })
+        .count();
+    println!(
+        "named warning on {warned} analysed traces ({warned_within} of them within 1 % all the same)"
+    );
     assert!(
-        silent.len() <= 3,
-        "{} traces off by more than 1 % without a refusal",
+        silent.is_empty(),
+        "{} traces off by more than 1 % without a refusal or a warning",
         silent.len()
     );
+    assert!(warned <= TRACES / 10, "{warned} traces warned");
     assert!(worst <= 0.015, "worst |error| {:.4} %", 100.0 * worst);
     let (_, voigt_p95, _, voigt_coverage) = stats(&voigt_row);
     assert!(

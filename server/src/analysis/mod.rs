@@ -23,6 +23,7 @@
 //! - [`budget`]: V_pi's uncertainty budget (fit, chain, generator level) by the GUM.
 //! - [`agreement`]: whether two V_pi agree within their uncertainties (E_n).
 //! - [`response`]: V_pi versus frequency as a response in dB, with its 3 dB and 6 dB points.
+//! - [`precision`]: whether beta can be promised within 1 %, and the named warning when not.
 //! - [`prediction`]: the comb a periodic phase drive (several harmonics) makes, exactly.
 //! - [`synthetic`]: traces computed from Bessel physics, for tests, benchmarks and demos.
 //! - [`error`]: the one error type, with messages for the operator.
@@ -39,6 +40,7 @@ pub mod error;
 pub mod faddeeva;
 pub mod fit;
 pub mod modulation_index;
+pub mod precision;
 pub mod prediction;
 mod reference_noise;
 pub mod response;
@@ -54,6 +56,7 @@ pub mod vpi_lookup;
 pub use chain::{pad_dissipated_fraction, ChainPoint, DriveChain};
 pub use error::AnalysisError;
 pub use modulation_index::{IndexEstimate, IndexMethod};
+pub use precision::AnalysisWarning;
 pub use response::{response_curve, ResponseCurve, ResponsePoint, VpiAtFrequency};
 pub use trace_analysis::{
     analyze_trace, analyze_trace_with_model, AnalysisOptions, CrossCheck, LineMeasurement,

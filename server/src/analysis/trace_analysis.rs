@@ -8,6 +8,7 @@
 use super::comb::{self, MeasuredComb};
 use super::fit::{self, FitStart, FittedModel, LineShape, WholeTraceFit};
 use super::modulation_index::{self, FitData, IndexEstimate, IndexMethod};
+use super::precision::{AnalysisWarning, IndexPrecision};
 use super::spacing;
 use super::AnalysisError;
 use halfwave_units::{Dbm, Hz, Trace};
@@ -88,6 +89,9 @@ pub struct TraceAnalysis {
     pub fit: WholeTraceFit,
     pub lines: Vec<LineMeasurement>,
     pub asymmetry: Vec<OrderAsymmetry>,
+    /// Named conditions on the result, which is still given (see [`super::precision`]): empty
+    /// when beta is promised within 1 %.
+    pub warnings: Vec<AnalysisWarning>,
 }
 
 /// The spacing the trace shows may differ from the one given by this fraction before the trace
@@ -242,6 +246,10 @@ pub fn analyze_trace_with_model(
             Hz(fit.line_width_hz)
         )));
     }
+    let warnings = IndexPrecision::of_fit(&fit, fit.line_width_hz / step, measured.noise_sigma_db)
+        .warning()
+        .into_iter()
+        .collect();
     let primary = IndexEstimate {
         method: IndexMethod::WholeTraceFit,
         value: fit.modulation_index,
@@ -303,6 +311,7 @@ pub fn analyze_trace_with_model(
         fit,
         lines,
         asymmetry: asymmetry(&measured),
+        warnings,
     };
     Ok((analysis, model))
 }

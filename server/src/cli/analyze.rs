@@ -8,11 +8,12 @@
 
 use super::CliError;
 use crate::analysis::{
-    analyze_trace, fit_v_pi, AnalysisError, AnalysisOptions, ChainPoint, DriveChain, DrivePoint,
-    ExcludedPoint, TraceAnalysis, VpiFit,
+    analyze_trace, fit_v_pi, AnalysisError, AnalysisOptions, AnalysisWarning, ChainPoint,
+    DriveChain, DrivePoint, ExcludedPoint, TraceAnalysis, VpiFit,
 };
 use halfwave_units::{Db, Dbm, Hz, Trace, VoltsPeak};
 use serde::{Deserialize, Serialize};
+use std::io::Write;
 use std::path::{Path, PathBuf};
 
 /// Header a trace CSV must start with.
@@ -42,13 +43,36 @@ pub fn run(args: AnalyzeArgs) -> Result<(), CliError> {
         .input
         .extension()
         .is_some_and(|e| e.eq_ignore_ascii_case("json"));
-    let json = if is_sweep {
-        serde_json::to_string_pretty(&analyze_sweep_file(&args)?)
+    let (json, warnings) = if is_sweep {
+        let report = analyze_sweep_file(&args)?;
+        let warnings: Vec<String> = report
+            .points
+            .iter()
+            .flat_map(|p| {
+                p.warnings
+                    .iter()
+                    .map(|w| format!("{}: {}", p.trace.display(), w.message))
+            })
+            .collect();
+        (serde_json::to_string_pretty(&report), warnings)
     } else {
-        serde_json::to_string_pretty(&analyze_trace_file(&args)?)
-    }
-    .map_err(|e| CliError::caused("could not write the result as JSON", e))?;
+        let report = analyze_trace_file(&args)?;
+        let warnings = report
+            .analysis
+            .warnings
+            .iter()
+            .map(|w| format!("{}: {}", report.trace.display(), w.message))
+            .collect();
+        (serde_json::to_string_pretty(&report), warnings)
+    };
+    let json = json.map_err(|e| CliError::caused("could not write the result as JSON", e))?;
     outln!("{json}");
+    // The result stands; what limits it goes to the person at the terminal (and is in the JSON).
+    // (A closed stderr loses the line, not the result.)
+    let mut stderr = std::io::stderr().lock();
+    for warning in warnings {
+        let _ = writeln!(stderr, "warning: {warning}");
+    }
     Ok(())
 }
 
@@ -250,6 +274,8 @@ pub struct SweepPointReport {
     pub modulation_index_uncertainty: Option<f64>,
     /// Why the trace gave no modulation index, when it did not.
     pub error: Option<String>,
+    /// Named conditions on the modulation index (see `analysis::precision`).
+    pub warnings: Vec<AnalysisWarning>,
 }
 
 /// The JSON printed for a sweep.
@@ -341,6 +367,7 @@ fn analyze_sweep_file(args: &AnalyzeArgs) -> Result<SweepReport, CliError> {
             modulation_index: None,
             modulation_index_uncertainty: None,
             error: None,
+            warnings: Vec::new(),
         };
         match analyze_trace(
             &trace.trace,
@@ -352,6 +379,7 @@ fn analyze_sweep_file(args: &AnalyzeArgs) -> Result<SweepReport, CliError> {
                 let index = &analysis.modulation_index;
                 report.modulation_index = Some(index.value);
                 report.modulation_index_uncertainty = Some(index.uncertainty);
+                report.warnings.clone_from(&analysis.warnings);
                 drive.push(DrivePoint {
                     v_peak,
                     modulation_index: index.value,

@@ -722,6 +722,15 @@ async fn commit_point(
             "point could not be analysed; stored without a modulation index"
         );
     }
+    for warning in analysis.iter().flat_map(|a| &a.warnings) {
+        tracing::warn!(
+            frequency_hz = m.frequency.0,
+            level_dbm = m.generator_level.0,
+            code = warning.code,
+            "{}",
+            warning.message
+        );
+    }
     let (line_table, details) = match &analysis {
         Ok(a) => (
             serde_json::to_value(&a.lines).unwrap_or_default(),
