@@ -44,6 +44,7 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
     let engine = start_engine(Limits::default(), store.clone(), &sim).await;
     let mut events = engine.subscribe();
     let mut response_events = engine.subscribe();
+    let mut point_events = engine.subscribe();
     let laser_before = sim.laser_frequency();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
     assert_eq!(wait_for_end(&mut events, run_id).await.0, "completed");
@@ -62,6 +63,50 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
     assert_eq!(points.len(), POINTS);
     let results = store.frequency_results(run_id).await.unwrap();
     assert_v_pi_within(&results, &scenario, 0.02);
+
+    // Every point's progress event names the same warnings as its stored analysis; the lowest
+    // levels' small indices carry the precision warning, the others none (so the check sees
+    // both kinds).
+    let (mut seen, mut warned) = (0, 0);
+    while let Ok(event) = point_events.try_recv() {
+        let ProgressEvent::Point {
+            run_id: id,
+            frequency_hz,
+            generator_level_dbm,
+            warnings,
+            ..
+        } = event
+        else {
+            continue;
+        };
+        if id != run_id {
+            continue;
+        }
+        let stored = points
+            .iter()
+            .find(|p| {
+                p.frequency_hz == frequency_hz && p.generator_level_dbm == generator_level_dbm
+            })
+            .expect("the event's point is stored");
+        let analysis: serde_json::Value = serde_json::from_str(&stored.analysis_json).unwrap();
+        let codes: Vec<&str> = analysis["warnings"]
+            .as_array()
+            .expect("the stored analysis lists its warnings")
+            .iter()
+            .map(|w| w["code"].as_str().unwrap())
+            .collect();
+        assert_eq!(
+            codes, warnings,
+            "point at {frequency_hz} Hz, {generator_level_dbm} dBm"
+        );
+        seen += 1;
+        warned += usize::from(!warnings.is_empty());
+    }
+    assert_eq!(seen, POINTS, "one event per point");
+    assert!(
+        warned > 0 && warned < POINTS,
+        "{warned} of {POINTS} points warned"
+    );
 
     // The response curve published at the end: 20 log10(V_pi(f_ref) / V_pi(f)) against the
     // lowest frequency, which the scenario's true V_pi gives too. Two V_pi within 2 % each put

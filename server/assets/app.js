@@ -559,7 +559,10 @@ async function connectEvents() {
         // "point N" counts the run's points in measuring order, as the spectrum's title does.
         $("live-summary").textContent =
           `Run ${event.run_id}, point ${event.completed_points}: ${(event.frequency_hz / 1e9).toFixed(3)} GHz, ` +
-          `${event.generator_level_dbm.toFixed(1)} dBm, beta = ${event.modulation_index.toFixed(3)}`;
+          `${event.generator_level_dbm.toFixed(1)} dBm, beta = ${event.modulation_index.toFixed(3)}` +
+          ((event.warnings || []).includes("index_not_within_one_percent")
+            ? " (uncertainty over a third of 1 %: not promised within 1 %)"
+            : "");
         refreshSpectrum(event.run_id);
         break;
       case "frequency":

@@ -273,6 +273,7 @@ mod tests {
             v_peak_volts: 1.0,
             modulation_index: 0.5,
             modulation_index_uncertainty: 0.01,
+            warnings: Vec::new(),
         }
     }
 

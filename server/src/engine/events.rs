@@ -31,6 +31,10 @@ pub enum ProgressEvent {
         v_peak_volts: f64,
         modulation_index: f64,
         modulation_index_uncertainty: f64,
+        /// Codes of the analysis' named warnings on this point (`index_not_within_one_percent`:
+        /// beta's uncertainty does not keep it within 1 %); the messages are in the point's
+        /// stored analysis.
+        warnings: Vec<&'static str>,
     },
     /// A point could not be analysed; it is stored without a modulation index.
     PointFailed {

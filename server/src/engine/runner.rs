@@ -780,6 +780,7 @@ async fn commit_point(
             v_peak_volts: v_peak.0,
             modulation_index: a.modulation_index.value,
             modulation_index_uncertainty: a.modulation_index.uncertainty,
+            warnings: a.warnings.iter().map(|w| w.code).collect(),
         },
         Err(e) => ProgressEvent::PointFailed {
             run_id,
