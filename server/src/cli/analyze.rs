@@ -43,26 +43,25 @@ pub fn run(args: AnalyzeArgs) -> Result<(), CliError> {
         .input
         .extension()
         .is_some_and(|e| e.eq_ignore_ascii_case("json"));
+    // One line per warning, naming the trace file it is about.
+    let lines = |trace: &Path, warnings: &[AnalysisWarning]| -> Vec<String> {
+        let name = trace.display();
+        warnings
+            .iter()
+            .map(|w| format!("{name}: {}", w.message))
+            .collect()
+    };
     let (json, warnings) = if is_sweep {
         let report = analyze_sweep_file(&args)?;
-        let warnings: Vec<String> = report
+        let warnings = report
             .points
             .iter()
-            .flat_map(|p| {
-                p.warnings
-                    .iter()
-                    .map(|w| format!("{}: {}", p.trace.display(), w.message))
-            })
+            .flat_map(|p| lines(&p.trace, &p.warnings))
             .collect();
         (serde_json::to_string_pretty(&report), warnings)
     } else {
         let report = analyze_trace_file(&args)?;
-        let warnings = report
-            .analysis
-            .warnings
-            .iter()
-            .map(|w| format!("{}: {}", report.trace.display(), w.message))
-            .collect();
+        let warnings = lines(&report.trace, &report.analysis.warnings);
         (serde_json::to_string_pretty(&report), warnings)
     };
     let json = json.map_err(|e| CliError::caused("could not write the result as JSON", e))?;
