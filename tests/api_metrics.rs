@@ -168,11 +168,16 @@ async fn run_and_queue_gauges_follow_a_run() {
         vec![(first, RunState::Completed), (second, RunState::Cancelled)]
     );
 
-    // The metrics follow the events: give the gauges' follower a moment to read the last ones.
+    // The metrics follow the events: give the gauges' follower a moment to read the last ones
+    // (the bench is released just after the run's end event, so its gauge is waited for too;
+    // on a loaded machine that took over the second this loop used to allow).
     let mut after = String::new();
-    for _ in 0..50 {
+    for _ in 0..250 {
         after = scrape(app, &viewer).await;
-        if sample(&after, "halfwave_points_committed_total") == Some(18.0) {
+        if sample(&after, "halfwave_points_committed_total") == Some(18.0)
+            && sample(&after, "halfwave_bench_busy{bench=\"sim-bench\"}") == Some(0.0)
+            && sample(&after, "halfwave_runs{state=\"running\"}") == Some(0.0)
+        {
             break;
         }
         tokio::time::sleep(Duration::from_millis(20)).await;
