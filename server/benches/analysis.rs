@@ -25,7 +25,7 @@
 #![allow(unsafe_code)]
 
 use criterion::measurement::{Measurement, ValueFormatter};
-use criterion::{criterion_group, criterion_main, Criterion, Throughput};
+use criterion::{criterion_group, Criterion, Throughput};
 use halfwave::analysis::comb::{measure_comb, measure_reference, MeasuredComb};
 use halfwave::analysis::fit::{fit_trace, FitStart, LineShape};
 use halfwave::analysis::modulation_index::{least_squares, FitData};
@@ -364,4 +364,32 @@ criterion_group! {
     config = Criterion::default().with_measurement(ThreadCpuTime);
     targets = bench_cpu_time
 }
-criterion_main!(benches, cpu_benches);
+
+/// One fit of `case`, not inlined, so that callgrind can count its instructions alone.
+#[inline(never)]
+fn counted_fit(case: &Case) -> halfwave::analysis::fit::WholeTraceFit {
+    case.fit()
+}
+
+/// With `HALFWAVE_COUNT_FIT=NAME` set, fits the case named NAME (`all`: each case) once (after a fit
+/// that sizes the thread's buffers) and exits, for an instruction count that does not depend on
+/// what else the machine is doing:
+/// `HALFWAVE_COUNT_FIT="beta 1" valgrind --tool=callgrind --collect-atstart=no
+/// --toggle-collect='*counted_fit*' target/release/deps/analysis-HASH` (the total is the fit's).
+fn count_fits(name: &str) {
+    for case in cases().iter().filter(|c| name == "all" || c.name == name) {
+        case.fit();
+        let fitted = counted_fit(case);
+        println!("{}: beta {:.5}", case.name, fitted.modulation_index);
+    }
+}
+
+fn main() {
+    if let Ok(name) = std::env::var("HALFWAVE_COUNT_FIT") {
+        count_fits(&name);
+        return;
+    }
+    benches();
+    cpu_benches();
+    Criterion::default().configure_from_args().final_summary();
+}
