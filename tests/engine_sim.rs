@@ -67,13 +67,35 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
     // Every point's progress event names the same warnings as its stored analysis; the lowest
     // levels' small indices carry the precision warning, the others none (so the check sees
     // both kinds).
+    // The pipeline analyses a point while it commits the one before, and keeps the acquisition's
+    // order: the completed count rises by one per point, and a frequency's V_pi comes only after
+    // all of its points.
     let (mut seen, mut warned) = (0, 0);
+    let mut points_at = std::collections::HashMap::<u64, usize>::new();
+    let mut fitted = 0;
     while let Ok(event) = point_events.try_recv() {
+        if let ProgressEvent::Frequency {
+            run_id: id,
+            frequency_hz,
+            ..
+        } = &event
+        {
+            if *id == run_id {
+                assert_eq!(
+                    points_at.get(&frequency_hz.to_bits()).copied(),
+                    Some(LEVELS),
+                    "V_pi at {frequency_hz} Hz published before all its points"
+                );
+                fitted += 1;
+            }
+            continue;
+        }
         let ProgressEvent::Point {
             run_id: id,
             frequency_hz,
             generator_level_dbm,
             warnings,
+            completed_points,
             ..
         } = event
         else {
@@ -82,6 +104,8 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
         if id != run_id {
             continue;
         }
+        assert_eq!(completed_points, seen + 1, "points committed out of order");
+        *points_at.entry(frequency_hz.to_bits()).or_default() += 1;
         let stored = points
             .iter()
             .find(|p| {
@@ -103,6 +127,7 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
         warned += usize::from(!warnings.is_empty());
     }
     assert_eq!(seen, POINTS, "one event per point");
+    assert_eq!(fitted, FREQUENCIES_HZ.len(), "one V_pi event per frequency");
     assert!(
         warned > 0 && warned < POINTS,
         "{warned} of {POINTS} points warned"

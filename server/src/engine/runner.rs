@@ -2,9 +2,10 @@
 //!
 //! For each frequency, in plan order: switch RF off, find the laser, take the RF-off reference,
 //! then ramp the levels from low to high, one point each (set level, output on, settle, sweep,
-//! fetch). Each measured trace is handed to a pipeline task that analyses it and commits it to the
+//! fetch). Each measured trace is handed to a pipeline that analyses it and commits it to the
 //! store while the instruments already measure the next point, so the analysis and the database
-//! cost no instrument time. When a frequency's levels are done the RF goes off and V_pi is fitted
+//! cost no instrument time; the pipeline's two stages (analysis on a blocking thread, commit)
+//! also overlap each other, in the acquisition's order. When a frequency's levels are done the RF goes off and V_pi is fitted
 //! for that frequency; when all are done the run is complete.
 //!
 //! Every stop path switches RF off first and reports afterwards: the [`RfOffGuard`] is released
@@ -644,8 +645,25 @@ fn comb_centroid(trace: &Trace) -> Option<Hz> {
     (sw > 0.0).then(|| Hz(swf / sw))
 }
 
+/// What the pipeline's analysis stage hands to its commit stage, in the order it received it.
+enum Analysed {
+    Point(
+        Box<Measured>,
+        Result<analysis::TraceAnalysis, analysis::AnalysisError>,
+    ),
+    FrequencyDone {
+        frequency_index: usize,
+        frequency: Hz,
+    },
+}
+
+/// The pipeline: two stages, so that a point's analysis (on a blocking thread) runs while the
+/// point before it is committed (its trace compressed and written) on the other core. Both keep
+/// the acquisition's order, so a frequency's points are all committed before its V_pi is fitted.
+/// Ends when the acquisition drops its sender, or with the first error (a point that could not be
+/// committed, or [`MAX_CONSECUTIVE_ANALYSIS_FAILURES`] in a row).
 async fn pipeline(
-    mut rx: mpsc::Receiver<Msg>,
+    rx: mpsc::Receiver<Msg>,
     run_id: i64,
     store: Store,
     chain: Arc<DriveChain>,
@@ -653,18 +671,20 @@ async fn pipeline(
     total: usize,
     mut completed: usize,
 ) -> Result<(), String> {
-    let options = AnalysisOptions::default();
+    // One analysed point may wait for its commit while the next is analysed.
+    let (analysed_tx, mut analysed_rx) = mpsc::channel::<Analysed>(1);
+    let analyser = tokio::spawn(analyse_in_order(rx, analysed_tx));
     let mut failures_in_a_row = 0;
-    while let Some(msg) = rx.recv().await {
-        match msg {
-            Msg::Point(mut m) => {
+    while let Some(analysed) = analysed_rx.recv().await {
+        match analysed {
+            Analysed::Point(mut m, analysis) => {
                 let reply = m.reply.take();
                 let (failure, index) = commit_point(
                     &m,
+                    analysis,
                     run_id,
                     &store,
                     &chain,
-                    &options,
                     &events,
                     total,
                     &mut completed,
@@ -689,31 +709,74 @@ async fn pipeline(
                     }
                 }
             }
-            Msg::FrequencyDone {
+            Analysed::FrequencyDone {
                 frequency_index,
                 frequency,
             } => fit_frequency(run_id, frequency_index, frequency, &store, &events).await?,
         }
     }
+    // The analysis stage ended: on the acquisition's end (its result is then Ok) or because it
+    // failed, which is the run's cause.
+    match analyser.await {
+        Ok(result) => result,
+        Err(join) => Err(format!("the analysis task failed: {join}")),
+    }
+}
+
+/// The pipeline's analysis stage: analyses each point on a blocking thread (a fit takes
+/// milliseconds of CPU, too long to hold an async worker) and passes it on, in order. Ends when
+/// the acquisition drops its sender or the commit stage stops.
+async fn analyse_in_order(
+    mut rx: mpsc::Receiver<Msg>,
+    analysed: mpsc::Sender<Analysed>,
+) -> Result<(), String> {
+    while let Some(msg) = rx.recv().await {
+        let next = match msg {
+            Msg::Point(m) => {
+                let (m, analysis) = tokio::task::spawn_blocking(move || {
+                    let analysis = analysis::analyze_trace(
+                        &m.trace,
+                        m.frequency,
+                        m.reference.as_deref(),
+                        &AnalysisOptions::default(),
+                    );
+                    (m, analysis)
+                })
+                .await
+                .map_err(|join| format!("the analysis of a point failed: {join}"))?;
+                Analysed::Point(m, analysis)
+            }
+            Msg::FrequencyDone {
+                frequency_index,
+                frequency,
+            } => Analysed::FrequencyDone {
+                frequency_index,
+                frequency,
+            },
+        };
+        if analysed.send(next).await.is_err() {
+            // The commit stage stopped; its error is the run's cause.
+            break;
+        }
+    }
     Ok(())
 }
 
-/// Analyses and commits one point; returns why it could not be analysed, if it could not (the
+/// Commits one analysed point; returns why it could not be analysed, if it could not (the
 /// point is stored either way), and its modulation index with its uncertainty, if it could.
 #[allow(clippy::too_many_arguments)]
 async fn commit_point(
     m: &Measured,
+    analysis: Result<analysis::TraceAnalysis, analysis::AnalysisError>,
     run_id: i64,
     store: &Store,
     chain: &DriveChain,
-    options: &AnalysisOptions,
     events: &broadcast::Sender<ProgressEvent>,
     total: usize,
     completed: &mut usize,
 ) -> Result<(Option<String>, Option<(f64, f64)>), String> {
     let at_modulator = chain.level_at_modulator(m.frequency, m.generator_level);
     let v_peak = at_modulator.to_volts_peak();
-    let analysis = analysis::analyze_trace(&m.trace, m.frequency, m.reference.as_deref(), options);
     if let Err(e) = &analysis {
         tracing::warn!(
             frequency_hz = m.frequency.0,
