@@ -4,8 +4,8 @@
 //! then ramp the levels from low to high, one point each (set level, output on, settle, sweep,
 //! fetch). Each measured trace is handed to a pipeline that analyses it and commits it to the
 //! store while the instruments already measure the next point, so the analysis and the database
-//! cost no instrument time; the pipeline's two stages (analysis on a blocking thread, commit)
-//! also overlap each other, in the acquisition's order. When a frequency's levels are done the RF goes off and V_pi is fitted
+//! cost no instrument time; the pipeline analyses up to two points at once on blocking threads
+//! while it commits the ones before, in the acquisition's order. When a frequency's levels are done the RF goes off and V_pi is fitted
 //! for that frequency; when all are done the run is complete.
 //!
 //! Every stop path switches RF off first and reports afterwards: the [`RfOffGuard`] is released
@@ -645,23 +645,35 @@ fn comb_centroid(trace: &Trace) -> Option<Hz> {
     (sw > 0.0).then(|| Hz(swf / sw))
 }
 
+/// A point's analysis, running or done, and the point it belongs to.
+type AnalysisTask = tokio::task::JoinHandle<(
+    Box<Measured>,
+    Result<analysis::TraceAnalysis, analysis::AnalysisError>,
+)>;
+
 /// What the pipeline's analysis stage hands to its commit stage, in the order it received it.
 enum Analysed {
-    Point(
-        Box<Measured>,
-        Result<analysis::TraceAnalysis, analysis::AnalysisError>,
-    ),
+    Point(AnalysisTask),
     FrequencyDone {
         frequency_index: usize,
         frequency: Hz,
     },
 }
 
-/// The pipeline: two stages, so that a point's analysis (on a blocking thread) runs while the
-/// point before it is committed (its trace compressed and written) on the other core. Both keep
-/// the acquisition's order, so a frequency's points are all committed before its V_pi is fitted.
-/// Ends when the acquisition drops its sender, or with the first error (a point that could not be
-/// committed, or [`MAX_CONSECUTIVE_ANALYSIS_FAILURES`] in a row).
+/// How many points the pipeline analyses at once (on blocking threads): two on a machine with two
+/// cores or more, so that on the 2-core bench PC one point is analysed while the next is, and the
+/// commit and the acquisition share the cores with them. Each holds its trace, which bounds the
+/// memory a run adds.
+fn parallel_analyses() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get().min(2))
+}
+
+/// The pipeline: the analysis stage starts each point's analysis on a blocking thread (up to
+/// [`parallel_analyses`] at once) and hands it on in the acquisition's order; the commit stage
+/// (this task) waits for each in that order and commits it (its trace compressed and written),
+/// so a frequency's points are all committed before its V_pi is fitted. Ends when the
+/// acquisition drops its sender, or with the first error (a point that could not be committed,
+/// or [`MAX_CONSECUTIVE_ANALYSIS_FAILURES`] in a row).
 async fn pipeline(
     rx: mpsc::Receiver<Msg>,
     run_id: i64,
@@ -671,13 +683,15 @@ async fn pipeline(
     total: usize,
     mut completed: usize,
 ) -> Result<(), String> {
-    // One analysed point may wait for its commit while the next is analysed.
     let (analysed_tx, mut analysed_rx) = mpsc::channel::<Analysed>(1);
     let analyser = tokio::spawn(analyse_in_order(rx, analysed_tx));
     let mut failures_in_a_row = 0;
     while let Some(analysed) = analysed_rx.recv().await {
         match analysed {
-            Analysed::Point(mut m, analysis) => {
+            Analysed::Point(task) => {
+                let (mut m, analysis) = task
+                    .await
+                    .map_err(|join| format!("the analysis of a point failed: {join}"))?;
                 let reply = m.reply.take();
                 let (failure, index) = commit_point(
                     &m,
@@ -715,36 +729,35 @@ async fn pipeline(
             } => fit_frequency(run_id, frequency_index, frequency, &store, &events).await?,
         }
     }
-    // The analysis stage ended: on the acquisition's end (its result is then Ok) or because it
-    // failed, which is the run's cause.
-    match analyser.await {
-        Ok(result) => result,
-        Err(join) => Err(format!("the analysis task failed: {join}")),
-    }
+    // The analysis stage ended on the acquisition's end (the commit stage has then committed
+    // everything it started).
+    analyser
+        .await
+        .map_err(|join| format!("the analysis task failed: {join}"))
 }
 
-/// The pipeline's analysis stage: analyses each point on a blocking thread (a fit takes
-/// milliseconds of CPU, too long to hold an async worker) and passes it on, in order. Ends when
-/// the acquisition drops its sender or the commit stage stops.
-async fn analyse_in_order(
-    mut rx: mpsc::Receiver<Msg>,
-    analysed: mpsc::Sender<Analysed>,
-) -> Result<(), String> {
+/// The pipeline's analysis stage: starts each point's analysis on a blocking thread (a fit takes
+/// milliseconds of CPU, too long to hold an async worker) once fewer than [`parallel_analyses`]
+/// are running, and hands it to the commit stage in order. Ends when the acquisition drops its
+/// sender or the commit stage stops.
+async fn analyse_in_order(mut rx: mpsc::Receiver<Msg>, analysed: mpsc::Sender<Analysed>) {
+    let running = Arc::new(tokio::sync::Semaphore::new(parallel_analyses()));
     while let Some(msg) = rx.recv().await {
         let next = match msg {
             Msg::Point(m) => {
-                let (m, analysis) = tokio::task::spawn_blocking(move || {
+                let Ok(permit) = running.clone().acquire_owned().await else {
+                    break;
+                };
+                Analysed::Point(tokio::task::spawn_blocking(move || {
                     let analysis = analysis::analyze_trace(
                         &m.trace,
                         m.frequency,
                         m.reference.as_deref(),
                         &AnalysisOptions::default(),
                     );
+                    drop(permit);
                     (m, analysis)
-                })
-                .await
-                .map_err(|join| format!("the analysis of a point failed: {join}"))?;
-                Analysed::Point(m, analysis)
+                }))
             }
             Msg::FrequencyDone {
                 frequency_index,
@@ -759,7 +772,6 @@ async fn analyse_in_order(
             break;
         }
     }
-    Ok(())
 }
 
 /// Commits one analysed point; returns why it could not be analysed, if it could not (the
