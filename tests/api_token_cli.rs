@@ -120,3 +120,58 @@ async fn create_prints_once_list_hides_secrets_revoke_disables() {
     assert!(!no_database.status.success());
     assert!(String::from_utf8_lossy(&no_database.stderr).contains("--database"));
 }
+
+/// A configuration whose `data_dir` is relative names another file from another working
+/// directory: `token list` there refuses, naming the path and the directory it was read against,
+/// and creates nothing (it used to create an empty database there, which a backup then copied
+/// as if it were the daemon's); `token create` makes the database, as at the daemon's first start,
+/// and says where.
+#[test]
+fn a_relative_data_dir_read_from_another_directory_makes_no_database_unasked() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("lab.toml");
+    std::fs::write(
+        &config,
+        "data_dir = \"lab-data\"\n\n[[bench]]\nname = \"sim-bench\"\nsource = { kind = \"simulated\" }\nanalyzer = { kind = \"simulated\" }\n[bench.simulation]\n",
+    )
+    .unwrap();
+    let elsewhere = dir.path().join("elsewhere");
+    std::fs::create_dir(&elsewhere).unwrap();
+    let run = |args: &[&str]| {
+        Command::new(env!("CARGO_BIN_EXE_halfwave"))
+            .args(args)
+            .current_dir(&elsewhere)
+            .output()
+            .expect("the halfwave binary runs")
+    };
+    let config = config.to_str().unwrap();
+    let listed = run(&["token", "list", "--config", config]);
+    assert!(!listed.status.success());
+    let said = String::from_utf8_lossy(&listed.stderr);
+    assert!(
+        said.contains("there is no database at")
+            && said.contains("lab-data")
+            && said.contains("relative to the working directory")
+            && said.contains("elsewhere"),
+        "{said}"
+    );
+    assert!(!elsewhere.join("lab-data").exists(), "nothing is created");
+
+    let created = run(&[
+        "token", "create", "--role", "admin", "--name", "first", "--config", config,
+    ]);
+    assert!(
+        created.status.success(),
+        "{}",
+        String::from_utf8_lossy(&created.stderr)
+    );
+    let said = String::from_utf8_lossy(&created.stderr);
+    assert!(
+        said.contains("creating it") && said.contains("lab-data"),
+        "{said}"
+    );
+    assert!(elsewhere.join("lab-data").join("halfwave.db").is_file());
+    let listed = run(&["token", "list", "--config", config]);
+    assert!(listed.status.success());
+    assert!(String::from_utf8_lossy(&listed.stdout).contains("first"));
+}

@@ -67,35 +67,71 @@ pub enum TokenAction {
     },
 }
 
-/// The database URL the choice names (from the configuration file, or given directly).
-pub fn database_url(choice: &DatabaseChoice) -> Result<String, CliError> {
+/// The database the choice names: its URL, and for a configuration file the configuration (whose
+/// data directory `token create` may have to make before the daemon's first start).
+fn chosen_database(
+    choice: &DatabaseChoice,
+) -> Result<(String, Option<(PathBuf, Config)>), CliError> {
     if let Some(url) = &choice.database {
-        return Ok(url.clone());
+        return Ok((url.clone(), None));
     }
     let path = crate::config::config_path(choice.config.as_deref())
         .map_err(|e| CliError::new(format!("{e}; or name the database with --database URL")))?;
-    // A token may be created before the daemon's first start: make its data directory.
     let config = Config::load(&path).map_err(|e| CliError::new(e.to_string()))?;
-    config.create_data_dir().map_err(CliError::new)?;
-    Ok(config.database_url())
+    Ok((config.database_url(), Some((path, config))))
 }
 
-/// Opens the chosen database. A `--database` file that does not exist is refused unless `create`
-/// (a typo must not make a new empty database and a token the daemon will refuse); the database
-/// of a configuration file is created, as the daemon itself would at its first start.
-async fn open(choice: &DatabaseChoice, create: bool) -> Result<Store, CliError> {
-    if let (Some(url), false) = (&choice.database, create) {
-        let options = super::db::url_options(url)?;
+/// Opens the chosen database. A SQLite file that does not exist is made only by `token create`
+/// (`may_create`): with `--database` only when `--create` is given (a typo must not make a new
+/// empty database and a token the daemon will refuse), from a configuration file as the daemon
+/// would at its first start, saying where. `token list` and `token revoke` refuse it, naming the
+/// path and, for a relative `data_dir`, the working directory it was read against (run from
+/// another directory, the same configuration names another file).
+async fn open(choice: &DatabaseChoice, may_create: bool) -> Result<Store, CliError> {
+    let (url, config) = chosen_database(choice)?;
+    let postgres = url.starts_with("postgres://") || url.starts_with("postgresql://");
+    if !postgres {
+        let options = super::db::url_options(&url)?;
         let file = options.get_filename();
         let in_memory = file.as_os_str().is_empty() || file.as_os_str() == ":memory:";
         if !in_memory && !file.exists() {
-            return Err(CliError::new(format!(
-                "there is no database at {}; check --database (the daemon's is `data_dir`/halfwave.db of its configuration, or pass --config FILE), or add --create to make a new one",
-                file.display()
-            )));
+            let relative = config
+                .as_ref()
+                .filter(|(_, c)| c.database_url.is_none() && c.data_dir.is_relative())
+                .map(|(path, c)| {
+                    let here = std::env::current_dir()
+                        .map_or_else(|_| "the working directory".into(), |d| d.display().to_string());
+                    format!(
+                        " (`data_dir = {:?}` of {} is relative to the working directory, {here}: run from the directory the daemon runs in, or make it absolute)",
+                        c.data_dir.display().to_string(),
+                        path.display()
+                    )
+                })
+                .unwrap_or_default();
+            match (&config, may_create) {
+                (None, false) => {
+                    return Err(CliError::new(format!(
+                        "there is no database at {}; check --database (the daemon's is `data_dir`/halfwave.db of its configuration, or pass --config FILE), or add --create to make a new one",
+                        file.display()
+                    )))
+                }
+                (Some(_), false) => {
+                    return Err(CliError::new(format!(
+                        "there is no database at {}{relative}",
+                        file.display()
+                    )))
+                }
+                (Some((_, c)), true) => {
+                    c.create_data_dir().map_err(CliError::new)?;
+                    eprintln!(
+                        "note: no database at {} yet; creating it, as the daemon does at its first start{relative}",
+                        file.display()
+                    );
+                }
+                (None, true) => {}
+            }
         }
     }
-    let url = database_url(choice)?;
     Store::open(&url)
         .await
         .map_err(|e| CliError::new(e.to_string()))
@@ -116,7 +152,9 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                 create,
             } => {
                 let role: Role = role.parse().map_err(CliError::new)?;
-                let store = open(&database, create).await?;
+                // From a configuration file the database may be made here (before the daemon's first
+                // start); a --database file only with --create.
+                let store = open(&database, create || database.database.is_none()).await?;
                 let created = tokens::create(store.pool(), &name, role, "cli")
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;
