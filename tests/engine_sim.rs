@@ -297,6 +297,62 @@ async fn cancel_leaves_the_output_off_within_a_second() {
     engine.shutdown().await;
 }
 
+/// A run waiting behind another is cancelled at once, not when its turn comes: it is recorded
+/// cancelled "before it started" while the first run still measures, it never starts, and the
+/// first run goes on to complete.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_queued_run_is_cancelled_at_once_and_never_starts() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    // Instrument times at a tenth, so that the first run measures for a few seconds.
+    let sim = SimBench::new(scenario.clone(), 6).with_time_factor(0.1);
+    let chain = upload_true_chain(&store, &scenario).await;
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
+    let mut events = engine.subscribe();
+    let mut first_events = engine.subscribe();
+    let first = engine.submit(plan(&chain), "test").await.unwrap();
+    let waiting = engine.submit(plan(&chain), "test").await.unwrap();
+    assert_eq!(store.run(waiting).await.unwrap().state, RunState::Queued);
+
+    engine.cancel(waiting, "test").await.unwrap();
+    let run = store.run(waiting).await.unwrap();
+    assert_eq!(run.state, RunState::Cancelled, "cancelled when asked");
+    assert!(
+        run.cause.unwrap_or_default().contains("before it started"),
+        "the cause says it never started"
+    );
+    assert_eq!(
+        store.run(first).await.unwrap().state,
+        RunState::Running,
+        "the first run was still measuring"
+    );
+    assert!(
+        engine.cancel(waiting, "test").await.is_err(),
+        "a cancelled run cannot be cancelled again"
+    );
+
+    assert_eq!(wait_for_end(&mut first_events, first).await.0, "completed");
+    let mut finished = 0;
+    while let Ok(event) = events.try_recv() {
+        match event {
+            ProgressEvent::Started { run_id, .. } => {
+                assert_ne!(run_id, waiting, "the cancelled run never starts")
+            }
+            ProgressEvent::Finished { run_id, state, .. } if run_id == waiting => {
+                assert_eq!(state, RunState::Cancelled);
+                finished += 1;
+            }
+            _ => {}
+        }
+    }
+    assert_eq!(finished, 1, "one end event for the cancelled run");
+    assert!(store.points_of_run(waiting).await.unwrap().is_empty());
+    engine.shutdown().await;
+}
+
 /// A run stopped by an engine shutdown (as SIGTERM does) after `points` committed points, and
 /// what is needed to start a new engine on the same database and bench.
 struct Interrupted {

@@ -622,6 +622,21 @@ impl Engine {
             .store
             .append_audit(by, "run.cancel", &format!("run:{run_id}"), "")
             .await?;
+        if state == RunState::Queued && self.withdraw_queued(run_id) {
+            // Still waiting behind another run: it ends now, not when its turn comes.
+            lock(&self.inner.cancels).remove(&run_id);
+            let cause = format!("cancelled by {by} before it started");
+            self.inner
+                .store
+                .transition_run(run_id, RunState::Cancelled, Some(&cause))
+                .await?;
+            let _ = self.inner.events.send(ProgressEvent::Finished {
+                run_id,
+                state: RunState::Cancelled,
+                cause: Some(cause),
+            });
+            return Ok(());
+        }
         let token = lock(&self.inner.cancels).get(&run_id).cloned();
         match token {
             Some(t) => t.cancel(),
@@ -765,6 +780,19 @@ impl Engine {
         let chain = drive_chain(&calibration).map_err(|e| invalid(e.to_string()))?;
         let band = MeasuredBand::of(&calibration);
         Ok((chain, ChainChoice::Stored(calibration.id), band))
+    }
+
+    /// Takes a run that waits in a bench's queue of this process out of it (its bench's worker
+    /// then skips its job); false when it is not waiting there (running, or not queued here).
+    fn withdraw_queued(&self, run_id: i64) -> bool {
+        self.inner.benches.values().any(|slot| {
+            let mut q = lock(&slot.queue);
+            let waiting = q.queued.len();
+            if q.active != Some(run_id) {
+                q.queued.retain(|id| *id != run_id);
+            }
+            q.queued.len() < waiting
+        })
     }
 
     fn is_queued_or_active(&self, run_id: i64) -> bool {

@@ -266,7 +266,14 @@ impl Engine {
                 .unwrap_or_default();
             {
                 let mut q = lock(&slot.queue);
+                let waiting = q.queued.len();
                 q.queued.retain(|id| *id != job.run_id);
+                if q.queued.len() == waiting {
+                    // Withdrawn while it waited: cancelled, and recorded so, by `Engine::cancel`.
+                    drop(q);
+                    lock(&self.inner.cancels).remove(&job.run_id);
+                    continue;
+                }
                 q.active = Some(job.run_id);
             }
             self.run_job(&slot, job, token).await;
