@@ -1525,3 +1525,38 @@ async fn budget_prints_the_gum_table_of_a_run() {
     let out = halfwave_async(&bad).await;
     failed_with(&out, &["chain_uncertainty_db"]);
 }
+
+/// A negative frequency on the command line reaches the check that names it (clap used to take
+/// `-1` for a flag and suggest `-- -1`, which fails as well).
+#[test]
+fn a_negative_frequency_is_named_not_taken_for_a_flag() {
+    let url = format!("http://127.0.0.1:{}", closed_port());
+    let drive = halfwave(&[
+        "drive",
+        "EG-PM-0042",
+        "--frequency",
+        "-1",
+        "--modulation-index",
+        "1",
+        "--chain",
+        "c",
+        "--url",
+        &url,
+    ]);
+    failed_with(&drive, &["--frequency -1 is not a frequency", "7.5e9"]);
+    let v_pi = halfwave(&["v-pi", "EG-PM-0042", "--frequency", "-5", "--url", &url]);
+    failed_with(&v_pi, &["--frequency -5 is not a frequency"]);
+    let dir = tempfile::tempdir().unwrap();
+    let trace = dir.path().join("t.csv");
+    std::fs::write(&trace, "frequency_hz,power_dbm\n1,2\n2,3\n3,4\n").unwrap();
+    let analyze = halfwave(&[
+        "analyze",
+        trace.to_str().unwrap(),
+        "--modulation-frequency",
+        "-1e9",
+    ]);
+    failed_with(
+        &analyze,
+        &["modulation frequency -1000000000 Hz is not a positive"],
+    );
+}

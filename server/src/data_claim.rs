@@ -57,8 +57,11 @@ impl DataClaim {
                 let _ = file.read_to_string(&mut text);
                 let holder = match serde_json::from_str::<ClaimHolder>(&text) {
                     Ok(h) => format!(
-                        "pid {} on host {}, listening on {}, since {} (Unix ms)",
-                        h.pid, h.host, h.listen, h.since_unix_ms
+                        "pid {} on host {}, listening on {}, since {}",
+                        h.pid,
+                        h.host,
+                        h.listen,
+                        crate::calendar::utc_time(h.since_unix_ms)
                     ),
                     Err(_) => "a process that has not written its name yet".to_string(),
                 };

@@ -10,8 +10,10 @@ use tracing_subscriber::EnvFilter;
 pub fn init(default_level: &str) {
     let filter =
         EnvFilter::try_from_env("HALFWAVE_LOG").unwrap_or_else(|_| EnvFilter::new(default_level));
+    // Colours only on a terminal: a log redirected to a file or a journal gets plain text.
     let _ = tracing_subscriber::fmt()
         .with_env_filter(filter)
         .with_writer(std::io::stderr)
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
         .try_init();
 }

@@ -27,7 +27,7 @@ pub struct AnalyzeArgs {
     pub input: PathBuf,
     /// RF drive frequency, which is the line spacing of the comb; for a trace CSV it is read
     /// from the trace when left out, and a trace that shows another spacing is refused.
-    #[arg(long, value_name = "HZ")]
+    #[arg(long, value_name = "HZ", allow_negative_numbers = true)]
     pub modulation_frequency: Option<f64>,
     /// A trace taken with the RF output off: the carrier position and the unmodulated power.
     #[arg(long, value_name = "OFF.csv")]

@@ -26,7 +26,7 @@ pub struct VpiArgs {
     /// The modulator's serial number.
     pub serial: String,
     /// The RF frequency, in hertz (e.g. 7.5e9).
-    #[arg(long, value_name = "HZ")]
+    #[arg(long, value_name = "HZ", allow_negative_numbers = true)]
     pub frequency: f64,
     /// Answer from this run (a completed calibration of the device) instead of the one the
     /// lookup rule picks.

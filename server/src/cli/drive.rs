@@ -18,7 +18,7 @@ pub struct DriveArgs {
     /// The modulator's serial number.
     pub serial: String,
     /// The RF frequency, in hertz (e.g. 7.5e9).
-    #[arg(long, value_name = "HZ")]
+    #[arg(long, value_name = "HZ", allow_negative_numbers = true)]
     pub frequency: f64,
     /// The modulation index wanted (peak phase deviation, rad): prints the generator level.
     #[arg(
