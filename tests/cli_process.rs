@@ -356,6 +356,13 @@ async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
     let run_id = finished["id"].as_i64().unwrap();
     let id = run_id.to_string();
     assert!(!bench.sim.rf_output_on(), "RF is off after the run");
+    // Off a terminal there is no progress bar: one line says what the command waits for.
+    assert!(
+        stderr(&submitted).contains(&format!("run {run_id} is "))
+            && stderr(&submitted).contains("following it until it ends"),
+        "{}",
+        stderr(&submitted)
+    );
 
     // watch on a finished run returns at once; show and runs find it.
     let watched = run(with(&["watch", &id])).await;

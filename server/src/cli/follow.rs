@@ -182,6 +182,14 @@ async fn follow(
     if has_ended(&run.summary, before.as_ref()) {
         return Ok(run);
     }
+    if !std::io::IsTerminal::is_terminal(&std::io::stderr()) {
+        // No progress bar off a terminal: one line, so that a log or a script's output shows
+        // what the command waits for.
+        eprintln!(
+            "run {run_id} is {}; following it until it ends (Ctrl-C stops following, not the run)",
+            run.summary.state
+        );
+    }
     let bar = run_bar(run_id);
     bar.set_position(run.measured_points as u64);
     bar.set_message(run.summary.state.clone());
