@@ -35,8 +35,12 @@ pub struct ServeArgs {
 pub fn run(args: ServeArgs) -> Result<(), CliError> {
     let path = crate::config::config_path(args.config.as_deref()).map_err(CliError::new)?;
     let config = Config::load(&path).map_err(|e| CliError::new(e.to_string()))?;
+    // The blocking threads analyse a run's points (two at once, `engine::runner`); each keeps its
+    // fit's buffers, so they end a second after their last point rather than tokio's ten, and an
+    // idle daemon does not hold them.
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
+        .thread_keep_alive(std::time::Duration::from_secs(1))
         .enable_all()
         .build()
         .map_err(|e| CliError::caused("cannot start the async runtime", e))?;
