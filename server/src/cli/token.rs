@@ -89,8 +89,7 @@ fn chosen_database(
 /// another directory, the same configuration names another file).
 async fn open(choice: &DatabaseChoice, may_create: bool) -> Result<Store, CliError> {
     let (url, config) = chosen_database(choice)?;
-    let postgres = url.starts_with("postgres://") || url.starts_with("postgresql://");
-    if !postgres {
+    if crate::store::Backend::of_url(&url) == crate::store::Backend::Sqlite {
         let options = super::db::url_options(&url)?;
         let file = options.get_filename();
         let in_memory = file.as_os_str().is_empty() || file.as_os_str() == ":memory:";

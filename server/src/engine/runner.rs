@@ -5,8 +5,9 @@
 //! fetch). Each measured trace is handed to a pipeline that analyses it and commits it to the
 //! store while the instruments already measure the next point, so the analysis and the database
 //! cost no instrument time; the pipeline analyses up to two points at once on blocking threads
-//! while it commits the ones before, in the acquisition's order. When a frequency's levels are done the RF goes off and V_pi is fitted
-//! for that frequency; when all are done the run is complete.
+//! while it commits the ones before, in the acquisition's order. When a frequency's levels are
+//! done the RF goes off and V_pi is fitted for that frequency; when all are done the run is
+//! complete.
 //!
 //! Every stop path switches RF off first and reports afterwards: the [`RfOffGuard`] is released
 //! on the normal end, on cancel and on error, and acts from its `Drop` on a panic. An analysis

@@ -269,9 +269,8 @@ impl Engine {
                 let waiting = q.queued.len();
                 q.queued.retain(|id| *id != job.run_id);
                 if q.queued.len() == waiting {
-                    // Withdrawn while it waited: cancelled, and recorded so, by `Engine::cancel`.
-                    drop(q);
-                    lock(&self.inner.cancels).remove(&job.run_id);
+                    // Withdrawn while it waited: cancelled, recorded so and its cancel token
+                    // removed by `Engine::cancel`.
                     continue;
                 }
                 q.active = Some(job.run_id);
