@@ -119,3 +119,67 @@ async fn sigterm_mid_run_marks_the_run_interrupted_with_rf_off() {
     assert!(cause.contains("shut down"), "{cause}");
     assert!(store.points_of_run(run_id).await.unwrap().len() >= 5);
 }
+
+/// A client in the middle of a request cannot hold the RF on after SIGTERM. Here it has sent the
+/// head of a run submission and half its body, then nothing: the server waits for the rest (up
+/// to the 30 s request timeout) and the daemon's HTTP drain waits for that request. The outputs
+/// must go off at once all the same, the run must be interrupted (not left to finish while the
+/// daemon waits), and the process must exit within the shutdown grace.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_half_sent_request_holds_neither_the_rf_nor_the_exit_after_sigterm() {
+    use tokio::io::AsyncWriteExt;
+    let bench = Bench::new(33).await;
+    let token = bench.operator_token().await;
+    let (mut daemon, run_id) = daemon_support::serve_mid_run(&bench, "daemon.log", &token, 3).await;
+    // The output is off while each frequency's reference trace is taken; wait for it to be on.
+    let waiting = std::time::Instant::now();
+    while !bench.server.bench().rf_output_on() {
+        assert!(
+            waiting.elapsed() < Duration::from_secs(30),
+            "the output never came on mid-run"
+        );
+        tokio::time::sleep(Duration::from_millis(2)).await;
+    }
+    let mut half_sent = tokio::net::TcpStream::connect(("127.0.0.1", bench.port))
+        .await
+        .unwrap();
+    half_sent
+        .write_all(
+            format!(
+                "POST /api/v1/runs HTTP/1.1\r\nHost: localhost\r\nAuthorization: Bearer {token}\r\nContent-Type: application/json\r\nContent-Length: 4000\r\n\r\n{{\"device\": "
+            )
+            .as_bytes(),
+        )
+        .await
+        .unwrap();
+    // Let the request reach its handler, which now waits for the body.
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    let pid = daemon.id().expect("the daemon is running") as i32;
+    let signalled = std::time::Instant::now();
+    // SAFETY: kill(2) with a valid pid and signal number has no memory-safety preconditions.
+    assert_eq!(unsafe { libc::kill(pid, libc::SIGTERM) }, 0);
+    while bench.server.bench().rf_output_on() {
+        assert!(
+            signalled.elapsed() < Duration::from_secs(5),
+            "RF still on 5 s after SIGTERM with a request half sent: {}",
+            bench.log("daemon.log")
+        );
+        tokio::time::sleep(Duration::from_millis(5)).await;
+    }
+    let status = tokio::time::timeout(Duration::from_secs(20), daemon.wait())
+        .await
+        .expect("the daemon exits within 20 s of SIGTERM, before the 30 s request timeout")
+        .unwrap();
+    assert!(status.success(), "{status:?}: {}", bench.log("daemon.log"));
+    let log = bench.log("daemon.log");
+    assert!(
+        log.contains("did not finish their request within the shutdown grace"),
+        "{log}"
+    );
+    drop(half_sent);
+    let store = Store::open(bench.database().to_str().unwrap())
+        .await
+        .unwrap();
+    let run = store.run(run_id).await.unwrap();
+    assert_eq!(run.state, RunState::Interrupted, "{:?}", run.cause);
+}

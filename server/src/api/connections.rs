@@ -20,8 +20,11 @@
 //!   `max_buf_size`), so a client cannot grow one connection's memory with endless headers;
 //! - on shutdown the listener closes at once, every connection finishes the response it is
 //!   writing and closes (hyper's graceful shutdown), and `serve_connections` returns when the
-//!   last one has gone. Long-lived responses (the event stream) end through the application's
-//!   own shutdown signal.
+//!   last one has gone, or after [`ConnectionLimits::shutdown_grace`], when the connections
+//!   still open are closed mid-request: a client that stops reading a large response, or sends
+//!   half a request body, cannot hold the daemon's exit. Long-lived responses (the event
+//!   stream) end through the application's own shutdown signal. (The RF outputs do not wait
+//!   for any of this: `halfwave serve` switches them off as soon as the stop signal arrives.)
 
 use axum::Router;
 use hyper::body::Incoming;
@@ -51,6 +54,11 @@ pub const DEFAULT_HEADER_READ_TIMEOUT: Duration = Duration::from_secs(10);
 /// refused by hyper (431); browsers send a few kilobytes.
 pub const DEFAULT_MAX_BUFFER_BYTES: usize = 64 * 1024;
 
+/// Default for [`ConnectionLimits::shutdown_grace`]: a lab's responses take milliseconds to
+/// write; five seconds lets a slow link finish one and keeps a stopping daemon's exit well inside
+/// a service manager's stop timeout (systemd's default is 90 s).
+pub const DEFAULT_SHUTDOWN_GRACE: Duration = Duration::from_secs(5);
+
 /// Descriptors kept free for everything but HTTP clients: the database and its WAL files,
 /// instrument connections, logs.
 pub const RESERVED_DESCRIPTORS: u64 = 128;
@@ -72,6 +80,9 @@ pub struct ConnectionLimits {
     pub header_read_timeout: Duration,
     /// Largest read buffer of one connection, in bytes (at least 8,192, hyper's minimum).
     pub max_buffer_bytes: usize,
+    /// On shutdown, how long connections may take to finish the request in progress before
+    /// they are closed regardless.
+    pub shutdown_grace: Duration,
 }
 
 impl Default for ConnectionLimits {
@@ -80,6 +91,7 @@ impl Default for ConnectionLimits {
             max_connections: DEFAULT_MAX_CONNECTIONS,
             header_read_timeout: DEFAULT_HEADER_READ_TIMEOUT,
             max_buffer_bytes: DEFAULT_MAX_BUFFER_BYTES,
+            shutdown_grace: DEFAULT_SHUTDOWN_GRACE,
         }
     }
 }
@@ -183,7 +195,8 @@ impl Drop for Slot {
 }
 
 /// Serves `app` on `listener` within `limits` until `shutdown` completes, then lets open
-/// connections finish their responses and returns when all have closed.
+/// connections finish their responses and returns when all have closed, closing those still
+/// open after [`ConnectionLimits::shutdown_grace`].
 pub async fn serve_connections(
     listener: TcpListener,
     app: Router,
@@ -200,6 +213,7 @@ pub async fn serve_connections(
     }
     let registry = Arc::new(Registry::default());
     let (stop_tx, stop_rx) = watch::channel(false);
+    let close_now = CancellationToken::new();
     let mut builder = hyper::server::conn::http1::Builder::new();
     builder
         .timer(TokioTimer::new())
@@ -239,16 +253,32 @@ pub async fn serve_connections(
             slot,
             evicted,
             stop_rx.clone(),
+            close_now.clone(),
         ));
     }
     drop(listener);
     let _ = stop_tx.send(true);
+    let grace_over = tokio::time::sleep(limits.shutdown_grace);
+    let mut grace_over = std::pin::pin!(grace_over);
+    let mut closing = false;
     loop {
         let closed = registry.closed.notified();
-        if registry.open() == 0 {
+        let open = registry.open();
+        if open == 0 {
             break;
         }
-        closed.await;
+        tokio::select! {
+            () = closed => {}
+            () = &mut grace_over, if !closing => {
+                tracing::warn!(
+                    connections = open,
+                    grace_s = limits.shutdown_grace.as_secs_f64(),
+                    "closing HTTP connections that did not finish their request within the shutdown grace"
+                );
+                closing = true;
+                close_now.cancel();
+            }
+        }
     }
 }
 
@@ -260,6 +290,7 @@ async fn serve_one(
     slot: Slot,
     evicted: CancellationToken,
     mut stop: watch::Receiver<bool>,
+    close_now: CancellationToken,
 ) {
     let _ = stream.set_nodelay(true);
     let tower = TowerToHyperService::new(app);
@@ -290,6 +321,7 @@ async fn serve_one(
                 tracing::debug!("closing an HTTP connection that sent no request head, to make room");
                 break;
             }
+            () = close_now.cancelled() => break,
             changed = stop.changed(), if !stopping => {
                 stopping = true;
                 if changed.is_err() || *stop.borrow() {
@@ -327,13 +359,19 @@ mod tests {
     }
 
     async fn start(limits: ConnectionLimits) -> Server {
-        let app = Router::new().route("/ok", get(|| async { "ok" })).route(
-            "/slow",
-            get(|| async {
-                tokio::time::sleep(Duration::from_millis(300)).await;
-                "slow"
-            }),
-        );
+        let app = Router::new()
+            .route("/ok", get(|| async { "ok" }))
+            .route(
+                "/slow",
+                get(|| async {
+                    tokio::time::sleep(Duration::from_millis(300)).await;
+                    "slow"
+                }),
+            )
+            // Larger than any socket buffer between the two ends, so it cannot be written
+            // until the client reads.
+            .route("/large", get(|| async { vec![b'x'; 64 << 20] }))
+            .route("/echo", axum::routing::post(|body: String| async { body }));
         let listener = TcpListener::bind("127.0.0.1:0").await.unwrap();
         let address = listener.local_addr().unwrap();
         let (stop, stopped) = tokio::sync::oneshot::channel::<()>();
@@ -352,6 +390,7 @@ mod tests {
             max_connections,
             header_read_timeout: Duration::from_millis(header_read_timeout_ms),
             max_buffer_bytes: DEFAULT_MAX_BUFFER_BYTES,
+            shutdown_grace: SOON,
         }
     }
 
@@ -496,6 +535,43 @@ mod tests {
             .expect("serve_connections returns once every connection closed")
             .unwrap();
         assert!(TcpStream::connect(server.address).await.is_err());
+    }
+
+    #[tokio::test]
+    async fn shutdown_closes_connections_still_busy_after_the_grace() {
+        let grace = Duration::from_millis(300);
+        let mut server = start(ConnectionLimits {
+            shutdown_grace: grace,
+            ..limits(60_000, 64)
+        })
+        .await;
+        // One client asks for a large response and never reads it; another sends half a body.
+        let mut not_reading = TcpStream::connect(server.address).await.unwrap();
+        not_reading
+            .write_all(b"GET /large HTTP/1.1\r\nHost: test\r\n\r\n")
+            .await
+            .unwrap();
+        let mut half_body = TcpStream::connect(server.address).await.unwrap();
+        half_body
+            .write_all(b"POST /echo HTTP/1.1\r\nHost: test\r\nContent-Length: 100\r\n\r\nhalf")
+            .await
+            .unwrap();
+        tokio::time::sleep(Duration::from_millis(200)).await;
+        let stopped = Instant::now();
+        let _ = server.stop.take().unwrap().send(());
+        tokio::time::timeout(SOON, server.task)
+            .await
+            .expect("serve_connections returns once the grace is over, whatever the clients do")
+            .unwrap();
+        let took = stopped.elapsed();
+        assert!(
+            took >= grace - Duration::from_millis(50),
+            "returned after {took:?}, before the grace"
+        );
+        // Both connections were closed: the half body never got its echo.
+        let (received, _) = read_until_closed(&mut half_body).await;
+        assert!(!received.contains("200 OK"), "{received}");
+        drop(not_reading);
     }
 
     #[test]

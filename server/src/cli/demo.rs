@@ -190,8 +190,9 @@ async fn demo(args: DemoArgs) -> Result<(), CliError> {
         crate::shutdown::signal().await;
     }
     let _ = stop.send(());
-    let _ = server.await;
+    // RF off first, as `serve` does: the HTTP connections drain meanwhile.
     engine.shutdown().await;
+    let _ = server.await;
     let report = outcome?;
     if report.state != "completed" {
         return Err(CliError::new(format!(

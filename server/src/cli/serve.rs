@@ -9,10 +9,11 @@
 //! does the engine switch every configured source off and mark runs left running (on its own
 //! benches) as interrupted, before the HTTP listener accepts requests. A lease lost while running
 //! (another daemon took a bench over) shuts the daemon down like a signal. On SIGINT or SIGTERM the
-//! listener stops taking requests, the engine cancels the active runs (they become interrupted,
-//! so they can be resumed) and switches every source off before the process exits; then the
-//! webhook notifier (`crate::notify`, started after the engine, its secrets read before anything
-//! else) records the interruptions and makes its last delivery pass.
+//! listener stops taking requests and, at once rather than after the HTTP connections have
+//! drained, the engine cancels the active runs (they become interrupted, so they can be resumed)
+//! and switches every source off before the process exits; then the webhook notifier
+//! (`crate::notify`, started after the engine, its secrets read before anything else) records
+//! the interruptions and makes its last delivery pass.
 
 use super::CliError;
 use crate::bench_lease::{BenchLeases, Claim};
@@ -87,7 +88,12 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
     let state =
         crate::api::AppState::with_engine(engine.clone(), crate::api::ApiSettings::from_env());
     let lost = claim.lost();
-    let stopped = crate::api::serve_on(listener, state, async move {
+    // The RF goes off as soon as the stop comes, not after the HTTP server has drained: a client
+    // that is slow to read a response or sends half a request holds its connection for up to the
+    // shutdown grace (`api::connections`), and the outputs must not wait for it.
+    let stop_http = tokio_util::sync::CancellationToken::new();
+    let http = crate::api::serve_on(listener, state, stop_http.clone().cancelled_owned());
+    let stop_engine = async {
         tokio::select! {
             name = stop_signals.wait() => tracing::info!(
                 signal = name,
@@ -97,9 +103,10 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
                 "shutting down: this daemon no longer holds its bench leases; stopping runs and switching RF off"
             ),
         }
-    })
-    .await;
-    engine.shutdown().await;
+        stop_http.cancel();
+        engine.shutdown().await;
+    };
+    let (stopped, ()) = tokio::join!(http, stop_engine);
     // After the engine has switched the sources off: another daemon may take the benches now.
     claim.release().await;
     // After the engine: the runs it interrupted are notified (or kept pending for next time).
