@@ -64,7 +64,7 @@ const SIMULATED_CONFIG: &str = "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"si
 
 #[test]
 fn every_subcommand_has_help() {
-    let subcommands: [(&[&str], &str); 28] = [
+    let subcommands: [(&[&str], &str); 29] = [
         (&["demo"], "--data-dir"),
         (&["serve"], "--config"),
         (&["sim"], "--scenario"),
@@ -90,6 +90,7 @@ fn every_subcommand_has_help() {
         (&["chain"], "cascade"),
         (&["chain", "cascade"], "--load"),
         (&["chain", "import"], "HALFWAVE_TOKEN"),
+        (&["chain", "upload"], "gain_uncertainty_db"),
         (&["chain", "list"], "--json"),
         (&["budget"], "--source-level-accuracy-db"),
         (&["report"], "--output"),
@@ -611,6 +612,28 @@ async fn the_record_verbs(
     let csv_arg = csv_path.to_str().unwrap();
     let again = run(&["export", &id, "--output", csv_arg]).await;
     failed_with(&again, &["already exists", "--force"]);
+    // ... and that is said before anything is asked of the daemon: no budget warning first,
+    // and a daemon that is not there is not what the operator hears about.
+    assert!(!stderr(&again).contains("budget"), "{}", stderr(&again));
+    let nowhere_url = format!("http://127.0.0.1:{}", closed_port());
+    for command in [
+        vec!["export", id.as_str(), "--output", csv_arg],
+        vec!["trace", id.as_str(), "1", "--output", csv_arg],
+        vec!["report", id.as_str(), "--output", csv_arg],
+    ] {
+        let args: Vec<&str> = command
+            .iter()
+            .copied()
+            .chain(["--url", nowhere_url.as_str(), "--token", "hwt_unused"])
+            .collect();
+        let refused = halfwave_async(&args).await;
+        failed_with(&refused, &["already exists"]);
+        assert!(
+            !stderr(&refused).contains("cannot reach"),
+            "{}",
+            stderr(&refused)
+        );
+    }
     let forced = run(&["export", &id, "--output", csv_arg, "--force"]).await;
     assert!(forced.status.success(), "{}", stderr(&forced));
 
@@ -672,14 +695,23 @@ async fn the_record_verbs(
         .await
         .unwrap();
     assert_eq!(std::fs::read_to_string(&trace_path).unwrap(), daemon_csv);
+    // The command `trace` suggests is ready to run: it carries the point's drive frequency.
+    let hint = stderr(&traced);
+    let suggested = hint
+        .split("analyse it with `halfwave ")
+        .nth(1)
+        .and_then(|rest| rest.split('`').next())
+        .unwrap_or_else(|| panic!("no suggested command in {hint}"));
     let f = point["frequency_hz"].as_f64().unwrap().to_string();
-    let analysed = halfwave_async(&[
-        "analyze",
-        trace_path.to_str().unwrap(),
-        "--modulation-frequency",
-        &f,
-    ])
-    .await;
+    assert_eq!(
+        suggested,
+        format!(
+            "analyze {} --modulation-frequency {f}",
+            trace_path.display()
+        )
+    );
+    let words: Vec<&str> = suggested.split(' ').collect();
+    let analysed = halfwave_async(&words).await;
     assert!(analysed.status.success(), "{}", stderr(&analysed));
     let analysed: serde_json::Value = serde_json::from_slice(&analysed.stdout).unwrap();
     let offline = analysed["modulation_index"]["value"].as_f64().unwrap();
@@ -1342,6 +1374,79 @@ fn chain_cascade_prints_the_transducer_gain_of_touchstone_files() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn chain_upload_stores_the_shipped_csv_and_names_what_is_wrong_with_a_bad_one() {
+    let app = spawn_app().await;
+    let admin = app.token("admin-1", Role::Admin).await;
+    let shipped = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/sim-bench-chain.csv");
+    let rows = std::fs::read_to_string(&shipped)
+        .unwrap()
+        .lines()
+        .skip(1)
+        .filter(|l| !l.trim().is_empty())
+        .count();
+    let upload = |file: String| {
+        let (base, admin) = (app.base.clone(), admin.clone());
+        async move {
+            halfwave_async(&[
+                "chain",
+                "upload",
+                "sim-bench chain",
+                &file,
+                "--url",
+                &base,
+                "--token",
+                &admin,
+            ])
+            .await
+        }
+    };
+    let out = upload(shipped.to_str().unwrap().to_string()).await;
+    assert!(out.status.success(), "{}", stderr(&out));
+    let text = stdout(&out);
+    assert!(
+        text.contains(&format!("\"sim-bench chain\" version 1 ({rows} points")),
+        "{text}"
+    );
+    assert!(text.contains("\"name\": \"sim-bench chain\""), "{text}");
+    // The stored table is the file's, row for row.
+    let stored: serde_json::Value = app
+        .get("/api/v1/chain-calibrations/sim-bench%20chain", Some(&admin))
+        .await
+        .json()
+        .await
+        .unwrap();
+    let points = stored["points"].as_array().unwrap();
+    assert_eq!(points.len(), rows);
+    let first_row: Vec<f64> = std::fs::read_to_string(&shipped)
+        .unwrap()
+        .lines()
+        .nth(1)
+        .unwrap()
+        .split(',')
+        .map(|v| v.trim().parse().unwrap())
+        .collect();
+    assert_eq!(points[0]["frequency_hz"].as_f64(), Some(first_row[0]));
+    assert_eq!(points[0]["gain_db"].as_f64(), Some(first_row[1]));
+
+    // A bad row is named with its line, and nothing is stored.
+    let dir = tempfile::tempdir().unwrap();
+    let bad = dir.path().join("bad.csv");
+    std::fs::write(&bad, "frequency_hz,gain_db\n1e9,-2.0\n2e9,minus three\n").unwrap();
+    let out = upload(bad.to_str().unwrap().to_string()).await;
+    failed_with(&out, &["line[3]"]);
+    let missing = dir.path().join("missing.csv");
+    let out = upload(missing.to_str().unwrap().to_string()).await;
+    failed_with(&out, &["missing.csv", "cannot read the chain CSV"]);
+    let stored: serde_json::Value = app
+        .get("/api/v1/chain-calibrations/sim-bench%20chain", Some(&admin))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(stored["version"], 1, "a refused upload stores nothing");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn chain_import_stores_a_version_with_the_files_names_and_hashes() {
     let app = spawn_app().await;
     let admin = app.token("admin-1", Role::Admin).await;
@@ -1566,4 +1671,74 @@ fn a_negative_frequency_is_named_not_taken_for_a_flag() {
         &analyze,
         &["modulation frequency -1000000000 Hz is not a positive"],
     );
+}
+
+/// What README tells a new user to do on the simulated bench, word for word from the shipped
+/// files: upload `deploy/sim-bench-chain.csv` with `halfwave chain upload` and submit
+/// `deploy/example-plan.json` (the plan README shows). The run completes and every V_pi is the
+/// simulated modulator's own (the simulator's scenario, an independent model) within 1 %.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_readme_first_run_on_the_simulated_bench_gives_the_scenario_v_pi() {
+    let deploy = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy");
+    let plan_path = deploy.join("example-plan.json");
+    let shipped: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&plan_path).unwrap()).unwrap();
+    // README shows the same plan.
+    let readme =
+        std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("../README.md"))
+            .unwrap();
+    let from = readme
+        .find("deploy/example-plan.json")
+        .expect("README names the example plan");
+    let block = &readme[from..];
+    let start = block.find("```json\n").expect("a json block after it") + 8;
+    let end = start + block[start..].find("```").unwrap();
+    let shown: serde_json::Value = serde_json::from_str(&block[start..end]).unwrap();
+    assert_eq!(
+        shown, shipped,
+        "README's plan and deploy/example-plan.json differ"
+    );
+
+    let bench = spawn_app_with_engine(0.0).await;
+    let admin = bench.app.token("admin-1", Role::Admin).await;
+    let operator = bench.app.token("lab-b", Role::Operator).await;
+    let base = bench.app.base.clone();
+    let chain = deploy.join("sim-bench-chain.csv");
+    let uploaded = halfwave_async(&[
+        "chain",
+        "upload",
+        "sim-bench chain",
+        chain.to_str().unwrap(),
+        "--url",
+        &base,
+        "--token",
+        &admin,
+    ])
+    .await;
+    assert!(uploaded.status.success(), "{}", stderr(&uploaded));
+    let submitted = halfwave_async(&[
+        "submit",
+        plan_path.to_str().unwrap(),
+        "--json",
+        "--url",
+        &base,
+        "--token",
+        &operator,
+    ])
+    .await;
+    assert!(submitted.status.success(), "{}", stderr(&submitted));
+    let finished: serde_json::Value = serde_json::from_slice(&submitted.stdout).unwrap();
+    assert_eq!(finished["state"], "completed", "{finished}");
+    let results = finished["results"].as_array().unwrap();
+    assert_eq!(results.len(), 11, "{finished}");
+    let scenario = bench.sim.scenario();
+    for r in results {
+        let f = r["frequency_hz"].as_f64().unwrap();
+        let measured = r["v_pi_volts"].as_f64().unwrap();
+        let truth = scenario.v_pi_at(halfwave::units::Hz(f)).0;
+        assert!(
+            (measured / truth - 1.0).abs() < 0.01,
+            "{measured} V at {f} Hz against the scenario's {truth} V"
+        );
+    }
 }

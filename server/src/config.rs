@@ -444,6 +444,41 @@ mod tests {
         Config::from_toml(text, Path::new("test.toml"), PathBuf::from("."))
     }
 
+    /// The configurations shipped in `deploy/` load as they are, so a new user's first
+    /// `serve --config` does not start with an error of ours.
+    #[test]
+    fn the_shipped_configurations_load() {
+        let deploy = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy");
+        for name in ["halfwave.toml", "simulated.toml"] {
+            let path = deploy.join(name);
+            let text = std::fs::read_to_string(&path).unwrap();
+            if let Err(e) = Config::from_toml(&text, &path, deploy.clone()) {
+                panic!("{name}: {e}");
+            }
+        }
+    }
+
+    /// The simulated bench states a level accuracy (so `budget` and `export` work on it out of
+    /// the box) that covers what its simulated generator really does.
+    #[test]
+    fn the_simulated_bench_states_a_level_accuracy_that_covers_its_generator() {
+        let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/simulated.toml");
+        let text = std::fs::read_to_string(&path).unwrap();
+        let config = Config::from_toml(&text, &path, PathBuf::from(".")).unwrap();
+        let Db(stated) = config.benches[0]
+            .source_level_accuracy_db
+            .expect("deploy/simulated.toml states source_level_accuracy_db");
+        let scenario = halfwave_drivers::sim::Scenario::builtin().unwrap();
+        for i in 0..=400 {
+            let f = halfwave_units::Hz(1e8 * 400f64.powf(f64::from(i) / 400.0));
+            let error = scenario.level_error_at(f).0.abs();
+            assert!(
+                error <= stated,
+                "{error} dB at {f:?} exceeds the stated {stated} dB"
+            );
+        }
+    }
+
     #[test]
     fn defaults_bind_to_loopback() {
         let c = parse("").unwrap();

@@ -27,6 +27,7 @@ pub fn run(args: ReportArgs) -> Result<(), CliError> {
             args.run_id
         )));
     }
+    args.output.check_free()?;
     let client = args.client.client()?;
     let run_id = args.run_id;
     let html =

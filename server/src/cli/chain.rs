@@ -1,5 +1,5 @@
 //! `halfwave chain cascade` and `halfwave chain import`: a drive chain's gain from the Touchstone
-//! files of its parts.
+//! files of its parts; `halfwave chain upload`: a gain table the lab already has, as CSV.
 //!
 //! Both read the chain's two-ports in signal order from the generator and, with `--load`, the
 //! modulator's one-port, and compute the transducer gain from a matched source at the first
@@ -31,6 +31,10 @@ pub enum ChainCommand {
     /// Cascade Touchstone files and store the gain as a new version of a chain calibration on a
     /// running daemon (admin token), with each file's name and SHA-256.
     Import(ImportArgs),
+    /// Store a chain's gain table from a CSV file (header `frequency_hz,gain_db`, optionally
+    /// `gain_uncertainty_db`) as a new version of a chain calibration on a running daemon
+    /// (admin token).
+    Upload(UploadArgs),
     /// List the chain calibration versions on a running daemon, with the files each was
     /// computed from.
     List(ListArgs),
@@ -72,6 +76,19 @@ pub struct ImportArgs {
     pub name: String,
     #[command(flatten)]
     pub chain: ChainFiles,
+    #[command(flatten)]
+    pub client: ClientArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct UploadArgs {
+    /// The chain calibration's name (a new name starts at version 1; plans name it as
+    /// `{"kind": "stored", "name": NAME}`).
+    pub name: String,
+    /// The CSV file: `frequency_hz,gain_db[,gain_uncertainty_db]`, one row per frequency, the
+    /// net gain from the generator's output to the modulator's input in dB (a loss is negative).
+    #[arg(value_name = "FILE.csv")]
+    pub file: PathBuf,
     #[command(flatten)]
     pub client: ClientArgs,
 }
@@ -153,6 +170,7 @@ pub fn run(command: ChainCommand) -> Result<(), CliError> {
     match command {
         ChainCommand::Cascade(args) => cascade(args),
         ChainCommand::Import(args) => import(args),
+        ChainCommand::Upload(args) => upload(args),
         ChainCommand::List(args) => list(args),
         ChainCommand::Calibrate(args) => super::chain_calibrate::run(args),
     }
@@ -208,6 +226,41 @@ fn import(args: ImportArgs) -> Result<(), CliError> {
         created.points.len()
     );
     print_sources(&created.sources)?;
+    Ok(())
+}
+
+fn upload(args: UploadArgs) -> Result<(), CliError> {
+    let text = std::fs::read_to_string(&args.file).map_err(|e| {
+        CliError::new(format!(
+            "cannot read the chain CSV {}: {e}",
+            args.file.display()
+        ))
+    })?;
+    let client = args.client.client()?;
+    let path = format!(
+        "/api/v1/chain-calibrations?name={}",
+        super::runs::encode_query_value(&args.name)
+    );
+    let created: ChainView =
+        runtime()?.block_on(async { client.post_text(&path, "text/csv", text).await })?;
+    if args.client.json {
+        outln!("{}", to_json(&created)?);
+        return Ok(());
+    }
+    let (first, last) = match (created.points.first(), created.points.last()) {
+        (Some(first), Some(last)) => (first.frequency_hz, last.frequency_hz),
+        _ => (f64::NAN, f64::NAN),
+    };
+    outln!(
+        "stored {:?} version {} ({} points, {} to {} GHz) from {}; name it in a plan as {{\"kind\": \"stored\", \"name\": {:?}}}",
+        created.name,
+        created.version,
+        created.points.len(),
+        first / 1e9,
+        last / 1e9,
+        args.file.display(),
+        created.name
+    );
     Ok(())
 }
 

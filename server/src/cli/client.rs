@@ -179,6 +179,22 @@ impl ApiClient {
         decode(response, path).await
     }
 
+    /// POST a text body of `content_type` (a CSV file, say) to `path` and decode the JSON answer.
+    pub async fn post_text<T: DeserializeOwned>(
+        &self,
+        path: &str,
+        content_type: &str,
+        body: String,
+    ) -> Result<T, CliError> {
+        let request = self
+            .http
+            .post(self.url(path))
+            .header(reqwest::header::CONTENT_TYPE, content_type)
+            .body(body);
+        let response = self.send(request, path).await?;
+        decode(response, path).await
+    }
+
     /// POST a JSON body to `path` for an answer without content (204).
     pub async fn post_no_content(
         &self,

@@ -157,6 +157,7 @@ pub fn with_budget(
 
 /// `halfwave export`.
 pub fn run(args: ExportArgs) -> Result<(), CliError> {
+    args.output.check_free()?;
     let client = args.client.client()?;
     let run_id = args.run_id;
     let (run, points, budget) = runtime()?.block_on(async {

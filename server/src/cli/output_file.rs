@@ -22,6 +22,16 @@ pub struct OutputArgs {
 }
 
 impl OutputArgs {
+    /// Refuses now an `--output` file that exists (without `--force`), before a command asks the
+    /// daemon for anything: the operator hears of the clash first, not after the warnings of a
+    /// long export. [`OutputArgs::write`] checks again (the file may appear meanwhile).
+    pub fn check_free(&self) -> Result<(), CliError> {
+        match &self.output {
+            Some(path) if !self.force && path.exists() => Err(already_exists(path)),
+            _ => Ok(()),
+        }
+    }
+
     /// Writes `text` where these options say.
     pub fn write(&self, text: &str) -> Result<(), CliError> {
         write_result(text, self.output.as_deref(), self.force)
@@ -35,10 +45,7 @@ pub fn write_result(text: &str, output: Option<&Path>, force: bool) -> Result<()
         return Ok(());
     };
     if !force && path.exists() {
-        return Err(CliError::new(format!(
-            "{} already exists; choose another --output or add --force to replace it",
-            path.display()
-        )));
+        return Err(already_exists(path));
     }
     let directory = match path.parent() {
         Some(p) if !p.as_os_str().is_empty() => p,
@@ -55,6 +62,13 @@ pub fn write_result(text: &str, output: Option<&Path>, force: bool) -> Result<()
     file.as_file().sync_all().map_err(cannot)?;
     file.persist(path).map_err(|e| cannot(e.error))?;
     Ok(())
+}
+
+fn already_exists(path: &Path) -> CliError {
+    CliError::new(format!(
+        "{} already exists; choose another --output or add --force to replace it",
+        path.display()
+    ))
 }
 
 #[cfg(test)]

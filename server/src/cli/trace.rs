@@ -31,9 +31,10 @@ pub fn run(args: TraceArgs) -> Result<(), CliError> {
             "points are numbered from 1 (the first point of the run is 1)",
         ));
     }
+    args.output.check_free()?;
     let client = args.client.client()?;
     let run_id = args.run_id;
-    let (csv, description) = runtime()?.block_on(async {
+    let (csv, description, drive_frequency_hz) = runtime()?.block_on(async {
         let page: PointList = client
             .get_json(&format!(
                 "/api/v1/runs/{run_id}/points?page={}&per_page=1",
@@ -63,11 +64,17 @@ pub fn run(args: TraceArgs) -> Result<(), CliError> {
                 .map(|b| format!(", stored modulation index {b:.5}"))
                 .unwrap_or_default()
         );
-        Ok((csv, description))
+        Ok((csv, description, point.frequency_hz))
     })?;
     args.output.write(&csv)?;
     if let Some(path) = &args.output.output {
-        eprintln!("{description}; trace written to {} (analyse it with `halfwave analyze {} --modulation-frequency HZ`)", path.display(), path.display());
+        // The point's drive frequency is the comb's line spacing: the command is ready to run.
+        eprintln!(
+            "{description}; trace written to {} (analyse it with `halfwave analyze {} --modulation-frequency {}`)",
+            path.display(),
+            path.display(),
+            drive_frequency_hz
+        );
     }
     Ok(())
 }
