@@ -1,5 +1,8 @@
 //! The real `halfwave serve` process: configuration errors refused with the line, a clean stop on
-//! SIGTERM with the RF outputs switched off.
+//! SIGTERM with the RF outputs switched off, a log that says a frequency's warning once.
+
+mod daemon_support;
+mod engine_support;
 
 use std::io::{BufRead, BufReader, Read, Write};
 use std::process::{Command, Stdio};
@@ -102,4 +105,72 @@ fn serves_health_and_stops_cleanly_on_sigterm() {
         "{rest}"
     );
     assert!(dir.path().join("data").join("halfwave.db").exists());
+}
+
+/// A warning that holds for every level of a frequency is logged once for that frequency, not
+/// once per point (a night's log stays readable), while every point still stores its own. On the
+/// built-in simulated bench at 20 GHz the analyzer's reference trace is too coarse for the
+/// measured line shape, and every point there carries `index_not_within_one_percent`.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_warning_is_logged_once_per_frequency_and_stored_with_every_point() {
+    let bench = daemon_support::Bench::new(34).await;
+    let token = bench.operator_token().await;
+    let mut daemon = bench.serve("daemon.log").await;
+    let plan = serde_json::json!({
+        "device": {"serial": "EG-PM-0042", "model": "simulated phase modulator",
+                   "rf_input_limit_dbm": 27.0, "wavelength_nm": 1550.0},
+        "bench": "sim",
+        "chain": {"kind": "flat_loss", "loss_db": 2.0},
+        "frequencies": {"kind": "list", "values_hz": [1.26e10, 2e10]},
+        "levels": {"kind": "ramp", "start_dbm": 0.0, "stop_dbm": 8.0, "step_db": 2.0},
+        "settle_s": 0.0
+    });
+    let run_id = bench.submit_plan(&token, &plan).await;
+    let run = bench
+        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
+            r["state"] != "queued" && r["state"] != "running"
+        })
+        .await;
+    assert_eq!(run["state"], "completed", "{run}");
+    let (status, points) = bench
+        .get(
+            &format!("/api/v1/runs/{run_id}/points?per_page=100"),
+            &token,
+        )
+        .await;
+    assert_eq!(status, 200, "{points}");
+    let warned_points: Vec<f64> = points["points"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|p| {
+            p["analysis"]
+                .to_string()
+                .contains("index_not_within_one_percent")
+        })
+        .map(|p| p["frequency_hz"].as_f64().unwrap())
+        .collect();
+    let warned_at_20 = warned_points.iter().filter(|&&f| f == 2e10).count();
+    assert!(
+        warned_at_20 >= 2,
+        "the check needs points that repeat a warning at 20 GHz: {warned_points:?}"
+    );
+    let _ = daemon.kill().await;
+    let log = bench.log("daemon.log");
+    for f in [1.26e10, 2e10] {
+        let stored = warned_points.iter().filter(|&&w| w == f).count();
+        let logged = log
+            .lines()
+            .filter(|l| {
+                l.contains(" WARN ")
+                    && l.contains("index_not_within_one_percent")
+                    && l.contains(&format!("frequency_hz={f}"))
+            })
+            .count();
+        assert_eq!(
+            logged,
+            usize::from(stored > 0),
+            "{stored} points warned at {f} Hz, {logged} warnings logged: {log}"
+        );
+    }
 }

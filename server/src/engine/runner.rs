@@ -687,6 +687,7 @@ async fn pipeline(
     let (analysed_tx, mut analysed_rx) = mpsc::channel::<Analysed>(1);
     let analyser = tokio::spawn(analyse_in_order(rx, analysed_tx));
     let mut failures_in_a_row = 0;
+    let mut logged = LoggedWarnings::default();
     while let Some(analysed) = analysed_rx.recv().await {
         match analysed {
             Analysed::Point(task) => {
@@ -703,6 +704,7 @@ async fn pipeline(
                     &events,
                     total,
                     &mut completed,
+                    &mut logged,
                 )
                 .await?;
                 if let Some(reply) = reply {
@@ -775,6 +777,23 @@ async fn analyse_in_order(mut rx: mpsc::Receiver<Msg>, analysed: mpsc::Sender<An
     }
 }
 
+/// The analysis warnings already written to the daemon's log in this run, by frequency and code.
+/// A warning usually holds for every level of a frequency (a reference trace too coarse for the
+/// measured line shape, say), and its advice is the same: the log says it once per frequency, at
+/// warn level, and the later points' copies at debug level. Every point still stores its own
+/// warnings and sends them with its progress event.
+#[derive(Default)]
+struct LoggedWarnings {
+    seen: std::collections::HashSet<(usize, &'static str)>,
+}
+
+impl LoggedWarnings {
+    /// True the first time `code` is met at the frequency `frequency_index`.
+    fn first(&mut self, frequency_index: usize, code: &'static str) -> bool {
+        self.seen.insert((frequency_index, code))
+    }
+}
+
 /// Commits one analysed point; returns why it could not be analysed, if it could not (the
 /// point is stored either way), and its modulation index with its uncertainty, if it could.
 #[allow(clippy::too_many_arguments)]
@@ -787,6 +806,7 @@ async fn commit_point(
     events: &broadcast::Sender<ProgressEvent>,
     total: usize,
     completed: &mut usize,
+    logged: &mut LoggedWarnings,
 ) -> Result<(Option<String>, Option<(f64, f64)>), String> {
     let at_modulator = chain.level_at_modulator(m.frequency, m.generator_level);
     let v_peak = at_modulator.to_volts_peak();
@@ -799,13 +819,23 @@ async fn commit_point(
         );
     }
     for warning in analysis.iter().flat_map(|a| &a.warnings) {
-        tracing::warn!(
-            frequency_hz = m.frequency.0,
-            level_dbm = m.generator_level.0,
-            code = warning.code,
-            "{}",
-            warning.message
-        );
+        if logged.first(m.frequency_index, warning.code) {
+            tracing::warn!(
+                frequency_hz = m.frequency.0,
+                level_dbm = m.generator_level.0,
+                code = warning.code,
+                "{} (said once per frequency; each point keeps its own warnings)",
+                warning.message
+            );
+        } else {
+            tracing::debug!(
+                frequency_hz = m.frequency.0,
+                level_dbm = m.generator_level.0,
+                code = warning.code,
+                "{}",
+                warning.message
+            );
+        }
     }
     let (line_table, details) = match &analysis {
         Ok(a) => (
