@@ -1671,6 +1671,12 @@ fn a_negative_frequency_is_named_not_taken_for_a_flag() {
         &analyze,
         &["modulation frequency -1000000000 Hz is not a positive"],
     );
+    // A frequency with its unit, as people write it, is read (the command gets as far as the
+    // daemon); an unknown unit is named with the forms that work.
+    let with_unit = halfwave(&["v-pi", "EG-PM-0042", "--frequency", "7.5GHz", "--url", &url]);
+    failed_with(&with_unit, &["cannot reach the daemon"]);
+    let unknown = halfwave(&["v-pi", "EG-PM-0042", "--frequency", "7.5THz", "--url", &url]);
+    failed_with(&unknown, &["\"7.5THz\" is not a frequency", "7.5GHz"]);
 }
 
 /// What README tells a new user to do on the simulated bench, word for word from the shipped

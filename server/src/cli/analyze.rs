@@ -25,15 +25,16 @@ pub struct AnalyzeArgs {
     /// A trace CSV (header `frequency_hz,power_dbm`) or a sweep description (`.json`).
     #[arg(value_name = "TRACE.csv|SWEEP.json")]
     pub input: PathBuf,
-    /// RF drive frequency, which is the line spacing of the comb; for a trace CSV it is read
+    /// RF drive frequency (hertz, or 7.5GHz), which is the line spacing of the comb; for a trace CSV it is read
     /// from the trace when left out, and a trace that shows another spacing is refused.
-    #[arg(long, value_name = "HZ", allow_negative_numbers = true)]
+    #[arg(long, value_name = "HZ", allow_negative_numbers = true, value_parser = super::frequency_arg::parse_frequency_hz)]
     pub modulation_frequency: Option<f64>,
     /// A trace taken with the RF output off: the carrier position and the unmodulated power.
     #[arg(long, value_name = "OFF.csv")]
     pub reference: Option<PathBuf>,
-    /// The analyzer's resolution bandwidth; estimated from the line shape when left out.
-    #[arg(long, value_name = "HZ")]
+    /// The analyzer's resolution bandwidth (hertz, or 20MHz); estimated from the line shape when
+    /// left out.
+    #[arg(long, value_name = "HZ", value_parser = super::frequency_arg::parse_frequency_hz)]
     pub resolution_bandwidth: Option<f64>,
 }
 

@@ -18,8 +18,8 @@ pub struct CalibrateArgs {
     /// The bench whose source and power sensor measure the chain.
     #[arg(long)]
     pub bench: String,
-    /// Frequencies in hertz, ascending, comma-separated (e.g. 1e9,5e9,10e9).
-    #[arg(long, value_delimiter = ',', required = true, value_name = "HZ")]
+    /// Frequencies, ascending, comma-separated: hertz or with a unit (1e9,5GHz,10GHz).
+    #[arg(long, value_delimiter = ',', required = true, value_name = "HZ", value_parser = super::frequency_arg::parse_frequency_hz)]
     pub frequencies_hz: Vec<f64>,
     /// One or two generator levels in dBm, comma-separated (write `--levels-dbm=-10,0` when
     /// the first is negative).

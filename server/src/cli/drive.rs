@@ -17,8 +17,8 @@ use clap::Args;
 pub struct DriveArgs {
     /// The modulator's serial number.
     pub serial: String,
-    /// The RF frequency, in hertz (e.g. 7.5e9).
-    #[arg(long, value_name = "HZ", allow_negative_numbers = true)]
+    /// The RF frequency: hertz (7.5e9) or with a unit (7.5GHz, 750MHz).
+    #[arg(long, value_name = "HZ", allow_negative_numbers = true, value_parser = super::frequency_arg::parse_frequency_hz)]
     pub frequency: f64,
     /// The modulation index wanted (peak phase deviation, rad): prints the generator level.
     #[arg(

@@ -44,6 +44,7 @@ pub mod drill;
 pub mod drive;
 pub mod export;
 pub mod follow;
+pub mod frequency_arg;
 pub mod output_file;
 pub mod pin;
 pub mod predict;
