@@ -13,7 +13,7 @@ mod api_support;
 
 use api_support::cdp::Browser;
 use api_support::seed::{seed_completed_run, seed_device};
-use api_support::spawn_app_with_engine;
+use api_support::{spawn_app_with_engine, true_chain_upload};
 use base64::Engine as _;
 use halfwave::api::tokens::Role;
 use std::time::Duration;
@@ -41,6 +41,16 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
     let bench = spawn_app_with_engine(0.02).await;
     let app = &bench.app;
     let operator = app.token("browser", Role::Operator).await;
+    // The bench's stored chain, which the form offers beside the flat loss.
+    let admin = app.token("admin", Role::Admin).await;
+    let uploaded = app
+        .post_json(
+            "/api/v1/chain-calibrations",
+            Some(&admin),
+            &true_chain_upload(&bench.sim, "sim-bench chain", &[1e9, 2e9, 6e9, 10e9, 12e9]),
+        )
+        .await;
+    assert_eq!(uploaded.status(), 201);
 
     let mut browser = Browser::launch(&executable).await;
     browser.navigate(&app.url("/dashboard/")).await;
@@ -67,7 +77,8 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
         .await;
     wait_for(
         &mut browser,
-        "document.getElementById('bench-select').options.length > 0",
+        "document.getElementById('bench-select').options.length > 0 \
+         && document.getElementById('chain-select').options.length > 1",
         30,
     )
     .await;
@@ -88,7 +99,9 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
              f.elements['frequencies.start_hz'].value = '2'; f.elements['frequencies.stop_hz'].value = '10'; \
              f.elements['frequencies.count'].value = '3'; \
              f.elements['levels.start_dbm'].value = '2'; f.elements['levels.stop_dbm'].value = '14'; \
-             f.elements['levels.step_db'].value = '3'; f.requestSubmit(); true",
+             f.elements['levels.step_db'].value = '3'; \
+             f.elements['chain'].value = 'sim-bench chain'; \
+             f.elements['chain'].dispatchEvent(new Event('change')); f.requestSubmit(); true",
         )
         .await;
     wait_for(
@@ -97,6 +110,28 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
         30,
     )
     .await;
+    // The run measures through the stored chain chosen in the form, and the flat loss was set
+    // aside while it was chosen.
+    assert_eq!(
+        browser
+            .eval("document.getElementById('run-form').elements['chain.loss_db'].disabled")
+            .await,
+        serde_json::Value::Bool(true)
+    );
+    let queued = browser
+        .eval("document.getElementById('submit-result').textContent")
+        .await;
+    let run_id: i64 = queued
+        .as_str()
+        .and_then(|t| t.trim_start_matches("Queued as run ").trim_end_matches('.').parse().ok())
+        .unwrap_or_else(|| panic!("no run id in {queued}"));
+    let run: serde_json::Value = app
+        .get(&format!("/api/v1/runs/{run_id}"), Some(&operator))
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(run["chain_name"], "sim-bench chain", "{run}");
 
     // The bar moves: a value strictly between 0 and 100 is seen, then 100 or a finished run.
     let mut seen = Vec::new();

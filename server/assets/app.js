@@ -123,6 +123,25 @@ async function loadBenches() {
   if (chosen) select.value = chosen;
 }
 
+// The chain calibrations a plan may name (newest version of each); the engine's own flat-loss
+// rows (made for plans with a flat loss) are not offered.
+async function loadChains() {
+  const versions = await api("/chain-calibrations");
+  const select = $("chain-select");
+  const chosen = select.value;
+  const names = [...new Set(versions.map((v) => v.name))].filter((n) => !n.startsWith("flat-loss-"));
+  select.replaceChildren(new Option("flat loss (a quick check)", ""));
+  for (const name of names) select.add(new Option(name, name));
+  if (chosen && names.includes(chosen)) select.value = chosen;
+  showChainChoice();
+}
+
+// The flat loss applies only when no stored chain is chosen.
+function showChainChoice() {
+  const form = $("run-form");
+  form.elements["chain.loss_db"].disabled = form.elements["chain"].value !== "";
+}
+
 const safetyWords = {
   clear: "RF off or driven by a run",
   output_unconfirmed: "RF OUTPUT NOT CONFIRMED OFF",
@@ -634,7 +653,8 @@ function planFromForm(form) {
   const plan = {
     device,
     bench: value("bench"),
-    chain: { kind: "flat_loss", loss_db: number("chain.loss_db") },
+    chain: value("chain") !== "" ? { kind: "stored", name: value("chain") }
+                                 : { kind: "flat_loss", loss_db: number("chain.loss_db") },
     frequencies: { kind: "linear", start_hz: number("frequencies.start_hz"), stop_hz: number("frequencies.stop_hz"),
                    count: number("frequencies.count") },
     levels: { kind: "ramp", start_dbm: number("levels.start_dbm"), stop_dbm: number("levels.stop_dbm"), step_db: number("levels.step_db") },
@@ -703,7 +723,7 @@ async function submitRun(event) {
 
 async function refreshAll() {
   if (!token()) { showTokenNotice("missing"); return; }
-  const results = await Promise.allSettled([loadBenches(), loadRuns(), loadDevices()]);
+  const results = await Promise.allSettled([loadBenches(), loadChains(), loadRuns(), loadDevices()]);
   const unauthorized = results.find((r) => r.status === "rejected" && r.reason.status === 401);
   $("token-state").textContent = unauthorized ? "token refused" : "token set";
   showTokenNotice(unauthorized ? "refused" : "ok");
@@ -722,6 +742,7 @@ function init() {
     route();
   });
   $("run-form").addEventListener("submit", submitRun);
+  $("chain-select").addEventListener("change", showChainChoice);
   $("refresh-runs").addEventListener("click", () => loadRuns().catch(() => {}));
   $("device-select").addEventListener("change", () => loadDeviceHistory().catch(() => {}));
   $("run-close").addEventListener("click", (event) => { event.preventDefault(); location.hash = ""; });
