@@ -743,6 +743,15 @@ async fn the_record_verbs(
         "{}",
         stdout(&table)
     );
+    // The model ("simulated phase modulator") is wider than a fixed column would be: the
+    // columns after it still start under their headers.
+    let text = stdout(&table);
+    let lines: Vec<&str> = text.lines().collect();
+    assert_eq!(
+        lines[0].find("frequency range"),
+        lines[1].find("2.000-8.000 GHz"),
+        "{text}"
+    );
 
     // v-pi: interpolated between the two measured frequencies, near the simulated truth (the
     // scenario's V_pi(f) is smooth; linear interpolation over 2-8 GHz stays within 2 %).

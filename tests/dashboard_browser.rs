@@ -123,7 +123,12 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
         .await;
     let run_id: i64 = queued
         .as_str()
-        .and_then(|t| t.trim_start_matches("Queued as run ").trim_end_matches('.').parse().ok())
+        .and_then(|t| {
+            t.trim_start_matches("Queued as run ")
+                .trim_end_matches('.')
+                .parse()
+                .ok()
+        })
         .unwrap_or_else(|| panic!("no run id in {queued}"));
     let run: serde_json::Value = app
         .get(&format!("/api/v1/runs/{run_id}"), Some(&operator))

@@ -7,6 +7,7 @@
 
 use super::client::ClientArgs;
 use super::runs::runtime;
+use super::text_table::{Align, TextTable};
 use super::CliError;
 use crate::engine::rf_safety::SafetyState;
 use crate::engine::BenchStatus;
@@ -40,25 +41,30 @@ pub fn list(args: BenchesArgs) -> Result<(), CliError> {
             outln!("{text}");
             return Ok(());
         }
-        outln!(
-            "{:<16} {:<26} {:>10} {:<12}",
-            "bench", "RF safety", "active run", "queued"
-        );
+        let mut table = TextTable::new(&[
+            ("bench", Align::Left),
+            ("RF safety", Align::Left),
+            ("active run", Align::Right),
+            ("queued", Align::Left),
+        ]);
         for b in &benches {
             let queued: Vec<String> = b.queued_run_ids.iter().map(ToString::to_string).collect();
-            outln!(
-                "{:<16} {:<26} {:>10} {:<12}",
-                b.name,
-                b.safety_state.as_str(),
+            table.row(vec![
+                b.name.clone(),
+                b.safety_state.as_str().to_string(),
                 b.active_run_id
                     .map_or_else(|| "idle".to_string(), |id| id.to_string()),
                 if queued.is_empty() {
                     "none".to_string()
                 } else {
                     queued.join(",")
-                }
-            );
+                },
+            ]);
+        }
+        out!("{}", table.render());
+        for b in &benches {
             if let Some(fault) = &b.safety_fault {
+                outln!("bench {}:", b.name);
                 outln!("  cause: {}", fault.cause);
                 match b.safety_state {
                     SafetyState::OutputUnconfirmed => outln!(

@@ -10,6 +10,7 @@
 //! stopped or idle: it changes instrument settings, which a running sweep would not expect.
 
 use super::runs::{runtime, to_json};
+use super::text_table::{Align, TextTable};
 use super::CliError;
 use crate::config::{BenchConfig, Config};
 use crate::engine::bench::build;
@@ -424,22 +425,32 @@ fn report_text(report: &CheckReport) -> String {
                     if on { "ON" } else { "off" }
                 ));
             }
-            for r in &inst.read_backs {
-                let actual = r
-                    .read_back
-                    .map(|v| v.to_string())
-                    .unwrap_or_else(|| "-".into());
-                out.push_str(&format!(
-                    "    {:<24} set {:<14} read back {:<14} {}\n",
-                    r.setting,
-                    r.requested,
-                    actual,
-                    if r.ok { "ok" } else { "WRONG" }
-                ));
+            if !inst.read_backs.is_empty() {
+                let mut table = TextTable::new(&[
+                    ("setting", Align::Left),
+                    ("set", Align::Right),
+                    ("read back", Align::Right),
+                    ("check", Align::Left),
+                ]);
+                for r in &inst.read_backs {
+                    let actual = r
+                        .read_back
+                        .map(|v| v.to_string())
+                        .unwrap_or_else(|| "-".into());
+                    table.row(vec![
+                        r.setting.to_string(),
+                        r.requested.to_string(),
+                        actual,
+                        if r.ok { "ok" } else { "WRONG" }.to_string(),
+                    ]);
+                }
+                for line in table.render().lines() {
+                    out.push_str(&format!("    {line}\n"));
+                }
             }
             if let Some(n) = inst.trace_points {
                 out.push_str(&format!(
-                    "    one sweep (*OPC?) and a trace of {n} points fetched with the axis queries above; error queue empty\n"
+                    "    one sweep (*OPC?) and a trace of {n} points fetched; error queue empty\n"
                 ));
             }
             if let Some(on) = inst.rf_output_on_after {

@@ -10,6 +10,7 @@
 use super::client::ClientArgs;
 use super::report::utc_time;
 use super::runs::{encode_query_value, runtime, to_json};
+use super::text_table::{Align, TextTable};
 use super::CliError;
 use crate::api::views::devices::{Calibration, DeviceView, VpiAnswer};
 use clap::Args;
@@ -93,14 +94,14 @@ pub fn list(args: DevicesArgs) -> Result<(), CliError> {
             outln!("no devices yet: a device is recorded when a run for it is submitted");
             return Ok(());
         }
-        outln!(
-            "{:<16}  {:<16}  {:<23}  {:>6}  {:<21}  calibrations",
-            "serial",
-            "model",
-            "last calibrated",
-            "run",
-            "frequency range"
-        );
+        let mut table = TextTable::new(&[
+            ("serial", Align::Left),
+            ("model", Align::Left),
+            ("last calibrated", Align::Left),
+            ("run", Align::Right),
+            ("frequency range", Align::Left),
+            ("calibrations", Align::Right),
+        ]);
         for s in &summaries {
             let (when, run, range) = match (
                 s.last_calibrated_at_unix_ms,
@@ -114,16 +115,16 @@ pub fn list(args: DevicesArgs) -> Result<(), CliError> {
                 ),
                 _ => ("never".to_string(), "-".to_string(), "-".to_string()),
             };
-            outln!(
-                "{:<16}  {:<16}  {:<23}  {:>6}  {:<21}  {}",
-                s.device.serial,
-                s.device.model,
+            table.row(vec![
+                s.device.serial.clone(),
+                s.device.model.clone(),
                 when,
                 run,
                 range,
-                s.calibrations
-            );
+                s.calibrations.to_string(),
+            ]);
         }
+        out!("{}", table.render());
         Ok(())
     })
 }

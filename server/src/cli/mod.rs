@@ -53,6 +53,7 @@ pub mod runs;
 pub mod serve;
 pub mod sim;
 pub mod suggest_profile;
+pub mod text_table;
 pub mod token;
 pub mod trace;
 

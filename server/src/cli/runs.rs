@@ -9,6 +9,7 @@
 
 use super::client::{ApiClient, ClientArgs};
 use super::follow::{follow_run, EventStream};
+use super::text_table::{Align, TextTable};
 use super::{report, CliError};
 use crate::api::views::run_control::SubmittedRun;
 use crate::api::views::runs::{RunList, RunView};
@@ -226,25 +227,25 @@ pub fn list(args: RunsArgs) -> Result<(), CliError> {
             );
             return Ok(());
         }
-        outln!(
-            "{:>6}  {:<11}  {:<16}  {:<12}  {:<23}  submitted by",
-            "run",
-            "state",
-            "device",
-            "bench",
-            "created"
-        );
+        let mut table = TextTable::new(&[
+            ("run", Align::Right),
+            ("state", Align::Left),
+            ("device", Align::Left),
+            ("bench", Align::Left),
+            ("created", Align::Left),
+            ("submitted by", Align::Left),
+        ]);
         for run in &list.runs {
-            outln!(
-                "{:>6}  {:<11}  {:<16}  {:<12}  {:<23}  {}",
-                run.id,
-                run.state,
-                run.device_serial,
-                run.bench,
+            table.row(vec![
+                run.id.to_string(),
+                run.state.clone(),
+                run.device_serial.clone(),
+                run.bench.clone(),
                 report::utc_time(run.created_at_unix_ms),
-                run.submitted_by
-            );
+                run.submitted_by.clone(),
+            ]);
         }
+        out!("{}", table.render());
         outln!(
             "{}",
             page_footer(list.page, list.per_page, list.total.max(0) as u64)

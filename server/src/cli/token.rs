@@ -6,6 +6,7 @@
 //! `/etc/halfwave/halfwave.toml`). A created token is printed once, on stdout, and
 //! only its SHA-256 digest is stored.
 
+use super::text_table::{Align, TextTable};
 use super::CliError;
 use crate::api::tokens::{self, Role};
 use crate::config::Config;
@@ -191,16 +192,17 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                     outln!("no tokens yet; create one with `halfwave token create --role operator --name NAME`");
                     return Ok(());
                 }
-                outln!(
-                    "{:>5}  {:<24}  {:<8}  {:<23}  state",
-                    "id",
-                    "name",
-                    "role",
-                    "created"
-                );
+                let mut table = TextTable::new(&[
+                    ("id", Align::Right),
+                    ("name", Align::Left),
+                    ("role", Align::Left),
+                    ("created", Align::Left),
+                    ("state", Align::Left),
+                ]);
                 for token in &list {
-                    outln!("{}", token_row(token));
+                    table.row(token_row(token));
                 }
+                out!("{}", table.render());
                 Ok(())
             }
         }
@@ -208,16 +210,16 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
 }
 
 /// One token as a table row: id, name, role, creation date, and whether it is active.
-fn token_row(token: &tokens::TokenInfo) -> String {
+fn token_row(token: &tokens::TokenInfo) -> Vec<String> {
     let state = match token.revoked_at_unix_ms {
         Some(at) => format!("revoked {}", super::report::utc_time(at)),
         None => "active".to_string(),
     };
-    format!(
-        "{:>5}  {:<24}  {:<8}  {:<23}  {state}",
-        token.id,
-        token.name,
+    vec![
+        token.id.to_string(),
+        token.name.clone(),
         token.role.to_string(),
-        super::report::utc_time(token.created_at_unix_ms)
-    )
+        super::report::utc_time(token.created_at_unix_ms),
+        state,
+    ]
 }
