@@ -493,6 +493,19 @@ fn expand_frequencies(
         limits.min_frequency.ghz(),
         limits.max_frequency.ghz()
     );
+    // What is wrong with a frequency: not one at all (whatever the source, also when the bench is
+    // unknown and its range with it), or outside the source's range.
+    let problem = |f: f64| -> Option<String> {
+        if !f.is_finite() || f <= 0.0 {
+            Some(format!(
+                "{f} Hz is not a frequency; give a value above 0 Hz"
+            ))
+        } else if !in_range(f) {
+            Some(format!("{f} Hz is outside {range_text}"))
+        } else {
+            None
+        }
+    };
     let values: Vec<f64> = match spec {
         FrequencySpec::List { values_hz } => {
             if values_hz.is_empty() {
@@ -511,11 +524,8 @@ fn expand_frequencies(
             }
             let mut bad = false;
             for (i, f) in values_hz.iter().enumerate() {
-                if !f.is_finite() || !in_range(*f) {
-                    errs.push(
-                        format!("frequencies.values_hz[{i}]"),
-                        format!("{f} Hz is outside {range_text}"),
-                    );
+                if let Some(message) = problem(*f) {
+                    errs.push(format!("frequencies.values_hz[{i}]"), message);
                     bad = true;
                 }
             }
@@ -539,11 +549,8 @@ fn expand_frequencies(
         } => {
             let mut bad = false;
             for (name, f) in [("start_hz", start_hz), ("stop_hz", stop_hz)] {
-                if !f.is_finite() || !in_range(*f) {
-                    errs.push(
-                        format!("frequencies.{name}"),
-                        format!("{f} Hz is outside {range_text}"),
-                    );
+                if let Some(message) = problem(*f) {
+                    errs.push(format!("frequencies.{name}"), message);
                     bad = true;
                 }
             }
@@ -1052,6 +1059,35 @@ mod tests {
             analyzer: &caps,
             chain: Some(&chain),
         })
+    }
+
+    #[test]
+    fn a_frequency_that_is_not_one_is_named_as_such_and_one_out_of_range_with_the_range() {
+        let mut req = request(LevelSpec::Ramp {
+            start_dbm: Dbm(0.0),
+            stop_dbm: Dbm(10.0),
+            step_db: Db(5.0),
+        });
+        req.frequencies = FrequencySpec::List {
+            values_hz: vec![-1.0, 0.0, f64::NAN, 50e9, 2e9],
+        };
+        let err = validate(&req, 30.0).unwrap_err();
+        let message = |i: usize| {
+            err.errors
+                .iter()
+                .find(|e| e.field == format!("frequencies.values_hz[{i}]"))
+                .map(|e| e.message.clone())
+                .unwrap_or_else(|| panic!("values_hz[{i}] not named: {err}"))
+        };
+        for i in 0..3 {
+            assert!(message(i).contains("give a value above 0 Hz"), "{err}");
+            assert!(!message(i).contains("range"), "{err}");
+        }
+        assert!(message(3).contains("outside the source's range"), "{err}");
+        assert!(
+            !err.errors.iter().any(|e| e.field.ends_with("[4]")),
+            "{err}"
+        );
     }
 
     #[test]
