@@ -1187,16 +1187,23 @@ fn the_shipped_chain_of_the_simulated_bench_is_its_chain() {
     )
     .unwrap();
     let mut lines = text.lines();
-    assert_eq!(lines.next(), Some("frequency_hz,gain_db"));
+    assert_eq!(
+        lines.next(),
+        Some("frequency_hz,gain_db,gain_uncertainty_db")
+    );
+    let mut stated_uncertainty_db: f64 = f64::INFINITY;
     let points: Vec<halfwave::analysis::ChainPoint> = lines
         .map(|l| {
-            let (f, g) = l.split_once(',').unwrap();
+            let cells: Vec<f64> = l.split(',').map(|c| c.parse().unwrap()).collect();
+            stated_uncertainty_db = stated_uncertainty_db.min(cells[2]);
             halfwave::analysis::ChainPoint {
-                frequency: halfwave::units::Hz(f.parse().unwrap()),
-                gain: halfwave::units::Db(g.parse().unwrap()),
+                frequency: halfwave::units::Hz(cells[0]),
+                gain: halfwave::units::Db(cells[1]),
             }
         })
         .collect();
+    // The stated uncertainty (which V_pi's budget uses) covers what the table misses.
+    assert!(stated_uncertainty_db >= 1e-3, "{stated_uncertainty_db}");
     let chain = halfwave::analysis::DriveChain::new(points).unwrap();
     let scenario = halfwave_drivers::sim::Scenario::builtin().unwrap();
     for i in 0..=200 {
@@ -1756,4 +1763,26 @@ async fn the_readme_first_run_on_the_simulated_bench_gives_the_scenario_v_pi() {
             "{measured} V at {f} Hz against the scenario's {truth} V"
         );
     }
+    // The shipped chain states its uncertainty, so the run's uncertainty budget needs only the
+    // generator's accuracy (which `deploy/simulated.toml` states; this test's engine has no
+    // configuration file, so it is given here).
+    let run_id = finished["id"].as_i64().unwrap().to_string();
+    let budget = halfwave_async(&[
+        "budget",
+        &run_id,
+        "--source-level-accuracy-db",
+        "0.5",
+        "--json",
+        "--url",
+        &base,
+        "--token",
+        &operator,
+    ])
+    .await;
+    assert!(budget.status.success(), "{}", stderr(&budget));
+    let budget: serde_json::Value = serde_json::from_slice(&budget.stdout).unwrap();
+    assert_eq!(
+        budget["chain_uncertainty_from"], "chain calibration sim-bench chain v1",
+        "{budget}"
+    );
 }
