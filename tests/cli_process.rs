@@ -1726,27 +1726,33 @@ async fn the_readme_first_run_on_the_simulated_bench_gives_the_scenario_v_pi() {
     let operator = bench.app.token("lab-b", Role::Operator).await;
     let base = bench.app.base.clone();
     let chain = deploy.join("sim-bench-chain.csv");
-    let uploaded = halfwave_async(&[
-        "chain",
-        "upload",
-        "sim-bench chain",
-        chain.to_str().unwrap(),
-        "--url",
-        &base,
-        "--token",
+    // A client command against this daemon with `token`.
+    let client = |words: Vec<&str>, token: &str| {
+        let args: Vec<String> = words
+            .into_iter()
+            .chain(["--url", base.as_str(), "--token", token])
+            .map(str::to_string)
+            .collect();
+        async move {
+            let refs: Vec<&str> = args.iter().map(String::as_str).collect();
+            halfwave_async(&refs).await
+        }
+    };
+    let uploaded = client(
+        vec![
+            "chain",
+            "upload",
+            "sim-bench chain",
+            chain.to_str().unwrap(),
+        ],
         &admin,
-    ])
+    )
     .await;
     assert!(uploaded.status.success(), "{}", stderr(&uploaded));
-    let submitted = halfwave_async(&[
-        "submit",
-        plan_path.to_str().unwrap(),
-        "--json",
-        "--url",
-        &base,
-        "--token",
+    let submitted = client(
+        vec!["submit", plan_path.to_str().unwrap(), "--json"],
         &operator,
-    ])
+    )
     .await;
     assert!(submitted.status.success(), "{}", stderr(&submitted));
     let finished: serde_json::Value = serde_json::from_slice(&submitted.stdout).unwrap();
@@ -1767,17 +1773,16 @@ async fn the_readme_first_run_on_the_simulated_bench_gives_the_scenario_v_pi() {
     // generator's accuracy (which `deploy/simulated.toml` states; this test's engine has no
     // configuration file, so it is given here).
     let run_id = finished["id"].as_i64().unwrap().to_string();
-    let budget = halfwave_async(&[
-        "budget",
-        &run_id,
-        "--source-level-accuracy-db",
-        "0.5",
-        "--json",
-        "--url",
-        &base,
-        "--token",
+    let budget = client(
+        vec![
+            "budget",
+            &run_id,
+            "--source-level-accuracy-db",
+            "0.5",
+            "--json",
+        ],
         &operator,
-    ])
+    )
     .await;
     assert!(budget.status.success(), "{}", stderr(&budget));
     let budget: serde_json::Value = serde_json::from_slice(&budget.stdout).unwrap();
