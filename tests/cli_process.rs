@@ -1425,12 +1425,14 @@ async fn chain_upload_stores_the_shipped_csv_and_names_what_is_wrong_with_a_bad_
     );
     assert!(text.contains("\"name\": \"sim-bench chain\""), "{text}");
     // The stored table is the file's, row for row.
-    let stored: serde_json::Value = app
-        .get("/api/v1/chain-calibrations/sim-bench%20chain", Some(&admin))
-        .await
-        .json()
-        .await
-        .unwrap();
+    let newest_version = || async {
+        app.get("/api/v1/chain-calibrations/sim-bench%20chain", Some(&admin))
+            .await
+            .json::<serde_json::Value>()
+            .await
+            .unwrap()
+    };
+    let stored = newest_version().await;
     let points = stored["points"].as_array().unwrap();
     assert_eq!(points.len(), rows);
     let first_row: Vec<f64> = std::fs::read_to_string(&shipped)
@@ -1453,13 +1455,11 @@ async fn chain_upload_stores_the_shipped_csv_and_names_what_is_wrong_with_a_bad_
     let missing = dir.path().join("missing.csv");
     let out = upload(missing.to_str().unwrap().to_string()).await;
     failed_with(&out, &["missing.csv", "cannot read the chain CSV"]);
-    let stored: serde_json::Value = app
-        .get("/api/v1/chain-calibrations/sim-bench%20chain", Some(&admin))
-        .await
-        .json()
-        .await
-        .unwrap();
-    assert_eq!(stored["version"], 1, "a refused upload stores nothing");
+    assert_eq!(
+        newest_version().await["version"],
+        1,
+        "a refused upload stores nothing"
+    );
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
