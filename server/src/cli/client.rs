@@ -320,12 +320,18 @@ fn describe(error: &reqwest::Error) -> String {
     with_causes(error.to_string(), error)
 }
 
-/// `head` followed by every cause in `error`'s source chain, each after `": "`.
+/// `head` followed by every cause in `error`'s source chain, each after `": "`, except a cause
+/// whose text the line already holds: many errors (ours with a `source` field, sqlx's, io's)
+/// write their cause into their own message as well, and saying it twice only hides the advice
+/// after it.
 pub fn with_causes(mut head: String, error: &dyn std::error::Error) -> String {
     let mut source = error.source();
     while let Some(cause) = source {
-        head.push_str(": ");
-        head.push_str(&cause.to_string());
+        let text = cause.to_string();
+        if !text.is_empty() && !head.contains(&text) {
+            head.push_str(": ");
+            head.push_str(&text);
+        }
         source = cause.source();
     }
     head
@@ -334,4 +340,42 @@ pub fn with_causes(mut head: String, error: &dyn std::error::Error) -> String {
 /// Terminal states of a run (it will not change any more unless resumed).
 pub fn is_terminal(state: &str) -> bool {
     matches!(state, "completed" | "failed" | "cancelled" | "interrupted")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::with_causes;
+
+    #[derive(Debug, thiserror::Error)]
+    #[error("the database at lab.db could not be read")]
+    struct Root;
+
+    /// Writes its cause into its own message (thiserror makes a field named `source` the cause).
+    #[derive(Debug, thiserror::Error)]
+    #[error("database error while storing a point: {source}; restore a backup")]
+    struct Says {
+        source: Root,
+    }
+
+    /// Keeps its cause out of its message.
+    #[derive(Debug, thiserror::Error)]
+    #[error("could not store the point")]
+    struct Hides {
+        #[source]
+        cause: Root,
+    }
+
+    #[test]
+    fn a_cause_the_message_already_says_is_not_said_again() {
+        let said = Says { source: Root };
+        assert_eq!(
+            with_causes(said.to_string(), &said),
+            "database error while storing a point: the database at lab.db could not be read; restore a backup"
+        );
+        let hidden = Hides { cause: Root };
+        assert_eq!(
+            with_causes(hidden.to_string(), &hidden),
+            "could not store the point: the database at lab.db could not be read"
+        );
+    }
 }
