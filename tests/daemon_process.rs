@@ -104,6 +104,11 @@ fn serves_health_and_stops_cleanly_on_sigterm() {
         rest.contains("no API token exists yet") && rest.contains("halfwave token create --config"),
         "{rest}"
     );
+    // ... and that no drive chain is stored yet, with the command that stores one.
+    assert!(
+        rest.contains("no drive chain is stored yet") && rest.contains("halfwave chain upload"),
+        "{rest}"
+    );
     assert!(dir.path().join("data").join("halfwave.db").exists());
 }
 

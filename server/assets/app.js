@@ -124,7 +124,7 @@ async function loadBenches() {
 }
 
 // The chain calibrations a plan may name (newest version of each); the engine's own flat-loss
-// rows (made for plans with a flat loss) are not offered.
+// rows (made for plans with a flat loss, named with engine::FLAT_LOSS_PREFIX) are not offered.
 async function loadChains() {
   const versions = await api("/chain-calibrations");
   const select = $("chain-select");

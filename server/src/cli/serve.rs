@@ -63,6 +63,21 @@ async fn token_hint(store: &Store, config_path: Option<&Path>) -> Option<String>
     ))
 }
 
+/// What to do when the database holds no drive chain a lab stored: a plan then has only the flat
+/// loss, which gives a wrong V_pi wherever the real chain is not flat.
+async fn chain_hint(store: &Store) -> Option<String> {
+    let chains = store.chain_calibrations().await.ok()?;
+    if chains
+        .iter()
+        .any(|c| !c.name.starts_with(crate::engine::FLAT_LOSS_PREFIX))
+    {
+        return None;
+    }
+    Some(
+        "no drive chain is stored yet: upload the bench's with `halfwave chain upload NAME FILE.csv` (admin token; `import` takes Touchstone files) and name it in plans; a flat loss gives a wrong V_pi wherever the real chain is not flat".to_string(),
+    )
+}
+
 /// Opens the store, starts the engine and serves the API until SIGINT/SIGTERM. `config_path`
 /// (the file the configuration came from) is only used in hints.
 pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), CliError> {
@@ -83,6 +98,9 @@ pub async fn serve(config: Config, config_path: Option<PathBuf>) -> Result<(), C
     tracing::info!(%address, "halfwave daemon listening");
     outln!("halfwave listening on http://{address}/ (dashboard: http://{address}/dashboard/)");
     if let Some(hint) = token_hint(engine.store(), config_path.as_deref()).await {
+        outln!("{hint}");
+    }
+    if let Some(hint) = chain_hint(engine.store()).await {
         outln!("{hint}");
     }
     let state =
@@ -158,4 +176,32 @@ pub async fn start(config: &Config) -> Result<(Engine, tokio::net::TcpListener, 
         .await
         .map_err(|e| CliError::new(e.to_string()))?;
     Ok((engine, listener, claim))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::chain_hint;
+    use crate::store::{ChainCalibrationPoint, Store};
+    use halfwave_units::{Db, Hz};
+
+    #[tokio::test]
+    async fn the_chain_hint_is_given_until_a_lab_stores_a_chain() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("hint.db");
+        let store = Store::open(path.to_str().unwrap()).await.unwrap();
+        let point = [ChainCalibrationPoint::new(Hz(1e9), Db(-2.0))];
+        assert!(chain_hint(&store).await.is_some(), "an empty database");
+        // The engine's own row for a plan with a flat loss is not a lab's chain.
+        let flat = format!("{}2.00dB", crate::engine::FLAT_LOSS_PREFIX);
+        store
+            .create_chain_calibration(&flat, "engine", &point)
+            .await
+            .unwrap();
+        assert!(chain_hint(&store).await.is_some(), "only a flat loss");
+        store
+            .create_chain_calibration("bench-7 chain", "admin", &point)
+            .await
+            .unwrap();
+        assert_eq!(chain_hint(&store).await, None, "a lab's chain is stored");
+    }
 }

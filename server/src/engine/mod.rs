@@ -134,6 +134,10 @@ struct Inner {
     workers: Mutex<Vec<tokio::task::JoinHandle<()>>>,
 }
 
+/// The start of the names of the chain calibrations the engine makes for plans with a flat loss
+/// (`flat-loss-2.00dB`); a chain a lab stores is any other name.
+pub const FLAT_LOSS_PREFIX: &str = "flat-loss-";
+
 /// The engine handle; cheap to clone.
 #[derive(Clone)]
 pub struct Engine {
@@ -807,9 +811,10 @@ impl Engine {
         }
     }
 
-    /// The stored calibration that stands for a flat loss: one per distinct loss, reused.
+    /// The stored calibration that stands for a flat loss: one per distinct loss, reused, named
+    /// [`FLAT_LOSS_PREFIX`] and the loss.
     async fn flat_loss_calibration(&self, loss: Db) -> Result<ChainCalibration, StoreError> {
-        let name = format!("flat-loss-{:.2}dB", loss.0);
+        let name = format!("{FLAT_LOSS_PREFIX}{:.2}dB", loss.0);
         match self.inner.store.latest_chain_calibration(&name).await {
             Ok(c) => Ok(c),
             Err(StoreError::NotFound { .. }) => {
