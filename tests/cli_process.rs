@@ -1425,13 +1425,8 @@ async fn chain_upload_stores_the_shipped_csv_and_names_what_is_wrong_with_a_bad_
     );
     assert!(text.contains("\"name\": \"sim-bench chain\""), "{text}");
     // The stored table is the file's, row for row.
-    let newest_version = || async {
-        app.get("/api/v1/chain-calibrations/sim-bench%20chain", Some(&admin))
-            .await
-            .json::<serde_json::Value>()
-            .await
-            .unwrap()
-    };
+    let newest_version =
+        || app.get_json("/api/v1/chain-calibrations/sim-bench%20chain", Some(&admin));
     let stored = newest_version().await;
     let points = stored["points"].as_array().unwrap();
     assert_eq!(points.len(), rows);

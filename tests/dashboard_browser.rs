@@ -130,12 +130,9 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
                 .ok()
         })
         .unwrap_or_else(|| panic!("no run id in {queued}"));
-    let run: serde_json::Value = app
-        .get(&format!("/api/v1/runs/{run_id}"), Some(&operator))
-        .await
-        .json()
-        .await
-        .unwrap();
+    let run = app
+        .get_json(&format!("/api/v1/runs/{run_id}"), Some(&operator))
+        .await;
     assert_eq!(run["chain_name"], "sim-bench chain", "{run}");
 
     // The bar moves: a value strictly between 0 and 100 is seen, then 100 or a finished run.

@@ -444,15 +444,20 @@ mod tests {
         Config::from_toml(text, Path::new("test.toml"), PathBuf::from("."))
     }
 
+    /// The configuration `deploy/NAME` as shipped.
+    fn shipped(name: &str) -> Result<Config, ConfigError> {
+        let deploy = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy");
+        let path = deploy.join(name);
+        let text = std::fs::read_to_string(&path).unwrap();
+        Config::from_toml(&text, &path, deploy)
+    }
+
     /// The configurations shipped in `deploy/` load as they are, so a new user's first
     /// `serve --config` does not start with an error of ours.
     #[test]
     fn the_shipped_configurations_load() {
-        let deploy = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy");
         for name in ["halfwave.toml", "simulated.toml"] {
-            let path = deploy.join(name);
-            let text = std::fs::read_to_string(&path).unwrap();
-            if let Err(e) = Config::from_toml(&text, &path, deploy.clone()) {
+            if let Err(e) = shipped(name) {
                 panic!("{name}: {e}");
             }
         }
@@ -462,9 +467,7 @@ mod tests {
     /// the box) that covers what its simulated generator really does.
     #[test]
     fn the_simulated_bench_states_a_level_accuracy_that_covers_its_generator() {
-        let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/simulated.toml");
-        let text = std::fs::read_to_string(&path).unwrap();
-        let config = Config::from_toml(&text, &path, PathBuf::from(".")).unwrap();
+        let config = shipped("simulated.toml").unwrap();
         let Db(stated) = config.benches[0]
             .source_level_accuracy_db
             .expect("deploy/simulated.toml states source_level_accuracy_db");

@@ -46,6 +46,15 @@ impl TestApp {
         request.send().await.expect("request sent")
     }
 
+    /// GET `path` and decode its JSON body (panics if it is not JSON).
+    pub async fn get_json(&self, path: &str, token: Option<&str>) -> serde_json::Value {
+        self.get(path, token)
+            .await
+            .json()
+            .await
+            .expect("a JSON body")
+    }
+
     pub async fn post_json(
         &self,
         path: &str,

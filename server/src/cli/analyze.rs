@@ -25,8 +25,9 @@ pub struct AnalyzeArgs {
     /// A trace CSV (header `frequency_hz,power_dbm`) or a sweep description (`.json`).
     #[arg(value_name = "TRACE.csv|SWEEP.json")]
     pub input: PathBuf,
-    /// RF drive frequency (hertz, or 7.5GHz), which is the line spacing of the comb; for a trace CSV it is read
-    /// from the trace when left out, and a trace that shows another spacing is refused.
+    /// RF drive frequency (hertz, or 7.5GHz), which is the line spacing of the comb; for a trace
+    /// CSV it is read from the trace when left out, and a trace that shows another spacing is
+    /// refused.
     #[arg(long, value_name = "HZ", allow_negative_numbers = true, value_parser = super::frequency_arg::parse_frequency_hz)]
     pub modulation_frequency: Option<f64>,
     /// A trace taken with the RF output off: the carrier position and the unmodulated power.

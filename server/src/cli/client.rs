@@ -14,6 +14,8 @@ use clap::Args;
 use serde::de::DeserializeOwned;
 use std::time::Duration;
 
+/// The content type of the JSON bodies the clients send.
+const JSON: &str = "application/json";
 /// Where the daemon listens unless told otherwise (the configuration's default `bind`).
 pub const DEFAULT_URL: &str = "http://127.0.0.1:8440";
 
@@ -175,7 +177,9 @@ impl ApiClient {
         path: &str,
         body: &serde_json::Value,
     ) -> Result<T, CliError> {
-        let response = self.send(self.post_request(path, body), path).await?;
+        let response = self
+            .send(self.post_request(path, JSON, body.to_string()), path)
+            .await?;
         decode(response, path).await
     }
 
@@ -186,12 +190,9 @@ impl ApiClient {
         content_type: &str,
         body: String,
     ) -> Result<T, CliError> {
-        let request = self
-            .http
-            .post(self.url(path))
-            .header(reqwest::header::CONTENT_TYPE, content_type)
-            .body(body);
-        let response = self.send(request, path).await?;
+        let response = self
+            .send(self.post_request(path, content_type, body), path)
+            .await?;
         decode(response, path).await
     }
 
@@ -201,16 +202,21 @@ impl ApiClient {
         path: &str,
         body: &serde_json::Value,
     ) -> Result<(), CliError> {
-        self.send(self.post_request(path, body), path)
+        self.send(self.post_request(path, JSON, body.to_string()), path)
             .await
             .map(|_| ())
     }
 
-    fn post_request(&self, path: &str, body: &serde_json::Value) -> reqwest::RequestBuilder {
+    fn post_request(
+        &self,
+        path: &str,
+        content_type: &str,
+        body: String,
+    ) -> reqwest::RequestBuilder {
         self.http
             .post(self.url(path))
-            .header(reqwest::header::CONTENT_TYPE, "application/json")
-            .body(body.to_string())
+            .header(reqwest::header::CONTENT_TYPE, content_type)
+            .body(body)
     }
 
     /// Opens the server-sent event stream (optionally of one run); the caller reads its chunks.

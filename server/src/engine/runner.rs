@@ -777,22 +777,12 @@ async fn analyse_in_order(mut rx: mpsc::Receiver<Msg>, analysed: mpsc::Sender<An
     }
 }
 
-/// The analysis warnings already written to the daemon's log in this run, by frequency and code.
-/// A warning usually holds for every level of a frequency (a reference trace too coarse for the
-/// measured line shape, say), and its advice is the same: the log says it once per frequency, at
-/// warn level, and the later points' copies at debug level. Every point still stores its own
-/// warnings and sends them with its progress event.
-#[derive(Default)]
-struct LoggedWarnings {
-    seen: std::collections::HashSet<(usize, &'static str)>,
-}
-
-impl LoggedWarnings {
-    /// True the first time `code` is met at the frequency `frequency_index`.
-    fn first(&mut self, frequency_index: usize, code: &'static str) -> bool {
-        self.seen.insert((frequency_index, code))
-    }
-}
+/// The analysis warnings already written to the daemon's log in this run, as (frequency index,
+/// code). A warning usually holds for every level of a frequency (a reference trace too coarse
+/// for the measured line shape, say), and its advice is the same: the log says it once per
+/// frequency, at warn level, and the later points' copies at debug level. Every point still
+/// stores its own warnings and sends them with its progress event.
+type LoggedWarnings = std::collections::HashSet<(usize, &'static str)>;
 
 /// Commits one analysed point; returns why it could not be analysed, if it could not (the
 /// point is stored either way), and its modulation index with its uncertainty, if it could.
@@ -819,7 +809,7 @@ async fn commit_point(
         );
     }
     for warning in analysis.iter().flat_map(|a| &a.warnings) {
-        if logged.first(m.frequency_index, warning.code) {
+        if logged.insert((m.frequency_index, warning.code)) {
             tracing::warn!(
                 frequency_hz = m.frequency.0,
                 level_dbm = m.generator_level.0,
