@@ -380,7 +380,14 @@ fn count_fits(name: &str) {
     for case in cases().iter().filter(|c| name == "all" || c.name == name) {
         case.fit();
         let fitted = counted_fit(case);
-        println!("{}: beta {:.5}", case.name, fitted.modulation_index);
+        // Every digit, so that two builds can be checked to give the same fit to the bit.
+        println!(
+            "{}: beta {:?}, uncertainty {:?}, reduced chi-squared {:?}",
+            case.name,
+            fitted.modulation_index,
+            fitted.uncertainty_combined,
+            fitted.reduced_chi_squared
+        );
     }
 }
 

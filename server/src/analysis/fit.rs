@@ -127,6 +127,9 @@ pub struct LineShape {
     x0: f64,
     h: f64,
     inv_h: f64,
+    /// Measured: the last table index as a float (the end of the interpolated range, in table
+    /// steps from x0), kept with the table.
+    t_last: f64,
     /// Measured: per table interval j (from x0 + j h), the Catmull-Rom cubic through the table's
     /// four neighbours of the interval, as the coefficients of 1, s, s^2, s^3 (s the fraction of
     /// the interval), with zeros beyond the table's ends (see `measured_value`).
@@ -175,6 +178,7 @@ impl LineShape {
             x0: 0.0,
             h: 1.0,
             inv_h: 1.0,
+            t_last: 0.0,
             cubic: Arc::from([]),
             envelope: Arc::from([]),
             peak_index: 0,
@@ -425,6 +429,7 @@ impl LineShape {
         for i in 1..peak_index {
             envelope[i] = envelope[i].max(envelope[i - 1]);
         }
+        let t_last = table.len() as f64 - 1.0;
         LineShape {
             kind,
             width_hz: width,
@@ -437,6 +442,7 @@ impl LineShape {
             x0,
             h,
             inv_h: 1.0 / h,
+            t_last,
             envelope: envelope.into(),
             peak_index,
             voigt: None,
@@ -514,7 +520,7 @@ impl LineShape {
     #[inline(always)]
     fn measured_value(&self, x: f64) -> (f64, f64) {
         let t = (x - self.x0) * self.inv_h;
-        let last = self.table.len() as f64 - 1.0;
+        let last = self.t_last;
         if t < 0.0 || t > last {
             // Beyond the table: a 1/x^2 wing from its end value.
             let (end_x, end_v) = if t < 0.0 {
@@ -526,8 +532,8 @@ impl LineShape {
             return (k, -2.0 * k / x);
         }
         // t >= 0 here, so truncation is the floor (`f64::floor` is a library call on the
-        // baseline x86-64 target).
-        let j = t as usize;
+        // baseline x86-64 target); through u32, whose conversion is shorter than usize's.
+        let j = t as u32 as usize;
         let s = t - j as f64;
         let [c0, c1, c2, c3] = self.cubic[j];
         let k = c0 + s * (c1 + s * (c2 + s * c3));
@@ -864,7 +870,6 @@ struct Workspace {
     pair_shape: Vec<f64>,
     /// Merged intervals of points under the lines.
     intervals: Vec<(usize, usize)>,
-    cover: Vec<i32>,
     /// Point index of each node, ascending, and its frequency.
     nodes: Vec<usize>,
     node_freq: Vec<f64>,
@@ -888,6 +893,9 @@ struct Workspace {
     /// the lines whose window does not hold the point.
     point_row: Vec<u32>,
     point_shape: Vec<f64>,
+    /// The point of each row of [`Workspace::point_shape`] (the entries of `point_row` to clear
+    /// before the next cut).
+    row_point: Vec<usize>,
     /// Scratch for [`reference_noise_uncertainty`]: per node and per point, beta's row of
     /// (J^T J)^-1 dotted with the gradient (per point times c P0 / M), per table entry beta's
     /// sensitivity.
@@ -1027,7 +1035,14 @@ fn evaluate(
     let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
     let a = p[ASYM];
     let node_count = ws.nodes.len();
-    for s in ws.s.iter_mut() {
+    // The sums this evaluation writes: K alone without the Jacobian; no shape slopes for a
+    // measured shape (`assemble` reads those only for free shape parameters).
+    let used = match (jacobian, shape.kind) {
+        (false, _) => 1,
+        (true, ShapeKind::Measured) => 4,
+        (true, _) => 7,
+    };
+    for s in &mut ws.s[..used] {
         s[..node_count].fill(0.0);
     }
     let nmax = prob.max_order;
@@ -1126,6 +1141,43 @@ fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -
         ws.node_e[..node_count].fill([0.0; NP]);
         ws.node_r[..node_count].fill(0.0);
     }
+    // A measured shape frees at most beta, ln P0, the centre, ln F and a: the sums below run
+    // over those alone (the other parameters' gradients are zero).
+    if prob.active[LN_WIDTH..].iter().any(|a| *a) {
+        segment_sums::<NP>(prob, ws, &mut e, jacobian);
+    } else {
+        segment_sums::<{ ASYM + 1 }>(prob, ws, &mut e, jacobian);
+    }
+    // The floor block: r_i = L_F - y_i with L_F = c ln F.
+    if prob.block_n > 0.0 {
+        let lf = c * floor.ln();
+        e.ssr += prob.block_n * lf * lf - 2.0 * lf * prob.block_sum + prob.block_sq;
+        if jacobian {
+            e.jtj[LN_FLOOR][LN_FLOOR] += prob.block_n * c * c;
+            e.jtr[LN_FLOOR] += c * (prob.block_n * lf - prob.block_sum);
+        }
+    }
+    if jacobian {
+        for row in 0..NP {
+            for col in 0..row {
+                e.jtj[row][col] = e.jtj[col][row];
+            }
+        }
+    }
+    e
+}
+
+/// The segments' part of [`assemble`]: the sum of squares and, with `jacobian`, J^T J and J^T r
+/// from the levels and gradients at the nodes, with the gradients' first `Q` entries (the
+/// others zero).
+#[allow(clippy::needless_range_loop)]
+fn segment_sums<const Q: usize>(
+    prob: &Problem,
+    ws: &mut Workspace,
+    e: &mut Evaluation,
+    jacobian: bool,
+) {
+    let node_count = ws.nodes.len();
     for seg in &ws.segments {
         let count = seg.count as usize;
         let mut levels = [0.0; 3];
@@ -1158,12 +1210,12 @@ fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -
             for k in 0..count {
                 let g = seg.g(j, k);
                 let dk = &ws.node_gradient[seg.slots[k] as usize];
-                for q in 0..NP {
+                for q in 0..Q {
                     ej[q] += g * dk[q];
                 }
             }
             let acc = &mut ws.node_e[sj];
-            for q in 0..NP {
+            for q in 0..Q {
                 acc[q] += ej[q];
             }
             ws.node_r[sj] += weighted[j];
@@ -1182,7 +1234,7 @@ fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -
                 let v = ws.node_gradient[k][row];
                 jr += v * ws.node_r[k];
                 let ek = &ws.node_e[k];
-                for col in 0..NP {
+                for col in 0..Q {
                     acc[col] += v * ek[col];
                 }
             }
@@ -1190,23 +1242,6 @@ fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -
             e.jtj[row] = acc;
         }
     }
-    // The floor block: r_i = L_F - y_i with L_F = c ln F.
-    if prob.block_n > 0.0 {
-        let lf = c * floor.ln();
-        e.ssr += prob.block_n * lf * lf - 2.0 * lf * prob.block_sum + prob.block_sq;
-        if jacobian {
-            e.jtj[LN_FLOOR][LN_FLOOR] += prob.block_n * c * c;
-            e.jtr[LN_FLOOR] += c * (prob.block_n * lf - prob.block_sum);
-        }
-    }
-    if jacobian {
-        for row in 0..NP {
-            for col in 0..row {
-                e.jtj[row][col] = e.jtj[col][row];
-            }
-        }
-    }
-    e
 }
 
 /// Moves ln P0 and ln F in `p` to the least squares for the line sums at the nodes that
@@ -1386,8 +1421,6 @@ fn set_windows(prob: &mut Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Wo
     let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
     ws.ranges.clear();
     ws.bound_amplitude.clear();
-    ws.cover.clear();
-    ws.cover.resize(n_points + 1, 0);
     ws.centres.clear();
     for n in -nmax..=nmax {
         // The largest weight this line may take while beta moves by 10 %: lines at a Bessel
@@ -1407,8 +1440,6 @@ fn set_windows(prob: &mut Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Wo
         let hi = prob.freq.partition_point(|f| *f <= centre + right);
         if hi > lo && left + right > 0.0 {
             ws.ranges.push((lo, hi - 1));
-            ws.cover[lo] += 1;
-            ws.cover[hi] -= 1;
         } else {
             ws.ranges.push((1, 0));
         }
@@ -1417,27 +1448,37 @@ fn set_windows(prob: &mut Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Wo
             ws.centres.push(at);
         }
     }
+    // The points under the lines: the lines' ranges merged where they overlap or touch.
     ws.intervals.clear();
-    let (mut depth, mut start) = (0, None);
-    let (mut bn, mut bs, mut bq) = (0.0, 0.0, 0.0);
-    for i in 0..n_points {
-        depth += ws.cover[i];
-        if depth > 0 {
-            if start.is_none() {
-                start = Some(i);
-            }
+    ws.intervals
+        .extend(ws.ranges.iter().copied().filter(|(lo, hi)| hi >= lo));
+    ws.intervals.sort_unstable();
+    let mut merged = 0;
+    for k in 0..ws.intervals.len() {
+        let (lo, hi) = ws.intervals[k];
+        if merged > 0 && lo <= ws.intervals[merged - 1].1 + 1 {
+            let last = &mut ws.intervals[merged - 1].1;
+            *last = (*last).max(hi);
         } else {
-            if let Some(s) = start.take() {
-                ws.intervals.push((s, i - 1));
-            }
-            let y = prob.level[i];
+            ws.intervals[merged] = (lo, hi);
+            merged += 1;
+        }
+    }
+    ws.intervals.truncate(merged);
+    // The floor block: the points between the intervals, in order.
+    let (mut bn, mut bs, mut bq) = (0.0, 0.0, 0.0);
+    let mut from = 0;
+    for k in 0..=ws.intervals.len() {
+        let (to, resume) = ws
+            .intervals
+            .get(k)
+            .map_or((n_points, n_points), |&(lo, hi)| (lo, hi + 1));
+        for &y in &prob.level[from..to] {
             bn += 1.0;
             bs += y;
             bq += y * y;
         }
-    }
-    if let Some(s) = start {
-        ws.intervals.push((s, n_points - 1));
+        from = resume;
     }
     prob.block_n = bn;
     prob.block_sum = bs;
@@ -1581,24 +1622,34 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     let amplitudes = &*amplitudes;
     let ranges = &ws.ranges;
     // The model's level at each point, computed once (the halving below asks for the same
-    // points again): NaN where not yet computed.
-    let mut cache = std::mem::take(&mut ws.level_cache);
-    cache.clear();
-    cache.resize(prob.freq.len(), f64::NAN);
+    // points again): valid where the point has a row. Only the rows of the previous cut are
+    // cleared (a cut computes the level at a few points per node, not at every point).
+    let n_points = prob.freq.len();
     let mut point_row = std::mem::take(&mut ws.point_row);
-    point_row.clear();
-    point_row.resize(prob.freq.len(), u32::MAX);
+    let mut row_point = std::mem::take(&mut ws.row_point);
+    if point_row.len() == n_points {
+        for &i in &row_point {
+            point_row[i] = u32::MAX;
+        }
+    } else {
+        point_row.clear();
+        point_row.resize(n_points, u32::MAX);
+    }
+    row_point.clear();
+    let mut cache = std::mem::take(&mut ws.level_cache);
+    cache.resize(n_points, 0.0);
     let mut point_shape = std::mem::take(&mut ws.point_shape);
     point_shape.clear();
     let width = amplitudes.len();
     let mut level_at = |i: usize| -> f64 {
-        if !cache[i].is_nan() {
+        if point_row[i] != u32::MAX {
             return cache[i];
         }
         let f = prob.freq[i];
         let mut m = floor;
         let row = point_shape.len();
         point_row[i] = (row / width) as u32;
+        row_point.push(i);
         point_shape.resize(row + width, 0.0);
         let row = &mut point_shape[row..];
         for (slot, amplitude) in amplitudes.iter().enumerate() {
@@ -1700,6 +1751,7 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     ws.points_under = under;
     ws.level_cache = cache;
     ws.point_row = point_row;
+    ws.row_point = row_point;
     ws.point_shape = point_shape;
 }
 
