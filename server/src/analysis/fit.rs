@@ -1224,7 +1224,7 @@ fn segment_sums<const Q: usize>(
     if jacobian {
         // J^T J = sum_k D_k E_k^T and J^T r = sum_k D_k (G M - h)_k, one row at a time (its sums
         // stay in registers; the gradients of parameters not free are zero).
-        for row in 0..NP {
+        for row in 0..Q {
             if !prob.active[row] {
                 continue;
             }
@@ -1640,27 +1640,26 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     cache.resize(n_points, 0.0);
     let mut point_shape = std::mem::take(&mut ws.point_shape);
     point_shape.clear();
-    let width = amplitudes.len();
     let mut level_at = |i: usize| -> f64 {
         if point_row[i] != u32::MAX {
             return cache[i];
         }
         let f = prob.freq[i];
         let mut m = floor;
-        let row = point_shape.len();
-        point_row[i] = (row / width) as u32;
+        // One row per point computed, in order.
+        point_row[i] = row_point.len() as u32;
         row_point.push(i);
-        point_shape.resize(row + width, 0.0);
-        let row = &mut point_shape[row..];
-        for (slot, amplitude) in amplitudes.iter().enumerate() {
-            let (lo, hi) = ranges[slot];
-            if i >= lo && i <= hi {
+        point_shape.extend(amplitudes.iter().zip(ranges).enumerate().map(
+            |(slot, (amplitude, &(lo, hi)))| {
+                if i < lo || i > hi {
+                    return 0.0;
+                }
                 let n = slot as i32 - nmax;
                 let v = shape.eval(f - fc - n as f64 * prob.spacing).k;
-                row[slot] = v;
                 m += amplitude * v;
-            }
-        }
+                v
+            },
+        ));
         let level = DB_PER_NEPER * m.max(1e-300).ln();
         cache[i] = level;
         level
