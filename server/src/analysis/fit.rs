@@ -1056,18 +1056,29 @@ fn evaluate(
         let centre = fc + n as f64 * prob.spacing;
         let [s0, s1, s2, s3, s4, s5, s6] = &mut ws.s;
         for &(lo, hi) in runs {
+            // The run's nodes as slices of one length, so that the loops index them unchecked.
+            let run = lo..hi + 1;
+            let freq = &ws.node_freq[run.clone()];
+            let s0 = &mut s0[run.clone()];
             if jacobian && shape.kind == ShapeKind::Measured {
                 // A measured shape has no parameters: its three slopes are zero.
-                for k in lo..=hi {
-                    let (v, dv) = shape.measured_value(ws.node_freq[k] - centre);
+                let (s1, s2, s3) = (&mut s1[run.clone()], &mut s2[run.clone()], &mut s3[run]);
+                for k in 0..freq.len() {
+                    let (v, dv) = shape.measured_value(freq[k] - centre);
                     s0[k] += w * v;
                     s1[k] += dw_beta * v;
                     s2[k] += w * dv;
                     s3[k] += dw_a * v;
                 }
             } else if jacobian {
-                for k in lo..=hi {
-                    let v = shape.eval(ws.node_freq[k] - centre);
+                let (s1, s2, s3) = (
+                    &mut s1[run.clone()],
+                    &mut s2[run.clone()],
+                    &mut s3[run.clone()],
+                );
+                let (s4, s5, s6) = (&mut s4[run.clone()], &mut s5[run.clone()], &mut s6[run]);
+                for k in 0..freq.len() {
+                    let v = shape.eval(freq[k] - centre);
                     s0[k] += w * v.k;
                     s1[k] += dw_beta * v.k;
                     s2[k] += w * v.dx;
@@ -1077,8 +1088,8 @@ fn evaluate(
                     s6[k] += w * v.dl;
                 }
             } else {
-                for k in lo..=hi {
-                    s0[k] += w * shape.eval(ws.node_freq[k] - centre).k;
+                for k in 0..freq.len() {
+                    s0[k] += w * shape.eval(freq[k] - centre).k;
                 }
             }
         }
