@@ -1632,6 +1632,28 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     }
     let amplitudes = &*amplitudes;
     let ranges = &ws.ranges;
+    // The lines that reach a point lie between the first slot up to which some line reaches
+    // past it (the running largest last point) and the last slot from which on some line starts
+    // at or before it (the running smallest first point, from the end): only those are checked.
+    let width = amplitudes.len();
+    let mut reach_end = [0usize; 2 * MAX_ORDER + 1];
+    let mut reach_start = [usize::MAX; 2 * MAX_ORDER + 1];
+    let (reach_end, reach_start) = (&mut reach_end[..width], &mut reach_start[..width]);
+    let mut furthest = 0;
+    for (end, &(lo, hi)) in reach_end.iter_mut().zip(ranges) {
+        if hi >= lo {
+            furthest = furthest.max(hi);
+        }
+        *end = furthest;
+    }
+    let mut nearest = usize::MAX;
+    for (start, &(lo, hi)) in reach_start.iter_mut().zip(ranges).rev() {
+        if hi >= lo {
+            nearest = nearest.min(lo);
+        }
+        *start = nearest;
+    }
+    let (reach_end, reach_start) = (&*reach_end, &*reach_start);
     // The model's level at each point, computed once (the halving below asks for the same
     // points again): valid where the point has a row. Only the rows of the previous cut are
     // cleared (a cut computes the level at a few points per node, not at every point).
@@ -1660,17 +1682,20 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
         // One row per point computed, in order.
         point_row[i] = row_point.len() as u32;
         row_point.push(i);
-        point_shape.extend(amplitudes.iter().zip(ranges).enumerate().map(
-            |(slot, (amplitude, &(lo, hi)))| {
-                if i < lo || i > hi {
-                    return 0.0;
-                }
-                let n = slot as i32 - nmax;
-                let v = shape.eval(f - fc - n as f64 * prob.spacing).k;
-                m += amplitude * v;
-                v
-            },
-        ));
+        let first = reach_end.partition_point(|end| *end < i);
+        let end = reach_start.partition_point(|start| *start <= i).max(first);
+        point_shape.extend(std::iter::repeat_n(0.0, first));
+        point_shape.extend((first..end).map(|slot| {
+            let (lo, hi) = ranges[slot];
+            if i < lo || i > hi {
+                return 0.0;
+            }
+            let n = slot as i32 - nmax;
+            let v = shape.eval(f - fc - n as f64 * prob.spacing).k;
+            m += amplitudes[slot] * v;
+            v
+        }));
+        point_shape.extend(std::iter::repeat_n(0.0, width - end));
         let level = DB_PER_NEPER * m.max(1e-300).ln();
         cache[i] = level;
         level
