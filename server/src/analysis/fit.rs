@@ -887,14 +887,16 @@ struct Workspace {
     points_under: usize,
     /// The model's level at each point while the segments are cut.
     level_cache: Vec<f64>,
-    /// Per point, the row of [`Workspace::point_shape`] that holds each line's K there (computed
+    /// Per point, the row that holds each line's K there in [`Workspace::point_shape`] (computed
     /// with the level while the segments are cut, read again by [`limit_reach`] at the nodes),
-    /// `u32::MAX` where the level was not computed; a row has one entry per order slot, 0 for
-    /// the lines whose window does not hold the point.
+    /// `u32::MAX` where the level was not computed. A row holds the order slots from its first
+    /// to its end (exclusive) in [`Workspace::row_span`], those whose window may hold the
+    /// point; K is 0 at the other slots and at those whose window does not hold the point.
     point_row: Vec<u32>,
     point_shape: Vec<f64>,
-    /// The point of each row of [`Workspace::point_shape`] (the entries of `point_row` to clear
-    /// before the next cut).
+    /// Per row: its start in `point_shape`, its first slot and its end slot.
+    row_span: Vec<(usize, usize, usize)>,
+    /// The point of each row (the entries of `point_row` to clear before the next cut).
     row_point: Vec<usize>,
     /// Scratch for [`reference_noise_uncertainty`]: per node and per point, beta's row of
     /// (J^T J)^-1 dotted with the gradient (per point times c P0 / M), per table entry beta's
@@ -1560,7 +1562,6 @@ fn limit_reach(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Worksp
     ws.local_count.clear();
     ws.local_count.resize(node_count, 0);
     ws.pair_shape.clear();
-    let width = (2 * nmax + 1) as usize;
     for n in -nmax..=nmax {
         let (lo, hi) = ws.node_ranges[(n + nmax) as usize];
         if hi < lo {
@@ -1575,7 +1576,12 @@ fn limit_reach(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Worksp
             let v = if row == u32::MAX {
                 shape.eval(ws.node_freq[k] - fc - n as f64 * prob.spacing).k
             } else {
-                ws.point_shape[row as usize * width + slot]
+                let (start, first, end) = ws.row_span[row as usize];
+                if (first..end).contains(&slot) {
+                    ws.point_shape[start + slot - first]
+                } else {
+                    0.0
+                }
             };
             ws.pair_shape.push(v);
             ws.local_total[k] += amplitude * v;
@@ -1673,6 +1679,8 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     cache.resize(n_points, 0.0);
     let mut point_shape = std::mem::take(&mut ws.point_shape);
     point_shape.clear();
+    let mut row_span = std::mem::take(&mut ws.row_span);
+    row_span.clear();
     let mut level_at = |i: usize| -> f64 {
         if point_row[i] != u32::MAX {
             return cache[i];
@@ -1684,7 +1692,7 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
         row_point.push(i);
         let first = reach_end.partition_point(|end| *end < i);
         let end = reach_start.partition_point(|start| *start <= i).max(first);
-        point_shape.extend(std::iter::repeat_n(0.0, first));
+        row_span.push((point_shape.len(), first, end));
         point_shape.extend((first..end).map(|slot| {
             let (lo, hi) = ranges[slot];
             if i < lo || i > hi {
@@ -1695,7 +1703,6 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
             m += amplitudes[slot] * v;
             v
         }));
-        point_shape.extend(std::iter::repeat_n(0.0, width - end));
         let level = DB_PER_NEPER * m.max(1e-300).ln();
         cache[i] = level;
         level
@@ -1788,6 +1795,7 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     ws.point_row = point_row;
     ws.row_point = row_point;
     ws.point_shape = point_shape;
+    ws.row_span = row_span;
 }
 
 /// The Lagrange basis of a segment's nodes (one, two or three): l_j(f), 1 at node j and 0 at the
