@@ -595,6 +595,33 @@ async fn chain_calibrations_upload_as_json_or_csv_for_admins() {
         .collect();
     assert_eq!(fields, ["points[0].frequency_hz", "points[0].gain_db"]);
 
+    // A name the engine keeps for its flat losses is refused, as JSON and as CSV (a plan with a
+    // flat loss reuses the newest row of that name, so a lab's table under it would stand in for
+    // the flat loss), and nothing is stored.
+    let reserved = serde_json::json!({"name": "flat-loss-2.00dB", "points": [{"frequency_hz": 1e9, "gain_db": -6.0}]});
+    let response = app
+        .post_json("/api/v1/chain-calibrations", Some(&admin), &reserved)
+        .await;
+    assert_eq!(response.status(), 422);
+    let body = problem(response).await;
+    assert_eq!(body["errors"][0]["field"], "name");
+    let message = body["errors"][0]["message"].as_str().unwrap();
+    assert!(message.contains("\"flat-loss-\""), "{message}");
+    let response = app
+        .post_raw(
+            "/api/v1/chain-calibrations?name=%20flat-loss-6.00dB",
+            Some(&admin),
+            "text/csv",
+            "frequency_hz,gain_db\n1e9,-6\n".to_string(),
+        )
+        .await;
+    assert_eq!(response.status(), 422);
+    assert_eq!(problem(response).await["errors"][0]["field"], "name");
+    let list = app
+        .get_json("/api/v1/chain-calibrations", Some(&operator))
+        .await;
+    assert_eq!(list.as_array().unwrap().len(), 2);
+
     // The upload is in the audit log under the token's name.
     let audit = app.store().audit_log(50, None).await.unwrap();
     assert!(audit

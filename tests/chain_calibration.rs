@@ -301,6 +301,22 @@ async fn requests_outside_the_limits_are_refused_naming_each_field() {
     ] {
         assert!(fields.contains(&field), "{field} not in {fields:?}");
     }
+    // The engine's own flat-loss names are refused: a plan with a flat loss would take the
+    // chain stored under one for its loss.
+    let Err(SubmitError::Invalid(invalid)) = engine
+        .submit_chain_calibration(request("flat-loss-2.00dB"), "test")
+        .await
+    else {
+        panic!("a flat-loss name must be refused");
+    };
+    assert!(
+        invalid
+            .errors
+            .iter()
+            .any(|e| e.field == "name" && e.message.contains("\"flat-loss-\"")),
+        "{:?}",
+        invalid.errors
+    );
     let mut req = request("no bench");
     req.bench = "elsewhere".into();
     let err = engine

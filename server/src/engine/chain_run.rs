@@ -110,6 +110,8 @@ impl ChainCalibrationRequest {
                 "name",
                 "give the chain a name of 1 to 200 characters, e.g. \"bench-2 amplifier A\"".into(),
             );
+        } else if let Some(reason) = super::reserved_chain_name(&self.name) {
+            bad("name", reason);
         }
         let f = &self.frequencies_hz;
         let (low_f, high_f) = (

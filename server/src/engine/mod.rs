@@ -135,8 +135,20 @@ struct Inner {
 }
 
 /// The start of the names of the chain calibrations the engine makes for plans with a flat loss
-/// (`flat-loss-2.00dB`); a chain a lab stores is any other name.
+/// (`flat-loss-2.00dB`); a chain a lab stores is any other name (see [`reserved_chain_name`]).
 pub const FLAT_LOSS_PREFIX: &str = "flat-loss-";
+
+/// Why a lab's chain calibration may not be stored under `name`, or `None` when it may. Names
+/// starting with [`FLAT_LOSS_PREFIX`] are the engine's own: a plan with a flat loss reuses the
+/// newest row of its name, so a lab's table stored under it would stand in for the flat loss.
+pub fn reserved_chain_name(name: &str) -> Option<String> {
+    name.trim().starts_with(FLAT_LOSS_PREFIX).then(|| {
+        format!(
+            "names starting with \"{FLAT_LOSS_PREFIX}\" are kept for the flat losses the engine \
+             stores itself; choose another name, e.g. \"bench-2 amplifier A\""
+        )
+    })
+}
 
 /// The engine handle; cheap to clone.
 #[derive(Clone)]

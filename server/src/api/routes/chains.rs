@@ -254,6 +254,8 @@ pub async fn upload_chain(
             0,
             FieldProblem::new("name", "give a name of 1 to 200 characters"),
         );
+    } else if let Some(reason) = crate::engine::reserved_chain_name(&name) {
+        errors.insert(0, FieldProblem::new("name", reason));
     }
     if !errors.is_empty() {
         return Err(Problem::invalid(
