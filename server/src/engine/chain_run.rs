@@ -45,7 +45,8 @@ pub const MAX_FREQUENCIES: usize = 401;
 pub struct ChainCalibrationRequest {
     /// The bench whose source and sensor measure the chain.
     pub bench: String,
-    /// The chain calibration's name; the result is stored as its next version.
+    /// The chain calibration's name; the result is stored as its next version. Not starting
+    /// with `flat-loss-` (the names of the flat losses the engine stores itself).
     #[schema(min_length = 1, max_length = 200)]
     pub name: String,
     /// Frequencies in hertz, ascending, 1 to 401 of them.

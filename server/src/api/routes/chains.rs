@@ -36,7 +36,8 @@ pub const MAX_CHAIN_SOURCES: usize = 64;
 #[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ChainUpload {
-    /// 1 to 200 characters, not only spaces, tabs and line breaks.
+    /// 1 to 200 characters, not only spaces, tabs and line breaks, and not starting with
+    /// `flat-loss-` (the names of the flat losses the engine stores itself).
     #[schema(min_length = 1, max_length = 200, pattern = "[^ \\t\\r\\n]")]
     pub name: String,
     #[schema(min_items = 1, max_items = 10000)]
