@@ -885,25 +885,33 @@ struct Workspace {
     centres: Vec<usize>,
     /// Points under the lines.
     points_under: usize,
-    /// The model's level at each point while the segments are cut.
-    level_cache: Vec<f64>,
-    /// Per point, the row that holds each line's K there in [`Workspace::point_shape`] (computed
-    /// with the level while the segments are cut, read again by [`limit_reach`] at the nodes),
-    /// `u32::MAX` where the level was not computed. A row holds the order slots from its first
-    /// to its end (exclusive) in [`Workspace::row_span`], those whose window may hold the
-    /// point; K is 0 at the other slots and at those whose window does not hold the point.
+    /// The points at which the last cut computed the model, in the order it did (see
+    /// [`ShapeRow`]), and per point the index of its row there, `u32::MAX` where the level was
+    /// not computed (only the rows' points are cleared before the next cut).
+    shape_rows: Vec<ShapeRow>,
     point_row: Vec<u32>,
+    /// The rows' K values, each row's slots one after the other.
     point_shape: Vec<f64>,
-    /// Per row: its start in `point_shape`, its first slot and its end slot.
-    row_span: Vec<(usize, usize, usize)>,
-    /// The point of each row (the entries of `point_row` to clear before the next cut).
-    row_point: Vec<usize>,
     /// Scratch for [`reference_noise_uncertainty`]: per node and per point, beta's row of
     /// (J^T J)^-1 dotted with the gradient (per point times c P0 / M), per table entry beta's
     /// sensitivity.
     noise_node: Vec<f64>,
     noise_point: Vec<f64>,
     noise_sensitivity: Vec<f64>,
+}
+
+/// A point at which the segment cut computed the model: its level, and each line's K there
+/// (read again by [`limit_reach`] at the nodes) for the order slots `first..end`, those whose
+/// window may hold the point, stored from `start` in [`Workspace::point_shape`]; K is 0 at the
+/// other slots and at those whose window does not hold the point.
+#[derive(Debug, Clone, Copy)]
+struct ShapeRow {
+    point: usize,
+    /// The model's level, dB.
+    level: f64,
+    start: usize,
+    first: usize,
+    end: usize,
 }
 
 /// Points between nodes on which the model in dB is taken as the quadratic through the nodes
@@ -1576,7 +1584,9 @@ fn limit_reach(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Worksp
             let v = if row == u32::MAX {
                 shape.eval(ws.node_freq[k] - fc - n as f64 * prob.spacing).k
             } else {
-                let (start, first, end) = ws.row_span[row as usize];
+                let ShapeRow {
+                    start, first, end, ..
+                } = ws.shape_rows[row as usize];
                 if (first..end).contains(&slot) {
                     ws.point_shape[start + slot - first]
                 } else {
@@ -1661,38 +1671,31 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     }
     let (reach_end, reach_start) = (&*reach_end, &*reach_start);
     // The model's level at each point, computed once (the halving below asks for the same
-    // points again): valid where the point has a row. Only the rows of the previous cut are
-    // cleared (a cut computes the level at a few points per node, not at every point).
+    // points again) in a row of its own. Only the previous cut's points are cleared (a cut
+    // computes the level at a few points per node, not at every point).
     let n_points = prob.freq.len();
     let mut point_row = std::mem::take(&mut ws.point_row);
-    let mut row_point = std::mem::take(&mut ws.row_point);
+    let mut rows = std::mem::take(&mut ws.shape_rows);
     if point_row.len() == n_points {
-        for &i in &row_point {
-            point_row[i] = u32::MAX;
+        for row in &rows {
+            point_row[row.point] = u32::MAX;
         }
     } else {
         point_row.clear();
         point_row.resize(n_points, u32::MAX);
     }
-    row_point.clear();
-    let mut cache = std::mem::take(&mut ws.level_cache);
-    cache.resize(n_points, 0.0);
+    rows.clear();
     let mut point_shape = std::mem::take(&mut ws.point_shape);
     point_shape.clear();
-    let mut row_span = std::mem::take(&mut ws.row_span);
-    row_span.clear();
     let mut level_at = |i: usize| -> f64 {
         if point_row[i] != u32::MAX {
-            return cache[i];
+            return rows[point_row[i] as usize].level;
         }
         let f = prob.freq[i];
         let mut m = floor;
-        // One row per point computed, in order.
-        point_row[i] = row_point.len() as u32;
-        row_point.push(i);
         let first = reach_end.partition_point(|end| *end < i);
         let end = reach_start.partition_point(|start| *start <= i).max(first);
-        row_span.push((point_shape.len(), first, end));
+        let start = point_shape.len();
         point_shape.extend((first..end).map(|slot| {
             let (lo, hi) = ranges[slot];
             if i < lo || i > hi {
@@ -1704,7 +1707,14 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
             v
         }));
         let level = DB_PER_NEPER * m.max(1e-300).ln();
-        cache[i] = level;
+        point_row[i] = rows.len() as u32;
+        rows.push(ShapeRow {
+            point: i,
+            level,
+            start,
+            first,
+            end,
+        });
         level
     };
     let centres = &ws.centres;
@@ -1791,11 +1801,9 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
         }
     }
     ws.points_under = under;
-    ws.level_cache = cache;
+    ws.shape_rows = rows;
     ws.point_row = point_row;
-    ws.row_point = row_point;
     ws.point_shape = point_shape;
-    ws.row_span = row_span;
 }
 
 /// The Lagrange basis of a segment's nodes (one, two or three): l_j(f), 1 at node j and 0 at the

@@ -69,7 +69,7 @@ async fn chain_hint(store: &Store) -> Option<String> {
     let chains = store.chain_calibrations().await.ok()?;
     if chains
         .iter()
-        .any(|c| !c.name.starts_with(crate::engine::FLAT_LOSS_PREFIX))
+        .any(|c| !crate::engine::is_flat_loss_name(&c.name))
     {
         return None;
     }

@@ -138,11 +138,17 @@ struct Inner {
 /// (`flat-loss-2.00dB`); a chain a lab stores is any other name (see [`reserved_chain_name`]).
 pub const FLAT_LOSS_PREFIX: &str = "flat-loss-";
 
-/// Why a lab's chain calibration may not be stored under `name`, or `None` when it may. Names
-/// starting with [`FLAT_LOSS_PREFIX`] are the engine's own: a plan with a flat loss reuses the
-/// newest row of its name, so a lab's table stored under it would stand in for the flat loss.
+/// True for the name of a chain calibration the engine makes for a flat loss (the store trims
+/// names, so leading blanks do not count).
+pub fn is_flat_loss_name(name: &str) -> bool {
+    name.trim_start().starts_with(FLAT_LOSS_PREFIX)
+}
+
+/// Why a lab's chain calibration may not be stored under `name`, or `None` when it may. The
+/// flat-loss names ([`is_flat_loss_name`]) are the engine's own: a plan with a flat loss reuses
+/// the newest row of its name, so a lab's table stored under it would stand in for the flat loss.
 pub fn reserved_chain_name(name: &str) -> Option<String> {
-    name.trim().starts_with(FLAT_LOSS_PREFIX).then(|| {
+    is_flat_loss_name(name).then(|| {
         format!(
             "names starting with \"{FLAT_LOSS_PREFIX}\" are kept for the flat losses the engine \
              stores itself; choose another name, e.g. \"bench-2 amplifier A\""
