@@ -140,7 +140,7 @@ async fn a_half_sent_request_holds_neither_the_rf_nor_the_exit_after_sigterm() {
         );
         tokio::time::sleep(Duration::from_millis(2)).await;
     }
-    let mut half_sent = tokio::net::TcpStream::connect(("127.0.0.1", bench.port))
+    let mut half_sent = tokio::net::TcpStream::connect(("127.0.0.1", bench.port()))
         .await
         .unwrap();
     half_sent

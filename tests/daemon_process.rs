@@ -46,15 +46,11 @@ fn missing_configuration_file_is_named() {
 #[test]
 fn serves_health_and_stops_cleanly_on_sigterm() {
     let dir = tempfile::tempdir().unwrap();
-    let port = {
-        let l = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
-        l.local_addr().unwrap().port()
-    };
     let config = dir.path().join("halfwave.toml");
     std::fs::write(
         &config,
         format!(
-            "bind = \"127.0.0.1:{port}\"\ndata_dir = \"{}\"\n\n[[bench]]\nname = \"sim-bench\"\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n[bench.simulation]\nseed = 1\ntime_factor = 0.0\n",
+            "bind = \"127.0.0.1:0\"\ndata_dir = \"{}\"\n\n[[bench]]\nname = \"sim-bench\"\nsource = {{ kind = \"simulated\" }}\nanalyzer = {{ kind = \"simulated\" }}\n[bench.simulation]\nseed = 1\ntime_factor = 0.0\n",
             dir.path().join("data").display()
         ),
     )
@@ -70,6 +66,7 @@ fn serves_health_and_stops_cleanly_on_sigterm() {
     let mut line = String::new();
     stdout.read_line(&mut line).unwrap();
     assert!(line.contains("listening"), "{line}");
+    let port = daemon_support::listening_port(&line);
 
     let mut stream = std::net::TcpStream::connect(("127.0.0.1", port)).unwrap();
     stream

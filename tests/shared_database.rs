@@ -15,11 +15,12 @@ mod daemon_support;
 mod engine_support;
 mod webhook_support;
 
-use daemon_support::free_port;
+use daemon_support::{listening_port, pin_bind_port};
 use halfwave::store::scratch_db::ScratchDatabase;
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
 use std::process::Stdio;
+use std::sync::atomic::{AtomicU16, Ordering};
 use std::time::Duration;
 use tokio::io::{AsyncBufReadExt, BufReader};
 use tokio::process::{Child, Command};
@@ -30,18 +31,18 @@ const LEASE_EXPIRY_S: f64 = 2.0;
 
 struct Lab {
     config: PathBuf,
-    port: u16,
+    /// 0 until the daemon has listened (see [`pin_bind_port`]).
+    port: AtomicU16,
     log: PathBuf,
 }
 
 /// Writes a daemon configuration with one simulated bench named `bench` on the shared database.
 fn lab(dir: &Path, name: &str, bench: &str, database_url: &str, time_factor: f64) -> Lab {
-    let port = free_port();
     let config = dir.join(format!("{name}.toml"));
     std::fs::write(
         &config,
         format!(
-            "bind = \"127.0.0.1:{port}\"\ndata_dir = \"{}\"\ndatabase_url = \"{database_url}\"\n\
+            "bind = \"127.0.0.1:0\"\ndata_dir = \"{}\"\ndatabase_url = \"{database_url}\"\n\
              bench_lease_expiry_s = {LEASE_EXPIRY_S}\n\n\
              [[bench]]\nname = \"{bench}\"\nsource = {{ kind = \"simulated\" }}\n\
              analyzer = {{ kind = \"simulated\" }}\n\
@@ -52,14 +53,24 @@ fn lab(dir: &Path, name: &str, bench: &str, database_url: &str, time_factor: f64
     .unwrap();
     Lab {
         config,
-        port,
+        port: AtomicU16::new(0),
         log: dir.join(format!("{name}.log")),
     }
 }
 
 impl Lab {
+    /// The daemon's HTTP port (known once it has been served).
+    fn port(&self) -> u16 {
+        let port = self.port.load(Ordering::SeqCst);
+        assert_ne!(
+            port, 0,
+            "the lab's port is known once `serve` has started it"
+        );
+        port
+    }
+
     fn url(&self, path: &str) -> String {
-        format!("http://127.0.0.1:{}{path}", self.port)
+        format!("http://127.0.0.1:{}{path}", self.port())
     }
 
     fn log(&self) -> String {
@@ -84,6 +95,14 @@ impl Lab {
             .unwrap()
             .unwrap_or_default();
         assert!(first.contains("listening"), "{first}: {}", self.log());
+        let port = listening_port(&first);
+        match self.port.load(Ordering::SeqCst) {
+            0 => {
+                self.port.store(port, Ordering::SeqCst);
+                pin_bind_port(&self.config, port);
+            }
+            pinned => assert_eq!(port, pinned, "the restarted daemon moved to another port"),
+        }
         tokio::spawn(async move { while let Ok(Some(_)) = lines.next_line().await {} });
         child
     }
@@ -278,7 +297,7 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
     assert_eq!(status, 422, "{body}");
     let text = body.to_string();
     assert!(text.contains("driven by another daemon"), "{text}");
-    assert!(text.contains(&format!("127.0.0.1:{}", b.port)), "{text}");
+    assert!(text.contains(&format!("127.0.0.1:{}", b.port())), "{text}");
 
     // A third daemon configuring lab A's bench is refused while lab A's daemon lives.
     let c = lab(dir.path(), "lab-c", "north-bench", database.url(), 0.0);
@@ -335,7 +354,8 @@ async fn two_labs_share_one_postgres_database_with_bench_leases() {
     .await;
     assert_eq!(status, 422, "{body}");
     assert!(
-        body.to_string().contains(&format!("127.0.0.1:{}", c.port)),
+        body.to_string()
+            .contains(&format!("127.0.0.1:{}", c.port())),
         "{body}"
     );
 }
@@ -374,8 +394,8 @@ async fn webhooks_of_two_daemons_on_one_database_are_each_sent_once_by_their_own
     let b = lab(dir.path(), "lab-b", "south-bench", database.url(), 0.0);
     let both = Receiver::start_on(0, 0).await;
     let both_url = both.url("/both");
-    let a_only_port = free_port();
-    let a_only_url = format!("http://127.0.0.1:{a_only_port}/lab-a");
+    let a_only_port = webhook_support::reserved_port();
+    let a_only_url = format!("http://127.0.0.1:{}/lab-a", a_only_port.port);
     add_webhook(&a, dir.path(), &both_url);
     add_webhook(&a, dir.path(), &a_only_url);
     add_webhook(&b, dir.path(), &both_url);
@@ -405,7 +425,7 @@ async fn webhooks_of_two_daemons_on_one_database_are_each_sent_once_by_their_own
         "lab B failed a row it has no receiver for"
     );
     assert_eq!(counts.pending, 1, "{counts:?}");
-    let a_only = Receiver::start_on(a_only_port, 0).await;
+    let a_only = Receiver::start_reserved(a_only_port, 0);
     let got = bodies(&a_only, 1, Duration::from_secs(2)).await;
     assert_eq!(got.len(), 1, "{got:?}");
     assert_eq!(got[0]["run_id"].as_i64(), Some(run_a), "{got:?}");

@@ -313,7 +313,8 @@ async fn a_receiver_down_then_up_gets_the_delivery_on_a_later_attempt_with_growi
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
     // Nothing listens on this port until the daemon has stopped.
-    let port = daemon_support::free_port();
+    let reserved = webhook_support::reserved_port();
+    let port = reserved.port;
     let bench = Bench::new(43).await;
     add_webhook(
         &bench,
@@ -345,7 +346,7 @@ async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
 
     // The receiver comes up; the restarted daemon sends what was pending at once, despite the
     // hour-long backoff.
-    let receiver = Receiver::start_on(port, 0).await;
+    let receiver = Receiver::start_reserved(reserved, 0);
     let _daemon = bench.serve("second.log").await;
     let got = receiver.wait_for(1, Duration::from_secs(30)).await;
     let body = verified(&got[0]);

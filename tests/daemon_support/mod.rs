@@ -11,6 +11,7 @@ use halfwave_drivers::sim::{Role, Scenario, SimBench};
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
 use std::process::Stdio;
+use std::sync::atomic::{AtomicU16, Ordering};
 use std::time::Duration;
 use tokio::io::{AsyncBufReadExt, BufReader};
 use tokio::process::{Child, Command};
@@ -22,14 +23,33 @@ pub const TIME_FACTOR: f64 = 0.2;
 pub struct Bench {
     pub dir: tempfile::TempDir,
     pub config: PathBuf,
-    pub port: u16,
+    /// The daemon's HTTP port: 0 until the first [`Bench::serve`] reads it from the daemon.
+    port: AtomicU16,
     pub server: SimServer,
     pub client: reqwest::Client,
 }
 
-pub fn free_port() -> u16 {
-    let l = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
-    l.local_addr().unwrap().port()
+/// The port in the daemon's first stdout line, "halfwave listening on http://127.0.0.1:PORT/ ...".
+pub fn listening_port(line: &str) -> u16 {
+    line.split("http://127.0.0.1:")
+        .nth(1)
+        .and_then(|rest| rest.split('/').next())
+        .and_then(|port| port.parse().ok())
+        .unwrap_or_else(|| panic!("no 127.0.0.1 port in the daemon's first line: {line:?}"))
+}
+
+/// Daemons in the tests bind port 0 and report the port the system gave them: a port picked in
+/// advance and released could be taken by another test's connection before the daemon binds it.
+/// Once a daemon has listened, its configuration is pinned to that port (`bind = "127.0.0.1:0"`
+/// becomes the port), so a restart comes back on the same address.
+pub fn pin_bind_port(config: &Path, port: u16) {
+    let text = std::fs::read_to_string(config).unwrap();
+    let pinned = text.replacen(
+        "bind = \"127.0.0.1:0\"",
+        &format!("bind = \"127.0.0.1:{port}\""),
+        1,
+    );
+    std::fs::write(config, pinned).unwrap();
 }
 
 impl Bench {
@@ -39,12 +59,11 @@ impl Bench {
         let server = SimServer::start(sim, SimServerConfig::any_free_ports())
             .await
             .unwrap();
-        let port = free_port();
         let config = dir.path().join("halfwave.toml");
         std::fs::write(
             &config,
             format!(
-                "bind = \"127.0.0.1:{port}\"\ndata_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\" }}\n",
+                "bind = \"127.0.0.1:0\"\ndata_dir = \"{}\"\n\n[[bench]]\nname = \"sim\"\nsource = {{ kind = \"scpi\", resource = \"{}\" }}\nanalyzer = {{ kind = \"scpi\", resource = \"{}\" }}\n",
                 dir.path().join("data").display(),
                 server.resource(Role::RfSource),
                 server.resource(Role::Analyzer),
@@ -54,7 +73,7 @@ impl Bench {
         Bench {
             dir,
             config,
-            port,
+            port: AtomicU16::new(0),
             server,
             client: reqwest::Client::new(),
         }
@@ -95,6 +114,14 @@ impl Bench {
             "{first}: {}",
             self.log(log_name)
         );
+        let port = listening_port(&first);
+        match self.port.load(Ordering::SeqCst) {
+            0 => {
+                self.port.store(port, Ordering::SeqCst);
+                pin_bind_port(&self.config, port);
+            }
+            pinned => assert_eq!(port, pinned, "the restarted daemon moved to another port"),
+        }
         // Keep reading stdout so the daemon never blocks on a full pipe.
         tokio::spawn(async move { while let Ok(Some(_)) = lines.next_line().await {} });
         child
@@ -104,8 +131,18 @@ impl Bench {
         std::fs::read_to_string(self.dir.path().join(name)).unwrap_or_default()
     }
 
+    /// The daemon's HTTP port (known once it has been served).
+    pub fn port(&self) -> u16 {
+        let port = self.port.load(Ordering::SeqCst);
+        assert_ne!(
+            port, 0,
+            "the daemon's port is known once `serve` has started it"
+        );
+        port
+    }
+
     pub fn url(&self, path: &str) -> String {
-        format!("http://127.0.0.1:{}{path}", self.port)
+        format!("http://127.0.0.1:{}{path}", self.port())
     }
 
     /// The value on the `/api/v1/metrics` line that starts with `line_start` (a metric's name

@@ -26,8 +26,35 @@ pub struct Receiver {
     pub port: u16,
 }
 
+/// A port held for a receiver that is not up yet: bound but not listening, so a delivery to it is
+/// refused at once (as to a receiver that is down), and no other socket can take the port before
+/// [`Receiver::start_reserved`] listens on it.
+pub struct ReservedPort {
+    socket: tokio::net::TcpSocket,
+    pub port: u16,
+}
+
+pub fn reserved_port() -> ReservedPort {
+    let socket = tokio::net::TcpSocket::new_v4().unwrap();
+    socket.bind("127.0.0.1:0".parse().unwrap()).unwrap();
+    let port = socket.local_addr().unwrap().port();
+    ReservedPort { socket, port }
+}
+
 impl Receiver {
     pub async fn start_on(port: u16, fail_first: usize) -> Receiver {
+        let listener = tokio::net::TcpListener::bind(("127.0.0.1", port))
+            .await
+            .unwrap();
+        Self::serve(listener, fail_first)
+    }
+
+    /// Starts the receiver on a port held by [`reserved_port`].
+    pub fn start_reserved(reserved: ReservedPort, fail_first: usize) -> Receiver {
+        Self::serve(reserved.socket.listen(1024).unwrap(), fail_first)
+    }
+
+    fn serve(listener: tokio::net::TcpListener, fail_first: usize) -> Receiver {
         let got: Arc<Mutex<Vec<Received>>> = Arc::default();
         let count = Arc::new(AtomicUsize::new(0));
         let recorder = got.clone();
@@ -50,9 +77,6 @@ impl Receiver {
                 }
             },
         );
-        let listener = tokio::net::TcpListener::bind(("127.0.0.1", port))
-            .await
-            .unwrap();
         let port = listener.local_addr().unwrap().port();
         tokio::spawn(async move { axum::serve(listener, app).await.unwrap() });
         Receiver { got, port }
