@@ -149,6 +149,23 @@ async fn source_link_reset_for_3_s_output_off_within_2_s_of_return_and_bench_hel
         metric(&bench, &token, "halfwave_bench_rf_output_unconfirmed").await,
         Some(1.0)
     );
+    // An acknowledgement while the output is unconfirmed is refused (409), naming why, and
+    // leaves the bench flagged (README, "Safety under faults").
+    let early = bench
+        .post(
+            "/api/v1/benches/sim/acknowledge",
+            &token,
+            &json!({"note": "too early"}),
+        )
+        .await;
+    assert_eq!(early.status(), 409);
+    let problem: Value = early.json().await.unwrap();
+    assert!(
+        problem.to_string().contains("not confirmed off yet"),
+        "{problem}"
+    );
+    let status = bench.bench_status(&token).await;
+    assert_eq!(status["safety_state"], "output_unconfirmed", "{status}");
     let remaining = Duration::from_secs(3).saturating_sub(outage.elapsed());
     tokio::time::sleep(remaining).await;
     assert!(

@@ -56,6 +56,31 @@ async fn whole_run_recovers_the_scenario_v_pi_within_two_percent() {
         !sim.overdriven(),
         "the run must never exceed the modulator's RF limit"
     );
+    // The output is switched off at the end of each frequency (README, "Calibration runs"): the
+    // source's commands, cut at each frequency setting, end every frequency's block with the
+    // output switched off and no level set after it, and each block was driven (on, then off).
+    let log = sim.command_log(Role::RfSource);
+    let starts: Vec<usize> = (0..log.len())
+        .filter(|&i| log[i].starts_with("FREQ"))
+        .collect();
+    assert_eq!(starts.len(), FREQUENCIES_HZ.len(), "{log:?}");
+    for (k, &start) in starts.iter().enumerate() {
+        let end = starts.get(k + 1).copied().unwrap_or(log.len());
+        let block = &log[start..end];
+        let switched_on = block.iter().position(|c| c == "OUTP ON");
+        let last_off = block.iter().rposition(|c| c == "OUTP OFF");
+        assert!(
+            matches!((switched_on, last_off), (Some(on), Some(off)) if off > on),
+            "frequency {k}: {block:?}"
+        );
+        let after_off = &block[last_off.unwrap() + 1..];
+        assert!(
+            after_off
+                .iter()
+                .all(|c| !c.starts_with("POW") && c != "OUTP ON"),
+            "frequency {k} drives the source after switching it off: {block:?}"
+        );
+    }
 
     let run = store.run(run_id).await.unwrap();
     assert_eq!(run.state, RunState::Completed);

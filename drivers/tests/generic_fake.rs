@@ -376,6 +376,19 @@ async fn analyzer_refuses_impossible_settings_and_survives_a_drop_mid_sweep() {
     );
     let trace = analyzer.fetch_trace().await.unwrap();
     assert_eq!(trace.len(), 1001);
+    // A point count past the profile's maximum in the fetch's own query (a wrong device on the
+    // port, a garbled reply) is refused by name before anything is sized by it: 1e15 points
+    // would ask for petabytes and abort the daemon with the RF output on.
+    fake.state().points = 1_000_000_000_000_000;
+    let err = analyzer.fetch_trace().await.unwrap_err();
+    assert!(matches!(err, InstrumentError::Parse { .. }), "{err:?}");
+    let text = err.to_string();
+    assert!(
+        text.contains("1000000000000000 points") && text.contains("capabilities.max_points"),
+        "{text}"
+    );
+    fake.state().points = 1001;
+    assert_eq!(analyzer.fetch_trace().await.unwrap().len(), 1001);
 }
 
 #[tokio::test]
@@ -448,6 +461,15 @@ async fn an_unusable_profile_is_refused_before_connecting() {
         .unwrap_err();
     assert!(matches!(err, InstrumentError::BadProfile { .. }), "{err:?}");
     assert!(err.to_string().contains("commands.set_frequency"), "{err}");
+    assert_eq!(fake.state().connections, 0);
+    // An analyzer profile that would let a trace be sized past what the store keeps (2^24).
+    let mut profile = quick_analyzer_profile(DataFormat::Ascii, ByteOrder::Normal);
+    profile.capabilities.max_points = (1 << 24) + 1;
+    let err = ScpiSpectrumAnalyzer::connect(&fake.resource(), profile)
+        .await
+        .unwrap_err();
+    assert!(matches!(err, InstrumentError::BadProfile { .. }), "{err:?}");
+    assert!(err.to_string().contains("capabilities.max_points"), "{err}");
     assert_eq!(fake.state().connections, 0);
 }
 

@@ -489,13 +489,20 @@ impl SpectrumAnalyzer for ScpiSpectrumAnalyzer {
         let points_reply = self.session.query(&c.query_points).await?;
         let points = parse_integer(&points_reply)
             .map_err(|e| self.session.parse_error(&c.query_points, e))?;
+        // The count sizes the axis and the trace before any of their data is read: a count
+        // beyond what the profile allows (a wrong device on the port, a garbled reply) is refused
+        // here, not allocated.
+        let max_points = self.profile.capabilities.max_points;
         let points = usize::try_from(points)
             .ok()
-            .filter(|p| *p >= Trace::MIN_POINTS)
+            .filter(|p| (Trace::MIN_POINTS..=max_points).contains(p))
             .ok_or_else(|| {
                 self.session.parse_error(
                     &c.query_points,
-                    ParseError(format!("the instrument reports {points} points")),
+                    ParseError(format!(
+                        "the instrument reports {points} points; a trace holds {} to {max_points} (the profile's capabilities.max_points)",
+                        Trace::MIN_POINTS
+                    )),
                 )
             })?;
         let rbw = self
