@@ -486,6 +486,108 @@ async fn an_interrupted_run_can_be_cancelled_and_keeps_its_points() {
     engine.shutdown().await;
 }
 
+/// A generator that puts out another frequency than it was set to (here 1.5 times it, and says
+/// it is on the set one): the analyzer shows a comb 3 GHz apart where the plan drives 2 GHz. The
+/// engine checks the spacing on every point, so each point fails naming the spacing the trace
+/// shows, and after three in a row the run stops with the RF off (README, "Offline analysis":
+/// "The engine runs the same check on every point").
+struct WrongFrequencySource(halfwave_drivers::sim::SimRfSource);
+
+#[async_trait::async_trait]
+impl halfwave_drivers::RfSource for WrongFrequencySource {
+    fn resource(&self) -> &str {
+        self.0.resource()
+    }
+    async fn identify(
+        &mut self,
+    ) -> Result<halfwave_drivers::Identity, halfwave_drivers::InstrumentError> {
+        self.0.identify().await
+    }
+    fn limits(&self) -> halfwave_drivers::SourceLimits {
+        self.0.limits()
+    }
+    async fn set_frequency(
+        &mut self,
+        frequency: halfwave_units::Hz,
+    ) -> Result<halfwave_units::Hz, halfwave_drivers::InstrumentError> {
+        self.0
+            .set_frequency(halfwave_units::Hz(1.5 * frequency.0))
+            .await
+            .map(|_| frequency)
+    }
+    async fn set_level(&mut self, level: Dbm) -> Result<Dbm, halfwave_drivers::InstrumentError> {
+        self.0.set_level(level).await
+    }
+    async fn set_output(&mut self, on: bool) -> Result<bool, halfwave_drivers::InstrumentError> {
+        self.0.set_output(on).await
+    }
+    async fn output_enabled(&mut self) -> Result<bool, halfwave_drivers::InstrumentError> {
+        self.0.output_enabled().await
+    }
+    async fn safe_off(&mut self) -> Result<(), halfwave_drivers::InstrumentError> {
+        self.0.safe_off().await
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_generator_on_the_wrong_frequency_fails_its_points_naming_the_spacing_shown() {
+    use halfwave::engine::plan::{FrequencySpec, LevelSpec};
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let sim = SimBench::new(scenario.clone(), 17).with_time_factor(0.0);
+    let chain = upload_true_chain(&store, &scenario).await;
+    let instruments = BenchInstruments {
+        source: Box::new(WrongFrequencySource(sim.rf_source())),
+        ..BenchInstruments::simulated(sim.clone())
+    };
+    let engine = Engine::start_with(
+        Limits::default(),
+        store.clone(),
+        vec![("sim".into(), instruments)],
+    )
+    .await
+    .unwrap();
+    let mut events = engine.subscribe();
+    let mut request = plan(&chain);
+    request.frequencies = FrequencySpec::List {
+        values_hz: vec![2e9],
+    };
+    // Levels whose sidebands stand well above the floor (beta about 0.8 to 2.5).
+    request.levels = LevelSpec::Ramp {
+        start_dbm: Dbm(10.0),
+        stop_dbm: Dbm(20.0),
+        step_db: Db(2.5),
+    };
+    let run_id = engine.submit(request, "test").await.unwrap();
+    let (state, cause) = wait_for_end(&mut events, run_id).await;
+    assert_eq!(state, "failed", "{cause:?}");
+    assert!(!sim.rf_output_on(), "RF off after the stop");
+    let cause = cause.unwrap_or_default();
+    assert!(cause.contains("in a row could not be analysed"), "{cause}");
+    let points = store.points_of_run(run_id).await.unwrap();
+    assert_eq!(points.len(), 3, "three failed points, kept");
+    for p in &points {
+        assert!(p.modulation_index.is_none());
+        let analysis: serde_json::Value = serde_json::from_str(&p.analysis_json).unwrap();
+        let error = analysis["error"].as_str().unwrap_or_default();
+        let shown: f64 = error
+            .strip_prefix("the trace shows lines ")
+            .and_then(|rest| rest.split(' ').next())
+            .and_then(|hz| hz.parse().ok())
+            .unwrap_or(0.0);
+        assert!(
+            (shown / 3e9 - 1.0).abs() < 0.01
+                && error.contains("not the 2000000000 Hz given")
+                && error.contains("check the generator frequency"),
+            "{error}"
+        );
+    }
+    engine.shutdown().await;
+}
+
 /// Light lost mid-run (the fibre to the analyzer unplugged): the spectra show only the noise
 /// floor, the points cannot be analysed, and after three in a row the run stops with the RF
 /// already off when it is reported, the cause recorded and the points kept.

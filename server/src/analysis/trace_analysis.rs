@@ -657,6 +657,46 @@ mod tests {
             Err(AnalysisError::LinesNotResolved { .. }
                 | AnalysisError::SpacingBelowResolution { .. })
         ));
+        // Lines narrower than 0.8 of the point spacing (README, "Offline analysis"): refused,
+        // naming the spacing, the width and what to change; at 0.9 of it the trace is fitted.
+        let base = comb(1.0, 0.0);
+        let step = (base.stop.0 - base.start.0) / (base.points - 1) as f64;
+        for (ratio, seed) in [(0.3, 803), (0.7, 804)] {
+            let mut coarse = comb(1.0, 0.0);
+            coarse.resolution_bandwidth = Hz(ratio * step);
+            let err = analyze_trace(&draw(&coarse, seed), SPACING, None, &options).unwrap_err();
+            assert!(matches!(err, AnalysisError::TooCoarse(_)), "{err:?}");
+            let text = err.to_string();
+            assert!(
+                text.contains(&Hz(step).to_string()) && text.contains("record more points"),
+                "{text}"
+            );
+        }
+        let mut fine_enough = comb(1.0, 0.0);
+        fine_enough.resolution_bandwidth = Hz(0.9 * step);
+        let fitted = analyze_trace(&draw(&fine_enough, 805), SPACING, None, &options).unwrap();
+        assert!(relative_error(fitted.modulation_index.value, 1.0) < 0.01);
+        // Two lasers on the analyzer (a second comb, 6 dB weaker, 0.37 spacing off the first):
+        // no comb model describes it, and the residual far above the display noise refuses it.
+        let first = comb(1.0, 0.0);
+        let mut second = comb(1.0, 0.0);
+        second.carrier = Hz(first.carrier.0 + 0.37 * SPACING.0);
+        second.total_power = Dbm(-6.0);
+        let (a, b) = (draw(&first, 806), draw(&second, 807));
+        let both: Vec<f64> = a
+            .power_dbm()
+            .iter()
+            .zip(b.power_dbm())
+            .map(|(x, y)| 10.0 * (10f64.powf(x / 10.0) + 10f64.powf(y / 10.0)).log10())
+            .collect();
+        let two = Trace::new(a.frequency_hz().to_vec(), both, None).unwrap();
+        let err = analyze_trace(&two, SPACING, None, &options).unwrap_err();
+        assert!(matches!(err, AnalysisError::FitFailed(_)), "{err:?}");
+        assert!(
+            err.to_string().contains("does not describe the trace")
+                && err.to_string().contains("one laser"),
+            "{err}"
+        );
         // Only noise: no comb.
         let mut dark = comb(1.0, 0.0);
         dark.total_power = Dbm(-120.0);
