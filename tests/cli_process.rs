@@ -857,6 +857,25 @@ async fn the_record_verbs(
     assert_eq!(cancels[0].action, "run.cancel");
     let resumed = run(&["resume", &third]).await;
     failed_with(&resumed, &["409", "cancelled"]);
+
+    // submit follows its run to the end and exits non-zero unless it completed (README, "CLI
+    // tour"): a run cancelled while submit follows it.
+    let fourth = (third.parse::<i64>().unwrap() + 1).to_string();
+    let follow = run(&["submit", dir_plan.to_str().unwrap()]);
+    let cancel_when_stored = async {
+        let deadline = std::time::Instant::now() + std::time::Duration::from_secs(60);
+        while !run(&["show", &fourth, "--json"]).await.status.success() {
+            assert!(
+                std::time::Instant::now() < deadline,
+                "run {fourth} never appeared"
+            );
+            tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+        }
+        let cancelled = run(&["cancel", &fourth]).await;
+        assert!(cancelled.status.success(), "{}", stderr(&cancelled));
+    };
+    let (followed, ()) = tokio::join!(follow, cancel_when_stored);
+    failed_with(&followed, &[&format!("run {fourth} ended cancelled")]);
 }
 
 #[tokio::test]
@@ -1061,6 +1080,40 @@ async fn check_bench_never_sends_a_command_that_switches_rf_on() {
     let on: Vec<&String> = log.iter().filter(|c| switches_output_on(c)).collect();
     assert!(on.is_empty(), "check-bench sent {on:?}");
     assert!(!server.bench().rf_output_on());
+
+    // A source whose output is found on (a run may be measuring) is left untouched: no setting
+    // and no switch-off is sent, the output stays on, and the check fails saying why.
+    {
+        use halfwave_drivers::RfSource;
+        let mut source = server.bench().rf_source();
+        source.set_output(true).await.unwrap();
+    }
+    assert!(server.bench().rf_output_on());
+    server.bench().clear_command_log(SimRole::RfSource);
+    let out = halfwave_async(&["check-bench", "--config", config.to_str().unwrap()]).await;
+    assert!(!out.status.success(), "{}", stdout(&out));
+    assert!(
+        format!("{}{}", stdout(&out), stderr(&out)).contains("settings were left untouched"),
+        "{}{}",
+        stdout(&out),
+        stderr(&out)
+    );
+    let log = server.bench().command_log(SimRole::RfSource);
+    let changes: Vec<&String> = log
+        .iter()
+        .filter(|c| {
+            let header = c.split_whitespace().next().unwrap_or("");
+            !header.ends_with('?') && !header.starts_with('*')
+        })
+        .collect();
+    assert!(
+        changes.is_empty(),
+        "check-bench changed the source: {changes:?}"
+    );
+    assert!(
+        server.bench().rf_output_on(),
+        "the output was left as found"
+    );
     server.shutdown().await;
 }
 

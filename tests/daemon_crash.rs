@@ -95,20 +95,30 @@ async fn sigkill_mid_run_then_restart_and_resume_completes_every_point_once() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn sigterm_mid_run_marks_the_run_interrupted_with_rf_off() {
-    let bench = Bench::new(32).await;
+    stop_mid_run_marks_the_run_interrupted_with_rf_off(libc::SIGTERM, "SIGTERM", 32).await;
+}
+
+/// Ctrl-C in the daemon's terminal: the same stop path as SIGTERM (README, "Safety").
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn sigint_mid_run_marks_the_run_interrupted_with_rf_off() {
+    stop_mid_run_marks_the_run_interrupted_with_rf_off(libc::SIGINT, "SIGINT", 35).await;
+}
+
+async fn stop_mid_run_marks_the_run_interrupted_with_rf_off(signal: i32, name: &str, seed: u64) {
+    let bench = Bench::new(seed).await;
     let token = bench.operator_token().await;
     let (mut daemon, run_id) = daemon_support::serve_mid_run(&bench, "daemon.log", &token, 5).await;
     let pid = daemon.id().expect("the daemon is running") as i32;
     // SAFETY: kill(2) with a valid pid and signal number has no memory-safety preconditions.
-    assert_eq!(unsafe { libc::kill(pid, libc::SIGTERM) }, 0);
+    assert_eq!(unsafe { libc::kill(pid, signal) }, 0);
     let status = tokio::time::timeout(Duration::from_secs(20), daemon.wait())
         .await
-        .expect("the daemon exits within 20 s of SIGTERM")
+        .unwrap_or_else(|_| panic!("the daemon exits within 20 s of {name}"))
         .unwrap();
     assert!(status.success(), "{status:?}: {}", bench.log("daemon.log"));
     assert!(
         !bench.server.bench().rf_output_on(),
-        "RF left on after SIGTERM"
+        "RF left on after {name}"
     );
     let store = Store::open(bench.database().to_str().unwrap())
         .await

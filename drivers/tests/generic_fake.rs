@@ -126,11 +126,14 @@ async fn the_source_learns_its_ranges_from_the_instrument() {
     let source = ScpiRfSource::connect(&fake.resource(), profile)
         .await
         .unwrap();
-    let defaults = halfwave_drivers::profile::SourceLimitsProfile::CONSERVATIVE;
+    // The conservative default as README states it (10 MHz to 20 GHz, -100 to +10 dBm): the
+    // values written out, so that raising the constant fails here.
     assert_eq!(source.limits().min_level, Dbm(-50.0));
-    assert_eq!(source.limits().max_level, defaults.max_level);
-    assert_eq!(source.limits().min_frequency, defaults.min_frequency);
-    assert_eq!(source.limits().max_frequency, defaults.max_frequency);
+    assert_eq!(source.limits().max_level, Dbm(10.0));
+    assert_eq!(source.limits().min_frequency, Hz(10e6));
+    assert_eq!(source.limits().max_frequency, Hz(20e9));
+    let defaults = halfwave_drivers::profile::SourceLimitsProfile::CONSERVATIVE;
+    assert_eq!(defaults.min_level, Dbm(-100.0));
     // The refusal was read and cleared at connect, not left for a later command.
     assert!(fake.state().errors.is_empty());
 }
