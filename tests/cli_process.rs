@@ -64,8 +64,10 @@ const SIMULATED_CONFIG: &str = "bind = \"127.0.0.1:0\"\n\n[[bench]]\nname = \"si
 
 #[test]
 fn every_subcommand_has_help() {
-    let subcommands: [(&[&str], &str); 29] = [
+    let subcommands: [(&[&str], &str); 31] = [
         (&["demo"], "--data-dir"),
+        (&["benches"], "--token"),
+        (&["acknowledge"], "--note"),
         (&["serve"], "--config"),
         (&["sim"], "--scenario"),
         (&["analyze"], "--modulation-frequency"),

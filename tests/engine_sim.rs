@@ -567,6 +567,7 @@ async fn a_generator_on_the_wrong_frequency_fails_its_points_naming_the_spacing_
     assert!(!sim.rf_output_on(), "RF off after the stop");
     let cause = cause.unwrap_or_default();
     assert!(cause.contains("in a row could not be analysed"), "{cause}");
+    assert!(!store.run(run_id).await.unwrap().resumable);
     let points = store.points_of_run(run_id).await.unwrap();
     assert_eq!(points.len(), 3, "three failed points, kept");
     for p in &points {
@@ -628,6 +629,9 @@ async fn analysis_failures_in_a_row_stop_the_run_with_rf_off_first() {
     assert!(cause.contains("in a row could not be analysed"), "{cause}");
     let run = store.run(run_id).await.unwrap();
     assert_eq!(run.cause.as_deref(), Some(cause.as_str()));
+    // Not a link fault: not resumable (README, "Safety under faults").
+    assert!(!run.resumable, "{run:?}");
+    assert!(engine.resume(run_id, "test").await.is_err());
     let points = store.points_of_run(run_id).await.unwrap();
     let unanalysed = points
         .iter()
