@@ -56,6 +56,13 @@ async fn unknown_and_revoked_tokens_get_401() {
         .await
         .unwrap();
     assert_eq!(revoke.status(), 204);
+    let audit = app.store().audit_log(100, None).await.unwrap();
+    assert!(
+        audit
+            .iter()
+            .any(|e| e.action == "token.revoke" && e.subject == "lab-b" && e.actor == "root"),
+        "{audit:?}"
+    );
     // Refused on the very next request: revoking through the API clears the cached verification.
     let after = app.get("/api/v1/metrics", Some(&viewer)).await;
     assert_eq!(after.status(), 401);
@@ -116,6 +123,16 @@ async fn token_management_is_for_admins_only() {
         .post_json("/api/v1/tokens", Some(&admin), &new_token)
         .await;
     assert_eq!(again.status(), 409);
+
+    // Creating a token through the API is audited with the admin's name (README: every mutating
+    // call is written to the audit log).
+    let audit = app.store().audit_log(100, None).await.unwrap();
+    assert!(
+        audit
+            .iter()
+            .any(|e| e.action == "token.create" && e.subject == "ci-bot" && e.actor == "admin-1"),
+        "{audit:?}"
+    );
 
     // The list never contains secrets, only their holders.
     let list = app.get("/api/v1/tokens", Some(&admin)).await;
@@ -557,4 +574,67 @@ async fn every_problem_carries_the_request_id_of_its_header() {
     // A successful answer carries the header too.
     let health = app.get("/api/v1/health", None).await;
     assert!(health.headers().contains_key("x-request-id"));
+}
+
+/// CORS is off by default: a page served elsewhere gets no `Access-Control-Allow-Origin`, so a
+/// browser keeps it from reading the API; with origins configured (`HALFWAVE_CORS_ORIGINS`,
+/// read into `ApiSettings`), exactly those get one, on a preflight too (README, "HTTP API and
+/// dashboard"; the CORS headers are those of the Fetch standard).
+#[tokio::test]
+async fn cors_is_off_unless_origins_are_configured() {
+    use halfwave::api::{ApiSettings, AppState};
+    let cross_origin_get = |app: &api_support::TestApp, origin: &'static str| {
+        let request = app
+            .client
+            .get(app.url("/api/v1/health"))
+            .header("Origin", origin);
+        async move { request.send().await.unwrap() }
+    };
+    let allowed = |response: &reqwest::Response| {
+        response
+            .headers()
+            .get("access-control-allow-origin")
+            .map(|v| v.to_str().unwrap().to_string())
+    };
+
+    let off = spawn_app().await;
+    let response = cross_origin_get(&off, "https://other.example").await;
+    assert_eq!(response.status(), 200);
+    assert_eq!(allowed(&response), None);
+
+    let dir = tempfile::tempdir().unwrap();
+    let store = halfwave::store::Store::open(dir.path().join("h.sqlite").to_str().unwrap())
+        .await
+        .unwrap();
+    let settings = ApiSettings {
+        cors_allowed_origins: vec!["https://lab-b.example".into()],
+        ..ApiSettings::default()
+    };
+    let on = api_support::serve_state(AppState::new(store, settings), dir).await;
+    let response = cross_origin_get(&on, "https://lab-b.example").await;
+    assert_eq!(allowed(&response).as_deref(), Some("https://lab-b.example"));
+    let response = cross_origin_get(&on, "https://other.example").await;
+    assert_eq!(allowed(&response), None);
+    let preflight = on
+        .client
+        .request(reqwest::Method::OPTIONS, on.url("/api/v1/runs"))
+        .header("Origin", "https://lab-b.example")
+        .header("Access-Control-Request-Method", "POST")
+        .header(
+            "Access-Control-Request-Headers",
+            "authorization,content-type",
+        )
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(
+        allowed(&preflight).as_deref(),
+        Some("https://lab-b.example")
+    );
+    let methods = preflight
+        .headers()
+        .get("access-control-allow-methods")
+        .map(|v| v.to_str().unwrap().to_ascii_uppercase())
+        .unwrap_or_default();
+    assert!(methods.contains("POST"), "{methods}");
 }

@@ -455,6 +455,13 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     let mut events = engine.subscribe();
     engine.resume(run_id, "test").await.unwrap();
     assert_eq!(wait_for_end(&mut events, run_id).await.0, "completed");
+    let audit = store.audit_log(100, None).await.unwrap();
+    assert!(
+        audit
+            .iter()
+            .any(|e| e.action == "run.resume" && e.subject == format!("run:{run_id}")),
+        "{audit:?}"
+    );
     let points = store.points_of_run(run_id).await.unwrap();
     assert_eq!(points.len(), POINTS, "same count as an uninterrupted run");
     let results = store.frequency_results(run_id).await.unwrap();
