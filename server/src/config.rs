@@ -587,5 +587,56 @@ mod tests {
             )])
             .unwrap_err();
         assert!(err.to_string().contains("HALFWAVE_MAX_LEVEL"), "{err}");
+        // Every override README names takes effect (its "Configuration" table's keys).
+        let c = parse("")
+            .unwrap()
+            .with_env_overrides([
+                ("HALFWAVE_DATA_DIR".to_string(), "/srv/halfwave".to_string()),
+                (
+                    "HALFWAVE_DATABASE_URL".to_string(),
+                    "postgres://halfwave@db.lab.example/halfwave".to_string(),
+                ),
+                (
+                    "HALFWAVE_MAX_LEVEL_AT_MODULATOR_DBM".to_string(),
+                    "12.5".to_string(),
+                ),
+            ])
+            .unwrap();
+        assert_eq!(c.data_dir, PathBuf::from("/srv/halfwave"));
+        assert_eq!(
+            c.database_url.as_deref(),
+            Some("postgres://halfwave@db.lab.example/halfwave")
+        );
+        assert_eq!(c.limits.max_level_at_modulator_dbm, Dbm(12.5));
+        // An override is checked like the file's value.
+        let err = c
+            .with_env_overrides([(
+                "HALFWAVE_MAX_LEVEL_AT_MODULATOR_DBM".to_string(),
+                "55".to_string(),
+            )])
+            .unwrap_err();
+        assert!(
+            err.to_string()
+                .contains("limits.max_level_at_modulator_dbm"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn the_defaults_are_those_readme_states() {
+        // README, "Configuration": bind 127.0.0.1:8440, data_dir halfwave-data, the database a
+        // SQLite file in it, a bench lease of 30 s (1 to 3600 s accepted).
+        let c = parse("").unwrap();
+        assert_eq!(c.bind, "127.0.0.1:8440".parse().unwrap());
+        assert_eq!(c.data_dir, PathBuf::from("halfwave-data"));
+        assert_eq!(c.database_url, None);
+        assert_eq!(c.database_url(), "sqlite://halfwave-data/halfwave.db");
+        assert_eq!(c.bench_lease_expiry_s, 30.0);
+        for bad in ["0.5", "3601"] {
+            let err = parse(&format!("bench_lease_expiry_s = {bad}\n")).unwrap_err();
+            assert!(err.to_string().contains("bench_lease_expiry_s"), "{err}");
+        }
+        assert!(parse("bench_lease_expiry_s = 3600\n").is_ok());
+        assert!(parse("bench_lease_expiry_s = 1\n").is_ok());
     }
 }

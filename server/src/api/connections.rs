@@ -352,6 +352,19 @@ mod tests {
     /// Generous bound on anything that should happen "soon" (a correctness bound, not a target).
     const SOON: Duration = Duration::from_secs(5);
 
+    /// The limits README states ("HTTP API and dashboard": a request head within 10 s, at most
+    /// 1,024 connections, requests timed out after 30 s; the top section: 5 s for requests in
+    /// progress at shutdown), written out so that changing a default here fails until README
+    /// says the new value. The behaviour at each limit is tested below with small limits.
+    #[test]
+    fn the_defaults_are_those_readme_states() {
+        let limits = ConnectionLimits::default();
+        assert_eq!(limits.max_connections, 1024);
+        assert_eq!(limits.header_read_timeout, Duration::from_secs(10));
+        assert_eq!(limits.shutdown_grace, Duration::from_secs(5));
+        assert_eq!(crate::api::REQUEST_TIMEOUT, Duration::from_secs(30));
+    }
+
     struct Server {
         address: std::net::SocketAddr,
         stop: Option<tokio::sync::oneshot::Sender<()>>,
