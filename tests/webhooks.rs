@@ -310,6 +310,70 @@ async fn a_receiver_down_then_up_gets_the_delivery_on_a_later_attempt_with_growi
     assert_eq!(rows[0].event_id, bodies[0]["event_id"].as_str().unwrap());
 }
 
+/// A receiver that answers with a redirect is not followed (README, "Notifications": a redirect
+/// counts as a failed attempt, and the log says to configure the final URL): the redirect's
+/// target never gets the delivery, and after `max_attempts` the delivery is `failed`.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_redirect_is_not_followed_and_counts_as_a_failed_attempt() {
+    let target = Receiver::start_on(0, 0).await;
+    let redirected = std::sync::Arc::new(std::sync::atomic::AtomicUsize::new(0));
+    let counter = redirected.clone();
+    let location = target.url("/hook");
+    let redirector = axum::Router::new().fallback(move || {
+        let counter = counter.clone();
+        let location = location.clone();
+        async move {
+            counter.fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+            (
+                axum::http::StatusCode::TEMPORARY_REDIRECT,
+                [(axum::http::header::LOCATION, location)],
+            )
+        }
+    });
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+    let redirector_url = format!("http://{}/hook", listener.local_addr().unwrap());
+    tokio::spawn(async move { axum::serve(listener, redirector).await.unwrap() });
+
+    let bench = Bench::new(45).await;
+    add_webhook(
+        &bench,
+        &redirector_url,
+        "first_retry_s = 0.2\nmax_retry_s = 0.2\nmax_attempts = 2",
+    );
+    let token = bench.operator_token().await;
+    let _daemon = bench.serve("daemon.log").await;
+    let run_id = bench.submit_plan(&token, &short_plan()).await;
+    bench
+        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
+            r["state"] == "completed"
+        })
+        .await;
+    let store = Store::open(bench.database().to_str().unwrap())
+        .await
+        .unwrap();
+    let deadline = std::time::Instant::now() + Duration::from_secs(30);
+    let row = loop {
+        let rows = store.webhook_deliveries(10).await.unwrap();
+        if let Some(row) = rows.into_iter().find(|r| r.state == "failed") {
+            break row;
+        }
+        assert!(
+            std::time::Instant::now() < deadline,
+            "no failed delivery: {}",
+            bench.log("daemon.log")
+        );
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    };
+    assert_eq!(row.attempts, 2, "{row:?}");
+    let error = row.last_error.unwrap_or_default();
+    assert!(
+        error.contains("307") && error.contains("redirects are not followed"),
+        "{error}"
+    );
+    assert_eq!(redirected.load(std::sync::atomic::Ordering::SeqCst), 2);
+    assert!(target.received().is_empty(), "the redirect was followed");
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
     // Nothing listens on this port until the daemon has stopped.
