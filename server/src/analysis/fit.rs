@@ -577,8 +577,10 @@ impl LineShape {
         let count = weights.len() as i64;
         // Points whose four entries j - 1..j + 2 all lie in the table (1 <= j <= len - 3), with
         // j = j0 + k for the run's k-th point; the others go one by one.
-        let lo = (1 - j0).clamp(0, count);
-        let hi = (len - 2 - j0).clamp(lo, count);
+        // Saturating: a centre run far off the table (t beyond the i64 range, j0 saturated by the
+        // cast) puts every point on the one-by-one path instead of overflowing.
+        let lo = 1i64.saturating_sub(j0).clamp(0, count);
+        let hi = (len - 2).saturating_sub(j0).clamp(lo, count);
         let (lo, hi) = (lo as usize, hi as usize);
         for k in (0..lo).chain(hi..weights.len()) {
             let weight = scale * weights[k];
@@ -2756,7 +2758,17 @@ mod tests {
             .collect();
         let h = 2.5e6;
         let shape = LineShape::from_table(table, -19.6 * h, h, 6.0 * h, ShapeKind::Measured);
-        for x_first in [-30.3 * h, -21.7 * h, -5.25 * h, 10.9 * h, 25.0 * h] {
+        // The last two: a run so far off the table that its index leaves the i64 range (it must
+        // add nothing, not overflow).
+        for x_first in [
+            -30.3 * h,
+            -21.7 * h,
+            -5.25 * h,
+            10.9 * h,
+            25.0 * h,
+            -1e300,
+            1e300,
+        ] {
             let weights: Vec<f64> = (0..23).map(|k| 1.0 + 0.1 * k as f64).collect();
             let mut run = vec![0.0; 40];
             shape.add_run_sensitivity(x_first, 0.7, &weights, &mut run);
