@@ -48,11 +48,34 @@ impl std::error::Error for TraceError {}
 
 /// One analyzer sweep: frequency axis in hertz (optical frequency, absolute or relative to any
 /// fixed origin), power in dBm, and the resolution bandwidth when the instrument reported it.
+///
+/// Deserialising goes through [`Trace::new`], so a trace read from JSON is checked like any other.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(try_from = "TraceFields")]
 pub struct Trace {
     frequency_hz: Vec<f64>,
     power_dbm: Vec<f64>,
     resolution_bandwidth_hz: Option<Hz>,
+}
+
+/// A trace's fields as serialised, before [`Trace::new`] has checked them.
+#[derive(Deserialize)]
+struct TraceFields {
+    frequency_hz: Vec<f64>,
+    power_dbm: Vec<f64>,
+    resolution_bandwidth_hz: Option<Hz>,
+}
+
+impl TryFrom<TraceFields> for Trace {
+    type Error = TraceError;
+
+    fn try_from(fields: TraceFields) -> Result<Trace, TraceError> {
+        Trace::new(
+            fields.frequency_hz,
+            fields.power_dbm,
+            fields.resolution_bandwidth_hz,
+        )
+    }
 }
 
 impl Trace {
@@ -153,6 +176,23 @@ impl Trace {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn deserialising_checks_the_trace_like_new() {
+        let good = Trace::new(vec![1.0, 2.0, 3.0], vec![-3.0, 0.0, -3.0], Some(Hz(5e6))).unwrap();
+        let text = serde_json::to_string(&good).unwrap();
+        assert_eq!(serde_json::from_str::<Trace>(&text).unwrap(), good);
+        let uneven = r#"{"frequency_hz":[1,2,3],"power_dbm":[0,0],"resolution_bandwidth_hz":null}"#;
+        let err = serde_json::from_str::<Trace>(uneven).unwrap_err();
+        assert!(
+            err.to_string().contains("3 frequencies but 2 power values"),
+            "{err}"
+        );
+        let backwards =
+            r#"{"frequency_hz":[3,2,1],"power_dbm":[0,0,0],"resolution_bandwidth_hz":null}"#;
+        let err = serde_json::from_str::<Trace>(backwards).unwrap_err();
+        assert!(err.to_string().contains("strictly increase"), "{err}");
+    }
 
     #[test]
     fn refuses_bad_shapes() {
