@@ -35,6 +35,21 @@ pub async fn measure(
                 ),
             });
         }
+        // The same axis: another client of a shared analyzer may have moved the span between
+        // the sweeps, and powers of other frequencies must not be averaged together.
+        let (axis, next_axis) = (first.frequency_hz(), next.frequency_hz());
+        let tolerance = 1e-3 * (axis[axis.len() - 1] - axis[0]) / (axis.len() - 1) as f64;
+        if let Some(i) = (0..axis.len()).find(|&i| (axis[i] - next_axis[i]).abs() > tolerance) {
+            return Err(InstrumentError::Parse {
+                resource: analyzer.resource().to_string(),
+                operation: "trace fetch while averaging".into(),
+                detail: format!(
+                    "the frequency axis changed between sweeps (point {i}: {} then {}); is another client changing the analyzer's settings?",
+                    Hz(axis[i]),
+                    Hz(next_axis[i])
+                ),
+            });
+        }
         for (s, p) in sum.iter_mut().zip(next.power_dbm()) {
             *s += dbm_to_mw(*p);
         }
@@ -118,6 +133,72 @@ pub fn peak_frequency(trace: &Trace) -> Hz {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use halfwave_drivers::sim::{Scenario, SimAnalyzer, SimBench};
+    use halfwave_drivers::Identity;
+
+    /// The simulated analyzer, with the axis of every trace after the first moved by `shift_hz`
+    /// (as if another client had moved the centre between sweeps).
+    struct MovingAxis {
+        inner: SimAnalyzer,
+        fetched: usize,
+        shift_hz: f64,
+    }
+
+    #[async_trait::async_trait]
+    impl SpectrumAnalyzer for MovingAxis {
+        fn resource(&self) -> &str {
+            self.inner.resource()
+        }
+        async fn identify(&mut self) -> Result<Identity, InstrumentError> {
+            self.inner.identify().await
+        }
+        fn capabilities(&self) -> AnalyzerCapabilities {
+            self.inner.capabilities()
+        }
+        async fn set_center(&mut self, center: Hz) -> Result<Hz, InstrumentError> {
+            self.inner.set_center(center).await
+        }
+        async fn set_span(&mut self, span: Hz) -> Result<Hz, InstrumentError> {
+            self.inner.set_span(span).await
+        }
+        async fn set_resolution_bandwidth(&mut self, rbw: Hz) -> Result<Hz, InstrumentError> {
+            self.inner.set_resolution_bandwidth(rbw).await
+        }
+        async fn set_points(&mut self, points: usize) -> Result<usize, InstrumentError> {
+            self.inner.set_points(points).await
+        }
+        async fn sweep(&mut self) -> Result<(), InstrumentError> {
+            self.inner.sweep().await
+        }
+        async fn fetch_trace(&mut self) -> Result<Trace, InstrumentError> {
+            let trace = self.inner.fetch_trace().await?;
+            self.fetched += 1;
+            if self.fetched == 1 {
+                return Ok(trace);
+            }
+            let rbw = trace.resolution_bandwidth();
+            let (freq, power, _) = trace.into_parts();
+            let freq = freq.into_iter().map(|f| f + self.shift_hz).collect();
+            Ok(Trace::new(freq, power, rbw).unwrap())
+        }
+    }
+
+    #[tokio::test]
+    async fn averaging_refuses_sweeps_on_different_axes() {
+        let sim = SimBench::new(Scenario::builtin().unwrap(), 5).with_time_factor(0.0);
+        for (shift_hz, refused) in [(0.0, false), (2e9, true)] {
+            let mut analyzer = MovingAxis {
+                inner: sim.analyzer(),
+                fetched: 0,
+                shift_hz,
+            };
+            let outcome = measure(&mut analyzer, 3).await;
+            assert_eq!(outcome.is_err(), refused, "{outcome:?}");
+            if let Err(e) = outcome {
+                assert!(e.to_string().contains("frequency axis changed"), "{e}");
+            }
+        }
+    }
 
     #[test]
     fn peak_refines_between_points() {
