@@ -15,12 +15,12 @@ mod daemon_support;
 mod engine_support;
 mod webhook_support;
 
-use daemon_support::{listening_port, pin_bind_port};
+use daemon_support::{known_port, record_listening_port};
 use halfwave::store::scratch_db::ScratchDatabase;
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
 use std::process::Stdio;
-use std::sync::atomic::{AtomicU16, Ordering};
+use std::sync::atomic::AtomicU16;
 use std::time::Duration;
 use tokio::io::{AsyncBufReadExt, BufReader};
 use tokio::process::{Child, Command};
@@ -31,7 +31,7 @@ const LEASE_EXPIRY_S: f64 = 2.0;
 
 struct Lab {
     config: PathBuf,
-    /// 0 until the daemon has listened (see [`pin_bind_port`]).
+    /// 0 until the daemon has listened (see [`record_listening_port`]).
     port: AtomicU16,
     log: PathBuf,
 }
@@ -61,12 +61,7 @@ fn lab(dir: &Path, name: &str, bench: &str, database_url: &str, time_factor: f64
 impl Lab {
     /// The daemon's HTTP port (known once it has been served).
     fn port(&self) -> u16 {
-        let port = self.port.load(Ordering::SeqCst);
-        assert_ne!(
-            port, 0,
-            "the lab's port is known once `serve` has started it"
-        );
-        port
+        known_port(&self.port)
     }
 
     fn url(&self, path: &str) -> String {
@@ -95,14 +90,7 @@ impl Lab {
             .unwrap()
             .unwrap_or_default();
         assert!(first.contains("listening"), "{first}: {}", self.log());
-        let port = listening_port(&first);
-        match self.port.load(Ordering::SeqCst) {
-            0 => {
-                self.port.store(port, Ordering::SeqCst);
-                pin_bind_port(&self.config, port);
-            }
-            pinned => assert_eq!(port, pinned, "the restarted daemon moved to another port"),
-        }
+        record_listening_port(&self.port, &self.config, &first);
         tokio::spawn(async move { while let Ok(Some(_)) = lines.next_line().await {} });
         child
     }

@@ -38,6 +38,29 @@ pub fn listening_port(line: &str) -> u16 {
         .unwrap_or_else(|| panic!("no 127.0.0.1 port in the daemon's first line: {line:?}"))
 }
 
+/// Keeps the port a test daemon reported in its first line: in `slot` and pinned in `config` on
+/// its first start (see [`pin_bind_port`]); a restart must come back on it.
+pub fn record_listening_port(slot: &AtomicU16, config: &Path, first_line: &str) {
+    let port = listening_port(first_line);
+    match slot.load(Ordering::SeqCst) {
+        0 => {
+            slot.store(port, Ordering::SeqCst);
+            pin_bind_port(config, port);
+        }
+        pinned => assert_eq!(port, pinned, "the restarted daemon moved to another port"),
+    }
+}
+
+/// The port [`record_listening_port`] kept (the daemon must have been started).
+pub fn known_port(slot: &AtomicU16) -> u16 {
+    let port = slot.load(Ordering::SeqCst);
+    assert_ne!(
+        port, 0,
+        "the daemon's port is known once it has been started"
+    );
+    port
+}
+
 /// Daemons in the tests bind port 0 and report the port the system gave them: a port picked in
 /// advance and released could be taken by another test's connection before the daemon binds it.
 /// Once a daemon has listened, its configuration is pinned to that port (`bind = "127.0.0.1:0"`
@@ -114,14 +137,7 @@ impl Bench {
             "{first}: {}",
             self.log(log_name)
         );
-        let port = listening_port(&first);
-        match self.port.load(Ordering::SeqCst) {
-            0 => {
-                self.port.store(port, Ordering::SeqCst);
-                pin_bind_port(&self.config, port);
-            }
-            pinned => assert_eq!(port, pinned, "the restarted daemon moved to another port"),
-        }
+        record_listening_port(&self.port, &self.config, &first);
         // Keep reading stdout so the daemon never blocks on a full pipe.
         tokio::spawn(async move { while let Ok(Some(_)) = lines.next_line().await {} });
         child
@@ -133,12 +149,7 @@ impl Bench {
 
     /// The daemon's HTTP port (known once it has been served).
     pub fn port(&self) -> u16 {
-        let port = self.port.load(Ordering::SeqCst);
-        assert_ne!(
-            port, 0,
-            "the daemon's port is known once `serve` has started it"
-        );
-        port
+        known_port(&self.port)
     }
 
     pub fn url(&self, path: &str) -> String {
