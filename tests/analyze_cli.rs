@@ -431,4 +431,32 @@ fn a_closed_pipe_ends_the_command_quietly() {
     assert!(stderr.trim().is_empty(), "nothing said: {stderr}");
     // 128 + SIGPIPE (13): the status a shell reports for a program a closed pipe stopped.
     assert_eq!(out.status.code(), Some(141), "{:?}", out.status);
+
+    // The same for another command and its JSON form (README: "Every command exits quietly
+    // with status 141"): the spectrum prediction, computed locally.
+    let drive = dir.join("drive.json");
+    std::fs::write(
+        &drive,
+        r#"{"modulation_frequency_hz": 7.5e9, "tones": [{"harmonic": 1, "modulation_index": 1.3, "phase_deg": 0}], "orders": 6}"#,
+    )
+    .unwrap();
+    for extra in [&[][..], &["--json"][..]] {
+        let (reader, writer) = std::io::pipe().expect("a pipe");
+        drop(reader);
+        let out = Command::new(env!("CARGO_BIN_EXE_halfwave"))
+            .args(["predict", drive.to_str().unwrap()])
+            .args(extra)
+            .stdout(writer)
+            .stderr(std::process::Stdio::piped())
+            .output()
+            .expect("the halfwave binary runs");
+        let stderr = String::from_utf8_lossy(&out.stderr);
+        assert!(stderr.trim().is_empty(), "predict {extra:?}: {stderr}");
+        assert_eq!(
+            out.status.code(),
+            Some(141),
+            "predict {extra:?}: {:?}",
+            out.status
+        );
+    }
 }
