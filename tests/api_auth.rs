@@ -638,3 +638,44 @@ async fn cors_is_off_unless_origins_are_configured() {
         .unwrap_or_default();
     assert!(methods.contains("POST"), "{methods}");
 }
+
+/// A server without an engine (one that only reads the database) answers the run-changing
+/// routes with 503 saying where runs are submitted, while reads still work (README, "HTTP API
+/// and dashboard": 503 from a read-only server).
+#[tokio::test]
+async fn a_read_only_server_answers_run_control_with_503() {
+    let app = spawn_app().await;
+    let operator = app.token("lab-b", Role::Operator).await;
+    let submit = app
+        .post_json(
+            "/api/v1/runs",
+            Some(&operator),
+            &serde_json::json!({
+                "device": {"serial": "EG-PM-0042", "model": "simulated phase modulator",
+                           "rf_input_limit_dbm": 27.0},
+                "bench": "sim",
+                "chain": {"kind": "flat_loss", "loss_db": 2.0},
+                "frequencies": {"kind": "list", "values_hz": [1.5e9]},
+                "levels": {"kind": "ramp", "start_dbm": 0.0, "stop_dbm": 10.0, "step_db": 2.5}
+            }),
+        )
+        .await;
+    assert_eq!(submit.status(), 503);
+    let body = problem(submit).await;
+    assert!(
+        body["detail"]
+            .as_str()
+            .unwrap_or("")
+            .contains("halfwave serve"),
+        "{body}"
+    );
+    let cancel = app
+        .post_json(
+            "/api/v1/runs/1/cancel",
+            Some(&operator),
+            &serde_json::json!({}),
+        )
+        .await;
+    assert_eq!(cancel.status(), 503);
+    assert_eq!(app.get("/api/v1/runs", Some(&operator)).await.status(), 200);
+}
