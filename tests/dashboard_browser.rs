@@ -88,6 +88,17 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
             .await,
         serde_json::Value::Bool(true)
     );
+    // The token is kept in the tab's sessionStorage only (README, "Dashboard"): nothing of it in
+    // localStorage or a cookie, where it would outlive the tab.
+    assert_eq!(
+        browser
+            .eval(&format!(
+                "Object.values(sessionStorage).includes('{operator}')                  && !Object.values(localStorage).some(v => v.includes('{operator}'))                  && !document.cookie.includes('{operator}')"
+            ))
+            .await,
+        serde_json::Value::Bool(true),
+        "the token in sessionStorage only"
+    );
     assert_eq!(
         bar_fraction(&mut browser).await,
         0.0,
