@@ -1328,6 +1328,27 @@ mod tests {
         );
         // The lowest target accepted is accepted exactly (the schema's minimum).
         assert!(validate(&request(adaptive(0.0, 20.0, ADAPTIVE_MIN_TARGET)), 30.0).is_ok());
+        // max_points: at most 40 (README, "Adaptive levels"), 40 itself accepted.
+        let with_points = |max_points| {
+            request(LevelSpec::Adaptive {
+                min_dbm: Dbm(0.0),
+                max_dbm: Dbm(20.0),
+                target_relative_uncertainty: 0.003,
+                max_points: Some(max_points),
+                max_step_db: None,
+            })
+        };
+        let err = validate(&with_points(41), 30.0).unwrap_err();
+        assert!(
+            err.errors
+                .iter()
+                .any(|e| e.field == "levels.max_points" && e.message.contains("to 40, got 41")),
+            "{err:?}"
+        );
+        assert_eq!(
+            validate(&with_points(40), 30.0).unwrap().point_count(),
+            4 * 40
+        );
     }
 
     #[test]
