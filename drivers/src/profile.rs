@@ -833,6 +833,11 @@ impl AnalyzerProfile {
             "tolerances must be 0 or more",
         );
         check.require(
+            "read_back.points",
+            r.points <= k.max_points,
+            "must be at most capabilities.max_points (a tolerance in points)",
+        );
+        check.require(
             "sweep_timeout_ms",
             self.sweep_timeout_ms > 0,
             "must be more than 0",

@@ -473,6 +473,13 @@ async fn an_unusable_profile_is_refused_before_connecting() {
         .unwrap_err();
     assert!(matches!(err, InstrumentError::BadProfile { .. }), "{err:?}");
     assert!(err.to_string().contains("capabilities.max_points"), "{err}");
+    // A point-count tolerance past the maximum (its i64 cast could also turn negative).
+    let mut profile = quick_analyzer_profile(DataFormat::Ascii, ByteOrder::Normal);
+    profile.read_back.points = usize::MAX;
+    let err = ScpiSpectrumAnalyzer::connect(&fake.resource(), profile)
+        .await
+        .unwrap_err();
+    assert!(err.to_string().contains("read_back.points"), "{err}");
     assert_eq!(fake.state().connections, 0);
 }
 
