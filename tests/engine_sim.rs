@@ -16,7 +16,7 @@ use halfwave::config::Limits;
 use halfwave::engine::bench::BenchInstruments;
 use halfwave::engine::events::ProgressEvent;
 use halfwave::engine::Engine;
-use halfwave::store::{RunState, Store};
+use halfwave::store::{ChainCalibrationPoint, RunState, Store};
 use halfwave_drivers::sim::{Role, Scenario, SimBench};
 use halfwave_units::{Db, Dbm};
 use std::time::Duration;
@@ -449,6 +449,22 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     let stopped = interrupt_after(12, 11).await;
     let (store, run_id) = (&stopped.store, stopped.run_id);
 
+    // While it is interrupted, a newer version of its chain calibration is stored, 3 dB off the
+    // truth: the resumed run keeps the version it started with (README, "Calibration runs":
+    // resume continues with the same plan and chain calibration), so its V_pi stays true.
+    let before = store.run(run_id).await.unwrap();
+    let wrong: Vec<ChainCalibrationPoint> = FREQUENCIES_HZ
+        .iter()
+        .map(|&f| {
+            let f = halfwave_units::Hz(f);
+            let s = &stopped.scenario;
+            ChainCalibrationPoint::new(f, Db(s.level_error_at(f).0 - s.chain_loss_at(f).0 + 3.0))
+        })
+        .collect();
+    store
+        .create_chain_calibration("sim-chain", "test", &wrong)
+        .await
+        .unwrap();
     // A new engine on the same database and bench: the run is still interrupted; resume it.
     stopped.sim.set_time_factor(0.0);
     let engine = stopped.restart().await;
@@ -466,6 +482,9 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     assert_eq!(points.len(), POINTS, "same count as an uninterrupted run");
     let results = store.frequency_results(run_id).await.unwrap();
     assert_v_pi_within(&results, &stopped.scenario, 0.02);
+    let after = store.run(run_id).await.unwrap();
+    assert_eq!(after.chain_calibration_id, before.chain_calibration_id);
+    assert_eq!(after.chain_version, before.chain_version);
     // A completed run cannot be resumed again.
     assert!(engine.resume(run_id, "test").await.is_err());
     engine.shutdown().await;
