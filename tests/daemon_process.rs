@@ -127,7 +127,25 @@ async fn a_warning_is_logged_once_per_frequency_and_stored_with_every_point() {
         "levels": {"kind": "ramp", "start_dbm": 0.0, "stop_dbm": 8.0, "step_db": 2.0},
         "settle_s": 0.0
     });
-    let run_id = bench.submit_plan(&token, &plan).await;
+    // Submitted with the client's own request id: it comes back in the reply's header and is on
+    // the daemon's log line of the request (README, "HTTP API and dashboard").
+    let submitted = bench
+        .client
+        .post(bench.url("/api/v1/runs"))
+        .bearer_auth(&token)
+        .header("X-Request-Id", "lab-b-submit-42")
+        .json(&plan)
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(submitted.status(), 201);
+    assert_eq!(
+        submitted.headers()["x-request-id"].to_str().unwrap(),
+        "lab-b-submit-42"
+    );
+    let run_id = submitted.json::<serde_json::Value>().await.unwrap()["run_id"]
+        .as_i64()
+        .unwrap();
     let run = bench
         .wait_for(run_id, &token, Duration::from_secs(120), |r| {
             r["state"] != "queued" && r["state"] != "running"
@@ -159,6 +177,11 @@ async fn a_warning_is_logged_once_per_frequency_and_stored_with_every_point() {
     );
     let _ = daemon.kill().await;
     let log = bench.log("daemon.log");
+    assert!(
+        log.lines()
+            .any(|l| l.contains("run queued") && l.contains("lab-b-submit-42")),
+        "{log}"
+    );
     for f in [1.26e10, 2e10] {
         let stored = warned_points.iter().filter(|&&w| w == f).count();
         let logged = log

@@ -6,9 +6,11 @@ use clap::Parser;
 
 fn main() -> std::process::ExitCode {
     let cli = halfwave::cli::Cli::parse();
-    // The demo shows failed points on its progress bar; its log would only repeat them.
+    // The demo shows failed points on its progress bar; its log would only repeat them. The
+    // daemon says what it does (runs queued, started, ended; acknowledgements) at info level.
     let level = match cli.command {
         halfwave::cli::Command::Demo(_) => "error",
+        halfwave::cli::Command::Serve(_) => "info",
         _ => "warn",
     };
     halfwave::telemetry::init(level);
