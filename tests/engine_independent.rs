@@ -7,6 +7,7 @@
 //! Check: every fitted V_pi within 0.3 % of the bench's truth (`independent_support::true_v_pi`),
 //! a stated 2.9 V x (1 + 0.035 sqrt(f/GHz)) of an invented modulator.
 
+mod api_support;
 mod engine_support;
 mod independent_support;
 
@@ -184,6 +185,34 @@ async fn calibrate_and_check(bench: &IndependentBench, profile_text: &str) -> i6
             .any(|n| n.item == "frequency axis" && n.value.starts_with("center_span via")),
         "{:?}",
         analyzer.connection
+    );
+    // The same record through the API, as `instruments[].connection` (README, "Connecting your
+    // instruments").
+    let app = api_support::serve_state(
+        halfwave::api::AppState::new(store.clone(), halfwave::api::ApiSettings::default()),
+        tempfile::tempdir().unwrap(),
+    )
+    .await;
+    let viewer = app
+        .token("lab-b", halfwave::api::tokens::Role::Viewer)
+        .await;
+    let view = app
+        .get_json(&format!("/api/v1/runs/{run_id}"), Some(&viewer))
+        .await;
+    let notes = view["instruments"]
+        .as_array()
+        .and_then(|all| all.iter().find(|i| i["role"] == "analyzer"))
+        .map(|a| a["connection"].clone())
+        .unwrap_or_default();
+    assert!(
+        notes
+            .as_array()
+            .is_some_and(|n| n.iter().any(|n| n["item"] == "frequency axis"
+                && n["value"]
+                    .as_str()
+                    .unwrap_or("")
+                    .starts_with("center_span via"))),
+        "{view}"
     );
     assert!(
         !bench.truth.lock().unwrap().output_on,
