@@ -582,7 +582,7 @@ async fn every_problem_carries_the_request_id_of_its_header() {
 /// dashboard"; the CORS headers are those of the Fetch standard).
 #[tokio::test]
 async fn cors_is_off_unless_origins_are_configured() {
-    use halfwave::api::{ApiSettings, AppState};
+    use halfwave::api::ApiSettings;
     let cross_origin_get = |app: &api_support::TestApp, origin: &'static str| {
         let request = app
             .client
@@ -602,15 +602,11 @@ async fn cors_is_off_unless_origins_are_configured() {
     assert_eq!(response.status(), 200);
     assert_eq!(allowed(&response), None);
 
-    let dir = tempfile::tempdir().unwrap();
-    let store = halfwave::store::Store::open(dir.path().join("h.sqlite").to_str().unwrap())
-        .await
-        .unwrap();
-    let settings = ApiSettings {
+    let on = api_support::spawn_app_with(ApiSettings {
         cors_allowed_origins: vec!["https://lab-b.example".into()],
         ..ApiSettings::default()
-    };
-    let on = api_support::serve_state(AppState::new(store, settings), dir).await;
+    })
+    .await;
     let response = cross_origin_get(&on, "https://lab-b.example").await;
     assert_eq!(allowed(&response).as_deref(), Some("https://lab-b.example"));
     let response = cross_origin_get(&on, "https://other.example").await;

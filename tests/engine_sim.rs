@@ -16,7 +16,7 @@ use halfwave::config::Limits;
 use halfwave::engine::bench::BenchInstruments;
 use halfwave::engine::events::ProgressEvent;
 use halfwave::engine::Engine;
-use halfwave::store::{ChainCalibrationPoint, RunState, Store};
+use halfwave::store::{RunState, Store};
 use halfwave_drivers::sim::{Role, Scenario, SimBench};
 use halfwave_units::{Db, Dbm};
 use std::time::Duration;
@@ -453,14 +453,7 @@ async fn shutdown_interrupts_and_resume_completes_with_every_point_once() {
     // truth: the resumed run keeps the version it started with (README, "Calibration runs":
     // resume continues with the same plan and chain calibration), so its V_pi stays true.
     let before = store.run(run_id).await.unwrap();
-    let wrong: Vec<ChainCalibrationPoint> = FREQUENCIES_HZ
-        .iter()
-        .map(|&f| {
-            let f = halfwave_units::Hz(f);
-            let s = &stopped.scenario;
-            ChainCalibrationPoint::new(f, Db(s.level_error_at(f).0 - s.chain_loss_at(f).0 + 3.0))
-        })
-        .collect();
+    let wrong = engine_support::chain_points_off_by(&stopped.scenario, Db(3.0));
     store
         .create_chain_calibration("sim-chain", "test", &wrong)
         .await

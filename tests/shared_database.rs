@@ -380,7 +380,7 @@ async fn webhooks_of_two_daemons_on_one_database_are_each_sent_once_by_their_own
     let client = reqwest::Client::new();
     let a = lab(dir.path(), "lab-a", "north-bench", database.url(), 0.0);
     let b = lab(dir.path(), "lab-b", "south-bench", database.url(), 0.0);
-    let both = Receiver::start_on(0, 0).await;
+    let both = Receiver::start(0);
     let both_url = both.url("/both");
     let a_only_port = webhook_support::reserved_port();
     let a_only_url = format!("http://127.0.0.1:{}/lab-a", a_only_port.port);

@@ -98,6 +98,17 @@ fn short_plan() -> Value {
     plan
 }
 
+/// Submits [`short_plan`] and waits (up to 120 s) until it has completed; returns its id.
+async fn complete_short_run(bench: &Bench, token: &str) -> i64 {
+    let run_id = bench.submit_plan(token, &short_plan()).await;
+    bench
+        .wait_for(run_id, token, Duration::from_secs(120), |r| {
+            r["state"] == "completed"
+        })
+        .await;
+    run_id
+}
+
 /// Writes the secret file and appends a `[[webhook]]` table.
 fn add_webhook(bench: &Bench, url: &str, extra: &str) {
     let secret = bench.dir.path().join("webhook.secret");
@@ -149,7 +160,7 @@ fn readme_python_verify(r: &Received, body: &str, now: i64) -> bool {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_that_wants_them() {
-    let receiver = Receiver::start_on(0, 0).await;
+    let receiver = Receiver::start(0);
     let bench = Bench::new(41).await;
     add_webhook(&bench, &receiver.url("/all"), "");
     add_webhook(
@@ -260,7 +271,7 @@ async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_th
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_receiver_down_then_up_gets_the_delivery_on_a_later_attempt_with_growing_pauses() {
     // 503 to the first two attempts, 204 afterwards.
-    let receiver = Receiver::start_on(0, 2).await;
+    let receiver = Receiver::start(2);
     let bench = Bench::new(42).await;
     add_webhook(
         &bench,
@@ -269,12 +280,7 @@ async fn a_receiver_down_then_up_gets_the_delivery_on_a_later_attempt_with_growi
     );
     let token = bench.operator_token().await;
     let _daemon = bench.serve("daemon.log").await;
-    let run_id = bench.submit_plan(&token, &short_plan()).await;
-    bench
-        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
-            r["state"] == "completed"
-        })
-        .await;
+    let run_id = complete_short_run(&bench, &token).await;
 
     let got = receiver.wait_for(3, Duration::from_secs(30)).await;
     let bodies: Vec<Value> = got.iter().map(verified).collect();
@@ -315,7 +321,7 @@ async fn a_receiver_down_then_up_gets_the_delivery_on_a_later_attempt_with_growi
 /// target never gets the delivery, and after `max_attempts` the delivery is `failed`.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_redirect_is_not_followed_and_counts_as_a_failed_attempt() {
-    let target = Receiver::start_on(0, 0).await;
+    let target = Receiver::start(0);
     let redirected = std::sync::Arc::new(std::sync::atomic::AtomicUsize::new(0));
     let counter = redirected.clone();
     let location = target.url("/hook");
@@ -342,12 +348,7 @@ async fn a_redirect_is_not_followed_and_counts_as_a_failed_attempt() {
     );
     let token = bench.operator_token().await;
     let _daemon = bench.serve("daemon.log").await;
-    let run_id = bench.submit_plan(&token, &short_plan()).await;
-    bench
-        .wait_for(run_id, &token, Duration::from_secs(120), |r| {
-            r["state"] == "completed"
-        })
-        .await;
+    complete_short_run(&bench, &token).await;
     let store = Store::open(bench.database().to_str().unwrap())
         .await
         .unwrap();
@@ -430,7 +431,7 @@ async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
 async fn a_run_a_killed_daemon_left_running_is_notified_as_interrupted_at_the_next_start() {
     // SIGKILL leaves no chance to notify; the next start marks the run interrupted and must
     // notify it then, once.
-    let receiver = Receiver::start_on(0, 0).await;
+    let receiver = Receiver::start(0);
     let bench = Bench::new(44).await;
     add_webhook(&bench, &receiver.url("/hook"), "");
     let token = bench.operator_token().await;
@@ -456,7 +457,7 @@ async fn a_run_a_killed_daemon_left_running_is_notified_as_interrupted_at_the_ne
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_bench_entering_and_leaving_a_safety_hold_is_notified_signed() {
     // Only bench events to this receiver, so run ends do not mix in.
-    let receiver = Receiver::start_on(0, 0).await;
+    let receiver = Receiver::start(0);
     let bench = Bench::new(43).await;
     add_webhook(
         &bench,

@@ -26,11 +26,6 @@ pub use sensor::SensorProfile;
 /// The placeholder a setter template must contain.
 pub const VALUE_PLACEHOLDER: &str = "{value}";
 
-/// The most points an analyzer profile may allow per trace (`capabilities.max_points`): 2^24,
-/// what the daemon's store keeps per trace. The driver refuses a reported count above the
-/// profile's own maximum before sizing anything by it.
-pub const MAX_PROFILE_POINTS: usize = 1 << 24;
-
 /// Why a profile could not be used.
 #[derive(Debug, thiserror::Error)]
 pub enum ProfileError {
@@ -818,7 +813,8 @@ impl AnalyzerProfile {
         );
         check.require(
             "capabilities.max_points",
-            (halfwave_units::Trace::MIN_POINTS..=MAX_PROFILE_POINTS).contains(&k.max_points),
+            (halfwave_units::Trace::MIN_POINTS..=halfwave_units::Trace::MAX_STORED_POINTS)
+                .contains(&k.max_points),
             "must be 3 to 16777216 (2^24, the most points the store keeps per trace)",
         );
         check.require(

@@ -87,13 +87,17 @@ impl TestApp {
 /// Starts the application (store only, no engine) with a fresh SQLite database in a temporary
 /// directory.
 pub async fn spawn_app() -> TestApp {
+    spawn_app_with(ApiSettings::default()).await
+}
+
+/// [`spawn_app`] with the given HTTP settings (CORS origins, connection limits).
+pub async fn spawn_app_with(settings: ApiSettings) -> TestApp {
     let dir = tempfile::tempdir().expect("temporary directory");
     let path = dir.path().join("halfwave.sqlite");
     let store = Store::open(path.to_str().expect("UTF-8 temporary path"))
         .await
         .expect("database opens");
-    let state = AppState::new(store, ApiSettings::default());
-    serve_state(state, dir).await
+    serve_state(AppState::new(store, settings), dir).await
 }
 
 /// Serves `state` on a random loopback port.

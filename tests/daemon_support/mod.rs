@@ -65,7 +65,7 @@ pub fn known_port(slot: &AtomicU16) -> u16 {
 /// advance and released could be taken by another test's connection before the daemon binds it.
 /// Once a daemon has listened, its configuration is pinned to that port (`bind = "127.0.0.1:0"`
 /// becomes the port), so a restart comes back on the same address.
-pub fn pin_bind_port(config: &Path, port: u16) {
+fn pin_bind_port(config: &Path, port: u16) {
     let text = std::fs::read_to_string(config).unwrap();
     let pinned = text.replacen(
         "bind = \"127.0.0.1:0\"",

@@ -54,15 +54,16 @@ pub fn plan(chain_name: &str) -> PlanRequest {
     }
 }
 
-/// The chain calibration of the simulated bench at the plan's frequencies.
-fn true_chain_points(scenario: &Scenario) -> Vec<ChainCalibrationPoint> {
+/// The chain calibration of the simulated bench at the plan's frequencies, with every gain
+/// `offset` off the truth (0 dB: the true chain).
+pub fn chain_points_off_by(scenario: &Scenario, offset: Db) -> Vec<ChainCalibrationPoint> {
     FREQUENCIES_HZ
         .iter()
         .map(|&f| {
             let f = Hz(f);
             ChainCalibrationPoint::new(
                 f,
-                Db(scenario.level_error_at(f).0 - scenario.chain_loss_at(f).0),
+                Db(scenario.level_error_at(f).0 - scenario.chain_loss_at(f).0 + offset.0),
             )
         })
         .collect()
@@ -71,7 +72,7 @@ fn true_chain_points(scenario: &Scenario) -> Vec<ChainCalibrationPoint> {
 /// Stores the true chain calibration as "sim-chain" and returns its name.
 pub async fn upload_true_chain(store: &Store, scenario: &Scenario) -> String {
     store
-        .create_chain_calibration("sim-chain", "test", &true_chain_points(scenario))
+        .create_chain_calibration("sim-chain", "test", &chain_points_off_by(scenario, Db(0.0)))
         .await
         .expect("chain calibration stored");
     "sim-chain".into()

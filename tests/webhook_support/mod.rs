@@ -42,19 +42,14 @@ pub fn reserved_port() -> ReservedPort {
 }
 
 impl Receiver {
-    pub async fn start_on(port: u16, fail_first: usize) -> Receiver {
-        let listener = tokio::net::TcpListener::bind(("127.0.0.1", port))
-            .await
-            .unwrap();
-        Self::serve(listener, fail_first)
+    /// Starts the receiver on a free port.
+    pub fn start(fail_first: usize) -> Receiver {
+        Self::start_reserved(reserved_port(), fail_first)
     }
 
     /// Starts the receiver on a port held by [`reserved_port`].
     pub fn start_reserved(reserved: ReservedPort, fail_first: usize) -> Receiver {
-        Self::serve(reserved.socket.listen(1024).unwrap(), fail_first)
-    }
-
-    fn serve(listener: tokio::net::TcpListener, fail_first: usize) -> Receiver {
+        let listener = reserved.socket.listen(1024).unwrap();
         let got: Arc<Mutex<Vec<Received>>> = Arc::default();
         let count = Arc::new(AtomicUsize::new(0));
         let recorder = got.clone();

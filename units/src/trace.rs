@@ -82,6 +82,11 @@ impl Trace {
     /// The fewest points a trace may have.
     pub const MIN_POINTS: usize = 3;
 
+    /// The most points the daemon keeps per stored trace (2^24 = 16,777,216; analyzers offer at
+    /// most a few hundred thousand): the store's trace codec refuses more, and an analyzer
+    /// profile may not allow more. Not checked by [`Trace::new`].
+    pub const MAX_STORED_POINTS: usize = 1 << 24;
+
     /// Builds a trace, checking equal lengths, finite values and a strictly increasing axis.
     pub fn new(
         frequency_hz: Vec<f64>,

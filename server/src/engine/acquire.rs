@@ -21,6 +21,11 @@ pub async fn measure(
         return Ok(first);
     }
     let mut sum: Vec<f64> = first.power_dbm().iter().map(|p| dbm_to_mw(*p)).collect();
+    // Every sweep must show the first one's axis, to a thousandth of a point spacing: another
+    // client of a shared analyzer may have moved the span in between, and powers of other
+    // frequencies must not be averaged together.
+    let axis = first.frequency_hz();
+    let tolerance = 1e-3 * (axis[axis.len() - 1] - axis[0]) / (axis.len() - 1) as f64;
     for _ in 1..averages {
         analyzer.sweep().await?;
         let next = analyzer.fetch_trace().await?;
@@ -35,10 +40,7 @@ pub async fn measure(
                 ),
             });
         }
-        // The same axis: another client of a shared analyzer may have moved the span between
-        // the sweeps, and powers of other frequencies must not be averaged together.
-        let (axis, next_axis) = (first.frequency_hz(), next.frequency_hz());
-        let tolerance = 1e-3 * (axis[axis.len() - 1] - axis[0]) / (axis.len() - 1) as f64;
+        let next_axis = next.frequency_hz();
         if let Some(i) = (0..axis.len()).find(|&i| (axis[i] - next_axis[i]).abs() > tolerance) {
             return Err(InstrumentError::Parse {
                 resource: analyzer.resource().to_string(),

@@ -38,9 +38,9 @@ const FLAG_UNIFORM_AXIS: u8 = 0b01;
 const FLAG_RESOLUTION_BANDWIDTH: u8 = 0b10;
 const KNOWN_FLAGS: u8 = FLAG_UNIFORM_AXIS | FLAG_RESOLUTION_BANDWIDTH;
 
-/// The most points a stored trace may have (16,777,216; analyzers offer at most a few hundred
-/// thousand). Caps the memory a damaged header could ask for.
-pub const MAX_POINTS: usize = 1 << 24;
+/// The most points a stored trace may have ([`halfwave_units::Trace::MAX_STORED_POINTS`]). Caps
+/// the memory a damaged header could ask for.
+pub const MAX_POINTS: usize = halfwave_units::Trace::MAX_STORED_POINTS;
 
 /// An axis counts as uniform when every frequency lies within this fraction of one step of
 /// `start + i * step`; the decoded axis then differs from the original by at most that much.
