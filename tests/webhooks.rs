@@ -2,7 +2,8 @@
 //! to a receiver run by this test on 127.0.0.1:
 //! - a completed run and a cancelled one: the event set per receiver (one filtered to
 //!   `run.cancelled`), the payload, and the signature checked against an HMAC-SHA256 computed here
-//!   from SHA-256 by the construction of RFC 2104 (not with the daemon's `hmac` crate);
+//!   from SHA-256 by the construction of RFC 2104 (not with the daemon's `hmac` crate), and by
+//!   README's Python and `openssl dgst` examples;
 //! - a receiver answering 503 twice, then 204: delivered on the third attempt with the same event
 //!   id and body, the pauses growing as configured;
 //! - a receiver that is down while SIGTERM interrupts a run: the delivery stays pending in the
@@ -158,6 +159,32 @@ fn readme_python_verify(r: &Received, body: &str, now: i64) -> bool {
     }
 }
 
+/// Runs the shell one-liner of README.md's "Notifications" section (`openssl dgst`) on a
+/// delivery's body saved to `body.json`, with its timestamp and the secret in the environment
+/// variables the line names, and returns what it prints (the signature's hex digits).
+fn readme_shell_signature(r: &Received, body: &str) -> String {
+    let readme =
+        std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/../README.md")).unwrap();
+    let section = &readme[readme
+        .find("## Notifications")
+        .expect("README has Notifications")..];
+    let shell = &section[section.find("or in a shell").expect("a shell example")..];
+    let start = shell.find("```sh\n").expect("a shell block") + "```sh\n".len();
+    let line = shell[start..start + shell[start..].find("```").unwrap()].trim();
+    assert!(line.contains("openssl dgst"), "{line}");
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(dir.path().join("body.json"), body).unwrap();
+    let out = std::process::Command::new("bash")
+        .args(["-euo", "pipefail", "-c", line])
+        .current_dir(dir.path())
+        .env("TIMESTAMP", header(r, "Halfwave-Timestamp"))
+        .env("SECRET", SECRET)
+        .output()
+        .expect("bash runs (README's openssl example)");
+    assert!(out.status.success(), "{line}: {out:?}");
+    String::from_utf8(out.stdout).unwrap().trim().to_string()
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_that_wants_them() {
     let receiver = Receiver::start(0);
@@ -253,6 +280,20 @@ async fn a_completed_and_a_cancelled_run_are_notified_signed_to_each_receiver_th
         sent + 10
     ));
     assert!(!readme_python_verify(&got[0], &got[0].body, sent + 301));
+    // README's openssl one-liner prints the signature's digits for the body as received, and
+    // other digits for a changed body.
+    let signature = header(&got[0], "Halfwave-Signature");
+    assert_eq!(
+        format!("sha256={}", readme_shell_signature(&got[0], &got[0].body)),
+        signature
+    );
+    assert_ne!(
+        format!(
+            "sha256={}",
+            readme_shell_signature(&got[0], &got[0].body.replace("sim", "sin"))
+        ),
+        signature
+    );
 
     assert_eq!(
         bench

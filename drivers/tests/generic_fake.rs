@@ -571,6 +571,44 @@ async fn a_query_the_instrument_does_not_know_is_reported_with_its_own_error() {
     assert_eq!(source.set_level(Dbm(-1.0)).await.unwrap(), Dbm(-1.0));
 }
 
+/// README, "Connecting your instruments": when a query draws no reply, the error queue is read on
+/// a fresh connection and the message says what it held; here the instrument queued nothing, so
+/// the message says the queue was empty and what that suggests (busy, hung, another terminator).
+#[tokio::test]
+async fn a_query_unanswered_with_an_empty_error_queue_says_so() {
+    let fake = FakeInstrument::start().await;
+    let mut profile = quick_source_profile();
+    profile.connection.retries = 0;
+    let mut source = ScpiRfSource::connect(&fake.resource(), profile)
+        .await
+        .unwrap();
+    source.safe_off().await.unwrap();
+    fake.state().faults.unanswered_query = Some("FREQuency:STARt?".into());
+    let err = source
+        .session_mut()
+        .query("FREQuency:STARt?")
+        .await
+        .unwrap_err();
+    let text = err.to_string();
+    assert!(matches!(err, InstrumentError::Unanswered { .. }), "{err:?}");
+    assert!(
+        text.contains("did not answer FREQuency:STARt? within"),
+        "{text}"
+    );
+    assert!(
+        text.contains(
+            "on a fresh connection its error queue (SYSTem:ERRor?) was empty, so it accepted the \
+             command without answering"
+        ),
+        "{text}"
+    );
+    assert!(text.contains("connection.read_terminator"), "{text}");
+    // The queue was read on a second connection; the instrument answers the next step.
+    assert_eq!(fake.state().connections, 2);
+    assert!(fake.state().commands.iter().any(|c| c == "SYSTem:ERRor?"));
+    assert_eq!(source.set_level(Dbm(-1.0)).await.unwrap(), Dbm(-1.0));
+}
+
 #[tokio::test]
 async fn every_new_connection_starts_with_clear_status() {
     // IEEE 488.2 §10.3 (from memory): *CLS empties the error queue. An error left by another

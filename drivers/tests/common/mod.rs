@@ -34,6 +34,9 @@ pub struct Faults {
     pub garble_next_reply: bool,
     /// Read commands but never answer.
     pub silent: bool,
+    /// A query read, neither answered nor queued as an error (an instrument busy with it, or
+    /// one that ends its replies with another terminator): the others are answered as usual.
+    pub unanswered_query: Option<String>,
 }
 
 #[derive(Debug, Clone)]
@@ -427,6 +430,9 @@ async fn serve(socket: tokio::net::TcpStream, state: Arc<Mutex<State>>) {
                     return; // drops both halves: the connection closes
                 }
                 *n -= 1;
+            }
+            if s.faults.unanswered_query.as_deref() == Some(line.trim()) {
+                continue;
             }
             let reply = handle(&mut s, &line);
             let faults = s.faults.clone();
