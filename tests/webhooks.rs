@@ -7,7 +7,8 @@
 //! - a receiver answering 503 twice, then 204: delivered on the third attempt with the same event
 //!   id and body, the pauses growing as configured;
 //! - a receiver that is down while SIGTERM interrupts a run: the delivery stays pending in the
-//!   database, and the restarted daemon delivers it once the receiver is up.
+//!   database, and the restarted daemon delivers it once the receiver is up; a receiver that
+//!   never answers holds the shutdown for the 5 s grace only.
 //! - a bench whose source link drops with the RF on: `bench.hold` when the output cannot be
 //!   confirmed off, `bench.hold` again when it is held for an operator, and `bench.hold_cleared`
 //!   after the acknowledgement, each signed, to a receiver that asked for bench events only.
@@ -466,6 +467,63 @@ async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
             .await,
         Some(1.0)
     );
+}
+
+/// README, "Notifications": at shutdown the daemon tries to deliver the runs it interrupts for up
+/// to 5 s before it exits. A receiver that accepts the connection and never answers (its
+/// attempt limit, `timeout_s`, is 60 s) holds the last pass for those 5 s, not longer: the daemon
+/// exits between 5 s and 15 s after SIGTERM, and the delivery stays pending for the next start.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_receiver_that_never_answers_holds_the_shutdown_for_five_seconds_only() {
+    let listener = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+    let port = listener.local_addr().unwrap().port();
+    let accepted = std::sync::Arc::new(std::sync::atomic::AtomicUsize::new(0));
+    let counter = accepted.clone();
+    std::thread::spawn(move || {
+        // Accepts and holds every connection without reading or answering.
+        let mut held = Vec::new();
+        for stream in listener.incoming().flatten() {
+            counter.fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+            held.push(stream);
+        }
+    });
+    let bench = Bench::new(47).await;
+    add_webhook(
+        &bench,
+        &format!("http://127.0.0.1:{port}/hook"),
+        "timeout_s = 60\nfirst_retry_s = 3600",
+    );
+    let token = bench.operator_token().await;
+    let (mut daemon, _run_id) =
+        daemon_support::serve_mid_run(&bench, "daemon.log", &token, 3).await;
+    let pid = daemon.id().expect("the daemon is running");
+    let pid = rustix::process::Pid::from_raw(pid as i32).unwrap();
+    let signalled = Instant::now();
+    rustix::process::kill_process(pid, rustix::process::Signal::TERM).unwrap();
+    let status = tokio::time::timeout(Duration::from_secs(60), daemon.wait())
+        .await
+        .expect("the daemon exits within 60 s of SIGTERM")
+        .unwrap();
+    let took = signalled.elapsed();
+    assert!(status.success(), "{status:?}: {}", bench.log("daemon.log"));
+    assert!(
+        accepted.load(std::sync::atomic::Ordering::SeqCst) >= 1,
+        "no delivery was attempted at shutdown: {}",
+        bench.log("daemon.log")
+    );
+    assert!(
+        took >= Duration::from_millis(4_900) && took < Duration::from_secs(15),
+        "exited {took:?} after SIGTERM: {}",
+        bench.log("daemon.log")
+    );
+    let store = Store::open(bench.database().to_str().unwrap())
+        .await
+        .unwrap();
+    let rows = store.webhook_deliveries(10).await.unwrap();
+    store.close().await;
+    assert_eq!(rows.len(), 1, "{rows:?}");
+    assert_eq!(rows[0].event_type, "run.interrupted");
+    assert_eq!(rows[0].state, "pending", "{rows:?}");
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
