@@ -13,7 +13,7 @@ mod api_support;
 
 use api_support::cdp::Browser;
 use api_support::seed::{seed_completed_run, seed_device};
-use api_support::{spawn_app_with_engine, true_chain_upload};
+use api_support::{spawn_app_with_engine, spawn_app_with_instruments, true_chain_upload};
 use base64::Engine as _;
 use halfwave::api::tokens::Role;
 use std::time::Duration;
@@ -198,6 +198,171 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
         .expect("docs screenshot written");
     }
     browser.close().await;
+}
+
+/// A generator whose link is gone: every command and query fails as unanswered, so no stop path
+/// can read its output back as off.
+struct UnreachableSource(halfwave_drivers::sim::SimRfSource);
+
+impl UnreachableSource {
+    fn fail<T>(&self, operation: &str) -> Result<T, halfwave_drivers::InstrumentError> {
+        Err(halfwave_drivers::InstrumentError::Timeout {
+            resource: halfwave_drivers::RfSource::resource(&self.0).to_string(),
+            operation: operation.to_string(),
+            after: Duration::from_millis(100),
+        })
+    }
+}
+
+#[async_trait::async_trait]
+impl halfwave_drivers::RfSource for UnreachableSource {
+    fn resource(&self) -> &str {
+        halfwave_drivers::RfSource::resource(&self.0)
+    }
+    async fn identify(
+        &mut self,
+    ) -> Result<halfwave_drivers::Identity, halfwave_drivers::InstrumentError> {
+        self.fail("*IDN?")
+    }
+    fn limits(&self) -> halfwave_drivers::SourceLimits {
+        halfwave_drivers::RfSource::limits(&self.0)
+    }
+    async fn set_frequency(
+        &mut self,
+        _: halfwave_units::Hz,
+    ) -> Result<halfwave_units::Hz, halfwave_drivers::InstrumentError> {
+        self.fail("FREQuency")
+    }
+    async fn set_level(
+        &mut self,
+        _: halfwave_units::Dbm,
+    ) -> Result<halfwave_units::Dbm, halfwave_drivers::InstrumentError> {
+        self.fail("POWer")
+    }
+    async fn set_output(&mut self, _: bool) -> Result<bool, halfwave_drivers::InstrumentError> {
+        self.fail("OUTPut")
+    }
+    async fn output_enabled(&mut self) -> Result<bool, halfwave_drivers::InstrumentError> {
+        self.fail("OUTPut?")
+    }
+    async fn safe_off(&mut self) -> Result<(), halfwave_drivers::InstrumentError> {
+        self.fail("OUTPut OFF")
+    }
+}
+
+/// README, "Safety under faults": a bench whose RF output cannot be read back off is shown on the
+/// dashboard as a red banner above everything, naming the bench, what to do and the cause, and
+/// as "RF OUTPUT NOT CONFIRMED OFF" in the bench table.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_unconfirmed_rf_output_is_a_red_banner_above_everything() {
+    let Some(executable) = chromium() else {
+        if std::env::var("CI").is_ok_and(|v| v == "true" || v == "1") {
+            panic!("chromium is not installed but CI is set: .ci/run installs it (apt-get install chromium)");
+        }
+        eprintln!("\n*** SKIPPED dashboard_browser: `chromium` is not on PATH (apt-get install chromium) ***\n");
+        return;
+    };
+    let bench = spawn_app_with_instruments(0.0, |sim| halfwave::engine::bench::BenchInstruments {
+        source: Box::new(UnreachableSource(sim.rf_source())),
+        ..halfwave::engine::bench::BenchInstruments::simulated(sim)
+    })
+    .await;
+    let app = &bench.app;
+    let viewer = app.token("viewer", Role::Viewer).await;
+    let mut browser = Browser::launch(&executable).await;
+    browser.navigate(&app.url("/dashboard/")).await;
+    wait_for(
+        &mut browser,
+        "document.readyState === 'complete' && !!document.getElementById('token-input')",
+        30,
+    )
+    .await;
+    // No token yet: nothing is read, so no banner.
+    assert_eq!(
+        browser
+            .eval("document.getElementById('safety-banner').hidden")
+            .await,
+        serde_json::Value::Bool(true)
+    );
+    browser
+        .eval(&format!(
+            "document.getElementById('token-input').value = '{viewer}'; \
+             document.getElementById('token-form').requestSubmit(); true"
+        ))
+        .await;
+    wait_for(
+        &mut browser,
+        "!document.getElementById('safety-banner').hidden \
+         && document.querySelectorAll('#safety-banner .safety-item').length === 1",
+        30,
+    )
+    .await;
+    let banner = text_of(&mut browser, "#safety-banner .safety-output_unconfirmed").await;
+    assert!(
+        banner.contains("Bench sim-bench: the RF output could not be read back off")
+            && banner.contains("switch it off by hand")
+            && banner.contains("OUTPut"),
+        "{banner}"
+    );
+    // Red: the item's border and text in the page's "bad" colour, and the banner above every
+    // other section of the page (its top edge over theirs, and first among them in the page).
+    let looks = browser
+        .eval(
+            "(() => { const item = document.querySelector('#safety-banner .safety-item'); \
+               const style = getComputedStyle(item); \
+               const bad = getComputedStyle(document.documentElement).getPropertyValue('--bad').trim(); \
+               const probe = document.createElement('span'); probe.style.color = bad; \
+               document.body.append(probe); const red = getComputedStyle(probe).color; probe.remove(); \
+               const top = document.getElementById('safety-banner').getBoundingClientRect().top; \
+               const others = [...document.querySelectorAll('main > section:not(#safety-banner):not([hidden])')]; \
+               return { border: style.borderTopColor, text: getComputedStyle(item.querySelector('p')).color, red, \
+                 above: others.length > 0 && others.every(s => s.getBoundingClientRect().top >= top), \
+                 first: document.querySelector('main > section:not([hidden])').id }; })()",
+        )
+        .await;
+    let red = looks["red"].as_str().unwrap().to_string();
+    let (r, g, b) = parse_rgb(&red);
+    assert!(
+        r > 150 && g < 100 && b < 100,
+        "the page's --bad colour is red: {looks}"
+    );
+    assert_eq!(looks["border"], red.as_str(), "{looks}");
+    assert_eq!(looks["text"], red.as_str(), "{looks}");
+    assert_eq!(looks["above"], true, "{looks}");
+    assert_eq!(looks["first"], "safety-banner", "{looks}");
+    wait_for(
+        &mut browser,
+        "[...document.querySelectorAll('#bench-table td.safety-output_unconfirmed')] \
+           .some(td => td.textContent === 'RF OUTPUT NOT CONFIRMED OFF')",
+        30,
+    )
+    .await;
+    // Nothing to acknowledge while the output is not read back off.
+    assert_eq!(
+        browser
+            .eval("document.querySelectorAll('#safety-banner button').length")
+            .await,
+        serde_json::json!(0)
+    );
+    browser.close().await;
+}
+
+/// The red, green and blue of a CSS `rgb(r, g, b)` colour.
+fn parse_rgb(colour: &str) -> (u32, u32, u32) {
+    let inner = colour
+        .trim_start_matches("rgba(")
+        .trim_start_matches("rgb(")
+        .trim_end_matches(')');
+    let parts: Vec<u32> = inner
+        .split(',')
+        .take(3)
+        .map(|p| {
+            p.trim()
+                .parse()
+                .unwrap_or_else(|_| panic!("a colour: {colour}"))
+        })
+        .collect();
+    (parts[0], parts[1], parts[2])
 }
 
 /// The fraction of the progress bar drawn as done, as the page renders it: a `<progress>`'s

@@ -145,8 +145,22 @@ pub struct EngineApp {
 /// Starts the whole daemon application: a fresh store in a temporary directory, the engine on a
 /// simulated bench whose instrument times are scaled by `time_factor` (0 = instant), the router.
 pub async fn spawn_app_with_engine(time_factor: f64) -> EngineApp {
+    spawn_app_with_instruments(
+        time_factor,
+        halfwave::engine::bench::BenchInstruments::simulated,
+    )
+    .await
+}
+
+/// [`spawn_app_with_engine`] with the bench's instruments made from its simulation by
+/// `instruments` (a test's wrapper around one of them, for a fault the simulation does not have).
+pub async fn spawn_app_with_instruments(
+    time_factor: f64,
+    instruments: impl FnOnce(
+        halfwave_drivers::sim::SimBench,
+    ) -> halfwave::engine::bench::BenchInstruments,
+) -> EngineApp {
     use halfwave::config::Limits;
-    use halfwave::engine::bench::BenchInstruments;
     use halfwave::engine::Engine;
     use halfwave_drivers::sim::{Scenario, SimBench};
 
@@ -160,10 +174,7 @@ pub async fn spawn_app_with_engine(time_factor: f64) -> EngineApp {
     let engine = Engine::start_with(
         Limits::default(),
         store,
-        vec![(
-            "sim-bench".to_string(),
-            BenchInstruments::simulated(sim.clone()),
-        )],
+        vec![("sim-bench".to_string(), instruments(sim.clone()))],
     )
     .await
     .expect("engine starts");
