@@ -805,3 +805,63 @@ async fn adaptive_levels_recover_v_pi_with_fewer_sweeps_than_the_blind_ramp() {
         "adaptive {adaptive_sweeps} sweeps, blind {blind_sweeps}"
     );
 }
+
+/// README, "CLI tour": on the simulated bench a plan with a flat 2 dB loss instead of the bench's
+/// chain gives about 2.81 V at 0.2 GHz and 7.03 V at 20 GHz, where the chain's error alone
+/// predicts 2.809 V and 7.025 V, for a modulator whose true V_pi there is 3.32 V and 5.30 V. V_pi
+/// scales with the drive amplitude the chain is taken to deliver, so the flat loss gives the true
+/// V_pi times 10^((-2 dB - g) / 20), g the scenario's true chain gain (the generator's level error
+/// minus the cable loss) at that frequency: the run's V_pi must be that within 0.5 %, and
+/// README's figures within 0.5 % of the run's.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_flat_two_db_loss_gives_the_v_pi_readme_quotes() {
+    use halfwave::engine::plan::{ChainSpec, FrequencySpec};
+    use halfwave::units::Hz;
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let sim = SimBench::new(scenario.clone(), 29).with_time_factor(0.0);
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
+    let mut events = engine.subscribe();
+    let mut request = plan("unused");
+    request.chain = ChainSpec::FlatLoss { loss_db: Db(2.0) };
+    request.frequencies = FrequencySpec::List {
+        values_hz: vec![0.2e9, 20e9],
+    };
+    let run_id = engine.submit(request, "test").await.unwrap();
+    let (state, cause) = wait_for_end(&mut events, run_id).await;
+    assert_eq!(state, "completed", "{cause:?}");
+    let results = store.frequency_results(run_id).await.unwrap();
+    assert_eq!(results.len(), 2);
+    // (the run's result, README's figure, the chain's prediction, the true V_pi), in volts.
+    for (r, readme, predicted, true_v_pi) in [
+        (&results[0], 2.81, 2.809, 3.32),
+        (&results[1], 7.03, 7.025, 5.30),
+    ] {
+        let f = Hz(r.frequency_hz);
+        let ghz = f.0 / 1e9;
+        let truth = scenario.v_pi_at(f).0;
+        assert!(
+            (truth - true_v_pi).abs() <= 0.005,
+            "{ghz} GHz: true V_pi {truth} V"
+        );
+        let gain = scenario.level_error_at(f).0 - scenario.chain_loss_at(f).0;
+        let expected = truth * 10f64.powf((-2.0 - gain) / 20.0);
+        assert!(
+            (expected - predicted).abs() <= 0.0005,
+            "{ghz} GHz: the chain's error predicts {expected} V"
+        );
+        let v_pi = r.v_pi_volts;
+        assert!(
+            (v_pi - expected).abs() < 0.005 * expected,
+            "{ghz} GHz: V_pi {v_pi} V against {expected} V from the chain's error"
+        );
+        assert!(
+            (readme - v_pi).abs() < 0.005 * v_pi,
+            "{ghz} GHz: V_pi {v_pi} V, README says about {readme} V"
+        );
+    }
+    engine.shutdown().await;
+}
