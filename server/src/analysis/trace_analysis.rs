@@ -705,4 +705,149 @@ mod tests {
             Err(AnalysisError::NoComb { .. })
         ));
     }
+
+    /// Bad input never panics (a standing requirement): traces no analyzer would show (pure
+    /// noise, a constant, random spikes up to 300 dB, levels of 1e5 dBm whose power overflows,
+    /// uneven and coarse axes, 3 to 3,000 points), with spacings that do not fit the span and
+    /// resolution bandwidths from a hertz to a terahertz, with and without a reference of another
+    /// axis; and, every other draw, a real comb spoilt by spikes, decimation, truncation or a
+    /// spacing off by a factor. Each analysis either refuses by name or gives a finite beta with
+    /// a finite, non-negative uncertainty; 400 seeded draws.
+    #[test]
+    fn random_traces_are_analysed_or_refused_without_a_panic() {
+        use rand::Rng;
+        let mut rng = StdRng::seed_from_u64(4242);
+        let mut outcomes = [0usize; 2];
+        for case in 0..400 {
+            let points = match rng.random_range(0..4) {
+                0 => rng.random_range(3..12),
+                1 => rng.random_range(12..200),
+                _ => rng.random_range(200..3000),
+            };
+            let start = 10f64.powf(rng.random_range(6.0..14.5));
+            let step = 10f64.powf(rng.random_range(0.0..9.0));
+            let uneven = rng.random_bool(0.2);
+            let mut f = start;
+            let frequency: Vec<f64> = (0..points)
+                .map(|_| {
+                    let here = f;
+                    f += if uneven {
+                        step * rng.random_range(0.01..3.0)
+                    } else {
+                        step
+                    };
+                    here
+                })
+                .collect();
+            let floor = rng.random_range(-150.0..0.0);
+            let noise = rng.random_range(0.0..3.0);
+            let mut level: Vec<f64> = (0..points)
+                .map(|_| floor + noise * rng.random_range(-1.0..1.0))
+                .collect();
+            match rng.random_range(0..4) {
+                0 => level.iter_mut().for_each(|l| *l = floor),
+                1 => {
+                    for _ in 0..rng.random_range(1..50) {
+                        let at = rng.random_range(0..points);
+                        level[at] = floor + rng.random_range(0.0..300.0);
+                    }
+                }
+                2 => {
+                    let at = rng.random_range(0..points);
+                    level[at] = 1e5;
+                }
+                _ => {}
+            }
+            let span = frequency[points - 1] - frequency[0];
+            let spacing = match rng.random_range(0..5) {
+                0 => step * rng.random_range(0.1..2.0),
+                1 => step * rng.random_range(2.0..50.0),
+                2 => span * rng.random_range(0.05..0.5),
+                3 => span * rng.random_range(1.0..4.0),
+                _ => 10f64.powf(rng.random_range(0.0..12.0)),
+            };
+            let resolution = rng
+                .random_bool(0.5)
+                .then(|| Hz(10f64.powf(rng.random_range(0.0..12.0))));
+            let mut trace = Trace::new(frequency.clone(), level.clone(), resolution).unwrap();
+            let mut spacing = spacing;
+            if case % 2 == 0 {
+                // Half the draws: a real comb, spoilt (spikes, every k-th point only, a spacing
+                // off by a factor), so that the analysis gets past its first checks.
+                let beta = rng.random_range(0.01..8.0);
+                let every = [1, 1, 2, 5, 20][rng.random_range(0..5)];
+                let drawn = draw(&comb(beta, rng.random_range(-0.5..0.5)), case as u64);
+                let (mut f, mut l): (Vec<f64>, Vec<f64>) = drawn
+                    .frequency_hz()
+                    .iter()
+                    .zip(drawn.power_dbm())
+                    .step_by(every)
+                    .map(|(f, l)| (*f, *l))
+                    .unzip();
+                if rng.random_bool(0.3) {
+                    for _ in 0..rng.random_range(1..20) {
+                        let at = rng.random_range(0..l.len());
+                        l[at] += rng.random_range(-80.0..80.0);
+                    }
+                }
+                if rng.random_bool(0.1) {
+                    f.truncate(rng.random_range(3..f.len()));
+                    l.truncate(f.len());
+                }
+                spacing = SPACING.0 * [1.0, 1.0, 1.0, 0.5, 2.0, 1.01, 1.5][rng.random_range(0..7)];
+                trace = Trace::new(f, l, resolution).unwrap();
+            }
+            let reference = match rng.random_range(0..3) {
+                0 => None,
+                1 => Some(
+                    Trace::new(
+                        frequency.clone(),
+                        level.iter().map(|l| l - 3.0).collect(),
+                        resolution,
+                    )
+                    .unwrap(),
+                ),
+                _ => {
+                    let n = rng.random_range(3..500);
+                    Some(
+                        Trace::new(
+                            (0..n).map(|i| start + 0.5 * step * i as f64).collect(),
+                            (0..n)
+                                .map(|_| floor + rng.random_range(0.0..60.0))
+                                .collect(),
+                            None,
+                        )
+                        .unwrap(),
+                    )
+                }
+            };
+            let options = AnalysisOptions {
+                resolution_bandwidth: rng
+                    .random_bool(0.3)
+                    .then(|| Hz(10f64.powf(rng.random_range(0.0..12.0)))),
+                ..AnalysisOptions::default()
+            };
+            match analyze_trace(&trace, Hz(spacing), reference.as_ref(), &options) {
+                Ok(a) => {
+                    outcomes[0] += 1;
+                    let beta = a.modulation_index;
+                    assert!(
+                        beta.value.is_finite()
+                            && beta.uncertainty.is_finite()
+                            && beta.uncertainty >= 0.0,
+                        "case {case}: beta {} +- {}",
+                        beta.value,
+                        beta.uncertainty
+                    );
+                }
+                Err(e) => {
+                    outcomes[1] += 1;
+                    assert!(!e.to_string().is_empty(), "case {case}");
+                }
+            }
+        }
+        // Both outcomes occur (the draws are not all refused at the first check).
+        assert!(outcomes[0] > 0 && outcomes[1] > 0, "{outcomes:?}");
+        eprintln!("analysed {}, refused {}", outcomes[0], outcomes[1]);
+    }
 }
