@@ -294,7 +294,56 @@ async fn clients_name_a_wrong_or_missing_token() {
         &viewer,
     ])
     .await;
-    failed_with(&out, &["role is not allowed"]);
+    failed_with(
+        &out,
+        &["role is not allowed", "halfwave token create --role"],
+    );
+}
+
+/// A plan with a misspelt field: the one refusal is said once, not repeated as its own list; a
+/// plan with several mistakes lists each under the summary.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn submit_names_each_mistake_of_a_refused_plan_once() {
+    let (bench, operator) = bench_with_chain().await;
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("bad.json");
+    let submit = |plan: serde_json::Value| {
+        std::fs::write(&path, plan.to_string()).unwrap();
+        let (path, base, operator) = (path.clone(), bench.app.base.clone(), operator.clone());
+        async move {
+            halfwave_async(&[
+                "submit",
+                path.to_str().unwrap(),
+                "--url",
+                &base,
+                "--token",
+                &operator,
+            ])
+            .await
+        }
+    };
+    let mut misspelt = plan_json();
+    misspelt["settle_sec"] = serde_json::json!(1.0);
+    let out = submit(misspelt).await;
+    failed_with(&out, &["unknown field `settle_sec`"]);
+    assert_eq!(
+        stderr(&out).matches("unknown field").count(),
+        1,
+        "{}",
+        stderr(&out)
+    );
+    let mut wrong = plan_json();
+    wrong["frequencies"] = serde_json::json!({"kind": "list", "values_hz": [-1e9, 2e9]});
+    wrong["levels"]["stop_dbm"] = serde_json::json!(300.0);
+    let out = submit(wrong).await;
+    failed_with(
+        &out,
+        &[
+            "fields of the plan are invalid",
+            "\n  frequencies.values_hz[0]: ",
+            "\n  levels.stop_dbm: ",
+        ],
+    );
 }
 
 const FREQUENCIES_HZ: [f64; 2] = [2e9, 8e9];

@@ -278,18 +278,21 @@ impl ApiClient {
                 "the daemon refused the token ({detail}); check --token or {TOKEN_ENV}, or create a new one with `halfwave token create`"
             )),
             403 => CliError::new(format!(
-                "the token's role is not allowed to do this ({detail}); ask an admin for an operator or admin token"
+                "the token's role is not allowed to do this ({detail}); use a token with the role it names (an admin creates one with `halfwave token create --role ROLE --name NAME`)"
             )),
             422 => {
                 let fields: Vec<String> = problem
                     .map(|p| {
                         p.errors
                             .iter()
-                            .map(|e| format!("  {}: {}", e.field, e.message))
+                            .map(|e| format!("{}: {}", e.field, e.message))
                             .collect()
                     })
                     .unwrap_or_default();
-                if fields.is_empty() {
+                // One field whose text is already the summary is said once.
+                let repeats_summary = matches!(fields.as_slice(), [only] if *only == detail);
+                let fields: Vec<String> = fields.iter().map(|f| format!("  {f}")).collect();
+                if fields.is_empty() || repeats_summary {
                     CliError::new(format!("the daemon refused the request to {path}: {detail}"))
                 } else {
                     CliError::new(format!(
