@@ -119,6 +119,32 @@ async fn create_prints_once_list_hides_secrets_revoke_disables() {
     let no_database = halfwave(&["token", "list"]);
     assert!(!no_database.status.success());
     assert!(String::from_utf8_lossy(&no_database.stderr).contains("--database"));
+
+    // A mistyped --database: `token create` may be told --create, `token list` (which has no
+    // such option) is not.
+    let missing = format!("{database}-typo");
+    let listed = halfwave(&["token", "list", "--database", &missing]);
+    let said = String::from_utf8_lossy(&listed.stderr);
+    assert!(
+        !listed.status.success() && said.contains("there is no database at"),
+        "{said}"
+    );
+    assert!(!said.contains("--create"), "{said}");
+    let created = halfwave(&[
+        "token",
+        "create",
+        "--role",
+        "viewer",
+        "--name",
+        "x",
+        "--database",
+        &missing,
+    ]);
+    let said = String::from_utf8_lossy(&created.stderr);
+    assert!(
+        !created.status.success() && said.contains("add --create"),
+        "{said}"
+    );
 }
 
 /// A configuration whose `data_dir` is relative names another file from another working

@@ -87,8 +87,13 @@ fn chosen_database(
 /// empty database and a token the daemon will refuse), from a configuration file as the daemon
 /// would at its first start, saying where. `token list` and `token revoke` refuse it, naming the
 /// path and, for a relative `data_dir`, the working directory it was read against (run from
-/// another directory, the same configuration names another file).
-async fn open(choice: &DatabaseChoice, may_create: bool) -> Result<Store, CliError> {
+/// another directory, the same configuration names another file); only `token create`
+/// (`creating_command`) suggests --create.
+async fn open(
+    choice: &DatabaseChoice,
+    may_create: bool,
+    creating_command: bool,
+) -> Result<Store, CliError> {
     let (url, config) = chosen_database(choice)?;
     if crate::store::Backend::of_url(&url) == crate::store::Backend::Sqlite {
         let options = super::db::url_options(&url)?;
@@ -110,10 +115,16 @@ async fn open(choice: &DatabaseChoice, may_create: bool) -> Result<Store, CliErr
                 .unwrap_or_default();
             match (&config, may_create) {
                 (None, false) => {
+                    // Only `token create` can make one (with --create).
+                    let or_create = if creating_command {
+                        ", or add --create to make a new one"
+                    } else {
+                        ""
+                    };
                     return Err(CliError::new(format!(
-                        "there is no database at {}; check --database (the daemon's is `data_dir`/halfwave.db of its configuration, or pass --config FILE), or add --create to make a new one",
+                        "there is no database at {}; check --database (the daemon's is `data_dir`/halfwave.db of its configuration, or pass --config FILE){or_create}",
                         file.display()
-                    )))
+                    )));
                 }
                 (Some(_), false) => {
                     return Err(CliError::new(format!(
@@ -154,7 +165,7 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                 let role: Role = role.parse().map_err(CliError::new)?;
                 // From a configuration file the database may be made here (before the daemon's first
                 // start); a --database file only with --create.
-                let store = open(&database, create || database.database.is_none()).await?;
+                let store = open(&database, create || database.database.is_none(), true).await?;
                 let created = tokens::create(store.pool(), &name, role, "cli")
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;
@@ -169,7 +180,7 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                 Ok(())
             }
             TokenAction::Revoke { name, database } => {
-                let store = open(&database, false).await?;
+                let store = open(&database, false, false).await?;
                 tokens::revoke(store.pool(), &name)
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;
@@ -178,7 +189,7 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                 Ok(())
             }
             TokenAction::List { database, json } => {
-                let store = open(&database, false).await?;
+                let store = open(&database, false, false).await?;
                 let list = tokens::list(store.pool())
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;
