@@ -133,6 +133,68 @@ async fn the_planner_answers_from_the_record_both_ways() {
     assert_eq!(c["chain"]["version"], 1);
     assert_eq!(c["chain"]["outside_table"], false);
     assert!(close(&c["level_uncertainty_db"], 0.13245, 1e-5), "{c}");
+    // A stored chain that states its gain's uncertainty (the CSV's third column) lends it when
+    // the question gives none: at 6 GHz the larger of the bracketing entries, 0.08 dB (as the V_pi
+    // budget takes it), so u = sqrt(0.08686^2 + 0.08^2) = 0.11809 dB; a given value overrides it.
+    // The chain without that column stays at 0 (V_pi's part alone, 0.08686 dB).
+    app.store()
+        .create_chain_calibration(
+            "stated chain",
+            "test",
+            &[
+                halfwave::store::ChainCalibrationPoint::new(
+                    halfwave::units::Hz(1e9),
+                    halfwave::units::Db(-1.5),
+                )
+                .with_uncertainty(halfwave::units::Db(0.05)),
+                halfwave::store::ChainCalibrationPoint::new(
+                    halfwave::units::Hz(40e9),
+                    halfwave::units::Db(-4.0),
+                )
+                .with_uncertainty(halfwave::units::Db(0.08)),
+            ],
+        )
+        .await
+        .unwrap();
+    let (status, stated) = drive(
+        &app,
+        &token,
+        "frequency_hz=6e9&modulation_index=1.2&chain=stated%20chain",
+    )
+    .await;
+    assert_eq!(status, 200, "{stated}");
+    assert!(
+        close(&stated["chain"]["gain_uncertainty_db"], 0.08, 1e-12),
+        "{stated}"
+    );
+    assert!(
+        close(&stated["level_uncertainty_db"], 0.11809, 1e-5),
+        "{stated}"
+    );
+    let (_, given) = drive(
+        &app,
+        &token,
+        "frequency_hz=6e9&modulation_index=1.2&chain=stated%20chain&chain_uncertainty_db=0.1",
+    )
+    .await;
+    assert!(
+        close(&given["level_uncertainty_db"], 0.13245, 1e-5),
+        "{given}"
+    );
+    let (_, without) = drive(
+        &app,
+        &token,
+        &format!("frequency_hz=6e9&modulation_index=1.2&chain={chain}"),
+    )
+    .await;
+    assert!(
+        close(&without["chain"]["gain_uncertainty_db"], 0.0, 0.0),
+        "{without}"
+    );
+    assert!(
+        close(&without["level_uncertainty_db"], 0.08686, 1e-5),
+        "{without}"
+    );
     // Below both records: the chain's table starts at 1 GHz (its end value held at 0.5 GHz) and
     // V_pi's at 2 GHz (the line through 2 and 4 GHz: 3.5 - 0.25 x 1.5 = 3.125 V).
     let (status, d) = drive(

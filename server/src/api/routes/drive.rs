@@ -10,6 +10,7 @@
 //! `limits.max_level_at_modulator_dbm` is refused with the limit named: the planner never hands
 //! out a level the engine would refuse to set.
 
+use crate::analysis::budget::chain_uncertainty_at;
 use crate::analysis::chain::{ChainPoint, DriveChain};
 use crate::analysis::drive_plan::{solve_drive, DriveInputs, DriveTarget};
 use crate::api::auth::Viewer;
@@ -61,7 +62,9 @@ pub struct DriveQuery {
     /// Give this or `chain`.
     #[param(minimum = -60, maximum = 100)]
     pub chain_loss_db: Option<f64>,
-    /// Standard uncertainty of the chain's gain, dB (default 0: stored calibrations carry none).
+    /// Standard uncertainty of the chain's gain, dB (default: a stored calibration's own at the
+    /// frequency, from its `gain_uncertainty_db` column as the V_pi budget takes it; 0 for a flat
+    /// loss or a table that states none).
     #[param(minimum = 0, maximum = 20)]
     pub chain_uncertainty_db: Option<f64>,
     /// Take V_pi from this completed run of the device instead of by the lookup rule.
@@ -75,7 +78,8 @@ struct Question {
     frequency: Hz,
     target: DriveTarget,
     chain: ChainQuestion,
-    chain_uncertainty: Db,
+    /// The asker's, when given (else the stored calibration's own).
+    chain_uncertainty: Option<Db>,
 }
 
 enum ChainQuestion {
@@ -193,7 +197,7 @@ fn check_query(query: &DriveQuery) -> Result<Question, Problem> {
             frequency,
             target,
             chain,
-            chain_uncertainty: Db(chain_uncertainty),
+            chain_uncertainty: query.chain_uncertainty_db.map(Db),
         }),
         _ => {
             let detail = errors
@@ -220,6 +224,8 @@ async fn resolve_chain(
     question: &ChainQuestion,
     frequency: Hz,
 ) -> Result<(DriveChain, DriveChainUsed), Problem> {
+    // The stored table's own standard uncertainty at the frequency, where it states one.
+    let mut stated_uncertainty = None;
     let (chain, name, version, loss_db) = match question {
         ChainQuestion::FlatLoss(loss) => {
             (DriveChain::flat_loss(Db(*loss)), None, None, Some(*loss))
@@ -240,6 +246,14 @@ async fn resolve_chain(
                 ),
                 other => Problem::from(other),
             })?;
+            stated_uncertainty = chain_uncertainty_at(
+                &calibration
+                    .points
+                    .iter()
+                    .map(|p| (p.frequency(), p.gain_uncertainty_db.map(Db)))
+                    .collect::<Vec<_>>(),
+                frequency,
+            );
             let points = calibration
                 .points
                 .iter()
@@ -269,7 +283,7 @@ async fn resolve_chain(
         version,
         loss_db,
         gain_db: chain.gain_at(frequency).0,
-        gain_uncertainty_db: 0.0,
+        gain_uncertainty_db: stated_uncertainty.map_or(0.0, |u| u.0),
         outside_table,
     };
     Ok((chain, used))
@@ -306,7 +320,7 @@ pub async fn plan_drive(
                 Problem::invalid_field(
                     "frequency_hz",
                     format!(
-                        "{e}; or ask again with extrapolate=true for an extrapolated V_pi (flagged, with a wider uncertainty)"
+                        "{e}; or ask again with extrapolate=true (`halfwave drive --extrapolate`) for an extrapolated V_pi (flagged, with a wider uncertainty)"
                     ),
                 )
             }
@@ -314,12 +328,14 @@ pub async fn plan_drive(
         })?;
     let (chain, mut chain_used) =
         resolve_chain(&state, &question.chain, question.frequency).await?;
-    chain_used.gain_uncertainty_db = question.chain_uncertainty.0;
+    if let Some(given) = question.chain_uncertainty {
+        chain_used.gain_uncertainty_db = given.0;
+    }
     let inputs = DriveInputs {
         v_pi: vpi.v_pi_volts,
         v_pi_uncertainty: vpi.v_pi_uncertainty_volts,
         chain_gain: chain.gain_at(question.frequency),
-        chain_gain_uncertainty: question.chain_uncertainty,
+        chain_gain_uncertainty: Db(chain_used.gain_uncertainty_db),
     };
     // The inputs are checked above and V_pi is positive, so what is left is an index too small
     // to give any power in floating point (below about 1e-150): the asker's field.
