@@ -346,6 +346,84 @@ async fn submit_names_each_mistake_of_a_refused_plan_once() {
     );
 }
 
+/// `compare`'s exit status tells a finding from a failure (README, "CLI tour"): 0 when no common
+/// frequency differs significantly, 3 when one does (named on stderr), 1 when the comparison
+/// cannot be made (an unknown run). The stored runs are invented: V_pi 3 V + f / 4 GHz with 1 %
+/// standard uncertainty, and a second run 5 % higher at 8 GHz only, where E_n = 0.25 V /
+/// (2 x sqrt(0.05^2 + 0.0525^2) V) = 1.72 > 1; elsewhere the runs are equal (E_n = 0).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn compare_exits_three_on_a_significant_difference_and_one_on_a_failure() {
+    use api_support::seed::{seed_completed_run, seed_device};
+    let app = spawn_app().await;
+    let viewer = app.token("viewer-c", Role::Viewer).await;
+    let (device_id, chain_id) = seed_device(app.store(), "EG-PM-0077").await;
+    let v_pi = |f: f64| 3.0 + f / 4e9;
+    let frequencies = [2e9, 4e9, 8e9];
+    let first = seed_completed_run(
+        app.store(),
+        device_id,
+        chain_id,
+        &frequencies,
+        &[0.0, 6.0],
+        v_pi,
+        51,
+    )
+    .await;
+    let same = seed_completed_run(
+        app.store(),
+        device_id,
+        chain_id,
+        &frequencies,
+        &[0.0, 6.0],
+        v_pi,
+        51,
+    )
+    .await;
+    let higher = seed_completed_run(
+        app.store(),
+        device_id,
+        chain_id,
+        &frequencies,
+        &[0.0, 6.0],
+        |f| if f > 5e9 { 1.05 * v_pi(f) } else { v_pi(f) },
+        51,
+    )
+    .await;
+    let compare = |a: i64, b: i64| {
+        let (base, viewer) = (app.base.clone(), viewer.clone());
+        async move {
+            halfwave_async(&[
+                "compare",
+                &a.to_string(),
+                &b.to_string(),
+                "--url",
+                &base,
+                "--token",
+                &viewer,
+            ])
+            .await
+        }
+    };
+    let equal = compare(first.run_id, same.run_id).await;
+    assert_eq!(equal.status.code(), Some(0), "{}", stderr(&equal));
+    let differ = compare(first.run_id, higher.run_id).await;
+    assert_eq!(differ.status.code(), Some(3), "{}", stderr(&differ));
+    assert!(
+        stderr(&differ).contains("differ significantly at 8.000 GHz")
+            && !stderr(&differ).contains("error:"),
+        "{}",
+        stderr(&differ)
+    );
+    assert!(
+        stdout(&differ).contains("1 with a significant difference"),
+        "{}",
+        stdout(&differ)
+    );
+    let unknown = compare(first.run_id, 9999).await;
+    assert_eq!(unknown.status.code(), Some(1), "{}", stderr(&unknown));
+    failed_with(&unknown, &["no run with id 9999"]);
+}
+
 const FREQUENCIES_HZ: [f64; 2] = [2e9, 8e9];
 
 fn plan_json() -> serde_json::Value {
@@ -847,10 +925,10 @@ async fn the_record_verbs(
         assert_eq!(row["significant"], en.abs() > 1.0);
         any_significant |= en.abs() > 1.0;
     }
-    // The exit status says whether any frequency differs significantly.
+    // The exit status says whether any frequency differs significantly (3), else 0.
     assert_eq!(
-        compared.status.success(),
-        !any_significant,
+        compared.status.code(),
+        Some(if any_significant { 3 } else { 0 }),
         "{}",
         stderr(&compared)
     );

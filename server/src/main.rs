@@ -19,6 +19,10 @@ fn main() -> std::process::ExitCode {
         Err(halfwave::cli::CliError::ClosedPipe) => {
             std::process::ExitCode::from(halfwave::cli::CLOSED_PIPE_EXIT_CODE)
         }
+        Err(halfwave::cli::CliError::Finding(finding)) => {
+            eprintln!("{finding}");
+            std::process::ExitCode::from(halfwave::cli::FINDING_EXIT_CODE)
+        }
         Err(e) => {
             eprintln!("error: {}", e.report());
             std::process::ExitCode::FAILURE

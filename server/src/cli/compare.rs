@@ -1,8 +1,8 @@
 //! `halfwave compare RUN_A RUN_B`: two runs' V_pi side by side, per frequency, with the difference,
 //! its combined standard uncertainty and whether it is significant (E_n, see
 //! [`crate::analysis::agreement`]); e.g. a modulator's calibration against last year's, or two
-//! benches on one modulator. Exits non-zero when any common frequency differs significantly, so a
-//! script can act on it.
+//! benches on one modulator. Exits 3 ([`super::FINDING_EXIT_CODE`]) when any common frequency
+//! differs significantly, so a script can act on it, and 1 on a failure like every command.
 
 use super::client::ClientArgs;
 use super::runs::{runtime, to_json};
@@ -91,7 +91,7 @@ pub fn run(args: CompareArgs) -> Result<(), CliError> {
         if significant.is_empty() {
             Ok(())
         } else {
-            Err(CliError::new(format!(
+            Err(CliError::Finding(format!(
                 "runs {} and {} differ significantly at {}",
                 args.run_a,
                 args.run_b,

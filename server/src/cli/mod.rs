@@ -75,6 +75,11 @@ pub enum CliError {
     /// the process exits with [`CLOSED_PIPE_EXIT_CODE`].
     #[error("standard output was closed by its reader")]
     ClosedPipe,
+    /// The command worked, and what it found is the answer "no" a script tests for (two runs that
+    /// differ significantly): said on stderr, exit status [`FINDING_EXIT_CODE`], so that a script
+    /// tells it from a failure (status 1).
+    #[error("{0}")]
+    Finding(String),
 }
 
 impl CliError {
@@ -103,6 +108,10 @@ impl CliError {
 /// The exit status after stdout's reader went away: 128 + SIGPIPE (13), what a shell reports for
 /// a program that a closed pipe stopped (common practice), so `set -o pipefail` still sees it.
 pub const CLOSED_PIPE_EXIT_CODE: u8 = 141;
+
+/// The exit status of a command whose answer is a finding rather than a failure
+/// ([`CliError::Finding`]): `compare` on runs that differ significantly. Every failure exits 1.
+pub const FINDING_EXIT_CODE: u8 = 3;
 
 /// Writes to stdout (and flushes, so that a closed pipe is noticed at once); a closed pipe is
 /// [`CliError::ClosedPipe`], any other failure a message naming stdout.
@@ -164,7 +173,8 @@ pub enum Command {
     /// Resume an interrupted run (or one that failed on a link fault) where it stopped, and
     /// follow it.
     Resume(control::ResumeArgs),
-    /// Compare two runs' V_pi per frequency: difference, combined uncertainty, significance (E_n).
+    /// Compare two runs' V_pi per frequency: difference, combined uncertainty, significance (E_n);
+    /// exits 3 when a frequency differs significantly, 1 on a failure.
     Compare(compare::CompareArgs),
     /// List the modulators with their newest calibration (date, run, frequency range).
     Devices(devices::DevicesArgs),
