@@ -18,6 +18,10 @@ use std::time::Duration;
 /// need not depend on the drivers for it.
 pub use halfwave_units::Identity;
 
+/// What an operator should check when a connection to an instrument fails or is lost (the end of
+/// every [`InstrumentError::Connection`] message; a caller chaining several says it once).
+pub const LINK_ADVICE: &str = "check the cable, the address and that the instrument is on";
+
 /// What went wrong talking to an instrument. Messages name the instrument and say what to do.
 #[derive(Debug, thiserror::Error)]
 pub enum InstrumentError {
@@ -30,7 +34,7 @@ pub enum InstrumentError {
     BadProfile { resource: String, reason: String },
 
     /// The connection could not be made or was lost.
-    #[error("connection to {resource} failed during {operation}: {source}; check the cable, the address and that the instrument is on")]
+    #[error("connection to {resource} failed during {operation}: {source}; {advice}", advice = LINK_ADVICE)]
     Connection {
         resource: String,
         operation: String,

@@ -361,9 +361,12 @@ impl Engine {
                 false,
             ),
             RunOutcome::Cancelled => (RunState::Cancelled, Some("cancelled".into()), false),
-            RunOutcome::Failed(cause) => (RunState::Failed, Some(cause), false),
-            RunOutcome::FailedResumable(cause) => (RunState::Failed, Some(cause), true),
+            RunOutcome::Failed(cause) => (RunState::Failed, Some(advice_once(cause)), false),
+            RunOutcome::FailedResumable(cause) => {
+                (RunState::Failed, Some(advice_once(cause)), true)
+            }
             RunOutcome::OutputUnconfirmed(cause) => {
+                let cause = advice_once(cause);
                 // Flag the bench first: the keeper starts at once, then the run is recorded.
                 slot.safety
                     .output_unconfirmed(slot.source.clone(), cause.clone())
@@ -393,5 +396,54 @@ impl Engine {
                 "could not read the V_pi results back to close the run: {e}"
             )),
         }
+    }
+}
+
+/// A cause that chains several connection errors (the step's, the read-back's, the switch-off's)
+/// repeats the link advice after each; it is said once, after the last.
+fn advice_once(cause: String) -> String {
+    let advice = format!("; {}", halfwave_drivers::instrument::LINK_ADVICE);
+    match cause.rfind(&advice) {
+        Some(last) if cause.matches(&advice).count() > 1 => {
+            let (head, tail) = cause.split_at(last);
+            format!("{}{tail}", head.replace(&advice, ""))
+        }
+        _ => cause,
+    }
+}
+
+#[cfg(test)]
+mod advice_tests {
+    use super::advice_once;
+
+    #[test]
+    fn the_link_advice_is_said_once_after_the_last_error() {
+        // The cause of a run that lost its source's link with the output on (a rehearsal drill).
+        let chained = "instrument link fault: the link to TCPIP::127.0.0.1::5025::SOCKET was lost during set level and re-established; \
+            the step failed (connection to TCPIP::127.0.0.1::5025::SOCKET failed during POWer?: Connection reset by peer (os error 104); \
+            check the cable, the address and that the instrument is on), and the output could not be confirmed off afterwards \
+            (connection to TCPIP::127.0.0.1::5025::SOCKET failed during OUTPut?: Connection reset by peer (os error 104); \
+            check the cable, the address and that the instrument is on); then the RF output could not be confirmed off \
+            (connection to TCPIP::127.0.0.1::5025::SOCKET failed during OUTPut OFF: Broken pipe (os error 32); \
+            check the cable, the address and that the instrument is on); the bench is held while the daemon keeps trying to switch it off";
+        let once = advice_once(chained.to_string());
+        assert_eq!(once.matches("check the cable").count(), 1, "{once}");
+        assert!(
+            once.contains("OUTPut OFF: Broken pipe (os error 32); check the cable, the address and that the instrument is on); the bench is held"),
+            "{once}"
+        );
+        // Every error is still there, with its operation and cause.
+        for part in [
+            "during POWer?: Connection reset by peer",
+            "during OUTPut?: Connection reset by peer",
+            "afterwards",
+            "keeps trying",
+        ] {
+            assert!(once.contains(part), "{part}: {once}");
+        }
+        // One error, or none, is left as it is.
+        let single = "connection to X failed during OUTPut?: refused; check the cable, the address and that the instrument is on";
+        assert_eq!(advice_once(single.to_string()), single);
+        assert_eq!(advice_once("cancelled".into()), "cancelled");
     }
 }
