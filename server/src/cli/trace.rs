@@ -1,5 +1,5 @@
-//! `halfwave trace RUN POINT [--output FILE]`: one stored analyzer trace as the CSV that
-//! `halfwave analyze` reads (`frequency_hz,power_dbm`, every value written so it reads back to
+//! `halfwave trace RUN POINT [--reference] [--output FILE]`: one stored analyzer trace (or the
+//! RF-off reference trace taken at its frequency) as the CSV that `halfwave analyze` reads (`frequency_hz,power_dbm`, every value written so it reads back to
 //! the same f64), so a point can be analysed again offline or in another tool.
 //!
 //! POINT counts the run's points from 1 in the order the API lists them (frequency, then level:
@@ -18,6 +18,10 @@ pub struct TraceArgs {
     pub run_id: i64,
     /// The point's number in the run, from 1 (frequency, then level, as the plan orders them).
     pub point: u32,
+    /// Export the RF-off reference trace the run took at the point's frequency instead (for
+    /// `halfwave analyze --reference`).
+    #[arg(long)]
+    pub reference: bool,
     #[command(flatten)]
     pub output: OutputArgs,
     #[command(flatten)]
@@ -47,27 +51,46 @@ pub fn run(args: TraceArgs) -> Result<(), CliError> {
                 page.total, page.total
             )));
         };
+        let kind = if args.reference {
+            "reference"
+        } else {
+            "measured"
+        };
         let csv = client
             .get_text(&format!(
-                "/api/v1/runs/{run_id}/points/{}/trace?format=csv",
+                "/api/v1/runs/{run_id}/points/{}/trace?format=csv&kind={kind}",
                 point.id
             ))
             .await?;
-        let description = format!(
-            "run {run_id}, point {} of {}: {:.6} GHz at {:.2} dBm{}",
-            args.point,
-            page.total,
-            point.frequency_hz / 1e9,
-            point.generator_level_dbm,
-            point
-                .modulation_index
-                .map(|b| format!(", stored modulation index {b:.5}"))
-                .unwrap_or_default()
-        );
+        let description = if args.reference {
+            format!(
+                "run {run_id}: the RF-off reference at {:.6} GHz (point {}'s frequency)",
+                point.frequency_hz / 1e9,
+                args.point
+            )
+        } else {
+            format!(
+                "run {run_id}, point {} of {}: {:.6} GHz at {:.2} dBm{}",
+                args.point,
+                page.total,
+                point.frequency_hz / 1e9,
+                point.generator_level_dbm,
+                point
+                    .modulation_index
+                    .map(|b| format!(", stored modulation index {b:.5}"))
+                    .unwrap_or_default()
+            )
+        };
         Ok((csv, description, point.frequency_hz))
     })?;
     args.output.write(&csv)?;
-    if let Some(path) = &args.output.output {
+    if let (Some(path), true) = (&args.output.output, args.reference) {
+        eprintln!(
+            "{description}; written to {} (give it to `halfwave analyze --reference {}` with the point's trace)",
+            path.display(),
+            path.display()
+        );
+    } else if let Some(path) = &args.output.output {
         // The point's drive frequency is the comb's line spacing: the command is ready to run.
         eprintln!(
             "{description}; trace written to {} (analyse it with `halfwave analyze {} --modulation-frequency {}`)",

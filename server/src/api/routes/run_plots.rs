@@ -2,7 +2,7 @@
 //! spectrum, and the modulation index versus drive at one frequency. Reading runs and points is in
 //! [`super::runs`].
 
-use super::runs::{point_number, point_with_number};
+use super::runs::{point_number, point_with_number, reference_of_point};
 use crate::api::auth::Viewer;
 use crate::api::params::{ApiPath, ApiQuery};
 use crate::api::plots::{self, MarkedLine, ModulationPlot, ModulationPoint, SpectrumPlot};
@@ -84,16 +84,7 @@ async fn spectrum_of(
     );
     // The fitted model is drawn over the trace: the analysis is run again on the stored trace
     // (with the frequency's RF-off reference when one was stored), a millisecond's work.
-    let reference = state
-        .store()
-        .reference_traces(point.run_id)
-        .await
-        .ok()
-        .and_then(|r| {
-            r.into_iter()
-                .find(|r| r.frequency_index == point.frequency_index)
-        })
-        .map(|r| r.trace);
+    let reference = reference_of_point(state, point).await.ok().flatten();
     let fitted = crate::analysis::analyze_trace_with_model(
         &trace,
         point.frequency(),

@@ -68,6 +68,11 @@ pub struct TraceQuery {
     /// `json` (default) or `csv`.
     #[param(pattern = "^(json|csv)$")]
     pub format: Option<String>,
+    /// `measured` (default): the point's own trace; `reference`: the RF-off reference trace the
+    /// engine took at the point's frequency (the laser line as the analyzer shows it, which the
+    /// analysis uses as the line shape; 404 when the run took none).
+    #[param(pattern = "^(measured|reference)$")]
+    pub kind: Option<String>,
 }
 
 fn paging(page: Option<u32>, per_page: Option<u32>, default: u32) -> Result<(u32, u32), Problem> {
@@ -304,10 +309,25 @@ pub fn point_number(points: &[PointRecord], point_id: i64) -> usize {
     points.iter().filter(|p| p.id <= point_id).count()
 }
 
-/// The analyzer trace of one point, as JSON or CSV (`frequency_hz,power_dbm`).
+/// The RF-off reference trace the engine took at `point`'s frequency, when the run stored one.
+pub async fn reference_of_point(
+    state: &AppState,
+    point: &PointRecord,
+) -> Result<Option<crate::units::Trace>, Problem> {
+    Ok(state
+        .store()
+        .reference_traces(point.run_id)
+        .await?
+        .into_iter()
+        .find(|r| r.frequency_index == point.frequency_index)
+        .map(|r| r.trace))
+}
+
+/// The analyzer trace of one point (or, with `kind=reference`, the RF-off reference trace at its
+/// frequency), as JSON or CSV (`frequency_hz,power_dbm`).
 #[utoipa::path(get, path = "/api/v1/runs/{run_id}/points/{point_id}/trace", tag = "runs", security(("bearer" = [])),
     params(("run_id" = i64, Path, description = "Run id"), ("point_id" = i64, Path, description = "Point id"), TraceQuery),
-    responses((status = 200, description = "JSON, or text/csv (`frequency_hz,power_dbm`) with format=csv",
+    responses((status = 200, description = "JSON, or text/csv (`frequency_hz,power_dbm`) with format=csv; the point's trace, or with kind=reference the RF-off reference at its frequency",
                content((TraceView = "application/json"), (String = "text/csv"))),
               (status = 401, body = Problem), (status = 404, body = Problem), (status = 422, body = Problem)))]
 pub async fn point_trace(
@@ -326,8 +346,27 @@ pub async fn point_trace(
             ))
         }
     };
-    point_of_run(&state, run_id, point_id).await?;
-    let trace = state.store().point_trace(point_id).await?;
+    let reference = match query.kind.as_deref() {
+        None | Some("measured") => false,
+        Some("reference") => true,
+        Some(other) => {
+            return Err(Problem::invalid_field(
+                "kind",
+                format!("unknown trace kind {other:?}; use measured or reference"),
+            ))
+        }
+    };
+    let point = point_of_run(&state, run_id, point_id).await?;
+    let trace = if reference {
+        reference_of_point(&state, &point).await?.ok_or_else(|| {
+            Problem::not_found(format!(
+                "run {run_id} stored no RF-off reference trace at {:.6} GHz (its plan had reference_trace off, or the reference failed)",
+                point.frequency_hz / 1e9
+            ))
+        })?
+    } else {
+        state.store().point_trace(point_id).await?
+    };
     if csv {
         let out = crate::csv_table::write_trace(&trace);
         return Ok(([(CONTENT_TYPE, "text/csv; charset=utf-8")], out).into_response());
