@@ -9,7 +9,7 @@ use super::comb::{self, MeasuredComb};
 use super::fit::{self, FitStart, FittedModel, LineShape, WholeTraceFit};
 use super::modulation_index::{self, FitData, IndexEstimate, IndexMethod};
 use super::precision::{AnalysisWarning, IndexPrecision};
-use super::spacing;
+use super::spacing::{self, SpacingEstimate};
 use super::AnalysisError;
 use halfwave_units::{Dbm, Hz, Trace};
 use serde::Serialize;
@@ -97,6 +97,30 @@ pub struct TraceAnalysis {
 /// The spacing the trace shows may differ from the one given by this fraction before the trace
 /// is refused (the estimate is good to a small fraction of a percent on a resolved comb).
 const SPACING_TOLERANCE: f64 = 0.02;
+
+/// A fit whose reduced chi-squared exceeds this (the residual far above the display noise) on a
+/// trace whose spacing contradicts the one given ([`spacing_contradicts`]) is refused as a
+/// spacing mismatch, however small: a spacing 0.5 % off passed the check above, and the fit,
+/// pulled between the lines it could not all meet, gave beta 0.3 % off at a reduced chi-squared
+/// of 20 and no warning.
+const CHI2_SPACING_CHECK: f64 = 3.0;
+
+/// Whether the spacing the trace shows differs from `given` by more than five of its standard
+/// uncertainties and more than 1e-4 of itself. Its uncertainty is that of the slope of a
+/// straight line through the line positions against their orders: the positions' scatter about
+/// the grid (each also quantised to the point spacing `step`, so at least step / sqrt(12))
+/// over sqrt(L (L^2 - 1) / 12) for L lines (consecutive orders: with gaps the true figure is
+/// smaller, so this errs towards accepting).
+fn spacing_contradicts(shown: &SpacingEstimate, given: Hz, step: f64) -> bool {
+    let lines = shown.lines as f64;
+    if shown.lines < 3 {
+        return false;
+    }
+    let scatter = shown.scatter_hz.hypot(step / 12f64.sqrt());
+    let u = scatter / (lines * (lines * lines - 1.0) / 12.0).sqrt();
+    let off = (shown.spacing_hz.0 - given.0).abs();
+    off > 5.0 * u && off > 1e-4 * shown.spacing_hz.0
+}
 
 /// A reference trace gives the measured line shape when it has at least this many points across
 /// the line's half-maximum width: with fewer, cubic interpolation between the samples misses the
@@ -239,6 +263,18 @@ pub fn analyze_trace_with_model(
         measured.noise_sigma_db,
     )?;
     let step = (trace.span().1 .0 - trace.span().0 .0) / (trace.len() - 1) as f64;
+    if let Some(s) = shown {
+        if fit.reduced_chi_squared > CHI2_SPACING_CHECK
+            && spacing_contradicts(&s, modulation_frequency, step)
+        {
+            return Err(AnalysisError::SpacingMismatch {
+                given: modulation_frequency,
+                shown: s.spacing_hz,
+                shown_hz: s.spacing_hz.0,
+                lines: s.lines,
+            });
+        }
+    }
     if fit.line_width_hz < MIN_POINTS_PER_WIDTH * step {
         return Err(AnalysisError::TooCoarse(format!(
             "the points are {} apart but the lines only {} wide (at least {MIN_POINTS_PER_WIDTH} point per line width is needed)",
@@ -849,5 +885,41 @@ mod tests {
         // Both outcomes occur (the draws are not all refused at the first check).
         assert!(outcomes[0] > 0 && outcomes[1] > 0, "{outcomes:?}");
         eprintln!("analysed {}, refused {}", outcomes[0], outcomes[1]);
+    }
+
+    /// A spacing 0.5 % off the comb's passes the 2 % consistency check, and the fit then cannot
+    /// describe the trace (it gave beta 0.3 % off at a reduced chi-squared of 20, with no
+    /// warning): refused as a spacing mismatch naming the spacing the trace shows. The right
+    /// spacing on the same trace, and one 0.005 % off (well within the estimate's reach), are
+    /// analysed as before.
+    #[test]
+    fn a_slightly_wrong_spacing_with_a_residual_far_above_the_noise_is_refused() {
+        let trace = draw(&comb(1.6, 0.0), 77);
+        match analyze_trace(
+            &trace,
+            Hz(SPACING.0 * 1.005),
+            None,
+            &AnalysisOptions::default(),
+        ) {
+            Err(AnalysisError::SpacingMismatch { shown, lines, .. }) => {
+                assert!((shown.0 - SPACING.0).abs() < 1e-3 * SPACING.0, "{shown:?}");
+                assert!(lines >= 3);
+            }
+            other => panic!("expected a spacing mismatch, got {other:?}"),
+        }
+        for factor in [1.0, 1.00005] {
+            let a = analyze_trace(
+                &trace,
+                Hz(SPACING.0 * factor),
+                None,
+                &AnalysisOptions::default(),
+            )
+            .unwrap_or_else(|e| panic!("spacing x {factor}: {e}"));
+            assert!(
+                (a.modulation_index.value - 1.6).abs() < 3.0 * a.modulation_index.uncertainty,
+                "spacing x {factor}: {:?}",
+                a.modulation_index
+            );
+        }
     }
 }
