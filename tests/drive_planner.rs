@@ -531,9 +531,44 @@ async fn drive_and_predict_through_the_binary() {
     let out = halfwave(&args).await;
     assert!(!out.status.success());
     assert!(
-        String::from_utf8_lossy(&out.stderr).contains("extrapolate=true"),
+        String::from_utf8_lossy(&out.stderr).contains("`halfwave drive --extrapolate`"),
         "{}",
         String::from_utf8_lossy(&out.stderr)
+    );
+    // A negative index reaches the daemon's check (not the argument parser's advice to write
+    // `-- -1`), and a missing chain names both ways to give one.
+    let mut args = vec![
+        "drive",
+        SERIAL,
+        "--frequency",
+        "6e9",
+        "--modulation-index",
+        "-1",
+        "--chain-loss-db",
+        "3",
+    ];
+    args.extend(common);
+    let out = halfwave(&args).await;
+    let said = String::from_utf8_lossy(&out.stderr);
+    assert!(!out.status.success());
+    assert!(
+        said.contains("modulation_index") && !said.contains("-- -1"),
+        "{said}"
+    );
+    let out = halfwave(&[
+        "drive",
+        SERIAL,
+        "--frequency",
+        "6e9",
+        "--modulation-index",
+        "1",
+    ])
+    .await;
+    let said = String::from_utf8_lossy(&out.stderr);
+    assert!(!out.status.success());
+    assert!(
+        said.contains("--chain") && said.contains("--chain-loss-db"),
+        "{said}"
     );
     // Both chains at once is refused by the command line itself.
     let out = halfwave(&[

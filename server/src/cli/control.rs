@@ -14,7 +14,8 @@ use clap::Args;
 use std::time::{Duration, Instant};
 
 /// How long `cancel` waits for the run to reach its final state before it says it is still
-/// stopping (the engine stops at the next step: a settling time or an analyzer sweep).
+/// stopping (the engine drops the run's step at once, settling and sweeps included, then
+/// switches the RF output off and reads it back, which a source that does not answer delays).
 const CANCEL_WAIT: Duration = Duration::from_secs(30);
 
 #[derive(Debug, Args)]
@@ -55,7 +56,7 @@ pub fn cancel(args: CancelArgs) -> Result<(), CliError> {
             );
         } else {
             outln!(
-                "cancellation of run {id} requested; it is still {} after {} s (it stops at the end of the current step); `{}` shows when it has stopped",
+                "cancellation of run {id} requested; it is still {} after {} s (the daemon stops a run at once, then waits for the source to confirm its RF output off); `{}` shows when it has stopped",
                 run.summary.state,
                 CANCEL_WAIT.as_secs(),
                 client.hint(&format!("show {id}"))

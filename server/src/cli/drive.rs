@@ -14,6 +14,7 @@ use crate::store::RunSelection;
 use clap::Args;
 
 #[derive(Debug, Args)]
+#[command(group(clap::ArgGroup::new("drive_chain").required(true).multiple(false)))]
 pub struct DriveArgs {
     /// The modulator's serial number.
     pub serial: String,
@@ -24,6 +25,7 @@ pub struct DriveArgs {
     #[arg(
         long,
         value_name = "BETA",
+        allow_hyphen_values = true,
         required_unless_present = "generator_level_dbm",
         conflicts_with = "generator_level_dbm"
     )]
@@ -32,21 +34,22 @@ pub struct DriveArgs {
     #[arg(long, value_name = "DBM", allow_hyphen_values = true)]
     pub generator_level_dbm: Option<f64>,
     /// A stored drive-chain calibration by name (newest version unless --chain-version).
-    #[arg(
-        long,
-        value_name = "NAME",
-        required_unless_present = "chain_loss_db",
-        conflicts_with = "chain_loss_db"
-    )]
+    #[arg(long, value_name = "NAME", group = "drive_chain")]
     pub chain: Option<String>,
     /// The version of --chain.
     #[arg(long, value_name = "VERSION", requires = "chain")]
     pub chain_version: Option<i64>,
     /// A flat loss from generator to modulator, dB (negative for a net gain).
-    #[arg(long, value_name = "DB", allow_hyphen_values = true)]
+    #[arg(
+        long,
+        value_name = "DB",
+        allow_hyphen_values = true,
+        group = "drive_chain"
+    )]
     pub chain_loss_db: Option<f64>,
-    /// Standard uncertainty of the chain's gain, dB (default 0).
-    #[arg(long, value_name = "DB")]
+    /// Standard uncertainty of the chain's gain, dB (default: a stored chain's own at the
+    /// frequency, from its `gain_uncertainty_db` column; else 0).
+    #[arg(long, value_name = "DB", allow_hyphen_values = true)]
     pub chain_uncertainty_db: Option<f64>,
     /// Take V_pi from this run (a completed calibration of the device).
     #[arg(long, value_name = "RUN")]

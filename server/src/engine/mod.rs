@@ -792,7 +792,7 @@ impl Engine {
                     Some(h) => self.inner.store.chain_calibration(h.id).await?,
                     None => {
                         return Err(invalid(match version {
-                            Some(v) => format!("no chain calibration {name:?} version {v}; list them with GET /api/v1/chain-calibrations"),
+                            Some(v) => format!("no chain calibration {name:?} version {v}; list them with `halfwave chain list` or GET /api/v1/chain-calibrations"),
                             None => format!("no chain calibration named {name:?}; upload one first"),
                         }))
                     }

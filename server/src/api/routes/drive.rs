@@ -240,7 +240,7 @@ async fn resolve_chain(
                 StoreError::NotFound { .. } => Problem::invalid_field(
                     if version.is_some() { "chain_version" } else { "chain" },
                     format!(
-                        "no chain calibration {name:?}{}; list them with GET /api/v1/chain-calibrations",
+                        "no chain calibration {name:?}{}; list them with `halfwave chain list` or GET /api/v1/chain-calibrations",
                         version.map(|v| format!(" version {v}")).unwrap_or_default()
                     ),
                 ),
