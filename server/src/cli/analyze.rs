@@ -41,6 +41,18 @@ pub struct AnalyzeArgs {
 
 /// Runs the command: prints the analysis as JSON.
 pub fn run(args: AnalyzeArgs) -> Result<(), CliError> {
+    // The command line's own values are refused as such, before any file is read (else the
+    // message would name the file as if its data were wrong).
+    for (flag, value) in [
+        ("--modulation-frequency", args.modulation_frequency),
+        ("--resolution-bandwidth", args.resolution_bandwidth),
+    ] {
+        if let Some(v) = value.filter(|v| !(v.is_finite() && *v > 0.0)) {
+            return Err(CliError::new(format!(
+                "{flag} {v}: give a frequency above 0 Hz, in hertz (7.5e9) or with a unit (7.5GHz)"
+            )));
+        }
+    }
     let is_sweep = args
         .input
         .extension()
