@@ -27,13 +27,45 @@ fn chromium() -> Option<String> {
     })
 }
 
-#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
-    let Some(executable) = chromium() else {
+/// The browser to drive; `None` (the test then returns, said loudly) when `chromium` is not
+/// installed and CI is not set. Under CI a missing browser fails the test.
+fn chromium_or_skip() -> Option<String> {
+    let found = chromium();
+    if found.is_none() {
         if std::env::var("CI").is_ok_and(|v| v == "true" || v == "1") {
             panic!("chromium is not installed but CI is set: .ci/run installs it (apt-get install chromium)");
         }
         eprintln!("\n*** SKIPPED dashboard_browser: `chromium` is not on PATH (apt-get install chromium) ***\n");
+    }
+    found
+}
+
+/// Chromium on the app's dashboard, once the page has loaded.
+async fn open_dashboard(executable: &str, app: &api_support::TestApp) -> Browser {
+    let mut browser = Browser::launch(executable).await;
+    browser.navigate(&app.url("/dashboard/")).await;
+    wait_for(
+        &mut browser,
+        "document.readyState === 'complete' && !!document.getElementById('token-input')",
+        30,
+    )
+    .await;
+    browser
+}
+
+/// Pastes `token` into the page's token field and submits it, as a user would.
+async fn paste_token(browser: &mut Browser, token: &str) {
+    browser
+        .eval(&format!(
+            "document.getElementById('token-input').value = '{token}'; \
+             document.getElementById('token-form').requestSubmit(); true"
+        ))
+        .await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
+    let Some(executable) = chromium_or_skip() else {
         return;
     };
     // Slow enough that the page sees the run in progress (each sweep takes a fraction of its
@@ -52,14 +84,7 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
         .await;
     assert_eq!(uploaded.status(), 201);
 
-    let mut browser = Browser::launch(&executable).await;
-    browser.navigate(&app.url("/dashboard/")).await;
-    wait_for(
-        &mut browser,
-        "document.readyState === 'complete' && !!document.getElementById('token-input')",
-        30,
-    )
-    .await;
+    let mut browser = open_dashboard(&executable, app).await;
     // Before a token: the page says why it is empty, and the idle bar shows nothing done.
     assert_eq!(
         browser
@@ -69,12 +94,7 @@ async fn dashboard_submits_a_run_and_shows_progress_and_spectrum() {
         "the page says that a token is needed and how to get one"
     );
     assert_eq!(bar_fraction(&mut browser).await, 0.0, "idle bar at 0 %");
-    browser
-        .eval(&format!(
-            "document.getElementById('token-input').value = '{operator}'; \
-             document.getElementById('token-form').requestSubmit(); true"
-        ))
-        .await;
+    paste_token(&mut browser, &operator).await;
     wait_for(
         &mut browser,
         "document.getElementById('bench-select').options.length > 0 \
@@ -255,11 +275,7 @@ impl halfwave_drivers::RfSource for UnreachableSource {
 /// as "RF OUTPUT NOT CONFIRMED OFF" in the bench table.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn an_unconfirmed_rf_output_is_a_red_banner_above_everything() {
-    let Some(executable) = chromium() else {
-        if std::env::var("CI").is_ok_and(|v| v == "true" || v == "1") {
-            panic!("chromium is not installed but CI is set: .ci/run installs it (apt-get install chromium)");
-        }
-        eprintln!("\n*** SKIPPED dashboard_browser: `chromium` is not on PATH (apt-get install chromium) ***\n");
+    let Some(executable) = chromium_or_skip() else {
         return;
     };
     let bench = spawn_app_with_instruments(0.0, |sim| halfwave::engine::bench::BenchInstruments {
@@ -269,14 +285,7 @@ async fn an_unconfirmed_rf_output_is_a_red_banner_above_everything() {
     .await;
     let app = &bench.app;
     let viewer = app.token("viewer", Role::Viewer).await;
-    let mut browser = Browser::launch(&executable).await;
-    browser.navigate(&app.url("/dashboard/")).await;
-    wait_for(
-        &mut browser,
-        "document.readyState === 'complete' && !!document.getElementById('token-input')",
-        30,
-    )
-    .await;
+    let mut browser = open_dashboard(&executable, app).await;
     // No token yet: nothing is read, so no banner.
     assert_eq!(
         browser
@@ -284,12 +293,7 @@ async fn an_unconfirmed_rf_output_is_a_red_banner_above_everything() {
             .await,
         serde_json::Value::Bool(true)
     );
-    browser
-        .eval(&format!(
-            "document.getElementById('token-input').value = '{viewer}'; \
-             document.getElementById('token-form').requestSubmit(); true"
-        ))
-        .await;
+    paste_token(&mut browser, &viewer).await;
     wait_for(
         &mut browser,
         "!document.getElementById('safety-banner').hidden \
@@ -405,11 +409,7 @@ async fn text_of(browser: &mut Browser, selector: &str) -> String {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn dashboard_resumes_only_resumable_runs_confirms_cancel_and_pins_from_a_run_view() {
-    let Some(executable) = chromium() else {
-        if std::env::var("CI").is_ok_and(|v| v == "true" || v == "1") {
-            panic!("chromium is not installed but CI is set: .ci/run installs it (apt-get install chromium)");
-        }
-        eprintln!("\n*** SKIPPED dashboard_browser: `chromium` is not on PATH (apt-get install chromium) ***\n");
+    let Some(executable) = chromium_or_skip() else {
         return;
     };
     let bench = spawn_app_with_engine(0.0).await;
@@ -486,20 +486,8 @@ async fn dashboard_resumes_only_resumable_runs_confirms_cancel_and_pins_from_a_r
     // Queued in the store only (the engine's queue does not hold it): cancel works on it.
     let queued = new_run().await;
 
-    let mut browser = Browser::launch(&executable).await;
-    browser.navigate(&app.url("/dashboard/")).await;
-    wait_for(
-        &mut browser,
-        "document.readyState === 'complete' && !!document.getElementById('token-input')",
-        30,
-    )
-    .await;
-    browser
-        .eval(&format!(
-            "document.getElementById('token-input').value = '{operator}'; \
-             document.getElementById('token-form').requestSubmit(); true"
-        ))
-        .await;
+    let mut browser = open_dashboard(&executable, app).await;
+    paste_token(&mut browser, &operator).await;
     wait_for(
         &mut browser,
         &format!("!!document.querySelector('#run-table tr[data-run-id=\"{queued}\"]')"),
@@ -750,11 +738,7 @@ async fn wait_for(browser: &mut Browser, condition: &str, seconds: u64) {
 /// the markup in stored strings shown as text (no element made from it), and prints to PDF.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_calibration_report_renders_and_prints_to_pdf() {
-    let Some(executable) = chromium() else {
-        if std::env::var("CI").is_ok_and(|v| v == "true" || v == "1") {
-            panic!("chromium is not installed but CI is set: .ci/run installs it (apt-get install chromium)");
-        }
-        eprintln!("\n*** SKIPPED dashboard_browser: `chromium` is not on PATH (apt-get install chromium) ***\n");
+    let Some(executable) = chromium_or_skip() else {
         return;
     };
     let app = api_support::spawn_app().await;

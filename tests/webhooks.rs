@@ -417,6 +417,25 @@ async fn a_redirect_is_not_followed_and_counts_as_a_failed_attempt() {
     assert!(target.received().is_empty(), "the redirect was followed");
 }
 
+/// Sends the daemon SIGTERM and waits (up to 60 s) for it to exit successfully (its log
+/// `log_name` in the failure message); returns how long it took.
+async fn stop_with_sigterm(
+    daemon: &mut tokio::process::Child,
+    bench: &Bench,
+    log_name: &str,
+) -> Duration {
+    let pid = daemon.id().expect("the daemon is running");
+    let pid = rustix::process::Pid::from_raw(pid as i32).unwrap();
+    let signalled = Instant::now();
+    rustix::process::kill_process(pid, rustix::process::Signal::TERM).unwrap();
+    let status = tokio::time::timeout(Duration::from_secs(60), daemon.wait())
+        .await
+        .expect("the daemon exits within 60 s of SIGTERM")
+        .unwrap();
+    assert!(status.success(), "{status:?}: {}", bench.log(log_name));
+    signalled.elapsed()
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
     // Nothing listens on this port until the daemon has stopped.
@@ -430,14 +449,7 @@ async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
     );
     let token = bench.operator_token().await;
     let (mut daemon, run_id) = daemon_support::serve_mid_run(&bench, "first.log", &token, 3).await;
-    let pid = daemon.id().expect("the daemon is running");
-    let pid = rustix::process::Pid::from_raw(pid as i32).unwrap();
-    rustix::process::kill_process(pid, rustix::process::Signal::TERM).unwrap();
-    let status = tokio::time::timeout(Duration::from_secs(30), daemon.wait())
-        .await
-        .expect("the daemon exits within 30 s of SIGTERM")
-        .unwrap();
-    assert!(status.success(), "{status:?}: {}", bench.log("first.log"));
+    stop_with_sigterm(&mut daemon, &bench, "first.log").await;
 
     // The interruption was recorded and attempted once at shutdown (refused: nobody listens).
     let store = Store::open(bench.database().to_str().unwrap())
@@ -496,16 +508,7 @@ async fn a_receiver_that_never_answers_holds_the_shutdown_for_five_seconds_only(
     let token = bench.operator_token().await;
     let (mut daemon, _run_id) =
         daemon_support::serve_mid_run(&bench, "daemon.log", &token, 3).await;
-    let pid = daemon.id().expect("the daemon is running");
-    let pid = rustix::process::Pid::from_raw(pid as i32).unwrap();
-    let signalled = Instant::now();
-    rustix::process::kill_process(pid, rustix::process::Signal::TERM).unwrap();
-    let status = tokio::time::timeout(Duration::from_secs(60), daemon.wait())
-        .await
-        .expect("the daemon exits within 60 s of SIGTERM")
-        .unwrap();
-    let took = signalled.elapsed();
-    assert!(status.success(), "{status:?}: {}", bench.log("daemon.log"));
+    let took = stop_with_sigterm(&mut daemon, &bench, "daemon.log").await;
     assert!(
         accepted.load(std::sync::atomic::Ordering::SeqCst) >= 1,
         "no delivery was attempted at shutdown: {}",
