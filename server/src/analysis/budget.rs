@@ -211,4 +211,42 @@ mod tests {
         })
         .is_none());
     }
+
+    /// README's worked figures ("V_pi's uncertainty budget"): the demo's 0.2 GHz result, 3.3241 V
+    /// with 0.0034 V from the fit (the demo's printed table), with 0.05 dB for the chain and
+    /// +/- 0.5 dB for the generator gives contributions of 0.003 V, 0.019 V and 0.110 V, 0.112 V
+    /// combined and 0.224 V expanded. By hand (GUM 4.3.7, 5.1.2): 3.3241 x ln(10)/20 = 0.38271 V
+    /// per dB; x 0.05 = 0.01914 V; x 0.5/sqrt(3) = 0.11048 V; sqrt(0.0034^2 + 0.01914^2 +
+    /// 0.11048^2) = 0.11218 V.
+    #[test]
+    fn the_readme_worked_budget_holds() {
+        let budget = v_pi_budget(BudgetInputs {
+            v_pi: VoltsPeak(3.3241),
+            fit_uncertainty: VoltsPeak(0.0034),
+            chain_uncertainty: Db(0.05),
+            source_level_accuracy: Db(0.5),
+        })
+        .unwrap();
+        let contributions: Vec<f64> = budget.rows.iter().map(|r| r.contribution_volts).collect();
+        let rounded = |v: f64| (v * 1000.0).round() / 1000.0;
+        assert_eq!(
+            contributions
+                .iter()
+                .map(|c| rounded(*c))
+                .collect::<Vec<_>>(),
+            [0.003, 0.019, 0.110],
+            "{contributions:?}"
+        );
+        assert!(
+            (contributions[1] - 0.01914).abs() < 1e-5,
+            "{contributions:?}"
+        );
+        assert!(
+            (contributions[2] - 0.11048).abs() < 1e-5,
+            "{contributions:?}"
+        );
+        assert!((budget.combined_standard_uncertainty_volts - 0.11218).abs() < 1e-5);
+        assert_eq!(rounded(budget.combined_standard_uncertainty_volts), 0.112);
+        assert_eq!(rounded(budget.expanded_uncertainty_volts), 0.224);
+    }
 }
