@@ -1915,7 +1915,10 @@ fn a_negative_frequency_is_named_not_taken_for_a_flag() {
     ]);
     failed_with(
         &analyze,
-        &["modulation frequency -1000000000 Hz is not a positive"],
+        &[
+            "--modulation-frequency -1000000000 is not a frequency",
+            "7.5e9",
+        ],
     );
     // A frequency with its unit, as people write it, is read (the command gets as far as the
     // daemon); an unknown unit is named with the forms that work.

@@ -49,7 +49,7 @@ pub fn run(args: AnalyzeArgs) -> Result<(), CliError> {
     ] {
         if let Some(v) = value.filter(|v| !(v.is_finite() && *v > 0.0)) {
             return Err(CliError::new(format!(
-                "{flag} {v}: give a frequency above 0 Hz, in hertz (7.5e9) or with a unit (7.5GHz)"
+                "{flag} {v} is not a frequency; give hertz above zero, e.g. 7.5e9 for 7.5 GHz"
             )));
         }
     }
