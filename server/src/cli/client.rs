@@ -271,7 +271,7 @@ impl ApiClient {
             .unwrap_or_else(|| body.chars().take(300).collect());
         match status.as_u16() {
             401 if self.token.is_none() => CliError::new(format!(
-                "the daemon at {} wants a token and none was given: pass --token or set {TOKEN_ENV} (create one with `halfwave token create --role operator --name NAME --config FILE`)",
+                "the daemon at {} wants a token and none was given: pass --token or set {TOKEN_ENV} (create one with `halfwave token create --role ROLE --name NAME --config FILE`: operator to submit, cancel and resume runs, admin for chain uploads and tokens)",
                 self.base
             )),
             401 => CliError::new(format!(

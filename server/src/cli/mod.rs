@@ -152,7 +152,8 @@ pub enum Command {
     /// Run the whole job on a simulated bench in seconds: an in-process daemon, a
     /// calibration submitted over HTTP, the V_pi table, the response frequencies and SVG plots.
     Demo(demo::DemoArgs),
-    /// Serve the simulated bench (RF source and analyzer) as SCPI instruments over TCP.
+    /// Serve the simulated bench (RF source and analyzer, and with --sensor-port a power sensor) as
+    /// SCPI instruments over TCP.
     Sim(sim::SimArgs),
     /// Run the daemon: the engine on the configured benches, the HTTP API and the dashboard.
     Serve(serve::ServeArgs),

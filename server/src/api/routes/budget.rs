@@ -129,7 +129,7 @@ pub async fn budget_for_run(
                     vec![FieldProblem::new(
                         "source_level_accuracy_db",
                         format!(
-                            "bench {:?} states no source_level_accuracy_db in this daemon's configuration; give the generator's +/- level accuracy from its data sheet",
+                            "bench {:?} states no source_level_accuracy_db in this daemon's configuration; give the generator's +/- level accuracy from its data sheet (`halfwave budget --source-level-accuracy-db`)",
                             run.bench_name
                         ),
                     )],
@@ -166,7 +166,7 @@ pub async fn budget_for_run(
                     vec![FieldProblem::new(
                         "chain_uncertainty_db",
                         format!(
-                            "chain calibration {:?} v{} states no gain uncertainty at {} GHz; give the chain's standard uncertainty in dB from its calibration certificate",
+                            "chain calibration {:?} v{} states no gain uncertainty at {} GHz; give the chain's standard uncertainty in dB from its calibration certificate (`halfwave budget --chain-uncertainty-db`)",
                             run.chain_name,
                             run.chain_version,
                             r.frequency_hz / 1e9
