@@ -241,6 +241,9 @@ pub fn resolve(
                         path.display()
                     )
                 })?;
+                if let Some(warning) = loose_secret_file(&path) {
+                    tracing::warn!("configuration: webhook[{i}].secret_file: {warning}");
+                }
                 (
                     format!("webhook[{i}].secret_file"),
                     text.trim_end_matches(['\r', '\n']).to_string(),
@@ -266,9 +269,50 @@ pub fn resolve(
     Ok(receivers)
 }
 
+/// What is wrong with a secret file that users other than its owner may read (README,
+/// "Notifications": a file readable only by the daemon's user), for a warning at start; `None`
+/// when only its owner may read or write it, and on systems without Unix permissions.
+pub fn loose_secret_file(path: &std::path::Path) -> Option<String> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        let mode = std::fs::metadata(path).ok()?.permissions().mode() & 0o777;
+        (mode & 0o077 != 0).then(|| {
+            format!(
+                "{} is readable or writable by other users (mode {mode:03o}): anyone who reads it can sign notifications; make it the daemon user's only (chmod 600)",
+                path.display()
+            )
+        })
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = path;
+        None
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[cfg(unix)]
+    #[test]
+    fn a_secret_file_others_may_read_is_named_for_a_warning() {
+        use std::os::unix::fs::PermissionsExt;
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("webhook.secret");
+        std::fs::write(&path, "0123456789abcdef0123456789abcdef\n").unwrap();
+        std::fs::set_permissions(&path, std::fs::Permissions::from_mode(0o644)).unwrap();
+        let warning = loose_secret_file(&path).expect("a 644 file is named");
+        assert!(
+            warning.contains("mode 644") && warning.contains("chmod 600"),
+            "{warning}"
+        );
+        std::fs::set_permissions(&path, std::fs::Permissions::from_mode(0o600)).unwrap();
+        assert_eq!(loose_secret_file(&path), None);
+        std::fs::set_permissions(&path, std::fs::Permissions::from_mode(0o640)).unwrap();
+        assert!(loose_secret_file(&path).is_some());
+    }
 
     fn hook(extra: &str) -> Result<WebhookConfig, String> {
         toml::from_str(&format!("url = \"http://192.0.2.7:9000/hook\"\n{extra}"))
