@@ -268,13 +268,12 @@ async fn a_quick_check_does_not_hide_a_wide_calibration_and_a_pin_decides() {
     // Outside the pinned run's range: refused, naming it.
     let (status, outside) = v_pi(app, &viewer, "frequency_hz=18e9").await;
     assert_eq!(status, 422);
+    let detail = outside["detail"].as_str().unwrap();
     assert!(
-        outside["detail"]
-            .as_str()
-            .unwrap()
-            .contains("pinned reference calibration"),
+        detail.contains("pinned reference calibration and no other completed run covers"),
         "{outside}"
     );
+    assert!(!detail.contains("  "), "no run of spaces inside: {detail}");
     // The history marks it and both plots say so.
     let (_, history) = get_json(
         app,

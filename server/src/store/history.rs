@@ -149,11 +149,11 @@ impl DeviceCalibrationSet {
             let other = self.newest_covering(f).map(|r| r.run_id);
             let hint = match (selection, other) {
                 (RunSelection::Pinned, Some(other)) => format!(
-                    "; run {} is the device's pinned reference calibration: run {other} covers                      {f} Hz (ask with run_id={other}, or unpin run {})",
+                    "; run {} is the device's pinned reference calibration: run {other} covers {f} Hz (ask with run_id={other}, `--run {other}` on the command line, or unpin run {})",
                     run.run_id, run.run_id
                 ),
                 (RunSelection::Pinned, None) => format!(
-                    "; run {} is the device's pinned reference calibration and no other completed                      run covers {f} Hz either",
+                    "; run {} is the device's pinned reference calibration and no other completed run covers {f} Hz either",
                     run.run_id
                 ),
                 (_, Some(other)) => format!("; run {other} covers it"),
