@@ -348,10 +348,7 @@ async fn a_receiver_down_then_up_gets_the_delivery_on_a_later_attempt_with_growi
         3,
         "no attempt after the delivery"
     );
-    let store = Store::open(bench.database().to_str().unwrap())
-        .await
-        .unwrap();
-    let rows = store.webhook_deliveries(10).await.unwrap();
+    let rows = stored_deliveries(&bench).await;
     assert_eq!(rows.len(), 1, "{rows:?}");
     assert_eq!(rows[0].state, "delivered");
     assert_eq!(rows[0].attempts, 3);
@@ -417,6 +414,16 @@ async fn a_redirect_is_not_followed_and_counts_as_a_failed_attempt() {
     assert!(target.received().is_empty(), "the redirect was followed");
 }
 
+/// The bench database's webhook deliveries (up to 10), read on a connection of their own.
+async fn stored_deliveries(bench: &Bench) -> Vec<halfwave::store::WebhookDelivery> {
+    let store = Store::open(bench.database().to_str().unwrap())
+        .await
+        .unwrap();
+    let rows = store.webhook_deliveries(10).await.unwrap();
+    store.close().await;
+    rows
+}
+
 /// Sends the daemon SIGTERM and waits (up to 60 s) for it to exit successfully (its log
 /// `log_name` in the failure message); returns how long it took.
 async fn stop_with_sigterm(
@@ -452,11 +459,7 @@ async fn a_delivery_pending_when_the_daemon_stops_is_sent_after_the_restart() {
     stop_with_sigterm(&mut daemon, &bench, "first.log").await;
 
     // The interruption was recorded and attempted once at shutdown (refused: nobody listens).
-    let store = Store::open(bench.database().to_str().unwrap())
-        .await
-        .unwrap();
-    let rows = store.webhook_deliveries(10).await.unwrap();
-    store.close().await;
+    let rows = stored_deliveries(&bench).await;
     assert_eq!(rows.len(), 1, "{rows:?}");
     assert_eq!(rows[0].event_type, "run.interrupted");
     assert_eq!(rows[0].state, "pending");
@@ -519,11 +522,7 @@ async fn a_receiver_that_never_answers_holds_the_shutdown_for_five_seconds_only(
         "exited {took:?} after SIGTERM: {}",
         bench.log("daemon.log")
     );
-    let store = Store::open(bench.database().to_str().unwrap())
-        .await
-        .unwrap();
-    let rows = store.webhook_deliveries(10).await.unwrap();
-    store.close().await;
+    let rows = stored_deliveries(&bench).await;
     assert_eq!(rows.len(), 1, "{rows:?}");
     assert_eq!(rows[0].event_type, "run.interrupted");
     assert_eq!(rows[0].state, "pending", "{rows:?}");

@@ -264,6 +264,10 @@ async fn reference_traces_and_results_replace_on_retake(store: Store) {
     assert_eq!(references.len(), 2);
     assert_eq!(references[1].frequency_index, 1);
     assert_eq!(references[0].trace.len(), trace.len());
+    // One frequency's reference alone (the point trace route's `kind=reference`).
+    let one = store.reference_trace(run.id, 1).await.unwrap();
+    assert_eq!(one.as_ref(), Some(&references[1].trace));
+    assert!(store.reference_trace(run.id, 2).await.unwrap().is_none());
 
     store
         .save_frequency_result(&result(run.id, 0, 10.0, 4.0, 0.05))

@@ -795,7 +795,7 @@ mod tests {
                 _ => {}
             }
             let span = frequency[points - 1] - frequency[0];
-            let spacing = match rng.random_range(0..5) {
+            let mut spacing = match rng.random_range(0..5) {
                 0 => step * rng.random_range(0.1..2.0),
                 1 => step * rng.random_range(2.0..50.0),
                 2 => span * rng.random_range(0.05..0.5),
@@ -806,7 +806,6 @@ mod tests {
                 .random_bool(0.5)
                 .then(|| Hz(10f64.powf(rng.random_range(0.0..12.0))));
             let mut trace = Trace::new(frequency.clone(), level.clone(), resolution).unwrap();
-            let mut spacing = spacing;
             if case % 2 == 0 {
                 // Half the draws: a real comb, spoilt (spikes, every k-th point only, a spacing
                 // off by a factor), so that the analysis gets past its first checks.

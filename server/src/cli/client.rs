@@ -290,14 +290,12 @@ impl ApiClient {
                     })
                     .unwrap_or_default();
                 // One field whose text is already the summary is said once.
-                let repeats_summary = matches!(fields.as_slice(), [only] if *only == detail);
-                let fields: Vec<String> = fields.iter().map(|f| format!("  {f}")).collect();
-                if fields.is_empty() || repeats_summary {
+                if fields.is_empty() || fields == [detail.as_str()] {
                     CliError::new(format!("the daemon refused the request to {path}: {detail}"))
                 } else {
                     CliError::new(format!(
-                        "the daemon refused the request to {path}: {detail}\n{}",
-                        fields.join("\n")
+                        "the daemon refused the request to {path}: {detail}\n  {}",
+                        fields.join("\n  ")
                     ))
                 }
             }

@@ -82,18 +82,24 @@ fn chosen_database(
     Ok((config.database_url(), Some((path, config))))
 }
 
-/// Opens the chosen database. A SQLite file that does not exist is made only by `token create`
-/// (`may_create`): with `--database` only when `--create` is given (a typo must not make a new
-/// empty database and a token the daemon will refuse), from a configuration file as the daemon
-/// would at its first start, saying where. `token list` and `token revoke` refuse it, naming the
-/// path and, for a relative `data_dir`, the working directory it was read against (run from
-/// another directory, the same configuration names another file); only `token create`
-/// (`creating_command`) suggests --create.
-async fn open(
-    choice: &DatabaseChoice,
-    may_create: bool,
-    creating_command: bool,
-) -> Result<Store, CliError> {
+/// What [`open`] does when the SQLite file does not exist.
+#[derive(Clone, Copy, PartialEq)]
+enum IfMissing {
+    /// Make it (`token create` from a configuration file, or with `--create`).
+    Create,
+    /// Refuse, suggesting `--create` (`token create` with a `--database` file without it).
+    RefuseSuggestingCreate,
+    /// Refuse (`token list`, `token revoke`, which cannot make one).
+    Refuse,
+}
+
+/// Opens the chosen database. A SQLite file that does not exist is made only by `token create`:
+/// with `--database` only when `--create` is given (a typo must not make a new empty database and
+/// a token the daemon will refuse), from a configuration file as the daemon would at its first
+/// start, saying where. `token list` and `token revoke` refuse it, naming the path and, for a
+/// relative `data_dir`, the working directory it was read against (run from another directory,
+/// the same configuration names another file); only `token create` suggests --create.
+async fn open(choice: &DatabaseChoice, if_missing: IfMissing) -> Result<Store, CliError> {
     let (url, config) = chosen_database(choice)?;
     if crate::store::Backend::of_url(&url) == crate::store::Backend::Sqlite {
         let options = super::db::url_options(&url)?;
@@ -113,10 +119,9 @@ async fn open(
                     )
                 })
                 .unwrap_or_default();
-            match (&config, may_create) {
+            match (&config, if_missing == IfMissing::Create) {
                 (None, false) => {
-                    // Only `token create` can make one (with --create).
-                    let or_create = if creating_command {
+                    let or_create = if if_missing == IfMissing::RefuseSuggestingCreate {
                         ", or add --create to make a new one"
                     } else {
                         ""
@@ -165,7 +170,12 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                 let role: Role = role.parse().map_err(CliError::new)?;
                 // From a configuration file the database may be made here (before the daemon's first
                 // start); a --database file only with --create.
-                let store = open(&database, create || database.database.is_none(), true).await?;
+                let if_missing = if create || database.database.is_none() {
+                    IfMissing::Create
+                } else {
+                    IfMissing::RefuseSuggestingCreate
+                };
+                let store = open(&database, if_missing).await?;
                 let created = tokens::create(store.pool(), &name, role, "cli")
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;
@@ -180,7 +190,7 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                 Ok(())
             }
             TokenAction::Revoke { name, database } => {
-                let store = open(&database, false, false).await?;
+                let store = open(&database, IfMissing::Refuse).await?;
                 tokens::revoke(store.pool(), &name)
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;
@@ -189,7 +199,7 @@ pub fn run(command: TokenCommand) -> Result<(), CliError> {
                 Ok(())
             }
             TokenAction::List { database, json } => {
-                let store = open(&database, false, false).await?;
+                let store = open(&database, IfMissing::Refuse).await?;
                 let list = tokens::list(store.pool())
                     .await
                     .map_err(|e| CliError::new(e.to_string()))?;

@@ -169,6 +169,25 @@ impl Store {
         Ok(())
     }
 
+    /// The RF-off reference trace of one frequency of a run, when it was stored (one row read and
+    /// decoded, not the run's every reference).
+    pub async fn reference_trace(
+        &self,
+        run_id: i64,
+        frequency_index: u32,
+    ) -> Result<Option<Trace>, StoreError> {
+        let row: Option<(Vec<u8>,)> = on_pool!(&self.pool, pool => sqlx::query_as(
+            "SELECT encoded FROM reference_traces WHERE run_id = $1 AND frequency_index = $2",
+        )
+        .bind(run_id)
+        .bind(i64::from(frequency_index))
+        .fetch_optional(pool)
+        .await)
+        .map_err(StoreError::database("reading a reference trace"))?;
+        row.map(|(encoded,)| Ok(trace_codec::decode(&encoded)?))
+            .transpose()
+    }
+
     /// The RF-off reference traces of a run, by frequency index.
     pub async fn reference_traces(&self, run_id: i64) -> Result<Vec<ReferenceTrace>, StoreError> {
         let rows: Vec<(i64, f64, i64, Vec<u8>)> = on_pool!(&self.pool, pool => sqlx::query_as(

@@ -316,11 +316,8 @@ pub async fn reference_of_point(
 ) -> Result<Option<crate::units::Trace>, Problem> {
     Ok(state
         .store()
-        .reference_traces(point.run_id)
-        .await?
-        .into_iter()
-        .find(|r| r.frequency_index == point.frequency_index)
-        .map(|r| r.trace))
+        .reference_trace(point.run_id, point.frequency_index)
+        .await?)
 }
 
 /// The analyzer trace of one point (or, with `kind=reference`, the RF-off reference trace at its
