@@ -338,7 +338,18 @@ async fn a_queued_run_is_cancelled_at_once_and_never_starts() {
     let engine = start_engine(Limits::default(), store.clone(), &sim).await;
     let mut events = engine.subscribe();
     let mut first_events = engine.subscribe();
+    let mut start_events = engine.subscribe();
     let first = engine.submit(plan(&chain), "test").await.unwrap();
+    // On a busy machine the engine may take a moment to pick the first run up; wait for its
+    // start so that "still measuring" below is a claim about the engine, not about scheduling.
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(60);
+    loop {
+        match tokio::time::timeout_at(deadline, start_events.recv()).await {
+            Ok(Ok(ProgressEvent::Started { run_id, .. })) if run_id == first => break,
+            Ok(_) => continue,
+            Err(_) => panic!("the first run did not start within 60 s"),
+        }
+    }
     let waiting = engine.submit(plan(&chain), "test").await.unwrap();
     assert_eq!(store.run(waiting).await.unwrap().state, RunState::Queued);
 
