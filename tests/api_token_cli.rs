@@ -182,6 +182,18 @@ fn a_relative_data_dir_read_from_another_directory_makes_no_database_unasked() {
         "{said}"
     );
     assert!(!elsewhere.join("lab-data").exists(), "nothing is created");
+    // `db backup` with the same configuration says the same of the database it would copy.
+    let backup = run(&["db", "backup", "copy.db", "--config", config]);
+    assert!(!backup.status.success());
+    let said = String::from_utf8_lossy(&backup.stderr);
+    assert!(
+        said.contains("there is no database at")
+            && said.contains("lab-data")
+            && said.contains("relative to the working directory")
+            && said.contains("elsewhere"),
+        "{said}"
+    );
+    assert!(!elsewhere.join("copy.db").exists(), "no copy is made");
 
     let created = run(&[
         "token", "create", "--role", "admin", "--name", "first", "--config", config,

@@ -420,6 +420,41 @@ async fn the_cli_and_the_api_run_a_chain_calibration() {
     assert_eq!(response.status(), 422);
     let problem = api_support::problem(response).await.to_string();
     assert!(problem.contains("sensor_accuracy_percent"), "{problem}");
+    // The same refusal through the CLI names the flags to change, with the request's fields.
+    let refused = tokio::process::Command::new(env!("CARGO_BIN_EXE_halfwave"))
+        .args([
+            "chain",
+            "calibrate",
+            "x",
+            "--bench",
+            "sim-bench",
+            "--frequencies-hz",
+            "1e9",
+            "--levels-dbm=0",
+            "--readings",
+            "1",
+            "--max-expected-gain-db",
+            "0",
+            "--source-reflection",
+            "0.1",
+            "--url",
+            &app.base,
+            "--token",
+            &operator,
+        ])
+        .env_remove("HALFWAVE_TOKEN")
+        .output()
+        .await
+        .unwrap();
+    assert!(!refused.status.success());
+    let said = String::from_utf8_lossy(&refused.stderr);
+    for flag in [
+        "--readings (readings_per_level): must be 2 to 100, got 1",
+        "--sensor-accuracy-percent (sensor_accuracy_percent): bench",
+        "--sensor-reflection (sensor_reflection_coefficient): bench",
+    ] {
+        assert!(said.contains(flag), "{flag} in {said}");
+    }
     let response = app
         .get(
             &format!("/api/v1/chain-calibration-runs/{}", view.id),

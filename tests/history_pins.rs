@@ -468,6 +468,21 @@ async fn pin_and_unpin_from_the_command_line() {
         (Some(wide.run_id), Some(true))
     );
 
+    // `devices` names the pinned run, in its table and in its JSON.
+    let listed = run(with(&["devices"])).await;
+    let (out, err) = text(&listed);
+    assert!(listed.status.success(), "{err}");
+    let header = out.lines().next().unwrap_or_default();
+    let row = out
+        .lines()
+        .find(|l| l.starts_with("PM-0042"))
+        .unwrap_or_default();
+    assert!(header.trim_end().ends_with("pinned"), "{out}");
+    assert!(row.trim_end().ends_with(&format!("run {wide_id}")), "{out}");
+    let listed = run(with(&["devices", "--json"])).await;
+    let listed: Value = serde_json::from_slice(&listed.stdout).unwrap();
+    assert_eq!(listed[0]["pinned_run_id"], wide.run_id);
+
     // Pinning the quick check replaces it (JSON for scripts).
     let repinned = run(with(&["pin", &quick.run_id.to_string(), "--json"])).await;
     let (out, err) = text(&repinned);
@@ -483,6 +498,9 @@ async fn pin_and_unpin_from_the_command_line() {
         out.contains(&format!("run {} unpinned", quick.run_id)),
         "{out}"
     );
+    let listed = run(with(&["devices", "--json"])).await;
+    let listed: Value = serde_json::from_slice(&listed.stdout).unwrap();
+    assert_eq!(listed[0]["pinned_run_id"], Value::Null, "nothing pinned");
     // Nothing left to unpin; a run that does not exist; a viewer's token: each said plainly.
     let again = run(with(&["unpin", "PM-0042"])).await;
     let (_, err) = text(&again);

@@ -65,6 +65,34 @@ pub enum ConfigError {
         field: String,
         message: String,
     },
+    /// Several values are wrong: each on a line of its own, `field: message`.
+    #[error("configuration {origin}: {} values are wrong:{}", .problems.len(), .problems.iter().map(|(field, message)| format!("\n  {field}: {message}")).collect::<String>())]
+    InvalidMany {
+        origin: String,
+        problems: Vec<(String, String)>,
+    },
+}
+
+impl ConfigError {
+    /// Nothing wrong, one wrong value ([`ConfigError::Invalid`]) or several
+    /// ([`ConfigError::InvalidMany`]), from the `(field, message)` pairs of a check.
+    fn from_problems(origin: &str, mut problems: Vec<(String, String)>) -> Result<(), ConfigError> {
+        match problems.len() {
+            0 => Ok(()),
+            1 => {
+                let (field, message) = problems.remove(0);
+                Err(ConfigError::Invalid {
+                    origin: origin.to_string(),
+                    field,
+                    message,
+                })
+            }
+            _ => Err(ConfigError::InvalidMany {
+                origin: origin.to_string(),
+                problems,
+            }),
+        }
+    }
 }
 
 /// Safety limits set by the lab; plans are refused if they would exceed them.
@@ -287,48 +315,44 @@ impl Config {
     }
 
     fn check(&self, origin: &str) -> Result<(), ConfigError> {
-        let invalid = |field: &str, message: String| ConfigError::Invalid {
-            origin: origin.to_string(),
-            field: field.to_string(),
-            message,
-        };
+        // Every wrong value is collected, so that one start names them all.
+        let mut problems: Vec<(String, String)> = Vec::new();
+        let mut invalid =
+            |field: &str, message: String| problems.push((field.to_string(), message));
         let max = self.limits.max_level_at_modulator_dbm.value();
         if !max.is_finite() || !(-30.0..=40.0).contains(&max) {
-            return Err(invalid(
+            invalid(
                 "limits.max_level_at_modulator_dbm",
                 format!("must be a level in dBm from -30 to 40, got {max}"),
-            ));
+            );
         }
         let expiry = self.bench_lease_expiry_s;
         if !expiry.is_finite() || !(1.0..=3600.0).contains(&expiry) {
-            return Err(invalid(
+            invalid(
                 "bench_lease_expiry_s",
                 format!("must be a time in seconds from 1 to 3600, got {expiry}"),
-            ));
+            );
         }
         let mut names = std::collections::HashSet::new();
         for (i, bench) in self.benches.iter().enumerate() {
             let field = format!("bench[{i}]");
             if bench.name.trim().is_empty() {
-                return Err(invalid(
-                    &format!("{field}.name"),
-                    "give the bench a name".into(),
-                ));
+                invalid(&format!("{field}.name"), "give the bench a name".into());
             }
             if !names.insert(bench.name.as_str()) {
-                return Err(invalid(
+                invalid(
                     &format!("{field}.name"),
                     format!("the bench name {:?} is used twice", bench.name),
-                ));
+                );
             }
             let simulated = matches!(bench.source, InstrumentConfig::Simulated)
                 || matches!(bench.analyzer, InstrumentConfig::Simulated)
                 || matches!(bench.sensor, Some(InstrumentConfig::Simulated));
             if simulated && bench.simulation.is_none() {
-                return Err(invalid(
+                invalid(
                     &format!("{field}.simulation"),
                     "a bench with simulated instruments needs a [bench.simulation] table (it may be empty)".into(),
-                ));
+                );
             }
             for (role, inst) in [
                 ("source", Some(&bench.source)),
@@ -340,18 +364,18 @@ impl Config {
             {
                 if let InstrumentConfig::Scpi { resource, .. } = inst {
                     if let Err(e) = halfwave_drivers::resource::Resource::parse(resource) {
-                        return Err(invalid(&format!("{field}.{role}.resource"), e.to_string()));
+                        invalid(&format!("{field}.{role}.resource"), e.to_string());
                     }
                 }
             }
             if let Some(Db(accuracy)) = bench.source_level_accuracy_db {
                 if !accuracy.is_finite() || !(0.0..=10.0).contains(&accuracy) {
-                    return Err(invalid(
+                    invalid(
                         &format!("{field}.source_level_accuracy_db"),
                         format!(
                             "must be the generator's level accuracy in dB, 0 to 10 (the +/- value of its data sheet), got {accuracy}"
                         ),
-                    ));
+                    );
                 }
             }
             for (key, value, max, what) in [
@@ -369,33 +393,34 @@ impl Config {
                 ),
             ] {
                 if let Some(v) = value.filter(|v| !(v.is_finite() && (0.0..=max).contains(v))) {
-                    return Err(invalid(
+                    invalid(
                         &format!("{field}.{key}"),
                         format!("must be {what}, got {v}"),
-                    ));
+                    );
                 }
             }
             if let Some(sim) = &bench.simulation {
                 if !sim.time_factor.is_finite() || sim.time_factor < 0.0 {
-                    return Err(invalid(
+                    invalid(
                         &format!("{field}.simulation.time_factor"),
                         format!("must be 0 or more, got {}", sim.time_factor),
-                    ));
+                    );
                 }
             }
         }
         let mut urls = std::collections::HashSet::new();
         for (i, hook) in self.webhooks.iter().enumerate() {
-            hook.check(i)
-                .map_err(|(field, message)| invalid(&field, message))?;
+            if let Err((field, message)) = hook.check(i) {
+                invalid(&field, message);
+            }
             if !urls.insert(hook.url.as_str()) {
-                return Err(invalid(
+                invalid(
                     &format!("webhook[{i}].url"),
                     format!("the receiver {:?} is listed twice; list each URL once (with the union of its events)", hook.url),
-                ));
+                );
             }
         }
-        Ok(())
+        ConfigError::from_problems(origin, problems)
     }
 
     /// The database URL to open.
@@ -543,6 +568,35 @@ mod tests {
             err.to_string().contains("max_level_at_modulator_dbm"),
             "{err}"
         );
+    }
+
+    /// Three wrong values in one file: one start names all three, each with its key (a lab
+    /// fixing them one restart at a time was the complaint).
+    #[test]
+    fn every_wrong_value_is_named_at_once() {
+        let err = parse(
+            "bench_lease_expiry_s = 0
+[limits]
+max_level_at_modulator_dbm = 90
+[[bench]]
+name = \"a\"
+sensor_accuracy_percent = 80
+source = { kind = \"simulated\" }
+analyzer = { kind = \"simulated\" }
+[bench.simulation]
+",
+        )
+        .unwrap_err();
+        let text = err.to_string();
+        assert!(text.contains("3 values are wrong"), "{text}");
+        for key in [
+            "limits.max_level_at_modulator_dbm: must be",
+            "bench_lease_expiry_s: must be",
+            "bench[0].sensor_accuracy_percent: must be",
+        ] {
+            assert_eq!(text.matches(key).count(), 1, "{key} in {text}");
+        }
+        assert_eq!(text.lines().count(), 4, "{text}");
     }
 
     #[test]

@@ -54,9 +54,22 @@ pub struct CalibrateArgs {
     pub client: ClientArgs,
 }
 
+/// The request's fields and the flags that set them, for the daemon's refusals.
+const FLAGS: &[(&str, &str)] = &[
+    ("bench", "--bench"),
+    ("name", "NAME"),
+    ("frequencies_hz", "--frequencies-hz"),
+    ("levels_dbm", "--levels-dbm"),
+    ("readings_per_level", "--readings"),
+    ("max_expected_gain_db", "--max-expected-gain-db"),
+    ("source_reflection_coefficient", "--source-reflection"),
+    ("sensor_accuracy_percent", "--sensor-accuracy-percent"),
+    ("sensor_reflection_coefficient", "--sensor-reflection"),
+];
+
 /// Runs `halfwave chain calibrate`.
 pub fn run(args: CalibrateArgs) -> Result<(), CliError> {
-    let client = args.client.client()?;
+    let client = args.client.client()?.naming_flags(FLAGS);
     let request = ChainCalibrationRequest {
         bench: args.bench.clone(),
         name: args.name.clone(),

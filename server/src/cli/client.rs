@@ -81,6 +81,9 @@ pub struct ApiClient {
     streaming: reqwest::Client,
     /// True when the URL came from `--url` (so follow-up hints must repeat it).
     url_given: bool,
+    /// The command's flag for each request field a refusal (422) may name, so that the person
+    /// at the terminal reads the flag to change (see [`ApiClient::naming_flags`]).
+    flags: &'static [(&'static str, &'static str)],
 }
 
 impl ApiClient {
@@ -125,7 +128,15 @@ impl ApiClient {
             http: build(Some(REQUEST_TIMEOUT))?,
             streaming: build(None)?,
             url_given: false,
+            flags: &[],
         })
+    }
+
+    /// This client with `(request field, command-line flag)` pairs: a refused request's field
+    /// list then names the flag with the field, e.g. `--levels-dbm (levels_dbm): ...`.
+    pub fn naming_flags(mut self, flags: &'static [(&'static str, &'static str)]) -> ApiClient {
+        self.flags = flags;
+        self
     }
 
     /// A follow-up command for the person at the terminal, e.g. `halfwave watch 2`, carrying the
@@ -285,7 +296,10 @@ impl ApiClient {
                     .map(|p| {
                         p.errors
                             .iter()
-                            .map(|e| format!("{}: {}", e.field, e.message))
+                            .map(|e| match self.flags.iter().find(|(f, _)| *f == e.field) {
+                                Some((field, flag)) => format!("{flag} ({field}): {}", e.message),
+                                None => format!("{}: {}", e.field, e.message),
+                            })
                             .collect()
                     })
                     .unwrap_or_default();

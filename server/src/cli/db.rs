@@ -121,8 +121,17 @@ fn source_options(url: &str) -> Result<SqliteConnectOptions, CliError> {
     let options = url_options(url)?;
     let file = options.get_filename().to_path_buf();
     if !file.is_file() {
+        // A relative path (a relative data_dir) is read from the working directory, which may
+        // not be the daemon's: say which directory that was.
+        let relative_to = if file.is_relative() {
+            std::env::current_dir()
+                .map(|dir| format!(" (relative to the working directory {})", dir.display()))
+                .unwrap_or_default()
+        } else {
+            String::new()
+        };
         return Err(CliError::new(format!(
-            "there is no database at {}; check --database, or data_dir / database_url in the configuration",
+            "there is no database at {}{relative_to}; check --database, or data_dir / database_url in the configuration (a relative data_dir is read from the directory the command runs in)",
             file.display()
         )));
     }

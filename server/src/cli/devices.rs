@@ -50,6 +50,9 @@ pub struct DeviceSummary {
     pub frequencies: usize,
     /// Completed calibrations on record.
     pub calibrations: usize,
+    /// The device's pinned reference calibration (the run V_pi lookups answer from), if one is
+    /// pinned; otherwise lookups use the newest completed run covering the frequency.
+    pub pinned_run_id: Option<i64>,
 }
 
 /// The summary of a device from its calibration history (newest first).
@@ -68,6 +71,7 @@ pub fn summarize(device: DeviceView, history: &[Calibration]) -> DeviceSummary {
         highest_frequency_hz: frequencies().reduce(f64::max),
         frequencies: newest.map_or(0, |c| c.points.len()),
         calibrations: history.len(),
+        pinned_run_id: history.iter().find(|c| c.pinned).map(|c| c.run_id),
     }
 }
 
@@ -101,6 +105,7 @@ pub fn list(args: DevicesArgs) -> Result<(), CliError> {
             ("run", Align::Right),
             ("frequency range", Align::Left),
             ("calibrations", Align::Right),
+            ("pinned", Align::Right),
         ]);
         for s in &summaries {
             let (when, run, range) = match (
@@ -122,6 +127,8 @@ pub fn list(args: DevicesArgs) -> Result<(), CliError> {
                 run,
                 range,
                 s.calibrations.to_string(),
+                s.pinned_run_id
+                    .map_or_else(|| "-".to_string(), |run| format!("run {run}")),
             ]);
         }
         out!("{}", table.render());
