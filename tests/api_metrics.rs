@@ -41,8 +41,11 @@ async fn scrape(app: &api_support::TestApp, token: &str) -> String {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn run_and_queue_gauges_follow_a_run() {
-    // Instrument times scaled to 5 %: a point takes some 25 ms, so the run is still being
-    // measured when the first scrape arrives.
+    // Instrument times scaled to 5 % (a point takes some 25 ms), except from the submission until
+    // the queued run's cancel is answered: real times then (a sweep takes 0.4 s), so the first
+    // run's fifteen points after its third (over 6 s) keep it running through the scrape below
+    // and the second run queued until its cancel arrives, with seconds to spare on a loaded
+    // machine.
     let bench = spawn_app_with_engine(0.05).await;
     let app = &bench.app;
     let operator = app.token("lab-b", Role::Operator).await;
@@ -61,6 +64,7 @@ async fn run_and_queue_gauges_follow_a_run() {
     );
     assert_eq!(sample(&idle, "halfwave_points_committed_total"), Some(0.0));
 
+    bench.sim.set_time_factor(1.0);
     let mut run_ids = Vec::new();
     for serial in ["EG-PM-0101", "EG-PM-0102"] {
         let submitted = app
@@ -152,6 +156,7 @@ async fn run_and_queue_gauges_follow_a_run() {
         .await
         .unwrap();
     assert!(cancel.status().is_success(), "{}", cancel.status());
+    bench.sim.set_time_factor(0.05);
     let mut ended = Vec::new();
     while ended.len() < 2 {
         let event = tokio::time::timeout(Duration::from_secs(120), events.recv())

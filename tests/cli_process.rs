@@ -1012,6 +1012,9 @@ async fn the_record_verbs(
     );
 
     // cancel a queued run: it ends cancelled; resume refuses a cancelled run and says why.
+    // From here on the instruments take their full simulated time, so that the runs below are
+    // surely not over before the cancels reach them.
+    bench.sim.set_time_factor(1.0);
     let dir_plan = dir.join("plan.json");
     let queued = run(&[
         "submit",
@@ -1455,6 +1458,7 @@ fn the_shipped_chain_of_the_simulated_bench_is_its_chain() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn ctrl_c_stops_following_only_and_hints_keep_the_url() {
+    use tokio::io::AsyncBufReadExt;
     // Instrument times at 5 %: 2 frequencies x 81 levels take several seconds.
     let (bench, operator) = bench_with_chain().await;
     let app = &bench.app;
@@ -1464,6 +1468,9 @@ async fn ctrl_c_stops_following_only_and_hints_keep_the_url() {
     long["levels"] =
         serde_json::json!({"kind": "ramp", "start_dbm": 0.0, "stop_dbm": 20.0, "step_db": 0.25});
     std::fs::write(&plan, long.to_string()).unwrap();
+    // Full simulated instrument time (about a minute for the run), so that it is surely still
+    // going when the test looks after the Ctrl-C; it is cancelled at the end.
+    bench.sim.set_time_factor(1.0);
 
     // The URL from HALFWAVE_URL: the hint needs no --url; given with --url, the hint repeats it.
     let queued = tokio::process::Command::new(BIN)
@@ -1485,7 +1492,7 @@ async fn ctrl_c_stops_following_only_and_hints_keep_the_url() {
         "{said}"
     );
 
-    let watcher = tokio::process::Command::new(BIN)
+    let mut watcher = tokio::process::Command::new(BIN)
         .args(["watch", &run_id.to_string(), "--url", &app.base])
         .env("HALFWAVE_TOKEN", &operator)
         .env_remove("HALFWAVE_URL")
@@ -1493,7 +1500,25 @@ async fn ctrl_c_stops_following_only_and_hints_keep_the_url() {
         .stderr(std::process::Stdio::piped())
         .spawn()
         .unwrap();
-    tokio::time::sleep(std::time::Duration::from_millis(1500)).await;
+    // Off a terminal, watch says on stderr that it follows the run, and listens for Ctrl-C
+    // right after (in the same step of its task): the signal is sent once that line is read,
+    // not after a guessed delay. Its stderr is read to the end by a task of its own.
+    let mut lines = tokio::io::BufReader::new(watcher.stderr.take().unwrap()).lines();
+    let first = tokio::time::timeout(std::time::Duration::from_secs(60), lines.next_line())
+        .await
+        .expect("watch says what it follows within 60 s")
+        .unwrap()
+        .unwrap_or_default();
+    assert!(first.contains("following it until it ends"), "{first}");
+    let rest = tokio::spawn(async move {
+        let mut text = first;
+        while let Ok(Some(line)) = lines.next_line().await {
+            text.push('\n');
+            text.push_str(&line);
+        }
+        text
+    });
+    tokio::time::sleep(std::time::Duration::from_millis(200)).await;
     let pid = watcher.id().unwrap().to_string();
     let signalled = std::process::Command::new("kill")
         .args(["-INT", &pid])
@@ -1507,7 +1532,7 @@ async fn ctrl_c_stops_following_only_and_hints_keep_the_url() {
     .await
     .expect("watch stops at Ctrl-C")
     .unwrap();
-    let text = stderr(&out);
+    let text = rest.await.unwrap();
     assert!(!out.status.success());
     assert!(text.contains("the run goes on in the daemon"), "{text}");
     assert!(

@@ -162,8 +162,9 @@ async fn a_half_sent_request_holds_neither_the_rf_nor_the_exit_after_sigterm() {
         )
         .await
         .unwrap();
-    // Let the request reach its handler, which now waits for the body.
-    tokio::time::sleep(Duration::from_millis(300)).await;
+    // Let the request reach its handler, which now waits for the body (a second, for a busy
+    // machine: a head not yet read when the signal comes would count as an idle connection).
+    tokio::time::sleep(Duration::from_millis(1000)).await;
     let pid = daemon.id().expect("the daemon is running") as i32;
     let signalled = std::time::Instant::now();
     // SAFETY: kill(2) with a valid pid and signal number has no memory-safety preconditions.

@@ -348,7 +348,9 @@ async fn bench_leases_are_taken_refused_and_taken_over(store: Store) {
     };
     let (a, b) = (holder("lab-a", 101), holder("lab-b", 202));
     let benches = ["north-bench".to_string(), "south-bench".to_string()];
-    let taken = store.take_bench_leases(&a, &benches, 300).await.unwrap();
+    // A long expiry while the refusal is checked (a slow write on a busy machine must not let
+    // the lease lapse first); the heartbeat below shortens it for the take-over.
+    let taken = store.take_bench_leases(&a, &benches, 60_000).await.unwrap();
     assert!(
         taken.iter().all(|t| matches!(t, LeaseTaken::Fresh { .. })),
         "{taken:?}"
@@ -358,7 +360,7 @@ async fn bench_leases_are_taken_refused_and_taken_over(store: Store) {
         .take_bench_leases(
             &b,
             &["south-bench".to_string(), "east-bench".to_string()],
-            300,
+            60_000,
         )
         .await
         .unwrap_err();
