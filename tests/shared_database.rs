@@ -4,7 +4,7 @@
 //! - both run a calibration, and each daemon's API lists both labs' runs;
 //! - a run submitted to one daemon for the other's bench is refused, naming the holder;
 //! - a third daemon configuring a held bench exits non-zero naming the holder (host, pid);
-//! - the holder killed with SIGKILL mid-run keeps its lease until it expires (2 s here), then a
+//! - the holder killed with SIGKILL mid-run keeps its lease until it expires (15 s here), then a
 //!   newcomer takes the bench over, and its start-up interlock marks the killed daemon's running
 //!   run interrupted.
 //! - webhooks from two daemons on one database: a receiver both are configured with gets each
@@ -26,8 +26,12 @@ use tokio::io::{AsyncBufReadExt, BufReader};
 use tokio::process::{Child, Command};
 use webhook_support::Receiver;
 
-/// The lease expiry the daemons are given: short, so the takeover is seen within the test.
-const LEASE_EXPIRY_S: f64 = 2.0;
+/// The lease expiry the daemons are given: short, so the takeover is seen within the test, yet
+/// long enough that a daemon started right after the holder's kill is surely refused while the
+/// lease lives. The holder renews every third of it, so as little as two thirds (10 s) may be
+/// left at the kill; the refused daemon must start, connect and be refused within that, which
+/// can take seconds on a loaded machine (with 2 s, only 1.33 s were sure).
+const LEASE_EXPIRY_S: f64 = 15.0;
 
 struct Lab {
     config: PathBuf,
