@@ -876,3 +876,135 @@ async fn a_flat_two_db_loss_gives_the_v_pi_readme_quotes() {
     }
     engine.shutdown().await;
 }
+
+/// An analyzer that stops answering when it is asked to move its centre with the RF output on
+/// (as the engine does to follow a drifting laser), and whose traces with the output on read the
+/// comb 1 % of the span higher than the simulator draws it, so that the engine follows it after
+/// the first point (with the output off it is the simulator's analyzer as it is).
+struct SilentWhenFollowing {
+    inner: halfwave_drivers::sim::SimAnalyzer,
+    sim: SimBench,
+}
+
+#[async_trait::async_trait]
+impl halfwave_drivers::SpectrumAnalyzer for SilentWhenFollowing {
+    fn resource(&self) -> &str {
+        self.inner.resource()
+    }
+    async fn identify(
+        &mut self,
+    ) -> Result<halfwave_drivers::Identity, halfwave_drivers::InstrumentError> {
+        self.inner.identify().await
+    }
+    fn capabilities(&self) -> halfwave_drivers::AnalyzerCapabilities {
+        self.inner.capabilities()
+    }
+    async fn set_center(
+        &mut self,
+        center: halfwave_units::Hz,
+    ) -> Result<halfwave_units::Hz, halfwave_drivers::InstrumentError> {
+        if self.sim.rf_output_on() {
+            std::future::pending::<()>().await;
+        }
+        self.inner.set_center(center).await
+    }
+    async fn set_span(
+        &mut self,
+        span: halfwave_units::Hz,
+    ) -> Result<halfwave_units::Hz, halfwave_drivers::InstrumentError> {
+        self.inner.set_span(span).await
+    }
+    async fn set_resolution_bandwidth(
+        &mut self,
+        rbw: halfwave_units::Hz,
+    ) -> Result<halfwave_units::Hz, halfwave_drivers::InstrumentError> {
+        self.inner.set_resolution_bandwidth(rbw).await
+    }
+    async fn set_points(
+        &mut self,
+        points: usize,
+    ) -> Result<usize, halfwave_drivers::InstrumentError> {
+        self.inner.set_points(points).await
+    }
+    async fn configure(
+        &mut self,
+        settings: &halfwave_drivers::AnalyzerSettings,
+    ) -> Result<halfwave_drivers::AnalyzerSettings, halfwave_drivers::InstrumentError> {
+        self.inner.configure(settings).await
+    }
+    async fn sweep(&mut self) -> Result<(), halfwave_drivers::InstrumentError> {
+        self.inner.sweep().await
+    }
+    async fn fetch_trace(
+        &mut self,
+    ) -> Result<halfwave_units::Trace, halfwave_drivers::InstrumentError> {
+        let trace = self.inner.fetch_trace().await?;
+        if !self.sim.rf_output_on() {
+            return Ok(trace);
+        }
+        let (freq, power, rbw) = trace.into_parts();
+        let shift = 0.01 * (freq[freq.len() - 1] - freq[0]);
+        let shifted = freq.iter().map(|f| f + shift).collect();
+        Ok(halfwave_units::Trace::new(shifted, power, rbw).expect("a shifted axis stays valid"))
+    }
+}
+
+/// Following the laser moves the analyzer's centre with the output on: an analyzer that goes
+/// silent there is caught by the sweep's watchdog like one silent in a sweep (README, "Safety under
+/// faults": RF on only while measuring), so the output goes off within the watchdog's margin
+/// (5 s for the simulator's sweeps) and the run fails resumably, naming the move. Before the move
+/// was watched, the run waited on the analyzer with the output on for as long as it stayed silent.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_analyzer_silent_while_following_the_laser_has_the_output_switched_off() {
+    use halfwave::engine::runner::MIN_SWEEP_OVERRUN_MARGIN;
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open(dir.path().join("h.db").to_str().unwrap())
+        .await
+        .unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let sim = SimBench::new(scenario.clone(), 17).with_time_factor(0.0);
+    let chain = upload_true_chain(&store, &scenario).await;
+    let instruments = BenchInstruments {
+        source: Box::new(sim.rf_source()),
+        analyzer: Box::new(SilentWhenFollowing {
+            inner: sim.analyzer(),
+            sim: sim.clone(),
+        }),
+        sensor: None,
+        simulation: Some(sim.clone()),
+    };
+    let engine = Engine::start_with(
+        Limits::default(),
+        store.clone(),
+        vec![("sim".into(), instruments)],
+    )
+    .await
+    .unwrap();
+    let mut events = engine.subscribe();
+    // The instruments take no time (time factor 0): the run reaches its first level with the
+    // output on at once, and the engine then follows the comb's apparent move.
+    let submitted = std::time::Instant::now();
+    let run_id = engine.submit(plan(&chain), "test").await.unwrap();
+    let (state, cause) = wait_for_end(&mut events, run_id).await;
+    let ended_after = submitted.elapsed();
+    assert!(
+        !sim.rf_output_on(),
+        "RF must be off when the stop is reported"
+    );
+    assert_eq!(state, "failed");
+    let cause = cause.unwrap_or_default();
+    assert!(
+        cause.contains("move of its centre to the drifted laser")
+            && cause.contains("the RF output was switched off first"),
+        "{cause}"
+    );
+    // The watchdog's margin, plus the switch-off and a loaded machine's delays.
+    assert_eq!(MIN_SWEEP_OVERRUN_MARGIN, Duration::from_secs(5));
+    assert!(
+        ended_after < MIN_SWEEP_OVERRUN_MARGIN + Duration::from_secs(10),
+        "the run ended {ended_after:?} after it was submitted"
+    );
+    let run = store.run(run_id).await.unwrap();
+    assert!(run.resumable, "{run:?}");
+    engine.shutdown().await;
+}

@@ -536,13 +536,17 @@ impl PointState<'_> {
         }
         tokio::time::sleep(plan.settle().to_duration()).await;
         let mut analyzer = ctx.analyzer.lock().await;
-        if plan.request().carrier_tracking
-            && (self.settings.center.0 - self.carrier.0).abs() > 1e-3 * self.settings.span.0
-        {
-            self.settings.center = analyzer.set_center(*self.carrier).await?;
-        }
-        let trace = measure_with_rf_watchdog(ctx, analyzer.as_mut(), caps).await?;
+        // Following a drifting laser moves the analyzer's centre with the output on: that
+        // command is watched with the sweep, so a silent analyzer cannot hold RF on there either.
+        let recentre = (plan.request().carrier_tracking
+            && (self.settings.center.0 - self.carrier.0).abs() > 1e-3 * self.settings.span.0)
+            .then_some(*self.carrier);
+        let (trace, centre) =
+            measure_with_rf_watchdog(ctx, analyzer.as_mut(), caps, recentre).await?;
         drop(analyzer);
+        if let Some(centre) = centre {
+            self.settings.center = centre;
+        }
         if plan.request().carrier_tracking {
             // The strongest line may be a sideband, so track by the comb's centre of symmetry:
             // the power-weighted mean frequency of a symmetric comb is the carrier.
@@ -586,17 +590,27 @@ pub fn sweep_overrun_margin(
     MIN_SWEEP_OVERRUN_MARGIN.max(std::time::Duration::from_secs_f64(margin_s))
 }
 
-/// A point's sweep with the RF output on, watched: when the analyzer overruns
-/// [`sweep_overrun_margin`] (hung, silent, or far slower than it said), the output is switched off
-/// first, then the sweep is abandoned and the run stops with a resumable cause. A hung analyzer
-/// must not hold RF on the modulator.
+/// A point's sweep with the RF output on (after moving the centre to `recentre`, when given),
+/// watched: when the analyzer overruns [`sweep_overrun_margin`] (hung, silent, or far slower than
+/// it said), the output is switched off first, then the operation is abandoned and the run stops
+/// with a resumable cause. A hung analyzer must not hold RF on the modulator. Returns the trace
+/// and the centre's read-back when it was moved.
 async fn measure_with_rf_watchdog(
     ctx: &RunContext,
     analyzer: &mut dyn SpectrumAnalyzer,
     caps: &halfwave_drivers::AnalyzerCapabilities,
-) -> Result<Trace, Stop> {
+    recentre: Option<Hz>,
+) -> Result<(Trace, Option<Hz>), Stop> {
     let margin = sweep_overrun_margin(caps, ctx.plan.averages());
-    let measured = acquire::measure(&mut *analyzer, ctx.plan.averages());
+    let averages = ctx.plan.averages();
+    let measured = async {
+        let centre = match recentre {
+            Some(centre) => Some(analyzer.set_center(centre).await?),
+            None => None,
+        };
+        let trace = acquire::measure(&mut *analyzer, averages).await?;
+        Ok::<_, InstrumentError>((trace, centre))
+    };
     if let Ok(result) = tokio::time::timeout(margin, measured).await {
         return result.map_err(Stop::from);
     }
@@ -607,8 +621,13 @@ async fn measure_with_rf_watchdog(
     );
     let off = super::safety::switch_off(&ctx.source).await;
     analyzer.abandon_operation();
+    let task = if recentre.is_some() {
+        "the move of its centre to the drifted laser and the sweep"
+    } else {
+        "the sweep"
+    };
     let what = format!(
-        "the analyzer did not finish the sweep within {:.1} s (twice its typical sweep time, at least {} s)",
+        "the analyzer did not finish {task} within {:.1} s (twice its typical sweep time, at least {} s)",
         margin.as_secs_f64(),
         MIN_SWEEP_OVERRUN_MARGIN.as_secs()
     );
