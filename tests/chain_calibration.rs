@@ -248,12 +248,86 @@ async fn cancel_and_a_silent_sensor_leave_the_rf_off() {
         .unwrap();
     wait_for_rf_on(&sim).await;
     server.faults(Role::PowerSensor).stop_answering();
+    let silent = std::time::Instant::now();
+    while sim.rf_output_on() {
+        tokio::time::sleep(Duration::from_millis(5)).await;
+    }
+    let rf_on_for = silent.elapsed();
     let run = wait_for_end(&store, id).await;
     assert_eq!(run.state, "failed");
     let cause = run.cause.unwrap();
-    assert!(cause.contains("MEASure"), "{cause}");
+    // The reading is watched: the sensor's profile waits 600 ms for a reading, so the output
+    // goes off 1.6 s after the reading began (that wait plus a second) and the cause says so.
+    // Unwatched, the driver's error-queue check and its retry on a fresh connection held RF on
+    // for about twice as long before the run's stop path could act.
+    assert!(
+        cause.contains("gave no reading within 1.6 s with the RF output on")
+            && cause.contains("switched off first"),
+        "{cause}"
+    );
+    // 1.6 s, plus the switch-off's 1.5 s budget and a loaded machine's delays.
+    assert!(
+        rf_on_for < Duration::from_millis(1600 + 1500 + 3000),
+        "RF on for {rf_on_for:?} after the sensor fell silent"
+    );
+    println!("sensor silent: RF off after {rf_on_for:?}");
     assert!(!sim.rf_output_on(), "RF must be off after a sensor fault");
     server.faults(Role::PowerSensor).resume();
+    engine.shutdown().await;
+}
+
+/// A source that stops answering with its output on during a chain calibration is given up on
+/// after the step limit, as in a measurement run (README, "Safety under faults"): the run fails
+/// naming the level change, the bench is held as `output_unconfirmed` while the daemon keeps
+/// trying, and the output goes off once the source answers again. Before the limit, the driver's
+/// timeouts, retries and reconnect checks held the run (and the bench's flag) for about a minute.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_silent_source_is_given_up_after_the_step_limit_and_held() {
+    use halfwave::engine::runner::SOURCE_STEP_LIMIT;
+    // Real instrument times: 20 readings of 50 ms at the first level (1 s) before the level
+    // change the silence falls on.
+    let (_dir, server, store, engine) = start(1.0, 34, true).await;
+    let sim = server.bench().clone();
+    let mut plan = request("silent source");
+    plan.readings_per_level = 20;
+    let id = engine.submit_chain_calibration(plan, "test").await.unwrap();
+    wait_for_rf_on(&sim).await;
+    server.faults(Role::RfSource).stop_answering();
+    let silent = std::time::Instant::now();
+    let run = wait_for_end(&store, id).await;
+    let ended_after = silent.elapsed();
+    assert_eq!(run.state, "failed");
+    let cause = run.cause.unwrap_or_default();
+    assert_eq!(SOURCE_STEP_LIMIT, Duration::from_secs(2));
+    assert!(
+        cause.contains("did not complete a level change within 2.0 s with the output on")
+            && cause.contains("could not be confirmed off"),
+        "{cause}"
+    );
+    // The rest of the level's readings (1 s), the step limit (2 s), the end of the frequency's
+    // and the guard's switch-off budgets (1.5 s each), with a loaded machine's delays.
+    assert!(
+        ended_after < Duration::from_millis(1000 + 2000 + 3000 + 4000),
+        "the run ended {ended_after:?} after the source fell silent"
+    );
+    println!("source silent: run ended after {ended_after:?}");
+    let benches = engine.benches();
+    let held = benches.iter().find(|b| b.name == "sim").unwrap();
+    assert_eq!(
+        held.safety_state,
+        halfwave::engine::rf_safety::SafetyState::OutputUnconfirmed,
+        "{held:?}"
+    );
+    // Once the source answers again, the keeper switches the output off.
+    server.faults(Role::RfSource).resume();
+    let answering = std::time::Instant::now();
+    while sim.rf_output_on() {
+        assert!(
+            answering.elapsed() < Duration::from_secs(10),
+            "RF still on 10 s after the source answers again"
+        );
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
     engine.shutdown().await;
 }
 

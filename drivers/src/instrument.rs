@@ -334,4 +334,11 @@ pub trait PowerSensor: Send {
     /// Takes one reading of the average power (corrected by the calibration factor) and waits
     /// for it. A reading over the sensor's range, or one it flags as such, is an error.
     async fn measure(&mut self) -> Result<Dbm, InstrumentError>;
+
+    /// The longest one reading may take (the driver's own wait for it): a chain calibration
+    /// reads with the RF output on and switches it off when a reading takes longer than this.
+    /// 10 s by default.
+    fn reading_time_limit(&self) -> std::time::Duration {
+        std::time::Duration::from_secs(10)
+    }
 }

@@ -145,6 +145,10 @@ impl PowerSensor for ScpiPowerSensor {
         self.profile.sensor_limits()
     }
 
+    fn reading_time_limit(&self) -> Duration {
+        Duration::from_millis(self.profile.measure_timeout_ms)
+    }
+
     async fn set_frequency(&mut self, frequency: Hz) -> Result<Hz, InstrumentError> {
         let l = self.limits();
         if !(frequency.is_finite() && frequency >= l.min_frequency && frequency <= l.max_frequency)

@@ -335,9 +335,12 @@ impl Engine {
             ));
         };
         let figures = self.inner.sensor_figures.get(&request.bench);
+        // One lock at a time, as where a measurement plan is proved.
+        let source_limits = slot.source.lock().await.limits();
+        let sensor_limits = sensor.lock().await.limits();
         let ctx = ChainContext {
-            source: slot.source.lock().await.limits(),
-            sensor: sensor.lock().await.limits(),
+            source: source_limits,
+            sensor: sensor_limits,
             hard_limit: self.inner.limits.max_level_at_modulator_dbm,
             bench_accuracy_percent: figures.and_then(|f| f.0),
             bench_sensor_reflection: figures.and_then(|f| f.1),
@@ -583,9 +586,15 @@ async fn measure_all(
     let limits = sensor.lock().await.limits();
     for &frequency in &plan.frequencies {
         let readings = measure_frequency(plan, source, sensor, frequency, limits).await;
-        // RF off at the end of every frequency, whatever happened.
-        source.lock().await.set_output(false).await?;
-        let readings = readings?;
+        // RF off at the end of every frequency, whatever happened, within the stop paths'
+        // budget (a silent source is then the guard's and the keeper's). When the frequency
+        // already failed, its cause is kept: the guard tries again and adds the switch-off's.
+        let off = super::safety::switch_off(source).await;
+        let readings = match (readings, off) {
+            (readings, Ok(())) => readings?,
+            (Err(stop), Err(_)) => return Err(stop),
+            (Ok(_), Err(e)) => return Err(e.into()),
+        };
         let estimate: GainEstimate = gain_from_readings(&readings, plan.figures)
             .map_err(|e| Stop::Failed(format!("at {frequency}: {e}")))?;
         let _ = progress.events.send(ProgressEvent::ChainFrequency {
@@ -621,6 +630,32 @@ async fn measure_all(
     })
 }
 
+/// One sensor reading with the output on, watched: a sensor that takes longer than its
+/// driver's wait for a reading ([`PowerSensor::reading_time_limit`], plus a second) has the
+/// output switched off first, then the run fails naming it. Without the watch, the driver's
+/// retry on a fresh connection held RF on for two to three times that.
+async fn read_sensor_with_rf_on(
+    source: &SharedSource,
+    sensor: &SharedSensor,
+    frequency: Hz,
+) -> Result<Dbm, Stop> {
+    let mut sensor = sensor.lock().await;
+    let limit = sensor.reading_time_limit() + std::time::Duration::from_secs(1);
+    if let Ok(reading) = tokio::time::timeout(limit, sensor.measure()).await {
+        return Ok(reading?);
+    }
+    let off = super::safety::switch_off(source).await;
+    let what = format!(
+        "at {frequency}: the power sensor {} gave no reading within {:.1} s with the RF output on",
+        sensor.resource(),
+        limit.as_secs_f64()
+    );
+    Err(Stop::Failed(match off {
+        Ok(()) => format!("{what}; the output was switched off first"),
+        Err(e) => format!("{what}; switching the output off failed too ({e})"),
+    }))
+}
+
 /// The readings at one frequency, levels low to high; RF may be on when this returns.
 async fn measure_frequency(
     plan: &ChainPlan,
@@ -637,15 +672,27 @@ async fn measure_frequency(
     sensor.lock().await.set_frequency(frequency).await?;
     let mut readings = Vec::new();
     for (index, &level) in plan.levels.iter().enumerate() {
-        let generator_level = {
+        // With the output (possibly) on, a source that stops answering must not keep the run
+        // waiting for the transport's timeouts and retries: as in a measurement run, the step is
+        // given up after `SOURCE_STEP_LIMIT` and the stop path switches the output off.
+        let step = async {
             let mut src = source.lock().await;
             let read_back = src.set_level(level).await?;
             src.set_output(true).await?;
-            read_back
+            Ok::<_, InstrumentError>(read_back)
+        };
+        let generator_level = match tokio::time::timeout(super::runner::SOURCE_STEP_LIMIT, step).await {
+            Ok(result) => result?,
+            Err(_) => {
+                return Err(Stop::Failed(format!(
+                    "at {frequency}: the RF source did not complete a level change within {:.1} s with the output on",
+                    super::runner::SOURCE_STEP_LIMIT.as_secs_f64()
+                )))
+            }
         };
         let mut highest = f64::NEG_INFINITY;
         for _ in 0..plan.request.readings_per_level {
-            let reading = sensor.lock().await.measure().await?;
+            let reading = read_sensor_with_rf_on(source, sensor, frequency).await?;
             highest = highest.max(reading.0);
             readings.push(SensorReading {
                 generator_level,

@@ -479,10 +479,14 @@ impl Engine {
             Err(other) => return Err(other),
         };
         let (source_limits, caps) = match slot {
-            Some(slot) => (
-                slot.source.lock().await.limits(),
-                slot.analyzer.lock().await.capabilities(),
-            ),
+            Some(slot) => {
+                // One lock at a time: holding the source's while waiting for the analyzer's
+                // (which a run holds through a sweep) would keep a watchdog from switching the
+                // source off.
+                let source_limits = slot.source.lock().await.limits();
+                let caps = slot.analyzer.lock().await.capabilities();
+                (source_limits, caps)
+            }
             None => (
                 SourceLimits {
                     min_frequency: Hz(0.0),
