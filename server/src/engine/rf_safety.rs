@@ -93,6 +93,8 @@ pub struct BenchSafety {
     /// Cancelled when the daemon shuts down: the keeper stops (the stored state stays).
     shutdown: CancellationToken,
     keeper_running: std::sync::atomic::AtomicBool,
+    /// One store write of the state at a time (see [`BenchSafety::persist`]).
+    persisting: tokio::sync::Mutex<()>,
 }
 
 impl BenchSafety {
@@ -111,6 +113,7 @@ impl BenchSafety {
             state: watch::channel(stored).0,
             shutdown,
             keeper_running: std::sync::atomic::AtomicBool::new(false),
+            persisting: tokio::sync::Mutex::new(()),
         })
     }
 
@@ -142,15 +145,17 @@ impl BenchSafety {
             cause = %cause,
             "RF OUTPUT NOT CONFIRMED OFF: the bench is held and the daemon keeps trying to switch it off; check the source and its link"
         );
-        self.set(BenchSafetyRecord {
+        // The bench is held and the keeper tries from now: neither waits for the store, which
+        // may be slow or stalled (the stored state follows).
+        self.publish(BenchSafetyRecord {
             bench_name: self.bench.clone(),
             fault: BenchFault::OutputUnconfirmed,
             cause,
             since_unix_ms: since,
             confirmed_off_at_unix_ms: None,
-        })
-        .await;
+        });
         self.start_keeper(source);
+        self.persist().await;
     }
 
     /// The output was read back off after a fault: hold the bench for an acknowledgement.
@@ -200,18 +205,33 @@ impl BenchSafety {
         Ok(())
     }
 
-    /// Stores and publishes a new fault state. A store failure is logged: the state in memory
-    /// still holds the bench, which is what safety needs.
+    /// Publishes a new fault state, then stores it.
     async fn set(&self, record: BenchSafetyRecord) {
-        if let Err(e) = self.store.record_bench_fault(&record).await {
-            tracing::error!(bench = %self.bench, error = %e, "could not store the bench's safety state; it holds in memory until the daemon stops");
-        }
+        self.publish(record);
+        self.persist().await;
+    }
+
+    /// The new fault state in memory (which is what holds the bench) and on the event stream.
+    fn publish(&self, record: BenchSafetyRecord) {
         let _ = self.events.send(ProgressEvent::BenchSafety {
             bench: self.bench.clone(),
             state: SafetyState::of(Some(record.fault)),
             cause: Some(record.cause.clone()),
         });
         self.state.send_replace(Some(record));
+    }
+
+    /// Stores the state in memory as it is when the write starts, one write at a time, so that
+    /// a slow write of an older state cannot land after a newer one. A store failure is logged:
+    /// the state in memory still holds the bench, which is what safety needs.
+    async fn persist(&self) {
+        let _one_at_a_time = self.persisting.lock().await;
+        let Some(record) = self.current() else {
+            return;
+        };
+        if let Err(e) = self.store.record_bench_fault(&record).await {
+            tracing::error!(bench = %self.bench, error = %e, "could not store the bench's safety state; it holds in memory until the daemon stops");
+        }
     }
 
     fn start_keeper(self: &Arc<Self>, source: SharedSource) {
@@ -314,6 +334,87 @@ mod tests {
             assert_eq!(SafetyState::of(Some(fault)).as_str(), fault.as_str());
         }
         assert_eq!(SafetyState::of(None), SafetyState::Clear);
+    }
+
+    /// The keeper does not wait for the store: with the database locked by another writer (a
+    /// stalled or busy store), the bench is held and its output switched off and read back at
+    /// once, and the stored state follows once the lock is gone, newest last.
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn a_locked_store_delays_neither_the_hold_nor_the_switch_off() {
+        use halfwave_drivers::RfSource;
+        use sqlx::Connection;
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("h.db");
+        let store = Store::open(path.to_str().unwrap()).await.unwrap();
+        let sim = halfwave_drivers::sim::SimBench::new(
+            halfwave_drivers::sim::Scenario::builtin().unwrap(),
+            5,
+        )
+        .with_time_factor(0.0);
+        let mut source = sim.rf_source();
+        source.set_output(true).await.unwrap();
+        assert!(sim.rf_output_on());
+        let source: SharedSource = Arc::new(tokio::sync::Mutex::new(Box::new(source)));
+        let (events, _) = broadcast::channel(16);
+        let safety = BenchSafety::new(
+            "sim".into(),
+            store.clone(),
+            events,
+            None,
+            CancellationToken::new(),
+        );
+        // Another writer holds the database's write lock for 2 s.
+        let mut writer = sqlx::SqliteConnection::connect(&format!("sqlite://{}", path.display()))
+            .await
+            .unwrap();
+        sqlx::query("BEGIN IMMEDIATE")
+            .execute(&mut writer)
+            .await
+            .unwrap();
+        let flagged = {
+            let safety = safety.clone();
+            let source = source.clone();
+            tokio::spawn(async move {
+                safety
+                    .output_unconfirmed(source, "link lost (test)".into())
+                    .await
+            })
+        };
+        let asked = std::time::Instant::now();
+        while safety.current().map(|r| r.fault) != Some(BenchFault::AwaitingAcknowledgement) {
+            assert!(
+                asked.elapsed() < Duration::from_millis(1500),
+                "the keeper waited for the store: {:?} after {:?}",
+                safety.current(),
+                asked.elapsed()
+            );
+            tokio::time::sleep(Duration::from_millis(5)).await;
+        }
+        assert!(
+            !sim.rf_output_on(),
+            "the output is off while the store is locked"
+        );
+        assert!(
+            !flagged.is_finished(),
+            "the store write still waits for the lock"
+        );
+        tokio::time::sleep(Duration::from_millis(2000).saturating_sub(asked.elapsed())).await;
+        sqlx::query("COMMIT").execute(&mut writer).await.unwrap();
+        flagged.await.unwrap();
+        // Both states are stored, the newest last (the keeper's write waits for the first).
+        let stored_at = std::time::Instant::now();
+        loop {
+            let stored = store.bench_safety_faults().await.unwrap();
+            assert_eq!(stored.len(), 1, "{stored:?}");
+            if stored[0].fault == BenchFault::AwaitingAcknowledgement {
+                break;
+            }
+            assert!(
+                stored_at.elapsed() < Duration::from_secs(10),
+                "the newest state was not stored: {stored:?}"
+            );
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
     }
 
     #[test]
