@@ -1008,3 +1008,64 @@ async fn an_analyzer_silent_while_following_the_laser_has_the_output_switched_of
     assert!(run.resumable, "{run:?}");
     engine.shutdown().await;
 }
+
+/// A database that stops taking writes for a while (another writer holds it) must not keep the
+/// output on: the runner measures ahead only as far as the pipeline's buffer, then switches the
+/// output off after `PIPELINE_WAIT_WITH_RF_ON` and waits with it off (README, "RF on only while
+/// measuring"); once the database takes writes again the run goes on and completes with every
+/// point once. Before, the runner waited on the pipeline with the output on for as long as the
+/// database was held.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_held_database_does_not_hold_the_rf_on() {
+    use halfwave::engine::runner::PIPELINE_WAIT_WITH_RF_ON;
+    use sqlx::Connection;
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("h.db");
+    let store = Store::open(path.to_str().unwrap()).await.unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let sim = SimBench::new(scenario.clone(), 19).with_time_factor(0.05);
+    let chain = upload_true_chain(&store, &scenario).await;
+    let engine = start_engine(Limits::default(), store.clone(), &sim).await;
+    let mut events = engine.subscribe();
+    let run_id = engine.submit(plan(&chain), "test").await.unwrap();
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(60);
+    loop {
+        match tokio::time::timeout_at(deadline, events.recv()).await {
+            Ok(Ok(ProgressEvent::Point { .. })) if sim.rf_output_on() => break,
+            Ok(_) => continue,
+            Err(_) => panic!("no point measured with RF on within 60 s"),
+        }
+    }
+    // Another writer holds the database for 4 s (under the store's 5 s busy timeout, so the
+    // held commits go through afterwards).
+    let mut writer = sqlx::SqliteConnection::connect(&format!("sqlite://{}", path.display()))
+        .await
+        .unwrap();
+    sqlx::query("BEGIN IMMEDIATE")
+        .execute(&mut writer)
+        .await
+        .unwrap();
+    let held = std::time::Instant::now();
+    let mut off_after = None;
+    while held.elapsed() < Duration::from_secs(4) {
+        if off_after.is_none() && !sim.rf_output_on() {
+            off_after = Some(held.elapsed());
+        }
+        tokio::time::sleep(Duration::from_millis(5)).await;
+    }
+    let on_at_release = sim.rf_output_on();
+    sqlx::query("COMMIT").execute(&mut writer).await.unwrap();
+    drop(writer);
+    let off_after = off_after.expect("the output stayed on while the database was held");
+    println!("database held: RF off after {off_after:?}");
+    assert_eq!(PIPELINE_WAIT_WITH_RF_ON, Duration::from_secs(1));
+    assert!(
+        !on_at_release,
+        "the output was on again before the database took writes"
+    );
+    assert_eq!(wait_for_end(&mut events, run_id).await.0, "completed");
+    assert!(!sim.rf_output_on());
+    let points = store.points_of_run(run_id).await.unwrap();
+    assert_eq!(points.len(), POINTS, "every point once");
+    engine.shutdown().await;
+}

@@ -424,9 +424,9 @@ async fn measure_frequency(
                 let measured = point
                     .measure(ctx, caps, tx, fi, step, li, reference.clone())
                     .await?;
-                if tx.send(Msg::Point(Box::new(measured))).await.is_err() {
-                    return Err(Stop::PipelineEnded);
-                }
+                point
+                    .hand_over(ctx, tx, Msg::Point(Box::new(measured)))
+                    .await?;
             }
         }
         Levels::Adaptive {
@@ -461,10 +461,17 @@ async fn measure_frequency(
                     .chain
                     .level_at_modulator(step.frequency, m.generator_level)
                     .to_volts_peak();
-                if tx.send(Msg::Point(Box::new(m))).await.is_err() {
-                    return Err(Stop::PipelineEnded);
+                point.hand_over(ctx, tx, Msg::Point(Box::new(m))).await?;
+                let mut answer = answer;
+                let index = match tokio::time::timeout(PIPELINE_WAIT_WITH_RF_ON, &mut answer).await
+                {
+                    Ok(index) => index,
+                    Err(_) => {
+                        point.switch_off_while_waiting(ctx).await?;
+                        answer.await
+                    }
                 }
-                let index = answer.await.map_err(|_| Stop::PipelineEnded)?;
+                .map_err(|_| Stop::PipelineEnded)?;
                 measured.push(AdaptivePoint {
                     rung,
                     v_peak,
@@ -486,7 +493,46 @@ struct PointState<'a> {
     pending_sweeps: u32,
 }
 
+/// How long the runner waits for the analysis and the store with the output on before it
+/// switches the output off for the rest of the wait (they normally take milliseconds; a busy or
+/// stalled database can take seconds). The next point switches it on again and settles.
+pub const PIPELINE_WAIT_WITH_RF_ON: std::time::Duration = std::time::Duration::from_secs(1);
+
 impl PointState<'_> {
+    /// Hands a measured point to the analysis and the store. When they are behind, the output
+    /// does not stay on while the runner waits: after [`PIPELINE_WAIT_WITH_RF_ON`] it is
+    /// switched off (README, "RF on only while measuring").
+    async fn hand_over(
+        &mut self,
+        ctx: &RunContext,
+        tx: &mpsc::Sender<Msg>,
+        msg: Msg,
+    ) -> Result<(), Stop> {
+        let permit = match tokio::time::timeout(PIPELINE_WAIT_WITH_RF_ON, tx.reserve()).await {
+            Ok(permit) => permit,
+            Err(_) => {
+                self.switch_off_while_waiting(ctx).await?;
+                tx.reserve().await
+            }
+        }
+        .map_err(|_| Stop::PipelineEnded)?;
+        permit.send(msg);
+        Ok(())
+    }
+
+    /// Switches the output off (and confirms it) while the runner waits for the pipeline.
+    async fn switch_off_while_waiting(&mut self, ctx: &RunContext) -> Result<(), Stop> {
+        if !self.output_on {
+            return Ok(());
+        }
+        tracing::info!(
+            wait_s = PIPELINE_WAIT_WITH_RF_ON.as_secs_f64(),
+            "the analysis and the store are behind; the RF output goes off while the run waits for them"
+        );
+        super::safety::switch_off(&ctx.source).await?;
+        self.output_on = false;
+        Ok(())
+    }
     /// One point: set the level, output on, settle, sweep (watched), fetch.
     #[allow(clippy::too_many_arguments)]
     async fn measure(
