@@ -171,28 +171,22 @@ fn a_relative_data_dir_read_from_another_directory_makes_no_database_unasked() {
             .expect("the halfwave binary runs")
     };
     let config = config.to_str().unwrap();
-    let listed = run(&["token", "list", "--config", config]);
-    assert!(!listed.status.success());
-    let said = String::from_utf8_lossy(&listed.stderr);
-    assert!(
-        said.contains("there is no database at")
-            && said.contains("lab-data")
-            && said.contains("relative to the working directory")
-            && said.contains("elsewhere"),
-        "{said}"
-    );
+    // Refused, naming the missing file and the directory a relative data_dir was read from.
+    let refused_naming_the_directory = |output: std::process::Output| {
+        assert!(!output.status.success());
+        let said = String::from_utf8_lossy(&output.stderr);
+        assert!(
+            said.contains("there is no database at")
+                && said.contains("lab-data")
+                && said.contains("relative to the working directory")
+                && said.contains("elsewhere"),
+            "{said}"
+        );
+    };
+    refused_naming_the_directory(run(&["token", "list", "--config", config]));
     assert!(!elsewhere.join("lab-data").exists(), "nothing is created");
     // `db backup` with the same configuration says the same of the database it would copy.
-    let backup = run(&["db", "backup", "copy.db", "--config", config]);
-    assert!(!backup.status.success());
-    let said = String::from_utf8_lossy(&backup.stderr);
-    assert!(
-        said.contains("there is no database at")
-            && said.contains("lab-data")
-            && said.contains("relative to the working directory")
-            && said.contains("elsewhere"),
-        "{said}"
-    );
+    refused_naming_the_directory(run(&["db", "backup", "copy.db", "--config", config]));
     assert!(!elsewhere.join("copy.db").exists(), "no copy is made");
 
     let created = run(&[

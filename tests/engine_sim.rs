@@ -21,6 +21,21 @@ use halfwave_drivers::sim::{Role, Scenario, SimBench};
 use halfwave_units::{Db, Dbm};
 use std::time::Duration;
 
+/// Waits (up to 60 s) for a point measured while the simulated output is on.
+async fn wait_for_point_with_rf_on(
+    events: &mut tokio::sync::broadcast::Receiver<ProgressEvent>,
+    sim: &SimBench,
+) {
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(60);
+    loop {
+        match tokio::time::timeout_at(deadline, events.recv()).await {
+            Ok(Ok(ProgressEvent::Point { .. })) if sim.rf_output_on() => return,
+            Ok(_) => continue,
+            Err(_) => panic!("no point measured with RF on within 60 s"),
+        }
+    }
+}
+
 /// An engine on one simulated bench named "sim".
 async fn start_engine(limits: Limits, store: Store, sim: &SimBench) -> Engine {
     Engine::start_with(
@@ -300,14 +315,7 @@ async fn cancel_leaves_the_output_off_within_a_second() {
     let mut events = engine.subscribe();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
     // Wait until RF is on and a point has been measured.
-    let deadline = tokio::time::Instant::now() + Duration::from_secs(60);
-    loop {
-        match tokio::time::timeout_at(deadline, events.recv()).await {
-            Ok(Ok(ProgressEvent::Point { .. })) if sim.rf_output_on() => break,
-            Ok(_) => continue,
-            Err(_) => panic!("no point measured with RF on within 60 s"),
-        }
-    }
+    wait_for_point_with_rf_on(&mut events, &sim).await;
     let asked = tokio::time::Instant::now();
     engine.cancel(run_id, "test").await.unwrap();
     while sim.rf_output_on() {
@@ -1028,14 +1036,7 @@ async fn a_held_database_does_not_hold_the_rf_on() {
     let engine = start_engine(Limits::default(), store.clone(), &sim).await;
     let mut events = engine.subscribe();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
-    let deadline = tokio::time::Instant::now() + Duration::from_secs(60);
-    loop {
-        match tokio::time::timeout_at(deadline, events.recv()).await {
-            Ok(Ok(ProgressEvent::Point { .. })) if sim.rf_output_on() => break,
-            Ok(_) => continue,
-            Err(_) => panic!("no point measured with RF on within 60 s"),
-        }
-    }
+    wait_for_point_with_rf_on(&mut events, &sim).await;
     // Another writer holds the database for 4 s (under the store's 5 s busy timeout, so the
     // held commits go through afterwards).
     let mut writer = sqlx::SqliteConnection::connect(&format!("sqlite://{}", path.display()))
