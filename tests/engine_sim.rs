@@ -637,7 +637,9 @@ async fn analysis_failures_in_a_row_stop_the_run_with_rf_off_first() {
         .await
         .unwrap();
     let scenario = Scenario::builtin().unwrap();
-    let sim = SimBench::new(scenario.clone(), 13).with_time_factor(0.2);
+    // Full simulated instrument time (0.4 s a sweep): a test that reads the progress late on a
+    // busy machine still unplugs with several levels of the frequency left.
+    let sim = SimBench::new(scenario.clone(), 13).with_time_factor(1.0);
     let chain = upload_true_chain(&store, &scenario).await;
     let engine = start_engine(Limits::default(), store.clone(), &sim).await;
     let mut events = engine.subscribe();
