@@ -253,6 +253,7 @@ async fn cancel_and_a_silent_sensor_leave_the_rf_off() {
         tokio::time::sleep(Duration::from_millis(5)).await;
     }
     let rf_on_for = silent.elapsed();
+    println!("sensor silent: RF off after {rf_on_for:?}");
     let run = wait_for_end(&store, id).await;
     assert_eq!(run.state, "failed");
     let cause = run.cause.unwrap();
@@ -270,7 +271,6 @@ async fn cancel_and_a_silent_sensor_leave_the_rf_off() {
         rf_on_for < Duration::from_millis(1600 + 1500 + 3000),
         "RF on for {rf_on_for:?} after the sensor fell silent"
     );
-    println!("sensor silent: RF off after {rf_on_for:?}");
     assert!(!sim.rf_output_on(), "RF must be off after a sensor fault");
     server.faults(Role::PowerSensor).resume();
     engine.shutdown().await;
@@ -296,6 +296,7 @@ async fn a_silent_source_is_given_up_after_the_step_limit_and_held() {
     let silent = std::time::Instant::now();
     let run = wait_for_end(&store, id).await;
     let ended_after = silent.elapsed();
+    println!("source silent: run ended after {ended_after:?}");
     assert_eq!(run.state, "failed");
     let cause = run.cause.unwrap_or_default();
     assert_eq!(SOURCE_STEP_LIMIT, Duration::from_secs(2));
@@ -310,7 +311,6 @@ async fn a_silent_source_is_given_up_after_the_step_limit_and_held() {
         ended_after < Duration::from_millis(1000 + 2000 + 3000 + 4000),
         "the run ended {ended_after:?} after the source fell silent"
     );
-    println!("source silent: run ended after {ended_after:?}");
     let benches = engine.benches();
     let held = benches.iter().find(|b| b.name == "sim").unwrap();
     assert_eq!(

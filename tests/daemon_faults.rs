@@ -56,9 +56,7 @@ fn keeper_off_limit() -> Duration {
 /// `points + 3` committed: the window spans four points (about 1.6 s with `small_plan`), so that
 /// one slow HTTP poll on a loaded machine does not step past it, and with the nine points of
 /// `small_plan` at least four remain, so the fault lands in the ramp even when the runner is a
-/// point or two ahead of its commits. (Not wider: the silent-analyzer test's fault must land
-/// in a watched sweep, and with its seed the ninth point re-centres the analyzer first, a step
-/// the sweep watchdog does not cover.)
+/// point or two ahead of its commits.
 async fn wait_for_rf_on_early_in_the_ramp(bench: &Bench, run_id: i64, token: &str, points: u64) {
     let deadline = Instant::now() + Duration::from_secs(60);
     loop {
@@ -86,22 +84,6 @@ async fn time_until_rf_off(bench: &Bench, limit: Duration, what: &str) -> Durati
         tokio::time::sleep(Duration::from_millis(5)).await;
     }
     started.elapsed()
-}
-
-/// Polls `/benches` until bench "sim" is in `state` (up to `limit`).
-async fn wait_for_safety_state(bench: &Bench, token: &str, state: &str, limit: Duration) -> Value {
-    let deadline = Instant::now() + limit;
-    loop {
-        let status = bench.bench_status(token).await;
-        if status["safety_state"] == state {
-            return status;
-        }
-        assert!(
-            Instant::now() < deadline,
-            "bench never became {state}: {status}"
-        );
-        tokio::time::sleep(Duration::from_millis(20)).await;
-    }
 }
 
 fn is_final(run: &Value) -> bool {
@@ -162,13 +144,9 @@ async fn source_link_reset_for_3_s_output_off_within_the_keeper_bound_of_return_
     // During the outage the daemon cannot switch the output off: it must say so (a failed step,
     // the 1.5 s switch-off budget and a database write: about 2 s on an idle machine; the link
     // stays down until this and the checks below are done).
-    let flagged = wait_for_safety_state(
-        &bench,
-        &token,
-        "output_unconfirmed",
-        Duration::from_secs(15),
-    )
-    .await;
+    let flagged = bench
+        .wait_for_safety_state(&token, "output_unconfirmed", Duration::from_secs(15))
+        .await;
     assert!(
         flagged["safety_fault"]["cause"]
             .as_str()
@@ -231,13 +209,9 @@ async fn source_link_reset_for_3_s_output_off_within_the_keeper_bound_of_return_
     );
 
     // Off, but held until an operator has looked.
-    let held = wait_for_safety_state(
-        &bench,
-        &token,
-        "awaiting_acknowledgement",
-        Duration::from_secs(10),
-    )
-    .await;
+    let held = bench
+        .wait_for_safety_state(&token, "awaiting_acknowledgement", Duration::from_secs(10))
+        .await;
     assert!(
         held["safety_fault"]["confirmed_off_at_unix_ms"].is_i64(),
         "{held}"
@@ -315,13 +289,9 @@ async fn source_silent_for_45_s_output_off_within_the_keeper_bound_of_its_return
     let faults = bench.server.faults(Role::RfSource);
     faults.stop_answering();
     let silence = Instant::now();
-    wait_for_safety_state(
-        &bench,
-        &token,
-        "output_unconfirmed",
-        Duration::from_secs(44),
-    )
-    .await;
+    bench
+        .wait_for_safety_state(&token, "output_unconfirmed", Duration::from_secs(44))
+        .await;
     tokio::time::sleep(Duration::from_secs(45).saturating_sub(silence.elapsed())).await;
     assert!(
         bench.server.bench().rf_output_on(),
@@ -339,13 +309,9 @@ async fn source_silent_for_45_s_output_off_within_the_keeper_bound_of_its_return
         off_after.as_millis(),
         keeper_off_limit().as_millis()
     );
-    wait_for_safety_state(
-        &bench,
-        &token,
-        "awaiting_acknowledgement",
-        Duration::from_secs(10),
-    )
-    .await;
+    bench
+        .wait_for_safety_state(&token, "awaiting_acknowledgement", Duration::from_secs(10))
+        .await;
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

@@ -975,13 +975,11 @@ async fn an_analyzer_silent_while_following_the_laser_has_the_output_switched_of
     let sim = SimBench::new(scenario.clone(), 17).with_time_factor(0.0);
     let chain = upload_true_chain(&store, &scenario).await;
     let instruments = BenchInstruments {
-        source: Box::new(sim.rf_source()),
         analyzer: Box::new(SilentWhenFollowing {
             inner: sim.analyzer(),
             sim: sim.clone(),
         }),
-        sensor: None,
-        simulation: Some(sim.clone()),
+        ..BenchInstruments::simulated(sim.clone())
     };
     let engine = Engine::start_with(
         Limits::default(),
@@ -997,6 +995,7 @@ async fn an_analyzer_silent_while_following_the_laser_has_the_output_switched_of
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
     let (state, cause) = wait_for_end(&mut events, run_id).await;
     let ended_after = submitted.elapsed();
+    println!("analyzer silent on the move: run ended {ended_after:?} after submission");
     assert!(
         !sim.rf_output_on(),
         "RF must be off when the stop is reported"

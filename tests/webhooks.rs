@@ -623,19 +623,9 @@ async fn a_bench_entering_and_leaving_a_safety_hold_is_notified_signed() {
     faults.link_down();
     // The link stays down until the bench is flagged (a fixed outage could end first on a loaded
     // machine, and then no hold would follow).
-    let deadline = Instant::now() + Duration::from_secs(30);
-    loop {
-        let status = bench.bench_status(&token).await;
-        if status["safety_state"] == "output_unconfirmed" {
-            break;
-        }
-        assert!(
-            Instant::now() < deadline,
-            "the bench was not flagged output_unconfirmed within 30 s of the link's loss: {status}\n{}",
-            bench.log("daemon.log")
-        );
-        tokio::time::sleep(Duration::from_millis(20)).await;
-    }
+    bench
+        .wait_for_safety_state(&token, "output_unconfirmed", Duration::from_secs(30))
+        .await;
     faults.link_up();
 
     let holds = receiver.wait_for(2, Duration::from_secs(30)).await;

@@ -423,6 +423,25 @@ impl Config {
         ConfigError::from_problems(origin, problems)
     }
 
+    /// For a message about a database file that is not there: when the database is the default
+    /// one under a relative `data_dir`, that it was read against this working directory (run
+    /// from another one, the same configuration, read from `config_path`, names another file),
+    /// starting with " ("; `None` otherwise.
+    pub fn relative_data_dir_note(&self, config_path: &Path) -> Option<String> {
+        if self.database_url.is_some() || !self.data_dir.is_relative() {
+            return None;
+        }
+        let here = std::env::current_dir().map_or_else(
+            |_| "the working directory".into(),
+            |d| d.display().to_string(),
+        );
+        Some(format!(
+            " (`data_dir = {:?}` of {} is relative to the working directory, {here}: run from the directory the daemon runs in, or make it absolute)",
+            self.data_dir.display().to_string(),
+            config_path.display()
+        ))
+    }
+
     /// The database URL to open.
     pub fn database_url(&self) -> String {
         self.database_url

@@ -331,6 +331,24 @@ impl Bench {
             .cloned()
             .expect("bench sim listed")
     }
+
+    /// Polls `/benches` until bench "sim" is in the safety `state` (up to `limit`); returns its
+    /// status. The daemon's log (`daemon.log`) is in the failure message.
+    pub async fn wait_for_safety_state(&self, token: &str, state: &str, limit: Duration) -> Value {
+        let deadline = std::time::Instant::now() + limit;
+        loop {
+            let status = self.bench_status(token).await;
+            if status["safety_state"] == state {
+                return status;
+            }
+            assert!(
+                std::time::Instant::now() < deadline,
+                "bench never became {state} within {limit:?}: {status}\n{}",
+                self.log("daemon.log")
+            );
+            tokio::time::sleep(Duration::from_millis(20)).await;
+        }
+    }
 }
 
 impl Bench {

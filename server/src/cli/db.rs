@@ -58,9 +58,9 @@ pub fn run(command: DbCommand) -> Result<(), CliError> {
             database,
             json,
         } => {
-            let url = source_url(&database)?;
+            let (url, relative_note) = source_url(&database)?;
             refuse_postgres(&url)?;
-            let report = runtime()?.block_on(backup(&url, &dest))?;
+            let report = runtime()?.block_on(backup(&url, &dest, &relative_note))?;
             if json {
                 outln!("{}", to_json(&report)?);
             } else {
@@ -91,17 +91,18 @@ pub fn refuse_postgres(url: &str) -> Result<(), CliError> {
     Ok(())
 }
 
-/// The database to copy. Unlike `token`, nothing is created: a backup of a database that does
-/// not exist is an error.
-fn source_url(choice: &DatabaseChoice) -> Result<String, CliError> {
+/// The database to copy, and what to add when its file is missing
+/// ([`Config::relative_data_dir_note`]). Unlike `token`, nothing is created: a backup of a
+/// database that does not exist is an error.
+fn source_url(choice: &DatabaseChoice) -> Result<(String, String), CliError> {
     if let Some(url) = &choice.database {
-        return Ok(url.clone());
+        return Ok((url.clone(), String::new()));
     }
     let path = crate::config::config_path(choice.config.as_deref())
         .map_err(|e| CliError::new(format!("{e}; or name the database with --database URL")))?;
-    Config::load(&path)
-        .map(|c| c.database_url())
-        .map_err(|e| CliError::new(e.to_string()))
+    let config = Config::load(&path).map_err(|e| CliError::new(e.to_string()))?;
+    let note = config.relative_data_dir_note(&path).unwrap_or_default();
+    Ok((config.database_url(), note))
 }
 
 /// The connect options a `sqlite:` URL or a file path names, parsed as sqlx parses them.
@@ -117,21 +118,13 @@ pub fn url_options(url: &str) -> Result<SqliteConnectOptions, CliError> {
     }
 }
 
-fn source_options(url: &str) -> Result<SqliteConnectOptions, CliError> {
+/// The source's connect options; a missing file is refused naming it, with `missing_note`.
+fn source_options(url: &str, missing_note: &str) -> Result<SqliteConnectOptions, CliError> {
     let options = url_options(url)?;
     let file = options.get_filename().to_path_buf();
     if !file.is_file() {
-        // A relative path (a relative data_dir) is read from the working directory, which may
-        // not be the daemon's: say which directory that was.
-        let relative_to = if file.is_relative() {
-            std::env::current_dir()
-                .map(|dir| format!(" (relative to the working directory {})", dir.display()))
-                .unwrap_or_default()
-        } else {
-            String::new()
-        };
         return Err(CliError::new(format!(
-            "there is no database at {}{relative_to}; check --database, or data_dir / database_url in the configuration (a relative data_dir is read from the directory the command runs in)",
+            "there is no database at {}{missing_note}; check --database, or data_dir / database_url in the configuration",
             file.display()
         )));
     }
@@ -141,9 +134,10 @@ fn source_options(url: &str) -> Result<SqliteConnectOptions, CliError> {
         .busy_timeout(Duration::from_secs(30)))
 }
 
-/// Copies the database at `url` into the new file `dest` and checks the copy.
-pub async fn backup(url: &str, dest: &Path) -> Result<BackupReport, CliError> {
-    let options = source_options(url)?;
+/// Copies the database at `url` into the new file `dest` and checks the copy; a missing source
+/// file is refused naming it, followed by `missing_note`.
+pub async fn backup(url: &str, dest: &Path, missing_note: &str) -> Result<BackupReport, CliError> {
+    let options = source_options(url, missing_note)?;
     let source = options.get_filename().display().to_string();
     if dest.exists() {
         return Err(CliError::new(format!(

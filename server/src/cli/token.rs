@@ -108,16 +108,7 @@ async fn open(choice: &DatabaseChoice, if_missing: IfMissing) -> Result<Store, C
         if !in_memory && !file.exists() {
             let relative = config
                 .as_ref()
-                .filter(|(_, c)| c.database_url.is_none() && c.data_dir.is_relative())
-                .map(|(path, c)| {
-                    let here = std::env::current_dir()
-                        .map_or_else(|_| "the working directory".into(), |d| d.display().to_string());
-                    format!(
-                        " (`data_dir = {:?}` of {} is relative to the working directory, {here}: run from the directory the daemon runs in, or make it absolute)",
-                        c.data_dir.display().to_string(),
-                        path.display()
-                    )
-                })
+                .and_then(|(path, c)| c.relative_data_dir_note(path))
                 .unwrap_or_default();
             match (&config, if_missing == IfMissing::Create) {
                 (None, false) => {

@@ -644,16 +644,12 @@ async fn read_sensor_with_rf_on(
     if let Ok(reading) = tokio::time::timeout(limit, sensor.measure()).await {
         return Ok(reading?);
     }
-    let off = super::safety::switch_off(source).await;
     let what = format!(
         "at {frequency}: the power sensor {} gave no reading within {:.1} s with the RF output on",
         sensor.resource(),
         limit.as_secs_f64()
     );
-    Err(Stop::Failed(match off {
-        Ok(()) => format!("{what}; the output was switched off first"),
-        Err(e) => format!("{what}; switching the output off failed too ({e})"),
-    }))
+    Err(Stop::Failed(safety::switch_off_first(source, what).await))
 }
 
 /// The readings at one frequency, levels low to high; RF may be on when this returns.

@@ -647,8 +647,8 @@ async fn measure_with_rf_watchdog(
     caps: &halfwave_drivers::AnalyzerCapabilities,
     recentre: Option<Hz>,
 ) -> Result<(Trace, Option<Hz>), Stop> {
-    let margin = sweep_overrun_margin(caps, ctx.plan.averages());
     let averages = ctx.plan.averages();
+    let margin = sweep_overrun_margin(caps, averages);
     let measured = async {
         let centre = match recentre {
             Some(centre) => Some(analyzer.set_center(centre).await?),
@@ -665,8 +665,6 @@ async fn measure_with_rf_watchdog(
         analyzer = analyzer.resource(),
         "the analyzer overran its sweep with RF on; switching the output off"
     );
-    let off = super::safety::switch_off(&ctx.source).await;
-    analyzer.abandon_operation();
     let task = if recentre.is_some() {
         "the move of its centre to the drifted laser and the sweep"
     } else {
@@ -677,12 +675,9 @@ async fn measure_with_rf_watchdog(
         margin.as_secs_f64(),
         MIN_SWEEP_OVERRUN_MARGIN.as_secs()
     );
-    Err(match off {
-        Ok(()) => Stop::LinkFault(format!("{what}; the RF output was switched off first")),
-        Err(e) => Stop::LinkFault(format!(
-            "{what}; switching the RF output off failed too ({e})"
-        )),
-    })
+    let cause = super::safety::switch_off_first(&ctx.source, what).await;
+    analyzer.abandon_operation();
+    Err(Stop::LinkFault(cause))
 }
 
 /// The +1/-1 asymmetry in dB, when both first-order lines were measured.

@@ -32,6 +32,15 @@ pub async fn switch_off(source: &SharedSource) -> Result<(), InstrumentError> {
     }
 }
 
+/// The cause of a stop whose instrument overran its watch with the output on (`what` says which
+/// and how), after switching the output off first: `what`, then whether that worked.
+pub async fn switch_off_first(source: &SharedSource, what: String) -> String {
+    match switch_off(source).await {
+        Ok(()) => format!("{what}; the RF output was switched off first"),
+        Err(e) => format!("{what}; switching the RF output off failed too ({e})"),
+    }
+}
+
 /// [`switch_off`] for a source not shared yet (the start-up interlock).
 pub async fn switch_off_source(source: &mut dyn RfSource) -> Result<(), InstrumentError> {
     switch_off_until(source, Instant::now() + SWITCH_OFF_BUDGET).await
