@@ -1071,3 +1071,163 @@ async fn a_held_database_does_not_hold_the_rf_on() {
     assert_eq!(points.len(), POINTS, "every point once");
     engine.shutdown().await;
 }
+
+/// A source whose every command fails with a lost connection once `refuse` is set (a source
+/// that fell off the network), its output left as it was.
+struct UnreachableWhen {
+    inner: halfwave_drivers::sim::SimRfSource,
+    refuse: std::sync::Arc<std::sync::atomic::AtomicBool>,
+}
+
+impl UnreachableWhen {
+    fn check(&self, operation: &str) -> Result<(), halfwave_drivers::InstrumentError> {
+        if self.refuse.load(std::sync::atomic::Ordering::SeqCst) {
+            return Err(halfwave_drivers::InstrumentError::Connection {
+                resource: halfwave_drivers::RfSource::resource(&self.inner).to_string(),
+                operation: operation.to_string(),
+                source: std::io::Error::new(std::io::ErrorKind::ConnectionReset, "test: unplugged"),
+            });
+        }
+        Ok(())
+    }
+}
+
+#[async_trait::async_trait]
+impl halfwave_drivers::RfSource for UnreachableWhen {
+    fn resource(&self) -> &str {
+        self.inner.resource()
+    }
+    async fn identify(
+        &mut self,
+    ) -> Result<halfwave_drivers::Identity, halfwave_drivers::InstrumentError> {
+        self.check("*IDN?")?;
+        self.inner.identify().await
+    }
+    fn limits(&self) -> halfwave_drivers::SourceLimits {
+        self.inner.limits()
+    }
+    async fn set_frequency(
+        &mut self,
+        frequency: halfwave_units::Hz,
+    ) -> Result<halfwave_units::Hz, halfwave_drivers::InstrumentError> {
+        self.check("set frequency")?;
+        self.inner.set_frequency(frequency).await
+    }
+    async fn set_level(&mut self, level: Dbm) -> Result<Dbm, halfwave_drivers::InstrumentError> {
+        self.check("set level")?;
+        self.inner.set_level(level).await
+    }
+    async fn set_output(&mut self, on: bool) -> Result<bool, halfwave_drivers::InstrumentError> {
+        self.check("set output")?;
+        self.inner.set_output(on).await
+    }
+    async fn output_enabled(&mut self) -> Result<bool, halfwave_drivers::InstrumentError> {
+        self.check("read output state")?;
+        self.inner.output_enabled().await
+    }
+    async fn safe_off(&mut self) -> Result<(), halfwave_drivers::InstrumentError> {
+        self.check("output off")?;
+        self.inner.safe_off().await
+    }
+}
+
+/// A run whose output cannot be confirmed off holds the bench and starts the keeper before it
+/// waits for its analysis-and-storage pipeline (README, "Safety under faults"). Here a PostgreSQL
+/// database (which has no busy timeout) holds the pipeline's commits behind another session's
+/// table lock while the source falls off the network with the output on: the bench is flagged
+/// `output_unconfirmed` within the runner's wait and switch-off budgets, with the database still
+/// locked, and the run is recorded only after the pipeline committed what it had. Before, the run
+/// waited for the pipeline first, so the flag and the keeper waited for as long as the lock held.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_stalled_database_does_not_delay_the_hold_of_an_unconfirmed_output() {
+    use halfwave::engine::rf_safety::SafetyState;
+    use halfwave::engine::runner::PIPELINE_WAIT_WITH_RF_ON;
+    use halfwave::engine::safety::SWITCH_OFF_BUDGET;
+    use halfwave::store::scratch_db::ScratchDatabase;
+    use sqlx::Connection;
+    let database = ScratchDatabase::create("stalled_hold").await;
+    let store = Store::open(database.url()).await.unwrap();
+    let scenario = Scenario::builtin().unwrap();
+    let sim = SimBench::new(scenario.clone(), 23).with_time_factor(0.05);
+    let chain = upload_true_chain(&store, &scenario).await;
+    let refuse = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+    let instruments = BenchInstruments {
+        source: Box::new(UnreachableWhen {
+            inner: sim.rf_source(),
+            refuse: refuse.clone(),
+        }),
+        ..BenchInstruments::simulated(sim.clone())
+    };
+    let engine = Engine::start_with(
+        Limits::default(),
+        store.clone(),
+        vec![("sim".into(), instruments)],
+    )
+    .await
+    .unwrap();
+    let mut events = engine.subscribe();
+    let run_id = engine.submit(plan(&chain), "test").await.unwrap();
+    wait_for_point_with_rf_on(&mut events, &sim).await;
+    // Another session locks the points table: the pipeline's next commit waits for it.
+    let mut locker = sqlx::PgConnection::connect(database.url()).await.unwrap();
+    sqlx::query("BEGIN").execute(&mut locker).await.unwrap();
+    sqlx::query("LOCK TABLE points IN ACCESS EXCLUSIVE MODE")
+        .execute(&mut locker)
+        .await
+        .unwrap();
+    // The acquisition goes on into the pipeline's buffer and then waits on it; meanwhile the
+    // source falls off the network with its output on.
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    let was_on = sim.rf_output_on();
+    refuse.store(true, std::sync::atomic::Ordering::SeqCst);
+    let unplugged = std::time::Instant::now();
+    let lock_held_for = Duration::from_secs(20);
+    let mut flagged_after = None;
+    while unplugged.elapsed() < lock_held_for {
+        let state = engine.benches()[0].safety_state;
+        if state == SafetyState::OutputUnconfirmed {
+            flagged_after = Some(unplugged.elapsed());
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    // The run must not be recorded as ended while its pipeline still holds points.
+    let before_release = store.run(run_id).await.unwrap().state;
+    sqlx::query("COMMIT").execute(&mut locker).await.unwrap();
+    drop(locker);
+    println!(
+        "database locked, source unplugged (output on: {was_on}): bench flagged after {flagged_after:?}"
+    );
+    let flagged_after =
+        flagged_after.expect("the bench was not flagged while the database was locked");
+    // The runner's wait with the output on, then three switch-off budgets (the runner's, the end
+    // of the frequency's, the guard's), with a loaded machine's delays.
+    assert_eq!(PIPELINE_WAIT_WITH_RF_ON, Duration::from_secs(1));
+    assert_eq!(SWITCH_OFF_BUDGET, Duration::from_millis(1500));
+    assert!(
+        flagged_after < PIPELINE_WAIT_WITH_RF_ON + 3 * SWITCH_OFF_BUDGET + Duration::from_secs(5),
+        "flagged {flagged_after:?} after the source was unplugged"
+    );
+    assert_eq!(
+        before_release,
+        RunState::Running,
+        "recorded before its pipeline finished"
+    );
+    let (state, cause) = wait_for_end(&mut events, run_id).await;
+    assert_eq!(state, "failed");
+    let cause = cause.unwrap_or_default();
+    assert!(cause.contains("could not be confirmed off"), "{cause}");
+    assert!(store.run(run_id).await.unwrap().resumable);
+    // Once the source answers again the keeper switches the output off.
+    refuse.store(false, std::sync::atomic::Ordering::SeqCst);
+    let answering = std::time::Instant::now();
+    while engine.benches()[0].safety_state != SafetyState::AwaitingAcknowledgement {
+        assert!(
+            answering.elapsed() < Duration::from_secs(10),
+            "not confirmed off 10 s after the source answers again"
+        );
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    assert!(!sim.rf_output_on());
+    engine.shutdown().await;
+}

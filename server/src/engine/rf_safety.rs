@@ -136,6 +136,21 @@ impl BenchSafety {
     /// The stop path could not confirm the output off: flag the bench, store and log it, and
     /// start the keeper (once).
     pub async fn output_unconfirmed(self: &Arc<Self>, source: SharedSource, cause: String) {
+        self.hold_unconfirmed(source, cause);
+        self.persist().await;
+    }
+
+    /// [`BenchSafety::output_unconfirmed`] without waiting for the store: the bench is held and
+    /// the keeper started before this returns; the state is stored by a task of its own (a run
+    /// whose output could not be confirmed off still waits for its pipeline, which may be held by
+    /// the same stalled database).
+    pub fn hold_output_unconfirmed(self: &Arc<Self>, source: SharedSource, cause: String) {
+        self.hold_unconfirmed(source, cause);
+        let me = self.clone();
+        tokio::spawn(async move { me.persist().await });
+    }
+
+    fn hold_unconfirmed(self: &Arc<Self>, source: SharedSource, cause: String) {
         let since = match self.current() {
             Some(r) if r.fault == BenchFault::OutputUnconfirmed => r.since_unix_ms,
             _ => now_unix_ms(),
@@ -155,7 +170,6 @@ impl BenchSafety {
             confirmed_off_at_unix_ms: None,
         });
         self.start_keeper(source);
-        self.persist().await;
     }
 
     /// The output was read back off after a fault: hold the bench for an acknowledgement.

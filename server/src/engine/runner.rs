@@ -20,6 +20,7 @@ use super::acquire;
 use super::adaptive::{self, AdaptivePoint, AdaptiveSettings, AdaptiveStep};
 use super::events::{ProgressEvent, ResponsePointEvent};
 use super::plan::{FrequencyStep, Plan};
+use super::rf_safety::BenchSafety;
 use super::safety::{RfOffGuard, SharedSource};
 use crate::analysis::{self, chain::DriveChain, AnalysisOptions, DrivePoint};
 use crate::store::{NewFrequencyResult, NewPoint, Store};
@@ -29,6 +30,7 @@ use std::collections::HashSet;
 use std::sync::Arc;
 use std::time::Instant;
 use tokio::sync::{broadcast, mpsc, oneshot, Mutex};
+use tokio::task::JoinHandle;
 use tokio_util::sync::CancellationToken;
 use tracing::Instrument;
 
@@ -48,8 +50,8 @@ pub enum RunOutcome {
     /// Stopped by a link or instrument liveness fault with the stored points intact: the run may
     /// be resumed once the link is back. RF was confirmed off.
     FailedResumable(String),
-    /// The run stopped and the RF output could not be confirmed off: the bench must be flagged
-    /// and the keeper started (`engine::rf_safety`).
+    /// The run stopped and the RF output could not be confirmed off: the run has flagged the
+    /// bench and started the keeper (`engine::rf_safety`) before waiting for its pipeline.
     OutputUnconfirmed(String),
 }
 
@@ -65,6 +67,8 @@ pub struct RunContext {
     pub cancel: CancellationToken,
     /// (frequency index, level index) pairs already committed (on resume).
     pub done: HashSet<(usize, usize)>,
+    /// The bench's safety state: held by the run itself when its output cannot be confirmed off.
+    pub safety: Arc<BenchSafety>,
 }
 
 /// A measured trace on its way to analysis and storage.
@@ -103,13 +107,25 @@ pub async fn run(ctx: RunContext) -> RunOutcome {
 
 async fn run_inner(ctx: RunContext) -> RunOutcome {
     let guard = RfOffGuard::arm(ctx.source.clone());
+    let (tx, pipeline) = start_pipeline(&ctx);
     let result = tokio::select! {
         biased;
         _ = ctx.cancel.cancelled() => Err(Stop::Cancelled),
-        r = sweep_all(&ctx) => r,
+        r = sweep_all(&ctx, &tx) => r,
     };
-    // RF off first, report afterwards.
+    drop(tx);
+    // RF off first. An output that cannot be confirmed off holds the bench and starts the keeper
+    // now, before the wait for the analysis and the store below (a stalled database must not
+    // delay either); the worker records the run afterwards.
     let off = guard.release().await;
+    if let Err(e) = &off {
+        ctx.safety
+            .hold_output_unconfirmed(ctx.source.clone(), unconfirmed_cause(&result, e));
+    }
+    // Then the pipeline finishes what it has, so that no point lands after the run is recorded
+    // as ended (a resume reads the stored points). When it ended early, its error is the run's
+    // cause (the acquisition only saw it stop).
+    let result = drain_pipeline(pipeline, result).await;
     match (result, off) {
         (Ok(()), Ok(())) => {
             publish_response(&ctx).await;
@@ -123,18 +139,21 @@ async fn run_inner(ctx: RunContext) -> RunOutcome {
         (Err(Stop::PipelineEnded), Ok(())) => {
             RunOutcome::Failed("the analysis task stopped early".into())
         }
-        (r, Err(e)) => {
-            let before = match r {
-                Ok(()) => String::new(),
-                Err(Stop::Cancelled) => "after cancel: ".into(),
-                Err(Stop::Failed(c)) | Err(Stop::LinkFault(c)) => format!("{c}; then "),
-                Err(Stop::PipelineEnded) => "after the analysis stopped: ".into(),
-            };
-            RunOutcome::OutputUnconfirmed(format!(
-                "{before}the RF output could not be confirmed off ({e}); the bench is held while the daemon keeps trying to switch it off"
-            ))
-        }
+        (r, Err(e)) => RunOutcome::OutputUnconfirmed(unconfirmed_cause(&r, &e)),
     }
+}
+
+/// The cause of a stop whose output could not be confirmed off: what stopped the run, then that.
+fn unconfirmed_cause(result: &Result<(), Stop>, e: &InstrumentError) -> String {
+    let before = match result {
+        Ok(()) => String::new(),
+        Err(Stop::Cancelled) => "after cancel: ".into(),
+        Err(Stop::Failed(c)) | Err(Stop::LinkFault(c)) => format!("{c}; then "),
+        Err(Stop::PipelineEnded) => "after the analysis stopped: ".into(),
+    };
+    super::worker::advice_once(format!(
+        "{before}the RF output could not be confirmed off ({e}); the bench is held while the daemon keeps trying to switch it off"
+    ))
 }
 
 /// The end of a completed run: the electro-optic response over every fitted frequency, logged
@@ -205,20 +224,39 @@ impl From<InstrumentError> for Stop {
     }
 }
 
-async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
-    let plan = &ctx.plan;
-    let total = plan.point_count();
-    let completed = ctx.done.len();
+/// The analysis-and-storage task of a run and the channel that feeds it.
+fn start_pipeline(ctx: &RunContext) -> (mpsc::Sender<Msg>, JoinHandle<Result<(), String>>) {
     let (tx, rx) = mpsc::channel::<Msg>(2);
-    let pipeline = tokio::spawn(pipeline(
+    let task = tokio::spawn(pipeline(
         rx,
         ctx.run_id,
         ctx.store.clone(),
         ctx.chain.clone(),
         ctx.events.clone(),
-        total,
-        completed,
+        ctx.plan.point_count(),
+        ctx.done.len(),
     ));
+    (tx, task)
+}
+
+/// Waits for the pipeline (its channel closed) to finish what it has; when the acquisition saw it
+/// stop, or ended normally, the pipeline's own error becomes the run's cause.
+async fn drain_pipeline(
+    pipeline: JoinHandle<Result<(), String>>,
+    result: Result<(), Stop>,
+) -> Result<(), Stop> {
+    let pipeline_ended = matches!(result, Ok(()) | Err(Stop::PipelineEnded));
+    match pipeline.await {
+        Ok(Err(cause)) if pipeline_ended => Err(Stop::Failed(cause)),
+        Err(join) if pipeline_ended => {
+            Err(Stop::Failed(format!("the analysis task failed: {join}")))
+        }
+        _ => result,
+    }
+}
+
+async fn sweep_all(ctx: &RunContext, tx: &mpsc::Sender<Msg>) -> Result<(), Stop> {
+    let plan = &ctx.plan;
     let caps = ctx.analyzer.lock().await.capabilities();
     let mut carrier = plan.wavelength().to_frequency();
 
@@ -255,7 +293,7 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
                     Levels::Fixed(&remaining),
                     &caps,
                     &mut carrier,
-                    &tx,
+                    tx,
                 )
                 .instrument(span)
                 .await
@@ -277,7 +315,7 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
                     prior,
                     estimate: &mut previous_v_pi,
                 };
-                measure_frequency(ctx, fi, step, levels, &caps, &mut carrier, &tx)
+                measure_frequency(ctx, fi, step, levels, &caps, &mut carrier, tx)
                     .instrument(span)
                     .await
             }
@@ -306,18 +344,6 @@ async fn sweep_all(ctx: &RunContext) -> Result<(), Stop> {
             result = Err(Stop::PipelineEnded);
             break 'frequencies;
         }
-    }
-    drop(tx);
-    // Let the pipeline finish what it has; its result decides the per-frequency fits. When it
-    // ended early, its error is the run's cause (the acquisition only saw it stop).
-    let pipeline_ended = matches!(result, Ok(()) | Err(Stop::PipelineEnded));
-    match pipeline.await {
-        Ok(Ok(())) => {}
-        Ok(Err(cause)) if pipeline_ended => result = Err(Stop::Failed(cause)),
-        Err(join) if pipeline_ended => {
-            result = Err(Stop::Failed(format!("the analysis task failed: {join}")))
-        }
-        Ok(Err(_)) | Err(_) => {}
     }
     result
 }

@@ -334,6 +334,7 @@ impl Engine {
             events: self.inner.events.clone(),
             cancel: token,
             done: job.done,
+            safety: slot.safety.clone(),
         };
         // The run goes in its own task so that a panic in it is caught here (and its RF guard
         // acts on the unwind) instead of taking the worker down.
@@ -343,9 +344,17 @@ impl Engine {
                 // Give the guard's spawned safe-off the lock, then make sure ourselves.
                 match safety::switch_off(&slot.source).await {
                     Ok(()) => RunOutcome::Failed(format!("the run task failed: {join}")),
-                    Err(e) => RunOutcome::OutputUnconfirmed(format!(
-                        "the run task failed ({join}) and the RF output could not be confirmed off ({e})"
-                    )),
+                    Err(e) => {
+                        let cause = format!(
+                            "the run task failed ({join}) and the RF output could not be confirmed off ({e})"
+                        );
+                        // Flag the bench first: the keeper starts at once, then the run is
+                        // recorded.
+                        slot.safety
+                            .output_unconfirmed(slot.source.clone(), advice_once(cause.clone()))
+                            .await;
+                        RunOutcome::OutputUnconfirmed(cause)
+                    }
                 }
             }
         };
@@ -365,13 +374,10 @@ impl Engine {
             RunOutcome::FailedResumable(cause) => {
                 (RunState::Failed, Some(advice_once(cause)), true)
             }
+            // The bench was held by whoever found the output unconfirmed (the run before it
+            // waited for its pipeline, or the panic path above).
             RunOutcome::OutputUnconfirmed(cause) => {
-                let cause = advice_once(cause);
-                // Flag the bench first: the keeper starts at once, then the run is recorded.
-                slot.safety
-                    .output_unconfirmed(slot.source.clone(), cause.clone())
-                    .await;
-                (RunState::Failed, Some(cause), true)
+                (RunState::Failed, Some(advice_once(cause)), true)
             }
         };
         tracing::info!(
@@ -401,7 +407,7 @@ impl Engine {
 
 /// A cause that chains several connection errors (the step's, the read-back's, the switch-off's)
 /// repeats the link advice after each; it is said once, after the last.
-fn advice_once(cause: String) -> String {
+pub(super) fn advice_once(cause: String) -> String {
     let advice = format!("; {}", halfwave_drivers::instrument::LINK_ADVICE);
     match cause.rfind(&advice) {
         Some(last) if cause.matches(&advice).count() > 1 => {
