@@ -1093,6 +1093,23 @@ async fn db_backup_copies_a_database_and_refuses_to_overwrite() {
     let tokens = halfwave::api::tokens::list(copy.pool()).await.unwrap();
     assert_eq!(tokens.len(), 1);
     assert_eq!(tokens[0].name, "lab-b");
+    // Without --json it says what it checked on the copy (README: "checked with PRAGMA
+    // integrity_check"): SQLite's answer, and the runs and points the copy holds.
+    let plain_dest = dir.path().join("backup-plain.db");
+    let plain = halfwave_async(&[
+        "db",
+        "backup",
+        plain_dest.to_str().unwrap(),
+        "--database",
+        database_text,
+    ])
+    .await;
+    assert!(plain.status.success(), "{}", stderr(&plain));
+    let said = stdout(&plain);
+    assert!(
+        said.contains("0 runs, 0 points; integrity check ok"),
+        "{said}"
+    );
 
     let again = halfwave_async(&[
         "db",
