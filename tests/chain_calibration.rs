@@ -283,7 +283,7 @@ async fn cancel_and_a_silent_sensor_leave_the_rf_off() {
 /// timeouts, retries and reconnect checks held the run (and the bench's flag) for about a minute.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_silent_source_is_given_up_after_the_step_limit_and_held() {
-    use halfwave::engine::runner::SOURCE_STEP_LIMIT;
+    use halfwave::engine::safety::SOURCE_STEP_LIMIT;
     // Real instrument times: 20 readings of 50 ms at the first level (1 s) before the level
     // change the silence falls on.
     let (_dir, server, store, engine) = start(1.0, 34, true).await;

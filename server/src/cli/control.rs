@@ -110,3 +110,74 @@ pub fn resume(args: ResumeArgs) -> Result<(), CliError> {
         finish(&client, &run, args.client.json)
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use axum::{routing::get, Json, Router};
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    use std::sync::Arc;
+
+    /// A run as `GET /api/v1/runs/{id}` shows it, in `state`.
+    fn run_in(state: &str) -> serde_json::Value {
+        serde_json::json!({
+            "id": 7, "device_serial": "EOM-TEST-1", "bench": "bench-1", "state": state,
+            "submitted_by": "test", "created_at_unix_ms": 0, "started_at_unix_ms": 1,
+            "finished_at_unix_ms": null, "cause": null, "plan": null,
+            "measured_points": 3, "results": []
+        })
+    }
+
+    /// A daemon whose run 7 reads `running` the first `running_reads` times, then `cancelled`.
+    async fn daemon(running_reads: usize) -> (ApiClient, Arc<AtomicUsize>) {
+        let reads = Arc::new(AtomicUsize::new(0));
+        let counted = reads.clone();
+        let app = Router::new().route(
+            "/api/v1/runs/7",
+            get(move || {
+                let counted = counted.clone();
+                async move {
+                    let n = counted.fetch_add(1, Ordering::SeqCst);
+                    Json(run_in(if n < running_reads {
+                        "running"
+                    } else {
+                        "cancelled"
+                    }))
+                }
+            }),
+        );
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let address = listener.local_addr().unwrap();
+        tokio::spawn(async move { axum::serve(listener, app).await });
+        let client = ApiClient::new(&format!("http://{address}"), None).unwrap();
+        (client, reads)
+    }
+
+    /// README's CLI tour: `cancel` "waits up to 30 s for it to stop and says how it ended". A run
+    /// that stops is returned at its first final reading; one that stays running is returned as
+    /// still running once the limit has passed (a shorter limit here; the CLI's is 30 s).
+    #[tokio::test]
+    async fn the_wait_after_a_cancel_ends_with_the_run_or_at_the_limit() {
+        assert_eq!(CANCEL_WAIT, Duration::from_secs(30));
+        let (client, reads) = daemon(2).await;
+        let run = wait_until_ended(&client, 7, Duration::from_secs(20))
+            .await
+            .unwrap();
+        assert_eq!(run.summary.state, "cancelled");
+        assert_eq!(
+            reads.load(Ordering::SeqCst),
+            3,
+            "read until it stopped, no more"
+        );
+
+        let (client, _) = daemon(usize::MAX).await;
+        let limit = Duration::from_millis(700);
+        let started = Instant::now();
+        let run = wait_until_ended(&client, 7, limit).await.unwrap();
+        let waited = started.elapsed();
+        assert_eq!(run.summary.state, "running");
+        assert!(waited >= limit, "gave up after {waited:?}");
+        // One more reading at most past the limit (each 200 ms apart), with a loaded machine's delays.
+        assert!(waited < limit + Duration::from_secs(5), "waited {waited:?}");
+    }
+}

@@ -677,12 +677,12 @@ async fn measure_frequency(
             src.set_output(true).await?;
             Ok::<_, InstrumentError>(read_back)
         };
-        let generator_level = match tokio::time::timeout(super::runner::SOURCE_STEP_LIMIT, step).await {
+        let generator_level = match tokio::time::timeout(super::safety::SOURCE_STEP_LIMIT, step).await {
             Ok(result) => result?,
             Err(_) => {
                 return Err(Stop::Failed(format!(
                     "at {frequency}: the RF source did not complete a level change within {:.1} s with the output on",
-                    super::runner::SOURCE_STEP_LIMIT.as_secs_f64()
+                    super::safety::SOURCE_STEP_LIMIT.as_secs_f64()
                 )))
             }
         };

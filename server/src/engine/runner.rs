@@ -21,7 +21,7 @@ use super::adaptive::{self, AdaptivePoint, AdaptiveSettings, AdaptiveStep};
 use super::events::{ProgressEvent, ResponsePointEvent};
 use super::plan::{FrequencyStep, Plan};
 use super::rf_safety::BenchSafety;
-use super::safety::{RfOffGuard, SharedSource};
+use super::safety::{RfOffGuard, SharedSource, SOURCE_STEP_LIMIT};
 use crate::analysis::{self, chain::DriveChain, AnalysisOptions, DrivePoint};
 use crate::store::{NewFrequencyResult, NewPoint, Store};
 use halfwave_drivers::{AnalyzerSettings, InstrumentError, SpectrumAnalyzer};
@@ -640,12 +640,6 @@ impl PointState<'_> {
         })
     }
 }
-
-/// The longest a level change (with its settling `*OPC?`) may take on the source while the
-/// output may be on; a source that stops answering is given up on after this, so the stop path
-/// switches the output off without waiting for the transport's own timeout. Sources settle in
-/// milliseconds to a few hundred (common practice), so this leaves a wide margin.
-pub const SOURCE_STEP_LIMIT: std::time::Duration = std::time::Duration::from_secs(2);
 
 /// The least time a sweep with RF on may take before the output is switched off.
 pub const MIN_SWEEP_OVERRUN_MARGIN: std::time::Duration = std::time::Duration::from_secs(5);

@@ -20,6 +20,13 @@ pub type SharedSource = Arc<Mutex<Box<dyn RfSource>>>;
 /// bench to the keeper (`engine::rf_safety`), which goes on trying for as long as the daemon runs.
 pub const SWITCH_OFF_BUDGET: std::time::Duration = std::time::Duration::from_millis(1500);
 
+/// The longest a level change (with its settling `*OPC?`) may take on the source while the
+/// output may be on, in a measurement run and in a chain calibration alike; a source that stops
+/// answering is given up on after this, so the stop path switches the output off without waiting
+/// for the transport's own timeout. Sources settle in milliseconds to a few hundred (common
+/// practice), so this leaves a wide margin.
+pub const SOURCE_STEP_LIMIT: std::time::Duration = std::time::Duration::from_secs(2);
+
 /// Switches a shared source's output off and confirms it, retrying (the driver reconnects
 /// between attempts) within [`SWITCH_OFF_BUDGET`], the wait for the source's lock included;
 /// returns the last error if it could not be confirmed. The caller then flags the bench
