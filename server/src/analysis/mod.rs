@@ -44,6 +44,8 @@ pub mod precision;
 pub mod prediction;
 mod reference_noise;
 pub mod response;
+#[cfg(test)]
+mod robustness_tests;
 pub mod sensor_chain;
 mod smooth_shape;
 pub mod spacing;
