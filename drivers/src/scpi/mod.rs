@@ -15,6 +15,9 @@
 pub mod block;
 pub mod response;
 
+#[cfg(test)]
+mod fuzz_tests;
+
 pub use block::{ByteOrder, DataFormat};
 
 /// Why a reply could not be parsed: what was expected and what was found.
