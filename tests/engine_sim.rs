@@ -38,13 +38,15 @@ async fn wait_for_point_with_rf_on(
 
 /// An engine on one simulated bench named "sim".
 async fn start_engine(limits: Limits, store: Store, sim: &SimBench) -> Engine {
-    Engine::start_with(
-        limits,
-        store,
-        vec![("sim".into(), BenchInstruments::simulated(sim.clone()))],
-    )
-    .await
-    .unwrap()
+    start_engine_on(limits, store, BenchInstruments::simulated(sim.clone())).await
+}
+
+/// An engine on one bench named "sim" with these instruments (a simulated bench with one of its
+/// instruments wrapped to misbehave).
+async fn start_engine_on(limits: Limits, store: Store, instruments: BenchInstruments) -> Engine {
+    Engine::start_with(limits, store, vec![("sim".into(), instruments)])
+        .await
+        .unwrap()
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -581,13 +583,7 @@ async fn a_generator_on_the_wrong_frequency_fails_its_points_naming_the_spacing_
         source: Box::new(WrongFrequencySource(sim.rf_source())),
         ..BenchInstruments::simulated(sim.clone())
     };
-    let engine = Engine::start_with(
-        Limits::default(),
-        store.clone(),
-        vec![("sim".into(), instruments)],
-    )
-    .await
-    .unwrap();
+    let engine = start_engine_on(Limits::default(), store.clone(), instruments).await;
     let mut events = engine.subscribe();
     let mut request = plan(&chain);
     request.frequencies = FrequencySpec::List {
@@ -981,13 +977,7 @@ async fn an_analyzer_silent_while_following_the_laser_has_the_output_switched_of
         }),
         ..BenchInstruments::simulated(sim.clone())
     };
-    let engine = Engine::start_with(
-        Limits::default(),
-        store.clone(),
-        vec![("sim".into(), instruments)],
-    )
-    .await
-    .unwrap();
+    let engine = start_engine_on(Limits::default(), store.clone(), instruments).await;
     let mut events = engine.subscribe();
     // The instruments take no time (time factor 0): the run reaches its first level with the
     // output on at once, and the engine then follows the comb's apparent move.
@@ -1158,13 +1148,7 @@ async fn a_stalled_database_does_not_delay_the_hold_of_an_unconfirmed_output() {
         }),
         ..BenchInstruments::simulated(sim.clone())
     };
-    let engine = Engine::start_with(
-        Limits::default(),
-        store.clone(),
-        vec![("sim".into(), instruments)],
-    )
-    .await
-    .unwrap();
+    let engine = start_engine_on(Limits::default(), store.clone(), instruments).await;
     let mut events = engine.subscribe();
     let run_id = engine.submit(plan(&chain), "test").await.unwrap();
     wait_for_point_with_rf_on(&mut events, &sim).await;
