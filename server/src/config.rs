@@ -712,4 +712,111 @@ analyzer = { kind = \"simulated\" }
         assert!(parse("bench_lease_expiry_s = 3600\n").is_ok());
         assert!(parse("bench_lease_expiry_s = 1\n").is_ok());
     }
+
+    /// Bad configuration gets an error that names the file, never a panic: the shipped
+    /// configurations with seeded random changes (a number replaced by an odd one, a line dropped
+    /// or doubled, a byte changed), and odd values for the environment overrides.
+    #[test]
+    fn mutated_configurations_are_refused_by_name_never_with_a_panic() {
+        use rand::{rngs::StdRng, Rng, SeedableRng};
+        const ODD_NUMBERS: [&str; 10] = [
+            "-1",
+            "0",
+            "1e309",
+            "-1e309",
+            "nan",
+            "inf",
+            "99999999999999999999",
+            "1e-320",
+            "-0.0",
+            "\"12\"",
+        ];
+        let deploy = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy");
+        let texts: Vec<String> = ["halfwave.toml", "rehearsal.toml", "drill-example.toml"]
+            .iter()
+            .map(|name| std::fs::read_to_string(deploy.join(name)).unwrap())
+            .collect();
+        let mut rng = StdRng::seed_from_u64(1204);
+        let (mut loaded, mut refused) = (0, 0);
+        for case in 0..1500 {
+            let mut lines: Vec<String> = texts[case % texts.len()]
+                .lines()
+                .map(str::to_string)
+                .collect();
+            for _ in 0..rng.random_range(1..4) {
+                let at = rng.random_range(0..lines.len());
+                match rng.random_range(0..4) {
+                    0 => {
+                        // The first number on the line replaced by an odd one.
+                        let line = &lines[at];
+                        if let Some(start) = line.find(|c: char| c.is_ascii_digit()) {
+                            let end = line[start..]
+                                .find(|c: char| !(c.is_ascii_digit() || c == '.' || c == 'e'))
+                                .map_or(line.len(), |e| start + e);
+                            let odd = ODD_NUMBERS[rng.random_range(0..ODD_NUMBERS.len())];
+                            lines[at] = format!("{}{odd}{}", &line[..start], &line[end..]);
+                        }
+                    }
+                    1 => {
+                        lines.remove(at);
+                    }
+                    2 => {
+                        let copy = lines[at].clone();
+                        lines.insert(at, copy);
+                    }
+                    _ => {
+                        let mut bytes = lines[at].clone().into_bytes();
+                        if !bytes.is_empty() {
+                            let i = rng.random_range(0..bytes.len());
+                            bytes[i] = rng.random_range(b' '..=b'~');
+                        }
+                        lines[at] = String::from_utf8(bytes).unwrap();
+                    }
+                }
+                if lines.is_empty() {
+                    break;
+                }
+            }
+            let text = lines.join("\n");
+            let path = Path::new("mutated.toml");
+            let outcome = std::panic::catch_unwind(|| {
+                Config::from_toml(&text, path, PathBuf::from(".")).and_then(|config| {
+                    // Every third case also meets odd environment overrides.
+                    let odd = ODD_NUMBERS[(case * 7) % ODD_NUMBERS.len()];
+                    let env = [
+                        (
+                            "HALFWAVE_MAX_LEVEL_AT_MODULATOR_DBM".to_string(),
+                            odd.to_string(),
+                        ),
+                        ("HALFWAVE_BIND".to_string(), odd.to_string()),
+                    ];
+                    config.with_env_overrides(env.into_iter().filter(|_| case % 3 == 0))
+                })
+            });
+            match outcome {
+                Err(_) => panic!("the configuration panicked the loader:\n{text}"),
+                Ok(Ok(config)) => {
+                    loaded += 1;
+                    // What loaded holds numbers the daemon can compare against.
+                    let max = config.limits.max_level_at_modulator_dbm.0;
+                    assert!(max.is_finite(), "limit {max} loaded from:\n{text}");
+                    assert!(config.bench_lease_expiry_s.is_finite(), "{text}");
+                    for bench in &config.benches {
+                        let sim = bench.simulation.as_ref().map_or(0.0, |s| s.time_factor);
+                        assert!(sim.is_finite(), "time factor {sim} loaded from:\n{text}");
+                    }
+                }
+                Ok(Err(e)) => {
+                    refused += 1;
+                    let message = e.to_string();
+                    assert!(
+                        message.contains("mutated.toml") || message.contains("environment"),
+                        "the error does not name the file or the variable: {message}"
+                    );
+                }
+            }
+        }
+        println!("mutated configurations: {loaded} loaded, {refused} refused");
+        assert!(refused > 0);
+    }
 }
