@@ -589,7 +589,7 @@ async fn measure_all(
         // RF off at the end of every frequency, whatever happened, within the stop paths'
         // budget (a silent source is then the guard's and the keeper's). When the frequency
         // already failed, its cause is kept: the guard tries again and adds the switch-off's.
-        let off = super::safety::switch_off(source).await;
+        let off = safety::switch_off(source).await;
         let readings = match (readings, off) {
             (readings, Ok(())) => readings?,
             (Err(stop), Err(_)) => return Err(stop),
@@ -677,13 +677,11 @@ async fn measure_frequency(
             src.set_output(true).await?;
             Ok::<_, InstrumentError>(read_back)
         };
-        let generator_level = match tokio::time::timeout(super::safety::SOURCE_STEP_LIMIT, step).await {
+        let generator_level = match tokio::time::timeout(safety::SOURCE_STEP_LIMIT, step).await {
             Ok(result) => result?,
             Err(_) => {
-                return Err(Stop::Failed(format!(
-                    "at {frequency}: the RF source did not complete a level change within {:.1} s with the output on",
-                    super::safety::SOURCE_STEP_LIMIT.as_secs_f64()
-                )))
+                let overran = safety::level_change_overran("the RF source");
+                return Err(Stop::Failed(format!("at {frequency}: {overran}")));
             }
         };
         let mut highest = f64::NEG_INFINITY;

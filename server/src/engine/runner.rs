@@ -21,7 +21,7 @@ use super::adaptive::{self, AdaptivePoint, AdaptiveSettings, AdaptiveStep};
 use super::events::{ProgressEvent, ResponsePointEvent};
 use super::plan::{FrequencyStep, Plan};
 use super::rf_safety::BenchSafety;
-use super::safety::{RfOffGuard, SharedSource, SOURCE_STEP_LIMIT};
+use super::safety::{level_change_overran, RfOffGuard, SharedSource, SOURCE_STEP_LIMIT};
 use crate::analysis::{self, chain::DriveChain, AnalysisOptions, DrivePoint};
 use crate::store::{NewFrequencyResult, NewPoint, Store};
 use halfwave_drivers::{AnalyzerSettings, InstrumentError, SpectrumAnalyzer};
@@ -488,16 +488,10 @@ async fn measure_frequency(
                     .level_at_modulator(step.frequency, m.generator_level)
                     .to_volts_peak();
                 point.hand_over(ctx, tx, Msg::Point(Box::new(m))).await?;
-                let mut answer = answer;
-                let index = match tokio::time::timeout(PIPELINE_WAIT_WITH_RF_ON, &mut answer).await
-                {
-                    Ok(index) => index,
-                    Err(_) => {
-                        point.switch_off_while_waiting(ctx).await?;
-                        answer.await
-                    }
-                }
-                .map_err(|_| Stop::PipelineEnded)?;
+                let index = point
+                    .wait_for_pipeline(ctx, answer)
+                    .await?
+                    .map_err(|_| Stop::PipelineEnded)?;
                 measured.push(AdaptivePoint {
                     rung,
                     v_peak,
@@ -534,30 +528,35 @@ impl PointState<'_> {
         tx: &mpsc::Sender<Msg>,
         msg: Msg,
     ) -> Result<(), Stop> {
-        let permit = match tokio::time::timeout(PIPELINE_WAIT_WITH_RF_ON, tx.reserve()).await {
-            Ok(permit) => permit,
-            Err(_) => {
-                self.switch_off_while_waiting(ctx).await?;
-                tx.reserve().await
-            }
-        }
-        .map_err(|_| Stop::PipelineEnded)?;
+        let permit = self
+            .wait_for_pipeline(ctx, tx.reserve())
+            .await?
+            .map_err(|_| Stop::PipelineEnded)?;
         permit.send(msg);
         Ok(())
     }
 
-    /// Switches the output off (and confirms it) while the runner waits for the pipeline.
-    async fn switch_off_while_waiting(&mut self, ctx: &RunContext) -> Result<(), Stop> {
-        if !self.output_on {
-            return Ok(());
+    /// Waits for `pipeline` (room in its channel, or a point's answer) with the output on for
+    /// at most [`PIPELINE_WAIT_WITH_RF_ON`], then switches the output off (and confirms it) for
+    /// the rest of the wait.
+    async fn wait_for_pipeline<T>(
+        &mut self,
+        ctx: &RunContext,
+        pipeline: impl std::future::Future<Output = T>,
+    ) -> Result<T, Stop> {
+        let mut pipeline = std::pin::pin!(pipeline);
+        if let Ok(done) = tokio::time::timeout(PIPELINE_WAIT_WITH_RF_ON, &mut pipeline).await {
+            return Ok(done);
         }
-        tracing::info!(
-            wait_s = PIPELINE_WAIT_WITH_RF_ON.as_secs_f64(),
-            "the analysis and the store are behind; the RF output goes off while the run waits for them"
-        );
-        super::safety::switch_off(&ctx.source).await?;
-        self.output_on = false;
-        Ok(())
+        if self.output_on {
+            tracing::info!(
+                wait_s = PIPELINE_WAIT_WITH_RF_ON.as_secs_f64(),
+                "the analysis and the store are behind; the RF output goes off while the run waits for them"
+            );
+            super::safety::switch_off(&ctx.source).await?;
+            self.output_on = false;
+        }
+        Ok(pipeline.await)
     }
     /// One point: set the level, output on, settle, sweep (watched), fetch.
     #[allow(clippy::too_many_arguments)]
@@ -596,13 +595,7 @@ impl PointState<'_> {
             // stop path switch the output off on a fresh attempt.
             match tokio::time::timeout(SOURCE_STEP_LIMIT, drive).await {
                 Ok(result) => result?,
-                Err(_) => {
-                    return Err(Stop::LinkFault(format!(
-                        "{} did not complete a level change within {:.1} s with the output on",
-                        src.resource(),
-                        SOURCE_STEP_LIMIT.as_secs_f64()
-                    )))
-                }
+                Err(_) => return Err(Stop::LinkFault(level_change_overran(src.resource()))),
             }
             self.output_on = true;
         }

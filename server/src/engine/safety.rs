@@ -27,6 +27,14 @@ pub const SWITCH_OFF_BUDGET: std::time::Duration = std::time::Duration::from_mil
 /// practice), so this leaves a wide margin.
 pub const SOURCE_STEP_LIMIT: std::time::Duration = std::time::Duration::from_secs(2);
 
+/// What a stop says when `source` overran [`SOURCE_STEP_LIMIT`] on a level change.
+pub fn level_change_overran(source: &str) -> String {
+    format!(
+        "{source} did not complete a level change within {:.1} s with the output on",
+        SOURCE_STEP_LIMIT.as_secs_f64()
+    )
+}
+
 /// Switches a shared source's output off and confirms it, retrying (the driver reconnects
 /// between attempts) within [`SWITCH_OFF_BUDGET`], the wait for the source's lock included;
 /// returns the last error if it could not be confirmed. The caller then flags the bench

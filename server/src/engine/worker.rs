@@ -345,13 +345,13 @@ impl Engine {
                 match safety::switch_off(&slot.source).await {
                     Ok(()) => RunOutcome::Failed(format!("the run task failed: {join}")),
                     Err(e) => {
-                        let cause = format!(
+                        let cause = advice_once(format!(
                             "the run task failed ({join}) and the RF output could not be confirmed off ({e})"
-                        );
+                        ));
                         // Flag the bench first: the keeper starts at once, then the run is
                         // recorded.
                         slot.safety
-                            .output_unconfirmed(slot.source.clone(), advice_once(cause.clone()))
+                            .output_unconfirmed(slot.source.clone(), cause.clone())
                             .await;
                         RunOutcome::OutputUnconfirmed(cause)
                     }
@@ -375,10 +375,9 @@ impl Engine {
                 (RunState::Failed, Some(advice_once(cause)), true)
             }
             // The bench was held by whoever found the output unconfirmed (the run before it
-            // waited for its pipeline, or the panic path above).
-            RunOutcome::OutputUnconfirmed(cause) => {
-                (RunState::Failed, Some(advice_once(cause)), true)
-            }
+            // waited for its pipeline, or the panic path above), with this cause, the link
+            // advice already said once.
+            RunOutcome::OutputUnconfirmed(cause) => (RunState::Failed, Some(cause), true),
         };
         tracing::info!(
             run_id,
