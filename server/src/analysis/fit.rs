@@ -146,6 +146,8 @@ pub struct LineShape {
     /// Measured point by point: how the reference's display noise sits in the table (see
     /// `reference_noise`); `None` for a smoothed or parametric shape.
     table_noise: Option<Arc<TableNoise>>,
+    /// Measured: the reference's floor under the line's wings, mW (0 when not known).
+    floor_mw: f64,
 }
 
 /// FWHM / sigma of a Gaussian: 2 sqrt(2 ln 2).
@@ -185,6 +187,7 @@ impl LineShape {
             voigt: None,
             voigt_inv_s: 0.0,
             table_noise: None,
+            floor_mw: 0.0,
         }
     }
 
@@ -402,6 +405,7 @@ impl LineShape {
         }
         let mut shape =
             LineShape::from_table(table, freq[0] - centre, h, width, ShapeKind::Measured);
+        shape.floor_mw = floor;
         if !smoothed {
             let display_noise_db = display_noise_db(level);
             shape.table_noise = Some(Arc::new(TableNoise::new(
@@ -448,6 +452,7 @@ impl LineShape {
             voigt: None,
             voigt_inv_s: 0.0,
             table_noise: None,
+            floor_mw: 0.0,
         }
     }
 
@@ -539,6 +544,62 @@ impl LineShape {
         let k = c0 + s * (c1 + s * (c2 + s * c3));
         let dk = (c1 + s * (2.0 * c2 + 3.0 * s * c3)) * self.inv_h;
         (k, dk)
+    }
+
+    /// Whether the points of the axis `freq` lie on this measured shape's table grid: one table
+    /// step apart, each within a millionth of a step of its place (the engine's case, where a
+    /// trace and its RF-off reference share one axis; the absolute frequencies' rounding makes
+    /// single steps differ by parts in 1e8). See [`GridLine`].
+    fn on_grid_of(&self, freq: &[f64]) -> bool {
+        if self.kind != ShapeKind::Measured || self.cubic.is_empty() || freq.is_empty() {
+            return false;
+        }
+        let (first, h) = (freq[0], self.h);
+        freq.iter()
+            .enumerate()
+            .all(|(i, f)| (f - first - i as f64 * h).abs() <= 1e-6 * h)
+    }
+
+    /// The line centred at `centre` (Hz) on a trace whose first point is at `first_freq` and
+    /// whose points lie on the table's grid ([`LineShape::on_grid_of`]).
+    fn grid_line(&self, first_freq: f64, centre: f64) -> GridLine {
+        let t = (first_freq - centre - self.x0) * self.inv_h;
+        let whole = t.floor();
+        let s = t - whole;
+        let offset = if whole.abs() < 1e15 {
+            whole as isize
+        } else {
+            isize::MIN / 2
+        };
+        GridLine {
+            offset,
+            k_weights: [1.0, s, s * s, s * s * s],
+            slope_weights: [
+                0.0,
+                self.inv_h,
+                2.0 * s * self.inv_h,
+                3.0 * s * s * self.inv_h,
+            ],
+        }
+    }
+
+    /// K and dK/dx of `line` at trace point `point` (offset `x` Hz from the line's centre, for
+    /// a point off the table): [`LineShape::measured_value`] without locating the point.
+    #[inline(always)]
+    fn grid_value(&self, line: &GridLine, point: usize, x: f64) -> (f64, f64) {
+        let index = (point as isize).wrapping_add(line.offset) as usize;
+        // Intervals 0..len - 1 (the last entry starts none; the grid's shapes have a table):
+        // beyond, the 1/x^2 wing (a point before the table wraps to a large index).
+        if index < self.cubic.len().saturating_sub(1) {
+            let c = self.cubic[index];
+            let (kw, sw) = (line.k_weights, line.slope_weights);
+            (
+                c[0] + c[1] * kw[1] + c[2] * kw[2] + c[3] * kw[3],
+                c[1] * sw[1] + c[2] * sw[2] + c[3] * sw[3],
+            )
+        } else {
+            self.measured_value(x)
+        }
     }
 
     /// Adds `weight` times dK(x)/dT_j to `sensitivity[j]` for the measured table's entries T_j that
@@ -678,6 +739,19 @@ impl LineShape {
             }
         }
     }
+}
+
+/// One line of a measured shape on a trace whose points lie on the table's grid: point i falls
+/// at table position i + `offset` + s with the same fraction s for every point, so K and its
+/// slope there are the table's cubic of interval i + `offset` weighted by powers of s computed
+/// once per line ([`LineShape::grid_value`]).
+#[derive(Debug, Clone, Copy)]
+struct GridLine {
+    offset: isize,
+    /// 1, s, s^2, s^3.
+    k_weights: [f64; 4],
+    /// 0, 1, 2 s, 3 s^2, each over the table step.
+    slope_weights: [f64; 4],
 }
 
 /// The weights of the four table values p0..p3 (at j - 1..j + 2) in the Catmull-Rom cubic of
@@ -963,6 +1037,8 @@ struct Problem<'a> {
     /// Far from the optimum the segments are cut [`COARSE_FACTOR`] times looser (see
     /// [`Problem::tolerance_db`]).
     coarse: bool,
+    /// A measured shape whose table grid the trace's points lie on ([`LineShape::on_grid_of`]).
+    on_grid: bool,
 }
 
 /// How much looser the segments' tolerance is while the fit is still far from the optimum
@@ -1072,8 +1148,19 @@ fn evaluate(
             let run = lo..hi + 1;
             let freq = &ws.node_freq[run.clone()];
             let s0 = &mut s0[run.clone()];
-            if jacobian && shape.kind == ShapeKind::Measured {
+            if jacobian && shape.kind == ShapeKind::Measured && prob.on_grid {
                 // A measured shape has no parameters: its three slopes are zero.
+                let line = shape.grid_line(prob.freq[0], centre);
+                let points = &ws.nodes[run.clone()];
+                let (s1, s2, s3) = (&mut s1[run.clone()], &mut s2[run.clone()], &mut s3[run]);
+                for k in 0..freq.len() {
+                    let (v, dv) = shape.grid_value(&line, points[k], freq[k] - centre);
+                    s0[k] += w * v;
+                    s1[k] += dw_beta * v;
+                    s2[k] += w * dv;
+                    s3[k] += dw_a * v;
+                }
+            } else if jacobian && shape.kind == ShapeKind::Measured {
                 let (s1, s2, s3) = (&mut s1[run.clone()], &mut s2[run.clone()], &mut s3[run]);
                 for k in 0..freq.len() {
                     let (v, dv) = shape.measured_value(freq[k] - centre);
@@ -1112,7 +1199,7 @@ fn evaluate(
 /// The sum of squares (and with `jacobian`, J^T J and J^T r) at the parameters `p` from the line
 /// sums at the nodes that [`evaluate`] left in the workspace: the levels at the nodes, then the
 /// segments' quadratic forms. The sums do not depend on P0 and the floor, so this alone serves
-/// for steps in those two (see [`polish_levels`]).
+/// for steps in those two.
 #[allow(clippy::needless_range_loop)]
 fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -> Evaluation {
     let p0 = p[LN_P0].exp();
@@ -1265,95 +1352,6 @@ fn segment_sums<const Q: usize>(
             e.jtj[row] = acc;
         }
     }
-}
-
-/// Moves ln P0 and ln F in `p` to the least squares for the line sums at the nodes that
-/// [`evaluate`] left in the workspace (Gauss-Newton in those two alone, each step kept only when
-/// it lowers the sum of squares). The model is linear in P0 and F but its level in dB is not, so
-/// this is iterative, but it costs per node, not per line and node: the fit's start (a floor
-/// read between lines that may hold the lines' own wings, a line power from the line-by-line
-/// measurement) is put right before the first full step. Returns the evaluation at the new
-/// parameters (with the Jacobian).
-#[allow(clippy::needless_range_loop)]
-fn polish_levels(prob: &Problem, p: &mut [f64; NP], ws: &mut Workspace) -> Evaluation {
-    let c = DB_PER_NEPER;
-    let node_count = ws.nodes.len();
-    // Sum of squares, and its gradient and Gauss-Newton matrix in (ln P0, ln F).
-    let sums = |p0: f64, floor: f64, ws: &mut Workspace| -> (f64, [f64; 2], [[f64; 2]; 2]) {
-        let s0 = &ws.s[0];
-        for k in 0..node_count {
-            let m = (floor + p0 * s0[k]).max(1e-300);
-            ws.node_level[k] = c * m.ln();
-            let g = c / m;
-            ws.node_gradient[k][0] = g * p0 * s0[k];
-            ws.node_gradient[k][1] = g * floor;
-        }
-        let (mut ssr, mut jtr, mut jtj) = (0.0, [0.0; 2], [[0.0; 2]; 2]);
-        for seg in &ws.segments {
-            let count = seg.count as usize;
-            for j in 0..count {
-                let sj = seg.slots[j] as usize;
-                let mut gm = 0.0;
-                let mut gd = [0.0; 2];
-                for k in 0..count {
-                    let sk = seg.slots[k] as usize;
-                    let g = seg.g(j, k);
-                    gm += g * ws.node_level[sk];
-                    gd[0] += g * ws.node_gradient[sk][0];
-                    gd[1] += g * ws.node_gradient[sk][1];
-                }
-                let lj = ws.node_level[sj];
-                let dj = [ws.node_gradient[sj][0], ws.node_gradient[sj][1]];
-                ssr += gm * lj - 2.0 * seg.h[j] * lj;
-                for r in 0..2 {
-                    jtr[r] += dj[r] * (gm - seg.h[j]);
-                    for q in 0..2 {
-                        jtj[r][q] += dj[r] * gd[q];
-                    }
-                }
-            }
-            ssr += seg.yy;
-        }
-        if prob.block_n > 0.0 {
-            let lf = c * floor.ln();
-            ssr += prob.block_n * lf * lf - 2.0 * lf * prob.block_sum + prob.block_sq;
-            jtj[1][1] += prob.block_n * c * c;
-            jtr[1] += c * (prob.block_n * lf - prob.block_sum);
-        }
-        (ssr, jtr, jtj)
-    };
-    let (mut u, mut v) = (p[LN_P0], p[LN_FLOOR]);
-    let (mut ssr, mut jtr, mut jtj) = sums(u.exp(), v.exp(), ws);
-    for _ in 0..8 {
-        let det = jtj[0][0] * jtj[1][1] - jtj[0][1] * jtj[1][0];
-        if !(det > 0.0 && det.is_finite()) {
-            break;
-        }
-        let du = -(jtj[1][1] * jtr[0] - jtj[0][1] * jtr[1]) / det;
-        let dv = -(jtj[0][0] * jtr[1] - jtj[1][0] * jtr[0]) / det;
-        // Steps of more than a factor e^2 are cut back (the floor may start tens of dB off).
-        let scale = (2.0 / du.abs().max(dv.abs())).min(1.0);
-        let mut accepted = false;
-        let mut t = scale;
-        for _ in 0..6 {
-            let (tu, tv) = (u + t * du, v + t * dv);
-            let trial = sums(tu.exp(), tv.exp(), ws);
-            if trial.0.is_finite() && trial.0 < ssr {
-                (u, v) = (tu, tv);
-                (ssr, jtr, jtj) = trial;
-                accepted = true;
-                break;
-            }
-            t *= 0.5;
-        }
-        // Converged (a step under 1e-4 in ln P0 and ln F: 0.0004 dB) or no further decrease.
-        if !accepted || (t * du).abs().max((t * dv).abs()) < 1e-4 {
-            break;
-        }
-    }
-    p[LN_P0] = u;
-    p[LN_FLOOR] = v;
-    assemble(prob, p, ws, true)
 }
 
 /// Solves the active part of `m x = b` by Cholesky; `None` when not positive definite.
@@ -1649,6 +1647,13 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
         *slot = p0 * line_weight(table, n, p[BETA], p[ASYM]).0;
     }
     let amplitudes = &*amplitudes;
+    // Per order slot, the line on the measured table's grid (when the trace lies on it).
+    let mut grid_lines = [None; 2 * MAX_ORDER + 1];
+    if prob.on_grid {
+        for (line, n) in grid_lines.iter_mut().zip(-nmax..=nmax) {
+            *line = Some(shape.grid_line(prob.freq[0], fc + n as f64 * prob.spacing));
+        }
+    }
     let ranges = &ws.ranges;
     // The lines that reach a point lie between the first slot up to which some line reaches
     // past it (the running largest last point) and the last slot from which on some line starts
@@ -1704,7 +1709,11 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
                 return 0.0;
             }
             let n = slot as i32 - nmax;
-            let v = shape.eval(f - fc - n as f64 * prob.spacing).k;
+            let x = f - fc - n as f64 * prob.spacing;
+            let v = match &grid_lines[slot] {
+                Some(line) => shape.grid_value(line, i, x).0,
+                None => shape.eval(x).k,
+            };
             m += amplitudes[slot] * v;
             v
         }));
@@ -2207,7 +2216,10 @@ fn fit_once(
         centre_scale: shape0.width_hz.max(step),
         centre0: start.carrier_hz,
         segment_tolerance_db,
-        coarse: segment_tolerance_db > 0.0,
+        // A measured shape has no parameters, so the windows and segments set at the start stay
+        // near those at the optimum: it is cut at the fine tolerance once, from the start.
+        coarse: segment_tolerance_db > 0.0 && parametric,
+        on_grid: shape0.on_grid_of(freq),
     };
     let table = BesselTable::get();
     let strongest = (-max_order..=max_order)
@@ -2218,7 +2230,15 @@ fn fit_once(
     p[BETA] = start.beta.max(1e-4);
     p[LN_P0] = (start.strongest_line_peak_mw.max(1e-30) / strongest).ln();
     p[CENTRE] = 0.0;
-    p[LN_FLOOR] = start.floor_mw.max(1e-30).ln();
+    // A measured shape's reference shows the analyzer's floor under no line's wings, while the
+    // floor read between the comb's lines may hold their wings (tens of dB above it on a laser's
+    // Lorentzian line): the fit starts from the lower of the two.
+    let floor_start = if shape0.floor_mw > 0.0 {
+        start.floor_mw.min(shape0.floor_mw)
+    } else {
+        start.floor_mw
+    };
+    p[LN_FLOOR] = floor_start.max(1e-30).ln();
     p[ASYM] = 0.0;
     p[LN_WIDTH] = shape0.width_hz.max(1e-3).ln();
     p[LN_WIDTH_L] = shape0.width_l_hz.max(1e-3).ln();
@@ -2231,24 +2251,21 @@ fn fit_once(
     set_windows(&mut prob, shape0, &p, ws);
     let mut shape = params_shape(shape0, &p);
     prob.active = free_parameters(&base, &p);
-    if !parametric {
-        evaluate(&prob, &shape, &p, ws, true);
-    }
-    // With a measured shape, P0 and the floor put right for the starting beta and centre before
-    // the first full step. The windows and segments stay those of the start until the cut near
-    // the optimum (cutting them again here cost more than the steps it saved).
-    let mut eval = if parametric {
-        // A parametric shape's width and mix are as far off at the start as P0 and the floor
-        // (the start's small Lorentzian part puts wings far above the floor between the
-        // lines, which drags P0 down): they are fitted together from the first step.
-        evaluate(&prob, &shape, &p, ws, true)
-    } else {
-        polish_levels(&prob, &mut p, ws)
-    };
+    // Every free parameter is fitted from the first step: a parametric shape's width and mix are
+    // as far off at the start as P0 and the floor (the start's small Lorentzian part puts wings
+    // far above the floor between the lines, which drags P0 down); a measured shape starts from
+    // its reference's floor (until v6 of [`super::ANALYSIS_METHOD`], P0 and a floor read
+    // between the lines were first put right in those two alone, over a third of the fit's
+    // work on the simulated bench's trace).
+    let mut eval = evaluate(&prob, &shape, &p, ws, true);
+    // The parameters at which the workspace holds `eval`'s line sums and gradients (`None` after
+    // a refused trial overwrote them).
+    let mut workspace_at = Some(p);
     let mut lambda = 1e-3;
     let mut iterations = 0;
     let mut rewindowed = false;
-    let mut recut_near_optimum = false;
+    // Cut at the fine tolerance from the start (a measured shape): as if near the optimum.
+    let mut recut_near_optimum = !parametric && segment_tolerance_db > 0.0;
     let p_start_beta = p[BETA];
     let mut pass = 0;
     loop {
@@ -2270,11 +2287,13 @@ fn fit_once(
                     || (after.ssr - before.1).abs() > 1e-6 * before.1
                 {
                     eval = after;
+                    workspace_at = Some(p);
                     lambda = 1e-3;
                     iterations = iterations.min(MAX_ITERATIONS - 10);
                     continue;
                 }
                 eval = after;
+                workspace_at = Some(p);
             }
             break;
         }
@@ -2295,6 +2314,7 @@ fn fit_once(
         // trial's evaluation is then the next step's (the Jacobian does not change the sum of
         // squares, so the steps are those of evaluating the trial without it).
         let trial_eval = evaluate(&prob, &trial_shape, &trial, ws, true);
+        workspace_at = None;
         if trial_eval.ssr.is_finite() && trial_eval.ssr < eval.ssr {
             let gain = (eval.ssr - trial_eval.ssr) / eval.ssr.max(1e-300);
             // The step's length in standard uncertainties of the parameters (its Mahalanobis
@@ -2340,6 +2360,7 @@ fn fit_once(
                 prob.active = active;
                 assemble(&prob, &p, ws, true)
             };
+            workspace_at = Some(p);
             lambda = (lambda / 5.0).max(1e-9);
             if !recut && (gain < 1e-7 || step_in_uncertainties < 0.05) {
                 // Converged: the step moved the parameters by under a twentieth of their
@@ -2396,6 +2417,7 @@ fn fit_once(
                     recut_near_optimum = true;
                     prob.active = free_parameters(&base, &p);
                     eval = evaluate(&prob, &shape, &p, ws, true);
+                    workspace_at = Some(p);
                     continue;
                 }
             }
@@ -2447,7 +2469,15 @@ fn fit_once(
     };
     let u_shape = relative * beta;
     let u_reference = match shape.table_noise.as_deref() {
-        Some(noise) => reference_noise_uncertainty(&prob, &shape, noise, &p, ws),
+        Some(noise) => match workspace_at {
+            // The workspace holds the gradients the covariance above was taken from (at the
+            // parameters before a last step too small to evaluate): used as they are.
+            Some(at) => reference_noise_uncertainty(&prob, &shape, noise, &at, ws, &eval),
+            None => {
+                let held = evaluate(&prob, &shape, &p, ws, true);
+                reference_noise_uncertainty(&prob, &shape, noise, &p, ws, &held)
+            }
+        },
         None => 0.0,
     };
     let u_combined = (u_stat * u_stat + u_reference * u_reference + u_shape * u_shape).sqrt();
@@ -2511,7 +2541,8 @@ fn fit_once(
 /// parameters by -(J^T J)^-1 J^T dL; beta's row of (J^T J)^-1 dotted with each point's gradient,
 /// q_i, gives beta's sensitivity to T_j as -sum_i q_i dL_i/dT_j. The gradients and levels at the
 /// points between nodes are the segments' quadratics through the nodes (as the fit takes them);
-/// each line is summed where the fit sums it ([`Workspace::line_runs`]).
+/// each line is summed where the fit sums it ([`Workspace::line_runs`]). `eval` is the evaluation
+/// at `p` whose line sums and gradients the workspace holds.
 #[allow(clippy::needless_range_loop)]
 fn reference_noise_uncertainty(
     prob: &Problem,
@@ -2519,9 +2550,8 @@ fn reference_noise_uncertainty(
     noise: &TableNoise,
     p: &[f64; NP],
     ws: &mut Workspace,
+    eval: &Evaluation,
 ) -> f64 {
-    // The workspace may hold a refused trial's gradients: evaluated again at the fitted values.
-    let eval = evaluate(prob, shape, p, ws, true);
     let mut unit = [0.0; NP];
     unit[BETA] = 1.0;
     let Some(row) = solve(&eval.jtj, &unit, &prob.active) else {
@@ -2860,6 +2890,50 @@ mod tests {
             let trace = bench_like(beta, 20 + seed as u64, 0.15);
             assert_fast_matches_exact(&format!("bench beta {beta}"), &trace, Hz(0.2e9), &shape);
         }
+    }
+
+    /// The table read along a line on the reference's own grid (`GridLine`, one fraction of a
+    /// step per line) against the same table located point by point (`measured_value`): the
+    /// same K and slope at every point of the trace, on the table and beyond it, for line centres
+    /// anywhere within and past the span; and an axis off the grid (half a step shifted, or a
+    /// step 1e-4 longer) is not taken for it.
+    #[test]
+    fn a_line_read_on_the_reference_grid_matches_the_table_read_point_by_point() {
+        let reference = rendered(0.0, 193.4e12 + 3e6, 1);
+        let shape = LineShape::measured(&reference, 8.0).unwrap();
+        let freq = reference.frequency_hz();
+        assert!(shape.on_grid_of(freq));
+        let step = shape.h;
+        let shifted: Vec<f64> = freq.iter().map(|f| f + 0.5 * step).collect();
+        assert!(shape.on_grid_of(&shifted), "a shift keeps the step");
+        let stretched: Vec<f64> = (0..freq.len())
+            .map(|i| freq[0] + i as f64 * step * (1.0 + 1e-4))
+            .collect();
+        assert!(!shape.on_grid_of(&stretched));
+        assert!(!LineShape::pseudo_voigt(20e6, 20e6, 0.1).on_grid_of(freq));
+        let mut worst = 0.0f64;
+        let mut off_table = 0;
+        for centre_offset in [-3.7e9, -1.3e9, -0.2e9, 0.0, 1.234_567e6, 0.77e9, 2.9e9] {
+            let centre = 193.4e12 + centre_offset + 0.37 * step;
+            let line = shape.grid_line(freq[0], centre);
+            for (i, f) in freq.iter().enumerate() {
+                let x = f - centre;
+                let (k, dk) = shape.grid_value(&line, i, x);
+                let (k_ref, dk_ref) = shape.measured_value(x);
+                let scale_k = k_ref.abs().max(1e-12);
+                let scale_dk = dk_ref.abs().max(1e-12 / step);
+                worst = worst.max((k - k_ref).abs() / scale_k);
+                worst = worst.max((dk - dk_ref).abs() / scale_dk);
+                let t = (x - shape.x0) * shape.inv_h;
+                off_table += usize::from(t < 0.0 || t > shape.t_last);
+            }
+        }
+        println!("largest relative difference {worst:.2e}, {off_table} points off the table");
+        assert!(
+            off_table > 1000,
+            "the wings beyond the table are checked too"
+        );
+        assert!(worst < 1e-6, "largest relative difference {worst:e}");
     }
 
     #[test]
