@@ -2255,7 +2255,7 @@ fn fit_once(
     // as far off at the start as P0 and the floor (the start's small Lorentzian part puts wings
     // far above the floor between the lines, which drags P0 down); a measured shape starts from
     // its reference's floor (until v6 of [`super::ANALYSIS_METHOD`], P0 and a floor read
-    // between the lines were first put right in those two alone, over a third of the fit's
+    // between the lines were first put right in those two alone, about a fifth of the fit's
     // work on the simulated bench's trace).
     let mut eval = evaluate(&prob, &shape, &p, ws, true);
     // The parameters at which the workspace holds `eval`'s line sums and gradients (`None` after
