@@ -2687,17 +2687,23 @@ mod tests {
     /// line through a 20 MHz Gaussian filter: Lorentzian wings over the whole 2.8 GHz span,
     /// 78 dB above the floor), drawn by the simulator's physics; `beta` 0 is the RF-off reference.
     fn bench_like(beta: f64, seed: u64, display_noise_db: f64) -> Trace {
-        let rendering = Rendering {
+        let rendering = bench_rendering(-72.0, display_noise_db);
+        drawn(beta, 193.4e12 - 37e6, 0.2e9, 4.6, &rendering, seed)
+    }
+
+    /// The simulated bench's rendering at 0.2 GHz (see [`bench_like`]) with its floor at
+    /// `noise_floor_dbm`.
+    fn bench_rendering(noise_floor_dbm: f64, display_noise_db: f64) -> Rendering {
+        Rendering {
             start_hz: 193.4e12 - 1.4e9,
             stop_hz: 193.4e12 + 1.4e9,
             points: 10_001,
             resolution_bandwidth_hz: 20e6,
             filter: FilterShape::Gaussian,
             laser_linewidth_hz: 50e3,
-            noise_floor_dbm: -72.0,
+            noise_floor_dbm,
             display_noise_db,
-        };
-        drawn(beta, 193.4e12 - 37e6, 0.2e9, 4.6, &rendering, seed)
+        }
     }
 
     /// The scatter of beta over 200 draws of a comb at beta 0.7 (lines 0.2 GHz apart, 20 MHz
@@ -2903,16 +2909,7 @@ mod tests {
     /// whole span, the case the start was changed for).
     #[test]
     fn a_reference_with_a_lower_floor_than_the_trace_gives_the_same_fit() {
-        let rendering = |noise_floor_dbm: f64| Rendering {
-            start_hz: 193.4e12 - 1.4e9,
-            stop_hz: 193.4e12 + 1.4e9,
-            points: 10_001,
-            resolution_bandwidth_hz: 20e6,
-            filter: FilterShape::Gaussian,
-            laser_linewidth_hz: 50e3,
-            noise_floor_dbm,
-            display_noise_db: 0.15,
-        };
+        let rendering = |noise_floor_dbm: f64| bench_rendering(noise_floor_dbm, 0.15);
         let carrier = 193.4e12 - 37e6;
         let trace = drawn(1.6, carrier, 0.2e9, 4.6, &rendering(-72.0), 41);
         let spacing = Hz(0.2e9);
