@@ -267,10 +267,20 @@ impl ApiClient {
                 describe(error)
             ));
         }
+        let described = describe(error);
+        if described.contains("certificate") {
+            // The TLS handshake refused the proxy's certificate: the daemon is reachable, so the
+            // usual advice (is it running, is the address right) would mislead.
+            return CliError::new(format!(
+                "the daemon at {} answered with a TLS certificate this machine does not trust: {described} — \
+                 install the certificate authority of the lab's TLS proxy in the system's trust store (or name \
+                 its PEM file in SSL_CERT_FILE), and use the host name the certificate was issued for",
+                self.base
+            ));
+        }
         CliError::new(format!(
-            "cannot reach the daemon at {}: {} — is `halfwave serve` running, and is --url right?",
+            "cannot reach the daemon at {}: {described} — is `halfwave serve` running, and is --url right?",
             self.base,
-            describe(error)
         ))
     }
 
