@@ -9,10 +9,13 @@ use halfwave_drivers::scpi::{ByteOrder, DataFormat};
 use halfwave_drivers::{InstrumentError, Resource, ScpiTransport, TransportConfig};
 use std::time::{Duration, Instant};
 
+/// A loopback instrument answers in microseconds, so the tests' timeouts only have to be reached
+/// where a timeout is the point: 3 s leaves a loaded CI machine room to schedule a reply, and the
+/// tests that wait for a timeout set a short one of their own.
 fn quick_config() -> TransportConfig {
     TransportConfig {
-        timeout: Duration::from_millis(300),
-        connect_timeout: Duration::from_millis(300),
+        timeout: Duration::from_secs(3),
+        connect_timeout: Duration::from_secs(3),
         reconnect_attempts: 3,
         reconnect_backoff: Duration::from_millis(10),
         ..TransportConfig::default()
@@ -72,7 +75,13 @@ async fn crlf_terminators_are_configurable() {
 #[tokio::test]
 async fn a_silent_instrument_times_out_cleanly_and_the_link_recovers() {
     let fake = FakeInstrument::start().await;
-    let mut t = connect(&fake.resource()).await;
+    let config = TransportConfig {
+        timeout: Duration::from_millis(300),
+        ..quick_config()
+    };
+    let mut t = ScpiTransport::connect(Resource::parse(&fake.resource()).unwrap(), config)
+        .await
+        .unwrap();
     fake.state().faults.silent = true;
     let started = Instant::now();
     let err = t.query("*IDN?").await.unwrap_err();
@@ -91,7 +100,11 @@ async fn a_silent_instrument_times_out_cleanly_and_the_link_recovers() {
         "a timed-out link is dropped so late bytes cannot be misread"
     );
     fake.state().faults.silent = false;
-    assert!(t.query("*IDN?").await.unwrap().contains("FAKE-1"));
+    let recovered = t
+        .query_with_timeout("*IDN?", Duration::from_secs(3))
+        .await
+        .unwrap();
+    assert!(recovered.contains("FAKE-1"));
     assert_eq!(t.connection_count(), 2);
 }
 
