@@ -551,13 +551,18 @@ impl LineShape {
     /// trace and its RF-off reference share one axis; the absolute frequencies' rounding makes
     /// single steps differ by parts in 1e8). See [`GridLine`].
     fn on_grid_of(&self, freq: &[f64]) -> bool {
-        if self.kind != ShapeKind::Measured || self.cubic.is_empty() || freq.is_empty() {
+        self.kind == ShapeKind::Measured && !self.cubic.is_empty() && self.steps_apart(freq, 1e-6)
+    }
+
+    /// Whether the points of `freq` lie one table step apart, each within `tolerance` of a step of
+    /// its place counted from the first.
+    fn steps_apart(&self, freq: &[f64], tolerance: f64) -> bool {
+        let (Some(&first), h) = (freq.first(), self.h) else {
             return false;
-        }
-        let (first, h) = (freq[0], self.h);
+        };
         freq.iter()
             .enumerate()
-            .all(|(i, f)| (f - first - i as f64 * h).abs() <= 1e-6 * h)
+            .all(|(i, f)| (f - first - i as f64 * h).abs() <= tolerance * h)
     }
 
     /// The line centred at `centre` (Hz) on a trace whose first point is at `first_freq` and
@@ -1201,8 +1206,8 @@ fn evaluate(
 
 /// The sum of squares (and with `jacobian`, J^T J and J^T r) at the parameters `p` from the line
 /// sums at the nodes that [`evaluate`] left in the workspace: the levels at the nodes, then the
-/// segments' quadratic forms. The sums do not depend on P0 and the floor, so this alone serves
-/// for steps in those two.
+/// segments' quadratic forms. The sums do not depend on P0 and the floor, nor on which
+/// parameters are free, so this alone serves when a step frees more parameters (`fit_once`).
 #[allow(clippy::needless_range_loop)]
 fn assemble(prob: &Problem, p: &[f64; NP], ws: &mut Workspace, jacobian: bool) -> Evaluation {
     let p0 = p[LN_P0].exp();
@@ -2602,11 +2607,9 @@ fn reference_noise_uncertainty(
     // time, else point by point.
     let freq = prob.freq;
     // (every point within a thousandth of a step of its place on the table's grid: the absolute
-    // frequencies' rounding makes single steps differ by parts in 1e8).
-    let uniform = freq
-        .iter()
-        .enumerate()
-        .all(|(i, f)| (f - freq[0] - i as f64 * shape.h).abs() <= 1e-3 * shape.h);
+    // frequencies' rounding makes single steps differ by parts in 1e8; the fit's own grid check
+    // is stricter).
+    let uniform = prob.on_grid || shape.steps_apart(freq, 1e-3);
     for n in -nmax..=nmax {
         let slot = (n + nmax) as usize;
         let (w, _, _) = line_weight(table, n, p[BETA], p[ASYM]);
