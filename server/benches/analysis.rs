@@ -382,11 +382,15 @@ fn count_fits(name: &str) {
         let fitted = counted_fit(case);
         // Every digit, so that two builds can be checked to give the same fit to the bit.
         println!(
-            "{}: beta {:?}, uncertainty {:?}, reduced chi-squared {:?}",
+            "{}: beta {:?}, uncertainty {:?}, reduced chi-squared {:?} ({:?} shape, {} iterations, \
+             {} points under the lines)",
             case.name,
             fitted.modulation_index,
             fitted.uncertainty_combined,
-            fitted.reduced_chi_squared
+            fitted.reduced_chi_squared,
+            fitted.line_shape,
+            fitted.iterations,
+            fitted.points_under_lines
         );
     }
 }
