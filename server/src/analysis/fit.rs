@@ -945,10 +945,9 @@ struct Workspace {
     line_run_start: Vec<usize>,
     /// Per order slot: the largest amplitude P0 w_n the line may take while beta moves by 10 %.
     bound_amplitude: Vec<f64>,
-    /// Scratch for [`limit_reach`]: per node the lines' sum and count, per (line, node) pair K.
-    local_total: Vec<f64>,
-    local_count: Vec<u32>,
-    pair_shape: Vec<f64>,
+    /// Scratch for [`limit_reach`]: the runs (order slot, first node, last node) in the order
+    /// they close.
+    closed_runs: Vec<(usize, usize, usize)>,
     /// Merged intervals of points under the lines.
     intervals: Vec<(usize, usize)>,
     /// Point index of each node, ascending, and its frequency.
@@ -1576,68 +1575,86 @@ fn limit_reach(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Worksp
     let nmax = prob.max_order;
     let p0 = p[LN_P0].exp();
     let fc = prob.centre0 + p[CENTRE] * prob.centre_scale;
-    ws.local_total.clear();
-    ws.local_total.resize(node_count, 0.0);
-    ws.local_count.clear();
-    ws.local_count.resize(node_count, 0);
-    ws.pair_shape.clear();
-    for n in -nmax..=nmax {
-        let (lo, hi) = ws.node_ranges[(n + nmax) as usize];
-        if hi < lo {
-            continue;
-        }
-        let amplitude = p0 * line_weight(table, n, p[BETA], p[ASYM]).0;
-        let slot = (n + nmax) as usize;
-        for k in lo..=hi {
+    let width = (2 * nmax + 1) as usize;
+    let mut amplitude = [0.0; 2 * MAX_ORDER + 1];
+    for (slot, n) in amplitude.iter_mut().zip(-nmax..=nmax) {
+        *slot = p0 * line_weight(table, n, p[BETA], p[ASYM]).0;
+    }
+    // Node by node (each node's K values lie side by side in the cut's row for its point), the
+    // lines whose node range holds the node: their sum sets the node's threshold, then each is
+    // kept or not, opening and closing its runs.
+    let mut shape_at = [0.0; 2 * MAX_ORDER + 1];
+    let mut open = [usize::MAX; 2 * MAX_ORDER + 1];
+    ws.closed_runs.clear();
+    for k in 0..node_count {
+        let row = ws.point_row[ws.nodes[k]];
+        let (first, end, cells) = if row == u32::MAX {
+            (0, width, None)
+        } else {
+            let r = ws.shape_rows[row as usize];
+            (
+                r.first,
+                r.end,
+                Some(&ws.point_shape[r.start..r.start + (r.end - r.first)]),
+            )
+        };
+        let mut total = 0.0;
+        let mut count = 0u32;
+        for slot in first..end {
+            let (lo, hi) = ws.node_ranges[slot];
+            if k < lo || k > hi {
+                continue;
+            }
             // K as the cut computed it at this node's point (the same expression where the cut
             // did not compute the level there).
-            let row = ws.point_row[ws.nodes[k]];
-            let v = if row == u32::MAX {
-                shape.eval(ws.node_freq[k] - fc - n as f64 * prob.spacing).k
-            } else {
-                let ShapeRow {
-                    start, first, end, ..
-                } = ws.shape_rows[row as usize];
-                if (first..end).contains(&slot) {
-                    ws.point_shape[start + slot - first]
-                } else {
-                    0.0
+            let v = match cells {
+                Some(cells) => cells[slot - first],
+                None => {
+                    let n = slot as i32 - nmax;
+                    shape.eval(ws.node_freq[k] - fc - n as f64 * prob.spacing).k
                 }
             };
-            ws.pair_shape.push(v);
-            ws.local_total[k] += amplitude * v;
-            ws.local_count[k] += 1;
+            shape_at[slot] = v;
+            total += amplitude[slot] * v;
+            count += 1;
         }
-    }
-    // The threshold per node, in place of the sum.
-    for k in 0..node_count {
-        ws.local_total[k] *= LOCAL_SHARE_DROPPED / f64::from(ws.local_count[k].max(1));
-    }
-    let mut pair = 0;
-    for (slot, &(lo, hi)) in ws.node_ranges.iter().enumerate() {
-        ws.line_run_start.push(ws.line_runs.len());
-        if hi < lo {
-            continue;
-        }
-        let bound = ws.bound_amplitude[slot];
-        let mut run: Option<usize> = None;
-        for k in lo..=hi {
-            let keep = bound * ws.pair_shape[pair] >= ws.local_total[k];
-            pair += 1;
-            match (keep, run) {
-                (true, None) => run = Some(k),
-                (false, Some(first)) => {
-                    ws.line_runs.push((first, k - 1));
-                    run = None;
+        let threshold = total * (LOCAL_SHARE_DROPPED / f64::from(count.max(1)));
+        for slot in first..end {
+            let (lo, hi) = ws.node_ranges[slot];
+            if k < lo || k > hi {
+                continue;
+            }
+            let keep = ws.bound_amplitude[slot] * shape_at[slot] >= threshold;
+            match (keep, open[slot]) {
+                (true, usize::MAX) => open[slot] = k,
+                (false, from) if from != usize::MAX => {
+                    ws.closed_runs.push((slot, from, k - 1));
+                    open[slot] = usize::MAX;
                 }
                 _ => {}
             }
         }
-        if let Some(first) = run {
-            ws.line_runs.push((first, hi));
+    }
+    for (slot, from) in open.iter().enumerate().take(width) {
+        if *from != usize::MAX {
+            ws.closed_runs.push((slot, *from, ws.node_ranges[slot].1));
         }
     }
-    ws.line_run_start.push(ws.line_runs.len());
+    // Grouped by line, each line's runs in node order (a line's runs close in that order).
+    let mut per_line = [0usize; 2 * MAX_ORDER + 2];
+    for &(slot, _, _) in &ws.closed_runs {
+        per_line[slot + 1] += 1;
+    }
+    for slot in 0..width {
+        per_line[slot + 1] += per_line[slot];
+    }
+    ws.line_run_start.extend_from_slice(&per_line[..=width]);
+    ws.line_runs.resize(ws.closed_runs.len(), (0, 0));
+    let mut next = per_line;
+    for &(slot, from, to) in &ws.closed_runs {
+        ws.line_runs[next[slot]] = (from, to);
+        next[slot] += 1;
+    }
 }
 
 /// Cuts the intervals under the lines into segments: each as long as the model at `p` stays
@@ -2604,7 +2621,9 @@ fn reference_noise_uncertainty(
                 q += l[j] * q_node[slot];
                 level += l[j] * ws.node_level[slot];
             }
-            per_point[i] = q * c * p0 / (level / c).exp();
+            // 1 / M from the level in dB by the branch-free 10^(L/10) (to 1e-8, far below what an
+            // uncertainty needs): the library `exp` was a sixth of this term's time.
+            per_point[i] = q * c * p0 * db_to_mw(-level);
         }
     }
     let table = BesselTable::get();
