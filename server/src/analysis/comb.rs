@@ -40,15 +40,18 @@ pub(crate) fn milliwatts(dbm: f64) -> f64 {
     let shifted = y + ROUNDING;
     let n = shifted - ROUNDING;
     let t = (y - n) * std::f64::consts::LN_2;
-    let mut p = 1.0 / 40320.0;
-    p = p * t + 1.0 / 5040.0;
-    p = p * t + 1.0 / 720.0;
-    p = p * t + 1.0 / 120.0;
-    p = p * t + 1.0 / 24.0;
-    p = p * t + 1.0 / 6.0;
-    p = p * t + 0.5;
-    p = p * t + 1.0;
-    p = p * t + 1.0;
+    // Estrin's scheme: the pairs, then the pairs of pairs, are independent, so the polynomial
+    // takes four multiply-add steps one after the other instead of Horner's eight (on the
+    // baseline x86-64 target, without fused multiply-add, each step waits for the one before).
+    let t2 = t * t;
+    let t4 = t2 * t2;
+    let p01 = 1.0 + t;
+    let p23 = 0.5 + t * (1.0 / 6.0);
+    let p45 = 1.0 / 24.0 + t * (1.0 / 120.0);
+    let p67 = 1.0 / 720.0 + t * (1.0 / 5040.0);
+    let p03 = p01 + t2 * p23;
+    let p47 = p45 + t2 * p67;
+    let p = p03 + t4 * (p47 + t4 * (1.0 / 40320.0));
     // The low bits of `shifted` hold n; n + 1023 (between 26 and 2020 here) becomes the
     // exponent field of 2^n, and everything above it is shifted out.
     let scale = f64::from_bits(shifted.to_bits().wrapping_add(1023) << 52);
