@@ -663,7 +663,7 @@ impl LineShape {
         // with b3: each entry written once (adding each point to four entries in turn made every
         // step wait for the one before it through memory).
         let at = |m: usize| inner.get(m).copied().unwrap_or(0.0);
-        for (m, slot) in target.iter_mut().enumerate() {
+        let edge = |m: usize| {
             let mut v = b0 * at(m);
             if m >= 1 {
                 v += b1 * at(m - 1);
@@ -674,7 +674,20 @@ impl LineShape {
             if m >= 3 {
                 v += b3 * at(m - 3);
             }
+            v
+        };
+        // The entries whose four points all lie in the run, from windows of four (no bounds
+        // checks in the loop); the three at each end, where the run begins or ends, one by one.
+        let whole = inner.len().saturating_sub(3);
+        for (slot, w) in target[3..3 + whole].iter_mut().zip(inner.windows(4)) {
+            let mut v = b0 * w[3];
+            v += b1 * w[2];
+            v += b2 * w[1];
+            v += b3 * w[0];
             *slot += v;
+        }
+        for m in (0..3.min(target.len())).chain(3 + whole..target.len()) {
+            target[m] += edge(m);
         }
     }
 
