@@ -103,7 +103,9 @@ pub use vpi::{fit_v_pi, CarrierNull, DrivePoint, ExcludedPoint, VpiFit};
 /// tolerance (10 times until v6), and on those a beta more than 5 % from its start re-cuts them
 /// only when it stays there for a second step (3c680bc); 10^(L/10) is summed by Estrin's scheme
 /// and the reference-noise term takes 1/M from it (72b975c, 440c559), which moves every fit in
-/// its last digits. A parametric trace's beta moves by small fractions of its uncertainty; the
+/// its last digits; ln F moves by at most ln 10 per step (a Gauss-Newton step on a trace whose
+/// lines' wings cover every point threw it tens of nepers away, and the fit refused damped steps
+/// until one was small enough). A parametric trace's beta moves by small fractions of its uncertainty; the
 /// randomised study prints the same coverage, p95 and maximum with a few rows' medians and p95
 /// moved (README, "Measurement truth").
 pub const ANALYSIS_METHOD: &str = "bessel-comb-trace-fit+weighted-origin-line v7";
