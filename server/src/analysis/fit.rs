@@ -662,32 +662,28 @@ impl LineShape {
         // Entry m of the target takes point m with b0, m - 1 with b1, m - 2 with b2 and m - 3
         // with b3: each entry written once (adding each point to four entries in turn made every
         // step wait for the one before it through memory).
-        let at = |m: usize| inner.get(m).copied().unwrap_or(0.0);
-        let edge = |m: usize| {
-            let mut v = b0 * at(m);
-            if m >= 1 {
-                v += b1 * at(m - 1);
-            }
-            if m >= 2 {
-                v += b2 * at(m - 2);
-            }
-            if m >= 3 {
-                v += b3 * at(m - 3);
-            }
+        let entry = |p0: f64, p1: f64, p2: f64, p3: f64| {
+            let mut v = b0 * p0;
+            v += b1 * p1;
+            v += b2 * p2;
+            v += b3 * p3;
             v
         };
         // The entries whose four points all lie in the run, from windows of four (no bounds
-        // checks in the loop); the three at each end, where the run begins or ends, one by one.
+        // checks in the loop); the three at each end, where the run begins or ends, one by one
+        // with zeros for the points beyond it.
         let whole = inner.len().saturating_sub(3);
         for (slot, w) in target[3..3 + whole].iter_mut().zip(inner.windows(4)) {
-            let mut v = b0 * w[3];
-            v += b1 * w[2];
-            v += b2 * w[1];
-            v += b3 * w[0];
-            *slot += v;
+            *slot += entry(w[3], w[2], w[1], w[0]);
         }
+        let at = |m: usize, back: usize| {
+            m.checked_sub(back)
+                .and_then(|i| inner.get(i))
+                .copied()
+                .unwrap_or(0.0)
+        };
         for m in (0..3.min(target.len())).chain(3 + whole..target.len()) {
-            target[m] += edge(m);
+            target[m] += entry(at(m, 0), at(m, 1), at(m, 2), at(m, 3));
         }
     }
 
@@ -1171,26 +1167,27 @@ fn evaluate(
             let run = lo..hi + 1;
             let freq = &ws.node_freq[run.clone()];
             let s0 = &mut s0[run.clone()];
-            if jacobian && shape.kind == ShapeKind::Measured && prob.on_grid {
-                // A measured shape has no parameters: its three slopes are zero.
-                let line = shape.grid_line(prob.freq[0], centre);
+            if jacobian && shape.kind == ShapeKind::Measured {
+                // A measured shape has no parameters: its three slopes are zero. On the table's
+                // grid the line reads it at one fraction of a step for all its points
+                // ([`GridLine`]), else point by point.
                 let points = &ws.nodes[run.clone()];
                 let (s1, s2, s3) = (&mut s1[run.clone()], &mut s2[run.clone()], &mut s3[run]);
-                for k in 0..freq.len() {
-                    let (v, dv) = shape.grid_value(&line, points[k], freq[k] - centre);
+                let mut add = |k: usize, (v, dv): (f64, f64)| {
                     s0[k] += w * v;
                     s1[k] += dw_beta * v;
                     s2[k] += w * dv;
                     s3[k] += dw_a * v;
-                }
-            } else if jacobian && shape.kind == ShapeKind::Measured {
-                let (s1, s2, s3) = (&mut s1[run.clone()], &mut s2[run.clone()], &mut s3[run]);
-                for k in 0..freq.len() {
-                    let (v, dv) = shape.measured_value(freq[k] - centre);
-                    s0[k] += w * v;
-                    s1[k] += dw_beta * v;
-                    s2[k] += w * dv;
-                    s3[k] += dw_a * v;
+                };
+                if prob.on_grid {
+                    let line = shape.grid_line(prob.freq[0], centre);
+                    for k in 0..freq.len() {
+                        add(k, shape.grid_value(&line, points[k], freq[k] - centre));
+                    }
+                } else {
+                    for k in 0..freq.len() {
+                        add(k, shape.measured_value(freq[k] - centre));
+                    }
                 }
             } else if jacobian {
                 let (s1, s2, s3) = (
@@ -1368,6 +1365,7 @@ fn segment_sums<const Q: usize>(
             }
         }
         for pair in rows[..count].chunks(2) {
+            // (An odd last row is summed twice over, its second copy dropped.)
             let (r0, r1) = (pair[0], pair.get(1).copied());
             let mut acc0 = [0.0; NP];
             let mut acc1 = [0.0; NP];
@@ -2413,9 +2411,9 @@ fn fit_once(
             // and segments are set again for parameters close to the fitted ones; before that,
             // only when beta moved far from where they were set. On the coarse segments it must
             // stay far for two steps: a parametric shape's first steps, its width and mix still
-            // far off, may throw beta off by a tenth and back (a cut of its own, a sixth of the
-            // fit, on the benchmark's beta 1 trace), and the fine cut near the optimum follows
-            // anyway.
+            // far off, may throw beta off by a tenth and back (on the benchmark's beta 1 trace
+            // the cut made there and the four evaluations on it were 44 % of the fit's
+            // instructions), and the fine cut near the optimum follows anyway.
             let beta_far = (p[BETA] - p_start_beta).abs() > 0.05 * p_start_beta;
             let recut = !recut_near_optimum && step_in_uncertainties < RECUT_STEP;
             let rewindow = recut || (!rewindowed && beta_far && (beta_was_far || !prob.coarse));
