@@ -30,6 +30,8 @@ pub(crate) struct TableNoise {
     /// The table's peak entry and the half-width of the core read point by point.
     peak: usize,
     core: usize,
+    /// The reference's display noise, dB (one standard deviation).
+    display_noise_db: f64,
 }
 
 /// The window `(first, last)` of reference points whose x^2 K is averaged for table entry `i`, on
@@ -77,7 +79,13 @@ impl TableNoise {
             x_sq: offset_hz.map(|x| x * x).collect(),
             peak,
             core,
+            display_noise_db: sigma_db,
         }
+    }
+
+    /// The reference's display noise, dB.
+    pub(crate) fn display_noise_db(&self) -> f64 {
+        self.display_noise_db
     }
 
     /// The variance of beta from the reference's noise, given `sensitivity[j]`, the change of beta
