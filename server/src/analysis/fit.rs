@@ -2998,15 +2998,13 @@ mod tests {
         )
     }
 
-    /// The fitted beta and its statistical uncertainty with segments (the fast path) and with
-    /// every point a node (the exact sum); they must agree to 0.05 standard uncertainties.
-    /// Returns the exact fit.
-    fn assert_fast_matches_exact(
-        label: &str,
+    /// The fit of `trace` with segments (the fast path) and with every point a node (the exact
+    /// sum), from the same start.
+    fn fast_and_exact(
         trace: &Trace,
         spacing: Hz,
         shape: &LineShape,
-    ) -> WholeTraceFit {
+    ) -> (WholeTraceFit, WholeTraceFit) {
         let (start, comb) = start_for(trace, spacing);
         let fit = |tolerance: f64| {
             fit_trace_segmented(
@@ -3020,7 +3018,19 @@ mod tests {
             .unwrap()
             .0
         };
-        let (fast, exact) = (fit(SEGMENT_TOLERANCE_DB), fit(0.0));
+        (fit(SEGMENT_TOLERANCE_DB), fit(0.0))
+    }
+
+    /// The fitted beta and its statistical uncertainty with segments (the fast path) and with
+    /// every point a node (the exact sum); they must agree to 0.05 standard uncertainties.
+    /// Returns the exact fit.
+    fn assert_fast_matches_exact(
+        label: &str,
+        trace: &Trace,
+        spacing: Hz,
+        shape: &LineShape,
+    ) -> WholeTraceFit {
+        let (fast, exact) = fast_and_exact(trace, spacing, shape);
         let moved = (fast.modulation_index - exact.modulation_index).abs();
         assert!(
             moved <= 0.05 * exact.uncertainty_statistical,
@@ -3229,20 +3239,7 @@ mod tests {
         );
         for (seed, beta) in [0.4, 1.6, 3.4].into_iter().enumerate() {
             let trace = bench_like(beta, 40 + seed as u64, 0.15);
-            let (start, comb) = start_for(&trace, Hz(0.2e9));
-            let fit = |tolerance: f64| {
-                fit_trace_segmented(
-                    &trace,
-                    Hz(0.2e9),
-                    &shape,
-                    &start,
-                    comb.noise_sigma_db,
-                    tolerance,
-                )
-                .unwrap()
-                .0
-            };
-            let (fast, exact) = (fit(SEGMENT_TOLERANCE_DB), fit(0.0));
+            let (fast, exact) = fast_and_exact(&trace, Hz(0.2e9), &shape);
             let moved = (fast.modulation_index - exact.modulation_index).abs();
             assert!(
                 moved <= 0.25 * exact.uncertainty_reference,
