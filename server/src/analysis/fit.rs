@@ -1471,7 +1471,7 @@ const SEGMENT_TOLERANCE_DB: f64 = 0.001;
 /// of the noise instead, when that is looser than [`SEGMENT_TOLERANCE_DB`]. At 0.001 dB the
 /// benchmark's 1 GHz trace (0.15 dB of reference noise) needed 3,548 nodes for its 10,001
 /// points; at a tenth of the noise (0.015 dB) its fit took 48 % fewer instructions and beta moved
-/// by 0.02 of its uncertainty. The model between the nodes is then the quadratic through them,
+/// by 0.003 of its uncertainty. The model between the nodes is then the quadratic through them,
 /// and the reference-noise term (`reference_noise_uncertainty`) propagates the noise of the
 /// entries the model reads there, so the uncertainty is that of the fit as taken.
 const SEGMENT_TOLERANCE_REFERENCE_NOISE: f64 = 0.1;
