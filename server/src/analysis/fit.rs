@@ -2142,9 +2142,8 @@ fn best_parametric(
     // A pseudo-Voigt that settled on a real mix may stand for a true Voigt profile (a Gaussian
     // filter seen with a laser's Lorentzian line), which it follows only to about a percent of
     // the peak in the wings: the Voigt is fitted from it too, and the shape with the smaller
-    // residual kept.
-    // The Voigt is kept only when it describes the trace better, so its fit is given up as soon
-    // as it clearly cannot (see [`ABANDON_FACTOR`]).
+    // residual kept; the Voigt's fit is given up as soon as it clearly cannot be (see
+    // [`ABANDON_FACTOR`]).
     let voigt_start = match &best {
         Ok((fitted, model)) if is_mixed(model.shape.eta) => Some((
             LineShape::voigt_like(&model.shape),
@@ -2286,14 +2285,6 @@ fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
     // J_n^2 is flat there), so a step from a start far too high (the line-by-line estimate on
     // lines sitting on each other's Lorentzian wings) that overshot to the bound stayed there.
     trial[BETA] = trial[BETA].max(0.25 * p[BETA]);
-    // The floor moves by at most a factor of ten per step. Where the lines' wings cover every
-    // point, the floor hardly changes the model, its row of J^T J is small, and a Gauss-Newton
-    // step may throw it tens of nepers away: the benchmark's 1 MHz-laser trace, read with the
-    // Voigt profile from its pseudo-Voigt fit, had its first step put ln F at +1.8 from -16.6
-    // (the optimum is -13.7) with every other parameter near its optimum, and refused six
-    // damped steps, each a whole evaluation, before one was taken.
-    // (By comparisons, not `clamp`, which panics on a NaN bound: a step that is not a number
-    // stays one, and the trial is refused.)
     // A step that asks the floor to fall by more than half (d < -0.5 in ln F) is taken as the
     // step of a model linear in F, ln(1 + d), at least -ln 10: under the lines' wings the level
     // c ln(F + A) is nearly linear in F, and the Gauss-Newton step d in ln F moves F by F*/F - 1,
@@ -2303,6 +2294,14 @@ fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
     if delta[LN_FLOOR] < -FLOOR_FALL {
         trial[LN_FLOOR] = p[LN_FLOOR] + (1.0 + delta[LN_FLOOR]).max(0.1).ln();
     }
+    // The floor moves by at most a factor of ten per step. Where the lines' wings cover every
+    // point, the floor hardly changes the model, its row of J^T J is small, and a Gauss-Newton
+    // step may throw it tens of nepers away: the benchmark's 1 MHz-laser trace, read with the
+    // Voigt profile from its pseudo-Voigt fit, had its first step put ln F at +1.8 from -16.6
+    // (the optimum is -13.7) with every other parameter near its optimum, and refused six
+    // damped steps, each a whole evaluation, before one was taken.
+    // (By comparisons, not `clamp`, which panics on a NaN bound: a step that is not a number
+    // stays one, and the trial is refused.)
     let (floor_low, floor_high) = (p[LN_FLOOR] - FLOOR_STEP, p[LN_FLOOR] + FLOOR_STEP);
     if trial[LN_FLOOR] < floor_low {
         trial[LN_FLOOR] = floor_low;
@@ -2315,6 +2314,33 @@ fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
         trial[slot] = trial[slot].clamp(lo, hi);
     }
     trial
+}
+
+/// The points less the parameters (all of them, free or not) of `eval`, at least 1: the
+/// divisor of the variance per point while the fit runs.
+fn degrees_of_freedom(prob: &Problem, eval: &Evaluation) -> f64 {
+    (eval.points as f64 + prob.block_n - NP as f64).max(1.0)
+}
+
+/// The undamped (Gauss-Newton) step from `eval` at `p` within the bounds of [`stepped`], and the
+/// decrease of the sum of squares its quadratic model promises (the step dotted with -J^T r).
+fn undamped_step(
+    prob: &Problem,
+    eval: &Evaluation,
+    p: &[f64; NP],
+    shape0: &LineShape,
+) -> Option<([f64; NP], f64)> {
+    let neg: [f64; NP] = std::array::from_fn(|i| -eval.jtr[i]);
+    let mut undamped = eval.jtj;
+    for (i, row) in undamped.iter_mut().enumerate() {
+        row[i] += 1e-30;
+    }
+    let step = solve_within_bounds(&undamped, &neg, &prob.active, p, shape0)?;
+    let gain = (0..NP)
+        .filter(|&i| prob.active[i])
+        .map(|i| step[i] * neg[i])
+        .sum::<f64>();
+    Some((step, gain))
 }
 
 /// One fit of the comb model with the line shape `shape0` from `start`. With a finite
@@ -2404,20 +2430,8 @@ fn fit_once(
     // The reduced chi-squared at the minimum of the Gauss-Newton model from `eval`, for a fit
     // that must beat `keep_below`.
     let predicted_minimum = |prob: &Problem, p: &[f64; NP], eval: &Evaluation| -> f64 {
-        let neg: [f64; NP] = std::array::from_fn(|i| -eval.jtr[i]);
-        let mut undamped = eval.jtj;
-        for i in 0..NP {
-            undamped[i][i] += 1e-30;
-        }
-        let gain =
-            solve_within_bounds(&undamped, &neg, &prob.active, p, shape0).map_or(0.0, |step| {
-                (0..NP)
-                    .filter(|&i| prob.active[i])
-                    .map(|i| step[i] * neg[i])
-                    .sum::<f64>()
-            });
-        let dof = (eval.points as f64 + prob.block_n - NP as f64).max(1.0);
-        (eval.ssr - gain.max(0.0)) / dof / noise_variance
+        let gain = undamped_step(prob, eval, p, shape0).map_or(0.0, |(_, gain)| gain);
+        (eval.ssr - gain.max(0.0)) / degrees_of_freedom(prob, eval) / noise_variance
     };
     let give_up_above = ABANDON_FACTOR * keep_below;
     // The parameters at which the workspace holds `eval`'s line sums and gradients (`None` after
@@ -2491,7 +2505,7 @@ fn fit_once(
                     }
                 }
             }
-            let dof = (eval.points as f64 + prob.block_n - NP as f64).max(1.0);
+            let dof = degrees_of_freedom(&prob, &eval);
             let step_in_uncertainties = (norm / (trial_eval.ssr / dof).max(1e-300)).sqrt();
             p = trial;
             shape = trial_shape;
@@ -2534,7 +2548,7 @@ fn fit_once(
             // (On the fine segments only: the coarse ones' own error, up to COARSE_FACTOR times
             // the fine tolerance, may hold the residual far above the noise.)
             if give_up_above.is_finite() && !prob.coarse {
-                let dof = (eval.points as f64 + prob.block_n - NP as f64).max(1.0);
+                let dof = degrees_of_freedom(&prob, &eval);
                 if eval.ssr / dof / noise_variance > give_up_above
                     && predicted_minimum(&prob, &p, &eval) > give_up_above
                 {
@@ -2554,18 +2568,8 @@ fn fit_once(
                 // when it is under a twentieth of the standard uncertainties, the test above
                 // would stop the fit right after it, so it is taken without evaluating the
                 // model there (J^T J and the residual change by a negligible amount over it).
-                let neg: [f64; NP] = std::array::from_fn(|i| -eval.jtr[i]);
-                let mut undamped = eval.jtj;
-                for i in 0..NP {
-                    undamped[i][i] += 1e-30;
-                }
-                if let Some(next) = solve_within_bounds(&undamped, &neg, &prob.active, &p, shape0) {
-                    let norm: f64 = (0..NP)
-                        .filter(|&i| prob.active[i])
-                        .map(|i| next[i] * neg[i])
-                        .sum();
-                    let dof = (eval.points as f64 + prob.block_n - NP as f64).max(1.0);
-                    let variance = (eval.ssr / dof).max(1e-300);
+                if let Some((next, norm)) = undamped_step(&prob, &eval, &p, shape0) {
+                    let variance = (eval.ssr / degrees_of_freedom(&prob, &eval)).max(1e-300);
                     if norm >= 0.0 && norm / variance < 0.05 * 0.05 {
                         p = stepped(&p, &next, shape0);
                         shape = params_shape(shape0, &p);
@@ -2579,8 +2583,7 @@ fn fit_once(
             // chi-squared, the fit stands at the minimum of its quadratic model (beta within
             // about 0.03 of its uncertainty of it): further refusals, each a whole evaluation,
             // would only raise the damping until it stops.
-            let dof = (eval.points as f64 + prob.block_n - NP as f64).max(1.0);
-            let variance = (eval.ssr / dof).max(1e-300);
+            let variance = (eval.ssr / degrees_of_freedom(&prob, &eval)).max(1e-300);
             if prob.coarse {
                 // A step of under three standard uncertainties refused on the coarse segments:
                 // their own error (up to COARSE_FACTOR times the fine tolerance) is what stops
@@ -2604,17 +2607,7 @@ fn fit_once(
                     continue;
                 }
             }
-            let mut undamped = eval.jtj;
-            for i in 0..NP {
-                undamped[i][i] += 1e-30;
-            }
-            let promised =
-                solve_within_bounds(&undamped, &neg, &prob.active, &p, shape0).map(|step| {
-                    (0..NP)
-                        .filter(|&i| prob.active[i])
-                        .map(|i| step[i] * neg[i])
-                        .sum::<f64>()
-                });
+            let promised = undamped_step(&prob, &eval, &p, shape0).map(|(_, gain)| gain);
             lambda = match promised {
                 Some(gain) if gain / variance < 1e-3 => f64::INFINITY,
                 _ => lambda * 4.0,
