@@ -128,7 +128,7 @@ pub use vpi::{fit_v_pi, CarrierNull, DrivePoint, ExcludedPoint, VpiFit};
 /// too, from its second step on, when its residual and its Gauss-Newton model's minimum both
 /// stand above 1.5 times the pseudo-Voigt's on the same segments (`fit::ABANDON_FACTOR`,
 /// `fit::rival_ssr`). It can drop a Voigt that would have won only where the winners of the
-/// randomised study never stood (at most 1.22 times after their second step); the study prints
+/// randomised study never stood (at most 1.22 times after any step but their first); the study prints
 /// v9's table to the last digit, and the benchmark's 1 MHz-laser trace took 40 % fewer
 /// instructions.
 pub const ANALYSIS_METHOD: &str = "bessel-comb-trace-fit+weighted-origin-line v10";
