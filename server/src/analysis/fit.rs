@@ -2262,8 +2262,8 @@ fn bounds(p: &[f64; NP], slot: usize, shape0: &LineShape) -> (f64, f64) {
 /// - on the fine segments, times the rival's reduced chi-squared. On the benchmark's 1 MHz-laser
 ///   trace the Voigt started from the pseudo-Voigt's optimum (reduced chi-squared 1.013) stood at
 ///   2.57 (predicting 2.57) at its first point on the fine segments and ended there after eight
-///   evaluations. In the randomised study, of the 70 Voigt fits started from a pseudo-Voigt, the
-///   9 this gives up all ended at least 1.6 times above the pseudo-Voigt.
+///   evaluations. In the randomised study under v8, of the 70 Voigt fits started from a
+///   pseudo-Voigt, the 9 this gave up all ended at least 1.6 times above the pseudo-Voigt.
 /// - on the coarse segments, times the rival's sum of squares on the same segments
 ///   ([`rival_ssr`]), once the fit stands near the minimum its model predicts (its residual under
 ///   [`NEAR_MINIMUM`] times that minimum): the coarse segments' own error, up to
@@ -2365,9 +2365,9 @@ fn undamped_step(
 
 /// The sum of squares of `model` (another shape's fit to the same trace) on the segments in
 /// force, for comparing like with like on coarse segments (see [`ABANDON_FACTOR`]). The
-/// windows are those set for the fit's own shape: where the rival's lines reach further, the
-/// sum counts them short, which only raises the rival's residual and so never gives a fit up
-/// sooner.
+/// windows and runs are those set for the fit's own shape, so the rival's far wings are summed
+/// as far as the fit's reach, not its own (the Voigt's start is matched to the pseudo-Voigt's
+/// far wing); cut short, they take the rival away from its optimum and raise its residual.
 fn rival_ssr(prob: &Problem, model: &FittedModel, p: &[f64; NP], ws: &mut Workspace) -> f64 {
     let mut q = *p;
     q[BETA] = model.beta;
