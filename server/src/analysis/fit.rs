@@ -2363,12 +2363,24 @@ fn undamped_step(
     Some((step, gain))
 }
 
-/// The sum of squares of `model` (another shape's fit to the same trace) on the segments in
-/// force, for comparing like with like on coarse segments (see [`ABANDON_FACTOR`]). The
-/// windows and runs are those set for the fit's own shape, so the rival's far wings are summed
-/// as far as the fit's reach, not its own (the Voigt's start is matched to the pseudo-Voigt's
-/// far wing); cut short, they take the rival away from its optimum and raise its residual.
-fn rival_ssr(prob: &Problem, model: &FittedModel, p: &[f64; NP], ws: &mut Workspace) -> f64 {
+/// The sum of squares of the `rival`'s model (another shape's fit to the same trace) on the
+/// segments in force when they are coarse, for comparing like with like there (see
+/// [`ABANDON_FACTOR`]); `None` without a rival or on fine segments. The windows and runs are
+/// those set for the fit's own shape, so the rival's far wings are summed as far as the fit's
+/// reach, not its own (the Voigt's start is matched to the pseudo-Voigt's far wing); cut short,
+/// they take the rival away from its optimum and raise its residual. It overwrites the
+/// workspace's line sums: called right after the segments are cut, before the fit's own
+/// evaluation on them.
+fn rival_ssr(
+    prob: &Problem,
+    rival: Option<&Fitted>,
+    p: &[f64; NP],
+    ws: &mut Workspace,
+) -> Option<f64> {
+    let (_, model) = rival?;
+    if !prob.coarse {
+        return None;
+    }
     let mut q = *p;
     q[BETA] = model.beta;
     q[LN_P0] = model.p0_mw.ln();
@@ -2378,7 +2390,7 @@ fn rival_ssr(prob: &Problem, model: &FittedModel, p: &[f64; NP], ws: &mut Worksp
     // With the Jacobian, though only the sum is read: every other evaluation takes it, and a
     // second kind of call made the compiler keep the flag's tests in the fit's loops (0.3-0.6 %
     // more instructions on every benchmark trace, counted).
-    evaluate(prob, &model.shape, &q, ws, true).ssr
+    Some(evaluate(prob, &model.shape, &q, ws, true).ssr)
 }
 
 /// One fit of the comb model with the line shape `shape0` from `start`. With a `rival` (the fit
@@ -2456,12 +2468,7 @@ fn fit_once(
     };
 
     set_windows(&mut prob, shape0, &p, ws);
-    // The rival's sum of squares on the coarse segments in force (see [`ABANDON_FACTOR`]),
-    // computed before the fit's own evaluation there (it overwrites the workspace's line sums).
-    let mut rival_coarse_ssr = match rival {
-        Some((_, model)) if prob.coarse => Some(rival_ssr(&prob, model, &p, ws)),
-        _ => None,
-    };
+    let mut rival_coarse_ssr = rival_ssr(&prob, rival, &p, ws);
     let mut shape = params_shape(shape0, &p);
     prob.active = free_parameters(&base, &p);
     // Every free parameter is fitted from the first step: a parametric shape's width and mix are
@@ -2471,12 +2478,6 @@ fn fit_once(
     // between the lines were first put right in those two alone, about a fifth of the fit's
     // work on the simulated bench's trace).
     let mut eval = evaluate(&prob, &shape, &p, ws, true);
-    // The sum of squares at the minimum of the Gauss-Newton model from `eval`, for a fit that
-    // must beat a rival.
-    let predicted_minimum = |prob: &Problem, p: &[f64; NP], eval: &Evaluation| -> f64 {
-        let gain = undamped_step(prob, eval, p, shape0).map_or(0.0, |(_, gain)| gain);
-        eval.ssr - gain.max(0.0)
-    };
     // The parameters at which the workspace holds `eval`'s line sums and gradients (`None` after
     // a refused trial overwrote them).
     let mut workspace_at = Some(p);
@@ -2570,10 +2571,7 @@ fn fit_once(
                 set_windows(&mut prob, &shape, &p, ws);
                 rewindowed = true;
                 recut_near_optimum |= recut;
-                rival_coarse_ssr = match rival {
-                    Some((_, model)) if prob.coarse => Some(rival_ssr(&prob, model, &p, ws)),
-                    _ => None,
-                };
+                rival_coarse_ssr = rival_ssr(&prob, rival, &p, ws);
             }
             let active = free_parameters(&base, &p);
             eval = if rewindow {
@@ -2607,9 +2605,11 @@ fn fit_once(
                 )),
                 _ => None,
             };
-            if let Some((rival_ssr, segments, rival_kind)) = to_beat {
-                let bar = ABANDON_FACTOR * rival_ssr;
-                let predicted = predicted_minimum(&prob, &p, &eval);
+            if let Some((rival_sum, segments, rival_kind)) = to_beat {
+                let bar = ABANDON_FACTOR * rival_sum;
+                // The sum of squares at the minimum of the Gauss-Newton model from `eval`.
+                let gain = undamped_step(&prob, &eval, &p, shape0).map_or(0.0, |(_, gain)| gain);
+                let predicted = eval.ssr - gain.max(0.0);
                 let near_minimum = !prob.coarse || eval.ssr < NEAR_MINIMUM * predicted;
                 if eval.ssr > bar && predicted > bar && near_minimum {
                     return Err(AnalysisError::FitFailed(format!(
