@@ -77,8 +77,13 @@ fn pin_bind_port(config: &Path, port: u16) {
 
 impl Bench {
     pub async fn new(seed: u64) -> Bench {
+        Bench::with_scenario(Scenario::builtin().unwrap(), seed).await
+    }
+
+    /// A bench like [`Bench::new`] whose simulator plays `scenario`.
+    pub async fn with_scenario(scenario: Scenario, seed: u64) -> Bench {
         let dir = tempfile::tempdir().unwrap();
-        let sim = SimBench::new(Scenario::builtin().unwrap(), seed).with_time_factor(TIME_FACTOR);
+        let sim = SimBench::new(scenario, seed).with_time_factor(TIME_FACTOR);
         let server = SimServer::start(sim, SimServerConfig::any_free_ports())
             .await
             .unwrap();
