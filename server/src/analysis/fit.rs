@@ -2423,11 +2423,12 @@ fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
     } else if trial[LN_FLOOR] > floor_high {
         trial[LN_FLOOR] = floor_high;
     }
-    // Beta first: the residual AM's range depends on it.
     // A pseudo-Voigt's mix falls by at most a factor of four per step (see [`ETA_FALL`]).
     if shape0.kind == ShapeKind::PseudoVoigt && p[ETA] > PART_HELD {
         trial[ETA] = trial[ETA].max(ETA_FALL * p[ETA]);
     }
+    // Beta first: the residual AM's range depends on it; the mix before the wing level, whose
+    // range depends on it.
     for slot in [BETA, ASYM, ETA, LN_WIDTH] {
         let (lo, hi) = bounds(&trial, slot, shape0);
         trial[slot] = trial[slot].clamp(lo, hi);
