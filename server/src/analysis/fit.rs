@@ -2249,7 +2249,17 @@ fn wings_between_lines(
         .fold(0.0, f64::max)
         .max(1e-12);
     let p0 = start.strongest_line_peak_mw.max(1e-30) / strongest;
-    let gaussian = LineShape::pseudo_voigt(width_hz, width_hz, 0.0);
+    // The Gaussian as [`LineShape::eval`] computes it at mix 0, without building a shape (whose
+    // empty tables are allocations).
+    let inv_width_sq = 1.0 / (width_hz * width_hz);
+    let gaussian = |x: f64| {
+        let q = x * x * inv_width_sq;
+        if q < 58.0 {
+            db_to_mw(-4.0 * std::f64::consts::LN_2 * q * DB_PER_NEPER)
+        } else {
+            0.0
+        }
+    };
     let half = 0.05 * spacing;
     (-max_order..max_order).any(|n| {
         let mid = start.carrier_hz + (n as f64 + 0.5) * spacing;
@@ -2263,7 +2273,7 @@ fn wings_between_lines(
             + (n - 1..=n + 2)
                 .map(|k| {
                     p0 * table.power(k, start.beta)
-                        * gaussian.eval(mid - start.carrier_hz - k as f64 * spacing).k
+                        * gaussian(mid - start.carrier_hz - k as f64 * spacing)
                 })
                 .sum::<f64>();
         seen - 10.0 * model.max(1e-300).log10() > WING_EXCESS_DB
