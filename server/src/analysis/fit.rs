@@ -469,31 +469,24 @@ impl LineShape {
                 let (ig, il) = (self.inv_width_sq, self.inv_width_l_sq);
                 let qg = x * x * ig;
                 let ql = x * x * il;
-                // exp(-4 ln2 qg) through the branch-free 10^(L/10) of `comb` (L in dB); zero
-                // beyond 1e-70, where its products with 1/w^2 would be subnormal numbers (each
-                // costing a hundred cycles) while adding nothing.
-                let g = if qg < 58.0 {
-                    db_to_mw(-4.0 * ln2 * qg * DB_PER_NEPER)
-                } else {
-                    0.0
-                };
+                let g = unit_gaussian(qg);
                 let l = 1.0 / (1.0 + 4.0 * ql);
                 let eta = self.eta;
                 // The Lorentzian part is fitted by its mix and its far wings' level A = eta w_L^2
                 // ([`wing_level`]): at a fixed A, w_L^2 = A / eta moves with eta (above
-                // [`PART_HELD`]), so dK/d(eta) takes -1/2 dK_L/d(ln w_L), and dK/d(ln A) is
-                // half of eta dL/d(ln w_L) = eta L^2 8 x^2 / w_L^2.
-                let wing_slope = 4.0 * eta * l * l * ql;
+                // [`PART_HELD`]), so dK/d(eta) takes -1/2 dL/d(ln w_L) = -4 L^2 x^2 / w_L^2,
+                // and dK/d(ln A) is half of eta dL/d(ln w_L). (Without a second division.)
+                let half_slope_l = 4.0 * l * l * ql;
                 ShapeValue {
                     k: (1.0 - eta) * g + eta * l,
                     dx: (1.0 - eta) * g * (-8.0 * ln2 * x * ig) - eta * l * l * 8.0 * x * il,
                     dw: (1.0 - eta) * g * 8.0 * ln2 * qg,
                     de: if eta > PART_HELD {
-                        l - g - wing_slope / eta
+                        l - g - half_slope_l
                     } else {
                         l - g
                     },
-                    dl: wing_slope,
+                    dl: eta * half_slope_l,
                 }
             }
             ShapeKind::Voigt => self.voigt_value(x),
@@ -820,6 +813,18 @@ fn catmull_rom_coefficients(table: &[f64]) -> Vec<[f64; 4]> {
 #[inline]
 fn db_to_mw(db: f64) -> f64 {
     super::comb::milliwatts(db)
+}
+
+/// The unit-peak Gaussian exp(-4 ln2 q) at q = x^2 / w^2 (w its full width), through the
+/// branch-free 10^(L/10) of `comb` (L in dB); zero beyond 1e-70, where its products with 1/w^2
+/// would be subnormal numbers (each costing a hundred cycles) while adding nothing.
+#[inline(always)]
+fn unit_gaussian(q: f64) -> f64 {
+    if q < 58.0 {
+        db_to_mw(-4.0 * std::f64::consts::LN_2 * q * DB_PER_NEPER)
+    } else {
+        0.0
+    }
 }
 
 /// Where the fit starts.
@@ -2210,6 +2215,17 @@ fn mirrored_across_zero(beta: f64, max_order: i32) -> Option<f64> {
         .map(|z| 2.0 * z - beta)
 }
 
+/// The start's P0 (mW): the strongest line's peak over the strongest J_n(beta)^2 of the orders
+/// up to `max_order`.
+fn start_p0(start: &FitStart, max_order: i32) -> f64 {
+    let table = BesselTable::get();
+    let strongest = (-max_order..=max_order)
+        .map(|n| table.power(n, start.beta))
+        .fold(0.0, f64::max)
+        .max(1e-12);
+    start.strongest_line_peak_mw.max(1e-30) / strongest
+}
+
 /// The Lorentzian fraction a pseudo-Voigt fit starts from, at least, when the trace shows wings
 /// between its lines ([`wings_between_lines`]); without them it starts from the shape's own (0
 /// from the line-by-line start). Until v10 of [`super::ANALYSIS_METHOD`] every pseudo-Voigt
@@ -2229,9 +2245,9 @@ const WING_EXCESS_DB: f64 = 3.0;
 /// fine step did so and was refused four times (13 iterations instead of 11).
 const ETA_FALL: f64 = 0.25;
 
-/// Whether the trace stands more than [`WING_EXCESS_DB`] above the start's model with Gaussian
-/// lines of full width `width_hz` (the floor, and the Gaussian tails of the two lines on either
-/// side) midway between some two neighbouring lines: the mean, in dB, of the points within a
+/// Whether the trace stands more than [`WING_EXCESS_DB`] above the start's model (P0 `p0`) with
+/// Gaussian lines of full width `width_hz` (the floor, and the Gaussian tails of the two lines
+/// on either side) midway between some two neighbouring lines: the mean, in dB, of the points within a
 /// twentieth of the spacing of the midpoint. Lorentzian wings that lift the level between the
 /// lines show there; a floor read between the lines does not, as the start's floor is that
 /// level.
@@ -2240,26 +2256,13 @@ fn wings_between_lines(
     level: &[f64],
     spacing: f64,
     start: &FitStart,
-    max_order: i32,
+    p0: f64,
     width_hz: f64,
+    max_order: i32,
 ) -> bool {
     let table = BesselTable::get();
-    let strongest = (-max_order..=max_order)
-        .map(|n| table.power(n, start.beta))
-        .fold(0.0, f64::max)
-        .max(1e-12);
-    let p0 = start.strongest_line_peak_mw.max(1e-30) / strongest;
-    // The Gaussian as [`LineShape::eval`] computes it at mix 0, without building a shape (whose
-    // empty tables are allocations).
     let inv_width_sq = 1.0 / (width_hz * width_hz);
-    let gaussian = |x: f64| {
-        let q = x * x * inv_width_sq;
-        if q < 58.0 {
-            db_to_mw(-4.0 * std::f64::consts::LN_2 * q * DB_PER_NEPER)
-        } else {
-            0.0
-        }
-    };
+    let gaussian = |x: f64| unit_gaussian(x * x * inv_width_sq);
     let half = 0.05 * spacing;
     (-max_order..max_order).any(|n| {
         let mid = start.carrier_hz + (n as f64 + 0.5) * spacing;
@@ -2451,14 +2454,16 @@ fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
         // end), and that fit took 16 iterations instead of 7.
         let (lo, hi) = bounds(&trial, LN_WIDTH_L, shape0);
         let (narrowest, widest) = lorentzian_width_range(shape0);
-        if trial[LN_WIDTH_L] < lo {
-            trial[ETA] = (trial[LN_WIDTH_L] - 2.0 * narrowest.ln())
-                .exp()
-                .clamp(PART_HELD, 1.0);
-        } else if trial[LN_WIDTH_L] > hi {
-            trial[ETA] = (trial[LN_WIDTH_L] - 2.0 * widest.ln())
-                .exp()
-                .clamp(PART_HELD, 1.0);
+        let level = trial[LN_WIDTH_L];
+        let at_end = if level < lo {
+            Some(narrowest)
+        } else if level > hi {
+            Some(widest)
+        } else {
+            None
+        };
+        if let Some(width) = at_end {
+            trial[ETA] = (level - 2.0 * width.ln()).exp().clamp(PART_HELD, 1.0);
         }
     }
     let (lo, hi) = bounds(&trial, LN_WIDTH_L, shape0);
@@ -2570,14 +2575,10 @@ fn fit_once(
         coarse: segment_tolerance_db > 0.0 && parametric,
         on_grid: shape0.on_grid_of(freq),
     };
-    let table = BesselTable::get();
-    let strongest = (-max_order..=max_order)
-        .map(|n| table.power(n, start.beta))
-        .fold(0.0, f64::max)
-        .max(1e-12);
+    let p0_start = start_p0(start, max_order);
     let mut p = [0.0; NP];
     p[BETA] = start.beta.max(1e-4);
-    p[LN_P0] = (start.strongest_line_peak_mw.max(1e-30) / strongest).ln();
+    p[LN_P0] = p0_start.ln();
     p[CENTRE] = 0.0;
     // A measured shape's reference shows the analyzer's floor under no line's wings, while the
     // floor read between the comb's lines may hold their wings (tens of dB above it on a laser's
@@ -2592,7 +2593,7 @@ fn fit_once(
     p[LN_WIDTH] = shape0.width_hz.max(1e-3).ln();
     p[ETA] = if shape0.kind == ShapeKind::PseudoVoigt {
         if shape0.eta < LORENTZIAN_START
-            && wings_between_lines(freq, level, fm, start, max_order, shape0.width_hz)
+            && wings_between_lines(freq, level, fm, start, p0_start, shape0.width_hz, max_order)
         {
             LORENTZIAN_START
         } else {
@@ -3703,8 +3704,9 @@ mod tests {
                 trace.power_dbm(),
                 0.2e9,
                 &start,
-                10,
+                start_p0(&start, 10),
                 comb.resolution_bandwidth_hz,
+                10,
             );
             assert_eq!(seen, expected, "laser line {linewidth} Hz wide");
         }

@@ -139,5 +139,7 @@ pub use vpi::{fit_v_pi, CarrierNull, DrivePoint, ExcludedPoint, VpiFit};
 /// instead of the wing level; it starts from mix 0 unless the trace stands 3 dB above a
 /// Gaussian start midway between its lines (`fit::wings_between_lines`). In the randomised
 /// study the pseudo-Voigt fits' iterations fell by 19 % and those run to the 40-iteration limit
-/// from 44 to 24; its table moved within its own scatter (README, "Measurement truth").
+/// from 44 to 24; more of its table's figures moved worse than better, each by what one or two
+/// of its 311 traces move (README, "Measurement truth"), the repeated draws' coverage rose to
+/// 99.4 % (99.3 %), and the demo's V_pi at 10-20 GHz came within 0.031 % of the scenario's.
 pub const ANALYSIS_METHOD: &str = "bessel-comb-trace-fit+weighted-origin-line v11";
