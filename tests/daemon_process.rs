@@ -114,7 +114,8 @@ fn serves_health_and_stops_cleanly_on_sigterm() {
 /// simulated bench at 20 GHz the analyzer's reference trace is too coarse for the measured line
 /// shape, so a parametric shape is fitted; with a laser line 3 MHz wide (the built-in scenario's
 /// is 50 kHz) that shape is a real Gaussian-Lorentzian mix, whose stated line-shape term (1 % of
-/// beta, scaled by 0.3 / beta) makes every point there carry `index_not_within_one_percent`.
+/// beta up to beta 0.3, falling as 0.3 / beta above) makes every point there carry
+/// `index_not_within_one_percent`.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_warning_is_logged_once_per_frequency_and_stored_with_every_point() {
     let mut scenario = halfwave_drivers::sim::Scenario::builtin().unwrap();
