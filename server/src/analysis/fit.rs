@@ -2477,6 +2477,21 @@ fn degrees_of_freedom(prob: &Problem, eval: &Evaluation) -> f64 {
     (eval.points as f64 + prob.block_n - NP as f64).max(1.0)
 }
 
+/// delta^T M delta over the `active` parameters: with M = J^T J, a step's squared length in
+/// standard uncertainties once divided by the variance per point.
+#[allow(clippy::needless_range_loop)]
+fn quadratic_norm(delta: &[f64; NP], m: &[[f64; NP]; NP], active: &[bool; NP]) -> f64 {
+    let mut norm = 0.0;
+    for i in 0..NP {
+        for j in 0..NP {
+            if active[i] && active[j] {
+                norm += delta[i] * m[i][j] * delta[j];
+            }
+        }
+    }
+    norm
+}
+
 /// The undamped (Gauss-Newton) step from `eval` at `p` within the bounds of [`stepped`], and the
 /// decrease of the sum of squares its quadratic model promises (the step dotted with -J^T r).
 fn undamped_step(
@@ -2682,14 +2697,7 @@ fn fit_once(
             let gain = (eval.ssr - trial_eval.ssr) / eval.ssr.max(1e-300);
             // The step's length in standard uncertainties of the parameters (its Mahalanobis
             // norm against the covariance s^2 (J^T J)^-1): delta^T J^T J delta / s^2.
-            let mut norm = 0.0;
-            for i in 0..NP {
-                for j in 0..NP {
-                    if prob.active[i] && prob.active[j] {
-                        norm += delta[i] * eval.jtj[i][j] * delta[j];
-                    }
-                }
-            }
+            let norm = quadratic_norm(&delta, &eval.jtj, &prob.active);
             let dof = degrees_of_freedom(&prob, &eval);
             let step_in_uncertainties = (norm / (trial_eval.ssr / dof).max(1e-300)).sqrt();
             p = trial;
@@ -2789,14 +2797,7 @@ fn fit_once(
                 // A step of under three standard uncertainties refused on the coarse segments:
                 // their own error (up to COARSE_FACTOR times the fine tolerance) is what stops
                 // the fit here, so it goes on from here on the fine ones.
-                let mut norm = 0.0;
-                for i in 0..NP {
-                    for j in 0..NP {
-                        if prob.active[i] && prob.active[j] {
-                            norm += delta[i] * eval.jtj[i][j] * delta[j];
-                        }
-                    }
-                }
+                let norm = quadratic_norm(&delta, &eval.jtj, &prob.active);
                 if norm / variance < 9.0 {
                     prob.coarse = false;
                     set_windows(&mut prob, &shape, &p, ws);
