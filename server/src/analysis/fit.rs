@@ -2517,11 +2517,9 @@ fn damp_reversal(
     active: &[bool; NP],
 ) -> [f64; NP] {
     let length = quadratic_norm(last, m, active);
-    if !(length > 0.0) {
-        return delta;
-    }
     let rho = -bilinear(&delta, m, last, active) / length;
-    if rho > REVERSAL {
+    // (A last step of no length, or not a number, gives no rho and no change.)
+    if length > 0.0 && rho > REVERSAL {
         let scale = 1.0 / (1.0 + rho.min(1.0));
         delta.map(|d| d * scale)
     } else {
