@@ -186,7 +186,8 @@ async fn follow(
         // No progress bar off a terminal: one line, so that a log or a script's output shows
         // what the command waits for.
         eprintln!(
-            "run {run_id} is {}; following it until it ends (Ctrl-C stops following, not the run)",
+            "run {run_id} (state {} when asked): following it until it ends (Ctrl-C stops \
+             following, not the run)",
             run.summary.state
         );
     }

@@ -207,8 +207,9 @@ pub enum Command {
     Acknowledge(benches::AcknowledgeArgs),
     #[command(flatten)]
     Pins(pin::PinCommand),
-    /// Drive chain from Touchstone files: `chain cascade` prints the gain, `chain import` stores
-    /// it as a chain calibration version.
+    /// Drive-chain calibrations: `chain upload` stores a CSV table, `chain import` cascades
+    /// Touchstone files and stores them (`chain cascade` only prints the gain), `chain list` the
+    /// stored versions, `chain calibrate` measures it with the bench's power sensor.
     #[command(subcommand)]
     Chain(chain::ChainCommand),
     /// V_pi's uncertainty budget per frequency of a run (fit, drive chain, generator level; GUM).
