@@ -2478,9 +2478,9 @@ fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
     if shape0.kind == ShapeKind::PseudoVoigt && trial[ETA] > LORENTZIAN_HELD {
         // A mix that would put the Lorentzian width out of its range at the step's wing level
         // is moved instead of that level (the better determined of the two): the mix whose
-        // D = e^A / w_L^2 at the range's end ([`wing_weight`]). Clamping the level instead raised the wings 45 times on the
-        // synthetic beta 1 trace's first step (the mix from 0.02 to 0.91 with w_L at its lower
-        // end), and that fit took 16 iterations instead of 7.
+        // D = e^A / w_L^2 at the range's end ([`wing_weight`]). Clamping the level instead
+        // raised the wings 45 times on the synthetic beta 1 trace's first step (the mix from
+        // 0.02 to 0.91 with w_L at its lower end), and that fit took 16 iterations instead of 7.
         let (lo, hi) = bounds(&trial, LN_WIDTH_L, shape0);
         let (narrowest, widest) = lorentzian_width_range(shape0);
         let level = trial[LN_WIDTH_L];
