@@ -488,7 +488,7 @@ async fn submit_follows_a_run_to_completion_and_export_has_unit_columns() {
     assert!(!bench.sim.rf_output_on(), "RF is off after the run");
     // Off a terminal there is no progress bar: one line says what the command waits for.
     assert!(
-        stderr(&submitted).contains(&format!("run {run_id} is "))
+        stderr(&submitted).contains(&format!("run {run_id} (state "))
             && stderr(&submitted).contains("following it until it ends"),
         "{}",
         stderr(&submitted)
