@@ -93,8 +93,8 @@ const LN_FLOOR: usize = 3;
 const ASYM: usize = 4;
 const LN_WIDTH: usize = 5;
 const ETA: usize = 6;
-/// The Voigt's ln of its Lorentzian width; the pseudo-Voigt's ln of its far wings' level
-/// eta w_L^2 ([`wing_level`]).
+/// The Voigt's ln of its Lorentzian width; the pseudo-Voigt's level of its far wings,
+/// ln(D w_L^2) with D about eta ([`wing_level`]).
 const LN_WIDTH_L: usize = 7;
 const NP: usize = 8;
 
@@ -124,7 +124,8 @@ pub struct LineShape {
     /// Pseudo-Voigt Lorentzian fraction of the peak, 0..1.
     eta: f64,
     /// Pseudo-Voigt: (eta / [`wing_weight`](eta))^2, the share of the Lorentzian width's slope
-    /// that its slope in the mix takes at a fixed wing level (see `eval`), kept with the mix.
+    /// that its slope in the mix takes at a fixed wing level (see `eval`), kept with the mix so
+    /// that `eval`, the fit's innermost loop, does not divide for it.
     wing_slope_share: f64,
     /// Measured: K at x0 + j h. The measured tables are shared (`Arc`), so that the fitted
     /// model returned with every fit does not copy them.
@@ -1149,6 +1150,13 @@ fn wing_level(eta: f64, lorentzian_width_hz: f64) -> f64 {
 /// 7e-4) settled there, stepping across the corner and back for 24-41 iterations.
 fn wing_weight(eta: f64) -> f64 {
     eta.hypot(LORENTZIAN_HELD)
+}
+
+/// The mix whose [`wing_weight`] is `weight` (0 for a weight under LORENTZIAN_HELD's).
+fn mix_of_weight(weight: f64) -> f64 {
+    (weight * weight - LORENTZIAN_HELD * LORENTZIAN_HELD)
+        .max(0.0)
+        .sqrt()
 }
 
 /// (eta / D)^2 with D = [`wing_weight`](eta): see [`LineShape::eval`].
@@ -2492,11 +2500,8 @@ fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
             None
         };
         if let Some(width) = at_end {
-            let weight = (level - 2.0 * width.ln()).exp();
-            trial[ETA] = (weight * weight - LORENTZIAN_HELD * LORENTZIAN_HELD)
-                .max(0.0)
-                .sqrt()
-                .clamp(LORENTZIAN_HELD, 1.0);
+            trial[ETA] =
+                mix_of_weight((level - 2.0 * width.ln()).exp()).clamp(LORENTZIAN_HELD, 1.0);
         }
     }
     let (lo, hi) = bounds(&trial, LN_WIDTH_L, shape0);
