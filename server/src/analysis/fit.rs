@@ -1431,24 +1431,18 @@ fn segment_sums<const Q: usize>(
             }
         }
         for pair in rows[..count].chunks(2) {
-            // (An odd last row is summed twice over, its second copy dropped.)
+            // (An odd last row is summed twice over, its second copy dropped.) Only the columns
+            // from the pair's first row on: `assemble` copies the upper triangle into the lower.
             let (r0, r1) = (pair[0], pair.get(1).copied());
-            let mut acc0 = [0.0; NP];
-            let mut acc1 = [0.0; NP];
-            let (mut jr0, mut jr1) = (0.0, 0.0);
-            let r1_slot = r1.unwrap_or(r0);
-            for k in 0..node_count {
-                let d = &ws.node_gradient[k];
-                let (v0, v1) = (d[r0], d[r1_slot]);
-                let r = ws.node_r[k];
-                jr0 += v0 * r;
-                jr1 += v1 * r;
-                let ek = &ws.node_e[k];
-                for col in 0..Q {
-                    acc0[col] += v0 * ek[col];
-                    acc1[col] += v1 * ek[col];
-                }
-            }
+            let (acc0, acc1, jr0, jr1) = match r0 {
+                0 => row_pair_sums::<0, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
+                1 => row_pair_sums::<1, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
+                2 => row_pair_sums::<2, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
+                3 => row_pair_sums::<3, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
+                4 => row_pair_sums::<4, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
+                5 => row_pair_sums::<5, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
+                _ => row_pair_sums::<6, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
+            };
             e.jtr[r0] = jr0;
             e.jtj[r0] = acc0;
             if let Some(r1) = r1 {
@@ -1457,6 +1451,35 @@ fn segment_sums<const Q: usize>(
             }
         }
     }
+}
+
+/// Rows `r0` and `r1` of J^T J (columns `FROM..Q`, `FROM` at most `r0`; the others 0) and their
+/// entries of J^T r, summed over the nodes from the gradients and E left by [`segment_sums`]; the
+/// column range a constant, so that both rows' sums stay in registers.
+#[inline(always)]
+#[allow(clippy::needless_range_loop)]
+fn row_pair_sums<const FROM: usize, const Q: usize>(
+    ws: &Workspace,
+    node_count: usize,
+    r0: usize,
+    r1: usize,
+) -> ([f64; NP], [f64; NP], f64, f64) {
+    let mut acc0 = [0.0; NP];
+    let mut acc1 = [0.0; NP];
+    let (mut jr0, mut jr1) = (0.0, 0.0);
+    for k in 0..node_count {
+        let d = &ws.node_gradient[k];
+        let (v0, v1) = (d[r0], d[r1]);
+        let r = ws.node_r[k];
+        jr0 += v0 * r;
+        jr1 += v1 * r;
+        let ek = &ws.node_e[k];
+        for col in FROM..Q {
+            acc0[col] += v0 * ek[col];
+            acc1[col] += v1 * ek[col];
+        }
+    }
+    (acc0, acc1, jr0, jr1)
 }
 
 /// Solves the active part of `m x = b` by Cholesky; `None` when not positive definite.
