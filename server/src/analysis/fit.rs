@@ -1863,14 +1863,19 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     rows.clear();
     let mut point_shape = std::mem::take(&mut ws.point_shape);
     point_shape.clear();
+    // The slots' bounds of the last point asked for: the cut asks for points near each other,
+    // so each bound is found by walking from the last one (a step or none) rather than by a
+    // binary search, whose branches the processor cannot predict.
+    let (mut first_hint, mut end_hint) = (0, 0);
     let mut level_at = |i: usize| -> f64 {
         if point_row[i] != u32::MAX {
             return rows[point_row[i] as usize].level;
         }
         let f = prob.freq[i];
         let mut m = floor;
-        let first = reach_end.partition_point(|end| *end < i);
-        let end = reach_start.partition_point(|start| *start <= i).max(first);
+        first_hint = partition_from(reach_end, first_hint, |end| end < i);
+        end_hint = partition_from(reach_start, end_hint, |start| start <= i);
+        let (first, end) = (first_hint, end_hint.max(first_hint));
         let start = point_shape.len();
         point_shape.extend((first..end).map(|slot| {
             let (lo, hi) = ranges[slot];
@@ -1984,6 +1989,20 @@ fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Works
     ws.shape_rows = rows;
     ws.point_row = point_row;
     ws.point_shape = point_shape;
+}
+
+/// `slice.partition_point(pred)` (`pred` true on a first part of `slice`, false on the rest),
+/// found by walking from `hint`: a few steps when the answer lies near it.
+#[inline(always)]
+fn partition_from(slice: &[usize], hint: usize, pred: impl Fn(usize) -> bool) -> usize {
+    let mut k = hint.min(slice.len());
+    while k > 0 && !pred(slice[k - 1]) {
+        k -= 1;
+    }
+    while k < slice.len() && pred(slice[k]) {
+        k += 1;
+    }
+    k
 }
 
 /// The Lagrange basis of a segment's nodes (one, two or three): l_j(f), 1 at node j and 0 at the
