@@ -1434,14 +1434,15 @@ fn segment_sums<const Q: usize>(
             // (An odd last row is summed twice over, its second copy dropped.) Only the columns
             // from the pair's first row on: `assemble` copies the upper triangle into the lower.
             let (r0, r1) = (pair[0], pair.get(1).copied());
+            let r1_slot = r1.unwrap_or(r0);
             let (acc0, acc1, jr0, jr1) = match r0 {
-                0 => row_pair_sums::<0, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
-                1 => row_pair_sums::<1, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
-                2 => row_pair_sums::<2, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
-                3 => row_pair_sums::<3, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
-                4 => row_pair_sums::<4, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
-                5 => row_pair_sums::<5, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
-                _ => row_pair_sums::<6, Q>(ws, node_count, r0, r1.unwrap_or(r0)),
+                0 => row_pair_sums::<0, Q>(ws, node_count, r0, r1_slot),
+                1 => row_pair_sums::<1, Q>(ws, node_count, r0, r1_slot),
+                2 => row_pair_sums::<2, Q>(ws, node_count, r0, r1_slot),
+                3 => row_pair_sums::<3, Q>(ws, node_count, r0, r1_slot),
+                4 => row_pair_sums::<4, Q>(ws, node_count, r0, r1_slot),
+                5 => row_pair_sums::<5, Q>(ws, node_count, r0, r1_slot),
+                _ => row_pair_sums::<6, Q>(ws, node_count, r0, r1_slot),
             };
             e.jtr[r0] = jr0;
             e.jtj[r0] = acc0;
@@ -2387,29 +2388,13 @@ fn solve_within_bounds(
             continue;
         }
         let (lo, hi) = bounds(p, slot, shape0);
-        // On the bound up to rounding (the residual AM's bound moves with beta).
-        let margin = 1e-9 * (1.0 + p[slot].abs());
+        let margin = bound_margin(p[slot]);
         let pinned =
             (x[slot] < 0.0 && p[slot] <= lo + margin) || (x[slot] > 0.0 && p[slot] >= hi - margin);
         if pinned {
             held[slot] = false;
             any = true;
         }
-    }
-    // A mix at or under LORENTZIAN_HELD has its wing level held (see [`free_parameters`]); when
-    // its Lorentzian width stands at the narrowest end of its range there, a rise of the mix at
-    // that level would take the width under it, and [`stepped`] moves the mix back: the mix is
-    // held too. (Until v14 of [`super::ANALYSIS_METHOD`] the step was solved as if it rose, and
-    // the other parameters stepped by what they would take with it, refused every other time:
-    // 79 of the 136 fits at the iteration limit in the repeated draws stood there.)
-    if shape0.kind == ShapeKind::PseudoVoigt
-        && active[ETA]
-        && x[ETA] > 0.0
-        && p[ETA] <= LORENTZIAN_HELD
-        && p[LN_WIDTH_L] <= bounds(p, LN_WIDTH_L, shape0).0 + 1e-9 * (1.0 + p[LN_WIDTH_L].abs())
-    {
-        held[ETA] = false;
-        any = true;
     }
     if any {
         solve(m, b, &held)
@@ -2425,6 +2410,12 @@ fn lorentzian_width_range(shape0: &LineShape) -> (f64, f64) {
     (w * (-3.0_f64).exp(), w * 3.0_f64.exp())
 }
 
+/// How near a bound of [`bounds`] a parameter at `value` counts as standing on it: the bound up
+/// to rounding (the residual AM's bound moves with beta).
+fn bound_margin(value: f64) -> f64 {
+    1e-9 * (1.0 + value.abs())
+}
+
 /// The range [`stepped`] keeps parameter `slot` in, at the parameters `p`.
 fn bounds(p: &[f64; NP], slot: usize, shape0: &LineShape) -> (f64, f64) {
     match slot {
@@ -2435,6 +2426,21 @@ fn bounds(p: &[f64; NP], slot: usize, shape0: &LineShape) -> (f64, f64) {
         ASYM => {
             let a = p[BETA].min(0.5);
             (-a, a)
+        }
+        // A mix at or under LORENTZIAN_HELD has its wing level held (see [`free_parameters`]);
+        // when its Lorentzian width stands at the narrowest end of its range there, a rise of the
+        // mix at that level would take the width under it (`stepped` moves the mix back), so the
+        // mix cannot rise. (Until v14 of [`super::ANALYSIS_METHOD`] its range was 0-1 there too,
+        // so [`solve_within_bounds`] solved a step as if the mix rose, and the other parameters
+        // stepped by what they would take with it, refused every other time: 79 of the 136 fits
+        // at the iteration limit in the repeated draws stood there.)
+        ETA if shape0.kind == ShapeKind::PseudoVoigt
+            && p[ETA] <= LORENTZIAN_HELD
+            && p[LN_WIDTH_L] <= bounds(p, LN_WIDTH_L, shape0).0 + bound_margin(p[LN_WIDTH_L]) =>
+        {
+            // (`stepped` asks at its trial, whose mix may have stepped under 0: never a range
+            // that ends under its start.)
+            (0.0, p[ETA].max(0.0))
         }
         ETA => (0.0, 1.0),
         // Widths within a factor of 20 of the start: a part with little weight cannot run away
@@ -3671,6 +3677,11 @@ mod tests {
             solve_within_bounds(&m, &lower, &active, &p, &shape0).unwrap(),
             down
         );
+        // A step that takes the mix under 0 from there is clamped to 0, without a panic (the
+        // mix's range is asked at the trial, whose mix is then negative).
+        let mut fall = [0.0; NP];
+        fall[ETA] = -0.01;
+        assert_eq!(stepped(&p, &fall, &shape0)[ETA], 0.0);
     }
 
     #[test]

@@ -166,7 +166,8 @@ pub use vpi::{fit_v_pi, CarrierNull, DrivePoint, ExcludedPoint, VpiFit};
 ///
 /// v14: a pseudo-Voigt's mix at or under `fit::LORENTZIAN_HELD` (its wing level held) whose
 /// Lorentzian width stands at the narrowest end of its range is held in a step that would raise
-/// it (`fit::solve_within_bounds`): the mix could not rise there (`fit::stepped` moved it back),
+/// it (its range in `fit::bounds` ends there, and `fit::solve_within_bounds` holds a parameter
+/// that would step out of its range): the mix could not rise there (`fit::stepped` moved it back),
 /// yet the step was solved as if it did, and the other parameters stepped by what they would take
 /// with it, refused every other time, until the iteration limit. In the repeated draws the
 /// pseudo-Voigt fits at the limit fell from 136 to 58 (79 had stood there) and their iterations
