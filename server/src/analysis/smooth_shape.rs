@@ -3,12 +3,12 @@
 //! The reference trace shows the laser line through the analyzer with display noise on every
 //! point (a few percent of the level). Taken point by point as the line shape, that noise becomes
 //! part of the forward model: the model then changes from point to point at the 0.01 dB level, the
-//! fit's segments (`fit.rs`, where the model must be quadratic in dB to 0.002 dB) stay a few
-//! points long and every step visits every point. Here ln K is fitted instead, once per reference,
-//! with a cubic B-spline on knots a sixth of the line's half-maximum width apart over the core
-//! (|x| up to two widths) and growing geometrically beyond (each interval 1/12 of its distance
-//! from the centre): a Gaussian core (ln K quadratic) and a Lorentzian wing (ln K = c - 2 ln|x|)
-//! are both followed closely. The fit is least squares on the displayed levels in dB,
+//! fit's segments (`fit/segments.rs`, where the model must be quadratic in dB to 0.001 dB,
+//! `SEGMENT_TOLERANCE_DB`) stay a few points long and every step visits every point. Here ln K
+//! is fitted instead, once per reference, with a cubic B-spline on knots a sixth of the line's
+//! half-maximum width apart over the core (|x| up to two widths) and growing geometrically
+//! beyond (each interval 1/12 of its distance from the centre): a Gaussian core (ln K
+//! quadratic) and a Lorentzian wing (ln K = c - 2 ln|x|) are both followed closely. The fit is least squares on the displayed levels in dB,
 //! L_i = 10 log10(F + exp(S(x_i))), the same noise model as the whole-trace fit (display noise is
 //! a spread of the level in dB), so where a wing meets the floor F its points carry less weight
 //! instead of being cut off. A small penalty on the third differences of the coefficients (zero on
