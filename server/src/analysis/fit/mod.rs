@@ -37,6 +37,12 @@
 //! stated relative term ([`SHAPE_SYSTEMATIC_MEASURED`], [`SHAPE_SYSTEMATIC_PARAMETRIC`], Type B,
 //! clause 4.3) for what the shape model may get wrong; both are reported and combined in
 //! quadrature (clause 5.1.2, uncorrelated inputs).
+//!
+//! The modules: `line_shape` (K and its slopes), `segments` (the windows, each line's reach and
+//! the cut into segments), `model` (the residual and J^T J summed over the segments), `step`
+//! (one Levenberg-Marquardt step within the bounds), `iterate` (one shape's fit to its optimum,
+//! with its uncertainties) and `reference_noise_propagation`; this file holds the result types
+//! and [`fit_trace`], which chooses among the shapes and the starts.
 
 use super::bessel::{BesselTable, MAX_ORDER};
 use super::faddeeva::{self, VoigtCore};
