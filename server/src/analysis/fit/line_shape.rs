@@ -47,13 +47,13 @@ pub struct LineShape {
     pub(super) cubic: Arc<[[f64; 4]]>,
     /// Measured: for each j, the largest table value at or beyond j away from the centre (for
     /// the reach of a line).
-    pub(super) envelope: Arc<[f64]>,
+    envelope: Arc<[f64]>,
     /// Index of the table's peak.
-    pub(super) peak_index: usize,
+    peak_index: usize,
     /// Voigt: w(z) along Im z = y = gamma / (sigma sqrt 2) (with the profile's peak w(iy)), and
     /// 1 / (sigma sqrt 2).
     pub(super) voigt: Option<Arc<VoigtCore>>,
-    pub(super) voigt_inv_s: f64,
+    voigt_inv_s: f64,
     /// Measured point by point: how the reference's display noise sits in the table (see
     /// `reference_noise`); `None` for a smoothed or parametric shape.
     pub(super) table_noise: Option<Arc<TableNoise>>,
@@ -421,7 +421,7 @@ impl LineShape {
     /// sigma) by -z, d/d(ln gamma) by iy (and E by -y E' and y E'), so each slope is
     /// (Re(w'(z) dz) - K dE) / E.
     #[inline(always)]
-    pub(super) fn voigt_value(&self, x: f64) -> ShapeValue {
+    fn voigt_value(&self, x: f64) -> ShapeValue {
         let Some(core) = self.voigt.as_deref() else {
             return ShapeValue::default();
         };
@@ -683,15 +683,15 @@ impl LineShape {
 pub(super) struct GridLine {
     pub(super) offset: isize,
     /// 1, s, s^2, s^3.
-    pub(super) k_weights: [f64; 4],
+    k_weights: [f64; 4],
     /// 0, 1, 2 s, 3 s^2, each over the table step.
-    pub(super) slope_weights: [f64; 4],
+    slope_weights: [f64; 4],
 }
 
 /// The weights of the four table values p0..p3 (at j - 1..j + 2) in the Catmull-Rom cubic of
 /// interval j at fraction `s` of it (the same cubic as [`catmull_rom_coefficients`]).
 #[inline]
-pub(super) fn catmull_rom_weights(s: f64) -> [f64; 4] {
+fn catmull_rom_weights(s: f64) -> [f64; 4] {
     let (s2, s3) = (s * s, s * s * s);
     [
         0.5 * (-s + 2.0 * s2 - s3),
@@ -704,7 +704,7 @@ pub(super) fn catmull_rom_weights(s: f64) -> [f64; 4] {
 /// The Catmull-Rom cubic of every interval of `table` (one per entry; the last one is read at
 /// its start only), with zeros taken beyond both ends: for interval j through the values
 /// p0..p3 at j - 1..j + 2, K = p1 + s (c1 + s (c2 + s c3)).
-pub(super) fn catmull_rom_coefficients(table: &[f64]) -> Vec<[f64; 4]> {
+fn catmull_rom_coefficients(table: &[f64]) -> Vec<[f64; 4]> {
     let at = |i: isize| -> f64 {
         if i < 0 || i as usize >= table.len() {
             0.0

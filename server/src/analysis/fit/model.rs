@@ -222,7 +222,7 @@ pub(super) const LORENTZIAN_HELD: f64 = 1e-4;
 
 /// A Gaussian part of at most this share of the peak (eta at least 1 - PART_HELD) has its width
 /// held (see [`free_parameters`]).
-pub(super) const PART_HELD: f64 = 1e-3;
+const PART_HELD: f64 = 1e-3;
 
 pub(super) fn free_parameters(base: &[bool; NP], p: &[f64; NP]) -> [bool; NP] {
     let mut active = *base;
@@ -416,7 +416,7 @@ pub(super) fn assemble(
 /// from the levels and gradients at the nodes, with the gradients' first `Q` entries (the
 /// others zero).
 #[allow(clippy::needless_range_loop)]
-pub(super) fn segment_sums<const Q: usize>(
+fn segment_sums<const Q: usize>(
     prob: &Problem,
     ws: &mut Workspace,
     e: &mut Evaluation,
@@ -508,7 +508,7 @@ pub(super) fn segment_sums<const Q: usize>(
 /// column range a constant, so that both rows' sums stay in registers.
 #[inline(always)]
 #[allow(clippy::needless_range_loop)]
-pub(super) fn row_pair_sums<const FROM: usize, const Q: usize>(
+fn row_pair_sums<const FROM: usize, const Q: usize>(
     ws: &Workspace,
     node_count: usize,
     r0: usize,

@@ -35,7 +35,7 @@ pub(super) fn fine_tolerance_db(shape: &LineShape, segment_tolerance_db: f64) ->
     }
 }
 /// Longest segment, points.
-pub(super) const MAX_SEGMENT_POINTS: usize = 256;
+const MAX_SEGMENT_POINTS: usize = 256;
 
 /// Sets the point range of every line, the floor block and the segments (cut where the model
 /// at `p` is quadratic in dB within [`SEGMENT_TOLERANCE_DB`]) for the parameters `p`.
@@ -265,7 +265,7 @@ pub(super) fn limit_reach(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: 
 /// centre, so that no line centre lies inside a segment, where it could hide between the checked
 /// points (until v4 of [`super::ANALYSIS_METHOD`] half that distance, which cut 3-31 % more
 /// nodes on the benchmark traces for no gain the tests could see).
-pub(super) fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Workspace) {
+fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws: &mut Workspace) {
     let table = BesselTable::get();
     let nmax = prob.max_order;
     let p0 = p[LN_P0].exp();
@@ -455,7 +455,7 @@ pub(super) fn cut_segments(prob: &Problem, shape: &LineShape, p: &[f64; NP], ws:
 /// `slice.partition_point(pred)` (`pred` true on a first part of `slice`, false on the rest),
 /// found by walking from `hint`: a few steps when the answer lies near it.
 #[inline(always)]
-pub(super) fn partition_from(slice: &[usize], hint: usize, pred: impl Fn(usize) -> bool) -> usize {
+fn partition_from(slice: &[usize], hint: usize, pred: impl Fn(usize) -> bool) -> usize {
     let mut k = hint.min(slice.len());
     while k > 0 && !pred(slice[k - 1]) {
         k -= 1;

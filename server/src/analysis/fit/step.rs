@@ -112,7 +112,7 @@ pub(super) fn lorentzian_width_range(shape0: &LineShape) -> (f64, f64) {
 
 /// How near a bound of [`bounds`] a parameter at `value` counts as standing on it: the bound up
 /// to rounding (the residual AM's bound moves with beta).
-pub(super) fn bound_margin(value: f64) -> f64 {
+fn bound_margin(value: f64) -> f64 {
     1e-9 * (1.0 + value.abs())
 }
 
@@ -204,7 +204,7 @@ pub(super) const NEAR_MINIMUM: f64 = 1.25;
 pub(super) const FLOOR_FALL: f64 = 0.5;
 
 /// Largest change of ln F in one step: ln 10.
-pub(super) const FLOOR_STEP: f64 = std::f64::consts::LN_10;
+const FLOOR_STEP: f64 = std::f64::consts::LN_10;
 
 /// The parameters `p` moved by `delta`, kept where the model is physical (see [`bounds`]).
 pub(super) fn stepped(p: &[f64; NP], delta: &[f64; NP], shape0: &LineShape) -> [f64; NP] {
@@ -286,12 +286,7 @@ pub(super) fn quadratic_norm(delta: &[f64; NP], m: &[[f64; NP]; NP], active: &[b
 
 /// a^T M b over the `active` parameters.
 #[allow(clippy::needless_range_loop)]
-pub(super) fn bilinear(
-    a: &[f64; NP],
-    m: &[[f64; NP]; NP],
-    b: &[f64; NP],
-    active: &[bool; NP],
-) -> f64 {
+fn bilinear(a: &[f64; NP], m: &[[f64; NP]; NP], b: &[f64; NP], active: &[bool; NP]) -> f64 {
     let mut sum = 0.0;
     for i in 0..NP {
         for j in 0..NP {
