@@ -1,7 +1,24 @@
 //! One fit of the comb model with a given line shape, iterated to its optimum (or given up
 //! against a rival shape), and its result with uncertainties.
 
-use super::*;
+use super::line_shape::{LineShape, ShapeKind};
+use super::model::{
+    assemble, evaluate, free_parameters, params_shape, wing_level, Problem, Workspace,
+};
+use super::reference_noise_propagation::reference_noise_uncertainty;
+use super::segments::{fine_tolerance_db, set_windows};
+use super::step::{
+    damp_reversal, degrees_of_freedom, inverse_diagonal, quadratic_norm, solve_within_bounds,
+    stepped, undamped_step, ABANDON_FACTOR, NEAR_MINIMUM,
+};
+use super::{
+    is_mixed, start_p0, wings_between_lines, FitStart, Fitted, FittedModel, WholeTraceFit, ASYM,
+    BETA, CENTRE, ETA, LN_FLOOR, LN_P0, LN_WIDTH, LN_WIDTH_L, LORENTZIAN_START, MAX_ITERATIONS, NP,
+    RECUT_STEP, SHAPE_SYSTEMATIC_MEASURED, SHAPE_SYSTEMATIC_MIXED, SHAPE_SYSTEMATIC_PARAMETRIC,
+};
+use crate::analysis::bessel::MAX_ORDER;
+use crate::analysis::AnalysisError;
+use halfwave_units::{Hz, Trace};
 
 /// The sum of squares of the `rival`'s model (another shape's fit to the same trace) on the
 /// segments in force when they are coarse, for comparing like with like there (see

@@ -1,7 +1,14 @@
 //! The instrument line shape K: measured on the RF-off reference (a table read back by cubic
 //! interpolation), a pseudo-Voigt, or a Voigt profile, with its slopes in the fit's parameters.
 
-use super::*;
+use super::model::wing_slope_share;
+use super::DB_PER_NEPER;
+use crate::analysis::faddeeva::VoigtCore;
+use crate::analysis::reference_noise::{display_noise_db, table_window, TableNoise};
+use crate::analysis::{faddeeva, smooth_shape};
+use halfwave_units::Trace;
+use serde::Serialize;
+use std::sync::Arc;
 
 /// Which line shape the fit used.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]

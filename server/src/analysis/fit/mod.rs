@@ -44,16 +44,10 @@
 //! with its uncertainties) and `reference_noise_propagation`; this file holds the result types
 //! and [`fit_trace`], which chooses among the shapes and the starts.
 
-use super::bessel::{BesselTable, MAX_ORDER};
-use super::faddeeva::{self, VoigtCore};
-use super::reference_noise::{display_noise_db, table_window, TableNoise};
-use super::smooth_shape;
+use super::bessel::BesselTable;
 use super::AnalysisError;
 use halfwave_units::{Hz, Trace};
 use serde::Serialize;
-use std::borrow::Cow;
-use std::cell::RefCell;
-use std::sync::Arc;
 
 /// 10 / ln 10: a natural log times this is a level in dB.
 const DB_PER_NEPER: f64 = 4.342_944_819_032_518;
@@ -113,13 +107,11 @@ mod step;
 #[cfg(test)]
 mod tests;
 
-use iterate::*;
-use line_shape::*;
+use iterate::fit_once;
+use line_shape::unit_gaussian;
 pub use line_shape::{LineShape, ShapeKind};
-use model::*;
-use reference_noise_propagation::*;
-use segments::*;
-use step::*;
+use model::WORKSPACE;
+use segments::SEGMENT_TOLERANCE_DB;
 
 /// Where the fit starts.
 #[derive(Debug, Clone, Copy, PartialEq)]

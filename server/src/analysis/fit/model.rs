@@ -1,7 +1,13 @@
 //! The forward model evaluated over the trace: the thread's buffers, the problem a fit works on,
 //! the pseudo-Voigt's wing-level mapping, and the residual with J^T J summed segment by segment.
 
-use super::*;
+use super::line_shape::{LineShape, ShapeKind};
+use super::{
+    line_weight, ASYM, BETA, CENTRE, DB_PER_NEPER, ETA, LN_FLOOR, LN_P0, LN_WIDTH, LN_WIDTH_L, NP,
+};
+use crate::analysis::bessel::BesselTable;
+use std::borrow::Cow;
+use std::cell::RefCell;
 
 /// Buffers kept between fits on one thread, so that a sweep's traces reuse them.
 #[derive(Default)]

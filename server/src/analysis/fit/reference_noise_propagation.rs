@@ -1,7 +1,13 @@
 //! The RF-off reference's display noise, in a measured shape read point by point, carried
 //! through the fit to an uncertainty of beta.
 
-use super::*;
+use super::line_shape::{db_to_mw, LineShape};
+use super::model::{Evaluation, Problem, Workspace};
+use super::segments::Lagrange;
+use super::step::solve;
+use super::{line_weight, ASYM, BETA, CENTRE, DB_PER_NEPER, LN_P0, NP};
+use crate::analysis::bessel::BesselTable;
+use crate::analysis::reference_noise::TableNoise;
 
 /// The standard uncertainty of beta from the reference's display noise in a measured shape read
 /// point by point (see `reference_noise`). A change dT_j of table entry j changes the model's

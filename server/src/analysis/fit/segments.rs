@@ -1,7 +1,12 @@
 //! Where the model is evaluated: each line's window and reach, and the trace cut into segments
 //! on which the model is a quadratic through its nodes to within a tolerance in dB.
 
-use super::*;
+use super::line_shape::LineShape;
+use super::model::{Problem, Segment, ShapeRow, Workspace, COARSE_FACTOR};
+use super::{
+    line_weight, ASYM, BETA, CENTRE, CONTRIBUTION_FLOOR, DB_PER_NEPER, LN_FLOOR, LN_P0, NP,
+};
+use crate::analysis::bessel::{BesselTable, MAX_ORDER};
 
 /// Largest difference (dB) between the model and its quadratic through a segment's nodes,
 /// checked at the segment's quarter points when the segments are cut. Far below the display

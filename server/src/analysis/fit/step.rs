@@ -1,7 +1,9 @@
 //! One Levenberg-Marquardt step: the normal equations solved by Cholesky, parameters held on
 //! their bounds, the bounds themselves, and the step taken and damped.
 
-use super::*;
+use super::line_shape::{LineShape, ShapeKind};
+use super::model::{mix_of_weight, wing_level, Evaluation, Problem, LORENTZIAN_HELD};
+use super::{ASYM, BETA, ETA, ETA_FALL, LN_FLOOR, LN_WIDTH, LN_WIDTH_L, NP};
 
 /// Solves the active part of `m x = b` by Cholesky; `None` when not positive definite.
 #[allow(clippy::needless_range_loop)]

@@ -1,6 +1,7 @@
 //! Unit tests of the whole-trace fit.
 
 use super::*;
+use super::{iterate::*, line_shape::*, model::*, segments::*, step::*};
 use crate::analysis::comb::{measure_comb, MeasuredComb};
 use crate::analysis::modulation_index::{least_squares, FitData};
 use crate::analysis::synthetic::SyntheticComb;
