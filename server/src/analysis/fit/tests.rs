@@ -559,8 +559,9 @@ fn a_fit_that_cannot_beat_the_one_before_is_given_up() {
     // The rule of `ABANDON_FACTOR` on the fine segments (this module's choice): a
     // pseudo-Voigt fit of a trace from the simulator's physics, with its own result as the
     // rival, is given up with an error that says so when the rival's reduced chi-squared is
-    // taken as a tenth of what it is; at ten times it, it runs to the same result as with
-    // no rival.
+    // taken as a tenth of what it is; at ten times it, it runs to the result it reaches with no
+    // rival (within the convergence test's 0.05 of beta's standard uncertainty: its first coarse
+    // segments are cut on the rival's model, so its path differs).
     let trace = rendered(1.0, 193.4e12 - 37e6, 3);
     let (start, comb) = start_for(&trace, Hz(200e6));
     let shape = LineShape::pseudo_voigt(comb.resolution_bandwidth_hz, 1e6, 0.1);
@@ -588,8 +589,14 @@ fn a_fit_that_cannot_beat_the_one_before_is_given_up() {
     let loose = fit(Some(&rival_at(10.0)))
         .expect("a fit that can beat its rival runs on")
         .0;
-    assert_eq!(loose.modulation_index, free.0.modulation_index);
-    assert_eq!(loose.iterations, free.0.iterations);
+    let moved = (loose.modulation_index - free.0.modulation_index).abs();
+    assert!(
+        moved <= 0.05 * free.0.uncertainty_statistical,
+        "with a rival {} against {} alone (u {})",
+        loose.modulation_index,
+        free.0.modulation_index,
+        free.0.uncertainty_statistical
+    );
     match fit(Some(&rival_at(0.1))) {
         Err(AnalysisError::FitFailed(message)) => {
             assert!(message.contains("given up"), "{message}");
