@@ -12,9 +12,10 @@ use super::step::{
     stepped, undamped_step, ABANDON_FACTOR, NEAR_MINIMUM,
 };
 use super::{
-    is_mixed, start_p0, wings_between_lines, FitStart, Fitted, FittedModel, WholeTraceFit, ASYM,
-    BETA, CENTRE, ETA, LN_FLOOR, LN_P0, LN_WIDTH, LN_WIDTH_L, LORENTZIAN_START, MAX_ITERATIONS, NP,
-    RECUT_STEP, SHAPE_SYSTEMATIC_MEASURED, SHAPE_SYSTEMATIC_MIXED, SHAPE_SYSTEMATIC_PARAMETRIC,
+    is_mixed, mirrored_across_zero, start_p0, wings_between_lines, FitStart, Fitted, FittedModel,
+    WholeTraceFit, ASYM, BETA, CENTRE, ETA, FINAL_STEP, LN_FLOOR, LN_P0, LN_WIDTH, LN_WIDTH_L,
+    LORENTZIAN_START, MAX_ITERATIONS, NP, RECUT_STEP, SHAPE_SYSTEMATIC_MEASURED,
+    SHAPE_SYSTEMATIC_MIXED, SHAPE_SYSTEMATIC_PARAMETRIC,
 };
 use crate::analysis::bessel::MAX_ORDER;
 use crate::analysis::AnalysisError;
@@ -138,7 +139,7 @@ pub(super) fn fit_once(
     // Against a rival (a Voigt started from a pseudo-Voigt's optimum), the first coarse segments
     // are cut on the rival's model at its optimum: the start is matched to it, so the two models
     // are nearly the same function there, and the rival's shape costs a fraction of the fit's
-    // own (a Voigt's Faddeeva function at every point the cut computes). Until v14 of
+    // own (a Voigt's Faddeeva function at every point the cut computes). Until v15 of
     // [`super::ANALYSIS_METHOD`] they were cut on the fit's own start: on the benchmark's
     // 1 MHz-laser trace that cut took 3.09 M of the 5.64 M instructions of the Voigt's attempt
     // (given up after its first step), and 1.92 M on the rival's model.
@@ -171,6 +172,9 @@ pub(super) fn fit_once(
     let mut rewindowed = false;
     // Whether beta stood more than 5 % from its start after the last accepted step.
     let mut beta_was_far = false;
+    // The lengths (standard uncertainties) of the last two steps taken, the last first, for the
+    // contraction that [`FINAL_STEP`] judges by.
+    let mut taken: [Option<f64>; 2] = [None, None];
     // Cut at the fine tolerance from the start (a measured shape): as if near the optimum.
     let mut recut_near_optimum = !parametric && segment_tolerance_db > 0.0;
     let p_start_beta = p[BETA];
@@ -250,6 +254,7 @@ pub(super) fn fit_once(
             let recut = !recut_near_optimum && step_in_uncertainties < RECUT_STEP;
             let rewindow = recut || (!rewindowed && beta_far && (beta_was_far || !prob.coarse));
             beta_was_far = beta_far;
+            taken = [Some(step_in_uncertainties), taken[0]];
             if rewindow {
                 if recut {
                     prob.coarse = false;
@@ -310,16 +315,36 @@ pub(super) fn fit_once(
                 // Converged: the step moved the parameters by under a twentieth of their
                 // standard uncertainties (or changed the residual by under 1e-7 of itself).
                 lambda = f64::INFINITY;
-            } else if recut_near_optimum && !recut {
-                // The next (undamped) step from here, from this evaluation's J^T J and J^T r:
-                // when it is under a twentieth of the standard uncertainties, the test above
-                // would stop the fit right after it, so it is taken without evaluating the
-                // model there (J^T J and the residual change by a negligible amount over it).
+            } else if recut_near_optimum {
+                // The next (undamped) step from here, from this evaluation's J^T J and J^T r
+                // (right after the fine cut too), is taken without evaluating the model where it
+                // lands, and ends the fit, when the step after it would be under a twentieth of
+                // the standard uncertainties (the test above would stop the fit right after it):
+                // when the next step itself is that small, or when it is under [`FINAL_STEP`]
+                // and the contraction the fit has shown (the next step over the last one, or
+                // right after a cut the last step over the one before) makes the step after it
+                // that small, away from the Bessel zeros. J^T J changes by a negligible amount
+                // over such a step, and the sum of squares where it lands is taken as its
+                // quadratic model's.
                 if let Some((next, norm)) = undamped_step(&prob, &eval, &p, shape0) {
                     let variance = (eval.ssr / degrees_of_freedom(&prob, &eval)).max(1e-300);
-                    if norm >= 0.0 && norm / variance < 0.05 * 0.05 {
+                    let next_length = (norm.max(0.0) / variance).sqrt();
+                    let contraction = match taken {
+                        [Some(last), _] if !rewindow => Some(next_length / last.max(1e-300)),
+                        [Some(last), Some(before)] => Some(last / before.max(1e-300)),
+                        _ => None,
+                    };
+                    let step_after = contraction.map_or(f64::INFINITY, |ratio| ratio * next_length);
+                    // Not near a zero of a line's J_n, where the line's power has no slope in beta
+                    // and J^T J changes fast with it.
+                    let away_from_zeros = mirrored_across_zero(p[BETA], max_order).is_none();
+                    if norm >= 0.0
+                        && (next_length < 0.05
+                            || (next_length < FINAL_STEP && step_after < 0.05 && away_from_zeros))
+                    {
                         p = stepped(&p, &next, shape0);
                         shape = params_shape(shape0, &p);
+                        eval.ssr = (eval.ssr - norm).max(0.0);
                         iterations += 1;
                         lambda = f64::INFINITY;
                     }
