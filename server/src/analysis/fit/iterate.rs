@@ -335,12 +335,13 @@ pub(super) fn fit_once(
                         _ => None,
                     };
                     let step_after = contraction.map_or(f64::INFINITY, |ratio| ratio * next_length);
-                    // Not near a zero of a line's J_n, where the line's power has no slope in beta
-                    // and J^T J changes fast with it.
-                    let away_from_zeros = mirrored_across_zero(p[BETA], max_order).is_none();
+                    // Last, and only when the rest holds: not near a zero of a line's J_n, where
+                    // the line's power has no slope in beta and J^T J changes fast with it.
                     if norm >= 0.0
                         && (next_length < 0.05
-                            || (next_length < FINAL_STEP && step_after < 0.05 && away_from_zeros))
+                            || (next_length < FINAL_STEP
+                                && step_after < 0.05
+                                && mirrored_across_zero(p[BETA], max_order).is_none()))
                     {
                         p = stepped(&p, &next, shape0);
                         shape = params_shape(shape0, &p);

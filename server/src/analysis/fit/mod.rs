@@ -93,11 +93,13 @@ const RECUT_STEP: f64 = 10.0;
 /// contraction is the next step's length over the last one's (right after a cut, the last one's
 /// over the one before it), times the next step's length. Away from the zeros the benchmark's
 /// fits contract fast near the optimum (beta 6's coarse steps 95, 14.9, 0.34 u, its first fine
-/// one 0.96 u; the bench trace's 54 u, then 0.23 u), and each saves its last evaluation (6-14 %
-/// of its instructions) with beta moved by at most 3e-5 of its uncertainty. At the carrier's null
+/// one 0.96 u; the bench trace's 54 u, then 0.23 u), and five of the six benchmark fits save their
+/// last evaluation (9-14 % of their instructions) with beta moved by at most 5e-5 of its
+/// uncertainty (the 1 MHz-laser trace's last step, 1.73 u after one of 12.3 u, is still
+/// evaluated). At the carrier's null
 /// the simulated bench's fit contracted by 0.3-0.85 per step (6.4, 2.1, 1.8, 0.56, 0.18 u): a step
 /// of 1.8 u taken unevaluated left beta 0.075 of its uncertainty from the exact sum's, and even a
-/// last step of 0.05 u moved the statistical uncertainty by 2.6 % (a line's power has no slope at
+/// last step of 0.051 u moved the statistical uncertainty by 2.6 % (a line's power has no slope at
 /// its zero, so J^T J changes fast with beta there); unit test
 /// `the_fast_fit_gives_the_beta_of_the_exact_sum_on_both_kinds_of_trace`. Until v16 of
 /// [`super::ANALYSIS_METHOD`] only a step under 0.05 u was taken so, and not right after the cut.
